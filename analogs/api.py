@@ -1,0 +1,395 @@
+"""The Python API: build a store from an archive, load it, ask it for analogs.
+
+>>> import analogs.api as aa                                     # doctest: +SKIP
+>>> store = aa.build_store(["archive/zg500_2001.nc", ...], "store", events="events.csv")
+>>> result = aa.AnalogStore.load("store").find(date="2005-06-14", top=20)
+>>> result.analogs            # pandas DataFrame: rank, date, distance, regime, events
+>>> result.outcomes           # dict: probabilities, intervals, counts, climatology
+
+Every function takes and returns xarray / pandas objects; the CLI is a thin layer over
+this module.
+"""
+
+from __future__ import annotations
+
+import warnings
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import xarray as xr
+
+from . import CAUTION, __version__, store as store_io
+from ._validation import check_choice, check_float, check_int
+from .climatology import HarmonicClimatology
+from .eof import MultivariateEOF
+from .errors import AnalogsInputError, StoreError
+from .index import AnalogIndex
+from .outcomes import (
+    Region,
+    analog_weights,
+    daily_event_counts,
+    read_events,
+    summarize_outcomes,
+)
+from .query import candidate_ids, find_analogs
+from .regimes import RuleClassifier, tag_days
+from .sources import open_archive, open_target, regrid_to
+
+WEIGHT_SCHEMES = ("equal", "inverse_distance", "gaussian")
+DEFAULT_TOP = 20
+DEFAULT_WINDOW = 45
+DEFAULT_EXCLUDE = 10
+DEFAULT_SEPARATION = 3
+
+
+def _provenance(paths) -> list[dict]:
+    entries = []
+    for path in paths:
+        path = Path(path)
+        size = path.stat().st_size if path.is_file() else sum(
+            f.stat().st_size for f in path.rglob("*") if f.is_file())
+        entries.append({"path": str(path.resolve()), "bytes": size})
+    return entries
+
+
+def _region_from_config(config) -> Region:
+    if config is None:
+        return Region.whole()
+    return Region.from_dict(config)
+
+
+def _grid_box(ds) -> tuple[float, float, float, float]:
+    lat, lon = ds["lat"].values, ds["lon"].values
+    return float(lat.min()), float(lat.max()), float(lon.min()), float(lon.max())
+
+
+def _diagnostic_region(region: Region, ds) -> tuple[float, float, float, float]:
+    """The box over which regime diagnostics are computed for an outcome region."""
+    return region.bounding_box() if region.kind != "whole" else _grid_box(ds)
+
+
+def build_store(paths, store, *, events=None, fields=None, n_modes=None, variance=None,
+                region=None, domain=None, hour=12, daily="instant", n_harmonics=3,
+                solver="auto", field_weights=None, chunks=None, progress=True):
+    """Build (or rebuild) the store at ``store`` from archive ``paths``.
+
+    Parameters
+    ----------
+    paths : list of NetCDF / Zarr paths (see :func:`analogs.sources.open_archive`).
+    store : directory to write; an existing store is replaced only when the build
+        succeeds.
+    events : path of the events table (CSV or Parquet), optional.
+    fields : fields to use (default: every supported field found).
+    n_modes, variance : EOF truncation, by count or by explained-variance target.
+    region : :class:`~analogs.outcomes.Region` or text ``"S,N,W,E"`` / ``"LAT,LON,KM"``;
+        the default region for outcome statistics and regime diagnostics.
+    domain : (south, north, west, east) subset of the archive grid, optional.
+    hour, daily : how sub-daily data becomes one value a day.
+    n_harmonics : annual harmonics of the climatology.
+    solver : EOF solver, ``"auto" | "exact" | "randomized"``.
+    field_weights : dict field -> weight in the combined EOF (default equal).
+    chunks : dask chunks for out-of-core reading, e.g. ``{"time": 365}``.
+
+    Returns
+    -------
+    AnalogStore, loaded from what was written.
+    """
+    if not paths:
+        raise AnalogsInputError("no archive files given: pass one or more NetCDF/Zarr files")
+    region = Region.parse(region) if isinstance(region, str) else (region or Region.whole())
+    archive = open_archive(paths, fields=fields, region=domain, hour=hour, daily=daily,
+                           chunks=chunks, progress=progress)
+    if archive.sizes["time"] < 3:
+        raise AnalogsInputError(
+            f"the archive has {archive.sizes['time']} days; at least 3 are needed to build a store")
+    region.require_grid_points(archive["lat"].values, archive["lon"].values)
+    event_table = read_events(events) if events is not None else None
+
+    climatology = HarmonicClimatology(n_harmonics=n_harmonics).fit(archive)
+    anomalies = climatology.transform(archive)
+    eof = MultivariateEOF(n_modes, variance=variance, solver=solver,
+                          field_weights=field_weights).fit(anomalies)
+    pcs = eof.pcs_
+    tags = tag_days(archive, _diagnostic_region(region, archive), progress=progress)
+
+    times = pd.DatetimeIndex(archive["time"].values)
+    manifest = {
+        "config": {
+            "fields": list(archive.data_vars),
+            "n_modes_requested": n_modes,
+            "variance_requested": variance,
+            "n_modes": int(eof.n_modes_),
+            "solver": eof.solver_,
+            "n_harmonics": n_harmonics,
+            "climatology_method": climatology.method_,
+            "hour": hour,
+            "daily": daily,
+            "domain": list(domain) if domain is not None else list(_grid_box(archive)),
+            "region": region.to_dict(),
+            "field_weights": field_weights,
+        },
+        "archive": {
+            "n_days": int(len(times)),
+            "time_start": times[0].isoformat(),
+            "time_end": times[-1].isoformat(),
+            "n_lat": int(archive.sizes["lat"]),
+            "n_lon": int(archive.sizes["lon"]),
+            "inputs": _provenance(paths),
+        },
+        "events": None if event_table is None else {
+            "source": str(Path(events).resolve()),
+            "n_events": int(len(event_table)),
+            "kinds": sorted(event_table["kind"].unique().tolist()),
+        },
+    }
+    with store_io.writing(store, manifest) as staged:
+        basis = xr.Dataset(coords={"lat": archive["lat"], "lon": archive["lon"]},
+                           attrs={"title": "analogs store basis", "Conventions": "CF-1.8",
+                                  "analogs_version": __version__})
+        store_io.write_dataset(basis, staged / store_io.BASIS)
+        store_io.write_dataset(climatology.to_dataset(), staged / store_io.BASIS,
+                               group="climatology", mode="a")
+        store_io.write_dataset(eof.to_dataset(), staged / store_io.BASIS, group="eof", mode="a")
+        scores = xr.Dataset({"pcs": pcs.astype("float64")},
+                            attrs={"title": "analogs store principal components",
+                                   "Conventions": "CF-1.8"})
+        store_io.write_dataset(scores, staged / store_io.SCORES)
+        if event_table is not None:
+            store_io.write_table(event_table, staged / store_io.EVENTS)
+        store_io.write_table(tags.reset_index(drop=True), staged / store_io.TAGS)
+    return AnalogStore.load(store)
+
+
+@dataclass
+class AnalogResult:
+    """The answer to one query: the target, its analogs and their outcomes."""
+
+    target: dict
+    analogs: pd.DataFrame
+    outcomes: dict
+    settings: dict = field(default_factory=dict)
+
+    def to_dict(self) -> dict:
+        """The JSON shape of ``analogs find --json`` (DESIGN.md)."""
+        analog_list = []
+        for row in self.analogs.itertuples(index=False):
+            analog_list.append({
+                "rank": int(row.rank),
+                "date": row.date,
+                "distance": float(row.distance),
+                "regime": row.regime,
+                "regime_confidence": float(row.regime_confidence),
+                "events": {"total": int(row.events_total), "by_kind": dict(row.events_by_kind)},
+            })
+        return {"target": self.target, "analogs": analog_list, "outcomes": self.outcomes,
+                "settings": self.settings, "caution": CAUTION}
+
+
+class AnalogStore:
+    """A loaded store: the fitted climatology and EOFs, every day's PCs, events, tags."""
+
+    def __init__(self, path, manifest, climatology, eof, pcs, events=None, tags=None):
+        self.path = Path(path)
+        self.manifest = manifest
+        self.climatology = climatology
+        self.eof = eof
+        self.pcs = pcs
+        self.events = events
+        self.tags = tags
+        self.times = pd.DatetimeIndex(pcs["time"].values)
+        self._index = None
+
+    @classmethod
+    def load(cls, path, *, check=True):
+        """Load the store at ``path``, verifying its checksums unless ``check=False``."""
+        path = Path(path)
+        manifest = store_io.verify(path) if check else store_io.read_manifest(path)
+        files = manifest["files"]
+        for required in (store_io.BASIS, store_io.SCORES):
+            if required not in files:
+                raise StoreError(f"store {path} lists no {required} in its manifest; rebuild it")
+        basis_path = path / store_io.BASIS
+        climatology = HarmonicClimatology.from_dataset(
+            store_io.read_dataset(basis_path, group="climatology"))
+        eof = MultivariateEOF.from_dataset(store_io.read_dataset(basis_path, group="eof"))
+        pcs = store_io.read_dataset(path / store_io.SCORES)["pcs"]
+        events = store_io.read_table(path / store_io.EVENTS) if store_io.EVENTS in files else None
+        tags = store_io.read_table(path / store_io.TAGS) if store_io.TAGS in files else None
+        if tags is not None:
+            tags = tags.assign(date=pd.to_datetime(tags["date"])).set_index("date")
+        return cls(path, manifest, climatology, eof, pcs, events=events, tags=tags)
+
+    # -- derived state -------------------------------------------------------------
+    @property
+    def index(self) -> AnalogIndex:
+        if self._index is None:
+            self._index = AnalogIndex(kind="auto").fit(self.pcs.values)
+        return self._index
+
+    @property
+    def region(self) -> Region:
+        return _region_from_config(self.manifest["config"].get("region"))
+
+    @property
+    def fields(self) -> list[str]:
+        return list(self.manifest["config"]["fields"])
+
+    @property
+    def grid(self) -> tuple[np.ndarray, np.ndarray]:
+        basis = self.eof.eofs_
+        return basis["lat"].values, basis["lon"].values
+
+    @property
+    def days(self) -> pd.DatetimeIndex:
+        """Calendar days of the archive (the convective days the fields describe)."""
+        return self.times.normalize()
+
+    # -- targets -------------------------------------------------------------------
+    def day_row(self, date) -> int:
+        try:
+            day = pd.Timestamp(date).normalize()
+        except (TypeError, ValueError):
+            raise AnalogsInputError(f"--date {date!r} is not a date; expected YYYY-MM-DD") from None
+        rows = np.flatnonzero(self.days == day)
+        if rows.size == 0:
+            raise AnalogsInputError(
+                f"--date {day.date()} is outside the archive of store {self.path} "
+                f"({self.days[0].date()} to {self.days[-1].date()}) or missing from it")
+        return int(rows[0])
+
+    def project(self, target: xr.Dataset) -> np.ndarray:
+        """PC vector of a canonical target Dataset (one time) on any grid."""
+        missing = [name for name in self.fields if name not in target.data_vars]
+        if missing:
+            raise AnalogsInputError(
+                f"the target field lacks {', '.join(missing)}: the store was built from "
+                f"{', '.join(self.fields)}")
+        lat, lon = self.grid
+        target = regrid_to(target[self.fields], lat, lon)
+        anomalies = self.climatology.transform(target)
+        pcs = self.eof.transform(anomalies)
+        return np.asarray(pcs.values, dtype=float).reshape(-1)
+
+    def regime_of_field(self, target: xr.Dataset, region: Region) -> dict:
+        lat, lon = self.grid
+        fields = regrid_to(target[self.fields], lat, lon)
+        if "time" not in fields.dims:
+            fields = fields.expand_dims(time=[pd.Timestamp("2000-01-01")])
+        tags = tag_days(fields, _diagnostic_region(region, fields), progress=False)
+        row = tags.iloc[0]
+        return {"regime": str(row["regime"]), "regime_confidence": float(row["confidence"]),
+                "reason": str(row.get("reason", ""))}
+
+    def regime_of_day(self, row: int) -> dict:
+        if self.tags is None:
+            return {"regime": "other", "regime_confidence": 0.0, "reason": "no tags in store"}
+        tag = self.tags.iloc[row]
+        return {"regime": str(tag["regime"]), "regime_confidence": float(tag["confidence"]),
+                "reason": str(tag.get("reason", ""))}
+
+    # -- queries -------------------------------------------------------------------
+    def find(self, *, date=None, field=None, time=None, top=DEFAULT_TOP, window=DEFAULT_WINDOW,
+             exclude=None, separation=DEFAULT_SEPARATION, region=None, regime=None,
+             weights="equal", confidence=0.9):
+        """Closest archive days to a target and what they produced.
+
+        Give exactly one of ``date`` (an archive day, YYYY-MM-DD) or ``field`` (a path
+        or a canonical Dataset of a forecast field on any grid, with ``time`` its valid
+        time when the file holds several). ``exclude`` defaults to
+        ``DEFAULT_EXCLUDE`` days for a date target and to nothing for a field target.
+        """
+        owner = "find"
+        if (date is None) == (field is None):
+            raise AnalogsInputError("give exactly one target: --date YYYY-MM-DD or --field FILE")
+        check_choice(weights, "weights", owner, WEIGHT_SCHEMES)
+        confidence = check_float(confidence, "confidence", owner, min_value=0.5,
+                                 max_value=1.0, max_inclusive=False)
+        region = self._resolve_region(region)
+        if date is not None:
+            row = self.day_row(date)
+            vector = self.pcs.values[row]
+            target_time = self.times[row]
+            exclude = DEFAULT_EXCLUDE if exclude is None else exclude
+            target = {"date": str(self.days[row].date()), **self.regime_of_day(row)}
+        else:
+            dataset = open_target(field, time=time) if not isinstance(field, xr.Dataset) else field
+            vector = self.project(dataset)
+            valid = dataset["time"].values if "time" in dataset.coords else None
+            valid = pd.Timestamp(np.ravel(valid)[0]) if valid is not None else pd.NaT
+            target_time = None if pd.isna(valid) else valid
+            if target_time is None and window is not None:
+                warnings.warn("the target field has no valid time: the season window is not "
+                              "applied (pass --time to apply it)", stacklevel=2)
+            target = {"date": None if target_time is None else str(target_time.date()),
+                      **self.regime_of_field(dataset, region)}
+        restrict = None
+        if regime is not None:
+            restrict = self._regime_mask(regime)
+        chosen = find_analogs(self.index, self.times, vector, target_time=target_time,
+                              top=top, window=window, exclude=exclude,
+                              separation=separation, restrict=restrict)
+        analogs = self._describe_analogs(chosen, region)
+        outcomes = self._outcomes(analogs, target_time, window, region, weights, confidence)
+        settings = {"top": top, "window_days": window, "exclude_days": exclude,
+                    "separation_days": separation, "regime": regime,
+                    "region": region.to_dict(), "weights": weights,
+                    "n_modes": int(self.eof.n_modes_), "store": str(self.path)}
+        return AnalogResult(target=target, analogs=analogs, outcomes=outcomes, settings=settings)
+
+    def _resolve_region(self, region) -> Region:
+        if region is None:
+            region = self.region
+        elif isinstance(region, str):
+            region = Region.parse(region)
+        lat, lon = self.grid
+        region.require_grid_points(lat, lon)
+        return region
+
+    def _regime_mask(self, regime) -> np.ndarray:
+        if self.tags is None:
+            raise AnalogsInputError(f"--regime {regime}: store {self.path} has no tags")
+        known = sorted(self.tags["regime"].unique())
+        labels = set(RuleClassifier.labels) | set(known)
+        if regime not in labels:
+            raise AnalogsInputError(
+                f"--regime {regime!r} is not a regime label; expected one of {', '.join(sorted(labels))}")
+        return (self.tags["regime"] == regime).to_numpy()
+
+    def _day_counts(self, days, region) -> pd.DataFrame:
+        if self.events is None:
+            return pd.DataFrame(index=pd.DatetimeIndex(days), columns=["total"], data=0)
+        return daily_event_counts(self.events, pd.DatetimeIndex(days), region)
+
+    def _describe_analogs(self, chosen: pd.DataFrame, region) -> pd.DataFrame:
+        days = pd.DatetimeIndex(chosen["time"]).normalize()
+        counts = self._day_counts(days, region)
+        kinds = [c for c in counts.columns if c != "total"]
+        regimes = [self.regime_of_day(int(r)) for r in chosen["row"]]
+        return pd.DataFrame({
+            "rank": chosen["rank"].to_numpy(),
+            "date": [str(d.date()) for d in days],
+            "distance": chosen["distance"].to_numpy(),
+            "regime": [r["regime"] for r in regimes],
+            "regime_confidence": [r["regime_confidence"] for r in regimes],
+            "events_total": counts["total"].to_numpy(dtype=int),
+            "events_by_kind": [{k: int(counts[k].iloc[i]) for k in kinds} for i in range(len(days))],
+            "row": chosen["row"].to_numpy(),
+        })
+
+    def _outcomes(self, analogs, target_time, window, region, weights, confidence) -> dict:
+        days = pd.DatetimeIndex(pd.to_datetime(analogs["date"]))
+        analog_counts = self._day_counts(days, region)
+        if target_time is not None and window is not None:
+            season = candidate_ids(self.times, target_time, window=window, exclude=None)
+        else:
+            season = np.arange(len(self.times))
+        climatology_counts = self._day_counts(self.days[season], region)
+        weight_values = None
+        if weights != "equal" and len(analogs):
+            weight_values = analog_weights(analogs["distance"].to_numpy(), scheme=weights)
+        summary = summarize_outcomes(analog_counts, climatology_counts, weights=weight_values,
+                                     confidence=confidence)
+        summary["has_events"] = self.events is not None
+        return summary

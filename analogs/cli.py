@@ -1,0 +1,241 @@
+"""Command line: a thin layer over :mod:`analogs.api`.
+
+Exit status: 0 done; 2 bad input or usage (one line on stderr, no traceback);
+1 an unexpected internal error.
+"""
+
+from __future__ import annotations
+
+import argparse
+import contextlib
+import sys
+import traceback
+import warnings
+from pathlib import Path
+
+from . import CAUTION, __version__
+from .errors import AnalogsInputError
+
+EPILOG = f"{CAUTION}"
+
+
+def _add_quiet(parser):
+    parser.add_argument("--quiet", action="store_true", help="no progress bars")
+
+
+def _add_query_options(parser):
+    from .api import DEFAULT_SEPARATION, DEFAULT_TOP, DEFAULT_WINDOW
+    parser.add_argument("--top", type=int, default=DEFAULT_TOP, metavar="N",
+                        help=f"number of analogs to return (default {DEFAULT_TOP})")
+    parser.add_argument("--window", type=int, default=DEFAULT_WINDOW, metavar="DAYS",
+                        help="season window: only days within this many calendar days of the "
+                             f"target's calendar day, any year (default {DEFAULT_WINDOW})")
+    parser.add_argument("--separation", type=int, default=DEFAULT_SEPARATION, metavar="DAYS",
+                        help="de-clustering: drop an analog within this many days of a better one "
+                             f"(default {DEFAULT_SEPARATION}; 0 keeps all)")
+    parser.add_argument("--region", metavar="S,N,W,E | LAT,LON,KM",
+                        help="outcome region: a box in degrees (west/east negative for west) or a "
+                             "point and radius in km (default: the store's region)")
+
+
+def build_parser() -> argparse.ArgumentParser:
+    from .api import DEFAULT_EXCLUDE
+    parser = argparse.ArgumentParser(
+        prog="analogs",
+        description="What did days like this do? Closest past days of 500 hPa height and "
+                    "low-level moisture from a gridded archive, their weather regimes and the "
+                    "severe-weather reports tied to them.",
+        epilog=EPILOG)
+    parser.add_argument("--version", action="version", version=f"analogs {__version__}")
+    commands = parser.add_subparsers(dest="command", metavar="COMMAND", required=True)
+
+    demo = commands.add_parser(
+        "demo", help="make a synthetic archive, build a store, tag it, run a query, write a report",
+        description="Make the synthetic demo archive and its events, build a store, tag every "
+                    "day, run one query and write an HTML report.", epilog=EPILOG)
+    demo.add_argument("--out", required=True, type=Path, metavar="DIR",
+                      help="output directory (archive/, events.csv, truth.csv, store/, report/)")
+    demo.add_argument("--years", type=int, default=10, metavar="N",
+                      help="years of daily fields to generate (default 10)")
+    demo.add_argument("--seed", type=int, default=0, metavar="S", help="random seed (default 0)")
+    _add_quiet(demo)
+    demo.set_defaults(handler=_cmd_demo)
+
+    build = commands.add_parser(
+        "build", help="build a store from archive files",
+        description="Read a gridded archive (NetCDF or Zarr; any CF-ish convention), fit the "
+                    "climatology and EOFs, index every day and write the store.", epilog=EPILOG)
+    build.add_argument("files", nargs="+", type=Path, metavar="FILE",
+                       help="archive files: 500 hPa height and low-level moisture")
+    build.add_argument("--store", required=True, type=Path, metavar="DIR", help="store directory to write")
+    build.add_argument("--events", type=Path, metavar="EVENTS.csv",
+                       help="events table (CSV or Parquet: time,lat,lon,kind[,magnitude])")
+    modes = build.add_mutually_exclusive_group()
+    modes.add_argument("--modes", type=int, metavar="K", help="number of EOF modes to keep (default 20)")
+    modes.add_argument("--variance", type=float, metavar="F",
+                       help="keep the fewest modes explaining this fraction of variance (0-1)")
+    build.add_argument("--fields", metavar="LIST",
+                       help="comma-separated fields to use, e.g. z500,q850 (default: all supported found)")
+    build.add_argument("--region", metavar="S,N,W,E | LAT,LON,KM",
+                       help="default region for outcome statistics and regime diagnostics "
+                            "(default: whole domain)")
+    build.add_argument("--domain", metavar="S,N,W,E", help="subset the archive grid to this box (degrees)")
+    build.add_argument("--hour", type=int, default=12, metavar="H",
+                       help="UTC hour of the daily value taken from sub-daily data (default 12)")
+    build.add_argument("--daily", choices=("instant", "mean"), default="instant",
+                       help="sub-daily data: the value at --hour, or the daily mean (default instant)")
+    build.add_argument("--solver", choices=("auto", "exact", "randomized"), default="auto",
+                       help="EOF solver (default auto: exact for small archives)")
+    build.add_argument("--harmonics", type=int, default=3, metavar="N",
+                       help="annual harmonics of the climatology (default 3)")
+    _add_quiet(build)
+    build.set_defaults(handler=_cmd_build)
+
+    find = commands.add_parser(
+        "find", help="closest past days to a date or a forecast field",
+        description="Find the closest archive days to a target day or forecast field, with "
+                    "the regime of each and what they produced.", epilog=EPILOG)
+    find.add_argument("--store", required=True, type=Path, metavar="DIR")
+    target = find.add_mutually_exclusive_group(required=True)
+    target.add_argument("--date", metavar="YYYY-MM-DD", help="an archive day")
+    target.add_argument("--field", type=Path, metavar="FILE",
+                        help="a forecast or analysis field (NetCDF; any grid covering the store's)")
+    find.add_argument("--time", metavar="ISO", help="valid time to take from --field")
+    _add_query_options(find)
+    find.add_argument("--exclude", type=int, metavar="DAYS",
+                      help="exclude days within this many days of the target date "
+                           f"(default {DEFAULT_EXCLUDE} for --date; nothing for --field)")
+    find.add_argument("--regime", metavar="LABEL",
+                      help="only analogs of this regime (northwest_flow, tropical, strong_trough, other)")
+    find.add_argument("--weights", choices=("equal", "inverse_distance", "gaussian"), default="equal",
+                      help="weights of the analogs in the outcome statistics (default equal)")
+    find.add_argument("--json", action="store_true", help="print one JSON object instead of a table")
+    find.add_argument("--report", type=Path, metavar="DIR", help="also write an HTML report to DIR/index.html")
+    find.set_defaults(handler=_cmd_find)
+
+    tag = commands.add_parser(
+        "tag", help="regime and diagnostics of every archive day",
+        description="Write one row per archive day: date, regime, confidence, then the "
+                    "physical diagnostics behind it.", epilog=EPILOG)
+    tag.add_argument("--store", required=True, type=Path, metavar="DIR")
+    tag.add_argument("--out", required=True, type=Path, metavar="FILE.csv|FILE.parquet")
+    _add_quiet(tag)
+    tag.set_defaults(handler=_cmd_tag)
+    return parser
+
+
+@contextlib.contextmanager
+def _one_line_warnings():
+    """Show warnings as one 'analogs: warning: ...' line each, only inside the command."""
+    original = warnings.showwarning
+
+    def show(message, category, filename, lineno, file=None, line=None):
+        print(f"analogs: warning: {message}", file=sys.stderr)
+
+    warnings.showwarning = show
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("default")
+            yield
+    finally:
+        warnings.showwarning = original
+
+
+def main(argv=None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    try:
+        with _one_line_warnings():
+            return int(args.handler(args) or 0)
+    except AnalogsInputError as error:
+        print(f"analogs {args.command}: error: {error}", file=sys.stderr)
+        return 2
+    except (FileNotFoundError, IsADirectoryError, PermissionError) as error:
+        print(f"analogs {args.command}: error: {error.strerror}: {error.filename}", file=sys.stderr)
+        return 2
+    except KeyboardInterrupt:
+        print("analogs: interrupted", file=sys.stderr)
+        return 130
+    except Exception:  # an internal error: show it, so it can be reported
+        traceback.print_exc()
+        print(f"analogs {args.command}: internal error (exit 1); please report it", file=sys.stderr)
+        return 1
+
+
+def _cmd_build(args) -> int:
+    from .api import build_store
+    fields = [f.strip() for f in args.fields.split(",")] if args.fields else None
+    domain = _parse_box(args.domain, "--domain") if args.domain else None
+    store = build_store(args.files, args.store, fields=fields, n_modes=args.modes,
+                        variance=args.variance, region=args.region, domain=domain,
+                        hour=args.hour, daily=args.daily, solver=args.solver,
+                        n_harmonics=args.harmonics, progress=not args.quiet,
+                        events=args.events)
+    config = store.manifest["config"]
+    print(f"built store {store.path}: {len(store.times)} days "
+          f"{store.days[0].date()} to {store.days[-1].date()}, fields {', '.join(config['fields'])}, "
+          f"{config['n_modes']} EOF modes explaining "
+          f"{100 * float(store.eof.variance_fraction_.sum()):.1f}% of the variance")
+    return 0
+
+
+def _parse_box(text, option):
+    try:
+        values = [float(v) for v in text.split(",")]
+    except ValueError:
+        values = []
+    if len(values) != 4:
+        raise AnalogsInputError(f"{option} {text!r}: expected four numbers S,N,W,E in degrees")
+    return tuple(values)
+
+
+def _cmd_find(args) -> int:
+    from .api import AnalogStore
+    from .report import dumps, find_html, find_text, write_text_atomic
+    store = AnalogStore.load(args.store)
+    if args.time and args.field is None:
+        raise AnalogsInputError("--time applies to --field only")
+    result = store.find(date=args.date, field=args.field, time=args.time, top=args.top,
+                        window=args.window, exclude=args.exclude, separation=args.separation,
+                        region=args.region, regime=args.regime, weights=args.weights)
+    if args.report:
+        write_text_atomic(Path(args.report) / "index.html", find_html(result, store.manifest))
+    if args.json:
+        print(dumps(result.to_dict()))
+    else:
+        print(find_text(result))
+        if args.report:
+            print(f"\nreport: {Path(args.report) / 'index.html'}")
+    return 0
+
+
+def _cmd_tag(args) -> int:
+    from .api import AnalogStore
+    from .report import write_text_atomic
+    store = AnalogStore.load(args.store)
+    if store.tags is None:
+        raise AnalogsInputError(f"store {args.store} has no tags; rebuild it with analogs build")
+    table = store.tags.reset_index()
+    table["date"] = table["date"].dt.strftime("%Y-%m-%d")
+    out = Path(args.out)
+    if out.suffix.lower() == ".csv":
+        write_text_atomic(out, table.to_csv(index=False))
+    elif out.suffix.lower() == ".parquet":
+        temporary = out.with_name(f".{out.name}.tmp")
+        table.to_parquet(temporary, index=False)
+        temporary.replace(out)
+    else:
+        raise AnalogsInputError(f"--out {out}: expected a file name ending in .csv or .parquet")
+    counts = table["regime"].value_counts()
+    print(f"tagged {len(table)} days -> {out}: "
+          + ", ".join(f"{label} {n}" for label, n in counts.items()))
+    return 0
+
+
+def _cmd_demo(args) -> int:
+    from .demo import run_demo
+    return run_demo(args.out, years=args.years, seed=args.seed, progress=not args.quiet)
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

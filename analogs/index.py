@@ -1,0 +1,113 @@
+"""Nearest-neighbour index over the principal components of every archive day.
+
+The index is rebuilt from ``scores.nc`` when a store loads: it is fast, portable across
+faiss versions, and leaves no binary blob to trust. Candidate filtering (season window,
+exclusion window, regime) goes through faiss ID selection, so the search only ever
+ranks allowed days.
+"""
+
+from __future__ import annotations
+
+import faiss
+import numpy as np
+
+from ._validation import check_choice, check_int
+from .errors import NotFittedError
+
+INDEX_KINDS = ("auto", "flat", "hnsw")
+
+
+class AnalogIndex:
+    """Exact or approximate Euclidean nearest-neighbour search over PC vectors.
+
+    Parameters
+    ----------
+    kind : {"auto", "flat", "hnsw"}
+        ``"flat"`` is exact brute-force search; ``"hnsw"`` is faiss' hierarchical
+        navigable small-world graph (approximate); ``"auto"`` uses flat search below
+        ``hnsw_threshold`` vectors and HNSW above it.
+    hnsw_threshold : int
+        Number of vectors above which ``"auto"`` switches to HNSW.
+    hnsw_neighbours : int
+        Graph degree M of the HNSW index.
+    ef_search : int
+        Breadth of the HNSW search (larger is slower and more exact).
+
+    Attributes
+    ----------
+    kind_ : str
+        The index kind actually built.
+    n_vectors_, n_dims_ : int
+    """
+
+    def __init__(self, kind="flat", *, hnsw_threshold=500_000, hnsw_neighbours=32,
+                 ef_search=256):
+        self.kind = kind
+        self.hnsw_threshold = hnsw_threshold
+        self.hnsw_neighbours = hnsw_neighbours
+        self.ef_search = ef_search
+
+    def fit(self, vectors):
+        """Index ``vectors`` (n, d); row i gets id i."""
+        check_choice(self.kind, "kind", "AnalogIndex", INDEX_KINDS)
+        check_int(self.hnsw_threshold, "hnsw_threshold", "AnalogIndex", min_value=1)
+        check_int(self.hnsw_neighbours, "hnsw_neighbours", "AnalogIndex", min_value=4)
+        check_int(self.ef_search, "ef_search", "AnalogIndex", min_value=1)
+        vectors = np.ascontiguousarray(vectors, dtype=np.float32)
+        if vectors.ndim != 2 or vectors.shape[0] == 0:
+            raise ValueError(f"AnalogIndex.fit needs a non-empty (n, d) array, got shape {vectors.shape}")
+        n, d = vectors.shape
+        kind = self.kind
+        if kind == "auto":
+            kind = "hnsw" if n > self.hnsw_threshold else "flat"
+        if kind == "flat":
+            index = faiss.IndexFlatL2(d)
+        else:
+            index = faiss.IndexHNSWFlat(d, self.hnsw_neighbours)
+            index.hnsw.efConstruction = max(2 * self.hnsw_neighbours, 80)
+        index.add(vectors)
+        self.index_ = index
+        self.kind_ = kind
+        self.n_vectors_, self.n_dims_ = n, d
+        return self
+
+    def search(self, queries, k, *, allowed=None):
+        """Return (distances, ids) of the ``k`` nearest indexed vectors to each query.
+
+        Parameters
+        ----------
+        queries : array (d,) or (m, d)
+        k : int
+        allowed : array of int ids, optional
+            Only these ids are ranked (faiss ``IDSelectorBatch``).
+
+        Returns
+        -------
+        distances : ndarray (m, k) float64
+            Euclidean (not squared) distances; missing neighbours are ``inf``.
+        ids : ndarray (m, k) int64, ``-1`` where fewer than ``k`` ids were allowed.
+        """
+        if not hasattr(self, "index_"):
+            raise NotFittedError("This AnalogIndex is not fitted yet; call fit(vectors) first.")
+        queries = np.ascontiguousarray(np.atleast_2d(queries), dtype=np.float32)
+        if queries.shape[1] != self.n_dims_:
+            raise ValueError(
+                f"query vectors have {queries.shape[1]} components, the index has {self.n_dims_}")
+        k = check_int(k, "k", "AnalogIndex.search", min_value=1)
+        params = None
+        if allowed is not None:
+            allowed = np.asarray(allowed, dtype=np.int64)
+            if allowed.size == 0:
+                shape = (queries.shape[0], k)
+                return np.full(shape, np.inf), np.full(shape, -1, dtype=np.int64)
+            selector = faiss.IDSelectorBatch(allowed)
+            if self.kind_ == "hnsw":
+                params = faiss.SearchParametersHNSW(sel=selector, efSearch=max(self.ef_search, k))
+            else:
+                params = faiss.SearchParameters(sel=selector)
+        elif self.kind_ == "hnsw":
+            params = faiss.SearchParametersHNSW(efSearch=max(self.ef_search, k))
+        squared, ids = self.index_.search(queries, k, params=params)
+        distances = np.sqrt(np.maximum(squared.astype(np.float64), 0.0))
+        distances[ids < 0] = np.inf
+        return distances, ids

@@ -1,0 +1,136 @@
+"""Analog selection: season window, exclusion window, de-clustering, ranking.
+
+Analog searches are restricted to a window of about one to two months around the
+target's calendar day, and analogs within a few days of a better analog belong to the
+same weather episode, so they are dropped (common practice, no source).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+
+from ._validation import check_int
+from .index import AnalogIndex
+
+#: Mean length of the year in days, for circular calendar-day distances.
+DAYS_PER_YEAR = 365.2425
+
+
+def calendar_distance_days(times, target_time):
+    """Distance in days between the calendar days of ``times`` and ``target_time``.
+
+    Circular over the year, so 28 December and 3 January are 6 days apart whatever
+    their years. Leap days count as the day they fall on (day of year 60).
+    """
+    times = pd.DatetimeIndex(times)
+    target = pd.Timestamp(target_time)
+    difference = np.abs(times.dayofyear.to_numpy() - target.dayofyear).astype(float)
+    return np.minimum(difference, DAYS_PER_YEAR - difference)
+
+
+def season_mask(times, target_time, window_days):
+    """True where ``times`` fall within ``window_days`` calendar days of the target."""
+    return calendar_distance_days(times, target_time) <= window_days
+
+
+def exclusion_mask(times, target_time, exclude_days):
+    """True where ``times`` lie within ``exclude_days`` days of the target date itself."""
+    times = pd.DatetimeIndex(times).normalize()
+    target = pd.Timestamp(target_time).normalize()
+    return np.abs((times - target) / pd.Timedelta(days=1)) <= exclude_days
+
+
+def decluster(times, separation_days, limit=None):
+    """Indices of ``times`` (ordered best first) kept after de-clustering.
+
+    Going down the ranking, a day within ``separation_days`` of a day already kept is
+    dropped: it belongs to the same episode as a better analog. ``separation_days=0``
+    keeps everything. Stops once ``limit`` days are kept.
+    """
+    days = pd.DatetimeIndex(times).normalize().to_numpy().astype("datetime64[D]").astype(np.int64)
+    kept: list[int] = []
+    kept_days: list[int] = []
+    for position, day in enumerate(days):
+        if separation_days > 0 and kept_days and np.min(np.abs(np.asarray(kept_days) - day)) <= separation_days:
+            continue
+        kept.append(position)
+        kept_days.append(int(day))
+        if limit is not None and len(kept) >= limit:
+            break
+    return np.asarray(kept, dtype=np.int64)
+
+
+def candidate_ids(times, target_time=None, *, window=45, exclude=0, restrict=None):
+    """Row numbers of archive days allowed as analogs of a target.
+
+    Parameters
+    ----------
+    times : DatetimeIndex of the archive days (row order of the index).
+    target_time : timestamp or None
+        Valid time of the target; ``None`` (a field with no valid time) applies neither
+        the season nor the exclusion window.
+    window : int or None
+        Half-width of the season window in calendar days; ``None`` for all seasons.
+    exclude : int or None
+        Days within this many days of the target date are excluded (0 excludes the
+        target day only); ``None`` excludes nothing.
+    restrict : boolean array, optional
+        Extra condition on each day (for example a regime).
+    """
+    allowed = np.ones(len(times), dtype=bool)
+    if target_time is not None and not pd.isna(target_time):
+        if window is not None:
+            allowed &= season_mask(times, target_time, window)
+        if exclude is not None:
+            allowed &= ~exclusion_mask(times, target_time, exclude)
+    if restrict is not None:
+        allowed &= np.asarray(restrict, dtype=bool)
+    return np.flatnonzero(allowed)
+
+
+def find_analogs(index: AnalogIndex, times, target_vector, *, target_time=None, top=20,
+                 window=45, exclude=0, separation=3, restrict=None):
+    """The ``top`` closest archive days to a target vector, best first.
+
+    Parameters
+    ----------
+    index : fitted :class:`~analogs.index.AnalogIndex` whose row i is ``times[i]``.
+    times : DatetimeIndex of the indexed days.
+    target_vector : array (d,) in the index's space (PCs of the target).
+    target_time, window, exclude, restrict : see :func:`candidate_ids`.
+    top : int, number of analogs wanted.
+    separation : int, de-clustering distance in days (see :func:`decluster`).
+
+    Returns
+    -------
+    DataFrame with columns ``rank`` (1 = closest), ``time``, ``distance`` (Euclidean in
+    the weighted, balanced anomaly space of the kept EOF modes) and ``row`` (the day's
+    row in the archive). Fewer than ``top`` rows when fewer days are allowed.
+    """
+    owner = "find_analogs"
+    top = check_int(top, "top", owner, min_value=1)
+    if window is not None:
+        check_int(window, "window", owner, min_value=0, max_value=183)
+    if exclude is not None:
+        check_int(exclude, "exclude", owner, min_value=0)
+    separation = check_int(separation, "separation", owner, min_value=0)
+    times = pd.DatetimeIndex(times)
+    allowed = candidate_ids(times, target_time, window=window, exclude=exclude, restrict=restrict)
+    # Each kept analog can shadow at most 2 * separation others, so this many
+    # neighbours always hold `top` de-clustered ones when enough days are allowed.
+    fetch = min(len(allowed), top * (2 * separation + 1))
+    if fetch == 0:
+        return pd.DataFrame({"rank": np.array([], dtype=int), "time": pd.DatetimeIndex([]),
+                             "distance": np.array([], dtype=float), "row": np.array([], dtype=int)})
+    distances, ids = index.search(target_vector, fetch, allowed=allowed)
+    found = ids[0] >= 0
+    distances, ids = distances[0][found], ids[0][found]
+    keep = decluster(times[ids], separation, limit=top)
+    rows = ids[keep]
+    return pd.DataFrame({
+        "rank": np.arange(1, len(rows) + 1),
+        "time": times[rows],
+        "distance": distances[keep],
+        "row": rows,
+    })

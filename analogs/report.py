@@ -1,0 +1,184 @@
+"""Presentation of results: terminal tables, JSON and self-contained HTML pages.
+
+Nothing here computes statistics; it only lays out what the other stages return.
+"""
+
+from __future__ import annotations
+
+import base64
+import html
+import json
+import math
+import os
+import tempfile
+from pathlib import Path
+
+from . import CAUTION, __version__
+
+
+def _fmt_probability(value) -> str:
+    if value is None or (isinstance(value, float) and math.isnan(value)):
+        return "  n/a"
+    return f"{100.0 * value:5.1f}%"
+
+
+def _fmt_interval(interval) -> str:
+    if not interval:
+        return ""
+    lo, hi = interval
+    return f"[{100.0 * lo:.0f}-{100.0 * hi:.0f}%]"
+
+
+def find_text(result) -> str:
+    """A readable terminal summary of an :class:`~analogs.api.AnalogResult`."""
+    data = result.to_dict()
+    target, outcomes, settings = data["target"], data["outcomes"], data["settings"]
+    lines = []
+    when = target["date"] or "field without valid time"
+    lines.append(f"Target {when}: regime {target['regime']} "
+                 f"(confidence {target['regime_confidence']:.2f})")
+    if target.get("reason"):
+        lines.append(f"  why: {target['reason']}")
+    lines.append(f"Region {settings['region'].get('label', settings['region'])}; "
+                 f"season window +/-{settings['window_days']} d; "
+                 f"{settings['n_modes']} EOF modes")
+    lines.append("")
+    kinds = sorted({k for a in data["analogs"] for k in a["events"]["by_kind"]})
+    header = f"{'rank':>4}  {'date':10}  {'distance':>9}  {'regime':14}  {'events':>6}"
+    header += "".join(f"  {k[:8]:>8}" for k in kinds)
+    lines.append(header)
+    lines.append("-" * len(header))
+    for analog in data["analogs"]:
+        line = (f"{analog['rank']:>4}  {analog['date']:10}  {analog['distance']:9.2f}  "
+                f"{analog['regime']:14}  {analog['events']['total']:>6}")
+        line += "".join(f"  {analog['events']['by_kind'].get(k, 0):>8}" for k in kinds)
+        lines.append(line)
+    lines.append("")
+    n = outcomes["n_analogs"]
+    if not outcomes.get("has_events", True):
+        lines.append("No events table in this store: outcome statistics are not available "
+                     "(build with --events FILE).")
+    else:
+        lines.append(f"P(at least one event in region), {n} analogs: "
+                     f"{_fmt_probability(outcomes['p_any_event'])} "
+                     f"{_fmt_interval(outcomes.get('p_any_event_ci'))}   "
+                     f"season climatology: {_fmt_probability(outcomes['climatology_p_any_event'])}")
+        lines.append(f"Mean events per analog day: {outcomes['mean_events']:.2f}")
+        for kind, stats in sorted(outcomes.get("by_kind", {}).items()):
+            lines.append(f"  {kind:10} P(any) {_fmt_probability(stats['p_any'])}   "
+                         f"mean {stats['mean']:.2f}")
+    lines.append("")
+    lines.append(CAUTION)
+    return "\n".join(lines)
+
+
+def dumps(data) -> str:
+    """JSON text with NaN written as null (strict JSON for scripts)."""
+    return json.dumps(_nan_to_none(data), indent=2)
+
+
+def _nan_to_none(value):
+    if isinstance(value, float) and (math.isnan(value) or math.isinf(value)):
+        return None
+    if isinstance(value, dict):
+        return {str(k): _nan_to_none(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_nan_to_none(v) for v in value]
+    return value
+
+
+def write_text_atomic(path, text: str) -> None:
+    """Write ``text`` to ``path`` via a temporary sibling, fsync and rename."""
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, temporary = tempfile.mkstemp(prefix=f".{path.name}.", dir=path.parent)
+    try:
+        with os.fdopen(fd, "w", encoding="utf-8") as handle:
+            handle.write(text)
+            handle.flush()
+            os.fsync(handle.fileno())
+        os.replace(temporary, path)
+    except BaseException:
+        Path(temporary).unlink(missing_ok=True)
+        raise
+
+
+def embed_png(path_or_bytes) -> str:
+    """An <img> tag with the PNG embedded as a data URI (no external resource)."""
+    data = path_or_bytes if isinstance(path_or_bytes, bytes) else Path(path_or_bytes).read_bytes()
+    return f'<img alt="figure" src="data:image/png;base64,{base64.b64encode(data).decode()}">'
+
+
+_STYLE = """
+body{font-family:system-ui,sans-serif;margin:2em auto;max-width:70em;color:#222;line-height:1.4}
+table{border-collapse:collapse;margin:1em 0}th,td{padding:.25em .6em;border-bottom:1px solid #ddd;text-align:right}
+th{background:#f2f2f2}td.l,th.l{text-align:left}.caution{border-left:4px solid #555;padding:.5em 1em;background:#f7f7f7}
+img{max-width:100%;height:auto}code{background:#f2f2f2;padding:0 .2em}
+"""
+
+
+def html_page(title: str, sections: list[tuple[str, str]], provenance: dict | None = None) -> str:
+    """A self-contained HTML page: inline style, embedded images, no external resource."""
+    parts = [
+        "<!DOCTYPE html>", '<html lang="en"><head><meta charset="utf-8">',
+        f"<title>{html.escape(title)}</title><style>{_STYLE}</style></head><body>",
+        f"<h1>{html.escape(title)}</h1>",
+        f'<p class="caution"><strong>Caution.</strong> {html.escape(CAUTION)}</p>',
+    ]
+    for heading, body in sections:
+        parts.append(f"<h2>{html.escape(heading)}</h2>\n{body}")
+    if provenance:
+        parts.append("<h2>Provenance</h2><pre>" + html.escape(json.dumps(provenance, indent=2))
+                     + "</pre>")
+    parts.append(f"<p><small>Written by analogs {__version__}.</small></p></body></html>")
+    return "\n".join(parts)
+
+
+def html_table(rows: list[dict], columns: list[str], *, left=()) -> str:
+    head = "".join(f'<th class="{"l" if c in left else ""}">{html.escape(c)}</th>' for c in columns)
+    body = []
+    for row in rows:
+        cells = "".join(f'<td class="{"l" if c in left else ""}">{html.escape(str(row.get(c, "")))}</td>'
+                        for c in columns)
+        body.append(f"<tr>{cells}</tr>")
+    return f"<table><thead><tr>{head}</tr></thead><tbody>{''.join(body)}</tbody></table>"
+
+
+def find_html(result, manifest: dict, figures: list[tuple[str, bytes]] = ()) -> str:
+    """The HTML page of one query: target, analog table, outcomes, figures, settings."""
+    data = result.to_dict()
+    target, outcomes = data["target"], data["outcomes"]
+    kinds = sorted({k for a in data["analogs"] for k in a["events"]["by_kind"]})
+    rows = []
+    for analog in data["analogs"]:
+        row = {"rank": analog["rank"], "date": analog["date"],
+               "distance": f"{analog['distance']:.2f}", "regime": analog["regime"],
+               "events": analog["events"]["total"]}
+        row.update({k: analog["events"]["by_kind"].get(k, 0) for k in kinds})
+        rows.append(row)
+    sections = [
+        ("Target", f"<p>{html.escape(str(target['date'] or 'forecast field'))}: regime "
+                   f"<strong>{html.escape(target['regime'])}</strong> (confidence "
+                   f"{target['regime_confidence']:.2f}). {html.escape(target.get('reason', ''))}</p>"),
+        ("Closest past days", html_table(rows, ["rank", "date", "distance", "regime", "events", *kinds],
+                                         left=("date", "regime"))),
+    ]
+    if outcomes.get("has_events", True):
+        outcome_rows = [{"statistic": "P(at least one event in region)",
+                         "analogs": _fmt_probability(outcomes["p_any_event"]) + " "
+                         + _fmt_interval(outcomes.get("p_any_event_ci")),
+                         "season climatology": _fmt_probability(outcomes["climatology_p_any_event"])},
+                        {"statistic": "mean events per day", "analogs": f"{outcomes['mean_events']:.2f}",
+                         "season climatology": ""}]
+        for kind, stats in sorted(outcomes.get("by_kind", {}).items()):
+            outcome_rows.append({"statistic": f"P(any {kind})", "analogs": _fmt_probability(stats["p_any"]),
+                                 "season climatology": _fmt_probability(stats.get("climatology_p_any"))})
+        sections.append(("What these days produced",
+                         html_table(outcome_rows, ["statistic", "analogs", "season climatology"],
+                                    left=("statistic",))))
+    for caption, png in figures:
+        sections.append((caption, embed_png(png)))
+    sections.append(("Settings", "<pre>" + html.escape(json.dumps(data["settings"], indent=2)) + "</pre>"))
+    provenance = {"archive": manifest.get("archive"), "config": manifest.get("config"),
+                  "events": manifest.get("events")}
+    return html_page("Analogs of " + str(target["date"] or "a forecast field"), sections, provenance)

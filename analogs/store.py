@@ -1,0 +1,245 @@
+"""The store: the one persisted state, a directory of plain, portable files.
+
+Layout::
+
+    STORE/manifest.json   format version, build config, provenance, sha256 of every file
+    STORE/basis.nc        grid, climatology (group /climatology), EOFs (group /eof)
+    STORE/scores.nc       pcs (time, mode) of every archive day
+    STORE/events.parquet  the events table attached at build (optional)
+    STORE/tags.parquet    regime and diagnostics of every day (optional)
+
+Nothing is pickled. Writes are atomic: a new version is written into a temporary
+sibling directory, every file is fsynced, and the directory is swapped into place
+(``renameat2(RENAME_EXCHANGE)`` on Linux, two renames elsewhere), under a lock file
+beside the store, so a failed or killed write leaves the previous store untouched and
+readers never see half a store. Loading verifies the format version and the checksums.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import ctypes
+import ctypes.util
+import datetime as _dt
+import hashlib
+import json
+import os
+import shutil
+import tempfile
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import xarray as xr
+from filelock import FileLock, Timeout
+
+from . import __version__
+from .errors import StoreError
+
+FORMAT_VERSION = 1
+MANIFEST = "manifest.json"
+BASIS = "basis.nc"
+SCORES = "scores.nc"
+EVENTS = "events.parquet"
+TAGS = "tags.parquet"
+#: Seconds a second writer waits for the lock before giving up.
+LOCK_TIMEOUT = 600.0
+_TIME_ENCODING = {"units": "days since 1900-01-01 00:00:00", "calendar": "standard",
+                  "dtype": "float64", "_FillValue": None}
+
+
+def sha256_file(path) -> str:
+    digest = hashlib.sha256()
+    with open(path, "rb") as handle:
+        for block in iter(lambda: handle.read(1 << 20), b""):
+            digest.update(block)
+    return digest.hexdigest()
+
+
+def _fsync_path(path: Path) -> None:
+    fd = os.open(path, os.O_RDONLY)
+    try:
+        os.fsync(fd)
+    finally:
+        os.close(fd)
+
+
+def _exchange(a: Path, b: Path) -> bool:
+    """Atomically swap two directories (Linux renameat2); False when unsupported."""
+    libc_name = ctypes.util.find_library("c")
+    if not libc_name:
+        return False
+    libc = ctypes.CDLL(libc_name, use_errno=True)
+    renameat2 = getattr(libc, "renameat2", None)
+    if renameat2 is None:
+        return False
+    at_fdcwd, rename_exchange = -100, 2
+    result = renameat2(at_fdcwd, os.fsencode(a), at_fdcwd, os.fsencode(b), rename_exchange)
+    return result == 0
+
+
+def _swap_into_place(staged: Path, target: Path) -> None:
+    if not target.exists():
+        os.rename(staged, target)
+    elif _exchange(staged, target):
+        shutil.rmtree(staged)  # now holds the previous version
+    else:
+        retired = target.with_name(f".{target.name}.old-{os.getpid()}")
+        os.rename(target, retired)
+        os.rename(staged, target)
+        shutil.rmtree(retired)
+    _fsync_path(target.parent)
+
+
+def lock_for(path) -> FileLock:
+    """The lock that keeps two writers of one store apart (a file beside the store)."""
+    path = Path(path)
+    return FileLock(str(path.with_name(f".{path.name}.lock")))
+
+
+@contextlib.contextmanager
+def writing(path, manifest: dict, *, keep=()):
+    """Stage a new version of the store at ``path`` and swap it in on success.
+
+    Yields the staging directory; the caller writes its files there. ``keep`` names files
+    of the existing store that are carried over unchanged (for example the tags when
+    only the events change). On leaving the block the manifest (with checksums of every
+    file) is written, everything is fsynced and the directory replaces ``path``. Any
+    exception leaves the existing store exactly as it was.
+    """
+    path = Path(path).absolute()
+    if path.exists() and not path.is_dir():
+        raise StoreError(f"store path {path} exists and is not a directory")
+    path.parent.mkdir(parents=True, exist_ok=True)
+    try:
+        lock = lock_for(path)
+        lock.acquire(timeout=LOCK_TIMEOUT)
+    except Timeout as error:
+        raise StoreError(f"store {path} is locked by another writer (lock {error.lock_file}); "
+                         "try again when it has finished") from None
+    try:
+        staged = Path(tempfile.mkdtemp(prefix=f".{path.name}.tmp-", dir=path.parent))
+        try:
+            for name in keep:
+                if (path / name).exists():
+                    shutil.copy2(path / name, staged / name)
+            yield staged
+            _finish_manifest(staged, manifest)
+            _swap_into_place(staged, path)
+        except BaseException:
+            shutil.rmtree(staged, ignore_errors=True)
+            raise
+    finally:
+        lock.release()
+
+
+def _finish_manifest(staged: Path, manifest: dict) -> None:
+    files = {}
+    for item in sorted(staged.iterdir()):
+        if item.name == MANIFEST:
+            continue
+        _fsync_path(item)
+        files[item.name] = {"sha256": sha256_file(item), "bytes": item.stat().st_size}
+    full = {
+        "format": "analogs-store",
+        "format_version": FORMAT_VERSION,
+        "package_version": __version__,
+        "written": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
+        **manifest,
+        "files": files,
+    }
+    target = staged / MANIFEST
+    with open(target, "w", encoding="utf-8") as handle:
+        json.dump(full, handle, indent=2, sort_keys=False, default=_json_default)
+        handle.write("\n")
+        handle.flush()
+        os.fsync(handle.fileno())
+    _fsync_path(staged)
+
+
+def _json_default(value):
+    if isinstance(value, (np.integer,)):
+        return int(value)
+    if isinstance(value, (np.floating,)):
+        return float(value)
+    if isinstance(value, (np.ndarray,)):
+        return value.tolist()
+    if isinstance(value, (pd.Timestamp, _dt.datetime, _dt.date)):
+        return value.isoformat()
+    if isinstance(value, Path):
+        return str(value)
+    raise TypeError(f"cannot write {type(value).__name__} to the manifest")
+
+
+def read_manifest(path) -> dict:
+    """Read and check the manifest of the store at ``path`` (no checksum test)."""
+    path = Path(path)
+    manifest_path = path / MANIFEST
+    if not path.is_dir():
+        raise StoreError(f"store {path} does not exist or is not a directory; "
+                         "build one with 'analogs build --store DIR FILE...'")
+    if not manifest_path.is_file():
+        raise StoreError(f"store {path} has no {MANIFEST}: it is not an analogs store "
+                         "or it is incomplete")
+    try:
+        manifest = json.loads(manifest_path.read_text(encoding="utf-8"))
+    except (OSError, UnicodeDecodeError, json.JSONDecodeError) as error:
+        raise StoreError(f"{manifest_path} is not valid JSON ({error})") from None
+    if not isinstance(manifest, dict) or manifest.get("format") != "analogs-store":
+        raise StoreError(f"{manifest_path} is not an analogs store manifest")
+    version = manifest.get("format_version")
+    if version != FORMAT_VERSION:
+        raise StoreError(f"store {path} has format version {version!r}; this analogs "
+                         f"{__version__} reads version {FORMAT_VERSION}: rebuild the store")
+    if not isinstance(manifest.get("files"), dict):
+        raise StoreError(f"{manifest_path} lists no files")
+    return manifest
+
+
+def verify(path) -> dict:
+    """Check every file listed in the manifest against its sha256; return the manifest."""
+    path = Path(path)
+    manifest = read_manifest(path)
+    for name, entry in manifest["files"].items():
+        if Path(name).name != name:
+            raise StoreError(f"{path / MANIFEST} lists a file outside the store: {name!r}")
+        item = path / name
+        if not item.is_file():
+            raise StoreError(f"store {path} is missing {name}, listed in its manifest; "
+                             "rebuild the store")
+        if sha256_file(item) != entry.get("sha256"):
+            raise StoreError(f"store file {item} does not match its checksum in "
+                             f"{MANIFEST}: it was altered or damaged; rebuild the store")
+    return manifest
+
+
+def write_dataset(ds: xr.Dataset, path, *, group=None, mode="w") -> None:
+    """Write a Dataset as CF NetCDF: float64 time, no fill values on coordinates."""
+    encoding = {}
+    for name in ds.variables:
+        if name in ds.coords or name in ds.dims:
+            encoding[name] = {"_FillValue": None}
+    if "time" in ds.variables and np.issubdtype(ds["time"].dtype, np.datetime64):
+        encoding["time"] = dict(_TIME_ENCODING)
+    ds.to_netcdf(path, mode=mode, group=group, encoding=encoding, engine="netcdf4")
+
+
+def read_dataset(path, *, group=None) -> xr.Dataset:
+    """Read a NetCDF file of the store fully into memory and close it."""
+    try:
+        with xr.open_dataset(path, group=group, engine="netcdf4") as ds:
+            return ds.load()
+    except (OSError, ValueError, KeyError) as error:
+        where = f"{path}" + (f" (group {group})" if group else "")
+        raise StoreError(f"cannot read store file {where}: {error}") from None
+
+
+def write_table(frame: pd.DataFrame, path) -> None:
+    frame.to_parquet(path, index=False)
+
+
+def read_table(path) -> pd.DataFrame:
+    try:
+        return pd.read_parquet(path)
+    except (OSError, ValueError) as error:
+        raise StoreError(f"cannot read store table {path}: {error}") from None
