@@ -25,7 +25,7 @@ def calendar_distance_days(times, target_time):
     """
     times = pd.DatetimeIndex(times)
     target = pd.Timestamp(target_time)
-    difference = np.abs(times.dayofyear.to_numpy() - target.dayofyear).astype(float)
+    difference = np.abs(times.day_of_year.to_numpy() - target.day_of_year).astype(float)
     return np.minimum(difference, DAYS_PER_YEAR - difference)
 
 

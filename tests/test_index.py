@@ -1,0 +1,62 @@
+"""faiss index against exact neighbours from scikit-learn (an outside reference)."""
+
+import numpy as np
+import pytest
+from sklearn.neighbors import NearestNeighbors
+
+from analogs.errors import AnalogsInputError, NotFittedError
+from analogs.index import AnalogIndex
+
+
+@pytest.fixture(scope="module")
+def vectors():
+    rng = np.random.default_rng(42)
+    # A decaying spectrum, like PCs: leading components carry most of the spread.
+    return rng.normal(size=(3000, 12)) * np.linspace(30.0, 2.0, 12)
+
+
+def test_flat_matches_sklearn_brute_force(vectors):
+    """Exact search equals scikit-learn NearestNeighbors(algorithm='brute')."""
+    queries = vectors[:25] + 0.5
+    distances, ids = AnalogIndex(kind="flat").fit(vectors).search(queries, 10)
+    reference = NearestNeighbors(n_neighbors=10, algorithm="brute").fit(vectors)
+    ref_distances, ref_ids = reference.kneighbors(queries)
+    np.testing.assert_array_equal(ids, ref_ids)
+    np.testing.assert_allclose(distances, ref_distances, rtol=1e-4)
+
+
+def test_allowed_ids_restrict_the_search(vectors):
+    """With an ID selection, results equal brute force over the allowed subset only."""
+    allowed = np.arange(0, len(vectors), 7)
+    distances, ids = AnalogIndex().fit(vectors).search(vectors[3], 15, allowed=allowed)
+    reference = NearestNeighbors(n_neighbors=15, algorithm="brute").fit(vectors[allowed])
+    ref_distances, ref_ids = reference.kneighbors(vectors[3:4])
+    np.testing.assert_array_equal(ids[0], allowed[ref_ids[0]])
+    np.testing.assert_allclose(distances[0], ref_distances[0], rtol=1e-4)
+
+
+def test_fewer_allowed_than_k_pads_with_minus_one(vectors):
+    distances, ids = AnalogIndex().fit(vectors).search(vectors[0], 5, allowed=[10, 20])
+    assert sorted(ids[0][:2]) == [10, 20]
+    assert (ids[0][2:] == -1).all() and np.isinf(distances[0][2:]).all()
+
+
+def test_hnsw_recall_against_exact(vectors):
+    """Approximate search keeps recall@10 >= 0.95 against exact search."""
+    queries = vectors[::100] + 0.3
+    exact = AnalogIndex(kind="flat").fit(vectors).search(queries, 10)[1]
+    approx = AnalogIndex(kind="hnsw").fit(vectors).search(queries, 10)[1]
+    recall = np.mean([len(set(a) & set(e)) / 10 for a, e in zip(approx, exact)])
+    assert recall >= 0.95
+
+
+def test_auto_switches_on_size(vectors):
+    assert AnalogIndex(kind="auto", hnsw_threshold=100).fit(vectors).kind_ == "hnsw"
+    assert AnalogIndex(kind="auto").fit(vectors).kind_ == "flat"
+
+
+def test_unfitted_and_bad_params(vectors):
+    with pytest.raises(NotFittedError, match="not fitted"):
+        AnalogIndex().search(vectors[0], 3)
+    with pytest.raises(AnalogsInputError, match="'kind' parameter of AnalogIndex must be one of"):
+        AnalogIndex(kind="tree").fit(vectors)
