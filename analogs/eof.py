@@ -1,0 +1,651 @@
+"""Multivariate EOF analysis of weighted, balanced anomaly fields.
+
+Stages: preprocess (centre, area weights, per-field balancing, NaN mask, stacking)
+-> solve (exact or randomized SVD) -> results (EOFs, eigenvalues, PCs).
+
+The data matrix
+---------------
+For anomaly fields ``x_f(t, lat, lon)`` (one per field ``f``, same grid) the matrix
+``M (time, space)`` fitted here has elements
+
+.. math::
+
+    M_{t,j} = \\left(x_f(t, j) - \\bar{x}_f(j)\\right)
+              \\frac{\\sqrt{\\cos\\varphi_j}\\,\\sqrt{u_f}}{s_f},
+    \\qquad s_f^2 = \\frac{1}{N-1} \\sum_t \\sum_{j \\in f}
+              \\cos\\varphi_j \\left(x_f(t, j) - \\bar{x}_f(j)\\right)^2
+
+where ``phi`` is latitude, ``sqrt(cos phi)`` the area weight that makes the
+covariance matrix area weighted (Hannachi, Jolliffe & Stephenson 2007, Int. J.
+Climatol. 27, 1119-1152), ``s_f`` the square root of the total weighted variance of
+field ``f`` (so that every field has total variance ``u_f`` and height and
+moisture contribute comparably), ``u_f`` the user weight from ``field_weights``
+(default 1) and ``x̄_f`` the time mean of the training anomalies (zero up to
+rounding for anomalies from :class:`analogs.climatology.HarmonicClimatology`; it is
+removed so that eigenvalues are those of the covariance matrix). Grid points that
+are missing (NaN) at any training time are left out of ``M`` and come back as NaN
+in the patterns.
+
+With the economy SVD ``M = U S V^T``:
+
+* ``eofs_[f]`` (mode, lat, lon) are the rows of ``V^T`` (unit norm over all fields
+  together), reshaped onto the grid: patterns in the weighted, scaled space, like
+  ``eofs.standard.Eof.eofs(eofscaling=0)`` for one field;
+* ``eigenvalues_ = S^2 / (N - 1)`` (eigenvalues of the covariance of ``M``);
+* ``variance_fraction_`` = ``S_k^2 / ||M||_F^2``, the share of the total weighted,
+  scaled variance with all modes counted in the total (computed from the data, so
+  it is right for the randomized solver too);
+* ``north_errors_ = eigenvalues_ * sqrt(2 / N)`` (North, Bell, Cahalan & Moeng 1982,
+  Mon. Wea. Rev. 110, 699-706);
+* ``pcs_ = U S`` (time, mode): unnormalised, so the Euclidean distance between two
+  days' PC vectors is the distance between their anomalies in the weighted scaled
+  space, projected on the kept modes.
+
+Signs are fixed: in each mode the element of ``V^T`` with the largest absolute
+value (over all fields) is positive; the PC gets the same flip.
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import json
+import numbers
+
+import numpy as np
+import scipy.linalg
+import xarray as xr
+
+from . import __version__
+from ._validation import check_choice, check_float, check_int
+from .errors import AnalogsInputError, NotFittedError
+
+__all__ = ["MultivariateEOF", "area_weights"]
+
+#: "auto" uses the exact SVD when min(n_time, n_space) is at most this (common
+#: practice, no source: a full LAPACK SVD of a 2000-wide matrix takes seconds).
+AUTO_EXACT_MAX_DIM = 2000
+#: Modes kept when neither n_modes nor variance is given (capped by the rank).
+DEFAULT_N_MODES = 20
+
+_OWNER = "MultivariateEOF"
+_SOLVERS = ("auto", "exact", "randomized")
+_PARAMS = ("n_modes", "variance", "solver", "field_weights", "random_state",
+           "n_oversamples", "n_power_iter")
+
+
+def area_weights(lat) -> np.ndarray:
+    """Square-root-cosine-latitude area weights, dimensionless.
+
+    ``w = sqrt(cos(lat))`` with ``lat`` in degrees north, so that the weighted
+    covariance is weighted by ``cos(lat)`` (Hannachi, Jolliffe & Stephenson 2007).
+    Round-off below zero at the poles is clipped to 0.
+    """
+    return np.sqrt(np.clip(np.cos(np.deg2rad(np.asarray(lat, dtype=float))), 0.0, None))
+
+
+def _is_dask(array) -> bool:
+    return hasattr(array, "dask")
+
+
+def _describe_axis(values: np.ndarray) -> str:
+    return f"{values.size} points from {values.min():g} to {values.max():g}" if values.size else "0 points"
+
+
+class MultivariateEOF:
+    """Multivariate EOFs of one or more anomaly fields on one grid.
+
+    Parameters
+    ----------
+    n_modes : int, optional
+        Number of modes to keep (capped by the rank of the data matrix).
+    variance : float in (0, 1], optional
+        Keep the smallest number of modes whose cumulative ``variance_fraction_``
+        reaches this target. Give at most one of ``n_modes`` and ``variance``;
+        neither keeps 20 modes (capped by the rank).
+    solver : {"auto", "exact", "randomized"}
+        "exact": LAPACK economy SVD (the matrix is loaded into memory).
+        "randomized": Halko et al. (2011) randomized SVD, scikit-learn's
+        ``randomized_svd`` for in-memory data, ``dask.array.linalg.svd_compressed``
+        for dask-backed data (the matrix is never materialised). "auto": exact when
+        ``min(n_time, n_space) <= 2000``, randomized otherwise. The choice made is
+        in ``solver_``; a randomized request that would need nearly every mode uses
+        the exact SVD.
+    field_weights : dict of str to float, optional
+        User weight ``u_f > 0`` per field after balancing (default 1 for each).
+    random_state : int
+        Seed of the randomized solver.
+    n_oversamples, n_power_iter : int
+        Oversampling and power iterations of the randomized solver.
+
+    Attributes
+    ----------
+    fields_ : list of str
+    n_modes_ : int
+    solver_ : {"exact", "randomized"}
+    eofs_ : xarray.Dataset, one ``(mode, lat, lon)`` variable per field
+    eigenvalues_, variance_fraction_, north_errors_ : xarray.DataArray (mode)
+    pcs_ : xarray.DataArray (time, mode)
+    field_scales_ : xarray.DataArray (field), the divisor ``s_f`` in field units
+    weights_ : xarray.DataArray (lat), ``sqrt(cos lat)``
+    """
+
+    def __init__(self, n_modes=None, *, variance=None, solver="auto", field_weights=None,
+                 random_state=0, n_oversamples=20, n_power_iter=4):
+        self.n_modes = n_modes
+        self.variance = variance
+        self.solver = solver
+        self.field_weights = field_weights
+        self.random_state = random_state
+        self.n_oversamples = n_oversamples
+        self.n_power_iter = n_power_iter
+
+    def get_params(self) -> dict:
+        """Constructor parameters (a copy)."""
+        params = {name: getattr(self, name) for name in _PARAMS}
+        params["field_weights"] = (None if self.field_weights is None
+                                   else dict(self.field_weights))
+        return params
+
+    # -- validation ------------------------------------------------------------
+    def _validate_params(self) -> None:
+        if self.n_modes is not None and self.variance is not None:
+            raise AnalogsInputError(
+                "The 'n_modes' and 'variance' parameters of MultivariateEOF exclude each "
+                f"other: give one of them. Got n_modes={self.n_modes!r} and "
+                f"variance={self.variance!r} instead."
+            )
+        if self.n_modes is not None:
+            check_int(self.n_modes, "n_modes", _OWNER, min_value=1)
+        if self.variance is not None:
+            check_float(self.variance, "variance", _OWNER, min_value=0.0, max_value=1.0,
+                        min_inclusive=False)
+        check_choice(self.solver, "solver", _OWNER, _SOLVERS)
+        check_int(self.random_state, "random_state", _OWNER, min_value=0)
+        check_int(self.n_oversamples, "n_oversamples", _OWNER, min_value=0)
+        check_int(self.n_power_iter, "n_power_iter", _OWNER, min_value=0)
+        if self.field_weights is not None and not isinstance(self.field_weights, dict):
+            raise AnalogsInputError(
+                "The 'field_weights' parameter of MultivariateEOF must be a dict of "
+                f"field name to weight > 0. Got {self.field_weights!r} instead."
+            )
+        for name, weight in (self.field_weights or {}).items():
+            if (isinstance(weight, bool) or not isinstance(weight, numbers.Real)
+                    or not weight > 0 or not np.isfinite(weight)):
+                raise AnalogsInputError(
+                    "The 'field_weights' parameter of MultivariateEOF must map each field "
+                    f"to a number > 0. Got {name!r}: {weight!r} instead."
+                )
+
+    @staticmethod
+    def _fields_of(ds: xr.Dataset) -> list[str]:
+        if not isinstance(ds, xr.Dataset):
+            raise AnalogsInputError(
+                "MultivariateEOF expects an xarray.Dataset of anomaly fields with dims "
+                f"(time, lat, lon). Got {type(ds).__name__} instead."
+            )
+        fields = [str(n) for n, v in ds.data_vars.items() if {"lat", "lon"} <= set(v.dims)]
+        if not fields:
+            raise AnalogsInputError(
+                "The anomalies given to MultivariateEOF have no variable with dims "
+                f"(time, lat, lon) (variables: {list(ds.data_vars)})."
+            )
+        return fields
+
+    # -- preprocessing -----------------------------------------------------------
+    @staticmethod
+    def _flat(var: xr.DataArray):
+        """(time, lat*lon) raw array, numpy or dask (dask chunked along time only)."""
+        var = var.transpose("time", "lat", "lon")
+        data = var.data
+        n_time = data.shape[0]
+        if _is_dask(data):
+            data = data.rechunk({1: -1, 2: -1})
+        return data.reshape(n_time, -1)
+
+    def _scaled_blocks(self, ds: xr.Dataset):
+        """Per field, the (time, valid space) block of M, numpy or dask."""
+        blocks = []
+        for field in self.fields_:
+            raw = self._flat(ds[field])
+            valid = self._valid[field]
+            factor = self._point_factor[field]
+            blocks.append((raw[:, valid] - self._means[field][valid]) * factor[valid])
+        return blocks
+
+    def _matrix(self, ds: xr.Dataset):
+        blocks = self._scaled_blocks(ds)
+        if any(_is_dask(b) for b in blocks):
+            import dask.array as da
+
+            return da.concatenate([da.asarray(b) for b in blocks], axis=1).rechunk({1: -1})
+        return np.concatenate(blocks, axis=1)
+
+    def _preprocess(self, ds: xr.Dataset) -> None:
+        """Learn means, NaN masks, area weights and field scales (two data passes)."""
+        self.fields_ = self._fields_of(ds)
+        for field in self.fields_:
+            if "time" not in ds[field].dims:
+                raise AnalogsInputError(
+                    f"Field {field!r} given to MultivariateEOF.fit has no 'time' dimension; "
+                    "expected (time, lat, lon) anomalies."
+                )
+        unknown = sorted(set(self.field_weights or {}) - set(self.fields_))
+        if unknown:
+            raise AnalogsInputError(
+                f"The 'field_weights' parameter of MultivariateEOF names {unknown[0]!r}, "
+                f"which is not among the fields {self.fields_}."
+            )
+        self.lat_ = np.asarray(ds["lat"].values, dtype=float)
+        self.lon_ = np.asarray(ds["lon"].values, dtype=float)
+        self.time_ = ds["time"].values.copy()
+        self.n_time_ = int(ds.sizes["time"])
+        if self.n_time_ < 2:
+            raise AnalogsInputError(
+                f"MultivariateEOF.fit needs at least 2 times; got {self.n_time_}."
+            )
+        lat_weight = area_weights(self.lat_)
+        point_weight = np.repeat(lat_weight, self.lon_.size)
+        self._field_attrs = {f: dict(ds[f].attrs) for f in self.fields_}
+
+        means, nan_counts = {}, {}
+        for field in self.fields_:
+            raw = self._flat(ds[field])
+            means[field] = raw.mean(axis=0)
+            nan_counts[field] = np.isnan(raw).sum(axis=0)
+        means, nan_counts = _compute(means, nan_counts)
+        self._valid = {f: nan_counts[f] == 0 for f in self.fields_}
+        self._means = {f: np.where(self._valid[f], means[f], np.nan) for f in self.fields_}
+
+        sums = {}
+        for field in self.fields_:
+            if not self._valid[field].any():
+                raise AnalogsInputError(
+                    f"Field {field!r} given to MultivariateEOF.fit is missing (NaN) at every grid point."
+                )
+            raw = self._flat(ds[field])[:, self._valid[field]]
+            centred = (raw - self._means[field][self._valid[field]]) * point_weight[self._valid[field]]
+            sums[field] = (centred ** 2).sum()
+        (sums,) = _compute(sums)
+        user = {f: float((self.field_weights or {}).get(f, 1.0)) for f in self.fields_}
+        scales = {}
+        for field in self.fields_:
+            scale = float(np.sqrt(sums[field] / (self.n_time_ - 1)))
+            if not scale > 0:
+                raise AnalogsInputError(
+                    f"Field {field!r} given to MultivariateEOF.fit has zero weighted variance; "
+                    "it cannot be balanced against the other fields."
+                )
+            scales[field] = scale
+        self._scales = scales
+        self._user_weights = user
+        self._lat_weight = lat_weight
+        self._point_factor = {f: point_weight * np.sqrt(user[f]) / scales[f] for f in self.fields_}
+        # Frobenius norm^2 of M: each field contributes (N - 1) * u_f by construction.
+        self.total_variance_ = float(sum(user.values()))
+
+    # -- solving ---------------------------------------------------------------
+    def fit(self, anomalies: xr.Dataset) -> "MultivariateEOF":
+        """Fit the EOFs of ``anomalies`` (Dataset of fields with dims (time, lat, lon))."""
+        self._validate_params()
+        self._preprocess(anomalies)
+        matrix = self._matrix(anomalies)
+        n_time, n_space = matrix.shape
+        rank = min(n_time, n_space)
+        wanted = (self.n_modes if self.n_modes is not None
+                  else None if self.variance is not None else DEFAULT_N_MODES)
+        solver = self.solver
+        if solver == "auto":
+            solver = "exact" if rank <= AUTO_EXACT_MAX_DIM else "randomized"
+        total_ss = self.total_variance_ * (n_time - 1)
+
+        if solver == "randomized":
+            k = min(wanted if wanted is not None else DEFAULT_N_MODES, rank)
+            while True:
+                if k + self.n_oversamples >= rank:
+                    solver = "exact"
+                    break
+                u, s, vt = self._randomized_svd(matrix, k)
+                fractions = s ** 2 / total_ss
+                if wanted is not None or np.cumsum(fractions)[-1] >= self.variance:
+                    break
+                k = min(2 * k, rank)
+        if solver == "exact":
+            dense = np.asarray(matrix.compute() if _is_dask(matrix) else matrix)
+            try:
+                u, s, vt = scipy.linalg.svd(dense, full_matrices=False)
+            except np.linalg.LinAlgError:
+                u, s, vt = scipy.linalg.svd(dense, full_matrices=False, lapack_driver="gesvd")
+            fractions = s ** 2 / total_ss
+        if wanted is None:
+            # tolerance: a target of exactly 1.0 is met by all modes despite round-off
+            reached = np.cumsum(fractions) >= self.variance - 1e-12
+            k = int(np.argmax(reached)) + 1 if reached.any() else s.size
+        else:
+            k = min(wanted, s.size)
+        u, s, vt = u[:, :k], s[:k], vt[:k]
+        # Deterministic signs: largest-|loading| element of each pattern positive.
+        flip = np.sign(vt[np.arange(k), np.argmax(np.abs(vt), axis=1)])
+        flip[flip == 0] = 1.0
+        self._components = vt * flip[:, None]
+        self._singular_values = s.copy()
+        self._pcs = u * (s * flip)[None, :]
+        self.n_modes_ = int(k)
+        self.solver_ = solver
+        return self
+
+    def _randomized_svd(self, matrix, k: int):
+        if _is_dask(matrix):
+            import dask
+            import dask.array as da
+
+            parts = da.linalg.svd_compressed(
+                matrix, k, iterator="QR" if self.n_power_iter else "power",
+                n_power_iter=self.n_power_iter, n_oversamples=self.n_oversamples,
+                seed=self.random_state, coerce_signs=False)
+            u, s, vt = dask.compute(*parts)
+            return np.asarray(u), np.asarray(s), np.asarray(vt)
+        from sklearn.utils.extmath import randomized_svd
+
+        return randomized_svd(matrix, k, n_oversamples=self.n_oversamples,
+                              n_iter=self.n_power_iter, random_state=self.random_state,
+                              flip_sign=False)
+
+    def _check_fitted(self) -> None:
+        if not hasattr(self, "_components"):
+            raise NotFittedError("This MultivariateEOF is not fitted yet; call fit(anomalies) first.")
+
+    # -- learned results (copies) ---------------------------------------------------
+    def _mode_coord(self, n: int | None = None) -> np.ndarray:
+        return np.arange(1, (self.n_modes_ if n is None else n) + 1)
+
+    def _spatial(self, field: str, values: np.ndarray) -> np.ndarray:
+        """(m, valid points) -> (m, lat, lon) with NaN where the field is missing."""
+        full = np.full((values.shape[0], self.lat_.size * self.lon_.size), np.nan)
+        full[:, self._valid[field]] = values
+        return full.reshape(values.shape[0], self.lat_.size, self.lon_.size)
+
+    def _split(self, matrix: np.ndarray) -> dict:
+        out, start = {}, 0
+        for field in self.fields_:
+            stop = start + int(self._valid[field].sum())
+            out[field] = matrix[..., start:stop]
+            start = stop
+        return out
+
+    @property
+    def eofs_(self) -> xr.Dataset:
+        self._check_fitted()
+        coords = {"mode": self._mode_coord(), "lat": self.lat_.copy(), "lon": self.lon_.copy()}
+        data = {}
+        for field, block in self._split(self._components).items():
+            data[field] = xr.DataArray(
+                self._spatial(field, block), dims=("mode", "lat", "lon"), coords=coords,
+                attrs={"units": "1", "long_name": f"EOF pattern of {field} (weighted, scaled space)"})
+        return xr.Dataset(data)
+
+    @property
+    def eigenvalues_(self) -> xr.DataArray:
+        self._check_fitted()
+        return xr.DataArray(self._singular_values ** 2 / (self.n_time_ - 1), dims="mode",
+                            coords={"mode": self._mode_coord()},
+                            attrs={"units": "1", "long_name": "eigenvalue of the weighted scaled covariance"})
+
+    @property
+    def variance_fraction_(self) -> xr.DataArray:
+        self._check_fitted()
+        fraction = self._singular_values ** 2 / (self.total_variance_ * (self.n_time_ - 1))
+        return xr.DataArray(fraction, dims="mode", coords={"mode": self._mode_coord()},
+                            attrs={"units": "1", "long_name": "fraction of total weighted variance"})
+
+    @property
+    def north_errors_(self) -> xr.DataArray:
+        self._check_fitted()
+        errors = self.eigenvalues_ * np.sqrt(2.0 / self.n_time_)
+        errors.attrs = {"units": "1", "long_name": "North et al. (1982) eigenvalue sampling error"}
+        return errors
+
+    @property
+    def pcs_(self) -> xr.DataArray:
+        self._check_fitted()
+        if getattr(self, "_pcs", None) is None:
+            raise NotFittedError(
+                "This MultivariateEOF was loaded from a dataset without the training PCs; "
+                "use transform(anomalies) to compute them."
+            )
+        return self._pcs_array(self._pcs.copy(), self.time_.copy())
+
+    def _pcs_array(self, values, time) -> xr.DataArray:
+        return xr.DataArray(values, dims=("time", "mode"),
+                            coords={"time": time, "mode": self._mode_coord()},
+                            attrs={"units": "1", "long_name": "principal component (unnormalised)"})
+
+    @property
+    def field_scales_(self) -> xr.DataArray:
+        self._check_fitted()
+        return xr.DataArray([self._scales[f] for f in self.fields_], dims="field",
+                            coords={"field": list(self.fields_)},
+                            attrs={"long_name": "sqrt of total weighted variance per field "
+                                                "(in each field's own units)"})
+
+    @property
+    def weights_(self) -> xr.DataArray:
+        self._check_fitted()
+        return xr.DataArray(self._lat_weight.copy(), dims="lat", coords={"lat": self.lat_.copy()},
+                            attrs={"units": "1", "long_name": "area weight sqrt(cos(lat))"})
+
+    # -- using the fit -----------------------------------------------------------
+    def _checked(self, anomalies: xr.Dataset, owner: str) -> tuple[xr.Dataset, bool]:
+        """Check fields and grid; give a single time a length-1 time dim."""
+        self._check_fitted()
+        if not isinstance(anomalies, xr.Dataset):
+            raise AnalogsInputError(
+                f"MultivariateEOF.{owner} expects an xarray.Dataset of anomaly fields. "
+                f"Got {type(anomalies).__name__} instead."
+            )
+        for field in self.fields_:
+            if field not in anomalies.data_vars:
+                raise AnalogsInputError(
+                    f"Field {field!r} is missing from the anomalies given to "
+                    f"MultivariateEOF.{owner}; the EOFs were fitted on {self.fields_}."
+                )
+            var = anomalies[field]
+            for dim, expected in (("lat", self.lat_), ("lon", self.lon_)):
+                got = np.asarray(var[dim].values, dtype=float) if dim in var.dims else np.array([])
+                if got.shape != expected.shape or not np.allclose(got, expected, atol=1e-6):
+                    raise AnalogsInputError(
+                        f"The {dim} grid of field {field!r} ({_describe_axis(got)}) does not match "
+                        f"the EOF grid ({_describe_axis(expected)}); regrid it to the store grid first."
+                    )
+        squeeze = "time" not in anomalies[self.fields_[0]].dims
+        if squeeze:
+            anomalies = anomalies[self.fields_].expand_dims("time")
+            if "time" not in anomalies.coords:
+                anomalies = anomalies.assign_coords(time=[np.datetime64("NaT", "ns")])
+        return anomalies, squeeze
+
+    def _check_coverage(self, matrix) -> None:
+        if _is_dask(matrix):
+            return
+        for field, block in self._split(matrix).items():
+            missing = int(np.isnan(block).sum())
+            if missing:
+                raise AnalogsInputError(
+                    f"Field {field!r} has {missing} missing values at grid points the EOFs use; "
+                    "the field must cover the whole domain of the store."
+                )
+
+    def transform(self, anomalies: xr.Dataset) -> xr.DataArray:
+        """Project anomalies on the EOFs: PCs ``(time, mode)`` (``(mode,)`` for one time).
+
+        The fields must be on the fitted grid (regrid first). Dask inputs give a
+        lazy result.
+        """
+        anomalies, squeeze = self._checked(anomalies, "transform")
+        matrix = self._matrix(anomalies)
+        self._check_coverage(matrix)
+        pcs = self._pcs_array(matrix @ self._components.T, anomalies["time"].values)
+        return pcs.isel(time=0, drop=True) if squeeze else pcs
+
+    def fit_transform(self, anomalies: xr.Dataset) -> xr.DataArray:
+        """``fit(anomalies)`` and the training PCs ``pcs_``."""
+        return self.fit(anomalies).pcs_
+
+    def reconstruct(self, pcs: xr.DataArray) -> xr.Dataset:
+        """Anomaly fields from PCs ``(time, mode)`` or ``(mode,)``, in field units.
+
+        Undoes the scaling, weights and centring. Grid points left out of the fit and
+        points of zero area weight (the poles) come back as NaN. Modes are matched
+        by the ``mode`` coordinate when present.
+        """
+        self._check_fitted()
+        pcs = xr.DataArray(pcs) if not isinstance(pcs, xr.DataArray) else pcs
+        if "mode" not in pcs.dims:
+            raise AnalogsInputError(
+                "MultivariateEOF.reconstruct expects PCs with a 'mode' dimension; "
+                f"got dims {pcs.dims}."
+            )
+        squeeze = pcs.ndim == 1
+        if squeeze:
+            pcs = pcs.expand_dims("time")
+        pcs = pcs.transpose("time", "mode")
+        modes = pcs["mode"].values if "mode" in pcs.coords else self._mode_coord(pcs.sizes["mode"])
+        if modes.min() < 1 or modes.max() > self.n_modes_:
+            raise AnalogsInputError(
+                f"MultivariateEOF.reconstruct got modes {modes.min()}..{modes.max()}; the fit "
+                f"kept modes 1..{self.n_modes_}."
+            )
+        scaled = np.asarray(pcs.values) @ self._components[np.asarray(modes) - 1]
+        time = pcs["time"].values if "time" in pcs.coords else np.arange(pcs.sizes["time"])
+        out = {}
+        for field, block in self._split(scaled).items():
+            factor = self._point_factor[field][self._valid[field]]
+            with np.errstate(divide="ignore", invalid="ignore"):
+                values = np.where(factor > 0, block / factor, np.nan)
+            values = values + self._means[field][self._valid[field]]
+            attrs = dict(self._field_attrs.get(field, {}))
+            out[field] = xr.DataArray(self._spatial(field, values), dims=("time", "lat", "lon"),
+                                      coords={"time": time, "lat": self.lat_, "lon": self.lon_},
+                                      attrs=attrs)
+        result = xr.Dataset(out)
+        return result.isel(time=0, drop=True) if squeeze else result
+
+    def reconstruction_error(self, anomalies: xr.Dataset) -> xr.DataArray:
+        """Weighted RMS of the part of ``anomalies`` the kept modes miss, per time.
+
+        With ``r = m - m V V^T`` the residual of the scaled row ``m`` of each time,
+
+        .. math:: e = \\sqrt{\\sum_j r_j^2 \\,/\\, \\sum_j w_j^2 u_{f(j)}}
+
+        i.e. the area-weighted RMS of the residual with each field in units of its
+        scale ``s_f`` (dimensionless). Useful to spot fields unlike the archive.
+        """
+        anomalies, squeeze = self._checked(anomalies, "reconstruction_error")
+        matrix = self._matrix(anomalies)
+        self._check_coverage(matrix)
+        residual = matrix - (matrix @ self._components.T) @ self._components
+        norm = sum(float(np.sum((self._lat_weight.repeat(self.lon_.size)[self._valid[f]] ** 2)
+                                * self._user_weights[f])) for f in self.fields_)
+        error = xr.DataArray(np.sqrt((residual ** 2).sum(axis=1) / norm), dims="time",
+                             coords={"time": anomalies["time"].values},
+                             attrs={"units": "1", "long_name": "weighted RMS reconstruction error "
+                                                               "(in units of the field scales)"})
+        return error.isel(time=0, drop=True) if squeeze else error
+
+    # -- persistence -----------------------------------------------------------
+    def to_dataset(self) -> xr.Dataset:
+        """Parameters (attrs) and learned arrays as a NetCDF-ready Dataset.
+
+        Variables: ``eof_<field> (mode, lat, lon)``, ``mean_<field> (lat, lon)``,
+        ``eigenvalues``, ``variance_fraction``, ``north_errors`` (mode),
+        ``field_scales``, ``field_weights`` (field), ``weights`` (lat). Attrs:
+        ``params`` (JSON of the constructor parameters), ``n_modes_fitted``,
+        ``solver_used``, ``n_time``, ``analogs_version``, ``created``. The training PCs
+        are not included (the store keeps them in scores.nc).
+        """
+        self._check_fitted()
+        eofs = self.eofs_
+        data = {f"eof_{f}": eofs[f] for f in self.fields_}
+        for field in self.fields_:
+            mean = self._means[field].reshape(self.lat_.size, self.lon_.size)
+            data[f"mean_{field}"] = xr.DataArray(
+                mean, dims=("lat", "lon"),
+                attrs={**{k: v for k, v in self._field_attrs[field].items()
+                          if k in ("units", "long_name")}})
+            data[f"eof_{field}"].attrs.update(
+                {f"field_{k}": str(v) for k, v in self._field_attrs[field].items()
+                 if k in ("units", "long_name", "standard_name")})
+        data["eigenvalues"] = self.eigenvalues_
+        data["variance_fraction"] = self.variance_fraction_
+        data["north_errors"] = self.north_errors_
+        data["field_scales"] = self.field_scales_
+        data["field_weights"] = xr.DataArray([self._user_weights[f] for f in self.fields_],
+                                             dims="field", coords={"field": list(self.fields_)},
+                                             attrs={"units": "1", "long_name": "user field weight"})
+        data["weights"] = self.weights_
+        ds = xr.Dataset(data, coords={"lat": self.lat_, "lon": self.lon_})
+        ds["lat"].attrs = {"units": "degrees_north", "standard_name": "latitude"}
+        ds["lon"].attrs = {"units": "degrees_east", "standard_name": "longitude"}
+        ds.attrs = {
+            "params": json.dumps(self.get_params(), sort_keys=True),
+            "n_modes_fitted": int(self.n_modes_),
+            "solver_used": self.solver_,
+            "n_time": int(self.n_time_),
+            "analogs_version": __version__,
+            "created": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
+        }
+        return ds
+
+    @classmethod
+    def from_dataset(cls, ds: xr.Dataset) -> "MultivariateEOF":
+        """Rebuild a fitted model (without training PCs) from :meth:`to_dataset` output."""
+        try:
+            params = json.loads(ds.attrs["params"])
+            model = cls(**params)
+            fields = [str(f) for f in ds["field"].values]
+            model.n_modes_ = int(ds.attrs["n_modes_fitted"])
+            model.solver_ = str(ds.attrs["solver_used"])
+            model.n_time_ = int(ds.attrs["n_time"])
+            eofs = {f: ds[f"eof_{f}"].transpose("mode", "lat", "lon").values for f in fields}
+            means = {f: ds[f"mean_{f}"].transpose("lat", "lon").values.ravel() for f in fields}
+            scales = ds["field_scales"].values
+            user = ds["field_weights"].values
+            eigenvalues = ds["eigenvalues"].values
+        except (KeyError, TypeError, ValueError) as exc:
+            raise AnalogsInputError(
+                f"The EOF dataset is incomplete or malformed ({exc}); expected the output of "
+                "MultivariateEOF.to_dataset()."
+            ) from None
+        model.fields_ = fields
+        model.lat_ = np.asarray(ds["lat"].values, dtype=float)
+        model.lon_ = np.asarray(ds["lon"].values, dtype=float)
+        model.time_ = None
+        model._pcs = None
+        model._field_attrs = {
+            f: {k[len("field_"):]: v for k, v in ds[f"eof_{f}"].attrs.items() if k.startswith("field_")}
+            for f in fields}
+        model._lat_weight = area_weights(model.lat_)
+        point_weight = np.repeat(model._lat_weight, model.lon_.size)
+        model._scales = {f: float(s) for f, s in zip(fields, scales)}
+        model._user_weights = {f: float(u) for f, u in zip(fields, user)}
+        model._valid = {f: np.isfinite(means[f]) for f in fields}
+        model._means = means
+        model._point_factor = {f: point_weight * np.sqrt(model._user_weights[f]) / model._scales[f]
+                               for f in fields}
+        model.total_variance_ = float(sum(model._user_weights.values()))
+        model._components = np.concatenate(
+            [eofs[f].reshape(model.n_modes_, -1)[:, model._valid[f]] for f in fields], axis=1)
+        model._singular_values = np.sqrt(eigenvalues * (model.n_time_ - 1))
+        return model
+
+
+def _compute(*dicts):
+    """Compute the dask values of several dicts in one pass; numpy passes through."""
+    lazy = [(i, k) for i, d in enumerate(dicts) for k, v in d.items() if _is_dask(v)]
+    if lazy:
+        import dask
+
+        values = dask.compute(*[dicts[i][k] for i, k in lazy])
+        dicts = [dict(d) for d in dicts]
+        for (i, k), v in zip(lazy, values):
+            dicts[i][k] = v
+    return [{k: np.asarray(v) for k, v in d.items()} for d in dicts]
