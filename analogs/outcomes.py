@@ -471,8 +471,8 @@ def binomial_interval(successes, trials, confidence=0.9, method="clopper-pearson
         ``"jeffreys"`` (Brown et al. 2001): quantiles of
         Beta(k + 1/2, n - k + 1/2); ``"wilson"`` score interval (Wilson 1927),
         :math:`\\frac{\\hat p + z^2/2n \\pm z\\sqrt{\\hat p(1-\\hat p)/n + z^2/4n^2}}{1+z^2/n}`.
-        The lower bound is 0 when k = 0 and the upper bound 1 when k = n
-        (Clopper-Pearson and Jeffreys).
+        For every method the lower bound is 0 when k = 0 and the upper
+        bound 1 when k = n (Brown et al. 2001 for Jeffreys).
 
     Returns
     -------
@@ -497,18 +497,18 @@ def binomial_interval(successes, trials, confidence=0.9, method="clopper-pearson
         p = k / n
         centre = (p + z * z / (2 * n)) / (1 + z * z / n)
         half = z * np.sqrt(p * (1 - p) / n + z * z / (4 * n * n)) / (1 + z * z / n)
-        low, high = np.clip(centre - half, 0.0, 1.0), np.clip(centre + half, 0.0, 1.0)
+        low, high = centre - half, centre + half
     else:
-        shift = 0.5 if method == "jeffreys" else 0.0
         with np.errstate(invalid="ignore", divide="ignore"):
             if method == "jeffreys":
-                low = stats.beta.ppf(alpha / 2, k + shift, n - k + shift)
-                high = stats.beta.ppf(1 - alpha / 2, k + shift, n - k + shift)
+                low = stats.beta.ppf(alpha / 2, k + 0.5, n - k + 0.5)
+                high = stats.beta.ppf(1 - alpha / 2, k + 0.5, n - k + 0.5)
             else:
                 low = stats.beta.ppf(alpha / 2, k, n - k + 1)
                 high = stats.beta.ppf(1 - alpha / 2, k + 1, n - k)
-        low = np.where(k <= 0, 0.0, low)
-        high = np.where(k >= n, 1.0, high)
+    # The exact limits at k = 0 and k = n, free of rounding in the formulas above.
+    low = np.where(k <= 0, 0.0, np.clip(low, 0.0, 1.0))
+    high = np.where(k >= n, 1.0, np.clip(high, 0.0, 1.0))
     if np.ndim(low) == 0:
         return float(low), float(high)
     return low, high
