@@ -25,6 +25,7 @@ and to the plain time mean otherwise; ``method_`` records which was used.
 
 from __future__ import annotations
 
+import dask
 import numpy as np
 import pandas as pd
 import xarray as xr
@@ -180,7 +181,8 @@ class HarmonicClimatology:
             design * design.rename(harmonic_term="harmonic_term_2"), valid, dim="time"
         )
         rhs = xr.dot(design, var.fillna(0.0), dim="time")
-        normal_matrix, rhs = xr.align(*(a.compute() for a in (normal_matrix, rhs)))
+        # one pass over the data for both sums
+        normal_matrix, rhs = dask.compute(normal_matrix, rhs)
         spatial_dims = [d for d in var.dims if d != "time"]
         lhs = normal_matrix.transpose(*spatial_dims, "harmonic_term", "harmonic_term_2").values
         right = rhs.transpose(*spatial_dims, "harmonic_term").values
