@@ -65,9 +65,23 @@ def _grid_box(ds) -> tuple[float, float, float, float]:
     return float(lat.min()), float(lat.max()), float(lon.min()), float(lon.max())
 
 
+#: Half-sizes (degrees of latitude, longitude) of the synoptic-scale box over which the
+#: regime of a point region is diagnosed: a regime is a pattern, not a point value.
+SYNOPTIC_HALF_BOX = (7.5, 10.0)
+
+
 def _diagnostic_region(region: Region, ds) -> tuple[float, float, float, float]:
-    """The box over which regime diagnostics are computed for an outcome region."""
-    return region.bounding_box() if region.kind != "whole" else _grid_box(ds)
+    """The box, clipped to the grid, over which regime diagnostics are computed."""
+    south, north, west, east = _grid_box(ds)
+    if region.kind == "box":
+        box = (region.south, region.north, region.west, region.east)
+    elif region.kind == "point":
+        half_lat, half_lon = SYNOPTIC_HALF_BOX
+        box = (region.lat - half_lat, region.lat + half_lat,
+               region.lon - half_lon, region.lon + half_lon)
+    else:
+        return south, north, west, east
+    return (max(box[0], south), min(box[1], north), max(box[2], west), min(box[3], east))
 
 
 def build_store(paths, store, *, events=None, fields=None, n_modes=None, variance=None,

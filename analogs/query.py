@@ -24,8 +24,12 @@ def calendar_distance_days(times, target_time):
     their years. Leap days count as the day they fall on (day of year 60).
     """
     times = pd.DatetimeIndex(times)
-    target = pd.Timestamp(target_time)
-    difference = np.abs(times.day_of_year.to_numpy() - target.day_of_year).astype(float)
+    return circular_day_gap(times.day_of_year.to_numpy(), pd.Timestamp(target_time).day_of_year)
+
+
+def circular_day_gap(day_of_year, target_day_of_year):
+    """Circular distance in days between days of the year (arrays broadcast)."""
+    difference = np.abs(np.asarray(day_of_year) - np.asarray(target_day_of_year)).astype(float)
     return np.minimum(difference, DAYS_PER_YEAR - difference)
 
 
@@ -41,6 +45,11 @@ def exclusion_mask(times, target_time, exclude_days):
     return np.abs((times - target) / pd.Timedelta(days=1)) <= exclude_days
 
 
+def day_numbers(times) -> np.ndarray:
+    """Whole days since 1970-01-01 of each time (the calendar day it falls on)."""
+    return pd.DatetimeIndex(times).normalize().to_numpy().astype("datetime64[D]").astype(np.int64)
+
+
 def decluster(times, separation_days, limit=None):
     """Indices of ``times`` (ordered best first) kept after de-clustering.
 
@@ -48,14 +57,18 @@ def decluster(times, separation_days, limit=None):
     dropped: it belongs to the same episode as a better analog. ``separation_days=0``
     keeps everything. Stops once ``limit`` days are kept.
     """
-    days = pd.DatetimeIndex(times).normalize().to_numpy().astype("datetime64[D]").astype(np.int64)
+    return decluster_days(day_numbers(times), separation_days, limit)
+
+
+def decluster_days(days, separation_days, limit=None):
+    """:func:`decluster` on integer day numbers (see :func:`day_numbers`)."""
     kept: list[int] = []
     kept_days: list[int] = []
-    for position, day in enumerate(days):
-        if separation_days > 0 and kept_days and np.min(np.abs(np.asarray(kept_days) - day)) <= separation_days:
+    for position, day in enumerate(np.asarray(days).tolist()):
+        if separation_days > 0 and any(abs(k - day) <= separation_days for k in kept_days):
             continue
         kept.append(position)
-        kept_days.append(int(day))
+        kept_days.append(day)
         if limit is not None and len(kept) >= limit:
             break
     return np.asarray(kept, dtype=np.int64)
@@ -117,15 +130,38 @@ def find_analogs(index: AnalogIndex, times, target_vector, *, target_time=None, 
     separation = check_int(separation, "separation", owner, min_value=0)
     times = pd.DatetimeIndex(times)
     allowed = candidate_ids(times, target_time, window=window, exclude=exclude, restrict=restrict)
-    # Each kept analog can shadow at most 2 * separation others, so this many
-    # neighbours always hold `top` de-clustered ones when enough days are allowed.
-    fetch = min(len(allowed), top * (2 * separation + 1))
+    return rank_candidates(index, times, target_vector, allowed, top=top, separation=separation)
+
+
+def _empty_ranking() -> pd.DataFrame:
+    return pd.DataFrame({"rank": np.array([], dtype=int), "time": pd.DatetimeIndex([]),
+                         "distance": np.array([], dtype=float), "row": np.array([], dtype=int)})
+
+
+def fetch_size(top, separation, n_allowed, extra=0):
+    """Neighbours to fetch so that ``top`` survive de-clustering.
+
+    Each kept analog can shadow at most ``2 * separation`` others, so ``top * (2 *
+    separation + 1)`` neighbours always hold ``top`` de-clustered ones when enough days
+    are allowed; ``extra`` adds room for rows the caller removes afterwards.
+    """
+    return min(n_allowed, top * (2 * separation + 1) + extra)
+
+
+def rank_candidates(index: AnalogIndex, times, target_vector, allowed, *, top, separation):
+    """Rank the ``allowed`` rows by distance to the target, de-cluster, keep ``top``."""
+    times = pd.DatetimeIndex(times)
+    fetch = fetch_size(top, separation, len(allowed))
     if fetch == 0:
-        return pd.DataFrame({"rank": np.array([], dtype=int), "time": pd.DatetimeIndex([]),
-                             "distance": np.array([], dtype=float), "row": np.array([], dtype=int)})
+        return _empty_ranking()
     distances, ids = index.search(target_vector, fetch, allowed=allowed)
-    found = ids[0] >= 0
-    distances, ids = distances[0][found], ids[0][found]
+    return ranking_from_neighbours(times, distances[0], ids[0], top=top, separation=separation)
+
+
+def ranking_from_neighbours(times, distances, ids, *, top, separation):
+    """Turn one query's neighbour list (best first, ``-1`` padded) into the ranking."""
+    found = ids >= 0
+    distances, ids = distances[found], ids[found]
     keep = decluster(times[ids], separation, limit=top)
     rows = ids[keep]
     return pd.DataFrame({
