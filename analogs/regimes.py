@@ -428,7 +428,8 @@ def persistence_filter(labels, min_persistence: int, times=None) -> np.ndarray:
             else:
                 merged.append([segment[s], s, e])
         if len(merged) > 1 and merged[0][2] - merged[0][1] < min_persistence:
-            merged[1][1] = merged.pop(0)[1]
+            first = merged.pop(0)
+            merged[0][1] = first[1]
         for label, s, e in merged:
             segment[s:e] = label
     return labels

@@ -1,0 +1,216 @@
+"""Tests of analogs.regimes: rules on hand-built fields, configuration, learned paths.
+
+The four hand-built single fields are textbook sketches of each regime (common
+practice, no source); the learned models are checked against scikit-learn.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import pytest
+import xarray as xr
+from sklearn.cluster import KMeans
+from sklearn.linear_model import LogisticRegression
+
+from analogs.errors import AnalogsInputError, NotFittedError
+from analogs.regimes import (
+    KMeansRegimes,
+    RegimeRules,
+    RuleClassifier,
+    SupervisedRegimes,
+    persistence_filter,
+    tag_days,
+)
+
+from _regime_helpers import (
+    REGION,
+    as_dataset,
+    humidity,
+    northwest_flow_case,
+    strong_trough_case,
+    tropical_case,
+    vortex,
+    zonal_case,
+    zonal_height,
+)
+
+
+@pytest.mark.parametrize("case, expected", [
+    (northwest_flow_case, "northwest_flow"),  # western ridge, eastern trough
+    (tropical_case, "tropical"),              # compact closed low ~27 N, very moist
+    (strong_trough_case, "strong_trough"),    # deep amplified trough over the region
+    (zonal_case, "other"),                    # flat zonal flow
+])
+def test_hand_built_fields_get_their_regime(case, expected):
+    # Common practice, no source: the textbook pattern of each regime.
+    tags = tag_days(case(), REGION)
+    row = tags.iloc[0]
+    assert row["regime"] == expected, row["reason"]
+    assert 0.5 <= row["confidence"] <= 1.0
+    assert list(tags.columns[:3]) == ["date", "regime", "confidence"]
+    assert tags.columns[-1] == "reason"
+
+
+def test_reason_quotes_the_deciding_values():
+    row = tag_days(northwest_flow_case(), REGION).iloc[0]
+    assert f"flow {row['flow_direction_deg']:.0f} deg at {row['flow_speed_ms']:.0f} m/s" \
+        in row["reason"]
+    assert f"ridge {row['ridge_amplitude']:.0f} gpm upstream" in row["reason"]
+    assert f"Td {row['dewpoint_region_c']:.1f} C" in row["reason"]
+
+
+def test_height_only_tropical_needs_moisture_or_a_very_deep_low():
+    # The tropical case without humidity: its 57 gpm low is below the 60 gpm needed
+    # without moisture, so it is not claimed tropical, and the reason says why.
+    ds = tropical_case()[["z500"]]
+    row = tag_days(ds, REGION).iloc[0]
+    assert row["regime"] != "tropical"
+    assert "tropical needs moisture" in row["reason"]
+    deep = as_dataset(zonal_height(3.0) + vortex(27.0, -93.0, 110.0, 250.0))
+    row = tag_days(deep, REGION).iloc[0]
+    assert row["regime"] == "tropical"
+    assert "moisture missing" in row["reason"]
+    # The same deep low in dry air is not tropical (moisture decides when known).
+    dry = as_dataset(zonal_height(3.0) + vortex(27.0, -93.0, 110.0, 250.0), humidity() * 0.3)
+    assert tag_days(dry, REGION).iloc[0]["regime"] != "tropical"
+
+
+def test_precedence_and_confidence_bounds():
+    diagnostics = pd.concat([
+        tag_days(case(), REGION).drop(columns=["regime", "confidence", "reason"])
+        for case in (northwest_flow_case, tropical_case, strong_trough_case, zonal_case)])
+    diagnostics.attrs["region"] = REGION
+    labels = RuleClassifier().predict(diagnostics.set_index("date"))
+    assert labels["confidence"].between(0.0, 1.0).all()
+    assert labels["regime"].tolist() == ["northwest_flow", "tropical", "strong_trough", "other"]
+    # Loosen the trough and north-west rules so that several regimes hold at once:
+    # precedence tropical > strong_trough > northwest_flow decides (the zonal day,
+    # with no trough at all, stays "other").
+    loose = RegimeRules.load(trough_min_amplitude_gpm=1.0, trough_min_height_gradient=1.0,
+                             trough_min_vorticity_advection=-1.0, nw_min_direction_deg=0.0,
+                             nw_max_direction_deg=360.0, nw_min_speed_ms=0.1,
+                             nw_min_ridge_gpm=-500.0)
+    loose_labels = RuleClassifier(loose).predict(diagnostics.set_index("date"))
+    assert loose_labels["regime"].tolist() == ["strong_trough", "tropical", "strong_trough",
+                                               "other"]
+
+
+def test_rules_from_toml_and_overrides(tmp_path):
+    path = tmp_path / "rules.toml"
+    path.write_text("[regimes]\nnw_min_speed_ms = 12.5\ntropical_max_lat = 30.0\n")
+    rules = RegimeRules.load(path, tropical_max_lat=32.0)
+    assert rules.nw_min_speed_ms == 12.5
+    assert rules.tropical_max_lat == 32.0          # keyword overrides the file
+    assert rules.trough_min_amplitude_gpm == RegimeRules().trough_min_amplitude_gpm
+    assert "units" in RegimeRules.describe().columns
+    # Raising the speed threshold above the case's 11 m/s turns north-west flow off.
+    row = tag_days(northwest_flow_case(), REGION, rules=rules).iloc[0]
+    assert row["regime"] != "northwest_flow"
+
+
+def test_rules_bad_input(tmp_path):
+    path = tmp_path / "rules.toml"
+    path.write_text("nw_min_sped_ms = 12.5\n")
+    with pytest.raises(AnalogsInputError, match=r"rules.toml: unknown key\(s\) nw_min_sped_ms"):
+        RegimeRules.load(path)
+    with pytest.raises(AnalogsInputError, match=r"unknown regime rule\(s\) bogus"):
+        RegimeRules.load(bogus=1.0)
+    with pytest.raises(AnalogsInputError, match="'nw_min_speed_ms' regime rule must be"):
+        RegimeRules.load(nw_min_speed_ms="fast")
+    path.write_text("nw_min_speed_ms = \n")
+    with pytest.raises(AnalogsInputError, match="is not valid TOML"):
+        RegimeRules.load(path)
+
+
+def test_region_outside_grid_raises():
+    with pytest.raises(AnalogsInputError, match="lies outside the grid"):
+        tag_days(zonal_case(), (-60.0, -50.0, 100.0, 120.0))
+
+
+# ------------------------------------------------------------------- learned paths
+
+
+def _pcs(n_days=400, n_modes=5, seed=0):
+    """Seeded PCs with three well-separated clusters and persistent episodes."""
+    rng = np.random.default_rng(seed)
+    centres = rng.normal(0, 6, (3, n_modes))
+    episode = np.repeat(rng.integers(0, 3, n_days // 8 + 1), 8)[:n_days]
+    values = centres[episode] + rng.normal(0, 1.0, (n_days, n_modes))
+    times = pd.date_range("1990-01-01", periods=n_days, freq="D")
+    return xr.DataArray(values, dims=("time", "mode"),
+                        coords={"time": times, "mode": np.arange(n_modes)}), episode
+
+
+def test_kmeans_from_arrays_matches_sklearn(tmp_path):
+    # Reference: sklearn.cluster.KMeans.predict with the same seed and n_init.
+    pcs, _ = _pcs()
+    model = KMeansRegimes(4, min_persistence=1, random_state=0).fit(pcs)
+    reference = KMeans(4, n_init=10, random_state=0).fit(pcs.values)
+    new, _ = _pcs(seed=1)
+    path = tmp_path / "kmeans.nc"
+    model.to_dataset().to_netcdf(path)
+    with xr.open_dataset(path) as saved:
+        restored = KMeansRegimes.from_dataset(saved.load())
+    np.testing.assert_array_equal(restored.predict(new), reference.predict(new.values))
+    np.testing.assert_array_equal(model.labels_, reference.labels_)
+
+
+def test_kmeans_persistence_filter():
+    pcs, _ = _pcs()
+    model = KMeansRegimes(3, min_persistence=3).fit(pcs)
+    labels = model.predict(pcs)
+    runs = np.diff(np.flatnonzero(np.diff(np.r_[-1, labels, -1]) != 0))
+    assert runs.min() >= 3
+    restored = KMeansRegimes.from_dataset(model.to_dataset())
+    np.testing.assert_array_equal(restored.predict(pcs), labels)
+    # Hand example: the one-day blip joins the run before it; the short first run
+    # joins the run after it; a gap in the dates restarts the sequence.
+    np.testing.assert_array_equal(
+        persistence_filter(np.array([5, 1, 1, 1, 2, 1, 1, 1, 3, 3, 3]), 2),
+        [1, 1, 1, 1, 1, 1, 1, 1, 3, 3, 3])
+    times = pd.to_datetime(["2000-01-01", "2000-01-02", "2000-01-10", "2000-01-11"])
+    np.testing.assert_array_equal(persistence_filter(np.array([1, 1, 2, 2]), 2, times),
+                                  [1, 1, 2, 2])
+    with pytest.raises(NotFittedError, match="not fitted"):
+        KMeansRegimes().predict(pcs)
+
+
+def test_supervised_from_arrays_matches_sklearn(tmp_path):
+    # Reference: sklearn LogisticRegression on the same standardised PCs.
+    pcs, episode = _pcs()
+    names = np.array(["northwest_flow", "tropical", "strong_trough"])
+    table = pd.DataFrame({"date": pcs["time"].values[::3].astype("datetime64[D]").astype(str),
+                          "regime": names[episode[::3]]})
+    model = SupervisedRegimes(C=0.5).fit(pcs, table)
+    x = pcs.values[::3]
+    mean, scale = x.mean(0), x.std(0)
+    reference = LogisticRegression(C=0.5, max_iter=1000).fit((x - mean) / scale,
+                                                             table["regime"])
+    path = tmp_path / "logistic.nc"
+    model.to_dataset().to_netcdf(path)
+    with xr.open_dataset(path) as saved:
+        restored = SupervisedRegimes.from_dataset(saved.load())
+    new, _ = _pcs(seed=0)
+    x_new = (new.values - mean) / scale
+    np.testing.assert_array_equal(restored.predict(new), reference.predict(x_new))
+    np.testing.assert_allclose(restored.predict_proba(new), reference.predict_proba(x_new),
+                               rtol=1e-6, atol=1e-9)
+    assert (restored.predict(new) == names[episode]).mean() > 0.95
+
+
+def test_supervised_bad_labelled_table(tmp_path):
+    pcs, _ = _pcs(n_days=30)
+    unknown = pd.DataFrame({"date": ["1990-01-02", "1990-01-03"],
+                            "regime": ["tropical", "derecho"]})
+    with pytest.raises(AnalogsInputError, match=r"unknown regime label\(s\) derecho"):
+        SupervisedRegimes().fit(pcs, unknown)
+    absent = pd.DataFrame({"date": ["1990-01-02", "2024-05-01"],
+                           "regime": ["tropical", "other"]})
+    path = tmp_path / "cases.csv"
+    absent.to_csv(path, index=False)
+    with pytest.raises(AnalogsInputError, match=r"cases.csv: date\(s\) not in the archive: "
+                                                r"2024-05-01"):
+        SupervisedRegimes().fit(pcs, path)
+    with pytest.raises(AnalogsInputError, match="must have columns date,regime"):
+        SupervisedRegimes().fit(pcs, pd.DataFrame({"day": ["1990-01-02"]}))
