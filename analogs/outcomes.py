@@ -46,6 +46,7 @@ import numpy as np
 import pandas as pd
 import xarray as xr
 from scipy import ndimage, stats
+from sklearn.neighbors import BallTree
 
 from . import __version__
 from ._validation import check_choice, check_float
@@ -472,7 +473,9 @@ def binomial_interval(successes, trials, confidence=0.9, method="clopper-pearson
         Beta(k + 1/2, n - k + 1/2); ``"wilson"`` score interval (Wilson 1927),
         :math:`\\frac{\\hat p + z^2/2n \\pm z\\sqrt{\\hat p(1-\\hat p)/n + z^2/4n^2}}{1+z^2/n}`.
         For every method the lower bound is 0 when k = 0 and the upper
-        bound 1 when k = n (Brown et al. 2001 for Jeffreys).
+        bound 1 when k = n (Brown et al. 2001 for Jeffreys), and the interval
+        is widened where needed to hold k / n (only a non-integer Jeffreys
+        count within 1/2 of 0 or n needs it).
 
     Returns
     -------
@@ -506,9 +509,11 @@ def binomial_interval(successes, trials, confidence=0.9, method="clopper-pearson
             else:
                 low = stats.beta.ppf(alpha / 2, k, n - k + 1)
                 high = stats.beta.ppf(1 - alpha / 2, k + 1, n - k)
-    # The exact limits at k = 0 and k = n, free of rounding in the formulas above.
-    low = np.where(k <= 0, 0.0, np.clip(low, 0.0, 1.0))
-    high = np.where(k >= n, 1.0, np.clip(high, 0.0, 1.0))
+    # The exact limits at k = 0 and k = n, free of rounding in the formulas above;
+    # an interval always holds k / n (Jeffreys with a non-integer effective count
+    # within 1/2 of 0 or n would otherwise miss it).
+    low = np.where(k <= 0, 0.0, np.clip(np.minimum(low, k / n), 0.0, 1.0))
+    high = np.where(k >= n, 1.0, np.clip(np.maximum(high, k / n), 0.0, 1.0))
     if np.ndim(low) == 0:
         return float(low), float(high)
     return low, high
@@ -567,6 +572,11 @@ def _check_counts(frame, name):
 
 def _percentile_keys(percentiles):
     return {f"{p:g}": float(p) for p in percentiles}
+
+
+def _weighted_share(weights, mask):
+    """Weighted fraction of True in ``mask`` (weights sum to 1), kept inside [0, 1]."""
+    return float(np.clip(np.dot(weights, mask), 0.0, 1.0))
 
 
 def _ratio(p, reference):
@@ -676,20 +686,21 @@ def summarize_outcomes(analog_counts: pd.DataFrame, climatology_counts: pd.DataF
                 f"positive sum. Got {w.size} values instead.")
         w = w / w.sum()
         n_eff = effective_sample_size(w)
-        p_w = float(np.sum(w * (total >= 1)))
+        p_w = _weighted_share(w, total >= 1)
+        low, high = binomial_interval(min(p_w * n_eff, n_eff), n_eff, confidence, method)
         weighted = {
             "n_effective": n_eff,
             "p_any_event": p_w,
-            "p_any_event_ci": list(binomial_interval(min(p_w * n_eff, n_eff), n_eff,
-                                                     confidence, method)),
+            # p_w * n_eff / n_eff may round one ulp away from p_w.
+            "p_any_event_ci": [min(low, p_w), max(high, p_w)],
             "ratio_to_climatology": _ratio(p_w, clim_p_any),
             "mean_events": float(np.sum(w * total)),
-            "p_at_least": {str(m): float(np.sum(w * (total >= m))) for m in thresholds},
+            "p_at_least": {str(m): _weighted_share(w, total >= m) for m in thresholds},
             "by_kind": {},
         }
         for kind in kinds:
             values = analog_counts[kind].to_numpy(float) if kind in analog_counts else np.zeros(n)
-            weighted["by_kind"][kind] = {"p_any": float(np.sum(w * (values >= 1))),
+            weighted["by_kind"][kind] = {"p_any": _weighted_share(w, values >= 1),
                                          "mean": float(np.sum(w * values))}
         summary["weighted"] = weighted
     return summary
@@ -746,7 +757,9 @@ def neighbourhood_probability(events, analog_days, lat, lon, radius_km=NEIGHBOUR
                               weights=None) -> xr.DataArray:
     """Fraction of analog days with at least one event within ``radius_km`` of each point.
 
-    Distances are great-circle (haversine, :func:`analogs.geo.great_circle_km`).
+    Distances are great-circle (haversine on the sphere of
+    :data:`analogs.constants.EARTH_RADIUS`, as :func:`analogs.geo.great_circle_km`),
+    found with a scikit-learn ``BallTree`` over the grid points.
     With ``weights`` (one per analog day) the fraction is the weighted share.
     A day listed twice counts twice.
 
@@ -759,16 +772,18 @@ def neighbourhood_probability(events, analog_days, lat, lon, radius_km=NEIGHBOUR
     lat, lon = _check_grid(lat, lon, owner)
     days, w = _day_weights(analog_days, weights, owner)
     ev_lat, ev_lon, positions = _events_on_days(events, days)
-    hit = np.zeros((days.size, lat.size, lon.size), dtype=bool)
-    # Only grid rows within reach of an event need a distance: keeps the work at
-    # (events x nearby rows x nlon) instead of events x every grid point.
-    reach_deg = radius_km / _KM_PER_DEGREE
-    for e_lat, e_lon, position in zip(ev_lat, ev_lon, positions):
-        rows = np.flatnonzero(np.abs(lat - e_lat) <= reach_deg)
-        if rows.size == 0:
-            continue
-        distance = great_circle_km(e_lat, e_lon, lat[rows, None], lon[None, :])
-        hit[position, rows] |= distance <= radius_km
+    hit = np.zeros((days.size, lat.size * lon.size), dtype=bool)
+    if ev_lat.size:
+        lat2d, lon2d = np.meshgrid(lat, lon, indexing="ij")
+        tree = BallTree(np.radians(np.column_stack([lat2d.ravel(), lon2d.ravel()])),
+                        metric="haversine")
+        # Haversine on the sphere of EARTH_RADIUS, as analogs.geo.great_circle_km.
+        near = tree.query_radius(np.radians(np.column_stack([ev_lat, ev_lon])),
+                                 r=radius_km * 1000.0 / EARTH_RADIUS)
+        sizes = np.fromiter((idx.size for idx in near), dtype=int, count=len(near))
+        if sizes.sum():
+            hit[np.repeat(positions, sizes), np.concatenate(near)] = True
+    hit = hit.reshape(days.size, lat.size, lon.size)
     probability = np.tensordot(w, hit.astype(float), axes=1)
     return xr.DataArray(
         np.clip(probability, 0.0, 1.0), dims=("lat", "lon"),
