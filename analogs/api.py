@@ -25,6 +25,7 @@ from ._validation import check_choice, check_float, check_int
 from .climatology import HarmonicClimatology
 from .eof import MultivariateEOF
 from .errors import AnalogsInputError, StoreError
+from .hindcast import leave_one_year_out, score_hindcast, tune
 from .index import AnalogIndex
 from .outcomes import (
     Region,
@@ -129,6 +130,10 @@ def build_store(paths, store, *, events=None, fields=None, n_modes=None, varianc
     tags = tag_days(archive, _diagnostic_region(region, archive), progress=progress)
 
     times = pd.DatetimeIndex(archive["time"].values)
+    skill = None
+    if event_table is not None and np.unique(times.year).size >= 2:
+        observed = daily_event_counts(event_table, times.normalize(), region)["total"].to_numpy() > 0
+        skill = skill_by_month(pcs.values, times, observed, region=region)
     manifest = {
         "config": {
             "fields": list(archive.data_vars),
@@ -157,6 +162,7 @@ def build_store(paths, store, *, events=None, fields=None, n_modes=None, varianc
             "n_events": int(len(event_table)),
             "kinds": sorted(event_table["kind"].unique().tolist()),
         },
+        "skill": skill,
     }
     with store_io.writing(store, manifest) as staged:
         basis = xr.Dataset(coords={"lat": archive["lat"], "lon": archive["lon"]},
@@ -174,6 +180,40 @@ def build_store(paths, store, *, events=None, fields=None, n_modes=None, varianc
             store_io.write_table(event_table, staged / store_io.EVENTS)
         store_io.write_table(tags.reset_index(drop=True), staged / store_io.TAGS)
     return AnalogStore.load(store)
+
+
+def skill_by_month(pcs, times, observed, *, region, top=DEFAULT_TOP, window=DEFAULT_WINDOW,
+                   separation=DEFAULT_SEPARATION) -> dict:
+    """Cross-validated skill of the default query settings, overall and by month.
+
+    A leave-one-year-out hindcast (:func:`analogs.hindcast.leave_one_year_out`) of "at
+    least one event in the region", scored by the Brier skill score against the
+    other years' season-window climatology. Stored in the manifest at build so that
+    every query can say how much this kind of guidance has been worth.
+    """
+    hindcast = leave_one_year_out(pcs, times, observed, top=top, window=window,
+                                  separation=separation)
+    months = pd.DatetimeIndex(hindcast["time"]).month
+    by_month = {}
+    for month in range(1, 13):
+        part = hindcast[months == month]
+        if len(part) == 0:
+            continue
+        p, o, ref = (part[c].to_numpy() for c in ("forecast", "observed", "climatology"))
+        reference_score = float(np.mean((ref - o) ** 2))
+        by_month[str(month)] = {
+            "n_days": int(len(part)), "base_rate": float(o.mean()),
+            "brier_score": float(np.mean((p - o) ** 2)),
+            "brier_skill_score": None if reference_score == 0 else
+            float(1.0 - np.mean((p - o) ** 2) / reference_score),
+        }
+    overall = score_hindcast(hindcast, n_resamples=200)
+    return {"method": "leave-one-year-out hindcast of P(at least one event in region)",
+            "region": region.to_dict(), "top": top, "window_days": window,
+            "separation_days": separation,
+            "brier_skill_score": overall["brier_skill_score"],
+            "brier_skill_score_ci": overall["brier_skill_score_ci"],
+            "roc_auc": overall["roc_auc"], "by_month": by_month}
 
 
 @dataclass
@@ -237,9 +277,14 @@ class AnalogStore:
 
     # -- derived state -------------------------------------------------------------
     @property
+    def n_query_modes(self) -> int:
+        """EOF modes used in queries: the tuned count when one was saved, else all."""
+        return int(self.query_defaults.get("n_modes") or self.eof.n_modes_)
+
+    @property
     def index(self) -> AnalogIndex:
         if self._index is None:
-            self._index = AnalogIndex(kind="auto").fit(self.pcs.values)
+            self._index = AnalogIndex(kind="auto").fit(self.pcs.values[:, :self.n_query_modes])
         return self._index
 
     @property
@@ -304,7 +349,7 @@ class AnalogStore:
                 "reason": str(tag.get("reason", ""))}
 
     # -- queries -------------------------------------------------------------------
-    def find(self, *, date=None, field=None, time=None, top=DEFAULT_TOP, window=DEFAULT_WINDOW,
+    def find(self, *, date=None, field=None, time=None, top=None, window=DEFAULT_WINDOW,
              exclude=None, separation=DEFAULT_SEPARATION, region=None, regime=None,
              weights="equal", confidence=0.9):
         """Closest archive days to a target and what they produced.
@@ -313,8 +358,10 @@ class AnalogStore:
         or a canonical Dataset of a forecast field on any grid, with ``time`` its valid
         time when the file holds several). ``exclude`` defaults to
         ``DEFAULT_EXCLUDE`` days for a date target and to nothing for a field target.
+        ``top`` defaults to the store's saved query default, else ``DEFAULT_TOP``.
         """
         owner = "find"
+        top = self.query_defaults.get("top", DEFAULT_TOP) if top is None else top
         if (date is None) == (field is None):
             raise AnalogsInputError("give exactly one target: --date YYYY-MM-DD or --field FILE")
         check_choice(weights, "weights", owner, WEIGHT_SCHEMES)
@@ -341,6 +388,7 @@ class AnalogStore:
         restrict = None
         if regime is not None:
             restrict = self._regime_mask(regime)
+        vector = vector[:self.n_query_modes]
         chosen = find_analogs(self.index, self.times, vector, target_time=target_time,
                               top=top, window=window, exclude=exclude,
                               separation=separation, restrict=restrict)
@@ -349,7 +397,7 @@ class AnalogStore:
         settings = {"top": top, "window_days": window, "exclude_days": exclude,
                     "separation_days": separation, "regime": regime,
                     "region": region.to_dict(), "weights": weights,
-                    "n_modes": int(self.eof.n_modes_), "store": str(self.path)}
+                    "n_modes": self.n_query_modes, "store": str(self.path)}
         return AnalogResult(target=target, analogs=analogs, outcomes=outcomes, settings=settings)
 
     def _resolve_region(self, region) -> Region:
@@ -407,3 +455,60 @@ class AnalogStore:
                                      confidence=confidence)
         summary["has_events"] = self.events is not None
         return summary
+
+    # -- cross-validated skill -------------------------------------------------------
+    def observed(self, region=None) -> np.ndarray:
+        """Whether at least one event fell in the region on each archive day."""
+        if self.events is None:
+            raise AnalogsInputError(f"store {self.path} has no events table: verification needs "
+                                    "one (rebuild with --events FILE)")
+        region = self._resolve_region(region)
+        return self._day_counts(self.days, region)["total"].to_numpy() > 0
+
+    def verify(self, *, top=None, window=DEFAULT_WINDOW, separation=DEFAULT_SEPARATION,
+               n_modes=None, region=None, months=None, threshold=0.3, n_resamples=500,
+               progress=False) -> dict:
+        """Leave-one-year-out hindcast scores, with the random-analog baseline beside them."""
+        defaults = self.query_defaults
+        top = defaults.get("top", DEFAULT_TOP) if top is None else top
+        n_modes = defaults.get("n_modes") if n_modes is None else n_modes
+        region = self._resolve_region(region)
+        observed = self.observed(region)
+        common = dict(top=top, window=window, separation=separation, n_modes=n_modes,
+                      months=months)
+        hindcast = leave_one_year_out(self.pcs.values, self.times, observed, progress=progress,
+                                      **common)
+        summary = score_hindcast(hindcast, threshold=threshold, n_resamples=n_resamples)
+        baseline = score_hindcast(leave_one_year_out(self.pcs.values, self.times, observed,
+                                                     method="random", **common),
+                                  threshold=threshold, n_resamples=n_resamples)
+        summary["random_analogs"] = {k: baseline[k] for k in
+                                     ("brier_score", "brier_skill_score", "brier_skill_score_ci",
+                                      "roc_auc")}
+        summary["settings"] = {"top": top, "n_modes": int(n_modes or self.eof.n_modes_),
+                               "window": window, "separation": separation,
+                               "months": None if months is None else sorted(months),
+                               "region": region.to_dict(), "threshold": threshold,
+                               "method": "leave-one-year-out"}
+        return summary
+
+    def tune(self, *, tops=(10, 20, 30, 50), modes=(5, 10, 15, 20), window=DEFAULT_WINDOW,
+             separation=DEFAULT_SEPARATION, region=None, months=None, progress=False):
+        """Brier skill score of each (number of analogs, number of modes), best first."""
+        modes = tuple(modes) + (int(self.eof.n_modes_),)
+        return tune(self.pcs.values, self.times, self.observed(region), tops=tops, modes=modes,
+                    window=window, separation=separation, months=months, progress=progress)
+
+    @property
+    def query_defaults(self) -> dict:
+        """Query settings recorded in the store (by ``analogs verify --tune --save``)."""
+        return dict(self.manifest.get("query_defaults") or {})
+
+    def save_query_defaults(self, **settings) -> None:
+        """Record query settings (``top``, ``n_modes``) in the store's manifest."""
+        manifest = {k: v for k, v in self.manifest.items()
+                    if k not in ("files", "format", "format_version", "package_version", "written")}
+        manifest["query_defaults"] = {**self.query_defaults, **settings}
+        with store_io.writing(self.path, manifest, keep=tuple(self.manifest["files"])):
+            pass
+        self.manifest = store_io.verify(self.path)

@@ -25,8 +25,9 @@ def _add_quiet(parser):
 
 def _add_query_options(parser):
     from .api import DEFAULT_SEPARATION, DEFAULT_TOP, DEFAULT_WINDOW
-    parser.add_argument("--top", type=int, default=DEFAULT_TOP, metavar="N",
-                        help=f"number of analogs to return (default {DEFAULT_TOP})")
+    parser.add_argument("--top", type=int, metavar="N",
+                        help="number of analogs to return (default: the store's tuned value, "
+                             f"else {DEFAULT_TOP})")
     parser.add_argument("--window", type=int, default=DEFAULT_WINDOW, metavar="DAYS",
                         help="season window: only days within this many calendar days of the "
                              f"target's calendar day, any year (default {DEFAULT_WINDOW})")
@@ -112,6 +113,32 @@ def build_parser() -> argparse.ArgumentParser:
     find.add_argument("--json", action="store_true", help="print one JSON object instead of a table")
     find.add_argument("--report", type=Path, metavar="DIR", help="also write an HTML report to DIR/index.html")
     find.set_defaults(handler=_cmd_find)
+
+    verify = commands.add_parser(
+        "verify", help="cross-validated skill of the store's analog probabilities",
+        description="Leave-one-year-out hindcast: every archive day is forecast from analogs "
+                    "in the other years; P(at least one event in the region) is scored against "
+                    "what happened, the season climatology and random analogs.", epilog=EPILOG)
+    verify.add_argument("--store", required=True, type=Path, metavar="DIR")
+    verify.add_argument("--top", type=int, metavar="N",
+                        help="number of analogs per forecast (default: the store's, else 20)")
+    verify.add_argument("--modes", type=int, metavar="K", help="use only the leading K EOF modes")
+    verify.add_argument("--window", type=int, default=45, metavar="DAYS",
+                        help="season window half-width in calendar days (default 45)")
+    verify.add_argument("--separation", type=int, default=3, metavar="DAYS",
+                        help="de-clustering distance in days (default 3)")
+    verify.add_argument("--region", metavar="S,N,W,E | LAT,LON,KM",
+                        help="region of the event (default: the store's region)")
+    verify.add_argument("--season", metavar="M-M", help="verify target days in these months only, e.g. 5-9")
+    verify.add_argument("--threshold", type=float, default=0.3, metavar="P",
+                        help="probability threshold of the yes/no scores (POD, FAR, ...; default 0.3)")
+    verify.add_argument("--tune", action="store_true",
+                        help="scan the number of analogs and of EOF modes; report the best by Brier skill score")
+    verify.add_argument("--save", action="store_true",
+                        help="with --tune: record the best settings in the store as query defaults")
+    verify.add_argument("--json", action="store_true", help="print one JSON object")
+    _add_quiet(verify)
+    verify.set_defaults(handler=_cmd_verify)
 
     tag = commands.add_parser(
         "tag", help="regime and diagnostics of every archive day",
@@ -206,6 +233,47 @@ def _cmd_find(args) -> int:
         print(find_text(result))
         if args.report:
             print(f"\nreport: {Path(args.report) / 'index.html'}")
+    return 0
+
+
+def parse_months(text, option="--season"):
+    """Months from 'M-M' (wrapping the year end, e.g. 11-2) or 'M,M,M'."""
+    try:
+        if "-" in text:
+            first, last = (int(v) for v in text.split("-"))
+            months = [((first - 1 + i) % 12) + 1 for i in range((last - first) % 12 + 1)]
+        else:
+            months = [int(v) for v in text.split(",")]
+    except ValueError:
+        months = []
+    if not months or any(not 1 <= m <= 12 for m in months):
+        raise AnalogsInputError(f"{option} {text!r}: expected months 1-12 as M-M (e.g. 5-9) or M,M,M")
+    return months
+
+
+def _cmd_verify(args) -> int:
+    from .api import AnalogStore
+    from .report import dumps, verify_text
+    store = AnalogStore.load(args.store)
+    months = parse_months(args.season) if args.season else None
+    if args.save and not args.tune:
+        raise AnalogsInputError("--save records the result of --tune; pass both")
+    tuning = None
+    if args.tune:
+        table = store.tune(window=args.window, separation=args.separation, region=args.region,
+                           months=months, progress=not args.quiet)
+        best = table.iloc[0]
+        tuning = {"table": table.to_dict(orient="records"),
+                  "best": {"top": int(best["top"]), "n_modes": int(best["n_modes"])}}
+        if args.save:
+            store.save_query_defaults(**tuning["best"])
+        args.top, args.modes = tuning["best"]["top"], tuning["best"]["n_modes"]
+    summary = store.verify(top=args.top, window=args.window, separation=args.separation,
+                           n_modes=args.modes, region=args.region, months=months,
+                           threshold=args.threshold, progress=not args.quiet)
+    if tuning is not None:
+        summary["tuning"] = tuning
+    print(dumps(summary) if args.json else verify_text(summary))
     return 0
 
 

@@ -72,6 +72,42 @@ def find_text(result) -> str:
     return "\n".join(lines)
 
 
+def verify_text(summary: dict) -> str:
+    """A readable terminal summary of ``AnalogStore.verify``."""
+    settings = summary["settings"]
+    random = summary["random_analogs"]
+    lo, hi = summary["brier_skill_score_ci"]
+    lines = [
+        f"Leave-one-year-out hindcast of P(at least one event in region): "
+        f"{summary['n_forecasts']} days, base rate {100 * summary['base_rate']:.1f}%",
+        f"settings: {settings['top']} analogs, {settings['n_modes']} EOF modes, window "
+        f"+/-{settings['window']} d, months {settings['months'] or 'all'}",
+        "",
+        f"{'score':28} {'analogs':>10} {'random analogs':>15}",
+        f"{'Brier score':28} {summary['brier_score']:10.4f} {random['brier_score']:15.4f}",
+        f"{'Brier skill score':28} {summary['brier_skill_score']:10.3f} {random['brier_skill_score']:15.3f}",
+        f"{'  interval (year bootstrap)':28} {f'[{lo:.3f}, {hi:.3f}]':>10}",
+        f"{'ROC area':28} {summary['roc_auc']:10.3f} {random['roc_auc']:15.3f}",
+        "",
+        f"yes/no at P >= {settings['threshold']}: " + ", ".join(
+            f"{name} {value:.3f}" for name, value in summary["scores"].items()
+            if value is not None and name != "ets"),
+        "",
+        "reliability (forecast mean -> observed frequency, count):",
+    ]
+    for row in summary["reliability"]:
+        lines.append(f"  {row['forecast_mean']:.2f} -> {row['observed_frequency']:.2f}  ({row['count']})")
+    if "tuning" in summary:
+        best = summary["tuning"]["best"]
+        lines.append("")
+        lines.append(f"tuning: best {best['top']} analogs with {best['n_modes']} modes")
+        for row in summary["tuning"]["table"][:5]:
+            lines.append(f"  top {row['top']:>3}  modes {row['n_modes']:>3}  BSS {row['brier_skill_score']:.3f}")
+    lines.append("")
+    lines.append(CAUTION)
+    return "\n".join(lines)
+
+
 def dumps(data) -> str:
     """JSON text with NaN written as null (strict JSON for scripts)."""
     return json.dumps(_nan_to_none(data), indent=2)
