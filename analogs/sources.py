@@ -1,0 +1,939 @@
+"""Open gridded archives and forecast fields and normalise them to the canonical fields.
+
+Canonical form (DEVELOPERS.md, "Canonical conventions"): an ``xarray.Dataset`` with
+dims ``(time, lat, lon)``; ``lat`` ascending in degrees north; ``lon`` ascending in
+[-180, 180) degrees east; ``time`` datetime64[ns] UTC, one value a day; variables
+``z500`` (500 hPa geopotential height, gpm) and at most one moisture field ``q850``
+(850 hPa specific humidity, kg kg-1), ``td2m`` (2 m dewpoint, K) or ``pwat``
+(precipitable water, kg m-2), each with ``units`` and ``long_name``.
+
+Variables are recognised by CF ``standard_name`` first, then by common short names;
+units are read from the ``units`` attribute and, only where the magnitude leaves no
+doubt, inferred with a warning. Everything stays lazy (dask) when ``chunks`` is given:
+the readers look at coordinates and at most a few time steps for unit inference.
+"""
+
+from __future__ import annotations
+
+import glob
+import os
+import re
+import warnings
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+import xarray as xr
+
+from ._validation import check_choice, check_int
+from .constants import G0, ZERO_CELSIUS_K
+from .errors import AnalogsInputError
+
+#: Canonical field names, in the order they appear in a canonical Dataset.
+SUPPORTED_FIELDS = ("z500", "q850", "td2m", "pwat")
+#: Moisture fields, most preferred first: ``fields=None`` takes the first one found.
+MOISTURE_PREFERENCE = ("q850", "td2m", "pwat")
+
+FIELD_ATTRS = {
+    "z500": {"units": "gpm", "long_name": "geopotential height at 500 hPa",
+             "standard_name": "geopotential_height"},
+    "q850": {"units": "kg kg-1", "long_name": "specific humidity at 850 hPa",
+             "standard_name": "specific_humidity"},
+    "td2m": {"units": "K", "long_name": "2 m dewpoint temperature",
+             "standard_name": "dew_point_temperature"},
+    "pwat": {"units": "kg m-2", "long_name": "precipitable water",
+             "standard_name": "atmosphere_mass_content_of_water_vapor"},
+}
+
+#: Pressure level (hPa) each field is taken at; None for single-level fields.
+FIELD_LEVEL_HPA = {"z500": 500.0, "q850": 850.0, "td2m": None, "pwat": None}
+
+_STANDARD_NAMES = {
+    "geopotential_height": "z500",
+    "geopotential": "z500",
+    "specific_humidity": "q850",
+    "dew_point_temperature": "td2m",
+    "atmosphere_mass_content_of_water_vapor": "pwat",
+    "lwe_thickness_of_atmosphere_mass_content_of_water_vapor": "pwat",
+    "atmosphere_water_vapor_content": "pwat",
+}
+_SHORT_NAMES = {
+    "z500": ("z", "hgt", "zg", "gh", "geopotential", "height", "geopotential_height"),
+    "q850": ("q", "shum", "hus", "sphum", "specific_humidity"),
+    "td2m": ("d2m", "dpt", "2d", "td", "td2m", "dewpoint", "dew_point_temperature"),
+    "pwat": ("tcwv", "pwat", "pw", "prw"),
+}
+#: A short name followed by the level, such as ``zg500`` or ``hus850``.
+_SUFFIXED_NAME = re.compile(r"^([a-z_]+?)_?(\d{3,4})$")
+
+_LAT_NAMES = ("lat", "latitude", "nav_lat", "y", "lats", "xlat")
+_LON_NAMES = ("lon", "longitude", "nav_lon", "x", "lons", "xlong")
+_TIME_NAMES = ("time", "valid_time", "date", "t", "times", "datetime")
+_LEVEL_NAMES = ("level", "plev", "pressure_level", "isobaricinhpa", "lev", "pressure",
+                "lv_isbl0", "levelist")
+
+_HPA_UNITS = {"hpa", "mbar", "millibar", "millibars", "mb", "hectopascal", "hectopascals"}
+_PA_UNITS = {"pa", "pascal", "pascals"}
+
+#: Accepted spellings of each unit, mapped to (canonical kind, factor, offset):
+#: canonical value = value * factor + offset.
+_UNIT_TABLE = {
+    "z500": {
+        "gpm": ("height", 1.0, 0.0), "m": ("height", 1.0, 0.0),
+        "meter": ("height", 1.0, 0.0), "meters": ("height", 1.0, 0.0),
+        "metre": ("height", 1.0, 0.0), "metres": ("height", 1.0, 0.0),
+        "geopotential meters": ("height", 1.0, 0.0),
+        "geopotential metres": ("height", 1.0, 0.0), "m gpm": ("height", 1.0, 0.0),
+        "dam": ("height", 10.0, 0.0), "gpdam": ("height", 10.0, 0.0),
+        "decameters": ("height", 10.0, 0.0), "decametres": ("height", 10.0, 0.0),
+        "m2 s-2": ("geopotential", 1.0 / G0, 0.0),
+    },
+    "q850": {
+        "kg kg-1": ("mass fraction", 1.0, 0.0), "1": ("mass fraction", 1.0, 0.0),
+        "g kg-1": ("mass fraction", 1e-3, 0.0),
+    },
+    "td2m": {
+        "k": ("temperature", 1.0, 0.0), "kelvin": ("temperature", 1.0, 0.0),
+        "degk": ("temperature", 1.0, 0.0),
+        "degc": ("temperature", 1.0, ZERO_CELSIUS_K),
+        "c": ("temperature", 1.0, ZERO_CELSIUS_K),
+        "celsius": ("temperature", 1.0, ZERO_CELSIUS_K),
+        "degrees celsius": ("temperature", 1.0, ZERO_CELSIUS_K),
+    },
+    "pwat": {
+        "kg m-2": ("mass per area", 1.0, 0.0), "mm": ("mass per area", 1.0, 0.0),
+        "cm": ("mass per area", 10.0, 0.0), "m": ("mass per area", 1000.0, 0.0),
+    },
+}
+
+#: Magnitude windows (min, max of a sample) that identify missing units without doubt.
+#: 500 hPa heights lie in about 4600-6000 gpm (common practice, no source); the
+#: windows are wider and do not overlap each other.
+_INFERENCE = {
+    "z500": (((3500.0, 7000.0), "gpm"), ((3500.0 * G0, 7000.0 * G0), "m2 s-2"),
+             ((350.0, 700.0), "dam")),
+    "q850": (((-1e-3, 0.05), "kg kg-1"), ((1.0, 30.0), "g kg-1")),
+    "td2m": (((150.0, 350.0), "K"), ((-100.0, 60.0), "degC")),
+    "pwat": (((0.0, 120.0), "kg m-2"),),
+}
+#: q in g kg-1 must also reach at least this maximum (a dry day could otherwise pass).
+_G_PER_KG_MIN_MAX = 1.0
+
+#: 500 hPa heights without any level information are accepted only in this range (gpm).
+_Z500_PLAUSIBLE_GPM = (4500.0, 6200.0)
+
+
+@dataclass(frozen=True)
+class _Candidate:
+    """A variable of an opened file recognised as one canonical field."""
+
+    path: str
+    dataset: xr.Dataset
+    name: str
+    field: str
+    implied_level_hpa: float | None  # from a name such as ``zg500``
+
+
+# ---------------------------------------------------------------------------
+# public API
+# ---------------------------------------------------------------------------
+
+def open_archive(paths, *, fields=None, region=None, hour=12, daily="instant",
+                 chunks=None, progress=False) -> xr.Dataset:
+    """Open one or many NetCDF / Zarr files as a canonical daily archive.
+
+    Parameters
+    ----------
+    paths : str, os.PathLike or iterable of them
+        NetCDF files, ``.zarr`` directories, glob patterns, or plain directories
+        (every ``*.nc``, ``*.nc4`` and ``*.zarr`` inside). Files may hold one variable
+        each (per-variable, per-year files) or several.
+    fields : sequence of str, optional
+        Canonical fields to read (from :data:`SUPPORTED_FIELDS`). ``None``: ``z500``
+        plus the first moisture field found in the order of
+        :data:`MOISTURE_PREFERENCE`.
+    region : (south, north, west, east), optional
+        Degrees; west and east in [-180, 180]. West > east crosses the date line.
+    hour : int
+        Valid hour (UTC) of the daily values, 0-23.
+    daily : {"instant", "mean"}
+        How sub-daily data become one value a day: the value at ``hour`` UTC, or the
+        calendar-day (00-24 UTC) mean stamped at ``hour`` UTC.
+    chunks : dict, optional
+        Dask chunks on canonical dims, e.g. ``{"time": 365}``; the result stays lazy.
+    progress : bool
+        Show a progress bar while opening files.
+
+    Returns
+    -------
+    xarray.Dataset
+        Canonical dims ``(time, lat, lon)``; attribute ``source_files`` lists the
+        files read (``"; "``-separated).
+    """
+    hour = check_int(hour, "hour", "open_archive", min_value=0, max_value=23)
+    check_choice(daily, "daily", "open_archive", ("instant", "mean"))
+    files = _expand_paths(paths, "open_archive")
+    requested = _check_fields(fields, "open_archive")
+    south_north_west_east = _check_region(region)
+    candidates, seen = [], {}
+    for path in _progress(files, progress):
+        dataset = _open_file(path, chunks)
+        found = _recognise(path, dataset)
+        seen[path] = sorted(str(v) for v in dataset.data_vars)
+        if not found:
+            warnings.warn(f"{path}: no supported variable found (variables: "
+                          f"{', '.join(seen[path]) or 'none'}); file skipped",
+                          UserWarning, stacklevel=2)
+        candidates.extend(found)
+    chosen = _choose_fields(requested, candidates, files, seen)
+    arrays = {}
+    for field in chosen:
+        pieces = [_canonical_array(c) for c in candidates if c.field == field]
+        arrays[field] = _drop_duplicate_times(_join_pieces(field, pieces), files)
+    ds = _merge_fields(arrays, files)
+    ds = _to_daily(ds, hour=hour, how=daily, files=files)
+    if south_north_west_east is not None:
+        ds = subset_region(ds, south_north_west_east, source=_describe(files))
+    if chunks:
+        ds = ds.chunk({k: v for k, v in chunks.items() if k in ds.dims})
+    ds.attrs = {"source_files": "; ".join(files)}
+    return ds
+
+
+def open_target(path, *, time=None, fields=None) -> xr.Dataset:
+    """Open one forecast or target field file, on any grid and convention.
+
+    Parameters
+    ----------
+    path : str or os.PathLike
+        One NetCDF file or ``.zarr`` directory.
+    time : str, optional
+        ISO 8601 valid time to select. Required when the file holds several times;
+        a date alone (``"2024-05-03"``) selects the only time of that day.
+    fields : sequence of str, optional
+        As in :func:`open_archive`.
+
+    Returns
+    -------
+    xarray.Dataset
+        Canonical, with a ``time`` dim of length one (NaT when the file has no time).
+    """
+    files = _expand_paths(path, "open_target")
+    if len(files) != 1:
+        raise AnalogsInputError(f"open_target needs exactly one file; {path!s} gives "
+                                f"{len(files)}: {_describe(files)}")
+    (file,) = files
+    requested = _check_fields(fields, "open_target")
+    dataset = _open_file(file, None)
+    candidates = _recognise(file, dataset, time_optional=True)
+    chosen = _choose_fields(requested, candidates, files,
+                            {file: sorted(str(v) for v in dataset.data_vars)})
+    arrays = {field: _canonical_array(next(c for c in candidates if c.field == field),
+                                      time_optional=True) for field in chosen}
+    ds = _merge_fields(arrays, files)
+    ds = _select_time(ds, time, file)
+    ds.attrs = {"source_files": file}
+    return ds
+
+
+def regrid_to(ds: xr.Dataset, lat, lon) -> xr.Dataset:
+    """Bilinear interpolation of a canonical field to the grid ``(lat, lon)``.
+
+    Linear in latitude and longitude (``xarray.Dataset.interp``, scipy ``interpn``).
+    A global source grid is wrapped periodically in longitude. Target points may lie
+    up to half a source grid step outside the source extent (extrapolated linearly);
+    anything further raises :class:`AnalogsInputError` naming both extents.
+
+    Parameters
+    ----------
+    ds : xarray.Dataset
+        Fields with ``lat`` and ``lon`` dims (any longitude convention or order).
+    lat, lon : 1-D arrays of degrees
+        Target grid, for example a store's grid.
+    """
+    ds = normalise_grid(ds)
+    lat = np.asarray(lat, dtype=float)
+    lon = _wrap_lon(np.asarray(lon, dtype=float))
+    source = ds.attrs.get("source_files", "the field")
+    src_lat, src_lon = ds["lat"].values, ds["lon"].values
+    half_lat = 0.5 * _step(src_lat)
+    half_lon = 0.5 * _step(src_lon)
+    periodic = src_lon.size > 1 and abs(src_lon[-1] - src_lon[0] + 2 * half_lon - 360.0) < 1e-6
+    lat_ok = lat.min() >= src_lat[0] - half_lat - 1e-9 and lat.max() <= src_lat[-1] + half_lat + 1e-9
+    lon_ok = periodic or (lon.min() >= src_lon[0] - half_lon - 1e-9
+                          and lon.max() <= src_lon[-1] + half_lon + 1e-9)
+    if not (lat_ok and lon_ok):
+        raise AnalogsInputError(
+            f"{source}: the field covers lat {src_lat[0]:g} to {src_lat[-1]:g}, lon "
+            f"{src_lon[0]:g} to {src_lon[-1]:g}, but the target grid needs lat "
+            f"{lat.min():g} to {lat.max():g}, lon {lon.min():g} to {lon.max():g}")
+    if periodic:
+        ds = xr.concat([ds.isel(lon=[-1]).assign_coords(lon=src_lon[-1:] - 360.0), ds,
+                        ds.isel(lon=[0]).assign_coords(lon=src_lon[:1] + 360.0)], dim="lon",
+                       data_vars="all", coords="minimal", join="override")
+    out = ds.interp(lat=lat, lon=lon, method="linear", kwargs={"fill_value": None})
+    out["lat"].attrs.update(_LAT_ATTRS)
+    out["lon"].attrs.update(_LON_ATTRS)
+    for name in out.data_vars:
+        out[name].attrs = dict(ds[name].attrs)
+    out.attrs = dict(ds.attrs)
+    return out
+
+
+def normalise_grid(obj):
+    """Sort ``lat`` ascending and put ``lon`` in [-180, 180) ascending.
+
+    Works on a Dataset or DataArray with ``lat`` / ``lon`` dims. A descending
+    coordinate is reversed silently; a non-monotonic one is sorted with a warning;
+    longitudes that repeat after wrapping (0 and 360) keep their first occurrence,
+    with a warning. Values move with their coordinates, so nothing is interpolated.
+    """
+    source = obj.attrs.get("source_files", "the field")
+    lat = obj["lat"].values.astype(float)
+    if lat.size > 1 and not np.all(np.diff(lat) > 0):
+        if np.all(np.diff(lat) < 0):
+            obj = obj.isel(lat=slice(None, None, -1))
+        else:
+            warnings.warn(f"{source}: latitude is not monotonic; it is sorted for you",
+                          UserWarning, stacklevel=2)
+            obj = obj.sortby("lat")
+        if np.any(np.diff(obj["lat"].values) == 0):
+            raise AnalogsInputError(f"{source}: latitude has repeated values; expected "
+                                    "each grid latitude once")
+    raw_lon = obj["lon"].values.astype(float)
+    monotonic = raw_lon.size < 2 or np.all(np.diff(raw_lon) > 0) or np.all(np.diff(raw_lon) < 0)
+    wrapped = _wrap_lon(raw_lon)
+    obj = obj.assign_coords(lat=obj["lat"].values.astype(float), lon=wrapped)
+    if not monotonic:
+        warnings.warn(f"{source}: longitude is not monotonic; it is sorted for you",
+                      UserWarning, stacklevel=2)
+    _, first = np.unique(wrapped, return_index=True)
+    if first.size < wrapped.size:
+        warnings.warn(f"{source}: {wrapped.size - first.size} longitude(s) repeat after "
+                      "wrapping to [-180, 180); the first of each is kept",
+                      UserWarning, stacklevel=2)
+    if first.size < wrapped.size or np.any(np.diff(wrapped) <= 0):
+        order = first[np.argsort(wrapped[first], kind="stable")]
+        obj = obj.isel(lon=order)
+    obj["lat"].attrs = dict(_LAT_ATTRS)
+    obj["lon"].attrs = dict(_LON_ATTRS)
+    return obj
+
+
+def subset_region(ds, region, *, source="the archive"):
+    """Cut ``ds`` to ``region = (south, north, west, east)`` in degrees.
+
+    West > east selects a box crossing the date line. Raises
+    :class:`AnalogsInputError` when the box holds no grid point.
+    """
+    south, north, west, east = _check_region(region)
+    lat, lon = ds["lat"].values, ds["lon"].values
+    lat_mask = (lat >= south) & (lat <= north)
+    west_w, east_w = _wrap_lon(np.array([west]))[0], _wrap_lon(np.array([east]))[0]
+    if east == 180.0:
+        east_w = 180.0
+    if west <= east:
+        lon_mask = (lon >= west_w) & (lon <= east_w) if west_w <= east_w else (
+            (lon >= west_w) | (lon <= east_w))
+    else:
+        lon_mask = (lon >= west_w) | (lon <= east_w)
+    if not lat_mask.any() or not lon_mask.any():
+        raise AnalogsInputError(
+            f"region (south, north, west, east) = ({south:g}, {north:g}, {west:g}, "
+            f"{east:g}) selects no grid point of {source}, which covers lat "
+            f"{lat.min():g} to {lat.max():g}, lon {lon.min():g} to {lon.max():g}")
+    return ds.isel(lat=np.flatnonzero(lat_mask), lon=np.flatnonzero(lon_mask))
+
+
+# ---------------------------------------------------------------------------
+# files
+# ---------------------------------------------------------------------------
+
+_NETCDF_MAGIC = (b"CDF\x01", b"CDF\x02", b"CDF\x05", b"\x89HDF\r\n\x1a\n")
+
+
+def _expand_paths(paths, owner):
+    if isinstance(paths, (str, os.PathLike)):
+        paths = [paths]
+    try:
+        items = [os.fspath(p) for p in paths]
+    except TypeError:
+        raise AnalogsInputError(f"{owner} needs a file path or a list of paths; got "
+                                f"{paths!r}") from None
+    files = []
+    for item in items:
+        if item.rstrip("/").endswith(".zarr"):
+            matches = [item.rstrip("/")]
+        elif os.path.isdir(item):
+            matches = sorted(p for p in glob.glob(os.path.join(item, "*"))
+                             if p.endswith((".nc", ".nc4", ".netcdf", ".zarr")))
+            if not matches:
+                raise AnalogsInputError(f"{item}: directory holds no *.nc or *.zarr file")
+        elif glob.has_magic(item):
+            matches = sorted(glob.glob(item))
+            if not matches:
+                raise AnalogsInputError(f"{item}: pattern matches no file")
+        else:
+            matches = [item]
+        files.extend(matches)
+    if not files:
+        raise AnalogsInputError(f"{owner} needs at least one file; got none")
+    return files
+
+
+def _open_file(path, chunks):
+    """Open one file with xarray (lazily); raise a one-line error when it cannot."""
+    if not os.path.exists(path):
+        raise AnalogsInputError(f"{path}: no such file")
+    open_chunks = {} if chunks else None
+    if path.endswith(".zarr"):
+        try:
+            return xr.open_zarr(path, chunks=open_chunks)
+        except ImportError:
+            raise AnalogsInputError(f"{path}: reading Zarr needs the 'zarr' package "
+                                    "(pip install zarr)") from None
+        except (OSError, ValueError, KeyError) as err:
+            raise AnalogsInputError(f"{path}: cannot be read as Zarr ({_one_line(err)})"
+                                    ) from None
+    if os.path.isdir(path):
+        raise AnalogsInputError(f"{path}: is a directory; expected a NetCDF file or a "
+                                "directory ending in .zarr")
+    with open(path, "rb") as handle:
+        magic = handle.read(8)
+    if not any(magic.startswith(m) for m in _NETCDF_MAGIC):
+        hint = " (GRIB: convert it to NetCDF first)" if magic.startswith(b"GRIB") else ""
+        raise AnalogsInputError(f"{path}: not a NetCDF file{hint}; expected NetCDF-3, "
+                                "NetCDF-4 or a .zarr directory")
+    try:
+        dataset = xr.open_dataset(path, chunks=open_chunks)
+        # Reading the coordinates here catches truncated files early and cheaply.
+        for name in dataset.coords:
+            if dataset[name].ndim <= 1:
+                dataset[name].values
+    except (OSError, ValueError, RuntimeError, KeyError, IndexError) as err:
+        raise AnalogsInputError(f"{path}: cannot be read as NetCDF, the file may be "
+                                f"truncated or damaged ({_one_line(err)})") from None
+    _check_not_truncated(path, dataset)
+    return dataset
+
+
+def _check_not_truncated(path, dataset):
+    """A NetCDF-3 file cut short opens fine; its size gives it away."""
+    encoding_sizes = 0
+    for var in dataset.variables.values():
+        encoding_sizes += int(np.prod(var.shape)) * np.dtype(
+            var.encoding.get("dtype", var.dtype)).itemsize
+    with open(path, "rb") as handle:
+        classic = handle.read(4) in (b"CDF\x01", b"CDF\x02", b"CDF\x05")
+    if classic and os.path.getsize(path) < encoding_sizes:
+        raise AnalogsInputError(f"{path}: file is shorter than its header promises "
+                                f"({os.path.getsize(path)} < {encoding_sizes} bytes); "
+                                "it is probably truncated")
+
+
+def _one_line(err):
+    return " ".join(str(err).split()) or type(err).__name__
+
+
+def _describe(files):
+    return ", ".join(files) if len(files) <= 4 else (
+        f"{', '.join(files[:3])} and {len(files) - 3} more")
+
+
+def _progress(files, progress):
+    if not progress or len(files) < 2:
+        return files
+    from tqdm.auto import tqdm
+    return tqdm(files, desc="opening files", unit="file")
+
+
+# ---------------------------------------------------------------------------
+# recognising variables and choosing fields
+# ---------------------------------------------------------------------------
+
+def _check_fields(fields, owner):
+    if fields is None:
+        return None
+    if isinstance(fields, str):
+        fields = [fields]
+    fields = list(dict.fromkeys(fields))
+    for field in fields:
+        if field not in SUPPORTED_FIELDS:
+            raise AnalogsInputError(
+                f"The 'fields' parameter of {owner} must list names among "
+                f"{', '.join(SUPPORTED_FIELDS)}. Got {field!r} instead.")
+    if not fields:
+        raise AnalogsInputError(f"The 'fields' parameter of {owner} must name at least "
+                                "one field. Got an empty list instead.")
+    return fields
+
+
+def _recognise(path, dataset, *, time_optional=False):
+    """Candidates for each canonical field among the data variables of one file."""
+    by_standard, by_name = [], []
+    for name, var in dataset.data_vars.items():
+        if var.ndim < 2:
+            continue
+        standard = str(var.attrs.get("standard_name", "")).strip().lower()
+        if standard in _STANDARD_NAMES:
+            by_standard.append(_Candidate(path, dataset, str(name),
+                                          _STANDARD_NAMES[standard], None))
+            continue
+        field, level = _field_from_name(str(name))
+        if field is not None:
+            by_name.append(_Candidate(path, dataset, str(name), field, level))
+    found, taken = [], set()
+    for candidate in by_standard + by_name:
+        if candidate.field not in taken:
+            taken.add(candidate.field)
+            found.append(candidate)
+    return found
+
+
+def _field_from_name(name):
+    lowered = name.lower()
+    for field, names in _SHORT_NAMES.items():
+        if lowered in names:
+            return field, None
+    match = _SUFFIXED_NAME.match(lowered)
+    if match:
+        stem, level = match.group(1), float(match.group(2))
+        for field, names in _SHORT_NAMES.items():
+            wanted = FIELD_LEVEL_HPA[field]
+            if stem in names and wanted is not None and level == wanted:
+                return field, level
+    return None, None
+
+
+def _choose_fields(requested, candidates, files, seen):
+    found = {c.field for c in candidates}
+    variables = "; ".join(f"{os.path.basename(p)}: {', '.join(v) or 'none'}"
+                          for p, v in seen.items())
+    if requested is None:
+        if "z500" not in found:
+            raise AnalogsInputError(
+                f"no 500 hPa height variable (standard_name geopotential_height or "
+                f"geopotential, or a name like z, hgt, zg) in {_describe(files)} "
+                f"(variables: {variables})")
+        moisture = [f for f in MOISTURE_PREFERENCE if f in found][:1]
+        return ["z500"] + moisture
+    missing = [f for f in requested if f not in found]
+    if missing:
+        raise AnalogsInputError(
+            f"field {missing[0]!r} not found in {_describe(files)} (variables: "
+            f"{variables}); expected {_expected_names(missing[0])}")
+    return [f for f in SUPPORTED_FIELDS if f in requested]
+
+
+def _expected_names(field):
+    standards = [s for s, f in _STANDARD_NAMES.items() if f == field]
+    return (f"standard_name {' or '.join(standards)}, or a variable named "
+            f"{', '.join(_SHORT_NAMES[field])}")
+
+
+# ---------------------------------------------------------------------------
+# one variable of one file -> canonical DataArray
+# ---------------------------------------------------------------------------
+
+_LAT_ATTRS = {"units": "degrees_north", "standard_name": "latitude",
+              "long_name": "latitude"}
+_LON_ATTRS = {"units": "degrees_east", "standard_name": "longitude",
+              "long_name": "longitude"}
+_TIME_ATTRS = {"standard_name": "time", "long_name": "valid time (UTC)"}
+
+
+def _canonical_array(candidate, *, time_optional=False):
+    ds, name, path, field = candidate.dataset, candidate.name, candidate.path, candidate.field
+    da = ds[name]
+    where = f"{path}: variable {name!r}"
+    lat_dim, lat = _find_axis(da, _LAT_NAMES, "latitude", ("degrees_north", "degree_north",
+                                                           "degrees_n", "degree_n"), where)
+    lon_dim, lon = _find_axis(da, _LON_NAMES, "longitude", ("degrees_east", "degree_east",
+                                                            "degrees_e", "degree_e"), where)
+    time_dim, times = _find_time(da, where, optional=time_optional)
+    da, level_known = _select_level(da, field, candidate.implied_level_hpa, where,
+                                    keep=(lat_dim, lon_dim, time_dim))
+    extra = [d for d in da.dims if d not in (lat_dim, lon_dim, time_dim)]
+    too_big = [d for d in extra if da.sizes[d] != 1]
+    if too_big:
+        raise AnalogsInputError(
+            f"{where} has extra dimension(s) {', '.join(too_big)}; expected only time, "
+            "latitude, longitude and a pressure level")
+    if extra:
+        da = da.isel({d: 0 for d in extra})
+    da = da.drop_vars(list(da.coords))
+    if time_dim is None:
+        da = da.expand_dims(time=1)
+        time_dim = "time"
+    da = da.transpose(time_dim, lat_dim, lon_dim)
+    da = da.rename({time_dim: "_t", lat_dim: "_y", lon_dim: "_x"}).rename(
+        {"_t": "time", "_y": "lat", "_x": "lon"})
+    da = da.assign_coords(time=times, lat=lat, lon=lon)
+    if not np.issubdtype(da.dtype, np.floating):
+        da = da.astype("float32")
+    da = _convert_units(da, ds[name].attrs, field, where)
+    if field == "z500" and not level_known:
+        low, high = _sample_range(da)
+        median = 0.5 * (low + high)
+        lo_ok, hi_ok = _Z500_PLAUSIBLE_GPM
+        if not (lo_ok <= low and high <= hi_ok):
+            raise AnalogsInputError(
+                f"{where} has no pressure level and its values ({low:.0f} to {high:.0f} "
+                f"gpm) do not look like 500 hPa heights ({lo_ok:.0f}-{hi_ok:.0f} gpm); "
+                "select the 500 hPa level or add a level coordinate")
+        warnings.warn(f"{where} has no pressure level; taken as 500 hPa height since its "
+                      f"values (about {median:.0f} gpm) fit", UserWarning, stacklevel=3)
+    da.attrs = dict(FIELD_ATTRS[field])
+    da.name = field
+    da = normalise_grid(da.assign_attrs(source_files=path))
+    da.attrs = dict(FIELD_ATTRS[field])
+    da["time"].attrs = dict(_TIME_ATTRS)
+    return da
+
+
+def _matches(coord, names, standard_name, units):
+    return (str(coord.name).lower() in names
+            or str(coord.attrs.get("standard_name", "")).lower() == standard_name
+            or str(coord.attrs.get("units", "")).lower() in units)
+
+
+def _find_axis(da, names, standard_name, units, where):
+    """(dim name, 1-D float values) of the latitude or longitude axis of ``da``."""
+    for key in list(da.dims) + [c for c in da.coords if c not in da.dims]:
+        if key not in da.coords:
+            continue
+        coord = da.coords[key]
+        if not _matches(coord, names, standard_name, units):
+            continue
+        if coord.ndim != 1:
+            raise AnalogsInputError(
+                f"{where}: {standard_name} {key!r} is {coord.ndim}-D; expected a regular "
+                "latitude-longitude grid with 1-D coordinates (regrid it first)")
+        values = np.asarray(coord.values, dtype=float)
+        if not np.all(np.isfinite(values)):
+            raise AnalogsInputError(f"{where}: {standard_name} {key!r} has missing values")
+        return coord.dims[0], values
+    raise AnalogsInputError(
+        f"{where} has no {standard_name} coordinate; expected one named "
+        f"{' or '.join(names[:3])} or with standard_name {standard_name}")
+
+
+def _find_time(da, where, *, optional):
+    """(dim name or None, datetime64[ns] values) of the time axis of ``da``."""
+    candidates = []
+    for dim in da.dims:
+        if dim not in da.coords:
+            continue
+        coord = da.coords[dim]
+        named = (str(dim).lower() in _TIME_NAMES
+                 or str(coord.attrs.get("standard_name", "")).lower() == "time"
+                 or str(coord.attrs.get("axis", "")).upper() == "T")
+        is_date = np.issubdtype(coord.dtype, np.datetime64) or coord.dtype == object
+        if named or np.issubdtype(coord.dtype, np.datetime64):
+            candidates.append((not is_date, dim))
+    if not candidates:
+        if optional:
+            return None, np.array(["NaT"], dtype="datetime64[ns]")
+        raise AnalogsInputError(
+            f"{where} has no time dimension; expected one named time or valid_time, or "
+            "with standard_name time")
+    dim = sorted(candidates)[0][1]
+    return dim, _as_datetime64(da.coords[dim], where)
+
+
+def _as_datetime64(coord, where):
+    values = coord.values
+    if np.issubdtype(values.dtype, np.datetime64):
+        return values.astype("datetime64[ns]")
+    try:
+        index = xr.CFTimeIndex(values)
+    except (TypeError, ValueError):
+        raise AnalogsInputError(
+            f"{where}: time coordinate {coord.name!r} is not decodable as dates "
+            f"(units {coord.attrs.get('units', 'missing')!r}); expected CF units such as "
+            "'hours since 1900-01-01'") from None
+    try:
+        return index.to_datetimeindex(unsafe=True).values.astype("datetime64[ns]")
+    except (ValueError, TypeError) as err:
+        raise AnalogsInputError(f"{where}: time calendar {index.calendar!r} cannot be "
+                                f"mapped to the standard calendar ({_one_line(err)})"
+                                ) from None
+
+
+def _level_coords(da):
+    """Coordinates of ``da`` that look like pressure levels."""
+    found = []
+    for key, coord in da.coords.items():
+        if coord.ndim > 1:
+            continue
+        units = str(coord.attrs.get("units", "")).strip().lower()
+        named = str(key).lower() in _LEVEL_NAMES
+        standard = str(coord.attrs.get("standard_name", "")).lower() == "air_pressure"
+        z_axis = (str(coord.attrs.get("axis", "")).upper() == "Z"
+                  and units in _HPA_UNITS | _PA_UNITS)
+        if named or standard or z_axis:
+            found.append(str(key))
+    return found
+
+
+def _levels_in_hpa(coord, where):
+    values = np.atleast_1d(np.asarray(coord.values, dtype=float))
+    units = str(coord.attrs.get("units", "")).strip().lower()
+    if units in _HPA_UNITS:
+        return values
+    if units in _PA_UNITS:
+        return values / 100.0
+    guess = "Pa" if np.nanmax(values) > 1100.0 else "hPa"
+    warnings.warn(f"{where}: level coordinate {coord.name!r} has "
+                  f"{'no units' if not units else f'unknown units {units!r}'}; taken as "
+                  f"{guess} from its values ({_list(values)})", UserWarning, stacklevel=4)
+    return values / 100.0 if guess == "Pa" else values
+
+
+def _select_level(da, field, implied_level, where, keep):
+    """Select the field's pressure level; return (array, whether a level was known)."""
+    wanted = FIELD_LEVEL_HPA[field]
+    keys = [k for k in _level_coords(da) if k not in keep]
+    if not keys:
+        if wanted is None or implied_level is not None:
+            return da, True
+        if field == "q850":
+            warnings.warn(f"{where} has no pressure level; taken as {wanted:g} hPa",
+                          UserWarning, stacklevel=4)
+            return da, True
+        return da, False
+    key = next((k for k in keys if k in da.dims), keys[0])
+    coord = da.coords[key]
+    levels = _levels_in_hpa(coord, where)
+    if wanted is None:
+        if key in da.dims and da.sizes[key] > 1:
+            raise AnalogsInputError(
+                f"{where} is a single-level field but has {da.sizes[key]} levels in "
+                f"{key}=[{_list(levels)}]; expected one level")
+        return (da.isel({key: 0}) if key in da.dims else da), True
+    hits = np.flatnonzero(np.abs(levels - wanted) < 0.5)
+    if hits.size == 0:
+        raise AnalogsInputError(f"{where}: no {wanted:g} hPa level in "
+                                f"{key}=[{_list(levels)}]")
+    if key in da.dims:
+        da = da.isel({key: int(hits[0])})
+    return da, True
+
+
+def _list(values):
+    return ", ".join(f"{v:g}" for v in np.atleast_1d(values))
+
+
+def _normal_units(units):
+    """Lower-case, single-spaced units with ``**``/``^`` powers and ``/`` rewritten."""
+    text = str(units).strip().lower().replace("**", "").replace("^", "")
+    text = text.replace("°", "deg").replace("degrees_", "degrees ").replace("deg_", "deg")
+    text = re.sub(r"\s+", " ", text)
+    replacements = {"kg/kg": "kg kg-1", "g/kg": "g kg-1", "m2/s2": "m2 s-2",
+                    "kg/m2": "kg m-2", "kg.m-2": "kg m-2", "m2.s-2": "m2 s-2",
+                    "kg.kg-1": "kg kg-1", "g.kg-1": "g kg-1", "kg kg**-1": "kg kg-1"}
+    return replacements.get(text, text)
+
+
+def _convert_units(da, attrs, field, where):
+    raw = attrs.get("units")
+    units = _normal_units(raw) if raw is not None else ""
+    table = _UNIT_TABLE[field]
+    if units in table:
+        _, factor, offset = table[units]
+    else:
+        inferred = _infer_units(da, field)
+        stated = "no units" if not units else f"unrecognised units {raw!r}"
+        canonical = FIELD_ATTRS[field]["units"]
+        if inferred is None:
+            low, high = _sample_range(da)
+            raise AnalogsInputError(
+                f"{where} has {stated} and its values ({low:.4g} to {high:.4g}) do not "
+                f"say which; set its units attribute (e.g. units='{canonical}'); accepted: "
+                f"{', '.join(sorted(table))}")
+        warnings.warn(f"{where} has {stated}; {inferred!r} inferred from the magnitude "
+                      "of its values", UserWarning, stacklevel=4)
+        _, factor, offset = table[_normal_units(inferred)]
+    if factor != 1.0:
+        da = da * factor
+    if offset != 0.0:
+        da = da + offset
+    return da
+
+
+def _infer_units(da, field):
+    low, high = _sample_range(da)
+    if not np.isfinite(low):
+        return None
+    for (lo, hi), units in _INFERENCE[field]:
+        if lo <= low and high <= hi:
+            if units == "g kg-1" and high < _G_PER_KG_MIN_MAX:
+                continue
+            if field == "pwat" and high < 1.0:
+                continue
+            return units
+    return None
+
+
+def _sample_range(da):
+    """Min and max over the first and last time steps (cheap even for big archives)."""
+    steps = sorted({0, da.sizes["time"] - 1}) if "time" in da.dims else None
+    sample = da.isel(time=steps) if steps is not None else da
+    values = np.asarray(sample.values, dtype=float)
+    finite = values[np.isfinite(values)]
+    if finite.size == 0:
+        return np.nan, np.nan
+    return float(finite.min()), float(finite.max())
+
+
+# ---------------------------------------------------------------------------
+# joining files and fields, time handling
+# ---------------------------------------------------------------------------
+
+def _join_pieces(field, pieces):
+    if len(pieces) == 1:
+        return pieces[0]
+    first = pieces[0]
+    for piece in pieces[1:]:
+        if (piece.sizes["lat"] != first.sizes["lat"] or piece.sizes["lon"] != first.sizes["lon"]
+                or not np.allclose(piece["lat"], first["lat"], atol=1e-4)
+                or not np.allclose(piece["lon"], first["lon"], atol=1e-4)):
+            raise AnalogsInputError(
+                f"{field}: files are on different grids ({first.sizes['lat']}x"
+                f"{first.sizes['lon']} and {piece.sizes['lat']}x{piece.sizes['lon']}); "
+                "expected every file of the archive on one grid")
+    pieces = [p.assign_coords(lat=first["lat"], lon=first["lon"]) for p in pieces]
+    joined = xr.concat(pieces, dim="time", join="override", coords="minimal",
+                       compat="override")
+    order = np.argsort(joined["time"].values, kind="stable")
+    if np.any(np.diff(order) != 1):
+        joined = joined.isel(time=order)
+    joined.attrs = dict(FIELD_ATTRS[field])
+    return joined
+
+
+def _merge_fields(arrays, files):
+    names = list(arrays)
+    ref = arrays[names[0]]
+    for name in names[1:]:
+        other = arrays[name]
+        if (other.sizes["lat"] != ref.sizes["lat"] or other.sizes["lon"] != ref.sizes["lon"]
+                or not np.allclose(other["lat"], ref["lat"], atol=1e-4)
+                or not np.allclose(other["lon"], ref["lon"], atol=1e-4)):
+            raise AnalogsInputError(
+                f"{names[0]} and {name} in {_describe(files)} are on different grids; "
+                "expected both fields on one grid")
+        arrays[name] = other.assign_coords(lat=ref["lat"], lon=ref["lon"])
+    times = [pd.DatetimeIndex(arrays[n]["time"].values) for n in names]
+    common = times[0]
+    for index in times[1:]:
+        common = common.intersection(index)
+    if any(len(index) != len(common) for index in times):
+        warnings.warn(f"{', '.join(names)} in {_describe(files)} cover different times; "
+                      f"only the {len(common)} common times are kept",
+                      UserWarning, stacklevel=3)
+        for name in names:
+            keep = np.flatnonzero(pd.DatetimeIndex(arrays[name]["time"].values).isin(common))
+            arrays[name] = arrays[name].isel(time=keep)
+    ds = xr.Dataset({n: arrays[n] for n in names})
+    ds["time"].attrs = dict(_TIME_ATTRS)
+    return ds
+
+
+def _drop_duplicate_times(da, files):
+    duplicated = pd.DatetimeIndex(da["time"].values).duplicated(keep="first")
+    if duplicated.any():
+        warnings.warn(f"{duplicated.sum()} repeated time(s) of {da.name} in "
+                      f"{_describe(files)}; the "
+                      "first occurrence of each is kept", UserWarning, stacklevel=3)
+        da = da.isel(time=np.flatnonzero(~duplicated))
+    return da
+
+
+def _to_daily(ds, *, hour, how, files):
+    """One value a day at ``hour`` UTC; daily and coarser archives pass through."""
+    times = pd.DatetimeIndex(ds["time"].values)
+    if len(times) < 2:
+        return ds
+    step = pd.Series(times).diff().dropna().median()
+    if step >= pd.Timedelta(days=1):
+        if step < pd.Timedelta(days=2):
+            hours = sorted(set(times.hour))
+            if hours != [hour]:
+                warnings.warn(f"daily values in {_describe(files)} are valid at "
+                              f"{', '.join(f'{h:02d}' for h in hours)} UTC, not {hour:02d} "
+                              "UTC; kept as they are", UserWarning, stacklevel=3)
+        return ds
+    if how == "instant":
+        at_hour = (times.hour == hour) & (times.minute == 0) & (times.second == 0)
+        if not at_hour.any():
+            raise AnalogsInputError(
+                f"none of the times in {_describe(files)} fall on {hour:02d} UTC (hours "
+                f"found: {', '.join(f'{h:02d}' for h in sorted(set(times.hour)))}); "
+                "choose another hour or daily='mean'")
+        return ds.isel(time=np.flatnonzero(at_hour))
+    day = xr.DataArray(times.floor("D").values, dims="time", name="day")
+    daily = ds.groupby(day).mean("time", keep_attrs=True)
+    daily = daily.rename({"day": "time"})
+    daily = daily.assign_coords(time=daily["time"].values + np.timedelta64(hour, "h"))
+    daily["time"].attrs = dict(_TIME_ATTRS)
+    for name in ds.data_vars:
+        daily[name].attrs = dict(ds[name].attrs)
+    return daily.transpose("time", "lat", "lon")
+
+
+def _select_time(ds, time, file):
+    times = pd.DatetimeIndex(ds["time"].values)
+    if time is None:
+        if len(times) > 1:
+            raise AnalogsInputError(
+                f"{file} holds {len(times)} times from {times[0]:%Y-%m-%dT%H:%M} to "
+                f"{times[-1]:%Y-%m-%dT%H:%M}; choose one with time='YYYY-MM-DDTHH:MM'")
+        return ds
+    try:
+        wanted = pd.Timestamp(time)
+    except (ValueError, TypeError):
+        raise AnalogsInputError(f"The 'time' parameter of open_target must be an ISO 8601 "
+                                f"date or time. Got {time!r} instead.") from None
+    if wanted.tzinfo is not None:
+        wanted = wanted.tz_convert("UTC").tz_localize(None)
+    hits = np.flatnonzero(times == wanted)
+    if hits.size == 0 and isinstance(time, str) and len(time.strip()) <= 10:
+        hits = np.flatnonzero(times.normalize() == wanted.normalize())
+    if hits.size != 1:
+        span = (f"{times[0]:%Y-%m-%dT%H:%M} to {times[-1]:%Y-%m-%dT%H:%M}"
+                if times.notna().any() else "no valid time")
+        raise AnalogsInputError(
+            f"{file}: {'no' if hits.size == 0 else 'more than one'} time matches "
+            f"{time!r}; the file holds {len(times)} time(s), {span}")
+    return ds.isel(time=hits)
+
+
+# ---------------------------------------------------------------------------
+# small helpers
+# ---------------------------------------------------------------------------
+
+def _wrap_lon(lon):
+    """Longitudes in degrees wrapped to [-180, 180)."""
+    return (np.asarray(lon, dtype=float) + 180.0) % 360.0 - 180.0
+
+
+def _step(values):
+    return float(np.median(np.abs(np.diff(values)))) if np.size(values) > 1 else 0.0
+
+
+def _check_region(region):
+    if region is None:
+        return None
+    try:
+        south, north, west, east = (float(v) for v in region)
+    except (TypeError, ValueError):
+        raise AnalogsInputError(
+            "The 'region' parameter must be four numbers (south, north, west, east) in "
+            f"degrees. Got {region!r} instead.") from None
+    if not (-90.0 <= south < north <= 90.0 and -180.0 <= west <= 180.0
+            and -180.0 <= east <= 180.0):
+        raise AnalogsInputError(
+            "The 'region' parameter must be (south, north, west, east) with -90 <= south "
+            f"< north <= 90 and west, east in [-180, 180]. Got {tuple(region)!r} instead.")
+    return south, north, west, east

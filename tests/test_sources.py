@@ -1,0 +1,426 @@
+"""Tests of analogs.sources: reading archives in several conventions into canonical form."""
+
+from __future__ import annotations
+
+import warnings
+
+import numpy as np
+import pandas as pd
+import pytest
+import xarray as xr
+from hypothesis import given, settings
+from hypothesis import strategies as st
+from scipy.interpolate import RegularGridInterpolator
+
+from _sources_helpers import (LAT, LON, daily_times, era5_dataset, smooth_height,
+                              smooth_humidity, write_demo_style, write_ncep_style)
+from analogs.errors import AnalogsInputError
+from analogs.sources import normalise_grid, open_archive, open_target, regrid_to
+
+
+def _height_file(path, values, *, times=None, attrs=None, level=None):
+    """One `z` variable (time, lat, lon), with a scalar `level` (hPa) if given."""
+    times = daily_times(periods=values.shape[0]) if times is None else times
+    coords = {"time": times, "lat": LAT, "lon": LON}
+    if level is not None:
+        coords["level"] = ((), level, {"units": "hPa"})
+    xr.Dataset({"z": (("time", "lat", "lon"), values, attrs or {})},
+               coords=coords).to_netcdf(path)
+    return path
+
+
+# --------------------------------------------------------------------------- conventions
+
+def test_demo_style_per_variable_per_year_files(tmp_path):
+    times = daily_times("2001-12-20", periods=20)  # spans two years -> four files
+    paths = write_demo_style(tmp_path, times)
+    assert len(paths) == 4
+    ds = open_archive(list(reversed(paths)))
+    assert list(ds.data_vars) == ["z500", "q850"]
+    assert ds["z500"].dims == ("time", "lat", "lon")
+    assert ds["z500"].attrs["units"] == "gpm" and ds["q850"].attrs["units"] == "kg kg-1"
+    assert ds["q850"].attrs["long_name"]
+    assert ds["time"].dtype == np.dtype("datetime64[ns]")
+    np.testing.assert_array_equal(ds["time"].values, times.values)
+    np.testing.assert_allclose(ds["z500"].values, smooth_height(times))
+    np.testing.assert_allclose(ds["q850"].values, smooth_humidity(times))
+
+
+def test_directory_and_glob_are_expanded(tmp_path):
+    times = daily_times("2001-12-30", periods=4)
+    write_demo_style(tmp_path, times)
+    by_dir = open_archive(tmp_path)
+    by_glob = open_archive(str(tmp_path / "zg500_*.nc"))
+    assert by_dir.sizes["time"] == 4 and list(by_glob.data_vars) == ["z500"]
+
+
+def test_three_conventions_give_the_same_canonical_values(tmp_path):
+    """Demo, ERA5-style and NCEP-style files of one state normalise identically.
+
+    The geopotential of the ERA5-style file is height * g0 (g0 = 9.80665 m s-2,
+    3rd CGPM 1901 / WMO); the reader must divide it back out.
+    """
+    times = daily_times(periods=6)
+    (tmp_path / "demo").mkdir()
+    (tmp_path / "ncep").mkdir()
+    demo = open_archive(write_demo_style(tmp_path / "demo", times))
+    era5_path = tmp_path / "era5.nc"
+    era5_dataset(times).to_netcdf(era5_path)
+    era5 = open_archive(era5_path)
+    ncep = open_archive(write_ncep_style(tmp_path / "ncep", times))
+    for ds in (era5, ncep):
+        np.testing.assert_array_equal(ds["lat"].values, LAT)
+        np.testing.assert_array_equal(ds["lon"].values, LON)
+        np.testing.assert_array_equal(ds["time"].values, demo["time"].values)
+        xr.testing.assert_allclose(ds["z500"], demo["z500"], rtol=1e-12)
+        xr.testing.assert_allclose(ds["q850"], demo["q850"], rtol=1e-12)
+    # Canonical reference computed outside the reader.
+    np.testing.assert_allclose(era5["z500"].values, smooth_height(times), rtol=1e-12)
+
+
+def test_geopotential_conversion_uses_standard_gravity(tmp_path):
+    """54 000 m2 s-2 / 9.80665 m s-2 = 5506.46 gpm (g0 from the 3rd CGPM 1901 / WMO)."""
+    values = np.full((1, LAT.size, LON.size), 54000.0)
+    path = _height_file(tmp_path / "phi.nc", values,
+                        attrs={"standard_name": "geopotential", "units": "m2 s-2"},
+                        level=500.0)
+    ds = open_archive(path)
+    np.testing.assert_allclose(ds["z500"].values, 54000.0 / 9.80665)
+    assert abs(float(ds["z500"][0, 0, 0]) - 5506.46) < 0.01
+
+
+def test_dam_and_g_per_kg_are_converted(tmp_path):
+    times = daily_times(periods=2)
+    z = smooth_height(times)
+    q = smooth_humidity(times)
+    xr.Dataset({"gh": (("time", "lat", "lon"), z / 10.0, {"units": "dam"}),
+                "q": (("time", "lat", "lon"), q * 1000.0, {"units": "g/kg"})},
+               coords={"time": times, "lat": LAT, "lon": LON, "lev": ((), 500.0, {"units": "hPa"})}
+               ).to_netcdf(tmp_path / "a.nc")
+    # q has no 850 level stated here: the scalar lev=500 applies to both, so q fails.
+    with pytest.raises(AnalogsInputError, match=r"no 850 hPa level in lev=\[500\]"):
+        open_archive(tmp_path / "a.nc")
+    ds = open_archive(tmp_path / "a.nc", fields=["z500"])
+    np.testing.assert_allclose(ds["z500"].values, z)
+    xr.Dataset({"shum850": (("time", "lat", "lon"), q * 1000.0, {"units": "g kg**-1"})},
+               coords={"time": times, "lat": LAT, "lon": LON}).to_netcdf(tmp_path / "q.nc")
+    ds = open_archive(tmp_path / "q.nc", fields=["q850"])
+    np.testing.assert_allclose(ds["q850"].values, q)
+
+
+def test_dewpoint_in_celsius_and_pwat(tmp_path):
+    times = daily_times(periods=3)
+    td_c = 20.0 * np.cos(np.radians(LAT))[None, :, None] + np.zeros((3, 1, LON.size))
+    xr.Dataset({"d2m": (("time", "lat", "lon"), td_c, {"units": "degC"}),
+                "tcwv": (("time", "lat", "lon"), td_c + 25.0, {"units": "mm"}),
+                "hgt": (("time", "lat", "lon"), smooth_height(times), {"units": "m"})},
+               coords={"time": times, "lat": LAT, "lon": LON}).to_netcdf(tmp_path / "s.nc")
+    with pytest.warns(UserWarning, match="no pressure level; taken as 500 hPa"):
+        ds = open_archive(tmp_path / "s.nc")
+    assert list(ds.data_vars) == ["z500", "td2m"]  # preference q850 > td2m > pwat
+    np.testing.assert_allclose(ds["td2m"].values, td_c + 273.15)  # 0 degC = 273.15 K (SI)
+    ds = open_archive(tmp_path / "s.nc", fields=["pwat"])
+    np.testing.assert_allclose(ds["pwat"].values, td_c + 25.0)
+    assert ds["pwat"].attrs["units"] == "kg m-2"
+
+
+def test_eofs_hgt_djf_opens_with_units_inference_warning():
+    """eofs' shipped hgt_djf.nc: 65 DJF means of real 500 hPa height, no units attribute."""
+    eofs_examples = pytest.importorskip("eofs.examples")
+    path = eofs_examples.example_data_path("hgt_djf.nc")
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", xr.SerializationWarning)  # its reference date
+        with pytest.warns(UserWarning, match=r"variable 'z' has no units; 'gpm' inferred"):
+            ds = open_archive(path)
+        raw = xr.open_dataset(path)
+    assert ds.sizes["time"] == 65
+    assert ds["z500"].attrs["units"] == "gpm"
+    np.testing.assert_array_equal(ds["lat"].values, np.sort(raw["latitude"].values))
+    assert np.all(np.diff(ds["lon"].values) > 0) and ds["lon"].max() < 180
+    # One sample per winter: passed through, not reduced to the 12 UTC hour.
+    np.testing.assert_array_equal(ds["time"].values, raw["time"].values)
+    expected = raw["z"].isel(pressure=0).sortby("latitude").values
+    np.testing.assert_allclose(ds["z500"].values, expected)
+
+
+def test_dask_backed_and_lazy(tmp_path):
+    times = daily_times(periods=10)
+    paths = write_demo_style(tmp_path, times)
+    ds = open_archive(paths, chunks={"time": 4})
+    assert ds["z500"].chunks[0] == (4, 4, 2)
+    np.testing.assert_allclose(ds["z500"].values, smooth_height(times))
+
+
+# --------------------------------------------------------------------------- time handling
+
+def _six_hourly(tmp_path):
+    times = pd.date_range("2003-07-01", periods=4 * 5, freq="6h")
+    z = smooth_height(times)
+    path = tmp_path / "six.nc"
+    xr.Dataset({"zg": (("time", "lat", "lon"), z, {"units": "m"})},
+               coords={"time": times, "lat": LAT, "lon": LON, "plev": ((), 50000.0,
+                                                                    {"units": "Pa"})}
+               ).to_netcdf(path)
+    return path, times, z
+
+
+def test_sub_daily_instant_at_12_utc(tmp_path):
+    path, times, z = _six_hourly(tmp_path)
+    ds = open_archive(path, hour=12, daily="instant")
+    noon = times.hour == 12
+    np.testing.assert_array_equal(ds["time"].values, times[noon].values)
+    np.testing.assert_allclose(ds["z500"].values, z[noon])
+
+
+def test_sub_daily_daily_mean_matches_pandas_resample(tmp_path):
+    """Daily mean against pandas' resample("1D").mean() (calendar days, UTC)."""
+    path, times, z = _six_hourly(tmp_path)
+    ds = open_archive(path, hour=12, daily="mean")
+    point = pd.Series(z[:, 10, 20], index=times).resample("1D").mean()
+    np.testing.assert_allclose(ds["z500"].values[:, 10, 20], point.values)
+    np.testing.assert_array_equal(ds["time"].values,
+                                  (point.index + pd.Timedelta(hours=12)).values)
+
+
+def test_no_time_at_requested_hour(tmp_path):
+    path, _, _ = _six_hourly(tmp_path)
+    with pytest.raises(AnalogsInputError, match=r"six.nc fall on 03 UTC \(hours found: 00, 06, 12, 18\)"):
+        open_archive(path, hour=3)
+
+
+def test_daily_at_other_hour_is_kept_with_warning(tmp_path):
+    times = daily_times(periods=4, hour=0)
+    path = _height_file(tmp_path / "d.nc", smooth_height(times), times=times,
+                        attrs={"units": "gpm"}, level=500.0)
+    with pytest.warns(UserWarning, match="valid at 00 UTC, not 12 UTC"):
+        ds = open_archive(path)
+    np.testing.assert_array_equal(ds["time"].values, times.values)
+
+
+def test_duplicate_times_keep_first(tmp_path):
+    times = daily_times(periods=4)
+    z = smooth_height(times)
+    first = _height_file(tmp_path / "a.nc", z, times=times, attrs={"units": "gpm"},
+                         level=500.0)
+    second = _height_file(tmp_path / "b.nc", z[2:] + 100.0, times=times[2:],
+                          attrs={"units": "gpm"}, level=500.0)
+    with pytest.warns(UserWarning, match="2 repeated time"):
+        ds = open_archive([first, second])
+    np.testing.assert_allclose(ds["z500"].values, z)
+
+
+def test_region_subset(tmp_path):
+    path = tmp_path / "era5.nc"
+    era5_dataset(daily_times(periods=2)).to_netcdf(path)
+    ds = open_archive(path, region=(20.0, 50.0, -130.0, -60.0))
+    np.testing.assert_array_equal(ds["lat"].values, LAT[(LAT >= 20) & (LAT <= 50)])
+    np.testing.assert_array_equal(ds["lon"].values, LON[(LON >= -130) & (LON <= -60)])
+    across = open_archive(path, region=(0.0, 10.0, 170.0, -170.0))  # crosses 180
+    np.testing.assert_array_equal(across["lon"].values, [-180.0, -175.0, -170.0, 170.0,
+                                                         175.0])
+    with pytest.raises(AnalogsInputError, match="selects no grid point"):
+        open_archive(path, region=(21.0, 24.0, -130.0, -60.0))
+
+
+# --------------------------------------------------------------------------- targets, regrid
+
+def test_open_target_selects_one_time(tmp_path):
+    times = daily_times(periods=3)
+    path = tmp_path / "era5.nc"
+    era5_dataset(times).to_netcdf(path)
+    with pytest.raises(AnalogsInputError, match=r"holds 3 times from 2001-12-20T12:00 to 2001-12-22T12:00"):
+        open_target(path)
+    target = open_target(path, time="2001-12-21T12:00")
+    assert target.sizes["time"] == 1
+    np.testing.assert_allclose(target["z500"].values[0], smooth_height(times)[1])
+    assert open_target(path, time="2001-12-22")["time"].values[0] == times.values[2]
+    with pytest.raises(AnalogsInputError, match="no time matches '2002-01-05'"):
+        open_target(path, time="2002-01-05")
+
+
+def test_open_target_without_time(tmp_path):
+    z = smooth_height(daily_times(periods=1))[0]
+    xr.Dataset({"zg": (("lat", "lon"), z, {"units": "m"})},
+               coords={"lat": LAT, "lon": LON, "plev": ((), 500.0, {"units": "hPa"})}
+               ).to_netcdf(tmp_path / "t.nc")
+    target = open_target(tmp_path / "t.nc")
+    assert target.sizes["time"] == 1 and np.isnat(target["time"].values[0])
+    np.testing.assert_allclose(target["z500"].values[0], z)
+
+
+def test_regrid_half_degree_0_360_field_to_store_grid(tmp_path):
+    """A 0.5-degree field (lon 0-360, lat descending, m2 s-2) back on a 2.5-degree grid.
+
+    Reference: scipy.interpolate.RegularGridInterpolator (bilinear) on the same field,
+    and the smooth analytic field itself within interpolation error.
+    """
+    fine_lat = np.arange(10.0, 70.01, 0.5)
+    fine_lon = np.arange(0.0, 360.0, 0.5)
+    when = daily_times(periods=1)
+    z = smooth_height(when, fine_lat, fine_lon)[0]
+    xr.Dataset({"z": (("latitude", "longitude"), z[::-1] * 9.80665,
+                      {"standard_name": "geopotential", "units": "m**2 s**-2"})},
+               coords={"latitude": fine_lat[::-1], "longitude": fine_lon,
+                       "valid_time": when[0], "pressure_level": ((), 500.0,
+                                                                 {"units": "hPa"})}
+               ).to_netcdf(tmp_path / "fine.nc")
+    target = open_target(tmp_path / "fine.nc")
+    store_lat = np.arange(20.0, 60.01, 2.5)
+    store_lon = np.arange(-130.0, -59.9, 2.5)
+    out = regrid_to(target, store_lat, store_lon)
+    assert out["z500"].shape == (1, store_lat.size, store_lon.size)
+    lon360 = np.mod(store_lon, 360.0)
+    grid_lat, grid_lon = np.meshgrid(store_lat, lon360, indexing="ij")
+    reference = RegularGridInterpolator((fine_lat, fine_lon), z)((grid_lat, grid_lon))
+    np.testing.assert_allclose(out["z500"].values[0], reference, rtol=1e-10)
+    exact = smooth_height(when, store_lat, store_lon)[0]
+    assert np.abs(out["z500"].values[0] - exact).max() < 1.0  # gpm; bilinear error
+    # Across the date line on a global grid: the periodic wrap keeps it defined.
+    wrap = regrid_to(target, [30.0], [179.8, -179.8])
+    assert np.all(np.isfinite(wrap["z500"].values))
+    with pytest.raises(AnalogsInputError, match=r"covers lat 10 to 70.*needs lat 0 to 60"):
+        regrid_to(target, np.arange(0.0, 60.1, 2.5), store_lon)
+
+
+# --------------------------------------------------------------------------- errors
+
+def test_missing_variable_names_files(tmp_path):
+    times = daily_times(periods=2)
+    paths = write_demo_style(tmp_path, times)
+    zg_only = [p for p in paths if "zg500" in p.name]
+    with pytest.raises(AnalogsInputError, match=r"field 'q850' not found in .*zg500_2001\.nc.*variables: zg500_2001\.nc: zg"):
+        open_archive(zg_only, fields=["z500", "q850"])
+    xr.Dataset({"t": (("time", "lat", "lon"), np.zeros((2, LAT.size, LON.size)))},
+               coords={"time": times, "lat": LAT, "lon": LON}).to_netcdf(tmp_path / "t.nc")
+    with pytest.raises(AnalogsInputError, match=r"no 500 hPa height variable .* in .*t\.nc"):
+        with pytest.warns(UserWarning, match="no supported variable"):
+            open_archive(tmp_path / "t.nc")
+
+
+def test_unknown_units_with_ambiguous_magnitude(tmp_path):
+    values = np.full((2, LAT.size, LON.size), 1500.0)  # neither gpm at 500 hPa nor m2 s-2
+    path = _height_file(tmp_path / "u.nc", values, level=500.0)
+    with pytest.raises(AnalogsInputError, match=r"u\.nc: variable 'z' has no units .*set its units attribute \(e\.g\. units='gpm'\)"):
+        open_archive(path)
+    path = _height_file(tmp_path / "f.nc", values, attrs={"units": "furlongs"}, level=500.0)
+    with pytest.raises(AnalogsInputError, match=r"unrecognised units 'furlongs'"):
+        open_archive(path)
+
+
+def test_inferred_geopotential_units_warn(tmp_path):
+    values = smooth_height(daily_times(periods=2)) * 9.80665
+    path = _height_file(tmp_path / "g.nc", values, level=500.0)
+    with pytest.warns(UserWarning, match=r"g\.nc: variable 'z' has no units; 'm2 s-2' inferred"):
+        ds = open_archive(path)
+    np.testing.assert_allclose(ds["z500"].values, values / 9.80665)
+
+
+def test_no_500_hpa_level(tmp_path):
+    times = daily_times(periods=2)
+    z = smooth_height(times)
+    xr.Dataset({"z": (("time", "pressure_level", "lat", "lon"), np.stack([z, z], 1),
+                      {"units": "gpm"})},
+               coords={"time": times, "pressure_level": ("pressure_level", [850.0, 700.0],
+                                                         {"units": "hPa"}),
+                       "lat": LAT, "lon": LON}).to_netcdf(tmp_path / "l.nc")
+    with pytest.raises(AnalogsInputError, match=r"l\.nc: variable 'z': no 500 hPa level in pressure_level=\[850, 700\]"):
+        open_archive(tmp_path / "l.nc")
+
+
+def test_height_without_level_at_other_magnitude(tmp_path):
+    values = smooth_height(daily_times(periods=2)) - 4000.0  # like an 850 hPa height
+    path = _height_file(tmp_path / "h.nc", values, attrs={"units": "m"})
+    with pytest.raises(AnalogsInputError, match=r"h\.nc: variable 'z' has no pressure level .*do not look like 500 hPa"):
+        open_archive(path)
+
+
+def test_level_in_pa_without_units_is_inferred(tmp_path):
+    values = smooth_height(daily_times(periods=2))
+    path = tmp_path / "p.nc"
+    xr.Dataset({"z": (("time", "plev", "lat", "lon"), values[:, None], {"units": "m"})},
+               coords={"time": daily_times(periods=2), "plev": [50000.0], "lat": LAT,
+                       "lon": LON}).to_netcdf(path)
+    with pytest.warns(UserWarning, match=r"level coordinate 'plev' has no units; taken as Pa"):
+        ds = open_archive(path)
+    np.testing.assert_allclose(ds["z500"].values, values)
+
+
+def test_non_netcdf_and_truncated_files(tmp_path):
+    text = tmp_path / "notes.nc"
+    text.write_text("time,lat,lon\n")
+    with pytest.raises(AnalogsInputError, match=r"notes\.nc: not a NetCDF file"):
+        open_archive(text)
+    values = smooth_height(daily_times(periods=30))
+    for fmt in ("NETCDF4", "NETCDF3_64BIT"):
+        full = tmp_path / f"full_{fmt}.nc"
+        xr.Dataset({"z": (("time", "lat", "lon"), values, {"units": "gpm"})},
+                   coords={"time": daily_times(periods=30), "lat": LAT, "lon": LON,
+                           "level": ((), 500.0, {"units": "hPa"})}).to_netcdf(full, format=fmt)
+        cut = tmp_path / f"cut_{fmt}.nc"
+        cut.write_bytes(full.read_bytes()[: full.stat().st_size // 2])
+        with pytest.raises(AnalogsInputError, match=rf"cut_{fmt}\.nc: .*truncated"):
+            open_archive(cut)
+    with pytest.raises(AnalogsInputError, match=r"absent\.nc: no such file"):
+        open_archive(tmp_path / "absent.nc")
+
+
+def test_missing_latitude(tmp_path):
+    xr.Dataset({"z": (("time", "row", "lon"), np.full((1, 3, LON.size), 5500.0),
+                      {"units": "gpm"})},
+               coords={"time": daily_times(periods=1), "lon": LON, "level": ((), 500.0, {"units": "hPa"})}
+               ).to_netcdf(tmp_path / "nolat.nc")
+    with pytest.raises(AnalogsInputError, match=r"nolat\.nc: variable 'z' has no latitude coordinate"):
+        open_archive(tmp_path / "nolat.nc")
+
+
+def test_missing_time(tmp_path):
+    xr.Dataset({"z": (("lat", "lon"), np.full((LAT.size, LON.size), 5500.0),
+                      {"units": "gpm"})},
+               coords={"lat": LAT, "lon": LON, "level": ((), 500.0, {"units": "hPa"})}).to_netcdf(tmp_path / "nt.nc")
+    with pytest.raises(AnalogsInputError, match=r"nt\.nc: variable 'z' has no time dimension"):
+        open_archive(tmp_path / "nt.nc")
+
+
+def test_bad_options():
+    with pytest.raises(AnalogsInputError, match="'daily' parameter of open_archive"):
+        open_archive("x.nc", daily="median")
+    with pytest.raises(AnalogsInputError, match="'fields' parameter of open_archive"):
+        open_archive("x.nc", fields=["t2m"])
+    with pytest.raises(AnalogsInputError, match="'region' parameter"):
+        open_archive("x.nc", region=(50.0, 20.0, 0.0, 10.0))
+
+
+# --------------------------------------------------------------------------- property test
+
+@settings(max_examples=40, deadline=None)
+@given(nlat=st.integers(2, 7), nlon=st.integers(2, 9), step=st.sampled_from([1.0, 2.5, 5.0]),
+       start=st.floats(-180.0, 180.0), convention=st.sampled_from(["-180", "0-360", "raw"]),
+       reverse_lat=st.booleans(), seed=st.integers(0, 2 ** 16), shuffle_lon=st.booleans())
+def test_normalise_grid_property(nlat, nlon, step, start, convention, reverse_lat, seed,
+                                 shuffle_lon):
+    """Any lon convention / ordering: lat ascends, lon ascends in [-180, 180), values kept."""
+    rng = np.random.default_rng(seed)
+    lat = np.sort(rng.choice(np.arange(-89.0, 90.0, 1.0), size=nlat, replace=False))
+    lon = (round(start) + step * np.arange(nlon)) % 360.0
+    if convention == "-180":
+        lon = (lon + 180.0) % 360.0 - 180.0
+    elif convention == "raw":
+        lon = lon + 360.0 * rng.integers(-1, 2, size=nlon)
+    values = rng.normal(size=(nlat, nlon))
+    lat_in = lat[::-1] if reverse_lat else lat
+    vals_in = values[::-1] if reverse_lat else values
+    order = rng.permutation(nlon) if shuffle_lon else np.arange(nlon)
+    da = xr.DataArray(vals_in[:, order], dims=("lat", "lon"),
+                      coords={"lat": lat_in, "lon": lon[order]})
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", UserWarning)  # non-monotonic input warns
+        out = normalise_grid(da)
+    assert np.all(np.diff(out["lat"].values) > 0)
+    assert np.all(np.diff(out["lon"].values) > 0)
+    assert out["lon"].min() >= -180.0 and out["lon"].max() < 180.0
+    # Each value is still attached to its (lat, lon) location (common practice, no source).
+    expected = {(la, (lo + 180.0) % 360.0 - 180.0): values[i, j]
+                for i, la in enumerate(lat) for j, lo in enumerate(lon)}
+    for i, la in enumerate(out["lat"].values):
+        for j, lo in enumerate(out["lon"].values):
+            assert out.values[i, j] == expected[(la, lo)]
