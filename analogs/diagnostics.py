@@ -28,7 +28,9 @@ References
 from __future__ import annotations
 
 import numbers
+import os
 from collections.abc import Mapping
+from concurrent.futures import ThreadPoolExecutor
 
 import numpy as np
 import pandas as pd
@@ -771,11 +773,65 @@ def _distance_to_box_km(lat, lon, region):
     return great_circle_km(lat, lon, np.clip(lat, south, north), np.clip(lon, west, east))
 
 
+def _block_columns(z, dewpoint, pwat, *, lat, lon, lat_in, lon_in, weights, lat_weights,
+                   region, ridge_cols, trough_cols, tc_near_km, moist_threshold_c,
+                   low_params) -> dict[str, np.ndarray]:
+    """Every column of :func:`compute_diagnostics` for one block of days."""
+    nt = z.shape[0]
+    sub = (Ellipsis,) + np.ix_(lat_in, lon_in)
+    columns = {}
+    dz_dx, dz_dy = spherical_gradient(z, lat, lon)
+    u, v = _geostrophic_np(z, lat, lon, gradient=(dz_dx, dz_dy))
+    zeta = _vorticity_np(u, v, lat, lon)
+    vort_adv = _advection_np(zeta, u, v, lat, lon)
+    u_mean = _weighted_mean_np(u[sub], weights)
+    v_mean = _weighted_mean_np(v[sub], weights)
+    columns["flow_u_ms"] = u_mean
+    columns["flow_v_ms"] = v_mean
+    columns["flow_direction_deg"] = _direction_np(u_mean, v_mean)
+    columns["flow_speed_ms"] = np.hypot(u_mean, v_mean)
+    columns["height_gradient"] = _weighted_mean_np(np.hypot(dz_dx, dz_dy)[sub], weights) * 1.0e6
+    columns["vorticity"] = _weighted_mean_np(zeta[sub], weights)
+    columns["vorticity_advection"] = _weighted_mean_np(vort_adv[sub], weights)
+
+    wave = z - z.mean(axis=-1, keepdims=True)
+    profile = np.tensordot(wave[:, lat_in, :], lat_weights, axes=([1], [0])) / lat_weights.sum()
+    for name, values in zip(("ridge_lon", "ridge_amplitude", "trough_lon", "trough_amplitude"),
+                            _ridge_trough_np(profile, lon, ridge_cols, trough_cols)):
+        columns[name] = values
+
+    lows = _closed_lows_np(z, lat, lon, moisture=dewpoint, **low_params)
+    near = _distance_to_box_km(lows["lat"], lows["lon"], region) <= tc_near_km
+    order = np.lexsort((-lows["depth"][near], lows["t"][near]))
+    t_near = lows["t"][near][order]
+    first = np.unique(t_near, return_index=True)[1]
+    days = t_near[first]
+    for name, key in (("tc_lat", "lat"), ("tc_lon", "lon"), ("tc_depth", "depth"),
+                      ("tc_radius_km", "radius"), ("tc_dewpoint_c", "moisture")):
+        values = np.full(nt, np.nan)
+        values[days] = lows[key][near][order][first]
+        columns[name] = values - ZERO_CELSIUS_K if key == "moisture" else values
+    columns["tc_present"] = np.isin(np.arange(nt), days)
+
+    nan = np.full(nt, np.nan)
+    if dewpoint is not None:
+        columns["dewpoint_region_c"] = _weighted_mean_np(dewpoint[sub], weights) - ZERO_CELSIUS_K
+        columns["moist_line_lat"] = _moist_line_np(dewpoint, lat, moist_threshold_c, lon_in)
+        moist = (dewpoint[sub] >= moist_threshold_c + ZERO_CELSIUS_K).astype(float)
+        columns["moist_area_fraction"] = _weighted_mean_np(moist, weights)
+    else:
+        for name in ("dewpoint_region_c", "moist_line_lat", "moist_area_fraction"):
+            columns[name] = nan
+    columns["pwat_region"] = nan if pwat is None else _weighted_mean_np(pwat[sub], weights)
+    return columns
+
+
 def compute_diagnostics(ds: xr.Dataset, region, *, upstream_deg: float = 25.0,
                         downstream_deg: float = 15.0, tc_near_km: float = 600.0,
                         closed_lows: Mapping | None = None,
                         moist_threshold_c: float = SEVERE_DEWPOINT_C,
-                        block_days: int = 1000, progress: bool = False) -> pd.DataFrame:
+                        block_days: int = 1000, n_threads: int | None = None,
+                        progress: bool = False) -> pd.DataFrame:
     r"""All regime diagnostics of an archive over a region, one row a day.
 
     Columns (units in :data:`DIAGNOSTIC_UNITS`):
@@ -804,7 +860,8 @@ def compute_diagnostics(ds: xr.Dataset, region, *, upstream_deg: float = 25.0,
     ``frame.attrs["missing"] == ["moisture"]`` (``["dewpoint"]`` with ``pwat`` only).
 
     The archive is walked in blocks of ``block_days`` (dask-backed inputs compute one
-    block at a time); all maths is vectorised over the days of a block.
+    block at a time), ``n_threads`` blocks at once (default: the CPU count, at most
+    4); all maths is vectorised over the days of a block.
     """
     if not isinstance(ds, xr.Dataset) or "z500" not in ds:
         raise AnalogsInputError(
@@ -831,78 +888,32 @@ def compute_diagnostics(ds: xr.Dataset, region, *, upstream_deg: float = 25.0,
     low_params.update(closed_lows or {})
 
     times = z500["time"].values
-    starts = range(0, times.size, block_days)
-    if progress:
-        from tqdm.auto import tqdm
-        starts = tqdm(starts, desc="diagnostics", unit="block")
-    box = np.ix_(lat_in, lon_in)
-    columns: dict[str, list] = {name: [] for name in DIAGNOSTIC_UNITS}
-    missing: list[str] = []
-    for start in starts:
+    setup = {"lat": lat, "lon": lon, "lat_in": lat_in, "lon_in": lon_in,
+             "weights": weights, "lat_weights": lat_weights, "region": region,
+             "ridge_cols": ridge_cols, "trough_cols": trough_cols,
+             "tc_near_km": tc_near_km, "moist_threshold_c": moist_threshold_c,
+             "low_params": low_params}
+
+    def one_block(start):
         block = ds.isel(time=slice(start, start + block_days))
         z = np.asarray(block["z500"].transpose("time", "lat", "lon").values, dtype=float)
-        dewpoint, pwat = _moisture_block(block)
-        nt = z.shape[0]
+        return _block_columns(z, *_moisture_block(block), **setup)
 
-        dz_dx, dz_dy = spherical_gradient(z, lat, lon)
-        u, v = _geostrophic_np(z, lat, lon, gradient=(dz_dx, dz_dy))
-        zeta = _vorticity_np(u, v, lat, lon)
-        vort_adv = _advection_np(zeta, u, v, lat, lon)
-        sub = (Ellipsis,) + box
-        u_mean = _weighted_mean_np(u[sub], weights)
-        v_mean = _weighted_mean_np(v[sub], weights)
-        columns["flow_u_ms"].append(u_mean)
-        columns["flow_v_ms"].append(v_mean)
-        columns["flow_direction_deg"].append(_direction_np(u_mean, v_mean))
-        columns["flow_speed_ms"].append(np.hypot(u_mean, v_mean))
-        columns["height_gradient"].append(
-            _weighted_mean_np(np.hypot(dz_dx, dz_dy)[sub], weights) * 1.0e6)
-        columns["vorticity"].append(_weighted_mean_np(zeta[sub], weights))
-        columns["vorticity_advection"].append(_weighted_mean_np(vort_adv[sub], weights))
-
-        wave = z - z.mean(axis=-1, keepdims=True)
-        profile = np.tensordot(wave[:, lat_in, :], lat_weights, axes=([1], [0])) \
-            / lat_weights.sum()
-        for name, values in zip(("ridge_lon", "ridge_amplitude", "trough_lon",
-                                 "trough_amplitude"),
-                                _ridge_trough_np(profile, lon, ridge_cols, trough_cols)):
-            columns[name].append(values)
-
-        lows = _closed_lows_np(z, lat, lon, moisture=dewpoint, **low_params)
-        near = _distance_to_box_km(lows["lat"], lows["lon"], region) <= tc_near_km
-        order = np.lexsort((-lows["depth"][near], lows["t"][near]))
-        t_near = lows["t"][near][order]
-        first = np.unique(t_near, return_index=True)[1]
-        days = t_near[first]
-        for name, key in (("tc_lat", "lat"), ("tc_lon", "lon"), ("tc_depth", "depth"),
-                          ("tc_radius_km", "radius"), ("tc_dewpoint_c", "moisture")):
-            values = np.full(nt, np.nan)
-            values[days] = lows[key][near][order][first]
-            if key == "moisture":
-                values -= ZERO_CELSIUS_K
-            columns[name].append(values)
-        present = np.zeros(nt, dtype=bool)
-        present[days] = True
-        columns["tc_present"].append(present)
-
-        nan = np.full(nt, np.nan)
-        if dewpoint is not None:
-            columns["dewpoint_region_c"].append(
-                _weighted_mean_np(dewpoint[sub], weights) - ZERO_CELSIUS_K)
-            columns["moist_line_lat"].append(
-                _moist_line_np(dewpoint, lat, moist_threshold_c, lon_in))
-            moist = (dewpoint[sub] >= moist_threshold_c + ZERO_CELSIUS_K).astype(float)
-            columns["moist_area_fraction"].append(_weighted_mean_np(moist, weights))
-        else:
-            for name in ("dewpoint_region_c", "moist_line_lat", "moist_area_fraction"):
-                columns[name].append(nan)
-        columns["pwat_region"].append(
-            nan if pwat is None else _weighted_mean_np(pwat[sub], weights))
-        if dewpoint is None and not missing:
-            missing = ["dewpoint"] if pwat is not None else ["moisture"]
-
-    frame = pd.DataFrame({name: np.concatenate(parts) for name, parts in columns.items()},
-                         index=pd.DatetimeIndex(times, name="time"))
+    starts = range(0, times.size, block_days)
+    # numpy and scipy.ndimage release the GIL in the heavy loops: threads overlap blocks.
+    workers = min(len(starts), n_threads or min(os.cpu_count() or 1, 4))
+    with ThreadPoolExecutor(max_workers=max(workers, 1)) as pool:
+        results = pool.map(one_block, starts)
+        if progress:
+            from tqdm.auto import tqdm
+            results = tqdm(results, total=len(starts), desc="diagnostics", unit="block")
+        blocks = list(results)
+    if any(name in ds for name in ("q850", "td2m")):
+        missing = []
+    else:
+        missing = ["dewpoint"] if "pwat" in ds else ["moisture"]
+    columns = {name: np.concatenate([b[name] for b in blocks]) for name in DIAGNOSTIC_UNITS}
+    frame = pd.DataFrame(columns, index=pd.DatetimeIndex(times, name="time"))
     if frame["pwat_region"].isna().all():
         frame = frame.drop(columns="pwat_region")
     frame.attrs["missing"] = missing
