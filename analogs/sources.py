@@ -605,6 +605,9 @@ def _find_axis(da, names, standard_name, units, where):
         coord = da.coords[key]
         if not _matches(coord, names, standard_name, units):
             continue
+        stated = str(coord.attrs.get("units", "")).strip().lower()
+        if stated and not stated.startswith("deg"):
+            continue  # projected x / y in metres, not a latitude-longitude axis
         if coord.ndim != 1:
             raise AnalogsInputError(
                 f"{where}: {standard_name} {key!r} is {coord.ndim}-D; expected a regular "
@@ -612,37 +615,49 @@ def _find_axis(da, names, standard_name, units, where):
         values = np.asarray(coord.values, dtype=float)
         if not np.all(np.isfinite(values)):
             raise AnalogsInputError(f"{where}: {standard_name} {key!r} has missing values")
+        if standard_name == "latitude" and np.abs(values).max() > 90.0 + 1e-6:
+            raise AnalogsInputError(
+                f"{where}: latitude {key!r} reaches {np.abs(values).max():g}; expected "
+                "degrees north within [-90, 90]")
         return coord.dims[0], values
     raise AnalogsInputError(
         f"{where} has no {standard_name} coordinate; expected one named "
         f"{' or '.join(names[:3])} or with standard_name {standard_name}")
 
 
+def _is_time_coord(name, coord):
+    return (str(name).lower() in _TIME_NAMES
+            or str(coord.attrs.get("standard_name", "")).lower() == "time"
+            or str(coord.attrs.get("axis", "")).upper() == "T"
+            or np.issubdtype(coord.dtype, np.datetime64))
+
+
 def _find_time(da, where, *, optional):
-    """(dim name or None, datetime64[ns] values) of the time axis of ``da``."""
-    candidates = []
-    for dim in da.dims:
-        if dim not in da.coords:
-            continue
-        coord = da.coords[dim]
-        named = (str(dim).lower() in _TIME_NAMES
-                 or str(coord.attrs.get("standard_name", "")).lower() == "time"
-                 or str(coord.attrs.get("axis", "")).upper() == "T")
-        is_date = np.issubdtype(coord.dtype, np.datetime64) or coord.dtype == object
-        if named or np.issubdtype(coord.dtype, np.datetime64):
-            candidates.append((not is_date, dim))
-    if not candidates:
-        if optional:
-            return None, np.array(["NaT"], dtype="datetime64[ns]")
-        raise AnalogsInputError(
-            f"{where} has no time dimension; expected one named time or valid_time, or "
-            "with standard_name time")
-    dim = sorted(candidates)[0][1]
-    return dim, _as_datetime64(da.coords[dim], where)
+    """(dim name or None, datetime64[ns] values) of the time axis of ``da``.
+
+    A time dimension is preferred; otherwise a scalar time coordinate (``valid_time``
+    before ``time``, since GRIB-derived files keep the reference time in ``time``)
+    gives the one valid time. With neither, ``optional`` gives NaT.
+    """
+    dims = [(not np.issubdtype(da.coords[d].dtype, np.datetime64), str(d)) for d in da.dims
+            if d in da.coords and _is_time_coord(d, da.coords[d])]
+    if dims:
+        dim = sorted(dims)[0][1]
+        return dim, _as_datetime64(da.coords[dim], where)
+    scalars = [(str(k) != "valid_time", str(k)) for k, c in da.coords.items()
+               if c.ndim == 0 and _is_time_coord(k, c)]
+    if scalars:
+        name = sorted(scalars)[0][1]
+        return None, _as_datetime64(da.coords[name], where)
+    if optional:
+        return None, np.array(["NaT"], dtype="datetime64[ns]")
+    raise AnalogsInputError(
+        f"{where} has no time dimension; expected one named time or valid_time, or "
+        "with standard_name time")
 
 
 def _as_datetime64(coord, where):
-    values = coord.values
+    values = np.atleast_1d(coord.values)
     if np.issubdtype(values.dtype, np.datetime64):
         return values.astype("datetime64[ns]")
     try:

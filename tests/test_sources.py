@@ -144,10 +144,24 @@ def test_eofs_hgt_djf_opens_with_units_inference_warning():
 
 
 def test_dask_backed_and_lazy(tmp_path):
+    """With chunks and stated units, opening, daily means and subsetting compute nothing."""
+    dask = pytest.importorskip("dask")
     times = daily_times(periods=10)
     paths = write_demo_style(tmp_path, times)
-    ds = open_archive(paths, chunks={"time": 4})
+    era5_dataset(pd.date_range("2003-07-01", periods=12, freq="6h")).to_netcdf(tmp_path / "e.nc")
+    graphs = []
+
+    def counting_scheduler(dsk, keys, **kwargs):
+        graphs.append(len(dsk))
+        return dask.get(dsk, keys, **kwargs)
+
+    with dask.config.set(scheduler=counting_scheduler):
+        ds = open_archive(paths, chunks={"time": 4})
+        sub = open_archive(tmp_path / "e.nc", chunks={"time": 4}, daily="mean",
+                           region=(0.0, 40.0, -100.0, 0.0))
+    assert graphs == []
     assert ds["z500"].chunks[0] == (4, 4, 2)
+    assert isinstance(sub["q850"].data, dask.array.Array) and sub.sizes["time"] == 3
     np.testing.assert_allclose(ds["z500"].values, smooth_height(times))
 
 
@@ -265,6 +279,7 @@ def test_regrid_half_degree_0_360_field_to_store_grid(tmp_path):
                                                                  {"units": "hPa"})}
                ).to_netcdf(tmp_path / "fine.nc")
     target = open_target(tmp_path / "fine.nc")
+    assert target["time"].values[0] == when.values[0]  # from the scalar valid_time
     store_lat = np.arange(20.0, 60.01, 2.5)
     store_lon = np.arange(-130.0, -59.9, 2.5)
     out = regrid_to(target, store_lat, store_lon)
@@ -373,6 +388,34 @@ def test_missing_latitude(tmp_path):
         open_archive(tmp_path / "nolat.nc")
 
 
+def test_scalar_time_per_file(tmp_path):
+    """Daily files holding one time each as a scalar coordinate join into one archive."""
+    times = daily_times(periods=3)
+    z = smooth_height(times)
+    paths = []
+    for i, when in enumerate(times):
+        path = tmp_path / f"day{i}.nc"
+        xr.Dataset({"hgt": (("lat", "lon"), z[i], {"units": "gpm"})},
+                   coords={"time": when, "lat": LAT, "lon": LON,
+                           "level": ((), 500.0, {"units": "hPa"})}).to_netcdf(path)
+        paths.append(path)
+    ds = open_archive(paths[::-1])
+    np.testing.assert_array_equal(ds["time"].values, times.values)
+    np.testing.assert_allclose(ds["z500"].values, z)
+
+
+def test_projected_grid_is_refused(tmp_path):
+    y, x = np.arange(3) * 1e5, np.arange(4) * 1e5
+    lat2d = 30.0 + np.add.outer(y, x) / 1e6
+    xr.Dataset({"z": (("time", "y", "x"), np.full((1, 3, 4), 5500.0), {"units": "gpm"})},
+               coords={"time": daily_times(periods=1), "level": ((), 500.0, {"units": "hPa"}),
+                       "y": ("y", y, {"units": "m"}), "x": ("x", x, {"units": "m"}),
+                       "lat": (("y", "x"), lat2d), "lon": (("y", "x"), lat2d - 120.0)}
+               ).to_netcdf(tmp_path / "lcc.nc")
+    with pytest.raises(AnalogsInputError, match=r"lcc\.nc: variable 'z': latitude 'lat' is 2-D"):
+        open_archive(tmp_path / "lcc.nc")
+
+
 def test_missing_time(tmp_path):
     xr.Dataset({"z": (("lat", "lon"), np.full((LAT.size, LON.size), 5500.0),
                       {"units": "gpm"})},
@@ -424,3 +467,18 @@ def test_normalise_grid_property(nlat, nlon, step, start, convention, reverse_la
     for i, la in enumerate(out["lat"].values):
         for j, lo in enumerate(out["lon"].values):
             assert out.values[i, j] == expected[(la, lo)]
+
+
+def test_irregular_and_unsorted_latitude(tmp_path):
+    """Gaussian-like uneven spacing is kept; a shuffled latitude is sorted with a warning."""
+    lat = np.array([-60.0, -31.0, -2.5, 0.0, 28.7, 61.0])
+    shuffled = lat[[0, 2, 1, 3, 5, 4]]
+    times = daily_times(periods=2)
+    z = smooth_height(times, lat, LON)
+    xr.Dataset({"hgt": (("time", "lat", "lon"), z[:, [0, 2, 1, 3, 5, 4]], {"units": "gpm"})},
+               coords={"time": times, "lat": shuffled, "lon": LON,
+                       "level": ((), 500.0, {"units": "hPa"})}).to_netcdf(tmp_path / "g.nc")
+    with pytest.warns(UserWarning, match=r"g\.nc: latitude is not monotonic; it is sorted"):
+        ds = open_archive(tmp_path / "g.nc")
+    np.testing.assert_array_equal(ds["lat"].values, lat)
+    np.testing.assert_allclose(ds["z500"].values, z)
