@@ -30,12 +30,14 @@ from .index import AnalogIndex
 from .outcomes import (
     Region,
     analog_weights,
+    cyclone_relative_composite,
     daily_event_counts,
+    outcome_maps,
     read_events,
     summarize_outcomes,
 )
 from .query import candidate_ids, find_analogs
-from .regimes import RuleClassifier, tag_days
+from .regimes import REGIME_LABELS, tag_days
 from .sources import open_archive, open_target, regrid_to
 
 WEIGHT_SCHEMES = ("equal", "inverse_distance", "gaussian")
@@ -180,6 +182,15 @@ def build_store(paths, store, *, events=None, fields=None, n_modes=None, varianc
             store_io.write_table(event_table, staged / store_io.EVENTS)
         store_io.write_table(tags.reset_index(drop=True), staged / store_io.TAGS)
     return AnalogStore.load(store)
+
+
+def _quadrant_summary(composite: pd.DataFrame) -> dict:
+    """{kind: {quadrant: share}} of a cyclone-relative composite, for JSON."""
+    summary = {}
+    for (kind, quadrant), row in composite.iterrows():
+        summary.setdefault(kind, {})[quadrant] = {"events": int(row["total"]),
+                                                  "share": float(row["share"])}
+    return summary
 
 
 def skill_by_month(pcs, times, observed, *, region, top=DEFAULT_TOP, window=DEFAULT_WINDOW,
@@ -394,9 +405,10 @@ class AnalogStore:
                               separation=separation, restrict=restrict)
         analogs = self._describe_analogs(chosen, region)
         outcomes = self._outcomes(analogs, target_time, window, region, weights, confidence)
+        outcomes["skill"] = self.skill_for(target_time)
         settings = {"top": top, "window_days": window, "exclude_days": exclude,
                     "separation_days": separation, "regime": regime,
-                    "region": region.to_dict(), "weights": weights,
+                    "region": {**region.to_dict(), "label": region.label()}, "weights": weights,
                     "n_modes": self.n_query_modes, "store": str(self.path)}
         return AnalogResult(target=target, analogs=analogs, outcomes=outcomes, settings=settings)
 
@@ -413,7 +425,7 @@ class AnalogStore:
         if self.tags is None:
             raise AnalogsInputError(f"--regime {regime}: store {self.path} has no tags")
         known = sorted(self.tags["regime"].unique())
-        labels = set(RuleClassifier.labels) | set(known)
+        labels = set(REGIME_LABELS) | set(known)
         if regime not in labels:
             raise AnalogsInputError(
                 f"--regime {regime!r} is not a regime label; expected one of {', '.join(sorted(labels))}")
@@ -454,9 +466,30 @@ class AnalogStore:
         summary = summarize_outcomes(analog_counts, climatology_counts, weights=weight_values,
                                      confidence=confidence)
         summary["has_events"] = self.events is not None
+        composite = self.cyclone_composite(days)
+        if composite is not None:
+            summary["cyclone_quadrants"] = _quadrant_summary(composite)
         return summary
 
     # -- cross-validated skill -------------------------------------------------------
+    def skill_for(self, target_time=None) -> dict | None:
+        """The stored cross-validated skill of the default settings, for the target's
+        month when known (see :func:`skill_by_month`); None when not measured."""
+        skill = self.manifest.get("skill")
+        if not skill:
+            return None
+        answer = {"method": skill["method"], "region": skill["region"],
+                  "brier_skill_score": skill["brier_skill_score"],
+                  "brier_skill_score_ci": skill["brier_skill_score_ci"],
+                  "roc_auc": skill["roc_auc"]}
+        if target_time is not None:
+            month = skill["by_month"].get(str(pd.Timestamp(target_time).month))
+            if month:
+                answer["month"] = int(pd.Timestamp(target_time).month)
+                answer["month_brier_skill_score"] = month["brier_skill_score"]
+                answer["month_base_rate"] = month["base_rate"]
+        return answer
+
     def observed(self, region=None) -> np.ndarray:
         """Whether at least one event fell in the region on each archive day."""
         if self.events is None:
@@ -512,3 +545,35 @@ class AnalogStore:
         with store_io.writing(self.path, manifest, keep=tuple(self.manifest["files"])):
             pass
         self.manifest = store_io.verify(self.path)
+
+    # -- where the reports fell ------------------------------------------------------
+    def outcome_maps(self, result: AnalogResult) -> xr.Dataset:
+        """Neighbourhood probability (40 km) and practically-perfect report density of
+        the analog days of ``result`` on the store grid (:func:`analogs.outcomes.outcome_maps`)."""
+        if self.events is None:
+            raise AnalogsInputError(f"store {self.path} has no events table: maps need one")
+        lat, lon = self.grid
+        days = pd.DatetimeIndex(pd.to_datetime(result.analogs["date"]))
+        maps = outcome_maps(self.events, days, lat, lon)
+        maps.attrs.update({"target": str(result.target["date"]),
+                           "n_analogs": int(len(days)), "source": f"analogs store {self.path}"})
+        return maps
+
+    def cyclone_centres(self, days=None) -> pd.DataFrame:
+        """Tropical-cyclone centres found by the regime diagnostics (day, lat, lon)."""
+        if self.tags is None or "tc_lat" not in self.tags:
+            return pd.DataFrame(columns=["day", "lat", "lon"])
+        tags = self.tags if days is None else self.tags.loc[self.tags.index.isin(
+            pd.DatetimeIndex(days).normalize())]
+        present = tags["tc_lat"].notna()
+        return pd.DataFrame({"day": tags.index[present], "lat": tags["tc_lat"][present].to_numpy(),
+                             "lon": tags["tc_lon"][present].to_numpy()})
+
+    def cyclone_composite(self, days=None, *, frame="earth") -> pd.DataFrame | None:
+        """Events around tropical-cyclone centres on ``days`` (default all) by quadrant
+        and distance (:func:`analogs.outcomes.cyclone_relative_composite`); None when
+        no day has a cyclone or the store has no events."""
+        centres = self.cyclone_centres(days)
+        if self.events is None or centres.empty:
+            return None
+        return cyclone_relative_composite(self.events, centres, frame=frame)

@@ -112,6 +112,10 @@ def build_parser() -> argparse.ArgumentParser:
                       help="weights of the analogs in the outcome statistics (default equal)")
     find.add_argument("--json", action="store_true", help="print one JSON object instead of a table")
     find.add_argument("--report", type=Path, metavar="DIR", help="also write an HTML report to DIR/index.html")
+    find.add_argument("--maps", type=Path, metavar="FILE.nc",
+                      help="also write CF NetCDF maps of the analogs' reports: the fraction of "
+                           "analogs with a report within 40 km of each grid point and a smoothed "
+                           "report density (Gaussian, sigma 120 km)")
     find.set_defaults(handler=_cmd_find)
 
     verify = commands.add_parser(
@@ -225,6 +229,9 @@ def _cmd_find(args) -> int:
     result = store.find(date=args.date, field=args.field, time=args.time, top=args.top,
                         window=args.window, exclude=args.exclude, separation=args.separation,
                         region=args.region, regime=args.regime, weights=args.weights)
+    if args.maps:
+        from .outcomes import write_maps
+        write_maps(store.outcome_maps(result), args.maps)
     if args.report:
         write_text_atomic(Path(args.report) / "index.html", find_html(result, store.manifest))
     if args.json:

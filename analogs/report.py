@@ -29,6 +29,19 @@ def _fmt_interval(interval) -> str:
     return f"[{100.0 * lo:.0f}-{100.0 * hi:.0f}%]"
 
 
+def skill_line(skill) -> str:
+    """One line on what this guidance has been worth (cross-validated), or ''."""
+    if not skill:
+        return ""
+    lo, hi = skill["brier_skill_score_ci"]
+    text = (f"Worth in the past (leave-one-year-out, store region): Brier skill score "
+            f"{skill['brier_skill_score']:.2f} [{lo:.2f}, {hi:.2f}] vs season climatology, "
+            f"ROC area {skill['roc_auc']:.2f}")
+    if skill.get("month_brier_skill_score") is not None:
+        text += f"; in month {skill['month']}: {skill['month_brier_skill_score']:.2f}"
+    return text
+
+
 def find_text(result) -> str:
     """A readable terminal summary of an :class:`~analogs.api.AnalogResult`."""
     data = result.to_dict()
@@ -67,6 +80,9 @@ def find_text(result) -> str:
         for kind, stats in sorted(outcomes.get("by_kind", {}).items()):
             lines.append(f"  {kind:10} P(any) {_fmt_probability(stats['p_any'])}   "
                          f"mean {stats['mean']:.2f}")
+        skill = skill_line(outcomes.get("skill"))
+        if skill:
+            lines.append(skill)
     lines.append("")
     lines.append(CAUTION)
     return "\n".join(lines)
@@ -211,7 +227,8 @@ def find_html(result, manifest: dict, figures: list[tuple[str, bytes]] = ()) -> 
                                  "season climatology": _fmt_probability(stats.get("climatology_p_any"))})
         sections.append(("What these days produced",
                          html_table(outcome_rows, ["statistic", "analogs", "season climatology"],
-                                    left=("statistic",))))
+                                    left=("statistic",))
+                         + f"<p>{html.escape(skill_line(outcomes.get('skill')))}</p>"))
     for caption, png in figures:
         sections.append((caption, embed_png(png)))
     sections.append(("Settings", "<pre>" + html.escape(json.dumps(data["settings"], indent=2)) + "</pre>"))
