@@ -254,11 +254,11 @@ def _ridge_trough_np(profile, lon, ridge_cols, trough_cols):
     return lon[ridge_cols][i_ridge], ridge_amp, lon[trough_cols][i_trough], trough_amp
 
 
-def _wave_windows(lon, region, upstream_deg, downstream_deg):
+def _wave_windows(lon, region, upstream_deg, downstream_deg, trough_west_deg):
     """Longitude masks of the ridge (upstream) and trough (over/downstream) windows."""
     _, _, west, east = region
     ridge_cols = (lon >= west - upstream_deg) & (lon <= west)
-    trough_cols = (lon >= west) & (lon <= east + downstream_deg)
+    trough_cols = (lon >= west - trough_west_deg) & (lon <= east + downstream_deg)
     if not ridge_cols.any():
         ridge_cols = lon <= lon.min()
     return ridge_cols, trough_cols
@@ -564,7 +564,7 @@ def wave_anomaly(z500: xr.DataArray) -> xr.DataArray:
 
 
 def ridge_trough(z500: xr.DataArray, region, *, upstream_deg: float = 25.0,
-                 downstream_deg: float = 15.0) -> xr.Dataset:
+                 downstream_deg: float = 15.0, trough_west_deg: float = 10.0) -> xr.Dataset:
     r"""Strongest ridge upstream of a region and strongest trough over/downstream of it.
 
     The wave anomaly :math:`Z^*` (:func:`wave_anomaly`) is averaged with cos-latitude
@@ -573,10 +573,13 @@ def ridge_trough(z500: xr.DataArray, region, *, upstream_deg: float = 25.0,
     .. math::
 
         A_{ridge} = \max_{\lambda \in [W - \Delta_u, W]} P, \qquad
-        A_{trough} = -\min_{\lambda \in [W, E + \Delta_d]} P
+        A_{trough} = -\min_{\lambda \in [W - \Delta_t, E + \Delta_d]} P
 
     with :math:`W, E` the region's west and east edges, :math:`\Delta_u` =
-    ``upstream_deg`` and :math:`\Delta_d` = ``downstream_deg``; positions are the
+    ``upstream_deg``, :math:`\Delta_d` = ``downstream_deg`` and :math:`\Delta_t` =
+    ``trough_west_deg`` (a trough axis just west of the region still puts the region
+    in the strong south-westerly flow and cyclonic vorticity advection ahead of it, so
+    the trough window starts a little upstream of the box); positions are the
     longitudes of the extremes. Amplitudes in gpm (positive for a ridge above and a
     trough below the zonal mean).
 
@@ -590,7 +593,8 @@ def ridge_trough(z500: xr.DataArray, region, *, upstream_deg: float = 25.0,
     z500 = _check_height(z500, "ridge_trough")
     lat, lon = _grid(z500)
     lat_in, _ = _check_region(region, lat, lon, "ridge_trough")
-    ridge_cols, trough_cols = _wave_windows(lon, region, upstream_deg, downstream_deg)
+    ridge_cols, trough_cols = _wave_windows(lon, region, upstream_deg, downstream_deg,
+                                            trough_west_deg)
     weights = xr.DataArray(np.cos(np.radians(lat[lat_in])), dims="lat")
     profile = wave_anomaly(z500).isel(lat=lat_in).weighted(weights).mean("lat")
     outs = xr.apply_ufunc(
@@ -827,7 +831,8 @@ def _block_columns(z, dewpoint, pwat, *, lat, lon, lat_in, lon_in, weights, lat_
 
 
 def compute_diagnostics(ds: xr.Dataset, region, *, upstream_deg: float = 25.0,
-                        downstream_deg: float = 15.0, tc_near_km: float = 600.0,
+                        downstream_deg: float = 15.0, trough_west_deg: float = 10.0,
+                        tc_near_km: float = 500.0,
                         closed_lows: Mapping | None = None,
                         moist_threshold_c: float = SEVERE_DEWPOINT_C,
                         block_days: int = 1000, n_threads: int | None = None,
@@ -876,7 +881,8 @@ def compute_diagnostics(ds: xr.Dataset, region, *, upstream_deg: float = 25.0,
     region = tuple(float(v) for v in region)
     weights = _region_weights(lat, lat_in, lon_in)
     lat_weights = np.cos(np.radians(lat[lat_in]))
-    ridge_cols, trough_cols = _wave_windows(lon, region, upstream_deg, downstream_deg)
+    ridge_cols, trough_cols = _wave_windows(lon, region, upstream_deg, downstream_deg,
+                                            trough_west_deg)
     low_params = {"max_lat": 35.0, "min_depth": 20.0, "max_radius_km": 600.0,
                   "ring_km": (500.0, 800.0), "neighbourhood_km": 400.0,
                   "moisture_radius_km": 500.0}
