@@ -75,34 +75,35 @@ _LEVEL_NAMES = ("level", "plev", "pressure_level", "isobaricinhpa", "lev", "pres
 _HPA_UNITS = {"hpa", "mbar", "millibar", "millibars", "mb", "hectopascal", "hectopascals"}
 _PA_UNITS = {"pa", "pascal", "pascals"}
 
-#: Accepted spellings of each unit, mapped to (canonical kind, factor, offset):
-#: canonical value = value * factor + offset.
+#: Accepted spellings of each unit (after :func:`_normal_units`), mapped to
+#: (factor, offset): canonical value = value * factor + offset.
 _UNIT_TABLE = {
     "z500": {
-        "gpm": ("height", 1.0, 0.0), "m": ("height", 1.0, 0.0),
-        "meter": ("height", 1.0, 0.0), "meters": ("height", 1.0, 0.0),
-        "metre": ("height", 1.0, 0.0), "metres": ("height", 1.0, 0.0),
-        "geopotential meters": ("height", 1.0, 0.0),
-        "geopotential metres": ("height", 1.0, 0.0), "m gpm": ("height", 1.0, 0.0),
-        "dam": ("height", 10.0, 0.0), "gpdam": ("height", 10.0, 0.0),
-        "decameters": ("height", 10.0, 0.0), "decametres": ("height", 10.0, 0.0),
-        "m2 s-2": ("geopotential", 1.0 / G0, 0.0),
+        "gpm": (1.0, 0.0), "m": (1.0, 0.0),
+        "meter": (1.0, 0.0), "meters": (1.0, 0.0),
+        "metre": (1.0, 0.0), "metres": (1.0, 0.0),
+        "geopotential meters": (1.0, 0.0),
+        "geopotential metres": (1.0, 0.0), "m gpm": (1.0, 0.0),
+        "dam": (10.0, 0.0), "gpdam": (10.0, 0.0),
+        "decameters": (10.0, 0.0), "decametres": (10.0, 0.0),
+        "m2 s-2": (1.0 / G0, 0.0),
     },
     "q850": {
-        "kg kg-1": ("mass fraction", 1.0, 0.0), "1": ("mass fraction", 1.0, 0.0),
-        "g kg-1": ("mass fraction", 1e-3, 0.0),
+        "kg kg-1": (1.0, 0.0), "1": (1.0, 0.0),
+        "g kg-1": (1e-3, 0.0),
     },
     "td2m": {
-        "k": ("temperature", 1.0, 0.0), "kelvin": ("temperature", 1.0, 0.0),
-        "degk": ("temperature", 1.0, 0.0),
-        "degc": ("temperature", 1.0, ZERO_CELSIUS_K),
-        "c": ("temperature", 1.0, ZERO_CELSIUS_K),
-        "celsius": ("temperature", 1.0, ZERO_CELSIUS_K),
-        "degrees celsius": ("temperature", 1.0, ZERO_CELSIUS_K),
+        "k": (1.0, 0.0), "kelvin": (1.0, 0.0),
+        "degk": (1.0, 0.0),
+        "degc": (1.0, ZERO_CELSIUS_K),
+        "c": (1.0, ZERO_CELSIUS_K),
+        "celsius": (1.0, ZERO_CELSIUS_K),
+        "degrees celsius": (1.0, ZERO_CELSIUS_K),
+        "degrees c": (1.0, ZERO_CELSIUS_K),
     },
     "pwat": {
-        "kg m-2": ("mass per area", 1.0, 0.0), "mm": ("mass per area", 1.0, 0.0),
-        "cm": ("mass per area", 10.0, 0.0), "m": ("mass per area", 1000.0, 0.0),
+        "kg m-2": (1.0, 0.0), "mm": (1.0, 0.0),
+        "cm": (10.0, 0.0), "m": (1000.0, 0.0),
     },
 }
 
@@ -225,7 +226,7 @@ def open_target(path, *, time=None, fields=None) -> xr.Dataset:
     (file,) = files
     requested = _check_fields(fields, "open_target")
     dataset = _open_file(file, None)
-    candidates = _recognise(file, dataset, time_optional=True)
+    candidates = _recognise(file, dataset)
     chosen = _choose_fields(requested, candidates, files,
                             {file: sorted(str(v) for v in dataset.data_vars)})
     arrays = {field: _canonical_array(next(c for c in candidates if c.field == field),
@@ -259,7 +260,8 @@ def regrid_to(ds: xr.Dataset, lat, lon) -> xr.Dataset:
     half_lat = 0.5 * _step(src_lat)
     half_lon = 0.5 * _step(src_lon)
     periodic = src_lon.size > 1 and abs(src_lon[-1] - src_lon[0] + 2 * half_lon - 360.0) < 1e-6
-    lat_ok = lat.min() >= src_lat[0] - half_lat - 1e-9 and lat.max() <= src_lat[-1] + half_lat + 1e-9
+    lat_ok = (lat.min() >= src_lat[0] - half_lat - 1e-9
+              and lat.max() <= src_lat[-1] + half_lat + 1e-9)
     lon_ok = periodic or (lon.min() >= src_lon[0] - half_lon - 1e-9
                           and lon.max() <= src_lon[-1] + half_lon + 1e-9)
     if not (lat_ok and lon_ok):
@@ -300,9 +302,11 @@ def normalise_grid(obj):
         if np.any(np.diff(obj["lat"].values) == 0):
             raise AnalogsInputError(f"{source}: latitude has repeated values; expected "
                                     "each grid latitude once")
-    raw_lon = obj["lon"].values.astype(float)
-    monotonic = raw_lon.size < 2 or np.all(np.diff(raw_lon) > 0) or np.all(np.diff(raw_lon) < 0)
-    wrapped = _wrap_lon(raw_lon)
+    wrapped = _wrap_lon(obj["lon"].values)
+    # A grid rolled across the wrap point (0-360 cut at 180, or a regional 0-360 grid
+    # crossing 0) has at most one step against its direction: a convention, not disorder.
+    steps = np.diff(wrapped)
+    monotonic = (steps < 0).sum() <= 1 or (steps > 0).sum() <= 1
     obj = obj.assign_coords(lat=obj["lat"].values.astype(float), lon=wrapped)
     if not monotonic:
         warnings.warn(f"{source}: longitude is not monotonic; it is sorted for you",
@@ -468,7 +472,7 @@ def _check_fields(fields, owner):
     return fields
 
 
-def _recognise(path, dataset, *, time_optional=False):
+def _recognise(path, dataset):
     """Candidates for each canonical field among the data variables of one file."""
     by_standard, by_name = [], []
     for name, var in dataset.data_vars.items():
@@ -574,7 +578,6 @@ def _canonical_array(candidate, *, time_optional=False):
     da = _convert_units(da, ds[name].attrs, field, where)
     if field == "z500" and not level_known:
         low, high = _sample_range(da)
-        median = 0.5 * (low + high)
         lo_ok, hi_ok = _Z500_PLAUSIBLE_GPM
         if not (lo_ok <= low and high <= hi_ok):
             raise AnalogsInputError(
@@ -582,7 +585,7 @@ def _canonical_array(candidate, *, time_optional=False):
                 f"gpm) do not look like 500 hPa heights ({lo_ok:.0f}-{hi_ok:.0f} gpm); "
                 "select the 500 hPa level or add a level coordinate")
         warnings.warn(f"{where} has no pressure level; taken as 500 hPa height since its "
-                      f"values (about {median:.0f} gpm) fit", UserWarning, stacklevel=3)
+                      f"values ({low:.0f} to {high:.0f} gpm) fit", UserWarning, stacklevel=3)
     da.attrs = dict(FIELD_ATTRS[field])
     da.name = field
     da = normalise_grid(da.assign_attrs(source_files=path))
@@ -746,7 +749,7 @@ def _normal_units(units):
     text = re.sub(r"\s+", " ", text)
     replacements = {"kg/kg": "kg kg-1", "g/kg": "g kg-1", "m2/s2": "m2 s-2",
                     "kg/m2": "kg m-2", "kg.m-2": "kg m-2", "m2.s-2": "m2 s-2",
-                    "kg.kg-1": "kg kg-1", "g.kg-1": "g kg-1", "kg kg**-1": "kg kg-1"}
+                    "kg.kg-1": "kg kg-1", "g.kg-1": "g kg-1"}
     return replacements.get(text, text)
 
 
@@ -755,7 +758,7 @@ def _convert_units(da, attrs, field, where):
     units = _normal_units(raw) if raw is not None else ""
     table = _UNIT_TABLE[field]
     if units in table:
-        _, factor, offset = table[units]
+        factor, offset = table[units]
     else:
         inferred = _infer_units(da, field)
         stated = "no units" if not units else f"unrecognised units {raw!r}"
@@ -768,7 +771,7 @@ def _convert_units(da, attrs, field, where):
                 f"{', '.join(sorted(table))}")
         warnings.warn(f"{where} has {stated}; {inferred!r} inferred from the magnitude "
                       "of its values", UserWarning, stacklevel=4)
-        _, factor, offset = table[_normal_units(inferred)]
+        factor, offset = table[_normal_units(inferred)]
     if factor != 1.0:
         da = da * factor
     if offset != 0.0:

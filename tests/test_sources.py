@@ -482,3 +482,14 @@ def test_irregular_and_unsorted_latitude(tmp_path):
         ds = open_archive(tmp_path / "g.nc")
     np.testing.assert_array_equal(ds["lat"].values, lat)
     np.testing.assert_allclose(ds["z500"].values, z)
+
+
+def test_regional_0_360_grid_across_greenwich_needs_no_warning():
+    """Longitudes 350, 355, 0, 5 (0-360 convention) roll to -10, -5, 0, 5 silently."""
+    da = xr.DataArray(np.arange(8.0).reshape(2, 4), dims=("lat", "lon"),
+                      coords={"lat": [10.0, 20.0], "lon": [350.0, 355.0, 0.0, 5.0]})
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        out = normalise_grid(da)
+    np.testing.assert_array_equal(out["lon"].values, [-10.0, -5.0, 0.0, 5.0])
+    np.testing.assert_array_equal(out.values, da.values)
