@@ -129,6 +129,7 @@ def build_store(paths, store, *, events=None, fields=None, n_modes=None, varianc
     eof = MultivariateEOF(n_modes, variance=variance, solver=solver,
                           field_weights=field_weights).fit(anomalies)
     pcs = eof.pcs_
+    errors = eof.reconstruction_error(anomalies).values
     tags = tag_days(archive, _diagnostic_region(region, archive), progress=progress)
 
     times = pd.DatetimeIndex(archive["time"].values)
@@ -158,6 +159,7 @@ def build_store(paths, store, *, events=None, fields=None, n_modes=None, varianc
             "n_lat": int(archive.sizes["lat"]),
             "n_lon": int(archive.sizes["lon"]),
             "inputs": _provenance(paths),
+            "reconstruction_error": _error_summary(errors),
         },
         "events": None if event_table is None else {
             "source": str(Path(events).resolve()),
@@ -182,6 +184,14 @@ def build_store(paths, store, *, events=None, fields=None, n_modes=None, varianc
             store_io.write_table(event_table, staged / store_io.EVENTS)
         store_io.write_table(tags.reset_index(drop=True), staged / store_io.TAGS)
     return AnalogStore.load(store)
+
+
+def _error_summary(errors) -> dict:
+    """Median and upper percentiles of the archive's EOF reconstruction error, the
+    yardstick against which appended days are judged (drift detection)."""
+    errors = np.asarray(errors, dtype=float)
+    return {"median": float(np.median(errors)), "p99": float(np.percentile(errors, 99)),
+            "max": float(errors.max())}
 
 
 def _quadrant_summary(composite: pd.DataFrame) -> dict:
@@ -577,3 +587,83 @@ class AnalogStore:
         if self.events is None or centres.empty:
             return None
         return cyclone_relative_composite(self.events, centres, frame=frame)
+
+    # -- appending days ----------------------------------------------------------------
+    def update(self, paths, *, events=None, progress=True) -> dict:
+        """Append new days from ``paths``, projected on the existing climatology and EOFs.
+
+        Days already in the store are skipped, so appending the same files twice changes
+        nothing. Files on another grid or with other fields are refused. When the new
+        days' median reconstruction error exceeds the archive's 99th percentile, a warning
+        suggests a rebuild: the EOFs no longer describe them well. ``events`` replaces the
+        events table. Returns a summary (days added, skipped, drift figures).
+        """
+        config = self.manifest["config"]
+        domain = config.get("domain")
+        archive = open_archive(paths, fields=self.fields, region=domain, hour=config["hour"],
+                               daily=config["daily"], progress=progress)
+        lat, lon = self.grid
+        names = ", ".join(str(p) for p in paths)
+        if (archive.sizes["lat"], archive.sizes["lon"]) != (lat.size, lon.size) or not (
+                np.allclose(archive["lat"].values, lat) and np.allclose(archive["lon"].values, lon)):
+            raise AnalogsInputError(
+                f"{names}: grid {archive.sizes['lat']} x {archive.sizes['lon']} "
+                f"(lat {float(archive.lat.min()):g} to {float(archive.lat.max()):g}, lon "
+                f"{float(archive.lon.min()):g} to {float(archive.lon.max()):g}) differs from the "
+                f"store's {lat.size} x {lon.size}; update needs the store's grid (or rebuild)")
+        extra = sorted(set(archive.data_vars) - set(self.fields))
+        if extra:
+            raise AnalogsInputError(f"{names}: fields {', '.join(extra)} are not in the store "
+                                    f"({', '.join(self.fields)}); rebuild to use them")
+        new_times = pd.DatetimeIndex(archive["time"].values)
+        fresh = ~new_times.normalize().isin(self.days)
+        added = archive.isel(time=np.flatnonzero(fresh))
+        summary = {"days_in_files": int(len(new_times)), "days_added": int(fresh.sum()),
+                   "days_already_present": int((~fresh).sum())}
+        event_table = read_events(events) if events is not None else None
+        if not fresh.any() and event_table is None:
+            return summary
+        manifest = {k: v for k, v in self.manifest.items()
+                    if k not in ("files", "format", "format_version", "package_version", "written")}
+        pcs, tags = self.pcs, self.tags
+        if fresh.any():
+            anomalies = self.climatology.transform(added)
+            new_pcs = self.eof.transform(anomalies).transpose("time", "mode")
+            errors = self.eof.reconstruction_error(anomalies).values
+            reference = manifest["archive"].get("reconstruction_error") or {}
+            summary["new_days_median_reconstruction_error"] = float(np.median(errors))
+            summary["archive_p99_reconstruction_error"] = reference.get("p99")
+            if reference.get("p99") and np.median(errors) > reference["p99"]:
+                warnings.warn(
+                    f"the appended days are unlike the archive (median EOF reconstruction error "
+                    f"{np.median(errors):.3g} above the archive's 99th percentile "
+                    f"{reference['p99']:.3g}); consider rebuilding the store", stacklevel=2)
+            pcs = xr.concat([self.pcs, new_pcs.assign_coords(mode=self.pcs["mode"])], dim="time")
+            order = np.argsort(pcs["time"].values, kind="stable")
+            pcs = pcs.isel(time=order)
+            new_tags = tag_days(added, _diagnostic_region(self.region, added), progress=False)
+            new_tags = new_tags.set_index("date")
+            tags = new_tags if self.tags is None else pd.concat([self.tags, new_tags]).sort_index()
+            times = pd.DatetimeIndex(pcs["time"].values)
+            manifest["archive"] = {**manifest["archive"], "n_days": int(len(times)),
+                                   "time_start": times[0].isoformat(),
+                                   "time_end": times[-1].isoformat(),
+                                   "inputs": manifest["archive"]["inputs"] + _provenance(paths)}
+        if event_table is not None:
+            manifest["events"] = {"source": str(Path(events).resolve()),
+                                  "n_events": int(len(event_table)),
+                                  "kinds": sorted(event_table["kind"].unique().tolist())}
+        manifest.setdefault("updates", []).append({
+            "written": pd.Timestamp.now(tz="UTC").isoformat(timespec="seconds"),
+            "inputs": [str(Path(p).resolve()) for p in paths], **summary})
+        keep = [store_io.BASIS] + ([store_io.EVENTS] if event_table is None and self.events is not None else [])
+        with store_io.writing(self.path, manifest, keep=keep) as staged:
+            store_io.write_dataset(xr.Dataset({"pcs": pcs.astype("float64")},
+                                              attrs={"title": "analogs store principal components",
+                                                     "Conventions": "CF-1.8"}),
+                                   staged / store_io.SCORES)
+            if event_table is not None:
+                store_io.write_table(event_table, staged / store_io.EVENTS)
+            if tags is not None:
+                store_io.write_table(tags.reset_index(), staged / store_io.TAGS)
+        return summary

@@ -144,6 +144,18 @@ def build_parser() -> argparse.ArgumentParser:
     _add_quiet(verify)
     verify.set_defaults(handler=_cmd_verify)
 
+    update = commands.add_parser(
+        "update", help="append new days to a store without a rebuild",
+        description="Append new days (for example yesterday's analysis), projected on the "
+                    "store's climatology and EOFs. Days already in the store are skipped; files "
+                    "on another grid or with other fields are refused.", epilog=EPILOG)
+    update.add_argument("files", nargs="+", type=Path, metavar="FILE")
+    update.add_argument("--store", required=True, type=Path, metavar="DIR")
+    update.add_argument("--events", type=Path, metavar="EVENTS.csv",
+                        help="replace the store's events table with this one")
+    _add_quiet(update)
+    update.set_defaults(handler=_cmd_update)
+
     tag = commands.add_parser(
         "tag", help="regime and diagnostics of every archive day",
         description="Write one row per archive day: date, regime, confidence, then the "
@@ -184,6 +196,9 @@ def main(argv=None) -> int:
     except (FileNotFoundError, IsADirectoryError, PermissionError) as error:
         print(f"analogs {args.command}: error: {error.strerror}: {error.filename}", file=sys.stderr)
         return 2
+    except BrokenPipeError:  # the reader (e.g. `head`) closed the pipe: not an error
+        sys.stderr.close()
+        return 0
     except KeyboardInterrupt:
         print("analogs: interrupted", file=sys.stderr)
         return 130
@@ -281,6 +296,15 @@ def _cmd_verify(args) -> int:
     if tuning is not None:
         summary["tuning"] = tuning
     print(dumps(summary) if args.json else verify_text(summary))
+    return 0
+
+
+def _cmd_update(args) -> int:
+    from .api import AnalogStore
+    store = AnalogStore.load(args.store)
+    summary = store.update(args.files, events=args.events, progress=not args.quiet)
+    print(f"store {args.store}: {summary['days_added']} days added, "
+          f"{summary['days_already_present']} already present")
     return 0
 
 
