@@ -372,7 +372,7 @@ class AnalogStore:
     # -- queries -------------------------------------------------------------------
     def find(self, *, date=None, field=None, time=None, top=None, window=DEFAULT_WINDOW,
              exclude=None, separation=DEFAULT_SEPARATION, region=None, regime=None,
-             weights="equal", confidence=0.9):
+             weights="equal", confidence=0.9, sequence=0):
         """Closest archive days to a target and what they produced.
 
         Give exactly one of ``date`` (an archive day, YYYY-MM-DD) or ``field`` (a path
@@ -380,6 +380,9 @@ class AnalogStore:
         time when the file holds several). ``exclude`` defaults to
         ``DEFAULT_EXCLUDE`` days for a date target and to nothing for a field target.
         ``top`` defaults to the store's saved query default, else ``DEFAULT_TOP``.
+        ``sequence`` (0, 1 or 2) also matches the target's preceding days, so analogs
+        share the pattern's evolution (see :meth:`sequence_vectors`); a field target
+        then needs those days in its file.
         """
         owner = "find"
         top = self.query_defaults.get("top", DEFAULT_TOP) if top is None else top
@@ -391,36 +394,102 @@ class AnalogStore:
         region = self._resolve_region(region)
         if date is not None:
             row = self.day_row(date)
-            vector = self.pcs.values[row]
+            vector = self.pcs.values[row, :self.n_query_modes]
+            if sequence:
+                vector = self.sequence_vectors(sequence)[0][row]
             target_time = self.times[row]
             exclude = DEFAULT_EXCLUDE if exclude is None else exclude
             target = {"date": str(self.days[row].date()), **self.regime_of_day(row)}
         else:
-            dataset = open_target(field, time=time) if not isinstance(field, xr.Dataset) else field
+            dataset = self._open_field(field, time)
+            target_time = pd.Timestamp(dataset["time"].values[0])
             vector = self.project(dataset)
-            valid = dataset["time"].values if "time" in dataset.coords else None
-            valid = pd.Timestamp(np.ravel(valid)[0]) if valid is not None else pd.NaT
-            target_time = None if pd.isna(valid) else valid
-            if target_time is None and window is not None:
-                warnings.warn("the target field has no valid time: the season window is not "
-                              "applied (pass --time to apply it)", stacklevel=2)
-            target = {"date": None if target_time is None else str(target_time.date()),
-                      **self.regime_of_field(dataset, region)}
+            if sequence:
+                vector = self._field_sequence_vector(field, target_time, vector, sequence)
+            target = {"date": str(target_time.date()), **self.regime_of_field(dataset, region)}
         restrict = None
         if regime is not None:
             restrict = self._regime_mask(regime)
-        vector = vector[:self.n_query_modes]
-        chosen = find_analogs(self.index, self.times, vector, target_time=target_time,
+        index = self.index
+        if sequence:
+            vectors, complete = self.sequence_vectors(sequence)
+            restrict = complete if restrict is None else restrict & complete
+            index = self._sequence_index(sequence)
+        else:
+            vector = vector[:self.n_query_modes]
+        chosen = find_analogs(index, self.times, vector, target_time=target_time,
                               top=top, window=window, exclude=exclude,
                               separation=separation, restrict=restrict)
         analogs = self._describe_analogs(chosen, region)
         outcomes = self._outcomes(analogs, target_time, window, region, weights, confidence)
         outcomes["skill"] = self.skill_for(target_time)
         settings = {"top": top, "window_days": window, "exclude_days": exclude,
+                    "sequence_days": sequence,
                     "separation_days": separation, "regime": regime,
                     "region": {**region.to_dict(), "label": region.label()}, "weights": weights,
                     "n_modes": self.n_query_modes, "store": str(self.path)}
         return AnalogResult(target=target, analogs=analogs, outcomes=outcomes, settings=settings)
+
+    def _open_field(self, field, time) -> xr.Dataset:
+        if isinstance(field, xr.Dataset):
+            dataset = field
+        else:
+            dataset = open_target(field, time=time)
+        if "time" not in dataset.dims or pd.isna(dataset["time"].values[0]):
+            raise AnalogsInputError(
+                f"the target field {field if not isinstance(field, xr.Dataset) else ''} has no "
+                "valid time; its calendar day is needed for the climatology and the season "
+                "window: write the valid time into the file")
+        return dataset
+
+    #: Weight of the day ``lag`` days before the target in a sequence match: 0.5 ** lag.
+    SEQUENCE_DECAY = 0.5
+
+    def sequence_vectors(self, sequence) -> tuple[np.ndarray, np.ndarray]:
+        """Vectors of each day followed by its ``sequence`` preceding days.
+
+        Row t is ``[pcs(t), w1 pcs(t-1), ..., ws pcs(t-s)]`` with ``w_lag = 0.5 ** lag``,
+        so the Euclidean distance between two rows is the weighted distance of the two
+        short sequences. The boolean array marks rows whose preceding days are all in
+        the archive (consecutive calendar days); only those can be analogs.
+        """
+        sequence = check_int(sequence, "sequence", "find", min_value=0, max_value=2)
+        cache = getattr(self, "_sequence_cache", {})
+        if sequence not in cache:
+            pcs = self.pcs.values[:, :self.n_query_modes]
+            day_numbers = (self.days - pd.Timestamp("1970-01-01")).days.to_numpy()
+            parts, complete = [pcs], np.ones(len(pcs), dtype=bool)
+            for lag in range(1, sequence + 1):
+                shifted = np.roll(pcs, lag, axis=0)
+                complete &= np.roll(day_numbers, lag) == day_numbers - lag
+                parts.append(self.SEQUENCE_DECAY ** lag * shifted)
+            complete[:sequence] = False
+            cache[sequence] = (np.hstack(parts), complete)
+            self._sequence_cache = cache
+        return cache[sequence]
+
+    def _sequence_index(self, sequence) -> AnalogIndex:
+        indexes = getattr(self, "_sequence_indexes", {})
+        if sequence not in indexes:
+            indexes[sequence] = AnalogIndex(kind="auto").fit(self.sequence_vectors(sequence)[0])
+            self._sequence_indexes = indexes
+        return indexes[sequence]
+
+    def _field_sequence_vector(self, field, target_time, vector, sequence) -> np.ndarray:
+        if isinstance(field, xr.Dataset):
+            raise AnalogsInputError("a sequence match of a field needs its file (with the "
+                                    "preceding days), not a Dataset")
+        parts = [vector[:self.n_query_modes]]
+        for lag in range(1, sequence + 1):
+            earlier = target_time - pd.Timedelta(days=lag)
+            try:
+                previous = open_target(field, time=earlier.isoformat())
+            except AnalogsInputError as error:
+                raise AnalogsInputError(
+                    f"--sequence {sequence}: {field} must also hold the field of "
+                    f"{earlier:%Y-%m-%dT%H:%M} ({error})") from None
+            parts.append(self.SEQUENCE_DECAY ** lag * self.project(previous)[:self.n_query_modes])
+        return np.concatenate(parts)
 
     def _resolve_region(self, region) -> Region:
         if region is None:

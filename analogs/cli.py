@@ -108,6 +108,10 @@ def build_parser() -> argparse.ArgumentParser:
                            f"(default {DEFAULT_EXCLUDE} for --date; nothing for --field)")
     find.add_argument("--regime", metavar="LABEL",
                       help="only analogs of this regime (northwest_flow, tropical, strong_trough, other)")
+    find.add_argument("--sequence", type=int, default=0, choices=(0, 1, 2), metavar="DAYS",
+                      help="also match the target's preceding 1 or 2 days (weights 0.5, 0.25), so "
+                           "analogs share the pattern's evolution (default 0: the day alone); a "
+                           "--field file must then hold those days too")
     find.add_argument("--weights", choices=("equal", "inverse_distance", "gaussian"), default="equal",
                       help="weights of the analogs in the outcome statistics (default equal)")
     find.add_argument("--json", action="store_true", help="print one JSON object instead of a table")
@@ -243,7 +247,8 @@ def _cmd_find(args) -> int:
         raise AnalogsInputError("--time applies to --field only")
     result = store.find(date=args.date, field=args.field, time=args.time, top=args.top,
                         window=args.window, exclude=args.exclude, separation=args.separation,
-                        region=args.region, regime=args.regime, weights=args.weights)
+                        region=args.region, regime=args.regime, weights=args.weights,
+                        sequence=args.sequence)
     if args.maps:
         from .outcomes import write_maps
         write_maps(store.outcome_maps(result), args.maps)
