@@ -26,7 +26,7 @@ from .climatology import HarmonicClimatology
 from .eof import MultivariateEOF
 from .errors import AnalogsInputError, StoreError
 from .hindcast import leave_one_year_out, score_hindcast, tune
-from .index import AnalogIndex
+from .index import INDEX_KINDS, AnalogIndex, recall_at_k
 from .outcomes import (
     Region,
     analog_weights,
@@ -89,7 +89,7 @@ def _diagnostic_region(region: Region, ds) -> tuple[float, float, float, float]:
 
 def build_store(paths, store, *, events=None, fields=None, n_modes=None, variance=None,
                 region=None, domain=None, hour=12, daily="instant", n_harmonics=3,
-                solver="auto", field_weights=None, chunks=None, progress=True):
+                solver="auto", field_weights=None, chunks=None, index="auto", progress=True):
     """Build (or rebuild) the store at ``store`` from archive ``paths``.
 
     Parameters
@@ -108,6 +108,9 @@ def build_store(paths, store, *, events=None, fields=None, n_modes=None, varianc
     solver : EOF solver, ``"auto" | "exact" | "randomized"``.
     field_weights : dict field -> weight in the combined EOF (default equal).
     chunks : dask chunks for out-of-core reading, e.g. ``{"time": 365}``.
+    index : ``"auto" | "flat" | "hnsw"``, the faiss index rebuilt at every load
+        (approximate HNSW above 500,000 days with ``"auto"``); for HNSW the recall@20
+        against exact search, with the season window applied, is measured and stored.
 
     Returns
     -------
@@ -115,6 +118,7 @@ def build_store(paths, store, *, events=None, fields=None, n_modes=None, varianc
     """
     if not paths:
         raise AnalogsInputError("no archive files given: pass one or more NetCDF/Zarr files")
+    check_choice(index, "index", "build_store", INDEX_KINDS)
     region = Region.parse(region) if isinstance(region, str) else (region or Region.whole())
     archive = open_archive(paths, fields=fields, region=domain, hour=hour, daily=daily,
                            chunks=chunks, progress=progress)
@@ -133,6 +137,7 @@ def build_store(paths, store, *, events=None, fields=None, n_modes=None, varianc
     tags = tag_days(archive, _diagnostic_region(region, archive), progress=progress)
 
     times = pd.DatetimeIndex(archive["time"].values)
+    index_info = _index_info(index, pcs.values, times)
     skill = None
     if event_table is not None and np.unique(times.year).size >= 2:
         observed = daily_event_counts(event_table, times.normalize(), region)["total"].to_numpy() > 0
@@ -167,6 +172,7 @@ def build_store(paths, store, *, events=None, fields=None, n_modes=None, varianc
             "kinds": sorted(event_table["kind"].unique().tolist()),
         },
         "skill": skill,
+        "index": index_info,
     }
     with store_io.writing(store, manifest) as staged:
         basis = xr.Dataset(coords={"lat": archive["lat"], "lon": archive["lon"]},
@@ -184,6 +190,20 @@ def build_store(paths, store, *, events=None, fields=None, n_modes=None, varianc
             store_io.write_table(event_table, staged / store_io.EVENTS)
         store_io.write_table(tags.reset_index(drop=True), staged / store_io.TAGS)
     return AnalogStore.load(store)
+
+
+def _index_info(kind, vectors, times) -> dict:
+    """The index kind to rebuild at load; for HNSW, its measured recall@20."""
+    built = AnalogIndex(kind=kind).fit(vectors)
+    info = {"kind": built.kind_}
+    if built.kind_ != "flat":
+        info["recall_at_20"] = recall_at_k(
+            built, vectors, k=20,
+            allowed_for=lambda row: candidate_ids(times, times[row], window=DEFAULT_WINDOW,
+                                                  exclude=DEFAULT_EXCLUDE))
+        info["recall_method"] = ("mean recall@20 against exact search, 200 archive days, "
+                                 f"season window +/-{DEFAULT_WINDOW} d")
+    return info
 
 
 def _error_summary(errors) -> dict:
@@ -305,7 +325,8 @@ class AnalogStore:
     @property
     def index(self) -> AnalogIndex:
         if self._index is None:
-            self._index = AnalogIndex(kind="auto").fit(self.pcs.values[:, :self.n_query_modes])
+            kind = (self.manifest.get("index") or {}).get("kind", "auto")
+            self._index = AnalogIndex(kind=kind).fit(self.pcs.values[:, :self.n_query_modes])
         return self._index
 
     @property

@@ -119,3 +119,26 @@ class AnalogIndex:
         distances = np.sqrt(np.maximum(squared.astype(np.float64), 0.0))
         distances[ids < 0] = np.inf
         return distances, ids
+
+
+def recall_at_k(index: AnalogIndex, vectors, *, k=20, allowed_for=None, n_queries=200, seed=0):
+    """Mean recall@k of ``index`` against exact flat search on the same vectors.
+
+    ``allowed_for(row)`` may return the allowed ids of the query taken from ``row`` (a
+    season window, say), so that recall is measured under the filtering queries use.
+    Recall is the share of the exact k nearest ids that the index also returns.
+    """
+    vectors = np.asarray(vectors, dtype=np.float32)
+    exact = AnalogIndex(kind="flat", n_threads=index.n_threads).fit(vectors)
+    rng = np.random.default_rng(seed)
+    rows = rng.choice(len(vectors), size=min(n_queries, len(vectors)), replace=False)
+    shares = []
+    for row in rows:
+        allowed = None if allowed_for is None else allowed_for(row)
+        truth = exact.search(vectors[row], k, allowed=allowed)[1][0]
+        truth = set(truth[truth >= 0].tolist())
+        if not truth:
+            continue
+        found = set(index.search(vectors[row], k, allowed=allowed)[1][0].tolist())
+        shares.append(len(truth & found) / len(truth))
+    return float(np.mean(shares)) if shares else float("nan")
