@@ -282,24 +282,40 @@ def _closed_lows_np(z, lat, lon, *, moisture=None, max_lat, min_depth, max_radiu
     nt, nlat, nlon = z.shape
     dlat = float(np.mean(np.diff(lat))) if nlat > 1 else 1.0
     dlon = float(np.mean(np.diff(lon))) if nlon > 1 else 1.0
-    half_i = max(1, int(round(neighbourhood_km / (_KM_PER_DEG * dlat))))
-    half_j = max(1, int(round(neighbourhood_km / (_KM_PER_DEG * dlon
-                                                    * np.cos(np.radians(min(max_lat, 60.0)))))))
-    size = (1, 2 * half_i + 1, 2 * half_j + 1)
+    ring_inner, ring_outer = ring_km
+
+    def half_widths(km, cos_lat):
+        return (max(1, int(round(km / (_KM_PER_DEG * dlat)))),
+                max(1, int(round(km / (_KM_PER_DEG * dlon * cos_lat)))))
+
     # Only rows within reach of |lat| <= max_lat can hold or shape a centre.
-    rows = np.nonzero(np.abs(lat) <= max_lat + (half_i + 1) * dlat)[0]
+    reach_i = half_widths(ring_outer, 1.0)[0]
+    rows = np.nonzero(np.abs(lat) <= max_lat + (reach_i + 1) * dlat)[0]
     candidate = np.zeros(z.shape, dtype=bool)
     if rows.size:
+        # Screening: an approximate depth field, the mean over a square annulus of
+        # half-widths ring_km (two box filters) minus the height. A linear background
+        # slope cancels, so a compact low on the sloping subtropical background, or
+        # next to a broad trough, is a local maximum of it even where the total height
+        # has no closed contour. Depth and radius are then measured exactly below.
         band = z[:, rows[0]:rows[-1] + 1]
-        z_min = ndimage.minimum_filter(band, size=size, mode="nearest")
-        z_max = ndimage.maximum_filter(band, size=size, mode="nearest")
-        candidate[:, rows[0]:rows[-1] + 1] = (band <= z_min) & (z_max - band >= min_depth)
+        cos_lat = np.cos(np.radians(np.clip(np.abs(lat[rows]).mean(), 0.0, 80.0)))
+        sums = []
+        for km in (ring_outer, ring_inner):
+            hi, hj = half_widths(km, cos_lat)
+            n = (2 * hi + 1) * (2 * hj + 1)
+            sums.append((ndimage.uniform_filter(band, size=(1, 2 * hi + 1, 2 * hj + 1),
+                                                mode="nearest") * n, n))
+        (s_out, n_out), (s_in, n_in) = sums
+        screen = (s_out - s_in) / max(n_out - n_in, 1) - band
+        hi, hj = half_widths(neighbourhood_km, cos_lat)
+        peak = ndimage.maximum_filter(screen, size=(1, 2 * hi + 1, 2 * hj + 1), mode="nearest")
+        candidate[:, rows[0]:rows[-1] + 1] = (screen >= peak) & (screen >= 0.5 * min_depth)
     interior = np.zeros((nlat, nlon), dtype=bool)
     interior[1:-1, 1:-1] = True
     interior &= (np.abs(lat) <= max_lat)[:, None]
     t_idx, i_idx, j_idx = np.nonzero(candidate & interior)
 
-    ring_inner, ring_outer = ring_km
     reach_km = max(ring_outer, moisture_radius_km)
     bin_km = _KM_PER_DEG * dlat
     n_bins = int(np.ceil(ring_outer / bin_km))
@@ -610,7 +626,7 @@ def ridge_trough(z500: xr.DataArray, region, *, upstream_deg: float = 25.0,
 
 
 def find_closed_lows(z500: xr.DataArray, moisture: xr.DataArray | None = None, *,
-                     max_lat: float = 35.0, min_depth: float = 20.0,
+                     max_lat: float = 35.0, min_depth: float = 15.0,
                      max_radius_km: float = 600.0,
                      ring_km: tuple[float, float] = (500.0, 800.0),
                      neighbourhood_km: float = 400.0,
@@ -883,7 +899,7 @@ def compute_diagnostics(ds: xr.Dataset, region, *, upstream_deg: float = 25.0,
     lat_weights = np.cos(np.radians(lat[lat_in]))
     ridge_cols, trough_cols = _wave_windows(lon, region, upstream_deg, downstream_deg,
                                             trough_west_deg)
-    low_params = {"max_lat": 35.0, "min_depth": 20.0, "max_radius_km": 600.0,
+    low_params = {"max_lat": 35.0, "min_depth": 15.0, "max_radius_km": 600.0,
                   "ring_km": (500.0, 800.0), "neighbourhood_km": 400.0,
                   "moisture_radius_km": 500.0}
     unknown = set(closed_lows or {}) - set(low_params)

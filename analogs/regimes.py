@@ -99,6 +99,8 @@ class RegimeRules:
         8.0, "m s-1", "area-mean 500 hPa geostrophic wind speed, at least")
     nw_min_ridge_gpm: float = _rule(
         40.0, "gpm", "ridge amplitude upstream (west) of the region, at least")
+    nw_min_trough_gpm: float = _rule(
+        50.0, "gpm", "trough amplitude over/downstream (east) of the region, at least")
     nw_min_moist_line_offset_deg: float = _rule(
         -10.0, "degree",
         "60 F dewpoint line at least this far north of the region's south edge "
@@ -260,6 +262,8 @@ class RuleClassifier:
                              rel * r.nw_min_speed_ms),
             "ridge": _margin(_column(d, "ridge_amplitude"), r.nw_min_ridge_gpm,
                              rel * r.nw_min_ridge_gpm),
+            "trough": _margin(_column(d, "trough_amplitude"), r.nw_min_trough_gpm,
+                              rel * abs(r.nw_min_trough_gpm) or 1.0),
             # No moist air at all in the region's longitudes: the line is far south.
             "moisture": np.where(
                 moisture_known,
@@ -340,7 +344,8 @@ class RuleClassifier:
                         f"{v['height_gradient']:.0f} gpm/1000 km; vorticity advection "
                         f"{v['vorticity_advection']:.1e} s-2; {flow}")
             elif label == "northwest_flow":
-                text = f"{flow}; ridge {v['ridge_amplitude']:.0f} gpm upstream; {moist}"
+                text = (f"{flow}; ridge {v['ridge_amplitude']:.0f} gpm upstream, trough "
+                        f"{v['trough_amplitude']:.0f} gpm downstream; {moist}")
             else:
                 text = (f"{flow}; ridge {v['ridge_amplitude']:.0f} gpm, trough "
                         f"{v['trough_amplitude']:.0f} gpm; {moist}")
