@@ -12,6 +12,7 @@ this module.
 
 from __future__ import annotations
 
+import contextlib
 import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -89,7 +90,8 @@ def _diagnostic_region(region: Region, ds) -> tuple[float, float, float, float]:
 
 def build_store(paths, store, *, events=None, fields=None, n_modes=None, variance=None,
                 region=None, domain=None, hour=12, daily="instant", n_harmonics=3,
-                solver="auto", field_weights=None, chunks=None, index="auto", progress=True):
+                solver="auto", field_weights=None, chunks=None, index="auto", scheduler=None,
+                progress=True):
     """Build (or rebuild) the store at ``store`` from archive ``paths``.
 
     Parameters
@@ -108,6 +110,9 @@ def build_store(paths, store, *, events=None, fields=None, n_modes=None, varianc
     solver : EOF solver, ``"auto" | "exact" | "randomized"``.
     field_weights : dict field -> weight in the combined EOF (default equal).
     chunks : dask chunks for out-of-core reading, e.g. ``{"time": 365}``.
+    scheduler : address of a ``dask.distributed`` scheduler (``"tcp://host:8786"``), or
+        ``"local"`` for a local cluster of processes; default: dask's threaded scheduler.
+        Only chunked (out-of-core) work is distributed.
     index : ``"auto" | "flat" | "hnsw"``, the faiss index rebuilt at every load
         (approximate HNSW above 500,000 days with ``"auto"``); for HNSW the recall@20
         against exact search, with the season window applied, is measured and stored.
@@ -120,6 +125,38 @@ def build_store(paths, store, *, events=None, fields=None, n_modes=None, varianc
         raise AnalogsInputError("no archive files given: pass one or more NetCDF/Zarr files")
     check_choice(index, "index", "build_store", INDEX_KINDS)
     region = Region.parse(region) if isinstance(region, str) else (region or Region.whole())
+    with _dask_scheduler(scheduler):
+        return _build(paths, store, events=events, fields=fields, n_modes=n_modes,
+                      variance=variance, region=region, domain=domain, hour=hour, daily=daily,
+                      n_harmonics=n_harmonics, solver=solver, field_weights=field_weights,
+                      chunks=chunks, index=index, progress=progress)
+
+
+@contextlib.contextmanager
+def _dask_scheduler(address):
+    """Run the enclosed dask work on a distributed scheduler when one is named."""
+    if address is None:
+        yield
+        return
+    try:
+        from distributed import Client, LocalCluster
+    except ImportError:
+        raise AnalogsInputError("--scheduler needs the 'distributed' package: "
+                                "pip install 'analogs[distributed]'") from None
+    try:
+        if address == "local":
+            with LocalCluster(n_workers=2, threads_per_worker=1, dashboard_address=None) as cluster, \
+                    Client(cluster):
+                yield
+        else:
+            with Client(address, timeout=30):
+                yield
+    except OSError as error:
+        raise AnalogsInputError(f"--scheduler {address}: cannot reach it ({error})") from None
+
+
+def _build(paths, store, *, events, fields, n_modes, variance, region, domain, hour, daily,
+           n_harmonics, solver, field_weights, chunks, index, progress):
     archive = open_archive(paths, fields=fields, region=domain, hour=hour, daily=daily,
                            chunks=chunks, progress=progress)
     if archive.sizes["time"] < 3:

@@ -87,6 +87,13 @@ def build_parser() -> argparse.ArgumentParser:
                        help="sub-daily data: the value at --hour, or the daily mean (default instant)")
     build.add_argument("--solver", choices=("auto", "exact", "randomized"), default="auto",
                        help="EOF solver (default auto: exact for small archives)")
+    build.add_argument("--chunk-days", type=int, metavar="N",
+                       help="read and process the archive out of core in chunks of N days "
+                            "(dask); use for archives larger than memory (default: in memory)")
+    build.add_argument("--scheduler", metavar="ADDRESS",
+                       help="run the chunked work on a dask.distributed scheduler at ADDRESS "
+                            "(tcp://host:8786), or 'local' for a local process cluster "
+                            "(default: dask's threaded scheduler)")
     build.add_argument("--index", choices=("auto", "flat", "hnsw"), default="auto",
                        help="faiss index: exact flat search, approximate HNSW, or auto (HNSW above "
                             "500,000 days; its recall against exact search is measured and stored)")
@@ -218,11 +225,17 @@ def main(argv=None) -> int:
 def _cmd_build(args) -> int:
     from .api import build_store
     fields = [f.strip() for f in args.fields.split(",")] if args.fields else None
+    if args.chunk_days is not None and args.chunk_days < 1:
+        raise AnalogsInputError(f"--chunk-days must be an integer >= 1. Got {args.chunk_days} instead.")
+    if args.scheduler and not args.chunk_days:
+        raise AnalogsInputError("--scheduler distributes chunked work: pass --chunk-days too")
     domain = _parse_box(args.domain, "--domain") if args.domain else None
     store = build_store(args.files, args.store, fields=fields, n_modes=args.modes,
                         variance=args.variance, region=args.region, domain=domain,
                         hour=args.hour, daily=args.daily, solver=args.solver,
                         n_harmonics=args.harmonics, index=args.index, progress=not args.quiet,
+                        chunks={"time": args.chunk_days} if args.chunk_days else None,
+                        scheduler=args.scheduler,
                         events=args.events)
     config = store.manifest["config"]
     print(f"built store {store.path}: {len(store.times)} days "
