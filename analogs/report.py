@@ -235,3 +235,97 @@ def find_html(result, manifest: dict, figures: list[tuple[str, bytes]] = ()) -> 
     provenance = {"archive": manifest.get("archive"), "config": manifest.get("config"),
                   "events": manifest.get("events")}
     return html_page("Analogs of " + str(target["date"] or "a forecast field"), sections, provenance)
+
+
+def html_frame(frame, *, left=(), digits=3) -> str:
+    """An HTML table of a DataFrame (index dropped; floats to ``digits`` significant
+    figures, dates as YYYY-MM-DD, NaN as "n/a")."""
+    def cell(value):
+        if isinstance(value, float):
+            return "n/a" if math.isnan(value) else f"{value:.{digits}g}"
+        if hasattr(value, "strftime"):
+            return value.strftime("%Y-%m-%d")
+        return value
+
+    columns = [str(c) for c in frame.columns]
+    rows = [{c: cell(v) for c, v in zip(columns, values)}
+            for values in frame.itertuples(index=False, name=None)]
+    return html_table(rows, columns, left=left)
+
+
+def _skill_section(skill) -> str:
+    if not skill:
+        return ("<p>No cross-validated skill in this store (it was built without events "
+                "or from fewer than two years).</p>")
+    lo, hi = skill.get("brier_skill_score_ci") or (float("nan"), float("nan"))
+    lines = [f"<p>{html.escape(skill.get('method', 'hindcast'))}, {skill.get('top')} analogs, "
+             f"season window +/-{skill.get('window_days')} d: Brier skill score "
+             f"<strong>{skill.get('brier_skill_score', float('nan')):.3f}</strong> "
+             f"(year-bootstrap interval {lo:.3f} to {hi:.3f}), ROC area "
+             f"{skill.get('roc_auc', float('nan')):.3f}. A Brier skill score above 0 means the "
+             "analogs beat the season's climatology.</p>"]
+    rows = [{"month": month, "days": entry["n_days"],
+             "base rate": _fmt_probability(entry["base_rate"]),
+             "Brier score": f"{entry['brier_score']:.4f}",
+             "Brier skill score": "n/a" if entry["brier_skill_score"] is None
+             else f"{entry['brier_skill_score']:.3f}"}
+            for month, entry in sorted((skill.get("by_month") or {}).items(),
+                                       key=lambda item: int(item[0]))]
+    if rows:
+        lines.append(html_table(rows, ["month", "days", "base rate", "Brier score",
+                                       "Brier skill score"]))
+    return "\n".join(lines)
+
+
+def climatology_html(tables: dict, figures, manifest: dict, settings: dict) -> str:
+    """The HTML page of a seasonal climatology (``analogs climatology``).
+
+    ``tables``: name -> DataFrame as made by :func:`analogs.seasonal.build_climatology`
+    (``regime_frequency_by_month``, ``regime_trend``, ``regime_persistence``,
+    ``typical_days``, optionally ``outcomes_by_regime_and_month``); ``figures``: list of
+    (caption, PNG bytes), embedded; ``settings``: what was asked for.
+    """
+    sections = [("Season and settings",
+                 f"<p>{html.escape(str(settings.get('season', '')))}: "
+                 f"{settings.get('days_tagged', '')} tagged days.</p><pre>"
+                 + html.escape(json.dumps(settings, indent=2)) + "</pre>")]
+    frequency = tables.get("regime_frequency_by_month")
+    if frequency is not None and len(frequency):
+        wide = frequency.pivot(index="month", columns="regime", values="days")
+        wide = wide[[c for c in frequency["regime"].drop_duplicates()]]
+        shares = frequency.pivot(index="month", columns="regime", values="fraction")
+        rows = []
+        for month in wide.index:
+            row = {"month": int(month), "days tagged": int(wide.loc[month].sum())}
+            row.update({regime: f"{int(wide.loc[month, regime])} "
+                                f"({100 * shares.loc[month, regime]:.0f}%)"
+                        for regime in wide.columns})
+            rows.append(row)
+        sections.append(("Days in each regime by month (share of the month's tagged days)",
+                         html_table(rows, ["month", "days tagged", *wide.columns])))
+    described = (
+        ("regime_trend", "Change over the years (days per season per decade)",
+         "Least-squares slope of the yearly share with its t-test p-value, and Kendall's "
+         "tau (Mann-Kendall test) with its p-value; p below 0.05 is conventionally called "
+         "significant, but with few years neither test has much power."),
+        ("regime_persistence", "How long each regime lasts (run length, days)",
+         "Runs of consecutive tagged days; a missing day or the season's end ends a run."),
+        ("outcomes_by_regime_and_month", "What each regime brings, by month",
+         "Share of days with at least one event in the region (with its Clopper-Pearson "
+         "interval) and mean number of events per day, by kind."),
+        ("typical_days", "Example days of each regime",
+         "The most confident days of each regime, at least a week apart."),
+    )
+    for name, heading, note in described:
+        frame = tables.get(name)
+        if frame is None:
+            continue
+        sections.append((heading, f"<p>{html.escape(note)}</p>"
+                         + html_frame(frame, left=("regime", "reason", "date"))))
+    for caption, png in figures:
+        sections.append((caption, embed_png(png)))
+    sections.append(("Cross-validated skill of this store", _skill_section(manifest.get("skill"))))
+    provenance = {"archive": manifest.get("archive"), "config": manifest.get("config"),
+                  "events": manifest.get("events")}
+    return html_page("Regime climatology, " + str(settings.get("season", "")), sections,
+                     provenance)

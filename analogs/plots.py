@@ -1,0 +1,574 @@
+"""Figures for forecasters and trainers, drawn without a screen.
+
+Every function returns a :class:`matplotlib.figure.Figure` attached to its own Agg
+canvas (no pyplot, so no global state changes and no display is needed); turn it
+into PNG bytes with :func:`figure_png`. Maps use plain latitude / longitude axes
+(the demo continent has no real coastline); coastlines are drawn only when cartopy
+and its Natural Earth files are already on disk (nothing is downloaded).
+
+Colour maps: ``viridis`` / ``cividis`` (perceptually uniform) for amounts and
+probabilities, ``RdBu_r`` only for departures (anomalies and differences).
+"""
+
+from __future__ import annotations
+
+import io
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import xarray as xr
+from matplotlib import colormaps
+from matplotlib.backends.backend_agg import FigureCanvasAgg
+from matplotlib.colors import BoundaryNorm, ListedColormap
+from matplotlib.figure import Figure
+from matplotlib.patches import Polygon, Rectangle
+
+from .constants import SEVERE_DEWPOINT_C, ZERO_CELSIUS_K
+from .diagnostics import dewpoint_from_specific_humidity
+from .errors import AnalogsInputError
+from .regimes import REGIME_LABELS
+
+#: Pressure (hPa) of the ``q850`` field, for its dewpoint.
+MOISTURE_LEVEL_HPA = 850.0
+#: Contour interval of 500 hPa height maps, gpm (common practice, no source).
+HEIGHT_INTERVAL_GPM = 60.0
+#: Marker of each event kind on maps, in the order kinds sort (then reused).
+EVENT_MARKERS = ("o", "^", "s", "D", "v", "P", "X")
+PLAIN_AXES_NOTE = "plain latitude-longitude axes (no coastlines drawn)"
+
+
+# ---------------------------------------------------------------------- basics
+
+def new_figure(width=8.0, height=6.0) -> Figure:
+    """A Figure on its own Agg canvas (off-screen, independent of pyplot)."""
+    figure = Figure(figsize=(width, height), layout="constrained")
+    FigureCanvasAgg(figure)
+    return figure
+
+
+def figure_png(figure: Figure, *, dpi=100) -> bytes:
+    """PNG bytes of ``figure``."""
+    buffer = io.BytesIO()
+    figure.savefig(buffer, format="png", dpi=dpi)
+    return buffer.getvalue()
+
+
+def regime_colours(regimes) -> dict:
+    """A fixed colour per regime: viridis samples for the named regimes, grey for
+    ``other``, cividis samples for any further label."""
+    palette = colormaps["viridis"]
+    named = {"tropical": palette(0.85), "strong_trough": palette(0.1),
+             "northwest_flow": palette(0.5), "other": (0.78, 0.78, 0.78, 1.0)}
+    extra = [r for r in regimes if r not in named]
+    spare = colormaps["cividis"]
+    named.update({r: spare(0.2 + 0.6 * i / max(len(extra), 1)) for i, r in enumerate(extra)})
+    return {r: named[r] for r in regimes}
+
+
+def _ordered_regimes(labels) -> list[str]:
+    labels = set(map(str, labels))
+    return [r for r in REGIME_LABELS if r in labels] + sorted(labels - set(REGIME_LABELS))
+
+
+def _coastline_paths():
+    """Coastline polylines from cartopy's Natural Earth files already on disk, else None."""
+    try:
+        import cartopy
+        from cartopy.io import shapereader
+    except ImportError:
+        return None
+    for key in ("pre_existing_data_dir", "data_dir"):
+        root = cartopy.config.get(key)
+        if not root:
+            continue
+        candidates = sorted(Path(root).glob("shapefiles/natural_earth/physical/*coastline.shp"))
+        if candidates:
+            lines = []
+            for geometry in shapereader.Reader(str(candidates[0])).geometries():
+                parts = getattr(geometry, "geoms", [geometry])
+                lines.extend(np.asarray(part.coords) for part in parts)
+            return lines
+    return None
+
+
+def _map_axes(ax, lat, lon, region=None, *, coastlines=None):
+    """Plain lat/lon axes with a latitude-true aspect, the region drawn on them."""
+    ax.set_xlim(float(np.min(lon)), float(np.max(lon)))
+    ax.set_ylim(float(np.min(lat)), float(np.max(lat)))
+    ax.set_aspect(1.0 / np.cos(np.radians(float(np.mean(lat)))))
+    ax.set_xlabel("longitude (deg E)")
+    ax.set_ylabel("latitude (deg N)")
+    if coastlines:
+        for line in coastlines:
+            ax.plot(line[:, 0], line[:, 1], color="0.3", linewidth=0.6)
+    if region is not None:
+        _draw_region(ax, region)
+
+
+def _draw_region(ax, region):
+    if region.kind == "box":
+        ax.add_patch(Rectangle((region.west, region.south), region.east - region.west,
+                               region.north - region.south, fill=False, edgecolor="black",
+                               linewidth=1.6, linestyle="--", label="region"))
+    elif region.kind == "point":
+        # A circle of the radius in km, in degrees (1 deg lat = 111.2 km, from memory).
+        angle = np.linspace(0.0, 2.0 * np.pi, 73)
+        dlat = region.radius_km / 111.2
+        dlon = dlat / np.cos(np.radians(region.lat))
+        ax.add_patch(Polygon(np.c_[region.lon + dlon * np.cos(angle),
+                                   region.lat + dlat * np.sin(angle)], closed=True,
+                             fill=False, edgecolor="black", linewidth=1.6, linestyle="--",
+                             label="region"))
+
+
+def _note_plain_axes(figure, coastlines):
+    if not coastlines:
+        figure.text(0.995, 0.003, PLAIN_AXES_NOTE, ha="right", va="bottom", fontsize=7,
+                    color="0.35")
+
+
+def _plane(field: xr.DataArray, owner: str) -> xr.DataArray:
+    field = field.squeeze(drop=True)
+    if set(field.dims) != {"lat", "lon"}:
+        raise AnalogsInputError(f"{owner} needs a field on (lat, lon); got dims {field.dims}")
+    return field.transpose("lat", "lon")
+
+
+def _moisture(fields: xr.Dataset):
+    """(shaded values, colour-bar label, dewpoint in deg C or None) of the moisture field."""
+    if "q850" in fields:
+        q = _plane(fields["q850"], "moisture")
+        dewpoint = dewpoint_from_specific_humidity(np.clip(q.values, 1e-6, None),
+                                                   MOISTURE_LEVEL_HPA) - ZERO_CELSIUS_K
+        return q.values * 1000.0, "850 hPa specific humidity (g/kg)", dewpoint
+    if "td2m" in fields:
+        td = _plane(fields["td2m"], "moisture").values - ZERO_CELSIUS_K
+        return td, "2 m dewpoint (deg C)", td
+    if "pwat" in fields:
+        return _plane(fields["pwat"], "moisture").values, "precipitable water (kg m-2)", None
+    return None, None, None
+
+
+def _height_contours(ax, z500: xr.DataArray, *, colour="black", labels=True):
+    z = _plane(z500, "height contours")
+    low = HEIGHT_INTERVAL_GPM * np.floor(np.nanmin(z.values) / HEIGHT_INTERVAL_GPM)
+    high = HEIGHT_INTERVAL_GPM * np.ceil(np.nanmax(z.values) / HEIGHT_INTERVAL_GPM)
+    levels = np.arange(low, high + HEIGHT_INTERVAL_GPM, HEIGHT_INTERVAL_GPM)
+    contours = ax.contour(z["lon"].values, z["lat"].values, z.values, levels=levels,
+                          colors=colour, linewidths=0.9)
+    if labels:
+        ax.clabel(contours, fontsize=7, fmt="%.0f")
+    return contours
+
+
+def _moisture_layer(figure, ax, fields, *, colourbar=True):
+    """Moisture shading with its colour bar and the 60 F dewpoint line; returns label."""
+    values, label, dewpoint = _moisture(fields)
+    if values is None:
+        return None
+    lat, lon = fields["lat"].values, fields["lon"].values
+    mesh = ax.pcolormesh(lon, lat, values, cmap="viridis", shading="nearest")
+    if colourbar:
+        figure.colorbar(mesh, ax=ax, label=label, shrink=0.85)
+    if dewpoint is not None and np.nanmin(dewpoint) < SEVERE_DEWPOINT_C < np.nanmax(dewpoint):
+        ax.contour(lon, lat, dewpoint, levels=[SEVERE_DEWPOINT_C], colors="white",
+                   linewidths=2.0, linestyles="-")
+    return label
+
+
+def _events_on_map(ax, events, day, kinds):
+    """Plot the events of convective ``day`` by kind; returns how many."""
+    if events is None or len(events) == 0:
+        return 0
+    on_day = events[pd.to_datetime(events["day"]).dt.normalize() == pd.Timestamp(day).normalize()]
+    for i, kind in enumerate(kinds):
+        part = on_day[on_day["kind"] == kind]
+        ax.scatter(part["lon"], part["lat"], marker=EVENT_MARKERS[i % len(EVENT_MARKERS)],
+                   s=22, facecolor=colormaps["plasma"](0.15 + 0.7 * i / max(len(kinds) - 1, 1)),
+                   edgecolor="black", linewidths=0.4, label=kind, zorder=5)
+    return len(on_day)
+
+
+# ---------------------------------------------------------------- store fields
+
+def store_day_fields(store, rows) -> xr.Dataset:
+    """Mean full fields of archive rows as the store can give them: climatology of the
+    days plus their anomaly reconstructed from the kept EOFs (the store keeps PCs, not
+    the archive's fields, so small-scale detail beyond the kept modes is missing)."""
+    rows = np.atleast_1d(np.asarray(rows, dtype=int))
+    times = store.times[rows]
+    climate = store.climatology.predict(times)[store.fields].mean("time")
+    anomaly = store.eof.reconstruct(store.pcs.isel(time=rows).mean("time"))[store.fields]
+    drop = lambda ds: ds.drop_vars([c for c in ds.coords if c not in ("lat", "lon")])  # noqa: E731
+    fields = drop(climate) + drop(anomaly)
+    for name in store.fields:
+        fields[name].attrs = dict(store.eof.eofs_[name].attrs)
+    return fields
+
+
+# ------------------------------------------------------------------ query maps
+
+def target_map(fields: xr.Dataset, *, region=None, when="target", source=None) -> Figure:
+    """500 hPa height contours over moisture shading, with the 60 F dewpoint line.
+
+    ``fields`` is one day on (lat, lon) with ``z500`` (gpm) and optionally a moisture
+    field (``q850`` shaded in g/kg with its 850 hPa dewpoint from Bolton's formula,
+    ``td2m`` or ``pwat``). ``when`` goes in the title; ``source`` says where the fields
+    came from (e.g. "EOF reconstruction").
+    """
+    if "z500" not in fields:
+        raise AnalogsInputError("target_map needs a 'z500' field (500 hPa height, gpm)")
+    figure = new_figure(8.0, 6.0)
+    ax = figure.add_subplot()
+    coastlines = _coastline_paths()
+    label = _moisture_layer(figure, ax, fields)
+    _height_contours(ax, fields["z500"])
+    _map_axes(ax, fields["lat"].values, fields["lon"].values, region, coastlines=coastlines)
+    title = f"{when}: 500 hPa height (contours every {HEIGHT_INTERVAL_GPM:.0f} gpm)"
+    if label:
+        title += f"\nover {label.split(' (')[0]}; white line: dewpoint {SEVERE_DEWPOINT_C:.1f} deg C (60 F)"
+    if source:
+        title += f"\n[{source}]"
+    ax.set_title(title, fontsize=10)
+    _note_plain_axes(figure, coastlines)
+    return figure
+
+
+def analog_panel(store, result, *, n=6, region=None) -> Figure:
+    """The top ``n`` analog days: height contours and that day's events by kind
+    (distinct markers), the date, regime and event count in each title."""
+    analogs = result.analogs.head(n)
+    if len(analogs) == 0:
+        raise AnalogsInputError("analog_panel needs at least one analog in the result")
+    region = region if region is not None else _result_region(result, store)
+    events = store.events
+    kinds = sorted(events["kind"].astype(str).unique()) if events is not None else []
+    columns = min(3, len(analogs))
+    rows = int(np.ceil(len(analogs) / columns))
+    figure = new_figure(4.2 * columns, 3.6 * rows + 0.6)
+    coastlines = _coastline_paths()
+    lat, lon = store.grid
+    for i, analog in enumerate(analogs.itertuples(index=False)):
+        ax = figure.add_subplot(rows, columns, i + 1)
+        fields = store_day_fields(store, [analog.row])
+        _height_contours(ax, fields["z500"], colour="0.25", labels=False)
+        count = _events_on_map(ax, events, analog.date, kinds)
+        _map_axes(ax, lat, lon, region, coastlines=coastlines)
+        ax.set_title(f"#{analog.rank} {analog.date} - {analog.regime}\n"
+                     f"distance {analog.distance:.2f}, {count} events in domain", fontsize=9)
+    if kinds:
+        handles = [figure.axes[0].scatter([], [], marker=EVENT_MARKERS[i % len(EVENT_MARKERS)],
+                                          facecolor=colormaps["plasma"](
+                                              0.15 + 0.7 * i / max(len(kinds) - 1, 1)),
+                                          edgecolor="black", label=kind)
+                   for i, kind in enumerate(kinds)]
+        figure.legend(handles=handles, loc="outside lower center", ncols=len(kinds),
+                      title="events (convective day)")
+    when = result.target.get("date") or "a forecast field"
+    figure.suptitle(f"Closest past days to {when}: 500 hPa height (EOF reconstruction, "
+                    f"every {HEIGHT_INTERVAL_GPM:.0f} gpm)", fontsize=11)
+    _note_plain_axes(figure, coastlines)
+    return figure
+
+
+def _result_region(result, store):
+    from .outcomes import Region
+    settings_region = result.settings.get("region")
+    return Region.from_dict(settings_region) if settings_region else store.region
+
+
+def composite_difference(store, result, target_fields: xr.Dataset, *, region=None) -> Figure:
+    """Left: mean of the analog days (height contours over moisture); right: that
+    mean minus the target's 500 hPa height (shaded), target contours on top."""
+    rows = result.analogs["row"].to_numpy()
+    if rows.size == 0:
+        raise AnalogsInputError("composite_difference needs at least one analog in the result")
+    region = region if region is not None else _result_region(result, store)
+    mean = store_day_fields(store, rows)
+    target = _on_store_grid(store, target_fields)
+    figure = new_figure(13.0, 5.4)
+    coastlines = _coastline_paths()
+    lat, lon = store.grid
+    left, right = figure.add_subplot(1, 2, 1), figure.add_subplot(1, 2, 2)
+    _moisture_layer(figure, left, mean)
+    _height_contours(left, mean["z500"])
+    _map_axes(left, lat, lon, region, coastlines=coastlines)
+    left.set_title(f"mean of {rows.size} analog days: 500 hPa height and moisture\n"
+                   "(climatology + EOF reconstruction)", fontsize=10)
+    difference = _plane(mean["z500"], "difference") - _plane(target["z500"], "difference")
+    limit = float(np.nanmax(np.abs(difference.values))) or 1.0
+    mesh = right.pcolormesh(lon, lat, difference.values, cmap="RdBu_r", vmin=-limit,
+                            vmax=limit, shading="nearest")
+    figure.colorbar(mesh, ax=right, label="analog mean minus target, 500 hPa height (gpm)",
+                    shrink=0.85)
+    _height_contours(right, target["z500"], colour="0.2")
+    _map_axes(right, lat, lon, region, coastlines=coastlines)
+    when = result.target.get("date") or "the forecast field"
+    right.set_title(f"analog mean minus target ({when})\ncontours: target 500 hPa height",
+                    fontsize=10)
+    _note_plain_axes(figure, coastlines)
+    return figure
+
+
+def _on_store_grid(store, fields: xr.Dataset) -> xr.Dataset:
+    from .sources import regrid_to
+    lat, lon = store.grid
+    fields = fields.squeeze(drop=True) if "time" in fields.dims else fields
+    same = (fields.sizes.get("lat") == lat.size and fields.sizes.get("lon") == lon.size
+            and np.allclose(fields["lat"].values, lat) and np.allclose(fields["lon"].values, lon))
+    return fields if same else regrid_to(fields, lat, lon)
+
+
+def probability_map(maps: xr.Dataset, *, region=None, when="target") -> Figure:
+    """Neighbourhood probability of the analog days (from
+    :func:`analogs.outcomes.outcome_maps`) in percent, fixed 0-100 scale."""
+    if "neighbourhood_probability" not in maps:
+        raise AnalogsInputError("probability_map needs the Dataset of "
+                                "analogs.outcomes.outcome_maps")
+    probability = _plane(maps["neighbourhood_probability"], "probability_map")
+    radius = probability.attrs.get("radius_km")
+    figure = new_figure(8.0, 6.0)
+    ax = figure.add_subplot()
+    coastlines = _coastline_paths()
+    levels = np.arange(0.0, 101.0, 10.0)
+    norm = BoundaryNorm(levels, colormaps["viridis"].N)
+    mesh = ax.pcolormesh(probability["lon"].values, probability["lat"].values,
+                         100.0 * probability.values, cmap="viridis", norm=norm, shading="nearest")
+    near = f"within {radius:g} km" if radius else "nearby"
+    figure.colorbar(mesh, ax=ax, label=f"share of analog days with an event {near} (%)",
+                    shrink=0.85)
+    _map_axes(ax, probability["lat"].values, probability["lon"].values, region,
+              coastlines=coastlines)
+    n = maps.attrs.get("n_analog_days")
+    ax.set_title(f"Where the analog days of {when} had events nearby"
+                 + (f" ({n} days)" if n else ""), fontsize=10)
+    _note_plain_axes(figure, coastlines)
+    return figure
+
+
+# ------------------------------------------------------------------ verification
+
+def reliability_diagram(reliability, *, title_suffix="") -> Figure:
+    """Observed frequency against forecast probability (bins of
+    :func:`analogs.verify.reliability_table`), with the number of forecasts per bin."""
+    table = pd.DataFrame(list(reliability))
+    if table.empty:
+        raise AnalogsInputError("reliability_diagram needs at least one reliability bin")
+    figure = new_figure(6.0, 7.0)
+    top = figure.add_subplot(4, 1, (1, 3))
+    bottom = figure.add_subplot(4, 1, 4, sharex=top)
+    top.plot([0, 1], [0, 1], color="0.5", linestyle="--", label="perfect reliability")
+    top.plot(table["forecast_mean"], table["observed_frequency"], marker="o",
+             color=colormaps["viridis"](0.3), label="hindcast")
+    top.set_xlim(0, 1)
+    top.set_ylim(0, 1)
+    top.set_ylabel("observed frequency")
+    top.legend(loc="upper left")
+    top.set_title("Reliability of P(at least one event in region)"
+                  + (f", {title_suffix}" if title_suffix else "")
+                  + "\nleave-one-year-out hindcast", fontsize=10)
+    bottom.bar(table["forecast_mean"], table["count"], width=0.06,
+               color=colormaps["viridis"](0.6))
+    bottom.set_xlabel("forecast probability (bin mean)")
+    bottom.set_ylabel("forecasts")
+    return figure
+
+
+def roc_diagram(false_alarm_rate, hit_rate, *, title_suffix="") -> Figure:
+    """ROC curve (points of :func:`analogs.verify.roc_curve_points`) with its area."""
+    false_alarm_rate = np.asarray(false_alarm_rate, dtype=float)
+    hit_rate = np.asarray(hit_rate, dtype=float)
+    area = float(np.trapezoid(hit_rate, false_alarm_rate))
+    figure = new_figure(6.0, 6.0)
+    ax = figure.add_subplot()
+    ax.plot([0, 1], [0, 1], color="0.5", linestyle="--", label="no skill")
+    ax.plot(false_alarm_rate, hit_rate, marker=".", color=colormaps["viridis"](0.3),
+            label=f"hindcast (area {area:.2f})")
+    ax.set_xlim(0, 1)
+    ax.set_ylim(0, 1)
+    ax.set_aspect("equal")
+    ax.set_xlabel("false alarm rate")
+    ax.set_ylabel("hit rate")
+    ax.legend(loc="lower right")
+    ax.set_title("ROC of P(at least one event in region)"
+                 + (f", {title_suffix}" if title_suffix else "")
+                 + "\nleave-one-year-out hindcast", fontsize=10)
+    return figure
+
+
+# -------------------------------------------------------------------- seasonal
+
+def regime_calendar(tags: pd.DataFrame, *, title_suffix="") -> Figure:
+    """Year by day of year, each tagged day coloured by its regime (blank: untagged)."""
+    if not isinstance(tags.index, pd.DatetimeIndex) or "regime" not in tags:
+        raise AnalogsInputError("regime_calendar needs the tags table (indexed by date, "
+                                "column 'regime')")
+    regimes = _ordered_regimes(tags["regime"])
+    years = np.arange(tags.index.year.min(), tags.index.year.max() + 1)
+    codes = {r: i for i, r in enumerate(regimes)}
+    grid = np.full((years.size, 366), np.nan)
+    grid[tags.index.year - years[0], tags.index.dayofyear - 1] = \
+        tags["regime"].astype(str).map(codes).to_numpy()
+    colours = regime_colours(regimes)
+    cmap = ListedColormap([colours[r] for r in regimes])
+    norm = BoundaryNorm(np.arange(len(regimes) + 1) - 0.5, len(regimes))
+    figure = new_figure(11.0, 1.6 + 0.28 * years.size)
+    ax = figure.add_subplot()
+    image = ax.imshow(grid, aspect="auto", cmap=cmap, norm=norm, interpolation="nearest",
+                      extent=(0.5, 366.5, years[-1] + 0.5, years[0] - 0.5))
+    bar = figure.colorbar(image, ax=ax, ticks=np.arange(len(regimes)), label="regime")
+    bar.ax.set_yticklabels(regimes)
+    month_starts = pd.date_range("2001-01-01", periods=12, freq="MS")
+    ax.set_xticks(month_starts.dayofyear, month_starts.strftime("%b"))
+    ax.set_xlabel("day of year")
+    ax.set_ylabel("year")
+    if years.size <= 15:
+        ax.set_yticks(years)
+    ax.set_title("Regime of every tagged day" + (f", {title_suffix}" if title_suffix else ""),
+                 fontsize=11)
+    return figure
+
+
+def monthly_frequency_chart(frequency: pd.DataFrame, *, title_suffix="") -> Figure:
+    """Stacked bars: share of each month's tagged days in each regime (the table of
+    :func:`analogs.seasonal.regime_frequency_by_month`), days tagged above each bar."""
+    needed = {"month", "regime", "fraction", "days_tagged"}
+    if not needed <= set(frequency.columns):
+        raise AnalogsInputError("monthly_frequency_chart needs the table of "
+                                "regime_frequency_by_month")
+    shares = frequency.pivot(index="month", columns="regime", values="fraction").fillna(0.0)
+    regimes = _ordered_regimes(shares.columns)
+    colours = regime_colours(regimes)
+    totals = frequency.groupby("month")["days_tagged"].first()
+    figure = new_figure(9.0, 5.0)
+    ax = figure.add_subplot()
+    months = shares.index.to_numpy()
+    base = np.zeros(months.size)
+    for regime in regimes:
+        ax.bar(months, 100.0 * shares[regime].to_numpy(), bottom=base, color=colours[regime],
+               label=regime, edgecolor="white", linewidth=0.5)
+        base += 100.0 * shares[regime].to_numpy()
+    for month, total in totals.items():
+        ax.text(month, 101.0, f"{total}", ha="center", va="bottom", fontsize=7)
+    ax.set_xticks(months, [pd.Timestamp(2001, int(m), 1).strftime("%b") for m in months])
+    ax.set_ylim(0, 110)
+    ax.set_ylabel("share of tagged days (%)")
+    ax.set_xlabel("month (number above a bar: days tagged)")
+    ax.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), title="regime")
+    ax.set_title("How often each regime occurs, by month"
+                 + (f", {title_suffix}" if title_suffix else ""), fontsize=11)
+    return figure
+
+
+def composite_maps(composites: xr.Dataset, *, region=None) -> Figure:
+    """One map per regime with days: mean 500 hPa height anomaly shaded (shared
+    symmetric scale) and the regime's mean height contoured."""
+    if "z500_anomaly" not in composites:
+        raise AnalogsInputError("composite_maps needs the Dataset of "
+                                "analogs.seasonal.regime_composites")
+    present = [str(r) for r, n in zip(composites["regime"].values,
+                                      composites["n_days"].values) if n > 0]
+    anomaly = composites["z500_anomaly"].sel(regime=present)
+    limit = float(np.nanmax(np.abs(anomaly.values))) or 1.0
+    columns = min(2, len(present))
+    rows = int(np.ceil(len(present) / columns))
+    figure = new_figure(6.0 * columns + 1.0, 4.4 * rows + 0.6)
+    coastlines = _coastline_paths()
+    lat, lon = composites["lat"].values, composites["lon"].values
+    axes, mesh = [], None
+    for i, regime in enumerate(present):
+        ax = figure.add_subplot(rows, columns, i + 1)
+        mesh = ax.pcolormesh(lon, lat, anomaly.sel(regime=regime).values, cmap="RdBu_r",
+                             vmin=-limit, vmax=limit, shading="nearest")
+        _height_contours(ax, composites["z500_mean"].sel(regime=regime), colour="0.15")
+        _map_axes(ax, lat, lon, region, coastlines=coastlines)
+        n = int(composites["n_days"].sel(regime=regime))
+        ax.set_title(f"{regime}: {n} days", fontsize=10)
+        axes.append(ax)
+    figure.colorbar(mesh, ax=axes, label="mean 500 hPa height anomaly (gpm)", shrink=0.8)
+    method = composites.attrs.get("composite_method", "")
+    figure.suptitle(f"Mean pattern of each regime, {composites.attrs.get('season', '')}\n"
+                    f"shading: {method}; contours: mean height every "
+                    f"{HEIGHT_INTERVAL_GPM:.0f} gpm", fontsize=10)
+    _note_plain_axes(figure, coastlines)
+    return figure
+
+
+def outcome_chart(outcomes: pd.DataFrame, *, title_suffix="") -> Figure:
+    """P(at least one event in the region) by month for each regime, with intervals
+    (the table of :func:`analogs.seasonal.outcomes_by_regime_and_month`)."""
+    if "p_any_event" not in outcomes:
+        raise AnalogsInputError("outcome_chart needs the table of outcomes_by_regime_and_month")
+    regimes = _ordered_regimes(outcomes["regime"])
+    colours = regime_colours(regimes)
+    figure = new_figure(9.0, 5.0)
+    ax = figure.add_subplot()
+    for offset, regime in zip(np.linspace(-0.2, 0.2, len(regimes)), regimes):
+        part = outcomes[outcomes["regime"] == regime]
+        x = part["month"].to_numpy() + offset
+        p = 100.0 * part["p_any_event"].to_numpy()
+        error = 100.0 * np.vstack([part["p_any_event"] - part["p_any_event_low"],
+                                   part["p_any_event_high"] - part["p_any_event"]])
+        ax.errorbar(x, p, yerr=error, marker="o", capsize=2, color=colours[regime],
+                    label=regime)
+    months = np.unique(outcomes["month"])
+    ax.set_xticks(months, [pd.Timestamp(2001, int(m), 1).strftime("%b") for m in months])
+    ax.set_ylim(0, 100)
+    ax.set_xlabel("month")
+    level = outcomes.attrs.get("confidence", 0.9)
+    ax.set_ylabel(f"days with at least one event in region (%), {100 * level:.0f}% interval")
+    ax.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), title="regime")
+    ax.set_title("What each regime brings: chance of at least one event"
+                 + (f", {title_suffix}" if title_suffix else ""), fontsize=11)
+    return figure
+
+
+# --------------------------------------------------------------------- reports
+
+def find_figures(store, result, *, target_fields=None, hindcast=None) -> list[tuple[str, bytes]]:
+    """Figures of one query, as (caption, PNG bytes) for ``report.find_html``.
+
+    ``target_fields``: the target's canonical fields (one time, any grid; a ``--field``
+    target passes its Dataset). When None and the target is an archive date, they are
+    the store's reconstruction of that day (climatology plus anomaly on the kept EOFs);
+    when None for a field target without a date, the target map and the difference map
+    are left out. ``hindcast``: optional DataFrame of
+    :func:`analogs.hindcast.leave_one_year_out` for the reliability and ROC figures.
+    """
+    from .outcomes import outcome_maps
+    from .verify import reliability_table, roc_curve_points
+
+    region = _result_region(result, store)
+    when = result.target.get("date") or "the forecast field"
+    source = "the given field"
+    if target_fields is None and result.target.get("date"):
+        row = store.day_row(result.target["date"])
+        target_fields = store_day_fields(store, [row])
+        source = f"climatology + anomaly on {store.eof.n_modes_} kept EOFs"
+    figures = []
+    if target_fields is not None:
+        target_fields = _on_store_grid(store, target_fields)
+        figures.append((f"Target {when}: 500 hPa height and moisture ({source})",
+                        target_map(target_fields, region=region, when=f"Target {when}",
+                                   source=source)))
+    if len(result.analogs):
+        figures.append(("The closest past days and their events",
+                        analog_panel(store, result, region=region)))
+        if target_fields is not None:
+            figures.append(("Mean of the analog days and its difference from the target",
+                            composite_difference(store, result, target_fields, region=region)))
+        if store.events is not None:
+            lat, lon = store.grid
+            maps = outcome_maps(store.events, pd.to_datetime(result.analogs["date"]), lat, lon)
+            figures.append(("Where the analog days had events nearby",
+                            probability_map(maps, region=region, when=when)))
+    if hindcast is not None:
+        p = hindcast["forecast"].to_numpy()
+        o = hindcast["observed"].to_numpy()
+        figures.append(("Reliability of past analog guidance",
+                        reliability_diagram(reliability_table(p, o))))
+        if 0 < o.sum() < o.size:
+            figures.append(("ROC of past analog guidance",
+                            roc_diagram(*roc_curve_points(p, o)[:2])))
+    return [(caption, figure_png(figure)) for caption, figure in figures]
