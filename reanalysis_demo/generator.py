@@ -117,7 +117,7 @@ def _iter_years(years, start_year, grid, seed, domain):
     scouring = np.zeros(lat.shape)
     for year in range(start_year, start_year + years):
         times = pd.date_range(f"{year}-01-01 {VALID_HOUR:02d}:00", f"{year}-12-31 {VALID_HOUR:02d}:00", freq="D")
-        days = [schedule.step_day(state, schedule_rng, t.dayofyear) for t in times]
+        days = [schedule.step_day(state, schedule_rng, t.day_of_year) for t in times]
         z_year = np.empty((len(times),) + lat.shape, dtype=np.float32)
         q_year = np.empty_like(z_year)
         event_frames = []

@@ -56,7 +56,7 @@ def cf_dataset(fields, variable, plev_pa, long_name, standard_name, units, *, se
     created = _dt.datetime.now(_dt.timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")
     ds.attrs = {
         "Conventions": "CF-1.8",
-        "title": f"Synthetic demo reanalysis: {long_name.lower()}, daily at 12 UTC",
+        "title": f"Synthetic demo reanalysis: {long_name}, daily at 12 UTC",
         "institution": "analogs project (synthetic data, no observations)",
         "source": f"reanalysis_demo {_version()} (seed={seed}, grid={grid} deg)",
         "history": f"{created} created by reanalysis_demo",

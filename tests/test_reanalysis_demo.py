@@ -1,0 +1,334 @@
+"""Physical consistency of the synthetic demo archive (reanalysis_demo).
+
+Each check names its outside reference: MetPy for geostrophic wind, vorticity
+advection, wind direction and dewpoint; published conventions for the files;
+"common practice, no source" for facts of the trade.
+"""
+
+from __future__ import annotations
+
+import warnings
+
+import netCDF4
+import numpy as np
+import pandas as pd
+import pytest
+import xarray as xr
+import metpy.calc as mpcalc
+from metpy.units import units
+
+import reanalysis_demo as rd
+from analogs.constants import SEVERE_DEWPOINT_C
+from analogs.errors import AnalogsInputError
+from reanalysis_demo.__main__ import main
+from reanalysis_demo.geography import land_mask
+
+YEARS = 3
+SEED = 11
+
+
+@pytest.fixture(scope="module")
+def archive():
+    return rd.generate(YEARS, grid=1.0, seed=SEED)
+
+
+@pytest.fixture(scope="module")
+def metpy_fields(archive):
+    """MetPy geostrophic wind, vorticity advection and 850 hPa dewpoint of the archive."""
+    z = archive.fields["zg"].astype(float)
+    z.attrs["units"] = "m"
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", UserWarning)  # MetPy: no vertical dimension here
+        u, v = mpcalc.geostrophic_wind(z)
+        advection = mpcalc.advection(mpcalc.vorticity(u, v), u, v)
+    q = archive.fields["hus"].astype(float).values * units("kg/kg")
+    dewpoint = mpcalc.dewpoint_from_specific_humidity(850.0 * units.hPa, q).m_as("degC")
+    return {"u": u.metpy.dequantify().values, "v": v.metpy.dequantify().values,
+            "vort_adv": advection.metpy.dequantify().values, "dewpoint": dewpoint}
+
+
+@pytest.fixture(scope="module")
+def written(tmp_path_factory):
+    out = tmp_path_factory.mktemp("demo")
+    return rd.write_archive(out, 2, start_year=1999, grid=2.0, seed=4, progress=False)
+
+
+def _region_mask(lat, lon, box=rd.CENTRAL_REGION):
+    south, north, west, east = box
+    lon2, lat2 = np.meshgrid(lon, lat)
+    return (lat2 >= south) & (lat2 <= north) & (lon2 >= west) & (lon2 <= east)
+
+
+def _months(archive):
+    return pd.DatetimeIndex(archive.fields["time"].values).month
+
+
+def test_geostrophic_wind_magnitudes_are_realistic(archive, metpy_fields):
+    """MetPy geostrophic_wind of the 500 hPa heights: mid-latitude (30-55 N) mean speed 10-30 m/s,
+    speeds above 80 m/s almost never (typical 500 hPa jets; common practice, no source)."""
+    lat = archive.fields["lat"].values
+    speed = np.hypot(metpy_fields["u"], metpy_fields["v"])
+    mid = (lat >= 30.0) & (lat <= 55.0)
+    assert 10.0 <= speed[:, mid].mean() <= 30.0
+    assert (speed > 80.0).mean() < 1e-4
+
+
+def test_wind_turns_around_a_generated_trough(archive, metpy_fields):
+    """Around a trough axis the geostrophic wind is from the south ahead (east) of it and from the
+    north behind (west) of it (Holton, An Introduction to Dynamic Meteorology, from memory)."""
+    truth = archive.truth
+    days = np.flatnonzero(truth["regime"].eq("strong_trough").to_numpy())
+    assert days.size > 10
+    lat = archive.fields["lat"].values
+    lon = archive.fields["lon"].values
+    j = int(np.argmin(np.abs(lat - 42.0)))
+    ahead = behind = 0
+    for d in days:
+        axis = truth["trough_axis_lon"].iloc[d]
+        east = int(np.argmin(np.abs(lon - (axis + 6.0))))
+        west = int(np.argmin(np.abs(lon - (axis - 6.0))))
+        ahead += metpy_fields["v"][d, j, east] > 0.0
+        behind += metpy_fields["v"][d, j, west] < 0.0
+    assert ahead / days.size > 0.9
+    assert behind / days.size > 0.9
+
+
+def test_regime_flow_directions_match_their_names(archive, metpy_fields):
+    """MetPy wind_direction of the region-mean geostrophic wind: north-west-flow days from about
+    280-350 deg, strong-trough days from the south-west (DESIGN regime definitions; common practice)."""
+    mask = _region_mask(archive.fields["lat"].values, archive.fields["lon"].values)
+    u = metpy_fields["u"][:, mask].mean(axis=1) * units("m/s")
+    v = metpy_fields["v"][:, mask].mean(axis=1) * units("m/s")
+    direction = mpcalc.wind_direction(u, v, convention="from").m_as("degree")
+    regime = archive.truth["regime"].to_numpy()
+    assert 290.0 <= np.median(direction[regime == "northwest_flow"]) <= 345.0
+    assert np.mean((direction[regime == "northwest_flow"] >= 280.0)
+                   & (direction[regime == "northwest_flow"] <= 350.0)) > 0.85
+    assert 200.0 <= np.median(direction[regime == "strong_trough"]) <= 265.0
+    adv = metpy_fields["vort_adv"][:, mask].mean(axis=1)
+    assert np.median(adv[regime == "strong_trough"]) > np.quantile(adv[regime == "other"], 0.75)
+
+
+def test_summer_heights_exceed_winter_heights(archive):
+    """Domain-mean 500 hPa height is higher in JJA than in DJF of every year (warmer column;
+    common practice, no source)."""
+    z = archive.fields["zg"].mean(dim=("lat", "lon")).to_series()
+    for year in range(2001, 2001 + YEARS):
+        summer = z[f"{year}-06":f"{year}-08"].mean()
+        winter = z[f"{year}-01":f"{year}-02"].mean()
+        assert summer - winter > 100.0
+
+
+def test_humidity_within_physical_bounds(archive, metpy_fields):
+    """q in 0..0.022 kg/kg and its 850 hPa dewpoint from MetPy below 25 C (common practice, no
+    source); the generator's own Bolton (1980) inversion agrees with MetPy within 0.1 C."""
+    q = archive.fields["hus"].values
+    assert q.min() > 0.0 and q.max() <= 0.022
+    assert np.nanmax(metpy_fields["dewpoint"]) < 25.0
+    from reanalysis_demo.moisture import dewpoint_from_specific_humidity
+
+    ours = dewpoint_from_specific_humidity(q[::30].astype(float))
+    np.testing.assert_allclose(ours, metpy_fields["dewpoint"][::30], atol=0.1)
+
+
+def test_sixty_f_dewpoint_reaches_farther_north_in_july(archive, metpy_fields):
+    """The 60 F (15.6 C) dewpoint line over the plains lies farther north in July than in January
+    (moisture retreats south in winter; common practice, no source)."""
+    lat = archive.fields["lat"].values
+    lon = archive.fields["lon"].values
+    plains = (lon >= -100.0) & (lon <= -88.0)
+    months = _months(archive)
+
+    def northern_extent(month):
+        mean_td = metpy_fields["dewpoint"][months == month][:, :, plains].mean(axis=0)
+        moist_lats = np.where(mean_td >= SEVERE_DEWPOINT_C, lat[:, None], np.nan)
+        return np.nanmean(np.nan_to_num(np.nanmax(moist_lats, axis=0), nan=lat[0]))
+
+    assert northern_extent(7) - northern_extent(1) > 5.0
+
+
+def test_cyclones_only_in_warm_season_and_closed_lows(archive):
+    """Tropical cyclones only from June to October (warm season, common practice, no source), each
+    a closed 500 hPa low: the height at its centre lies below the mean on a 600 km ring."""
+    truth = archive.truth
+    with_tc = truth.dropna(subset=["tc_lat"])
+    assert len(with_tc) > 20
+    assert set(pd.to_datetime(with_tc["date"]).dt.month) <= {6, 7, 8, 9, 10}
+    z = archive.fields["zg"]
+    strong = with_tc[with_tc["tc_depth_gpm"] >= 40.0]
+    closed = 0
+    for _, row in strong.iterrows():
+        day = z.sel(time=f"{row['date']}T12:00")
+        centre = float(day.interp(lat=row["tc_lat"], lon=row["tc_lon"]))
+        ring_lat = row["tc_lat"] + 5.4 * np.sin(np.linspace(0, 2 * np.pi, 16, endpoint=False))
+        ring_lon = row["tc_lon"] + 5.4 / np.cos(np.radians(row["tc_lat"])) * np.cos(
+            np.linspace(0, 2 * np.pi, 16, endpoint=False))
+        ring = day.interp(lat=xr.DataArray(ring_lat), lon=xr.DataArray(ring_lon))
+        closed += centre < float(ring.mean()) - 15.0
+    assert closed / len(strong) > 0.9
+
+
+def _events_on_grid(archive):
+    """Events binned to (day index, lat index, lon index) of their convective day and nearest cell."""
+    events = archive.events
+    times = pd.to_datetime(events["time"].str.rstrip("Z"))
+    day = (times - pd.Timedelta(hours=12)).dt.normalize() + pd.Timedelta(hours=12)
+    day_index = pd.Index(pd.DatetimeIndex(archive.fields["time"].values)).get_indexer(day)
+    lat = archive.fields["lat"].values
+    lon = archive.fields["lon"].values
+    j = np.clip(np.round((events["lat"].to_numpy() - lat[0]) / (lat[1] - lat[0])).astype(int), 0, lat.size - 1)
+    k = np.clip(np.round((events["lon"].to_numpy() - lon[0]) / (lon[1] - lon[0])).astype(int), 0, lon.size - 1)
+    return day_index, j, k
+
+
+def test_event_times_fall_in_their_convective_day(archive):
+    """Every event lies within 12 UTC on D to 12 UTC on D+1 of an archive day (convective day,
+    common practice, no source), with kinds tornado / hail / wind."""
+    day_index, _, _ = _events_on_grid(archive)
+    assert (day_index >= 0).all()
+    assert set(archive.events["kind"]) == {"tornado", "hail", "wind"}
+    assert archive.events["time"].str.endswith("Z").all()
+
+
+def test_event_rates_need_overlapping_ingredients(archive, metpy_fields):
+    """Reports per land cell-day are more frequent where moisture (850 hPa dewpoint >= 60 F),
+    deep-layer shear (500 hPa geostrophic wind >= 15 m/s) and forcing (cyclonic vorticity advection)
+    overlap than where any one is missing; ingredients from MetPy (common practice, no source)."""
+    lat = archive.fields["lat"].values
+    lon = archive.fields["lon"].values
+    lon2, lat2 = np.meshgrid(lon, lat)
+    counts = np.zeros(metpy_fields["dewpoint"].shape)
+    np.add.at(counts, _events_on_grid(archive), 1.0)
+    land = np.broadcast_to(land_mask(lat2, lon2), counts.shape)
+    moist = metpy_fields["dewpoint"] >= SEVERE_DEWPOINT_C
+    sheared = np.hypot(metpy_fields["u"], metpy_fields["v"]) >= 15.0
+    forced = metpy_fields["vort_adv"] > 2e-10
+    all_three = counts[land & moist & sheared & forced].mean()
+    for missing in (~moist & sheared & forced, moist & ~sheared & forced, moist & sheared & ~forced):
+        assert all_three > 1.5 * counts[land & missing].mean()
+
+
+def test_cyclone_tornadoes_favour_the_north_east_quadrant(archive):
+    """Over tropical-cyclone days the earth-relative north-east quadrant (within 800 km of the
+    centre) holds the largest share of tornadoes (McCaul 1991, from memory; common practice)."""
+    truth = archive.truth.dropna(subset=["tc_lat"]).set_index("date")
+    tornadoes = archive.events[archive.events["kind"] == "tornado"].copy()
+    times = pd.to_datetime(tornadoes["time"].str.rstrip("Z"))
+    tornadoes["date"] = (times - pd.Timedelta(hours=12)).dt.strftime("%Y-%m-%d")
+    tornadoes = tornadoes[tornadoes["date"].isin(truth.index)]
+    centre_lat = truth.loc[tornadoes["date"], "tc_lat"].to_numpy()
+    centre_lon = truth.loc[tornadoes["date"], "tc_lon"].to_numpy()
+    from analogs.geo import great_circle_km
+
+    near = great_circle_km(tornadoes["lat"].to_numpy(), tornadoes["lon"].to_numpy(),
+                           centre_lat, centre_lon) <= 800.0
+    north = tornadoes["lat"].to_numpy()[near] >= centre_lat[near]
+    east = tornadoes["lon"].to_numpy()[near] >= centre_lon[near]
+    shares = {"NE": np.mean(north & east), "NW": np.mean(north & ~east),
+              "SE": np.mean(~north & east), "SW": np.mean(~north & ~east)}
+    assert near.sum() >= 20
+    assert max(shares, key=shares.get) == "NE"
+
+
+def test_files_are_cf_and_open_with_plain_xarray(written):
+    """Files open with xarray.open_dataset and carry what a CF-1.8 checker looks for (CF
+    conventions 1.8: standard_name, units, axis, calendar; no _FillValue on coordinates)."""
+    assert len(written["zg"]) == 2 and len(written["hus"]) == 2
+    for path, variable, standard_name, plev in ((written["zg"][0], "zg", "geopotential_height", 50000.0),
+                                                (written["hus"][1], "hus", "specific_humidity", 85000.0)):
+        ds = xr.open_dataset(path)
+        assert ds.attrs["Conventions"] == "CF-1.8"
+        assert ds[variable].dims == ("time", "plev", "lat", "lon")
+        assert ds[variable].attrs["standard_name"] == standard_name
+        assert float(ds["plev"][0]) == plev
+        for name, axis in (("time", "T"), ("plev", "Z"), ("lat", "Y"), ("lon", "X")):
+            assert ds[name].attrs["axis"] == axis
+            assert "standard_name" in ds[name].attrs
+        assert ds["time"].encoding["calendar"] == "standard"
+        assert (pd.DatetimeIndex(ds["time"].values).hour == 12).all()
+        ds.close()
+        with netCDF4.Dataset(path) as nc:
+            for name in ("time", "plev", "lat", "lon"):
+                assert "_FillValue" not in nc.variables[name].ncattrs()
+            assert nc.variables["time"].dtype == np.float64
+            assert nc.variables["time"].units.startswith("hours since 1900-01-01")
+            assert nc.variables[variable].dtype == np.float32
+    with open(written["events"]) as fh:
+        assert fh.readline().strip() == "time,lat,lon,kind,magnitude"
+    truth = pd.read_csv(written["truth"])
+    assert {"date", "regime", "tc_lat", "tc_lon"} <= set(truth.columns)
+    assert set(truth["regime"]) <= {"northwest_flow", "tropical", "strong_trough", "other"}
+    assert len(truth) == 365 + 366  # 1999 and the leap year 2000
+
+
+def test_same_seed_same_archive_and_other_seed_differs():
+    """Determinism for a seed (common practice, no source)."""
+    a = rd.generate(1, grid=2.5, seed=7)
+    b = rd.generate(1, grid=2.5, seed=7)
+    c = rd.generate(1, grid=2.5, seed=8)
+    xr.testing.assert_identical(a.fields, b.fields)
+    pd.testing.assert_frame_equal(a.events, b.events)
+    pd.testing.assert_frame_equal(a.truth, b.truth)
+    assert not np.array_equal(a.fields["zg"].values, c.fields["zg"].values)
+
+
+def test_generate_equals_concatenated_iter_years():
+    """generate() is the concatenation of iter_years(), state carried across the new year
+    (invariant; common practice, no source); the truth table does not depend on the grid."""
+    whole = rd.generate(2, grid=2.5, seed=3)
+    parts = list(rd.iter_years(2, grid=2.5, seed=3))
+    assert [p.year for p in parts] == [2001, 2002]
+    xr.testing.assert_identical(whole.fields, xr.concat([p.fields for p in parts], dim="time"))
+    pd.testing.assert_frame_equal(whole.truth, pd.concat([p.truth for p in parts], ignore_index=True))
+    pd.testing.assert_frame_equal(whole.events, pd.concat([p.events for p in parts], ignore_index=True))
+    fine = rd.generate(1, grid=1.25, seed=3)
+    pd.testing.assert_frame_equal(fine.truth, parts[0].truth)
+
+
+def test_default_ten_years_regime_mix():
+    """Ten default years: 'other' is the plurality, each named regime >= 8 % of days, tropical
+    days only June-October (scenario specification; common practice, no source)."""
+    truth = rd.generate(10).truth
+    share = truth["regime"].value_counts(normalize=True)
+    assert share.idxmax() == "other"
+    for regime in ("northwest_flow", "tropical", "strong_trough"):
+        assert share[regime] >= 0.08
+    months = pd.to_datetime(truth.loc[truth["regime"] == "tropical", "date"]).dt.month
+    assert set(months) <= {6, 7, 8, 9, 10}
+
+
+@pytest.mark.parametrize("kwargs, match", [
+    ({"years": 0}, "'years' parameter of generate must be an integer >= 1"),
+    ({"grid": -1.0}, "'grid' parameter of generate must be a number >= 0.05"),
+    ({"domain": (50.0, 20.0, -130.0, -60.0)}, "'domain' parameter of generate"),
+    ({"seed": -3}, "'seed' parameter of generate must be an integer >= 0"),
+])
+def test_bad_options_raise_one_line(kwargs, match):
+    with pytest.raises(AnalogsInputError, match=match):
+        rd.generate(**kwargs)
+
+
+def test_cli_bad_option_exits_2_with_one_line(tmp_path, capsys):
+    """Bad CLI options give exit status 2 and one line on stderr (project CLI contract)."""
+    assert main(["--out", str(tmp_path), "--grid", "-1", "--quiet"]) == 2
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and "'grid' parameter" in err
+    with pytest.raises(SystemExit, match="2"):
+        main(["--out", str(tmp_path), "--years", "many"])
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and "--years" in err
+
+
+def test_cli_writes_archive(tmp_path):
+    """The command writes the archive, truth and events (project CLI contract)."""
+    assert main(["--out", str(tmp_path), "--years", "1", "--grid", "2.5", "--quiet"]) == 0
+    assert (tmp_path / "archive" / "zg500_2001.nc").exists()
+    assert (tmp_path / "archive" / "hus850_2001.nc").exists()
+    assert pd.read_csv(tmp_path / "truth.csv").shape[0] == 365
+
+
+@pytest.mark.slow
+def test_forty_years_quarter_degree_year_by_year(tmp_path):
+    """40 years at 0.25 degree, written year by year with bounded memory (performance check)."""
+    paths = rd.write_archive(tmp_path, 40, grid=0.25, progress=False)
+    assert len(paths["zg"]) == 40
