@@ -182,30 +182,36 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 @contextlib.contextmanager
-def _one_line_warnings():
-    """Show warnings as one 'analogs: warning: ...' line each, only inside the command."""
-    original = warnings.showwarning
+def _collected_warnings():
+    """Collect the command's warnings, each to be shown as one 'analogs: warning:' line.
 
-    def show(message, category, filename, lineno, file=None, line=None):
-        print(f"analogs: warning: {message}", file=sys.stderr)
+    They are printed when the command ends normally; when it stops on bad input, only the
+    error line is printed, so a refusal is always one clear line.
+    """
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("default")
+        yield caught
 
-    warnings.showwarning = show
-    try:
-        with warnings.catch_warnings():
-            warnings.simplefilter("default")
-            yield
-    finally:
-        warnings.showwarning = original
+
+def _print_warnings(caught) -> None:
+    seen = set()
+    for item in caught:
+        text = " ".join(str(item.message).split())
+        if text not in seen:
+            seen.add(text)
+            print(f"analogs: warning: {text}", file=sys.stderr)
 
 
 def main(argv=None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
     try:
-        with _one_line_warnings():
-            return int(args.handler(args) or 0)
+        with _collected_warnings() as caught:
+            status = int(args.handler(args) or 0)
+        _print_warnings(caught)
+        return status
     except AnalogsInputError as error:
-        print(f"analogs {args.command}: error: {error}", file=sys.stderr)
+        print(f"analogs {args.command}: error: {' '.join(str(error).split())}", file=sys.stderr)
         return 2
     except (FileNotFoundError, IsADirectoryError, PermissionError) as error:
         print(f"analogs {args.command}: error: {error.strerror}: {error.filename}", file=sys.stderr)

@@ -127,10 +127,14 @@ def test_bad_inputs_exit_2_with_one_line(demo_store, demo_files, demo_dir, tmp_p
     assert status == 2 and "temperature.nc" in err and len(err.strip().splitlines()) == 1
     # Unknown units on the height field.
     weird = tmp_path / "weird_units.nc"
-    with xr.open_dataset(demo_files[0]) as ds:
+    height_file = next(f for f in demo_files if f.name.startswith("zg"))
+    with xr.open_dataset(height_file) as ds:
         ds = ds.load()
     name = next(iter(ds.data_vars))
-    ds[name].attrs["units"] = "furlongs"
+    # Unknown units with a magnitude that fits no known unit (neither gpm, dam nor
+    # m2 s-2): DESIGN.md says stop with an error naming the variable.
+    ds[name] = ds[name] * 3.0
+    ds[name].attrs.update(units="furlongs", standard_name="geopotential_height")
     ds.to_netcdf(weird)
     status, err = _run(["build", "--store", str(tmp_path / "s2"), str(weird)], capsys)
     assert status == 2 and "furlongs" in err
