@@ -55,11 +55,11 @@ def moisture_return(lat, lon, northwest_amp, s):
 
 
 def trough_moisture_surge(lat, lon, axis, depth):
-    """South-westerly moisture surge ahead of a deep trough: up to +7 C, 5-20 degrees east of the axis, south of ~44 N."""
+    """South-westerly moisture surge ahead of a deep trough: up to +8 C, 5-20 degrees east of the axis, south of ~44 N."""
     axis = np.nan_to_num(np.asarray(axis))[:, None, None]
     scale = (np.asarray(depth) / 180.0)[:, None, None]
     ahead = np.exp(-((lon - axis - 12.0) / 8.0) ** 2) * _logistic((44.0 - lat) / 2.0)
-    return 7.0 * scale * ahead
+    return 8.0 * scale * ahead
 
 
 def scouring_kick(lat, lon, axis, depth, s):

@@ -157,7 +157,7 @@ def _step_red_noise(state, rng):
 
 def _trough_start_probability(s):
     """Daily chance that a deep trough enters when none is active: more in the cool season."""
-    return 0.085 - 0.03 * s
+    return 0.095 - 0.03 * s
 
 
 def _northwest_start_probability(s):
@@ -229,11 +229,11 @@ def _step_northwest(state, rng, s):
 def _cyclone_genesis_rate(day_of_year):
     """Expected cyclone births per day: 1 June to 15 October, peaking in late August.
 
-    About thirteen a season: a raised-cosine window from day 152 to day 288.
+    About fourteen a season: a raised-cosine window from day 152 to day 288.
     """
     if not 152 <= day_of_year <= 288:
         return 0.0
-    return 0.15 * math.sin(math.pi * (day_of_year - 152) / 136.0) ** 1.5
+    return 0.165 * math.sin(math.pi * (day_of_year - 152) / 136.0) ** 1.5
 
 
 def _step_cyclones(state, rng, day_of_year):
