@@ -16,6 +16,7 @@ the readers look at coordinates and at most a few time steps for unit inference.
 from __future__ import annotations
 
 import glob
+import json
 import os
 import re
 import warnings
@@ -25,7 +26,7 @@ import numpy as np
 import pandas as pd
 import xarray as xr
 
-from ._validation import check_choice, check_int
+from ._validation import check_choice, check_float, check_int
 from .constants import G0, ZERO_CELSIUS_K
 from .errors import AnalogsInputError
 
@@ -140,7 +141,8 @@ class _Candidate:
 # ---------------------------------------------------------------------------
 
 def open_archive(paths, *, fields=None, region=None, hour=12, daily="instant",
-                 chunks=None, progress=False) -> xr.Dataset:
+                 chunks=None, progress=False, max_missing_fraction=0.1,
+                 max_gap_days=2) -> xr.Dataset:
     """Open one or many NetCDF / Zarr files as a canonical daily archive.
 
     Parameters
@@ -164,14 +166,24 @@ def open_archive(paths, *, fields=None, region=None, hour=12, daily="instant",
         Dask chunks on canonical dims, e.g. ``{"time": 365}``; the result stays lazy.
     progress : bool
         Show a progress bar while opening files.
+    max_missing_fraction : float
+        A day on which any field is missing (NaN) at more than this fraction of its grid
+        points (points missing on every day, a land/sea mask, not counted) is dropped.
+    max_gap_days : int
+        Runs of at most this many consecutive missing days at a grid point are filled
+        by linear interpolation in time; a point missing for longer drops those days.
 
     Returns
     -------
     xarray.Dataset
         Canonical dims ``(time, lat, lon)``; attribute ``source_files`` lists the
-        files read (``"; "``-separated).
+        files read (``"; "``-separated) and ``missing_data`` (JSON) what the
+        missing-data policy did (see :func:`apply_missing_data_policy`).
     """
     hour = check_int(hour, "hour", "open_archive", min_value=0, max_value=23)
+    max_missing_fraction = check_float(max_missing_fraction, "max_missing_fraction",
+                                       "open_archive", min_value=0.0, max_value=1.0)
+    max_gap_days = check_int(max_gap_days, "max_gap_days", "open_archive", min_value=0)
     check_choice(daily, "daily", "open_archive", ("instant", "mean"))
     files = _expand_paths(paths, "open_archive")
     requested = _check_fields(fields, "open_archive")
@@ -187,17 +199,23 @@ def open_archive(paths, *, fields=None, region=None, hour=12, daily="instant",
                           UserWarning, stacklevel=2)
         candidates.extend(found)
     chosen = _choose_fields(requested, candidates, files, seen)
-    arrays = {}
+    arrays, duplicates = {}, 0
     for field in chosen:
-        pieces = [_canonical_array(c) for c in candidates if c.field == field]
-        arrays[field] = _drop_duplicate_times(_join_pieces(field, pieces), files)
+        pieces = [_sorted_in_time(_canonical_array(c), c.path)
+                  for c in candidates if c.field == field]
+        arrays[field], dropped = _drop_duplicate_times(_join_pieces(field, pieces), files)
+        duplicates = max(duplicates, dropped)
     ds = _merge_fields(arrays, files)
     ds = _to_daily(ds, hour=hour, how=daily, files=files)
     if south_north_west_east is not None:
         ds = subset_region(ds, south_north_west_east, source=_describe(files))
+    ds, report = apply_missing_data_policy(ds, max_missing_fraction=max_missing_fraction,
+                                           max_gap_days=max_gap_days,
+                                           source=_describe(files))
+    report["n_duplicate_times_dropped"] = int(duplicates)
     if chunks:
         ds = ds.chunk({k: v for k, v in chunks.items() if k in ds.dims})
-    ds.attrs = {"source_files": "; ".join(files)}
+    ds.attrs = {"source_files": "; ".join(files), "missing_data": json.dumps(report)}
     return ds
 
 
@@ -805,6 +823,146 @@ def _sample_range(da):
 
 
 # ---------------------------------------------------------------------------
+# missing data
+# ---------------------------------------------------------------------------
+
+#: Dates listed in the ``days_dropped`` entry of the missing-data report.
+_REPORTED_DAYS = 20
+
+
+def apply_missing_data_policy(ds, *, max_missing_fraction=0.1, max_gap_days=2,
+                              source="the archive"):
+    """Handle missing (NaN) values of a canonical archive explicitly.
+
+    Grid points missing on every day (a land/sea mask) stay NaN: the EOF stage leaves
+    them out. At the other points, per field: a day missing more than
+    ``max_missing_fraction`` of them, or all of them, is dropped; runs of at most
+    ``max_gap_days`` consecutive missing days at a point are filled by linear
+    interpolation in time (gaps measured on the time coordinate, so a dropped day counts
+    towards the run); days still missing after that
+    are dropped. Calendar days absent from a daily time axis are counted, not invented.
+    Dask arrays stay lazy; the NaN counts (one value per day and per point) are computed.
+
+    Returns
+    -------
+    (xarray.Dataset, dict)
+        The archive and a report: ``days_dropped`` (first 20 dates), ``n_days_dropped``,
+        ``n_values_filled``, ``n_missing_calendar_days``, ``all_nan_points``.
+    """
+    times = pd.DatetimeIndex(ds["time"].values)
+    names = list(ds.data_vars)
+    n_points = ds.sizes["lat"] * ds.sizes["lon"]
+    per_day, per_point = _nan_counts(ds)
+    masks = {n: per_point[n] == ds.sizes["time"] for n in names}
+    for name in names:
+        if masks[name].all():
+            raise AnalogsInputError(f"{name} in {source}: every value is missing (NaN); "
+                                    "expected a field with valid values")
+    missing = {n: per_day[n] - int(masks[n].sum()) for n in names}
+    heavy = np.zeros(times.size, dtype=bool)
+    for name in names:
+        valid_points = n_points - int(masks[name].sum())
+        heavy |= (missing[name] > max_missing_fraction * valid_points) | (
+            missing[name] >= valid_points)
+    keep = np.flatnonzero(~heavy)
+    partial = [n for n in names if missing[n][keep].sum() > 0]
+    filled_count = 0
+    if partial and keep.size:
+        ds = ds.isel(time=keep)
+        days = ((ds["time"].values - ds["time"].values[0]) / np.timedelta64(1, "D")
+                ).astype(float)
+        for name in partial:
+            da = ds[name]
+            if da.chunks is not None:
+                da = da.chunk({"time": -1})
+            ds[name] = xr.apply_ufunc(
+                _fill_short_gaps, da, input_core_dims=[["time"]],
+                output_core_dims=[["time"]], kwargs={"days": days,
+                                                     "max_span": max_gap_days + 1.0},
+                dask="parallelized", output_dtypes=[da.dtype], keep_attrs=True,
+            ).transpose(*da.dims)
+        after, _ = _nan_counts(ds[partial])
+        left = np.zeros(keep.size, dtype=bool)
+        for name in partial:
+            residual = after[name] - int(masks[name].sum())
+            filled_count += int(missing[name][keep].sum() - residual.sum())
+            left |= residual > 0
+        dropped_days = np.sort(np.concatenate([np.flatnonzero(heavy), keep[left]]))
+        ds = ds.isel(time=np.flatnonzero(~left))
+    else:
+        dropped_days = np.flatnonzero(heavy)
+        if dropped_days.size:
+            ds = ds.isel(time=keep)
+    if ds.sizes["time"] == 0:
+        raise AnalogsInputError(
+            f"{source}: every day has more than {max_missing_fraction:g} of its grid "
+            "points missing (NaN) or gaps longer than max_gap_days; no day is usable")
+    dropped = times[dropped_days]
+    report = {"days_dropped": [f"{t:%Y-%m-%d}" for t in dropped[:_REPORTED_DAYS]],
+              "n_days_dropped": int(dropped.size),
+              "n_values_filled": int(filled_count),
+              "n_missing_calendar_days": _missing_calendar_days(times),
+              "all_nan_points": int(np.logical_or.reduce([masks[n] for n in names]).sum())}
+    if dropped.size or filled_count:
+        warnings.warn(
+            f"{source}: missing values: {dropped.size} day(s) dropped"
+            f"{' (' + ', '.join(report['days_dropped'][:3]) + (', ...' if dropped.size > 3 else '') + ')' if dropped.size else ''}"
+            f", {filled_count} value(s) filled by linear interpolation in time",
+            UserWarning, stacklevel=3)
+    return ds, report
+
+
+def _fill_short_gaps(values, *, days, max_span):
+    """Linear interpolation in time of NaN runs whose valid neighbours are at most
+    ``max_span`` days apart; time is the last axis, ``days`` its coordinate in days.
+
+    Runs at the start or end (one neighbour missing) stay NaN.
+    """
+    values = np.array(values, copy=True)
+    moved = np.moveaxis(values, -1, 0)
+    valid = ~np.isnan(moved)
+    n = moved.shape[0]
+    index = np.arange(n).reshape((n,) + (1,) * (moved.ndim - 1))
+    before = np.maximum.accumulate(np.where(valid, index, -1), axis=0)
+    after = np.flip(np.minimum.accumulate(np.flip(np.where(valid, index, n), 0), axis=0), 0)
+    inside = ~valid & (before >= 0) & (after < n)
+    low, high = np.clip(before, 0, n - 1), np.clip(after, 0, n - 1)
+    span = days[high] - days[low]
+    fill = inside & (span <= max_span + 1e-9)
+    if fill.any():
+        weight = np.where(fill, (days[index] - days[low]) / np.where(span > 0, span, 1.0), 0.0)
+        start = np.take_along_axis(moved, low, axis=0)
+        end = np.take_along_axis(moved, high, axis=0)
+        moved[fill] = (start + weight * (end - start))[fill]
+    return values
+
+
+def _nan_counts(ds):
+    """({field: NaN count per day}, {field: NaN count per grid point}), computed in one pass."""
+    counts = xr.Dataset()
+    for name in ds.data_vars:
+        isnan = ds[name].isnull()
+        counts[f"{name}/day"] = isnan.sum(("lat", "lon"))
+        counts[f"{name}/point"] = isnan.sum("time")
+    counts = counts.compute()
+    per_day = {n: counts[f"{n}/day"].values.astype(int) for n in ds.data_vars}
+    per_point = {n: counts[f"{n}/point"].values.astype(int) for n in ds.data_vars}
+    return per_day, per_point
+
+
+def _missing_calendar_days(times):
+    """Calendar days absent between the first and last day of a daily time axis."""
+    if times.size < 2:
+        return 0
+    days = times.normalize()
+    step = pd.Series(days).diff().dropna().median()
+    if step != pd.Timedelta(days=1):
+        return 0
+    span = (days[-1] - days[0]) // pd.Timedelta(days=1) + 1
+    return int(span - days.unique().size)
+
+
+# ---------------------------------------------------------------------------
 # joining files and fields, time handling
 # ---------------------------------------------------------------------------
 
@@ -858,14 +1016,25 @@ def _merge_fields(arrays, files):
     return ds
 
 
+def _sorted_in_time(da, path):
+    """Sort the time axis of one file's variable, with a warning when it was disordered."""
+    times = da["time"].values
+    if times.size > 1 and np.any(times[1:] < times[:-1]):
+        warnings.warn(f"{path}: time of {da.name} is not monotonic; it is sorted for you",
+                      UserWarning, stacklevel=3)
+        da = da.isel(time=np.argsort(times, kind="stable"))
+    return da
+
+
 def _drop_duplicate_times(da, files):
+    """(array without repeated times, how many were dropped); the first of each is kept."""
     duplicated = pd.DatetimeIndex(da["time"].values).duplicated(keep="first")
     if duplicated.any():
         warnings.warn(f"{duplicated.sum()} repeated time(s) of {da.name} in "
                       f"{_describe(files)}; the "
                       "first occurrence of each is kept", UserWarning, stacklevel=3)
         da = da.isel(time=np.flatnonzero(~duplicated))
-    return da
+    return da, int(duplicated.sum())
 
 
 def _to_daily(ds, *, hour, how, files):

@@ -144,22 +144,24 @@ def test_eofs_hgt_djf_opens_with_units_inference_warning():
 
 
 def test_dask_backed_and_lazy(tmp_path):
-    """With chunks and stated units, opening, daily means and subsetting compute nothing."""
+    """With chunks and stated units, opening, daily means and subsetting read the data
+    only once, for the missing-data census (NaN counts per day and per point, one
+    reduction each call); the fields come back as dask arrays, nothing held in memory."""
     dask = pytest.importorskip("dask")
     times = daily_times(periods=10)
     paths = write_demo_style(tmp_path, times)
     era5_dataset(pd.date_range("2003-07-01", periods=12, freq="6h")).to_netcdf(tmp_path / "e.nc")
-    graphs = []
+    computes = []
 
     def counting_scheduler(dsk, keys, **kwargs):
-        graphs.append(len(dsk))
+        computes.append(len(keys))
         return dask.get(dsk, keys, **kwargs)
 
     with dask.config.set(scheduler=counting_scheduler):
         ds = open_archive(paths, chunks={"time": 4})
         sub = open_archive(tmp_path / "e.nc", chunks={"time": 4}, daily="mean",
                            region=(0.0, 40.0, -100.0, 0.0))
-    assert graphs == []
+    assert len(computes) == 2
     assert ds["z500"].chunks[0] == (4, 4, 2)
     assert isinstance(sub["q850"].data, dask.array.Array) and sub.sizes["time"] == 3
     np.testing.assert_allclose(ds["z500"].values, smooth_height(times))
@@ -493,3 +495,159 @@ def test_regional_0_360_grid_across_greenwich_needs_no_warning():
         out = normalise_grid(da)
     np.testing.assert_array_equal(out["lon"].values, [-10.0, -5.0, 0.0, 5.0])
     np.testing.assert_array_equal(out.values, da.values)
+
+
+# --------------------------------------------------------------------------- missing data
+
+def _missing_report(ds):
+    import json
+    return json.loads(ds.attrs["missing_data"])
+
+
+def _gappy_height(tmp_path, edit, periods=12):
+    """A height file (gpm, 500 hPa) of ``periods`` days after ``edit(z)`` in place."""
+    times = daily_times(periods=periods)
+    z = smooth_height(times)
+    edit(z)
+    return _height_file(tmp_path / "gappy.nc", z, times=times, attrs={"units": "gpm"},
+                        level=500.0), times, smooth_height(times)
+
+
+def test_clean_archive_reports_nothing_done(tmp_path):
+    path, times, z = _gappy_height(tmp_path, lambda z: None)
+    report = _missing_report(open_archive(path))
+    assert report == {"days_dropped": [], "n_days_dropped": 0, "n_values_filled": 0,
+                      "n_missing_calendar_days": 0, "all_nan_points": 0,
+                      "n_duplicate_times_dropped": 0}
+
+
+def test_all_nan_day_and_mostly_nan_day_are_dropped(tmp_path):
+    def edit(z):
+        z[3] = np.nan                      # every point missing
+        z[7, :, : z.shape[2] // 2] = np.nan  # half the points missing (> 10 %)
+    path, times, z = _gappy_height(tmp_path, edit)
+    with pytest.warns(UserWarning, match="2 day.s. dropped"):
+        ds = open_archive(path)
+    kept = np.delete(np.arange(len(times)), [3, 7])
+    np.testing.assert_array_equal(ds["time"].values, times[kept].values)
+    np.testing.assert_allclose(ds["z500"].values, z[kept])
+    report = _missing_report(ds)
+    assert report["n_days_dropped"] == 2 and report["n_values_filled"] == 0
+    assert report["days_dropped"] == [f"{times[3]:%Y-%m-%d}", f"{times[7]:%Y-%m-%d}"]
+
+
+def test_isolated_gaps_are_filled_linearly_in_time(tmp_path):
+    """Filled values equal numpy.interp between the neighbouring valid days (linear
+    interpolation in time; common practice, no source)."""
+    def edit(z):
+        z[4, 10, 20] = np.nan              # one day
+        z[6:8, 12, 30] = np.nan            # two consecutive days: max_gap_days=2
+    path, times, z = _gappy_height(tmp_path, edit)
+    with pytest.warns(UserWarning, match="3 value.s. filled"):
+        ds = open_archive(path)
+    assert ds.sizes["time"] == len(times)
+    days = np.arange(len(times), dtype=float)
+    for (lat_i, lon_i), gap in (((10, 20), [4]), ((12, 30), [6, 7])):
+        valid = np.setdiff1d(np.arange(len(times)), gap)
+        expected = np.interp(days[gap], days[valid], z[valid, lat_i, lon_i])
+        np.testing.assert_allclose(ds["z500"].values[gap, lat_i, lon_i], expected, rtol=1e-6)
+    assert _missing_report(ds)["n_values_filled"] == 3
+
+
+def test_long_gap_drops_its_days_and_edge_gaps_cannot_be_filled(tmp_path):
+    def edit(z):
+        z[3:6, 10, 20] = np.nan   # three days > max_gap_days
+        z[0, 5, 5] = np.nan       # first day: no earlier value to interpolate from
+    path, times, z = _gappy_height(tmp_path, edit)
+    with pytest.warns(UserWarning, match="4 day.s. dropped"):
+        ds = open_archive(path)
+    kept = np.delete(np.arange(len(times)), [0, 3, 4, 5])
+    np.testing.assert_array_equal(ds["time"].values, times[kept].values)
+    assert not np.isnan(ds["z500"].values).any()
+    # With a longer allowance the three-day gap is filled instead.
+    with pytest.warns(UserWarning, match=r"1 day.s. dropped \(.*\), 3 value.s. filled"):
+        wider = open_archive(path, max_gap_days=3)
+    assert wider.sizes["time"] == len(times) - 1
+
+
+def test_land_sea_mask_points_stay_nan_and_do_not_drop_days(tmp_path):
+    def edit(z):
+        z[:, :6, :] = np.nan  # a third of the grid missing on every day
+    path, times, z = _gappy_height(tmp_path, edit)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        ds = open_archive(path)
+    assert ds.sizes["time"] == len(times)
+    assert np.isnan(ds["z500"].values[:, :6]).all()
+    assert _missing_report(ds)["all_nan_points"] == 6 * LON.size
+
+
+def test_missing_calendar_days_are_counted_not_invented(tmp_path):
+    times = daily_times(periods=10).delete([2, 3, 8])
+    path = _height_file(tmp_path / "holes.nc", smooth_height(times), times=times,
+                        attrs={"units": "gpm"}, level=500.0)
+    ds = open_archive(path)
+    np.testing.assert_array_equal(ds["time"].values, times.values)
+    assert _missing_report(ds)["n_missing_calendar_days"] == 3
+
+
+def test_non_monotonic_time_is_sorted_with_warning(tmp_path):
+    times = daily_times(periods=6)
+    order = np.array([0, 3, 1, 2, 5, 4])
+    z = smooth_height(times)
+    path = _height_file(tmp_path / "shuffled.nc", z[order], times=times[order],
+                        attrs={"units": "gpm"}, level=500.0)
+    with pytest.warns(UserWarning, match="time of z500 is not monotonic; it is sorted"):
+        ds = open_archive(path)
+    np.testing.assert_array_equal(ds["time"].values, times.values)
+    np.testing.assert_allclose(ds["z500"].values, z)
+
+
+def test_duplicate_times_are_counted_in_the_report(tmp_path):
+    times = daily_times(periods=5)
+    repeated = times.insert(2, times[1])
+    z = smooth_height(repeated)
+    path = _height_file(tmp_path / "dup.nc", z, times=repeated, attrs={"units": "gpm"},
+                        level=500.0)
+    with pytest.warns(UserWarning, match="1 repeated time"):
+        ds = open_archive(path)
+    assert _missing_report(ds)["n_duplicate_times_dropped"] == 1
+    np.testing.assert_array_equal(ds["time"].values, times.values)
+
+
+def test_every_value_missing_is_refused(tmp_path):
+    path, _, _ = _gappy_height(tmp_path, lambda z: z.fill(np.nan))
+    with pytest.raises(AnalogsInputError, match="z500 in .*gappy.nc: every value is missing"):
+        open_archive(path)
+
+
+def test_every_day_too_gappy_is_refused(tmp_path):
+    def edit(z):
+        for day in range(z.shape[0]):  # 5 of 37 latitude rows (14 %), a different band each day
+            z[day, 3 * day: 3 * day + 5] = np.nan
+    path, _, _ = _gappy_height(tmp_path, edit)
+    with pytest.raises(AnalogsInputError, match="every day has more than 0.1 of its grid"):
+        open_archive(path)
+
+
+def test_missing_data_options_are_checked(tmp_path):
+    path, _, _ = _gappy_height(tmp_path, lambda z: None)
+    with pytest.raises(AnalogsInputError, match="'max_missing_fraction' parameter of "
+                                                "open_archive must be a number >= 0.0"):
+        open_archive(path, max_missing_fraction=1.5)
+    with pytest.raises(AnalogsInputError, match="'max_gap_days' parameter"):
+        open_archive(path, max_gap_days=-1)
+
+
+def test_dask_fill_matches_in_memory_fill(tmp_path):
+    def edit(z):
+        z[4, 10, 20] = np.nan
+        z[9] = np.nan
+    path, _, _ = _gappy_height(tmp_path, edit)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", UserWarning)
+        eager = open_archive(path)
+        lazy = open_archive(path, chunks={"time": 3})
+    assert lazy["z500"].chunks is not None
+    np.testing.assert_allclose(lazy["z500"].values, eager["z500"].values)
+    assert lazy.attrs["missing_data"] == eager.attrs["missing_data"]
