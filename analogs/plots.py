@@ -200,10 +200,13 @@ def store_day_fields(store, rows) -> xr.Dataset:
     times = store.times[rows]
     climate = store.climatology.predict(times)[store.fields].mean("time")
     anomaly = store.eof.reconstruct(store.pcs.isel(time=rows).mean("time"))[store.fields]
-    drop = lambda ds: ds.drop_vars([c for c in ds.coords if c not in ("lat", "lon")])  # noqa: E731
-    fields = drop(climate) + drop(anomaly)
+    fields = xr.Dataset()
     for name in store.fields:
-        fields[name].attrs = dict(store.eof.eofs_[name].attrs)
+        total = climate[name].drop_vars([c for c in climate[name].coords
+                                         if c not in ("lat", "lon")]) + anomaly[name].values
+        attrs = dict(anomaly[name].attrs)
+        attrs["long_name"] = attrs.get("long_name", name).removesuffix(" anomaly")
+        fields[name] = total.assign_attrs(attrs)
     return fields
 
 
@@ -408,7 +411,7 @@ def regime_calendar(tags: pd.DataFrame, *, title_suffix="") -> Figure:
     years = np.arange(tags.index.year.min(), tags.index.year.max() + 1)
     codes = {r: i for i, r in enumerate(regimes)}
     grid = np.full((years.size, 366), np.nan)
-    grid[tags.index.year - years[0], tags.index.dayofyear - 1] = \
+    grid[tags.index.year - years[0], tags.index.day_of_year - 1] = \
         tags["regime"].astype(str).map(codes).to_numpy()
     colours = regime_colours(regimes)
     cmap = ListedColormap([colours[r] for r in regimes])
@@ -420,7 +423,7 @@ def regime_calendar(tags: pd.DataFrame, *, title_suffix="") -> Figure:
     bar = figure.colorbar(image, ax=ax, ticks=np.arange(len(regimes)), label="regime")
     bar.ax.set_yticklabels(regimes)
     month_starts = pd.date_range("2001-01-01", periods=12, freq="MS")
-    ax.set_xticks(month_starts.dayofyear, month_starts.strftime("%b"))
+    ax.set_xticks(month_starts.day_of_year, month_starts.strftime("%b"))
     ax.set_xlabel("day of year")
     ax.set_ylabel("year")
     if years.size <= 15:

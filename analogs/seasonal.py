@@ -308,7 +308,7 @@ def regime_composites(store, months=None, *, files=None) -> xr.Dataset:
         lat, lon = store.grid
         archive = regrid_to(open_archive(files, fields=store.fields, progress=False)[store.fields],
                             lat, lon)
-        archive = archive.assign_coords(time=pd.DatetimeIndex(archive["time"].values).normalize())
+        archive_days = pd.DatetimeIndex(archive["time"].values).normalize()
     anomalies, means, n_days = [], [], []
     for regime in regimes:
         days = tags.index[tags["regime"].astype(str).to_numpy() == regime]
@@ -323,8 +323,10 @@ def regime_composites(store, months=None, *, files=None) -> xr.Dataset:
         if archive is None:
             anomaly = store.eof.reconstruct(store.pcs.isel(time=rows).mean("time"))
         else:
-            chosen = archive.sel(time=days)
-            anomaly = (store.climatology.transform(chosen).mean("time"))
+            # Select by calendar day but keep the valid time: the climatology is a
+            # smooth function of the time of year, hour included.
+            chosen = archive.isel(time=np.flatnonzero(archive_days.isin(days)))
+            anomaly = store.climatology.transform(chosen).mean("time")
         anomaly = anomaly[store.fields].drop_vars([c for c in anomaly.coords
                                                   if c not in ("lat", "lon")])
         anomalies.append(anomaly)
@@ -343,8 +345,8 @@ def regime_composites(store, months=None, *, files=None) -> xr.Dataset:
                              "lat": template["lat"], "lon": template["lon"]})
     season = season_label(months)
     for field in store.fields:
-        units = store.eof.eofs_[field].attrs.get("units") or template[field].attrs.get("units", "")
-        name = template[field].attrs.get("long_name", field)
+        units = template[field].attrs.get("units", "")
+        name = template[field].attrs.get("long_name", field).removesuffix(" anomaly")
         out[f"{field}_anomaly"] = anomaly_ds[field].assign_attrs(
             units=units, long_name=f"mean {name} anomaly of the regime's days ({method})")
         out[f"{field}_mean"] = mean_ds[field].assign_attrs(

@@ -1,0 +1,231 @@
+"""Figures rendered off-screen on the demo store: not blank, with the expected axes,
+titles and colour bars, and drawing the numbers they claim (references: numpy on the
+store's own reconstructions, scikit-learn's ROC area, outcome_maps)."""
+
+import io
+import subprocess
+import sys
+
+import matplotlib.image
+import numpy as np
+import pandas as pd
+import pytest
+from sklearn.metrics import roc_auc_score
+
+from analogs import plots
+from analogs.errors import AnalogsInputError
+from analogs.hindcast import leave_one_year_out
+from analogs.outcomes import outcome_maps
+from analogs.seasonal import regime_composites, regime_frequency_by_month
+from analogs.verify import reliability_table, roc_curve_points
+
+#: Least variance of the RGBA pixel values (0-255) of a figure with content; a blank
+#: white canvas has 0, a figure with only a title about 10 (measured here).
+MIN_PIXEL_VARIANCE = 200.0
+
+
+def pixels(figure) -> np.ndarray:
+    figure.canvas.draw()
+    return np.asarray(figure.canvas.buffer_rgba(), dtype=float)
+
+
+def assert_not_blank(figure):
+    assert pixels(figure).var() > MIN_PIXEL_VARIANCE
+    png = plots.figure_png(figure)
+    assert png[:8] == b"\x89PNG\r\n\x1a\n"
+    image = matplotlib.image.imread(io.BytesIO(png), format="png")
+    assert image.var() * 255.0 ** 2 > MIN_PIXEL_VARIANCE
+
+
+def colourbar_labels(figure) -> list[str]:
+    return [ax.get_ylabel() for ax in figure.axes if ax.get_label() == "<colorbar>"]
+
+
+def map_axes(figure):
+    return [ax for ax in figure.axes if ax.get_label() != "<colorbar>"]
+
+
+@pytest.fixture(scope="module")
+def query(demo_store):
+    tags = demo_store.tags
+    summer = tags[(tags.index.year == tags.index.year.max()) & tags.index.month.isin([6, 7, 8])]
+    date = summer["confidence"].idxmax()
+    return demo_store.find(date=str(date.date()), top=12)
+
+
+def test_blank_figure_fails_the_check():
+    """The blankness threshold separates an empty canvas from a drawn one."""
+    empty = plots.new_figure(4, 3)
+    assert pixels(empty).var() < MIN_PIXEL_VARIANCE
+
+
+def test_target_map(demo_store, query):
+    fields = plots.store_day_fields(demo_store, [demo_store.day_row(query.target["date"])])
+    figure = plots.target_map(fields, region=demo_store.region,
+                              when=f"Target {query.target['date']}", source="EOF reconstruction")
+    assert_not_blank(figure)
+    assert len(figure.axes) == 2
+    assert colourbar_labels(figure) == ["850 hPa specific humidity (g/kg)"]
+    (ax,) = map_axes(figure)
+    assert query.target["date"] in ax.get_title() and "500 hPa height" in ax.get_title()
+    assert "60 F" in ax.get_title()
+    assert ax.get_xlabel() == "longitude (deg E)" and ax.get_ylabel() == "latitude (deg N)"
+    # The shaded moisture is the field in g/kg.
+    mesh = ax.collections[0]
+    np.testing.assert_allclose(np.asarray(mesh.get_array()).ravel(),
+                               fields["q850"].values.ravel() * 1000.0)
+    assert plots.PLAIN_AXES_NOTE in [t.get_text() for t in figure.texts]
+
+
+def test_target_map_needs_height():
+    import xarray as xr
+    with pytest.raises(AnalogsInputError, match="'z500'"):
+        plots.target_map(xr.Dataset())
+
+
+def test_analog_panel(demo_store, query):
+    figure = plots.analog_panel(demo_store, query, n=6)
+    assert_not_blank(figure)
+    axes = map_axes(figure)
+    assert len(axes) == 6
+    for ax, analog in zip(axes, query.analogs.head(6).itertuples()):
+        assert analog.date in ax.get_title() and analog.regime in ax.get_title()
+    assert query.target["date"] in figure.get_suptitle()
+    # Events plotted: the markers of the first analog's day are its events, by kind.
+    first = query.analogs.iloc[0]
+    day_events = demo_store.events[demo_store.events["day"] == pd.Timestamp(first["date"])]
+    plotted = sum(len(c.get_offsets()) for c in axes[0].collections
+                  if c.get_label() in set(demo_store.events["kind"]))
+    assert plotted == len(day_events)
+
+
+def test_composite_difference(demo_store, query):
+    row = demo_store.day_row(query.target["date"])
+    target = plots.store_day_fields(demo_store, [row])
+    figure = plots.composite_difference(demo_store, query, target)
+    assert_not_blank(figure)
+    assert len(figure.axes) == 4
+    labels = colourbar_labels(figure)
+    assert any("g/kg" in label for label in labels)
+    assert any("minus target" in label and "(gpm)" in label for label in labels)
+    left, right = map_axes(figure)
+    assert "12 analog days" in left.get_title() and query.target["date"] in right.get_title()
+    # Reference: numpy mean over the analog days of climatology + reconstruction.
+    rows = query.analogs["row"].to_numpy()
+    daily = (demo_store.climatology.predict(demo_store.times[rows])["z500"].values
+             + demo_store.eof.reconstruct(demo_store.pcs.isel(time=rows))["z500"].values)
+    expected = daily.mean(axis=0) - target["z500"].values
+    shaded = np.asarray(right.collections[0].get_array()).reshape(expected.shape)
+    np.testing.assert_allclose(shaded, expected, rtol=1e-9, atol=1e-6)
+
+
+def test_probability_map(demo_store, query):
+    lat, lon = demo_store.grid
+    maps = outcome_maps(demo_store.events, pd.to_datetime(query.analogs["date"]), lat, lon)
+    figure = plots.probability_map(maps, region=demo_store.region, when=query.target["date"])
+    assert_not_blank(figure)
+    assert len(figure.axes) == 2
+    (label,) = colourbar_labels(figure)
+    assert "within 40 km" in label and "(%)" in label
+    (ax,) = map_axes(figure)
+    assert "12 days" in ax.get_title()
+    np.testing.assert_allclose(np.asarray(ax.collections[0].get_array()).ravel(),
+                               100.0 * maps["neighbourhood_probability"].values.ravel())
+
+
+@pytest.fixture(scope="module")
+def hindcast(demo_store):
+    return leave_one_year_out(demo_store.pcs.values, demo_store.times, demo_store.observed(),
+                              months=[5, 6, 7, 8, 9])
+
+
+def test_reliability_diagram(hindcast):
+    table = reliability_table(hindcast["forecast"], hindcast["observed"])
+    figure = plots.reliability_diagram(table, title_suffix="May-Sep")
+    assert_not_blank(figure)
+    assert len(figure.axes) == 2
+    top, bottom = figure.axes
+    assert "Reliability" in top.get_title() and "May-Sep" in top.get_title()
+    line = [l for l in top.get_lines() if l.get_label() == "hindcast"][0]
+    np.testing.assert_allclose(line.get_ydata(), [b["observed_frequency"] for b in table])
+    assert [p.get_height() for p in bottom.patches] == [b["count"] for b in table]
+
+
+def test_roc_diagram_area_matches_scikit_learn(hindcast):
+    p, o = hindcast["forecast"].to_numpy(), hindcast["observed"].to_numpy()
+    false_alarm_rate, hit_rate, _ = roc_curve_points(p, o)
+    figure = plots.roc_diagram(false_alarm_rate, hit_rate)
+    assert_not_blank(figure)
+    (ax,) = figure.axes
+    assert ax.get_xlabel() == "false alarm rate" and ax.get_ylabel() == "hit rate"
+    label = [l for l in ax.get_lines() if l.get_label().startswith("hindcast")][0].get_label()
+    assert f"area {roc_auc_score(o, p):.2f}" in label
+
+
+def test_regime_calendar(demo_store):
+    tags = demo_store.tags
+    figure = plots.regime_calendar(tags, title_suffix="all months")
+    assert_not_blank(figure)
+    assert len(figure.axes) == 2
+    ax = map_axes(figure)[0]
+    assert "Regime of every tagged day" in ax.get_title()
+    (bar,) = [a for a in figure.axes if a.get_label() == "<colorbar>"]
+    regimes = [t.get_text() for t in bar.get_yticklabels()]
+    assert set(regimes) == set(tags["regime"])
+    image = ax.get_images()[0].get_array()
+    day = tags.index[200]
+    code = image[day.year - tags.index.year.min(), day.day_of_year - 1]
+    assert regimes[int(code)] == tags["regime"].iloc[200]
+
+
+def test_monthly_frequency_chart(demo_store):
+    frequency = regime_frequency_by_month(demo_store.tags)
+    figure = plots.monthly_frequency_chart(frequency)
+    assert_not_blank(figure)
+    (ax,) = figure.axes
+    assert ax.get_ylabel() == "share of tagged days (%)"
+    heights = {}
+    for container, regime in zip(ax.containers, ax.get_legend_handles_labels()[1]):
+        heights[regime] = [bar.get_height() for bar in container]
+    july = frequency[frequency["month"] == 7].set_index("regime")["fraction"]
+    for regime, values in heights.items():
+        assert values[6] == pytest.approx(100.0 * july[regime])
+
+
+def test_composite_maps(demo_store):
+    composites = regime_composites(demo_store, [6, 7, 8])
+    figure = plots.composite_maps(composites, region=demo_store.region)
+    assert_not_blank(figure)
+    present = int((composites["n_days"] > 0).sum())
+    assert len(map_axes(figure)) == present
+    assert colourbar_labels(figure) == ["mean 500 hPa height anomaly (gpm)"]
+    assert "kept EOFs" in figure.get_suptitle()
+
+
+def test_outcome_chart(demo_store):
+    from analogs.outcomes import daily_event_counts
+    from analogs.seasonal import outcomes_by_regime_and_month
+    tags = demo_store.tags
+    counts = daily_event_counts(demo_store.events, tags.index, demo_store.region)
+    figure = plots.outcome_chart(outcomes_by_regime_and_month(tags, counts))
+    assert_not_blank(figure)
+    (ax,) = figure.axes
+    assert "at least one event" in ax.get_title()
+
+
+def test_find_figures_for_a_date_target(demo_store, query):
+    figures = plots.find_figures(demo_store, query)
+    captions = [caption for caption, _ in figures]
+    assert len(figures) == 4
+    assert "EOFs" in captions[0]
+    for _, png in figures:
+        image = matplotlib.image.imread(io.BytesIO(png), format="png")
+        assert image.var() * 255.0 ** 2 > MIN_PIXEL_VARIANCE
+
+
+def test_plots_leave_pyplot_alone():
+    """Importing and drawing never loads pyplot (no global figure state, no display)."""
+    code = ("import sys, analogs.plots as p; f = p.new_figure(); f.add_subplot().plot([1, 2]); "
+            "p.figure_png(f); print('matplotlib.pyplot' in sys.modules)")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    assert out.stdout.strip() == "False"
