@@ -28,7 +28,7 @@ import pandas as pd
 from analogs.constants import CONVECTIVE_DAY_START_HOUR, EARTH_RADIUS, G0, OMEGA, SEVERE_DEWPOINT_C
 from analogs.geo import great_circle_km, spherical_gradient
 
-from .geography import _logistic, cell_area_km2, plateau_fraction
+from .geography import logistic, cell_area_km2, plateau_fraction
 from .heights import geostrophic_wind, relative_vorticity
 from .moisture import dewpoint_from_specific_humidity
 
@@ -43,17 +43,17 @@ KINDS = ("tornado", "hail", "wind")
 
 def moisture_factor(dewpoint_c):
     """0-1 ramp centred on the 60 F (15.6 C) dewpoint, 1.2 C wide (common practice, no source)."""
-    return _logistic((dewpoint_c - SEVERE_DEWPOINT_C) / 1.2)
+    return logistic((dewpoint_c - SEVERE_DEWPOINT_C) / 1.2)
 
 
 def shear_factor(speed):
     """0-1 ramp of deep-layer shear centred on 14 m/s, 3 m/s wide (organised storms above ~15 m/s; common practice)."""
-    return _logistic((speed - 14.0) / 3.0)
+    return logistic((speed - 14.0) / 3.0)
 
 
 def forcing_factor(vorticity_advection):
     """Forcing from cyclonic vorticity advection (s-2): 0.2 floor, ramp centred on 5e-10 s-2."""
-    return 0.2 + 0.8 * _logistic((vorticity_advection - 5e-10) / 3e-10)
+    return 0.2 + 0.8 * logistic((vorticity_advection - 5e-10) / 3e-10)
 
 
 def plateau_plume(lat, lon, u, v):
@@ -112,16 +112,16 @@ def cyclone_tornado_intensity(lat, lon, q, cyclone):
     _, c_lat, c_lon, depth, radius = cyclone
     r = great_circle_km(lat, lon, c_lat, c_lon)
     low = -1.3 * depth * np.exp(-0.5 * (r / (0.9 * radius)) ** 2)
-    inland_high = 25.0 * _logistic((lat - c_lat - 4.0) / 2.0) * np.exp(-0.5 * (r / 1200.0) ** 2)
+    inland_high = 25.0 * logistic((lat - c_lat - 4.0) / 2.0) * np.exp(-0.5 * (r / 1200.0) ** 2)
     z850 = low + inland_high
     lat1d, lon1d = lat[:, 0], lon[0]
     dz_dx, dz_dy = spherical_gradient(z850, lat1d, lon1d)
     f = 2.0 * OMEGA * np.sin(np.radians(lat))
     u = -G0 / f * dz_dy
     v = G0 / f * dz_dx
-    low_level_shear = _logistic((np.hypot(u, v) - 15.0) / 4.0)
+    low_level_shear = logistic((np.hypot(u, v) - 15.0) / 4.0)
     poleward_flux = q * v
-    low_level_buoyancy = _logistic((poleward_flux - 0.12) / 0.04)
+    low_level_buoyancy = logistic((poleward_flux - 0.12) / 0.04)
     return low_level_shear * low_level_buoyancy
 
 

@@ -20,7 +20,7 @@ from analogs.errors import AnalogsInputError
 
 from . import heights, moisture, schedule
 from .events import draw_events
-from .geography import CENTRAL_REGION, DEFAULT_DOMAIN, land_mask, make_grid
+from .geography import DEFAULT_DOMAIN, land_mask, make_grid
 
 #: Days per block of field computation (bounds memory on fine grids).
 BLOCK_DAYS = 32

@@ -29,7 +29,7 @@ WEST_COAST_LON = -124.0
 EAST_COAST_LON = -75.0
 
 
-def _logistic(x):
+def logistic(x):
     """Logistic function 1 / (1 + exp(-x)), overflow-safe."""
     return 0.5 * (1.0 + np.tanh(0.5 * np.asarray(x, dtype=float)))
 
@@ -70,11 +70,11 @@ def sea_fraction(lat, lon):
     """
     lat = np.asarray(lat, dtype=float)
     lon = np.asarray(lon, dtype=float)
-    west_ocean = _logistic((WEST_COAST_LON - lon) / 0.5)
-    east_ocean = _logistic((lon - EAST_COAST_LON) / 0.5)
+    west_ocean = logistic((WEST_COAST_LON - lon) / 0.5)
+    east_ocean = logistic((lon - EAST_COAST_LON) / 0.5)
     sea_w, sea_e = SOUTHERN_SEA_LONS
-    southern_sea = (_logistic((SOUTHERN_SEA_COAST_LAT - lat) / 0.5)
-                    * _logistic((lon - sea_w) / 0.5) * _logistic((sea_e - lon) / 0.5))
+    southern_sea = (logistic((SOUTHERN_SEA_COAST_LAT - lat) / 0.5)
+                    * logistic((lon - sea_w) / 0.5) * logistic((sea_e - lon) / 0.5))
     return np.clip(west_ocean + east_ocean + southern_sea, 0.0, 1.0)
 
 

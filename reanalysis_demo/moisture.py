@@ -13,7 +13,7 @@ import numpy as np
 from analogs.constants import BOLTON_A_HPA, BOLTON_B, BOLTON_C_DEGC, EPSILON
 from analogs.geo import great_circle_km
 
-from .geography import _logistic, plateau_fraction
+from .geography import logistic, plateau_fraction
 from .heights import pattern_shapes
 
 #: Pressure of the moisture level, hPa.
@@ -34,7 +34,7 @@ def seasonal_moisture(lat, lon, s):
     s = np.asarray(s)[:, None, None]
     sea_value = 17.0 + 3.5 * s
     poleward_drop = (1.05 - 0.6 * s) * np.maximum(lat - 22.0, 0.0)
-    zonal = 1.5 * np.exp(-((lon + 90.0) / 15.0) ** 2) - 4.0 * _logistic((-108.0 - lon) / 5.0)
+    zonal = 1.5 * np.exp(-((lon + 90.0) / 15.0) ** 2) - 4.0 * logistic((-108.0 - lon) / 5.0)
     return sea_value - poleward_drop + zonal
 
 
@@ -50,7 +50,7 @@ def moisture_return(lat, lon, northwest_amp, s):
     weight) along 97 W from the sea to about 46 N.
     """
     scale = (np.asarray(northwest_amp) / 110.0 * (0.4 + 0.6 * np.asarray(s)))[:, None, None]
-    tongue = np.exp(-((lon + 97.0) / 7.0) ** 2) * _logistic((46.0 - lat) / 2.0) * _logistic((lat - 26.0) / 2.0)
+    tongue = np.exp(-((lon + 97.0) / 7.0) ** 2) * logistic((46.0 - lat) / 2.0) * logistic((lat - 26.0) / 2.0)
     return 6.0 * scale * tongue
 
 
@@ -58,7 +58,7 @@ def trough_moisture_surge(lat, lon, axis, depth):
     """South-westerly moisture surge ahead of a deep trough: up to +8 C, 5-20 degrees east of the axis, south of ~44 N."""
     axis = np.nan_to_num(np.asarray(axis))[:, None, None]
     scale = (np.asarray(depth) / 180.0)[:, None, None]
-    ahead = np.exp(-((lon - axis - 12.0) / 8.0) ** 2) * _logistic((44.0 - lat) / 2.0)
+    ahead = np.exp(-((lon - axis - 12.0) / 8.0) ** 2) * logistic((44.0 - lat) / 2.0)
     return 8.0 * scale * ahead
 
 
@@ -70,9 +70,9 @@ def scouring_kick(lat, lon, axis, depth, s):
     """
     if not depth > 0.0:
         return np.zeros(lat.shape)
-    behind = _logistic((axis - 2.0 - lon) / 3.0)
+    behind = logistic((axis - 2.0 - lon) / 3.0)
     south_edge = 27.0 + 8.0 * s
-    return (14.0 - 8.0 * s) * depth / 180.0 * behind * _logistic((lat - south_edge) / 2.5)
+    return (14.0 - 8.0 * s) * depth / 180.0 * behind * logistic((lat - south_edge) / 2.5)
 
 
 def advance_scouring(previous, kick, s):

@@ -7,7 +7,8 @@ Files (``out_dir`` given by the caller):
 - ``truth.csv`` and ``events.csv`` (``time,lat,lon,kind,magnitude``, times ISO 8601 UTC).
 
 Encoding follows what a CF checker looks for: float64 time in "hours since
-1900-01-01 00:00:00" with calendar "standard", no ``_FillValue`` on
+1900-01-01 00:00:00" with calendar "standard" (written as numbers, so the
+units string is kept verbatim), no ``_FillValue`` on
 coordinate variables, standard_name / units / axis on every coordinate.
 """
 
@@ -43,7 +44,10 @@ def cf_dataset(fields, variable, plev_pa, long_name, standard_name, units, *, se
     data.attrs = {"standard_name": standard_name, "long_name": long_name, "units": units,
                   "cell_methods": "time: point"}
     ds = data.to_dataset(name=variable)
-    ds["time"].attrs = {"standard_name": "time", "long_name": "time", "axis": "T"}
+    hours = (ds["time"].values - np.datetime64("1900-01-01T00:00:00")) / np.timedelta64(1, "h")
+    ds["time"] = ("time", hours.astype(np.float64),
+                  {"standard_name": "time", "long_name": "time", "axis": "T",
+                   "units": TIME_UNITS, "calendar": "standard"})
     ds["plev"].attrs = {"standard_name": "air_pressure", "long_name": "pressure", "units": "Pa",
                         "axis": "Z", "positive": "down"}
     ds["lat"].attrs = {"standard_name": "latitude", "long_name": "latitude",
@@ -67,7 +71,7 @@ def cf_dataset(fields, variable, plev_pa, long_name, standard_name, units, *, se
 
 def _encoding(variable):
     coords = {name: {"_FillValue": None, "dtype": "float64"} for name in ("plev", "lat", "lon")}
-    coords["time"] = {"units": TIME_UNITS, "calendar": "standard", "dtype": "float64", "_FillValue": None}
+    coords["time"] = {"dtype": "float64", "_FillValue": None}
     coords[variable] = {"dtype": "float32", "_FillValue": _FILL, "zlib": True, "complevel": 1,
                         "shuffle": True}
     return coords

@@ -20,8 +20,10 @@ from metpy.units import units
 import reanalysis_demo as rd
 from analogs.constants import SEVERE_DEWPOINT_C
 from analogs.errors import AnalogsInputError
+from analogs.geo import great_circle_km
 from reanalysis_demo.__main__ import main
 from reanalysis_demo.geography import land_mask
+from reanalysis_demo.moisture import dewpoint_from_specific_humidity
 
 YEARS = 3
 SEED = 11
@@ -125,8 +127,6 @@ def test_humidity_within_physical_bounds(archive, metpy_fields):
     q = archive.fields["hus"].values
     assert q.min() > 0.0 and q.max() <= 0.022
     assert np.nanmax(metpy_fields["dewpoint"]) < 25.0
-    from reanalysis_demo.moisture import dewpoint_from_specific_humidity
-
     ours = dewpoint_from_specific_humidity(q[::30].astype(float))
     np.testing.assert_allclose(ours, metpy_fields["dewpoint"][::30], atol=0.1)
 
@@ -218,8 +218,6 @@ def test_cyclone_tornadoes_favour_the_north_east_quadrant(archive):
     tornadoes = tornadoes[tornadoes["date"].isin(truth.index)]
     centre_lat = truth.loc[tornadoes["date"], "tc_lat"].to_numpy()
     centre_lon = truth.loc[tornadoes["date"], "tc_lon"].to_numpy()
-    from analogs.geo import great_circle_km
-
     near = great_circle_km(tornadoes["lat"].to_numpy(), tornadoes["lon"].to_numpy(),
                            centre_lat, centre_lon) <= 800.0
     north = tornadoes["lat"].to_numpy()[near] >= centre_lat[near]
@@ -251,7 +249,9 @@ def test_files_are_cf_and_open_with_plain_xarray(written):
             for name in ("time", "plev", "lat", "lon"):
                 assert "_FillValue" not in nc.variables[name].ncattrs()
             assert nc.variables["time"].dtype == np.float64
-            assert nc.variables["time"].units.startswith("hours since 1900-01-01")
+            assert nc.variables["time"].units == "hours since 1900-01-01 00:00:00"
+            assert nc.variables["time"].calendar == "standard"
+            assert nc.variables["lat"].dtype == np.float64 and nc.variables["lon"].dtype == np.float64
             assert nc.variables[variable].dtype == np.float32
     with open(written["events"]) as fh:
         assert fh.readline().strip() == "time,lat,lon,kind,magnitude"
