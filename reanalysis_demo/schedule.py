@@ -12,11 +12,11 @@ Processes (each a small function below):
   8-12 m/s, with red-noise amplitude modulation (:func:`_step_waves`).
 - red-noise large-scale anomalies: AR(1) coefficients of a few fixed smooth
   patterns (:func:`_step_red_noise`).
-- deep-trough episodes entering at the west edge and moving east at 4-8 m/s,
-  deepest when their axis crosses 110-100 W, filling east of 95 W
-  (:func:`_step_trough`).
+- deep-trough episodes entering at the west edge and moving east at 4.5-7.5
+  degrees of longitude a day (about 4-7 m/s), at full depth while their axis
+  crosses 113-97 W, filling east of 97 W (:func:`_step_trough`).
 - north-west-flow episodes: an amplified plateau ridge with a trough
-  downstream, 3-7 days, mostly in the warm season (:func:`_step_northwest`).
+  downstream, 4-8 days, in the warm season only (:func:`_step_northwest`).
 - tropical cyclones born over the southern sea from June to mid-October,
   drifting poleward, some landfalling (they fill over land) and some
   recurving east over the ocean (:func:`_step_cyclones`).
@@ -229,7 +229,7 @@ def _step_northwest(state, rng, s):
 def _cyclone_genesis_rate(day_of_year):
     """Expected cyclone births per day: 1 June to 15 October, peaking in late August.
 
-    About fourteen a season: a raised-cosine window from day 152 to day 288.
+    About fourteen a season: a sin^1.5 window from day 152 to day 288.
     """
     if not 152 <= day_of_year <= 288:
         return 0.0
