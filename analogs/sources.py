@@ -428,6 +428,15 @@ def _open_file(path, chunks):
                                 "NetCDF-4 or a .zarr directory")
     try:
         dataset = xr.open_dataset(path, chunks=open_chunks)
+    except ValueError as err:
+        if "decode time" not in str(err):
+            raise AnalogsInputError(f"{path}: cannot be read as NetCDF, the file may be "
+                                    f"truncated or damaged ({_one_line(err)})") from None
+        raise AnalogsInputError(_undecodable_times(path)) from None
+    except (OSError, RuntimeError, KeyError, IndexError) as err:
+        raise AnalogsInputError(f"{path}: cannot be read as NetCDF, the file may be "
+                                f"truncated or damaged ({_one_line(err)})") from None
+    try:
         # Reading the coordinates here catches truncated files early and cheaply.
         for name in dataset.coords:
             if dataset[name].ndim <= 1:
@@ -437,6 +446,22 @@ def _open_file(path, chunks):
                                 f"truncated or damaged ({_one_line(err)})") from None
     _check_not_truncated(path, dataset)
     return dataset
+
+
+def _undecodable_times(path):
+    """The message for a time axis xarray cannot decode (out of range, bad units)."""
+    with xr.open_dataset(path, decode_times=False) as raw:
+        coords = [(str(k), c) for k, c in raw.variables.items()
+                  if "since" in str(c.attrs.get("units", "")) and c.ndim <= 1]
+        if not coords:
+            return f"{path}: time values cannot be decoded as dates"
+        name, coord = coords[0]
+        values = np.atleast_1d(np.asarray(coord.values, dtype=float))
+        return (f"{path}: time {name!r} cannot be decoded as dates (units "
+                f"{coord.attrs.get('units')!r}, calendar "
+                f"{coord.attrs.get('calendar', 'standard')!r}, values {np.nanmin(values):g} "
+                f"to {np.nanmax(values):g}); expected dates between 1678 and 2262 in CF "
+                "units such as 'hours since 1900-01-01'")
 
 
 def _check_not_truncated(path, dataset):
@@ -690,7 +715,11 @@ def _as_datetime64(coord, where):
             "'hours since 1900-01-01'") from None
     try:
         return index.to_datetimeindex(unsafe=True).values.astype("datetime64[ns]")
-    except (ValueError, TypeError) as err:
+    except (ValueError, TypeError, OverflowError) as err:
+        if "overflow" in str(err).lower():
+            raise AnalogsInputError(
+                f"{where}: times run from {index.min()} to {index.max()}, out of the range "
+                "of dates this tool handles (1678 to 2262); check the time units") from None
         raise AnalogsInputError(f"{where}: time calendar {index.calendar!r} cannot be "
                                 f"mapped to the standard calendar ({_one_line(err)})"
                                 ) from None

@@ -21,11 +21,13 @@ import contextlib
 import ctypes
 import ctypes.util
 import datetime as _dt
+import glob
 import hashlib
 import json
 import os
 import shutil
 import tempfile
+import warnings
 from pathlib import Path
 
 import numpy as np
@@ -42,8 +44,10 @@ BASIS = "basis.nc"
 SCORES = "scores.nc"
 EVENTS = "events.parquet"
 TAGS = "tags.parquet"
-#: Seconds a second writer waits for the lock before giving up.
+#: Seconds a second writer waits for the lock before giving up (default).
 LOCK_TIMEOUT = 600.0
+#: Environment variable that overrides :data:`LOCK_TIMEOUT` (seconds).
+LOCK_TIMEOUT_ENV = "ANALOGS_LOCK_TIMEOUT"
 _TIME_ENCODING = {"units": "days since 1900-01-01 00:00:00", "calendar": "standard",
                   "dtype": "float64", "_FillValue": None}
 
@@ -97,28 +101,96 @@ def lock_for(path) -> FileLock:
     return FileLock(str(path.with_name(f".{path.name}.lock")))
 
 
+def lock_timeout(timeout=None) -> float:
+    """Seconds to wait for the writer's lock: ``timeout``, else the environment variable
+    ``ANALOGS_LOCK_TIMEOUT``, else :data:`LOCK_TIMEOUT`."""
+    if timeout is None:
+        text = os.environ.get(LOCK_TIMEOUT_ENV)
+        if text is None or not text.strip():
+            return LOCK_TIMEOUT
+        try:
+            timeout = float(text)
+        except ValueError:
+            timeout = float("nan")
+        if not timeout >= 0:
+            raise StoreError(f"environment variable {LOCK_TIMEOUT_ENV}={text!r}: expected a "
+                             "number of seconds >= 0")
+        return timeout
+    if isinstance(timeout, bool) or not isinstance(timeout, (int, float)) or not timeout >= 0:
+        raise StoreError(f"The 'timeout' parameter of writing must be a number of seconds "
+                         f">= 0. Got {timeout!r} instead.")
+    return float(timeout)
+
+
+def _staging_prefix(path: Path) -> str:
+    return f".{path.name}.tmp-"
+
+
+def remove_stale_staging(path) -> list[str]:
+    """Remove temporary siblings left by writers of the store at ``path`` that died.
+
+    Staging directories are named ``.NAME.tmp-PID-XXXX`` (``.NAME.old-PID`` for the
+    retired copy of the two-rename swap). One whose process is no longer alive belongs to
+    a writer that was killed or crashed before it could clean up, and is removed. Call it
+    while holding the store's lock (the lock dies with its process, so no live writer is
+    using them). Returns the names removed.
+    """
+    path = Path(path)
+    removed = []
+    for prefix in (_staging_prefix(path), f".{path.name}.old-"):
+        for item in path.parent.glob(f"{glob.escape(prefix)}*"):
+            pid = item.name[len(prefix):].split("-", 1)[0]
+            if item.is_dir() and not _process_alive(pid):
+                shutil.rmtree(item, ignore_errors=True)
+                removed.append(item.name)
+    return removed
+
+
+def _process_alive(pid_text: str) -> bool:
+    """Whether the process of this PID (text from a directory name) is running."""
+    try:
+        pid = int(pid_text)
+    except ValueError:
+        return False
+    if pid <= 0:
+        return False
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:  # alive, owned by another user
+        return True
+    return True
+
+
 @contextlib.contextmanager
-def writing(path, manifest: dict, *, keep=()):
+def writing(path, manifest: dict, *, keep=(), timeout=None):
     """Stage a new version of the store at ``path`` and swap it in on success.
 
     Yields the staging directory; the caller writes its files there. ``keep`` names files
     of the existing store that are carried over unchanged (for example the tags when
     only the events change). On leaving the block the manifest (with checksums of every
     file) is written, everything is fsynced and the directory replaces ``path``. Any
-    exception leaves the existing store exactly as it was.
+    exception leaves the existing store exactly as it was. A second writer waits up to
+    ``timeout`` seconds (:func:`lock_timeout`) for the first, then fails with
+    :class:`~analogs.errors.StoreError`. Staging directories of writers that died are
+    removed first (:func:`remove_stale_staging`).
     """
     path = Path(path).absolute()
     if path.exists() and not path.is_dir():
         raise StoreError(f"store path {path} exists and is not a directory")
+    seconds = lock_timeout(timeout)
     path.parent.mkdir(parents=True, exist_ok=True)
     try:
         lock = lock_for(path)
-        lock.acquire(timeout=LOCK_TIMEOUT)
+        lock.acquire(timeout=seconds)
     except Timeout as error:
-        raise StoreError(f"store {path} is locked by another writer (lock {error.lock_file}); "
-                         "try again when it has finished") from None
+        raise StoreError(f"store {path} is locked by another writer (lock {error.lock_file}, "
+                         f"waited {seconds:g} s); try again when it has finished") from None
     try:
-        staged = Path(tempfile.mkdtemp(prefix=f".{path.name}.tmp-", dir=path.parent))
+        remove_stale_staging(path)
+        staged = Path(tempfile.mkdtemp(prefix=f"{_staging_prefix(path)}{os.getpid()}-",
+                                       dir=path.parent))
         try:
             for name in keep:
                 if (path / name).exists():
@@ -210,6 +282,12 @@ def verify(path) -> dict:
         if sha256_file(item) != entry.get("sha256"):
             raise StoreError(f"store file {item} does not match its checksum in "
                              f"{MANIFEST}: it was altered or damaged; rebuild the store")
+    extra = sorted(p.name for p in path.iterdir()
+                   if p.name != MANIFEST and p.name not in manifest["files"])
+    if extra:
+        warnings.warn(f"store {path} holds files not listed in its manifest "
+                      f"({', '.join(extra[:5])}{', ...' if len(extra) > 5 else ''}); "
+                      "they are ignored", UserWarning, stacklevel=2)
     return manifest
 
 
