@@ -87,6 +87,7 @@ DIAGNOSTIC_UNITS = {
     "height_gradient": "gpm (1000 km)-1",
     "vorticity": "s-1",
     "vorticity_advection": "s-2",
+    "cyclonic_advection": "s-2",
     "ridge_lon": "degree_east",
     "ridge_amplitude": "gpm",
     "trough_lon": "degree_east",
@@ -262,6 +263,14 @@ def _wave_windows(lon, region, upstream_deg, downstream_deg, trough_west_deg):
     if not ridge_cols.any():
         ridge_cols = lon <= lon.min()
     return ridge_cols, trough_cols
+
+
+def _wave_band(lat, region, poleward_deg):
+    """Latitudes of the wave profile: the region's, extended ``poleward_deg`` poleward."""
+    south, north = region[0], region[1]
+    if north >= 0:
+        return (lat >= south) & (lat <= north + poleward_deg)
+    return (lat >= south - poleward_deg) & (lat <= north)
 
 
 def _ring_offsets(lat, i, dlat, dlon, max_km):
@@ -580,7 +589,8 @@ def wave_anomaly(z500: xr.DataArray) -> xr.DataArray:
 
 
 def ridge_trough(z500: xr.DataArray, region, *, upstream_deg: float = 25.0,
-                 downstream_deg: float = 15.0, trough_west_deg: float = 10.0) -> xr.Dataset:
+                 downstream_deg: float = 15.0, trough_west_deg: float = 15.0,
+                 poleward_deg: float = 0.0) -> xr.Dataset:
     r"""Strongest ridge upstream of a region and strongest trough over/downstream of it.
 
     The wave anomaly :math:`Z^*` (:func:`wave_anomaly`) is averaged with cos-latitude
@@ -608,11 +618,12 @@ def ridge_trough(z500: xr.DataArray, region, *, upstream_deg: float = 25.0,
     """
     z500 = _check_height(z500, "ridge_trough")
     lat, lon = _grid(z500)
-    lat_in, _ = _check_region(region, lat, lon, "ridge_trough")
+    _check_region(region, lat, lon, "ridge_trough")
     ridge_cols, trough_cols = _wave_windows(lon, region, upstream_deg, downstream_deg,
                                             trough_west_deg)
-    weights = xr.DataArray(np.cos(np.radians(lat[lat_in])), dims="lat")
-    profile = wave_anomaly(z500).isel(lat=lat_in).weighted(weights).mean("lat")
+    band_in = _wave_band(lat, region, poleward_deg)
+    weights = xr.DataArray(np.cos(np.radians(lat[band_in])), dims="lat")
+    profile = wave_anomaly(z500).isel(lat=band_in).weighted(weights).mean("lat")
     outs = xr.apply_ufunc(
         _ridge_trough_np, profile, input_core_dims=[["lon"]],
         output_core_dims=[[], [], [], []], dask="parallelized",
@@ -793,7 +804,8 @@ def _distance_to_box_km(lat, lon, region):
     return great_circle_km(lat, lon, np.clip(lat, south, north), np.clip(lon, west, east))
 
 
-def _block_columns(z, dewpoint, pwat, *, lat, lon, lat_in, lon_in, weights, lat_weights,
+def _block_columns(z, dewpoint, pwat, *, lat, lon, lat_in, lon_in, weights, band_in,
+                   band_weights,
                    region, ridge_cols, trough_cols, tc_near_km, moist_threshold_c,
                    low_params) -> dict[str, np.ndarray]:
     """Every column of :func:`compute_diagnostics` for one block of days."""
@@ -813,9 +825,11 @@ def _block_columns(z, dewpoint, pwat, *, lat, lon, lat_in, lon_in, weights, lat_
     columns["height_gradient"] = _weighted_mean_np(np.hypot(dz_dx, dz_dy)[sub], weights) * 1.0e6
     columns["vorticity"] = _weighted_mean_np(zeta[sub], weights)
     columns["vorticity_advection"] = _weighted_mean_np(vort_adv[sub], weights)
+    columns["cyclonic_advection"] = _weighted_mean_np(np.maximum(vort_adv[sub], 0.0), weights)
 
     wave = z - z.mean(axis=-1, keepdims=True)
-    profile = np.tensordot(wave[:, lat_in, :], lat_weights, axes=([1], [0])) / lat_weights.sum()
+    profile = np.tensordot(wave[:, band_in, :], band_weights, axes=([1], [0])) \
+        / band_weights.sum()
     for name, values in zip(("ridge_lon", "ridge_amplitude", "trough_lon", "trough_amplitude"),
                             _ridge_trough_np(profile, lon, ridge_cols, trough_cols)):
         columns[name] = values
@@ -847,7 +861,8 @@ def _block_columns(z, dewpoint, pwat, *, lat, lon, lat_in, lon_in, weights, lat_
 
 
 def compute_diagnostics(ds: xr.Dataset, region, *, upstream_deg: float = 25.0,
-                        downstream_deg: float = 15.0, trough_west_deg: float = 10.0,
+                        downstream_deg: float = 15.0, trough_west_deg: float = 15.0,
+                        poleward_deg: float = 0.0,
                         tc_near_km: float = 500.0,
                         closed_lows: Mapping | None = None,
                         moist_threshold_c: float = SEVERE_DEWPOINT_C,
@@ -864,6 +879,10 @@ def compute_diagnostics(ds: xr.Dataset, region, *, upstream_deg: float = 25.0,
     - ``vorticity``, ``vorticity_advection``: region means of the geostrophic relative
       vorticity (s-1) and of its advection by the geostrophic wind,
       :math:`-\mathbf{V}_g\cdot\nabla\zeta_g` (s-2; positive = cyclonic advection).
+    - ``cyclonic_advection``: region mean of the cyclonic part only,
+      :math:`\max(-\mathbf{V}_g\cdot\nabla\zeta_g, 0)` (s-2): with a trough axis
+      inside the box the full mean cancels between anticyclonic advection behind the
+      axis and cyclonic advection ahead of it; this keeps the forcing ahead of it.
     - ``ridge_lon``, ``ridge_amplitude``, ``trough_lon``, ``trough_amplitude``
       (:func:`ridge_trough`).
     - ``tc_present``, ``tc_lat``, ``tc_lon``, ``tc_depth``, ``tc_radius_km``,
@@ -896,7 +915,7 @@ def compute_diagnostics(ds: xr.Dataset, region, *, upstream_deg: float = 25.0,
     lat_in, lon_in = _check_region(region, lat, lon, "compute_diagnostics")
     region = tuple(float(v) for v in region)
     weights = _region_weights(lat, lat_in, lon_in)
-    lat_weights = np.cos(np.radians(lat[lat_in]))
+    band_in = _wave_band(lat, region, poleward_deg)
     ridge_cols, trough_cols = _wave_windows(lon, region, upstream_deg, downstream_deg,
                                             trough_west_deg)
     low_params = {"max_lat": 35.0, "min_depth": 15.0, "max_radius_km": 600.0,
@@ -911,7 +930,8 @@ def compute_diagnostics(ds: xr.Dataset, region, *, upstream_deg: float = 25.0,
 
     times = z500["time"].values
     setup = {"lat": lat, "lon": lon, "lat_in": lat_in, "lon_in": lon_in,
-             "weights": weights, "lat_weights": lat_weights, "region": region,
+             "weights": weights, "band_in": band_in,
+             "band_weights": np.cos(np.radians(lat[band_in])), "region": region,
              "ridge_cols": ridge_cols, "trough_cols": trough_cols,
              "tc_near_km": tc_near_km, "moist_threshold_c": moist_threshold_c,
              "low_params": low_params}

@@ -76,7 +76,7 @@ class RegimeRules:
     tropical_max_lat: float = _rule(
         35.0, "degree_north", "closed-low centre at or equatorward of this latitude")
     tropical_min_depth_gpm: float = _rule(
-        20.0, "gpm", "ring-mean height minus centre height of the closed low, at least")
+        15.0, "gpm", "ring-mean height minus centre height of the closed low, at least")
     tropical_max_radius_km: float = _rule(
         600.0, "km", "radius where the height recovers half the depth, at most")
     tropical_min_dewpoint_c: float = _rule(
@@ -85,24 +85,29 @@ class RegimeRules:
         60.0, "gpm", "height-only archives: depth needed to call a closed low tropical")
     # strong trough: amplified trough, strong gradient, cyclonic vorticity advection
     trough_min_amplitude_gpm: float = _rule(
-        100.0, "gpm", "trough depth below the zonal mean over/downstream, at least")
+        50.0, "gpm", "trough depth below the zonal mean over/downstream, at least")
     trough_min_height_gradient: float = _rule(
-        60.0, "gpm (1000 km)-1", "region-mean height gradient, at least")
+        100.0, "gpm (1000 km)-1", "region-mean height gradient, at least")
     trough_min_vorticity_advection: float = _rule(
-        2.0e-10, "s-2", "region-mean cyclonic geostrophic vorticity advection, at least")
+        3.0e-10, "s-2", "region mean of the cyclonic part of the geostrophic vorticity "
+        "advection (cyclonic_advection), at least")
+    trough_min_direction_deg: float = _rule(
+        180.0, "degree", "area-mean 500 hPa flow (ahead of the trough) from this direction or more")
+    trough_max_direction_deg: float = _rule(
+        275.0, "degree", "area-mean 500 hPa flow (ahead of the trough) from this direction or less")
     # north-west flow: ridge upstream, flow from the north-west, moisture beneath
     nw_min_direction_deg: float = _rule(
-        280.0, "degree", "area-mean 500 hPa flow from this direction or more")
+        295.0, "degree", "area-mean 500 hPa flow from this direction or more")
     nw_max_direction_deg: float = _rule(
         350.0, "degree", "area-mean 500 hPa flow from this direction or less")
     nw_min_speed_ms: float = _rule(
         8.0, "m s-1", "area-mean 500 hPa geostrophic wind speed, at least")
     nw_min_ridge_gpm: float = _rule(
-        40.0, "gpm", "ridge amplitude upstream (west) of the region, at least")
+        100.0, "gpm", "ridge amplitude upstream (west) of the region, at least")
     nw_min_trough_gpm: float = _rule(
-        50.0, "gpm", "trough amplitude over/downstream (east) of the region, at least")
+        80.0, "gpm", "trough amplitude over/downstream (east) of the region, at least")
     nw_min_moist_line_offset_deg: float = _rule(
-        -10.0, "degree",
+        -3.0, "degree",
         "60 F dewpoint line at least this far north of the region's south edge "
         "(ignored, and said so, when moisture is missing)")
     # confidence
@@ -119,10 +124,13 @@ class RegimeRules:
                 raise AnalogsInputError(
                     f"The {f.name!r} regime rule must be a finite number in "
                     f"{f.metadata['units']}. Got {value!r} instead.")
-        if not self.nw_min_direction_deg < self.nw_max_direction_deg:
-            raise AnalogsInputError(
-                "The regime rules need nw_min_direction_deg < nw_max_direction_deg. "
-                f"Got {self.nw_min_direction_deg} and {self.nw_max_direction_deg}.")
+        for prefix in ("nw", "trough"):
+            low = getattr(self, f"{prefix}_min_direction_deg")
+            high = getattr(self, f"{prefix}_max_direction_deg")
+            if not low < high:
+                raise AnalogsInputError(
+                    f"The regime rules need {prefix}_min_direction_deg < "
+                    f"{prefix}_max_direction_deg. Got {low} and {high}.")
         if self.direction_span_deg <= 0 or self.confidence_span <= 0:
             raise AnalogsInputError(
                 "The regime rules need direction_span_deg > 0 and confidence_span > 0.")
@@ -171,6 +179,7 @@ class RegimeRules:
 
 def _margin(value, threshold, span):
     """(value - threshold) / span clipped to [-1, 1]; NaN values count as -1."""
+    span = np.maximum(np.asarray(span, float), 1e-30)
     with np.errstate(invalid="ignore"):
         m = (np.asarray(value, float) - threshold) / span
     return np.clip(np.nan_to_num(m, nan=-1.0), -1.0, 1.0)
@@ -242,16 +251,19 @@ class RuleClassifier:
                                          rel * abs(r.tropical_min_dewpoint_c) or 1.0),
                                  1.0),
         }
+        direction = _column(d, "flow_direction_deg")
         trough = {
+            "direction": _margin(np.minimum(direction - r.trough_min_direction_deg,
+                                            r.trough_max_direction_deg - direction),
+                                 0.0, r.direction_span_deg),
             "amplitude": _margin(_column(d, "trough_amplitude"), r.trough_min_amplitude_gpm,
                                  rel * r.trough_min_amplitude_gpm),
             "gradient": _margin(_column(d, "height_gradient"), r.trough_min_height_gradient,
                                 rel * r.trough_min_height_gradient),
-            "vorticity_advection": _margin(_column(d, "vorticity_advection"),
+            "vorticity_advection": _margin(_column(d, "cyclonic_advection"),
                                            r.trough_min_vorticity_advection,
                                            rel * abs(r.trough_min_vorticity_advection)),
         }
-        direction = _column(d, "flow_direction_deg")
         inside = np.minimum(direction - r.nw_min_direction_deg,
                             r.nw_max_direction_deg - direction)
         south = diagnostics.attrs.get("region", (np.nan,))[0]
@@ -291,7 +303,7 @@ class RuleClassifier:
                 "RuleClassifier.predict needs the DataFrame of compute_diagnostics. "
                 f"Got {type(diagnostics).__name__} instead.")
         needed = {"flow_direction_deg", "flow_speed_ms", "ridge_amplitude",
-                  "trough_amplitude", "height_gradient", "vorticity_advection"}
+                  "trough_amplitude", "height_gradient", "cyclonic_advection"}
         absent = sorted(needed - set(diagnostics.columns))
         if absent:
             raise AnalogsInputError(
@@ -318,7 +330,7 @@ class RuleClassifier:
         moisture_known = np.isfinite(_column(d, "dewpoint_region_c"))
         cols = {name: _column(d, name) for name in (
             "flow_direction_deg", "flow_speed_ms", "ridge_amplitude", "trough_amplitude",
-            "height_gradient", "vorticity_advection", "tc_lat", "tc_lon", "tc_depth",
+            "height_gradient", "cyclonic_advection", "tc_lat", "tc_lon", "tc_depth",
             "tc_radius_km", "tc_dewpoint_c", "dewpoint_region_c", "moist_line_lat")}
         present = np.asarray(d["tc_present"], dtype=bool) if "tc_present" in d \
             else np.zeros(len(d), dtype=bool)
@@ -342,7 +354,7 @@ class RuleClassifier:
             elif label == "strong_trough":
                 text = (f"trough {v['trough_amplitude']:.0f} gpm; gradient "
                         f"{v['height_gradient']:.0f} gpm/1000 km; vorticity advection "
-                        f"{v['vorticity_advection']:.1e} s-2; {flow}")
+                        f"{v['cyclonic_advection']:.1e} s-2; {flow}")
             elif label == "northwest_flow":
                 text = (f"{flow}; ridge {v['ridge_amplitude']:.0f} gpm upstream, trough "
                         f"{v['trough_amplitude']:.0f} gpm downstream; {moist}")

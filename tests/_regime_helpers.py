@@ -68,9 +68,10 @@ def as_dataset(z500: np.ndarray, q850: np.ndarray | None = None,
 
 
 def northwest_flow_case() -> xr.Dataset:
-    """Ridge over the western high terrain, trough downstream of the plains."""
-    return as_dataset(zonal_height() + wave(90.0, ridge_lon=-118.0, wavelength_deg=60.0),
-                      humidity())
+    """Amplified ridge over the western high terrain, trough downstream of the plains,
+    summer moisture returning to the region's southern edge beneath the flow."""
+    return as_dataset(zonal_height() + wave(150.0, ridge_lon=-118.0, wavelength_deg=60.0),
+                      humidity(south_q=0.019, north_q=0.008))
 
 
 def tropical_case() -> xr.Dataset:

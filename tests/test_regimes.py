@@ -88,7 +88,9 @@ def test_precedence_and_confidence_bounds():
     # precedence tropical > strong_trough > northwest_flow decides (the zonal day,
     # with no trough at all, stays "other").
     loose = RegimeRules.load(trough_min_amplitude_gpm=1.0, trough_min_height_gradient=1.0,
-                             trough_min_vorticity_advection=-1.0, nw_min_direction_deg=0.0,
+                             trough_min_vorticity_advection=-1.0,
+                             trough_min_direction_deg=0.0, trough_max_direction_deg=360.0,
+                             nw_min_direction_deg=0.0,
                              nw_max_direction_deg=360.0, nw_min_speed_ms=0.1,
                              nw_min_ridge_gpm=-500.0)
     loose_labels = RuleClassifier(loose).predict(diagnostics.set_index("date"))
@@ -98,13 +100,13 @@ def test_precedence_and_confidence_bounds():
 
 def test_rules_from_toml_and_overrides(tmp_path):
     path = tmp_path / "rules.toml"
-    path.write_text("[regimes]\nnw_min_speed_ms = 12.5\ntropical_max_lat = 30.0\n")
+    path.write_text("[regimes]\nnw_min_speed_ms = 16.5\ntropical_max_lat = 30.0\n")
     rules = RegimeRules.load(path, tropical_max_lat=32.0)
-    assert rules.nw_min_speed_ms == 12.5
+    assert rules.nw_min_speed_ms == 16.5
     assert rules.tropical_max_lat == 32.0          # keyword overrides the file
     assert rules.trough_min_amplitude_gpm == RegimeRules().trough_min_amplitude_gpm
     assert "units" in RegimeRules.describe().columns
-    # Raising the speed threshold above the case's 11 m/s turns north-west flow off.
+    # Raising the speed threshold above the case's 14 m/s turns north-west flow off.
     row = tag_days(northwest_flow_case(), REGION, rules=rules).iloc[0]
     assert row["regime"] != "northwest_flow"
 
