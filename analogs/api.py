@@ -37,15 +37,12 @@ from .outcomes import (
     read_events,
     summarize_outcomes,
 )
-from .query import candidate_ids, find_analogs
+from .query import (DEFAULT_EXCLUDE, DEFAULT_SEPARATION, DEFAULT_TOP, DEFAULT_WINDOW,
+                    candidate_ids, find_analogs)
 from .regimes import REGIME_LABELS, tag_days
 from .sources import open_archive, open_target, regrid_to
 
 WEIGHT_SCHEMES = ("equal", "inverse_distance", "gaussian")
-DEFAULT_TOP = 20
-DEFAULT_WINDOW = 45
-DEFAULT_EXCLUDE = 10
-DEFAULT_SEPARATION = 3
 
 
 def _provenance(paths) -> list[dict]:

@@ -24,7 +24,7 @@ def _add_quiet(parser):
 
 
 def _add_query_options(parser):
-    from .api import DEFAULT_SEPARATION, DEFAULT_TOP, DEFAULT_WINDOW
+    from .query import DEFAULT_SEPARATION, DEFAULT_TOP, DEFAULT_WINDOW
     parser.add_argument("--top", type=int, metavar="N",
                         help="number of analogs to return (default: the store's tuned value, "
                              f"else {DEFAULT_TOP})")
@@ -40,7 +40,7 @@ def _add_query_options(parser):
 
 
 def build_parser() -> argparse.ArgumentParser:
-    from .api import DEFAULT_EXCLUDE
+    from .query import DEFAULT_EXCLUDE
     parser = argparse.ArgumentParser(
         prog="analogs",
         description="What did days like this do? Closest past days of 500 hPa height and "

@@ -52,7 +52,6 @@ import json
 import numbers
 
 import numpy as np
-import scipy.linalg
 import xarray as xr
 
 from . import __version__
@@ -311,6 +310,8 @@ class MultivariateEOF:
                     break
                 k = min(2 * k, rank)
         if solver == "exact":
+            import scipy.linalg  # imported here: loading a store for queries never solves
+
             dense = np.asarray(matrix.compute() if _is_dask(matrix) else matrix)
             try:
                 u, s, vt = scipy.linalg.svd(dense, full_matrices=False)

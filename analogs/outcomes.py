@@ -45,8 +45,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 import xarray as xr
-from scipy import ndimage, stats
-from sklearn.neighbors import BallTree
+from scipy import special
 
 from . import __version__
 from ._validation import check_choice, check_float
@@ -496,7 +495,7 @@ def binomial_interval(successes, trials, confidence=0.9, method="clopper-pearson
             f"Got {successes!r} instead.")
     alpha = 1.0 - confidence
     if method == "wilson":
-        z = stats.norm.ppf(1.0 - alpha / 2.0)
+        z = special.ndtri(1.0 - alpha / 2.0)
         p = k / n
         centre = (p + z * z / (2 * n)) / (1 + z * z / n)
         half = z * np.sqrt(p * (1 - p) / n + z * z / (4 * n * n)) / (1 + z * z / n)
@@ -504,11 +503,11 @@ def binomial_interval(successes, trials, confidence=0.9, method="clopper-pearson
     else:
         with np.errstate(invalid="ignore", divide="ignore"):
             if method == "jeffreys":
-                low = stats.beta.ppf(alpha / 2, k + 0.5, n - k + 0.5)
-                high = stats.beta.ppf(1 - alpha / 2, k + 0.5, n - k + 0.5)
+                low = special.betaincinv(k + 0.5, n - k + 0.5, alpha / 2)
+                high = special.betaincinv(k + 0.5, n - k + 0.5, 1 - alpha / 2)
             else:
-                low = stats.beta.ppf(alpha / 2, k, n - k + 1)
-                high = stats.beta.ppf(1 - alpha / 2, k + 1, n - k)
+                low = special.betaincinv(k, n - k + 1, alpha / 2)
+                high = special.betaincinv(k + 1, n - k, 1 - alpha / 2)
     # The exact limits at k = 0 and k = n, free of rounding in the formulas above;
     # an interval always holds k / n (Jeffreys with a non-integer effective count
     # within 1/2 of 0 or n would otherwise miss it).
@@ -775,6 +774,8 @@ def neighbourhood_probability(events, analog_days, lat, lon, radius_km=NEIGHBOUR
     hit = np.zeros((days.size, lat.size * lon.size), dtype=bool)
     if ev_lat.size:
         lat2d, lon2d = np.meshgrid(lat, lon, indexing="ij")
+        from sklearn.neighbors import BallTree  # imported here: slow to import, maps only
+
         tree = BallTree(np.radians(np.column_stack([lat2d.ravel(), lon2d.ravel()])),
                         metric="haversine")
         # Haversine on the sphere of EARTH_RADIUS, as analogs.geo.great_circle_km.
@@ -850,6 +851,8 @@ def report_density(events, analog_days, lat, lon, sigma_km=PRACTICALLY_PERFECT_S
     lat, lon = _check_grid(lat, lon, owner)
     counts = grid_event_counts(events, analog_days, lat, lon, weights=weights)
     sigma = gaussian_sigma_grid(lat, lon, sigma_km)
+    from scipy import ndimage  # imported here: only maps need it
+
     density = ndimage.gaussian_filter(counts, sigma=sigma, mode="constant", cval=0.0)
     return xr.DataArray(
         density, dims=("lat", "lon"), coords={"lat": lat, "lon": lon},

@@ -15,6 +15,14 @@ from .index import AnalogIndex
 
 #: Mean length of the year in days, for circular calendar-day distances.
 DAYS_PER_YEAR = 365.2425
+#: Default number of analogs returned.
+DEFAULT_TOP = 20
+#: Default half-width of the season window, calendar days (about three months in all).
+DEFAULT_WINDOW = 45
+#: Default exclusion around a --date target's own date, days: its own episode.
+DEFAULT_EXCLUDE = 10
+#: Default de-clustering distance, days.
+DEFAULT_SEPARATION = 3
 
 
 def calendar_distance_days(times, target_time):
