@@ -45,7 +45,7 @@ def travelling_waves(lat, lon, s, phase, amp_modulation):
     """Eastward-moving short waves: :math:`\\sum_k A_k(t)\\,E(\\phi)\\cos(k\\lambda - \\theta_k(t))`.
 
     Wavenumbers 5-8 (wavelengths 72-45 degrees of longitude), amplitude
-    (34 - 20 s) gpm per wave times a red-noise modulation, in a Gaussian
+    (30 - 17 s) gpm per wave times a red-noise modulation, in a Gaussian
     envelope 12 degrees wide centred on the seasonal jet latitude. The phases
     come from :mod:`reanalysis_demo.schedule` (phase speed 8-12 m/s).
     """
@@ -54,7 +54,7 @@ def travelling_waves(lat, lon, s, phase, amp_modulation):
     lam = np.radians(lon)
     total = np.zeros(np.broadcast_shapes(envelope.shape, lam.shape))
     for i, k in enumerate(WAVENUMBERS):
-        amp = (34.0 - 20.0 * s) * amp_modulation[:, i, None, None]
+        amp = (30.0 - 17.0 * s) * amp_modulation[:, i, None, None]
         total += amp * np.cos(k * lam - phase[:, i, None, None])
     return envelope * total
 
@@ -81,9 +81,9 @@ def pattern_shapes(lat, lon, patterns):
 
 
 def red_noise_anomalies(shapes, s, coefficients):
-    """Large-scale red noise: AR(1) coefficients times fixed patterns, (45 - 25 s) gpm standard deviation."""
+    """Large-scale red noise: AR(1) coefficients times fixed patterns, (40 - 20 s) gpm standard deviation."""
     s = np.asarray(s)[:, None, None]
-    return (45.0 - 25.0 * s) * np.tensordot(coefficients, shapes, axes=(1, 0))
+    return (40.0 - 20.0 * s) * np.tensordot(coefficients, shapes, axes=(1, 0))
 
 
 def deep_trough(lat, lon, axis, depth, centre_lat):

@@ -180,7 +180,7 @@ def _step_trough(state, rng, s):
             state.trough = trough = {
                 "axis": -128.0,
                 "speed": rng.uniform(4.5, 7.5),
-                "peak": rng.uniform(160.0, 240.0) - 20.0 * s,
+                "peak": rng.uniform(170.0, 250.0) - 20.0 * s,
                 "lat": 42.0 + rng.uniform(-3.0, 3.0),
             }
         else:
