@@ -277,6 +277,31 @@ def _skill_section(skill) -> str:
     return "\n".join(lines)
 
 
+def _readable(name: str, frame):
+    """The columns of a climatology table a reader needs, with plain headings."""
+    if name == "regime_trend":
+        return frame.assign(
+            slope=[f"{v:+.1f} +/- {e:.1f}" if v == v else "n/a" for v, e in
+                   zip(frame["slope_days_per_decade"], frame["slope_stderr_days_per_decade"])],
+        )[["regime", "n_years", "mean_days_per_season", "slope", "p_value", "kendall_tau",
+           "kendall_p_value"]].rename(columns={
+               "n_years": "years", "mean_days_per_season": "mean days per season",
+               "slope": "slope (days/decade)", "p_value": "p (least squares)",
+               "kendall_tau": "Kendall tau", "kendall_p_value": "p (Kendall)"})
+    if name == "outcomes_by_regime_and_month":
+        kinds = [c[len("mean_"):] for c in frame.columns
+                 if c.startswith("mean_") and c != "mean_events"]
+        shown = frame[["regime", "month", "n_days"]].rename(columns={"n_days": "days"})
+        shown["P(at least one event)"] = [
+            f"{_fmt_probability(p).strip()} {_fmt_interval((lo, hi))}" for p, lo, hi in
+            zip(frame["p_any_event"], frame["p_any_event_low"], frame["p_any_event_high"])]
+        shown["mean events"] = frame["mean_events"]
+        for kind in kinds:
+            shown[f"mean {kind}"] = frame[f"mean_{kind}"]
+        return shown
+    return frame
+
+
 def climatology_html(tables: dict, figures, manifest: dict, settings: dict) -> str:
     """The HTML page of a seasonal climatology (``analogs climatology``).
 
@@ -320,8 +345,9 @@ def climatology_html(tables: dict, figures, manifest: dict, settings: dict) -> s
         frame = tables.get(name)
         if frame is None:
             continue
-        sections.append((heading, f"<p>{html.escape(note)}</p>"
-                         + html_frame(frame, left=("regime", "reason", "date"))))
+        frame = _readable(name, frame)
+        sections.append((heading, f"<p>{html.escape(note)}</p><div style=\"overflow-x:auto\">"
+                         + html_frame(frame, left=("regime", "reason", "date")) + "</div>"))
     for caption, png in figures:
         sections.append((caption, embed_png(png)))
     sections.append(("Cross-validated skill of this store", _skill_section(manifest.get("skill"))))
