@@ -229,3 +229,14 @@ def test_plots_leave_pyplot_alone():
             "p.figure_png(f); print('matplotlib.pyplot' in sys.modules)")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
     assert out.stdout.strip() == "False"
+
+
+def test_find_figures_for_a_field_target(demo_store, demo_files):
+    """A --field target: the caller passes the canonical fields (here an archive day
+    read from the files, full resolution), drawn as given rather than reconstructed."""
+    from analogs.sources import open_archive
+    day = open_archive(demo_files, progress=False).isel(time=[200]).load()
+    result = demo_store.find(field=day, top=8)
+    figures = plots.find_figures(demo_store, result, target_fields=day)
+    assert len(figures) == 4
+    assert "the given field" in figures[0][0]
