@@ -427,7 +427,7 @@ class AnalogStore:
     # -- queries -------------------------------------------------------------------
     def find(self, *, date=None, field=None, time=None, top=None, window=DEFAULT_WINDOW,
              exclude=None, separation=DEFAULT_SEPARATION, region=None, regime=None,
-             weights="equal", confidence=0.9, sequence=0):
+             weights="equal", confidence=0.9, sequence=0, kinds=None):
         """Closest archive days to a target and what they produced.
 
         Give exactly one of ``date`` (an archive day, YYYY-MM-DD) or ``field`` (a path
@@ -475,11 +475,12 @@ class AnalogStore:
         chosen = find_analogs(index, self.times, vector, target_time=target_time,
                               top=top, window=window, exclude=exclude,
                               separation=separation, restrict=restrict)
-        analogs = self._describe_analogs(chosen, region)
-        outcomes = self._outcomes(analogs, target_time, window, region, weights, confidence)
+        analogs = self._describe_analogs(chosen, region, kinds)
+        outcomes = self._outcomes(analogs, target_time, window, region, weights, confidence,
+                                  kinds)
         outcomes["skill"] = self.skill_for(target_time)
         settings = {"top": top, "window_days": window, "exclude_days": exclude,
-                    "sequence_days": sequence,
+                    "sequence_days": sequence, "kinds": kinds,
                     "separation_days": separation, "regime": regime,
                     "region": {**region.to_dict(), "label": region.label()}, "weights": weights,
                     "n_modes": self.n_query_modes, "store": str(self.path)}
@@ -565,16 +566,25 @@ class AnalogStore:
                 f"--regime {regime!r} is not a regime label; expected one of {', '.join(sorted(labels))}")
         return (self.tags["regime"] == regime).to_numpy()
 
-    def _day_counts(self, days, region) -> pd.DataFrame:
-        if self.events is None:
-            return pd.DataFrame(index=pd.DatetimeIndex(days), columns=["total"], data=0)
-        return daily_event_counts(self.events, pd.DatetimeIndex(days), region)
+    def daily_counts(self, region, kinds=None) -> pd.DataFrame:
+        """Events in ``region`` on every archive day (rows aligned with ``times``),
+        one column per kind plus ``total``; computed once per region and kept."""
+        key = (region, None if kinds is None else tuple(sorted(kinds)))
+        cache = self.__dict__.setdefault("_count_cache", {})
+        if key not in cache:
+            if self.events is None:
+                cache[key] = pd.DataFrame({"total": np.zeros(len(self.days), dtype=int)},
+                                          index=self.days)
+            else:
+                cache[key] = daily_event_counts(self.events, self.days, region, kinds=kinds)
+        return cache[key]
 
-    def _describe_analogs(self, chosen: pd.DataFrame, region) -> pd.DataFrame:
+    def _describe_analogs(self, chosen: pd.DataFrame, region, kinds=None) -> pd.DataFrame:
         days = pd.DatetimeIndex(chosen["time"]).normalize()
-        counts = self._day_counts(days, region)
-        kinds = [c for c in counts.columns if c != "total"]
+        counts = self.daily_counts(region, kinds).iloc[chosen["row"].to_numpy()]
+        kind_columns = [c for c in counts.columns if c != "total"]
         regimes = [self.regime_of_day(int(r)) for r in chosen["row"]]
+        by_kind = counts[kind_columns].to_numpy(dtype=int)
         return pd.DataFrame({
             "rank": chosen["rank"].to_numpy(),
             "date": [str(d.date()) for d in days],
@@ -582,18 +592,20 @@ class AnalogStore:
             "regime": [r["regime"] for r in regimes],
             "regime_confidence": [r["regime_confidence"] for r in regimes],
             "events_total": counts["total"].to_numpy(dtype=int),
-            "events_by_kind": [{k: int(counts[k].iloc[i]) for k in kinds} for i in range(len(days))],
+            "events_by_kind": [dict(zip(kind_columns, row.tolist())) for row in by_kind],
             "row": chosen["row"].to_numpy(),
         })
 
-    def _outcomes(self, analogs, target_time, window, region, weights, confidence) -> dict:
+    def _outcomes(self, analogs, target_time, window, region, weights, confidence,
+                  kinds=None) -> dict:
         days = pd.DatetimeIndex(pd.to_datetime(analogs["date"]))
-        analog_counts = self._day_counts(days, region)
+        counts = self.daily_counts(region, kinds)
+        analog_counts = counts.iloc[analogs["row"].to_numpy()]
         if target_time is not None and window is not None:
             season = candidate_ids(self.times, target_time, window=window, exclude=None)
         else:
             season = np.arange(len(self.times))
-        climatology_counts = self._day_counts(self.days[season], region)
+        climatology_counts = counts.iloc[season]
         weight_values = None
         if weights != "equal" and len(analogs):
             weight_values = analog_weights(analogs["distance"].to_numpy(), scheme=weights)
@@ -624,23 +636,25 @@ class AnalogStore:
                 answer["month_base_rate"] = month["base_rate"]
         return answer
 
-    def observed(self, region=None) -> np.ndarray:
-        """Whether at least one event fell in the region on each archive day."""
+    def observed(self, region=None, kinds=None) -> np.ndarray:
+        """Whether at least one event (of ``kinds``, default any) fell in the region on
+        each archive day."""
         if self.events is None:
             raise AnalogsInputError(f"store {self.path} has no events table: verification needs "
                                     "one (rebuild with --events FILE)")
         region = self._resolve_region(region)
-        return self._day_counts(self.days, region)["total"].to_numpy() > 0
+        return self.daily_counts(region, kinds)["total"].to_numpy() > 0
 
     def verify(self, *, top=None, window=DEFAULT_WINDOW, separation=DEFAULT_SEPARATION,
                n_modes=None, region=None, months=None, threshold=0.3, n_resamples=500,
-               progress=False) -> dict:
+               kinds=None, progress=False) -> dict:
         """Leave-one-year-out hindcast scores, with the random-analog baseline beside them."""
+        threshold = check_float(threshold, "threshold", "verify", min_value=0.0, max_value=1.0)
         defaults = self.query_defaults
         top = defaults.get("top", DEFAULT_TOP) if top is None else top
         n_modes = defaults.get("n_modes") if n_modes is None else n_modes
         region = self._resolve_region(region)
-        observed = self.observed(region)
+        observed = self.observed(region, kinds)
         common = dict(top=top, window=window, separation=separation, n_modes=n_modes,
                       months=months)
         hindcast = leave_one_year_out(self.pcs.values, self.times, observed, progress=progress,
@@ -656,14 +670,14 @@ class AnalogStore:
                                "window": window, "separation": separation,
                                "months": None if months is None else sorted(months),
                                "region": region.to_dict(), "threshold": threshold,
-                               "method": "leave-one-year-out"}
+                               "kinds": kinds, "method": "leave-one-year-out"}
         return summary
 
     def tune(self, *, tops=(10, 20, 30, 50), modes=(5, 10, 15, 20), window=DEFAULT_WINDOW,
-             separation=DEFAULT_SEPARATION, region=None, months=None, progress=False):
+             separation=DEFAULT_SEPARATION, region=None, months=None, kinds=None, progress=False):
         """Brier skill score of each (number of analogs, number of modes), best first."""
         modes = tuple(modes) + (int(self.eof.n_modes_),)
-        return tune(self.pcs.values, self.times, self.observed(region), tops=tops, modes=modes,
+        return tune(self.pcs.values, self.times, self.observed(region, kinds), tops=tops, modes=modes,
                     window=window, separation=separation, months=months, progress=progress)
 
     @property

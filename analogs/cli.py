@@ -118,6 +118,9 @@ def build_parser() -> argparse.ArgumentParser:
                            f"(default {DEFAULT_EXCLUDE} for --date; nothing for --field)")
     find.add_argument("--regime", metavar="LABEL",
                       help="only analogs of this regime (northwest_flow, tropical, strong_trough, other)")
+    find.add_argument("--kind", metavar="LIST",
+                      help="count only these kinds of report, comma-separated (e.g. tornado,hail; "
+                           "default all kinds)")
     find.add_argument("--sequence", type=int, default=0, choices=(0, 1, 2), metavar="DAYS",
                       help="also match the target's preceding 1 or 2 days (weights 0.5, 0.25), so "
                            "analogs share the pattern's evolution (default 0: the day alone); a "
@@ -148,6 +151,8 @@ def build_parser() -> argparse.ArgumentParser:
     verify.add_argument("--region", metavar="S,N,W,E | LAT,LON,KM",
                         help="region of the event (default: the store's region)")
     verify.add_argument("--season", metavar="M-M", help="verify target days in these months only, e.g. 5-9")
+    verify.add_argument("--kind", metavar="LIST",
+                        help="the event is at least one report of these kinds (default any kind)")
     verify.add_argument("--threshold", type=float, default=0.3, metavar="P",
                         help="probability threshold of the yes/no scores (POD, FAR, ...; default 0.3)")
     verify.add_argument("--tune", action="store_true",
@@ -270,7 +275,7 @@ def _cmd_find(args) -> int:
     result = store.find(date=args.date, field=args.field, time=args.time, top=args.top,
                         window=args.window, exclude=args.exclude, separation=args.separation,
                         region=args.region, regime=args.regime, weights=args.weights,
-                        sequence=args.sequence)
+                        sequence=args.sequence, kinds=_kinds(args.kind))
     if args.maps:
         from .outcomes import write_maps
         write_maps(store.outcome_maps(result), args.maps)
@@ -283,6 +288,10 @@ def _cmd_find(args) -> int:
         if args.report:
             print(f"\nreport: {Path(args.report) / 'index.html'}")
     return 0
+
+
+def _kinds(text):
+    return None if not text else [k.strip().lower() for k in text.split(",") if k.strip()]
 
 
 def parse_months(text, option="--season"):
@@ -310,7 +319,7 @@ def _cmd_verify(args) -> int:
     tuning = None
     if args.tune:
         table = store.tune(window=args.window, separation=args.separation, region=args.region,
-                           months=months, progress=not args.quiet)
+                           months=months, kinds=_kinds(args.kind), progress=not args.quiet)
         best = table.iloc[0]
         tuning = {"table": table.to_dict(orient="records"),
                   "best": {"top": int(best["top"]), "n_modes": int(best["n_modes"])}}
@@ -319,7 +328,8 @@ def _cmd_verify(args) -> int:
         args.top, args.modes = tuning["best"]["top"], tuning["best"]["n_modes"]
     summary = store.verify(top=args.top, window=args.window, separation=args.separation,
                            n_modes=args.modes, region=args.region, months=months,
-                           threshold=args.threshold, progress=not args.quiet)
+                           threshold=args.threshold, kinds=_kinds(args.kind),
+                           progress=not args.quiet)
     if tuning is not None:
         summary["tuning"] = tuning
     print(dumps(summary) if args.json else verify_text(summary))
