@@ -300,23 +300,30 @@ def _closed_lows_np(z, lat, lon, *, moisture=None, max_lat, min_depth, max_radiu
     # Only rows within reach of |lat| <= max_lat can hold or shape a centre.
     reach_i = half_widths(ring_outer, 1.0)[0]
     rows = np.nonzero(np.abs(lat) <= max_lat + (reach_i + 1) * dlat)[0]
+    # Heights relative to the zonal median of each latitude: the median ignores the
+    # compact low itself, and removing it takes away the meridional slope of the
+    # background, so that neither the screening below nor the ring depth is biased
+    # where part of the ring falls outside the grid.
+    z = z - np.median(z, axis=-1, keepdims=True)
     candidate = np.zeros(z.shape, dtype=bool)
     if rows.size:
         # Screening: an approximate depth field, the mean over a square annulus of
-        # half-widths ring_km (two box filters) minus the height. A linear background
-        # slope cancels, so a compact low on the sloping subtropical background, or
-        # next to a broad trough, is a local maximum of it even where the total height
-        # has no closed contour. Depth and radius are then measured exactly below.
+        # half-widths ring_km (box sums, counting only points inside the grid) minus
+        # the height. Local maxima of it are compact lows, including those on a sloping
+        # background or next to a broad trough where the total height has no closed
+        # contour. Depth and radius are then measured exactly on the great-circle ring.
         band = z[:, rows[0]:rows[-1] + 1]
         cos_lat = np.cos(np.radians(np.clip(np.abs(lat[rows]).mean(), 0.0, 80.0)))
+        ones = np.ones(band.shape[1:])
         sums = []
         for km in (ring_outer, ring_inner):
             hi, hj = half_widths(km, cos_lat)
-            n = (2 * hi + 1) * (2 * hj + 1)
-            sums.append((ndimage.uniform_filter(band, size=(1, 2 * hi + 1, 2 * hj + 1),
-                                                mode="nearest") * n, n))
+            size = (2 * hi + 1, 2 * hj + 1)
+            n = size[0] * size[1]
+            sums.append((ndimage.uniform_filter(band, size=(1,) + size, mode="constant") * n,
+                         ndimage.uniform_filter(ones, size=size, mode="constant") * n))
         (s_out, n_out), (s_in, n_in) = sums
-        screen = (s_out - s_in) / max(n_out - n_in, 1) - band
+        screen = (s_out - s_in) / np.maximum(n_out - n_in, 1.0) - band
         hi, hj = half_widths(neighbourhood_km, cos_lat)
         peak = ndimage.maximum_filter(screen, size=(1, 2 * hi + 1, 2 * hj + 1), mode="nearest")
         candidate[:, rows[0]:rows[-1] + 1] = (screen >= peak) & (screen >= 0.5 * min_depth)
@@ -863,7 +870,7 @@ def _block_columns(z, dewpoint, pwat, *, lat, lon, lat_in, lon_in, weights, band
 def compute_diagnostics(ds: xr.Dataset, region, *, upstream_deg: float = 25.0,
                         downstream_deg: float = 15.0, trough_west_deg: float = 15.0,
                         poleward_deg: float = 0.0,
-                        tc_near_km: float = 500.0,
+                        tc_near_km: float = 600.0,
                         closed_lows: Mapping | None = None,
                         moist_threshold_c: float = SEVERE_DEWPOINT_C,
                         block_days: int = 1000, n_threads: int | None = None,

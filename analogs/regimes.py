@@ -76,7 +76,7 @@ class RegimeRules:
     tropical_max_lat: float = _rule(
         35.0, "degree_north", "closed-low centre at or equatorward of this latitude")
     tropical_min_depth_gpm: float = _rule(
-        15.0, "gpm", "ring-mean height minus centre height of the closed low, at least")
+        18.0, "gpm", "ring-mean height minus centre height of the closed low, at least")
     tropical_max_radius_km: float = _rule(
         600.0, "km", "radius where the height recovers half the depth, at most")
     tropical_min_dewpoint_c: float = _rule(
