@@ -486,6 +486,11 @@ class AnalogStore:
                     "n_modes": self.n_query_modes, "store": str(self.path)}
         return AnalogResult(target=target, analogs=analogs, outcomes=outcomes, settings=settings)
 
+    def target_fields(self, field, time=None) -> xr.Dataset:
+        """A field target's canonical fields regridded to the store grid (for figures)."""
+        lat, lon = self.grid
+        return regrid_to(self._open_field(field, time)[self.fields], lat, lon)
+
     def _open_field(self, field, time) -> xr.Dataset:
         if isinstance(field, xr.Dataset):
             dataset = field

@@ -175,6 +175,22 @@ def build_parser() -> argparse.ArgumentParser:
     _add_quiet(update)
     update.set_defaults(handler=_cmd_update)
 
+    climatology = commands.add_parser(
+        "climatology", help="seasonal regime climatology for training: tables, maps, report",
+        description="How often each regime occurs by month and year (with trend and its "
+                    "significance), what each brings (report probabilities and counts by month), "
+                    "composite maps, persistence and typical days; tables (CSV, Parquet), "
+                    "composites (CF NetCDF), figures (PNG) and DIR/index.html.", epilog=EPILOG)
+    climatology.add_argument("--store", required=True, type=Path, metavar="DIR")
+    climatology.add_argument("--out", required=True, type=Path, metavar="DIR")
+    climatology.add_argument("--season", metavar="MONTHS",
+                             help="months to include, e.g. 5-9, 11-2 or 6,7,8 (default all)")
+    climatology.add_argument("--archive", nargs="+", type=Path, metavar="FILE",
+                             help="archive files, for composites of the full fields (default: the "
+                                  "fields the store's EOFs reconstruct)")
+    _add_quiet(climatology)
+    climatology.set_defaults(handler=_cmd_climatology)
+
     tag = commands.add_parser(
         "tag", help="regime and diagnostics of every archive day",
         description="Write one row per archive day: date, regime, confidence, then the "
@@ -280,7 +296,11 @@ def _cmd_find(args) -> int:
         from .outcomes import write_maps
         write_maps(store.outcome_maps(result), args.maps)
     if args.report:
-        write_text_atomic(Path(args.report) / "index.html", find_html(result, store.manifest))
+        from .plots import find_figures
+        target_fields = store.target_fields(args.field, args.time) if args.field else None
+        figures = find_figures(store, result, target_fields=target_fields)
+        write_text_atomic(Path(args.report) / "index.html",
+                          find_html(result, store.manifest, figures=figures))
     if args.json:
         print(dumps(result.to_dict()))
     else:
@@ -294,24 +314,10 @@ def _kinds(text):
     return None if not text else [k.strip().lower() for k in text.split(",") if k.strip()]
 
 
-def parse_months(text, option="--season"):
-    """Months from 'M-M' (wrapping the year end, e.g. 11-2) or 'M,M,M'."""
-    try:
-        if "-" in text:
-            first, last = (int(v) for v in text.split("-"))
-            months = [((first - 1 + i) % 12) + 1 for i in range((last - first) % 12 + 1)]
-        else:
-            months = [int(v) for v in text.split(",")]
-    except ValueError:
-        months = []
-    if not months or any(not 1 <= m <= 12 for m in months):
-        raise AnalogsInputError(f"{option} {text!r}: expected months 1-12 as M-M (e.g. 5-9) or M,M,M")
-    return months
-
-
 def _cmd_verify(args) -> int:
     from .api import AnalogStore
     from .report import dumps, verify_text
+    from .seasonal import parse_months
     store = AnalogStore.load(args.store)
     months = parse_months(args.season) if args.season else None
     if args.save and not args.tune:
@@ -342,6 +348,18 @@ def _cmd_update(args) -> int:
     summary = store.update(args.files, events=args.events, progress=not args.quiet)
     print(f"store {args.store}: {summary['days_added']} days added, "
           f"{summary['days_already_present']} already present")
+    return 0
+
+
+def _cmd_climatology(args) -> int:
+    from .api import AnalogStore
+    from .seasonal import build_climatology, parse_months
+    store = AnalogStore.load(args.store)
+    months = parse_months(args.season) if args.season else None
+    written = build_climatology(store, args.out, months=months, files=args.archive,
+                                progress=not args.quiet)
+    print(f"seasonal climatology of {store.path} written to {args.out} "
+          f"({len(written)} files); report: {written['index.html']}")
     return 0
 
 

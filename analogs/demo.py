@@ -67,6 +67,7 @@ def run_demo(out, *, years=10, seed=0, progress=True) -> int:
     import reanalysis_demo
 
     from .api import build_store
+    from .plots import find_figures
     from .report import find_html, find_text
     from .sources import open_archive
 
@@ -84,7 +85,9 @@ def run_demo(out, *, years=10, seed=0, progress=True) -> int:
     archive = open_archive(files, progress=False)
     forecast = write_forecast_like_field(archive, target, out / "forecast_field.nc")
     result = store.find(date=str(target.date()))
-    write_text_atomic(out / "report" / "index.html", find_html(result, store.manifest))
+    figures = find_figures(store, result)
+    write_text_atomic(out / "report" / "index.html",
+                      find_html(result, store.manifest, figures=figures))
     print(find_text(result))
     print()
     print(f"demo written to {out} in {time.perf_counter() - started:.0f} s:")
