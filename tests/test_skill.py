@@ -1,0 +1,89 @@
+"""Cross-validated skill and outcome analytics on the synthetic demo archive."""
+
+import json
+
+import numpy as np
+import pandas as pd
+import pytest
+from sklearn.metrics import brier_score_loss, roc_auc_score
+
+from analogs.cli import main
+from analogs.hindcast import leave_one_year_out
+
+
+def test_verify_json_contract_and_skill(demo_store, capsys):
+    """`analogs verify --json` has the DESIGN.md keys; the cross-validated Brier skill score
+    of analog probabilities for the central region is positive with its interval, and beats
+    random analogs drawn from the same candidates (same N, same window)."""
+    assert main(["verify", "--store", str(demo_store.path), "--json", "--quiet"]) == 0
+    data = json.loads(capsys.readouterr().out)
+    for key in ("brier_score", "brier_skill_score", "roc_auc", "reliability", "settings"):
+        assert key in data
+    for bin_ in data["reliability"]:
+        assert set(bin_) >= {"forecast_mean", "observed_frequency", "count"}
+    assert sum(b["count"] for b in data["reliability"]) == data["n_forecasts"]
+    assert {"top", "n_modes", "window"} <= set(data["settings"])
+    lo, hi = data["brier_skill_score_ci"]
+    assert 0 < lo <= data["brier_skill_score"] <= hi
+    assert data["brier_skill_score"] > data["random_analogs"]["brier_skill_score"] + 0.1
+    assert data["roc_auc"] > data["random_analogs"]["roc_auc"]
+
+
+def test_hindcast_scores_match_scikit_learn(demo_store):
+    """Brier score and ROC area of the demo hindcast equal scikit-learn's on the same
+    forecasts (sklearn.metrics.brier_score_loss, roc_auc_score)."""
+    observed = demo_store.observed()
+    hindcast = leave_one_year_out(demo_store.pcs.values, demo_store.times, observed)
+    summary = demo_store.verify(n_resamples=50)
+    assert summary["brier_score"] == pytest.approx(
+        brier_score_loss(hindcast["observed"], hindcast["forecast"]))
+    assert summary["roc_auc"] == pytest.approx(
+        roc_auc_score(hindcast["observed"], hindcast["forecast"]))
+    murphy = summary["murphy"]
+    # Murphy (1973): REL - RES + UNC equals the Brier score of the binned forecasts.
+    assert murphy["reliability"] - murphy["resolution"] + murphy["uncertainty"] == pytest.approx(
+        murphy["brier_score_binned"], abs=1e-12)
+
+
+def test_cyclone_composite_puts_most_tornadoes_north_east(demo_store):
+    """On the demo's tropical-cyclone days the earth-relative NE quadrant holds the largest
+    share of tornado reports (McCaul 1991, from memory; common practice)."""
+    composite = demo_store.cyclone_composite()
+    assert composite is not None
+    tornado = composite.loc["tornado"]
+    assert tornado["share"].idxmax() == "NE"
+    assert tornado["share"].sum() == pytest.approx(1.0)
+
+
+def test_find_maps_netcdf(demo_store, tmp_path, capsys):
+    """--maps writes CF NetCDF whose neighbourhood probability equals, at sampled grid
+    points, the share of analog days with a report within 40 km measured with pyproj's
+    WGS84 geodesic (40 km neighbourhood: common practice)."""
+    import xarray as xr
+    from pyproj import Geod
+    day = str(demo_store.days[560].date())
+    path = tmp_path / "maps.nc"
+    assert main(["find", "--store", str(demo_store.path), "--date", day, "--maps", str(path),
+                 "--json"]) == 0
+    data = json.loads(capsys.readouterr().out)
+    analog_days = pd.to_datetime([a["date"] for a in data["analogs"]])
+    events = demo_store.events[demo_store.events["day"].isin(analog_days)]
+    geod = Geod(ellps="WGS84")
+    with xr.open_dataset(path) as maps:
+        probability = maps["neighbourhood_probability"]
+        assert probability.attrs["units"] == "1"
+        assert maps["lat"].attrs["standard_name"] == "latitude"
+        # Grid points near reports (where the answer is not trivially zero) and a few others.
+        lat, lon = probability["lat"].values, probability["lon"].values
+        near = [(float(lat[np.abs(lat - e.lat).argmin()]), float(lon[np.abs(lon - e.lon).argmin()]))
+                for e in events.head(25).itertuples()]
+        points = near + [(35.0, -100.0), (50.0, -70.0)]
+        for plat, plon in points:
+            hit_days = set()
+            for event in events.itertuples():
+                _, _, metres = geod.inv(plon, plat, event.lon, event.lat)
+                if metres <= 40_000.0:
+                    hit_days.add(event.day)
+            expected = len(hit_days) / len(analog_days)
+            got = float(probability.sel(lat=plat, lon=plon))
+            assert got == pytest.approx(expected, abs=1e-6), (plat, plon)
