@@ -652,22 +652,33 @@ def find_closed_lows(z500: xr.DataArray, moisture: xr.DataArray | None = None, *
                      block_days: int = 1000) -> pd.DataFrame:
     r"""Compact closed 500 hPa lows at low latitude (tropical cyclones or remnants).
 
-    A centre is a grid point (not on the domain edge, :math:`|\phi| \le` ``max_lat``)
-    that is the minimum of ``z500`` over a neighbourhood of about
-    ``neighbourhood_km`` (``scipy.ndimage.minimum_filter`` over (lat, lon) per day).
-    For each centre:
+    Heights are first taken relative to their zonal median at each latitude
+    (:math:`Z' = Z - \operatorname{median}_\lambda Z`), which removes the meridional
+    slope of the background and ignores the compact low itself. A centre is a grid
+    point (not on the domain edge, :math:`|\phi| \le` ``max_lat``) where a screening
+    depth field, the mean of :math:`Z'` over a square annulus of half-widths
+    ``ring_km`` (box sums over the points inside the grid,
+    ``scipy.ndimage.uniform_filter``) minus :math:`Z'`, is the maximum over a
+    neighbourhood of about ``neighbourhood_km`` (``scipy.ndimage.maximum_filter``
+    over (lat, lon) per day) and at least ``min_depth / 2``. This is the local
+    minimum of a closed low in a flat background; unlike a plain minimum of
+    :math:`Z` it also finds a compact low on a sloping background or beside a broad
+    trough, where the total height has no closed contour. For each centre:
 
     .. math::
 
-        D = \overline{Z}_{ring} - Z_c, \qquad
-        r_{1/2} = \min\{ r : \langle Z \rangle_\theta(r) - Z_c \ge D / 2 \}
+        D = \overline{Z'}_{ring} - Z'_c, \qquad
+        r_{1/2} = \min\{ r : \langle Z' \rangle_\theta(r) - Z'_c \ge D / 2 \}
 
-    where :math:`\overline{Z}_{ring}` is the mean height over grid points between
+    where :math:`\overline{Z'}_{ring}` is the mean over grid points between
     ``ring_km[0]`` and ``ring_km[1]`` great-circle distance (at least half the ring
-    inside the grid), and :math:`\langle Z\rangle_\theta(r)` the azimuthal mean in
-    annuli one grid length wide, interpolated linearly. Lows with
-    :math:`D \ge` ``min_depth`` (gpm) and :math:`r_{1/2} \le` ``max_radius_km`` are
-    kept: deep and compact, unlike a broad mid-latitude trough.
+    inside the grid), and :math:`\langle Z'\rangle_\theta(r)` the azimuthal mean in
+    annuli one grid length wide, interpolated linearly. For a Gaussian low
+    :math:`-A\exp(-r^2/2\sigma^2)` on a flat background,
+    :math:`r_{1/2} = \sigma\sqrt{2\ln 2}` and :math:`D` is a little less than
+    :math:`A`. Lows with :math:`D \ge` ``min_depth`` (gpm) and
+    :math:`r_{1/2} \le` ``max_radius_km`` are kept: deep and compact, unlike a broad
+    mid-latitude trough.
 
     Parameters
     ----------
@@ -682,7 +693,7 @@ def find_closed_lows(z500: xr.DataArray, moisture: xr.DataArray | None = None, *
     DataFrame with columns ``time, lat, lon, depth_gpm, radius_km, moisture_mean``,
     one row per low, sorted by time then depth (deepest first).
 
-    Reference: closed-low detection by local minima and ring-mean depth, as in
+    Reference: closed-low detection by local extrema and ring-mean depth, as in
     cut-off low and tropical-cyclone trackers (common practice, no source).
     """
     z500 = _check_height(z500, "find_closed_lows")

@@ -198,12 +198,29 @@ class RuleClassifier:
     ----------
     rules : :class:`RegimeRules`, optional (defaults when None).
 
-    Each regime is a conjunction of criteria ``x_i >= t_i`` (or ``<=``). The margin of
-    a criterion is ``m_i = (x_i - t_i) / s_i`` clipped to [-1, 1], with ``s_i`` its
-    span (``RegimeRules.direction_span_deg`` for the direction, which counts the
-    distance inside the 280-350 window from its nearer edge; ``confidence_span`` times
-    ``|t_i|`` otherwise). A regime holds when every margin is >= 0. Precedence:
-    tropical > strong_trough > northwest_flow > other. Confidence:
+    Criteria (thresholds in :class:`RegimeRules`, columns of
+    :func:`~analogs.diagnostics.compute_diagnostics`):
+
+    - ``tropical``: a compact closed low near the region (``tc_present``) with
+      ``tc_depth`` >= tropical_min_depth_gpm, ``tc_lat`` <= tropical_max_lat,
+      ``tc_radius_km`` <= tropical_max_radius_km and ``tc_dewpoint_c`` >=
+      tropical_min_dewpoint_c;
+    - ``strong_trough``: ``trough_amplitude``, ``height_gradient`` and
+      ``cyclonic_advection`` at least their thresholds, with the mean flow from the
+      south-west (``flow_direction_deg`` in [trough_min_direction_deg,
+      trough_max_direction_deg]): the region lies ahead of the trough axis;
+    - ``northwest_flow``: ``flow_direction_deg`` in [nw_min_direction_deg,
+      nw_max_direction_deg], ``flow_speed_ms``, ``ridge_amplitude`` (upstream) and
+      ``trough_amplitude`` (downstream) at least their thresholds, and the 60 F
+      dewpoint line (``moist_line_lat``) at least nw_min_moist_line_offset_deg north
+      of the region's south edge.
+
+    The margin of a criterion is ``m_i = (x_i - t_i) / s_i`` clipped to [-1, 1], with
+    ``s_i`` its span: ``direction_span_deg`` for a direction (measured inside the
+    window from its nearer edge), 5 degrees for the cyclone latitude and the moisture
+    line, ``confidence_span`` times ``|t_i|`` otherwise. A regime holds when every
+    margin is >= 0. Precedence: tropical > strong_trough > northwest_flow > other.
+    Confidence:
 
     - a named regime: ``0.5 + 0.5 * min_i m_i`` (0.5 just at a threshold, 1 when
       every criterion is past its threshold by a full span);
