@@ -80,6 +80,25 @@ def harmonic_design_matrix(times, n_harmonics: int) -> np.ndarray:
     return np.stack(columns, axis=1)
 
 
+def _design_array(time: xr.DataArray, n_harmonics: int, terms, time_chunks=None) -> xr.DataArray:
+    """:func:`harmonic_design_matrix` as a DataArray ``(time, harmonic_term)``.
+
+    With ``time_chunks`` it is a dask array computed chunk by chunk from the times
+    alone, so a chunked (out-of-core) graph carries the times, not the matrix.
+    """
+    coords = {"time": time.values, "harmonic_term": list(terms)}
+    if time_chunks is None:
+        return xr.DataArray(harmonic_design_matrix(time.values, n_harmonics),
+                            dims=("time", "harmonic_term"), coords=coords)
+    import dask.array as da
+
+    stamps = da.from_array(np.asarray(time.values, dtype="datetime64[ns]"), chunks=(time_chunks,))
+    design = stamps.map_blocks(harmonic_design_matrix, n_harmonics, new_axis=1,
+                               chunks=(stamps.chunks[0], (len(terms),)), dtype=float,
+                               meta=np.empty((0, 0)))
+    return xr.DataArray(design, dims=("time", "harmonic_term"), coords=coords)
+
+
 def _fitted_variables(ds: xr.Dataset) -> list[str]:
     names = [name for name, var in ds.data_vars.items() if "time" in var.dims]
     if not names:
@@ -171,10 +190,8 @@ class HarmonicClimatology:
     @staticmethod
     def _fit_harmonics(var: xr.DataArray, times, n_harmonics: int) -> xr.DataArray:
         terms = harmonic_term_names(n_harmonics)
-        design = xr.DataArray(
-            harmonic_design_matrix(times, n_harmonics), dims=("time", "harmonic_term"),
-            coords={"time": var["time"], "harmonic_term": terms},
-        )
+        time_chunks = var.chunksizes["time"] if var.chunks is not None else None
+        design = _design_array(var["time"], n_harmonics, terms, time_chunks)
         valid = var.notnull().astype(design.dtype)
         # Per-point normal equations so that gaps in time only drop those samples.
         normal_matrix = xr.dot(
@@ -205,13 +222,15 @@ class HarmonicClimatology:
             )
 
     # -- using the fit ---------------------------------------------------------
-    def predict(self, times) -> xr.Dataset:
+    def predict(self, times, *, time_chunks=None) -> xr.Dataset:
         """Climatology of every fitted variable at ``times`` (datetime-like, 1-D).
 
-        Returns a Dataset with dims ``(time, lat, lon)``. If ``times`` is an
+        Returns a Dataset with dims ``(time, lat, lon)``. With ``time_chunks`` (a
+        tuple of chunk lengths along time, or an int), or if ``times`` is an
         ``xarray.DataArray`` with dask chunks along ``time``, the result is lazy and
-        chunked alike. With the monthly method a month absent from the archive
-        gives NaN.
+        chunked alike: the design matrix is then built chunk by chunk, so neither it
+        nor the climatology is ever held whole. With the monthly method a month
+        absent from the archive gives NaN.
         """
         self._check_fitted()
         if isinstance(times, xr.DataArray):
@@ -221,6 +240,8 @@ class HarmonicClimatology:
                 np.atleast_1d(np.asarray(times, dtype="datetime64[ns]")), dims="time")
             time_coord = time_coord.assign_coords(time=time_coord)
         time_values = time_coord.values
+        if time_chunks is None and time_coord.chunks is not None:
+            time_chunks = time_coord.chunks[0]
         out = {}
         for name in self.variables_:
             coef = self.coefficients_[f"{name}_coef"]
@@ -229,14 +250,8 @@ class HarmonicClimatology:
                                       coords={"time": time_coord["time"]})
                 clim = coef.reindex(month=np.arange(1, 13)).sel(month=months).drop_vars("month")
             else:
-                design = xr.DataArray(
-                    harmonic_design_matrix(time_values, self.n_harmonics_),
-                    dims=("time", "harmonic_term"),
-                    coords={"time": time_coord["time"],
-                            "harmonic_term": coef["harmonic_term"].values},
-                )
-                if time_coord.chunks is not None:
-                    design = design.chunk({"time": time_coord.chunks[0], "harmonic_term": -1})
+                design = _design_array(time_coord["time"], self.n_harmonics_,
+                                       coef["harmonic_term"].values, time_chunks)
                 clim = xr.dot(design, coef, dim="harmonic_term")
             clim = clim.transpose("time", ...)
             clim.attrs = dict(coef.attrs)
@@ -260,11 +275,9 @@ class HarmonicClimatology:
                 f"Variable {missing[0]!r} is missing from the dataset given to "
                 f"HarmonicClimatology.transform; the climatology was fitted on {self.variables_}."
             )
-        time = ds["time"]
         first = ds[self.variables_[0]]
-        if first.chunks is not None:
-            time = time.chunk({"time": first.chunksizes["time"]})
-        clim = self.predict(time)
+        time_chunks = first.chunksizes["time"] if first.chunks is not None else None
+        clim = self.predict(ds["time"], time_chunks=time_chunks)
         out = {}
         for name in self.variables_:
             var = ds[name]
