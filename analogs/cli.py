@@ -19,6 +19,13 @@ from .errors import AnalogsInputError
 EPILOG = f"{CAUTION}"
 
 
+class _OneLineParser(argparse.ArgumentParser):
+    """Usage errors as one line (and exit status 2), pointing to --help."""
+
+    def error(self, message):
+        self.exit(2, f"{self.prog}: error: {message} (see {self.prog} --help)\n")
+
+
 def _add_quiet(parser):
     parser.add_argument("--quiet", action="store_true", help="no progress bars")
 
@@ -41,14 +48,15 @@ def _add_query_options(parser):
 
 def build_parser() -> argparse.ArgumentParser:
     from .query import DEFAULT_EXCLUDE
-    parser = argparse.ArgumentParser(
+    parser = _OneLineParser(
         prog="analogs",
         description="What did days like this do? Closest past days of 500 hPa height and "
                     "low-level moisture from a gridded archive, their weather regimes and the "
                     "severe-weather reports tied to them.",
         epilog=EPILOG)
     parser.add_argument("--version", action="version", version=f"analogs {__version__}")
-    commands = parser.add_subparsers(dest="command", metavar="COMMAND", required=True)
+    commands = parser.add_subparsers(dest="command", metavar="COMMAND", required=True,
+                                     parser_class=_OneLineParser)
 
     demo = commands.add_parser(
         "demo", help="make a synthetic archive, build a store, tag it, run a query, write a report",
