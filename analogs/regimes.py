@@ -353,7 +353,8 @@ class RuleClassifier:
             else np.zeros(len(d), dtype=bool)
         out = []
         for k, label in enumerate(regime):
-            v = {name: values[k] for name, values in cols.items()}
+            # + 0.0 turns a negative zero into zero, so "-0 gpm" never shows
+            v = {name: values[k] + 0.0 for name, values in cols.items()}
             flow = f"flow {v['flow_direction_deg']:.0f} deg at {v['flow_speed_ms']:.0f} m/s"
             if moisture_known[k]:
                 moist = f"Td {v['dewpoint_region_c']:.1f} C"
