@@ -39,7 +39,8 @@ from .outcomes import (
 )
 from .query import (DEFAULT_EXCLUDE, DEFAULT_SEPARATION, DEFAULT_TOP, DEFAULT_WINDOW,
                     candidate_ids, find_analogs)
-from .regimes import REGIME_LABELS, tag_days
+from .regimes import (REGIME_LABELS, KMeansRegimes, RegimeRules, RuleClassifier,
+                      SupervisedRegimes, tag_days)
 from .sources import open_archive, open_target, regrid_to
 
 WEIGHT_SCHEMES = ("equal", "inverse_distance", "gaussian")
@@ -475,6 +476,13 @@ class AnalogStore:
         chosen = find_analogs(index, self.times, vector, target_time=target_time,
                               top=top, window=window, exclude=exclude,
                               separation=separation, restrict=restrict)
+        if chosen.empty:
+            raise AnalogsInputError(
+                "no archive day is allowed as an analog of this target "
+                f"(season window +/-{window} d, exclusion {exclude} d"
+                + (f", regime {regime}" if regime else "")
+                + (f", sequence of {sequence} preceding days" if sequence else "")
+                + "); widen --window or drop --regime")
         analogs = self._describe_analogs(chosen, region, kinds)
         outcomes = self._outcomes(analogs, target_time, window, region, weights, confidence,
                                   kinds)
@@ -810,3 +818,49 @@ class AnalogStore:
             if tags is not None:
                 store_io.write_table(tags.reset_index(), staged / store_io.TAGS)
         return summary
+
+    # -- regimes ----------------------------------------------------------------------
+    def retag(self, *, rules=None, kmeans=None, labelled_days=None, progress=False) -> pd.DataFrame:
+        """Re-classify every day and keep the result (and any learned model) in the store.
+
+        ``rules`` (a TOML path or :class:`~analogs.regimes.RegimeRules`) re-applies the
+        rule classifier to the diagnostics kept at build, so no archive is needed.
+        ``kmeans`` (number of clusters) adds unsupervised regimes of the PCs in a
+        ``kmeans_regime`` column; ``labelled_days`` (a CSV of ``date,regime``) trains the
+        supervised classifier and adds ``learned_regime`` and ``learned_confidence``.
+        Learned models are stored as arrays in ``models.nc`` (never pickled).
+        """
+        if self.tags is None:
+            raise AnalogsInputError(f"store {self.path} has no tags; rebuild it with analogs build")
+        tags = self.tags.copy()
+        if rules is not None:
+            rules = rules if isinstance(rules, RegimeRules) else RegimeRules.load(rules)
+            labels = RuleClassifier(rules).predict(tags)
+            tags[["regime", "confidence", "reason"]] = labels[["regime", "confidence", "reason"]].to_numpy()
+        models = {}
+        if kmeans is not None:
+            model = KMeansRegimes(n_regimes=check_int(kmeans, "kmeans", "tag", min_value=2))
+            model.fit(self.pcs)
+            tags["kmeans_regime"] = model.labels_
+            models["kmeans"] = model.to_dataset()
+        if labelled_days is not None:
+            model = SupervisedRegimes().fit(self.pcs, labelled_days)
+            probabilities = model.predict_proba(self.pcs)
+            tags["learned_regime"] = model.predict(self.pcs)
+            tags["learned_confidence"] = np.max(np.asarray(probabilities), axis=1)
+            models["supervised"] = model.to_dataset()
+        manifest = {k: v for k, v in self.manifest.items()
+                    if k not in ("files", "format", "format_version", "package_version", "written")}
+        if rules is not None:
+            manifest["regime_rules"] = rules.to_dict()
+        if models:
+            manifest["regime_models"] = sorted(models)
+        keep = [name for name in self.manifest["files"]
+                if name not in (store_io.TAGS, store_io.MODELS) or (name == store_io.MODELS and not models)]
+        with store_io.writing(self.path, manifest, keep=keep) as staged:
+            store_io.write_table(tags.reset_index(), staged / store_io.TAGS)
+            for mode, (name, dataset) in zip(("w", "a"), sorted(models.items())) if models else ():
+                store_io.write_dataset(dataset, staged / store_io.MODELS, group=name, mode=mode)
+        self.tags = tags
+        self.manifest = store_io.verify(self.path)
+        return tags

@@ -205,6 +205,15 @@ def build_parser() -> argparse.ArgumentParser:
                     "physical diagnostics behind it.", epilog=EPILOG)
     tag.add_argument("--store", required=True, type=Path, metavar="DIR")
     tag.add_argument("--out", required=True, type=Path, metavar="FILE.csv|FILE.parquet")
+    tag.add_argument("--rules", type=Path, metavar="RULES.toml",
+                     help="re-classify with these rule thresholds (TOML; keys as in "
+                          "analogs.regimes.RegimeRules) from the diagnostics kept in the store")
+    tag.add_argument("--kmeans", type=int, metavar="K",
+                     help="also cluster the days' PCs into K unsupervised regimes (k-means with a "
+                          "2-day minimum persistence); column kmeans_regime")
+    tag.add_argument("--train", type=Path, metavar="LABELS.csv",
+                     help="train the learned classifier (logistic regression on the PCs) on a "
+                          "table of date,regime; columns learned_regime, learned_confidence")
     _add_quiet(tag)
     tag.set_defaults(handler=_cmd_tag)
     return parser
@@ -375,19 +384,22 @@ def _cmd_tag(args) -> int:
     from .api import AnalogStore
     from .report import write_text_atomic
     store = AnalogStore.load(args.store)
+    out = Path(args.out)
+    if out.suffix.lower() not in (".csv", ".parquet"):
+        raise AnalogsInputError(f"--out {out}: expected a file name ending in .csv or .parquet")
+    if args.rules or args.kmeans is not None or args.train:
+        store.retag(rules=args.rules, kmeans=args.kmeans, labelled_days=args.train,
+                    progress=not args.quiet)
     if store.tags is None:
         raise AnalogsInputError(f"store {args.store} has no tags; rebuild it with analogs build")
     table = store.tags.reset_index()
     table["date"] = table["date"].dt.strftime("%Y-%m-%d")
-    out = Path(args.out)
     if out.suffix.lower() == ".csv":
         write_text_atomic(out, table.to_csv(index=False))
-    elif out.suffix.lower() == ".parquet":
+    else:
         temporary = out.with_name(f".{out.name}.tmp")
         table.to_parquet(temporary, index=False)
         temporary.replace(out)
-    else:
-        raise AnalogsInputError(f"--out {out}: expected a file name ending in .csv or .parquet")
     counts = table["regime"].value_counts()
     print(f"tagged {len(table)} days -> {out}: "
           + ", ".join(f"{label} {n}" for label, n in counts.items()))

@@ -76,6 +76,11 @@ def find_text(result) -> str:
                      f"{_fmt_probability(outcomes['p_any_event'])} "
                      f"{_fmt_interval(outcomes.get('p_any_event_ci'))}   "
                      f"season climatology: {_fmt_probability(outcomes['climatology_p_any_event'])}")
+        weighted = outcomes.get("weighted")
+        if weighted:
+            lines.append(f"  weighted by similarity ({weighted['n_effective']:.1f} effective analogs): "
+                         f"{_fmt_probability(weighted['p_any_event'])} "
+                         f"{_fmt_interval(weighted.get('p_any_event_ci'))}")
         lines.append(f"Mean events per analog day: {outcomes['mean_events']:.2f}")
         for kind, stats in sorted(outcomes.get("by_kind", {}).items()):
             lines.append(f"  {kind:10} P(any) {_fmt_probability(stats['p_any'])}   "

@@ -44,6 +44,7 @@ BASIS = "basis.nc"
 SCORES = "scores.nc"
 EVENTS = "events.parquet"
 TAGS = "tags.parquet"
+MODELS = "models.nc"
 #: Seconds a second writer waits for the lock before giving up (default).
 LOCK_TIMEOUT = 600.0
 #: Environment variable that overrides :data:`LOCK_TIMEOUT` (seconds).
