@@ -349,6 +349,9 @@ class AnalogStore:
         tags = store_io.read_table(path / store_io.TAGS) if store_io.TAGS in files else None
         if tags is not None:
             tags = tags.assign(date=pd.to_datetime(tags["date"])).set_index("date")
+            # Units of the diagnostics; kept apart because pandas deep-copies attrs on
+            # every operation, which would dominate a query's time.
+            tags.attrs = {}
         return cls(path, manifest, climatology, eof, pcs, events=events, tags=tags)
 
     # -- derived state -------------------------------------------------------------
@@ -374,8 +377,11 @@ class AnalogStore:
 
     @property
     def grid(self) -> tuple[np.ndarray, np.ndarray]:
-        basis = self.eof.eofs_
-        return basis["lat"].values, basis["lon"].values
+        """Latitudes and longitudes of the store grid (degrees)."""
+        if "_grid" not in self.__dict__:
+            basis = self.eof.eofs_
+            self._grid = (basis["lat"].values, basis["lon"].values)
+        return self._grid
 
     @property
     def days(self) -> pd.DatetimeIndex:
@@ -421,9 +427,14 @@ class AnalogStore:
     def regime_of_day(self, row: int) -> dict:
         if self.tags is None:
             return {"regime": "other", "regime_confidence": 0.0, "reason": "no tags in store"}
-        tag = self.tags.iloc[row]
-        return {"regime": str(tag["regime"]), "regime_confidence": float(tag["confidence"]),
-                "reason": str(tag.get("reason", ""))}
+        if "_regime_arrays" not in self.__dict__:
+            reasons = self.tags["reason"] if "reason" in self.tags else pd.Series("", index=self.tags.index)
+            self._regime_arrays = (self.tags["regime"].astype(str).to_numpy(),
+                                   self.tags["confidence"].to_numpy(dtype=float),
+                                   reasons.astype(str).to_numpy())
+        regimes, confidences, reasons = self._regime_arrays
+        return {"regime": str(regimes[row]), "regime_confidence": float(confidences[row]),
+                "reason": str(reasons[row])}
 
     # -- queries -------------------------------------------------------------------
     def find(self, *, date=None, field=None, time=None, top=None, window=DEFAULT_WINDOW,
@@ -737,7 +748,8 @@ class AnalogStore:
         centres = self.cyclone_centres(days)
         if self.events is None or centres.empty:
             return None
-        return cyclone_relative_composite(self.events, centres, frame=frame)
+        events = self.events[self.events["day"].isin(centres["day"])]
+        return cyclone_relative_composite(events, centres, frame=frame)
 
     # -- appending days ----------------------------------------------------------------
     def update(self, paths, *, events=None, progress=True) -> dict:
@@ -862,5 +874,6 @@ class AnalogStore:
             for mode, (name, dataset) in zip(("w", "a"), sorted(models.items())) if models else ():
                 store_io.write_dataset(dataset, staged / store_io.MODELS, group=name, mode=mode)
         self.tags = tags
+        self.__dict__.pop("_regime_arrays", None)
         self.manifest = store_io.verify(self.path)
         return tags
