@@ -329,6 +329,7 @@ class AnalogStore:
         self.events = events
         self.tags = tags
         self.times = pd.DatetimeIndex(pcs["time"].values)
+        self.tag_attrs: dict = {}
         self._index = None
 
     @classmethod
@@ -349,10 +350,12 @@ class AnalogStore:
         tags = store_io.read_table(path / store_io.TAGS) if store_io.TAGS in files else None
         if tags is not None:
             tags = tags.assign(date=pd.to_datetime(tags["date"])).set_index("date")
-            # Units of the diagnostics; kept apart because pandas deep-copies attrs on
-            # every operation, which would dominate a query's time.
-            tags.attrs = {}
-        return cls(path, manifest, climatology, eof, pcs, events=events, tags=tags)
+        store = cls(path, manifest, climatology, eof, pcs, events=events, tags=tags)
+        if tags is not None:
+            # The diagnostics' units and region, kept apart because pandas deep-copies
+            # attrs on every operation, which would dominate a query's time.
+            store.tag_attrs, tags.attrs = dict(tags.attrs), {}
+        return store
 
     # -- derived state -------------------------------------------------------------
     @property
@@ -788,7 +791,7 @@ class AnalogStore:
             return summary
         manifest = {k: v for k, v in self.manifest.items()
                     if k not in ("files", "format", "format_version", "package_version", "written")}
-        pcs, tags = self.pcs, self.tags
+        pcs, tags, tag_attrs = self.pcs, self.tags, dict(self.tag_attrs)
         if fresh.any():
             anomalies = self.climatology.transform(added)
             new_pcs = self.eof.transform(anomalies).transpose("time", "mode")
@@ -806,6 +809,7 @@ class AnalogStore:
             pcs = pcs.isel(time=order)
             new_tags = tag_days(added, _diagnostic_region(self.region, added), progress=False)
             new_tags = new_tags.set_index("date")
+            tag_attrs = tag_attrs or dict(new_tags.attrs)
             tags = new_tags if self.tags is None else pd.concat([self.tags, new_tags]).sort_index()
             times = pd.DatetimeIndex(pcs["time"].values)
             manifest["archive"] = {**manifest["archive"], "n_days": int(len(times)),
@@ -828,7 +832,9 @@ class AnalogStore:
             if event_table is not None:
                 store_io.write_table(event_table, staged / store_io.EVENTS)
             if tags is not None:
-                store_io.write_table(tags.reset_index(), staged / store_io.TAGS)
+                table = tags.reset_index()
+                table.attrs = tag_attrs
+                store_io.write_table(table, staged / store_io.TAGS)
         return summary
 
     # -- regimes ----------------------------------------------------------------------
@@ -847,7 +853,9 @@ class AnalogStore:
         tags = self.tags.copy()
         if rules is not None:
             rules = rules if isinstance(rules, RegimeRules) else RegimeRules.load(rules)
-            labels = RuleClassifier(rules).predict(tags)
+            diagnostics = tags.copy()
+            diagnostics.attrs = dict(self.tag_attrs)
+            labels = RuleClassifier(rules).predict(diagnostics)
             tags[["regime", "confidence", "reason"]] = labels[["regime", "confidence", "reason"]].to_numpy()
         models = {}
         if kmeans is not None:
@@ -870,7 +878,9 @@ class AnalogStore:
         keep = [name for name in self.manifest["files"]
                 if name not in (store_io.TAGS, store_io.MODELS) or (name == store_io.MODELS and not models)]
         with store_io.writing(self.path, manifest, keep=keep) as staged:
-            store_io.write_table(tags.reset_index(), staged / store_io.TAGS)
+            table = tags.reset_index()
+            table.attrs = dict(self.tag_attrs)
+            store_io.write_table(table, staged / store_io.TAGS)
             for mode, (name, dataset) in zip(("w", "a"), sorted(models.items())) if models else ():
                 store_io.write_dataset(dataset, staged / store_io.MODELS, group=name, mode=mode)
         self.tags = tags
