@@ -25,14 +25,26 @@ DEFAULT_EXCLUDE = 10
 DEFAULT_SEPARATION = 3
 
 
+def _as_datetime64(times) -> np.ndarray:
+    """``times`` as a numpy datetime64 array, in its own unit (no pandas index is built:
+    queries are hot)."""
+    values = times.to_numpy() if isinstance(times, pd.DatetimeIndex) else np.asarray(times)
+    return values if values.dtype.kind == "M" else values.astype("datetime64[ns]")
+
+
+def day_of_year(times) -> np.ndarray:
+    """Day of the year (1 on 1 January) of each time, as pandas' ``day_of_year``."""
+    stamps = _as_datetime64(times)
+    return (stamps.astype("datetime64[D]") - stamps.astype("datetime64[Y]")).astype(np.int64) + 1
+
+
 def calendar_distance_days(times, target_time):
     """Distance in days between the calendar days of ``times`` and ``target_time``.
 
     Circular over the year, so 28 December and 3 January are 6 days apart whatever
     their years. Leap days count as the day they fall on (day of year 60).
     """
-    times = pd.DatetimeIndex(times)
-    return circular_day_gap(times.day_of_year.to_numpy(), pd.Timestamp(target_time).day_of_year)
+    return circular_day_gap(day_of_year(times), pd.Timestamp(target_time).day_of_year)
 
 
 def circular_day_gap(day_of_year, target_day_of_year):
@@ -48,14 +60,13 @@ def season_mask(times, target_time, window_days):
 
 def exclusion_mask(times, target_time, exclude_days):
     """True where ``times`` lie within ``exclude_days`` days of the target date itself."""
-    times = pd.DatetimeIndex(times).normalize()
-    target = pd.Timestamp(target_time).normalize()
-    return np.abs((times - target) / pd.Timedelta(days=1)) <= exclude_days
+    target = day_numbers(np.atleast_1d(pd.Timestamp(target_time).to_datetime64()))[0]
+    return np.abs(day_numbers(times) - target) <= exclude_days
 
 
 def day_numbers(times) -> np.ndarray:
     """Whole days since 1970-01-01 of each time (the calendar day it falls on)."""
-    return pd.DatetimeIndex(times).normalize().to_numpy().astype("datetime64[D]").astype(np.int64)
+    return _as_datetime64(times).astype("datetime64[D]").astype(np.int64)
 
 
 def decluster(times, separation_days, limit=None):
