@@ -105,8 +105,9 @@ class MultivariateEOF:
     solver : {"auto", "exact", "randomized"}
         "exact": LAPACK economy SVD (the matrix is loaded into memory).
         "randomized": Halko et al. (2011) randomized SVD, scikit-learn's
-        ``randomized_svd`` for in-memory data, ``dask.array.linalg.svd_compressed``
-        for dask-backed data (the matrix is never materialised). "auto": exact when
+        ``randomized_svd`` for in-memory data, a streamed range finder for
+        dask-backed data (one pass over the chunks per product; the matrix is never
+        materialised). "auto": exact when
         ``min(n_time, n_space) <= 500``, randomized otherwise. The choice made is
         in ``solver_``; a randomized request that would need nearly every mode uses
         the exact SVD.
@@ -337,15 +338,9 @@ class MultivariateEOF:
 
     def _randomized_svd(self, matrix, k: int):
         if _is_dask(matrix):
-            import dask
-            import dask.array as da
-
-            parts = da.linalg.svd_compressed(
-                matrix, k, iterator="QR" if self.n_power_iter else "power",
-                n_power_iter=self.n_power_iter, n_oversamples=self.n_oversamples,
-                seed=self.random_state, coerce_signs=False)
-            u, s, vt = dask.compute(*parts)
-            return np.asarray(u), np.asarray(s), np.asarray(vt)
+            return _streamed_randomized_svd(matrix, k, n_oversamples=self.n_oversamples,
+                                            n_power_iter=self.n_power_iter,
+                                            seed=self.random_state)
         from sklearn.utils.extmath import randomized_svd
 
         return randomized_svd(matrix, k, n_oversamples=self.n_oversamples,
@@ -638,6 +633,42 @@ class MultivariateEOF:
             [eofs[f].reshape(model.n_modes_, -1)[:, model._valid[f]] for f in fields], axis=1)
         model._singular_values = np.sqrt(eigenvalues * (model.n_time_ - 1))
         return model
+
+
+def _streamed_randomized_svd(matrix, k: int, *, n_oversamples: int, n_power_iter: int, seed: int):
+    """Randomized SVD of a dask matrix, one separate pass over the data per product.
+
+    Halko, Martinsson & Tropp (2011, SIAM Review 53, 217-288), algorithms 4.4 (range
+    finder with ``n_power_iter`` power iterations, re-orthonormalised by QR at each
+    step) and 5.1 (SVD of the small projected matrix). Each product with the data
+    matrix is its own ``dask.compute``, so its chunks are read, used and freed: peak
+    memory is a few chunks plus the thin (n, k + p) factors, whatever the archive
+    size. (``dask.array.linalg.svd_compressed`` builds every pass into one graph, in
+    which the scheduler keeps the data chunks alive for the later passes: the whole
+    matrix ends up in memory.)
+    """
+    import dask
+    import dask.array as da
+
+    n_time, n_space = matrix.shape
+    width = min(k + n_oversamples, n_time, n_space)
+    row_chunks, column_chunks = matrix.chunks
+
+    def times_matrix(right, chunks):
+        return np.asarray(dask.compute(matrix @ da.from_array(right, chunks=(chunks, width)))[0])
+
+    def matrix_transposed_times(left):
+        product = matrix.T @ da.from_array(left, chunks=(row_chunks, width))
+        return np.asarray(dask.compute(product)[0])
+
+    omega = np.random.default_rng(seed).standard_normal((n_space, width))
+    basis, _ = np.linalg.qr(times_matrix(omega, column_chunks))
+    for _ in range(n_power_iter):
+        basis_space, _ = np.linalg.qr(matrix_transposed_times(basis))
+        basis, _ = np.linalg.qr(times_matrix(basis_space, column_chunks))
+    projected = matrix_transposed_times(basis).T  # (width, n_space) = Q^T M
+    u_small, s, vt = np.linalg.svd(projected, full_matrices=False)
+    return (basis @ u_small)[:, :k], s[:k], vt[:k]
 
 
 def _compute(*dicts):
