@@ -41,7 +41,7 @@ def synthetic_fields(times, *, lat=LAT, lon=LON, seed=SEED) -> dict[str, np.ndar
     """{"z500": gpm, "q850": kg/kg} arrays (time, lat, lon) of the synthetic weather."""
     times = pd.DatetimeIndex(times)
     rng = np.random.default_rng(seed)
-    doy = times.dayofyear.to_numpy(dtype=float)[:, None, None]
+    doy = times.day_of_year.to_numpy(dtype=float)[:, None, None]
     patterns = [np.sin(np.radians(k * lat)[:, None] * 1.5) * np.cos(np.radians(j * lon)[None, :] * 3)
                 for k, j in ((1, 1), (2, 1), (1, 2), (3, 2), (2, 3))]
     amplitude = np.zeros((len(times), 5))
