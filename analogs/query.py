@@ -7,6 +7,8 @@ same weather episode, so they are dropped (common practice, no source).
 
 from __future__ import annotations
 
+import weakref
+
 import numpy as np
 import pandas as pd
 
@@ -32,10 +34,32 @@ def _as_datetime64(times) -> np.ndarray:
     return values if values.dtype.kind == "M" else values.astype("datetime64[ns]")
 
 
+#: Calendar arrays of recently queried DatetimeIndex objects (immutable), by identity:
+#: a loaded store asks about the same index at every query. Bounded, weakly referenced.
+_CALENDAR_CACHE: dict[int, tuple] = {}
+_CALENDAR_CACHE_SIZE = 8
+
+
+def _calendar(times) -> tuple[np.ndarray, np.ndarray]:
+    """(day of year, whole days since 1970-01-01) of each time."""
+    if isinstance(times, pd.DatetimeIndex):
+        hit = _CALENDAR_CACHE.get(id(times))
+        if hit is not None and hit[0]() is times:
+            return hit[1], hit[2]
+    stamps = _as_datetime64(times)
+    days = stamps.astype("datetime64[D]")
+    arrays = ((days - stamps.astype("datetime64[Y]")).astype(np.int64) + 1,
+              days.astype(np.int64))
+    if isinstance(times, pd.DatetimeIndex):
+        if len(_CALENDAR_CACHE) >= _CALENDAR_CACHE_SIZE:
+            _CALENDAR_CACHE.pop(next(iter(_CALENDAR_CACHE)))
+        _CALENDAR_CACHE[id(times)] = (weakref.ref(times), *arrays)
+    return arrays
+
+
 def day_of_year(times) -> np.ndarray:
     """Day of the year (1 on 1 January) of each time, as pandas' ``day_of_year``."""
-    stamps = _as_datetime64(times)
-    return (stamps.astype("datetime64[D]") - stamps.astype("datetime64[Y]")).astype(np.int64) + 1
+    return _calendar(times)[0]
 
 
 def calendar_distance_days(times, target_time):
@@ -66,7 +90,7 @@ def exclusion_mask(times, target_time, exclude_days):
 
 def day_numbers(times) -> np.ndarray:
     """Whole days since 1970-01-01 of each time (the calendar day it falls on)."""
-    return _as_datetime64(times).astype("datetime64[D]").astype(np.int64)
+    return _calendar(times)[1]
 
 
 def decluster(times, separation_days, limit=None):
