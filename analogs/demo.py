@@ -12,6 +12,7 @@ import xarray as xr
 from .constants import G0
 from .outcomes import Region
 from .report import write_text_atomic
+from .store import write_dataset
 
 
 def write_forecast_like_field(archive: xr.Dataset, day, path) -> Path:
@@ -38,8 +39,10 @@ def write_forecast_like_field(archive: xr.Dataset, day, path) -> Path:
     dims = ("valid_time", "pressure_level", "latitude", "longitude")
     out = xr.Dataset(
         {name: (dims, values, attrs) for name, (values, attrs) in variables.items()},
-        coords={"valid_time": [valid],
-                "pressure_level": ("pressure_level", levels, {"units": "hPa"}),
+        coords={"valid_time": ("valid_time", [valid], {"standard_name": "time", "axis": "T"}),
+                "pressure_level": ("pressure_level", levels,
+                                   {"units": "hPa", "standard_name": "air_pressure", "axis": "Z",
+                                    "positive": "down"}),
                 "latitude": ("latitude", lat, {"units": "degrees_north", "standard_name": "latitude"}),
                 "longitude": ("longitude", fine["lon"].values,
                               {"units": "degrees_east", "standard_name": "longitude"})},
@@ -47,7 +50,7 @@ def write_forecast_like_field(archive: xr.Dataset, day, path) -> Path:
                "Conventions": "CF-1.8"})
     path = Path(path)
     temporary = path.with_name(f".{path.name}.tmp")
-    out.to_netcdf(temporary)
+    write_dataset(out, temporary)
     temporary.replace(path)
     return path
 

@@ -203,7 +203,8 @@ def test_composites_equal_the_mean_of_reconstructed_days(demo_store, tmp_path):
     path = write_composites(composites, tmp_path / "composites.nc")
     with netCDF4.Dataset(path) as nc:
         assert nc.Conventions == "CF-1.8"
-        assert nc["z500_anomaly"].units == "gpm"
+        # CF files carry UDUNITS units: geopotential metres are written as "m".
+        assert nc["z500_anomaly"].units == "m"
         assert nc["lat"].standard_name == "latitude"
         assert "kept EOFs" in nc["z500_anomaly"].long_name
         assert list(nc["regime"][:]) == list(composites["regime"].values)
