@@ -2,7 +2,7 @@
 
 Our own synthetic fields (no real place, event or data): 500 hPa height in gpm and 850 hPa
 specific humidity in kg/kg on a 2.5 degree regional grid, driven by five red-noise
-pattern amplitudes (AR(1), coefficient 0.9) on top of an annual cycle, written in the CF
+pattern amplitudes (AR(1), coefficient 0.9) on top of an annual cycle, plus white noise, written in the CF
 convention of the demo archive (``zg`` in m and ``hus`` with ``plev`` in Pa). Small enough
 that a build takes a few seconds, long enough (three years) for a leave-one-year-out
 hindcast.
@@ -52,7 +52,9 @@ def synthetic_fields(times, *, lat=LAT, lon=LON, seed=SEED) -> dict[str, np.ndar
          + sum(amplitude[:, k, None, None] * 20.0 * patterns[k][None] for k in range(5)))
     q = (0.008 + 0.002 * season
          + sum(amplitude[:, k, None, None] * 0.0003 * patterns[(k + 1) % 5][None] for k in range(5)))
-    q = np.clip(q + 0.0 * lat[None, :, None], 1e-4, None)
+    # Small-scale white noise: real fields are not exactly of low rank.
+    z = z + rng.normal(scale=2.0, size=z.shape)
+    q = np.clip(q + rng.normal(scale=1e-4, size=q.shape), 1e-4, None)
     return {"z500": z, "q850": q}
 
 

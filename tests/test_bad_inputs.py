@@ -476,7 +476,8 @@ def test_bad_input_exits_2_with_one_line(case, ctx, capsys):
     argv = case.make(ctx)
     code, _, stderr = _run(argv, capsys)
     lines = _error_lines(stderr)
-    OUTCOMES[case.id] = (str(code), " / ".join(lines) if lines else "(no error line)")
+    shown = " / ".join(lines).replace(f"{ctx.tmp}/", "") if lines else "(no error line)"
+    OUTCOMES[case.id] = (str(code), shown)
     assert "Traceback" not in stderr
     assert code == 2, stderr
     assert len(lines) == 1, stderr
