@@ -912,10 +912,13 @@ def apply_missing_data_policy(ds, *, max_missing_fraction=0.1, max_gap_days=2,
             ).transpose(*da.dims)
         after, _ = _nan_counts(ds[partial])
         left = np.zeros(keep.size, dtype=bool)
+        residuals = {}
         for name in partial:
-            residual = after[name] - int(masks[name].sum())
-            filled_count += int(missing[name][keep].sum() - residual.sum())
-            left |= residual > 0
+            residuals[name] = after[name] - int(masks[name].sum())
+            left |= residuals[name] > 0
+        for name in partial:  # values filled on the days that stay
+            filled = missing[name][keep] - residuals[name]
+            filled_count += int(filled[~left].sum())
         dropped_days = np.sort(np.concatenate([np.flatnonzero(heavy), keep[left]]))
         ds = ds.isel(time=np.flatnonzero(~left))
     else:

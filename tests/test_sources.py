@@ -651,3 +651,42 @@ def test_dask_fill_matches_in_memory_fill(tmp_path):
     assert lazy["z500"].chunks is not None
     np.testing.assert_allclose(lazy["z500"].values, eager["z500"].values)
     assert lazy.attrs["missing_data"] == eager.attrs["missing_data"]
+
+
+@settings(max_examples=60, deadline=None)
+@given(n_days=st.integers(3, 25), seed=st.integers(0, 10_000),
+       nan_share=st.sampled_from([0.0, 0.02, 0.1, 0.3]), max_gap=st.integers(0, 3),
+       mask_rows=st.integers(0, 2))
+def test_missing_data_policy_property(n_days, seed, nan_share, max_gap, mask_rows):
+    """Whatever the NaN pattern: no NaN is left outside the all-NaN mask, values that were
+    present are unchanged, each filled value lies between its valid neighbours in time
+    (linear interpolation cannot overshoot), and the report adds up."""
+    from analogs.sources import apply_missing_data_policy
+    rng = np.random.default_rng(seed)
+    times = daily_times(periods=n_days)
+    lat, lon = LAT[:6], LON[:5]
+    z = smooth_height(times, lat, lon)
+    z[rng.random(z.shape) < nan_share] = np.nan
+    z[:, :mask_rows] = np.nan
+    ds = xr.Dataset({"z500": (("time", "lat", "lon"), z)},
+                    coords={"time": times, "lat": lat, "lon": lon})
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", UserWarning)
+        try:
+            out, report = apply_missing_data_policy(ds, max_gap_days=max_gap)
+        except AnalogsInputError as error:
+            assert "every day" in str(error) or "every value" in str(error)
+            return
+    kept = np.flatnonzero(np.isin(times.values, out["time"].values))
+    values, original = out["z500"].values, z[kept]
+    assert not np.isnan(values[:, mask_rows:]).any()
+    present = ~np.isnan(original)
+    np.testing.assert_array_equal(values[present], original[present])
+    clean = smooth_height(times, lat, lon)[kept]
+    spread = np.nanmax(np.abs(np.diff(smooth_height(times, lat, lon), axis=0))) * (max_gap + 1)
+    assert np.all(np.abs(values[~present & ~np.isnan(values)] - clean[~present & ~np.isnan(values)])
+                  <= spread + 1e-6)
+    assert report["n_days_dropped"] + out.sizes["time"] == n_days
+    assert report["n_values_filled"] == int((~present & ~np.isnan(values)).sum())
+    assert report["all_nan_points"] == mask_rows * lon.size + int(
+        (np.isnan(z[:, mask_rows:]).all(axis=0)).sum())
