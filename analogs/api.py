@@ -13,6 +13,7 @@ this module.
 from __future__ import annotations
 
 import contextlib
+import json
 import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -199,6 +200,7 @@ def _build(paths, store, *, events, fields, n_modes, variance, region, domain, h
             "n_lat": int(archive.sizes["lat"]),
             "n_lon": int(archive.sizes["lon"]),
             "inputs": _provenance(paths),
+            "missing_data": json.loads(archive.attrs.get("missing_data", "{}")),
             "reconstruction_error": _error_summary(errors),
         },
         "events": None if event_table is None else {
@@ -822,7 +824,8 @@ class AnalogStore:
                                   "kinds": sorted(event_table["kind"].unique().tolist())}
         manifest.setdefault("updates", []).append({
             "written": pd.Timestamp.now(tz="UTC").isoformat(timespec="seconds"),
-            "inputs": [str(Path(p).resolve()) for p in paths], **summary})
+            "inputs": [str(Path(p).resolve()) for p in paths],
+            "missing_data": json.loads(archive.attrs.get("missing_data", "{}")), **summary})
         keep = [store_io.BASIS] + ([store_io.EVENTS] if event_table is None and self.events is not None else [])
         with store_io.writing(self.path, manifest, keep=keep) as staged:
             store_io.write_dataset(xr.Dataset({"pcs": pcs.astype("float64")},
