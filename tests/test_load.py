@@ -29,8 +29,9 @@ def shared(tmp_path_factory):
     return rh.shared_store(rh.session_root(tmp_path_factory))
 
 
-def test_full_hindcast_completes_with_every_day_scored(shared):
-    store = AnalogStore.load(shared["store"])
+def test_full_hindcast_completes_with_every_day_scored(demo_store):
+    """``AnalogStore.verify`` on the session's demo store: every archive day forecast."""
+    store = AnalogStore.load(demo_store.path)
     started = time.monotonic()
     summary = store.verify(n_resamples=100)
     elapsed = time.monotonic() - started
@@ -61,6 +62,7 @@ def _find(store, date):
 def test_concurrent_threads_answer_like_sequential_calls(shared):
     store = AnalogStore.load(shared["store"])
     sequential = [_find(store, d) for d in BURST_DATES]
+    assert all(len(answer["analogs"]) == 20 for answer in sequential)
     fresh = AnalogStore.load(shared["store"])  # index built lazily, under contention
     with ThreadPoolExecutor(max_workers=8) as pool:
         concurrent = list(pool.map(lambda d: _find(fresh, d), BURST_DATES * 2))
