@@ -716,8 +716,7 @@ class AnalogStore:
 
     def save_query_defaults(self, **settings) -> None:
         """Record query settings (``top``, ``n_modes``) in the store's manifest."""
-        manifest = {k: v for k, v in self.manifest.items()
-                    if k not in ("files", "format", "format_version", "package_version", "written")}
+        manifest = store_io.editable(self.manifest)
         manifest["query_defaults"] = {**self.query_defaults, **settings}
         with store_io.writing(self.path, manifest, keep=tuple(self.manifest["files"])):
             pass
@@ -791,8 +790,7 @@ class AnalogStore:
         event_table = read_events(events) if events is not None else None
         if not fresh.any() and event_table is None:
             return summary
-        manifest = {k: v for k, v in self.manifest.items()
-                    if k not in ("files", "format", "format_version", "package_version", "written")}
+        manifest = store_io.editable(self.manifest)
         pcs, tags, tag_attrs = self.pcs, self.tags, dict(self.tag_attrs)
         if fresh.any():
             anomalies = self.climatology.transform(added)
@@ -872,8 +870,7 @@ class AnalogStore:
             tags["learned_regime"] = model.predict(self.pcs)
             tags["learned_confidence"] = np.max(np.asarray(probabilities), axis=1)
             models["supervised"] = model.to_dataset()
-        manifest = {k: v for k, v in self.manifest.items()
-                    if k not in ("files", "format", "format_version", "package_version", "written")}
+        manifest = store_io.editable(self.manifest)
         if rules is not None:
             manifest["regime_rules"] = rules.to_dict()
         if models:

@@ -244,6 +244,15 @@ def _json_default(value):
     raise TypeError(f"cannot write {type(value).__name__} to the manifest")
 
 
+#: Manifest keys the store writes itself on every write (see :func:`writing`).
+_WRITTEN_KEYS = ("format", "format_version", "package_version", "written", "files")
+
+
+def editable(manifest: dict) -> dict:
+    """The part of a manifest a new version carries over (without what ``writing`` adds)."""
+    return {key: value for key, value in manifest.items() if key not in _WRITTEN_KEYS}
+
+
 def read_manifest(path) -> dict:
     """Read and check the manifest of the store at ``path`` (no checksum test)."""
     path = Path(path)
