@@ -87,3 +87,22 @@ def test_find_maps_netcdf(demo_store, tmp_path, capsys):
             expected = len(hit_days) / len(analog_days)
             got = float(probability.sel(lat=plat, lon=plon))
             assert got == pytest.approx(expected, abs=1e-6), (plat, plon)
+
+
+def test_tune_and_save_sets_query_defaults(demo_store, tmp_path, capsys):
+    """--tune reports the best (analogs, modes) by Brier skill score and --save makes them
+    the store's query defaults."""
+    import shutil
+    store = tmp_path / "store"
+    shutil.copytree(demo_store.path, store)
+    assert main(["verify", "--store", str(store), "--tune", "--save", "--json", "--quiet"]) == 0
+    data = json.loads(capsys.readouterr().out)
+    table = pd.DataFrame(data["tuning"]["table"])
+    best = table.loc[table["brier_skill_score"].idxmax()]
+    assert data["tuning"]["best"] == {"top": int(best["top"]), "n_modes": int(best["n_modes"])}
+    assert data["settings"]["top"] == int(best["top"])
+    assert main(["find", "--store", str(store), "--date", str(demo_store.days[300].date()),
+                 "--json"]) == 0
+    found = json.loads(capsys.readouterr().out)
+    assert len(found["analogs"]) == int(best["top"])
+    assert found["settings"]["n_modes"] == int(best["n_modes"])
