@@ -142,8 +142,25 @@ def test_analogs_match_sklearn_brute_force(chunked):
         np.testing.assert_allclose(result["distance"], distances[0], rtol=1e-5)
 
 
+@pytest.mark.slow
+def test_distributed_scheduler_matches_threaded(small_archive, chunked):
+    """A build through a dask.distributed scheduler address (an in-process cluster, the
+    ``--scheduler ADDRESS`` path) gives the threaded build's EOFs and analogs. Slow: about
+    100 s at load 7 on 2 cores (per-compute scheduler overhead, see the report)."""
+    distributed = pytest.importorskip("distributed")
+    with distributed.LocalCluster(n_workers=1, threads_per_worker=2, processes=False,
+                                  dashboard_address=None) as cluster:
+        result = _build(small_archive, "store_address", chunks={"time": CHUNK_DAYS},
+                        scheduler=cluster.scheduler_address)
+    _assert_same_eofs(chunked, result)
+    _assert_same_analogs(chunked, result)
+
+
+@pytest.mark.slow
 def test_local_cluster_matches_threaded(small_archive, chunked):
-    """A dask.distributed LocalCluster build gives the threaded build's EOFs and analogs."""
+    """A ``scheduler="local"`` build (LocalCluster of worker processes) gives the threaded
+    build's EOFs and analogs. Slow: two worker processes start and open the files
+    (about 70 s on the loaded 2-core test machine, 245 s at load 7)."""
     pytest.importorskip("distributed")
     distributed = _build(small_archive, "store_local", chunks={"time": CHUNK_DAYS},
                          scheduler="local")
