@@ -336,8 +336,27 @@ class AnalogStore:
 
     @classmethod
     def load(cls, path, *, check=True):
-        """Load the store at ``path``, verifying its checksums unless ``check=False``."""
+        """Load the store at ``path``, verifying its checksums unless ``check=False``.
+
+        A writer may swap a new version in while this reads; the read is then retried,
+        so a reader gets one whole version, never a mix of two.
+        """
         path = Path(path)
+        attempts = 5
+        for attempt in range(attempts):
+            version = store_io.version_token(path)
+            try:
+                store = cls._load_version(path, check)
+            except StoreError:
+                if attempt < attempts - 1 and store_io.version_token(path) != version:
+                    continue
+                raise
+            if store_io.version_token(path) == version:
+                return store
+        raise StoreError(f"store {path} kept changing while it was read; try again")
+
+    @classmethod
+    def _load_version(cls, path, check):
         manifest = store_io.verify(path) if check else store_io.read_manifest(path)
         files = manifest["files"]
         for required in (store_io.BASIS, store_io.SCORES):

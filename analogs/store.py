@@ -253,6 +253,15 @@ def editable(manifest: dict) -> dict:
     return {key: value for key, value in manifest.items() if key not in _WRITTEN_KEYS}
 
 
+def version_token(path):
+    """What changes when a new version of the store is swapped in: the directory's inode
+    and the manifest's modification time (None when there is no store)."""
+    try:
+        return os.stat(path).st_ino, os.stat(Path(path) / MANIFEST).st_mtime_ns
+    except OSError:
+        return None
+
+
 def read_manifest(path) -> dict:
     """Read and check the manifest of the store at ``path`` (no checksum test)."""
     path = Path(path)

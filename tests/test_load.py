@@ -96,3 +96,39 @@ def test_burst_of_cli_processes_answers_like_sequential_calls(shared):
         assert answer["analogs"] == want["analogs"]
         assert answer["outcomes"]["p_any_event"] == pytest.approx(want["outcomes"]["p_any_event"])
         assert answer["target"] == want["target"]
+
+
+def test_readers_never_see_a_mix_of_two_versions(demo_store, tmp_path):
+    """Loads running while a writer keeps swapping new versions in each get one whole,
+    checksum-valid version (the load retries when the store changed under it)."""
+    import shutil
+    import threading
+
+    from analogs.api import AnalogStore
+
+    path = tmp_path / "store"
+    shutil.copytree(demo_store.path, path)
+    writer_store = AnalogStore.load(path)
+    stop = threading.Event()
+    errors = []
+
+    def write():
+        top = 10
+        while not stop.wait(0.2):  # a new version every 0.2 s: far more often than updates
+            top = 30 - top  # alternate 10 and 20
+            writer_store.save_query_defaults(top=top)
+
+    thread = threading.Thread(target=write)
+    thread.start()
+    try:
+        tops = []
+        for _ in range(25):
+            try:
+                tops.append(AnalogStore.load(path).query_defaults.get("top"))
+            except Exception as error:  # any failure is the defect under test
+                errors.append(error)
+    finally:
+        stop.set()
+        thread.join()
+    assert errors == []
+    assert set(tops) <= {None, 10, 20} and len(set(tops)) >= 2  # versions did change
