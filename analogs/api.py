@@ -410,7 +410,9 @@ class AnalogStore:
     @property
     def days(self) -> pd.DatetimeIndex:
         """Calendar days of the archive (the convective days the fields describe)."""
-        return self.times.normalize()
+        if "_days" not in self.__dict__:
+            self._days = self.times.normalize()
+        return self._days
 
     # -- targets -------------------------------------------------------------------
     def day_row(self, date) -> int:
@@ -660,7 +662,10 @@ class AnalogStore:
         summary = summarize_outcomes(analog_counts, climatology_counts, weights=weight_values,
                                      confidence=confidence)
         summary["has_events"] = self.events is not None
-        composite = self.cyclone_composite(days)
+        # Reports around the cyclone of the analogs tagged tropical (the cyclone days
+        # that matter for the region); skipped, at no cost, when there are none.
+        tropical = analogs.loc[analogs["regime"] == "tropical", "row"].to_numpy()
+        composite = self.cyclone_composite(tropical) if tropical.size else None
         if composite is not None:
             summary["cyclone_quadrants"] = _quadrant_summary(composite)
         return summary
@@ -754,21 +759,22 @@ class AnalogStore:
                            "n_analogs": int(len(days)), "source": f"analogs store {self.path}"})
         return maps
 
-    def cyclone_centres(self, days=None) -> pd.DataFrame:
-        """Tropical-cyclone centres found by the regime diagnostics (day, lat, lon)."""
+    def cyclone_centres(self, rows=None) -> pd.DataFrame:
+        """Tropical-cyclone centres found by the regime diagnostics (day, lat, lon) on the
+        archive days of ``rows`` (default all)."""
         if self.tags is None or "tc_lat" not in self.tags:
             return pd.DataFrame(columns=["day", "lat", "lon"])
-        tags = self.tags if days is None else self.tags.loc[self.tags.index.isin(
-            pd.DatetimeIndex(days).normalize())]
-        present = tags["tc_lat"].notna()
-        return pd.DataFrame({"day": tags.index[present], "lat": tags["tc_lat"][present].to_numpy(),
-                             "lon": tags["tc_lon"][present].to_numpy()})
+        rows = np.arange(len(self.tags)) if rows is None else np.asarray(rows, dtype=int)
+        lat = self.tags["tc_lat"].to_numpy()[rows]
+        present = ~np.isnan(lat)
+        return pd.DataFrame({"day": self.tags.index[rows][present], "lat": lat[present],
+                             "lon": self.tags["tc_lon"].to_numpy()[rows][present]})
 
-    def cyclone_composite(self, days=None, *, frame="earth") -> pd.DataFrame | None:
-        """Events around tropical-cyclone centres on ``days`` (default all) by quadrant
-        and distance (:func:`analogs.outcomes.cyclone_relative_composite`); None when
-        no day has a cyclone or the store has no events."""
-        centres = self.cyclone_centres(days)
+    def cyclone_composite(self, rows=None, *, frame="earth") -> pd.DataFrame | None:
+        """Events around tropical-cyclone centres on the archive days of ``rows`` (default
+        all) by quadrant and distance (:func:`analogs.outcomes.cyclone_relative_composite`);
+        None when no day has a cyclone or the store has no events."""
+        centres = self.cyclone_centres(rows)
         if self.events is None or centres.empty:
             return None
         events = self.events[self.events["day"].isin(centres["day"])]
