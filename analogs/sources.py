@@ -15,6 +15,7 @@ the readers look at coordinates and at most a few time steps for unit inference.
 
 from __future__ import annotations
 
+import contextlib
 import glob
 import json
 import os
@@ -189,15 +190,9 @@ def open_archive(paths, *, fields=None, region=None, hour=12, daily="instant",
     requested = _check_fields(fields, "open_archive")
     south_north_west_east = _check_region(region)
     candidates, seen = [], {}
-    for path in _progress(files, progress):
-        dataset = _open_file(path, chunks)
-        found = _recognise(path, dataset)
-        seen[path] = sorted(str(v) for v in dataset.data_vars)
-        if not found:
-            warnings.warn(f"{path}: no supported variable found (variables: "
-                          f"{', '.join(seen[path]) or 'none'}); file skipped",
-                          UserWarning, stacklevel=2)
-        candidates.extend(found)
+    with _small_chunk_cache():
+        for path in _progress(files, progress):
+            candidates.extend(_recognised_in(path, chunks, seen))
     chosen = _choose_fields(requested, candidates, files, seen)
     arrays, duplicates = {}, 0
     for field in chosen:
@@ -403,6 +398,34 @@ def _expand_paths(paths, owner):
     return files
 
 
+def _recognised_in(path, chunks, seen):
+    """The supported variables of one file (a warning when it has none)."""
+    dataset = _open_file(path, chunks)
+    found = _recognise(path, dataset)
+    seen[path] = sorted(str(v) for v in dataset.data_vars)
+    if not found:
+        warnings.warn(f"{path}: no supported variable found (variables: "
+                      f"{', '.join(seen[path]) or 'none'}); file skipped",
+                      UserWarning, stacklevel=3)
+    return found
+
+
+#: HDF5 chunk cache per open file while an archive is opened, bytes. The default (64 MB)
+#: holds a whole year of a 0.25-degree field per file: 4.6 GB for 80 files (measured).
+ARCHIVE_CHUNK_CACHE = 8 * 2**20
+
+
+@contextlib.contextmanager
+def _small_chunk_cache():
+    import netCDF4
+    previous = netCDF4.get_chunk_cache()
+    netCDF4.set_chunk_cache(ARCHIVE_CHUNK_CACHE, previous[1], previous[2])
+    try:
+        yield
+    finally:
+        netCDF4.set_chunk_cache(*previous)
+
+
 def _open_file(path, chunks):
     """Open one file with xarray (lazily); raise a one-line error when it cannot."""
     if not os.path.exists(path):
@@ -427,7 +450,9 @@ def _open_file(path, chunks):
         raise AnalogsInputError(f"{path}: not a NetCDF file{hint}; expected NetCDF-3, "
                                 "NetCDF-4 or a .zarr directory")
     try:
-        dataset = xr.open_dataset(path, chunks=open_chunks)
+        # The engine is named: letting xarray guess imports every installed backend
+        # (MetPy's among them), measured 5.6 s against 0.9 s per process.
+        dataset = xr.open_dataset(path, chunks=open_chunks, engine="netcdf4")
     except ValueError as err:
         if "decode time" not in str(err):
             raise AnalogsInputError(f"{path}: cannot be read as NetCDF, the file may be "
@@ -450,7 +475,7 @@ def _open_file(path, chunks):
 
 def _undecodable_times(path):
     """The message for a time axis xarray cannot decode (out of range, bad units)."""
-    with xr.open_dataset(path, decode_times=False) as raw:
+    with xr.open_dataset(path, decode_times=False, engine="netcdf4") as raw:
         coords = [(str(k), c) for k, c in raw.variables.items()
                   if "since" in str(c.attrs.get("units", "")) and c.ndim <= 1]
         if not coords:
