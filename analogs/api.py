@@ -27,7 +27,6 @@ from ._validation import check_choice, check_float, check_int
 from .climatology import HarmonicClimatology
 from .eof import MultivariateEOF
 from .errors import AnalogsInputError, StoreError
-from .hindcast import leave_one_year_out, score_hindcast, tune
 from .index import INDEX_KINDS, AnalogIndex, recall_at_k
 from .outcomes import (
     Region,
@@ -40,11 +39,11 @@ from .outcomes import (
 )
 from .query import (DEFAULT_EXCLUDE, DEFAULT_SEPARATION, DEFAULT_TOP, DEFAULT_WINDOW,
                     candidate_ids, find_analogs)
-from .regimes import (REGIME_LABELS, KMeansRegimes, RegimeRules, RuleClassifier,
-                      SupervisedRegimes, tag_days)
-from .sources import open_archive, open_target, regrid_to
 
 WEIGHT_SCHEMES = ("equal", "inverse_distance", "gaussian")
+# The readers (sources), the regime diagnostics (regimes) and the hindcast are imported
+# inside the functions that use them: a query on an archive date needs none of them, and
+# the start-up of `analogs find` is part of a forecaster's wait.
 
 
 def _provenance(paths) -> list[dict]:
@@ -156,6 +155,8 @@ def _dask_scheduler(address):
 
 def _build(paths, store, *, events, fields, n_modes, variance, region, domain, hour, daily,
            n_harmonics, solver, field_weights, chunks, index, progress):
+    from .regimes import tag_days
+    from .sources import open_archive
     archive = open_archive(paths, fields=fields, region=domain, hour=hour, daily=daily,
                            chunks=chunks, progress=progress)
     if archive.sizes["time"] < 3:
@@ -269,6 +270,7 @@ def skill_by_month(pcs, times, observed, *, region, top=DEFAULT_TOP, window=DEFA
     other years' season-window climatology. Stored in the manifest at build so that
     every query can say how much this kind of guidance has been worth.
     """
+    from .hindcast import leave_one_year_out, score_hindcast
     hindcast = leave_one_year_out(pcs, times, observed, top=top, window=window,
                                   separation=separation)
     months = pd.DatetimeIndex(hindcast["time"]).month
@@ -429,6 +431,7 @@ class AnalogStore:
 
     def project(self, target: xr.Dataset) -> np.ndarray:
         """PC vector of a canonical target Dataset (one time) on any grid."""
+        from .sources import regrid_to
         missing = [name for name in self.fields if name not in target.data_vars]
         if missing:
             raise AnalogsInputError(
@@ -441,6 +444,8 @@ class AnalogStore:
         return np.asarray(pcs.values, dtype=float).reshape(-1)
 
     def regime_of_field(self, target: xr.Dataset, region: Region) -> dict:
+        from .regimes import tag_days
+        from .sources import regrid_to
         lat, lon = self.grid
         fields = regrid_to(target[self.fields], lat, lon)
         if "time" not in fields.dims:
@@ -533,10 +538,12 @@ class AnalogStore:
 
     def target_fields(self, field, time=None) -> xr.Dataset:
         """A field target's canonical fields regridded to the store grid (for figures)."""
+        from .sources import regrid_to
         lat, lon = self.grid
         return regrid_to(self._open_field(field, time)[self.fields], lat, lon)
 
     def _open_field(self, field, time) -> xr.Dataset:
+        from .sources import open_target
         if isinstance(field, xr.Dataset):
             dataset = field
         else:
@@ -582,6 +589,7 @@ class AnalogStore:
         return indexes[sequence]
 
     def _field_sequence_vector(self, field, target_time, vector, sequence) -> np.ndarray:
+        from .sources import open_target
         if isinstance(field, xr.Dataset):
             raise AnalogsInputError("a sequence match of a field needs its file (with the "
                                     "preceding days), not a Dataset")
@@ -607,6 +615,7 @@ class AnalogStore:
         return region
 
     def _regime_mask(self, regime) -> np.ndarray:
+        from .regimes import REGIME_LABELS
         if self.tags is None:
             raise AnalogsInputError(f"--regime {regime}: store {self.path} has no tags")
         known = sorted(self.tags["regime"].unique())
@@ -648,7 +657,6 @@ class AnalogStore:
 
     def _outcomes(self, analogs, target_time, window, region, weights, confidence,
                   kinds=None) -> dict:
-        days = pd.DatetimeIndex(pd.to_datetime(analogs["date"]))
         counts = self.daily_counts(region, kinds)
         analog_counts = counts.iloc[analogs["row"].to_numpy()]
         if target_time is not None and window is not None:
@@ -702,6 +710,7 @@ class AnalogStore:
                n_modes=None, region=None, months=None, threshold=0.3, n_resamples=500,
                kinds=None, progress=False) -> dict:
         """Leave-one-year-out hindcast scores, with the random-analog baseline beside them."""
+        from .hindcast import leave_one_year_out, score_hindcast
         threshold = check_float(threshold, "threshold", "verify", min_value=0.0, max_value=1.0)
         defaults = self.query_defaults
         top = defaults.get("top", DEFAULT_TOP) if top is None else top
@@ -729,6 +738,7 @@ class AnalogStore:
     def tune(self, *, tops=(10, 20, 30, 50), modes=(5, 10, 15, 20), window=DEFAULT_WINDOW,
              separation=DEFAULT_SEPARATION, region=None, months=None, kinds=None, progress=False):
         """Brier skill score of each (number of analogs, number of modes), best first."""
+        from .hindcast import tune
         modes = tuple(modes) + (int(self.eof.n_modes_),)
         return tune(self.pcs.values, self.times, self.observed(region, kinds), tops=tops, modes=modes,
                     window=window, separation=separation, months=months, progress=progress)
@@ -790,6 +800,8 @@ class AnalogStore:
         suggests a rebuild: the EOFs no longer describe them well. ``events`` replaces the
         events table. Returns a summary (days added, skipped, drift figures).
         """
+        from .regimes import tag_days
+        from .sources import open_archive
         config = self.manifest["config"]
         domain = config.get("domain")
         archive = open_archive(paths, fields=self.fields, region=domain, hour=config["hour"],
@@ -874,6 +886,7 @@ class AnalogStore:
         supervised classifier and adds ``learned_regime`` and ``learned_confidence``.
         Learned models are stored as arrays in ``models.nc`` (never pickled).
         """
+        from .regimes import KMeansRegimes, RegimeRules, RuleClassifier, SupervisedRegimes
         if self.tags is None:
             raise AnalogsInputError(f"store {self.path} has no tags; rebuild it with analogs build")
         tags = self.tags.copy()
