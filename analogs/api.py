@@ -143,7 +143,7 @@ def _dask_scheduler(address):
                                 "pip install 'analogs[distributed]'") from None
     try:
         if address == "local":
-            with LocalCluster(n_workers=2, threads_per_worker=1, dashboard_address=None) as cluster, \
+            with LocalCluster(n_workers=2, threads_per_worker=1, dashboard_address=":0") as cluster, \
                     Client(cluster):
                 yield
         else:

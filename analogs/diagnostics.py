@@ -878,13 +878,20 @@ def _block_columns(z, dewpoint, pwat, *, lat, lon, lat_in, lon_in, weights, band
     return columns
 
 
+#: Working memory of the diagnostics of a whole archive, bytes (all threads together).
+DIAGNOSTICS_MEMORY_BYTES = 10**9
+#: Working memory per grid point and day of a block, bytes (measured: 5.4 MB a day at
+#: 140 x 280 points, the float64 fields, gradients and closed-low search together).
+_BYTES_PER_POINT_DAY = 140
+
+
 def compute_diagnostics(ds: xr.Dataset, region, *, upstream_deg: float = 25.0,
                         downstream_deg: float = 15.0, trough_west_deg: float = 15.0,
                         poleward_deg: float = 0.0,
                         tc_near_km: float = 600.0,
                         closed_lows: Mapping | None = None,
                         moist_threshold_c: float = SEVERE_DEWPOINT_C,
-                        block_days: int = 1000, n_threads: int | None = None,
+                        block_days: int | None = None, n_threads: int | None = None,
                         progress: bool = False) -> pd.DataFrame:
     r"""All regime diagnostics of an archive over a region, one row a day.
 
@@ -919,7 +926,9 @@ def compute_diagnostics(ds: xr.Dataset, region, *, upstream_deg: float = 25.0,
 
     The archive is walked in blocks of ``block_days`` (dask-backed inputs compute one
     block at a time), ``n_threads`` blocks at once (default: the CPU count, at most
-    4); all maths is vectorised over the days of a block.
+    4); all maths is vectorised over the days of a block. By default a block holds as
+    many days as fit :data:`DIAGNOSTICS_MEMORY_BYTES` shared by the threads (at most
+    1000): 1000 days at 1 degree, about 90 at 0.25 degree.
     """
     if not isinstance(ds, xr.Dataset) or "z500" not in ds:
         raise AnalogsInputError(
@@ -959,9 +968,13 @@ def compute_diagnostics(ds: xr.Dataset, region, *, upstream_deg: float = 25.0,
         z = np.asarray(block["z500"].transpose("time", "lat", "lon").values, dtype=float)
         return _block_columns(z, *_moisture_block(block), **setup)
 
+    threads = n_threads or min(os.cpu_count() or 1, 4)
+    if block_days is None:
+        per_day = _BYTES_PER_POINT_DAY * lat.size * lon.size
+        block_days = int(min(1000, max(1, DIAGNOSTICS_MEMORY_BYTES // (threads * per_day))))
     starts = range(0, times.size, block_days)
     # numpy and scipy.ndimage release the GIL in the heavy loops: threads overlap blocks.
-    workers = min(len(starts), n_threads or min(os.cpu_count() or 1, 4))
+    workers = min(len(starts), threads)
     with ThreadPoolExecutor(max_workers=max(workers, 1)) as pool:
         results = pool.map(one_block, starts)
         if progress:

@@ -134,8 +134,6 @@ def child_build(spec: dict) -> dict:
     from analogs.outcomes import Region
 
     chunks = {"time": spec["chunk_days"]} if spec.get("chunk_days") else None
-    if spec.get("proposed_fixes"):
-        _apply_proposed_fixes()
     started = time.perf_counter()
     store = build_store(spec["files"], spec["store"], events=spec.get("events"),
                         region=Region.box(*reanalysis_demo.CENTRAL_REGION), chunks=chunks,
@@ -146,33 +144,6 @@ def child_build(spec: dict) -> dict:
             "solver": store.eof.solver_, "n_modes": int(store.eof.n_modes_),
             "eigenvalues": store.eof.eigenvalues_.values.tolist(),
             "n_days": int(len(store.times))}
-
-
-#: Days per regime-diagnostics block under --proposed-fixes at the large grid: about
-#: 5.4 MB per day at 140 x 280 points were measured, two blocks run at once.
-PROPOSED_BLOCK_BYTES = 1.0e9
-MEASURED_DIAGNOSTIC_BYTES_PER_POINT_DAY = 140
-
-
-def _apply_proposed_fixes():
-    """Stand-ins, for measurement only, of the changes proposed for files this
-    benchmark's owner does not own (see the report): a small HDF5 chunk cache for the
-    archive files (sources.py) and regime-diagnostics blocks sized to the grid (api.py)."""
-    import functools
-
-    import netCDF4
-
-    import analogs.api
-    from analogs.regimes import tag_days
-
-    netCDF4.set_chunk_cache(8 * 2 ** 20, 1000, 0.75)
-
-    def sized_tag_days(ds, region, **options):
-        points = ds.sizes["lat"] * ds.sizes["lon"]
-        block = max(1, int(PROPOSED_BLOCK_BYTES / (MEASURED_DIAGNOSTIC_BYTES_PER_POINT_DAY * points)))
-        return tag_days(ds, region, block_days=min(1000, block), **options)
-
-    analogs.api.tag_days = functools.wraps(tag_days)(sized_tag_days)
 
 
 def anomaly_matrix(files):
@@ -346,8 +317,7 @@ def bench_size(size: str, out: Path, args) -> dict:
     builds = {}
     for path in BUILD_PATHS[size]:
         spec = {"files": files, "store": str(size_dir / f"store_{path}"), "events": events,
-                "chunk_days": CHUNK_DAYS if path == "chunked" else None,
-                "proposed_fixes": args.proposed_fixes}
+                "chunk_days": CHUNK_DAYS if path == "chunked" else None}
         builds[path] = run_child("build", spec)
         builds[path]["load_average"] = load_average()
     result["builds"] = builds
@@ -368,7 +338,7 @@ def bench_size(size: str, out: Path, args) -> dict:
                             f"baselines run on the first {years} years, with our build timed "
                             "on the same subset for the ratio")
         subset = {"files": base_files, "store": str(size_dir / "store_subset"), "events": events,
-                  "chunk_days": CHUNK_DAYS, "proposed_fixes": args.proposed_fixes}
+                  "chunk_days": CHUNK_DAYS}
         baseline["our_build_on_subset"] = run_child("build", subset)
         ours_for_ratio = baseline["our_build_on_subset"]
     else:
@@ -430,9 +400,6 @@ def main(argv=None):
     parser.add_argument("--out", type=Path, help="work directory (archives, stores, JSON)")
     parser.add_argument("--queries", type=int, default=200)
     parser.add_argument("--cli-runs", type=int, default=5)
-    parser.add_argument("--proposed-fixes", action="store_true",
-                        help="apply, in the build processes only, stand-ins of the fixes "
-                             "proposed for sources.py / api.py (chunk cache, tag block size)")
     parser.add_argument("--child", choices=sorted(CHILD_TASKS), help=argparse.SUPPRESS)
     parser.add_argument("--spec", help=argparse.SUPPRESS)
     args = parser.parse_args(argv)
@@ -445,7 +412,7 @@ def main(argv=None):
         parser.error(f"--sizes: unknown size(s) {', '.join(unknown)}; expected small, medium, large")
     out = args.out or Path(tempfile.mkdtemp(prefix="analogs-scale-"))
     out.mkdir(parents=True, exist_ok=True)
-    results = {"cpu_count": os.cpu_count(), "proposed_fixes": args.proposed_fixes, "sizes": {}}
+    results = {"cpu_count": os.cpu_count(), "sizes": {}}
     for size in sizes:
         results["sizes"][size] = bench_size(size, out, args)
     largest = sizes[-1]
