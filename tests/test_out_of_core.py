@@ -142,6 +142,33 @@ def test_analogs_match_sklearn_brute_force(chunked):
         np.testing.assert_allclose(result["distance"], distances[0], rtol=1e-5)
 
 
+def test_distributed_eof_solve_matches_threaded(small_archive):
+    """The streamed randomized SVD (the heavy dask work of an out-of-core build) run on a
+    dask.distributed cluster gives the threaded scheduler's eigenvalues and PCs, and
+    both match numpy's full SVD (default suite; the whole build through a cluster is
+    checked by the slow tests below)."""
+    distributed = pytest.importorskip("distributed")
+    from analogs.climatology import HarmonicClimatology
+    from analogs.eof import MultivariateEOF
+    from analogs.sources import open_archive
+
+    _, files = small_archive
+    archive = open_archive(files, chunks={"time": CHUNK_DAYS})
+    anomalies = HarmonicClimatology().fit(archive).transform(archive)
+    threaded = MultivariateEOF(8, solver="randomized").fit(anomalies)
+    with distributed.LocalCluster(n_workers=1, threads_per_worker=2, processes=False,
+                                  dashboard_address=":0") as cluster, \
+            distributed.Client(cluster):
+        clustered = MultivariateEOF(8, solver="randomized").fit(anomalies)
+    np.testing.assert_allclose(clustered.eigenvalues_.values, threaded.eigenvalues_.values,
+                               rtol=1e-8)
+    pcs_t, pcs_c = threaded.pcs_.values.T, clustered.pcs_.values.T
+    np.testing.assert_allclose(_matched_signs(pcs_t, pcs_c), pcs_t,
+                               atol=1e-8 * np.abs(pcs_t).max())
+    np.testing.assert_allclose(threaded.eigenvalues_.values,
+                               _exact_eigenvalues(files)[:8], rtol=1e-6)
+
+
 @pytest.mark.slow
 def test_distributed_scheduler_matches_threaded(small_archive, chunked):
     """A build through a dask.distributed scheduler address (an in-process cluster, the
@@ -149,7 +176,7 @@ def test_distributed_scheduler_matches_threaded(small_archive, chunked):
     100 s at load 7 on 2 cores (per-compute scheduler overhead, see the report)."""
     distributed = pytest.importorskip("distributed")
     with distributed.LocalCluster(n_workers=1, threads_per_worker=2, processes=False,
-                                  dashboard_address=None) as cluster:
+                                  dashboard_address=":0") as cluster:
         result = _build(small_archive, "store_address", chunks={"time": CHUNK_DAYS},
                         scheduler=cluster.scheduler_address)
     _assert_same_eofs(chunked, result)
