@@ -264,7 +264,8 @@ def test_analog_weights_schemes():
     inverse = 1 / (d + 0.3)
     np.testing.assert_allclose(analog_weights(d, "inverse_distance"), inverse / inverse.sum())
     assert effective_sample_size(analog_weights(d)) == pytest.approx(5.0)
-    assert 1 < effective_sample_size(analog_weights(d, "inverse_distance")) < 5
+    kish = inverse.sum() ** 2 / (inverse ** 2).sum()
+    assert effective_sample_size(analog_weights(d, "inverse_distance")) == pytest.approx(kish)
     with pytest.raises(AnalogsInputError, match=r"'scheme' parameter of analog_weights"):
         analog_weights(d, "rank")
     with pytest.raises(AnalogsInputError, match=r"'distances' parameter of analog_weights"):
