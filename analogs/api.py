@@ -510,7 +510,7 @@ class AnalogStore:
             restrict = self._regime_mask(regime)
         index = self.index
         if sequence:
-            vectors, complete = self.sequence_vectors(sequence)
+            complete = self.sequence_vectors(sequence)[1]
             restrict = complete if restrict is None else restrict & complete
             index = self._sequence_index(sequence)
         else:

@@ -2,7 +2,6 @@
 
 import shutil
 
-import numpy as np
 import pandas as pd
 import pytest
 import xarray as xr

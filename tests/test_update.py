@@ -3,7 +3,6 @@
 import hashlib
 
 import numpy as np
-import pandas as pd
 import pytest
 import xarray as xr
 
