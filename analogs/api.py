@@ -170,7 +170,7 @@ def _build(paths, store, *, events, fields, n_modes, variance, region, domain, h
     eof = MultivariateEOF(n_modes, variance=variance, solver=solver,
                           field_weights=field_weights).fit(anomalies)
     pcs = eof.pcs_
-    errors = eof.reconstruction_error(anomalies).values
+    errors = eof.training_error_.values
     tags = tag_days(archive, _diagnostic_region(region, archive), progress=progress)
 
     times = pd.DatetimeIndex(archive["time"].values)

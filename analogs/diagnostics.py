@@ -49,7 +49,7 @@ from .constants import (
     ZERO_CELSIUS_K,
 )
 from .errors import AnalogsInputError
-from .geo import great_circle_km, spherical_gradient
+from .geo import great_circle_km, meridional_derivative, spherical_gradient, zonal_derivative
 
 __all__ = [
     "coriolis_parameter",
@@ -197,8 +197,8 @@ def _geostrophic_np(z, lat, lon, gradient=None):
 
 
 def _vorticity_np(u, v, lat, lon):
-    dv_dx, _ = spherical_gradient(v, lat, lon)
-    _, du_dy = spherical_gradient(u, lat, lon)
+    dv_dx = zonal_derivative(v, lat, lon)
+    du_dy = meridional_derivative(u, lat)
     metric = np.tan(np.radians(lat))[:, None] / EARTH_RADIUS
     return dv_dx - du_dy + u * metric
 

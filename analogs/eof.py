@@ -203,18 +203,21 @@ class MultivariateEOF:
             data = data.rechunk({1: -1, 2: -1})
         return data.reshape(n_time, -1)
 
-    def _scaled_blocks(self, ds: xr.Dataset):
-        """Per field, the (time, valid space) block of M, numpy or dask."""
+    def _scaled_blocks(self, ds: xr.Dataset, dtype=np.float64):
+        """Per field, the (time, valid space) block of M in ``dtype``, numpy or dask."""
         blocks = []
         for field in self.fields_:
             raw = self._flat(ds[field])
             valid = self._valid[field]
-            factor = self._point_factor[field]
-            blocks.append((raw[:, valid] - self._means[field][valid]) * factor[valid])
+            if not valid.all():
+                raw = raw[:, valid]
+            mean = self._means[field][valid].astype(dtype)
+            factor = self._point_factor[field][valid].astype(dtype)
+            blocks.append((raw.astype(dtype, copy=False) - mean) * factor)
         return blocks
 
-    def _matrix(self, ds: xr.Dataset):
-        blocks = self._scaled_blocks(ds)
+    def _matrix(self, ds: xr.Dataset, dtype=np.float64):
+        blocks = self._scaled_blocks(ds, dtype)
         if any(_is_dask(b) for b in blocks):
             import dask.array as da
 
@@ -222,7 +225,7 @@ class MultivariateEOF:
         return np.concatenate(blocks, axis=1)
 
     def _preprocess(self, ds: xr.Dataset) -> None:
-        """Learn means, NaN masks, area weights and field scales (two data passes)."""
+        """Learn means, NaN masks, area weights and field scales (one data pass)."""
         self.fields_ = self._fields_of(ds)
         for field in self.fields_:
             if "time" not in ds[field].dims:
@@ -248,25 +251,34 @@ class MultivariateEOF:
         point_weight = np.repeat(lat_weight, self.lon_.size)
         self._field_attrs = {f: dict(ds[f].attrs) for f in self.fields_}
 
-        means, nan_counts = {}, {}
+        # One pass over the data: per point the NaN count, and the mean and sum of
+        # squares of the values shifted by the first time's (shifted data keep
+        # sum (x - mean)^2 = sum (x - x0)^2 - N (mean - x0)^2 free of cancellation).
+        shifted_means, nan_counts, squares, origins = {}, {}, {}, {}
         for field in self.fields_:
             raw = self._flat(ds[field])
-            means[field] = raw.mean(axis=0)
+            raw = raw.astype(np.float64) if raw.dtype != np.float64 else raw
+            origins[field] = raw[0]
+            shifted = raw - raw[0]
+            shifted_means[field] = shifted.mean(axis=0)
             nan_counts[field] = np.isnan(raw).sum(axis=0)
-        means, nan_counts = _compute(means, nan_counts)
+            squares[field] = (shifted * shifted).sum(axis=0)
+        shifted_means, nan_counts, squares, origins = _compute(
+            shifted_means, nan_counts, squares, origins)
         self._valid = {f: nan_counts[f] == 0 for f in self.fields_}
-        self._means = {f: np.where(self._valid[f], means[f], np.nan) for f in self.fields_}
+        self._means = {f: np.where(self._valid[f], origins[f] + shifted_means[f], np.nan)
+                       for f in self.fields_}
 
         sums = {}
         for field in self.fields_:
-            if not self._valid[field].any():
+            valid = self._valid[field]
+            if not valid.any():
                 raise AnalogsInputError(
                     f"Field {field!r} given to MultivariateEOF.fit is missing (NaN) at every grid point."
                 )
-            raw = self._flat(ds[field])[:, self._valid[field]]
-            centred = (raw - self._means[field][self._valid[field]]) * point_weight[self._valid[field]]
-            sums[field] = (centred ** 2).sum()
-        (sums,) = _compute(sums)
+            centred_squares = np.maximum(
+                squares[field][valid] - self.n_time_ * shifted_means[field][valid] ** 2, 0.0)
+            sums[field] = float(np.sum(point_weight[valid] ** 2 * centred_squares))
         user = {f: float((self.field_weights or {}).get(f, 1.0)) for f in self.fields_}
         scales = {}
         for field in self.fields_:
@@ -289,23 +301,31 @@ class MultivariateEOF:
         """Fit the EOFs of ``anomalies`` (Dataset of fields with dims (time, lat, lon))."""
         self._validate_params()
         self._preprocess(anomalies)
-        matrix = self._matrix(anomalies)
-        n_time, n_space = matrix.shape
+        n_time = self.n_time_
+        n_space = int(sum(self._valid[f].sum() for f in self.fields_))
         rank = min(n_time, n_space)
         wanted = (self.n_modes if self.n_modes is not None
                   else None if self.variance is not None else DEFAULT_N_MODES)
         solver = self.solver
         if solver == "auto":
             solver = "exact" if rank <= AUTO_EXACT_MAX_DIM else "randomized"
+        if solver == "randomized" and min(wanted or DEFAULT_N_MODES, rank) + self.n_oversamples >= rank:
+            solver = "exact"
         total_ss = self.total_variance_ * (n_time - 1)
+        # The randomized solver works in float32, the precision of the faiss index the
+        # PCs feed: half the memory and twice the BLAS speed of float64, with
+        # eigenvalues equal to the float64 ones to about 1e-6.
+        matrix = self._matrix(anomalies, np.float32 if solver == "randomized" else np.float64)
+        row_energy = None
 
         if solver == "randomized":
             k = min(wanted if wanted is not None else DEFAULT_N_MODES, rank)
             while True:
                 if k + self.n_oversamples >= rank:
                     solver = "exact"
+                    matrix = self._matrix(anomalies)
                     break
-                u, s, vt = self._randomized_svd(matrix, k)
+                u, s, vt, row_energy = self._randomized_svd(matrix, k)
                 fractions = s ** 2 / total_ss
                 if wanted is not None or np.cumsum(fractions)[-1] >= self.variance:
                     break
@@ -314,6 +334,7 @@ class MultivariateEOF:
             import scipy.linalg  # imported here: loading a store for queries never solves
 
             dense = np.asarray(matrix.compute() if _is_dask(matrix) else matrix)
+            row_energy = _row_energy(dense)
             try:
                 u, s, vt = scipy.linalg.svd(dense, full_matrices=False)
             except np.linalg.LinAlgError:
@@ -325,27 +346,31 @@ class MultivariateEOF:
             k = int(np.argmax(reached)) + 1 if reached.any() else s.size
         else:
             k = min(wanted, s.size)
-        u, s, vt = u[:, :k], s[:k], vt[:k]
+        u, s, vt = u[:, :k].astype(np.float64), s[:k].astype(np.float64), vt[:k].astype(np.float64)
         # Deterministic signs: largest-|loading| element of each pattern positive.
         flip = np.sign(vt[np.arange(k), np.argmax(np.abs(vt), axis=1)])
         flip[flip == 0] = 1.0
         self._components = vt * flip[:, None]
         self._singular_values = s.copy()
         self._pcs = u * (s * flip)[None, :]
+        # ||r||^2 = ||m||^2 - ||m V||^2 for orthonormal V: the training residuals
+        # without a second pass over the data.
+        self._training_residual = np.maximum(row_energy - (self._pcs ** 2).sum(axis=1), 0.0)
         self.n_modes_ = int(k)
         self.solver_ = solver
         return self
 
     def _randomized_svd(self, matrix, k: int):
+        """(U, S, V^T, squared norm of each row of ``matrix``)."""
         if _is_dask(matrix):
             return _streamed_randomized_svd(matrix, k, n_oversamples=self.n_oversamples,
                                             n_power_iter=self.n_power_iter,
                                             seed=self.random_state)
         from sklearn.utils.extmath import randomized_svd
 
-        return randomized_svd(matrix, k, n_oversamples=self.n_oversamples,
-                              n_iter=self.n_power_iter, random_state=self.random_state,
-                              flip_sign=False)
+        return (*randomized_svd(matrix, k, n_oversamples=self.n_oversamples,
+                                n_iter=self.n_power_iter, random_state=self.random_state,
+                                flip_sign=False), _row_energy(matrix))
 
     def _check_fitted(self) -> None:
         if not hasattr(self, "_components"):
@@ -540,13 +565,27 @@ class MultivariateEOF:
         matrix = self._matrix(anomalies)
         self._check_coverage(matrix)
         residual = matrix - (matrix @ self._components.T) @ self._components
+        error = self._error_array((residual ** 2).sum(axis=1), anomalies["time"].values)
+        return error.isel(time=0, drop=True) if squeeze else error
+
+    @property
+    def training_error_(self) -> xr.DataArray:
+        """:meth:`reconstruction_error` of every training time, kept from the fit (the
+        data are not read again)."""
+        self._check_fitted()
+        if getattr(self, "_training_residual", None) is None:
+            raise NotFittedError(
+                "This MultivariateEOF was loaded from a dataset without the training "
+                "residuals; use reconstruction_error(anomalies) to compute them."
+            )
+        return self._error_array(self._training_residual, self.time_.copy())
+
+    def _error_array(self, residual_energy, time) -> xr.DataArray:
         norm = sum(float(np.sum((self._lat_weight.repeat(self.lon_.size)[self._valid[f]] ** 2)
                                 * self._user_weights[f])) for f in self.fields_)
-        error = xr.DataArray(np.sqrt((residual ** 2).sum(axis=1) / norm), dims="time",
-                             coords={"time": anomalies["time"].values},
-                             attrs={"units": "1", "long_name": "weighted RMS reconstruction error "
-                                                               "(in units of the field scales)"})
-        return error.isel(time=0, drop=True) if squeeze else error
+        return xr.DataArray(np.sqrt(residual_energy / norm), dims="time", coords={"time": time},
+                            attrs={"units": "1", "long_name": "weighted RMS reconstruction error "
+                                                              "(in units of the field scales)"})
 
     # -- persistence -----------------------------------------------------------
     def to_dataset(self) -> xr.Dataset:
@@ -617,6 +656,7 @@ class MultivariateEOF:
         model.lon_ = np.asarray(ds["lon"].values, dtype=float)
         model.time_ = None
         model._pcs = None
+        model._training_residual = None
         model._field_attrs = {
             f: {k[len("field_"):]: v for k, v in ds[f"eof_{f}"].attrs.items() if k.startswith("field_")}
             for f in fields}
@@ -654,21 +694,38 @@ def _streamed_randomized_svd(matrix, k: int, *, n_oversamples: int, n_power_iter
     width = min(k + n_oversamples, n_time, n_space)
     row_chunks, column_chunks = matrix.chunks
 
+    dtype = matrix.dtype
+
     def times_matrix(right, chunks):
-        return np.asarray(dask.compute(matrix @ da.from_array(right, chunks=(chunks, width)))[0])
+        right = da.from_array(right.astype(dtype), chunks=(chunks, width))
+        return np.asarray(dask.compute(matrix @ right)[0])
 
     def matrix_transposed_times(left):
-        product = matrix.T @ da.from_array(left, chunks=(row_chunks, width))
+        product = matrix.T @ da.from_array(left.astype(dtype), chunks=(row_chunks, width))
         return np.asarray(dask.compute(product)[0])
 
     omega = np.random.default_rng(seed).standard_normal((n_space, width))
-    basis, _ = np.linalg.qr(times_matrix(omega, column_chunks))
+    # The first pass also sums each row's squares (the training residuals need them).
+    sample, row_energy = dask.compute(
+        matrix @ da.from_array(omega.astype(dtype), chunks=(column_chunks, width)),
+        (matrix.astype(np.float64) ** 2).sum(axis=1))
+    basis, _ = np.linalg.qr(np.asarray(sample))
     for _ in range(n_power_iter):
         basis_space, _ = np.linalg.qr(matrix_transposed_times(basis))
         basis, _ = np.linalg.qr(times_matrix(basis_space, column_chunks))
     projected = matrix_transposed_times(basis).T  # (width, n_space) = Q^T M
     u_small, s, vt = np.linalg.svd(projected, full_matrices=False)
-    return (basis @ u_small)[:, :k], s[:k], vt[:k]
+    return (basis @ u_small)[:, :k], s[:k], vt[:k], np.asarray(row_energy)
+
+
+def _row_energy(matrix: np.ndarray) -> np.ndarray:
+    """Sum of squares of each row, accumulated in float64, a block of rows at a time."""
+    energy = np.empty(matrix.shape[0])
+    step = max(1, 2 ** 22 // max(matrix.shape[1], 1))
+    for start in range(0, matrix.shape[0], step):
+        block = matrix[start:start + step].astype(np.float64)
+        energy[start:start + step] = np.einsum("ij,ij->i", block, block)
+    return energy
 
 
 def _compute(*dicts):

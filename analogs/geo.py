@@ -40,13 +40,30 @@ def spherical_gradient(field, lat, lon):
     Second-order centred differences inside, one-sided at the edges
     (``numpy.gradient``), as in MetPy's ``geospatial_gradient`` on a sphere.
     """
+    return zonal_derivative(field, lat, lon), meridional_derivative(field, lat)
+
+
+def zonal_derivative(field, lat, lon):
+    """:math:`\\frac{1}{a\\cos\\phi}\\partial/\\partial\\lambda` of ``field`` (..., nlat, nlon),
+    per metre: the x part of :func:`spherical_gradient` alone."""
+    d_dlam = _axis_derivative(field, np.radians(np.asarray(lon, dtype=float)), -1)
+    return d_dlam / (EARTH_RADIUS * np.cos(np.radians(np.asarray(lat, dtype=float)))[:, None])
+
+
+def meridional_derivative(field, lat):
+    """:math:`\\frac{1}{a}\\partial/\\partial\\phi` of ``field`` (..., nlat, nlon), per
+    metre: the y part of :func:`spherical_gradient` alone."""
+    return _axis_derivative(field, np.radians(np.asarray(lat, dtype=float)), -2) / EARTH_RADIUS
+
+
+def _axis_derivative(field, coordinate, axis):
+    """``numpy.gradient`` along one axis; with the scalar spacing of an evenly spaced
+    axis (several times faster than numpy's uneven-spacing formula, same values)."""
     field = np.asarray(field, dtype=float)
-    phi = np.radians(np.asarray(lat, dtype=float))
-    lam = np.radians(np.asarray(lon, dtype=float))
-    d_dphi = np.gradient(field, phi, axis=-2)
-    d_dlam = np.gradient(field, lam, axis=-1)
-    cos_phi = np.cos(phi)[:, None]
-    return d_dlam / (EARTH_RADIUS * cos_phi), d_dphi / EARTH_RADIUS
+    step = np.diff(coordinate)
+    if step.size and np.allclose(step, step[0], rtol=1e-9, atol=0.0):
+        return np.gradient(field, float(step[0]), axis=axis)
+    return np.gradient(field, coordinate, axis=axis)
 
 
 def initial_bearing_deg(lat1, lon1, lat2, lon2):

@@ -11,13 +11,13 @@ drawn from the same candidates (same N, same window).
 
 from __future__ import annotations
 
+import faiss
 import numpy as np
 import pandas as pd
 from tqdm.auto import tqdm
 
 from ._validation import check_choice, check_float, check_int
 from .errors import AnalogsInputError
-from .index import AnalogIndex
 from .query import circular_day_gap, day_numbers, decluster_days, fetch_size
 from .verify import bootstrap_interval, brier_skill_score, roc_auc, verification_summary
 
@@ -63,10 +63,13 @@ def leave_one_year_out(pcs, times, observed, *, top=20, window=45, separation=3,
         raise AnalogsInputError("a leave-one-year-out hindcast needs an archive of at least two years")
     day_of_year = times.day_of_year.to_numpy()
     days = day_numbers(times)
+    year_code = years - years.min()
+    n_years = int(year_code.max()) + 1
     targets = np.ones(len(times), dtype=bool)
     if months is not None:
         targets &= np.isin(times.month, list(months))
-    index = AnalogIndex(kind="flat").fit(pcs) if method == "analogs" else None
+    vectors = np.ascontiguousarray(pcs, dtype=np.float32)
+    faiss.omp_set_num_threads(1)  # batches of a few dozen queries: threads cost more
     rng = np.random.default_rng(seed)
     forecast = np.full(len(times), np.nan)
     climatology = np.full(len(times), np.nan)
@@ -75,22 +78,30 @@ def leave_one_year_out(pcs, times, observed, *, top=20, window=45, separation=3,
     for day in tqdm(calendar_days, desc="hindcast", unit="calendar day", disable=not progress):
         queries = np.flatnonzero(targets & (day_of_year == day))
         season = np.flatnonzero(circular_day_gap(day_of_year, day) <= window)
-        season_years = years[season]
-        own_year_max = np.max(np.unique(season_years, return_counts=True)[1])
-        if index is not None:
-            # Fetch enough to survive removing the target's own year and de-clustering.
-            fetch = fetch_size(top, separation, len(season), extra=own_year_max)
-            distances, ids = index.search(pcs[queries], fetch, allowed=season)
+        season_codes = year_code[season]
+        # Climatology of the other years: the season's totals less each target's own year.
+        days_by_year = np.bincount(season_codes, minlength=n_years)
+        events_by_year = np.bincount(season_codes, weights=observed[season], minlength=n_years)
+        n_others = season.size - days_by_year[year_code[queries]]
+        n_events = events_by_year.sum() - events_by_year[year_code[queries]]
+        with np.errstate(invalid="ignore", divide="ignore"):
+            climatology[queries] = np.where(n_others > 0, n_events / n_others, np.nan)
+        if method == "analogs":
+            # Exact search over this day's season only (faiss brute force on the subset:
+            # the same neighbours as the flat index with an ID selector, without
+            # scanning the other seasons). Fetch enough to survive removing the
+            # target's own year and de-clustering.
+            fetch = fetch_size(top, separation, season.size, extra=int(days_by_year.max()))
+            _, local = faiss.knn(vectors[queries], vectors[season], fetch)
         for position, row in enumerate(queries):
-            others = season[season_years != years[row]]
-            if others.size == 0:
+            if n_others[position] == 0:
                 continue
-            climatology[row] = observed[others].mean()
-            if index is None:
+            if method == "random":
+                others = season[season_codes != year_code[row]]
                 chosen = rng.choice(others, size=min(top, others.size), replace=False)
             else:
-                neighbours = ids[position]
-                neighbours = neighbours[(neighbours >= 0) & (years[neighbours] != years[row])]
+                neighbours = season[local[position][local[position] >= 0]]
+                neighbours = neighbours[year_code[neighbours] != year_code[row]]
                 chosen = neighbours[decluster_days(days[neighbours], separation, limit=top)]
             if chosen.size:
                 forecast[row] = observed[chosen].mean()

@@ -106,12 +106,13 @@ def decluster(times, separation_days, limit=None):
 def decluster_days(days, separation_days, limit=None):
     """:func:`decluster` on integer day numbers (see :func:`day_numbers`)."""
     kept: list[int] = []
-    kept_days: list[int] = []
+    shadowed: set[int] = set()  # days within the separation of a kept day
     for position, day in enumerate(np.asarray(days).tolist()):
-        if separation_days > 0 and any(abs(k - day) <= separation_days for k in kept_days):
+        if day in shadowed:
             continue
         kept.append(position)
-        kept_days.append(day)
+        if separation_days > 0:
+            shadowed.update(range(day - separation_days, day + separation_days + 1))
         if limit is not None and len(kept) >= limit:
             break
     return np.asarray(kept, dtype=np.int64)

@@ -186,6 +186,35 @@ def test_fit_transform_reconstruct_and_signs():
     assert np.all(model.reconstruction_error(ds).values > 0)
 
 
+@pytest.mark.parametrize("solver, chunked, nan_box", [
+    ("exact", False, False), ("randomized", False, True), ("randomized", True, True)])
+def test_training_error_equals_reconstruction_error(solver, chunked, nan_box):
+    """The residuals the fit keeps (||m||^2 - ||m V||^2, no second data pass) equal
+    the explicit residual m - m V V^T of every training day (definition above)."""
+    ds = _synthetic(n_time=700, n_lat=20, n_lon=30, nan_box=nan_box)
+    if chunked:
+        ds = ds.chunk({"time": 128})
+    model = MultivariateEOF(n_modes=8, solver=solver).fit(ds)
+    explicit = model.reconstruction_error(ds)
+    # The randomized solve is float32 and these residuals are ~1e-5 of each day's
+    # energy, so ||m||^2 - ||m V||^2 keeps about 3 digits of them.
+    np.testing.assert_allclose(model.training_error_, explicit,
+                               rtol=1e-10 if solver == "exact" else 1e-3)
+    np.testing.assert_array_equal(model.training_error_["time"], ds["time"])
+
+
+def test_scales_survive_a_large_mean():
+    """Field scales come from sum (x - mean)^2 by shifted sums: a field offset by
+    5,500 gpm (raw heights, not anomalies) gets the same scale as its anomalies
+    (a naive sum x^2 - N mean^2 would lose most digits)."""
+    ds = _synthetic()
+    raw = ds.assign(z500=ds["z500"] + 5500.0)
+    a = MultivariateEOF(n_modes=3, solver="exact").fit(ds)
+    b = MultivariateEOF(n_modes=3, solver="exact").fit(raw)
+    np.testing.assert_allclose(b.field_scales_, a.field_scales_, rtol=1e-10)
+    np.testing.assert_allclose(b.eigenvalues_, a.eigenvalues_, rtol=1e-8)
+
+
 def test_reconstruction_error_matches_definition():
     """Weighted RMS of the residual (docstring formula) with numpy."""
     ds = _synthetic()

@@ -54,14 +54,16 @@ def _matched_signs(reference, other):
 
 
 def _assert_same_eofs(a, b):
-    np.testing.assert_allclose(b.eof.eigenvalues_.values, a.eof.eigenvalues_.values, rtol=1e-6)
+    # Both paths solve in float32 (the precision of the faiss index): agreement to
+    # a few units of float32 round-off.
+    np.testing.assert_allclose(b.eof.eigenvalues_.values, a.eof.eigenvalues_.values, rtol=1e-5)
     for field in a.eof.fields_:
         pa = np.nan_to_num(a.eof.eofs_[field].values.reshape(a.eof.n_modes_, -1))
         pb = np.nan_to_num(b.eof.eofs_[field].values.reshape(b.eof.n_modes_, -1))
-        np.testing.assert_allclose(_matched_signs(pa, pb), pa, atol=1e-6)
+        np.testing.assert_allclose(_matched_signs(pa, pb), pa, atol=1e-5)
     pcs_a, pcs_b = a.pcs.values.T, b.pcs.values.T
     scale = np.abs(pcs_a).max()
-    np.testing.assert_allclose(_matched_signs(pcs_a, pcs_b) / scale, pcs_a / scale, atol=1e-6)
+    np.testing.assert_allclose(_matched_signs(pcs_a, pcs_b) / scale, pcs_a / scale, atol=1e-5)
 
 
 def _assert_same_analogs(a, b):
@@ -120,7 +122,7 @@ def test_out_of_core_matches_in_memory(small_archive, in_memory, chunked):
     # Against numpy's full SVD (outside reference): leading eigenvalues of both paths.
     exact = _exact_eigenvalues(small_archive[1])
     k = 10
-    np.testing.assert_allclose(chunked.eof.eigenvalues_.values[:k], exact[:k], rtol=1e-6)
+    np.testing.assert_allclose(chunked.eof.eigenvalues_.values[:k], exact[:k], rtol=1e-5)
 
 
 def test_analogs_match_sklearn_brute_force(chunked):
