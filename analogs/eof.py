@@ -254,21 +254,21 @@ class MultivariateEOF:
         point_weight = np.repeat(lat_weight, self.lon_.size)
         self._field_attrs = {f: dict(ds[f].attrs) for f in self.fields_}
 
-        # One pass over the data: per point the NaN count, and the mean and sum of
+        # One pass over the data: per point the NaN count, and the sum and sum of
         # squares of the values shifted by the first time's (shifted data keep
         # sum (x - mean)^2 = sum (x - x0)^2 - N (mean - x0)^2 free of cancellation).
-        shifted_means, nan_counts, squares, origins = {}, {}, {}, {}
+        # Each chunk goes through one task that returns its three small sums, so a
+        # chunk is read, reduced and freed before the next; one field at a time
+        # (measured: computed together, the two fields' anomaly chunks were all held
+        # at once, 4.6 GB at 40 years x 0.25 degree).
+        moments, origins = {}, {}
         for field in self.fields_:
             raw = self._flat(ds[field])
-            raw = raw.astype(np.float64) if raw.dtype != np.float64 else raw
-            origins[field] = raw[0]
-            shifted = raw - raw[0]
-            shifted_means[field] = shifted.mean(axis=0)
-            nan_counts[field] = np.isnan(raw).sum(axis=0)
-            squares[field] = (shifted * shifted).sum(axis=0)
-        shifted_means, nan_counts, squares, origins = _compute(
-            shifted_means, nan_counts, squares, origins)
-        self._valid = {f: nan_counts[f] == 0 for f in self.fields_}
+            origins[field] = _computed(raw[0]).astype(np.float64)
+            moments[field] = _computed(_column_moments(raw, origins[field]))
+        self._valid = {f: moments[f][0] == 0 for f in self.fields_}
+        shifted_means = {f: moments[f][1] / self.n_time_ for f in self.fields_}
+        squares = {f: moments[f][2] for f in self.fields_}
         self._means = {f: np.where(self._valid[f], origins[f] + shifted_means[f], np.nan)
                        for f in self.fields_}
 
@@ -725,6 +725,28 @@ def _randomized_svd(matrix, k: int, *, n_oversamples: int, n_power_iter: int, se
     return (basis @ u_small)[:, :k], s[:k], vt[:k], row_energy
 
 
+def _block_moments(block, origin):
+    """(3, n) sums of one block of rows: NaN count, sum and sum of squares of
+    ``block - origin`` (float64)."""
+    shifted = np.asarray(block, dtype=np.float64) - origin
+    return np.stack([np.isnan(shifted).sum(axis=0), shifted.sum(axis=0),
+                     np.einsum("ij,ij->j", shifted, shifted)])
+
+
+def _column_moments(raw, origin):
+    """:func:`_block_moments` of a whole (time, space) array, numpy or dask: summed
+    over blocks of rows, each block reduced by one task (dask) or in turn (numpy), so
+    no full-size temporary is made."""
+    if _is_dask(raw):
+        n_blocks = len(raw.chunks[0])
+        per_block = raw.map_blocks(_block_moments, origin, chunks=((3,) * n_blocks, raw.chunks[1]),
+                                   dtype=np.float64, meta=np.empty((0, 0)))
+        return per_block.reshape(n_blocks, 3, raw.shape[1]).sum(axis=0)
+    step = max(1, 2 ** 22 // max(raw.shape[1], 1))
+    return sum(_block_moments(raw[start:start + step], origin)
+               for start in range(0, raw.shape[0], step))
+
+
 def _row_energy(matrix: np.ndarray) -> np.ndarray:
     """Sum of squares of each row, accumulated in float64, a block of rows at a time."""
     energy = np.empty(matrix.shape[0])
@@ -735,14 +757,6 @@ def _row_energy(matrix: np.ndarray) -> np.ndarray:
     return energy
 
 
-def _compute(*dicts):
-    """Compute the dask values of several dicts in one pass; numpy passes through."""
-    lazy = [(i, k) for i, d in enumerate(dicts) for k, v in d.items() if _is_dask(v)]
-    if lazy:
-        import dask
-
-        values = dask.compute(*[dicts[i][k] for i, k in lazy])
-        dicts = [dict(d) for d in dicts]
-        for (i, k), v in zip(lazy, values):
-            dicts[i][k] = v
-    return [{k: np.asarray(v) for k, v in d.items()} for d in dicts]
+def _computed(array) -> np.ndarray:
+    """``array`` as numpy, computing it first if it is a dask array."""
+    return np.asarray(array.compute() if _is_dask(array) else array)

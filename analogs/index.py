@@ -15,6 +15,12 @@ from ._validation import check_choice, check_int
 from .errors import NotFittedError
 
 INDEX_KINDS = ("auto", "flat", "hnsw")
+#: Below this share of allowed vectors a filtered search ranks the allowed vectors
+#: alone, exactly (faiss brute force on the subset): cheaper than scanning every vector
+#: through a selector, and exact where a filtered HNSW walk loses recall (measured:
+#: recall@10 0.48 with 0.5 % of the vectors allowed). Above it, faiss ID selection
+#: with a bitmap of the allowed ids. Per index kind.
+SUBSET_SEARCH_MAX_SHARE = {"flat": 1 / 64, "hnsw": 1 / 8}
 
 
 class AnalogIndex:
@@ -76,6 +82,9 @@ class AnalogIndex:
         self.index_ = index
         self.kind_ = kind
         self.n_vectors_, self.n_dims_ = n, d
+        flat = index if kind == "flat" else faiss.downcast_index(index.storage)
+        # a view of the vectors faiss holds (no copy), for exact subset searches
+        self._vectors = faiss.rev_swig_ptr(flat.get_xb(), n * d).reshape(n, d)
         return self
 
     def search(self, queries, k, *, allowed=None):
@@ -108,7 +117,9 @@ class AnalogIndex:
             if allowed.size == 0:
                 shape = (queries.shape[0], k)
                 return np.full(shape, np.inf), np.full(shape, -1, dtype=np.int64)
-            selector = faiss.IDSelectorBatch(allowed)
+            if allowed.size <= SUBSET_SEARCH_MAX_SHARE[self.kind_] * self.n_vectors_:
+                return self._subset_search(queries, k, allowed)
+            selector = self._selector(allowed)
             if self.kind_ == "hnsw":
                 params = faiss.SearchParametersHNSW(sel=selector, efSearch=max(self.ef_search, k))
             else:
@@ -117,6 +128,27 @@ class AnalogIndex:
             params = faiss.SearchParametersHNSW(efSearch=max(self.ef_search, k))
         squared, ids = self.index_.search(queries, k, params=params)
         distances = np.sqrt(np.maximum(squared.astype(np.float64), 0.0))
+        distances[ids < 0] = np.inf
+        return distances, ids
+
+    def _selector(self, allowed):
+        """faiss bitmap selector of ``allowed`` (one bit per indexed vector: cheap to
+        build even for a season window of millions of vectors)."""
+        mask = np.zeros(self.n_vectors_, dtype=bool)
+        mask[allowed] = True
+        bits = np.packbits(mask, bitorder="little")  # faiss reads bit (i & 7) of byte i >> 3
+        selector = faiss.IDSelectorBitmap(self.n_vectors_, faiss.swig_ptr(bits))
+        selector.bits_owner = bits  # the buffer lives as long as the selector
+        return selector
+
+    def _subset_search(self, queries, k, allowed):
+        """Exact search among the ``allowed`` vectors only."""
+        found = min(k, allowed.size)
+        squared, local = faiss.knn(queries, self._vectors[allowed], found)
+        distances = np.full((queries.shape[0], k), np.inf)
+        ids = np.full((queries.shape[0], k), -1, dtype=np.int64)
+        distances[:, :found] = np.sqrt(np.maximum(squared.astype(np.float64), 0.0))
+        ids[:, :found] = np.where(local >= 0, allowed[np.maximum(local, 0)], -1)
         distances[ids < 0] = np.inf
         return distances, ids
 

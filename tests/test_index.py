@@ -35,6 +35,30 @@ def test_allowed_ids_restrict_the_search(vectors):
     np.testing.assert_allclose(distances[0], ref_distances[0], rtol=1e-4)
 
 
+@pytest.mark.parametrize("kind", ["flat", "hnsw"])
+@pytest.mark.parametrize("step", [1, 2, 199])
+def test_subset_and_bitmap_searches_agree_with_brute_force(vectors, kind, step):
+    """Every 199th id (15 of 3000: an exact search of the subset), every 2nd or every
+    id (faiss bitmap ID selection): the neighbours of scikit-learn over the allowed
+    rows (all of them for flat search and for the subset, recall >= 0.95 for HNSW)."""
+    from analogs.index import SUBSET_SEARCH_MAX_SHARE
+
+    allowed = np.arange(5, len(vectors), step)
+    index = AnalogIndex(kind=kind).fit(vectors)
+    subset = allowed.size <= SUBSET_SEARCH_MAX_SHARE[kind] * len(vectors)
+    assert subset == (step == 199)
+    k = min(10, allowed.size)
+    distances, ids = index.search(vectors[:8] + 0.2, k, allowed=allowed)
+    reference = NearestNeighbors(n_neighbors=k, algorithm="brute").fit(vectors[allowed])
+    ref_distances, ref_ids = reference.kneighbors(vectors[:8] + 0.2)
+    if kind == "flat" or subset:
+        np.testing.assert_array_equal(ids, allowed[ref_ids])
+        np.testing.assert_allclose(distances, ref_distances, rtol=1e-4)
+    else:
+        recall = np.mean([len(set(a) & set(e)) / k for a, e in zip(ids, allowed[ref_ids])])
+        assert recall >= 0.95 and np.isin(ids, allowed).all()
+
+
 def test_fewer_allowed_than_k_pads_with_minus_one(vectors):
     distances, ids = AnalogIndex().fit(vectors).search(vectors[0], 5, allowed=[10, 20])
     assert sorted(ids[0][:2]) == [10, 20]
