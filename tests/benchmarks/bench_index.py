@@ -13,7 +13,10 @@ archive's structure (decaying spectrum, seasonal cycle). For each size it measur
   bitmap selector at these sizes), median over ``--queries`` queries, for flat and
   HNSW search, against a numpy brute-force baseline (distances to the allowed rows,
   ``argpartition``) in the same run;
-- recall@20 of HNSW against exact flat search under the same season window.
+- recall@20 of HNSW against exact flat search under the same season window;
+- the same with a narrow filter, the season window and one archive day in ten (as a
+  regime filter would allow; about 2.5 % of the vectors), which ``AnalogIndex``
+  answers by an exact search of the allowed vectors alone.
 
     python tests/benchmarks/bench_index.py --store STORE [--sizes 100000,1000000,3000000]
 
@@ -46,13 +49,14 @@ def peak_rss_mb() -> float:
 
 def ensemble_vectors(pcs: np.ndarray, day_of_year: np.ndarray, n_vectors: int, spread: float,
                      seed: int = 0):
-    """``n_vectors`` rows: archive days repeated as perturbed members (float32)."""
+    """``n_vectors`` rows: archive days repeated as perturbed members (float32); also
+    each row's calendar day and archive day."""
     rng = np.random.default_rng(seed)
     source = np.arange(n_vectors) % len(pcs)
     scale = (spread * pcs.std(axis=0)).astype(np.float32)
     vectors = pcs.astype(np.float32)[source]
     vectors += rng.standard_normal(vectors.shape, dtype=np.float32) * scale
-    return vectors, day_of_year[source]
+    return vectors, day_of_year[source], source
 
 
 def season_ids(day_of_year: np.ndarray, day: int) -> np.ndarray:
@@ -73,7 +77,8 @@ def median_ms(values) -> float:
 def bench_size(n_vectors, pcs, day_of_year, args) -> dict:
     from analogs.index import AnalogIndex
 
-    vectors, doy = ensemble_vectors(pcs, day_of_year, n_vectors, args.spread)
+    vectors, doy, source = ensemble_vectors(pcs, day_of_year, n_vectors, args.spread)
+    one_day_in_ten = source % 10 == 0
     result = {"n_vectors": n_vectors, "n_dims": int(vectors.shape[1])}
     indexes = {}
     for kind in ("flat", "hnsw"):
@@ -88,8 +93,9 @@ def bench_size(n_vectors, pcs, day_of_year, args) -> dict:
     rng = np.random.default_rng(1)
     rows = rng.choice(n_vectors, size=args.queries, replace=False)
     squared_norms = np.einsum("ij,ij->i", vectors, vectors)
-    timings = {"selection": [], "flat": [], "hnsw": [], "numpy": []}
-    recalls = []
+    timings = {"selection": [], "flat": [], "hnsw": [], "numpy": [], "narrow_flat": [],
+               "narrow_hnsw": []}
+    recalls, narrow_recalls = [], []
     for row in rows:
         query = vectors[row]
         started = time.perf_counter()
@@ -105,13 +111,22 @@ def bench_size(n_vectors, pcs, day_of_year, args) -> dict:
         timings["numpy"].append(time.perf_counter() - started)
         exact = set(found["flat"].tolist())
         recalls.append(len(exact & set(found["hnsw"].tolist())) / TOP)
+        narrow = allowed[one_day_in_ten[allowed]]
+        for kind, index in indexes.items():
+            started = time.perf_counter()
+            found[kind] = index.search(query, TOP, allowed=narrow)[1][0]
+            timings[f"narrow_{kind}"].append(time.perf_counter() - started)
+        narrow_recalls.append(
+            len(set(found["flat"].tolist()) & set(found["hnsw"].tolist())) / TOP)
         if row == rows[0]:
             result["flat_equals_numpy_first_query"] = bool(
                 set(baseline.tolist()) == exact)
     result["allowed_share"] = round(len(allowed) / n_vectors, 3)
+    result["narrow_allowed_share"] = round(len(narrow) / n_vectors, 4)
     for key, values in timings.items():
         result[f"{key}_median_ms"] = median_ms(values)
     result["hnsw_recall_at_20"] = round(float(np.mean(recalls)), 4)
+    result["narrow_hnsw_recall_at_20"] = round(float(np.mean(narrow_recalls)), 4)
     result["numpy_over_flat"] = round(result["numpy_median_ms"] / result["flat_median_ms"], 2)
     result["numpy_over_hnsw"] = round(result["numpy_median_ms"] / result["hnsw_median_ms"], 2)
     return result
