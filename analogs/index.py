@@ -17,10 +17,11 @@ from .errors import NotFittedError
 INDEX_KINDS = ("auto", "flat", "hnsw")
 #: Below this share of allowed vectors a filtered search ranks the allowed vectors
 #: alone, exactly (faiss brute force on the subset): cheaper than scanning every vector
-#: through a selector, and exact where a filtered HNSW walk loses recall (measured:
-#: recall@10 0.48 with 0.5 % of the vectors allowed). Above it, faiss ID selection
-#: with a bitmap of the allowed ids. Per index kind.
-SUBSET_SEARCH_MAX_SHARE = {"flat": 1 / 64, "hnsw": 1 / 8}
+#: through a selector (measured at a million vectors: 2-4 ms for 2.5 % of them against
+#: 8.5 ms for a flat scan), and exact where a filtered HNSW walk loses recall
+#: (measured: recall@10 0.48 with 0.5 % of the vectors allowed). Above it, faiss ID
+#: selection with a bitmap of the allowed ids. Per index kind.
+SUBSET_SEARCH_MAX_SHARE = {"flat": 1 / 16, "hnsw": 1 / 8}
 
 
 class AnalogIndex:
