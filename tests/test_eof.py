@@ -190,7 +190,9 @@ def test_fit_transform_reconstruct_and_signs():
     ("exact", False, False), ("randomized", False, True), ("randomized", True, True)])
 def test_training_error_equals_reconstruction_error(solver, chunked, nan_box):
     """The residuals the fit keeps (||m||^2 - ||m V||^2, no second data pass) equal
-    the explicit residual m - m V V^T of every training day (definition above)."""
+    the explicit residual m - m V V^T of every training day, i.e. the docstring formula
+    that test_reconstruction_error_matches_definition checks with numpy (Pythagoras
+    for an orthogonal projection: common practice, no source)."""
     ds = _synthetic(n_time=700, n_lat=20, n_lon=30, nan_box=nan_box)
     if chunked:
         ds = ds.chunk({"time": 128})
@@ -206,7 +208,8 @@ def test_training_error_equals_reconstruction_error(solver, chunked, nan_box):
 def test_scales_survive_a_large_mean():
     """Field scales come from sum (x - mean)^2 by shifted sums: a field offset by
     5,500 gpm (raw heights, not anomalies) gets the same scale as its anomalies
-    (a naive sum x^2 - N mean^2 would lose most digits)."""
+    (a naive sum x^2 - N mean^2 would lose most digits). Variance and EOFs do not
+    change when a constant is added: common practice, no source."""
     ds = _synthetic()
     raw = ds.assign(z500=ds["z500"] + 5500.0)
     a = MultivariateEOF(n_modes=3, solver="exact").fit(ds)

@@ -29,22 +29,12 @@ from __future__ import annotations
 
 import argparse
 import json
-import os
-import statistics
 import time
 
 import numpy as np
+from bench_scale import _median_ms as median_ms, load_average, peak_rss_mb
 
-TOP = 20
-WINDOW = 45
-
-
-def peak_rss_mb() -> float:
-    with open("/proc/self/status") as status:
-        for line in status:
-            if line.startswith("VmHWM:"):
-                return int(line.split()[1]) / 1024.0
-    return float("nan")
+from analogs.query import DEFAULT_TOP as TOP, DEFAULT_WINDOW as WINDOW, circular_day_gap
 
 
 def ensemble_vectors(pcs: np.ndarray, day_of_year: np.ndarray, n_vectors: int, spread: float,
@@ -60,18 +50,13 @@ def ensemble_vectors(pcs: np.ndarray, day_of_year: np.ndarray, n_vectors: int, s
 
 
 def season_ids(day_of_year: np.ndarray, day: int) -> np.ndarray:
-    gap = np.abs(day_of_year - day)
-    return np.flatnonzero(np.minimum(gap, 365.2425 - gap) <= WINDOW)
+    return np.flatnonzero(circular_day_gap(day_of_year, day) <= WINDOW)
 
 
 def numpy_top(vectors, squared_norms, query, allowed, k):
     distances = squared_norms[allowed] - 2.0 * (vectors[allowed] @ query)
     part = np.argpartition(distances, k)[:k]
     return allowed[part[np.argsort(distances[part])]]
-
-
-def median_ms(values) -> float:
-    return round(1e3 * statistics.median(values), 3)
 
 
 def bench_size(n_vectors, pcs, day_of_year, args) -> dict:
@@ -148,11 +133,11 @@ def main(argv=None):
     pcs = store.pcs.values
     day_of_year = store.days.day_of_year.to_numpy()
     results = {"store": str(args.store), "archive_days": int(len(pcs)),
-               "load_average_start": [round(x, 2) for x in os.getloadavg()], "sizes": []}
+               "load_average_start": load_average(), "sizes": []}
     for size in (int(s) for s in args.sizes.split(",")):
         results["sizes"].append(bench_size(size, pcs, day_of_year, args))
         print(json.dumps(results["sizes"][-1]), flush=True)
-    results["load_average_end"] = [round(x, 2) for x in os.getloadavg()]
+    results["load_average_end"] = load_average()
     results["peak_rss_mb"] = round(peak_rss_mb(), 1)
     keys = [k for k in results["sizes"][0] if k != "n_vectors"]
     print(f"{'measure':34}" + "".join(f"{r['n_vectors']:>14,}" for r in results["sizes"]))
