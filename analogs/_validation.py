@@ -7,7 +7,7 @@ from __future__ import annotations
 
 import numbers
 
-from .errors import AnalogsInputError
+from analogs.errors import AnalogsInputError
 
 
 def _fail(name: str, owner: str, expected: str, value) -> None:

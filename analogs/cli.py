@@ -13,8 +13,8 @@ import traceback
 import warnings
 from pathlib import Path
 
-from . import CAUTION, __version__
-from .errors import AnalogsInputError
+from analogs import CAUTION, __version__
+from analogs.errors import AnalogsInputError
 
 EPILOG = f"{CAUTION}"
 
@@ -31,7 +31,7 @@ def _add_quiet(parser):
 
 
 def _add_query_options(parser):
-    from .query import DEFAULT_SEPARATION, DEFAULT_TOP, DEFAULT_WINDOW
+    from analogs.stages.selection import DEFAULT_SEPARATION, DEFAULT_TOP, DEFAULT_WINDOW
     parser.add_argument("--top", type=int, metavar="N",
                         help="number of analogs to return (default: the store's tuned value, "
                              f"else {DEFAULT_TOP})")
@@ -47,7 +47,7 @@ def _add_query_options(parser):
 
 
 def build_parser() -> argparse.ArgumentParser:
-    from .query import DEFAULT_EXCLUDE
+    from analogs.stages.selection import DEFAULT_EXCLUDE
     parser = _OneLineParser(
         prog="analogs",
         description="What did days like this do? Closest past days of 500 hPa height and "
@@ -207,7 +207,7 @@ def build_parser() -> argparse.ArgumentParser:
     tag.add_argument("--out", required=True, type=Path, metavar="FILE.csv|FILE.parquet")
     tag.add_argument("--rules", type=Path, metavar="RULES.toml",
                      help="re-classify with these rule thresholds (TOML; keys as in "
-                          "analogs.regimes.RegimeRules) from the diagnostics kept in the store")
+                          "analogs.stages.regimes.RegimeRules) from the diagnostics kept in the store")
     tag.add_argument("--kmeans", type=int, metavar="K",
                      help="also cluster the days' PCs into K unsupervised regimes (k-means with a "
                           "2-day minimum persistence); column kmeans_regime")
@@ -267,7 +267,7 @@ def main(argv=None) -> int:
 
 
 def _cmd_build(args) -> int:
-    from .api import build_store
+    from analogs.api import build_store
     fields = [f.strip() for f in args.fields.split(",")] if args.fields else None
     if args.chunk_days is not None and args.chunk_days < 1:
         raise AnalogsInputError(f"--chunk-days must be an integer >= 1. Got {args.chunk_days} instead.")
@@ -300,8 +300,8 @@ def _parse_box(text, option):
 
 
 def _cmd_find(args) -> int:
-    from .api import AnalogStore
-    from .report import dumps, find_html, find_text, write_text_atomic
+    from analogs.api import AnalogStore
+    from analogs.presentation.report import dumps, find_html, find_text, write_text_atomic
     store = AnalogStore.load(args.store)
     if args.time and args.field is None:
         raise AnalogsInputError("--time applies to --field only")
@@ -310,10 +310,10 @@ def _cmd_find(args) -> int:
                         region=args.region, regime=args.regime, weights=args.weights,
                         sequence=args.sequence, kinds=_kinds(args.kind))
     if args.maps:
-        from .outcomes import write_maps
+        from analogs.stages.outcomes import write_maps
         write_maps(store.outcome_maps(result), args.maps)
     if args.report:
-        from .plots import find_figures
+        from analogs.presentation.figures import find_figures
         target_fields = store.target_fields(args.field, args.time) if args.field else None
         figures = find_figures(store, result, target_fields=target_fields)
         write_text_atomic(Path(args.report) / "index.html",
@@ -332,9 +332,9 @@ def _kinds(text):
 
 
 def _cmd_verify(args) -> int:
-    from .api import AnalogStore
-    from .report import dumps, verify_text
-    from .seasonal import parse_months
+    from analogs.api import AnalogStore
+    from analogs.presentation.report import dumps, verify_text
+    from analogs.stages.seasonal import parse_months
     store = AnalogStore.load(args.store)
     months = parse_months(args.season) if args.season else None
     if args.save and not args.tune:
@@ -360,7 +360,7 @@ def _cmd_verify(args) -> int:
 
 
 def _cmd_update(args) -> int:
-    from .api import AnalogStore
+    from analogs.api import AnalogStore
     store = AnalogStore.load(args.store)
     summary = store.update(args.files, events=args.events, progress=not args.quiet)
     print(f"store {args.store}: {summary['days_added']} days added, "
@@ -369,8 +369,8 @@ def _cmd_update(args) -> int:
 
 
 def _cmd_climatology(args) -> int:
-    from .api import AnalogStore
-    from .seasonal import build_climatology, parse_months
+    from analogs.api import AnalogStore
+    from analogs.stages.seasonal import build_climatology, parse_months
     store = AnalogStore.load(args.store)
     months = parse_months(args.season) if args.season else None
     written = build_climatology(store, args.out, months=months, files=args.archive,
@@ -381,8 +381,8 @@ def _cmd_climatology(args) -> int:
 
 
 def _cmd_tag(args) -> int:
-    from .api import AnalogStore
-    from .report import write_text_atomic
+    from analogs.api import AnalogStore
+    from analogs.presentation.report import write_text_atomic
     store = AnalogStore.load(args.store)
     out = Path(args.out)
     if out.suffix.lower() not in (".csv", ".parquet"):
@@ -407,7 +407,7 @@ def _cmd_tag(args) -> int:
 
 
 def _cmd_demo(args) -> int:
-    from .demo import run_demo
+    from analogs.workflows.demo import run_demo
     return run_demo(args.out, years=args.years, seed=args.seed, progress=not args.quiet)
 
 

@@ -8,7 +8,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from .constants import EARTH_RADIUS
+from analogs.constants import EARTH_RADIUS
 
 
 def great_circle_km(lat1, lon1, lat2, lon2):

@@ -1,4 +1,4 @@
-"""Synthetic gridded files in the conventions `analogs.sources` must read.
+"""Synthetic gridded files in the conventions `analogs.stages.sources` must read.
 
 One smooth physical state (500 hPa height in gpm, 850 hPa specific humidity in kg/kg)
 is written in three conventions: the demo archive's (per-variable, per-year files,

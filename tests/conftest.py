@@ -29,6 +29,6 @@ def demo_files(demo_dir) -> list[Path]:
 def demo_store(demo_dir, demo_files):
     import reanalysis_demo
     from analogs.api import build_store
-    from analogs.outcomes import Region
+    from analogs.stages.outcomes import Region
     return build_store(demo_files, demo_dir / "store", events=demo_dir / "events.csv",
                        region=Region.box(*reanalysis_demo.CENTRAL_REGION), progress=False)

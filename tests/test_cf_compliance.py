@@ -39,9 +39,9 @@ def test_store_files(demo_store, tmp_path):
 
 
 def test_maps_composites_and_forecast_file(demo_store, demo_files, tmp_path, capsys):
-    from analogs.demo import write_forecast_like_field
-    from analogs.seasonal import regime_composites, write_composites
-    from analogs.sources import open_archive
+    from analogs.workflows.demo import write_forecast_like_field
+    from analogs.stages.seasonal import regime_composites, write_composites
+    from analogs.stages.sources import open_archive
     maps = tmp_path / "maps.nc"
     assert main(["find", "--store", str(demo_store.path), "--date",
                  str(demo_store.days[180].date()), "--maps", str(maps), "--json"]) == 0

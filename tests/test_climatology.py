@@ -1,4 +1,4 @@
-"""Tests of analogs.climatology (harmonic day-of-year climatology and anomalies)."""
+"""Tests of analogs.stages.daily_climatology (harmonic day-of-year climatology and anomalies)."""
 
 import warnings
 
@@ -7,7 +7,7 @@ import pandas as pd
 import pytest
 import xarray as xr
 
-from analogs.climatology import HarmonicClimatology, annual_angle, harmonic_design_matrix
+from analogs.stages.daily_climatology import HarmonicClimatology, annual_angle, harmonic_design_matrix
 from analogs.errors import AnalogsInputError, NotFittedError
 
 

@@ -1,4 +1,4 @@
-"""Tests of analogs.diagnostics against MetPy, published formulas and hand-built fields.
+"""Tests of analogs.stages.diagnostics against MetPy, published formulas and hand-built fields.
 
 MetPy (metpy.calc, version >= 1.5) is the outside reference for the geostrophic wind,
 vorticity, advection, Coriolis parameter, wind direction and dewpoint. MetPy takes
@@ -21,7 +21,7 @@ import metpy.calc as mpcalc
 import metpy.xarray  # noqa: F401  (registers the .metpy accessor)
 from metpy.units import units
 
-from analogs import diagnostics as dg
+from analogs.stages import diagnostics as dg
 from analogs.constants import EARTH_RADIUS, SEVERE_DEWPOINT_C
 from analogs.errors import AnalogsInputError
 

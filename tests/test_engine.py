@@ -13,8 +13,8 @@ import xarray as xr
 from analogs.api import AnalogStore, build_store
 from analogs.cli import main
 from analogs.constants import G0
-from analogs.demo import write_forecast_like_field
-from analogs.sources import open_archive
+from analogs.workflows.demo import write_forecast_like_field
+from analogs.stages.sources import open_archive
 
 
 def _write_demo_convention(archive: xr.Dataset, directory):

@@ -1,4 +1,4 @@
-"""Tests of analogs.eof (multivariate EOFs of weighted, balanced anomalies)."""
+"""Tests of analogs.stages.eof (multivariate EOFs of weighted, balanced anomalies)."""
 
 import warnings
 
@@ -7,7 +7,7 @@ import pandas as pd
 import pytest
 import xarray as xr
 
-from analogs.eof import MultivariateEOF, area_weights
+from analogs.stages.eof import MultivariateEOF, area_weights
 from analogs.errors import AnalogsInputError, NotFittedError
 
 

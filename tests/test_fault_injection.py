@@ -17,7 +17,7 @@ import time
 import pytest
 
 import _reliability_helpers as rh
-from analogs import store as store_io
+from analogs.workflows import store as store_io
 from analogs.api import AnalogStore
 from analogs.cli import main
 from analogs.errors import StoreError
@@ -26,7 +26,7 @@ from analogs.errors import StoreError
 #: ``pause_after``-th NetCDF file it writes, so the parent can kill it there.
 CHILD = """
 import sys, time
-import analogs.store as store_io
+import analogs.workflows.store as store_io
 from analogs.api import AnalogStore, build_store
 action, pause_after, store, events, *files = sys.argv[1:]
 pause_after = int(pause_after)

@@ -7,8 +7,8 @@ from sklearn.metrics import brier_score_loss
 from sklearn.neighbors import NearestNeighbors
 
 from analogs.errors import AnalogsInputError
-from analogs.hindcast import leave_one_year_out, score_hindcast, tune
-from analogs.query import candidate_ids
+from analogs.stages.hindcast import leave_one_year_out, score_hindcast, tune
+from analogs.stages.selection import candidate_ids
 
 TIMES = pd.date_range("1991-01-01T12", "1998-12-31T12", freq="D")
 

@@ -5,7 +5,7 @@ import pytest
 from sklearn.neighbors import NearestNeighbors
 
 from analogs.errors import AnalogsInputError, NotFittedError
-from analogs.index import AnalogIndex
+from analogs.stages.index import AnalogIndex
 
 
 @pytest.fixture(scope="module")
@@ -41,7 +41,7 @@ def test_subset_and_bitmap_searches_agree_with_brute_force(vectors, kind, step):
     """Every 199th id (15 of 3000: an exact search of the subset), every 2nd or every
     id (faiss bitmap ID selection): the neighbours of scikit-learn over the allowed
     rows (all of them for flat search and for the subset, recall >= 0.95 for HNSW)."""
-    from analogs.index import SUBSET_SEARCH_MAX_SHARE
+    from analogs.stages.index import SUBSET_SEARCH_MAX_SHARE
 
     allowed = np.arange(5, len(vectors), step)
     index = AnalogIndex(kind=kind).fit(vectors)

@@ -45,7 +45,7 @@ def test_full_hindcast_completes_with_every_day_scored(demo_store):
 
 def test_hindcast_queries_every_archive_day(shared):
     """Every archive day gets a forecast built only from the other years."""
-    from analogs.hindcast import leave_one_year_out
+    from analogs.stages.hindcast import leave_one_year_out
     store = AnalogStore.load(shared["store"])
     observed = store.observed(rh.REGION)
     hindcast = leave_one_year_out(store.pcs.values, store.times, observed, top=20, window=45,

@@ -76,8 +76,8 @@ def _assert_same_analogs(a, b):
 
 def _exact_eigenvalues(files):
     """Eigenvalues of the weighted, balanced anomaly covariance by a full numpy SVD."""
-    from analogs.climatology import HarmonicClimatology
-    from analogs.sources import open_archive
+    from analogs.stages.daily_climatology import HarmonicClimatology
+    from analogs.stages.sources import open_archive
 
     archive = open_archive(files).load()
     anomalies = HarmonicClimatology().fit(archive).transform(archive)
@@ -98,9 +98,9 @@ def test_chunked_path_is_lazy_and_randomized(small_archive):
     matrix used to be computed eagerly and embedded)."""
     import pickle
 
-    from analogs.climatology import HarmonicClimatology
-    from analogs.eof import MultivariateEOF
-    from analogs.sources import open_archive
+    from analogs.stages.daily_climatology import HarmonicClimatology
+    from analogs.stages.eof import MultivariateEOF
+    from analogs.stages.sources import open_archive
 
     _, files = small_archive
     archive = open_archive(files, chunks={"time": CHUNK_DAYS})
@@ -130,7 +130,7 @@ def test_analogs_match_sklearn_brute_force(chunked):
     over the same season-window candidates (no de-clustering: separation 0)."""
     from sklearn.neighbors import NearestNeighbors
 
-    from analogs.query import candidate_ids
+    from analogs.stages.selection import candidate_ids
 
     pcs = chunked.pcs.values[:, :chunked.n_query_modes]
     for date in DATES:
@@ -150,9 +150,9 @@ def test_distributed_eof_solve_matches_threaded(small_archive):
     both match numpy's full SVD (default suite; the whole build through a cluster is
     checked by the slow tests below)."""
     distributed = pytest.importorskip("distributed")
-    from analogs.climatology import HarmonicClimatology
-    from analogs.eof import MultivariateEOF
-    from analogs.sources import open_archive
+    from analogs.stages.daily_climatology import HarmonicClimatology
+    from analogs.stages.eof import MultivariateEOF
+    from analogs.stages.sources import open_archive
 
     _, files = small_archive
     archive = open_archive(files, chunks={"time": CHUNK_DAYS})

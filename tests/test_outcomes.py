@@ -13,7 +13,7 @@ from scipy import ndimage, stats
 
 from analogs.errors import AnalogsInputError
 from analogs.geo import great_circle_km, initial_bearing_deg
-from analogs.outcomes import (
+from analogs.stages.outcomes import (
     Region,
     analog_weights,
     binomial_interval,

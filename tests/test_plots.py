@@ -12,12 +12,12 @@ import pandas as pd
 import pytest
 from sklearn.metrics import roc_auc_score
 
-from analogs import plots
+from analogs.presentation import figures as plots
 from analogs.errors import AnalogsInputError
-from analogs.hindcast import leave_one_year_out
-from analogs.outcomes import outcome_maps
-from analogs.seasonal import regime_composites, regime_frequency_by_month
-from analogs.verify import reliability_table, roc_curve_points
+from analogs.stages.hindcast import leave_one_year_out
+from analogs.stages.outcomes import outcome_maps
+from analogs.stages.seasonal import regime_composites, regime_frequency_by_month
+from analogs.stages.scores import reliability_table, roc_curve_points
 
 #: Least variance of the RGBA pixel values (0-255) of a figure with content; a blank
 #: white canvas has 0, a figure with only a title about 10 (measured here).
@@ -203,8 +203,8 @@ def test_composite_maps(demo_store):
 
 
 def test_outcome_chart(demo_store):
-    from analogs.outcomes import daily_event_counts
-    from analogs.seasonal import outcomes_by_regime_and_month
+    from analogs.stages.outcomes import daily_event_counts
+    from analogs.stages.seasonal import outcomes_by_regime_and_month
     tags = demo_store.tags
     counts = daily_event_counts(demo_store.events, tags.index, demo_store.region)
     figure = plots.outcome_chart(outcomes_by_regime_and_month(tags, counts))
@@ -225,7 +225,7 @@ def test_find_figures_for_a_date_target(demo_store, query):
 
 def test_plots_leave_pyplot_alone():
     """Importing and drawing never loads pyplot (no global figure state, no display)."""
-    code = ("import sys, analogs.plots as p; f = p.new_figure(); f.add_subplot().plot([1, 2]); "
+    code = ("import sys, analogs.presentation.figures as p; f = p.new_figure(); f.add_subplot().plot([1, 2]); "
             "p.figure_png(f); print('matplotlib.pyplot' in sys.modules)")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
     assert out.stdout.strip() == "False"
@@ -234,7 +234,7 @@ def test_plots_leave_pyplot_alone():
 def test_find_figures_for_a_field_target(demo_store, demo_files):
     """A --field target: the caller passes the canonical fields (here an archive day
     read from the files, full resolution), drawn as given rather than reconstructed."""
-    from analogs.sources import open_archive
+    from analogs.stages.sources import open_archive
     day = open_archive(demo_files, progress=False).isel(time=[200]).load()
     result = demo_store.find(field=day, top=8)
     figures = plots.find_figures(demo_store, result, target_fields=day)

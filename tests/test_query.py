@@ -11,8 +11,8 @@ from hypothesis import given, settings, strategies as st
 from sklearn.neighbors import NearestNeighbors
 
 from analogs.errors import AnalogsInputError
-from analogs.index import AnalogIndex
-from analogs.query import (calendar_distance_days, candidate_ids, decluster, exclusion_mask,
+from analogs.stages.index import AnalogIndex
+from analogs.stages.selection import (calendar_distance_days, candidate_ids, decluster, exclusion_mask,
                            find_analogs, season_mask)
 
 DAYS = pd.date_range("1991-01-01", "2000-12-31", freq="D") + pd.Timedelta(hours=12)

@@ -1,4 +1,4 @@
-"""Tests of analogs.regimes: rules on hand-built fields, configuration, learned paths.
+"""Tests of analogs.stages.regimes: rules on hand-built fields, configuration, learned paths.
 
 The four hand-built single fields are textbook sketches of each regime (common
 practice, no source); the learned models are checked against scikit-learn.
@@ -14,7 +14,7 @@ from sklearn.cluster import KMeans
 from sklearn.linear_model import LogisticRegression
 
 from analogs.errors import AnalogsInputError, NotFittedError
-from analogs.regimes import (
+from analogs.stages.regimes import (
     KMeansRegimes,
     RegimeRules,
     RuleClassifier,

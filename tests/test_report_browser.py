@@ -17,8 +17,8 @@ import matplotlib.image
 import numpy as np
 import pytest
 
-from analogs import plots
-from analogs.report import find_html, write_text_atomic
+from analogs.presentation import figures as plots
+from analogs.presentation.report import find_html, write_text_atomic
 
 pytestmark = pytest.mark.browser
 

@@ -9,8 +9,8 @@ import pytest
 from scipy import stats
 
 from analogs.errors import AnalogsInputError
-from analogs.outcomes import daily_event_counts
-from analogs.seasonal import (
+from analogs.stages.outcomes import daily_event_counts
+from analogs.stages.seasonal import (
     build_climatology,
     outcomes_by_regime_and_month,
     parse_months,
@@ -213,7 +213,7 @@ def test_composites_equal_the_mean_of_reconstructed_days(demo_store, tmp_path):
 def test_composites_from_archive_files_are_the_archive_anomalies(demo_store, demo_files):
     """With files=, the composite is the mean of the archive's own anomalies (no EOF
     truncation): reference computed here with xarray from the same files."""
-    from analogs.sources import open_archive
+    from analogs.stages.sources import open_archive
     composites = regime_composites(demo_store, [7], files=demo_files)
     archive = open_archive(demo_files, progress=False)
     days = demo_store.tags.index[(demo_store.tags.index.month == 7)

@@ -8,7 +8,7 @@ import pytest
 from sklearn.metrics import brier_score_loss, roc_auc_score
 
 from analogs.cli import main
-from analogs.hindcast import leave_one_year_out
+from analogs.stages.hindcast import leave_one_year_out
 
 
 def test_verify_json_contract_and_skill(demo_store, capsys):

@@ -1,4 +1,4 @@
-"""Tests of analogs.sources: reading archives in several conventions into canonical form."""
+"""Tests of analogs.stages.sources: reading archives in several conventions into canonical form."""
 
 from __future__ import annotations
 
@@ -15,7 +15,7 @@ from scipy.interpolate import RegularGridInterpolator
 from _sources_helpers import (LAT, LON, daily_times, era5_dataset, smooth_height,
                               smooth_humidity, write_demo_style, write_ncep_style)
 from analogs.errors import AnalogsInputError
-from analogs.sources import normalise_grid, open_archive, open_target, regrid_to
+from analogs.stages.sources import normalise_grid, open_archive, open_target, regrid_to
 
 
 def _height_file(path, values, *, times=None, attrs=None, level=None):
@@ -661,7 +661,7 @@ def test_missing_data_policy_property(n_days, seed, nan_share, max_gap, mask_row
     """Whatever the NaN pattern: no NaN is left outside the all-NaN mask, values that were
     present are unchanged, each filled value lies between its valid neighbours in time
     (linear interpolation cannot overshoot), and the report adds up."""
-    from analogs.sources import apply_missing_data_policy
+    from analogs.stages.sources import apply_missing_data_policy
     rng = np.random.default_rng(seed)
     times = daily_times(periods=n_days)
     lat, lon = LAT[:6], LON[:5]

@@ -8,7 +8,7 @@ import pandas as pd
 import pytest
 import xarray as xr
 
-from analogs import store as store_io
+from analogs.workflows import store as store_io
 from analogs.errors import StoreError
 
 

@@ -9,7 +9,7 @@ from sklearn.cluster import KMeans
 
 from analogs.api import AnalogStore
 from analogs.cli import main
-from analogs.regimes import KMeansRegimes
+from analogs.stages.regimes import KMeansRegimes
 
 
 @pytest.fixture()

@@ -29,7 +29,7 @@ def test_update_appends_projected_days_and_is_idempotent(split_files, demo_dir, 
     n_before = len(store.times)
     assert main(["update", "--store", str(store.path), "--quiet", *map(str, late)]) == 0
     updated = AnalogStore.load(store.path)
-    from analogs.sources import open_archive
+    from analogs.stages.sources import open_archive
     new_days = open_archive(late, progress=False)
     assert len(updated.times) == n_before + new_days.sizes["time"]
     assert updated.times.is_monotonic_increasing

@@ -5,7 +5,7 @@ import pytest
 from sklearn.metrics import brier_score_loss, roc_auc_score, roc_curve
 
 from analogs.errors import AnalogsInputError
-from analogs.verify import (
+from analogs.stages.scores import (
     bootstrap_interval,
     brier_score,
     brier_skill_score,

@@ -42,10 +42,10 @@ def main(argv=None):
 
     import reanalysis_demo
     from analogs.api import AnalogStore, build_store
-    from analogs.climatology import HarmonicClimatology
-    from analogs.outcomes import Region
-    from analogs.query import candidate_ids
-    from analogs.sources import open_archive
+    from analogs.stages.daily_climatology import HarmonicClimatology
+    from analogs.stages.outcomes import Region
+    from analogs.stages.selection import candidate_ids
+    from analogs.stages.sources import open_archive
 
     out = args.out or Path(tempfile.mkdtemp(prefix="analogs-bench-"))
     started = time.perf_counter()

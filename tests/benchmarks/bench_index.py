@@ -34,7 +34,7 @@ import time
 import numpy as np
 from bench_scale import _median_ms as median_ms, load_average, peak_rss_mb
 
-from analogs.query import DEFAULT_TOP as TOP, DEFAULT_WINDOW as WINDOW, circular_day_gap
+from analogs.stages.selection import DEFAULT_TOP as TOP, DEFAULT_WINDOW as WINDOW, circular_day_gap
 
 
 def ensemble_vectors(pcs: np.ndarray, day_of_year: np.ndarray, n_vectors: int, spread: float,
@@ -60,7 +60,7 @@ def numpy_top(vectors, squared_norms, query, allowed, k):
 
 
 def bench_size(n_vectors, pcs, day_of_year, args) -> dict:
-    from analogs.index import AnalogIndex
+    from analogs.stages.index import AnalogIndex
 
     vectors, doy, source = ensemble_vectors(pcs, day_of_year, n_vectors, args.spread)
     one_day_in_ten = source % 10 == 0

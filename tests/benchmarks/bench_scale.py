@@ -131,7 +131,7 @@ def child_build(spec: dict) -> dict:
     """Build a store; report wall time, peak RSS, solver and eigenvalues."""
     import reanalysis_demo
     from analogs.api import build_store
-    from analogs.outcomes import Region
+    from analogs.stages.outcomes import Region
 
     chunks = {"time": spec["chunk_days"]} if spec.get("chunk_days") else None
     started = time.perf_counter()
@@ -148,8 +148,8 @@ def child_build(spec: dict) -> dict:
 
 def archive_anomalies(files):
     """The archive's harmonic anomalies, in memory (the in-memory build's EOF input)."""
-    from analogs.climatology import HarmonicClimatology
-    from analogs.sources import open_archive
+    from analogs.stages.daily_climatology import HarmonicClimatology
+    from analogs.stages.sources import open_archive
 
     archive = open_archive(files, chunks={"time": CHUNK_DAYS})
     return HarmonicClimatology().fit(archive).transform(archive).load()
@@ -181,7 +181,7 @@ def child_exact_svd(spec: dict) -> dict:
     its defaults (means, scales, the matrix, the randomized float32 solve, signs,
     residuals), timed whole, against the SVD call alone.
     """
-    from analogs.eof import MultivariateEOF
+    from analogs.stages.eof import MultivariateEOF
 
     anomalies = archive_anomalies(spec["files"])
     started = time.perf_counter()
@@ -223,7 +223,7 @@ def query_latency(store_path: Path, n_queries: int) -> dict:
     from sklearn.neighbors import NearestNeighbors
 
     from analogs.api import AnalogStore
-    from analogs.query import DEFAULT_EXCLUDE, DEFAULT_WINDOW, candidate_ids, fetch_size
+    from analogs.stages.selection import DEFAULT_EXCLUDE, DEFAULT_WINDOW, candidate_ids, fetch_size
 
     loaded = AnalogStore.load(store_path)
     rng = np.random.default_rng(0)
@@ -280,8 +280,8 @@ def cli_latency(store_path: Path, date: str, runs: int) -> dict:
 def index_recall(store_path: Path) -> dict:
     """Recall@20 of HNSW against exact search, season-window filtered, several efSearch."""
     from analogs.api import AnalogStore
-    from analogs.index import AnalogIndex, recall_at_k
-    from analogs.query import DEFAULT_EXCLUDE, DEFAULT_WINDOW, candidate_ids
+    from analogs.stages.index import AnalogIndex, recall_at_k
+    from analogs.stages.selection import DEFAULT_EXCLUDE, DEFAULT_WINDOW, candidate_ids
 
     loaded = AnalogStore.load(store_path)
     vectors = loaded.pcs.values[:, :loaded.n_query_modes]

@@ -25,7 +25,7 @@ def main(argv=None):
 
     import numpy as np
     import reanalysis_demo
-    from analogs.regimes import tag_days
+    from analogs.stages.regimes import tag_days
 
     started = time.perf_counter()
     demo = reanalysis_demo.generate(args.years)

@@ -27,9 +27,9 @@ import numpy as np
 import pandas as pd
 import xarray as xr
 
-from ._validation import check_choice, check_float, check_int
-from .constants import G0, ZERO_CELSIUS_K
-from .errors import AnalogsInputError
+from analogs._validation import check_choice, check_float, check_int
+from analogs.constants import G0, ZERO_CELSIUS_K
+from analogs.errors import AnalogsInputError
 
 #: Canonical field names, in the order they appear in a canonical Dataset.
 SUPPORTED_FIELDS = ("z500", "q850", "td2m", "pwat")

@@ -12,8 +12,8 @@ import weakref
 import numpy as np
 import pandas as pd
 
-from ._validation import check_int
-from .index import AnalogIndex
+from analogs._validation import check_int
+from analogs.stages.index import AnalogIndex
 
 #: Mean length of the year in days, for circular calendar-day distances.
 DAYS_PER_YEAR = 365.2425
@@ -152,7 +152,7 @@ def find_analogs(index: AnalogIndex, times, target_vector, *, target_time=None, 
 
     Parameters
     ----------
-    index : fitted :class:`~analogs.index.AnalogIndex` whose row i is ``times[i]``.
+    index : fitted :class:`~analogs.stages.index.AnalogIndex` whose row i is ``times[i]``.
     times : DatetimeIndex of the indexed days.
     target_vector : array (d,) in the index's space (PCs of the target).
     target_time, window, exclude, restrict : see :func:`candidate_ids`.

@@ -24,10 +24,10 @@ from matplotlib.colors import BoundaryNorm, ListedColormap
 from matplotlib.figure import Figure
 from matplotlib.patches import Polygon, Rectangle
 
-from .constants import SEVERE_DEWPOINT_C, ZERO_CELSIUS_K
-from .diagnostics import dewpoint_from_specific_humidity
-from .errors import AnalogsInputError
-from .regimes import REGIME_LABELS
+from analogs.constants import SEVERE_DEWPOINT_C, ZERO_CELSIUS_K
+from analogs.stages.diagnostics import dewpoint_from_specific_humidity
+from analogs.errors import AnalogsInputError
+from analogs.stages.regimes import REGIME_LABELS
 
 #: Pressure (hPa) of the ``q850`` field, for its dewpoint.
 MOISTURE_LEVEL_HPA = 850.0
@@ -276,7 +276,7 @@ def analog_panel(store, result, *, n=6, region=None) -> Figure:
 
 
 def _result_region(result, store):
-    from .outcomes import Region
+    from analogs.stages.outcomes import Region
     settings_region = result.settings.get("region")
     return Region.from_dict(settings_region) if settings_region else store.region
 
@@ -315,7 +315,7 @@ def composite_difference(store, result, target_fields: xr.Dataset, *, region=Non
 
 
 def _on_store_grid(store, fields: xr.Dataset) -> xr.Dataset:
-    from .sources import regrid_to
+    from analogs.stages.sources import regrid_to
     lat, lon = store.grid
     fields = fields.squeeze(drop=True) if "time" in fields.dims else fields
     same = (fields.sizes.get("lat") == lat.size and fields.sizes.get("lon") == lon.size
@@ -325,10 +325,10 @@ def _on_store_grid(store, fields: xr.Dataset) -> xr.Dataset:
 
 def probability_map(maps: xr.Dataset, *, region=None, when="target") -> Figure:
     """Neighbourhood probability of the analog days (from
-    :func:`analogs.outcomes.outcome_maps`) in percent, fixed 0-100 scale."""
+    :func:`analogs.stages.outcomes.outcome_maps`) in percent, fixed 0-100 scale."""
     if "neighbourhood_probability" not in maps:
         raise AnalogsInputError("probability_map needs the Dataset of "
-                                "analogs.outcomes.outcome_maps")
+                                "analogs.stages.outcomes.outcome_maps")
     probability = _plane(maps["neighbourhood_probability"], "probability_map")
     radius = probability.attrs.get("radius_km")
     figure = new_figure(8.0, 6.0)
@@ -354,7 +354,7 @@ def probability_map(maps: xr.Dataset, *, region=None, when="target") -> Figure:
 
 def reliability_diagram(reliability, *, title_suffix="") -> Figure:
     """Observed frequency against forecast probability (bins of
-    :func:`analogs.verify.reliability_table`), with the number of forecasts per bin."""
+    :func:`analogs.stages.scores.reliability_table`), with the number of forecasts per bin."""
     table = pd.DataFrame(list(reliability))
     if table.empty:
         raise AnalogsInputError("reliability_diagram needs at least one reliability bin")
@@ -379,7 +379,7 @@ def reliability_diagram(reliability, *, title_suffix="") -> Figure:
 
 
 def roc_diagram(false_alarm_rate, hit_rate, *, title_suffix="") -> Figure:
-    """ROC curve (points of :func:`analogs.verify.roc_curve_points`) with its area."""
+    """ROC curve (points of :func:`analogs.stages.scores.roc_curve_points`) with its area."""
     false_alarm_rate = np.asarray(false_alarm_rate, dtype=float)
     hit_rate = np.asarray(hit_rate, dtype=float)
     area = float(np.trapezoid(hit_rate, false_alarm_rate))
@@ -435,7 +435,7 @@ def regime_calendar(tags: pd.DataFrame, *, title_suffix="") -> Figure:
 
 def monthly_frequency_chart(frequency: pd.DataFrame, *, title_suffix="") -> Figure:
     """Stacked bars: share of each month's tagged days in each regime (the table of
-    :func:`analogs.seasonal.regime_frequency_by_month`), days tagged above each bar."""
+    :func:`analogs.stages.seasonal.regime_frequency_by_month`), days tagged above each bar."""
     needed = {"month", "regime", "fraction", "days_tagged"}
     if not needed <= set(frequency.columns):
         raise AnalogsInputError("monthly_frequency_chart needs the table of "
@@ -469,7 +469,7 @@ def composite_maps(composites: xr.Dataset, *, region=None) -> Figure:
     symmetric scale) and the regime's mean height contoured."""
     if "z500_anomaly" not in composites:
         raise AnalogsInputError("composite_maps needs the Dataset of "
-                                "analogs.seasonal.regime_composites")
+                                "analogs.stages.seasonal.regime_composites")
     present = [str(r) for r, n in zip(composites["regime"].values,
                                       composites["n_days"].values) if n > 0]
     anomaly = composites["z500_anomaly"].sel(regime=present)
@@ -500,7 +500,7 @@ def composite_maps(composites: xr.Dataset, *, region=None) -> Figure:
 
 def outcome_chart(outcomes: pd.DataFrame, *, title_suffix="") -> Figure:
     """P(at least one event in the region) by month for each regime, with intervals
-    (the table of :func:`analogs.seasonal.outcomes_by_regime_and_month`)."""
+    (the table of :func:`analogs.stages.seasonal.outcomes_by_regime_and_month`)."""
     if "p_any_event" not in outcomes:
         raise AnalogsInputError("outcome_chart needs the table of outcomes_by_regime_and_month")
     regimes = _ordered_regimes(outcomes["regime"])
@@ -537,10 +537,10 @@ def find_figures(store, result, *, target_fields=None, hindcast=None) -> list[tu
     the store's reconstruction of that day (climatology plus anomaly on the kept EOFs);
     when None for a field target without a date, the target map and the difference map
     are left out. ``hindcast``: optional DataFrame of
-    :func:`analogs.hindcast.leave_one_year_out` for the reliability and ROC figures.
+    :func:`analogs.stages.hindcast.leave_one_year_out` for the reliability and ROC figures.
     """
-    from .outcomes import outcome_maps
-    from .verify import reliability_table, roc_curve_points
+    from analogs.stages.outcomes import outcome_maps
+    from analogs.stages.scores import reliability_table, roc_curve_points
 
     region = _result_region(result, store)
     when = result.target.get("date") or "the forecast field"

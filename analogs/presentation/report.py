@@ -13,7 +13,7 @@ import os
 import tempfile
 from pathlib import Path
 
-from . import CAUTION, __version__
+from analogs import CAUTION, __version__
 
 
 def _fmt_probability(value) -> str:
@@ -310,7 +310,7 @@ def _readable(name: str, frame):
 def climatology_html(tables: dict, figures, manifest: dict, settings: dict) -> str:
     """The HTML page of a seasonal climatology (``analogs climatology``).
 
-    ``tables``: name -> DataFrame as made by :func:`analogs.seasonal.build_climatology`
+    ``tables``: name -> DataFrame as made by :func:`analogs.stages.seasonal.build_climatology`
     (``regime_frequency_by_month``, ``regime_trend``, ``regime_persistence``,
     ``typical_days``, optionally ``outcomes_by_regime_and_month``); ``figures``: list of
     (caption, PNG bytes), embedded; ``settings``: what was asked for.

@@ -21,7 +21,7 @@ Climatol. 27, 1119-1152), ``s_f`` the square root of the total weighted variance
 field ``f`` (so that every field has total variance ``u_f`` and height and
 moisture contribute comparably), ``u_f`` the user weight from ``field_weights``
 (default 1) and ``x̄_f`` the time mean of the training anomalies (zero up to
-rounding for anomalies from :class:`analogs.climatology.HarmonicClimatology`; it is
+rounding for anomalies from :class:`analogs.stages.daily_climatology.HarmonicClimatology`; it is
 removed so that eigenvalues are those of the covariance matrix). Grid points that
 are missing (NaN) at any training time are left out of ``M`` and come back as NaN
 in the patterns.
@@ -54,9 +54,9 @@ import numbers
 import numpy as np
 import xarray as xr
 
-from . import __version__
-from ._validation import check_choice, check_float, check_int
-from .errors import AnalogsInputError, NotFittedError
+from analogs import __version__
+from analogs._validation import check_choice, check_float, check_int
+from analogs.errors import AnalogsInputError, NotFittedError
 
 __all__ = ["MultivariateEOF", "area_weights"]
 

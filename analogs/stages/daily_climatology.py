@@ -30,8 +30,8 @@ import numpy as np
 import pandas as pd
 import xarray as xr
 
-from ._validation import check_int
-from .errors import AnalogsInputError, NotFittedError
+from analogs._validation import check_int
+from analogs.errors import AnalogsInputError, NotFittedError
 
 __all__ = ["HarmonicClimatology", "annual_angle", "harmonic_design_matrix"]
 

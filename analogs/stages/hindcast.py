@@ -4,7 +4,7 @@ Every archive day is forecast from analogs found in the other years only (so its
 weather episode, and its own year's peculiarities, cannot help), with the same season
 window and de-clustering as a live query. The forecast is the fraction of analog days
 with at least one event in the region; it is scored against what happened that day
-with the scores of :mod:`analogs.verify`, and against the season-window climatology of
+with the scores of :mod:`analogs.stages.scores`, and against the season-window climatology of
 the other years (the reference of the Brier skill score) and a random-analog baseline
 drawn from the same candidates (same N, same window).
 """
@@ -16,10 +16,10 @@ import numpy as np
 import pandas as pd
 from tqdm.auto import tqdm
 
-from ._validation import check_choice, check_float, check_int
-from .errors import AnalogsInputError
-from .query import circular_day_gap, day_numbers, decluster_days, fetch_size
-from .verify import bootstrap_interval, brier_skill_score, roc_auc, verification_summary
+from analogs._validation import check_choice, check_float, check_int
+from analogs.errors import AnalogsInputError
+from analogs.stages.selection import circular_day_gap, day_numbers, decluster_days, fetch_size
+from analogs.stages.scores import bootstrap_interval, brier_skill_score, roc_auc, verification_summary
 
 HINDCAST_METHODS = ("analogs", "random")
 
@@ -33,7 +33,7 @@ def leave_one_year_out(pcs, times, observed, *, top=20, window=45, separation=3,
     pcs : array (n_days, n_modes) of principal components, row i for ``times[i]``.
     times : DatetimeIndex of the archive days.
     observed : bool array (n_days,), whether the event happened on each day.
-    top, window, separation : as in :func:`analogs.query.find_analogs`.
+    top, window, separation : as in :func:`analogs.stages.selection.find_analogs`.
     n_modes : use only the leading modes (default all).
     method : ``"analogs"`` (nearest neighbours) or ``"random"`` (``top`` days drawn at
         random from the same candidates: the no-skill baseline of the same size).
@@ -118,7 +118,7 @@ def score_hindcast(hindcast: pd.DataFrame, *, threshold=0.3, n_bins=10, n_resamp
                    confidence=0.9, seed=0) -> dict:
     """Scores of a hindcast (:func:`leave_one_year_out`) with year-block bootstrap intervals.
 
-    Returns the :func:`analogs.verify.verification_summary` dict plus
+    Returns the :func:`analogs.stages.scores.verification_summary` dict plus
     ``brier_skill_score_ci`` and ``roc_auc_ci`` (block bootstrap over years, since days
     within one year are not independent).
     """

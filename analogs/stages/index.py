@@ -13,8 +13,8 @@ import os
 import faiss
 import numpy as np
 
-from ._validation import check_choice, check_int
-from .errors import NotFittedError
+from analogs._validation import check_choice, check_int
+from analogs.errors import NotFittedError
 
 INDEX_KINDS = ("auto", "flat", "hnsw")
 #: Below this share of allowed vectors a filtered search ranks the allowed vectors

@@ -9,10 +9,10 @@ import numpy as np
 import pandas as pd
 import xarray as xr
 
-from .constants import G0
-from .outcomes import Region
-from .report import write_text_atomic
-from .store import write_dataset
+from analogs.constants import G0
+from analogs.stages.outcomes import Region
+from analogs.presentation.report import write_text_atomic
+from analogs.workflows.store import write_dataset
 
 
 def write_forecast_like_field(archive: xr.Dataset, day, path) -> Path:
@@ -69,10 +69,10 @@ def run_demo(out, *, years=10, seed=0, progress=True) -> int:
     """Generate, build, tag, query and report; print a summary. Returns 0."""
     import reanalysis_demo
 
-    from .api import build_store
-    from .plots import find_figures
-    from .report import find_html, find_text
-    from .sources import open_archive
+    from analogs.api import build_store
+    from analogs.presentation.figures import find_figures
+    from analogs.presentation.report import find_html, find_text
+    from analogs.stages.sources import open_archive
 
     out = Path(out)
     started = time.perf_counter()

@@ -47,16 +47,16 @@ import pandas as pd
 import xarray as xr
 from scipy import special
 
-from . import __version__
-from ._validation import check_choice, check_float
-from .constants import (
+from analogs import __version__
+from analogs._validation import check_choice, check_float
+from analogs.constants import (
     CONVECTIVE_DAY_START_HOUR,
     EARTH_RADIUS,
     NEIGHBOURHOOD_KM,
     PRACTICALLY_PERFECT_SIGMA_KM,
 )
-from .errors import AnalogsInputError
-from .geo import great_circle_km, initial_bearing_deg
+from analogs.errors import AnalogsInputError
+from analogs.geo import great_circle_km, initial_bearing_deg
 
 #: Columns every events table must have.
 REQUIRED_EVENT_COLUMNS = ("time", "lat", "lon", "kind")

@@ -37,7 +37,7 @@ import pandas as pd
 import xarray as xr
 from scipy import ndimage
 
-from .constants import (
+from analogs.constants import (
     BOLTON_A_HPA,
     BOLTON_B,
     BOLTON_C_DEGC,
@@ -48,8 +48,8 @@ from .constants import (
     SEVERE_DEWPOINT_C,
     ZERO_CELSIUS_K,
 )
-from .errors import AnalogsInputError
-from .geo import great_circle_km, meridional_derivative, spherical_gradient, zonal_derivative
+from analogs.errors import AnalogsInputError
+from analogs.geo import great_circle_km, meridional_derivative, spherical_gradient, zonal_derivative
 
 __all__ = [
     "coriolis_parameter",
@@ -122,7 +122,7 @@ def _check_field(field, name: str, owner: str) -> xr.DataArray:
     if lat.size > 1 and not np.all(np.diff(lat) > 0):
         raise AnalogsInputError(
             f"The 'lat' coordinate of {name!r} in {owner} must be ascending; "
-            "sort it with .sortby('lat') (analogs.sources does this for files).")
+            "sort it with .sortby('lat') (analogs.stages.sources does this for files).")
     return field
 
 

@@ -35,8 +35,8 @@ import pandas as pd
 import xarray as xr
 from filelock import FileLock, Timeout
 
-from . import __version__
-from .errors import StoreError
+from analogs import __version__
+from analogs.errors import StoreError
 
 FORMAT_VERSION = 1
 MANIFEST = "manifest.json"

@@ -3,7 +3,7 @@ r"""Weather regimes of archive days: explainable rules, plus learned complements
 - :class:`RegimeRules` holds every threshold of the rules, with units; defaults,
   keyword overrides or a TOML file.
 - :class:`RuleClassifier` maps the diagnostics of
-  :func:`analogs.diagnostics.compute_diagnostics` to ``northwest_flow``,
+  :func:`analogs.stages.diagnostics.compute_diagnostics` to ``northwest_flow``,
   ``tropical``, ``strong_trough`` or ``other``, with a confidence and a reason that
   quotes the deciding values.
 - :class:`KMeansRegimes` (unsupervised, on the PCs, with a minimum-persistence
@@ -33,10 +33,10 @@ import numpy as np
 import pandas as pd
 import xarray as xr
 
-from . import __version__
-from ._validation import check_int
-from .diagnostics import compute_diagnostics
-from .errors import AnalogsInputError, NotFittedError
+from analogs import __version__
+from analogs._validation import check_int
+from analogs.stages.diagnostics import compute_diagnostics
+from analogs.errors import AnalogsInputError, NotFittedError
 
 __all__ = [
     "REGIME_LABELS",
@@ -199,7 +199,7 @@ class RuleClassifier:
     rules : :class:`RegimeRules`, optional (defaults when None).
 
     Criteria (thresholds in :class:`RegimeRules`, columns of
-    :func:`~analogs.diagnostics.compute_diagnostics`):
+    :func:`~analogs.stages.diagnostics.compute_diagnostics`):
 
     - ``tropical``: a compact closed low near the region (``tc_present``) with
       ``tc_depth`` >= tropical_min_depth_gpm, ``tc_lat`` <= tropical_max_lat,
@@ -307,7 +307,7 @@ class RuleClassifier:
 
         Parameters
         ----------
-        diagnostics : DataFrame from :func:`analogs.diagnostics.compute_diagnostics`
+        diagnostics : DataFrame from :func:`analogs.stages.diagnostics.compute_diagnostics`
             (its ``attrs["region"]`` and ``attrs["missing"]`` are used when present).
 
         Returns
@@ -396,7 +396,7 @@ def tag_days(ds: xr.Dataset, region, *, rules: RegimeRules | None = None,
     region : (south, north, west, east) in degrees.
     rules : :class:`RegimeRules` (defaults when None).
     progress : show a progress bar over blocks of days.
-    diagnostic_options : passed to :func:`analogs.diagnostics.compute_diagnostics`.
+    diagnostic_options : passed to :func:`analogs.stages.diagnostics.compute_diagnostics`.
 
     Returns
     -------

@@ -27,8 +27,8 @@ from __future__ import annotations
 
 import numpy as np
 
-from ._validation import check_float, check_int
-from .errors import AnalogsInputError
+from analogs._validation import check_float, check_int
+from analogs.errors import AnalogsInputError
 
 
 def _forecasts(p, o, owner):

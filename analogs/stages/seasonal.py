@@ -2,12 +2,12 @@
 
 Pure functions on the tags table (one row a day: ``regime``, ``confidence``, the
 diagnostics; indexed by date, as :attr:`analogs.api.AnalogStore.tags`) and the daily
-event counts of :func:`analogs.outcomes.daily_event_counts`; pandas / xarray out.
+event counts of :func:`analogs.stages.outcomes.daily_event_counts`; pandas / xarray out.
 :func:`build_climatology` writes all of it (tables, composites, figures and one HTML
 page) for ``analogs climatology``.
 
 >>> from analogs.api import AnalogStore                          # doctest: +SKIP
->>> from analogs.seasonal import build_climatology, parse_months # doctest: +SKIP
+>>> from analogs.stages.seasonal import build_climatology, parse_months # doctest: +SKIP
 >>> build_climatology(AnalogStore.load("store"), "clim", months=parse_months("5-9"))
 """
 
@@ -24,10 +24,10 @@ import pandas as pd
 import xarray as xr
 from scipy import stats
 
-from . import __version__
-from .errors import AnalogsInputError
-from .outcomes import binomial_interval, daily_event_counts
-from .regimes import REGIME_LABELS
+from analogs import __version__
+from analogs.errors import AnalogsInputError
+from analogs.stages.outcomes import binomial_interval, daily_event_counts
+from analogs.stages.regimes import REGIME_LABELS
 
 #: Least spacing, in days, between two typical days of one regime (distinct cases).
 TYPICAL_DAY_SEPARATION = 7
@@ -215,7 +215,7 @@ def outcomes_by_regime_and_month(tags, daily_counts, *, confidence=0.9) -> pd.Da
     Parameters
     ----------
     tags : the tags table.
-    daily_counts : :func:`analogs.outcomes.daily_event_counts` of the tagged days
+    daily_counts : :func:`analogs.stages.outcomes.daily_event_counts` of the tagged days
         (indexed by day, one column per kind and ``total``).
     confidence : level of the Clopper-Pearson interval of ``p_any_event``.
 
@@ -231,7 +231,7 @@ def outcomes_by_regime_and_month(tags, daily_counts, *, confidence=0.9) -> pd.Da
     if not isinstance(daily_counts, pd.DataFrame) or "total" not in daily_counts.columns:
         raise AnalogsInputError(
             f"The 'daily_counts' parameter of {owner} must be the DataFrame of "
-            "analogs.outcomes.daily_event_counts (a 'total' column).")
+            "analogs.stages.outcomes.daily_event_counts (a 'total' column).")
     counts = daily_counts.set_axis(pd.DatetimeIndex(daily_counts.index).normalize(), axis=0)
     counts = counts[~counts.index.duplicated()]
     missing = tags.index.difference(counts.index)
@@ -304,7 +304,7 @@ def regime_composites(store, months=None, *, files=None) -> xr.Dataset:
     row_of_day = pd.Series(np.arange(len(store.days)), index=store.days)
     archive = None
     if files is not None:
-        from .sources import open_archive, regrid_to
+        from analogs.stages.sources import open_archive, regrid_to
         lat, lon = store.grid
         archive = regrid_to(open_archive(files, fields=store.fields, progress=False)[store.fields],
                             lat, lon)
@@ -480,7 +480,7 @@ def write_table(frame: pd.DataFrame, out_dir, name: str) -> dict:
 
 def write_composites(ds: xr.Dataset, path) -> Path:
     """Write regime composites as CF NetCDF, atomically."""
-    from .store import write_dataset
+    from analogs.workflows.store import write_dataset
     path = Path(path)
     with _atomic_path(path) as temporary:
         write_dataset(ds, temporary)
@@ -516,8 +516,8 @@ def build_climatology(store, out_dir, *, months=None, files=None, n_typical=5,
     """
     from tqdm.auto import tqdm
 
-    from . import plots
-    from .report import climatology_html, write_text_atomic
+    from analogs.presentation import figures as plots
+    from analogs.presentation.report import climatology_html, write_text_atomic
 
     owner = "build_climatology"
     months = _check_months(months, owner)
@@ -570,8 +570,8 @@ def build_climatology(store, out_dir, *, months=None, files=None, n_typical=5,
     bar.update()
 
     if hindcast and has_events and len(np.unique(store.times.year)) >= 2:
-        from .hindcast import leave_one_year_out
-        from .verify import roc_curve_points, reliability_table
+        from analogs.stages.hindcast import leave_one_year_out
+        from analogs.stages.scores import roc_curve_points, reliability_table
         defaults = store.query_defaults
         forecasts = leave_one_year_out(store.pcs.values, store.times, store.observed(),
                                        top=defaults.get("top", 20),

@@ -1,0 +1,290 @@
+"""Workflow: build a store from archive files (read, climatology, EOFs, tags, skill, write)."""
+
+from __future__ import annotations
+
+import contextlib
+import json
+import warnings
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import xarray as xr
+
+from analogs import CAUTION, __version__
+from analogs.workflows import store as store_io
+from analogs._validation import check_choice, check_float, check_int
+from analogs.stages.daily_climatology import HarmonicClimatology
+from analogs.stages.eof import MultivariateEOF
+from analogs.errors import AnalogsInputError, StoreError
+from analogs.stages.index import INDEX_KINDS, AnalogIndex, recall_at_k
+from analogs.stages.outcomes import (
+    Region,
+    analog_weights,
+    cyclone_relative_composite,
+    daily_event_counts,
+    outcome_maps,
+    read_events,
+    summarize_outcomes,
+)
+from analogs.stages.selection import (DEFAULT_EXCLUDE, DEFAULT_SEPARATION, DEFAULT_TOP, DEFAULT_WINDOW,
+                    candidate_ids, find_analogs)
+
+WEIGHT_SCHEMES = ("equal", "inverse_distance", "gaussian")
+# The readers (sources), the regime diagnostics (regimes) and the hindcast are imported
+# inside the functions that use them: a query on an archive date needs none of them, and
+# the start-up of `analogs find` is part of a forecaster's wait.
+
+
+def _provenance(paths) -> list[dict]:
+    entries = []
+    for path in paths:
+        path = Path(path)
+        size = path.stat().st_size if path.is_file() else sum(
+            f.stat().st_size for f in path.rglob("*") if f.is_file())
+        entries.append({"path": str(path.resolve()), "bytes": size})
+    return entries
+
+
+def _region_from_config(config) -> Region:
+    if config is None:
+        return Region.whole()
+    return Region.from_dict(config)
+
+
+def _grid_box(ds) -> tuple[float, float, float, float]:
+    lat, lon = ds["lat"].values, ds["lon"].values
+    return float(lat.min()), float(lat.max()), float(lon.min()), float(lon.max())
+
+
+#: Half-sizes (degrees of latitude, longitude) of the synoptic-scale box over which the
+#: regime of a point region is diagnosed: a regime is a pattern, not a point value.
+SYNOPTIC_HALF_BOX = (7.5, 10.0)
+
+
+def _diagnostic_region(region: Region, ds) -> tuple[float, float, float, float]:
+    """The box, clipped to the grid, over which regime diagnostics are computed."""
+    south, north, west, east = _grid_box(ds)
+    if region.kind == "box":
+        box = (region.south, region.north, region.west, region.east)
+    elif region.kind == "point":
+        half_lat, half_lon = SYNOPTIC_HALF_BOX
+        box = (region.lat - half_lat, region.lat + half_lat,
+               region.lon - half_lon, region.lon + half_lon)
+    else:
+        return south, north, west, east
+    return (max(box[0], south), min(box[1], north), max(box[2], west), min(box[3], east))
+
+
+def build_store(paths, store, *, events=None, fields=None, n_modes=None, variance=None,
+                region=None, domain=None, hour=12, daily="instant", n_harmonics=3,
+                solver="auto", field_weights=None, chunks=None, index="auto", scheduler=None,
+                progress=True):
+    """Build (or rebuild) the store at ``store`` from archive ``paths``.
+
+    Parameters
+    ----------
+    paths : list of NetCDF / Zarr paths (see :func:`analogs.stages.sources.open_archive`).
+    store : directory to write; an existing store is replaced only when the build
+        succeeds.
+    events : path of the events table (CSV or Parquet), optional.
+    fields : fields to use (default: every supported field found).
+    n_modes, variance : EOF truncation, by count or by explained-variance target.
+    region : :class:`~analogs.stages.outcomes.Region` or text ``"S,N,W,E"`` / ``"LAT,LON,KM"``;
+        the default region for outcome statistics and regime diagnostics.
+    domain : (south, north, west, east) subset of the archive grid, optional.
+    hour, daily : how sub-daily data becomes one value a day.
+    n_harmonics : annual harmonics of the climatology.
+    solver : EOF solver, ``"auto" | "exact" | "randomized"``.
+    field_weights : dict field -> weight in the combined EOF (default equal).
+    chunks : dask chunks for out-of-core reading, e.g. ``{"time": 365}``.
+    scheduler : address of a ``dask.distributed`` scheduler (``"tcp://host:8786"``), or
+        ``"local"`` for a local cluster of processes; default: dask's threaded scheduler.
+        Only chunked (out-of-core) work is distributed.
+    index : ``"auto" | "flat" | "hnsw"``, the faiss index rebuilt at every load
+        (approximate HNSW above 500,000 days with ``"auto"``); for HNSW the recall@20
+        against exact search, with the season window applied, is measured and stored.
+
+    Returns
+    -------
+    AnalogStore, loaded from what was written.
+    """
+    if not paths:
+        raise AnalogsInputError("no archive files given: pass one or more NetCDF/Zarr files")
+    check_choice(index, "index", "build_store", INDEX_KINDS)
+    region = Region.parse(region) if isinstance(region, str) else (region or Region.whole())
+    with _dask_scheduler(scheduler):
+        return _build(paths, store, events=events, fields=fields, n_modes=n_modes,
+                      variance=variance, region=region, domain=domain, hour=hour, daily=daily,
+                      n_harmonics=n_harmonics, solver=solver, field_weights=field_weights,
+                      chunks=chunks, index=index, progress=progress)
+
+
+@contextlib.contextmanager
+def _dask_scheduler(address):
+    """Run the enclosed dask work on a distributed scheduler when one is named."""
+    if address is None:
+        yield
+        return
+    try:
+        from distributed import Client, LocalCluster
+    except ImportError:
+        raise AnalogsInputError("--scheduler needs the 'distributed' package: "
+                                "pip install 'analogs[distributed]'") from None
+    try:
+        if address == "local":
+            with LocalCluster(n_workers=2, threads_per_worker=1, dashboard_address=":0") as cluster, \
+                    Client(cluster):
+                yield
+        else:
+            with Client(address, timeout=30):
+                yield
+    except OSError as error:
+        raise AnalogsInputError(f"--scheduler {address}: cannot reach it ({error})") from None
+
+
+def _build(paths, store, *, events, fields, n_modes, variance, region, domain, hour, daily,
+           n_harmonics, solver, field_weights, chunks, index, progress):
+    from analogs.stages.regimes import tag_days
+    from analogs.stages.sources import open_archive
+    archive = open_archive(paths, fields=fields, region=domain, hour=hour, daily=daily,
+                           chunks=chunks, progress=progress)
+    if archive.sizes["time"] < 3:
+        raise AnalogsInputError(
+            f"the archive has {archive.sizes['time']} days; at least 3 are needed to build a store")
+    region.require_grid_points(archive["lat"].values, archive["lon"].values)
+    event_table = read_events(events) if events is not None else None
+
+    climatology = HarmonicClimatology(n_harmonics=n_harmonics).fit(archive)
+    anomalies = climatology.transform(archive)
+    eof = MultivariateEOF(n_modes, variance=variance, solver=solver,
+                          field_weights=field_weights).fit(anomalies)
+    pcs = eof.pcs_
+    errors = eof.training_error_.values
+    tags = tag_days(archive, _diagnostic_region(region, archive), progress=progress)
+
+    times = pd.DatetimeIndex(archive["time"].values)
+    index_info = _index_info(index, pcs.values, times)
+    skill = None
+    if event_table is not None and np.unique(times.year).size >= 2:
+        observed = daily_event_counts(event_table, times.normalize(), region)["total"].to_numpy() > 0
+        skill = skill_by_month(pcs.values, times, observed, region=region)
+    manifest = {
+        "config": {
+            "fields": list(archive.data_vars),
+            "n_modes_requested": n_modes,
+            "variance_requested": variance,
+            "n_modes": int(eof.n_modes_),
+            "solver": eof.solver_,
+            "n_harmonics": n_harmonics,
+            "climatology_method": climatology.method_,
+            "hour": hour,
+            "daily": daily,
+            "domain": list(domain) if domain is not None else list(_grid_box(archive)),
+            "region": region.to_dict(),
+            "field_weights": field_weights,
+        },
+        "archive": {
+            "n_days": int(len(times)),
+            "time_start": times[0].isoformat(),
+            "time_end": times[-1].isoformat(),
+            "n_lat": int(archive.sizes["lat"]),
+            "n_lon": int(archive.sizes["lon"]),
+            "inputs": _provenance(paths),
+            "missing_data": json.loads(archive.attrs.get("missing_data", "{}")),
+            "reconstruction_error": _error_summary(errors),
+        },
+        "events": None if event_table is None else {
+            "source": str(Path(events).resolve()),
+            "n_events": int(len(event_table)),
+            "kinds": sorted(event_table["kind"].unique().tolist()),
+        },
+        "skill": skill,
+        "index": index_info,
+    }
+    with store_io.writing(store, manifest) as staged:
+        basis = xr.Dataset(coords={"lat": archive["lat"], "lon": archive["lon"]},
+                           attrs={"title": "analogs store basis", "Conventions": "CF-1.8",
+                                  "analogs_version": __version__})
+        store_io.write_dataset(basis, staged / store_io.BASIS)
+        store_io.write_dataset(climatology.to_dataset(), staged / store_io.BASIS,
+                               group="climatology", mode="a")
+        store_io.write_dataset(eof.to_dataset(), staged / store_io.BASIS, group="eof", mode="a")
+        scores = xr.Dataset({"pcs": pcs.astype("float64")},
+                            attrs={"title": "analogs store principal components",
+                                   "Conventions": "CF-1.8"})
+        store_io.write_dataset(scores, staged / store_io.SCORES)
+        if event_table is not None:
+            store_io.write_table(event_table, staged / store_io.EVENTS)
+        store_io.write_table(tags.reset_index(drop=True), staged / store_io.TAGS)
+    from analogs.workflows.analog_store import AnalogStore
+    return AnalogStore.load(store)
+
+
+def _index_info(kind, vectors, times) -> dict:
+    """The index kind to rebuild at load; for HNSW, its measured recall@20."""
+    built = AnalogIndex(kind=kind).fit(vectors)
+    info = {"kind": built.kind_}
+    if built.kind_ != "flat":
+        info["recall_at_20"] = recall_at_k(
+            built, vectors, k=20,
+            allowed_for=lambda row: candidate_ids(times, times[row], window=DEFAULT_WINDOW,
+                                                  exclude=DEFAULT_EXCLUDE))
+        info["recall_method"] = ("mean recall@20 against exact search, 200 archive days, "
+                                 f"season window +/-{DEFAULT_WINDOW} d")
+    return info
+
+
+def _error_summary(errors) -> dict:
+    """Median and upper percentiles of the archive's EOF reconstruction error, the
+    yardstick against which appended days are judged (drift detection)."""
+    errors = np.asarray(errors, dtype=float)
+    return {"median": float(np.median(errors)), "p99": float(np.percentile(errors, 99)),
+            "max": float(errors.max())}
+
+
+def _quadrant_summary(composite: pd.DataFrame) -> dict:
+    """{kind: {quadrant: share}} of a cyclone-relative composite, for JSON."""
+    summary = {}
+    for (kind, quadrant), row in composite.iterrows():
+        summary.setdefault(kind, {})[quadrant] = {"events": int(row["total"]),
+                                                  "share": float(row["share"])}
+    return summary
+
+
+def skill_by_month(pcs, times, observed, *, region, top=DEFAULT_TOP, window=DEFAULT_WINDOW,
+                   separation=DEFAULT_SEPARATION) -> dict:
+    """Cross-validated skill of the default query settings, overall and by month.
+
+    A leave-one-year-out hindcast (:func:`analogs.stages.hindcast.leave_one_year_out`) of "at
+    least one event in the region", scored by the Brier skill score against the
+    other years' season-window climatology. Stored in the manifest at build so that
+    every query can say how much this kind of guidance has been worth.
+    """
+    from analogs.stages.hindcast import leave_one_year_out, score_hindcast
+    hindcast = leave_one_year_out(pcs, times, observed, top=top, window=window,
+                                  separation=separation)
+    months = pd.DatetimeIndex(hindcast["time"]).month
+    by_month = {}
+    for month in range(1, 13):
+        part = hindcast[months == month]
+        if len(part) == 0:
+            continue
+        p, o, ref = (part[c].to_numpy() for c in ("forecast", "observed", "climatology"))
+        reference_score = float(np.mean((ref - o) ** 2))
+        by_month[str(month)] = {
+            "n_days": int(len(part)), "base_rate": float(o.mean()),
+            "brier_score": float(np.mean((p - o) ** 2)),
+            "brier_skill_score": None if reference_score == 0 else
+            float(1.0 - np.mean((p - o) ** 2) / reference_score),
+        }
+    overall = score_hindcast(hindcast, n_resamples=200)
+    return {"method": "leave-one-year-out hindcast of P(at least one event in region)",
+            "region": region.to_dict(), "top": top, "window_days": window,
+            "separation_days": separation,
+            "brier_skill_score": overall["brier_skill_score"],
+            "brier_skill_score_ci": overall["brier_skill_score_ci"],
+            "roc_auc": overall["roc_auc"], "by_month": by_month}
+
+
