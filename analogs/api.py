@@ -4,12 +4,19 @@
 >>> store = build_store(["archive/zg500_2001.nc", ...], "store", events="events.csv")
 >>> result = AnalogStore.load("store").find(date="2005-06-14", top=20)
 >>> result.analogs            # pandas DataFrame: rank, date, distance, regime, events
->>> result.outcomes           # probabilities, intervals, counts, climatology
+>>> result.outcomes           # OutcomeSummary: probabilities, intervals, counts, climatology
+>>> result.outcomes.by_kind   # pandas DataFrame by event kind
+>>> result.to_dict()          # the JSON of `analogs find --json`
+
+``find`` returns an :class:`analogs.results.FindResult`; ``AnalogResult`` is its earlier
+name, kept so that existing imports keep working.
 
 The CLI is a thin layer over this module; the work is done in :mod:`analogs.workflows`.
 """
 
-from analogs.workflows.analog_store import AnalogResult, AnalogStore
+from analogs.results import AnalogResult, FindResult, OutcomeSummary
+from analogs.workflows.analog_store import AnalogStore
 from analogs.workflows.build import build_store, skill_by_month
 
-__all__ = ["AnalogResult", "AnalogStore", "build_store", "skill_by_month"]
+__all__ = ["AnalogResult", "AnalogStore", "FindResult", "OutcomeSummary", "build_store",
+           "skill_by_month"]

@@ -40,12 +40,14 @@ def test_store_files(demo_store, tmp_path):
 
 def test_maps_composites_and_forecast_file(demo_store, demo_files, tmp_path, capsys):
     from analogs.workflows.demo import write_forecast_like_field
-    from analogs.stages.seasonal import regime_composites, write_composites
+    from analogs.workflows.briefing import store_regime_composites
+    from analogs.workflows.files import write_netcdf
     from analogs.stages.sources import open_archive
     maps = tmp_path / "maps.nc"
     assert main(["find", "--store", str(demo_store.path), "--date",
                  str(demo_store.days[180].date()), "--maps", str(maps), "--json"]) == 0
-    composites = write_composites(regime_composites(demo_store), tmp_path / "composites.nc")
+    composites = tmp_path / "composites.nc"
+    write_netcdf(store_regime_composites(demo_store), composites)
     forecast = write_forecast_like_field(open_archive(demo_files, progress=False),
                                          pd.Timestamp(demo_store.times[100]), tmp_path / "fc.nc")
     for path in (maps, composites, forecast):

@@ -166,3 +166,96 @@ def test_console_script_exit_status_without_traceback(tmp_path):
     assert completed.returncode == 2
     assert "Traceback" not in completed.stderr
     assert "does not exist" in completed.stderr
+
+
+def test_find_result_is_labelled(demo_store):
+    """`find` returns labelled objects (the README's `result.analogs` and `result.outcomes`):
+    a DataFrame of analogs, outcome statistics as floats (NaN, never None) and tables, and
+    `to_dict()` equal to what `analogs find --json` prints."""
+    from analogs.results import FindResult, OutcomeSummary
+    day = str(demo_store.days[520].date())
+    result = demo_store.find(date=day, top=9, weights="gaussian")
+    assert isinstance(result, FindResult) and isinstance(result.outcomes, OutcomeSummary)
+    analogs = result.analogs
+    assert list(analogs.columns[:6]) == ["rank", "date", "distance", "regime",
+                                         "regime_confidence", "events_total"]
+    kind_columns = [f"events_{kind}" for kind in result.kinds]
+    assert result.kinds == ["hail", "tornado", "wind"]
+    assert (analogs[kind_columns].sum(axis=1) == analogs["events_total"]).all()
+    outcomes = result.outcomes
+    assert outcomes.p_any_event == pytest.approx(np.mean(analogs["events_total"] > 0))
+    assert outcomes["p_any_event"] == outcomes.p_any_event  # item access, as the earlier dict
+    assert list(outcomes.by_kind.index) == result.kinds
+    assert outcomes.weighted is not None and outcomes.weighted.n_effective <= 9
+    assert result.region is not None and result.target_fields is None
+    data = result.to_dict()
+    assert data["analogs"][0]["events"]["by_kind"] == {
+        kind: int(analogs[f"events_{kind}"].iloc[0]) for kind in result.kinds}
+    assert json.dumps(data, allow_nan=False)
+
+
+def test_field_report_opens_and_regrids_its_target_once(demo_store, demo_files, tmp_path,
+                                                        monkeypatch, capsys):
+    """One `find --field F --report D` opens F once, regrids it once, evaluates the daily
+    climatology at most twice (the target's anomaly; the analog days for the figures) and
+    reconstructs fields from the EOFs at most twice (it was 2 opens, 3 regrids, 8
+    climatology evaluations and 7 reconstructions before the find workflow kept its
+    arrays). A date target needs no file and one evaluation of each."""
+    from collections import Counter
+
+    import analogs.stages.sources as sources
+    from analogs.stages.daily_climatology import HarmonicClimatology
+    from analogs.stages.eof import MultivariateEOF
+
+    archive = open_archive(demo_files, progress=False)
+    field = write_forecast_like_field(archive, demo_store.times[540], tmp_path / "field.nc")
+    calls = Counter()
+
+    def counting(owner, name):
+        original = getattr(owner, name)
+
+        def counted(*args, **kwargs):
+            calls[name] += 1
+            return original(*args, **kwargs)
+        monkeypatch.setattr(owner, name, counted)
+
+    counting(sources, "open_target")
+    counting(sources, "regrid_to")
+    counting(HarmonicClimatology, "predict")  # transform evaluates through predict
+    counting(MultivariateEOF, "reconstruct")
+    store = str(demo_store.path)
+    assert main(["find", "--store", store, "--field", str(field),
+                 "--report", str(tmp_path / "field_report")]) == 0
+    assert (tmp_path / "field_report" / "index.html").is_file()
+    assert calls["open_target"] == 1 and calls["regrid_to"] == 1
+    assert 1 <= calls["predict"] <= 2 and 1 <= calls["reconstruct"] <= 2
+    calls.clear()
+    day = str(demo_store.days[540].date())
+    assert main(["find", "--store", store, "--date", day,
+                 "--report", str(tmp_path / "date_report")]) == 0
+    assert calls == Counter(predict=1, reconstruct=1)
+    capsys.readouterr()
+
+
+def test_report_figures_take_the_querys_arrays(demo_store, demo_files, tmp_path):
+    """The report draws the target's regridded fields kept in the result, and the mean of
+    the analog days equals the climatology of those days plus the reconstruction of
+    their mean PCs (the EOF reconstruction is affine in the PCs)."""
+    from analogs.stages.sources import open_target, regrid_to
+    from analogs.workflows.find import day_fields, report_figures
+    archive = open_archive(demo_files, progress=False)
+    field = write_forecast_like_field(archive, demo_store.times[200], tmp_path / "field.nc")
+    result = demo_store.find(field=field, top=5)
+    lat, lon = demo_store.grid
+    expected = regrid_to(open_target(field)[demo_store.fields], lat, lon)
+    xr.testing.assert_allclose(result.target_fields, expected)
+    rows = result.analogs["row"].to_numpy()
+    fields = day_fields(demo_store, rows)
+    assert fields["z500"].dims == ("analog", "lat", "lon") and fields["z500"].attrs["units"]
+    climate = demo_store.climatology.predict(demo_store.times[rows])["z500"].mean("time")
+    anomaly = demo_store.eof.reconstruct(demo_store.pcs.isel(time=rows).mean("time"))["z500"]
+    np.testing.assert_allclose(fields["z500"].mean("analog").values,
+                               climate.values + anomaly.values, rtol=1e-12)
+    figures = report_figures(demo_store, result)
+    assert len(figures) == 4 and figures[0][0].startswith("Target")
+    assert all(png.startswith(b"\x89PNG") for _, png in figures)

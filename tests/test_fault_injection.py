@@ -92,7 +92,7 @@ def test_killed_build_leaves_previous_store(shared, tmp_path, pause_after):
     assert f".{store_path.name}.tmp-" in paused   # killed inside the staging directory
     assert _staging_dirs(store_path), "the killed writer left its staging directory"
     assert rh.file_digests(store_path) == before_bytes
-    store_io.verify(store_path)
+    store_io.check_checksums(store_path)
     assert _answer(store_path) == before_answer
     if pause_after != 1:
         return
@@ -101,7 +101,7 @@ def test_killed_build_leaves_previous_store(shared, tmp_path, pause_after):
     rebuilt = build_store(files, store_path, progress=False)
     assert _staging_dirs(store_path) == []
     assert len(rebuilt.times) == 200
-    store_io.verify(store_path)
+    store_io.check_checksums(store_path)
 
 
 def _start(arguments):
@@ -129,11 +129,11 @@ def test_killed_update_leaves_store_exactly_as_before(shared, tmp_path):
     assert rh.file_digests(store_path) == before_bytes
     assert _answer(store_path) == before_answer
     # The next append works and cleans up; a repeat of it changes nothing (idempotent).
-    summary = AnalogStore.load(store_path).update(new_files, progress=False)
-    assert summary["days_added"] == 15 and _staging_dirs(store_path) == []
+    updated = AnalogStore.load(store_path).update(new_files, progress=False)
+    assert updated.last_update["days_added"] == 15 and _staging_dirs(store_path) == []
     after = rh.file_digests(store_path)
     again = AnalogStore.load(store_path).update(new_files, progress=False)
-    assert again["days_added"] == 0 and rh.file_digests(store_path) == after
+    assert again.last_update["days_added"] == 0 and rh.file_digests(store_path) == after
 
 
 def test_kill_at_any_moment_gives_old_or_new_store(shared, tmp_path):
@@ -148,7 +148,7 @@ def test_kill_at_any_moment_gives_old_or_new_store(shared, tmp_path):
         time.sleep(0.001)
     child.send_signal(signal.SIGKILL)
     child.wait(timeout=30)
-    manifest = store_io.verify(store_path)
+    manifest = store_io.check_checksums(store_path)
     if child.returncode == -signal.SIGKILL:
         assert rh.file_digests(store_path) == before_bytes
     else:
@@ -175,7 +175,7 @@ def test_second_writer_fails_clearly_after_timeout(shared, tmp_path, capsys, mon
     assert code == 2 and waited >= 1.0
     lines = [line for line in err.splitlines() if not line.startswith("analogs: warning:")]
     assert len(lines) == 1 and "is locked by another writer" in lines[0] and "waited 1 s" in lines[0]
-    store_io.verify(store_path)
+    store_io.check_checksums(store_path)
 
 
 def test_second_writer_waits_for_the_first(tmp_path):

@@ -7,8 +7,9 @@ from sklearn.metrics import brier_score_loss
 from sklearn.neighbors import NearestNeighbors
 
 from analogs.errors import AnalogsInputError
-from analogs.stages.hindcast import leave_one_year_out, score_hindcast, tune
-from analogs.stages.selection import candidate_ids
+from analogs.stages.hindcast import held_out_analogs, leave_one_year_out, score_hindcast, tune
+from analogs.stages.index import AnalogIndex, faiss_threads
+from analogs.stages.selection import candidate_ids, find_analogs
 
 TIMES = pd.date_range("1991-01-01T12", "1998-12-31T12", freq="D")
 
@@ -76,3 +77,60 @@ def test_bad_hindcast_input(synthetic):
         leave_one_year_out(pcs[:len(one_year)], one_year, observed[:len(one_year)])
     with pytest.raises(AnalogsInputError, match="'method' parameter of leave_one_year_out"):
         leave_one_year_out(pcs, TIMES, observed, method="persistence")
+
+
+#: Archive days at the year's turn (first and last day of the archive among them), a
+#: leap day, and days through the seasons.
+SAMPLE_ROWS = tuple(TIMES.normalize().get_indexer(pd.to_datetime([
+    "1991-01-01", "1991-01-04", "1992-02-29", "1993-03-01", "1994-06-21", "1995-09-30",
+    "1996-12-31", "1997-01-01", "1998-12-31"])))
+
+
+@pytest.mark.parametrize("top, window, separation", [(20, 45, 3), (12, 30, 0), (7, 10, 5)])
+def test_hindcast_analogs_are_the_live_query_selection(synthetic, top, window, separation):
+    """The analogs the hindcast takes for a day are exactly what the live query's
+    find_analogs returns for that day with no exclusion window and the day's own year
+    removed by ``restrict``: one selection rule (season window, de-clustering, fetch
+    size) for both."""
+    pcs, _ = synthetic
+    chosen = held_out_analogs(pcs, TIMES, rows=SAMPLE_ROWS, top=top, window=window,
+                              separation=separation)
+    assert sorted(set(chosen["target"])) == sorted(SAMPLE_ROWS)
+    index = AnalogIndex(kind="flat").fit(pcs)
+    for row in SAMPLE_ROWS:
+        target = TIMES[row]
+        live = find_analogs(index, TIMES, pcs[row], target_time=target, top=top,
+                            window=window, exclude=None, separation=separation,
+                            restrict=TIMES.year != target.year)
+        held_out = chosen[chosen["target"] == row]
+        assert len(live) == top
+        np.testing.assert_array_equal(held_out["row"].to_numpy(), live["row"].to_numpy())
+        np.testing.assert_array_equal(held_out["rank"].to_numpy(), live["rank"].to_numpy())
+        np.testing.assert_allclose(held_out["distance"].to_numpy(), live["distance"].to_numpy())
+        assert (pd.DatetimeIndex(held_out["time"]).year != target.year).all()
+
+
+def test_hindcast_forecast_is_the_share_of_its_analogs_with_the_event(synthetic):
+    """leave_one_year_out's forecast of a day is the event frequency over exactly the
+    analogs held_out_analogs lists for it."""
+    pcs, observed = synthetic
+    hindcast = leave_one_year_out(pcs, TIMES, observed, top=10, n_modes=4).set_index("time")
+    chosen = held_out_analogs(pcs, TIMES, rows=SAMPLE_ROWS, top=10, n_modes=4)
+    for row in SAMPLE_ROWS:
+        rows = chosen.loc[chosen["target"] == row, "row"].to_numpy()
+        assert hindcast.loc[TIMES[row], "forecast"] == pytest.approx(observed[rows].mean())
+        assert hindcast.loc[TIMES[row], "n_analogs"] == rows.size == 10
+
+
+def test_hindcast_restores_faiss_threads(synthetic):
+    """The hindcast searches on one thread inside a restoring context: the process-wide
+    faiss thread count is the same afterwards (it used to be left at 1)."""
+    import faiss
+
+    pcs, observed = synthetic
+    with faiss_threads(2):
+        leave_one_year_out(pcs, TIMES, observed, top=5, months=[1])
+        assert faiss.omp_get_max_threads() == 2
+    before = faiss.omp_get_max_threads()
+    leave_one_year_out(pcs, TIMES, observed, top=5, months=[2])
+    assert faiss.omp_get_max_threads() == before

@@ -5,7 +5,7 @@ import pytest
 from sklearn.neighbors import NearestNeighbors
 
 from analogs.errors import AnalogsInputError, NotFittedError
-from analogs.stages.index import AnalogIndex
+from analogs.stages.index import AnalogIndex, faiss_threads
 
 
 @pytest.fixture(scope="module")
@@ -38,15 +38,17 @@ def test_allowed_ids_restrict_the_search(vectors):
 @pytest.mark.parametrize("kind", ["flat", "hnsw"])
 @pytest.mark.parametrize("step", [1, 2, 199])
 def test_subset_and_bitmap_searches_agree_with_brute_force(vectors, kind, step):
-    """Every 199th id (15 of 3000: an exact search of the subset), every 2nd or every
+    """Every 199th id (15 of 3000: an exact search of the subset), every 2nd (for a
+    batch of 8 queries on a flat index, a subset too: its share is per query) or every
     id (faiss bitmap ID selection): the neighbours of scikit-learn over the allowed
     rows (all of them for flat search and for the subset, recall >= 0.95 for HNSW)."""
     from analogs.stages.index import SUBSET_SEARCH_MAX_SHARE
 
     allowed = np.arange(5, len(vectors), step)
     index = AnalogIndex(kind=kind).fit(vectors)
-    subset = allowed.size <= SUBSET_SEARCH_MAX_SHARE[kind] * len(vectors)
-    assert subset == (step == 199)
+    batch = 8 if kind == "flat" else 1
+    subset = allowed.size <= SUBSET_SEARCH_MAX_SHARE[kind] * batch * len(vectors)
+    assert subset == (step == 199 or (kind == "flat" and step == 2))
     k = min(10, allowed.size)
     distances, ids = index.search(vectors[:8] + 0.2, k, allowed=allowed)
     reference = NearestNeighbors(n_neighbors=k, algorithm="brute").fit(vectors[allowed])
@@ -88,15 +90,39 @@ def test_unfitted_and_bad_params(vectors):
         AnalogIndex(kind="hnsw", build_threads=0).fit(vectors)
 
 
-def test_threaded_hnsw_build_keeps_recall_and_search_threads(vectors):
+def test_threaded_hnsw_build_keeps_recall_and_restores_threads(vectors):
     """A graph built on two threads finds the exact neighbours as well (recall@10 >=
-    0.95 against scikit-learn brute force), and the build leaves faiss at the search
-    thread count."""
+    0.95 against scikit-learn brute force), and neither the build nor the (one-thread)
+    search leaves faiss' process-wide thread count changed."""
     import faiss
 
     queries = vectors[::100] + 0.3
-    index = AnalogIndex(kind="hnsw", build_threads=2).fit(vectors)
-    assert faiss.omp_get_max_threads() == index.n_threads == 1
+    with faiss_threads(3):
+        index = AnalogIndex(kind="hnsw", build_threads=2).fit(vectors)
+        assert faiss.omp_get_max_threads() == 3
+        found = index.search(queries, 10)[1]
+        assert faiss.omp_get_max_threads() == 3
     exact = NearestNeighbors(n_neighbors=10, algorithm="brute").fit(vectors).kneighbors(queries)[1]
-    found = index.search(queries, 10)[1]
     assert np.mean([len(set(a) & set(e)) / 10 for a, e in zip(found, exact)]) >= 0.95
+
+
+def test_faiss_threads_sets_and_restores_even_on_error():
+    """The context sets the count inside and restores the previous one on the way out,
+    also when the enclosed work raises; nested contexts unwind in order."""
+    import faiss
+
+    before = faiss.omp_get_max_threads()
+    with faiss_threads(3):
+        assert faiss.omp_get_max_threads() == 3
+        with faiss_threads(1):
+            assert faiss.omp_get_max_threads() == 1
+        assert faiss.omp_get_max_threads() == 3
+    assert faiss.omp_get_max_threads() == before
+    with pytest.raises(ZeroDivisionError, match="division by zero"):
+        with faiss_threads(2):
+            1 / 0
+    assert faiss.omp_get_max_threads() == before
+    with pytest.raises(AnalogsInputError, match="'n_threads' parameter of faiss_threads"):
+        with faiss_threads(0):
+            pass
+    assert faiss.omp_get_max_threads() == before

@@ -29,8 +29,9 @@ from analogs.stages.outcomes import (
     read_events,
     report_density,
     summarize_outcomes,
-    write_maps,
 )
+from analogs.results import OutcomeSummary
+from analogs.workflows.files import write_maps
 
 GEOD = Geod(ellps="WGS84")
 
@@ -182,7 +183,8 @@ def test_grid_mask_and_empty_region():
     small = Region.point(35.3, -97.4, 10).require_grid_points(lat, lon)
     assert small.sum() == 1 and small[10, 13]  # nearest grid point (35, -97)
     with pytest.raises(AnalogsInputError,
-                       match=r"The 'region' option \(box .*\) contains no grid points"):
+                       match=r"The 'region' option must be a region holding at least one grid point "
+                             r"\(the grid covers lat .*\)\. Got 'box .*' instead"):
         Region.box(0, 10, 0, 10).require_grid_points(lat, lon)
 
 
@@ -212,7 +214,7 @@ def test_daily_event_counts_by_hand(small_events):
 
 def test_unknown_kind_lists_known(small_events):
     with pytest.raises(AnalogsInputError,
-                       match=r"unknown event kind\(s\) 'snow'; the events have 'hail', "
+                       match=r"must be kinds of the events table \('hail', "
                              r"'tornado', 'wind'"):
         daily_event_counts(small_events, ["2020-05-01"], kinds=["snow"])
 
@@ -285,30 +287,41 @@ def test_summarize_outcomes_by_hand():
     analogs = _counts([0, 1, 4, 0, 12, 2, 0, 0, 1, 3], hail=[0, 1, 0, 0, 5, 0, 0, 0, 0, 3])
     clim = _counts([0] * 15 + [1] * 5)
     out = summarize_outcomes(analogs, clim)
-    assert out["n_analogs"] == 10 and out["p_any_event"] == 0.6
+    assert isinstance(out, OutcomeSummary)
+    assert out.n_analogs == 10 and out.p_any_event == 0.6
     ci = stats.binomtest(6, 10).proportion_ci(confidence_level=0.9, method="exact")
-    assert out["p_any_event_ci"] == pytest.approx([ci.low, ci.high])
-    assert out["climatology_p_any_event"] == 0.25
-    assert out["ratio_to_climatology"] == pytest.approx(2.4)
-    assert out["mean_events"] == pytest.approx(2.3)
-    assert out["p_at_least"] == {"1": 0.6, "3": 0.3, "10": 0.1}
-    assert out["count_percentiles"]["50"] == pytest.approx(np.percentile(analogs["total"], 50))
-    assert out["by_kind"]["hail"]["p_any"] == 0.3
-    assert out["by_kind"]["hail"]["climatology_p_any"] == 0.25
-    json.dumps(out, allow_nan=False)
+    assert out.p_any_event_ci == pytest.approx((ci.low, ci.high))
+    assert out.climatology_p_any_event == 0.25
+    assert out.ratio_to_climatology == pytest.approx(2.4)
+    assert out.mean_events == pytest.approx(2.3)
+    assert out.thresholds["p_at_least"].to_dict() == {1: 0.6, 3: 0.3, 10: 0.1}
+    assert out.thresholds.index.name == "min_events"
+    assert out.count_percentiles[50] == pytest.approx(np.percentile(analogs["total"], 50))
+    assert out.by_kind.loc["hail", "p_any"] == 0.3
+    assert out.by_kind.loc["hail", "climatology_p_any"] == 0.25
+    assert out.by_kind.index.name == "kind"
+    data = out.to_dict()  # the JSON block: string keys, [lo, hi] lists
+    assert data["p_at_least"] == {"1": 0.6, "3": 0.3, "10": 0.1}
+    assert data["count_percentiles"]["50"] == out.count_percentiles[50]
+    assert data["p_any_event_ci"] == list(out.p_any_event_ci)
+    assert data["by_kind"]["hail"]["p_any_ci"] == [out.by_kind.loc["hail", "p_any_low"],
+                                                   out.by_kind.loc["hail", "p_any_high"]]
+    json.dumps(data, allow_nan=False)
 
 
 def test_summarize_outcomes_weighted_and_zero_climatology():
     analogs = _counts([0, 1, 0, 2])
     out = summarize_outcomes(analogs, _counts([0, 0, 0]), weights=[1, 3, 1, 3])
-    assert out["ratio_to_climatology"] is None
-    weighted = out["weighted"]
-    assert weighted["p_any_event"] == pytest.approx(0.75)
-    assert weighted["mean_events"] == pytest.approx((3 + 6) / 8)
-    assert weighted["n_effective"] == pytest.approx(64 / 20)  # Kish (1965)
-    lo, hi = weighted["p_any_event_ci"]
+    assert np.isnan(out.ratio_to_climatology)  # undefined: NaN in the statistics
+    assert out.to_dict()["ratio_to_climatology"] is None  # null only in the JSON
+    weighted = out.weighted
+    assert weighted.p_any_event == pytest.approx(0.75)
+    assert weighted.mean_events == pytest.approx((3 + 6) / 8)
+    assert weighted.n_effective == pytest.approx(64 / 20)  # Kish (1965)
+    assert np.isnan(weighted.ratio_to_climatology)
+    lo, hi = weighted.p_any_event_ci
     assert lo < 0.75 < hi
-    json.dumps(out, allow_nan=False)
+    json.dumps(out.to_dict(), allow_nan=False)
     with pytest.raises(AnalogsInputError, match=r"'weights' parameter of summarize_outcomes"):
         summarize_outcomes(analogs, analogs, weights=[1, 2])
 
@@ -322,9 +335,9 @@ def test_p_any_event_in_unit_interval_and_inside_ci(totals, raw_weights, method)
     (binomial intervals contain the sample proportion; Brown et al. 2001)."""
     counts = _counts(totals)
     out = summarize_outcomes(counts, counts, weights=raw_weights[:len(totals)], method=method)
-    for block in (out, out["weighted"]):
-        lo, hi = block["p_any_event_ci"]
-        assert 0.0 <= lo <= block["p_any_event"] <= hi <= 1.0
+    for block in (out, out.weighted):
+        lo, hi = block.p_any_event_ci
+        assert 0.0 <= lo <= block.p_any_event <= hi <= 1.0
 
 
 # --------------------------------------------------------------------------- maps
@@ -482,3 +495,20 @@ def test_cyclone_composite_errors(small_events):
         cyclone_relative_composite(small_events, centres, distance_bins_km=(0, 500, 200))
     with pytest.raises(AnalogsInputError, match=r"'frame' parameter"):
         cyclone_relative_composite(small_events, centres, frame="storm")
+
+
+def test_summarize_outcomes_without_climatology_days_is_nan_not_none():
+    """No climatology days: the climatology statistics are undefined, NaN in the summary
+    (labelled numbers stay floats) and null only in its JSON block."""
+    analogs = _counts([0, 2, 1], hail=[0, 1, 1])
+    out = summarize_outcomes(analogs, analogs.iloc[:0])
+    assert out.n_climatology_days == 0
+    for value in (out.climatology_p_any_event, out.climatology_mean_events,
+                  out.ratio_to_climatology, *out.thresholds["climatology_p_at_least"],
+                  *out.by_kind["climatology_p_any"]):
+        assert isinstance(value, float) and np.isnan(value)
+    data = out.to_dict()
+    assert data["climatology_p_any_event"] is None and data["ratio_to_climatology"] is None
+    assert set(data["climatology_p_at_least"].values()) == {None}
+    assert data["by_kind"]["hail"]["climatology_p_any"] is None
+    json.dumps(data, allow_nan=False)

@@ -1,6 +1,7 @@
-"""Figures rendered off-screen on the demo store: not blank, with the expected axes,
-titles and colour bars, and drawing the numbers they claim (references: numpy on the
-store's own reconstructions, scikit-learn's ROC area, outcome_maps)."""
+"""Figures rendered off-screen from arrays and tables of the demo store: not blank, with
+the expected axes, titles and colour bars, and drawing the numbers they claim
+(references: numpy on the store's own reconstructions, scikit-learn's ROC area,
+outcome_maps). The figure functions take no store: the fields are made here."""
 
 import io
 import subprocess
@@ -10,13 +11,15 @@ import matplotlib.image
 import numpy as np
 import pandas as pd
 import pytest
+import xarray as xr
 from sklearn.metrics import roc_auc_score
 
 from analogs.presentation import figures as plots
 from analogs.errors import AnalogsInputError
 from analogs.stages.hindcast import leave_one_year_out
 from analogs.stages.outcomes import outcome_maps
-from analogs.stages.seasonal import regime_composites, regime_frequency_by_month
+from analogs.stages.seasonal import regime_frequency_by_month
+from analogs.workflows.briefing import store_regime_composites
 from analogs.stages.scores import reliability_table, roc_curve_points
 
 #: Least variance of the RGBA pixel values (0-255) of a figure with content; a blank
@@ -45,6 +48,18 @@ def map_axes(figure):
     return [ax for ax in figure.axes if ax.get_label() != "<colorbar>"]
 
 
+def day_fields(store, rows) -> xr.Dataset:
+    """Full fields of archive rows, ``(time, lat, lon)``: the daily climatology of each
+    day plus its anomaly reconstructed from the kept EOFs (what the store can give)."""
+    rows = np.atleast_1d(rows)
+    climate = store.climatology.predict(store.times[rows])[store.fields]
+    anomaly = store.eof.reconstruct(store.pcs.isel(time=rows))[store.fields]
+    return xr.Dataset({name: (("time", "lat", "lon"), climate[name].values + anomaly[name].values,
+                              {"units": anomaly[name].attrs.get("units", "")})
+                       for name in store.fields},
+                      coords={"lat": anomaly["lat"].values, "lon": anomaly["lon"].values})
+
+
 @pytest.fixture(scope="module")
 def query(demo_store):
     tags = demo_store.tags
@@ -60,7 +75,7 @@ def test_blank_figure_fails_the_check():
 
 
 def test_target_map(demo_store, query):
-    fields = plots.store_day_fields(demo_store, [demo_store.day_row(query.target["date"])])
+    fields = day_fields(demo_store, demo_store.day_row(query.target["date"])).isel(time=0)
     figure = plots.target_map(fields, region=demo_store.region,
                               when=f"Target {query.target['date']}", source="EOF reconstruction")
     assert_not_blank(figure)
@@ -84,39 +99,61 @@ def test_target_map_needs_height():
 
 
 def test_analog_panel(demo_store, query):
-    figure = plots.analog_panel(demo_store, query, n=6)
+    drawn = query.analogs.head(6)
+    fields = day_fields(demo_store, drawn["row"].to_numpy()).rename(time="analog")
+    events = demo_store.events[demo_store.events["day"].isin(pd.to_datetime(drawn["date"]))]
+    figure = plots.analog_panel(fields, drawn, events, region=demo_store.region,
+                                title=f"Closest past days to {query.target['date']}")
     assert_not_blank(figure)
     axes = map_axes(figure)
     assert len(axes) == 6
-    for ax, analog in zip(axes, query.analogs.head(6).itertuples()):
+    for ax, analog in zip(axes, drawn.itertuples()):
         assert analog.date in ax.get_title() and analog.regime in ax.get_title()
+        # The count in the title is the analogs table's (events in the region).
+        assert f"{analog.events_total} event" in ax.get_title()
+        assert "in region" in ax.get_title()
     assert query.target["date"] in figure.get_suptitle()
     # Events plotted: the markers of the first analog's day are its events, by kind.
-    first = query.analogs.iloc[0]
+    first = drawn.iloc[0]
     day_events = demo_store.events[demo_store.events["day"] == pd.Timestamp(first["date"])]
     plotted = sum(len(c.get_offsets()) for c in axes[0].collections
                   if c.get_label() in set(demo_store.events["kind"]))
     assert plotted == len(day_events)
 
 
+def test_analog_panel_refuses_mismatched_fields(demo_store, query):
+    fields = day_fields(demo_store, query.analogs["row"].to_numpy()[:2]).rename(time="analog")
+    with pytest.raises(AnalogsInputError, match="2 analog fields for 3 analog rows"):
+        plots.analog_panel(fields, query.analogs.head(3), None)
+
+
 def test_composite_difference(demo_store, query):
-    row = demo_store.day_row(query.target["date"])
-    target = plots.store_day_fields(demo_store, [row])
-    figure = plots.composite_difference(demo_store, query, target)
+    rows = query.analogs["row"].to_numpy()
+    target = day_fields(demo_store, demo_store.day_row(query.target["date"])).isel(time=0)
+    mean = day_fields(demo_store, rows).mean("time").assign_attrs(n_days=rows.size)
+    figure = plots.composite_difference(mean, target, region=demo_store.region,
+                                        title=f"Analogs of {query.target['date']}")
     assert_not_blank(figure)
     assert len(figure.axes) == 4
     labels = colourbar_labels(figure)
     assert any("g/kg" in label for label in labels)
     assert any("minus target" in label and "(gpm)" in label for label in labels)
     left, right = map_axes(figure)
-    assert "12 analog days" in left.get_title() and query.target["date"] in right.get_title()
+    assert "12 analog days" in left.get_title() and "minus target" in right.get_title()
+    assert query.target["date"] in figure.get_suptitle()
     # Reference: numpy mean over the analog days of climatology + reconstruction.
-    rows = query.analogs["row"].to_numpy()
     daily = (demo_store.climatology.predict(demo_store.times[rows])["z500"].values
              + demo_store.eof.reconstruct(demo_store.pcs.isel(time=rows))["z500"].values)
     expected = daily.mean(axis=0) - target["z500"].values
     shaded = np.asarray(right.collections[0].get_array()).reshape(expected.shape)
     np.testing.assert_allclose(shaded, expected, rtol=1e-9, atol=1e-6)
+
+
+def test_composite_difference_needs_one_grid(demo_store, query):
+    target = day_fields(demo_store, 0).isel(time=0)
+    coarse = target.isel(lat=slice(None, None, 2))
+    with pytest.raises(AnalogsInputError, match="one grid"):
+        plots.composite_difference(target, coarse)
 
 
 def test_probability_map(demo_store, query):
@@ -193,7 +230,7 @@ def test_monthly_frequency_chart(demo_store):
 
 
 def test_composite_maps(demo_store):
-    composites = regime_composites(demo_store, [6, 7, 8])
+    composites = store_regime_composites(demo_store, [6, 7, 8])
     figure = plots.composite_maps(composites, region=demo_store.region)
     assert_not_blank(figure)
     present = int((composites["n_days"] > 0).sum())
@@ -213,16 +250,6 @@ def test_outcome_chart(demo_store):
     assert "at least one event" in ax.get_title()
 
 
-def test_find_figures_for_a_date_target(demo_store, query):
-    figures = plots.find_figures(demo_store, query)
-    captions = [caption for caption, _ in figures]
-    assert len(figures) == 4
-    assert "EOFs" in captions[0]
-    for _, png in figures:
-        image = matplotlib.image.imread(io.BytesIO(png), format="png")
-        assert image.var() * 255.0 ** 2 > MIN_PIXEL_VARIANCE
-
-
 def test_plots_leave_pyplot_alone():
     """Importing and drawing never loads pyplot (no global figure state, no display)."""
     code = ("import sys, analogs.presentation.figures as p; f = p.new_figure(); f.add_subplot().plot([1, 2]); "
@@ -231,12 +258,9 @@ def test_plots_leave_pyplot_alone():
     assert out.stdout.strip() == "False"
 
 
-def test_find_figures_for_a_field_target(demo_store, demo_files):
-    """A --field target: the caller passes the canonical fields (here an archive day
-    read from the files, full resolution), drawn as given rather than reconstructed."""
-    from analogs.stages.sources import open_archive
-    day = open_archive(demo_files, progress=False).isel(time=[200]).load()
-    result = demo_store.find(field=day, top=8)
-    figures = plots.find_figures(demo_store, result, target_fields=day)
-    assert len(figures) == 4
-    assert "the given field" in figures[0][0]
+def test_figures_take_no_store():
+    """Presentation only draws: no figure function takes a store argument."""
+    import inspect
+    for name, function in inspect.getmembers(plots, inspect.isfunction):
+        if function.__module__ == plots.__name__:
+            assert "store" not in inspect.signature(function).parameters, name

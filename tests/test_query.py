@@ -12,8 +12,10 @@ from sklearn.neighbors import NearestNeighbors
 
 from analogs.errors import AnalogsInputError
 from analogs.stages.index import AnalogIndex
-from analogs.stages.selection import (calendar_distance_days, candidate_ids, decluster, exclusion_mask,
-                           find_analogs, season_mask)
+from analogs.stages.selection import (DEFAULT_SEPARATION, DEFAULT_TOP, DEFAULT_WINDOW,
+                                      calendar_distance_days, candidate_ids, decluster,
+                                      exclusion_mask, find_analogs, rank_candidates, rank_many,
+                                      season_mask)
 
 DAYS = pd.date_range("1991-01-01", "2000-12-31", freq="D") + pd.Timedelta(hours=12)
 
@@ -122,3 +124,49 @@ def test_find_analogs_rejects_bad_options():
         find_analogs(index, DAYS, np.zeros(2), target_time=DAYS[0], window=-5)
     with pytest.raises(AnalogsInputError, match="'top' parameter of find_analogs"):
         find_analogs(index, DAYS, np.zeros(2), target_time=DAYS[0], top=0)
+
+
+@pytest.mark.parametrize("separation", [0, 3])
+def test_rank_many_with_restrict_equals_ranking_each_target_alone(separation):
+    """A batch of targets sharing one season window, each with its own restriction
+    (applied after the search, with a larger fetch), ranks exactly as rank_candidates
+    over ``allowed & restrict[j]`` for each target alone; the second target's
+    restriction removes nearly every candidate (fewer analogs than ``top``)."""
+    rng = np.random.default_rng(7)
+    pcs = np.cumsum(rng.normal(size=(len(DAYS), 5)), axis=0) * 0.1
+    index = AnalogIndex().fit(pcs)
+    targets = np.array([200, 565, 931, 1296])  # 19 July of four years
+    allowed = candidate_ids(DAYS, DAYS[targets[0]], window=20, exclude=None)
+    restrict = DAYS.year.to_numpy()[None, :] != DAYS.year.to_numpy()[targets][:, None]
+    restrict[1] &= np.isin(np.arange(len(DAYS)), allowed[:6])  # six days of 1991
+    batch = rank_many(index, DAYS, pcs[targets], allowed, top=10, separation=separation,
+                      restrict=restrict)
+    assert len(batch) == len(targets)
+    for j, (rows, distances) in enumerate(batch):
+        alone = rank_candidates(index, DAYS, pcs[targets[j]], allowed[restrict[j][allowed]],
+                                top=10, separation=separation)
+        np.testing.assert_array_equal(rows, alone["row"].to_numpy())
+        np.testing.assert_array_equal(distances, alone["distance"].to_numpy())
+    assert len(batch[0][0]) == 10
+    assert 0 < len(batch[1][0]) <= 6 and (separation or len(batch[1][0]) == 6)
+
+
+def test_rank_many_rejects_a_restriction_of_the_wrong_shape():
+    index = AnalogIndex().fit(np.zeros((len(DAYS), 2)))
+    with pytest.raises(AnalogsInputError, match="'restrict' parameter of rank_many must be"):
+        rank_many(index, DAYS, np.zeros((2, 2)), np.arange(10), top=3, separation=0,
+                  restrict=np.ones(len(DAYS), dtype=bool))
+
+
+def test_find_analogs_defaults_are_the_shared_constants():
+    """find_analogs' signature takes its defaults from the module constants that the
+    hindcast uses too (one definition of top, window and separation)."""
+    import inspect
+
+    from analogs.stages.hindcast import leave_one_year_out
+
+    for function in (find_analogs, leave_one_year_out):
+        parameters = inspect.signature(function).parameters
+        assert parameters["top"].default == DEFAULT_TOP
+        assert parameters["window"].default == DEFAULT_WINDOW
+        assert parameters["separation"].default == DEFAULT_SEPARATION

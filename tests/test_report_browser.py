@@ -17,8 +17,9 @@ import matplotlib.image
 import numpy as np
 import pytest
 
-from analogs.presentation import figures as plots
-from analogs.presentation.report import find_html, write_text_atomic
+from analogs.presentation.report import find_html
+from analogs.workflows.files import write_text
+from analogs.workflows.find import report_figures
 
 pytestmark = pytest.mark.browser
 
@@ -101,9 +102,9 @@ def report(demo_store, tmp_path_factory):
     tags = demo_store.tags
     summer = tags[(tags.index.year == tags.index.year.max()) & tags.index.month.isin([6, 7, 8])]
     result = demo_store.find(date=str(summer["confidence"].idxmax().date()), top=15)
-    figures = plots.find_figures(demo_store, result)
+    figures = report_figures(demo_store, result)
     page = tmp_path_factory.mktemp("report") / "index.html"
-    write_text_atomic(page, find_html(result, demo_store.manifest, figures=figures))
+    write_text(page, find_html(result, demo_store.manifest, figures=figures))
     return page, result, len(figures)
 
 

@@ -1,4 +1,4 @@
-"""Seasonal regime climatology checked against outside references: the demo generator's
+"""Seasonal regime tables and the briefing checked against outside references: the demo generator's
 truth table (pandas.crosstab), scipy.stats (linregress, kendalltau, binomtest), numpy
 means of the EOF reconstructions, netCDF4 for the CF file, hand-built run sequences."""
 
@@ -11,7 +11,6 @@ from scipy import stats
 from analogs.errors import AnalogsInputError
 from analogs.stages.outcomes import daily_event_counts
 from analogs.stages.seasonal import (
-    build_climatology,
     outcomes_by_regime_and_month,
     parse_months,
     regime_composites,
@@ -22,8 +21,9 @@ from analogs.stages.seasonal import (
     regime_trend,
     season_days,
     typical_days,
-    write_composites,
 )
+from analogs.workflows.briefing import build_briefing, store_regime_composites
+from analogs.workflows.files import write_netcdf
 
 #: Rule classifier agreement with the demo truth, measured on the 4-year seed-11 demo:
 #: 0.912 of 1461 days (generator of commit 67b24ad); the floor guards against a
@@ -182,7 +182,8 @@ def test_composites_equal_the_mean_of_reconstructed_days(demo_store, tmp_path):
     and of climatology.predict for the mean field."""
     store = demo_store
     months = (6, 7, 8)
-    composites = regime_composites(store, months)
+    composites = regime_composites(store.tags, store.climatology, store.eof, store.pcs,
+                                   months=months)
     tags = store.tags[store.tags.index.month.isin(months)]
     for regime in ("northwest_flow", "tropical"):
         rows = np.flatnonzero(store.days.isin(tags.index[tags["regime"] == regime]))
@@ -200,7 +201,7 @@ def test_composites_equal_the_mean_of_reconstructed_days(demo_store, tmp_path):
     assert composites["z500_anomaly"].dims == ("regime", "lat", "lon")
     assert "kept EOFs" in composites.attrs["composite_method"]
 
-    path = write_composites(composites, tmp_path / "composites.nc")
+    path = write_netcdf(composites, tmp_path / "composites.nc")
     with netCDF4.Dataset(path) as nc:
         assert nc.Conventions == "CF-1.8"
         # CF files carry UDUNITS units: geopotential metres are written as "m".
@@ -214,7 +215,7 @@ def test_composites_from_archive_files_are_the_archive_anomalies(demo_store, dem
     """With files=, the composite is the mean of the archive's own anomalies (no EOF
     truncation): reference computed here with xarray from the same files."""
     from analogs.stages.sources import open_archive
-    composites = regime_composites(demo_store, [7], files=demo_files)
+    composites = store_regime_composites(demo_store, [7], files=demo_files)
     archive = open_archive(demo_files, progress=False)
     days = demo_store.tags.index[(demo_store.tags.index.month == 7)
                                  & (demo_store.tags["regime"] == "tropical")]
@@ -223,6 +224,27 @@ def test_composites_from_archive_files_are_the_archive_anomalies(demo_store, dem
     np.testing.assert_allclose(composites["z500_anomaly"].sel(regime="tropical").values,
                                anomaly.values, rtol=1e-6, atol=1e-6)
     assert "archive anomalies" in composites.attrs["composite_method"]
+    assert composites.attrs["store"] == str(demo_store.path)
+
+
+def test_composites_are_a_pure_stage(demo_store):
+    """The stage takes arrays (here one planted anomaly field), not a store: every
+    regime's anomaly composite is the mean of the anomalies handed in on its days."""
+    import xarray as xr
+    tags = demo_store.tags
+    lat, lon = demo_store.grid
+    values = np.arange(len(demo_store.times), dtype=float)[:, None, None] * np.ones((lat.size, lon.size))
+    anomalies = xr.Dataset({"z500": (("time", "lat", "lon"), values, {"units": "gpm"})},
+                           coords={"time": demo_store.times, "lat": lat, "lon": lon})
+    composites = regime_composites(tags, demo_store.climatology, demo_store.eof, demo_store.pcs,
+                                   months=[7], anomalies=anomalies, fields=["z500"])
+    july = tags.index.month == 7
+    for regime in ("tropical", "northwest_flow"):
+        rows = np.flatnonzero(july & (tags["regime"] == regime).to_numpy())
+        assert composites["z500_anomaly"].sel(regime=regime).values[0, 0] == pytest.approx(rows.mean())
+    assert list(composites.data_vars) == ["z500_anomaly", "z500_mean", "n_days"]
+    with pytest.raises(AnalogsInputError, match="'pcs' parameter of regime_composites"):
+        regime_composites(tags, demo_store.climatology, demo_store.eof, demo_store.pcs.values)
 
 
 # ------------------------------------------------------------- persistence
@@ -281,11 +303,11 @@ def test_bad_tags_and_months_are_refused():
         typical_days(tags, n=0)
 
 
-# ------------------------------------------------------------------- build
+# ---------------------------------------------------------------- briefing
 
-def test_build_climatology_writes_everything(demo_store, tmp_path):
-    out = tmp_path / "clim"
-    written = build_climatology(demo_store, out, months="5-9", progress=False)
+def test_build_briefing_writes_everything(demo_store, tmp_path):
+    out = tmp_path / "briefing"
+    written = build_briefing(demo_store, out, months="5-9", progress=False)
     for name in ("regime_frequency_by_month.csv", "regime_frequency_by_month.parquet",
                  "regime_trend.csv", "regime_persistence.parquet", "typical_days.csv",
                  "outcomes_by_regime_and_month.csv", "regime_composites.nc",
@@ -300,6 +322,7 @@ def test_build_climatology_writes_everything(demo_store, tmp_path):
                                   parquet[["month", "regime", "days"]], check_dtype=False)
     page = written["index.html"].read_text()
     assert "May-Sep" in page and "Guidance only" in page
+    assert "<title>Seasonal regime briefing, May-Sep</title>" in page
     assert page.count("data:image/png;base64,") >= 6
     assert "Cross-validated skill" in page and "Brier skill score" in page
     assert "http://" not in page and "https://" not in page

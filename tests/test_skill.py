@@ -106,3 +106,43 @@ def test_tune_and_save_sets_query_defaults(demo_store, tmp_path, capsys):
     found = json.loads(capsys.readouterr().out)
     assert len(found["analogs"]) == int(best["top"])
     assert found["settings"]["n_modes"] == int(best["n_modes"])
+
+
+def test_stored_skill_by_month_matches_scikit_learn(demo_store):
+    """The per-month skill recorded at build (workflows.skill.skill_by_month) has Brier
+    scores equal to scikit-learn's brier_score_loss on that month's hindcast forecasts,
+    and skill scores 1 - BS / BS(climatology) from the same; queries quote it."""
+    from analogs.workflows import skill
+
+    stored = demo_store.manifest["skill"]
+    assert stored["region"] == demo_store.region.to_dict()
+    hindcast = leave_one_year_out(demo_store.pcs.values, demo_store.times, demo_store.observed())
+    months = pd.DatetimeIndex(hindcast["time"]).month
+    assert stored["by_month"], "the demo build records skill by month"
+    for month, entry in stored["by_month"].items():
+        part = hindcast[months == int(month)]
+        assert entry["n_days"] == len(part)
+        bs = brier_score_loss(part["observed"], part["forecast"])
+        bs_ref = brier_score_loss(part["observed"], part["climatology"])
+        assert entry["brier_score"] == pytest.approx(bs, rel=1e-12)
+        if bs_ref == 0:
+            assert entry["brier_skill_score"] is None
+        else:
+            assert entry["brier_skill_score"] == pytest.approx(1 - bs / bs_ref, rel=1e-12)
+    july = skill.skill_for(demo_store, pd.Timestamp("2003-07-02"))
+    assert july == demo_store.skill_for(pd.Timestamp("2003-07-02"))
+    assert july["month"] == 7
+    assert july["month_brier_skill_score"] == stored["by_month"]["7"]["brier_skill_score"]
+
+
+def test_store_methods_delegate_to_the_skill_workflow(demo_store):
+    """AnalogStore.verify / tune / observed are thin: they give what the functions of
+    analogs.workflows.skill give for the loaded store."""
+    from analogs.workflows import skill
+
+    settings = dict(top=10, n_modes=8, months=[6, 7], n_resamples=30)
+    assert demo_store.verify(**settings) == skill.verify(demo_store, **settings)
+    np.testing.assert_array_equal(demo_store.observed(kinds=["hail"]),
+                                  skill.observed(demo_store, kinds=["hail"]))
+    scan = dict(tops=(5, 10), modes=(3,), months=[7])
+    pd.testing.assert_frame_equal(demo_store.tune(**scan), skill.tune(demo_store, **scan))

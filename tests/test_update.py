@@ -61,3 +61,25 @@ def test_update_refuses_another_grid(split_files, tmp_path, capsys):
     err = capsys.readouterr().err
     assert "differs from the store's" in err and len(err.strip().splitlines()) == 1
     assert _digests(store.path) == before
+
+
+def test_update_from_python_returns_the_new_store(split_files, demo_dir, tmp_path):
+    """``store.update`` returns the new version (the README's Python update); an
+    events-only update carries the scores and tags over unchanged."""
+    early, late = split_files
+    store = build_store(early, tmp_path / "store", progress=False)
+    assert store.events is None
+    new = store.update(late, progress=False)
+    summary = new.last_update
+    assert summary["days_added"] == len(new.times) - len(store.times) > 0
+    assert new.manifest["updates"][-1]["days_added"] == summary["days_added"]
+    day = str(new.days[-10].date())
+    assert new.find(date=day).target["date"] == day
+    assert len(store.times) < len(new.times)  # the old object keeps its version
+    files_before = new.manifest["files"]
+    with_events = new.update(late, events=demo_dir / "events.csv", progress=False)
+    assert with_events.last_update["days_added"] == 0
+    assert with_events.events is not None and len(with_events.manifest["updates"]) == 2
+    for name in ("scores.nc", "tags.parquet", "basis.nc"):
+        assert with_events.manifest["files"][name] == files_before[name]
+    assert with_events.find(date=day).outcomes["has_events"]

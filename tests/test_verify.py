@@ -185,3 +185,19 @@ def test_verification_summary_shape(forecasts):
     assert summary["contingency"] == contingency_table(p, o, 0.3)
     with pytest.raises(AnalogsInputError, match="'threshold' parameter of verification_summary"):
         verification_summary(p, o, o.mean(), threshold=2)
+
+
+def test_brier_formula_is_written_once():
+    """The Brier score's formula mean((p - o) ** 2) appears in analogs/stages/scores.py
+    only; every other module calls brier_score / brier_skill_score."""
+    import re
+    from pathlib import Path
+
+    import analogs
+
+    formula = re.compile(r"mean\(\s*\(\s*[\w\[\]\.]+\s*-\s*[\w\[\]\.]+\s*\)\s*\*\*\s*2\s*\)")
+    package = Path(analogs.__file__).parent
+    written = sorted(str(path.relative_to(package)) for path in package.rglob("*.py")
+                     if formula.search(path.read_text()))
+    assert written == ["stages/scores.py"]
+    assert formula.search("float(np.mean((ref - o) ** 2))")  # the pattern finds the old copies

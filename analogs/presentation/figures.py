@@ -1,5 +1,10 @@
 """Figures for forecasters and trainers, drawn without a screen.
 
+Presentation only: every function draws the arrays and tables it is handed (xarray
+Datasets on (lat, lon), pandas tables); none takes a store or writes a file. The
+workflows gather the arrays (:func:`analogs.workflows.find.report_figures`,
+:func:`analogs.workflows.briefing.build_briefing`) and write the PNG bytes.
+
 Every function returns a :class:`matplotlib.figure.Figure` attached to its own Agg
 canvas (no pyplot, so no global state changes and no display is needed); turn it
 into PNG bytes with :func:`figure_png`. Maps use plain latitude / longitude axes
@@ -190,26 +195,6 @@ def _events_on_map(ax, events, day, kinds):
     return len(on_day)
 
 
-# ---------------------------------------------------------------- store fields
-
-def store_day_fields(store, rows) -> xr.Dataset:
-    """Mean full fields of archive rows as the store can give them: climatology of the
-    days plus their anomaly reconstructed from the kept EOFs (the store keeps PCs, not
-    the archive's fields, so small-scale detail beyond the kept modes is missing)."""
-    rows = np.atleast_1d(np.asarray(rows, dtype=int))
-    times = store.times[rows]
-    climate = store.climatology.predict(times)[store.fields].mean("time")
-    anomaly = store.eof.reconstruct(store.pcs.isel(time=rows).mean("time"))[store.fields]
-    fields = xr.Dataset()
-    for name in store.fields:
-        total = climate[name].drop_vars([c for c in climate[name].coords
-                                         if c not in ("lat", "lon")]) + anomaly[name].values
-        attrs = dict(anomaly[name].attrs)
-        attrs["long_name"] = attrs.get("long_name", name).removesuffix(" anomaly")
-        fields[name] = total.assign_attrs(attrs)
-    return fields
-
-
 # ------------------------------------------------------------------ query maps
 
 def target_map(fields: xr.Dataset, *, region=None, when="target", source=None) -> Figure:
@@ -238,28 +223,47 @@ def target_map(fields: xr.Dataset, *, region=None, when="target", source=None) -
     return figure
 
 
-def analog_panel(store, result, *, n=6, region=None) -> Figure:
-    """The top ``n`` analog days: height contours and that day's events by kind
-    (distinct markers), the date, regime and event count in each title."""
-    analogs = result.analogs.head(n)
+def analog_panel(analog_fields: xr.Dataset, analogs: pd.DataFrame, events=None, *,
+                 region=None, title=None) -> Figure:
+    """One map per analog day drawn: height contours and that day's events by kind
+    (distinct markers); the rank, date, regime, distance and the table's event count in
+    each map's title.
+
+    Parameters
+    ----------
+    analog_fields : Dataset ``(analog, lat, lon)`` with ``z500`` (gpm) of the analogs
+        drawn, in the order of ``analogs``.
+    analogs : the rows of the analogs table drawn (``rank``, ``date``, ``distance``,
+        ``regime`` and ``events_total``, the events counted in the outcome region).
+    events : DataFrame of the events of those days (``lat``, ``lon``, ``kind`` and
+        ``day``, the convective day), or None for no markers.
+    region : the outcome region, drawn on every map.
+    title : the figure's title.
+    """
     if len(analogs) == 0:
-        raise AnalogsInputError("analog_panel needs at least one analog in the result")
-    region = region if region is not None else _result_region(result, store)
-    events = store.events
+        raise AnalogsInputError("analog_panel needs at least one analog row")
+    if "z500" not in analog_fields or "analog" not in analog_fields["z500"].dims:
+        raise AnalogsInputError("analog_panel needs a 'z500' field (500 hPa height, gpm) "
+                                "on (analog, lat, lon)")
+    if analog_fields.sizes["analog"] != len(analogs):
+        raise AnalogsInputError(
+            f"analog_panel got {analog_fields.sizes['analog']} analog fields for "
+            f"{len(analogs)} analog rows; pass the fields of the rows drawn")
     kinds = sorted(events["kind"].astype(str).unique()) if events is not None else []
     columns = min(3, len(analogs))
     rows = int(np.ceil(len(analogs) / columns))
     figure = new_figure(4.2 * columns, 3.6 * rows + 0.6)
     coastlines = _coastline_paths()
-    lat, lon = store.grid
+    lat, lon = analog_fields["lat"].values, analog_fields["lon"].values
     for i, analog in enumerate(analogs.itertuples(index=False)):
         ax = figure.add_subplot(rows, columns, i + 1)
-        fields = store_day_fields(store, [analog.row])
-        _height_contours(ax, fields["z500"], colour="0.25", labels=False)
-        count = _events_on_map(ax, events, analog.date, kinds)
+        _height_contours(ax, analog_fields["z500"].isel(analog=i), colour="0.25", labels=False)
+        _events_on_map(ax, events, analog.date, kinds)
         _map_axes(ax, lat, lon, region, coastlines=coastlines)
+        count = int(analog.events_total)
         ax.set_title(f"#{analog.rank} {analog.date} - {analog.regime}\n"
-                     f"distance {analog.distance:.2f}, {count} events in domain", fontsize=9)
+                     f"distance {analog.distance:.2f}, {count} event{'s' * (count != 1)} "
+                     "in region", fontsize=9)
     if kinds:
         handles = [figure.axes[0].scatter([], [], marker=EVENT_MARKERS[i % len(EVENT_MARKERS)],
                                           facecolor=colormaps["plasma"](
@@ -267,60 +271,58 @@ def analog_panel(store, result, *, n=6, region=None) -> Figure:
                                           edgecolor="black", label=kind)
                    for i, kind in enumerate(kinds)]
         figure.legend(handles=handles, loc="outside lower center", ncols=len(kinds),
-                      title="events (convective day)")
-    when = result.target.get("date") or "a forecast field"
-    figure.suptitle(f"Closest past days to {when}: 500 hPa height (EOF reconstruction, "
-                    f"every {HEIGHT_INTERVAL_GPM:.0f} gpm)", fontsize=11)
+                      title="events of the day, anywhere on the map (convective day)")
+    if title:
+        figure.suptitle(title, fontsize=11)
     _note_plain_axes(figure, coastlines)
     return figure
 
 
-def _result_region(result, store):
-    from analogs.stages.outcomes import Region
-    settings_region = result.settings.get("region")
-    return Region.from_dict(settings_region) if settings_region else store.region
+def composite_difference(mean_fields: xr.Dataset, target_fields: xr.Dataset, *,
+                         region=None, title=None) -> Figure:
+    """Left: a mean of the analog days (height contours over moisture); right: that
+    mean minus the target's 500 hPa height (shaded), target contours on top.
 
-
-def composite_difference(store, result, target_fields: xr.Dataset, *, region=None) -> Figure:
-    """Left: mean of the analog days (height contours over moisture); right: that
-    mean minus the target's 500 hPa height (shaded), target contours on top."""
-    rows = result.analogs["row"].to_numpy()
-    if rows.size == 0:
-        raise AnalogsInputError("composite_difference needs at least one analog in the result")
-    region = region if region is not None else _result_region(result, store)
-    mean = store_day_fields(store, rows)
-    target = _on_store_grid(store, target_fields)
+    ``mean_fields`` and ``target_fields`` are Datasets on one (lat, lon) grid with
+    ``z500`` (gpm) and optionally a moisture field (as :func:`target_map`);
+    ``mean_fields.attrs["n_days"]`` (number of days averaged) goes in the left title
+    when present. ``title`` is the figure's title (e.g. the target and how the fields
+    were made).
+    """
+    for name, fields in (("mean_fields", mean_fields), ("target_fields", target_fields)):
+        if "z500" not in fields:
+            raise AnalogsInputError(f"composite_difference needs a 'z500' field in {name} "
+                                    "(500 hPa height, gpm)")
+    mean_height = _plane(mean_fields["z500"], "composite_difference")
+    target_height = _plane(target_fields["z500"], "composite_difference")
+    lat, lon = mean_height["lat"].values, mean_height["lon"].values
+    if (target_height.shape != mean_height.shape
+            or not np.allclose(target_height["lat"].values, lat)
+            or not np.allclose(target_height["lon"].values, lon)):
+        raise AnalogsInputError("composite_difference needs the mean and the target on one "
+                                "grid; regrid the target to the analogs' grid first")
     figure = new_figure(13.0, 5.4)
     coastlines = _coastline_paths()
-    lat, lon = store.grid
     left, right = figure.add_subplot(1, 2, 1), figure.add_subplot(1, 2, 2)
-    _moisture_layer(figure, left, mean)
-    _height_contours(left, mean["z500"])
+    _moisture_layer(figure, left, mean_fields)
+    _height_contours(left, mean_height)
     _map_axes(left, lat, lon, region, coastlines=coastlines)
-    left.set_title(f"mean of {rows.size} analog days: 500 hPa height and moisture\n"
-                   "(climatology + EOF reconstruction)", fontsize=10)
-    difference = _plane(mean["z500"], "difference") - _plane(target["z500"], "difference")
+    n_days = mean_fields.attrs.get("n_days")
+    days = f"{int(n_days)} analog days" if n_days else "the analog days"
+    left.set_title(f"mean of {days}:\n500 hPa height and moisture", fontsize=10)
+    difference = mean_height - target_height.values
     limit = float(np.nanmax(np.abs(difference.values))) or 1.0
     mesh = right.pcolormesh(lon, lat, difference.values, cmap="RdBu_r", vmin=-limit,
                             vmax=limit, shading="nearest")
     figure.colorbar(mesh, ax=right, label="analog mean minus target, 500 hPa height (gpm)",
                     shrink=0.85)
-    _height_contours(right, target["z500"], colour="0.2")
+    _height_contours(right, target_height, colour="0.2")
     _map_axes(right, lat, lon, region, coastlines=coastlines)
-    when = result.target.get("date") or "the forecast field"
-    right.set_title(f"analog mean minus target ({when})\ncontours: target 500 hPa height",
-                    fontsize=10)
+    right.set_title("analog mean minus target\ncontours: target 500 hPa height", fontsize=10)
+    if title:
+        figure.suptitle(title, fontsize=11)
     _note_plain_axes(figure, coastlines)
     return figure
-
-
-def _on_store_grid(store, fields: xr.Dataset) -> xr.Dataset:
-    from analogs.stages.sources import regrid_to
-    lat, lon = store.grid
-    fields = fields.squeeze(drop=True) if "time" in fields.dims else fields
-    same = (fields.sizes.get("lat") == lat.size and fields.sizes.get("lon") == lon.size
-            and np.allclose(fields["lat"].values, lat) and np.allclose(fields["lon"].values, lon))
-    return fields if same else regrid_to(fields, lat, lon)
 
 
 def probability_map(maps: xr.Dataset, *, region=None, when="target") -> Figure:
@@ -525,53 +527,3 @@ def outcome_chart(outcomes: pd.DataFrame, *, title_suffix="") -> Figure:
     ax.set_title("What each regime brings: chance of at least one event"
                  + (f", {title_suffix}" if title_suffix else ""), fontsize=11)
     return figure
-
-
-# --------------------------------------------------------------------- reports
-
-def find_figures(store, result, *, target_fields=None, hindcast=None) -> list[tuple[str, bytes]]:
-    """Figures of one query, as (caption, PNG bytes) for ``report.find_html``.
-
-    ``target_fields``: the target's canonical fields (one time, any grid; a ``--field``
-    target passes its Dataset). When None and the target is an archive date, they are
-    the store's reconstruction of that day (climatology plus anomaly on the kept EOFs);
-    when None for a field target without a date, the target map and the difference map
-    are left out. ``hindcast``: optional DataFrame of
-    :func:`analogs.stages.hindcast.leave_one_year_out` for the reliability and ROC figures.
-    """
-    from analogs.stages.outcomes import outcome_maps
-    from analogs.stages.scores import reliability_table, roc_curve_points
-
-    region = _result_region(result, store)
-    when = result.target.get("date") or "the forecast field"
-    source = "the given field"
-    if target_fields is None and result.target.get("date"):
-        row = store.day_row(result.target["date"])
-        target_fields = store_day_fields(store, [row])
-        source = f"climatology + anomaly on {store.eof.n_modes_} kept EOFs"
-    figures = []
-    if target_fields is not None:
-        target_fields = _on_store_grid(store, target_fields)
-        figures.append((f"Target {when}: 500 hPa height and moisture ({source})",
-                        target_map(target_fields, region=region, when=f"Target {when}",
-                                   source=source)))
-    if len(result.analogs):
-        figures.append(("The closest past days and their events",
-                        analog_panel(store, result, region=region)))
-        if target_fields is not None:
-            figures.append(("Mean of the analog days and its difference from the target",
-                            composite_difference(store, result, target_fields, region=region)))
-        if store.events is not None:
-            lat, lon = store.grid
-            maps = outcome_maps(store.events, pd.to_datetime(result.analogs["date"]), lat, lon)
-            figures.append(("Where the analog days had events nearby",
-                            probability_map(maps, region=region, when=when)))
-    if hindcast is not None:
-        p = hindcast["forecast"].to_numpy()
-        o = hindcast["observed"].to_numpy()
-        figures.append(("Reliability of past analog guidance",
-                        reliability_diagram(reliability_table(p, o))))
-        if 0 < o.sum() < o.size:
-            figures.append(("ROC of past analog guidance",
-                            roc_diagram(*roc_curve_points(p, o)[:2])))
-    return [(caption, figure_png(figure)) for caption, figure in figures]

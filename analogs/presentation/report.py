@@ -9,8 +9,6 @@ import base64
 import html
 import json
 import math
-import os
-import tempfile
 from pathlib import Path
 
 from analogs import CAUTION, __version__
@@ -42,9 +40,16 @@ def skill_line(skill) -> str:
     return text
 
 
+def _find_data(result) -> dict:
+    """The JSON-shaped answer of a query: ``result`` is a
+    :class:`~analogs.results.FindResult` or its ``to_dict()``."""
+    return result if isinstance(result, dict) else result.to_dict()
+
+
 def find_text(result) -> str:
-    """A readable terminal summary of an :class:`~analogs.api.AnalogResult`."""
-    data = result.to_dict()
+    """A readable terminal summary of one query (a :class:`~analogs.results.FindResult`
+    or its ``to_dict()``)."""
+    data = _find_data(result)
     target, outcomes, settings = data["target"], data["outcomes"], data["settings"]
     lines = []
     when = target["date"] or "field without valid time"
@@ -130,7 +135,11 @@ def verify_text(summary: dict) -> str:
 
 
 def dumps(data) -> str:
-    """JSON text with NaN written as null (strict JSON for scripts)."""
+    """JSON text with NaN written as null (strict JSON for scripts). ``data`` is plain
+    JSON values or a result object with ``to_dict()`` (a
+    :class:`~analogs.results.FindResult`)."""
+    if not isinstance(data, (dict, list)) and callable(getattr(data, "to_dict", None)):
+        data = data.to_dict()
     return json.dumps(_nan_to_none(data), indent=2)
 
 
@@ -142,22 +151,6 @@ def _nan_to_none(value):
     if isinstance(value, (list, tuple)):
         return [_nan_to_none(v) for v in value]
     return value
-
-
-def write_text_atomic(path, text: str) -> None:
-    """Write ``text`` to ``path`` via a temporary sibling, fsync and rename."""
-    path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, temporary = tempfile.mkstemp(prefix=f".{path.name}.", dir=path.parent)
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8") as handle:
-            handle.write(text)
-            handle.flush()
-            os.fsync(handle.fileno())
-        os.replace(temporary, path)
-    except BaseException:
-        Path(temporary).unlink(missing_ok=True)
-        raise
 
 
 def embed_png(path_or_bytes) -> str:
@@ -192,6 +185,8 @@ def html_page(title: str, sections: list[tuple[str, str]], provenance: dict | No
 
 
 def html_table(rows: list[dict], columns: list[str], *, left=()) -> str:
+    """An HTML table of ``rows`` (dicts) in ``columns`` order, text escaped; the
+    ``left`` columns are left-aligned (text), the others right-aligned (numbers)."""
     head = "".join(f'<th class="{"l" if c in left else ""}">{html.escape(c)}</th>' for c in columns)
     body = []
     for row in rows:
@@ -202,8 +197,10 @@ def html_table(rows: list[dict], columns: list[str], *, left=()) -> str:
 
 
 def find_html(result, manifest: dict, figures: list[tuple[str, bytes]] = ()) -> str:
-    """The HTML page of one query: target, analog table, outcomes, figures, settings."""
-    data = result.to_dict()
+    """The HTML page of one query (a :class:`~analogs.results.FindResult` or its
+    ``to_dict()``): target, analog table, outcomes, figures as (caption, PNG bytes)
+    embedded, settings and the store's provenance from ``manifest``."""
+    data = _find_data(result)
     target, outcomes = data["target"], data["outcomes"]
     kinds = sorted({k for a in data["analogs"] for k in a["events"]["by_kind"]})
     rows = []
@@ -283,7 +280,7 @@ def _skill_section(skill) -> str:
 
 
 def _readable(name: str, frame):
-    """The columns of a climatology table a reader needs, with plain headings."""
+    """The columns of a briefing table a reader needs, with plain headings."""
     if name == "regime_trend":
         return frame.assign(
             slope=[f"{v:+.1f} +/- {e:.1f}" if v == v else "n/a" for v, e in
@@ -307,13 +304,14 @@ def _readable(name: str, frame):
     return frame
 
 
-def climatology_html(tables: dict, figures, manifest: dict, settings: dict) -> str:
-    """The HTML page of a seasonal climatology (``analogs climatology``).
+def briefing_html(tables: dict, figures, manifest: dict, settings: dict) -> str:
+    """The HTML page of the trainer's seasonal briefing (``analogs climatology``).
 
-    ``tables``: name -> DataFrame as made by :func:`analogs.stages.seasonal.build_climatology`
-    (``regime_frequency_by_month``, ``regime_trend``, ``regime_persistence``,
-    ``typical_days``, optionally ``outcomes_by_regime_and_month``); ``figures``: list of
-    (caption, PNG bytes), embedded; ``settings``: what was asked for.
+    ``tables``: name -> DataFrame of :mod:`analogs.stages.seasonal`, as gathered by
+    :func:`analogs.workflows.briefing.build_briefing` (``regime_frequency_by_month``,
+    ``regime_trend``, ``regime_persistence``, ``typical_days``, optionally
+    ``outcomes_by_regime_and_month``); ``figures``: list of (caption, PNG bytes),
+    embedded; ``settings``: what was asked for. Returns the page's text.
     """
     sections = [("Season and settings",
                  f"<p>{html.escape(str(settings.get('season', '')))}: "
@@ -358,5 +356,5 @@ def climatology_html(tables: dict, figures, manifest: dict, settings: dict) -> s
     sections.append(("Cross-validated skill of this store", _skill_section(manifest.get("skill"))))
     provenance = {"archive": manifest.get("archive"), "config": manifest.get("config"),
                   "events": manifest.get("events")}
-    return html_page("Regime climatology, " + str(settings.get("season", "")), sections,
+    return html_page("Seasonal regime briefing, " + str(settings.get("season", "")), sections,
                      provenance)

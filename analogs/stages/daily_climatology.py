@@ -30,8 +30,8 @@ import numpy as np
 import pandas as pd
 import xarray as xr
 
-from analogs._validation import check_int
 from analogs.errors import AnalogsInputError, NotFittedError
+from analogs.parameters import P
 
 __all__ = ["HarmonicClimatology", "annual_angle", "harmonic_design_matrix"]
 
@@ -172,7 +172,7 @@ class HarmonicClimatology:
         same units as the variable.
     """
 
-    def __init__(self, n_harmonics: int = 3):
+    def __init__(self, n_harmonics: int = P.n_harmonics.default):
         self.n_harmonics = n_harmonics
 
     # -- fitting ---------------------------------------------------------------
@@ -182,7 +182,7 @@ class HarmonicClimatology:
         Grid points with missing values at some times are fitted from their valid
         times only; a point with too few valid times gets NaN coefficients.
         """
-        n_harmonics = check_int(self.n_harmonics, "n_harmonics", _OWNER, min_value=0)
+        n_harmonics = P.n_harmonics.check(self.n_harmonics, _OWNER)
         ds, _ = _as_time_series(ds)
         names = _fitted_variables(ds)
         times = ds["time"].values

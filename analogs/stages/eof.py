@@ -55,8 +55,10 @@ import numpy as np
 import xarray as xr
 
 from analogs import __version__
-from analogs._validation import check_choice, check_float, check_int
+from analogs._validation import check_int
+from analogs.parameters import P
 from analogs.errors import AnalogsInputError, NotFittedError
+from analogs.stages.cf import coordinate_attrs
 
 __all__ = ["MultivariateEOF", "area_weights"]
 
@@ -65,10 +67,9 @@ __all__ = ["MultivariateEOF", "area_weights"]
 #: of its 20 leading modes about 1 s with eigenvalues equal to 1e-14.
 AUTO_EXACT_MAX_DIM = 500
 #: Modes kept when neither n_modes nor variance is given (capped by the rank).
-DEFAULT_N_MODES = 20
+DEFAULT_N_MODES = P.n_modes.default
 
 _OWNER = "MultivariateEOF"
-_SOLVERS = ("auto", "exact", "randomized")
 _PARAMS = ("n_modes", "variance", "solver", "field_weights", "random_state",
            "n_oversamples", "n_power_iter")
 
@@ -133,7 +134,7 @@ class MultivariateEOF:
     weights_ : xarray.DataArray (lat), ``sqrt(cos lat)``
     """
 
-    def __init__(self, n_modes=None, *, variance=None, solver="auto", field_weights=None,
+    def __init__(self, n_modes=None, *, variance=None, solver=P.solver.default, field_weights=None,
                  random_state=0, n_oversamples=20, n_power_iter=2):
         self.n_modes = n_modes
         self.variance = variance
@@ -158,12 +159,9 @@ class MultivariateEOF:
                 f"other: give one of them. Got n_modes={self.n_modes!r} and "
                 f"variance={self.variance!r} instead."
             )
-        if self.n_modes is not None:
-            check_int(self.n_modes, "n_modes", _OWNER, min_value=1)
-        if self.variance is not None:
-            check_float(self.variance, "variance", _OWNER, min_value=0.0, max_value=1.0,
-                        min_inclusive=False)
-        check_choice(self.solver, "solver", _OWNER, _SOLVERS)
+        P.n_modes.check(self.n_modes, _OWNER)
+        P.variance.check(self.variance, _OWNER)
+        P.solver.check(self.solver, _OWNER)
         check_int(self.random_state, "random_state", _OWNER, min_value=0)
         check_int(self.n_oversamples, "n_oversamples", _OWNER, min_value=0)
         check_int(self.n_power_iter, "n_power_iter", _OWNER, min_value=0)
@@ -615,8 +613,8 @@ class MultivariateEOF:
                                              attrs={"units": "1", "long_name": "user field weight"})
         data["weights"] = self.weights_
         ds = xr.Dataset(data, coords={"lat": self.lat_, "lon": self.lon_})
-        ds["lat"].attrs = {"units": "degrees_north", "standard_name": "latitude"}
-        ds["lon"].attrs = {"units": "degrees_east", "standard_name": "longitude"}
+        ds["lat"].attrs = coordinate_attrs("lat", "units", "standard_name")
+        ds["lon"].attrs = coordinate_attrs("lon", "units", "standard_name")
         ds.attrs = {
             "params": json.dumps(self.get_params(), sort_keys=True),
             "n_modes_fitted": int(self.n_modes_),

@@ -1,8 +1,12 @@
 """Cross-validated skill: the leave-one-year-out hindcast and the tuning scan.
 
-Every archive day is forecast from analogs found in the other years only (so its own
-weather episode, and its own year's peculiarities, cannot help), with the same season
-window and de-clustering as a live query. The forecast is the fraction of analog days
+Every archive day is forecast from analogs found in the other calendar years only (so
+its own year's peculiarities cannot help), chosen by the live query's own selection
+(:func:`~analogs.stages.selection.candidate_ids` and
+:func:`~analogs.stages.selection.rank_many`: the same season window, de-clustering and
+fetch size), its own year removed as an extra restriction. No exclusion window is
+applied: within a few days of 1 January, the neighbouring days of the previous or next
+year (the same weather episode) may be analogs. The forecast is the fraction of analog days
 with at least one event in the region; it is scored against what happened that day
 with the scores of :mod:`analogs.stages.scores`, and against the season-window climatology of
 the other years (the reference of the Brier skill score) and a random-analog baseline
@@ -11,22 +15,30 @@ drawn from the same candidates (same N, same window).
 
 from __future__ import annotations
 
-import faiss
 import numpy as np
 import pandas as pd
 from tqdm.auto import tqdm
 
-from analogs._validation import check_choice, check_float, check_int
+from analogs._validation import check_choice
 from analogs.errors import AnalogsInputError
-from analogs.stages.selection import circular_day_gap, day_numbers, decluster_days, fetch_size
-from analogs.stages.scores import bootstrap_interval, brier_skill_score, roc_auc, verification_summary
+from analogs.parameters import P
+from analogs.stages.index import AnalogIndex
+from analogs.stages.scores import (bootstrap_interval, brier_score, brier_skill_score, roc_auc,
+                                   verification_summary)
+from analogs.stages.selection import (DEFAULT_SEPARATION, DEFAULT_TOP, DEFAULT_WINDOW,
+                                      candidate_ids, day_of_year, rank_many)
 
 HINDCAST_METHODS = ("analogs", "random")
 
 
-def leave_one_year_out(pcs, times, observed, *, top=20, window=45, separation=3,
-                       n_modes=None, method="analogs", months=None, seed=0, progress=False):
+def leave_one_year_out(pcs, times, observed, *, top=DEFAULT_TOP, window=DEFAULT_WINDOW,
+                       separation=DEFAULT_SEPARATION, n_modes=None, method="analogs",
+                       months=None, seed=0, progress=False):
     """Forecast every day from analogs in the other years.
+
+    The analogs of a day are those the live query would choose
+    (:func:`analogs.stages.selection.find_analogs` with no exclusion window) with the
+    day's own year removed as a restriction: see :func:`held_out_analogs`.
 
     Parameters
     ----------
@@ -48,64 +60,39 @@ def leave_one_year_out(pcs, times, observed, *, top=20, window=45, separation=3,
     frequency over the other years' season-window days) and ``n_analogs``.
     """
     owner = "leave_one_year_out"
-    top = check_int(top, "top", owner, min_value=1)
-    window = check_int(window, "window", owner, min_value=0, max_value=183)
-    separation = check_int(separation, "separation", owner, min_value=0)
     check_choice(method, "method", owner, HINDCAST_METHODS)
-    times = pd.DatetimeIndex(times)
-    pcs = np.asarray(pcs, dtype=float)
+    pcs, times, top, window, separation = _checked(pcs, times, top, window, separation,
+                                                   n_modes, owner)
     observed = np.asarray(observed, dtype=bool)
-    if n_modes is not None:
-        n_modes = check_int(n_modes, "n_modes", owner, min_value=1, max_value=pcs.shape[1])
-        pcs = pcs[:, :n_modes]
     years = times.year.to_numpy()
-    if np.unique(years).size < 2:
-        raise AnalogsInputError("a leave-one-year-out hindcast needs an archive of at least two years")
-    day_of_year = times.day_of_year.to_numpy()
-    days = day_numbers(times)
-    year_code = years - years.min()
-    n_years = int(year_code.max()) + 1
     targets = np.ones(len(times), dtype=bool)
     if months is not None:
         targets &= np.isin(times.month, list(months))
-    vectors = np.ascontiguousarray(pcs, dtype=np.float32)
-    faiss.omp_set_num_threads(1)  # batches of a few dozen queries: threads cost more
     rng = np.random.default_rng(seed)
     forecast = np.full(len(times), np.nan)
     climatology = np.full(len(times), np.nan)
     n_analogs = np.zeros(len(times), dtype=int)
-    calendar_days = np.unique(day_of_year[targets])
-    for day in tqdm(calendar_days, desc="hindcast", unit="calendar day", disable=not progress):
-        queries = np.flatnonzero(targets & (day_of_year == day))
-        season = np.flatnonzero(circular_day_gap(day_of_year, day) <= window)
-        season_codes = year_code[season]
-        # Climatology of the other years: the season's totals less each target's own year.
-        days_by_year = np.bincount(season_codes, minlength=n_years)
-        events_by_year = np.bincount(season_codes, weights=observed[season], minlength=n_years)
-        n_others = season.size - days_by_year[year_code[queries]]
-        n_events = events_by_year.sum() - events_by_year[year_code[queries]]
+    batches = _calendar_day_batches(times, targets, window, progress=progress)
+    if method == "analogs":
+        batches = _with_analogs(batches, pcs, times, top=top, separation=separation)
+    for queries, season, other_years, chosen in batches:
+        # Climatology of the other years: their share of event days in the season window.
+        in_season = other_years[:, season]
+        n_others = in_season.sum(axis=1)
+        n_events = (in_season & observed[season]).sum(axis=1)
         with np.errstate(invalid="ignore", divide="ignore"):
             climatology[queries] = np.where(n_others > 0, n_events / n_others, np.nan)
-        if method == "analogs":
-            # Exact search over this day's season only (faiss brute force on the subset:
-            # the same neighbours as the flat index with an ID selector, without
-            # scanning the other seasons). Fetch enough to survive removing the
-            # target's own year and de-clustering.
-            fetch = fetch_size(top, separation, season.size, extra=int(days_by_year.max()))
-            _, local = faiss.knn(vectors[queries], vectors[season], fetch)
         for position, row in enumerate(queries):
             if n_others[position] == 0:
                 continue
             if method == "random":
-                others = season[season_codes != year_code[row]]
-                chosen = rng.choice(others, size=min(top, others.size), replace=False)
+                others = season[in_season[position]]
+                rows = rng.choice(others, size=min(top, others.size), replace=False)
             else:
-                neighbours = season[local[position][local[position] >= 0]]
-                neighbours = neighbours[year_code[neighbours] != year_code[row]]
-                chosen = neighbours[decluster_days(days[neighbours], separation, limit=top)]
-            if chosen.size:
-                forecast[row] = observed[chosen].mean()
-                n_analogs[row] = chosen.size
+                rows = chosen[position][0]
+            if rows.size:
+                forecast[row] = observed[rows].mean()
+                n_analogs[row] = rows.size
     done = np.isfinite(forecast) & np.isfinite(climatology)
     return pd.DataFrame({
         "time": times[done], "year": years[done], "forecast": forecast[done],
@@ -114,15 +101,101 @@ def leave_one_year_out(pcs, times, observed, *, top=20, window=45, separation=3,
     })
 
 
-def score_hindcast(hindcast: pd.DataFrame, *, threshold=0.3, n_bins=10, n_resamples=500,
-                   confidence=0.9, seed=0) -> dict:
+def held_out_analogs(pcs, times, *, rows=None, top=DEFAULT_TOP, window=DEFAULT_WINDOW,
+                     separation=DEFAULT_SEPARATION, n_modes=None) -> pd.DataFrame:
+    """The analogs the leave-one-year-out hindcast takes for the archive days ``rows``.
+
+    For each target day: the season-window candidates of its calendar day
+    (:func:`~analogs.stages.selection.candidate_ids`, no exclusion window), less the
+    days of its own year, ranked by exact Euclidean distance and de-clustered
+    (:func:`~analogs.stages.selection.rank_many`): what
+    :func:`~analogs.stages.selection.find_analogs` returns for that day with
+    ``exclude=None`` and ``restrict`` = "not the target's year".
+
+    Parameters
+    ----------
+    pcs, times, top, window, separation, n_modes : as in :func:`leave_one_year_out`.
+    rows : int array of target rows (default every day).
+
+    Returns
+    -------
+    DataFrame with one line per (target, analog): ``target`` (row of the target day),
+    ``rank`` (1 = closest), ``row``, ``time`` and ``distance`` of the analog.
+    """
+    pcs, times, top, window, separation = _checked(pcs, times, top, window, separation,
+                                                   n_modes, "held_out_analogs")
+    targets = np.zeros(len(times), dtype=bool)
+    targets[np.arange(len(times)) if rows is None else np.asarray(rows, dtype=np.int64)] = True
+    parts = {"target": [], "rank": [], "row": [], "distance": []}
+    batches = _with_analogs(_calendar_day_batches(times, targets, window), pcs, times,
+                            top=top, separation=separation)
+    for queries, _, _, chosen in batches:
+        for row, (analog_rows, distances) in zip(queries, chosen):
+            parts["target"].append(np.full(analog_rows.size, row, dtype=np.int64))
+            parts["rank"].append(np.arange(1, analog_rows.size + 1))
+            parts["row"].append(analog_rows)
+            parts["distance"].append(distances)
+    table = {name: np.concatenate(values) if values else np.zeros(0, dtype=np.int64)
+             for name, values in parts.items()}
+    frame = pd.DataFrame(table)
+    frame.insert(3, "time", times[frame["row"].to_numpy()])
+    return frame.sort_values(["target", "rank"], ignore_index=True)
+
+
+def _checked(pcs, times, top, window, separation, n_modes, owner):
+    """Validated hindcast inputs: (pcs of the modes used, DatetimeIndex, top, window,
+    separation)."""
+    top = P.top.check(top, owner)
+    window = P.window.check(window, owner)
+    separation = P.separation.check(separation, owner)
+    times = times if isinstance(times, pd.DatetimeIndex) else pd.DatetimeIndex(times)
+    pcs = np.asarray(pcs, dtype=float)
+    if n_modes is not None:
+        n_modes = P.query_modes.check(n_modes, owner, maximum=pcs.shape[1])
+        pcs = pcs[:, :n_modes]
+    if np.unique(times.year).size < 2:
+        raise AnalogsInputError("a leave-one-year-out hindcast needs an archive of at least two years")
+    return pcs, times, top, window, separation
+
+
+def _calendar_day_batches(times, targets, window, *, progress=False):
+    """The target days grouped by calendar day, with what their analogs may be.
+
+    Yields ``(queries, season, other_years, None)``: the rows of the targets of one
+    calendar day; the season-window candidates they share (computed once, by the live
+    query's :func:`~analogs.stages.selection.candidate_ids` for the first of them, with no
+    exclusion window); and a boolean array (len(queries), n_days) true on the days of
+    the other years (the leave-one-year-out restriction).
+    """
+    calendar_day = day_of_year(times)
+    years = times.year.to_numpy()
+    days = np.unique(calendar_day[targets])
+    for day in tqdm(days, desc="hindcast", unit="calendar day", disable=not progress):
+        queries = np.flatnonzero(targets & (calendar_day == day))
+        season = candidate_ids(times, times[queries[0]], window=window, exclude=None)
+        other_years = years[None, :] != years[queries][:, None]
+        yield queries, season, other_years, None
+
+
+def _with_analogs(batches, pcs, times, *, top, separation):
+    """``batches`` with each target's analogs, ``(rows, distances)`` from
+    :func:`~analogs.stages.selection.rank_many` over an exact (flat) index of ``pcs``."""
+    index = AnalogIndex(kind="flat").fit(pcs)
+    for queries, season, other_years, _ in batches:
+        chosen = rank_many(index, times, pcs[queries], season, top=top,
+                           separation=separation, restrict=other_years)
+        yield queries, season, other_years, chosen
+
+
+def score_hindcast(hindcast: pd.DataFrame, *, threshold=P.threshold.default, n_bins=10,
+                   n_resamples=P.n_resamples.default, confidence=0.9, seed=0) -> dict:
     """Scores of a hindcast (:func:`leave_one_year_out`) with year-block bootstrap intervals.
 
     Returns the :func:`analogs.stages.scores.verification_summary` dict plus
     ``brier_skill_score_ci`` and ``roc_auc_ci`` (block bootstrap over years, since days
     within one year are not independent).
     """
-    threshold = check_float(threshold, "threshold", "score_hindcast", min_value=0.0, max_value=1.0)
+    threshold = P.threshold.check(threshold, "score_hindcast")
     if hindcast.empty:
         raise AnalogsInputError("the hindcast produced no forecasts (archive too short or "
                                 "no target days in the chosen months)")
@@ -142,8 +215,9 @@ def score_hindcast(hindcast: pd.DataFrame, *, threshold=0.3, n_bins=10, n_resamp
     return summary
 
 
-def tune(pcs, times, observed, *, tops=(10, 20, 30, 50), modes=(5, 10, 15, 20), window=45,
-         separation=3, months=None, progress=False) -> pd.DataFrame:
+def tune(pcs, times, observed, *, tops=P.tops.default, modes=P.scan_modes.default,
+         window=DEFAULT_WINDOW, separation=DEFAULT_SEPARATION, months=None,
+         progress=False) -> pd.DataFrame:
     """Scan the number of analogs and of EOF modes; Brier skill score of each pair.
 
     Returns a DataFrame (top, n_modes, brier_score, brier_skill_score) sorted best first.
@@ -160,6 +234,6 @@ def tune(pcs, times, observed, *, tops=(10, 20, 30, 50), modes=(5, 10, 15, 20), 
                                       separation=separation, n_modes=n_modes, months=months)
         p, o = hindcast["forecast"].to_numpy(), hindcast["observed"].to_numpy()
         rows.append({"top": top, "n_modes": n_modes,
-                     "brier_score": float(np.mean((p - o) ** 2)),
+                     "brier_score": brier_score(p, o),
                      "brier_skill_score": brier_skill_score(p, o, hindcast["climatology"].to_numpy())})
     return pd.DataFrame(rows).sort_values("brier_skill_score", ascending=False, ignore_index=True)

@@ -8,22 +8,46 @@ ranks allowed days.
 
 from __future__ import annotations
 
+import contextlib
 import os
 
 import faiss
 import numpy as np
 
 from analogs._validation import check_choice, check_int
+from analogs.parameters import P
 from analogs.errors import NotFittedError
 
-INDEX_KINDS = ("auto", "flat", "hnsw")
+INDEX_KINDS = P.index.choices
 #: Below this share of allowed vectors a filtered search ranks the allowed vectors
 #: alone, exactly (faiss brute force on the subset): cheaper than scanning every vector
 #: through a selector (measured at a million vectors: 2-4 ms for 2.5 % of them against
 #: 8.5 ms for a flat scan), and exact where a filtered HNSW walk loses recall
 #: (measured: recall@10 0.48 with 0.5 % of the vectors allowed). Above it, faiss ID
-#: selection with a bitmap of the allowed ids. Per index kind.
+#: selection with a bitmap of the allowed ids. Per index kind. For a flat index the
+#: share is per query: a batch of m queries sharing the allowed ids (the hindcast's
+#: targets of one calendar day) gathers them once but would scan every vector m times
+#: (measured at a million vectors, 30 queries, a quarter of them allowed: 67 ms against
+#: 477 ms), so it ranks the subset below m / 16 of the vectors.
 SUBSET_SEARCH_MAX_SHARE = {"flat": 1 / 16, "hnsw": 1 / 8}
+
+
+@contextlib.contextmanager
+def faiss_threads(n_threads):
+    """Run the enclosed faiss work on ``n_threads`` OpenMP threads, then restore the
+    count that was set before (faiss' thread count is process-wide state: it is changed
+    only inside this context, never left changed).
+
+    >>> with faiss_threads(1):
+    ...     distances, ids = index.search(queries, 20)   # doctest: +SKIP
+    """
+    n_threads = check_int(n_threads, "n_threads", "faiss_threads", min_value=1)
+    previous = faiss.omp_get_max_threads()
+    faiss.omp_set_num_threads(n_threads)
+    try:
+        yield
+    finally:
+        faiss.omp_set_num_threads(previous)
 
 
 class AnalogIndex:
@@ -86,12 +110,9 @@ class AnalogIndex:
         else:
             index = faiss.IndexHNSWFlat(d, self.hnsw_neighbours)
             index.hnsw.efConstruction = max(2 * self.hnsw_neighbours, 80)
-        faiss.omp_set_num_threads(self.n_threads if kind == "flat"
-                                  else self.build_threads or os.cpu_count() or 1)
-        try:
+        with faiss_threads(self.n_threads if kind == "flat"
+                           else self.build_threads or os.cpu_count() or 1):
             index.add(vectors)
-        finally:
-            faiss.omp_set_num_threads(self.n_threads)
         self.index_ = index
         self.kind_ = kind
         self.n_vectors_, self.n_dims_ = n, d
@@ -123,14 +144,18 @@ class AnalogIndex:
             raise ValueError(
                 f"query vectors have {queries.shape[1]} components, the index has {self.n_dims_}")
         k = check_int(k, "k", "AnalogIndex.search", min_value=1)
-        faiss.omp_set_num_threads(self.n_threads)
+        with faiss_threads(self.n_threads):
+            return self._search(queries, k, allowed)
+
+    def _search(self, queries, k, allowed):
         params = None
         if allowed is not None:
             allowed = np.asarray(allowed, dtype=np.int64)
             if allowed.size == 0:
                 shape = (queries.shape[0], k)
                 return np.full(shape, np.inf), np.full(shape, -1, dtype=np.int64)
-            if allowed.size <= SUBSET_SEARCH_MAX_SHARE[self.kind_] * self.n_vectors_:
+            batch = queries.shape[0] if self.kind_ == "flat" else 1
+            if allowed.size <= SUBSET_SEARCH_MAX_SHARE[self.kind_] * batch * self.n_vectors_:
                 return self._subset_search(queries, k, allowed)
             selector = self._selector(allowed)
             if self.kind_ == "hnsw":

@@ -38,8 +38,6 @@ from __future__ import annotations
 
 import dataclasses
 import math
-import os
-import tempfile
 from pathlib import Path
 
 import numpy as np
@@ -48,7 +46,7 @@ import xarray as xr
 from scipy import special
 
 from analogs import __version__
-from analogs._validation import check_choice, check_float
+from analogs._validation import ParameterError, check_choice, check_float
 from analogs.constants import (
     CONVECTIVE_DAY_START_HOUR,
     EARTH_RADIUS,
@@ -56,7 +54,10 @@ from analogs.constants import (
     PRACTICALLY_PERFECT_SIGMA_KM,
 )
 from analogs.errors import AnalogsInputError
+from analogs.stages.cf import label_coordinates
 from analogs.geo import great_circle_km, initial_bearing_deg
+from analogs.parameters import P
+from analogs.results import OutcomeSummary, WeightedOutcomes
 
 #: Columns every events table must have.
 REQUIRED_EVENT_COLUMNS = ("time", "lat", "lon", "kind")
@@ -227,8 +228,9 @@ def read_events(path) -> pd.DataFrame:
 # Regions
 # --------------------------------------------------------------------------
 
-def _region_error(expected: str, value) -> AnalogsInputError:
-    return AnalogsInputError(f"The 'region' option must be {expected}. Got {value!r} instead.")
+def _region_error(expected: str, value) -> ParameterError:
+    """The region's complaint; the public function or option that passed it names itself."""
+    return ParameterError("region", None, expected, value)
 
 
 @dataclasses.dataclass(frozen=True)
@@ -380,10 +382,9 @@ class Region:
             distance = great_circle_km(self.lat, self.lon, lat2d, lon2d)
             mask.flat[np.argmin(distance)] = True
             return mask
-        raise AnalogsInputError(
-            f"The 'region' option ({self.label()}) contains no grid points of the grid "
-            f"(lat {lat.min():g} to {lat.max():g}, lon {lon.min():g} to {lon.max():g})."
-        )
+        raise _region_error(
+            "a region holding at least one grid point (the grid covers lat "
+            f"{lat.min():g} to {lat.max():g}, lon {lon.min():g} to {lon.max():g})", self.label())
 
 
 # --------------------------------------------------------------------------
@@ -412,11 +413,9 @@ def _select_kinds(events: pd.DataFrame, kinds, owner: str):
     wanted = [str(k).strip().lower() for k in kinds]
     unknown = [k for k in wanted if k not in known]
     if unknown:
-        raise AnalogsInputError(
-            f"The 'kinds' parameter of {owner} names unknown event kind(s) "
-            f"{', '.join(repr(k) for k in unknown)}; the events have "
-            f"{', '.join(repr(k) for k in known) or 'no kinds'}."
-        )
+        raise ParameterError("kinds", owner, "kinds of the events table ("
+                             + (", ".join(repr(k) for k in known) or "it has none") + ")",
+                             unknown[0] if len(unknown) == 1 else unknown)
     return sorted(set(wanted))
 
 
@@ -540,7 +539,7 @@ def analog_weights(distances, scheme="equal") -> np.ndarray:
     :math:`n_{eff} = (\\sum w)^2 / \\sum w^2` (see :func:`effective_sample_size`).
     """
     owner = "analog_weights"
-    check_choice(scheme, "scheme", owner, ("equal", "inverse_distance", "gaussian"))
+    check_choice(scheme, "scheme", owner, P.weights.choices)
     d = np.asarray(distances, dtype=float).ravel()
     if d.size == 0 or np.any(~np.isfinite(d)) or np.any(d < 0):
         raise AnalogsInputError(
@@ -578,13 +577,14 @@ def _weighted_share(weights, mask):
     return float(np.clip(np.dot(weights, mask), 0.0, 1.0))
 
 
-def _ratio(p, reference):
-    return None if reference is None or reference == 0 else float(p / reference)
+def _ratio(p, reference) -> float:
+    """``p / reference``; NaN when the reference is 0 or undefined (NaN)."""
+    return float(p / reference) if reference == reference and reference != 0 else math.nan
 
 
 def summarize_outcomes(analog_counts: pd.DataFrame, climatology_counts: pd.DataFrame, *,
                        weights=None, min_events=(1, 3, 10), confidence=0.9,
-                       percentiles=(10, 50, 90), method="clopper-pearson") -> dict:
+                       percentiles=(10, 50, 90), method="clopper-pearson") -> OutcomeSummary:
     """Outcome statistics of the analog days beside the climatology.
 
     Parameters
@@ -593,7 +593,7 @@ def summarize_outcomes(analog_counts: pd.DataFrame, climatology_counts: pd.DataF
     climatology_counts : the same for every archive day of the season window
         (the reference).
     weights : optional analog weights (see :func:`analog_weights`), one per row
-        of ``analog_counts``; adds the ``"weighted"`` block.
+        of ``analog_counts``; adds the ``weighted`` statistics.
     min_events : thresholds M for "at least M events".
     confidence : level of the binomial intervals (two-sided).
     percentiles : count percentiles to report (0-100).
@@ -601,20 +601,15 @@ def summarize_outcomes(analog_counts: pd.DataFrame, climatology_counts: pd.DataF
 
     Returns
     -------
-    dict of plain floats / ints / lists (JSON-ready, no NaN):
-    ``n_analogs``, ``p_any_event``, ``p_any_event_ci`` [lo, hi],
-    ``climatology_p_any_event`` (None without climatology days),
-    ``n_climatology_days``, ``ratio_to_climatology`` (None when the
-    climatology is 0), ``mean_events``, ``climatology_mean_events``,
-    ``count_percentiles`` {"10": value, ...}, ``p_at_least`` {"M": p},
-    ``p_at_least_ci`` {"M": [lo, hi]}, ``climatology_p_at_least`` {"M": p},
-    ``by_kind`` {kind: {"p_any", "mean", "p_any_ci", "climatology_p_any"}},
-    ``confidence``, ``interval_method`` and, with weights, ``weighted``:
-    {``n_effective``, ``p_any_event``, ``p_any_event_ci``,
-    ``ratio_to_climatology``, ``mean_events``, ``p_at_least``, ``by_kind``
-    {kind: {"p_any", "mean"}}}. Weighted intervals are binomial intervals
-    with n = Kish's effective sample size and k = p * n (Kish 1965).
-    Mapping keys for thresholds and percentiles are strings, as JSON needs.
+    :class:`analogs.results.OutcomeSummary`: probabilities as fractions, NaN where a
+    statistic is undefined (``climatology_*`` without climatology days,
+    ``ratio_to_climatology`` when the climatology is 0); ``count_percentiles`` a Series
+    by percentile, ``thresholds`` a DataFrame by ``min_events`` (``p_at_least`` with
+    its interval and ``climatology_p_at_least``), ``by_kind`` a DataFrame by kind
+    (``p_any``, ``mean``, ``p_any_low``, ``p_any_high``, ``climatology_p_any``) and,
+    with weights, ``weighted`` (:class:`analogs.results.WeightedOutcomes`). Weighted
+    intervals are binomial intervals with n = Kish's effective sample size and
+    k = p * n (Kish 1965). Its ``to_dict()`` is the JSON block of ``analogs find --json``.
     """
     owner = "summarize_outcomes"
     _check_counts(analog_counts, "analog_counts")
@@ -640,43 +635,38 @@ def summarize_outcomes(analog_counts: pd.DataFrame, climatology_counts: pd.DataF
     n_clim = len(climatology_counts)
 
     def interval(k):
-        return list(binomial_interval(k, n, confidence, method))
+        return binomial_interval(k, n, confidence, method)
 
     def clim_share(values):
-        return float(np.mean(values)) if n_clim else None
+        return float(np.mean(values)) if n_clim else math.nan
+
+    def kind_values(frame, kind, size):
+        return frame[kind].to_numpy(float) if kind in frame else np.zeros(size)
 
     hits = int(np.sum(total >= 1))
     p_any = hits / n
     clim_p_any = clim_share(clim_total >= 1)
-    summary = {
-        "n_analogs": n,
-        "p_any_event": p_any,
-        "p_any_event_ci": interval(hits),
-        "climatology_p_any_event": clim_p_any,
-        "n_climatology_days": n_clim,
-        "ratio_to_climatology": _ratio(p_any, clim_p_any),
-        "mean_events": float(total.mean()),
-        "climatology_mean_events": clim_share(clim_total),
-        "count_percentiles": {key: float(np.percentile(total, p))
-                              for key, p in _percentile_keys(percentiles).items()},
-        "p_at_least": {str(m): float(np.mean(total >= m)) for m in thresholds},
-        "p_at_least_ci": {str(m): interval(int(np.sum(total >= m))) for m in thresholds},
-        "climatology_p_at_least": {str(m): clim_share(clim_total >= m) for m in thresholds},
-        "by_kind": {},
-        "confidence": float(confidence),
-        "interval_method": method,
-    }
+    threshold_rows = [(float(np.mean(total >= m)), *interval(int(np.sum(total >= m))),
+                       clim_share(clim_total >= m)) for m in thresholds]
+    threshold_table = pd.DataFrame(
+        threshold_rows, columns=["p_at_least", "p_at_least_low", "p_at_least_high",
+                                 "climatology_p_at_least"],
+        index=pd.Index(thresholds, name="min_events"), dtype=float)
+    kind_rows = []
     for kind in kinds:
-        values = analog_counts[kind].to_numpy(float) if kind in analog_counts else np.zeros(n)
-        clim_values = (climatology_counts[kind].to_numpy(float)
-                       if kind in climatology_counts else np.zeros(n_clim))
-        summary["by_kind"][kind] = {
-            "p_any": float(np.mean(values >= 1)),
-            "mean": float(values.mean()),
-            "p_any_ci": interval(int(np.sum(values >= 1))),
-            "climatology_p_any": clim_share(clim_values >= 1),
-        }
+        values = kind_values(analog_counts, kind, n)
+        kind_rows.append((float(np.mean(values >= 1)), float(values.mean()),
+                          *interval(int(np.sum(values >= 1))),
+                          clim_share(kind_values(climatology_counts, kind, n_clim) >= 1)))
+    by_kind = pd.DataFrame(kind_rows, columns=["p_any", "mean", "p_any_low", "p_any_high",
+                                               "climatology_p_any"],
+                           index=pd.Index(kinds, name="kind", dtype=object), dtype=float)
+    levels = list(_percentile_keys(percentiles).values())
+    count_percentiles = pd.Series([float(np.percentile(total, p)) for p in levels],
+                                  index=pd.Index(levels, name="percentile"), name="events",
+                                  dtype=float)
 
+    weighted = None
     if weights is not None:
         w = np.asarray(weights, dtype=float).ravel()
         if w.size != n or np.any(~np.isfinite(w)) or np.any(w < 0) or w.sum() <= 0:
@@ -687,22 +677,38 @@ def summarize_outcomes(analog_counts: pd.DataFrame, climatology_counts: pd.DataF
         n_eff = effective_sample_size(w)
         p_w = _weighted_share(w, total >= 1)
         low, high = binomial_interval(min(p_w * n_eff, n_eff), n_eff, confidence, method)
-        weighted = {
-            "n_effective": n_eff,
-            "p_any_event": p_w,
+        kind_weighted = [(_weighted_share(w, kind_values(analog_counts, kind, n) >= 1),
+                          float(np.sum(w * kind_values(analog_counts, kind, n))))
+                         for kind in kinds]
+        weighted = WeightedOutcomes(
+            n_effective=n_eff,
+            p_any_event=p_w,
             # p_w * n_eff / n_eff may round one ulp away from p_w.
-            "p_any_event_ci": [min(low, p_w), max(high, p_w)],
-            "ratio_to_climatology": _ratio(p_w, clim_p_any),
-            "mean_events": float(np.sum(w * total)),
-            "p_at_least": {str(m): _weighted_share(w, total >= m) for m in thresholds},
-            "by_kind": {},
-        }
-        for kind in kinds:
-            values = analog_counts[kind].to_numpy(float) if kind in analog_counts else np.zeros(n)
-            weighted["by_kind"][kind] = {"p_any": _weighted_share(w, values >= 1),
-                                         "mean": float(np.sum(w * values))}
-        summary["weighted"] = weighted
-    return summary
+            p_any_event_ci=(min(low, p_w), max(high, p_w)),
+            ratio_to_climatology=_ratio(p_w, clim_p_any),
+            mean_events=float(np.sum(w * total)),
+            p_at_least=pd.Series([_weighted_share(w, total >= m) for m in thresholds],
+                                 index=pd.Index(thresholds, name="min_events"),
+                                 name="p_at_least", dtype=float),
+            by_kind=pd.DataFrame(kind_weighted, columns=["p_any", "mean"],
+                                 index=pd.Index(kinds, name="kind", dtype=object), dtype=float),
+        )
+    return OutcomeSummary(
+        n_analogs=n,
+        p_any_event=p_any,
+        p_any_event_ci=interval(hits),
+        climatology_p_any_event=clim_p_any,
+        n_climatology_days=n_clim,
+        ratio_to_climatology=_ratio(p_any, clim_p_any),
+        mean_events=float(total.mean()),
+        climatology_mean_events=clim_share(clim_total),
+        count_percentiles=count_percentiles,
+        thresholds=threshold_table,
+        by_kind=by_kind,
+        confidence=float(confidence),
+        interval_method=method,
+        weighted=weighted,
+    )
 
 
 # --------------------------------------------------------------------------
@@ -875,10 +881,7 @@ def outcome_maps(events, analog_days, lat, lon, *, radius_km=NEIGHBOURHOOD_KM,
     probability = neighbourhood_probability(events, days, lat, lon, radius_km, weights)
     density = report_density(events, days, lat, lon, sigma_km, weights)
     ds = xr.Dataset({"neighbourhood_probability": probability, "report_density": density})
-    ds["lat"].attrs = {"standard_name": "latitude", "long_name": "latitude",
-                       "units": "degrees_north", "axis": "Y"}
-    ds["lon"].attrs = {"standard_name": "longitude", "long_name": "longitude",
-                       "units": "degrees_east", "axis": "X"}
+    ds = label_coordinates(ds, replace=True)
     ds.attrs = {
         "Conventions": "CF-1.8",
         "title": "Outcome maps of analog days",
@@ -888,38 +891,6 @@ def outcome_maps(events, analog_days, lat, lon, *, radius_km=NEIGHBOURHOOD_KM,
         "comment": "Guidance only: statistics of past analog days, not a forecast.",
     }
     return ds
-
-
-def write_maps(ds: xr.Dataset, path) -> Path:
-    """Write outcome maps as CF NetCDF, atomically.
-
-    The file is written to a temporary sibling in the same directory, flushed
-    to disk (fsync) and renamed over ``path`` (``os.replace``), so a reader
-    never sees a half-written file and a failure leaves any old file intact.
-    Coordinates get no ``_FillValue``; data variables are float32 with NaN fill.
-    """
-    path = Path(path)
-    if not path.parent.is_dir():
-        raise AnalogsInputError(f"The 'maps' option: directory '{path.parent}' does not exist.")
-    encoding = {name: {"_FillValue": None} for name in ds.coords}
-    encoding.update({name: {"dtype": "float32", "_FillValue": np.float32(np.nan)}
-                     for name in ds.data_vars})
-    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
-    os.close(fd)
-    try:
-        ds.to_netcdf(tmp, format="NETCDF4", engine="netcdf4", encoding=encoding)
-        with open(tmp, "rb") as handle:
-            os.fsync(handle.fileno())
-        os.replace(tmp, path)
-    except BaseException:
-        Path(tmp).unlink(missing_ok=True)
-        raise
-    dir_fd = os.open(path.parent, os.O_RDONLY)
-    try:
-        os.fsync(dir_fd)
-    finally:
-        os.close(dir_fd)
-    return path
 
 
 # --------------------------------------------------------------------------

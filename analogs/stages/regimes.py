@@ -35,6 +35,8 @@ import xarray as xr
 
 from analogs import __version__
 from analogs._validation import check_int
+# Machine labels of the regimes (DESIGN.md), in order of precedence: the --regime table entry.
+from analogs.parameters import REGIME_LABELS
 from analogs.stages.diagnostics import compute_diagnostics
 from analogs.errors import AnalogsInputError, NotFittedError
 
@@ -48,9 +50,6 @@ __all__ = [
     "read_labelled_days",
     "tag_days",
 ]
-
-#: Machine labels of the regimes (DESIGN.md), in order of precedence.
-REGIME_LABELS = ("tropical", "strong_trough", "northwest_flow", "other")
 
 
 def _rule(default, units: str, doc: str):

@@ -52,10 +52,15 @@ def _forecasts(p, o, owner):
     return p, o
 
 
+def _brier(p, o) -> float:
+    """The Brier score of validated arrays (the one place its formula is written)."""
+    return float(np.mean((p - o) ** 2))
+
+
 def brier_score(p, o) -> float:
     """Brier (1950) score :math:`BS = \\frac1N\\sum_i (p_i - o_i)^2` (0 is perfect)."""
     p, o = _forecasts(p, o, "brier_score")
-    return float(np.mean((p - o) ** 2))
+    return _brier(p, o)
 
 
 def brier_skill_score(p, o, p_reference) -> float:
@@ -67,10 +72,10 @@ def brier_skill_score(p, o, p_reference) -> float:
     p, o = _forecasts(p, o, "brier_skill_score")
     reference = np.broadcast_to(np.asarray(p_reference, dtype=float), p.shape)
     reference, _ = _forecasts(reference, o, "brier_skill_score")
-    bs_ref = np.mean((reference - o) ** 2)
+    bs_ref = _brier(reference, o)
     if bs_ref == 0:
         return float("nan")
-    return float(1.0 - np.mean((p - o) ** 2) / bs_ref)
+    return float(1.0 - _brier(p, o) / bs_ref)
 
 
 def _bins(p, n_bins, owner):
@@ -113,8 +118,8 @@ def murphy_decomposition(p, o, n_bins=10) -> dict:
         "reliability": reliability,
         "resolution": resolution,
         "uncertainty": float(o_bar * (1.0 - o_bar)),
-        "brier_score_binned": float(np.mean((bin_mean_of_each[k] - o) ** 2)),
-        "brier_score": float(np.mean((p - o) ** 2)),
+        "brier_score_binned": _brier(bin_mean_of_each[k], o),
+        "brier_score": _brier(p, o),
         "n_bins": n_bins,
     }
 

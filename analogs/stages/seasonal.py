@@ -1,23 +1,21 @@
-"""Seasonal climatology of regimes and what they bring, for training and briefings.
+"""Seasonal tables of regimes and what they bring: the content of the trainer's briefing.
 
 Pure functions on the tags table (one row a day: ``regime``, ``confidence``, the
-diagnostics; indexed by date, as :attr:`analogs.api.AnalogStore.tags`) and the daily
-event counts of :func:`analogs.stages.outcomes.daily_event_counts`; pandas / xarray out.
-:func:`build_climatology` writes all of it (tables, composites, figures and one HTML
-page) for ``analogs climatology``.
+diagnostics; indexed by date, as :attr:`analogs.api.AnalogStore.tags`), the daily
+event counts of :func:`analogs.stages.outcomes.daily_event_counts` and, for the regime
+composites, the fitted daily climatology, EOFs and PCs; pandas / xarray out, nothing
+read or written. :func:`analogs.workflows.briefing.build_briefing` gathers the inputs
+from a store and writes the briefing (tables, composites, figures and one HTML page)
+for ``analogs climatology``.
 
->>> from analogs.api import AnalogStore                          # doctest: +SKIP
->>> from analogs.stages.seasonal import build_climatology, parse_months # doctest: +SKIP
->>> build_climatology(AnalogStore.load("store"), "clim", months=parse_months("5-9"))
+>>> from analogs.stages.seasonal import parse_months
+>>> parse_months("11-2")
+(1, 2, 11, 12)
 """
 
 from __future__ import annotations
 
 import calendar
-import os
-import tempfile
-from contextlib import contextmanager
-from pathlib import Path
 
 import numpy as np
 import pandas as pd
@@ -26,7 +24,9 @@ from scipy import stats
 
 from analogs import __version__
 from analogs.errors import AnalogsInputError
-from analogs.stages.outcomes import binomial_interval, daily_event_counts
+from analogs.parameters import P
+from analogs.stages.cf import CONVENTIONS, coordinate_attrs
+from analogs.stages.outcomes import binomial_interval
 from analogs.stages.regimes import REGIME_LABELS
 
 #: Least spacing, in days, between two typical days of one regime (distinct cases).
@@ -41,39 +41,14 @@ def parse_months(text) -> tuple[int, ...]:
     """Months of a season from text: ``"5-9"`` (May to September), ``"11-3"`` (wraps
     the year end), ``"6,7,8"`` or a mix ``"4,6-8"``. Returns sorted unique months.
 
-    Raises AnalogsInputError naming the ``--season`` option when the text is not that.
+    Raises AnalogsInputError naming the ``--season`` option when the text is not that
+    (the --season entry of :mod:`analogs.parameters`).
     """
-    expected = "months 1-12 as M-N or M,N,... (e.g. 5-9)"
-    months = set()
-    try:
-        for part in str(text).split(","):
-            part = part.strip()
-            if "-" in part:
-                first, last = (int(v) for v in part.split("-"))
-                if not (1 <= first <= 12 and 1 <= last <= 12):
-                    raise ValueError(part)
-                span = (last - first) % 12
-                months.update((first - 1 + step) % 12 + 1 for step in range(span + 1))
-            else:
-                month = int(part)
-                if not 1 <= month <= 12:
-                    raise ValueError(part)
-                months.add(month)
-    except ValueError:
-        raise AnalogsInputError(f"--season {text!r}: expected {expected}") from None
-    return tuple(sorted(months))
+    return P.months.check(str(text))
 
 
 def _check_months(months, owner: str) -> tuple[int, ...] | None:
-    if months is None:
-        return None
-    if isinstance(months, str):
-        return parse_months(months)
-    values = tuple(sorted({int(m) for m in np.atleast_1d(months)}))
-    if not values or values[0] < 1 or values[-1] > 12:
-        raise AnalogsInputError(
-            f"The 'months' parameter of {owner} must be months in 1-12. Got {months!r} instead.")
-    return values
+    return P.months.check(months, owner)
 
 
 def _check_tags(tags, owner: str, months=None) -> pd.DataFrame:
@@ -98,6 +73,18 @@ def _check_tags(tags, owner: str, months=None) -> pd.DataFrame:
     if months is not None:
         tags = tags[tags.index.month.isin(months)]
     return tags
+
+
+def season_months(months, *, owner="season_months") -> tuple[int, ...] | None:
+    """``months`` checked and sorted (text such as ``"5-9"`` is parsed); None stays None
+    (all months). ``owner`` is the public function named in the error."""
+    return _check_months(months, owner)
+
+
+def season_tags(tags, months=None, *, owner="season_tags") -> pd.DataFrame:
+    """The tags table checked, indexed by calendar day, sorted and restricted to
+    ``months``. ``owner`` is the public function named in the error."""
+    return _check_tags(tags, owner, months)
 
 
 def _regimes_of(tags: pd.DataFrame) -> list[str]:
@@ -277,92 +264,98 @@ def _mean_climatology(climatology, times) -> xr.Dataset:
     return total / count
 
 
-def regime_composites(store, months=None, *, files=None) -> xr.Dataset:
+def regime_composites(tags, climatology, eof, pcs, *, months=None, anomalies=None,
+                      fields=None) -> xr.Dataset:
     """Mean fields of the days of each regime: anomalies and the full field.
 
-    Without ``files`` the anomalies are those the store keeps: each day's anomaly
-    projected on the kept EOFs, ``store.eof.reconstruct(pcs)``. Since the
-    reconstruction is affine in the PCs, the mean of the days' reconstructions equals
-    the reconstruction of their mean PCs, which is what is computed (no day-by-day
-    fields in memory). With ``files`` (the archive, as for ``build``) the anomalies are
-    the archive's own (climatology removed, nothing truncated).
+    Parameters
+    ----------
+    tags : the tags table (indexed by date, column ``regime``).
+    climatology : the fitted daily climatology
+        (:class:`analogs.stages.daily_climatology.HarmonicClimatology`).
+    eof : the fitted :class:`analogs.stages.eof.MultivariateEOF`.
+    pcs : PCs ``(time, mode)`` of the archive days (the store's scores); their ``time``
+        is each day's valid time.
+    months : months (1-12, or text such as ``"5-9"``) to keep, default all.
+    anomalies : optional Dataset ``(time, lat, lon)`` of the archive's own anomalies
+        (climatology removed, on the EOF grid). Without it the anomalies are each
+        day's anomaly projected on the kept EOFs, ``eof.reconstruct(pcs)``; since the
+        reconstruction is affine in the PCs, the mean of the days' reconstructions
+        equals the reconstruction of their mean PCs, which is what is computed (no
+        day-by-day fields in memory). With it, nothing is truncated.
+    fields : fields to composite, default every field of the EOFs.
 
     Returns
     -------
     Dataset with dims ``(regime, lat, lon)``: ``<field>_anomaly`` and ``<field>_mean``
-    (climatology of the regime's days plus the mean anomaly) for each field of the
-    store, in the field's units, and ``n_days (regime)``; CF attributes; a regime
-    with no day is NaN.
+    (daily climatology of the regime's days plus the mean anomaly) for each field, in
+    the field's units, and ``n_days (regime)``; CF attributes; a regime with no day is
+    NaN.
     """
     owner = "regime_composites"
-    if store.tags is None:
-        raise AnalogsInputError(f"store {store.path} has no tags: composites need them "
-                                "(rebuild the store)")
     months = _check_months(months, owner)
-    tags = _check_tags(store.tags, owner, months)
+    tags = _check_tags(tags, owner, months)
+    if not isinstance(pcs, xr.DataArray) or "time" not in pcs.dims or "mode" not in pcs.dims:
+        raise AnalogsInputError(
+            f"The 'pcs' parameter of {owner} must be a DataArray (time, mode) of PCs. "
+            f"Got {type(pcs).__name__} instead.")
     regimes = _regimes_of(tags)
-    row_of_day = pd.Series(np.arange(len(store.days)), index=store.days)
-    archive = None
-    if files is not None:
-        from analogs.stages.sources import open_archive, regrid_to
-        lat, lon = store.grid
-        archive = regrid_to(open_archive(files, fields=store.fields, progress=False)[store.fields],
-                            lat, lon)
-        archive_days = pd.DatetimeIndex(archive["time"].values).normalize()
-    anomalies, means, n_days = [], [], []
+    times = pd.DatetimeIndex(pcs["time"].values)
+    row_of_day = pd.Series(np.arange(len(times)), index=times.normalize())
+    if anomalies is not None:
+        anomaly_days = pd.DatetimeIndex(anomalies["time"].values).normalize()
+    per_regime, n_days = [], []
     for regime in regimes:
         days = tags.index[tags["regime"].astype(str).to_numpy() == regime]
         days = days[days.isin(row_of_day.index)]
         n_days.append(len(days))
         if len(days) == 0:
-            anomalies.append(None)
-            means.append(None)
+            per_regime.append(None)
             continue
         rows = row_of_day.loc[days].to_numpy()
-        climate = _mean_climatology(store.climatology, store.times[rows])[store.fields]
-        if archive is None:
-            anomaly = store.eof.reconstruct(store.pcs.isel(time=rows).mean("time"))
+        climate = _mean_climatology(climatology, times[rows])
+        if anomalies is None:
+            anomaly = eof.reconstruct(pcs.isel(time=rows).mean("time"))
         else:
-            # Select by calendar day but keep the valid time: the climatology is a
-            # smooth function of the time of year, hour included.
-            chosen = archive.isel(time=np.flatnonzero(archive_days.isin(days)))
-            anomaly = store.climatology.transform(chosen).mean("time")
-        anomaly = anomaly[store.fields].drop_vars([c for c in anomaly.coords
-                                                  if c not in ("lat", "lon")])
-        anomalies.append(anomaly)
-        means.append(climate.drop_vars([c for c in climate.coords if c not in ("lat", "lon")])
-                     + anomaly)
-    template = next((a for a in anomalies if a is not None), None)
+            # Select by calendar day; the anomalies keep their valid time (the daily
+            # climatology is a smooth function of the time of year, hour included).
+            anomaly = anomalies.isel(time=np.flatnonzero(anomaly_days.isin(days))).mean("time")
+        names = list(fields) if fields is not None else list(anomaly.data_vars)
+        anomaly = _plain_grid(anomaly[names])
+        per_regime.append((anomaly, _plain_grid(climate[names]) + anomaly))
+    template = next((pair[0] for pair in per_regime if pair is not None), None)
     if template is None:
         raise AnalogsInputError(f"The 'months' parameter of {owner} keeps no tagged day "
-                                f"of store {store.path}. Got {months!r} instead.")
+                                f"of the archive. Got {months!r} instead.")
     blank = xr.full_like(template, np.nan)
-    anomaly_ds = xr.concat([a if a is not None else blank for a in anomalies], dim="regime")
-    mean_ds = xr.concat([m if m is not None else blank for m in means], dim="regime")
-    method = ("archive anomalies (climatology removed)" if archive is not None else
-              f"anomalies projected on the {store.eof.n_modes_} kept EOFs")
+    anomaly_ds = xr.concat([p[0] if p is not None else blank for p in per_regime], dim="regime")
+    mean_ds = xr.concat([p[1] if p is not None else blank for p in per_regime], dim="regime")
+    method = ("archive anomalies (daily climatology removed)" if anomalies is not None else
+              f"anomalies projected on the {eof.n_modes_} kept EOFs")
     out = xr.Dataset(coords={"regime": ("regime", regimes, {"long_name": "weather regime"}),
                              "lat": template["lat"], "lon": template["lon"]})
-    season = season_label(months)
-    for field in store.fields:
+    for field in template.data_vars:
         units = template[field].attrs.get("units", "")
         name = template[field].attrs.get("long_name", field).removesuffix(" anomaly")
         out[f"{field}_anomaly"] = anomaly_ds[field].assign_attrs(
             units=units, long_name=f"mean {name} anomaly of the regime's days ({method})")
         out[f"{field}_mean"] = mean_ds[field].assign_attrs(
-            units=units, long_name=f"mean {name} of the regime's days (climatology plus mean "
-                                   "anomaly)")
+            units=units, long_name=f"mean {name} of the regime's days (daily climatology "
+                                   "plus mean anomaly)")
     out["n_days"] = ("regime", np.asarray(n_days, dtype=np.int64),
                      {"long_name": "number of tagged days of the regime", "units": "1"})
-    out["lat"].attrs = {"standard_name": "latitude", "long_name": "latitude",
-                        "units": "degrees_north", "axis": "Y"}
-    out["lon"].attrs = {"standard_name": "longitude", "long_name": "longitude",
-                        "units": "degrees_east", "axis": "X"}
-    out.attrs = {"Conventions": "CF-1.8", "title": "Regime composites",
+    out["lat"].attrs = coordinate_attrs("lat")
+    out["lon"].attrs = coordinate_attrs("lon")
+    out.attrs = {"Conventions": CONVENTIONS, "title": "Regime composites",
                  "source": f"analogs {__version__}", "composite_method": method,
-                 "season": season, "store": str(store.path),
+                 "season": season_label(months),
                  "comment": "Means over tagged archive days; guidance, not a forecast."}
     return out
+
+
+def _plain_grid(ds: xr.Dataset) -> xr.Dataset:
+    """``ds`` with only its lat / lon coordinates (scalar time and the like dropped)."""
+    return ds.drop_vars([c for c in ds.coords if c not in ("lat", "lon")])
 
 
 # --------------------------------------------------------------------- persistence
@@ -444,169 +437,6 @@ def typical_days(tags, n=5, *, separation=TYPICAL_DAY_SEPARATION) -> pd.DataFram
     return pd.DataFrame(rows, columns=["regime", "rank", "date", "confidence", "reason"])
 
 
-# ------------------------------------------------------------------------- writing
-
-@contextmanager
-def _atomic_path(path: Path):
-    """A temporary sibling of ``path`` to write; renamed over ``path`` on success."""
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, temporary = tempfile.mkstemp(prefix=f".{path.name}.", dir=path.parent)
-    os.close(fd)
-    temporary = Path(temporary)
-    try:
-        yield temporary
-        with open(temporary, "rb") as handle:
-            os.fsync(handle.fileno())
-        os.replace(temporary, path)
-    finally:
-        temporary.unlink(missing_ok=True)
-
-
-def write_table(frame: pd.DataFrame, out_dir, name: str) -> dict:
-    """Write ``frame`` as ``name.csv`` and ``name.parquet`` atomically; return the paths."""
-    out_dir = Path(out_dir)
-    paths = {}
-    for suffix in ("csv", "parquet"):
-        path = out_dir / f"{name}.{suffix}"
-        with _atomic_path(path) as temporary:
-            if suffix == "csv":
-                frame.to_csv(temporary, index=False, float_format="%.6g",
-                             date_format="%Y-%m-%d")
-            else:
-                frame.to_parquet(temporary, index=False)
-        paths[f"{name}.{suffix}"] = path
-    return paths
-
-
-def write_composites(ds: xr.Dataset, path) -> Path:
-    """Write regime composites as CF NetCDF, atomically."""
-    from analogs.workflows.store import write_dataset
-    path = Path(path)
-    with _atomic_path(path) as temporary:
-        write_dataset(ds, temporary)
-    return path
-
-
-def _write_png(png: bytes, path: Path) -> Path:
-    with _atomic_path(path) as temporary:
-        temporary.write_bytes(png)
-    return path
-
-
-def build_climatology(store, out_dir, *, months=None, files=None, n_typical=5,
-                      hindcast=True, progress=True) -> dict:
-    """Everything a seasonal briefing needs, written to ``out_dir``.
-
-    Parameters
-    ----------
-    store : :class:`analogs.api.AnalogStore` with tags (and events for the outcome
-        tables).
-    out_dir : directory to write (created).
-    months : months of the season (1-12, or text such as ``"5-9"``), default all.
-    files : archive files for composites of the archive's own anomalies (default: the
-        store's EOF reconstruction).
-    n_typical : example days per regime.
-    hindcast : also run the leave-one-year-out hindcast of the store's default
-        settings (restricted to ``months``) for the reliability and ROC figures.
-    progress : show a progress bar over the steps.
-
-    Returns
-    -------
-    dict of name -> Path of every file written; ``"index.html"`` is the report.
-    """
-    from tqdm.auto import tqdm
-
-    from analogs.presentation import figures as plots
-    from analogs.presentation.report import climatology_html, write_text_atomic
-
-    owner = "build_climatology"
-    months = _check_months(months, owner)
-    if store.tags is None:
-        raise AnalogsInputError(f"store {store.path} has no tags: the climatology needs them "
-                                "(rebuild the store)")
-    out_dir = Path(out_dir)
-    out_dir.mkdir(parents=True, exist_ok=True)
-    tags = _check_tags(store.tags, owner, months)
-    if len(tags) == 0:
-        raise AnalogsInputError(f"--season {months}: store {store.path} has no tagged day "
-                                "in those months")
-    has_events = store.events is not None
-    steps = ["tables", "composites", "figures", "hindcast", "report"]
-    bar = tqdm(total=len(steps), desc="climatology", disable=not progress, unit="step")
-    written: dict = {}
-    tables = {
-        "regime_frequency_by_month": regime_frequency_by_month(tags),
-        "regime_frequency_by_year": regime_frequency_by_year(tags),
-        "regime_trend": regime_trend(tags, months).reset_index(),
-        "regime_persistence": regime_persistence(tags).reset_index(),
-        "typical_days": typical_days(tags, n_typical),
-    }
-    if has_events:
-        counts = daily_event_counts(store.events, tags.index, store.region)
-        tables["outcomes_by_regime_and_month"] = outcomes_by_regime_and_month(tags, counts)
-    for name, frame in tables.items():
-        written.update(write_table(frame, out_dir, name))
-    bar.update()
-
-    composites = regime_composites(store, months, files=files)
-    written["regime_composites.nc"] = write_composites(composites, out_dir / "regime_composites.nc")
-    bar.update()
-
-    season = season_label(months)
-    figures = [
-        ("Regime of every tagged day", plots.regime_calendar(tags, title_suffix=season),
-         "regime_calendar.png"),
-        ("Share of days in each regime by month",
-         plots.monthly_frequency_chart(tables["regime_frequency_by_month"], title_suffix=season),
-         "regime_frequency_by_month.png"),
-        ("Mean pattern of each regime", plots.composite_maps(composites, region=store.region),
-         "regime_composites.png"),
-    ]
-    if has_events:
-        figures.append(("Chance of at least one event by regime and month",
-                        plots.outcome_chart(tables["outcomes_by_regime_and_month"],
-                                            title_suffix=season),
-                        "outcomes_by_regime_and_month.png"))
-    bar.update()
-
-    if hindcast and has_events and len(np.unique(store.times.year)) >= 2:
-        from analogs.stages.hindcast import leave_one_year_out
-        from analogs.stages.scores import roc_curve_points, reliability_table
-        defaults = store.query_defaults
-        forecasts = leave_one_year_out(store.pcs.values, store.times, store.observed(),
-                                       top=defaults.get("top", 20),
-                                       n_modes=defaults.get("n_modes"), months=months)
-        p, o = forecasts["forecast"].to_numpy(), forecasts["observed"].to_numpy()
-        if 0 < o.sum() < o.size:
-            figures.append(("How reliable the analog probabilities have been",
-                            plots.reliability_diagram(reliability_table(p, o),
-                                                      title_suffix=season),
-                            "reliability.png"))
-            figures.append(("How well the analog probabilities separate event days",
-                            plots.roc_diagram(*roc_curve_points(p, o)[:2], title_suffix=season),
-                            "roc.png"))
-    bar.update()
-
-    rendered = []
-    for caption, figure, filename in figures:
-        png = plots.figure_png(figure)
-        written[filename] = _write_png(png, out_dir / filename)
-        rendered.append((caption, png))
-    settings = {"store": str(store.path), "season": season,
-                "months": None if months is None else list(months),
-                "region": store.region.to_dict(), "days_tagged": int(len(tags)),
-                "composites": composites.attrs["composite_method"],
-                "trend_tests": "least-squares slope (t-test p-value) and Kendall tau "
-                               "(Mann-Kendall p-value)",
-                "typical_day_separation_days": TYPICAL_DAY_SEPARATION}
-    page = climatology_html(tables, rendered, store.manifest, settings)
-    write_text_atomic(out_dir / "index.html", page)
-    written["index.html"] = out_dir / "index.html"
-    bar.update()
-    bar.close()
-    return written
-
-
 def season_label(months) -> str:
     """Short text for a season: ``"May-Sep"``, ``"Jun, Aug"`` or ``"all months"``."""
     months = _check_months(months, "season_label")
@@ -623,8 +453,8 @@ def season_label(months) -> str:
 
 
 __all__ = [
-    "build_climatology", "outcomes_by_regime_and_month", "parse_months",
-    "regime_composites", "regime_frequency_by_month", "regime_frequency_by_year",
-    "regime_persistence", "regime_runs", "regime_trend", "season_days", "season_label",
-    "typical_days", "write_composites", "write_table",
+    "outcomes_by_regime_and_month", "parse_months", "regime_composites",
+    "regime_frequency_by_month", "regime_frequency_by_year", "regime_persistence",
+    "regime_runs", "regime_trend", "season_days", "season_label", "season_months",
+    "season_tags", "typical_days",
 ]

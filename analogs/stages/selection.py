@@ -3,6 +3,12 @@
 Analog searches are restricted to a window of about one to two months around the
 target's calendar day, and analogs within a few days of a better analog belong to the
 same weather episode, so they are dropped (common practice, no source).
+
+This is the one selection rule of the package: the live query (:func:`find_analogs`)
+and the leave-one-year-out hindcast (:mod:`analogs.stages.hindcast`) both choose their
+candidates with :func:`candidate_ids` and rank them with :func:`rank_many` (the
+hindcast in batches of the targets of one calendar day, its held-out year given as a
+per-target restriction).
 """
 
 from __future__ import annotations
@@ -12,19 +18,20 @@ import weakref
 import numpy as np
 import pandas as pd
 
-from analogs._validation import check_int
+from analogs.parameters import P
+from analogs.errors import AnalogsInputError
 from analogs.stages.index import AnalogIndex
 
 #: Mean length of the year in days, for circular calendar-day distances.
 DAYS_PER_YEAR = 365.2425
-#: Default number of analogs returned.
-DEFAULT_TOP = 20
-#: Default half-width of the season window, calendar days (about three months in all).
-DEFAULT_WINDOW = 45
-#: Default exclusion around a --date target's own date, days: its own episode.
-DEFAULT_EXCLUDE = 10
-#: Default de-clustering distance, days.
-DEFAULT_SEPARATION = 3
+# The defaults of the query, from the parameter table (analogs.parameters), where each
+# is defined once: number of analogs; half-width of the season window, calendar days
+# (about three months in all); exclusion around a --date target's own date, days (its
+# own episode); de-clustering distance, days.
+DEFAULT_TOP = P.top.default
+DEFAULT_WINDOW = P.window.default
+DEFAULT_EXCLUDE = P.exclude.default
+DEFAULT_SEPARATION = P.separation.default
 
 
 def _as_datetime64(times) -> np.ndarray:
@@ -32,6 +39,12 @@ def _as_datetime64(times) -> np.ndarray:
     queries are hot)."""
     values = times.to_numpy() if isinstance(times, pd.DatetimeIndex) else np.asarray(times)
     return values if values.dtype.kind == "M" else values.astype("datetime64[ns]")
+
+
+def _as_index(times) -> pd.DatetimeIndex:
+    """``times`` as a DatetimeIndex, the caller's own object when it is one (so that the
+    calendar arrays cached for it are found again)."""
+    return times if isinstance(times, pd.DatetimeIndex) else pd.DatetimeIndex(times)
 
 
 #: Calendar arrays of recently queried DatetimeIndex objects (immutable), by identity:
@@ -118,7 +131,7 @@ def decluster_days(days, separation_days, limit=None):
     return np.asarray(kept, dtype=np.int64)
 
 
-def candidate_ids(times, target_time=None, *, window=45, exclude=0, restrict=None):
+def candidate_ids(times, target_time=None, *, window=DEFAULT_WINDOW, exclude=0, restrict=None):
     """Row numbers of archive days allowed as analogs of a target.
 
     Parameters
@@ -146,8 +159,9 @@ def candidate_ids(times, target_time=None, *, window=45, exclude=0, restrict=Non
     return np.flatnonzero(allowed)
 
 
-def find_analogs(index: AnalogIndex, times, target_vector, *, target_time=None, top=20,
-                 window=45, exclude=0, separation=3, restrict=None):
+def find_analogs(index: AnalogIndex, times, target_vector, *, target_time=None,
+                 top=DEFAULT_TOP, window=DEFAULT_WINDOW, exclude=0,
+                 separation=DEFAULT_SEPARATION, restrict=None):
     """The ``top`` closest archive days to a target vector, best first.
 
     Parameters
@@ -166,20 +180,15 @@ def find_analogs(index: AnalogIndex, times, target_vector, *, target_time=None, 
     row in the archive). Fewer than ``top`` rows when fewer days are allowed.
     """
     owner = "find_analogs"
-    top = check_int(top, "top", owner, min_value=1)
+    top = P.top.check(top, owner)
     if window is not None:
-        check_int(window, "window", owner, min_value=0, max_value=183)
+        P.window.check(window, owner)
     if exclude is not None:
-        check_int(exclude, "exclude", owner, min_value=0)
-    separation = check_int(separation, "separation", owner, min_value=0)
-    times = pd.DatetimeIndex(times)
+        P.exclude.check(exclude, owner)
+    separation = P.separation.check(separation, owner)
+    times = _as_index(times)
     allowed = candidate_ids(times, target_time, window=window, exclude=exclude, restrict=restrict)
     return rank_candidates(index, times, target_vector, allowed, top=top, separation=separation)
-
-
-def _empty_ranking() -> pd.DataFrame:
-    return pd.DataFrame({"rank": np.array([], dtype=int), "time": pd.DatetimeIndex([]),
-                         "distance": np.array([], dtype=float), "row": np.array([], dtype=int)})
 
 
 def fetch_size(top, separation, n_allowed, extra=0):
@@ -193,24 +202,71 @@ def fetch_size(top, separation, n_allowed, extra=0):
 
 
 def rank_candidates(index: AnalogIndex, times, target_vector, allowed, *, top, separation):
-    """Rank the ``allowed`` rows by distance to the target, de-cluster, keep ``top``."""
-    times = pd.DatetimeIndex(times)
-    fetch = fetch_size(top, separation, len(allowed))
-    if fetch == 0:
-        return _empty_ranking()
-    distances, ids = index.search(target_vector, fetch, allowed=allowed)
-    return ranking_from_neighbours(times, distances[0], ids[0], top=top, separation=separation)
+    """Rank the ``allowed`` rows by distance to the target, de-cluster, keep ``top``.
 
-
-def ranking_from_neighbours(times, distances, ids, *, top, separation):
-    """Turn one query's neighbour list (best first, ``-1`` padded) into the ranking."""
-    found = ids >= 0
-    distances, ids = distances[found], ids[found]
-    keep = decluster(times[ids], separation, limit=top)
-    rows = ids[keep]
+    One target of :func:`rank_many`, as the ranking DataFrame of :func:`find_analogs`.
+    """
+    times = _as_index(times)
+    (rows, distances), = rank_many(index, times, np.atleast_2d(target_vector), allowed,
+                                   top=top, separation=separation)
     return pd.DataFrame({
         "rank": np.arange(1, len(rows) + 1),
         "time": times[rows],
-        "distance": distances[keep],
+        "distance": distances,
         "row": rows,
     })
+
+
+def rank_many(index: AnalogIndex, times, target_vectors, allowed, *, top, separation,
+              restrict=None) -> list[tuple[np.ndarray, np.ndarray]]:
+    """Rank the ``allowed`` rows for each of several targets; de-cluster; keep ``top``.
+
+    The targets share one candidate set (for example the days of one calendar day,
+    which share a season window) and are searched in one call of the index.
+
+    Parameters
+    ----------
+    index : fitted :class:`~analogs.stages.index.AnalogIndex` whose row i is ``times[i]``.
+    times : DatetimeIndex of the indexed days.
+    target_vectors : array (m, d) in the index's space.
+    allowed : int array of the rows every target may take (see :func:`candidate_ids`).
+    top, separation : as in :func:`find_analogs`.
+    restrict : boolean array (m, n_days), optional
+        A further condition for each target (row j for target j; the hindcast's "not the
+        target's own year"). The index returns the nearest ``allowed`` rows and the
+        restricted ones are dropped afterwards; the number fetched grows by the most
+        ``allowed`` rows any target's restriction removes, so the answer equals ranking
+        ``allowed`` rows with ``restrict[j]`` true for each target alone.
+
+    Returns
+    -------
+    list of m ``(rows, distances)`` pairs, best first: the kept rows (int64) and their
+    Euclidean distances to the target; fewer than ``top`` when fewer rows are allowed.
+    """
+    allowed = np.asarray(allowed, dtype=np.int64)
+    target_vectors = np.atleast_2d(target_vectors)
+    n_targets = target_vectors.shape[0]
+    removed = 0
+    if restrict is not None:
+        restrict = np.asarray(restrict, dtype=bool)
+        if restrict.shape != (n_targets, len(times)):
+            raise AnalogsInputError(
+                "The 'restrict' parameter of rank_many must be a boolean array with one row "
+                f"per target and one column per day, shape {(n_targets, len(times))}. "
+                f"Got shape {restrict.shape} instead.")
+        if allowed.size:
+            removed = int((~restrict[:, allowed]).sum(axis=1).max())
+    fetch = fetch_size(top, separation, allowed.size, extra=removed)
+    if fetch == 0:
+        return [(np.zeros(0, dtype=np.int64), np.zeros(0))] * n_targets
+    distances, ids = index.search(target_vectors, fetch, allowed=allowed)
+    days = day_numbers(times)
+    ranked = []
+    for j in range(n_targets):
+        found = ids[j] >= 0
+        if restrict is not None:
+            found[found] = restrict[j][ids[j][found]]
+        rows, row_distances = ids[j][found], distances[j][found]
+        keep = decluster_days(days[rows], separation, limit=top)
+        ranked.append((rows[keep], row_distances[keep]))
+    return ranked

@@ -27,12 +27,13 @@ import numpy as np
 import pandas as pd
 import xarray as xr
 
-from analogs._validation import check_choice, check_float, check_int
+from analogs._validation import check_box, check_float, check_int, fail
 from analogs.constants import G0, ZERO_CELSIUS_K
 from analogs.errors import AnalogsInputError
+from analogs.stages.cf import coordinate_attrs
+# Canonical field names, in the order they appear in a canonical Dataset (the --fields entry).
+from analogs.parameters import SUPPORTED_FIELDS, P
 
-#: Canonical field names, in the order they appear in a canonical Dataset.
-SUPPORTED_FIELDS = ("z500", "q850", "td2m", "pwat")
 #: Moisture fields, most preferred first: ``fields=None`` takes the first one found.
 MOISTURE_PREFERENCE = ("q850", "td2m", "pwat")
 
@@ -141,8 +142,8 @@ class _Candidate:
 # public API
 # ---------------------------------------------------------------------------
 
-def open_archive(paths, *, fields=None, region=None, hour=12, daily="instant",
-                 chunks=None, progress=False, max_missing_fraction=0.1,
+def open_archive(paths, *, fields=None, region=None, hour=P.hour.default,
+                 daily=P.daily.default, chunks=None, progress=False, max_missing_fraction=0.1,
                  max_gap_days=2) -> xr.Dataset:
     """Open one or many NetCDF / Zarr files as a canonical daily archive.
 
@@ -181,11 +182,11 @@ def open_archive(paths, *, fields=None, region=None, hour=12, daily="instant",
         files read (``"; "``-separated) and ``missing_data`` (JSON) what the
         missing-data policy did (see :func:`apply_missing_data_policy`).
     """
-    hour = check_int(hour, "hour", "open_archive", min_value=0, max_value=23)
+    hour = P.hour.check(hour, "open_archive")
     max_missing_fraction = check_float(max_missing_fraction, "max_missing_fraction",
                                        "open_archive", min_value=0.0, max_value=1.0)
     max_gap_days = check_int(max_gap_days, "max_gap_days", "open_archive", min_value=0)
-    check_choice(daily, "daily", "open_archive", ("instant", "mean"))
+    P.daily.check(daily, "open_archive")
     files = _expand_paths(paths, "open_archive")
     requested = _check_fields(fields, "open_archive")
     south_north_west_east = _check_region(region)
@@ -609,10 +610,8 @@ def _expected_names(field):
 # one variable of one file -> canonical DataArray
 # ---------------------------------------------------------------------------
 
-_LAT_ATTRS = {"units": "degrees_north", "standard_name": "latitude",
-              "long_name": "latitude"}
-_LON_ATTRS = {"units": "degrees_east", "standard_name": "longitude",
-              "long_name": "longitude"}
+_LAT_ATTRS = coordinate_attrs("lat", "units", "standard_name", "long_name")
+_LON_ATTRS = coordinate_attrs("lon", "units", "standard_name", "long_name")
 _TIME_ATTRS = {"standard_name": "time", "long_name": "valid time (UTC)"}
 
 
@@ -1139,8 +1138,7 @@ def _select_time(ds, time, file):
     try:
         wanted = pd.Timestamp(time)
     except (ValueError, TypeError):
-        raise AnalogsInputError(f"The 'time' parameter of open_target must be an ISO 8601 "
-                                f"date or time. Got {time!r} instead.") from None
+        fail("time", "open_target", "an ISO 8601 date or time", time)
     if wanted.tzinfo is not None:
         wanted = wanted.tz_convert("UTC").tz_localize(None)
     hits = np.flatnonzero(times == wanted)
@@ -1171,15 +1169,4 @@ def _step(values):
 def _check_region(region):
     if region is None:
         return None
-    try:
-        south, north, west, east = (float(v) for v in region)
-    except (TypeError, ValueError):
-        raise AnalogsInputError(
-            "The 'region' parameter must be four numbers (south, north, west, east) in "
-            f"degrees. Got {region!r} instead.") from None
-    if not (-90.0 <= south < north <= 90.0 and -180.0 <= west <= 180.0
-            and -180.0 <= east <= 180.0):
-        raise AnalogsInputError(
-            "The 'region' parameter must be (south, north, west, east) with -90 <= south "
-            f"< north <= 90 and west, east in [-180, 180]. Got {tuple(region)!r} instead.")
-    return south, north, west, east
+    return check_box(region, "region", "open_archive")

@@ -4,40 +4,35 @@ from __future__ import annotations
 
 import contextlib
 import json
-import warnings
-from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
 import xarray as xr
 
-from analogs import CAUTION, __version__
+from analogs import __version__
 from analogs.workflows import store as store_io
-from analogs._validation import check_choice, check_float, check_int
+from analogs._validation import renamed_errors
 from analogs.stages.daily_climatology import HarmonicClimatology
 from analogs.stages.eof import MultivariateEOF
-from analogs.errors import AnalogsInputError, StoreError
-from analogs.stages.index import INDEX_KINDS, AnalogIndex, recall_at_k
+from analogs.errors import AnalogsInputError
+from analogs.parameters import P
+from analogs.stages.index import AnalogIndex, recall_at_k
 from analogs.stages.outcomes import (
     Region,
-    analog_weights,
-    cyclone_relative_composite,
     daily_event_counts,
-    outcome_maps,
     read_events,
-    summarize_outcomes,
 )
-from analogs.stages.selection import (DEFAULT_EXCLUDE, DEFAULT_SEPARATION, DEFAULT_TOP, DEFAULT_WINDOW,
-                    candidate_ids, find_analogs)
+from analogs.stages.selection import (DEFAULT_EXCLUDE, DEFAULT_WINDOW,
+                    candidate_ids)
+from analogs.workflows.skill import skill_by_month  # the build records it in the manifest
 
-WEIGHT_SCHEMES = ("equal", "inverse_distance", "gaussian")
 # The readers (sources), the regime diagnostics (regimes) and the hindcast are imported
 # inside the functions that use them: a query on an archive date needs none of them, and
 # the start-up of `analogs find` is part of a forecaster's wait.
 
 
-def _provenance(paths) -> list[dict]:
+def provenance(paths) -> list[dict]:
     entries = []
     for path in paths:
         path = Path(path)
@@ -47,13 +42,13 @@ def _provenance(paths) -> list[dict]:
     return entries
 
 
-def _region_from_config(config) -> Region:
+def region_from_config(config) -> Region:
     if config is None:
         return Region.whole()
     return Region.from_dict(config)
 
 
-def _grid_box(ds) -> tuple[float, float, float, float]:
+def grid_box(ds) -> tuple[float, float, float, float]:
     lat, lon = ds["lat"].values, ds["lon"].values
     return float(lat.min()), float(lat.max()), float(lon.min()), float(lon.max())
 
@@ -63,9 +58,9 @@ def _grid_box(ds) -> tuple[float, float, float, float]:
 SYNOPTIC_HALF_BOX = (7.5, 10.0)
 
 
-def _diagnostic_region(region: Region, ds) -> tuple[float, float, float, float]:
+def diagnostic_region(region: Region, ds) -> tuple[float, float, float, float]:
     """The box, clipped to the grid, over which regime diagnostics are computed."""
-    south, north, west, east = _grid_box(ds)
+    south, north, west, east = grid_box(ds)
     if region.kind == "box":
         box = (region.south, region.north, region.west, region.east)
     elif region.kind == "point":
@@ -77,10 +72,11 @@ def _diagnostic_region(region: Region, ds) -> tuple[float, float, float, float]:
     return (max(box[0], south), min(box[1], north), max(box[2], west), min(box[3], east))
 
 
-def build_store(paths, store, *, events=None, fields=None, n_modes=None, variance=None,
-                region=None, domain=None, hour=12, daily="instant", n_harmonics=3,
-                solver="auto", field_weights=None, chunks=None, index="auto", scheduler=None,
-                progress=True):
+def build_store(paths, store, *, events=None, fields=None, n_modes=P.n_modes.api_default,
+                variance=None, region=None, domain=None, hour=P.hour.default,
+                daily=P.daily.default, n_harmonics=P.n_harmonics.default,
+                solver=P.solver.default, field_weights=None, chunks=None,
+                index=P.index.default, scheduler=None, progress=True):
     """Build (or rebuild) the store at ``store`` from archive ``paths``.
 
     Parameters
@@ -90,7 +86,8 @@ def build_store(paths, store, *, events=None, fields=None, n_modes=None, varianc
         succeeds.
     events : path of the events table (CSV or Parquet), optional.
     fields : fields to use (default: every supported field found).
-    n_modes, variance : EOF truncation, by count or by explained-variance target.
+    n_modes, variance : EOF truncation, by count (default 20) or by explained-variance
+        target (a fraction in (0, 1]); give at most one.
     region : :class:`~analogs.stages.outcomes.Region` or text ``"S,N,W,E"`` / ``"LAT,LON,KM"``;
         the default region for outcome statistics and regime diagnostics.
     domain : (south, north, west, east) subset of the archive grid, optional.
@@ -112,13 +109,25 @@ def build_store(paths, store, *, events=None, fields=None, n_modes=None, varianc
     """
     if not paths:
         raise AnalogsInputError("no archive files given: pass one or more NetCDF/Zarr files")
-    check_choice(index, "index", "build_store", INDEX_KINDS)
-    region = Region.parse(region) if isinstance(region, str) else (region or Region.whole())
-    with _dask_scheduler(scheduler):
-        return _build(paths, store, events=events, fields=fields, n_modes=n_modes,
-                      variance=variance, region=region, domain=domain, hour=hour, daily=daily,
-                      n_harmonics=n_harmonics, solver=solver, field_weights=field_weights,
-                      chunks=chunks, index=index, progress=progress)
+    owner = "build_store"
+    n_modes, variance = P.n_modes.check(n_modes, owner), P.variance.check(variance, owner)
+    if n_modes is not None and variance is not None:
+        raise AnalogsInputError(
+            f"The 'n_modes' and 'variance' parameters of {owner} exclude each other: give "
+            f"one of them. Got n_modes={n_modes!r} and variance={variance!r} instead.")
+    fields, domain = P.fields.check(fields, owner), P.domain.check(domain, owner)
+    hour, n_harmonics = P.hour.check(hour, owner), P.n_harmonics.check(n_harmonics, owner)
+    for option, value in ((P.daily, daily), (P.solver, solver), (P.index, index)):
+        option.check(value, owner)
+    # The region is parsed here and checked against the archive's grid in _build.
+    with renamed_errors(owner, "region"):
+        region = Region.parse(region) if isinstance(region, str) else (region or Region.whole())
+        with _dask_scheduler(scheduler):
+            return _build(paths, store, events=events, fields=fields, n_modes=n_modes,
+                          variance=variance, region=region, domain=domain, hour=hour,
+                          daily=daily, n_harmonics=n_harmonics, solver=solver,
+                          field_weights=field_weights, chunks=chunks, index=index,
+                          progress=progress)
 
 
 @contextlib.contextmanager
@@ -162,7 +171,7 @@ def _build(paths, store, *, events, fields, n_modes, variance, region, domain, h
                           field_weights=field_weights).fit(anomalies)
     pcs = eof.pcs_
     errors = eof.training_error_.values
-    tags = tag_days(archive, _diagnostic_region(region, archive), progress=progress)
+    tags = tag_days(archive, diagnostic_region(region, archive), progress=progress)
 
     times = pd.DatetimeIndex(archive["time"].values)
     index_info = _index_info(index, pcs.values, times)
@@ -181,7 +190,7 @@ def _build(paths, store, *, events, fields, n_modes, variance, region, domain, h
             "climatology_method": climatology.method_,
             "hour": hour,
             "daily": daily,
-            "domain": list(domain) if domain is not None else list(_grid_box(archive)),
+            "domain": list(domain) if domain is not None else list(grid_box(archive)),
             "region": region.to_dict(),
             "field_weights": field_weights,
         },
@@ -191,9 +200,9 @@ def _build(paths, store, *, events, fields, n_modes, variance, region, domain, h
             "time_end": times[-1].isoformat(),
             "n_lat": int(archive.sizes["lat"]),
             "n_lon": int(archive.sizes["lon"]),
-            "inputs": _provenance(paths),
+            "inputs": provenance(paths),
             "missing_data": json.loads(archive.attrs.get("missing_data", "{}")),
-            "reconstruction_error": _error_summary(errors),
+            "reconstruction_error": error_summary(errors),
         },
         "events": None if event_table is None else {
             "source": str(Path(events).resolve()),
@@ -203,7 +212,10 @@ def _build(paths, store, *, events, fields, n_modes, variance, region, domain, h
         "skill": skill,
         "index": index_info,
     }
-    with store_io.writing(store, manifest) as staged:
+    from analogs.workflows.analog_store import AnalogStore
+    # A whole new version, written and loaded back under the writer lock.
+    with store_io.transaction(store, new=True) as txn:
+        staged = txn.staging
         basis = xr.Dataset(coords={"lat": archive["lat"], "lon": archive["lon"]},
                            attrs={"title": "analogs store basis", "Conventions": "CF-1.8",
                                   "analogs_version": __version__})
@@ -218,8 +230,8 @@ def _build(paths, store, *, events, fields, n_modes, variance, region, domain, h
         if event_table is not None:
             store_io.write_table(event_table, staged / store_io.EVENTS)
         store_io.write_table(tags.reset_index(drop=True), staged / store_io.TAGS)
-    from analogs.workflows.analog_store import AnalogStore
-    return AnalogStore.load(store)
+        txn.commit(manifest)
+        return AnalogStore._load_version(Path(store), manifest=txn.committed)
 
 
 def _index_info(kind, vectors, times) -> dict:
@@ -236,55 +248,9 @@ def _index_info(kind, vectors, times) -> dict:
     return info
 
 
-def _error_summary(errors) -> dict:
+def error_summary(errors) -> dict:
     """Median and upper percentiles of the archive's EOF reconstruction error, the
     yardstick against which appended days are judged (drift detection)."""
     errors = np.asarray(errors, dtype=float)
     return {"median": float(np.median(errors)), "p99": float(np.percentile(errors, 99)),
             "max": float(errors.max())}
-
-
-def _quadrant_summary(composite: pd.DataFrame) -> dict:
-    """{kind: {quadrant: share}} of a cyclone-relative composite, for JSON."""
-    summary = {}
-    for (kind, quadrant), row in composite.iterrows():
-        summary.setdefault(kind, {})[quadrant] = {"events": int(row["total"]),
-                                                  "share": float(row["share"])}
-    return summary
-
-
-def skill_by_month(pcs, times, observed, *, region, top=DEFAULT_TOP, window=DEFAULT_WINDOW,
-                   separation=DEFAULT_SEPARATION) -> dict:
-    """Cross-validated skill of the default query settings, overall and by month.
-
-    A leave-one-year-out hindcast (:func:`analogs.stages.hindcast.leave_one_year_out`) of "at
-    least one event in the region", scored by the Brier skill score against the
-    other years' season-window climatology. Stored in the manifest at build so that
-    every query can say how much this kind of guidance has been worth.
-    """
-    from analogs.stages.hindcast import leave_one_year_out, score_hindcast
-    hindcast = leave_one_year_out(pcs, times, observed, top=top, window=window,
-                                  separation=separation)
-    months = pd.DatetimeIndex(hindcast["time"]).month
-    by_month = {}
-    for month in range(1, 13):
-        part = hindcast[months == month]
-        if len(part) == 0:
-            continue
-        p, o, ref = (part[c].to_numpy() for c in ("forecast", "observed", "climatology"))
-        reference_score = float(np.mean((ref - o) ** 2))
-        by_month[str(month)] = {
-            "n_days": int(len(part)), "base_rate": float(o.mean()),
-            "brier_score": float(np.mean((p - o) ** 2)),
-            "brier_skill_score": None if reference_score == 0 else
-            float(1.0 - np.mean((p - o) ** 2) / reference_score),
-        }
-    overall = score_hindcast(hindcast, n_resamples=200)
-    return {"method": "leave-one-year-out hindcast of P(at least one event in region)",
-            "region": region.to_dict(), "top": top, "window_days": window,
-            "separation_days": separation,
-            "brier_skill_score": overall["brier_skill_score"],
-            "brier_skill_score_ci": overall["brier_skill_score_ci"],
-            "roc_auc": overall["roc_auc"], "by_month": by_month}
-
-

@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import time
 from pathlib import Path
 
 import numpy as np
@@ -10,9 +9,9 @@ import pandas as pd
 import xarray as xr
 
 from analogs.constants import G0
+from analogs.parameters import P
 from analogs.stages.outcomes import Region
-from analogs.presentation.report import write_text_atomic
-from analogs.workflows.store import write_dataset
+from analogs.workflows import files as output
 
 
 def write_forecast_like_field(archive: xr.Dataset, day, path) -> Path:
@@ -48,11 +47,7 @@ def write_forecast_like_field(archive: xr.Dataset, day, path) -> Path:
                               {"units": "degrees_east", "standard_name": "longitude"})},
         attrs={"title": "analogs demo: one synthetic day written as a model forecast file",
                "Conventions": "CF-1.8"})
-    path = Path(path)
-    temporary = path.with_name(f".{path.name}.tmp")
-    write_dataset(out, temporary)
-    temporary.replace(path)
-    return path
+    return output.write_netcdf(out, path)
 
 
 def _pick_target(tags: pd.DataFrame) -> pd.Timestamp:
@@ -65,17 +60,25 @@ def _pick_target(tags: pd.DataFrame) -> pd.Timestamp:
     return tags.index[-1]
 
 
-def run_demo(out, *, years=10, seed=0, progress=True) -> int:
-    """Generate, build, tag, query and report; print a summary. Returns 0."""
+def run_demo(out, *, years=P.years.default, seed=P.seed.default, progress=True) -> dict:
+    """Generate the synthetic archive, build and tag a store, query one day and write
+    its report.
+
+    Writes, under ``out``: ``archive/`` (NetCDF), ``events.csv`` and ``truth.csv`` (by
+    :mod:`reanalysis_demo`), ``store/``, ``tags.csv``, ``forecast_field.nc`` (one day
+    written as a model centre might, to try ``find --field`` on) and
+    ``report/index.html``. Returns what was made: ``store`` (the built store),
+    ``result`` (the query's result), ``target`` (its day), ``files`` (the archive
+    files) and ``paths`` (name -> path of every output), for the caller to show.
+    """
     import reanalysis_demo
 
-    from analogs.api import build_store
-    from analogs.presentation.figures import find_figures
-    from analogs.presentation.report import find_html, find_text
+    from analogs.presentation.report import find_html
     from analogs.stages.sources import open_archive
+    from analogs.workflows.build import build_store
 
+    years, seed = P.years.check(years, "run_demo"), P.seed.check(seed, "run_demo")
     out = Path(out)
-    started = time.perf_counter()
     written = reanalysis_demo.write_archive(out, years=years, seed=seed, progress=progress)
     files = sorted((out / "archive").glob("*.nc"))
     region = Region.box(*reanalysis_demo.CENTRAL_REGION)
@@ -83,21 +86,23 @@ def run_demo(out, *, years=10, seed=0, progress=True) -> int:
                         progress=progress)
     tags = store.tags.reset_index()
     tags["date"] = tags["date"].dt.strftime("%Y-%m-%d")
-    write_text_atomic(out / "tags.csv", tags.to_csv(index=False))
+    output.write_table(tags, out / "tags.csv")
     target = _pick_target(store.tags)
     archive = open_archive(files, progress=False)
     forecast = write_forecast_like_field(archive, target, out / "forecast_field.nc")
-    result = store.find(date=str(target.date()))
-    figures = find_figures(store, result)
-    write_text_atomic(out / "report" / "index.html",
-                      find_html(result, store.manifest, figures=figures))
-    print(find_text(result))
-    print()
-    print(f"demo written to {out} in {time.perf_counter() - started:.0f} s:")
-    print(f"  archive     {out / 'archive'} ({len(files)} files), events {written.get('events', out / 'events.csv')}")
-    print(f"  store       {out / 'store'} ({len(store.times)} days, {store.eof.n_modes_} EOF modes)")
-    print(f"  tags        {out / 'tags.csv'}")
-    print(f"  report      {out / 'report' / 'index.html'}")
-    print(f"  try also    analogs find --store {out / 'store'} --field {forecast} "
-          f"--time {target.date()}T12:00")
-    return 0
+    result, figures = _query_with_figures(store, str(target.date()))
+    report = output.write_text(out / "report" / "index.html",
+                               find_html(result, store.manifest, figures=figures))
+    paths = {"archive": out / "archive", "events": written.get("events", out / "events.csv"),
+             "store": out / "store", "tags": out / "tags.csv", "forecast_field": forecast,
+             "report": report}
+    return {"store": store, "result": result, "target": target, "files": files,
+            "paths": paths}
+
+
+def _query_with_figures(store, date):
+    """The demo's query and its report figures, (caption, PNG bytes), through the find
+    workflow (the target's fields gathered once)."""
+    from analogs.workflows import find as find_workflow
+    result = find_workflow.find(store, date=date)
+    return result, find_workflow.report_figures(store, result)

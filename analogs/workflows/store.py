@@ -8,16 +8,20 @@ Layout::
     STORE/events.parquet  the events table attached at build (optional)
     STORE/tags.parquet    regime and diagnostics of every day (optional)
 
-Nothing is pickled. Writes are atomic: a new version is written into a temporary
-sibling directory, every file is fsynced, and the directory is swapped into place
-(``renameat2(RENAME_EXCHANGE)`` on Linux, two renames elsewhere), under a lock file
-beside the store, so a failed or killed write leaves the previous store untouched and
-readers never see half a store. Loading verifies the format version and the checksums.
+Nothing is pickled. Every write is one :func:`transaction`: the writer lock (a file
+beside the store) is taken first, the current version is read and its checksums checked
+under the lock, the new version is written into a temporary sibling directory, every
+file is fsynced, and the directory is swapped into place (``renameat2(RENAME_EXCHANGE)``
+on Linux, two renames elsewhere) before the lock is released. So two writers never lose
+each other's changes, a failed or killed write leaves the previous store untouched and
+readers never see half a store. Loading checks the format version and the checksums
+(:func:`check_checksums`). Files are written by :mod:`analogs.workflows.files`.
 """
 
 from __future__ import annotations
 
 import contextlib
+import copy
 import ctypes
 import ctypes.util
 import datetime as _dt
@@ -37,6 +41,7 @@ from filelock import FileLock, Timeout
 
 from analogs import __version__
 from analogs.errors import StoreError
+from analogs.workflows import files as _files
 
 FORMAT_VERSION = 1
 MANIFEST = "manifest.json"
@@ -49,8 +54,6 @@ MODELS = "models.nc"
 LOCK_TIMEOUT = 600.0
 #: Environment variable that overrides :data:`LOCK_TIMEOUT` (seconds).
 LOCK_TIMEOUT_ENV = "ANALOGS_LOCK_TIMEOUT"
-_TIME_ENCODING = {"units": "days since 1900-01-01 00:00:00", "calendar": "standard",
-                  "dtype": "float64", "_FillValue": None}
 
 
 def sha256_file(path) -> str:
@@ -59,14 +62,6 @@ def sha256_file(path) -> str:
         for block in iter(lambda: handle.read(1 << 20), b""):
             digest.update(block)
     return digest.hexdigest()
-
-
-def _fsync_path(path: Path) -> None:
-    fd = os.open(path, os.O_RDONLY)
-    try:
-        os.fsync(fd)
-    finally:
-        os.close(fd)
 
 
 def _exchange(a: Path, b: Path) -> bool:
@@ -93,7 +88,7 @@ def _swap_into_place(staged: Path, target: Path) -> None:
         os.rename(target, retired)
         os.rename(staged, target)
         shutil.rmtree(retired)
-    _fsync_path(target.parent)
+    _files.fsync_path(target.parent)
 
 
 def lock_for(path) -> FileLock:
@@ -164,23 +159,76 @@ def _process_alive(pid_text: str) -> bool:
     return True
 
 
-@contextlib.contextmanager
-def writing(path, manifest: dict, *, keep=(), timeout=None):
-    """Stage a new version of the store at ``path`` and swap it in on success.
+class Transaction:
+    """One write of the store at ``path``, made while holding its writer lock.
 
-    Yields the staging directory; the caller writes its files there. ``keep`` names files
-    of the existing store that are carried over unchanged (for example the tags when
-    only the events change). On leaving the block the manifest (with checksums of every
-    file) is written, everything is fsynced and the directory replaces ``path``. Any
-    exception leaves the existing store exactly as it was. A second writer waits up to
-    ``timeout`` seconds (:func:`lock_timeout`) for the first, then fails with
+    Made by :func:`transaction`. ``manifest`` is the manifest of the version current
+    when the lock was taken, its checksums checked (None for a whole new version);
+    ``staging`` the directory the new version is written into. :meth:`carry` copies
+    files of the current version unchanged; :meth:`commit` writes the manifest and
+    swaps the new version in (still under the lock). A transaction left without a
+    commit writes nothing.
+    """
+
+    def __init__(self, path: Path, manifest: dict | None, staging: Path):
+        self.path = path
+        self.manifest = manifest
+        self.staging = staging
+        self.committed: dict | None = None
+
+    def carry(self, *names) -> None:
+        """Copy the files ``names`` of the current version into the new one unchanged
+        (names the current version does not list are skipped)."""
+        listed = None if self.manifest is None else self.manifest["files"]
+        for name in names:
+            if Path(name).name != name:
+                raise StoreError(f"cannot carry {name!r}: not a file name of the store")
+            if (listed is None or name in listed) and (self.path / name).is_file():
+                shutil.copy2(self.path / name, self.staging / name)
+                os.chmod(self.staging / name, _files.file_mode())
+
+    def commit(self, manifest: dict) -> dict:
+        """Write the manifest (``manifest`` plus format, version, time and the sha256 of
+        every staged file), fsync, and swap the staged version in place of the store.
+        Returns the manifest written."""
+        if self.committed is not None:
+            raise StoreError(f"store {self.path}: this transaction was already committed")
+        full = _finish_manifest(self.staging, manifest)
+        _swap_into_place(self.staging, self.path)
+        self.committed = full
+        return full
+
+
+@contextlib.contextmanager
+def transaction(path, *, new=False, timeout=None):
+    """Take the writer lock of the store at ``path`` and yield a :class:`Transaction`.
+
+    Every write of a store is a load-modify-write done entirely inside this block: the
+    current version is read AFTER the lock is held (``txn.manifest``, checksums checked;
+    load its arrays from ``txn.path`` with it), the new version is written into
+    ``txn.staging`` and swapped in by ``txn.commit(manifest)``. No other writer can swap
+    a version in between, so nothing another writer committed is lost. ``new=True``
+    writes a whole new version (a build): the current one, if any, is not read (it may
+    be damaged; a rebuild replaces it). A second writer waits up to ``timeout`` seconds
+    (:func:`lock_timeout`) for the lock, then fails with
     :class:`~analogs.errors.StoreError`. Staging directories of writers that died are
-    removed first (:func:`remove_stale_staging`).
+    removed first (:func:`remove_stale_staging`). Any exception before the commit leaves
+    the store exactly as it was.
+
+    Example::
+
+        with store_io.transaction(path) as txn:
+            current = AnalogStore._load_version(path, manifest=txn.manifest)
+            ...                                   # write changed files into txn.staging
+            txn.carry(BASIS)                      # and carry unchanged ones
+            txn.commit({**editable(txn.manifest), "query_defaults": {...}})
     """
     path = Path(path).absolute()
     if path.exists() and not path.is_dir():
         raise StoreError(f"store path {path} exists and is not a directory")
     seconds = lock_timeout(timeout)
+    if not new:
+        read_manifest(path)  # a clear error for a path that is no store, before any lock
     path.parent.mkdir(parents=True, exist_ok=True)
     try:
         lock = lock_for(path)
@@ -190,44 +238,55 @@ def writing(path, manifest: dict, *, keep=(), timeout=None):
                          f"waited {seconds:g} s); try again when it has finished") from None
     try:
         remove_stale_staging(path)
+        manifest = None if new else check_checksums(path)
         staged = Path(tempfile.mkdtemp(prefix=f"{_staging_prefix(path)}{os.getpid()}-",
                                        dir=path.parent))
+        os.chmod(staged, _files.directory_mode())
+        txn = Transaction(path, manifest, staged)
         try:
-            for name in keep:
-                if (path / name).exists():
-                    shutil.copy2(path / name, staged / name)
-            yield staged
-            _finish_manifest(staged, manifest)
-            _swap_into_place(staged, path)
-        except BaseException:
-            shutil.rmtree(staged, ignore_errors=True)
-            raise
+            yield txn
+        finally:
+            if txn.committed is None:
+                shutil.rmtree(staged, ignore_errors=True)
     finally:
         lock.release()
 
 
-def _finish_manifest(staged: Path, manifest: dict) -> None:
-    files = {}
+@contextlib.contextmanager
+def writing(path, manifest: dict, *, keep=(), timeout=None):
+    """Stage a whole new version of the store at ``path`` and swap it in on success.
+
+    Yields the staging directory; the caller writes its files there. ``keep`` names files
+    of the existing store that are carried over unchanged. On leaving the block the
+    manifest (with checksums of every file) is written, everything is fsynced and the
+    directory replaces ``path``. Any exception leaves the existing store exactly as it
+    was. A :func:`transaction` with ``new=True``; a change of the current version
+    (load-modify-write) needs :func:`transaction` itself.
+    """
+    with transaction(path, new=True, timeout=timeout) as txn:
+        txn.carry(*keep)
+        yield txn.staging
+        txn.commit(manifest)
+
+
+def _finish_manifest(staged: Path, manifest: dict) -> dict:
+    listed = {}
     for item in sorted(staged.iterdir()):
         if item.name == MANIFEST:
             continue
-        _fsync_path(item)
-        files[item.name] = {"sha256": sha256_file(item), "bytes": item.stat().st_size}
+        _files.fsync_path(item)
+        listed[item.name] = {"sha256": sha256_file(item), "bytes": item.stat().st_size}
     full = {
         "format": "analogs-store",
         "format_version": FORMAT_VERSION,
         "package_version": __version__,
         "written": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
         **manifest,
-        "files": files,
+        "files": listed,
     }
-    target = staged / MANIFEST
-    with open(target, "w", encoding="utf-8") as handle:
-        json.dump(full, handle, indent=2, sort_keys=False, default=_json_default)
-        handle.write("\n")
-        handle.flush()
-        os.fsync(handle.fileno())
-    _fsync_path(staged)
+    text = json.dumps(full, indent=2, sort_keys=False, default=_json_default) + "\n"
+    _files.write_text(staged / MANIFEST, text)  # fsyncs the file and the staging directory
+    return json.loads(text)
 
 
 def _json_default(value):
@@ -244,13 +303,15 @@ def _json_default(value):
     raise TypeError(f"cannot write {type(value).__name__} to the manifest")
 
 
-#: Manifest keys the store writes itself on every write (see :func:`writing`).
+#: Manifest keys the store writes itself on every write (see :meth:`Transaction.commit`).
 _WRITTEN_KEYS = ("format", "format_version", "package_version", "written", "files")
 
 
 def editable(manifest: dict) -> dict:
-    """The part of a manifest a new version carries over (without what ``writing`` adds)."""
-    return {key: value for key, value in manifest.items() if key not in _WRITTEN_KEYS}
+    """A copy of the part of a manifest a new version carries over (without what
+    :meth:`Transaction.commit` adds); changing it leaves ``manifest`` as it was."""
+    return copy.deepcopy({key: value for key, value in manifest.items()
+                          if key not in _WRITTEN_KEYS})
 
 
 def version_token(path):
@@ -287,8 +348,9 @@ def read_manifest(path) -> dict:
     return manifest
 
 
-def verify(path) -> dict:
-    """Check every file listed in the manifest against its sha256; return the manifest."""
+def check_checksums(path) -> dict:
+    """Check every file listed in the manifest of the store at ``path`` against its
+    sha256 (and the format version); return the manifest."""
     path = Path(path)
     manifest = read_manifest(path)
     for name, entry in manifest["files"].items():
@@ -310,61 +372,16 @@ def verify(path) -> dict:
     return manifest
 
 
-#: CF attributes of the coordinates every analogs NetCDF file may carry.
-_COORDINATE_ATTRS = {
-    "time": {"standard_name": "time", "long_name": "time", "axis": "T"},
-    "lat": {"standard_name": "latitude", "long_name": "latitude", "units": "degrees_north",
-            "axis": "Y"},
-    "lon": {"standard_name": "longitude", "long_name": "longitude", "units": "degrees_east",
-            "axis": "X"},
-}
-
-
-def cf_tidy(ds: xr.Dataset) -> xr.Dataset:
-    """A copy of ``ds`` ready for CF-1.8 NetCDF (what the IOOS compliance checker asks).
-
-    64-bit integers become 32-bit (NetCDF classic types), coordinates get their standard
-    names and axes, every variable a ``long_name``, "gpm" becomes the UDUNITS unit "m"
-    (geopotential metres, implied by the standard name geopotential_height), and the
-    file a ``history`` line.
-    """
-    ds = ds.copy()
-    for name, variable in ds.variables.items():
-        if variable.dtype == np.int64:
-            ds[name] = variable.astype(np.int32)
-        attrs = ds[name].attrs
-        if name in _COORDINATE_ATTRS:
-            for key, value in _COORDINATE_ATTRS[name].items():
-                if key != "units" or not np.issubdtype(ds[name].dtype, np.datetime64):
-                    attrs.setdefault(key, value)
-        if attrs.get("units") == "gpm":
-            attrs["units"] = "m"
-            attrs.setdefault("comment", "geopotential metres")
-        attrs.setdefault("long_name", str(name).replace("_", " "))
-    ds.attrs.setdefault("Conventions", "CF-1.8")
-    ds.attrs.setdefault("history", f"{_dt.datetime.now(_dt.timezone.utc):%Y-%m-%dT%H:%M:%SZ} "
-                                   f"written by analogs {__version__}")
-    return ds
-
-
 def write_dataset(ds: xr.Dataset, path, *, group=None, mode="w") -> None:
-    """Write a Dataset as CF NetCDF (see :func:`cf_tidy`): float64 time, no fill values
-    on coordinates."""
-    ds = cf_tidy(ds)
-    encoding = {}
-    for name in ds.variables:
-        if name in ds.coords or name in ds.dims:
-            encoding[name] = {"_FillValue": None}
-    for name, variable in ds.variables.items():
-        if np.issubdtype(variable.dtype, np.datetime64):
-            encoding[name] = dict(_TIME_ENCODING)
-    ds.to_netcdf(path, mode=mode, group=group, encoding=encoding, engine="netcdf4")
+    """Write a Dataset of the store as CF NetCDF (:func:`analogs.workflows.files.write_netcdf`);
+    ``mode="a"`` adds ``group`` to the file (the store's ``basis.nc`` holds several)."""
+    _files.write_netcdf(ds, path, group=group, mode=mode)
 
 
 def read_dataset(path, *, group=None) -> xr.Dataset:
     """Read a NetCDF file of the store fully into memory and close it."""
     try:
-        with xr.open_dataset(path, group=group, engine="netcdf4") as ds:
+        with _files.NETCDF_LOCK, xr.open_dataset(path, group=group, engine="netcdf4") as ds:
             return ds.load()
     except (OSError, ValueError, KeyError) as error:
         where = f"{path}" + (f" (group {group})" if group else "")
@@ -372,7 +389,8 @@ def read_dataset(path, *, group=None) -> xr.Dataset:
 
 
 def write_table(frame: pd.DataFrame, path) -> None:
-    frame.to_parquet(path, index=False)
+    """Write a table of the store as Parquet (without the frame's index)."""
+    _files.write_table(frame, path)
 
 
 def read_table(path) -> pd.DataFrame:

@@ -1,0 +1,155 @@
+"""Workflow: cross-validated skill of a loaded store (verify, tune, skill by month).
+
+The numbers come from the pure stages: the leave-one-year-out hindcast
+(:mod:`analogs.stages.hindcast`, which selects analogs with the live query's own
+:mod:`analogs.stages.selection`) and the scores (:mod:`analogs.stages.scores`). This
+module only gathers what they need from a loaded store (its PCs, times, events,
+region and saved query defaults) and shapes the answers: the dict of
+``analogs verify --json``, the tuning table, and the per-month skill that a build
+records in the manifest and every query quotes (:func:`skill_for`).
+
+The functions take an :class:`~analogs.workflows.analog_store.AnalogStore`; the store's
+``verify``, ``tune``, ``observed`` and ``skill_for`` methods delegate here.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+
+from analogs._validation import renamed_errors
+from analogs.errors import AnalogsInputError
+from analogs.parameters import P
+from analogs.workflows.find import resolve_region
+
+# The hindcast and the scores are imported inside the functions that use them: a query
+# on an archive date quotes the stored skill (skill_for) but needs neither, and the
+# start-up of `analogs find` is part of a forecaster's wait.
+
+
+def observed(store, region=None, kinds=None) -> np.ndarray:
+    """Whether at least one event (of ``kinds``, default any) fell in ``region`` (default
+    the store's) on each archive day: bool array aligned with ``store.times``."""
+    if store.events is None:
+        raise AnalogsInputError(f"store {store.path} has no events table: verification needs "
+                                "one (rebuild with --events FILE)")
+    region = resolve_region(store, region)
+    return store.daily_counts(region, kinds)["total"].to_numpy() > 0
+
+
+def verify(store, *, top=P.top.api_default, window=P.window.default,
+           separation=P.separation.default, n_modes=P.query_modes.api_default, region=None,
+           months=None, threshold=P.threshold.default, n_resamples=P.n_resamples.default,
+           kinds=None, progress=False) -> dict:
+    """Leave-one-year-out hindcast scores, with the random-analog baseline beside them.
+
+    ``top`` and ``n_modes`` default to the store's saved query defaults (else
+    ``P.top.default`` and every mode). Returns the ``analogs verify --json`` dict:
+    :func:`analogs.stages.hindcast.score_hindcast` of the analog forecasts, plus
+    ``random_analogs`` (the same scores of ``top`` days drawn at random from the same
+    candidates) and ``settings``.
+    """
+    from analogs.stages.hindcast import leave_one_year_out, score_hindcast
+    owner = "verify"
+    defaults = store.query_defaults
+    top = defaults.get("top", P.top.default) if top is None else top
+    n_modes = defaults.get("n_modes") if n_modes is None else n_modes
+    top, window = P.top.check(top, owner), P.window.check(window, owner)
+    separation = P.separation.check(separation, owner)
+    n_modes = P.query_modes.check(n_modes, owner, maximum=int(store.eof.n_modes_))
+    months, kinds = P.months.check(months, owner), P.kinds.check(kinds, owner)
+    threshold = P.threshold.check(threshold, owner)
+    n_resamples = P.n_resamples.check(n_resamples, owner)
+    with renamed_errors(owner, "region", "kinds"):
+        region = resolve_region(store, region)
+        events = observed(store, region, kinds)
+    common = dict(top=top, window=window, separation=separation, n_modes=n_modes,
+                  months=months)
+    pcs = store.pcs.values
+    hindcast = leave_one_year_out(pcs, store.times, events, progress=progress, **common)
+    summary = score_hindcast(hindcast, threshold=threshold, n_resamples=n_resamples)
+    baseline = score_hindcast(leave_one_year_out(pcs, store.times, events, method="random",
+                                                 **common),
+                              threshold=threshold, n_resamples=n_resamples)
+    summary["random_analogs"] = {k: baseline[k] for k in
+                                 ("brier_score", "brier_skill_score", "brier_skill_score_ci",
+                                  "roc_auc")}
+    summary["settings"] = {"top": top, "n_modes": int(n_modes or store.eof.n_modes_),
+                           "window": window, "separation": separation,
+                           "months": None if months is None else sorted(months),
+                           "region": region.to_dict(), "threshold": threshold,
+                           "kinds": kinds, "method": "leave-one-year-out"}
+    return summary
+
+
+def tune(store, *, tops=P.tops.default, modes=P.scan_modes.default,
+         window=P.window.default, separation=P.separation.default, region=None,
+         months=None, kinds=None, progress=False) -> pd.DataFrame:
+    """Brier skill score of each (number of analogs, number of modes), best first
+    (:func:`analogs.stages.hindcast.tune`; the store's own mode count is scanned too)."""
+    from analogs.stages.hindcast import tune as scan
+    owner = "tune"
+    tops, modes = P.tops.check(tops, owner), P.scan_modes.check(modes, owner)
+    window, separation = P.window.check(window, owner), P.separation.check(separation, owner)
+    months, kinds = P.months.check(months, owner), P.kinds.check(kinds, owner)
+    modes = modes + (int(store.eof.n_modes_),)
+    with renamed_errors(owner, "region", "kinds"):
+        events = observed(store, region, kinds)
+    return scan(store.pcs.values, store.times, events, tops=tops,
+                modes=modes, window=window, separation=separation, months=months,
+                progress=progress)
+
+
+def skill_by_month(pcs, times, observed, *, region, top=P.top.default,
+                   window=P.window.default, separation=P.separation.default) -> dict:
+    """Cross-validated skill of the default query settings, overall and by month.
+
+    A leave-one-year-out hindcast (:func:`analogs.stages.hindcast.leave_one_year_out`) of "at
+    least one event in the region", scored by the Brier skill score against the
+    other years' season-window climatology. Stored in the manifest at build so that
+    every query can say how much this kind of guidance has been worth. A month whose
+    reference forecasts are perfect has ``brier_skill_score`` null (the manifest is JSON).
+    """
+    from analogs.stages.hindcast import leave_one_year_out, score_hindcast
+    from analogs.stages.scores import brier_score, brier_skill_score
+    hindcast = leave_one_year_out(pcs, times, observed, top=top, window=window,
+                                  separation=separation)
+    months = pd.DatetimeIndex(hindcast["time"]).month
+    by_month = {}
+    for month in range(1, 13):
+        part = hindcast[months == month]
+        if len(part) == 0:
+            continue
+        p, o, reference = (part[c].to_numpy() for c in ("forecast", "observed", "climatology"))
+        skill = brier_skill_score(p, o, reference)
+        by_month[str(month)] = {
+            "n_days": int(len(part)), "base_rate": float(o.mean()),
+            "brier_score": brier_score(p, o),
+            "brier_skill_score": None if np.isnan(skill) else skill,
+        }
+    overall = score_hindcast(hindcast, n_resamples=200)
+    return {"method": "leave-one-year-out hindcast of P(at least one event in region)",
+            "region": region.to_dict(), "top": top, "window_days": window,
+            "separation_days": separation,
+            "brier_skill_score": overall["brier_skill_score"],
+            "brier_skill_score_ci": overall["brier_skill_score_ci"],
+            "roc_auc": overall["roc_auc"], "by_month": by_month}
+
+
+def skill_for(store, target_time=None) -> dict | None:
+    """The stored cross-validated skill of the default settings (:func:`skill_by_month`,
+    recorded at build), for the target's month when known; None when not measured."""
+    skill = store.manifest.get("skill")
+    if not skill:
+        return None
+    answer = {"method": skill["method"], "region": skill["region"],
+              "brier_skill_score": skill["brier_skill_score"],
+              "brier_skill_score_ci": skill["brier_skill_score_ci"],
+              "roc_auc": skill["roc_auc"]}
+    if target_time is not None:
+        month = skill["by_month"].get(str(pd.Timestamp(target_time).month))
+        if month:
+            answer["month"] = int(pd.Timestamp(target_time).month)
+            answer["month_brier_skill_score"] = month["brier_skill_score"]
+            answer["month_base_rate"] = month["base_rate"]
+    return answer
