@@ -252,7 +252,7 @@ def _cmd_verify(args) -> int:
         tuning = {"table": table.to_dict(orient="records"),
                   "best": {"top": int(best["top"]), "n_modes": int(best["n_modes"])}}
         if args.save:
-            store.save_query_defaults(**tuning["best"])
+            store = store.save_query_defaults(**tuning["best"])
         args.top, args.modes = tuning["best"]["top"], tuning["best"]["n_modes"]
     summary = store.verify(top=args.top, window=args.window, separation=args.separation,
                            n_modes=args.modes, region=args.region, months=args.season,

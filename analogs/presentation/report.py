@@ -9,7 +9,6 @@ import base64
 import html
 import json
 import math
-from pathlib import Path
 
 from analogs import CAUTION, __version__
 
@@ -153,10 +152,11 @@ def _nan_to_none(value):
     return value
 
 
-def embed_png(path_or_bytes) -> str:
-    """An <img> tag with the PNG embedded as a data URI (no external resource)."""
-    data = path_or_bytes if isinstance(path_or_bytes, bytes) else Path(path_or_bytes).read_bytes()
-    return f'<img alt="figure" src="data:image/png;base64,{base64.b64encode(data).decode()}">'
+def embed_png(png: bytes, alt: str) -> str:
+    """An <img> tag with the PNG bytes embedded as a data URI (no external resource) and
+    ``alt`` as its text."""
+    return (f'<img alt="{html.escape(alt, quote=True)}" '
+            f'src="data:image/png;base64,{base64.b64encode(png).decode()}">')
 
 
 _STYLE = """
@@ -232,7 +232,7 @@ def find_html(result, manifest: dict, figures: list[tuple[str, bytes]] = ()) -> 
                                     left=("statistic",))
                          + f"<p>{html.escape(skill_line(outcomes.get('skill')))}</p>"))
     for caption, png in figures:
-        sections.append((caption, embed_png(png)))
+        sections.append((caption, embed_png(png, caption)))
     sections.append(("Settings", "<pre>" + html.escape(json.dumps(data["settings"], indent=2)) + "</pre>"))
     provenance = {"archive": manifest.get("archive"), "config": manifest.get("config"),
                   "events": manifest.get("events")}
@@ -352,7 +352,7 @@ def briefing_html(tables: dict, figures, manifest: dict, settings: dict) -> str:
         sections.append((heading, f"<p>{html.escape(note)}</p><div style=\"overflow-x:auto\">"
                          + html_frame(frame, left=("regime", "reason", "date")) + "</div>"))
     for caption, png in figures:
-        sections.append((caption, embed_png(png)))
+        sections.append((caption, embed_png(png, caption)))
     sections.append(("Cross-validated skill of this store", _skill_section(manifest.get("skill"))))
     provenance = {"archive": manifest.get("archive"), "config": manifest.get("config"),
                   "events": manifest.get("events")}

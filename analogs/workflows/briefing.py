@@ -16,6 +16,7 @@ from pathlib import Path
 
 import numpy as np
 
+from analogs._validation import fail
 from analogs.errors import AnalogsInputError
 from analogs.parameters import P
 from analogs.presentation import figures as plots
@@ -113,8 +114,8 @@ def build_briefing(store, out_dir, *, months=None, files=None, n_typical=5, hind
     out_dir = Path(out_dir)
     tags = season_tags(store.tags, months, owner=OWNER)
     if len(tags) == 0:
-        raise AnalogsInputError(f"--season {months}: store {store.path} has no tagged day "
-                                "in those months")
+        fail("months", OWNER, f"months holding at least one tagged day of store {store.path}",
+             months)
     has_events = store.events is not None
     steps = ["tables", "composites", "figures", "hindcast", "report"]
     bar = tqdm(total=len(steps), desc="briefing", disable=not progress, unit="step")

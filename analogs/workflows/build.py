@@ -12,7 +12,7 @@ import xarray as xr
 
 from analogs import __version__
 from analogs.workflows import store as store_io
-from analogs._validation import renamed_errors
+from analogs._validation import fail, renamed_errors
 from analogs.stages.daily_climatology import HarmonicClimatology
 from analogs.stages.eof import MultivariateEOF
 from analogs.errors import AnalogsInputError
@@ -139,8 +139,8 @@ def _dask_scheduler(address):
     try:
         from distributed import Client, LocalCluster
     except ImportError:
-        raise AnalogsInputError("--scheduler needs the 'distributed' package: "
-                                "pip install 'analogs[distributed]'") from None
+        fail("scheduler", "build_store", "None without the 'distributed' package "
+             "(pip install 'analogs[distributed]')", address)
     try:
         if address == "local":
             with LocalCluster(n_workers=2, threads_per_worker=1, dashboard_address=":0") as cluster, \
@@ -150,7 +150,8 @@ def _dask_scheduler(address):
             with Client(address, timeout=30):
                 yield
     except OSError as error:
-        raise AnalogsInputError(f"--scheduler {address}: cannot reach it ({error})") from None
+        fail("scheduler", "build_store", f"the address of a reachable dask scheduler ({error})",
+             address)
 
 
 def _build(paths, store, *, events, fields, n_modes, variance, region, domain, hour, daily,

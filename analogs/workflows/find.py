@@ -314,9 +314,8 @@ def _field_sequence_vector(store, field, target_time, vector, sequence) -> np.nd
         try:
             previous = open_target(field, time=earlier.isoformat())
         except AnalogsInputError as error:
-            raise AnalogsInputError(
-                f"--sequence {sequence}: {field} must also hold the field of "
-                f"{earlier:%Y-%m-%dT%H:%M} ({error})") from None
+            fail("sequence", "find", f"at most the number of days before the target that "
+                 f"{field} holds: it lacks {earlier:%Y-%m-%dT%H:%M} ({error})", sequence)
         previous = project(store, on_store_grid(store, previous))
         parts.append(SEQUENCE_DECAY ** lag * previous[:n_modes])
     return np.concatenate(parts)
