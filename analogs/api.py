@@ -8,15 +8,17 @@
 >>> result.outcomes.by_kind   # pandas DataFrame by event kind
 >>> result.to_dict()          # the JSON of `analogs find --json`
 
-``find`` returns an :class:`analogs.results.FindResult`; ``AnalogResult`` is its earlier
-name, kept so that existing imports keep working.
+``find`` returns an :class:`analogs.results.FindResult` (with ``members`` for an ensemble
+file), or for ``time="all"`` / ``"START/END"`` a :class:`analogs.results.ValidTimesResult`
+(one result per valid time); ``AnalogResult`` is its earlier name, kept so that existing
+imports keep working.
 
 The CLI is a thin layer over this module; the work is done in :mod:`analogs.workflows`.
 """
 
-from analogs.results import AnalogResult, FindResult, OutcomeSummary
+from analogs.results import AnalogResult, FindResult, OutcomeSummary, ValidTimesResult
 from analogs.workflows.analog_store import AnalogStore
 from analogs.workflows.build import build_store, skill_by_month
 
-__all__ = ["AnalogResult", "AnalogStore", "FindResult", "OutcomeSummary", "build_store",
-           "skill_by_month"]
+__all__ = ["AnalogResult", "AnalogStore", "FindResult", "OutcomeSummary", "ValidTimesResult",
+           "build_store", "skill_by_month"]

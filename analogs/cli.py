@@ -66,12 +66,13 @@ def build_parser() -> argparse.ArgumentParser:
              help="make a synthetic archive, build a store, tag it, run a query, write a report",
              description="Make the synthetic demo archive and its events, build a store, tag "
                          "every day, run one query and write an HTML report.",
-             options=(P.demo_out, P.years, P.seed, P.quiet))
+             options=(P.demo_out, P.years, P.seed, P.replace, P.quiet))
     _command(commands, "build", handler=_cmd_build,
              help="build a store from archive files",
              description="Read a gridded archive (NetCDF or Zarr; any CF-ish convention), fit "
                          "the climatology and EOFs, index every day and write the store.",
-             options=(P.files, P.store, P.events, P.n_modes, P.variance, P.fields, P.region,
+             options=(P.files, P.store, P.events, P.event_dates, P.events_period, P.n_modes,
+                      P.variance, P.fields, P.region,
                       P.domain, P.hour, P.daily, P.solver, P.chunk_days, P.scheduler, P.index,
                       P.n_harmonics, P.quiet),
              exclusive=((False, (P.n_modes, P.variance)),))
@@ -96,8 +97,14 @@ def build_parser() -> argparse.ArgumentParser:
              help="append new days to a store without a rebuild",
              description="Append new days (for example yesterday's analysis), projected on "
                          "the store's climatology and EOFs. Days already in the store are "
-                         "skipped; files on another grid or with other fields are refused.",
-             options=(P.files, P.store, P.events, P.quiet))
+                         "skipped; files on another grid are regridded as find --field "
+                         "fields are (at most 10 % of the store grid uncovered), files with "
+                         "other fields are refused. Days appended without their reports "
+                         "have none yet: they are left out of outcome statistics until "
+                         "--events merges their reports (by date: only the days the new "
+                         "table covers are replaced; the counts before and after are "
+                         "printed).",
+             options=(P.files, P.store, P.events, P.event_dates, P.events_period, P.quiet))
     _command(commands, "climatology", handler=_cmd_climatology,
              help="seasonal regime briefing for training: tables, maps, report",
              description="How often each regime occurs by month and year (with trend and its "
@@ -109,7 +116,7 @@ def build_parser() -> argparse.ArgumentParser:
              help="regime and diagnostics of every archive day",
              description="Write one row per archive day: date, regime, confidence, then the "
                          "physical diagnostics behind it.",
-             options=(P.store, P.tag_out, P.rules, P.kmeans, P.train, P.quiet))
+             options=(P.store, P.tag_out, P.rules, P.kmeans, P.train, P.tag_save, P.quiet))
     return parser
 
 
@@ -124,6 +131,9 @@ def _check_options(args) -> None:
         if option is P.region and value is not None:
             from analogs.stages.outcomes import Region
             Region.parse(value)  # its complaint is named for --region by main
+        if option.output and value is not None:  # never inside a store (issue 13)
+            from analogs.workflows.paths import check_output
+            check_output(value, option.flag, None, kind=option.output)
         setattr(args, option.dest, value)
 
 
@@ -199,7 +209,8 @@ def _cmd_build(args) -> int:
                         n_harmonics=args.harmonics, index=args.index, progress=not args.quiet,
                         chunks={"time": args.chunk_days} if args.chunk_days else None,
                         scheduler=args.scheduler,
-                        events=args.events)
+                        events=args.events, event_dates=args.event_dates,
+                        events_period=args.events_period)
     config = store.manifest["config"]
     print(f"built store {store.path}: {len(store.times)} days "
           f"{store.days[0].date()} to {store.days[-1].date()}, fields {', '.join(config['fields'])}, "
@@ -215,11 +226,17 @@ def _cmd_find(args) -> int:
     from analogs.workflows.find import find, outcome_maps, report_figures
     if args.time and args.field is None:
         raise AnalogsInputError("--time applies to --field only")
+    from analogs.stages.sources import several_times
+    if several_times(args.time) and args.maps:
+        raise AnalogsInputError(f"--maps writes one file: with --time {args.time} (several "
+                                "valid times) choose one valid time for the maps")
     store = AnalogStore.load(args.store)
     result = find(store, date=args.date, field=args.field, time=args.time, top=args.top,
                   window=args.window, exclude=args.exclude, separation=args.separation,
                   region=args.region, regime=args.regime, weights=args.weights,
                   sequence=args.sequence, kinds=args.kind)
+    if several_times(args.time):  # one answer per valid time (a ValidTimesResult)
+        return _print_valid_times(store, result, args)
     drawn = args.report and store.events is not None
     maps = outcome_maps(store, result) if args.maps or drawn else None
     if args.maps:
@@ -229,6 +246,32 @@ def _cmd_find(args) -> int:
         figures = report_figures(store, result, maps=maps)
         files.write_text(Path(args.report) / "index.html",
                          find_html(result, store.manifest, figures=figures))
+    if args.json:
+        print(dumps(result.to_dict()))
+    else:
+        print(find_text(result))
+        if args.report:
+            print(f"\nreport: {Path(args.report) / 'index.html'}")
+    return 0
+
+
+def _print_valid_times(store, result, args) -> int:
+    """find with several valid times: the table (or JSON) and, with --report, one page
+    per valid time under DIR plus DIR/index.html linking them."""
+    from analogs.presentation.report import dumps, find_html, find_text, valid_times_html
+    from analogs.workflows import files
+    from analogs.workflows.find import outcome_maps, report_figures
+    if args.report:
+        links = []
+        for one in result.results:
+            name = "valid_" + one.target["valid_time"].replace("-", "").replace(":", "")[:13]
+            maps = outcome_maps(store, one) if store.events is not None else None
+            files.write_text(Path(args.report) / name / "index.html",
+                             find_html(one, store.manifest,
+                                       figures=report_figures(store, one, maps=maps)))
+            links.append(f"{name}/index.html")
+        files.write_text(Path(args.report) / "index.html",
+                         valid_times_html(result, store.manifest, links))
     if args.json:
         print(dumps(result.to_dict()))
     else:
@@ -266,11 +309,30 @@ def _cmd_verify(args) -> int:
 
 def _cmd_update(args) -> int:
     from analogs.workflows.update import update_store
-    store = update_store(args.store, args.files, events=args.events, progress=not args.quiet)
+    store = update_store(args.store, args.files, events=args.events,
+                         event_dates=args.event_dates, events_period=args.events_period,
+                         progress=not args.quiet)
     summary = store.last_update
     print(f"store {args.store}: {summary['days_added']} days added, "
           f"{summary['days_already_present']} already present; "
           f"{len(store.times)} days {store.days[0].date()} to {store.days[-1].date()}")
+    merge = summary.get("events")
+    if merge is not None:
+        if merge["first_day"] is None:
+            print(f"events: {args.events} covers no day (no reports, no --events-period); "
+                  f"{merge['before']} events kept as they were")
+        else:
+            print(f"events merged by date: {merge['before']} before; on the convective days "
+                  f"{merge['first_day']} to {merge['last_day']}, {merge['replaced']} replaced "
+                  f"by {merge['added']}; {merge['after']} after"
+                  + (f" ({merge['n_outside_grid']} outside the grid left out)"
+                     if merge["n_outside_grid"] else ""))
+    if store.events is not None:
+        missing = summary["days_without_reports"]
+        print(f"report coverage: {summary['days_covered']} of {len(store.times)} days"
+              + (f"; {missing} {'day has' if missing == 1 else 'days have'} no reports yet "
+                 "(left out of outcome statistics until update --events covers them)"
+                 if missing else ""))
     return 0
 
 
@@ -287,22 +349,45 @@ def _cmd_climatology(args) -> int:
 
 def _cmd_tag(args) -> int:
     from analogs.api import AnalogStore
-    from analogs.workflows import files
     from analogs.workflows.tagging import retag_store
     out = Path(args.out)  # a .csv or .parquet name (checked with the option table)
-    if args.rules or args.kmeans is not None or args.train:
+    reclassified = bool(args.rules or args.kmeans is not None or args.train)
+    if args.save and not reclassified:
+        raise AnalogsInputError("--save keeps the tags of --rules, --kmeans or --train in the "
+                                "store; pass one of them")
+    training = None
+    if reclassified and args.save:  # the store's tags are replaced (issue 13: on request)
         store = retag_store(args.store, rules=args.rules, kmeans=args.kmeans,
                             labelled_days=args.train, progress=not args.quiet)
+        training = store.last_retag
+    elif reclassified:  # the store is left as it was; the new tags go to --out only
+        import copy
+
+        from analogs.workflows.tagging import classify_store
+        store = AnalogStore.load(args.store)
+        classified = classify_store(store, rules=args.rules, kmeans=args.kmeans,
+                                    labelled_days=args.train)
+        store, training = copy.copy(store), classified["training"]
+        store.tags = classified["tags"]  # a view for the table written to --out
     else:
         store = AnalogStore.load(args.store)
     if store.tags is None:
         raise AnalogsInputError(f"store {args.store} has no tags; rebuild it with analogs build")
-    table = store.tags.reset_index()
-    table["date"] = table["date"].dt.strftime("%Y-%m-%d")
-    files.write_table(table, out)
-    counts = table["regime"].value_counts()
-    print(f"tagged {len(table)} days -> {out}: "
+    from analogs.workflows.tagging import tag_file_sidecar, write_tags
+    metadata = write_tags(store, out)  # units and the diagnostic region in the file's metadata
+    counts = store.tags["regime"].value_counts()
+    print(f"tagged {len(store.tags)} days -> {out}: "
           + ", ".join(f"{label} {n}" for label, n in counts.items()))
+    print("regimes diagnosed over the " + metadata["diagnostic_region"]["description"])
+    print("units of every column: " + (f"{tag_file_sidecar(out)}" if out.suffix.lower() == ".csv"
+                                       else "the Parquet file's metadata (pandas attrs)"))
+    if training is not None:
+        from analogs.presentation.report import training_text
+        print(training_text(training))
+    if reclassified:
+        print(f"store {args.store}: tags replaced by these (and learned models kept)"
+              if args.save else f"store {args.store} left as it was: the new tags are in "
+              f"{out} only (pass --save to keep them in the store)")
     return 0
 
 
@@ -312,7 +397,8 @@ def _cmd_demo(args) -> int:
     from analogs.presentation.report import find_text
     from analogs.workflows.demo import run_demo
     started = time.perf_counter()
-    demo = run_demo(args.out, years=args.years, seed=args.seed, progress=not args.quiet)
+    demo = run_demo(args.out, years=args.years, seed=args.seed, replace=args.replace,
+                    progress=not args.quiet)
     store, paths = demo["store"], demo["paths"]
     print(find_text(demo["result"]))
     print()

@@ -22,3 +22,6 @@ NEIGHBOURHOOD_KM = 40.0
 PRACTICALLY_PERFECT_SIGMA_KM = 120.0
 #: Hour (UTC) at which a convective day starts: 12 UTC to 12 UTC (common practice).
 CONVECTIVE_DAY_START_HOUR = 12
+#: Density of liquid water that turns a water depth into a mass per area, kg m-3: 1 mm of
+#: precipitable water = 1 kg m-2 (the "lwe" standard names of the CF conventions; from memory).
+WATER_DENSITY = 1000.0

@@ -2,13 +2,30 @@
 
 All angles are in degrees at the interface, all lengths in metres or kilometres
 as named. The Earth is a sphere of radius :data:`analogs.constants.EARTH_RADIUS`.
+
+Longitudes are read by their circular spacing, not by array adjacency
+(:func:`longitude_frame`): a grid that goes round the globe is periodic, and a
+limited grid stored across the seam of [-180, 180) (a domain over the date line,
+sorted by :func:`analogs.stages.sources.normalise_grid`) is differenced in a frame
+where it is continuous. At a pole row the zonal derivative is undefined in
+latitude/longitude components: on a periodic grid the pole row gets the gradient
+of the plane through the adjacent latitude circle (its wavenumber-1 part); on a
+limited grid the pole rows are left out (NaN) and the next row takes one-sided
+differences.
 """
 
 from __future__ import annotations
 
+from dataclasses import dataclass
+
 import numpy as np
 
 from analogs.constants import EARTH_RADIUS
+
+#: A latitude within this many degrees of +-90 is a pole row.
+POLE_TOLERANCE_DEG = 1e-6
+#: Longitude spacings (degrees) equal within this tolerance count as uniform.
+_SPACING_TOLERANCE_DEG = 1e-4
 
 
 def great_circle_km(lat1, lon1, lat2, lon2):
@@ -24,13 +41,114 @@ def great_circle_km(lat1, lon1, lat2, lon2):
     return 2.0 * EARTH_RADIUS / 1000.0 * np.arcsin(np.sqrt(np.clip(h, 0.0, 1.0)))
 
 
+def wrap_longitude(lon):
+    """Longitudes in degrees east wrapped to [-180, 180)."""
+    return (np.asarray(lon, dtype=float) + 180.0) % 360.0 - 180.0
+
+
+def pole_rows(lat) -> np.ndarray:
+    """Boolean mask of the latitudes (degrees) that are a pole (+-90)."""
+    return np.abs(np.abs(np.asarray(lat, dtype=float)) - 90.0) <= POLE_TOLERANCE_DEG
+
+
+@dataclass(frozen=True, eq=False)
+class LongitudeFrame:
+    """A grid's longitudes put in an order where neighbours are neighbours on the globe.
+
+    Attributes
+    ----------
+    order : indices of the grid's longitude columns in frame order
+        (``field[..., order]`` is the field in the frame).
+    lon : the frame's longitudes, degrees east, strictly ascending and continuous
+        (they may pass 180: a domain from 150 E to 150 W is 150 .. 210).
+    periodic : the grid goes round the globe with uniform spacing; differences
+        then wrap from the last column to the first.
+    """
+
+    order: np.ndarray
+    lon: np.ndarray
+    periodic: bool
+
+    @property
+    def identity(self) -> bool:
+        """True when the frame keeps the grid's own column order."""
+        return bool(np.array_equal(self.order, np.arange(self.order.size)))
+
+    @property
+    def step(self) -> float:
+        """Longitude spacing in degrees (periodic grids: 360 / n)."""
+        if self.periodic:
+            return 360.0 / self.lon.size
+        return float(np.mean(np.diff(self.lon))) if self.lon.size > 1 else 1.0
+
+    def to_frame(self, values, axis: int = -1):
+        """``values`` with its longitude axis put in frame order."""
+        values = np.asarray(values)
+        return values if self.identity else np.take(values, self.order, axis=axis)
+
+    def from_frame(self, values, axis: int = -1):
+        """Inverse of :meth:`to_frame`: back to the grid's own column order."""
+        values = np.asarray(values)
+        if self.identity:
+            return values
+        inverse = np.empty_like(self.order)
+        inverse[self.order] = np.arange(self.order.size)
+        return np.take(values, inverse, axis=axis)
+
+    def longitude(self, lon):
+        """Longitudes (degrees) expressed in this frame: the value congruent modulo
+        360 that lies nearest the frame's centre."""
+        centre = 0.5 * (self.lon[0] + self.lon[-1])
+        lon = np.asarray(lon, dtype=float)
+        return lon + 360.0 * np.round((centre - lon) / 360.0)
+
+
+def longitude_frame(lon, centre: float | None = None) -> LongitudeFrame:
+    """The seam-continuous frame of a grid's longitudes (degrees east, any convention).
+
+    - Uniformly spaced longitudes that go round the globe (``n * spacing = 360``) are
+      periodic. The frame is the grid's own order unless ``centre`` is given; then it
+      is rotated to run from the column nearest ``centre - 180`` eastward, so that a
+      box around ``centre`` is contiguous in it.
+    - Otherwise the frame starts after the widest gap between neighbouring longitudes
+      on the circle (the domain's true western edge) and runs eastward, adding 360
+      past the seam. A grid already continuous keeps its own order and values.
+    """
+    raw = np.asarray(lon, dtype=float)
+    n = raw.size
+    if n < 2:
+        return LongitudeFrame(np.arange(n), raw.copy(), False)
+    circ = raw % 360.0
+    order = np.argsort(circ, kind="stable")
+    ring = circ[order]
+    gaps = np.diff(np.r_[ring, ring[0] + 360.0])   # gaps[k]: from ring[k] to the next
+    periodic = n >= 3 and bool(np.all(np.abs(gaps - 360.0 / n) <= _SPACING_TOLERANCE_DEG))
+    ascending = bool(np.all(np.diff(raw) > 0))
+    if periodic:
+        if centre is None and ascending:
+            return LongitudeFrame(np.arange(n), raw.copy(), True)
+        start_value = raw[0] if centre is None else float(centre) - 180.0
+        first = int(np.argmin((ring - start_value) % 360.0))
+    else:
+        wrap_gap = (raw[0] - raw[-1]) % 360.0
+        if ascending and raw[-1] - raw[0] < 360.0 and wrap_gap >= gaps.max() - 1e-9:
+            return LongitudeFrame(np.arange(n), raw.copy(), False)
+        first = int(np.argmax(gaps) + 1) % n
+    order = np.roll(order, -first)
+    ring = np.roll(ring, -first)
+    frame_lon = ring[0] + np.r_[0.0, np.cumsum(np.diff(ring) % 360.0)]
+    frame_lon = frame_lon - 360.0 * np.floor((frame_lon[0] + 180.0) / 360.0)
+    return LongitudeFrame(order, frame_lon, periodic)
+
+
 def spherical_gradient(field, lat, lon):
     """Gradient of ``field`` on a regular lat/lon grid, in field units per metre.
 
     Parameters
     ----------
     field : ndarray, shape (..., nlat, nlon)
-    lat, lon : 1-D arrays of degrees, ascending.
+    lat, lon : 1-D arrays of degrees; ``lat`` ascending, ``lon`` in any order (read
+        by its circular spacing, :func:`longitude_frame`).
 
     Returns
     -------
@@ -38,22 +156,116 @@ def spherical_gradient(field, lat, lon):
     :math:`\\partial/\\partial x = \\frac{1}{a\\cos\\phi}\\partial/\\partial\\lambda` and
     :math:`\\partial/\\partial y = \\frac{1}{a}\\partial/\\partial\\phi`.
     Second-order centred differences inside, one-sided at the edges
-    (``numpy.gradient``), as in MetPy's ``geospatial_gradient`` on a sphere.
+    (``numpy.gradient``), as in MetPy's ``geospatial_gradient`` on a sphere; periodic
+    in longitude on a grid that goes round the globe. Pole rows: see
+    :func:`zonal_derivative`.
     """
-    return zonal_derivative(field, lat, lon), meridional_derivative(field, lat)
+    return zonal_derivative(field, lat, lon), meridional_derivative(field, lat, lon)
 
 
 def zonal_derivative(field, lat, lon):
     """:math:`\\frac{1}{a\\cos\\phi}\\partial/\\partial\\lambda` of ``field`` (..., nlat, nlon),
-    per metre: the x part of :func:`spherical_gradient` alone."""
-    d_dlam = _axis_derivative(field, np.radians(np.asarray(lon, dtype=float)), -1)
-    return d_dlam / (EARTH_RADIUS * np.cos(np.radians(np.asarray(lat, dtype=float)))[:, None])
+    per metre: the x part of :func:`spherical_gradient` alone.
+
+    Longitudes are differenced by their circular spacing (periodic round the globe,
+    continuous across the seam of a date-line domain). On a pole row the derivative
+    along a latitude circle is undefined: on a periodic grid it is the eastward
+    component, along each meridian, of the gradient of the plane through the adjacent
+    latitude circle (:func:`polar_cap_gradient`); on a limited grid it is NaN.
+    """
+    lat = np.asarray(lat, dtype=float)
+    frame = longitude_frame(lon)
+    values = frame.to_frame(np.asarray(field, dtype=float))
+    if frame.periodic:
+        step = np.radians(frame.step)
+        d_dlam = (np.roll(values, -1, axis=-1) - np.roll(values, 1, axis=-1)) / (2.0 * step)
+    else:
+        d_dlam = _axis_derivative(values, np.radians(frame.lon), -1)
+    poles = pole_rows(lat)
+    if not poles.any():
+        return frame.from_frame(d_dlam / (EARTH_RADIUS * np.cos(np.radians(lat))[:, None]))
+    cos_lat = np.where(poles, np.nan, np.cos(np.radians(lat)))
+    out = d_dlam / (EARTH_RADIUS * cos_lat[:, None])
+    for row, ring in pole_neighbour_rows(lat):
+        out[..., row, :] = (polar_cap_gradient(values, lat, frame.lon, row, ring)[0]
+                            if frame.periodic else np.nan)
+    return frame.from_frame(out)
 
 
-def meridional_derivative(field, lat):
+def meridional_derivative(field, lat, lon=None):
     """:math:`\\frac{1}{a}\\partial/\\partial\\phi` of ``field`` (..., nlat, nlon), per
-    metre: the y part of :func:`spherical_gradient` alone."""
-    return _axis_derivative(field, np.radians(np.asarray(lat, dtype=float)), -2) / EARTH_RADIUS
+    metre: the y part of :func:`spherical_gradient` alone.
+
+    Pole rows: with ``lon`` of a periodic grid, the northward component along each
+    meridian of the polar-cap gradient (:func:`polar_cap_gradient`); otherwise the
+    pole rows are left out (NaN) and the adjacent row takes a one-sided difference.
+    """
+    lat = np.asarray(lat, dtype=float)
+    values = np.asarray(field, dtype=float)
+    poles = pole_rows(lat)
+    if not poles.any():
+        return _axis_derivative(values, np.radians(lat), -2) / EARTH_RADIUS
+    frame = None if lon is None else longitude_frame(lon)
+    if frame is not None and frame.periodic:
+        out = _axis_derivative(values, np.radians(lat), -2) / EARTH_RADIUS
+        framed = frame.to_frame(values)
+        for row, ring in pole_neighbour_rows(lat):
+            out[..., row, :] = frame.from_frame(
+                polar_cap_gradient(framed, lat, frame.lon, row, ring)[1])
+        return out
+    out = np.full(values.shape, np.nan)
+    keep = np.flatnonzero(~poles)
+    if keep.size >= 2:
+        out[..., keep, :] = _axis_derivative(values[..., keep, :], np.radians(lat[keep]),
+                                             -2) / EARTH_RADIUS
+    return out
+
+
+def polar_cap_gradient(field, lat, lon, pole_row: int, ring_row: int):
+    """Gradient at a pole from the latitude circle next to it, per metre.
+
+    Near a pole a smooth field is a plane, :math:`F \\approx F_p + a\\,\\mathbf{G}
+    \\cdot(\\mathbf{r} - \\mathbf{r}_p)`. On the circle at latitude :math:`\\phi_1`,
+    :math:`F(\\lambda) - \\bar F = a\\cos\\phi_1 (G_x\\cos\\lambda + G_y\\sin\\lambda)`,
+    so the wavenumber-1 Fourier coefficients of the circle give :math:`G_x, G_y`
+    (exact for a field linear in the Cartesian coordinates). Along the meridian
+    :math:`\\lambda` the pole's eastward and northward unit vectors are
+    :math:`(-\\sin\\lambda, \\cos\\lambda)` and :math:`\\mp(\\cos\\lambda, \\sin\\lambda)`
+    (north / south pole), hence
+
+    .. math::
+
+        \\partial_x F = -G_x\\sin\\lambda + G_y\\cos\\lambda, \\qquad
+        \\partial_y F = \\mp(G_x\\cos\\lambda + G_y\\sin\\lambda).
+
+    ``field`` (..., nlat, nlon) on uniformly spaced longitudes ``lon`` (degrees) that
+    go round the globe. Returns (d/dx, d/dy) along the pole row, shape (..., nlon).
+
+    Reference: the wavenumber-1 treatment of pole points in latitude/longitude models
+    (from memory, e.g. the polar filtering and pole winds of finite-volume dynamical
+    cores); the unit vectors from the spherical-coordinate basis (Holton & Hakim
+    2013, appendix on spherical coordinates).
+    """
+    lam = np.radians(np.asarray(lon, dtype=float))
+    ring = np.asarray(field, dtype=float)[..., ring_row, :]
+    n = lam.size
+    scale = EARTH_RADIUS * np.cos(np.radians(float(lat[ring_row])))
+    gx = 2.0 / n * np.sum(ring * np.cos(lam), axis=-1) / scale
+    gy = 2.0 / n * np.sum(ring * np.sin(lam), axis=-1) / scale
+    gx, gy = gx[..., None], gy[..., None]
+    sign = -1.0 if lat[pole_row] > 0 else 1.0
+    return (-gx * np.sin(lam) + gy * np.cos(lam),
+            sign * (gx * np.cos(lam) + gy * np.sin(lam)))
+
+
+def pole_neighbour_rows(lat) -> list[tuple[int, int]]:
+    """(pole row, adjacent row) index pairs of a grid's pole rows (``lat`` ascending)."""
+    pairs = []
+    for row in np.flatnonzero(pole_rows(lat)):
+        ring = row + 1 if lat[row] < 0 else row - 1
+        if 0 <= ring < lat.size and not pole_rows(lat[ring:ring + 1])[0]:
+            pairs.append((int(row), int(ring)))
+    return pairs
 
 
 def _axis_derivative(field, coordinate, axis):

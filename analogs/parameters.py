@@ -63,6 +63,9 @@ class Parameter:
     metavar : placeholder in the usage line.
     required : the command cannot run without it.
     suffixes : accepted file name endings of an output file.
+    output : ``"file"`` or ``"directory"`` for an output path: the command line refuses
+        it, before any work, when it is or lies inside an analogs store
+        (:func:`analogs.workflows.paths.check_output`).
     """
 
     key: str
@@ -82,6 +85,7 @@ class Parameter:
     metavar: str | None = None
     required: bool = False
     suffixes: tuple = ()
+    output: str | None = None
 
     def __post_init__(self):
         if self.name is None:
@@ -242,8 +246,12 @@ PARAMETERS: dict[str, Parameter] = _table(
     Parameter("json", ("--json",), "print one JSON object instead of a table", kind="flag"),
     # -- demo ---------------------------------------------------------------------------
     Parameter("demo_out", ("--out",), "output directory, created if needed: archive/ "
-              "(NetCDF), events.csv, truth.csv, store/ and report/index.html", name="out",
-              kind="path", metavar="DIR", required=True),
+              "(NetCDF), events.csv, truth.csv, store/ and report/index.html (a folder that already "
+              "holds them is refused unless --replace is given; never inside a store)",
+              name="out", kind="path", metavar="DIR", required=True, output="directory"),
+    Parameter("replace", ("--replace",), "let demo replace the store, events and other demo "
+              "outputs already in --out (they are refused otherwise)", kind="flag",
+              default=False),
     Parameter("years", ("--years",), "years of synthetic daily fields to generate",
               kind="int", default=10, minimum=1, maximum=500, units="years", metavar="N"),
     Parameter("seed", ("--seed",), "random seed of the synthetic archive", kind="int",
@@ -254,8 +262,24 @@ PARAMETERS: dict[str, Parameter] = _table(
               "in the store", name="paths", kind="paths", metavar="FILE", required=True),
     Parameter("events", ("--events",), "events table (severe reports) for the store: CSV "
               "or Parquet with header time,lat,lon,kind[,magnitude] (time ISO 8601 UTC, "
-              "lat/lon in degrees)",
+              "lat/lon in degrees); update merges it by date: the store's reports are "
+              "replaced only on the days it covers (see --events-period); reports outside "
+              "the archive's grid are counted, reported and left out",
               kind="path", metavar="EVENTS.csv", default_text="no events"),
+    Parameter("event_dates", ("--event-dates",), "how an events time that is a date "
+              "without a time of day (2002-06-14) is read: time-required refuses it (give "
+              "ISO 8601 times with the hour in UTC, e.g. 2002-06-14T21:30Z); convective-day "
+              "takes the date as the convective day itself (12 UTC on that date to 12 UTC "
+              "the next)", kind="choice", default="time-required",
+              choices=("time-required", "convective-day")),
+    Parameter("events_period", ("--events-period",), "the convective days the events "
+              "table covers, FIRST,LAST (YYYY-MM-DD, inclusive; it must hold every report "
+              "of the table): its reports replace the store's on those days, and those days "
+              "count as having report coverage "
+              "(days without coverage are left out of outcome statistics, climatology and "
+              "verification)", metavar="FIRST,LAST",
+              default_text="build: every archive day; update: the table's first to last "
+                           "report day"),
     Parameter("n_modes", ("--modes",), "number of EOF modes to keep", kind="int",
               default=20, api_default=None, minimum=1, units="modes", metavar="K",
               default_text="20, unless --variance is given"),
@@ -269,7 +293,8 @@ PARAMETERS: dict[str, Parameter] = _table(
     Parameter("region", ("--region",), "outcome region: " + _REGION_FORMS + "; build "
               "records it as the store's default region for outcome statistics and regime "
               "diagnostics", metavar="S,N,W,E | LAT,LON,KM", units="degrees, radius in km",
-              default_text="the store's region; for build, the whole domain"),
+              default_text="the store's region; for build, the whole domain for outcomes "
+              "and a synoptic-scale box at the domain's centre for regime diagnostics"),
     Parameter("domain", ("--domain",), "subset the archive grid to this box S,N,W,E",
               kind="box", units="degrees", metavar="S,N,W,E", default_text="the whole grid"),
     Parameter("hour", ("--hour",), "UTC hour of the daily value taken from sub-daily data",
@@ -297,10 +322,16 @@ PARAMETERS: dict[str, Parameter] = _table(
     Parameter("date", ("--date",), "target: an archive day", metavar="YYYY-MM-DD",
               default_text="none, give --date or --field"),
     Parameter("field", ("--field",), "target: a forecast or analysis field (NetCDF; any "
-              "grid covering the store's)", kind="path", metavar="FILE",
+              "grid covering the store's, or all but at most 10 % of it, projected on "
+              "the covered points); an ensemble file (a member dimension such as number "
+              "or realization) gives each member's regime and analogs and outcomes "
+              "pooled over the members", kind="path", metavar="FILE",
               default_text="none, give --date or --field"),
-    Parameter("time", ("--time",), "valid time to take from --field (ISO 8601, UTC)",
-              metavar="ISO", default_text="the file's only time"),
+    Parameter("time", ("--time",), "valid time to take from --field (ISO 8601, UTC); "
+              "'all' takes every valid time in the file and START/END (ISO 8601 interval, "
+              "e.g. 2024-05-03/2024-05-05, either end may be left open) those in the "
+              "range, one answer per valid time from one reading of the file",
+              metavar="ISO|all|START/END", default_text="the file's only time"),
     Parameter("top", ("--top",), "number of analogs: the closest archive days by "
               "distance, " + DISTANCE, kind="int", default=20, api_default=None, minimum=1,
               metavar="N", default_text="the store's tuned value, else 20"),
@@ -331,11 +362,11 @@ PARAMETERS: dict[str, Parameter] = _table(
               max_inclusive=False, units="probability"),
     Parameter("report", ("--report",), "also write an HTML report to DIR/index.html "
               "(DIR created if needed; never inside a store)", kind="path", metavar="DIR",
-              default_text="no report"),
+              default_text="no report", output="directory"),
     Parameter("maps", ("--maps",), "also write CF NetCDF maps of the analogs' reports: the "
               "fraction of analogs with a report within 40 km of each grid point and a "
-              "smoothed report density (Gaussian, sigma 120 km)", kind="path",
-              metavar="FILE.nc", default_text="no maps"),
+              "smoothed report density (Gaussian, sigma 120 km); never inside a store",
+              kind="path", metavar="FILE.nc", default_text="no maps", output="file"),
     # -- verify -----------------------------------------------------------------------------
     Parameter("query_modes", ("--modes",), "use only the leading K EOF modes", name="n_modes",
               kind="int", minimum=1, units="modes", metavar="K",
@@ -360,7 +391,8 @@ PARAMETERS: dict[str, Parameter] = _table(
     # -- climatology (the seasonal briefing) --------------------------------------------------
     Parameter("briefing_out", ("--out",), "output directory of the briefing, created if "
               "needed: tables (CSV, Parquet), composites (CF NetCDF), figures (PNG) and "
-              "index.html", name="out_dir", kind="path", metavar="DIR", required=True),
+              "index.html; never inside a store", name="out_dir", kind="path", metavar="DIR",
+              required=True, output="directory"),
     Parameter("archive", ("--archive",), "archive files, for composites of the full fields",
               name="files", kind="paths", metavar="FILE",
               default_text="the fields the store's EOFs reconstruct"),
@@ -368,9 +400,10 @@ PARAMETERS: dict[str, Parameter] = _table(
     Parameter("tag_out", ("--out",), "output table: one row per day (date, regime, "
               "confidence, then the diagnostics); CSV or Parquet by the name's ending",
               name="out", kind="path", metavar="FILE.csv|FILE.parquet", required=True,
-              suffixes=(".csv", ".parquet")),
+              suffixes=(".csv", ".parquet"), output="file"),
     Parameter("rules", ("--rules",), "re-classify with these rule thresholds (TOML; keys as "
-              "in analogs.stages.regimes.RegimeRules) from the diagnostics kept in the store",
+              "in analogs.stages.regimes.RegimeRules) from the diagnostics kept in the store; "
+              "the store's tags change only with --save",
               kind="path", metavar="RULES.toml",
               default_text="the rules the store was tagged with"),
     Parameter("kmeans", ("--kmeans",), "also cluster the days' principal components into K "
@@ -378,9 +411,16 @@ PARAMETERS: dict[str, Parameter] = _table(
               "kmeans_regime", kind="int", minimum=2, units="clusters", metavar="K",
               default_text="no clustering"),
     Parameter("train", ("--train",), "train the learned classifier (logistic regression on "
-              "the principal components) on a table of date,regime; columns learned_regime, "
-              "learned_confidence", name="labelled_days", kind="path", metavar="LABELS.csv",
+              "the principal components) on a table of date,regime with labels of your own "
+              "(read as text: null or NA are labels); columns learned_regime, "
+              "learned_confidence; prints its accuracy cross-validated by year and a table "
+              "against the rule regimes", name="labelled_days", kind="path",
+              metavar="LABELS.csv",
               default_text="no learned classifier"),
+    Parameter("tag_save", ("--save",), "with --rules, --kmeans or --train: keep the new tags "
+              "(and learned models) in the store, replacing its tags; without it the store is "
+              "left as it was and only --out holds them", name="save", kind="flag",
+              default=False),
 )
 
 

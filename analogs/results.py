@@ -112,7 +112,7 @@ class OutcomeSummary:
 
     Attributes
     ----------
-    n_analogs : number of analog days.
+    n_analogs : number of analog days counted (those with report coverage).
     p_any_event : share of analog days with at least one event.
     p_any_event_ci : its binomial interval at ``confidence``, (low, high).
     climatology_p_any_event : the same share over the season window's days (NaN without days).
@@ -134,6 +134,10 @@ class OutcomeSummary:
         (indexed by kind, quadrant; ``total`` and ``share`` columns), or None.
     skill : the stored cross-validated skill of such guidance (a dict of the store's
         manifest), or None when it was not measured.
+    member_spread : for the outcomes pooled over the members of an ensemble target, how
+        the members differ (a dict: ``n_members``, ``n_distinct_days``, ``n_effective``,
+        ``p_any_event_ci_effective`` and the ``min``, ``median`` and ``max`` over members
+        of ``p_any_event`` and ``mean_events``); None otherwise.
 
     Item access (``summary["p_any_event"]``) returns the attribute of that name, for
     scripts written against the earlier dict; :meth:`to_dict` gives the JSON block.
@@ -156,6 +160,10 @@ class OutcomeSummary:
     has_events: bool = True
     cyclone_quadrants: pd.DataFrame | None = None
     skill: dict | None = None
+    member_spread: dict | None = None
+    #: Analog days left out of the statistics: the events table does not cover them yet
+    #: ("no reports yet"; issue 13). ``n_analogs`` counts the analog days with reports.
+    n_analogs_without_reports: int = 0
 
     def __getitem__(self, name):
         if not isinstance(name, str) or name not in self.__dataclass_fields__:
@@ -228,6 +236,10 @@ class OutcomeSummary:
                     "events": int(row["total"]), "share": _json_float(row["share"])}
             out["cyclone_quadrants"] = quadrants
         out["skill"] = _json_value(self.skill) if self.skill is not None else None
+        if self.member_spread is not None:
+            out["member_spread"] = _json_value(self.member_spread)
+        if self.n_analogs_without_reports:  # only then, so earlier answers keep their shape
+            out["n_analogs_without_reports"] = int(self.n_analogs_without_reports)
         return out
 
 
@@ -237,6 +249,34 @@ def analog_kinds(analogs: pd.DataFrame) -> list[str]:
             if c.startswith(EVENTS_PREFIX) and c != EVENTS_TOTAL]
 
 
+def analog_list(analogs: pd.DataFrame) -> list[dict]:
+    """The ``"analogs"`` list of ``analogs find --json`` from an analogs table: rank,
+    date, distance, regime, regime_confidence, events (total and by kind), and
+    ``n_members`` where the table has that column (the pooled analogs of an ensemble)."""
+    kinds = analog_kinds(analogs)
+    columns = [EVENTS_PREFIX + kind for kind in kinds]
+    members = analogs["n_members"].to_numpy(dtype=int) if "n_members" in analogs else None
+    out = []
+    for i, (row, counts) in enumerate(zip(analogs.itertuples(index=False),
+                                          analogs[columns].to_numpy(dtype=int).tolist())):
+        entry = {
+            "rank": int(row.rank),
+            "date": row.date,
+            "distance": float(row.distance),
+            "regime": row.regime,
+            "regime_confidence": float(row.regime_confidence),
+            "events": {"total": int(row.events_total), "by_kind": dict(zip(kinds, counts))},
+        }
+        if members is not None:
+            entry["n_members"] = int(members[i])
+        if "reports_known" in analogs and not bool(analogs["reports_known"].iat[i]):
+            # A day the events table does not cover yet: its count is not known (issue 13).
+            entry["events"] = {"total": None, "by_kind": {}}
+            entry["reports"] = "none yet"
+        out.append(entry)
+    return out
+
+
 @dataclass(frozen=True, eq=False, repr=False)
 class FindResult:
     """The answer to one query: the target, its analogs and what they produced.
@@ -244,18 +284,27 @@ class FindResult:
     Attributes
     ----------
     target : the target block: ``date`` (YYYY-MM-DD, the target's calendar day),
-        ``regime``, ``regime_confidence`` and ``reason``.
+        ``regime``, ``regime_confidence`` and ``reason``; a field target partly outside
+        its file adds ``uncovered_fraction``; an ensemble adds ``regime_probabilities``
+        (label -> fraction of members) and ``n_members``; a member's block has
+        ``member`` (its label in the file).
     analogs : DataFrame, one row per analog, best first: ``rank`` (1, 2, ...), ``date``
         (YYYY-MM-DD), ``distance`` (Euclidean distance between the two days' vectors of
         leading EOF scores, scaled PCs: dimensionless, 0 for identical patterns),
         ``regime``, ``regime_confidence``, ``events_total`` (events in the outcome region
         on that convective day), one ``events_<kind>`` column per event kind, and ``row``
-        (the day's row in the store).
-    outcomes : :class:`OutcomeSummary` of the analog days.
+        (the day's row in the store). For an ensemble, the distinct days chosen by any
+        member, most chosen first: ``n_members`` (how many members chose the day) and
+        ``distance`` the mean over those members.
+    outcomes : :class:`OutcomeSummary` of the analog days; for an ensemble, pooled over
+        every member's analogs (``n_analogs`` = members x top), with ``member_spread``.
     settings : what was asked for, resolved (top, window, exclusion, region, ...).
     region : the outcome region (:class:`analogs.stages.outcomes.Region`).
     target_fields : a ``field`` target's fields regridded to the store grid (Dataset,
-        ``time`` of length one), as used for the query; None for a ``date`` target.
+        ``time`` of length one; with a ``member`` dim for an ensemble), as used for the
+        query; None for a ``date`` target.
+    members : for an ensemble target, one :class:`FindResult` per member (its own
+        target block, analogs and outcomes); None otherwise.
     """
 
     target: dict
@@ -264,10 +313,12 @@ class FindResult:
     settings: dict = field(default_factory=dict)
     region: object = None
     target_fields: xr.Dataset | None = None
+    members: tuple | None = None
 
     def __repr__(self) -> str:
         target = self.target
-        return (f"<FindResult: target {target.get('date')} ({target.get('regime')}), "
+        ensemble = f", {len(self.members)} members" if self.members is not None else ""
+        return (f"<FindResult: target {target.get('date')} ({target.get('regime')}{ensemble}), "
                 f"{len(self.analogs)} analogs, p_any_event {self.outcomes.p_any_event:.3f}; "
                 "see .analogs, .outcomes, .to_dict()>")
 
@@ -276,24 +327,57 @@ class FindResult:
         """Event kinds counted in :attr:`analogs` (their ``events_<kind>`` columns)."""
         return analog_kinds(self.analogs)
 
+    def member_dict(self) -> dict:
+        """One entry of the ``"members"`` list: the member's target block (``member``,
+        ``regime``, ``regime_confidence``, ...), its ``analogs`` and its ``outcomes``."""
+        block = {key: value for key, value in self.target.items() if key != "date"}
+        return {**block, "analogs": analog_list(self.analogs),
+                "outcomes": self.outcomes.to_dict()}
+
     def to_dict(self) -> dict:
-        """The JSON shape of ``analogs find --json`` (DESIGN.md): undefined numbers are None."""
-        kinds = self.kinds
-        columns = [EVENTS_PREFIX + kind for kind in kinds]
-        analog_list = []
-        for row, counts in zip(self.analogs.itertuples(index=False),
-                               self.analogs[columns].to_numpy(dtype=int).tolist()):
-            analog_list.append({
-                "rank": int(row.rank),
-                "date": row.date,
-                "distance": float(row.distance),
-                "regime": row.regime,
-                "regime_confidence": float(row.regime_confidence),
-                "events": {"total": int(row.events_total), "by_kind": dict(zip(kinds, counts))},
-            })
-        return {"target": self.target, "analogs": analog_list,
-                "outcomes": self.outcomes.to_dict(), "settings": self.settings,
-                "caution": CAUTION}
+        """The JSON shape of ``analogs find --json`` (DESIGN.md): undefined numbers are
+        None; an ensemble target adds ``"members"`` (:meth:`member_dict` of each)."""
+        out = {"target": self.target, "analogs": analog_list(self.analogs),
+               "outcomes": self.outcomes.to_dict(), "settings": self.settings,
+               "caution": CAUTION}
+        if self.members is not None:
+            out["members"] = [member.member_dict() for member in self.members]
+        return out
+
+
+@dataclass(frozen=True, eq=False, repr=False)
+class ValidTimesResult:
+    """The answers for several valid times of one target file, in time order.
+
+    Attributes
+    ----------
+    results : one :class:`FindResult` per valid time (each an ensemble result when the
+        file has members).
+    settings : what was asked for (the file, the times asked for, the query settings).
+    """
+
+    results: tuple
+    settings: dict = field(default_factory=dict)
+
+    def __repr__(self) -> str:
+        return (f"<ValidTimesResult: {len(self.results)} valid times "
+                f"{self.results[0].target.get('valid_time')} to "
+                f"{self.results[-1].target.get('valid_time')}; see .results, .to_dict()>")
+
+    def __len__(self) -> int:
+        return len(self.results)
+
+    def __iter__(self):
+        return iter(self.results)
+
+    def __getitem__(self, index) -> FindResult:
+        return self.results[index]
+
+    def to_dict(self) -> dict:
+        """``{"valid_times": [<one find result per time>], "settings": ..., "caution":
+        ...}`` (DESIGN.md)."""
+        return {"valid_times": [result.to_dict() for result in self.results],
+                "settings": self.settings, "caution": CAUTION}
 
 
 #: The earlier name of :class:`FindResult`, kept so that existing imports keep working.

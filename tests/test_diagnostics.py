@@ -22,7 +22,7 @@ import metpy.xarray  # noqa: F401  (registers the .metpy accessor)
 from metpy.units import units
 
 from analogs.stages import diagnostics as dg
-from analogs.constants import EARTH_RADIUS, SEVERE_DEWPOINT_C
+from analogs.constants import EARTH_RADIUS, G0, SEVERE_DEWPOINT_C
 from analogs.errors import AnalogsInputError
 
 from _regime_helpers import REGION, tropical_case, vortex, wave, zonal_height
@@ -219,7 +219,7 @@ def test_find_closed_lows_gaussian_vortex():
                       attrs={"units": "gpm"})
     lows = dg.find_closed_lows(da)
     assert list(lows.columns) == ["time", "lat", "lon", "depth_gpm", "radius_km",
-                                  "moisture_mean"]
+                                  "moisture_mean", "closed"]
     assert len(lows) == 1
     low = lows.iloc[0]
     assert (low["lat"], low["lon"]) == (27.0, -93.0)
@@ -287,3 +287,509 @@ def test_compute_diagnostics_forty_years_in_seconds():
     print(f"compute_diagnostics 14600 x 36 x 71: {elapsed:.1f} s")
     assert len(frame) == 14600
     assert elapsed < 60.0
+
+
+# ------------------------------------------------ the whole sphere: poles and seams
+#
+# Fields on a global grid are built from polynomials in the Cartesian coordinates of the
+# unit sphere (x, y, z) = (cos lat cos lon, cos lat sin lon, sin lat): smooth through the
+# poles, so the exact surface gradient is the 3-D gradient projected on the local east
+# and north unit vectors, e = (-sin lon, cos lon, 0), n = (-sin lat cos lon,
+# -sin lat sin lon, cos lat) (vector calculus on the sphere, Holton & Hakim 2013,
+# appendix on spherical coordinates). A rigid rotation V = w x (a r) has relative
+# vorticity 2 w . r (twice the rotation's component along the local vertical; the
+# vorticity of solid-body rotation, Holton & Hakim 2013, section 4.2).
+
+GLAT = np.arange(-90.0, 90.1, 2.5)
+GLON = np.arange(-180.0, 180.0, 2.5)
+
+
+def _sphere(lat=GLAT, lon=GLON):
+    la, lo = np.meshgrid(np.radians(lat), np.radians(lon), indexing="ij")
+    r = np.stack([np.cos(la) * np.cos(lo), np.cos(la) * np.sin(lo), np.sin(la)], -1)
+    east = np.stack([-np.sin(lo), np.cos(lo), 0.0 * lo], -1)
+    north = np.stack([-np.sin(la) * np.cos(lo), -np.sin(la) * np.sin(lo), np.cos(la)], -1)
+    return r, east, north
+
+
+def _global_height(r):
+    """A wavy 500 hPa height (gpm), a polynomial in x, y, z, and its 3-D gradient."""
+    x, y, z = r[..., 0], r[..., 1], r[..., 2]
+    height = (5600.0 - 400.0 * z**2 + 120.0 * x * y + 80.0 * x * z
+              + 60.0 * (x**2 - y**2) * z + 50.0 * y)
+    grad = np.stack([120.0 * y + 80.0 * z + 120.0 * x * z,
+                     120.0 * x - 120.0 * y * z + 50.0,
+                     -800.0 * z + 80.0 * x + 60.0 * (x**2 - y**2)], -1)
+    return height, grad
+
+
+def _rigid_rotation(r, east, north, w=(2e-6, -1.5e-6, 3e-6)):
+    """(u, v, exact vorticity) of V = w x (a r), w in s-1."""
+    wind = EARTH_RADIUS * np.cross(np.asarray(w), r)
+    return (wind * east).sum(-1), (wind * north).sum(-1), 2.0 * (r @ np.asarray(w))
+
+
+def _da(values, lat=GLAT, lon=GLON, units=None):
+    return xr.DataArray(np.asarray(values, dtype=float), dims=("lat", "lon"),
+                        coords={"lat": lat, "lon": lon},
+                        attrs={} if units is None else {"units": units})
+
+
+def _metpy_on(values, unit, lat, lon):
+    da = xr.DataArray(np.asarray(values), dims=("lat", "lon"),
+                      coords={"lat": lat, "lon": lon}, attrs={"units": unit})
+    return da.metpy.assign_crs(grid_mapping_name="latitude_longitude",
+                               earth_radius=EARTH_RADIUS).metpy.quantify()
+
+
+_PAD = 3
+
+
+def _metpy_periodic(values, unit):
+    """A global field for MetPy with 3 columns of the other side added at each end, so
+    MetPy's centred differences see the true neighbours across the seam."""
+    lon = np.r_[GLON[-_PAD:] - 360.0, GLON, GLON[:_PAD] + 360.0]
+    padded = np.concatenate([values[:, -_PAD:], values, values[:, :_PAD]], axis=1)
+    return _metpy_on(padded, unit, GLAT, lon)
+
+
+def _unpad(quantity_da):
+    return _plain(quantity_da)[:, _PAD:-_PAD]
+
+
+# MetPy's latitude/longitude map-factor correction differences 1/cos(lat) numerically,
+# which loses accuracy toward the poles (against the rigid rotation's exact vorticity:
+# 0.6 % of the field's range at 60 deg, 15 % at 80 deg, and it is singular on the pole
+# rows, where its dx is 0), while ours is analytic. So MetPy is the reference between
+# 10 and 60 degrees (geostrophy is undefined near the equator) and the exact fields
+# are the reference everywhere, pole rows included.
+MID = (np.abs(GLAT) >= 10.0) & (np.abs(GLAT) <= 60.0)
+
+
+def test_global_grid_with_poles_matches_metpy_and_exact_fields():
+    r, east, north = _sphere()
+    height, grad = _global_height(r)
+    z = _da(height, units="gpm")
+    wind = dg.geostrophic_wind(z)
+    zeta = dg.geostrophic_vorticity(z)
+    adv = dg.advection(zeta.rename("vorticity"), wind["u_g"], wind["v_g"])
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)   # MetPy at its pole rows
+        warnings.filterwarnings("ignore", message="Vertical dimension", category=UserWarning)
+        u_ref, v_ref = mpcalc.geostrophic_wind(_metpy_periodic(height, "m"))
+        zeta_ref = mpcalc.vorticity(u_ref, v_ref)
+        adv_ref = mpcalc.advection(zeta_ref, u_ref, v_ref)
+    # Reference: MetPy (geostrophic_wind, vorticity, advection on a latitude_longitude
+    # grid, periodic padding) between 10 and 60 degrees, every longitude incl. the seam.
+    for ours, ref, rel in ((wind["u_g"], u_ref, 1e-9), (wind["v_g"], v_ref, 1e-9),
+                           (zeta, zeta_ref, 1e-2), (adv, adv_ref, 1e-3)):
+        ref = _unpad(ref)
+        scale = np.abs(ref[MID]).max()
+        np.testing.assert_allclose(ours.values[MID], ref[MID], rtol=0, atol=rel * scale)
+    # Reference: the exact geostrophic wind of the polynomial field (3-D gradient
+    # projected on e and n) at EVERY row, the poles included: finite, and within 0.1 %
+    # of the field's range (the polar-cap gradient is exact for the linear part).
+    f = dg.coriolis_parameter(GLAT)[:, None]
+    with np.errstate(divide="ignore", invalid="ignore"):       # f = 0 on the equator
+        exact_u = -G0 / f * (grad * north).sum(-1) / EARTH_RADIUS
+        exact_v = G0 / f * (grad * east).sum(-1) / EARTH_RADIUS
+    high = np.abs(GLAT) >= 10.0
+    for ours, exact in ((wind["u_g"].values, exact_u), (wind["v_g"].values, exact_v)):
+        assert np.isfinite(ours[high]).all()
+        scale = np.abs(exact[high]).max()
+        np.testing.assert_allclose(ours[high], exact[high], rtol=0, atol=2e-3 * scale)
+    # Vorticity and its advection finite and bounded on the pole rows (no 1/cos blow-up):
+    # no larger there than the largest value anywhere else north of 10 degrees.
+    poles = np.abs(GLAT) == 90.0
+    for field in (zeta.values, adv.values):
+        assert np.isfinite(field[poles]).all()
+        assert np.abs(field[poles]).max() <= np.abs(field[high & ~poles]).max()
+
+
+def test_vorticity_and_advection_exact_through_the_poles():
+    # Reference: rigid rotation V = w x (a r): vorticity 2 w . r exactly (Holton & Hakim
+    # 2013, section 4.2); advection of a polynomial scalar s by it, -V . grad s, from the
+    # 3-D gradient projected on e and n. Every row, poles included, and checked against
+    # MetPy between 10 and 60 degrees.
+    r, east, north = _sphere()
+    u, v, exact_zeta = _rigid_rotation(r, east, north)
+    zeta = dg.relative_vorticity(_da(u), _da(v)).values
+    scale = np.abs(exact_zeta).max()
+    np.testing.assert_allclose(zeta, exact_zeta, rtol=0, atol=3e-3 * scale)
+    # The pole value comes from the circulation round the next latitude circle; it is
+    # that of the exact field, not of the singular metric term.
+    np.testing.assert_allclose(zeta[[0, -1]], exact_zeta[[0, -1]], rtol=0, atol=1e-3 * scale)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        ref = _unpad(mpcalc.vorticity(_metpy_periodic(u, "m/s"), _metpy_periodic(v, "m/s")))
+    np.testing.assert_allclose(zeta[MID], ref[MID], rtol=0, atol=1e-2 * scale)
+
+    x, y, zc = r[..., 0], r[..., 1], r[..., 2]
+    s = 1e-5 * (x * y + 0.5 * zc**2 - 0.3 * x * zc)
+    grad_s = 1e-5 * np.stack([y - 0.3 * zc, x + 0.0 * y, zc - 0.3 * x], -1)
+    exact_adv = -(u * (grad_s * east).sum(-1) + v * (grad_s * north).sum(-1)) / EARTH_RADIUS
+    ours = dg.advection(_da(s, units="s-1").rename("s"), _da(u), _da(v)).values
+    assert np.isfinite(ours).all()
+    scale = np.abs(exact_adv).max()
+    np.testing.assert_allclose(ours, exact_adv, rtol=0, atol=5e-3 * scale)
+
+
+def test_polar_cap_gradient_exact_for_a_plane_through_the_pole():
+    # Reference: F = A x = A cos(lat) cos(lon) has the surface gradient
+    # (-A sin lon, -A sin lat cos lon) / a (east, north; differentiation of the formula),
+    # which at the north pole is (-A sin lon, -A cos lon) / a along each meridian.
+    from analogs.geo import spherical_gradient
+    r, _, _ = _sphere()
+    field = 100.0 * r[..., 0]
+    d_dx, d_dy = spherical_gradient(field, GLAT, GLON)
+    la, lo = np.meshgrid(np.radians(GLAT), np.radians(GLON), indexing="ij")
+    np.testing.assert_allclose(d_dx, -100.0 * np.sin(lo) / EARTH_RADIUS, rtol=0,
+                               atol=1e-3 * 100.0 / EARTH_RADIUS)
+    np.testing.assert_allclose(d_dy, -100.0 * np.sin(la) * np.cos(lo) / EARTH_RADIUS,
+                               rtol=0, atol=1e-3 * 100.0 / EARTH_RADIUS)
+
+
+def test_limited_grid_with_a_pole_row_leaves_it_out():
+    # A hemispheric sector that includes the north pole row (as eofs' hgt_djf.nc): the
+    # zonal derivative is undefined there, so the pole row is NaN and the next row takes
+    # a one-sided difference: the same numbers as the grid with the pole row cut off
+    # (numpy.gradient's first-order edge), and area means stay finite.
+    lat, lon = np.arange(20.0, 90.1, 2.5), np.arange(-80.0, 40.1, 2.5)
+    r, _, _ = _sphere(lat, lon)
+    height, _ = _global_height(r)
+    z = _da(height, lat, lon, "gpm")
+    zeta = dg.geostrophic_vorticity(z).values
+    assert np.isnan(zeta[-1]).all() and np.isfinite(zeta[:-1][lat[:-1] >= 10.0]).all()
+    cut = dg.geostrophic_vorticity(z.isel(lat=slice(None, -1))).values
+    np.testing.assert_array_equal(zeta[:-1], cut)
+    ds = xr.Dataset({"z500": z.expand_dims(time=pd.date_range("2000-01-15", periods=1))})
+    full = dg.compute_diagnostics(ds, (20.0, 90.0, -80.0, 40.0))
+    without = dg.compute_diagnostics(ds.isel(lat=slice(None, -1)), (20.0, 87.5, -80.0, 40.0))
+    for column in ("vorticity", "vorticity_advection", "cyclonic_advection",
+                   "height_gradient", "flow_speed_ms"):
+        assert np.isfinite(full[column]).all(), column
+        np.testing.assert_allclose(full[column], without[column], rtol=1e-9)
+
+
+def test_real_hemispheric_archive_with_pole_row_has_physical_vorticity_advection():
+    # Open data in a registry package: eofs' hgt_djf.nc, 65 real winter-mean 500 hPa
+    # height fields, 20-90 N x 80 W-40 E at 2.5 degrees, pole row included. A
+    # winter-mean field's area-mean vorticity advection is of order 1e-11 s-2 or less
+    # (instantaneous synoptic values are 1e-10 to 1e-9 s-2, Holton & Hakim 2013,
+    # chapter 6 scale analysis, from memory); the 1/cos(lat) factor at the pole row used
+    # to make it 47 s-2. Every day must be below 1e-10 s-2, and the pole row must not
+    # change the answer (it is left out: same as cutting it off).
+    eofs_examples = pytest.importorskip("eofs.examples")
+    from analogs.stages.sources import open_archive
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        ds = open_archive(eofs_examples.example_data_path("hgt_djf.nc")).load()
+    assert ds["lat"].values.max() == 90.0
+    full = dg.compute_diagnostics(ds, (20.0, 90.0, -80.0, 40.0))
+    assert np.abs(full["vorticity_advection"]).max() < 1e-10
+    assert np.abs(full["cyclonic_advection"]).max() < 1e-10
+    without = dg.compute_diagnostics(ds.sel(lat=slice(None, 87.5)), (20.0, 87.5, -80.0, 40.0))
+    np.testing.assert_allclose(full["vorticity_advection"], without["vorticity_advection"],
+                               rtol=1e-9, atol=0)
+
+
+def test_date_line_domain_matches_metpy():
+    # A limited domain from 150 E to 150 W, stored the canonical way ([-180, 180),
+    # ascending, so the date line splits it into two pieces; analogs.stages.sources.
+    # normalise_grid). Reference: MetPy on the same weather in one continuous frame
+    # (150 to 210 E), away from the domain's edges (MetPy's second-order one-sided edge
+    # differences differ from ours, and advection is a third derivative of the height:
+    # three rows and columns in). The seam itself lies in the middle.
+    from analogs.stages.sources import normalise_grid
+    lat = np.arange(20.0, 60.1, 1.0)
+    cont = np.arange(150.0, 210.1, 1.0)
+    r, _, _ = _sphere(lat, cont)
+    height, _ = _global_height(r)
+    height = height + 80.0 * np.sin(np.radians(cont) * 6.0)[None, :] * np.cos(
+        np.radians(lat) * 3.0)[:, None]
+    stored = normalise_grid(xr.Dataset({"z500": _da(height, lat, cont, "gpm")}))["z500"]
+    assert stored["lon"].values.min() == -180.0 and np.all(np.diff(stored["lon"]) > 0)
+    back = (stored["lon"].values % 360.0).argsort()            # to the continuous frame
+    wind = dg.geostrophic_wind(stored)
+    zeta = dg.geostrophic_vorticity(stored)
+    adv = dg.advection(zeta.rename("vorticity"), wind["u_g"], wind["v_g"])
+    with warnings.catch_warnings():
+        warnings.filterwarnings("ignore", message="Vertical dimension", category=UserWarning)
+        u_ref, v_ref = mpcalc.geostrophic_wind(_metpy_on(height, "m", lat, cont))
+        zeta_ref = mpcalc.vorticity(u_ref, v_ref)
+        adv_ref = mpcalc.advection(zeta_ref, u_ref, v_ref)
+    inner = (slice(3, -3), slice(3, -3))
+    for ours, ref, rel in ((wind["u_g"], u_ref, 1e-9), (wind["v_g"], v_ref, 1e-9),
+                           (zeta, zeta_ref, 1e-3), (adv, adv_ref, 1e-3)):
+        ours = ours.values[:, back]
+        ref = _plain(ref)
+        scale = np.abs(ref[inner]).max()
+        np.testing.assert_allclose(ours[inner], ref[inner], rtol=0, atol=rel * scale)
+
+
+def test_region_mask_reads_longitudes_on_the_circle():
+    # A box across the date line, given west > east or with east past 180
+    # (the convention of analogs.stages.sources.subset_region).
+    lon = np.array([-180.0, -175.0, -170.0, 0.0, 170.0, 175.0])
+    lat = np.array([30.0, 40.0])
+    for region in ((30.0, 40.0, 170.0, -175.0), (30.0, 40.0, 170.0, 185.0)):
+        _, lon_in = dg.region_mask(lat, lon, region)
+        np.testing.assert_array_equal(lon_in, [True, True, False, False, True, True])
+    with pytest.raises(AnalogsInputError, match="west != east"):
+        dg.region_mask(lat, lon, (30.0, 40.0, 10.0, 10.0))
+
+
+def _shifted(ds, shift):
+    """The same weather moved ``shift`` degrees east, stored the canonical way."""
+    from analogs.stages.sources import normalise_grid
+    moved = ds.assign_coords(lon=ds["lon"].values + shift)
+    return normalise_grid(moved)
+
+
+def _compare_diagnostics(a, b, shift):
+    assert list(a.columns) == list(b.columns)
+    for column in a.columns:
+        x, y = a[column].to_numpy(), b[column].to_numpy()
+        if column.endswith("_lon"):
+            x = np.where(np.isnan(x), np.nan, (x + shift + 180.0) % 360.0 - 180.0)
+            amplitude = column.replace("_lon", "_amplitude")
+            if amplitude in a:   # a flat profile (|amplitude| ~ 1e-13 gpm) has no position
+                flat = np.abs(a[amplitude].to_numpy()) < 1e-6
+                x, y = np.where(flat, np.nan, x), np.where(flat, np.nan, y)
+        if x.dtype == bool:
+            np.testing.assert_array_equal(x, y, err_msg=column)
+        else:
+            np.testing.assert_allclose(x, y, rtol=1e-9, atol=1e-12 * np.nanmax(
+                np.abs(x), initial=1.0), err_msg=column)
+
+
+def test_diagnostics_identical_under_a_longitude_shift_across_the_date_line():
+    # The same weather and the same box moved 280 degrees east (weather from 135 W-55 W
+    # to 145 E-135 W, box 105-85 W to 175 E-165 W): grid and box now cross the date line,
+    # and the grid is stored in two pieces. Every diagnostic must be the same (longitudes
+    # shifted): the physics does not know where the seam is (definition, no source).
+    from _regime_helpers import (
+        northwest_flow_case,
+        strong_trough_case,
+        tropical_case,
+        zonal_case,
+    )
+    days = [case() for case in (northwest_flow_case, tropical_case, strong_trough_case,
+                                zonal_case)]
+    ds = xr.concat([d.assign_coords(time=[np.datetime64("2001-07-15") + np.timedelta64(k, "D")])
+                    for k, d in enumerate(days)], dim="time")
+    shift = 280.0
+    moved = _shifted(ds, shift)
+    assert np.diff(moved["lon"].values).max() > 1.5      # really split at the seam
+    a = dg.compute_diagnostics(ds, REGION)
+    b = dg.compute_diagnostics(moved, (30.0, 45.0, 175.0, -165.0))
+    assert a["tc_present"].sum() >= 1 and a["ridge_amplitude"].max() > 50.0
+    _compare_diagnostics(a, b, shift)
+    # The closed-low search and the ridge/trough on their own, too.
+    lows_a = dg.find_closed_lows(ds["z500"])
+    lows_b = dg.find_closed_lows(moved["z500"])
+    np.testing.assert_allclose(lows_b["lon"], (lows_a["lon"] + shift + 180.0) % 360.0 - 180.0)
+    np.testing.assert_allclose(lows_b["depth_gpm"], lows_a["depth_gpm"], rtol=1e-12)
+
+
+def test_diagnostics_identical_under_a_rotation_of_a_global_grid():
+    # A global (periodic) grid: the weather rotated by 100 degrees with its box; every
+    # diagnostic the same, including a closed low right on the seam of [-180, 180).
+    from _regime_helpers import great_circle_km
+    lat, lon = np.arange(-90.0, 90.1, 2.0), np.arange(-180.0, 180.0, 2.0)
+    r, _, _ = _sphere(lat, lon)
+    height, _ = _global_height(r)
+    la, lo = np.meshgrid(lat, lon, indexing="ij")
+    height = height - 40.0 * np.exp(-0.5 * (great_circle_km(28.0, 179.0, la, lo) / 250.0) ** 2)
+    ds = xr.Dataset({"z500": (("time", "lat", "lon"), height[None], {"units": "gpm"})},
+                    coords={"time": [np.datetime64("2001-08-20")], "lat": lat, "lon": lon})
+    region = (20.0, 40.0, 170.0, -170.0)
+    a = dg.compute_diagnostics(ds, region)
+    assert bool(a["tc_present"].iloc[0]) and a["tc_lon"].iloc[0] in (178.0, 180.0, -180.0)
+    shift = 100.0
+    b = dg.compute_diagnostics(_shifted(ds, shift), (20.0, 40.0, 270.0, 290.0))
+    _compare_diagnostics(a, b, shift)
+
+
+# ---------------------------------------------------------- closed lows: robustness
+
+
+def _one_day(z, lat, lon, day="2001-09-15"):
+    return xr.DataArray(np.asarray(z, dtype=float)[None], dims=("time", "lat", "lon"),
+                        coords={"time": [np.datetime64(day)], "lat": lat, "lon": lon},
+                        attrs={"units": "gpm"})
+
+
+def test_closed_low_search_skips_missing_values_locally():
+    # One missing height far from the low used to void the whole day, silently. Now:
+    # a missing value far away changes nothing; a few inside the ring change the depth by
+    # a little; a permanent masked block (like a land mask) elsewhere changes nothing.
+    from _regime_helpers import LAT, LON, tropical_case
+    z = tropical_case()["z500"]
+    clean = dg.find_closed_lows(z)
+    assert len(clean) == 1
+    far = z.copy()
+    far[0, 5, 70] = np.nan
+    pd.testing.assert_frame_equal(dg.find_closed_lows(far), clean)
+    ring = z.copy()
+    ring[0, 18:20, 41:44] = np.nan     # 33-34 N, 94-92 W: on the ring, 600-750 km north
+    lows = dg.find_closed_lows(ring)
+    assert len(lows) == 1 and (lows["lat"].iloc[0], lows["lon"].iloc[0]) == (27.0, -93.0)
+    assert abs(lows["depth_gpm"].iloc[0] - clean["depth_gpm"].iloc[0]) < 2.0
+    masked = z.copy()
+    masked[0, 30:40, 60:75] = np.nan
+    lows = dg.find_closed_lows(masked)
+    assert len(lows) == 1 and lows["depth_gpm"].iloc[0] == pytest.approx(
+        clean["depth_gpm"].iloc[0], abs=0.5)
+    # compute_diagnostics counts the days with missing heights.
+    ds = xr.Dataset({"z500": far})
+    frame = dg.compute_diagnostics(ds, REGION)
+    assert frame.attrs["missing_height_days"] == 1 and bool(frame["tc_present"].iloc[0])
+    assert (LAT.size, LON.size) == z.shape[1:]
+
+
+def test_broad_trough_at_the_domain_edge_is_not_a_closed_low():
+    # A broad trough (Gaussian in longitude, e-folding half-width 12 deg, 80-200 gpm deep,
+    # confined to 25-40 N) whose axis lies at or just inside the domain's eastern edge,
+    # on days of every depth: no ring around a point near it stays on the grid, so
+    # nothing is found (it used to be found on most days, measured against a half ring
+    # and the partial domain's zonal median).
+    from _regime_helpers import LAT, LON, vortex, zonal_height
+    la, lo = np.meshgrid(LAT, LON, indexing="ij")
+    days = []
+    for amp, axis in [(80.0, -55.0), (120.0, -56.0), (160.0, -57.0), (200.0, -55.0),
+                      (200.0, -58.0), (140.0, -59.0)]:
+        trough = -amp * np.exp(-0.5 * ((lo - axis) / 12.0) ** 2) \
+            * np.exp(-0.5 * ((la - 32.0) / 6.0) ** 2)
+        days.append(zonal_height(4.0) + trough)
+    z = xr.DataArray(np.stack(days), dims=("time", "lat", "lon"),
+                     coords={"time": pd.date_range("2001-09-01", periods=len(days)),
+                             "lat": LAT, "lon": LON}, attrs={"units": "gpm"})
+    assert dg.find_closed_lows(z).empty
+    # The same troughs moved well inside the domain are found: the test can fail.
+    inner = z.copy(data=np.stack([zonal_height(4.0) + (d - zonal_height(4.0))[:, list(range(
+        25, LON.size)) + list(range(25))] for d in days]))
+    assert len(dg.find_closed_lows(inner)) >= 3
+    # A compact low 5 degrees from that edge is not found either (its ring would leave
+    # the grid); 12 degrees in, with its whole ring on the grid, it is.
+    near = dg.find_closed_lows(_one_day(zonal_height(3.0) + vortex(30.0, -60.0, 50.0, 250.0),
+                                        LAT, LON))
+    inside = dg.find_closed_lows(_one_day(zonal_height(3.0) + vortex(30.0, -67.0, 50.0, 250.0),
+                                          LAT, LON))
+    assert near.empty
+    assert len(inside) == 1 and inside["lon"].iloc[0] == -67.0
+
+
+def test_closed_low_latitude_limit_and_closed_circulation():
+    # Latitude limit 40 N (Hart and Evans 2001, from memory: Atlantic tropical cyclones
+    # complete extratropical transition mostly between about 30 and 45 N; inland remnants
+    # reach 35-40 N): a compact remnant-like low (50 gpm, sigma 250 km) at 36 N in
+    # mid-September is found; the same low at 43 N is not.
+    from _regime_helpers import LAT, LON, vortex, wave, zonal_height
+    at_36 = dg.find_closed_lows(_one_day(zonal_height(3.0) + vortex(36.0, -90.0, 50.0, 250.0),
+                                         LAT, LON))
+    assert len(at_36) == 1 and at_36["lat"].iloc[0] == 36.0 and at_36["closed"].iloc[0]
+    at_43 = dg.find_closed_lows(_one_day(zonal_height(3.0) + vortex(43.0, -90.0, 50.0, 250.0),
+                                         LAT, LON))
+    assert at_43.empty
+    # Closed circulation (easterly geostrophic flow poleward of the centre, the cut-off
+    # condition of cut-off low climatologies, Nieto et al. 2005, from memory): a sharp
+    # open short-wave trough on a strong poleward height gradient is compact in the
+    # eddy field (so it is found) but heights fall poleward along its axis: not closed.
+    # The same trough with a cut-off centre is closed, and compute_diagnostics prefers
+    # it for its tc_* columns.
+    open_trough = zonal_height(12.0) + wave(150.0, ridge_lon=-110.0, wavelength_deg=24.0,
+                                            centre_lat=36.0, width_deg=10.0)
+    lows = dg.find_closed_lows(_one_day(open_trough, LAT, LON))
+    assert len(lows) >= 1 and not lows["closed"].any()
+    assert dg.find_closed_lows(_one_day(open_trough, LAT, LON), closed_only=True).empty
+    cut_off = open_trough + vortex(36.0, -98.0, 120.0, 300.0)
+    lows = dg.find_closed_lows(_one_day(cut_off, LAT, LON), closed_only=True)
+    assert len(lows) == 1 and (lows["lat"].iloc[0], lows["lon"].iloc[0]) == (36.0, -98.0)
+    from _regime_helpers import as_dataset
+    frame = dg.compute_diagnostics(as_dataset(cut_off), REGION)
+    assert bool(frame["tc_closed"].iloc[0]) and frame["tc_lon"].iloc[0] == -98.0
+    frame = dg.compute_diagnostics(as_dataset(open_trough), REGION)
+    assert bool(frame["tc_present"].iloc[0]) and not bool(frame["tc_closed"].iloc[0])
+
+
+def test_closed_low_parameters_are_checked():
+    from _regime_helpers import tropical_case
+    z = tropical_case()["z500"]
+    with pytest.raises(AnalogsInputError, match="poleward_rise_gpm"):
+        dg.find_closed_lows(z, poleward_rise_gpm="high")
+    with pytest.raises(AnalogsInputError, match="ring_km"):
+        dg.find_closed_lows(z, ring_km=(800.0, 500.0))
+    with pytest.raises(AnalogsInputError, match=r"unknown key\(s\) \['depth'\]"):
+        dg.compute_diagnostics(tropical_case(), REGION, closed_lows={"depth": 10})
+
+
+# ------------------------------------------------------------- moisture by its level
+
+
+def test_rich_moisture_thresholds_match_their_derivations():
+    # Reference for the 850 hPa threshold: MetPy. The mixing ratio of a 60 F (15.6 C)
+    # dewpoint at 1000 hPa, carried unchanged up a well-mixed layer, is a dewpoint of
+    # about 13 C at 850 hPa; the threshold, 12 C, sits just below it.
+    w = mpcalc.saturation_mixing_ratio(1000 * units.hPa, SEVERE_DEWPOINT_C * units.degC)
+    e850 = mpcalc.vapor_pressure(850 * units.hPa, w)
+    td850 = mpcalc.dewpoint(e850).to("degC").magnitude
+    assert 12.5 < td850 < 13.5
+    assert td850 - 1.5 < dg.RICH_MOISTURE["q850"].threshold <= td850
+    # Reference for precipitable water: the pooled global radiosonde fit ln W = 0.058 Td
+    # + 2.42 (W mm, Td C; Int. J. Climatol., 'Comparison of two models relating
+    # precipitable water to surface humidity ...') gives 27.8 mm at 60 F.
+    w_60f = np.exp(0.058 * SEVERE_DEWPOINT_C + 2.42)
+    assert w_60f == pytest.approx(27.8, abs=0.1)
+    assert abs(dg.RICH_MOISTURE["pwat"].threshold - w_60f) <= 3.0
+    assert dg.RICH_MOISTURE["td2m"].threshold == SEVERE_DEWPOINT_C
+
+
+def _moisture_case(kind):
+    """Zonal flow with a moisture field falling poleward at a fixed rate."""
+    from _regime_helpers import LAT, LON, as_dataset, zonal_height
+    ds = as_dataset(zonal_height())
+    shape = (1, LAT.size, LON.size)
+    if kind == "q850":
+        # q of an 850 hPa dewpoint falling 1 K a degree from 25 C at 15 N (Bolton 1980)
+        td = 25.0 - (LAT - LAT[0])
+        e = 6.112 * np.exp(17.67 * td / (td + 243.5))
+        values, unit = 0.622 * e / (850.0 - 0.378 * e), "kg kg-1"
+    elif kind == "td2m":
+        values, unit = 273.15 + 25.0 - (LAT - LAT[0]), "K"
+    else:
+        values, unit = 50.0 - 2.0 * (LAT - LAT[0]), "kg m-2"
+    ds[kind] = (("time", "lat", "lon"), np.broadcast_to(values[None, :, None], shape),
+                {"units": unit})
+    return ds
+
+
+def test_moisture_measures_use_the_threshold_of_their_level():
+    # Arithmetic on hand fields: the moisture line is the northernmost latitude where
+    # the field reaches its level's threshold. 850 hPa dewpoint 25 C at 15 N falling
+    # 1 K/deg: 12 C line at 28 N (the 60 F line, 15.6 C, would give 24 N). 2 m dewpoint,
+    # same numbers: the 60 F line at 24 N. Precipitable water 50 kg m-2 at 15 N falling
+    # 2 per degree: 30 kg m-2 at 25 N. Precipitable water counts as moisture.
+    region = (20.0, 45.0, -105.0, -85.0)
+    q = dg.compute_diagnostics(_moisture_case("q850"), region)
+    assert q.attrs["moisture"]["measure"] == "850 hPa dewpoint"
+    assert q["moist_line_lat"].iloc[0] == pytest.approx(28.0)
+    assert q["moist_area_fraction"].iloc[0] == pytest.approx(
+        np.average(np.arange(20, 46) <= 28, weights=np.cos(np.radians(np.arange(20, 46)))))
+    td = dg.compute_diagnostics(_moisture_case("td2m"), region)
+    assert td.attrs["moisture"]["measure"] == "2 m dewpoint"
+    assert td["moist_line_lat"].iloc[0] == pytest.approx(24.0)
+    pw = dg.compute_diagnostics(_moisture_case("pwat"), region)
+    assert pw.attrs["missing"] == [] and bool(pw["moisture_available"].iloc[0])
+    assert pw["moist_line_lat"].iloc[0] == pytest.approx(25.0)
+    assert pw["pwat_region"].iloc[0] == pytest.approx(
+        np.average(50.0 - 2.0 * (np.arange(20, 46) - 15.0),
+                   weights=np.cos(np.radians(np.arange(20, 46)))))
+    assert np.isnan(pw["dewpoint_region_c"].iloc[0])
+    none = dg.compute_diagnostics(_moisture_case("q850")[["z500"]], region)
+    assert none.attrs["missing"] == ["moisture"] and none.attrs["moisture"] is None
+    assert not none["moisture_available"].any()
+    # A threshold given by the caller, in the field's units.
+    custom = dg.compute_diagnostics(_moisture_case("q850"), region, moist_threshold=8.0)
+    assert custom["moist_line_lat"].iloc[0] == pytest.approx(32.0)
+    assert custom.attrs["moisture"]["threshold"] == 8.0

@@ -222,3 +222,131 @@ def test_live_writers_staging_is_kept_dead_ones_removed(tmp_path):
     removed = store_io.remove_stale_staging(store_path)
     assert sorted(removed) == sorted([gone.name, unnamed.name])
     assert live.exists() and other.exists() and not gone.exists()
+
+
+# --------------------------------------------------------------------------------------
+# Issue 13: a write that cannot succeed (disk full, read-only folder) ends in exit 2 with
+# one clear line and leaves the store exactly as it was. ENOSPC, EROFS and EACCES are the
+# POSIX errors of those conditions (errno(3), from memory); fsync may report a full disk
+# (fsync(2), "ENOSPC ... no room for the data", from memory), so failing every fsync of
+# the writer is a faithful stand-in for a full disk when no small file system can be made.
+
+import contextlib
+import errno
+import os
+import shutil
+import subprocess
+
+
+def _new_days(tmp_path, n=15):
+    """Files of ``n`` days after the shared archive (same synthetic weather)."""
+    longer = rh.archive_times(rh.YEARS + (2004,))
+    fields = rh.synthetic_fields(longer)
+    fresh = slice(len(longer) - 366, len(longer) - 366 + n)
+    return rh.write_archive(tmp_path / "new", times=longer[fresh],
+                            fields={k: v[fresh] for k, v in fields.items()})
+
+
+def _one_error_line(err):
+    lines = [line for line in err.splitlines() if not line.startswith("analogs: warning:")]
+    assert len(lines) == 1 and "Traceback" not in err, err
+    return lines[0]
+
+
+WRITES = {
+    "update": lambda store, tmp_path: ["update", "--store", str(store), "--quiet",
+                                       *map(str, _new_days(tmp_path))],
+    "tag-save": lambda store, tmp_path: ["tag", "--store", str(store), "--out",
+                                         str(tmp_path / "tags.csv"), "--kmeans", "3",
+                                         "--save", "--quiet"],
+}
+
+
+@pytest.mark.parametrize("command", list(WRITES))
+def test_disk_full_while_writing_leaves_the_store(shared, tmp_path, capsys, monkeypatch,
+                                                  command):
+    """Every fsync of the writer fails with ENOSPC: exit 2, one line saying the disk is
+    full and that the store was left as it was; the store's bytes are unchanged and no
+    staging directory is left."""
+    from analogs.workflows import files as files_io
+    store_path = rh.copy_store(shared["store"], tmp_path / "store")
+    before = rh.file_digests(store_path)
+    argv = WRITES[command](store_path, tmp_path)
+
+    def full(path):
+        raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC), str(path))
+
+    monkeypatch.setattr(files_io, "fsync_path", full)
+    code = main(argv)
+    line = _one_error_line(capsys.readouterr().err)
+    assert code == 2
+    assert "no space left on the device" in line and "left as it was" in line, line
+    assert rh.file_digests(store_path) == before and _staging_dirs(store_path) == []
+    monkeypatch.undo()
+    store_io.check_checksums(store_path)
+
+
+@contextlib.contextmanager
+def _small_file_system(directory, size_kb):
+    """A tmpfs of ``size_kb`` kB mounted at ``directory`` (root only; skipped otherwise)."""
+    if os.geteuid() != 0 or shutil.which("mount") is None:
+        pytest.skip("mounting a small tmpfs needs root")
+    directory.mkdir()
+    done = subprocess.run(["mount", "-t", "tmpfs", "-o", f"size={size_kb}k", "tmpfs",
+                           str(directory)], capture_output=True, text=True)
+    if done.returncode != 0:
+        pytest.skip(f"cannot mount a tmpfs here: {done.stderr.strip()}")
+    try:
+        yield directory
+    finally:
+        subprocess.run(["umount", "-l", str(directory)], capture_output=True)
+
+
+def _size_kb(path):
+    return sum(p.stat().st_size for p in path.rglob("*") if p.is_file()) // 1024 + 1
+
+
+def test_real_full_disk_and_read_only_file_system(shared, tmp_path, capsys):
+    """On a real tmpfs barely larger than the store: update runs out of space (exit 2,
+    store unchanged); remounted read-only, update is refused before any work."""
+    size = _size_kb(shared["store"]) + 200
+    with _small_file_system(tmp_path / "mnt", size) as mount:
+        store_path = rh.copy_store(shared["store"], mount / "store")
+        before = rh.file_digests(store_path)
+        code = main(WRITES["update"](store_path, tmp_path))
+        line = _one_error_line(capsys.readouterr().err)
+        assert code == 2 and "no space left" in line, line
+        assert rh.file_digests(store_path) == before and _staging_dirs(store_path) == []
+        subprocess.run(["mount", "-o", "remount,ro", str(mount)], check=True)
+        code = main(WRITES["update"](store_path, tmp_path / "again"))
+        line = _one_error_line(capsys.readouterr().err)
+        assert code == 2 and "read-only" in line and "left as it was" in line, line
+        assert rh.file_digests(store_path) == before
+
+
+def test_read_only_store_folder_is_refused(shared, tmp_path, capsys):
+    """A store folder without write permission (chmod a-w; for root, whom permissions do
+    not stop, a store on a read-only tmpfs) is refused before any work: exit 2, one line,
+    the store unchanged."""
+    if os.geteuid() == 0:
+        with _small_file_system(tmp_path / "mnt", _size_kb(shared["store"]) + 2000) as mount:
+            store_path = rh.copy_store(shared["store"], mount / "store")
+            before = rh.file_digests(store_path)
+            subprocess.run(["mount", "-o", "remount,ro", str(mount)], check=True)
+            for command in WRITES:
+                code = main(WRITES[command](store_path, tmp_path / command))
+                line = _one_error_line(capsys.readouterr().err)
+                assert code == 2 and "read-only" in line, line
+            assert rh.file_digests(store_path) == before
+        return
+    store_path = rh.copy_store(shared["store"], tmp_path / "store")
+    before = rh.file_digests(store_path)
+    os.chmod(store_path, 0o555)
+    try:
+        for command in WRITES:
+            code = main(WRITES[command](store_path, tmp_path / command))
+            line = _one_error_line(capsys.readouterr().err)
+            assert code == 2 and "read-only" in line, line
+    finally:
+        os.chmod(store_path, 0o755)
+    assert rh.file_digests(store_path) == before

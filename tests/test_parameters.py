@@ -172,7 +172,7 @@ def test_a_bound_from_the_data_keeps_the_shape():
 
 def _public_functions():
     from analogs.stages import hindcast, sources
-    from analogs.workflows import analog_store, briefing, build, demo, find, skill
+    from analogs.workflows import analog_store, briefing, build, demo, find, skill, update
     return [
         (find.find, (P.date, P.field, P.time, P.top, P.window, P.exclude, P.separation,
                      P.region, P.regime, P.weights, P.confidence, P.sequence, P.kinds)),
@@ -181,8 +181,10 @@ def _public_functions():
         (skill.tune, (P.tops, P.scan_modes, P.window, P.separation, P.region, P.months,
                       P.kinds)),
         (build.build_store, (P.events, P.fields, P.n_modes, P.variance, P.region, P.domain,
-                             P.hour, P.daily, P.n_harmonics, P.solver, P.index)),
-        (demo.run_demo, (P.years, P.seed)),
+                             P.hour, P.daily, P.n_harmonics, P.solver, P.index,
+                             P.event_dates, P.events_period)),
+        (update.update_store, (P.events, P.event_dates, P.events_period)),
+        (demo.run_demo, (P.years, P.seed, P.replace)),
         (analog_store.AnalogStore.retag, (P.rules, P.kmeans, P.train)),
         (briefing.build_briefing, (P.months, P.archive)),
         (sources.open_archive, (P.hour, P.daily)),

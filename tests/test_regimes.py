@@ -57,23 +57,36 @@ def test_reason_quotes_the_deciding_values():
     assert f"flow {row['flow_direction_deg']:.0f} deg at {row['flow_speed_ms']:.0f} m/s" \
         in row["reason"]
     assert f"ridge {row['ridge_amplitude']:.0f} gpm upstream" in row["reason"]
-    assert f"Td {row['dewpoint_region_c']:.1f} C" in row["reason"]
+    assert f"Td850 {row['dewpoint_region_c']:.1f} C" in row["reason"]
 
 
-def test_height_only_tropical_needs_moisture_or_a_very_deep_low():
-    # The tropical case without humidity: its 57 gpm low is below the 60 gpm needed
-    # without moisture, so it is not claimed tropical, and the reason says why.
+def test_height_only_tropical_needs_moisture_or_an_explicit_opt_in():
+    # Precision first (common practice, no source: a forecaster acts on "tropical"): at
+    # 500 hPa alone a summer cold-core upper low looks like a tropical cyclone, so a
+    # height-only archive gets no tropical label by default, and the reason says why.
     ds = tropical_case()[["z500"]]
     row = tag_days(ds, REGION).iloc[0]
     assert row["regime"] != "tropical"
-    assert "tropical needs moisture" in row["reason"]
+    assert "moisture missing around the centre" in row["reason"]
     deep = as_dataset(zonal_height(3.0) + vortex(27.0, -93.0, 110.0, 250.0))
     row = tag_days(deep, REGION).iloc[0]
+    assert row["regime"] != "tropical"
+    assert "height-only archive: not called tropical" in row["reason"]
+    # Opted in: a deep, compact, round warm-season low at low latitude is tropical, and the
+    # reason says the moisture was missing; the shallower low still is not (60 gpm needed).
+    allowed = RegimeRules.load(tropical_without_moisture=1)
+    row = tag_days(deep, REGION, rules=allowed).iloc[0]
     assert row["regime"] == "tropical"
     assert "moisture missing" in row["reason"]
+    assert tag_days(ds, REGION, rules=allowed).iloc[0]["regime"] != "tropical"
     # The same deep low in dry air is not tropical (moisture decides when known).
     dry = as_dataset(zonal_height(3.0) + vortex(27.0, -93.0, 110.0, 250.0), humidity() * 0.3)
     assert tag_days(dry, REGION).iloc[0]["regime"] != "tropical"
+    # Nor in winter, however moist (the warm season of the northern hemisphere).
+    winter = tropical_case().assign_coords(time=pd.DatetimeIndex(["2001-01-15"]))
+    row = tag_days(winter, REGION).iloc[0]
+    assert row["regime"] != "tropical"
+    assert "Jan: outside the warm season" in row["reason"]
 
 
 def test_precedence_and_confidence_bounds():
@@ -224,8 +237,16 @@ def test_supervised_bad_labelled_table(tmp_path):
 def test_agreement_with_demo_truth_table(capsys):
     # Outside reference: the demo generator's own truth table (reanalysis_demo.truth),
     # written from its schedule, not from the fields the rules see. Seed and length
-    # are those of the shared test archive (tests/conftest.py); the rules were tuned
-    # on other seeds. Needs >= 85 % agreement and >= 80 % recall per named regime.
+    # are those of the shared test archive (tests/conftest.py); the rules were not tuned
+    # on it. Needs >= 85 % agreement and >= 80 % recall of north-west flow and strong
+    # trough. Tropical (issue 14, precision before recall: a forecaster acts on it) is
+    # held to >= 80 % precision and >= 60 % recall: since issue 14 a closed low must also
+    # be round, warm-season, very moist at the archive's own level and moister at its
+    # core than on its ring (a warm-core proxy), and the closed-low search demands a low
+    # closed in most directions; the demo's cyclones, drawn under amplified waves with a
+    # dry western half, fail these more often than the generator's truth rule (depth >=
+    # 30 gpm within 500 km, nothing else) expects. Before issue 14: agreement 0.921,
+    # tropical recall 0.897, precision 0.854.
     reanalysis_demo = pytest.importorskip("reanalysis_demo")
     demo = reanalysis_demo.generate(4, grid=1.0, seed=11)
     fields = demo.fields.rename({"zg": "z500", "hus": "q850"})
@@ -234,12 +255,15 @@ def test_agreement_with_demo_truth_table(capsys):
     rules = tags["regime"].to_numpy()
     table = pd.crosstab(pd.Series(truth, name="truth"), pd.Series(rules, name="rules"),
                         margins=True)
-    recall = {name: float(np.mean(rules[truth == name] == name))
-              for name in ("northwest_flow", "tropical", "strong_trough")}
+    names = ("northwest_flow", "tropical", "strong_trough")
+    recall = {name: float(np.mean(rules[truth == name] == name)) for name in names}
+    precision = {name: float(np.mean(truth[rules == name] == name)) for name in names}
     agreement = float(np.mean(rules == truth))
     with capsys.disabled():
         print(f"\nregime rules vs demo truth (4 years, seed 11):\n{table}\n"
               f"agreement {agreement:.3f}; recall " +
-              ", ".join(f"{k} {v:.3f}" for k, v in recall.items()))
+              ", ".join(f"{k} {v:.3f}" for k, v in recall.items()) + "; precision " +
+              ", ".join(f"{k} {v:.3f}" for k, v in precision.items()))
     assert agreement >= 0.85
-    assert min(recall.values()) >= 0.80, recall
+    assert recall["northwest_flow"] >= 0.80 and recall["strong_trough"] >= 0.80, recall
+    assert precision["tropical"] >= 0.80 and recall["tropical"] >= 0.60, (precision, recall)

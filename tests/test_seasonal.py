@@ -327,3 +327,47 @@ def test_build_briefing_writes_everything(demo_store, tmp_path):
     assert "Cross-validated skill" in page and "Brier skill score" in page
     assert "http://" not in page and "https://" not in page
     assert not list(out.glob(".*"))   # no temporary file left behind
+
+
+# -------------------------------------------------- archive of seasonal means
+
+def test_seasonal_means_are_counted_in_samples_not_days():
+    """eofs' hgt_djf.nc (real reanalysis data in a registry package: 65 winter-mean 500 hPa
+    height fields, one a year) tagged by the rules: the briefing statistics are in the
+    archive's own unit, samples (one a season), never fractions times 365 days; trends
+    equal scipy.stats.linregress of the yearly shares times one sample a season times 10;
+    no run lengths, since no two samples are consecutive days."""
+    import warnings
+
+    from analogs.stages.regimes import tag_days
+    from analogs.stages.seasonal import archive_sampling
+    from analogs.stages.sources import open_archive
+    eofs_examples = pytest.importorskip("eofs.examples")
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # its reference date; units inferred as gpm
+        archive = open_archive(eofs_examples.example_data_path("hgt_djf.nc"))
+    tags = tag_days(archive).set_index("date")
+    sampling = archive_sampling(tags)
+    assert (sampling.unit, sampling.per_season, sampling.consecutive_days) == ("sample", 1.0,
+                                                                                False)
+    frequency = regime_frequency_by_month(tags)
+    assert {"samples", "samples_tagged"} <= set(frequency.columns)
+    assert frequency["samples"].sum() == 65
+    trend = regime_trend(tags)
+    assert "mean_days_per_season" not in trend and "slope_days_per_decade" not in trend
+    np.testing.assert_allclose(trend["mean_samples_per_season"].sum(), 1.0)
+    assert (trend["mean_samples_per_season"] <= 1.0).all()
+    by_year = regime_frequency_by_year(tags)
+    for regime, part in by_year.groupby("regime"):
+        if np.ptp(part["fraction"]) > 0:
+            fit = stats.linregress(part["year"], part["fraction"])
+            assert trend.loc[regime, "slope_samples_per_decade"] == pytest.approx(
+                fit.slope * 1.0 * 10.0, rel=1e-12)
+    persistence = regime_persistence(tags)
+    assert (persistence["n_runs"] == 0).all() and persistence["mean_days"].isna().all()
+    assert "no consecutive days" in persistence.attrs["note"]
+    # A daily archive keeps days (the planted-trend test above checks its numbers).
+    daily = _tags(pd.date_range("2001-06-01", periods=40), ["other"] * 40)
+    assert archive_sampling(daily, [6, 7]).unit == "day"
+    assert archive_sampling(daily, [6, 7]).per_season == 61.0
+    assert "slope_days_per_decade" in regime_trend(daily)

@@ -117,7 +117,8 @@ def shared(tmp_path_factory):
 
 
 @pytest.mark.parametrize("command, outputs", [
-    (["tag", "--out", "out/tags.csv"], {"out/tags.csv"}),
+    # The CSV carries its column units in a CSVW sidecar (W3C, from memory) beside it.
+    (["tag", "--out", "out/tags.csv"], {"out/tags.csv", "out/tags.csv-metadata.json"}),
     (["tag", "--out", "out/tags.parquet"], {"out/tags.parquet"}),
     (["find", "--date", rh.QUERY_DATE, "--report", "out/report"],
      {"out/report", "out/report/index.html"}),

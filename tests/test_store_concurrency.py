@@ -93,7 +93,8 @@ def test_two_concurrent_updates_of_different_years_both_land(archive, store_path
 
 def test_retag_racing_an_update_leaves_a_consistent_store(archive, store_path, tmp_path):
     results = _run_together(
-        ["tag", "--store", store_path, "--out", tmp_path / "tags.csv", "--kmeans", "3", "--quiet"],
+        ["tag", "--store", store_path, "--out", tmp_path / "tags.csv", "--kmeans", "3", "--save",
+         "--quiet"],
         ["update", "--store", store_path, "--quiet", *archive["files"][2002]])
     for code, _, err in results:
         assert code == 0, err
@@ -121,7 +122,9 @@ def test_updated_store_object_answers_for_the_new_days(archive, store_path):
     # Appending the same days again writes nothing and says so.
     again = new.update(archive["files"][2002], progress=False)
     assert again.last_update == {"days_in_files": 365, "days_added": 0,
-                                 "days_already_present": 365}
+                                 "days_already_present": 365,
+                                 # the appended year came without reports (issue 13)
+                                 "days_covered": 365, "days_without_reports": 365}
     assert again.manifest["written"] == new.manifest["written"]
 
 

@@ -438,14 +438,16 @@ def regime_calendar(tags: pd.DataFrame, *, title_suffix="") -> Figure:
 def monthly_frequency_chart(frequency: pd.DataFrame, *, title_suffix="") -> Figure:
     """Stacked bars: share of each month's tagged days in each regime (the table of
     :func:`analogs.stages.seasonal.regime_frequency_by_month`), days tagged above each bar."""
-    needed = {"month", "regime", "fraction", "days_tagged"}
+    # Counts are days, or samples on an archive of seasonal / monthly means.
+    unit = "samples" if "samples_tagged" in frequency.columns else "days"
+    needed = {"month", "regime", "fraction", f"{unit}_tagged"}
     if not needed <= set(frequency.columns):
         raise AnalogsInputError("monthly_frequency_chart needs the table of "
                                 "regime_frequency_by_month")
     shares = frequency.pivot(index="month", columns="regime", values="fraction").fillna(0.0)
     regimes = _ordered_regimes(shares.columns)
     colours = regime_colours(regimes)
-    totals = frequency.groupby("month")["days_tagged"].first()
+    totals = frequency.groupby("month")[f"{unit}_tagged"].first()
     figure = new_figure(9.0, 5.0)
     ax = figure.add_subplot()
     months = shares.index.to_numpy()
@@ -458,8 +460,8 @@ def monthly_frequency_chart(frequency: pd.DataFrame, *, title_suffix="") -> Figu
         ax.text(month, 101.0, f"{total}", ha="center", va="bottom", fontsize=7)
     ax.set_xticks(months, [pd.Timestamp(2001, int(m), 1).strftime("%b") for m in months])
     ax.set_ylim(0, 110)
-    ax.set_ylabel("share of tagged days (%)")
-    ax.set_xlabel("month (number above a bar: days tagged)")
+    ax.set_ylabel(f"share of tagged {unit} (%)")
+    ax.set_xlabel(f"month (number above a bar: {unit} tagged)")
     ax.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), title="regime")
     ax.set_title("How often each regime occurs, by month"
                  + (f", {title_suffix}" if title_suffix else ""), fontsize=11)

@@ -49,6 +49,10 @@ def find_text(result) -> str:
     """A readable terminal summary of one query (a :class:`~analogs.results.FindResult`
     or its ``to_dict()``)."""
     data = _find_data(result)
+    if "valid_times" in data:
+        return valid_times_text(data)
+    if "members" in data:
+        return ensemble_text(data)
     target, outcomes, settings = data["target"], data["outcomes"], data["settings"]
     lines = []
     when = target["date"] or "field without valid time"
@@ -56,6 +60,8 @@ def find_text(result) -> str:
                  f"(confidence {target['regime_confidence']:.2f})")
     if target.get("reason"):
         lines.append(f"  why: {target['reason']}")
+    if (target.get("diagnostic_region") or {}).get("description"):
+        lines.append(f"  diagnosed over the {target['diagnostic_region']['description']}")
     lines.append(f"Region {settings['region'].get('label', settings['region'])}; "
                  f"season window +/-{settings['window_days']} d; "
                  f"{settings['n_modes']} EOF modes")
@@ -67,15 +73,24 @@ def find_text(result) -> str:
     lines.append("-" * len(header))
     for analog in data["analogs"]:
         line = (f"{analog['rank']:>4}  {analog['date']:10}  {analog['distance']:9.2f}  "
-                f"{analog['regime']:14}  {analog['events']['total']:>6}")
-        line += "".join(f"  {analog['events']['by_kind'].get(k, 0):>8}" for k in kinds)
+                f"{analog['regime']:14}  ")
+        if analog["events"]["total"] is None:  # a day without report coverage (issue 13)
+            line += "no reports yet"
+        else:
+            line += f"{analog['events']['total']:>6}"
+            line += "".join(f"  {analog['events']['by_kind'].get(k, 0):>8}" for k in kinds)
         lines.append(line)
     lines.append("")
     n = outcomes["n_analogs"]
+    unknown = outcomes.get("n_analogs_without_reports", 0)
     if not outcomes.get("has_events", True):
         lines.append("No events table in this store: outcome statistics are not available "
                      "(build with --events FILE).")
     else:
+        if unknown:
+            lines.append(f"{unknown} of the {n + unknown} analogs have no reports yet (days "
+                         "the events table does not cover): the statistics count the "
+                         f"{n} with reports.")
         lines.append(f"P(at least one event in region), {n} analogs: "
                      f"{_fmt_probability(outcomes['p_any_event'])} "
                      f"{_fmt_interval(outcomes.get('p_any_event_ci'))}   "
@@ -92,6 +107,125 @@ def find_text(result) -> str:
         skill = skill_line(outcomes.get("skill"))
         if skill:
             lines.append(skill)
+    lines.append("")
+    lines.append(CAUTION)
+    return "\n".join(lines)
+
+
+def _fmt_spread(spread) -> str:
+    """"min 30.0%, median 45.0%, max 60.0%" of a member-spread entry."""
+    return ", ".join(f"{key} {_fmt_probability(spread[key]).strip()}"
+                     for key in ("min", "median", "max"))
+
+
+def _regime_shares(target) -> str:
+    shares = target.get("regime_probabilities") or {}
+    return ", ".join(f"{label} {100 * share:.0f}%" for label, share in shares.items())
+
+
+def ensemble_text(result) -> str:
+    """The terminal summary of an ensemble target: one compact line per member (regime,
+    P(at least one event) with its interval, mean events, closest analogs), then the
+    outcomes pooled over the members with their spread."""
+    data = _find_data(result)
+    target, outcomes, settings = data["target"], data["outcomes"], data["settings"]
+    members = data["members"]
+    spread = outcomes.get("member_spread") or {}
+    when = target.get("valid_time") or target["date"]
+    lines = [(f"Target {when}, ensemble of {len(members)} members: regime "
+              f"{target['regime']} in {100 * target['regime_confidence']:.0f}% of members "
+              f"({_regime_shares(target)})")]
+    mean = target.get("ensemble_mean")
+    if mean:
+        lines.append(f"  ensemble mean field: {mean['regime']} (confidence "
+                     f"{mean['regime_confidence']:.2f})")
+    if target.get("uncovered_fraction"):
+        lines.append(f"  {100 * target['uncovered_fraction']:.1f}% of the store grid "
+                     "outside the field: projected on the covered points")
+    lines.append(f"Region {settings['region'].get('label', settings['region'])}; "
+                 f"season window +/-{settings['window_days']} d; {settings['n_modes']} EOF "
+                 f"modes; {settings['top']} analogs per member")
+    lines.append("")
+    header = (f"{'member':>8}  {'regime':14}  {'conf':>4}  {'P(any event)':>16}  "
+              f"{'mean':>5}  closest analogs")
+    lines += [header, "-" * len(header)]
+    for member in members:
+        stats = member["outcomes"]
+        closest = " ".join(a["date"] for a in member["analogs"][:3])
+        lines.append(f"{str(member['member'])[:8]:>8}  {member['regime'][:14]:14}  "
+                     f"{member['regime_confidence']:4.2f}  "
+                     f"{_fmt_probability(stats['p_any_event'])} "
+                     f"{_fmt_interval(stats.get('p_any_event_ci')):>10}  "
+                     f"{stats['mean_events']:5.2f}  {closest}")
+    lines.append("")
+    if not outcomes.get("has_events", True):
+        lines.append("No events table in this store: outcome statistics are not available "
+                     "(build with --events FILE).")
+    else:
+        lines.append(
+            f"Pooled over {len(members)} members ({outcomes['n_analogs']} analogs, "
+            f"{spread.get('n_distinct_days', '?')} distinct days): P(at least one event in "
+            f"region) {_fmt_probability(outcomes['p_any_event']).strip()} "
+            f"{_fmt_interval(outcomes.get('p_any_event_ci'))}, "
+            f"{_fmt_interval(spread.get('p_any_event_ci_effective'))} counting each day once "
+            f"({spread.get('n_effective', float('nan')):.1f} effective analogs); season "
+            f"climatology {_fmt_probability(outcomes['climatology_p_any_event']).strip()}")
+        if spread.get("p_any_event"):
+            lines.append(f"  spread across members: {_fmt_spread(spread['p_any_event'])}")
+        mean_spread = spread.get("mean_events") or {}
+        lines.append(f"Mean events per analog day: {outcomes['mean_events']:.2f}"
+                     + (f" (members {mean_spread['min']:.2f} to {mean_spread['max']:.2f})"
+                        if mean_spread else ""))
+        for kind, stats in sorted(outcomes.get("by_kind", {}).items()):
+            lines.append(f"  {kind:10} P(any) {_fmt_probability(stats['p_any'])}   "
+                         f"mean {stats['mean']:.2f}")
+        agreed = [a for a in data["analogs"] if a.get("n_members", 0) > 1][:5]
+        if agreed:
+            lines.append("Days chosen by most members: " + ", ".join(
+                f"{a['date']} ({a['n_members']})" for a in agreed))
+        skill = skill_line(outcomes.get("skill"))
+        if skill:
+            lines.append(skill)
+    lines.append("")
+    lines.append(CAUTION)
+    return "\n".join(lines)
+
+
+def valid_times_text(result) -> str:
+    """The terminal table of a target file's several valid times: regime and
+    P(at least one event) by valid time (for an ensemble, the most frequent regime with
+    its share of members and the range of the members' probabilities)."""
+    data = _find_data(result)
+    answers = data["valid_times"]
+    first = answers[0]["settings"]
+    lines = [f"{len(answers)} valid times of {data['settings'].get('field', 'the field')}; "
+             f"region {first['region'].get('label', first['region'])}; season window "
+             f"+/-{first['window_days']} d; {first['top']} analogs"
+             + (" per member" if "members" in answers[0] else ""), ""]
+    ensemble = any("members" in answer for answer in answers)
+    header = (f"{'valid time':20}  {'regime':24}  {'P(any event)':>16}  "
+              + (f"{'members':>9}  " if ensemble else "")
+              + f"{'climatology':>11}  {'mean':>5}  closest analog")
+    lines += [header, "-" * len(header)]
+    for answer in answers:
+        target, outcomes = answer["target"], answer["outcomes"]
+        regime = f"{target['regime']} ({target['regime_confidence']:.2f})"
+        spread = (outcomes.get("member_spread") or {}).get("p_any_event")
+        members = (f"{100 * spread['min']:.0f}-{100 * spread['max']:.0f}%" if spread
+                   else "")
+        closest = answer["analogs"][0] if answer["analogs"] else None
+        lines.append(
+            f"{target.get('valid_time', target['date']):20}  {regime[:24]:24}  "
+            f"{_fmt_probability(outcomes['p_any_event'])} "
+            f"{_fmt_interval(outcomes.get('p_any_event_ci')):>10}  "
+            + (f"{members:>9}  " if ensemble else "")
+            + f"{_fmt_probability(outcomes['climatology_p_any_event']):>11}  "
+            f"{outcomes['mean_events']:5.2f}  "
+            + (f"{closest['date']} ({closest['distance']:.2f})" if closest else ""))
+    if ensemble:
+        lines.append("")
+        lines.append("regime: the most frequent among the members (share of members); "
+                     "members: range of the members' P(any event)")
     lines.append("")
     lines.append(CAUTION)
     return "\n".join(lines)
@@ -120,6 +254,9 @@ def verify_text(summary: dict) -> str:
         "",
         "reliability (forecast mean -> observed frequency, count):",
     ]
+    if settings.get("n_days_without_reports"):
+        lines.insert(2, f"{settings['n_days_without_reports']} days without reports yet left "
+                        "out (neither forecast nor used as analogs)")
     for row in summary["reliability"]:
         lines.append(f"  {row['forecast_mean']:.2f} -> {row['observed_frequency']:.2f}  ({row['count']})")
     if "tuning" in summary:
@@ -130,6 +267,28 @@ def verify_text(summary: dict) -> str:
             lines.append(f"  top {row['top']:>3}  modes {row['n_modes']:>3}  BSS {row['brier_skill_score']:.3f}")
     lines.append("")
     lines.append(CAUTION)
+    return "\n".join(lines)
+
+
+def training_text(training: dict) -> str:
+    """What the learned classifier of ``analogs tag --train`` is worth: its accuracy
+    cross-validated on the labelled days, and its labels (rows) against the rule
+    regimes (columns) over every archive day."""
+    accuracy = training.get("accuracy")
+    folds = training.get("fold_accuracy") or []
+    if accuracy is None or accuracy != accuracy:
+        head = (f"learned classifier ({training.get('n_labelled')} labelled days): "
+                f"cross-validated accuracy {training.get('method')}")
+    else:
+        head = (f"learned classifier ({training.get('n_labelled')} labelled days, labels "
+                f"{', '.join(training.get('labels', []))}): accuracy {100 * accuracy:.1f}% on "
+                f"days it was not trained on ({training.get('method')}; folds "
+                + ", ".join(f"{100 * v:.0f}%" for v in folds if v == v) + ")")
+    lines = [head]
+    table = training.get("against_rules")
+    if table is not None and len(table):
+        lines.append("learned (rows) against rule regimes (columns), every archive day:")
+        lines.append(table.to_string())
     return "\n".join(lines)
 
 
@@ -209,6 +368,8 @@ def find_html(result, manifest: dict, figures: list[tuple[str, bytes]] = ()) -> 
                "distance": f"{analog['distance']:.2f}", "regime": analog["regime"],
                "events": analog["events"]["total"]}
         row.update({k: analog["events"]["by_kind"].get(k, 0) for k in kinds})
+        if row["events"] is None:  # a day without report coverage (issue 13)
+            row.update({"events": "no reports yet", **{k: "" for k in kinds}})
         rows.append(row)
     sections = [
         ("Target", f"<p>{html.escape(str(target['date'] or 'forecast field'))}: regime "
@@ -217,6 +378,27 @@ def find_html(result, manifest: dict, figures: list[tuple[str, bytes]] = ()) -> 
         ("Closest past days", html_table(rows, ["rank", "date", "distance", "regime", "events", *kinds],
                                          left=("date", "regime"))),
     ]
+    if "members" in data:  # an ensemble: the consensus days above, each member here
+        sections[0] = ("Target", f"<p>{html.escape(str(target['date']))}, ensemble of "
+                       f"{len(data['members'])} members: regime <strong>"
+                       f"{html.escape(target['regime'])}</strong> in "
+                       f"{100 * target['regime_confidence']:.0f}% of members "
+                       f"({html.escape(_regime_shares(target))}).</p>")
+        sections[1] = ("Closest past days chosen by the members (most chosen first)",
+                       html_table([{**row, "members": analog.get("n_members", "")}
+                                   for row, analog in zip(rows, data["analogs"])],
+                                  ["rank", "date", "members", "distance", "regime", "events",
+                                   *kinds], left=("date", "regime")))
+        member_rows = [{"member": m["member"], "regime": m["regime"],
+                        "confidence": f"{m['regime_confidence']:.2f}",
+                        "P(any event)": _fmt_probability(m["outcomes"]["p_any_event"]) + " "
+                        + _fmt_interval(m["outcomes"].get("p_any_event_ci")),
+                        "mean events": f"{m['outcomes']['mean_events']:.2f}",
+                        "closest days": " ".join(a["date"] for a in m["analogs"][:3])}
+                       for m in data["members"]]
+        sections.insert(1, ("Members", html_table(
+            member_rows, ["member", "regime", "confidence", "P(any event)", "mean events",
+                          "closest days"], left=("regime", "closest days"))))
     if outcomes.get("has_events", True):
         outcome_rows = [{"statistic": "P(at least one event in region)",
                          "analogs": _fmt_probability(outcomes["p_any_event"]) + " "
@@ -227,9 +409,14 @@ def find_html(result, manifest: dict, figures: list[tuple[str, bytes]] = ()) -> 
         for kind, stats in sorted(outcomes.get("by_kind", {}).items()):
             outcome_rows.append({"statistic": f"P(any {kind})", "analogs": _fmt_probability(stats["p_any"]),
                                  "season climatology": _fmt_probability(stats.get("climatology_p_any"))})
+        unknown = outcomes.get("n_analogs_without_reports", 0)  # issue 13
         sections.append(("What these days produced",
-                         html_table(outcome_rows, ["statistic", "analogs", "season climatology"],
-                                    left=("statistic",))
+                         (f"<p>{unknown} of the {outcomes['n_analogs'] + unknown} analogs have "
+                          "no reports yet (days the events table does not cover): the "
+                          f"statistics count the {outcomes['n_analogs']} with reports.</p>"
+                          if unknown else "")
+                         + html_table(outcome_rows, ["statistic", "analogs", "season climatology"],
+                                      left=("statistic",))
                          + f"<p>{html.escape(skill_line(outcomes.get('skill')))}</p>"))
     for caption, png in figures:
         sections.append((caption, embed_png(png, caption)))
@@ -237,6 +424,39 @@ def find_html(result, manifest: dict, figures: list[tuple[str, bytes]] = ()) -> 
     provenance = {"archive": manifest.get("archive"), "config": manifest.get("config"),
                   "events": manifest.get("events")}
     return html_page("Analogs of " + str(target["date"] or "a forecast field"), sections, provenance)
+
+
+def valid_times_html(result, manifest: dict, links=()) -> str:
+    """The index page of several valid times of one target file: regime and
+    P(at least one event) by valid time, each linked to its own page (``links``, one
+    relative path per valid time)."""
+    data = _find_data(result)
+    rows = []
+    for i, answer in enumerate(data["valid_times"]):
+        target, outcomes = answer["target"], answer["outcomes"]
+        when = html.escape(str(target.get("valid_time", target["date"])))
+        spread = (outcomes.get("member_spread") or {}).get("p_any_event")
+        rows.append({
+            "valid time": (f'<a href="{html.escape(links[i], quote=True)}">{when}</a>'
+                           if i < len(links) else when),
+            "regime": html.escape(f"{target['regime']} ({target['regime_confidence']:.2f})"),
+            "P(any event)": _fmt_probability(outcomes["p_any_event"]) + " "
+            + _fmt_interval(outcomes.get("p_any_event_ci")),
+            "members": (f"{_fmt_spread(spread)}" if spread else ""),
+            "season climatology": _fmt_probability(outcomes["climatology_p_any_event"]),
+            "closest analog": answer["analogs"][0]["date"] if answer["analogs"] else ""})
+    columns = ["valid time", "regime", "P(any event)", "members", "season climatology",
+               "closest analog"]
+    head = "".join(f"<th>{html.escape(c)}</th>" for c in columns)
+    body = "".join("<tr>" + "".join(f"<td>{row[c]}</td>" for c in columns) + "</tr>"
+                   for row in rows)  # cells escaped above (the link is markup)
+    sections = [("Valid times", f"<table><thead><tr>{head}</tr></thead><tbody>{body}"
+                                "</tbody></table>"),
+                ("Settings", "<pre>" + html.escape(json.dumps(data["settings"], indent=2))
+                 + "</pre>")]
+    provenance = {"archive": manifest.get("archive"), "config": manifest.get("config"),
+                  "events": manifest.get("events")}
+    return html_page(f"Analogs of {len(rows)} valid times", sections, provenance)
 
 
 def html_frame(frame, *, left=(), digits=3) -> str:
@@ -282,13 +502,16 @@ def _skill_section(skill) -> str:
 def _readable(name: str, frame):
     """The columns of a briefing table a reader needs, with plain headings."""
     if name == "regime_trend":
+        # The archive's sampling unit: days, or samples for an archive of means.
+        unit = "samples" if "slope_samples_per_decade" in frame else "days"
         return frame.assign(
             slope=[f"{v:+.1f} +/- {e:.1f}" if v == v else "n/a" for v, e in
-                   zip(frame["slope_days_per_decade"], frame["slope_stderr_days_per_decade"])],
-        )[["regime", "n_years", "mean_days_per_season", "slope", "p_value", "kendall_tau",
+                   zip(frame[f"slope_{unit}_per_decade"],
+                       frame[f"slope_stderr_{unit}_per_decade"])],
+        )[["regime", "n_years", f"mean_{unit}_per_season", "slope", "p_value", "kendall_tau",
            "kendall_p_value"]].rename(columns={
-               "n_years": "years", "mean_days_per_season": "mean days per season",
-               "slope": "slope (days/decade)", "p_value": "p (least squares)",
+               "n_years": "years", f"mean_{unit}_per_season": f"mean {unit} per season",
+               "slope": f"slope ({unit}/decade)", "p_value": "p (least squares)",
                "kendall_tau": "Kendall tau", "kendall_p_value": "p (Kendall)"})
     if name == "outcomes_by_regime_and_month":
         kinds = [c[len("mean_"):] for c in frame.columns
@@ -318,21 +541,23 @@ def briefing_html(tables: dict, figures, manifest: dict, settings: dict) -> str:
                  f"{settings.get('days_tagged', '')} tagged days.</p><pre>"
                  + html.escape(json.dumps(settings, indent=2)) + "</pre>")]
     frequency = tables.get("regime_frequency_by_month")
+    unit = "samples" if frequency is not None and "samples" in frequency else "days"
     if frequency is not None and len(frequency):
-        wide = frequency.pivot(index="month", columns="regime", values="days")
+        wide = frequency.pivot(index="month", columns="regime", values=unit)
         wide = wide[[c for c in frequency["regime"].drop_duplicates()]]
         shares = frequency.pivot(index="month", columns="regime", values="fraction")
         rows = []
         for month in wide.index:
-            row = {"month": int(month), "days tagged": int(wide.loc[month].sum())}
+            row = {"month": int(month), f"{unit} tagged": int(wide.loc[month].sum())}
             row.update({regime: f"{int(wide.loc[month, regime])} "
                                 f"({100 * shares.loc[month, regime]:.0f}%)"
                         for regime in wide.columns})
             rows.append(row)
-        sections.append(("Days in each regime by month (share of the month's tagged days)",
-                         html_table(rows, ["month", "days tagged", *wide.columns])))
+        sections.append((f"{unit.capitalize()} in each regime by month (share of the "
+                         f"month's tagged {unit})",
+                         html_table(rows, ["month", f"{unit} tagged", *wide.columns])))
     described = (
-        ("regime_trend", "Change over the years (days per season per decade)",
+        ("regime_trend", f"Change over the years ({unit} per season per decade)",
          "Least-squares slope of the yearly share with its t-test p-value, and Kendall's "
          "tau (Mann-Kendall test) with its p-value; p below 0.05 is conventionally called "
          "significant, but with few years neither test has much power."),
@@ -348,6 +573,7 @@ def briefing_html(tables: dict, figures, manifest: dict, settings: dict) -> str:
         frame = tables.get(name)
         if frame is None:
             continue
+        note = frame.attrs.get("note", note)  # e.g. no run lengths on seasonal means
         frame = _readable(name, frame)
         sections.append((heading, f"<p>{html.escape(note)}</p><div style=\"overflow-x:auto\">"
                          + html_frame(frame, left=("regime", "reason", "date")) + "</div>"))

@@ -1,36 +1,54 @@
 r"""Physical diagnostics of the 500 hPa flow and low-level moisture, for regimes.
 
 Pure, vectorised functions on canonical fields (dims ``(..., lat, lon)``, ``lat``
-ascending, ``lon`` ascending in [-180, 180), ``z500`` in gpm). The maths is plain
-numpy on arrays whose last two axes are (lat, lon); thin xarray wrappers add
-labels, units and ``long_name`` and go through ``xarray.apply_ufunc(...,
-dask="parallelized")``, so a dask-backed archive chunked along ``time`` stays lazy
-until asked. Fields must have a single chunk along ``lat`` and ``lon``.
+ascending, ``lon`` in degrees east, ``z500`` in gpm). The maths is plain numpy on
+arrays whose last two axes are (lat, lon); thin xarray wrappers add labels, units and
+``long_name`` and go through ``xarray.apply_ufunc(..., dask="parallelized")``, so a
+dask-backed archive chunked along ``time`` stays lazy until asked. Fields must have a
+single chunk along ``lat`` and ``lon``.
+
+The sphere, whole: derivatives come from :mod:`analogs.geo`, which reads longitudes
+by their circular spacing (periodic on a grid that goes round the globe; continuous
+across the seam of a domain over the date line, which
+:func:`analogs.stages.sources.normalise_grid` stores as two pieces of [-180, 180)),
+and treats pole rows (the polar-cap gradient and circulation on a periodic grid; left
+out, NaN, on a limited one). Regions, ridge and trough windows and the closed-low
+search use the same circular reading, so every diagnostic is the same under a pure
+longitude shift of the weather and the grid. Area means skip NaN.
 
 :func:`compute_diagnostics` reduces a whole archive to one row a day over a region
-(a tuple ``(south, north, west, east)`` in degrees), walking the archive in blocks
-of days so that memory stays bounded and dask-backed inputs compute one block at a
-time.
+(a tuple ``(south, north, west, east)`` in degrees; west > east crosses the date
+line), walking the archive in blocks of days so that memory stays bounded and
+dask-backed inputs compute one block at a time.
 
 No I/O and no store: outcomes (tropical-cyclone centres) and reports reuse these.
 
 References
 ----------
 - Holton, J. R. and G. J. Hakim, 2013: *An Introduction to Dynamic Meteorology*,
-  5th ed., Academic Press (geostrophic wind, vorticity on the sphere, advection).
+  5th ed., Academic Press (geostrophic wind, vorticity on the sphere, advection,
+  circulation theorem).
 - Bolton, D., 1980: The computation of equivalent potential temperature.
   *Mon. Wea. Rev.*, 108, 1046-1053 (saturation vapour pressure over water).
 - MetPy (May et al., 2022, *Bull. Amer. Meteor. Soc.*), whose ``geostrophic_wind``,
   ``vorticity``, ``advection``, ``wind_direction`` and
   ``dewpoint_from_specific_humidity`` the tests use as the reference.
+- Nieto, R., and co-authors, 2005: Climatological features of cutoff low systems in
+  the Northern Hemisphere. *J. Climate*, 18, 3085-3103 (a closed 500 hPa low: the
+  height rises by at least 10 gpm in at least 6 of 8 directions; from memory).
+- Hart, R. E. and J. L. Evans, 2001: A climatology of the extratropical transition of
+  Atlantic tropical cyclones. *J. Climate*, 14, 546-564 (transition mostly between
+  about 30 and 45 N, furthest north in August-September; from memory).
 """
 
 from __future__ import annotations
 
 import numbers
 import os
+import warnings
 from collections.abc import Mapping
 from concurrent.futures import ThreadPoolExecutor
+from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
@@ -49,7 +67,16 @@ from analogs.constants import (
     ZERO_CELSIUS_K,
 )
 from analogs.errors import AnalogsInputError
-from analogs.geo import great_circle_km, meridional_derivative, spherical_gradient, zonal_derivative
+from analogs.geo import (
+    great_circle_km,
+    longitude_frame,
+    meridional_derivative,
+    pole_neighbour_rows,
+    pole_rows,
+    spherical_gradient,
+    wrap_longitude,
+    zonal_derivative,
+)
 
 __all__ = [
     "coriolis_parameter",
@@ -59,14 +86,19 @@ __all__ = [
     "advection",
     "wind_direction",
     "wind_speed",
+    "region_mask",
     "region_mean_flow",
     "wave_anomaly",
     "ridge_trough",
     "find_closed_lows",
     "dewpoint_from_specific_humidity",
+    "moisture_field",
     "moist_line_latitude",
     "moist_area_fraction",
     "compute_diagnostics",
+    "RichMoisture",
+    "RICH_MOISTURE",
+    "CLOSED_LOW_DEFAULTS",
     "DIAGNOSTIC_UNITS",
 ]
 
@@ -77,6 +109,78 @@ MIN_GEOSTROPHIC_LAT_DEG = 5.0
 _KM_PER_DEG = np.pi * EARTH_RADIUS / 180.0 / 1000.0
 _HEIGHT_UNITS = {"gpm", "m", "meter", "meters", "metre", "metres", "geopotential_meter"}
 _GRID = ["lat", "lon"]
+
+
+@dataclass(frozen=True)
+class RichMoisture:
+    """The threshold of "rich low-level moisture" at the level of one moisture field.
+
+    ``threshold`` is in ``units`` (degC for a dewpoint, kg m-2 for precipitable
+    water); ``measure`` names the quantity compared; ``source`` says where the number
+    comes from.
+    """
+
+    field: str
+    measure: str
+    threshold: float
+    units: str
+    source: str
+
+    def to_dict(self) -> dict:
+        return {"field": self.field, "measure": self.measure,
+                "threshold": float(self.threshold), "units": self.units,
+                "source": self.source}
+
+
+#: Rich low-level moisture, per canonical moisture field, at that field's own level.
+#: The moisture line (:func:`moist_line_latitude`) and area fraction
+#: (:func:`moist_area_fraction`) of :func:`compute_diagnostics` use these.
+RICH_MOISTURE = {
+    "td2m": RichMoisture(
+        "td2m", "2 m dewpoint", SEVERE_DEWPOINT_C, "degC",
+        "the 60 F (15.6 C) surface dewpoint line of severe-weather forecasting "
+        "(common practice, no source)"),
+    "q850": RichMoisture(
+        "q850", "850 hPa dewpoint", 12.0, "degC",
+        "rich low-level moisture at 850 hPa: 850 hPa dewpoints of 12 C or more mark a "
+        "rich moist tongue, 8 C its edge (common practice, from memory); the 60 F "
+        "surface dewpoint's mixing ratio (11.3 g/kg at 1000 hPa) carried up a well-mixed "
+        "layer is a 13 C dewpoint at 850 hPa (Bolton 1980 arithmetic), rounded down "
+        "because the moist layer is rarely mixed that deep"),
+    "pwat": RichMoisture(
+        "pwat", "precipitable water", 30.0, "kg m-2",
+        "the precipitable water that goes with a 60 F surface dewpoint: 29 mm by "
+        "Reitan's (1963, J. Appl. Meteor.) ln W - dewpoint relation (from memory) and "
+        "28 mm by the pooled global radiosonde fit ln W = 0.058 Td + 2.42 (W in mm, Td "
+        "in C; 'Comparison of two models relating precipitable water to surface "
+        "humidity using globally distributed radiosonde data over land surfaces', "
+        "Int. J. Climatol.), rounded to 30; a moist tropical air mass holds 40-50 mm "
+        "or more (common practice)"),
+}
+
+#: Defaults of the closed-low search (:func:`find_closed_lows`), each with its basis.
+#: ``max_lat`` 40: Atlantic tropical cyclones that undergo extratropical transition do
+#: so mostly between about 30 and 45 N (Hart and Evans 2001, from memory), and the
+#: remnants of landfalling storms keep a compact 500 hPa circulation while they move
+#: inland to 35-40 N (common practice); whether a low is tropical is for the regime
+#: rules. ``min_depth`` 15 gpm over a 500-800 km ring and ``max_radius_km`` 600 km
+#: (half-depth radius): a compact low, unlike a broad mid-latitude trough (common
+#: practice, no source). ``poleward_rise_gpm`` 0: the test of a closed circulation
+#: (the ``closed`` flag of each low, ``tc_closed``): the total height rises somewhere
+#: poleward of the centre, i.e. easterly geostrophic flow on the poleward side, the
+#: "cut off from the westerlies" condition of cut-off low climatologies such as Nieto
+#: et al. 2005 (from memory); an open trough fails it along its axis. ``min_ring_valid`` 0.75: at least three
+#: quarters of the ring's grid points have a value (missing values are skipped).
+CLOSED_LOW_DEFAULTS = {
+    "max_lat": 40.0,
+    "min_depth": 15.0,
+    "max_radius_km": 600.0,
+    "ring_km": (500.0, 800.0),
+    "neighbourhood_km": 400.0,
+    "moisture_radius_km": 500.0,
+    "poleward_rise_gpm": 0.0,
+    "min_ring_valid": 0.75,
+}
 
 #: Units of every column of :func:`compute_diagnostics`.
 DIAGNOSTIC_UNITS = {
@@ -93,11 +197,13 @@ DIAGNOSTIC_UNITS = {
     "trough_lon": "degree_east",
     "trough_amplitude": "gpm",
     "tc_present": "1",
+    "tc_closed": "1",
     "tc_lat": "degree_north",
     "tc_lon": "degree_east",
     "tc_depth": "gpm",
     "tc_radius_km": "km",
     "tc_dewpoint_c": "degC",
+    "moisture_available": "1",
     "dewpoint_region_c": "degC",
     "moist_line_lat": "degree_north",
     "moist_area_fraction": "1",
@@ -136,21 +242,38 @@ def _check_height(z500, owner: str) -> xr.DataArray:
     return z500
 
 
-def _check_region(region, lat, lon, owner: str):
-    """Boolean masks (lat, lon) of the grid points inside ``region``."""
+def _region_bounds(region, owner: str):
+    """(south, north, west, east) as floats with east >= west continuous: a box given
+    with west > east (or east past 180) crosses the date line."""
     if (not isinstance(region, (tuple, list)) or len(region) != 4
-            or not all(isinstance(v, numbers.Real) and np.isfinite(v) for v in region)):
+            or not all(isinstance(v, numbers.Real) and not isinstance(v, bool)
+                       and np.isfinite(v) for v in region)):
         raise AnalogsInputError(
             f"The 'region' parameter of {owner} must be (south, north, west, east) in "
             f"degrees. Got {region!r} instead.")
     south, north, west, east = (float(v) for v in region)
-    if not (-90.0 <= south < north <= 90.0) or not (west < east):
+    if not (-90.0 <= south < north <= 90.0) or west == east:
         raise AnalogsInputError(
             f"The 'region' parameter of {owner} must have south < north within "
-            f"[-90, 90] and west < east in degrees east. Got {region!r} instead.")
+            f"[-90, 90] and west != east in degrees east (west > east crosses the date "
+            f"line). Got {region!r} instead.")
+    span = 360.0 if east - west >= 360.0 else (east - west) % 360.0
+    return south, north, west, west + span
+
+
+def _lon_in_span(lon, west, east):
+    """Longitudes (degrees) inside [west, east] on the circle (east >= west)."""
+    if east - west >= 360.0:
+        return np.ones(np.shape(lon), dtype=bool)
+    return (np.asarray(lon, dtype=float) - west) % 360.0 <= (east - west) + 1e-9
+
+
+def _check_region(region, lat, lon, owner: str):
+    """Boolean masks (lat, lon) of the grid points inside ``region``."""
+    south, north, west, east = _region_bounds(region, owner)
     lat, lon = np.asarray(lat, float), np.asarray(lon, float)
     lat_in = (lat >= south) & (lat <= north)
-    lon_in = (lon >= west) & (lon <= east)
+    lon_in = _lon_in_span(lon, west, east)
     if not lat_in.any() or not lon_in.any():
         raise AnalogsInputError(
             f"The region {tuple(region)!r} (south, north, west, east) in {owner} lies "
@@ -197,10 +320,39 @@ def _geostrophic_np(z, lat, lon, gradient=None):
 
 
 def _vorticity_np(u, v, lat, lon):
+    r"""Relative vorticity on the sphere; pole rows by the circulation theorem.
+
+    At a pole of a grid that goes round the globe the metric term
+    :math:`u\tan\phi/a` is singular; there :math:`\zeta` is the circulation along
+    the adjacent latitude circle :math:`\phi_1` over the area of the polar cap it
+    bounds (Stokes; Holton & Hakim 2013, section 4.1):
+
+    .. math::
+
+        \zeta_{pole} = \pm\frac{\cos\phi_1\,\bar u(\phi_1)}{a\,(1 \mp \sin\phi_1)}
+
+    (upper signs north). Exact for solid-body rotation as :math:`\phi_1 \to \pm 90`;
+    second order in the grid length. On a limited grid the pole rows are NaN.
+    """
     dv_dx = zonal_derivative(v, lat, lon)
-    du_dy = meridional_derivative(u, lat)
-    metric = np.tan(np.radians(lat))[:, None] / EARTH_RADIUS
-    return dv_dx - du_dy + u * metric
+    du_dy = meridional_derivative(u, lat, lon)
+    poles = pole_rows(lat)
+    if not poles.any():
+        metric = np.tan(np.radians(lat))[:, None] / EARTH_RADIUS
+        return dv_dx - du_dy + u * metric
+    tan = np.where(poles, np.nan, np.tan(np.radians(lat)))
+    zeta = dv_dx - du_dy + u * (tan[:, None] / EARTH_RADIUS)
+    periodic = longitude_frame(lon).periodic
+    for row, ring in pole_neighbour_rows(lat):
+        if not periodic:
+            zeta[..., row, :] = np.nan
+            continue
+        sign = 1.0 if lat[row] > 0 else -1.0
+        phi1 = np.radians(lat[ring])
+        mean_u = np.mean(np.asarray(u, dtype=float)[..., ring, :], axis=-1)
+        zeta[..., row, :] = (sign * np.cos(phi1) * mean_u
+                             / (EARTH_RADIUS * (1.0 - sign * np.sin(phi1))))[..., None]
+    return zeta
 
 
 def _advection_np(scalar, u, v, lat, lon):
@@ -233,8 +385,11 @@ def _dewpoint_np(q, pressure_hpa):
     return BOLTON_C_DEGC * log_ratio / (BOLTON_B - log_ratio) + ZERO_CELSIUS_K
 
 
-def _moist_line_np(dewpoint_k, lat, threshold_c, lon_cols):
-    moist = dewpoint_k[..., lon_cols] >= threshold_c + ZERO_CELSIUS_K
+def _moist_line_np(values, lat, threshold, lon_cols):
+    """Mean over longitudes of the northernmost latitude where ``values`` reach
+    ``threshold`` (same units); NaN values never count as moist."""
+    with np.errstate(invalid="ignore"):
+        moist = values[..., lon_cols] >= threshold
     any_moist = moist.any(axis=-2)
     northernmost = moist.shape[-2] - 1 - np.argmax(moist[..., ::-1, :], axis=-2)
     per_lon = np.where(any_moist, lat[northernmost], np.nan)
@@ -256,12 +411,18 @@ def _ridge_trough_np(profile, lon, ridge_cols, trough_cols):
 
 
 def _wave_windows(lon, region, upstream_deg, downstream_deg, trough_west_deg):
-    """Longitude masks of the ridge (upstream) and trough (over/downstream) windows."""
-    _, _, west, east = region
-    ridge_cols = (lon >= west - upstream_deg) & (lon <= west)
-    trough_cols = (lon >= west - trough_west_deg) & (lon <= east + downstream_deg)
+    """Longitude masks (grid order) of the ridge (upstream) and trough (over/downstream)
+    windows, measured on the circle around the region."""
+    _, _, west, east = _region_bounds(region, "ridge_trough")
+    lon = np.asarray(lon, dtype=float)
+    ridge_cols = _lon_in_span(lon, west - upstream_deg, west)
+    trough_cols = _lon_in_span(lon, west - trough_west_deg, east + downstream_deg)
     if not ridge_cols.any():
-        ridge_cols = lon <= lon.min()
+        # No grid column upstream: the westernmost column of the domain as seen from
+        # the region (the first of its seam-continuous frame).
+        frame = longitude_frame(lon, centre=0.5 * (west + east))
+        ridge_cols = np.zeros(lon.size, dtype=bool)
+        ridge_cols[frame.order[0]] = True
     return ridge_cols, trough_cols
 
 
@@ -274,24 +435,47 @@ def _wave_band(lat, region, poleward_deg):
 
 
 def _ring_offsets(lat, i, dlat, dlon, max_km):
-    """Grid offsets (di, dj) and their distances (km) within max_km of row i."""
+    """Grid offsets (di, dj), their distances (km) and azimuth octants (0 = north,
+    2 = east, 4 = south, 6 = west, each 45 degrees wide) within max_km of row i."""
     ni = int(np.ceil(max_km / (_KM_PER_DEG * dlat)))
     cos_lat = max(np.cos(np.radians(lat[i])), 0.05)
     nj = int(np.ceil(max_km / (_KM_PER_DEG * dlon * cos_lat)))
     di, dj = np.meshgrid(np.arange(-ni, ni + 1), np.arange(-nj, nj + 1), indexing="ij")
     di, dj = di.ravel(), dj.ravel()
     dist = great_circle_km(lat[i], 0.0, lat[i] + di * dlat, dj * dlon)
+    bearing = np.arctan2(dj * dlon * cos_lat, di * dlat)      # clockwise from north
+    octant = np.round(bearing / (np.pi / 4.0)).astype(int) % 8  # 0 = north, 4 = south
     keep = dist <= max_km
-    return di[keep], dj[keep], dist[keep]
+    return di[keep], dj[keep], dist[keep], octant[keep]
+
+
+def _zonal_median(z):
+    """Median over longitude of each latitude, skipping missing values."""
+    if not np.isnan(z).any():
+        return np.median(z, axis=-1, keepdims=True)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)   # all-missing latitude rows
+        return np.nanmedian(z, axis=-1, keepdims=True)
 
 
 def _closed_lows_np(z, lat, lon, *, moisture=None, max_lat, min_depth, max_radius_km,
-                    ring_km, neighbourhood_km, moisture_radius_km, min_ring_fraction=0.5):
-    """Compact closed lows in z (nt, nlat, nlon); returns a dict of 1-D arrays."""
-    nt, nlat, nlon = z.shape
+                    ring_km, neighbourhood_km, moisture_radius_km, poleward_rise_gpm,
+                    min_ring_valid):
+    """Compact closed lows in z (nt, nlat, nlon); returns a dict of 1-D arrays.
+
+    Works in the seam-continuous longitude frame of ``lon`` (periodic round the
+    globe); longitudes come back in [-180, 180)."""
+    frame = longitude_frame(lon)
+    z = frame.to_frame(np.asarray(z, dtype=float))
+    if moisture is not None:
+        moisture = frame.to_frame(np.asarray(moisture, dtype=float))
+    lon = frame.lon
+    periodic = frame.periodic
+    _, nlat, nlon = z.shape
     dlat = float(np.mean(np.diff(lat))) if nlat > 1 else 1.0
-    dlon = float(np.mean(np.diff(lon))) if nlon > 1 else 1.0
+    dlon = frame.step
     ring_inner, ring_outer = ring_km
+    lon_mode = "wrap" if periodic else "constant"
 
     def half_widths(km, cos_lat):
         return (max(1, int(round(km / (_KM_PER_DEG * dlat)))),
@@ -300,60 +484,102 @@ def _closed_lows_np(z, lat, lon, *, moisture=None, max_lat, min_depth, max_radiu
     # Only rows within reach of |lat| <= max_lat can hold or shape a centre.
     reach_i = half_widths(ring_outer, 1.0)[0]
     rows = np.nonzero(np.abs(lat) <= max_lat + (reach_i + 1) * dlat)[0]
-    # Heights relative to the zonal median of each latitude: the median ignores the
-    # compact low itself, and removing it takes away the meridional slope of the
-    # background, so that neither the screening below nor the ring depth is biased
-    # where part of the ring falls outside the grid.
-    z = z - np.median(z, axis=-1, keepdims=True)
+    # Heights relative to the zonal median of each latitude (missing values skipped):
+    # the median ignores the compact low itself, and removing it takes away the
+    # meridional slope of the background. The closure test uses the total height.
+    total = z
+    z = z - _zonal_median(z)
     candidate = np.zeros(z.shape, dtype=bool)
     if rows.size:
         # Screening: an approximate depth field, the mean over a square annulus of
-        # half-widths ring_km (box sums, counting only points inside the grid) minus
-        # the height. Local maxima of it are compact lows, including those on a sloping
-        # background or next to a broad trough where the total height has no closed
-        # contour. Depth and radius are then measured exactly on the great-circle ring.
+        # half-widths ring_km (box sums over the points that have a value; none
+        # outside the grid, wrapping round a periodic grid) minus the height. Local
+        # maxima of it are compact lows, also on a sloping background or next to a
+        # broad trough where the total height has no closed contour. Depth, closure
+        # and radius are then measured exactly on the great-circle ring.
         band = z[:, rows[0]:rows[-1] + 1]
+        valid = np.isfinite(band)
+        filled = np.where(valid, band, 0.0)
+        weight = valid.astype(float)
         cos_lat = np.cos(np.radians(np.clip(np.abs(lat[rows]).mean(), 0.0, 80.0)))
-        ones = np.ones(band.shape[1:])
+        modes = ("constant", "constant", lon_mode)
         sums = []
         for km in (ring_outer, ring_inner):
             hi, hj = half_widths(km, cos_lat)
-            size = (2 * hi + 1, 2 * hj + 1)
-            n = size[0] * size[1]
-            sums.append((ndimage.uniform_filter(band, size=(1,) + size, mode="constant") * n,
-                         ndimage.uniform_filter(ones, size=size, mode="constant") * n))
+            size = (1, 2 * hi + 1, 2 * hj + 1)
+            n = size[1] * size[2]
+            sums.append((ndimage.uniform_filter(filled, size=size, mode=modes) * n,
+                         ndimage.uniform_filter(weight, size=size, mode=modes) * n))
         (s_out, n_out), (s_in, n_in) = sums
-        screen = (s_out - s_in) / np.maximum(n_out - n_in, 1.0) - band
+        count = n_out - n_in
+        with np.errstate(invalid="ignore", divide="ignore"):
+            screen = np.where(count >= 0.5, (s_out - s_in) / np.maximum(count, 0.5),
+                              np.nan) - band
+        screen = np.where(np.isfinite(screen), screen, -np.inf)
         hi, hj = half_widths(neighbourhood_km, cos_lat)
-        peak = ndimage.maximum_filter(screen, size=(1, 2 * hi + 1, 2 * hj + 1), mode="nearest")
-        candidate[:, rows[0]:rows[-1] + 1] = (screen >= peak) & (screen >= 0.5 * min_depth)
-    interior = np.zeros((nlat, nlon), dtype=bool)
-    interior[1:-1, 1:-1] = True
-    interior &= (np.abs(lat) <= max_lat)[:, None]
-    t_idx, i_idx, j_idx = np.nonzero(candidate & interior)
+        peak = ndimage.maximum_filter(screen, size=(1, 2 * hi + 1, 2 * hj + 1),
+                                      mode=("nearest", "nearest",
+                                            "wrap" if periodic else "nearest"))
+        candidate[:, rows[0]:rows[-1] + 1] = (np.isfinite(screen) & (screen >= peak)
+                                              & (screen >= 0.5 * min_depth))
+    candidate &= (np.abs(lat) <= max_lat)[None, :, None]
+    t_idx, i_idx, j_idx = np.nonzero(candidate)
 
     reach_km = max(ring_outer, moisture_radius_km)
     bin_km = _KM_PER_DEG * dlat
     n_bins = int(np.ceil(ring_outer / bin_km))
-    out = {k: np.full(t_idx.size, np.nan) for k in ("depth", "radius", "moisture")}
+    out = {k: np.full(t_idx.size, np.nan) for k in ("depth", "radius", "moisture", "closed")}
     for i in np.unique(i_idx):
         sel = np.nonzero(i_idx == i)[0]
-        di, dj, dist = _ring_offsets(lat, i, dlat, dlon, reach_km)
-        rows = i + di
+        di, dj, dist, octant = _ring_offsets(lat, i, dlat, dlon, reach_km)
+        rows_i = i + di
         cols = j_idx[sel, None] + dj[None, :]
-        valid = (rows >= 0) & (rows < nlat)
-        valid = valid[None, :] & (cols >= 0) & (cols < nlon)
-        rows_c = np.clip(rows, 0, nlat - 1)[None, :]
+        inside = ((rows_i >= 0) & (rows_i < nlat))[None, :]
+        if periodic:
+            cols = cols % nlon
+            inside = np.broadcast_to(inside, cols.shape)
+        else:
+            inside = inside & (cols >= 0) & (cols < nlon)
+        rows_c = np.clip(rows_i, 0, nlat - 1)[None, :]
         cols_c = np.clip(cols, 0, nlon - 1)
-        values = np.where(valid, z[t_idx[sel, None], rows_c, cols_c], np.nan)
+        values = np.where(inside, z[t_idx[sel, None], rows_c, cols_c], np.nan)
         centre = z[t_idx[sel], i, j_idx[sel]]
-
         ring = (dist >= ring_inner) & (dist <= ring_outer)
-        ring_valid = valid[:, ring]
-        ring_fraction = ring_valid.mean(axis=1)
-        with np.errstate(invalid="ignore"):
-            depth = np.nanmean(values[:, ring], axis=1) - centre
-        depth = np.where(ring_fraction >= min_ring_fraction, depth, np.nan)
+        disc = (dist > 0) & (dist <= ring_outer)
+        total_centre = total[t_idx[sel], i, j_idx[sel]]
+
+        # The whole ring on the grid (no detection whose ring leaves the domain), at
+        # least min_ring_valid of its points with a value and every octant seen. Then
+        # whether the circulation is closed: poleward of the centre (the octant
+        # centred on the pole direction) the total height climbs more than
+        # poleward_rise_gpm above the centre's somewhere within the ring's outer radius
+        # (mean over one grid length of radius), so the geostrophic flow there is
+        # easterly. An open trough, however sharp, has heights falling poleward along
+        # its axis and is not closed.
+        ring_values = values[:, ring]
+        ok = np.isfinite(ring_values)
+        onehot = (octant[ring, None] == np.arange(8)[None, :]).astype(float)
+        n_ann = int(np.ceil(ring_outer / bin_km))
+        poleward = disc & (octant == (0 if lat[i] >= 0 else 4))
+        annulus = np.minimum((dist[poleward] / bin_km).astype(int), n_ann - 1)
+        cells = (annulus[:, None] == np.arange(n_ann)[None, :]).astype(float)
+        p_vals = np.where(inside[:, poleward], total[t_idx[sel, None], rows_c[:, poleward],
+                                                     cols_c[:, poleward]], np.nan)
+        p_ok = np.isfinite(p_vals)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            octant_count = ok.astype(float) @ onehot
+            cell_rise = ((np.where(p_ok, p_vals - total_centre[:, None], 0.0) @ cells)
+                         / (p_ok.astype(float) @ cells))
+            poleward_rise = np.max(np.where(np.isfinite(cell_rise), cell_rise, -np.inf),
+                                   axis=1)
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore", RuntimeWarning)   # an all-missing ring
+                depth = np.nanmean(np.where(ok, ring_values, np.nan), axis=1) - centre
+        out["closed"][sel] = (np.ones(sel.size) if poleward_rise_gpm is None
+                              else (poleward_rise > poleward_rise_gpm).astype(float))
+        accept = (inside[:, ring].all(axis=1) & (ok.mean(axis=1) >= min_ring_valid)
+                  & (octant_count > 0).all(axis=1) & np.isfinite(centre))
+        depth = np.where(accept, depth, np.nan)
 
         # Azimuthal-mean profile in annuli one grid-length wide: the radius is where it
         # first climbs back half the depth above the centre (linear interpolation).
@@ -361,21 +587,22 @@ def _closed_lows_np(z, lat, lon, *, moisture=None, max_lat, min_depth, max_radiu
         in_disc = dist <= ring_outer
         indicator = (bins[in_disc, None] == np.arange(n_bins)[None, :]).astype(float)
         vals = values[:, in_disc]
-        ok = np.isfinite(vals)
-        sums = np.where(ok, vals, 0.0) @ indicator
-        counts = ok.astype(float) @ indicator
+        finite = np.isfinite(vals)
+        sums = np.where(finite, vals, 0.0) @ indicator
+        counts = finite.astype(float) @ indicator
         with np.errstate(invalid="ignore", divide="ignore"):
             profile = sums / counts - centre[:, None]
         radii = (np.arange(n_bins) + 0.5) * bin_km
         radii[0] = 0.0
-        rise = profile - 0.5 * depth[:, None]
-        reached = rise >= 0
+        with np.errstate(invalid="ignore"):
+            reached = (profile - 0.5 * depth[:, None]) >= 0
+        rise_half = profile - 0.5 * depth[:, None]
         first = np.argmax(reached, axis=1)
         has = reached.any(axis=1) & np.isfinite(depth)
         prev = np.maximum(first - 1, 0)
         r0, r1 = radii[prev], radii[first]
-        p0 = np.take_along_axis(rise, prev[:, None], axis=1)[:, 0]
-        p1 = np.take_along_axis(rise, first[:, None], axis=1)[:, 0]
+        p0 = np.take_along_axis(rise_half, prev[:, None], axis=1)[:, 0]
+        p1 = np.take_along_axis(rise_half, first[:, None], axis=1)[:, 0]
         with np.errstate(invalid="ignore", divide="ignore"):
             frac = np.where(p1 > p0, -p0 / (p1 - p0), 0.0)
         radius = np.where(first > 0, r0 + np.clip(frac, 0, 1) * (r1 - r0), r1)
@@ -384,16 +611,19 @@ def _closed_lows_np(z, lat, lon, *, moisture=None, max_lat, min_depth, max_radiu
 
         if moisture is not None:
             near = dist <= moisture_radius_km
-            m_vals = np.where(valid[:, near],
+            m_vals = np.where(inside[:, near],
                               moisture[t_idx[sel, None], rows_c[:, near], cols_c[:, near]],
                               np.nan)
-            with np.errstate(invalid="ignore"):
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore", RuntimeWarning)   # all missing: NaN
                 out["moisture"][sel] = np.nanmean(m_vals, axis=1)
 
-    keep = ((out["depth"] >= min_depth) & (out["radius"] <= max_radius_km))
-    return {"t": t_idx[keep], "lat": lat[i_idx[keep]], "lon": lon[j_idx[keep]],
+    with np.errstate(invalid="ignore"):
+        keep = (out["depth"] >= min_depth) & (out["radius"] <= max_radius_km)
+    return {"t": t_idx[keep], "lat": lat[i_idx[keep]],
+            "lon": wrap_longitude(lon[j_idx[keep]]),
             "depth": out["depth"][keep], "radius": out["radius"][keep],
-            "moisture": out["moisture"][keep]}
+            "moisture": out["moisture"][keep], "closed": out["closed"][keep] > 0.5}
 
 
 # -------------------------------------------------------------- public functions
@@ -423,9 +653,13 @@ def geostrophic_wind(z500: xr.DataArray) -> xr.Dataset:
         v_g = \frac{g_0}{f}\frac{1}{a\cos\phi}\frac{\partial Z}{\partial\lambda}
 
     with :math:`Z` in gpm, :math:`g_0 = 9.80665` m s-2, :math:`f = 2\Omega\sin\phi` and
-    :math:`a` the Earth radius; centred differences inside, one-sided at the edges
+    :math:`a` the Earth radius; centred differences inside, one-sided at the edges,
+    periodic round the globe and continuous across the date line
     (:func:`analogs.geo.spherical_gradient`). NaN equatorward of
-    ``MIN_GEOSTROPHIC_LAT_DEG`` where :math:`f \to 0`.
+    ``MIN_GEOSTROPHIC_LAT_DEG`` where :math:`f \to 0`. On a pole row of a grid that
+    goes round the globe the wind is that of the polar-cap gradient
+    (:func:`analogs.geo.polar_cap_gradient`), in the east/north components of each
+    meridian; on a limited grid the pole rows are NaN.
 
     Parameters
     ----------
@@ -458,7 +692,10 @@ def relative_vorticity(u: xr.DataArray, v: xr.DataArray) -> xr.DataArray:
 
     The last term is the spherical metric term; MetPy's ``vorticity`` on a
     latitude/longitude grid includes it too (through the map-factor correction of
-    ``vector_derivative``), so the two agree to rounding away from the edges.
+    ``vector_derivative``), so the two agree to rounding away from the edges. At a
+    pole, where the metric term is singular, a grid that goes round the globe takes
+    the circulation round the adjacent latitude circle over the polar cap's area
+    (Stokes' theorem); a limited grid leaves the pole rows NaN.
 
     Parameters
     ----------
@@ -533,6 +770,18 @@ def wind_speed(u, v):
     if isinstance(speed, xr.DataArray):
         speed = _labelled(speed, "m s-1", "wind speed")
     return speed
+
+
+def region_mask(lat, lon, region) -> tuple[np.ndarray, np.ndarray]:
+    """Boolean masks ``(lat_in, lon_in)`` of the grid latitudes and longitudes inside
+    ``region = (south, north, west, east)`` (degrees).
+
+    Longitudes are compared on the circle: west > east (``(30, 50, 170, -170)``) or
+    east past 180 (``(30, 50, 170, 190)``) is a box across the date line, and the grid
+    may be stored in any longitude convention or order. Raises AnalogsInputError when
+    the box covers no grid point.
+    """
+    return _check_region(region, lat, lon, "region_mask")
 
 
 def region_mean_flow(u: xr.DataArray, v: xr.DataArray, region) -> xr.Dataset:
@@ -613,8 +862,10 @@ def ridge_trough(z500: xr.DataArray, region, *, upstream_deg: float = 25.0,
     ``trough_west_deg`` (a trough axis just west of the region still puts the region
     in the strong south-westerly flow and cyclonic vorticity advection ahead of it, so
     the trough window starts a little upstream of the box); positions are the
-    longitudes of the extremes. Amplitudes in gpm (positive for a ridge above and a
-    trough below the zonal mean).
+    longitudes of the extremes (degrees east in [-180, 180)). Windows are measured on
+    the circle, so a region near or across the date line, or on a grid that goes round
+    the globe, has its upstream ridge window where the flow comes from. Amplitudes in
+    gpm (positive for a ridge above and a trough below the zonal mean).
 
     Returns
     -------
@@ -635,7 +886,8 @@ def ridge_trough(z500: xr.DataArray, region, *, upstream_deg: float = 25.0,
         _ridge_trough_np, profile, input_core_dims=[["lon"]],
         output_core_dims=[[], [], [], []], dask="parallelized",
         output_dtypes=[float] * 4,
-        kwargs={"lon": lon, "ridge_cols": ridge_cols, "trough_cols": trough_cols})
+        kwargs={"lon": wrap_longitude(lon), "ridge_cols": ridge_cols,
+                "trough_cols": trough_cols})
     names = [("ridge_lon", "degree_east", "longitude of the strongest upstream ridge"),
              ("ridge_amplitude", "gpm", "amplitude of the strongest upstream ridge"),
              ("trough_lon", "degree_east", "longitude of the strongest trough"),
@@ -644,20 +896,25 @@ def ridge_trough(z500: xr.DataArray, region, *, upstream_deg: float = 25.0,
 
 
 def find_closed_lows(z500: xr.DataArray, moisture: xr.DataArray | None = None, *,
-                     max_lat: float = 35.0, min_depth: float = 15.0,
-                     max_radius_km: float = 600.0,
-                     ring_km: tuple[float, float] = (500.0, 800.0),
-                     neighbourhood_km: float = 400.0,
-                     moisture_radius_km: float = 500.0,
+                     max_lat: float = CLOSED_LOW_DEFAULTS["max_lat"],
+                     min_depth: float = CLOSED_LOW_DEFAULTS["min_depth"],
+                     max_radius_km: float = CLOSED_LOW_DEFAULTS["max_radius_km"],
+                     ring_km: tuple[float, float] = CLOSED_LOW_DEFAULTS["ring_km"],
+                     neighbourhood_km: float = CLOSED_LOW_DEFAULTS["neighbourhood_km"],
+                     moisture_radius_km: float = CLOSED_LOW_DEFAULTS["moisture_radius_km"],
+                     poleward_rise_gpm: float | None = CLOSED_LOW_DEFAULTS["poleward_rise_gpm"],
+                     min_ring_valid: float = CLOSED_LOW_DEFAULTS["min_ring_valid"],
+                     closed_only: bool = False,
                      block_days: int = 1000) -> pd.DataFrame:
-    r"""Compact closed 500 hPa lows at low latitude (tropical cyclones or remnants).
+    r"""Compact closed 500 hPa lows equatorward of ``max_lat`` (tropical cyclones, their
+    remnants, and compact cut-off lows: which is which is for the regime rules).
 
     Heights are first taken relative to their zonal median at each latitude
-    (:math:`Z' = Z - \operatorname{median}_\lambda Z`), which removes the meridional
-    slope of the background and ignores the compact low itself. A centre is a grid
-    point (not on the domain edge, :math:`|\phi| \le` ``max_lat``) where a screening
+    (:math:`Z' = Z - \operatorname{median}_\lambda Z`, missing values skipped), which
+    removes the meridional slope of the background and ignores the compact low itself.
+    A centre is a grid point with :math:`|\phi| \le` ``max_lat`` where a screening
     depth field, the mean of :math:`Z'` over a square annulus of half-widths
-    ``ring_km`` (box sums over the points inside the grid,
+    ``ring_km`` (box sums over the points that have a value,
     ``scipy.ndimage.uniform_filter``) minus :math:`Z'`, is the maximum over a
     neighbourhood of about ``neighbourhood_km`` (``scipy.ndimage.maximum_filter``
     over (lat, lon) per day) and at least ``min_depth / 2``. This is the local
@@ -671,14 +928,32 @@ def find_closed_lows(z500: xr.DataArray, moisture: xr.DataArray | None = None, *
         r_{1/2} = \min\{ r : \langle Z' \rangle_\theta(r) - Z'_c \ge D / 2 \}
 
     where :math:`\overline{Z'}_{ring}` is the mean over grid points between
-    ``ring_km[0]`` and ``ring_km[1]`` great-circle distance (at least half the ring
-    inside the grid), and :math:`\langle Z'\rangle_\theta(r)` the azimuthal mean in
-    annuli one grid length wide, interpolated linearly. For a Gaussian low
-    :math:`-A\exp(-r^2/2\sigma^2)` on a flat background,
+    ``ring_km[0]`` and ``ring_km[1]`` great-circle distance and
+    :math:`\langle Z'\rangle_\theta(r)` the azimuthal mean in annuli one grid length
+    wide, interpolated linearly. A centre counts only when
+
+    - the whole ring lies on the grid (no detection whose ring leaves the domain: a
+      trough at the domain's edge is not a closed low);
+    - at least ``min_ring_valid`` of the ring's points have a value and every octant
+      of the ring has one (missing values are skipped where they are; they never
+      void the day);
+    - :math:`D \ge` ``min_depth`` (gpm) and :math:`r_{1/2} \le` ``max_radius_km``:
+      deep and compact, unlike a broad mid-latitude trough.
+
+    Each low says whether its circulation is ``closed``: in the octant centred on the
+    pole direction the total height :math:`Z` climbs more than ``poleward_rise_gpm``
+    above the centre's somewhere within ``ring_km[1]`` (easterly geostrophic flow
+    poleward of the centre: cut off from the westerlies). An open short-wave trough,
+    however sharp, has heights falling poleward along its axis and is not closed; a
+    tropical cyclone caught in a strong westerly gradient may not be either.
+    ``closed_only=True`` keeps the closed ones only; ``poleward_rise_gpm=None`` calls
+    every low closed.
+
+    For a Gaussian low :math:`-A\exp(-r^2/2\sigma^2)` on a flat background,
     :math:`r_{1/2} = \sigma\sqrt{2\ln 2}` and :math:`D` is a little less than
-    :math:`A`. Lows with :math:`D \ge` ``min_depth`` (gpm) and
-    :math:`r_{1/2} \le` ``max_radius_km`` are kept: deep and compact, unlike a broad
-    mid-latitude trough.
+    :math:`A`. Longitudes are read on the circle (periodic round the globe, continuous
+    across the date line); the defaults and their sources are in
+    :data:`CLOSED_LOW_DEFAULTS`.
 
     Parameters
     ----------
@@ -686,15 +961,19 @@ def find_closed_lows(z500: xr.DataArray, moisture: xr.DataArray | None = None, *
         blocks of ``block_days``).
     moisture : optional DataArray on the same grid (any moisture variable, e.g. the
         850 hPa dewpoint in K); its mean within ``moisture_radius_km`` of the centre
-        is returned as ``moisture_mean`` (NaN when absent).
+        (over the points that have a value) is returned as ``moisture_mean`` (NaN when
+        absent).
 
     Returns
     -------
-    DataFrame with columns ``time, lat, lon, depth_gpm, radius_km, moisture_mean``,
-    one row per low, sorted by time then depth (deepest first).
+    DataFrame with columns ``time, lat, lon, depth_gpm, radius_km, moisture_mean,
+    closed``, one row per low, sorted by time then depth (deepest first); ``lon`` in
+    [-180, 180).
 
     Reference: closed-low detection by local extrema and ring-mean depth, as in
-    cut-off low and tropical-cyclone trackers (common practice, no source).
+    cut-off low and tropical-cyclone trackers (common practice, no source); the
+    closed-circulation test after the cut-off condition of Nieto et al. (2005, from
+    memory).
     """
     z500 = _check_height(z500, "find_closed_lows")
     if "time" not in z500.dims:
@@ -703,23 +982,57 @@ def find_closed_lows(z500: xr.DataArray, moisture: xr.DataArray | None = None, *
     z500 = z500.transpose("time", "lat", "lon")
     lat, lon = _grid(z500)
     times = z500["time"].values
+    params = _closed_low_params({
+        "max_lat": max_lat, "min_depth": min_depth, "max_radius_km": max_radius_km,
+        "ring_km": ring_km, "neighbourhood_km": neighbourhood_km,
+        "moisture_radius_km": moisture_radius_km, "poleward_rise_gpm": poleward_rise_gpm,
+        "min_ring_valid": min_ring_valid},
+        "find_closed_lows")
     frames = []
     for start in range(0, times.size, block_days):
         block = slice(start, start + block_days)
         z = np.asarray(z500.isel(time=block).values, dtype=float)
         m = None if moisture is None else np.asarray(
             moisture.transpose("time", "lat", "lon").isel(time=block).values, dtype=float)
-        lows = _closed_lows_np(z, lat, lon, moisture=m, max_lat=max_lat,
-                               min_depth=min_depth, max_radius_km=max_radius_km,
-                               ring_km=ring_km, neighbourhood_km=neighbourhood_km,
-                               moisture_radius_km=moisture_radius_km)
+        lows = _closed_lows_np(z, lat, lon, moisture=m, **params)
         frames.append(pd.DataFrame({
             "time": times[block][lows["t"]], "lat": lows["lat"], "lon": lows["lon"],
             "depth_gpm": lows["depth"], "radius_km": lows["radius"],
-            "moisture_mean": lows["moisture"]}))
+            "moisture_mean": lows["moisture"], "closed": lows["closed"]}))
     table = pd.concat(frames, ignore_index=True)
+    if closed_only:
+        table = table[table["closed"]]
     return table.sort_values(["time", "depth_gpm"], ascending=[True, False],
                              ignore_index=True)
+
+
+def _closed_low_params(values: Mapping, owner: str) -> dict:
+    """The closed-low parameters, checked: one message naming the bad one."""
+    params = dict(CLOSED_LOW_DEFAULTS)
+    unknown = set(values) - set(params)
+    if unknown:
+        raise AnalogsInputError(
+            f"The 'closed_lows' parameter of {owner} has unknown key(s) "
+            f"{sorted(unknown)}; expected some of {sorted(params)}.")
+    params.update(values)
+    ring = params["ring_km"]
+    if (not isinstance(ring, (tuple, list)) or len(ring) != 2
+            or not 0 <= float(ring[0]) < float(ring[1])):
+        raise AnalogsInputError(
+            f"The 'ring_km' closed-low parameter of {owner} must be (inner, outer) km "
+            f"with 0 <= inner < outer. Got {ring!r} instead.")
+    rise = params["poleward_rise_gpm"]
+    if rise is not None and (isinstance(rise, bool) or not isinstance(rise, numbers.Real)
+                             or not np.isfinite(rise)):
+        raise AnalogsInputError(
+            f"The 'poleward_rise_gpm' closed-low parameter of {owner} must be a finite "
+            f"number of gpm or None. Got {rise!r} instead.")
+    if not 0.0 < float(params["min_ring_valid"]) <= 1.0:
+        raise AnalogsInputError(
+            f"The 'min_ring_valid' closed-low parameter of {owner} must be in (0, 1]. "
+            f"Got {params['min_ring_valid']!r} instead.")
+    params["ring_km"] = (float(ring[0]), float(ring[1]))
+    return params
 
 
 def dewpoint_from_specific_humidity(q, pressure_hpa: float = 850.0):
@@ -743,6 +1056,13 @@ def dewpoint_from_specific_humidity(q, pressure_hpa: float = 850.0):
     return td
 
 
+def moisture_field(ds) -> str | None:
+    """The canonical moisture field of ``ds`` the diagnostics use: ``q850``, ``td2m``
+    or ``pwat`` (first present, in that order), or None. Its rich-moisture threshold
+    is ``RICH_MOISTURE[name]``."""
+    return next((name for name in ("q850", "td2m", "pwat") if name in ds), None)
+
+
 def moist_line_latitude(dewpoint: xr.DataArray, threshold_c: float = SEVERE_DEWPOINT_C,
                         lon_range: tuple[float, float] | None = None) -> xr.DataArray:
     r"""Poleward reach of moist air: mean over longitudes of the northernmost latitude
@@ -753,9 +1073,11 @@ def moist_line_latitude(dewpoint: xr.DataArray, threshold_c: float = SEVERE_DEWP
         \phi_{moist} = \frac{1}{N_\lambda}\sum_\lambda
         \max\{\phi : T_d(\phi, \lambda) \ge T_{thr}\}
 
-    over the longitudes of ``lon_range`` (west, east; default all) where any grid point
-    reaches the threshold; NaN when none does. Default threshold: the 60 deg F
-    (15.6 deg C) dewpoint line (common practice, no source).
+    over the longitudes of ``lon_range`` (west, east, on the circle: west > east
+    crosses the date line; default all) where any grid point reaches the threshold;
+    NaN when none does; missing values never count. Default threshold: the 60 deg F
+    (15.6 deg C) dewpoint line, a SURFACE (2 m) dewpoint measure (common practice, no
+    source); for an 850 hPa dewpoint give ``RICH_MOISTURE["q850"].threshold``.
 
     Parameters
     ----------
@@ -770,15 +1092,23 @@ def moist_line_latitude(dewpoint: xr.DataArray, threshold_c: float = SEVERE_DEWP
     if lon_range is None:
         lon_cols = np.ones(lon.size, dtype=bool)
     else:
-        lon_cols = (lon >= lon_range[0]) & (lon <= lon_range[1])
-        if not lon_cols.any():
+        lon_cols = None
+        if isinstance(lon_range, (tuple, list)) and len(lon_range) == 2 \
+                and all(isinstance(v, numbers.Real) for v in lon_range) \
+                and lon_range[0] != lon_range[1]:
+            west = float(lon_range[0])
+            east = west + (360.0 if lon_range[1] - west >= 360.0
+                           else (float(lon_range[1]) - west) % 360.0)
+            lon_cols = _lon_in_span(lon, west, east)
+        if lon_cols is None or not lon_cols.any():
             raise AnalogsInputError(
                 f"The 'lon_range' parameter of moist_line_latitude must overlap the grid "
                 f"longitudes {lon.min():g}..{lon.max():g}. Got {lon_range!r} instead.")
     line = xr.apply_ufunc(
         _moist_line_np, dewpoint, input_core_dims=[_GRID], output_core_dims=[[]],
         dask="parallelized", output_dtypes=[float],
-        kwargs={"lat": lat, "threshold_c": float(threshold_c), "lon_cols": lon_cols})
+        kwargs={"lat": lat, "threshold": float(threshold_c) + ZERO_CELSIUS_K,
+                "lon_cols": lon_cols})
     return _labelled(line, "degree_north",
                      f"mean northernmost latitude of the {threshold_c:.1f} C dewpoint")
 
@@ -790,14 +1120,17 @@ def moist_area_fraction(dewpoint: xr.DataArray, region,
 
     .. math:: F = \frac{\sum \cos\phi\,[T_d \ge T_{thr}]}{\sum \cos\phi}
 
-    Dimensionless in [0, 1]; ``dewpoint`` in K. Reference: the 60 deg F dewpoint as the
-    marker of severe-grade low-level moisture (common practice, no source).
+    Dimensionless in [0, 1] over the points that have a value; ``dewpoint`` in K. The
+    default threshold, the 60 deg F dewpoint, marks severe-grade moisture at the
+    SURFACE (common practice, no source); for an 850 hPa dewpoint give
+    ``RICH_MOISTURE["q850"].threshold``.
     """
     dewpoint = _check_field(dewpoint, "dewpoint", "moist_area_fraction")
     lat, lon = _grid(dewpoint)
     lat_in, lon_in = _check_region(region, lat, lon, "moist_area_fraction")
     weights = xr.DataArray(np.cos(np.radians(lat[lat_in])), dims="lat")
-    moist = (dewpoint >= threshold_c + ZERO_CELSIUS_K).astype(float)
+    moist = (dewpoint >= threshold_c + ZERO_CELSIUS_K).astype(float).where(
+        np.isfinite(dewpoint))
     fraction = moist.isel(lat=lat_in, lon=lon_in).weighted(weights).mean(_GRID)
     return _labelled(fraction, "1", "area fraction of the region with severe-grade dewpoint")
 
@@ -805,27 +1138,36 @@ def moist_area_fraction(dewpoint: xr.DataArray, region,
 # ------------------------------------------------------------------ archive table
 
 
-def _moisture_block(block: xr.Dataset):
-    """(dewpoint in K or None, precipitable water or None) of one block of days."""
-    if "q850" in block:
-        q = np.asarray(block["q850"].transpose("time", "lat", "lon").values, dtype=float)
-        return _dewpoint_np(q, 850.0), None
-    if "td2m" in block:
-        return np.asarray(block["td2m"].transpose("time", "lat", "lon").values, float), None
-    if "pwat" in block:
-        return None, np.asarray(block["pwat"].transpose("time", "lat", "lon").values, float)
-    return None, None
+def _moisture_block(block: xr.Dataset, kind: str | None):
+    """The moisture of one block of days at its own level: a dewpoint in K (from
+    ``q850`` at 850 hPa, or ``td2m``), or precipitable water in kg m-2; None without."""
+    if kind is None:
+        return None
+    values = np.asarray(block[kind].transpose("time", "lat", "lon").values, dtype=float)
+    return _dewpoint_np(values, 850.0) if kind == "q850" else values
+
+
+def _moisture_threshold(kind: str | None, override: float | None) -> float:
+    """Rich-moisture threshold of a field in the units of :func:`_moisture_block`."""
+    if kind is None:
+        return np.nan
+    value = RICH_MOISTURE[kind].threshold if override is None else float(override)
+    return value if kind == "pwat" else value + ZERO_CELSIUS_K
 
 
 def _distance_to_box_km(lat, lon, region):
+    """Great-circle distance (km) from points to the nearest point of a box, with
+    longitudes read on the circle."""
     south, north, west, east = region
-    return great_circle_km(lat, lon, np.clip(lat, south, north), np.clip(lon, west, east))
+    centre = 0.5 * (west + east)
+    lon = np.asarray(lon, dtype=float)
+    near = lon + 360.0 * np.round((centre - lon) / 360.0)
+    return great_circle_km(lat, near, np.clip(lat, south, north), np.clip(near, west, east))
 
 
-def _block_columns(z, dewpoint, pwat, *, lat, lon, lat_in, lon_in, weights, band_in,
-                   band_weights,
-                   region, ridge_cols, trough_cols, tc_near_km, moist_threshold_c,
-                   low_params) -> dict[str, np.ndarray]:
+def _block_columns(z, moisture, *, lat, lon, lat_in, lon_in, weights, band_in,
+                   band_weights, region, ridge_cols, trough_cols, tc_near_km,
+                   moisture_kind, moist_threshold, low_params) -> dict[str, np.ndarray]:
     """Every column of :func:`compute_diagnostics` for one block of days."""
     nt = z.shape[0]
     sub = (Ellipsis,) + np.ix_(lat_in, lon_in)
@@ -845,16 +1187,29 @@ def _block_columns(z, dewpoint, pwat, *, lat, lon, lat_in, lon_in, weights, band
     columns["vorticity_advection"] = _weighted_mean_np(vort_adv[sub], weights)
     columns["cyclonic_advection"] = _weighted_mean_np(np.maximum(vort_adv[sub], 0.0), weights)
 
-    wave = z - z.mean(axis=-1, keepdims=True)
-    profile = np.tensordot(wave[:, band_in, :], band_weights, axes=([1], [0])) \
-        / band_weights.sum()
-    for name, values in zip(("ridge_lon", "ridge_amplitude", "trough_lon", "trough_amplitude"),
-                            _ridge_trough_np(profile, lon, ridge_cols, trough_cols)):
-        columns[name] = values
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)   # an all-missing latitude row
+        wave = z - np.nanmean(z, axis=-1, keepdims=True)
+    band = np.where(np.isfinite(wave[:, band_in, :]), wave[:, band_in, :], np.nan)
+    band_w = np.where(np.isfinite(band), band_weights[None, :, None], 0.0)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        profile = np.nansum(band * band_w, axis=1) / band_w.sum(axis=1)
+    profile = np.where(np.isfinite(profile), profile, np.nan)
+    filled_max = np.where(np.isnan(profile), -np.inf, profile)
+    filled_min = np.where(np.isnan(profile), np.inf, profile)
+    wrapped = wrap_longitude(lon)
+    r_lon, r_amp, _, _ = _ridge_trough_np(filled_max, wrapped, ridge_cols, trough_cols)
+    _, _, t_lon, t_amp = _ridge_trough_np(filled_min, wrapped, ridge_cols, trough_cols)
+    for name, values in (("ridge_lon", r_lon), ("ridge_amplitude", r_amp),
+                         ("trough_lon", t_lon), ("trough_amplitude", t_amp)):
+        columns[name] = np.where(np.isfinite(values), values, np.nan)
+    for name, amp in (("ridge_lon", "ridge_amplitude"), ("trough_lon", "trough_amplitude")):
+        columns[name] = np.where(np.isfinite(columns[amp]), columns[name], np.nan)
 
-    lows = _closed_lows_np(z, lat, lon, moisture=dewpoint, **low_params)
+    lows = _closed_lows_np(z, lat, lon, moisture=moisture, **low_params)
     near = _distance_to_box_km(lows["lat"], lows["lon"], region) <= tc_near_km
-    order = np.lexsort((-lows["depth"][near], lows["t"][near]))
+    # The deepest closed low near the box, else the deepest low.
+    order = np.lexsort((-lows["depth"][near], ~lows["closed"][near], lows["t"][near]))
     t_near = lows["t"][near][order]
     first = np.unique(t_near, return_index=True)[1]
     days = t_near[first]
@@ -862,19 +1217,34 @@ def _block_columns(z, dewpoint, pwat, *, lat, lon, lat_in, lon_in, weights, band
                       ("tc_radius_km", "radius"), ("tc_dewpoint_c", "moisture")):
         values = np.full(nt, np.nan)
         values[days] = lows[key][near][order][first]
-        columns[name] = values - ZERO_CELSIUS_K if key == "moisture" else values
+        columns[name] = values
+    if moisture_kind in ("q850", "td2m"):
+        columns["tc_dewpoint_c"] = columns["tc_dewpoint_c"] - ZERO_CELSIUS_K
+    else:
+        columns["tc_dewpoint_c"] = np.full(nt, np.nan)
     columns["tc_present"] = np.isin(np.arange(nt), days)
+    closed = np.zeros(nt, dtype=bool)
+    closed[days] = lows["closed"][near][order][first]
+    columns["tc_closed"] = closed
 
     nan = np.full(nt, np.nan)
-    if dewpoint is not None:
-        columns["dewpoint_region_c"] = _weighted_mean_np(dewpoint[sub], weights) - ZERO_CELSIUS_K
-        columns["moist_line_lat"] = _moist_line_np(dewpoint, lat, moist_threshold_c, lon_in)
-        moist = (dewpoint[sub] >= moist_threshold_c + ZERO_CELSIUS_K).astype(float)
+    for name in ("dewpoint_region_c", "moist_line_lat", "moist_area_fraction", "pwat_region"):
+        columns[name] = nan
+    columns["moisture_available"] = np.zeros(nt, dtype=bool)
+    if moisture is not None:
+        region_mean = _weighted_mean_np(moisture[sub], weights)
+        columns["moisture_available"] = np.isfinite(region_mean)
+        if moisture_kind == "pwat":
+            columns["pwat_region"] = region_mean
+        else:
+            columns["dewpoint_region_c"] = region_mean - ZERO_CELSIUS_K
+        columns["moist_line_lat"] = _moist_line_np(moisture, lat, moist_threshold, lon_in)
+        part = moisture[sub]
+        with np.errstate(invalid="ignore"):
+            moist = np.where(np.isfinite(part), (part >= moist_threshold).astype(float),
+                             np.nan)
         columns["moist_area_fraction"] = _weighted_mean_np(moist, weights)
-    else:
-        for name in ("dewpoint_region_c", "moist_line_lat", "moist_area_fraction"):
-            columns[name] = nan
-    columns["pwat_region"] = nan if pwat is None else _weighted_mean_np(pwat[sub], weights)
+    columns["_missing_height_day"] = ~np.isfinite(z).all(axis=(1, 2))
     return columns
 
 
@@ -890,10 +1260,16 @@ def compute_diagnostics(ds: xr.Dataset, region, *, upstream_deg: float = 25.0,
                         poleward_deg: float = 0.0,
                         tc_near_km: float = 600.0,
                         closed_lows: Mapping | None = None,
-                        moist_threshold_c: float = SEVERE_DEWPOINT_C,
+                        moist_threshold: float | None = None,
                         block_days: int | None = None, n_threads: int | None = None,
                         progress: bool = False) -> pd.DataFrame:
     r"""All regime diagnostics of an archive over a region, one row a day.
+
+    ``region`` is (south, north, west, east) in degrees; west > east (or east past
+    180) is a box across the date line. Longitudes are read on the circle throughout
+    (:mod:`analogs.geo`), so the answer does not depend on where the grid's longitude
+    seam falls, and pole rows never reach an area mean as a singular value (see
+    :func:`geostrophic_wind`, :func:`relative_vorticity`).
 
     Columns (units in :data:`DIAGNOSTIC_UNITS`):
 
@@ -910,19 +1286,30 @@ def compute_diagnostics(ds: xr.Dataset, region, *, upstream_deg: float = 25.0,
       axis and cyclonic advection ahead of it; this keeps the forcing ahead of it.
     - ``ridge_lon``, ``ridge_amplitude``, ``trough_lon``, ``trough_amplitude``
       (:func:`ridge_trough`).
-    - ``tc_present``, ``tc_lat``, ``tc_lon``, ``tc_depth``, ``tc_radius_km``,
-      ``tc_dewpoint_c``: the deepest compact closed low (:func:`find_closed_lows`)
-      whose centre lies within ``tc_near_km`` of the region box, and the mean 850 hPa
-      dewpoint within 500 km of it. ``tc_present`` says only that such a low exists;
-      whether it is wrapped in tropical moisture is for the regime rules.
-    - ``dewpoint_region_c`` (region-mean dewpoint, deg C), ``moist_line_lat``
-      (:func:`moist_line_latitude` over the region's longitudes) and
-      ``moist_area_fraction`` (:func:`moist_area_fraction`): low-level moisture and its
-      return beneath the flow. With ``pwat`` only, ``pwat_region`` replaces them.
+    - ``tc_present``, ``tc_closed``, ``tc_lat``, ``tc_lon``, ``tc_depth``,
+      ``tc_radius_km``, ``tc_dewpoint_c``: the compact low (:func:`find_closed_lows`,
+      settings ``closed_lows`` over :data:`CLOSED_LOW_DEFAULTS`) whose centre lies
+      within ``tc_near_km`` of the region box (the deepest with a closed circulation,
+      else the deepest; ``tc_closed`` says which), and the mean dewpoint (850 hPa from
+      ``q850``, or 2 m from ``td2m``; NaN with ``pwat``) within 500 km of it.
+      ``tc_present`` says only that such a low exists; whether it is tropical is for
+      the regime rules.
+    - ``moisture_available`` (bool): the region has moisture values that day (any of
+      ``q850``, ``td2m``, ``pwat``: precipitable water counts as moisture).
+    - ``dewpoint_region_c``: region-mean dewpoint at the field's level (deg C; NaN
+      with ``pwat``), or ``pwat_region`` (kg m-2) with ``pwat`` only.
+    - ``moist_line_lat`` (:func:`moist_line_latitude` over the region's longitudes)
+      and ``moist_area_fraction`` (:func:`moist_area_fraction`): the reach and
+      coverage of rich low-level moisture, each against the threshold of the
+      field's OWN level (:data:`RICH_MOISTURE`: the 60 F line only for a 2 m
+      dewpoint; 12 C for an 850 hPa dewpoint; 30 kg m-2 for precipitable water), or
+      ``moist_threshold`` in the field's units (deg C, or kg m-2).
 
-    Dewpoint comes from ``q850`` (:func:`dewpoint_from_specific_humidity` at 850 hPa)
-    or ``td2m``. Without a moisture field the moisture columns are NaN and
-    ``frame.attrs["missing"] == ["moisture"]`` (``["dewpoint"]`` with ``pwat`` only).
+    ``frame.attrs``: ``region``; ``units``; ``missing`` (``["moisture"]`` without a
+    moisture field, else empty); ``moisture`` (:meth:`RichMoisture.to_dict` of the
+    field used, with the threshold applied, or None); ``missing_height_days`` (days
+    with at least one missing 500 hPa height: their diagnostics skip the missing
+    points).
 
     The archive is walked in blocks of ``block_days`` (dask-backed inputs compute one
     block at a time), ``n_threads`` blocks at once (default: the CPU count, at most
@@ -940,33 +1327,32 @@ def compute_diagnostics(ds: xr.Dataset, region, *, upstream_deg: float = 25.0,
         z500 = ds["z500"]
     lat, lon = _grid(z500)
     lat_in, lon_in = _check_region(region, lat, lon, "compute_diagnostics")
-    region = tuple(float(v) for v in region)
+    bounds = _region_bounds(region, "compute_diagnostics")
     weights = _region_weights(lat, lat_in, lon_in)
-    band_in = _wave_band(lat, region, poleward_deg)
-    ridge_cols, trough_cols = _wave_windows(lon, region, upstream_deg, downstream_deg,
+    band_in = _wave_band(lat, bounds, poleward_deg)
+    ridge_cols, trough_cols = _wave_windows(lon, bounds, upstream_deg, downstream_deg,
                                             trough_west_deg)
-    low_params = {"max_lat": 35.0, "min_depth": 15.0, "max_radius_km": 600.0,
-                  "ring_km": (500.0, 800.0), "neighbourhood_km": 400.0,
-                  "moisture_radius_km": 500.0}
-    unknown = set(closed_lows or {}) - set(low_params)
-    if unknown:
+    low_params = _closed_low_params(dict(closed_lows or {}), "compute_diagnostics")
+    kind = moisture_field(ds)
+    if moist_threshold is not None and (isinstance(moist_threshold, bool) or not (
+            isinstance(moist_threshold, numbers.Real) and np.isfinite(moist_threshold))):
         raise AnalogsInputError(
-            f"The 'closed_lows' parameter of compute_diagnostics has unknown key(s) "
-            f"{sorted(unknown)}; expected some of {sorted(low_params)}.")
-    low_params.update(closed_lows or {})
+            "The 'moist_threshold' parameter of compute_diagnostics must be a finite "
+            f"number in the moisture field's units. Got {moist_threshold!r} instead.")
+    threshold = _moisture_threshold(kind, moist_threshold)
 
     times = z500["time"].values
     setup = {"lat": lat, "lon": lon, "lat_in": lat_in, "lon_in": lon_in,
              "weights": weights, "band_in": band_in,
-             "band_weights": np.cos(np.radians(lat[band_in])), "region": region,
+             "band_weights": np.cos(np.radians(lat[band_in])), "region": bounds,
              "ridge_cols": ridge_cols, "trough_cols": trough_cols,
-             "tc_near_km": tc_near_km, "moist_threshold_c": moist_threshold_c,
-             "low_params": low_params}
+             "tc_near_km": tc_near_km, "moisture_kind": kind,
+             "moist_threshold": threshold, "low_params": low_params}
 
     def one_block(start):
         block = ds.isel(time=slice(start, start + block_days))
         z = np.asarray(block["z500"].transpose("time", "lat", "lon").values, dtype=float)
-        return _block_columns(z, *_moisture_block(block), **setup)
+        return _block_columns(z, _moisture_block(block, kind), **setup)
 
     threads = n_threads or min(os.cpu_count() or 1, 4)
     if block_days is None:
@@ -981,15 +1367,20 @@ def compute_diagnostics(ds: xr.Dataset, region, *, upstream_deg: float = 25.0,
             from tqdm.auto import tqdm
             results = tqdm(results, total=len(starts), desc="diagnostics", unit="block")
         blocks = list(results)
-    if any(name in ds for name in ("q850", "td2m")):
-        missing = []
-    else:
-        missing = ["dewpoint"] if "pwat" in ds else ["moisture"]
     columns = {name: np.concatenate([b[name] for b in blocks]) for name in DIAGNOSTIC_UNITS}
     frame = pd.DataFrame(columns, index=pd.DatetimeIndex(times, name="time"))
-    if frame["pwat_region"].isna().all():
+    if kind != "pwat":
         frame = frame.drop(columns="pwat_region")
-    frame.attrs["missing"] = missing
-    frame.attrs["region"] = region
+    frame.attrs["missing"] = [] if kind is not None else ["moisture"]
+    frame.attrs["region"] = tuple(float(v) for v in region)
     frame.attrs["units"] = {k: v for k, v in DIAGNOSTIC_UNITS.items() if k in frame}
+    if kind is None:
+        frame.attrs["moisture"] = None
+    else:
+        used = RICH_MOISTURE[kind].to_dict()
+        if moist_threshold is not None:
+            used.update(threshold=float(moist_threshold), source="given by the caller")
+        frame.attrs["moisture"] = used
+    frame.attrs["missing_height_days"] = int(
+        np.concatenate([b["_missing_height_day"] for b in blocks]).sum())
     return frame

@@ -69,6 +69,12 @@ AUTO_EXACT_MAX_DIM = 500
 #: Modes kept when neither n_modes nor variance is given (capped by the rank).
 DEFAULT_N_MODES = P.n_modes.default
 
+#: Smallest singular value of the kept EOFs restricted to a gappy row's available
+#: points (1 with no gap, since the EOFs are orthonormal) below which
+#: :meth:`MultivariateEOF.project_gappy` refuses the row: its PCs would be determined
+#: mostly by noise amplified 1 / sigma times.
+GAPPY_MIN_SINGULAR = 0.1
+
 _OWNER = "MultivariateEOF"
 _PARAMS = ("n_modes", "variance", "solver", "field_weights", "random_state",
            "n_oversamples", "n_power_iter")
@@ -490,17 +496,72 @@ class MultivariateEOF:
                     "the field must cover the whole domain of the store."
                 )
 
-    def transform(self, anomalies: xr.Dataset) -> xr.DataArray:
+    def transform(self, anomalies: xr.Dataset, *, gappy: bool = False) -> xr.DataArray:
         """Project anomalies on the EOFs: PCs ``(time, mode)`` (``(mode,)`` for one time).
 
         The fields must be on the fitted grid (regrid first). Dask inputs give a
-        lazy result.
+        lazy result. With ``gappy=True`` a time may miss (NaN) some of the grid points
+        the EOFs use: its PCs are then the least-squares fit of the kept EOFs to the
+        points it has (:meth:`project_gappy`); complete times give the same PCs as the
+        plain projection.
         """
         anomalies, squeeze = self._checked(anomalies, "transform")
         matrix = self._matrix(anomalies)
-        self._check_coverage(matrix)
-        pcs = self._pcs_array(matrix @ self._components.T, anomalies["time"].values)
+        if gappy:
+            values = self.project_gappy(_computed(matrix))
+        else:
+            self._check_coverage(matrix)
+            values = matrix @ self._components.T
+        pcs = self._pcs_array(values, anomalies["time"].values)
         return pcs.isel(time=0, drop=True) if squeeze else pcs
+
+    def project_gappy(self, matrix: np.ndarray) -> np.ndarray:
+        """PCs ``(time, mode)`` of rows of the weighted, scaled matrix ``M`` (the columns
+        the EOFs use, NaN where a row misses a point), by least squares over each row's
+        available points (Everson & Sirovich 1995, J. Opt. Soc. Am. A 12, 1657-1664).
+
+        For a row ``m`` with available points ``A`` the PCs ``c`` minimise
+
+        .. math:: \\sum_{j \\in A} \\left(m_j - \\sum_k c_k v_{kj}\\right)^2,
+
+        i.e. ``c = argmin ||V_A^T c - m_A||`` with ``V`` the kept EOFs (rows of ``V^T``):
+        the area-weighted least-squares fit of the patterns to the covered points. With
+        every point available ``V_A V_A^T = I`` and ``c = V m``, the plain projection.
+        Rows sharing one pattern of gaps are solved together. A row with fewer available
+        points than kept modes, or whose available points leave the modes nearly
+        degenerate (smallest singular value of ``V_A`` below ``GAPPY_MIN_SINGULAR``),
+        is refused: the fit would not determine its PCs.
+        """
+        self._check_fitted()
+        matrix = np.atleast_2d(np.asarray(matrix, dtype=float))
+        components = self._components
+        if matrix.shape[1] != components.shape[1]:
+            raise AnalogsInputError(
+                f"MultivariateEOF.project_gappy expects rows of {components.shape[1]} values "
+                f"(the points the EOFs use). Got {matrix.shape[1]} instead.")
+        missing = np.isnan(matrix)
+        out = np.empty((matrix.shape[0], components.shape[0]))
+        patterns, inverse = np.unique(missing, axis=0, return_inverse=True)
+        for number, pattern in enumerate(patterns):
+            rows = np.flatnonzero(np.ravel(inverse) == number)
+            kept = ~pattern
+            if kept.all():
+                out[rows] = matrix[rows] @ components.T
+                continue
+            basis = components[:, kept].T  # (available points, modes)
+            if basis.shape[0] < basis.shape[1]:
+                raise AnalogsInputError(
+                    f"MultivariateEOF.project_gappy: only {basis.shape[0]} of "
+                    f"{kept.size} points available, fewer than the {basis.shape[1]} modes.")
+            smallest = np.linalg.svd(basis, compute_uv=False)[-1]
+            if smallest < GAPPY_MIN_SINGULAR:
+                raise AnalogsInputError(
+                    f"MultivariateEOF.project_gappy: the {int(kept.sum())} available of "
+                    f"{kept.size} points do not determine the {basis.shape[1]} modes "
+                    f"(smallest singular value {smallest:.2g}); the gaps are too large.")
+            coefficients, *_ = np.linalg.lstsq(basis, matrix[rows][:, kept].T, rcond=None)
+            out[rows] = coefficients.T
+        return out
 
     def fit_transform(self, anomalies: xr.Dataset) -> xr.DataArray:
         """``fit(anomalies)`` and the training PCs ``pcs_``."""

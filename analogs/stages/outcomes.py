@@ -61,6 +61,16 @@ from analogs.results import OutcomeSummary, WeightedOutcomes
 
 #: Columns every events table must have.
 REQUIRED_EVENT_COLUMNS = ("time", "lat", "lon", "kind")
+#: Columns of a cleaned events table (:func:`read_events`), as a store keeps it.
+EVENT_COLUMNS = ("time", "lat", "lon", "kind", "magnitude", "day")
+#: How an events time that is a date without a time of day is read: refused
+#: (``"time-required"``), or taken as the convective day itself (``"convective-day"``).
+EVENT_DATE_CONVENTIONS = P.event_dates.choices
+#: A date without a time of day (ISO 8601 extended or basic form).
+_DATE_ONLY = r"^\d{4}-?\d{2}-?\d{2}$"
+#: Characters refused in a kind: "$" starts matplotlib's math text in figure labels,
+#: "," separates the kinds of --kind, control characters break tables and lines.
+_KIND_FORBIDDEN = r"[$,\x00-\x1f\x7f]"
 #: How many offending rows an error message lists.
 _ROWS_SHOWN = 5
 #: Kilometres per degree of latitude on the sphere of EARTH_RADIUS.
@@ -114,13 +124,23 @@ def _bad_rows_error(source, column, what, bad_mask, row_offset):
     )
 
 
-def clean_events(frame: pd.DataFrame, *, source: str = "'<table>'", row_offset: int = 1):
+def clean_events(frame: pd.DataFrame, *, source: str = "'<table>'", row_offset: int = 1,
+                 dates: str = P.event_dates.default):
     """Validate and normalise an events table (see :func:`read_events`).
 
     ``source`` names the table in error messages; ``row_offset`` is the
-    number of the first data row (2 for a CSV file whose header is row 1).
+    number of the first data row (2 for a CSV file whose header is row 1);
+    ``dates`` how a date without a time of day is read (:data:`EVENT_DATE_CONVENTIONS`).
     """
-    frame = frame.rename(columns=lambda c: str(c).strip().lower())
+    dates = P.event_dates.check(dates, "read_events")
+    names = [str(c).strip().lower() for c in frame.columns]
+    for name in dict.fromkeys(names):
+        given = [str(c) for c, lower in zip(frame.columns, names) if lower == name]
+        if len(given) > 1:
+            raise AnalogsInputError(
+                f"events file {source}: columns {' and '.join(repr(g) for g in given)} both "
+                f"name {name!r} (column names are read without regard to case); keep one")
+    frame = frame.set_axis(names, axis=1)
     missing = [c for c in REQUIRED_EVENT_COLUMNS if c not in frame.columns]
     if missing:
         raise AnalogsInputError(
@@ -128,17 +148,7 @@ def clean_events(frame: pd.DataFrame, *, source: str = "'<table>'", row_offset: 
             f"expected a header time,lat,lon,kind[,magnitude]"
         )
 
-    raw_time = frame["time"]
-    if pd.api.types.is_datetime64_any_dtype(raw_time):
-        parsed = pd.to_datetime(raw_time, utc=True)
-    else:
-        text = raw_time.astype("string").str.strip()
-        parsed = pd.to_datetime(text, utc=True, errors="coerce", format="ISO8601")
-    bad = parsed.isna().to_numpy()
-    if bad.any():
-        raise _bad_rows_error(source, "time", "has missing or non-ISO 8601 times",
-                              bad, row_offset)
-    time = parsed.dt.tz_convert(None).astype("datetime64[ns]")
+    time = _event_times(frame["time"], source, row_offset, dates)
 
     lat = pd.to_numeric(frame["lat"], errors="coerce").astype(float)
     bad = ~lat.between(-90.0, 90.0).to_numpy()
@@ -155,6 +165,13 @@ def clean_events(frame: pd.DataFrame, *, source: str = "'<table>'", row_offset: 
     bad = (kind.isna() | (kind == "")).to_numpy()
     if bad.any():
         raise _bad_rows_error(source, "kind", "is empty", bad, row_offset)
+    bad = kind.str.contains(_KIND_FORBIDDEN, regex=True).fillna(False).to_numpy(dtype=bool)
+    if bad.any():
+        error = _bad_rows_error(source, "kind", "holds '$', ',' or a control character",
+                                bad, row_offset)
+        raise AnalogsInputError(
+            f"{error}: a kind is a name such as tornado or hail ('$' would start math text "
+            "in figures, ',' separates the kinds of --kind)")
 
     if "magnitude" in frame.columns:
         raw_mag = frame["magnitude"]
@@ -177,13 +194,47 @@ def clean_events(frame: pd.DataFrame, *, source: str = "'<table>'", row_offset: 
     return out
 
 
-def read_events(path) -> pd.DataFrame:
+def _event_times(raw_time, source, row_offset, dates):
+    """The events' times as naive UTC datetime64[ns] (see :func:`read_events`)."""
+    date_only = np.zeros(len(raw_time), dtype=bool)
+    if pd.api.types.is_datetime64_any_dtype(raw_time):
+        parsed = pd.to_datetime(raw_time, utc=True)
+    else:
+        text = raw_time.astype("string").str.strip()
+        date_only = text.str.fullmatch(_DATE_ONLY).fillna(False).to_numpy(dtype=bool)
+        parsed = pd.to_datetime(text, utc=True, errors="coerce", format="ISO8601")
+    bad = parsed.isna().to_numpy()
+    if bad.any():
+        raise _bad_rows_error(source, "time", "has missing or non-ISO 8601 times",
+                              bad, row_offset)
+    if date_only.any() and dates != "convective-day":
+        error = _bad_rows_error(source, "time", "has a date without a time of day",
+                                date_only, row_offset)
+        raise AnalogsInputError(
+            f"{error}: an event's convective day (12 UTC to 12 UTC) depends on its hour; "
+            "give ISO 8601 times with the hour in UTC, e.g. 2002-06-14T21:30Z, or, if each "
+            "date is the convective day itself, pass --event-dates convective-day "
+            "(event_dates='convective-day')")
+    time = parsed.dt.tz_convert(None).astype("datetime64[ns]")
+    if date_only.any():
+        # The date is the convective day: its start, 12 UTC, is that day's time.
+        start = pd.Timedelta(hours=CONVECTIVE_DAY_START_HOUR)
+        time = time.where(~date_only, time.dt.normalize() + start)
+    return time
+
+
+def read_events(path, *, dates=P.event_dates.default) -> pd.DataFrame:
     """Read an events (severe-report) table from CSV or Parquet.
 
     The header is ``time,lat,lon,kind[,magnitude]`` (names are case-insensitive;
-    extra columns are ignored). ``time`` is ISO 8601; naive times are UTC and
-    other offsets are converted to UTC. A file with a header and no rows is a
-    valid, empty events table.
+    two columns whose names differ only by case are refused; extra columns are
+    ignored). ``time`` is ISO 8601 with the time of day; naive times are UTC and
+    other offsets are converted to UTC. A date without a time of day
+    (``2002-06-14``) is refused, since the convective day (12 UTC to 12 UTC)
+    depends on the hour, unless ``dates="convective-day"``: the date is then the
+    convective day itself (its time is set to 12 UTC on that date). A kind may not
+    hold ``$``, ``,`` or control characters. A file with a header and no rows is
+    a valid, empty events table.
 
     Returns
     -------
@@ -221,7 +272,94 @@ def read_events(path) -> pd.DataFrame:
         raise AnalogsInputError(
             f"events file {source} could not be read as {kind} ({first_line})"
         ) from None
-    return clean_events(frame, source=source, row_offset=1 if is_parquet else 2)
+    return clean_events(frame, source=source, row_offset=1 if is_parquet else 2, dates=dates)
+
+
+# --------------------------------------------------------------------------
+# Report coverage: which convective days the events table speaks for
+# --------------------------------------------------------------------------
+#
+# An events table says what happened on the days it covers: a covered day without a
+# report had none; a day outside it is not known yet ("no reports yet"), e.g. a day
+# appended to a store before its reports are in. Coverage is kept as periods of
+# convective days, [first, last] inclusive, as ISO dates.
+
+def event_period(events: pd.DataFrame):
+    """(first, last) convective day of the events (midnight Timestamps), or None for an
+    empty table."""
+    if len(events) == 0:
+        return None
+    days = _event_days(events)
+    return pd.Timestamp(days.min()), pd.Timestamp(days.max())
+
+
+def parse_period(text, name="events_period", owner=None):
+    """``"FIRST,LAST"`` (YYYY-MM-DD, inclusive) or a pair, as (first, last) midnight
+    Timestamps; refused in the one message shape naming ``name`` and ``owner``."""
+    from analogs._validation import fail
+    expected = "two dates FIRST,LAST (YYYY-MM-DD, FIRST <= LAST)"
+    parts = str(text).split(",") if isinstance(text, str) else list(text)
+    try:
+        first, last = (pd.Timestamp(str(part).strip()) for part in parts)
+    except (ValueError, TypeError):
+        fail(name, owner, expected, text)
+    first, last = (t.tz_convert(None) if t.tz is not None else t for t in (first, last))
+    if pd.isna(first) or pd.isna(last) or first.normalize() > last.normalize():
+        fail(name, owner, expected, text)
+    return first.normalize(), last.normalize()
+
+
+def merged_periods(periods) -> list[list[str]]:
+    """Periods ``[(first, last), ...]`` sorted, with overlapping or touching ones joined;
+    as ``[["YYYY-MM-DD", "YYYY-MM-DD"], ...]`` (the manifest's form)."""
+    spans = sorted((pd.Timestamp(a).normalize(), pd.Timestamp(b).normalize())
+                   for a, b in periods)
+    joined: list[list] = []
+    for first, last in spans:
+        if joined and first <= joined[-1][1] + pd.Timedelta(days=1):
+            joined[-1][1] = max(joined[-1][1], last)
+        else:
+            joined.append([first, last])
+    return [[str(a.date()), str(b.date())] for a, b in joined]
+
+
+def covered_days(days, periods) -> np.ndarray:
+    """Whether each of ``days`` (any time of day: its calendar day) lies in one of the
+    ``periods`` (inclusive): bool array."""
+    index = _as_days(days)
+    covered = np.zeros(len(index), dtype=bool)
+    for first, last in periods:
+        covered |= np.asarray((index >= pd.Timestamp(first)) & (index <= pd.Timestamp(last)))
+    return covered
+
+
+def merge_events(held: pd.DataFrame | None, new: pd.DataFrame, first, last) -> pd.DataFrame:
+    """The events of ``held`` outside the convective days ``first`` to ``last``
+    (inclusive), with every event of ``new`` (which reports for those days): a merge by
+    date. Sorted by time (stable); columns of :data:`EVENT_COLUMNS`."""
+    first, last = pd.Timestamp(first).normalize(), pd.Timestamp(last).normalize()
+    parts = []
+    if held is not None and len(held):
+        days = _event_days(held)
+        parts.append(held.loc[~((days >= first) & (days <= last)).to_numpy(), list(EVENT_COLUMNS)])
+    parts.append(new[list(EVENT_COLUMNS)])
+    merged = pd.concat(parts, ignore_index=True) if len(parts) > 1 else parts[0].copy()
+    return merged.sort_values("time", kind="stable", ignore_index=True)
+
+
+def outside_grid(events: pd.DataFrame, lat, lon) -> np.ndarray:
+    """Which events lie outside the grid of latitudes ``lat`` and longitudes ``lon``
+    (degrees, ascending) by more than half a grid spacing: bool array. Such reports
+    are never near a grid point of the archive (:func:`grid_event_counts` drops them
+    too)."""
+    lat, lon = np.asarray(lat, dtype=float), np.asarray(lon, dtype=float)
+    half_lat = float(np.mean(np.diff(lat))) / 2 if lat.size > 1 else 0.0
+    half_lon = float(np.mean(np.diff(lon))) / 2 if lon.size > 1 else 0.0
+    ev_lat = events["lat"].to_numpy(dtype=float)
+    ev_lon = _normalise_lon(events["lon"].to_numpy(dtype=float))
+    inside = ((ev_lat >= lat.min() - half_lat) & (ev_lat <= lat.max() + half_lat)
+              & (ev_lon >= lon.min() - half_lon) & (ev_lon <= lon.max() + half_lon))
+    return ~inside
 
 
 # --------------------------------------------------------------------------
@@ -584,7 +722,8 @@ def _ratio(p, reference) -> float:
 
 def summarize_outcomes(analog_counts: pd.DataFrame, climatology_counts: pd.DataFrame, *,
                        weights=None, min_events=(1, 3, 10), confidence=0.9,
-                       percentiles=(10, 50, 90), method="clopper-pearson") -> OutcomeSummary:
+                       percentiles=(10, 50, 90), method="clopper-pearson",
+                       n_without_reports=0) -> OutcomeSummary:
     """Outcome statistics of the analog days beside the climatology.
 
     Parameters
@@ -598,6 +737,9 @@ def summarize_outcomes(analog_counts: pd.DataFrame, climatology_counts: pd.DataF
     confidence : level of the binomial intervals (two-sided).
     percentiles : count percentiles to report (0-100).
     method : interval method of :func:`binomial_interval`.
+    n_without_reports : analog days left out of ``analog_counts`` because the events
+        table does not cover them yet (no reports yet); recorded in the summary. With
+        none covered (``analog_counts`` empty) the analogs' statistics are NaN.
 
     Returns
     -------
@@ -615,7 +757,7 @@ def summarize_outcomes(analog_counts: pd.DataFrame, climatology_counts: pd.DataF
     _check_counts(analog_counts, "analog_counts")
     _check_counts(climatology_counts, "climatology_counts")
     n = len(analog_counts)
-    if n == 0:
+    if n == 0 and not n_without_reports:
         raise AnalogsInputError(
             f"The 'analog_counts' parameter of {owner} must hold at least one analog day. "
             f"Got 0 rows instead.")
@@ -635,7 +777,10 @@ def summarize_outcomes(analog_counts: pd.DataFrame, climatology_counts: pd.DataF
     n_clim = len(climatology_counts)
 
     def interval(k):
-        return binomial_interval(k, n, confidence, method)
+        return binomial_interval(k, n, confidence, method) if n else (math.nan, math.nan)
+
+    def share(mask):
+        return float(np.mean(mask)) if n else math.nan
 
     def clim_share(values):
         return float(np.mean(values)) if n_clim else math.nan
@@ -644,9 +789,9 @@ def summarize_outcomes(analog_counts: pd.DataFrame, climatology_counts: pd.DataF
         return frame[kind].to_numpy(float) if kind in frame else np.zeros(size)
 
     hits = int(np.sum(total >= 1))
-    p_any = hits / n
+    p_any = hits / n if n else math.nan
     clim_p_any = clim_share(clim_total >= 1)
-    threshold_rows = [(float(np.mean(total >= m)), *interval(int(np.sum(total >= m))),
+    threshold_rows = [(share(total >= m), *interval(int(np.sum(total >= m))),
                        clim_share(clim_total >= m)) for m in thresholds]
     threshold_table = pd.DataFrame(
         threshold_rows, columns=["p_at_least", "p_at_least_low", "p_at_least_high",
@@ -655,14 +800,15 @@ def summarize_outcomes(analog_counts: pd.DataFrame, climatology_counts: pd.DataF
     kind_rows = []
     for kind in kinds:
         values = kind_values(analog_counts, kind, n)
-        kind_rows.append((float(np.mean(values >= 1)), float(values.mean()),
+        kind_rows.append((share(values >= 1), share(values),
                           *interval(int(np.sum(values >= 1))),
                           clim_share(kind_values(climatology_counts, kind, n_clim) >= 1)))
     by_kind = pd.DataFrame(kind_rows, columns=["p_any", "mean", "p_any_low", "p_any_high",
                                                "climatology_p_any"],
                            index=pd.Index(kinds, name="kind", dtype=object), dtype=float)
     levels = list(_percentile_keys(percentiles).values())
-    count_percentiles = pd.Series([float(np.percentile(total, p)) for p in levels],
+    count_percentiles = pd.Series([float(np.percentile(total, p)) if n else math.nan
+                                   for p in levels],
                                   index=pd.Index(levels, name="percentile"), name="events",
                                   dtype=float)
 
@@ -700,7 +846,7 @@ def summarize_outcomes(analog_counts: pd.DataFrame, climatology_counts: pd.DataF
         climatology_p_any_event=clim_p_any,
         n_climatology_days=n_clim,
         ratio_to_climatology=_ratio(p_any, clim_p_any),
-        mean_events=float(total.mean()),
+        mean_events=share(total),
         climatology_mean_events=clim_share(clim_total),
         count_percentiles=count_percentiles,
         thresholds=threshold_table,
@@ -708,6 +854,7 @@ def summarize_outcomes(analog_counts: pd.DataFrame, climatology_counts: pd.DataF
         confidence=float(confidence),
         interval_method=method,
         weighted=weighted,
+        n_analogs_without_reports=int(n_without_reports),
     )
 
 

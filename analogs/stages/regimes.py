@@ -10,18 +10,28 @@ r"""Weather regimes of archive days: explainable rules, plus learned complements
   filter) and :class:`SupervisedRegimes` (logistic regression on the PCs trained
   from a table of labelled days) learn with scikit-learn, and save and predict from
   plain arrays (``to_dataset`` / ``from_dataset``), never from pickles.
-- :func:`tag_days` tags every day of an archive: the table ``analogs tag`` writes.
+- :func:`tag_days` tags every day of an archive: the table ``analogs tag`` writes;
+  :func:`cyclone_structure` adds the shape, moisture and warm-core measures of the
+  closed low the tropical rule needs; :func:`tag_metadata` is what a tag file says of
+  itself (units, diagnostic region).
+- :func:`default_diagnostic_box`: with no region given, regimes are diagnosed over a
+  synoptic-scale box at the centre of the domain (ridge upstream, trough downstream of
+  it); :func:`domain_extent` reads a domain's longitudes across the date line.
 
-Physical basis of the rules (common practice, no source): north-west flow has a
-ridge upstream over the western high terrain and flow aloft from about 280-350 deg
-over the region, with low-level moisture returning beneath it; a tropical regime has
-a compact closed 500 hPa low at low latitude wrapped in very moist air; a strong
-trough is an amplified trough with a strong height gradient and cyclonic vorticity
-advection over the region.
+Physical basis of the rules: north-west flow has a ridge upstream over the western high
+terrain and flow aloft from the west-north-west to north-west over the region, with
+low-level moisture returning beneath it (Johns 1982, Mon. Wea. Rev., from memory); a
+tropical regime has a compact, deep, nearly round closed 500 hPa low at low latitude in
+the warm season, wrapped in very moist air, warm-core-like (Hart 2003, Mon. Wea. Rev.,
+from memory, for the warm core; cold-core cut-off lows of the subtropical cold season,
+Nieto et al. 2005, J. Climate, from memory, must not pass); a strong trough is an
+amplified trough with a strong height gradient and cyclonic vorticity advection over
+the region (common practice, no source).
 """
 
 from __future__ import annotations
 
+import calendar
 import dataclasses
 import numbers
 import tomllib
@@ -37,7 +47,9 @@ from analogs import __version__
 from analogs._validation import check_int
 # Machine labels of the regimes (DESIGN.md), in order of precedence: the --regime table entry.
 from analogs.parameters import REGIME_LABELS
-from analogs.stages.diagnostics import compute_diagnostics
+from analogs.constants import ZERO_CELSIUS_K
+from analogs.geo import great_circle_km, initial_bearing_deg
+from analogs.stages.diagnostics import compute_diagnostics, dewpoint_from_specific_humidity
 from analogs.errors import AnalogsInputError, NotFittedError
 
 __all__ = [
@@ -46,9 +58,16 @@ __all__ = [
     "RuleClassifier",
     "KMeansRegimes",
     "SupervisedRegimes",
+    "STRUCTURE_UNITS",
+    "clip_to_domain",
+    "cyclone_structure",
+    "default_diagnostic_box",
+    "describe_box",
+    "domain_extent",
     "persistence_filter",
     "read_labelled_days",
     "tag_days",
+    "tag_metadata",
 ]
 
 
@@ -71,17 +90,51 @@ class RegimeRules:
     for the flow direction, ``confidence_span`` times the threshold for the others.
     """
 
-    # tropical: a compact closed low at low latitude in very moist air
+    # tropical: a warm-season, compact, deep, nearly symmetric closed low at low
+    # latitude, wrapped in very moist air that is moistest at its core (warm-core-like)
     tropical_max_lat: float = _rule(
-        35.0, "degree_north", "closed-low centre at or equatorward of this latitude")
+        40.0, "degree_north", "closed-low centre at most this far from the equator "
+        "(|latitude|); remnants reach 35-40 N over land in late summer")
     tropical_min_depth_gpm: float = _rule(
         18.0, "gpm", "ring-mean height minus centre height of the closed low, at least")
     tropical_max_radius_km: float = _rule(
         600.0, "km", "radius where the height recovers half the depth, at most")
-    tropical_min_dewpoint_c: float = _rule(
-        15.0, "degC", "mean 850 hPa dewpoint within 500 km of the centre, at least")
+    tropical_max_asymmetry: float = _rule(
+        0.5, "1", "wavenumber-2 (elongation) amplitude of the height on the 500-800 km "
+        "ring divided by the depth, at most (nearly symmetric)")
+    tropical_season_start_month: float = _rule(
+        5.0, "month", "first month of the warm season in the northern hemisphere "
+        "(shifted by six months in the southern)")
+    tropical_season_end_month: float = _rule(
+        11.0, "month", "last month of the warm season in the northern hemisphere "
+        "(shifted by six months in the southern)")
+    tropical_min_td850_c: float = _rule(
+        14.0, "degC", "850 hPa dewpoint (from q850) within 400 km of the centre, at least")
+    tropical_min_td2m_c: float = _rule(
+        21.0, "degC", "2 m dewpoint within 400 km of the centre, at least (70 F)")
+    tropical_min_pwat: float = _rule(
+        45.0, "kg m-2", "precipitable water within 400 km of the centre, at least")
+    tropical_min_core_td_excess_k: float = _rule(
+        0.0, "K", "one level: dewpoint within 400 km minus on the 500-800 km ring, at "
+        "least (a moist core, not the cold, drier core of a cut-off low)")
+    tropical_min_core_pwat_excess: float = _rule(
+        0.0, "kg m-2", "one level: precipitable water within 400 km minus on the "
+        "500-800 km ring, at least")
+    tropical_min_thermal_wind_gpm: float = _rule(
+        0.0, "gpm", "two levels: Hart's (2003) -V_T between the lower level and 500 hPa, "
+        "at least (> 0: warm core)")
+    tropical_without_moisture: float = _rule(
+        0.0, "1", "height-only archives (no moisture around the centre): 0 never calls a "
+        "closed low tropical (a cold-core upper low looks the same at 500 hPa); 1 allows "
+        "it under the stricter *_without_moisture rules below")
     tropical_depth_without_moisture_gpm: float = _rule(
         60.0, "gpm", "height-only archives: depth needed to call a closed low tropical")
+    tropical_max_radius_without_moisture_km: float = _rule(
+        400.0, "km", "height-only archives: radius of half-depth, at most")
+    tropical_max_asymmetry_without_moisture: float = _rule(
+        0.35, "1", "height-only archives: ring elongation over depth, at most")
+    tropical_max_lat_without_moisture: float = _rule(
+        30.0, "degree_north", "height-only archives: |latitude| of the centre, at most")
     # strong trough: amplified trough, strong gradient, cyclonic vorticity advection
     trough_min_amplitude_gpm: float = _rule(
         50.0, "gpm", "trough depth below the zonal mean over/downstream, at least")
@@ -107,8 +160,9 @@ class RegimeRules:
         80.0, "gpm", "trough amplitude over/downstream (east) of the region, at least")
     nw_min_moist_line_offset_deg: float = _rule(
         -3.0, "degree",
-        "60 F dewpoint line at least this far north of the region's south edge "
-        "(ignored, and said so, when moisture is missing)")
+        "moist line (rich moisture at the field's own level: the 60 F line for a 2 m "
+        "dewpoint) at least this far north of the region's south edge (ignored, and "
+        "said so, when moisture is missing)")
     # confidence
     direction_span_deg: float = _rule(
         20.0, "degree", "direction margin giving full confidence")
@@ -130,6 +184,16 @@ class RegimeRules:
                 raise AnalogsInputError(
                     f"The regime rules need {prefix}_min_direction_deg < "
                     f"{prefix}_max_direction_deg. Got {low} and {high}.")
+        if self.tropical_without_moisture not in (0.0, 1.0):
+            raise AnalogsInputError(
+                "The 'tropical_without_moisture' regime rule must be 0 (off) or 1 (on). "
+                f"Got {self.tropical_without_moisture!r} instead.")
+        for name in ("tropical_season_start_month", "tropical_season_end_month"):
+            month = getattr(self, name)
+            if month != int(month) or not 1 <= month <= 12:
+                raise AnalogsInputError(
+                    f"The {name!r} regime rule must be a month number 1-12. Got {month!r} "
+                    "instead.")
         if self.direction_span_deg <= 0 or self.confidence_span <= 0:
             raise AnalogsInputError(
                 "The regime rules need direction_span_deg > 0 and confidence_span > 0.")
@@ -190,6 +254,198 @@ def _column(frame: pd.DataFrame, name: str) -> np.ndarray:
     return np.asarray(frame[name], dtype=float)
 
 
+# ------------------------------------------------------------ cyclone structure
+
+#: Units of the columns of :func:`cyclone_structure`.
+STRUCTURE_UNITS = {
+    "tc_asymmetry": "1",
+    "tc_td850_c": "degC",
+    "tc_td2m_c": "degC",
+    "tc_pwat": "kg m-2",
+    "tc_core_td_excess_k": "K",
+    "tc_core_pwat_excess": "kg m-2",
+    "tc_thermal_wind_gpm": "gpm",
+}
+#: Radii (km) of the core disc and of the ring around a closed-low centre.
+CORE_RADIUS_KM = 400.0
+RING_KM = (500.0, 800.0)
+#: Radius (km) within which Hart (2003) takes the height difference Zmax - Zmin.
+HART_RADIUS_KM = 500.0
+#: Lower-level heights used for the warm-core test, with their pressure (hPa).
+LOWER_LEVELS = {"z850": 850.0, "z1000": 1000.0}
+#: Days of fields read at once by :func:`cyclone_structure`.
+_STRUCTURE_BLOCK_DAYS = 64
+
+
+def _ring_asymmetry(anomaly, distance, bearing, weights, depth):
+    """Wavenumber-2 amplitude of ``anomaly`` on the ring, over ``depth``: octant means
+    (each octant needs a grid point; NaN otherwise: the ring leaves the grid)."""
+    ring = (distance >= RING_KM[0]) & (distance <= RING_KM[1]) & np.isfinite(anomaly)
+    octant = (np.floor(bearing / 45.0).astype(int)) % 8
+    means = np.full(8, np.nan)
+    for k in range(8):
+        part = ring & (octant == k)
+        if part.any():
+            means[k] = np.average(anomaly[part], weights=weights[part])
+    if not np.all(np.isfinite(means)) or not depth > 0:
+        return np.nan
+    angles = np.radians(22.5 + 45.0 * np.arange(8))
+    amplitude = 2.0 / 8.0 * abs(np.sum(means * np.exp(2j * angles)))
+    return float(amplitude / depth)
+
+
+def _core_and_ring(values, distance, weights):
+    """Area means of ``values`` within CORE_RADIUS_KM and on the RING_KM annulus."""
+    ok = np.isfinite(values)
+    core = ok & (distance <= CORE_RADIUS_KM)
+    ring = ok & (distance >= RING_KM[0]) & (distance <= RING_KM[1])
+    mean = [np.average(values[m], weights=weights[m]) if m.any() else np.nan
+            for m in (core, ring)]
+    return mean[0], mean[1]
+
+
+def _hart_height_difference(z, distance):
+    """Zmax - Zmin within HART_RADIUS_KM of the centre (Hart 2003), gpm."""
+    near = (distance <= HART_RADIUS_KM) & np.isfinite(z)
+    return float(z[near].max() - z[near].min()) if near.any() else np.nan
+
+
+def cyclone_structure(ds: xr.Dataset, diagnostics: pd.DataFrame) -> pd.DataFrame:
+    r"""Structure of the closed low of each day, for the tropical rule.
+
+    For every day whose diagnostics have a closed low (``tc_present``, ``tc_lat``,
+    ``tc_lon`` of :func:`~analogs.stages.diagnostics.compute_diagnostics`), around
+    its centre (great-circle distance and bearing, so a domain across the date line
+    is measured as one piece):
+
+    - ``tc_asymmetry`` (1): elongation, the wavenumber-2 amplitude :math:`A_2` of the
+      500 hPa height departure from its zonal median (the meridional profile of the
+      background removed) on the 500-800 km ring, from eight octant means, divided by
+      ``tc_depth``. 0 for a circular vortex; about 0.5 when the ring along the long
+      axis is half the depth higher than across it (an elongated low, a trough); NaN
+      when an octant has no grid point (the ring leaves the grid). Wavenumber 1 is
+      not used: a uniform environmental gradient (the steering flow) projects wholly
+      onto it, so it measures the flow around the vortex, not the vortex's shape.
+    - ``tc_td850_c`` / ``tc_td2m_c`` (degC) or ``tc_pwat`` (kg m-2): the moisture of
+      the archive within 400 km of the centre, at its own level (850 hPa dewpoint
+      from ``q850``, Bolton 1980; the 2 m dewpoint ``td2m``; precipitable water).
+    - ``tc_core_td_excess_k`` (K) or ``tc_core_pwat_excess`` (kg m-2): the same
+      within 400 km minus on the 500-800 km ring. The one-level warm-core proxy: a
+      tropical cyclone is a warm, saturated column whose moistest air is at its core;
+      a cold-core cut-off low has its coldest, hence absolutely driest, air beneath
+      the centre and its moisture on the periphery. Since :math:`T \ge T_d`, a very
+      moist core also bounds the lower-tropospheric temperature there from below.
+    - ``tc_thermal_wind_gpm`` (gpm), when a lower-level height ``z850`` or ``z1000``
+      is given: Hart's (2003, Mon. Wea. Rev.; from memory) lower-troposphere thermal
+      wind parameter between that level and 500 hPa,
+
+      .. math:: -V_T = rac{\Delta Z_{low} - \Delta Z_{500}}{\ln(p_{low}/500)}, \qquad
+                \Delta Z = Z_{max} - Z_{min} 	ext{ within 500 km}
+
+      positive for a warm core (the height perturbation weakens upward), negative
+      for a cold core.
+
+    Everything is NaN on days without a closed low and for a measure the archive
+    lacks. Area means use cos-latitude weights; missing values are skipped.
+    """
+    names = list(STRUCTURE_UNITS)
+    n = len(diagnostics)
+    out = {name: np.full(n, np.nan) for name in names}
+    present = (np.asarray(diagnostics["tc_present"], dtype=bool) if "tc_present" in diagnostics
+               else np.zeros(n, dtype=bool))
+    c_lat, c_lon = _column(diagnostics, "tc_lat"), _column(diagnostics, "tc_lon")
+    c_depth = _column(diagnostics, "tc_depth")
+    rows = np.flatnonzero(present & np.isfinite(c_lat) & np.isfinite(c_lon))
+    frame = pd.DataFrame(out, index=diagnostics.index)
+    if rows.size == 0 or "z500" not in ds:
+        return frame
+    if "time" not in ds.dims:
+        ds = ds.expand_dims("time")
+    lat = np.asarray(ds["lat"].values, dtype=float)
+    lon = np.asarray(ds["lon"].values, dtype=float)
+    lat2, lon2 = np.meshgrid(lat, lon, indexing="ij")
+    weights = np.cos(np.radians(lat2))
+    moisture = next((name for name in ("q850", "td2m", "pwat") if name in ds), None)
+    lower = next((name for name in LOWER_LEVELS if name in ds), None)
+
+    def block_values(name, block):
+        return np.asarray(ds[name].transpose("time", "lat", "lon").isel(time=block).values,
+                          dtype=float)
+
+    for start in range(0, rows.size, _STRUCTURE_BLOCK_DAYS):
+        block = rows[start:start + _STRUCTURE_BLOCK_DAYS]
+        z = block_values("z500", block)
+        m = None if moisture is None else block_values(moisture, block)
+        if moisture == "q850":
+            m = dewpoint_from_specific_humidity(m, 850.0) - ZERO_CELSIUS_K
+        elif moisture == "td2m":
+            m = m - ZERO_CELSIUS_K
+        low = None if lower is None else block_values(lower, block)
+        for k, row in enumerate(block):
+            distance = great_circle_km(c_lat[row], c_lon[row], lat2, lon2)
+            bearing = initial_bearing_deg(c_lat[row], c_lon[row], lat2, lon2)
+            with np.errstate(invalid="ignore"):
+                anomaly = z[k] - np.nanmedian(z[k], axis=-1, keepdims=True)
+            out["tc_asymmetry"][row] = _ring_asymmetry(anomaly, distance, bearing, weights,
+                                                       c_depth[row])
+            if m is not None:
+                core, ring = _core_and_ring(m[k], distance, weights)
+                level = {"q850": "tc_td850_c", "td2m": "tc_td2m_c", "pwat": "tc_pwat"}[moisture]
+                excess = "tc_core_pwat_excess" if moisture == "pwat" else "tc_core_td_excess_k"
+                out[level][row] = core
+                out[excess][row] = core - ring
+            if low is not None:
+                dz_low = _hart_height_difference(low[k], distance)
+                dz_500 = _hart_height_difference(z[k], distance)
+                out["tc_thermal_wind_gpm"][row] = (dz_low - dz_500) / np.log(
+                    LOWER_LEVELS[lower] / 500.0)
+    return pd.DataFrame(out, index=diagnostics.index)
+
+
+#: Spans (full-confidence margins) of the tropical criteria that are not relative.
+_SPANS = {"dewpoint": 5.0, "pwat": 10.0, "td_excess": 2.0, "pwat_excess": 5.0,
+          "thermal_wind": 20.0, "asymmetry": 0.25, "latitude": 5.0}
+#: The tropical moisture measures: column, rule, label in reasons, units in reasons.
+_TC_MOISTURE = (("tc_td850_c", "tropical_min_td850_c", "Td850", "C"),
+                ("tc_td2m_c", "tropical_min_td2m_c", "Td2m", "C"),
+                ("tc_pwat", "tropical_min_pwat", "PW", "kg/m2"))
+
+
+def _moisture_known(d: pd.DataFrame) -> np.ndarray:
+    """Days whose region has moisture values (any field: precipitable water counts)."""
+    if "moisture_available" in d:
+        return np.asarray(d["moisture_available"], dtype=bool)
+    return np.isfinite(_column(d, "dewpoint_region_c")) | np.isfinite(_column(d, "pwat_region"))
+
+
+def _moist_line_name(moisture) -> str:
+    """How a reason names the moist line: "60F line", "Td850 12 C line", "PW 30 line"."""
+    if not moisture:
+        return "60F line"
+    field = moisture.get("field")
+    threshold = moisture.get("threshold", np.nan)
+    if field == "td2m" and abs(threshold - (60.0 - 32.0) * 5.0 / 9.0) < 0.05:
+        return "60F line"
+    label = {"td2m": "Td2m", "q850": "Td850", "pwat": "PW"}.get(field, str(field))
+    units = "C" if moisture.get("units") == "degC" else str(moisture.get("units", ""))
+    return f"{label} {threshold:g} {units} line"
+
+
+def _in_season(month, start, end):
+    """Whether ``month`` (1-12, array, NaN allowed) lies in [start, end], wrapping."""
+    month = np.asarray(month, dtype=float)
+    if start <= end:
+        return (month >= start) & (month <= end)
+    return (month >= start) | (month <= end)
+
+
+def _months(index) -> np.ndarray:
+    try:
+        return np.asarray(pd.DatetimeIndex(index).month, dtype=float)
+    except (TypeError, ValueError):
+        return np.full(len(index), np.nan)
+
+
 class RuleClassifier:
     """Explainable regime rules on the daily diagnostics.
 
@@ -197,27 +453,49 @@ class RuleClassifier:
     ----------
     rules : :class:`RegimeRules`, optional (defaults when None).
 
-    Criteria (thresholds in :class:`RegimeRules`, columns of
-    :func:`~analogs.stages.diagnostics.compute_diagnostics`):
+    Criteria (thresholds in :class:`RegimeRules`; columns of
+    :func:`~analogs.stages.diagnostics.compute_diagnostics` and
+    :func:`cyclone_structure`):
 
-    - ``tropical``: a compact closed low near the region (``tc_present``) with
-      ``tc_depth`` >= tropical_min_depth_gpm, ``tc_lat`` <= tropical_max_lat,
-      ``tc_radius_km`` <= tropical_max_radius_km and ``tc_dewpoint_c`` >=
-      tropical_min_dewpoint_c;
+    - ``tropical`` (precision first: a forecaster acts on it): a closed low near the
+      region (``tc_present``) that is deep (``tc_depth``), compact
+      (``tc_radius_km``), nearly symmetric (``tc_asymmetry``), at low latitude
+      (``|tc_lat|``), in the warm season of its hemisphere (months
+      tropical_season_start_month to _end_month in the north, six months later in the
+      south), wrapped in very moist air at the archive's own level (``tc_td850_c``,
+      ``tc_td2m_c`` or ``tc_pwat`` at least its threshold) and warm-core-like: with a
+      lower-level height, Hart's (2003) thermal wind ``tc_thermal_wind_gpm`` > 0;
+      with one level, a core at least as moist as its ring (``tc_core_td_excess_k``
+      or ``tc_core_pwat_excess`` >= 0; see :func:`cyclone_structure` for why).
+      A cold-core cut-off low in the subtropics in the cold season (Nieto et al.
+      2005, J. Climate; from memory: common there in that season, cold-core) fails
+      the season and, in its dry cold core, the moisture tests. Height-only archives
+      (no moisture around the centre): never tropical by default
+      (``tropical_without_moisture = 0``), since at 500 hPa alone a summer cold-core
+      upper low is as deep, compact and round as a tropical cyclone; the reason says
+      the moisture was missing. With ``tropical_without_moisture = 1`` a deeper, more
+      compact, more symmetric, lower-latitude warm-season low is called tropical (the
+      ``*_without_moisture`` rules) and the reason says the warm core was untested.
     - ``strong_trough``: ``trough_amplitude``, ``height_gradient`` and
       ``cyclonic_advection`` at least their thresholds, with the mean flow from the
       south-west (``flow_direction_deg`` in [trough_min_direction_deg,
-      trough_max_direction_deg]): the region lies ahead of the trough axis;
+      trough_max_direction_deg]): the region lies ahead of an amplified trough axis,
+      in a strong gradient, under cyclonic vorticity advection (common practice, no
+      source).
     - ``northwest_flow``: ``flow_direction_deg`` in [nw_min_direction_deg,
       nw_max_direction_deg], ``flow_speed_ms``, ``ridge_amplitude`` (upstream) and
-      ``trough_amplitude`` (downstream) at least their thresholds, and the 60 F
-      dewpoint line (``moist_line_lat``) at least nw_min_moist_line_offset_deg north
-      of the region's south edge.
+      ``trough_amplitude`` (downstream) at least their thresholds, and the moist line
+      (``moist_line_lat``) at least nw_min_moist_line_offset_deg north of the region's
+      south edge: a ridge upstream over the high terrain, flow aloft from the
+      west-north-west to north-west, moisture beneath (Johns 1982, Mon. Wea. Rev.;
+      from memory).
 
     The margin of a criterion is ``m_i = (x_i - t_i) / s_i`` clipped to [-1, 1], with
     ``s_i`` its span: ``direction_span_deg`` for a direction (measured inside the
     window from its nearer edge), 5 degrees for the cyclone latitude and the moisture
-    line, ``confidence_span`` times ``|t_i|`` otherwise. A regime holds when every
+    line, 5 K for a dewpoint, 10 kg m-2 for precipitable water, 2 K / 5 kg m-2 for the
+    core excess, 20 gpm for the thermal wind, 0.25 for the asymmetry, +-1 for the
+    season, ``confidence_span`` times ``|t_i|`` otherwise. A regime holds when every
     margin is >= 0. Precedence: tropical > strong_trough > northwest_flow > other.
     Confidence:
 
@@ -227,9 +505,7 @@ class RuleClassifier:
       the most failing criterion of regime ``r`` falls short (1 when every named
       regime misses by a full span).
 
-    Tropical needs moisture: with the dewpoint missing it is claimed only for a
-    closed low at least ``tropical_depth_without_moisture_gpm`` deep, and the reason
-    says "moisture missing". North-west flow then skips its moisture criterion and
+    North-west flow skips its moisture criterion when the dewpoint is missing and
     says so.
     """
 
@@ -245,28 +521,75 @@ class RuleClassifier:
                 f"Got {type(self.rules).__name__} instead.")
         return self.rules
 
+    def _tropical(self, d: pd.DataFrame) -> tuple[dict, dict]:
+        """Margins of the tropical criteria, and what the reasons quote."""
+        r = self._rules()
+        rel = r.confidence_span
+        n = len(d)
+        present = np.asarray(d["tc_present"], dtype=bool) if "tc_present" in d \
+            else np.zeros(n, dtype=bool)
+        depth = np.where(present, _column(d, "tc_depth"), np.nan)
+        abs_lat = np.abs(_column(d, "tc_lat"))
+        # The archive's moisture measure around the centre, at its own level.
+        moisture_margin = np.full(n, np.nan)
+        measure = np.full(n, "", dtype=object)
+        # A store tagged before the level-specific columns existed has tc_dewpoint_c.
+        legacy = not any(m[0] in d for m in _TC_MOISTURE) and "tc_dewpoint_c" in d
+        for column, rule, label, _ in _TC_MOISTURE:
+            values = _column(d, "tc_dewpoint_c" if legacy and column == "tc_td850_c"
+                             else column)
+            span = _SPANS["pwat"] if column == "tc_pwat" else _SPANS["dewpoint"]
+            use = np.isfinite(values) & ~np.isfinite(moisture_margin)
+            moisture_margin[use] = _margin(values[use], getattr(r, rule), span)
+            measure[use] = column
+        known = np.isfinite(moisture_margin)
+        thermal = _column(d, "tc_thermal_wind_gpm")
+        td_excess, pw_excess = _column(d, "tc_core_td_excess_k"), _column(d, "tc_core_pwat_excess")
+        core = np.where(np.isfinite(td_excess),
+                        _margin(td_excess, r.tropical_min_core_td_excess_k, _SPANS["td_excess"]),
+                        _margin(pw_excess, r.tropical_min_core_pwat_excess,
+                                _SPANS["pwat_excess"]))
+        warm_core = np.where(np.isfinite(thermal),
+                             _margin(thermal, r.tropical_min_thermal_wind_gpm,
+                                     _SPANS["thermal_wind"]),
+                             np.where(known, core, 1.0))  # untested without moisture
+        north = np.nan_to_num(_column(d, "tc_lat"), nan=1.0) >= 0
+        month = _months(d.index)
+        start, end = r.tropical_season_start_month, r.tropical_season_end_month
+        in_season = np.where(north, _in_season(month, start, end),
+                             _in_season(month, (start + 5) % 12 + 1, (end + 5) % 12 + 1))
+        depth_needed = np.where(known, r.tropical_min_depth_gpm,
+                                r.tropical_depth_without_moisture_gpm)
+        max_lat = np.where(known, r.tropical_max_lat, r.tropical_max_lat_without_moisture)
+        max_radius = np.where(known, r.tropical_max_radius_km,
+                              r.tropical_max_radius_without_moisture_km)
+        max_asym = np.where(known, r.tropical_max_asymmetry,
+                            r.tropical_max_asymmetry_without_moisture)
+        margins = {
+            "depth": _margin(depth, depth_needed, rel * depth_needed),
+            "latitude": _margin(-abs_lat, -max_lat, _SPANS["latitude"]),
+            "radius": _margin(-_column(d, "tc_radius_km"), -max_radius, rel * max_radius),
+            # Untested (1) only for tables older than the column.
+            "symmetry": (_margin(-_column(d, "tc_asymmetry"), -max_asym, _SPANS["asymmetry"])
+                         if "tc_asymmetry" in d else np.ones(n)),
+            "season": np.where(in_season, 1.0, -1.0),
+            # Height only: off by default (precision first), the reason says why.
+            "moisture": np.where(known, moisture_margin,
+                                 1.0 if r.tropical_without_moisture else -1.0),
+            "warm_core": warm_core,
+        }
+        facts = {"known": known, "measure": measure, "depth_needed": depth_needed,
+                 "max_lat": max_lat, "max_radius": max_radius, "max_asym": max_asym,
+                 "in_season": in_season, "month": month, "present": present}
+        return margins, facts
+
     def margins(self, diagnostics: pd.DataFrame) -> dict[str, dict[str, np.ndarray]]:
         """Per regime, the margin of each criterion (arrays of length n_days)."""
         r = self._rules()
         rel = r.confidence_span
         d = diagnostics
-        present = np.asarray(d["tc_present"], dtype=bool) if "tc_present" in d \
-            else np.zeros(len(d), dtype=bool)
-        depth = np.where(present, _column(d, "tc_depth"), np.nan)
-        tc_td = _column(d, "tc_dewpoint_c")
-        moisture_known = np.isfinite(_column(d, "dewpoint_region_c"))
-        depth_needed = np.where(moisture_known, r.tropical_min_depth_gpm,
-                                r.tropical_depth_without_moisture_gpm)
-        tropical = {
-            "depth": _margin(depth, depth_needed, rel * depth_needed),
-            "latitude": _margin(-_column(d, "tc_lat"), -r.tropical_max_lat, 5.0),
-            "radius": _margin(-_column(d, "tc_radius_km"), -r.tropical_max_radius_km,
-                              rel * r.tropical_max_radius_km),
-            "moisture": np.where(moisture_known,
-                                 _margin(tc_td, r.tropical_min_dewpoint_c,
-                                         rel * abs(r.tropical_min_dewpoint_c) or 1.0),
-                                 1.0),
-        }
+        tropical, _ = self._tropical(d)
+        moisture_known = _moisture_known(d)
         direction = _column(d, "flow_direction_deg")
         trough = {
             "direction": _margin(np.minimum(direction - r.trough_min_direction_deg,
@@ -307,7 +630,9 @@ class RuleClassifier:
         Parameters
         ----------
         diagnostics : DataFrame from :func:`analogs.stages.diagnostics.compute_diagnostics`
-            (its ``attrs["region"]`` and ``attrs["missing"]`` are used when present).
+            (with the columns of :func:`cyclone_structure` when available), indexed by
+            date (the month decides the season); its ``attrs["region"]`` is used when
+            present.
 
         Returns
         -------
@@ -337,37 +662,97 @@ class RuleClassifier:
             regime[hit] = name
             confidence[hit] = 0.5 + 0.5 * worst[name][hit]
             decided |= hit
-        reasons = self._reasons(diagnostics, regime)
+        reasons = self._reasons(diagnostics, regime, margins["tropical"])
         return pd.DataFrame({"regime": regime.astype(str), "confidence": confidence,
                              "reason": reasons}, index=diagnostics.index)
 
-    def _reasons(self, d: pd.DataFrame, regime: np.ndarray) -> list[str]:
+    def _tropical_text(self, k, v, facts, margins, label) -> str:
+        """The cyclone part of a reason: what made it tropical, or why it is not."""
         r = self._rules()
-        moisture_known = np.isfinite(_column(d, "dewpoint_region_c"))
+        known = facts["known"][k]
+        month = facts["month"][k]
+        month_name = calendar.month_abbr[int(month)] if np.isfinite(month) else "unknown month"
+        asym = (f"asymmetry {v['tc_asymmetry']:.2f}" if np.isfinite(v["tc_asymmetry"])
+                else "ring off the grid")
+        parts = {
+            "depth": f"depth {v['tc_depth']:.0f} gpm (needs {facts['depth_needed'][k]:.0f})",
+            "latitude": f"centre at {abs(v['tc_lat']):.1f} deg latitude (at most "
+                        f"{facts['max_lat'][k]:.0f})",
+            "radius": f"radius {v['tc_radius_km']:.0f} km (at most "
+                      f"{facts['max_radius'][k]:.0f})",
+            "symmetry": f"{asym} (at most {facts['max_asym'][k]:.2f})",
+            "season": f"{month_name}: " + ("warm season" if facts["in_season"][k]
+                                           else "outside the warm season"),
+        }
+        measure = facts["measure"][k]
+        if known:
+            column, rule, name, units = next(m for m in _TC_MOISTURE if m[0] == measure)
+            parts["moisture"] = (f"{name} {v[column]:.1f} {units} within "
+                                 f"{CORE_RADIUS_KM:.0f} km (needs {getattr(r, rule):g})")
+        elif r.tropical_without_moisture:
+            parts["moisture"] = "moisture missing around the centre"
+        else:
+            parts["moisture"] = ("moisture missing around the centre (height-only archive: "
+                                 "not called tropical, a cold-core upper low looks the same "
+                                 "at 500 hPa)")
+        if np.isfinite(v["tc_thermal_wind_gpm"]):
+            parts["warm_core"] = (f"Hart thermal wind {v['tc_thermal_wind_gpm']:+.0f} gpm ("
+                                  + ("warm" if v["tc_thermal_wind_gpm"] > 0 else "cold")
+                                  + " core)")
+        elif known and np.isfinite(v["tc_core_td_excess_k"]):
+            parts["warm_core"] = (f"core {v['tc_core_td_excess_k']:+.1f} K dewpoint vs its "
+                                  "ring (one-level warm-core proxy)")
+        elif known and np.isfinite(v["tc_core_pwat_excess"]):
+            parts["warm_core"] = (f"core {v['tc_core_pwat_excess']:+.1f} kg/m2 PW vs its ring "
+                                  "(one-level warm-core proxy)")
+        elif known:
+            parts["warm_core"] = "core moisture unknown"
+        else:
+            parts["warm_core"] = "warm core untested (height only)"
+        lat_text = f"{abs(v['tc_lat']):.1f} {'N' if v['tc_lat'] >= 0 else 'S'}"
+        lon = (v["tc_lon"] + 180.0) % 360.0 - 180.0
+        lon_text = f"{abs(lon):.1f} {'E' if lon >= 0 else 'W'}"
+        low = (f"closed low {v['tc_depth']:.0f} gpm deep, r {v['tc_radius_km']:.0f} km at "
+               f"{lat_text} {lon_text}")
+        if label == "tropical":
+            text = f"{low}; {parts['moisture']}; {parts['warm_core']}; {parts['season']}"
+            if not known:
+                text += ("; moisture missing: tropical from the height field alone (deep, "
+                         "compact, symmetric, warm season)")
+            return text
+        failing = [name for name in margins if margins[name][k] < 0]
+        why = "; ".join(parts[name] for name in failing) if failing else ""
+        return f"{low}, not tropical: {why}" if why else low
+
+    def _reasons(self, d: pd.DataFrame, regime: np.ndarray, tropical_margins=None) -> list[str]:
+        moisture_known = _moisture_known(d)
         cols = {name: _column(d, name) for name in (
             "flow_direction_deg", "flow_speed_ms", "ridge_amplitude", "trough_amplitude",
             "height_gradient", "cyclonic_advection", "tc_lat", "tc_lon", "tc_depth",
-            "tc_radius_km", "tc_dewpoint_c", "dewpoint_region_c", "moist_line_lat")}
-        present = np.asarray(d["tc_present"], dtype=bool) if "tc_present" in d \
-            else np.zeros(len(d), dtype=bool)
+            "tc_radius_km", "dewpoint_region_c", "pwat_region", "moist_line_lat",
+            *STRUCTURE_UNITS)}
+        if not any(m[0] in d for m in _TC_MOISTURE) and "tc_dewpoint_c" in d:
+            cols["tc_td850_c"] = _column(d, "tc_dewpoint_c")  # a table of an older store
+        line_name = _moist_line_name(d.attrs.get("moisture"))
+        td_name = {"q850": "Td850", "td2m": "Td2m"}.get(
+            (d.attrs.get("moisture") or {}).get("field"), "Td")
+        margins, facts = self._tropical(d)
+        present = facts["present"]
         out = []
         for k, label in enumerate(regime):
             # + 0.0 turns a negative zero into zero, so "-0 gpm" never shows
             v = {name: values[k] + 0.0 for name, values in cols.items()}
             flow = f"flow {v['flow_direction_deg']:.0f} deg at {v['flow_speed_ms']:.0f} m/s"
             if moisture_known[k]:
-                moist = f"Td {v['dewpoint_region_c']:.1f} C"
+                moist = (f"{td_name} {v['dewpoint_region_c']:.1f} C" if np.isfinite(
+                    v["dewpoint_region_c"]) else f"PW {v['pwat_region']:.0f} kg/m2")
                 if np.isfinite(v["moist_line_lat"]):
-                    moist += f", 60F line {v['moist_line_lat']:.1f} N"
+                    moist += f", {line_name} {v['moist_line_lat']:.1f} N"
             else:
                 moist = "moisture missing"
-            low = (f"closed low {v['tc_depth']:.0f} gpm deep, r {v['tc_radius_km']:.0f} km "
-                   f"at {v['tc_lat']:.1f} N {v['tc_lon']:.1f} E") if present[k] else ""
+            low = self._tropical_text(k, v, facts, margins, label) if present[k] else ""
             if label == "tropical":
-                core = (f"Td {v['tc_dewpoint_c']:.1f} C around it" if moisture_known[k]
-                        else f"moisture missing, depth >= "
-                             f"{r.tropical_depth_without_moisture_gpm:.0f} gpm")
-                text = f"{low}; {core}"
+                text = low
             elif label == "strong_trough":
                 text = (f"trough {v['trough_amplitude']:.0f} gpm; gradient "
                         f"{v['height_gradient']:.0f} gpm/1000 km; vorticity advection "
@@ -379,20 +764,157 @@ class RuleClassifier:
                 text = (f"{flow}; ridge {v['ridge_amplitude']:.0f} gpm, trough "
                         f"{v['trough_amplitude']:.0f} gpm; {moist}")
                 if low:
-                    text += f"; {low}" + ("" if moisture_known[k] else
-                                          " (tropical needs moisture)")
+                    text += f"; {low}"
             out.append(text)
         return out
 
 
-def tag_days(ds: xr.Dataset, region, *, rules: RegimeRules | None = None,
+# ------------------------------------------------------------ diagnostic region
+
+#: Half-sizes (degrees of latitude, longitude) of the synoptic-scale box over which
+#: regimes are diagnosed when no region is given, or around a point region: a regime is
+#: a pattern some 1500 x 2000 km across, not a point value (common practice, no source).
+SYNOPTIC_HALF_BOX = (7.5, 10.0)
+#: Latitude at which the default box is centred on a domain whose middle lies within
+#: 20 degrees of the equator but that reaches the mid-latitudes (a global or
+#: hemispheric-band grid): geostrophic diagnostics mean nothing near the equator.
+MIDLATITUDE_CENTRE_DEG = 45.0
+
+
+def domain_extent(lat, lon) -> tuple[float, float, float, float]:
+    """(south, north, west, east) of a grid, in degrees, seam-aware in longitude.
+
+    ``lon`` is ascending in [-180, 180) (the canonical grid). The domain's west edge is
+    the longitude after the largest gap between neighbouring grid longitudes (the gap
+    across the 180th meridian included): on a domain that crosses the date line
+    (e.g. 150 E to 150 W, stored as -180..-150 and 150..179) ``west`` is 150 and
+    ``east`` 210, i.e. ``east`` may exceed 180. A grid that wraps the globe (no gap
+    wider than 1.5 grid lengths) gives ``east = west + 360``.
+    """
+    lat = np.asarray(lat, dtype=float)
+    lon = np.sort(np.mod(np.asarray(lon, dtype=float) + 180.0, 360.0) - 180.0)
+    south, north = float(lat.min()), float(lat.max())
+    if lon.size < 2:
+        return south, north, float(lon[0]), float(lon[0])
+    gaps = np.append(np.diff(lon), lon[0] + 360.0 - lon[-1])
+    step = float(np.median(np.diff(lon)))
+    k = int(np.argmax(gaps))
+    if gaps[k] <= 1.5 * step:                       # wraps the globe
+        return south, north, float(lon[0]), float(lon[0]) + 360.0
+    if k == lon.size - 1:                           # the gap is the 180th meridian
+        return south, north, float(lon[0]), float(lon[-1])
+    return south, north, float(lon[k + 1]), float(lon[k]) + 360.0
+
+
+def default_diagnostic_box(lat, lon) -> tuple[float, float, float, float]:
+    """The synoptic-scale box at the centre of a domain, where regimes are diagnosed
+    when no region is given: (south, north, west, east) in degrees.
+
+    Half-sizes :data:`SYNOPTIC_HALF_BOX` (7.5 degrees of latitude, 10 of longitude),
+    at most a sixth of the domain's width in longitude, so that a third of the domain
+    lies upstream (west: the ridge window) and a third downstream (east: the trough
+    window), and a quarter of its height in latitude. The centre is the middle of the
+    domain (:func:`domain_extent`, seam-aware: on a domain across the date line
+    ``east`` may exceed 180); a domain whose middle lies within 20 degrees of the
+    equator but that reaches 30 degrees of latitude is centred at
+    :data:`MIDLATITUDE_CENTRE_DEG` in the hemisphere it reaches further into (north on
+    a tie). Over the whole domain, "ridge upstream" and "trough downstream" of the box
+    would fall off the grid (common practice, no source).
+    """
+    south, north, west, east = domain_extent(lat, lon)
+    half_lat = min(SYNOPTIC_HALF_BOX[0], (north - south) / 4.0)
+    half_lon = min(SYNOPTIC_HALF_BOX[1], (east - west) / 6.0)
+    centre_lat = 0.5 * (south + north)
+    reach = max(north, -south)
+    if abs(centre_lat) < 20.0 and reach >= 30.0:
+        sign = 1.0 if north >= -south else -1.0
+        edge = north if sign > 0 else -south
+        centre_lat = sign * min(MIDLATITUDE_CENTRE_DEG, edge - half_lat)
+    box_west = 0.5 * (west + east) - half_lon
+    # West in [-180, 180); a box across the date line keeps east = west + width > 180.
+    box_west = (box_west + 180.0) % 360.0 - 180.0
+    return (centre_lat - half_lat, centre_lat + half_lat, box_west, box_west + 2 * half_lon)
+
+
+def clip_to_domain(box, lat, lon) -> tuple[float, float, float, float]:
+    """``box`` (south, north, west, east) moved by whole turns of 360 degrees of longitude
+    onto the domain of the grid (:func:`domain_extent`) and clipped to it."""
+    south, north, west, east = (float(v) for v in box)
+    d_south, d_north, d_west, d_east = domain_extent(lat, lon)
+    south, north = max(south, d_south), min(north, d_north)
+    if d_east - d_west >= 360.0:             # a global grid: west in [-180, 180)
+        shift = (west + 180.0) % 360.0 - 180.0 - west
+        return south, north, west + shift, east + shift
+    centre = 0.5 * (west + east)
+    shift = 360.0 * np.round((0.5 * (d_west + d_east) - centre) / 360.0)
+    west, east = west + shift, east + shift
+    return south, north, max(west, d_west), min(east, d_east)
+
+
+def describe_box(box, *, default: bool = False) -> str:
+    """Plain text of a diagnostic box: "box 30-45 N, 105-85 W" (+ why, when default)."""
+    south, north, west, east = box
+
+    def lat_text(v):
+        return f"{abs(v):g} {'N' if v >= 0 else 'S'}"
+
+    def lon_text(v):
+        v = (v + 180.0) % 360.0 - 180.0
+        return f"{abs(v):g} {'E' if v >= 0 else 'W'}" if v not in (0.0, -180.0) else f"{abs(v):g}"
+
+    text = (f"box {lat_text(round(south, 2))} to {lat_text(round(north, 2))}, "
+            f"{lon_text(round(west, 2))} to {lon_text(round(east, 2))}")
+    if default:
+        text += (" (default: the synoptic-scale box at the centre of the domain, no region "
+                 "given; ridge searched upstream (west) of it, trough over and downstream "
+                 "(east) of it)")
+    return text
+
+
+#: Units (or form) of the tag table's columns that are not diagnostics.
+_TAG_COLUMN_UNITS = {"date": "YYYY-MM-DD (convective day of the 12 UTC fields)",
+                     "regime": "label", "confidence": "1", "reason": "text",
+                     "kmeans_regime": "cluster number", "learned_regime": "label",
+                     "learned_confidence": "1"}
+
+
+def tag_metadata(attrs: dict, columns) -> dict:
+    """What a tag file says of itself (Parquet key-value metadata, or the CSV's
+    sidecar): the units of every column, the diagnostic region (box, whether it was the
+    default, in words), the missing inputs and the caution.
+
+    ``attrs``: the tags' attributes (:func:`tag_days` ``attrs``, kept in the store);
+    ``columns``: the columns written.
+    """
+    from analogs.stages.diagnostics import DIAGNOSTIC_UNITS
+    known = {**_TAG_COLUMN_UNITS, **DIAGNOSTIC_UNITS, **STRUCTURE_UNITS,
+             **(attrs.get("units") or {})}
+    region = attrs.get("region")
+    region = None if region is None else [float(v) for v in region]
+    default = bool(attrs.get("region_default", False))
+    description = attrs.get("region_description") or (
+        describe_box(region, default=default) if region is not None else "unknown")
+    return {
+        "title": "analogs regime tags: one row a day",
+        "units": {str(c): known.get(str(c), "") for c in columns},
+        "diagnostic_region": {"south_north_west_east": region, "default": default,
+                              "description": description},
+        "missing": list(attrs.get("missing") or []),
+        "caution": "Guidance, not a forecast or a warning.",
+    }
+
+
+def tag_days(ds: xr.Dataset, region=None, *, rules: RegimeRules | None = None,
              progress: bool = False, **diagnostic_options) -> pd.DataFrame:
     """Regime of every day of an archive, with its diagnostics.
 
     Parameters
     ----------
-    ds : canonical Dataset with ``z500`` (gpm) and optionally a moisture field.
-    region : (south, north, west, east) in degrees.
+    ds : canonical Dataset with ``z500`` (gpm) and optionally a moisture field
+        (``q850``, ``td2m`` or ``pwat``) and a lower-level height (``z850`` or ``z1000``,
+        gpm) for the warm-core test of :class:`RuleClassifier`.
+    region : (south, north, west, east) in degrees; None: the synoptic-scale box at the
+        centre of the domain (:func:`default_diagnostic_box`).
     rules : :class:`RegimeRules` (defaults when None).
     progress : show a progress bar over blocks of days.
     diagnostic_options : passed to :func:`analogs.stages.diagnostics.compute_diagnostics`.
@@ -400,10 +922,29 @@ def tag_days(ds: xr.Dataset, region, *, rules: RegimeRules | None = None,
     Returns
     -------
     DataFrame, one row a day: ``date`` (datetime64), ``regime``, ``confidence``, the
-    diagnostics (units in ``attrs["units"]``), then ``reason``. ``attrs["missing"]``
-    lists the missing inputs (e.g. ``["moisture"]``).
+    diagnostics of :func:`~analogs.stages.diagnostics.compute_diagnostics` and the
+    cyclone-structure columns of :func:`cyclone_structure` (units of every column in
+    ``attrs["units"]``), then ``reason``. ``attrs["missing"]`` lists the missing
+    inputs (e.g. ``["moisture"]``); ``attrs["region"]`` is the box,
+    ``attrs["region_default"]`` whether it was the default and
+    ``attrs["region_description"]`` says so in words.
     """
+    default = region is None
+    if default:
+        if not isinstance(ds, xr.Dataset) or "lat" not in ds.coords or "lon" not in ds.coords:
+            raise AnalogsInputError(
+                "tag_days needs a Dataset with lat and lon coordinates to place its default "
+                "diagnostic region; give region=(south, north, west, east) otherwise")
+        region = default_diagnostic_box(ds["lat"].values, ds["lon"].values)
     diagnostics = compute_diagnostics(ds, region, progress=progress, **diagnostic_options)
+    structure = cyclone_structure(ds, diagnostics)
+    for name in structure.columns:
+        diagnostics[name] = structure[name].to_numpy()
+    diagnostics.attrs["units"] = {**diagnostics.attrs.get("units", {}),
+                                  **{k: STRUCTURE_UNITS[k] for k in structure.columns}}
+    diagnostics.attrs["region_default"] = bool(default)
+    diagnostics.attrs["region_description"] = describe_box(
+        diagnostics.attrs.get("region", region), default=default)
     labels = RuleClassifier(rules).predict(diagnostics)
     table = pd.concat([labels[["regime", "confidence"]], diagnostics,
                        labels[["reason"]]], axis=1)
@@ -559,15 +1100,19 @@ def read_labelled_days(table, times, allowed=REGIME_LABELS) -> pd.Series:
         source = f"labelled-days file {path}"
         if not path.exists():
             raise AnalogsInputError(f"{source} does not exist")
-        table = pd.read_parquet(path) if path.suffix == ".parquet" else pd.read_csv(path)
+        # Labels are text: "null" or "NA" is a label, not a missing value (issue 13).
+        table = (pd.read_parquet(path) if path.suffix == ".parquet"
+                 else pd.read_csv(path, dtype=str, keep_default_na=False))
     if not isinstance(table, pd.DataFrame) or not {"date", "regime"} <= set(table.columns):
         raise AnalogsInputError(f"{source} must have columns date,regime")
     try:
         dates = pd.DatetimeIndex(pd.to_datetime(table["date"])).normalize()
     except (ValueError, TypeError) as exc:
         raise AnalogsInputError(f"{source}: column 'date' is not dates ({exc})") from None
-    labels = table["regime"].astype(str).to_numpy()
-    unknown = sorted(set(labels) - set(allowed))
+    labels = table["regime"].astype(str).str.strip().to_numpy()
+    if (labels == "").any():  # allowed None: any label the researcher chose (issue 13)
+        raise AnalogsInputError(f"{source}: empty regime label in {int((labels == '').sum())} row(s)")
+    unknown = [] if allowed is None else sorted(set(labels) - set(allowed))
     if unknown:
         raise AnalogsInputError(
             f"{source}: unknown regime label(s) {', '.join(unknown)}; expected one of "
@@ -588,7 +1133,10 @@ class SupervisedRegimes:
     ----------
     C : inverse regularisation strength of ``sklearn.linear_model.LogisticRegression``.
     max_iter : iterations of its lbfgs solver.
-    labels : allowed labels of the training table (default :data:`REGIME_LABELS`).
+    labels : allowed labels of the training table (default :data:`REGIME_LABELS`); None
+        accepts the labels of the researcher's own case list, whatever they are (read as
+        text: "null" and "NA" are labels). The model predicts the labels it was trained
+        on (``classes_``).
 
     Learned: ``classes_``, ``coef_`` (n_classes or 1, n_modes), ``intercept_``,
     ``mean_`` and ``scale_`` (standardisation of the PCs). ``predict`` and
@@ -606,17 +1154,7 @@ class SupervisedRegimes:
         """Fit on the archive PCs (time, mode) and a labelled-days table."""
         from sklearn.linear_model import LogisticRegression
 
-        if not isinstance(pcs, xr.DataArray):
-            raise AnalogsInputError(
-                "SupervisedRegimes.fit needs the PCs as a DataArray (time, mode), to "
-                "match labelled dates")
-        values, times = _pcs_array(pcs, "SupervisedRegimes.fit")
-        target = read_labelled_days(labelled_days, times, tuple(self.labels))
-        rows = pd.DatetimeIndex(times).normalize().get_indexer(target.index)
-        if np.unique(target.to_numpy()).size < 2:
-            raise AnalogsInputError(
-                "labelled-days table: at least two different regimes are needed to train")
-        x = values[rows]
+        x, target = self._training_set(pcs, labelled_days, "SupervisedRegimes.fit")
         self.mean_ = x.mean(axis=0)
         self.scale_ = np.where(x.std(axis=0) > 0, x.std(axis=0), 1.0)
         model = LogisticRegression(C=self.C, max_iter=self.max_iter)
@@ -625,6 +1163,72 @@ class SupervisedRegimes:
         self.coef_ = model.coef_.copy()
         self.intercept_ = model.intercept_.copy()
         return self
+
+    def _training_set(self, pcs, labelled_days, owner):
+        """(PCs of the labelled days, their labels as a Series indexed by date)."""
+        if not isinstance(pcs, xr.DataArray):
+            raise AnalogsInputError(
+                f"{owner} needs the PCs as a DataArray (time, mode), to match labelled dates")
+        values, times = _pcs_array(pcs, owner)
+        allowed = None if self.labels is None else tuple(self.labels)
+        target = read_labelled_days(labelled_days, times, allowed)
+        if target.index.duplicated().any():
+            twice = target.index[target.index.duplicated()]
+            raise AnalogsInputError(
+                f"labelled-days table: date(s) labelled more than once: "
+                f"{', '.join(str(d.date()) for d in twice[:5])}")
+        rows = pd.DatetimeIndex(times).normalize().get_indexer(target.index)
+        if np.unique(target.to_numpy()).size < 2:
+            raise AnalogsInputError(
+                "labelled-days table: at least two different regimes are needed to train")
+        return values[rows], target
+
+    def cross_validate(self, pcs, labelled_days, *, n_splits: int = 5) -> dict:
+        """Accuracy of this model on labelled days it was not trained on.
+
+        The labelled days are split into ``n_splits`` folds by calendar year
+        (``sklearn.model_selection.GroupKFold`` over years: neighbouring days share a
+        weather episode, so a day and its neighbours never sit on both sides), or,
+        with labels from a single year, stratified folds
+        (``StratifiedKFold``); each fold is predicted by the model (standardised PCs,
+        logistic regression with this ``C``) fitted on the others, as
+        ``sklearn.model_selection.cross_val_score`` does.
+
+        Returns a dict: ``accuracy`` (mean over folds, NaN when no split is possible),
+        ``fold_accuracy`` (list), ``n_labelled``, ``n_splits`` and ``method``.
+        """
+        from sklearn.linear_model import LogisticRegression
+        from sklearn.model_selection import GroupKFold, StratifiedKFold, cross_val_score
+        from sklearn.pipeline import make_pipeline
+        from sklearn.preprocessing import StandardScaler
+        import warnings
+
+        x, target = self._training_set(pcs, labelled_days, "SupervisedRegimes.cross_validate")
+        y = target.to_numpy()
+        years = target.index.year.to_numpy()
+        smallest = int(pd.Series(y).value_counts().min())
+        if np.unique(years).size >= 2:
+            splits = min(int(n_splits), int(np.unique(years).size))
+            splitter, groups = GroupKFold(n_splits=splits), years
+            method = f"{splits}-fold cross-validation by calendar year (GroupKFold)"
+        elif smallest >= 2:
+            splits = min(int(n_splits), smallest)
+            splitter, groups = StratifiedKFold(n_splits=splits), None
+            method = f"{splits}-fold stratified cross-validation (one year of labels)"
+        else:
+            return {"accuracy": float("nan"), "fold_accuracy": [], "n_labelled": int(len(y)),
+                    "n_splits": 0, "method": "not possible: one year of labels and a label "
+                                             "used once"}
+        model = make_pipeline(StandardScaler(),
+                              LogisticRegression(C=self.C, max_iter=self.max_iter))
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")  # a fold whose training days hold one label
+            scores = cross_val_score(model, x, y, groups=groups, cv=splitter,
+                                     scoring="accuracy", error_score=np.nan)
+        finite = scores[np.isfinite(scores)]
+        return {"accuracy": float(finite.mean()) if finite.size else float("nan"),
+                "fold_accuracy": [float(v) for v in scores], "n_labelled": int(len(y)),
+                "n_splits": int(splits), "method": method}
 
     def _check_fitted(self):
         if not hasattr(self, "coef_"):
@@ -663,7 +1267,8 @@ class SupervisedRegimes:
              "scale": (("mode",), self.scale_)},
             coords={"row": np.arange(n_rows), "mode": np.arange(self.coef_.shape[1])},
             attrs={"model": "SupervisedRegimes", "C": float(self.C),
-                   "max_iter": int(self.max_iter), "labels": ",".join(self.labels),
+                   "max_iter": int(self.max_iter),
+                   "labels": "" if self.labels is None else ",".join(self.labels),
                    "analogs_version": __version__,
                    "created": pd.Timestamp.now("UTC").isoformat()})
 
@@ -671,8 +1276,9 @@ class SupervisedRegimes:
     def from_dataset(cls, ds: xr.Dataset) -> "SupervisedRegimes":
         if ds.attrs.get("model") != "SupervisedRegimes" or "coef" not in ds:
             raise AnalogsInputError("dataset is not a saved SupervisedRegimes (no coef)")
+        labels = str(ds.attrs.get("labels", ""))
         model = cls(float(ds.attrs["C"]), max_iter=int(ds.attrs["max_iter"]),
-                    labels=tuple(str(ds.attrs["labels"]).split(",")))
+                    labels=tuple(labels.split(",")) if labels else None)
         model.coef_ = np.asarray(ds["coef"].values, float).copy()
         model.intercept_ = np.asarray(ds["intercept"].values, float).copy()
         model.classes_ = np.asarray(ds["classes"].values).astype(str)

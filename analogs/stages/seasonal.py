@@ -8,6 +8,12 @@ read or written. :func:`analogs.workflows.briefing.build_briefing` gathers the i
 from a store and writes the briefing (tables, composites, figures and one HTML page)
 for ``analogs climatology``.
 
+Statistics are in the archive's own sampling unit (:func:`archive_sampling`): days for
+a daily archive; for an archive of seasonal or monthly means (eofs' ``hgt_djf.nc`` holds
+one winter mean a year) counts are of *samples*, yearly means are samples per season and
+trends samples per season per decade, and run lengths (persistence) are not defined
+because no two samples are consecutive days.
+
 >>> from analogs.stages.seasonal import parse_months
 >>> parse_months("11-2")
 (1, 2, 11, 12)
@@ -16,6 +22,7 @@ for ``analogs climatology``.
 from __future__ import annotations
 
 import calendar
+from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
@@ -103,18 +110,88 @@ def season_days(months=None) -> float:
                           for year in (2001, 2002, 2003, 2004)]))
 
 
+# ------------------------------------------------------------------- sampling unit
+
+#: Largest median spacing (days) between consecutive tagged dates of a daily archive.
+_DAILY_SPACING_DAYS = 1.5
+
+
+@dataclass(frozen=True)
+class Sampling:
+    """How often an archive holds a sample, for statistics in its own unit.
+
+    Attributes
+    ----------
+    unit : ``"day"`` (one value a day) or ``"sample"`` (seasonal, monthly or other
+        means: one sample stands for many days).
+    spacing_days : median spacing between consecutive samples, days.
+    per_season : days in the season (daily archives, :func:`season_days`) or the median
+        number of samples a year in the season (other archives).
+    consecutive_days : whether any two samples are consecutive calendar days (run
+        lengths need them).
+    """
+
+    unit: str
+    spacing_days: float
+    per_season: float
+    consecutive_days: bool
+
+    @property
+    def plural(self) -> str:
+        """``"days"`` or ``"samples"``: the word of column names and headings."""
+        return f"{self.unit}s"
+
+    def describe(self) -> str:
+        if self.unit == "day":
+            return "daily archive: statistics in days"
+        return (f"one sample every {self.spacing_days:.0f} days ({self.per_season:g} a "
+                "season): statistics in samples, not days; no run lengths (no consecutive days)")
+
+    def to_dict(self) -> dict:
+        return {"unit": self.unit, "spacing_days": float(self.spacing_days),
+                "per_season": float(self.per_season),
+                "consecutive_days": bool(self.consecutive_days),
+                "description": self.describe()}
+
+
+def archive_sampling(tags, months=None) -> Sampling:
+    """The sampling unit of an archive from the dates of its tags.
+
+    Daily when the median spacing between consecutive tagged dates is at most 1.5 days
+    (missing days do not change it); then ``per_season`` is the calendar days of the
+    season (:func:`season_days`). Otherwise each sample is a mean over a period (one
+    winter mean a year, monthly means...): ``per_season`` is the median number of
+    samples a calendar year within ``months``, and statistics are counted in samples.
+    """
+    tags = _check_tags(tags, "archive_sampling")
+    days = tags.index.unique().sort_values()
+    steps = np.diff(days.values).astype("timedelta64[D]").astype(float)
+    spacing = float(np.median(steps)) if steps.size else 1.0
+    consecutive = bool(np.any(steps == 1.0))
+    if spacing <= _DAILY_SPACING_DAYS:
+        return Sampling("day", spacing, season_days(months), consecutive)
+    in_season = days if months is None else days[days.month.isin(_check_months(
+        months, "archive_sampling"))]
+    per_year = pd.Series(1, index=in_season).groupby(in_season.year).sum()
+    per_season = float(np.median(per_year)) if len(per_year) else np.nan
+    return Sampling("sample", spacing, per_season, consecutive)
+
+
 # --------------------------------------------------------------------- frequencies
 
 def _frequency(tags: pd.DataFrame, key: pd.Index, name: str) -> pd.DataFrame:
     regimes = _regimes_of(tags)
+    sampling = archive_sampling(tags)
+    count, tagged = sampling.plural, f"{sampling.plural}_tagged"
     counts = pd.crosstab(key.rename(name), tags["regime"].astype(str).to_numpy())
     counts = counts.reindex(columns=regimes, fill_value=0)
     totals = counts.sum(axis=1)
-    table = counts.stack().rename("days").reset_index()
-    table.columns = [name, "regime", "days"]
-    table["days_tagged"] = table[name].map(totals).astype(np.int64)
-    table["fraction"] = table["days"] / table["days_tagged"]
-    table["days"] = table["days"].astype(np.int64)
+    table = counts.stack().rename(count).reset_index()
+    table.columns = [name, "regime", count]
+    table[tagged] = table[name].map(totals).astype(np.int64)
+    table["fraction"] = table[count] / table[tagged]
+    table[count] = table[count].astype(np.int64)
+    table.attrs["sampling"] = sampling.to_dict()
     return table
 
 
@@ -131,7 +208,9 @@ def regime_frequency_by_month(tags, months=None) -> pd.DataFrame:
     Long table, one row per (month, regime), every regime listed in every month:
     ``month``, ``regime``, ``days`` (number of tagged days of that regime in that
     calendar month, all years), ``days_tagged`` (tagged days of the month, so the
-    ``days`` of a month add up to it) and ``fraction`` = days / days_tagged.
+    ``days`` of a month add up to it) and ``fraction`` = days / days_tagged. On an
+    archive of means (:func:`archive_sampling` unit ``"sample"``) the counts are
+    ``samples`` and ``samples_tagged``; ``attrs["sampling"]`` says which.
     """
     tags = _check_tags(tags, "regime_frequency_by_month", months)
     return _frequency(tags, pd.Index(tags.index.month), "month")
@@ -149,13 +228,15 @@ def regime_frequency_by_year(tags, months=None) -> pd.DataFrame:
 def regime_trend(tags, months=None) -> pd.DataFrame:
     r"""Trend of each regime's yearly frequency, with two significance tests.
 
-    The yearly series is the fraction of tagged days of the season in the regime
-    (:func:`regime_frequency_by_year`), so a partly covered year counts like a
+    The yearly series is the fraction of tagged days (samples) of the season in the
+    regime (:func:`regime_frequency_by_year`), so a partly covered year counts like a
     full one. Two tests of "no trend" are reported side by side:
 
-    - ordinary least squares of the fraction on the year, its slope given as days per
-      decade (slope x days in the season x 10) with the two-sided p-value of the
-      t-test of zero slope (the test of ``scipy.stats.linregress``);
+    - ordinary least squares of the fraction on the year, its slope given per decade in
+      the archive's sampling unit (slope x days in the season x 10 for a daily archive;
+      slope x samples a season x 10 for an archive of means, :func:`archive_sampling`)
+      with the two-sided p-value of the t-test of zero slope (the test of
+      ``scipy.stats.linregress``);
     - Kendall's tau between year and fraction with its two-sided p-value
       (``scipy.stats.kendalltau``, tau-b with ties; the Mann-Kendall trend test, which
       needs no normality and is robust to an outlying year).
@@ -165,33 +246,42 @@ def regime_trend(tags, months=None) -> pd.DataFrame:
     DataFrame indexed by regime: ``n_years``, ``mean_days_per_season``,
     ``slope_days_per_decade``, ``slope_stderr_days_per_decade``, ``p_value``
     (least squares), ``kendall_tau``, ``kendall_p_value``. Fewer than 3 years give NaN.
+    On an archive of means ``days`` reads ``samples`` in the column names (one winter
+    mean a year: ``mean_samples_per_season`` is at most 1). ``attrs["sampling"]``
+    describes the unit.
 
     References: Wilks, *Statistical Methods in the Atmospheric Sciences* (regression
     slope t-test); Mann (1945) and Kendall (1975) for the rank trend test.
     """
     by_year = regime_frequency_by_year(tags, months)
-    days = season_days(months)
+    sampling = archive_sampling(tags, months)
+    per_season = sampling.per_season
+    unit = sampling.plural
+    mean_name, slope_name = f"mean_{unit}_per_season", f"slope_{unit}_per_decade"
+    stderr_name = f"slope_stderr_{unit}_per_decade"
     rows = {}
     for regime, part in by_year.groupby("regime", sort=False):
         years = part["year"].to_numpy(dtype=float)
         fraction = part["fraction"].to_numpy(dtype=float)
-        row = {"n_years": int(years.size), "mean_days_per_season": float(fraction.mean() * days)}
+        row = {"n_years": int(years.size), mean_name: float(fraction.mean() * per_season)}
         if years.size >= 3 and np.ptp(fraction) > 0:
             fit = stats.linregress(years, fraction)
             tau = stats.kendalltau(years, fraction)
-            row.update(slope_days_per_decade=float(fit.slope * days * 10.0),
-                       slope_stderr_days_per_decade=float(fit.stderr * days * 10.0),
-                       p_value=float(fit.pvalue), kendall_tau=float(tau.statistic),
-                       kendall_p_value=float(tau.pvalue))
+            row.update({slope_name: float(fit.slope * per_season * 10.0),
+                        stderr_name: float(fit.stderr * per_season * 10.0),
+                        "p_value": float(fit.pvalue), "kendall_tau": float(tau.statistic),
+                        "kendall_p_value": float(tau.pvalue)})
         elif years.size >= 3:
             # A constant series: no trend and nothing to test.
-            row.update(slope_days_per_decade=0.0, slope_stderr_days_per_decade=0.0,
-                       p_value=1.0, kendall_tau=np.nan, kendall_p_value=1.0)
+            row.update({slope_name: 0.0, stderr_name: 0.0, "p_value": 1.0,
+                        "kendall_tau": np.nan, "kendall_p_value": 1.0})
         else:
-            row.update(slope_days_per_decade=np.nan, slope_stderr_days_per_decade=np.nan,
-                       p_value=np.nan, kendall_tau=np.nan, kendall_p_value=np.nan)
+            row.update({slope_name: np.nan, stderr_name: np.nan, "p_value": np.nan,
+                        "kendall_tau": np.nan, "kendall_p_value": np.nan})
         rows[regime] = row
-    return pd.DataFrame.from_dict(rows, orient="index").rename_axis("regime")
+    table = pd.DataFrame.from_dict(rows, orient="index").rename_axis("regime")
+    table.attrs["sampling"] = sampling.to_dict()
+    return table
 
 
 # ------------------------------------------------------------------------ outcomes
@@ -383,7 +473,9 @@ def regime_persistence(tags) -> pd.DataFrame:
     """How long each regime lasts: statistics of its run lengths (days).
 
     Runs are spells on consecutive days (:func:`regime_runs`); a missing day (or the
-    end of a season when ``tags`` is restricted to some months) ends a run.
+    end of a season when ``tags`` is restricted to some months) ends a run. An archive
+    without consecutive days (seasonal or monthly means) has no runs: every regime
+    gets ``n_runs`` 0 and NaN, and ``attrs["note"]`` says why.
 
     Returns
     -------
@@ -392,7 +484,11 @@ def regime_persistence(tags) -> pd.DataFrame:
     ``max_days``; NaN for a regime that never occurs.
     """
     tags = _check_tags(tags, "regime_persistence")
-    runs = regime_runs(tags)
+    sampling = archive_sampling(tags)
+    # Run lengths need consecutive days: on an archive of means (one winter mean a
+    # year) every "run" would be one sample long, which says nothing about persistence.
+    daily = sampling.unit == "day" and sampling.consecutive_days
+    runs = regime_runs(tags) if daily else regime_runs(tags.iloc[:0])
     rows = {}
     for regime in _regimes_of(tags):
         lengths = runs.loc[runs["regime"] == regime, "length_days"].to_numpy(dtype=float)
@@ -404,7 +500,12 @@ def regime_persistence(tags) -> pd.DataFrame:
                         "median_days": float(np.median(lengths)),
                         "p90_days": float(np.percentile(lengths, 90)),
                         "max_days": float(lengths.max())}
-    return pd.DataFrame.from_dict(rows, orient="index").rename_axis("regime")
+    table = pd.DataFrame.from_dict(rows, orient="index").rename_axis("regime")
+    table.attrs["sampling"] = sampling.to_dict()
+    if not daily:
+        table.attrs["note"] = ("no run lengths: the archive has no consecutive days ("
+                               + sampling.describe() + ")")
+    return table
 
 
 def typical_days(tags, n=5, *, separation=TYPICAL_DAY_SEPARATION) -> pd.DataFrame:
@@ -453,7 +554,7 @@ def season_label(months) -> str:
 
 
 __all__ = [
-    "outcomes_by_regime_and_month", "parse_months", "regime_composites",
+    "Sampling", "archive_sampling", "outcomes_by_regime_and_month", "parse_months", "regime_composites",
     "regime_frequency_by_month", "regime_frequency_by_year", "regime_persistence",
     "regime_runs", "regime_trend", "season_days", "season_label", "season_months",
     "season_tags", "typical_days",

@@ -5,11 +5,17 @@ dims ``(time, lat, lon)``; ``lat`` ascending in degrees north; ``lon`` ascending
 [-180, 180) degrees east; ``time`` datetime64[ns] UTC, one value a day; variables
 ``z500`` (500 hPa geopotential height, gpm) and at most one moisture field ``q850``
 (850 hPa specific humidity, kg kg-1), ``td2m`` (2 m dewpoint, K) or ``pwat``
-(precipitable water, kg m-2), each with ``units`` and ``long_name``.
+(precipitable water, kg m-2), each with ``units`` and ``long_name``. A target on a
+curvilinear grid keeps dims ``(time, y, x)`` with 2-D ``lat`` / ``lon`` until
+:func:`regrid_to`.
 
-Variables are recognised by CF ``standard_name`` first, then by common short names;
-units are read from the ``units`` attribute and, only where the magnitude leaves no
-doubt, inferred with a warning. Everything stays lazy (dask) when ``chunks`` is given:
+Files are NetCDF, Zarr or GRIB (cfgrib over ecCodes, one Dataset per hypercube of the
+messages read). Variables are recognised by CF ``standard_name`` first, then by common short names;
+units are read from the ``units`` attribute by pint with cf-xarray's CF / UDUNITS registry
+(units of another quantity are refused) and, only where the attribute is missing and the
+magnitude leaves no doubt, inferred with a warning. Every field then passes a physical
+plausibility gate (:data:`PLAUSIBLE_RANGE`); missing and infinite values follow
+:func:`apply_missing_data_policy`. Everything stays lazy (dask) when ``chunks`` is given:
 the readers look at coordinates and at most a few time steps for unit inference.
 """
 
@@ -20,15 +26,16 @@ import glob
 import json
 import os
 import re
+import stat
 import warnings
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 import pandas as pd
 import xarray as xr
 
 from analogs._validation import check_box, check_float, check_int, fail
-from analogs.constants import G0, ZERO_CELSIUS_K
+from analogs.constants import G0, WATER_DENSITY
 from analogs.errors import AnalogsInputError
 from analogs.stages.cf import coordinate_attrs
 # Canonical field names, in the order they appear in a canonical Dataset (the --fields entry).
@@ -72,43 +79,67 @@ _SUFFIXED_NAME = re.compile(r"^([a-z_]+?)_?(\d{3,4})$")
 _LAT_NAMES = ("lat", "latitude", "nav_lat", "y", "lats", "xlat")
 _LON_NAMES = ("lon", "longitude", "nav_lon", "x", "lons", "xlong")
 _TIME_NAMES = ("time", "valid_time", "date", "t", "times", "datetime")
-_LEVEL_NAMES = ("level", "plev", "pressure_level", "isobaricinhpa", "lev", "pressure",
-                "lv_isbl0", "levelist")
-
-_HPA_UNITS = {"hpa", "mbar", "millibar", "millibars", "mb", "hectopascal", "hectopascals"}
-_PA_UNITS = {"pa", "pascal", "pascals"}
-
-#: Accepted spellings of each unit (after :func:`_normal_units`), mapped to
-#: (factor, offset): canonical value = value * factor + offset.
-_UNIT_TABLE = {
-    "z500": {
-        "gpm": (1.0, 0.0), "m": (1.0, 0.0),
-        "meter": (1.0, 0.0), "meters": (1.0, 0.0),
-        "metre": (1.0, 0.0), "metres": (1.0, 0.0),
-        "geopotential meters": (1.0, 0.0),
-        "geopotential metres": (1.0, 0.0), "m gpm": (1.0, 0.0),
-        "dam": (10.0, 0.0), "gpdam": (10.0, 0.0),
-        "decameters": (10.0, 0.0), "decametres": (10.0, 0.0),
-        "m2 s-2": (1.0 / G0, 0.0),
-    },
-    "q850": {
-        "kg kg-1": (1.0, 0.0), "1": (1.0, 0.0),
-        "g kg-1": (1e-3, 0.0),
-    },
-    "td2m": {
-        "k": (1.0, 0.0), "kelvin": (1.0, 0.0),
-        "degk": (1.0, 0.0),
-        "degc": (1.0, ZERO_CELSIUS_K),
-        "c": (1.0, ZERO_CELSIUS_K),
-        "celsius": (1.0, ZERO_CELSIUS_K),
-        "degrees celsius": (1.0, ZERO_CELSIUS_K),
-        "degrees c": (1.0, ZERO_CELSIUS_K),
-    },
-    "pwat": {
-        "kg m-2": (1.0, 0.0), "mm": (1.0, 0.0),
-        "cm": (10.0, 0.0), "m": (1000.0, 0.0),
-    },
+#: Units are read by pint with cf-xarray's CF / UDUNITS registry (``cf_xarray.units``).
+#: Meteorological spellings that grammar does not know, or reads as something else, are
+#: rewritten first (keys in lower case): "mb" would be a millibarn, "c" the speed of
+#: light, "k" Boltzmann's constant, "pa" a picoyear, and "degrees Celsius" an angle
+#: times a temperature difference.
+_UNIT_SPELLINGS = {
+    "gpm": "m", "m gpm": "m", "gpdam": "dam", "geopotential meters": "m",
+    "geopotential metres": "m", "geopotential meter": "m", "geopotential metre": "m",
+    "k": "K", "degk": "K", "deg k": "K", "degrees k": "K", "degrees_k": "K",
+    "degrees kelvin": "K", "c": "degC", "degc": "degC", "deg c": "degC",
+    "degrees c": "degC", "degrees_c": "degC", "degree c": "degC", "degree_c": "degC",
+    "degreesc": "degC", "degrees celsius": "degC", "degree celsius": "degC",
+    "f": "degF", "degf": "degF", "deg f": "degF", "degrees f": "degF",
+    "degrees fahrenheit": "degF", "fahrenheit": "degF",
+    "pa": "Pa", "pascal": "Pa", "pascals": "Pa", "hpa": "hPa", "kpa": "kPa",
+    "mb": "mbar", "mbar": "mbar", "millibar": "mbar", "millibars": "mbar",
 }
+
+#: What each field's units must measure, in words, with examples of accepted units.
+_EXPECTED_QUANTITY = {
+    "z500": "a height (gpm, m, dam) or a geopotential (m2 s-2)",
+    "q850": "a mass ratio (kg kg-1, g kg-1)",
+    "td2m": "a temperature (K, degC)",
+    "pwat": "a mass per area (kg m-2) or a depth of liquid water (mm)",
+}
+
+#: Physical plausibility gate: the range (canonical units) every value of a field must
+#: lie in after its units are converted, whether or not its file states a level. Wider
+#: than any observed value, narrower than any scale error of the units (dam, m2 s-2 or
+#: g kg-1 mislabelled):
+#:
+#: - z500, 4000-6500 gpm: observed 500 hPa heights lie within about 4600-6000 gpm
+#:   (common practice, no source); the 1976 US Standard Atmosphere puts 500 hPa at
+#:   5574 m (checked against MetPy in the tests).
+#: - q850, -0.001 to 0.05 kg kg-1: 0.05 is above saturation at 850 hPa for any
+#:   temperature up to 35 degC (Bolton 1980 saturation vapour pressure; checked against
+#:   MetPy in the tests), while observed 850 hPa values stay below about 0.025 (common
+#:   practice, no source); reanalyses carry tiny negative values from numerical
+#:   transport (from memory).
+#: - td2m, 173.15-313.15 K (-100 to +40 degC): the lowest air temperature measured at the
+#:   surface is -89.2 degC (Vostok, 1983) and the highest dew point reported about 35 degC
+#:   (Dhahran, 2003); a dew point never exceeds the air temperature (WMO archive of
+#:   weather and climate extremes, from memory).
+#: - pwat, -0.5 to 100 kg m-2: the moistest tropical columns hold about 70-80 kg m-2
+#:   (common practice, no source).
+PLAUSIBLE_RANGE = {
+    "z500": (4000.0, 6500.0),
+    "q850": (-1e-3, 0.05),
+    "td2m": (173.15, 313.15),
+    "pwat": (-0.5, 100.0),
+}
+
+#: Scale errors of the units that may be converted, with a warning saying so, when the
+#: stated units give implausible values and one of these gives plausible ones (the
+#: windows of :data:`_INFERENCE` decide which, without overlap): heights in decametres
+#: or geopotential labelled "m", specific humidity in g kg-1 labelled kg kg-1.
+_SCALE_ALTERNATIVES = {"z500": ("gpm", "dam", "m2 s-2"), "q850": ("kg kg-1", "g kg-1")}
+_UNIT_WORDS = {"gpm": "metres (gpm)", "dam": "decametres (dam)",
+               "m2 s-2": "geopotential in m2 s-2 (height times g0)",
+               "kg kg-1": "kilograms per kilogram (kg kg-1)",
+               "g kg-1": "grams per kilogram (g kg-1)"}
 
 #: Magnitude windows (min, max of a sample) that identify missing units without doubt.
 #: 500 hPa heights lie in about 4600-6000 gpm (common practice, no source); the
@@ -136,6 +167,8 @@ class _Candidate:
     name: str
     field: str
     implied_level_hpa: float | None  # from a name such as ``zg500``
+    curvilinear: bool = False  # 2-D latitude / longitude accepted (targets; 15a)
+    computed_from: str | None = None  # how a moisture field is computed (15a)
 
 
 # ---------------------------------------------------------------------------
@@ -145,14 +178,17 @@ class _Candidate:
 def open_archive(paths, *, fields=None, region=None, hour=P.hour.default,
                  daily=P.daily.default, chunks=None, progress=False, max_missing_fraction=0.1,
                  max_gap_days=2) -> xr.Dataset:
-    """Open one or many NetCDF / Zarr files as a canonical daily archive.
+    """Open one or many NetCDF / Zarr / GRIB files as a canonical daily archive.
 
     Parameters
     ----------
     paths : str, os.PathLike or iterable of them
-        NetCDF files, ``.zarr`` directories, glob patterns, or plain directories
-        (every ``*.nc``, ``*.nc4`` and ``*.zarr`` inside). Files may hold one variable
-        each (per-variable, per-year files) or several.
+        NetCDF files, GRIB / GRIB2 files (:func:`_open_grib`), ``.zarr`` directories,
+        glob patterns, or plain directories (every ``*.nc``, ``*.nc4``, ``*.zarr`` and
+        ``*.grib`` / ``*.grib2`` / ``*.grb`` / ``*.grb2`` inside). Files may hold one
+        variable each (per-variable, per-year files) or several. A moisture field a
+        file lacks is computed from others where the conversion is exact
+        (:func:`_converted_moisture`, with a warning).
     fields : sequence of str, optional
         Canonical fields to read (from :data:`SUPPORTED_FIELDS`). ``None``: ``z500``
         plus the first moisture field found in the order of
@@ -188,6 +224,7 @@ def open_archive(paths, *, fields=None, region=None, hour=P.hour.default,
     max_gap_days = check_int(max_gap_days, "max_gap_days", "open_archive", min_value=0)
     P.daily.check(daily, "open_archive")
     files = _expand_paths(paths, "open_archive")
+    guard = read_guard(files)  # a file damaged or changed under the reads: named
     requested = _check_fields(fields, "open_archive")
     south_north_west_east = _check_region(region)
     candidates, seen = [], {}
@@ -195,19 +232,24 @@ def open_archive(paths, *, fields=None, region=None, hour=P.hour.default,
         for path in _progress(files, progress):
             candidates.extend(_recognised_in(path, chunks, seen))
     chosen = _choose_fields(requested, candidates, files, seen)
-    arrays, duplicates = {}, 0
+    _say_computed(chosen, candidates, _describe(files))
+    arrays, duplicates, origins = {}, 0, {}
     for field in chosen:
-        pieces = [_sorted_in_time(_canonical_array(c), c.path)
-                  for c in candidates if c.field == field]
+        found = [c for c in candidates if c.field == field]
+        pieces = [_sorted_in_time(_canonical_array(c), c.path) for c in found]
+        origins[field] = [(c.path, c.name, p["time"].values, p.attrs.pop("units_in_file", None))
+                          for c, p in zip(found, pieces)]
         arrays[field], dropped = _drop_duplicate_times(_join_pieces(field, pieces), files)
         duplicates = max(duplicates, dropped)
     ds = _merge_fields(arrays, files)
     ds = _to_daily(ds, hour=hour, how=daily, files=files)
     if south_north_west_east is not None:
         ds = subset_region(ds, south_north_west_east, source=_describe(files))
-    ds, report = apply_missing_data_policy(ds, max_missing_fraction=max_missing_fraction,
-                                           max_gap_days=max_gap_days,
-                                           source=_describe(files))
+    with guard:  # the first pass over every value
+        ds, report = apply_missing_data_policy(ds, max_missing_fraction=max_missing_fraction,
+                                               max_gap_days=max_gap_days,
+                                               source=_describe(files), origins=origins)
+    guard.check_unchanged()
     report["n_duplicate_times_dropped"] = int(duplicates)
     if chunks:
         ds = ds.chunk({k: v for k, v in chunks.items() if k in ds.dims})
@@ -215,23 +257,33 @@ def open_archive(paths, *, fields=None, region=None, hour=P.hour.default,
     return ds
 
 
-def open_target(path, *, time=None, fields=None) -> xr.Dataset:
+def open_target(path, *, time=None, fields=None, members=False) -> xr.Dataset:
     """Open one forecast or target field file, on any grid and convention.
 
     Parameters
     ----------
     path : str or os.PathLike
-        One NetCDF file or ``.zarr`` directory.
+        One NetCDF or GRIB file or ``.zarr`` directory. A curvilinear grid (2-D
+        latitude and longitude) is kept as it is, dims ``(time, y, x)``; :func:`regrid_to`
+        brings it to a regular grid.
     time : str, optional
         ISO 8601 valid time to select. Required when the file holds several times;
-        a date alone (``"2024-05-03"``) selects the only time of that day.
+        a date alone (``"2024-05-03"``) selects the only time of that day. ``"all"``
+        keeps every time, ``"START/END"`` (ISO 8601 interval, either end may be left
+        open) the times in that range (:func:`select_valid_times`).
     fields : sequence of str, optional
-        As in :func:`open_archive`.
+        As in :func:`open_archive`; ``None`` gives ``z500`` and every moisture field the
+        file holds or gives by conversion (the preferred one first).
+    members : bool
+        Keep an ensemble-member dimension (:func:`member_dimension`) as ``member``;
+        without it a member dimension is refused as an extra dimension.
 
     Returns
     -------
     xarray.Dataset
-        Canonical, with a ``time`` dim of length one (NaT when the file has no time).
+        Canonical, with a ``time`` dim of length one (NaT when the file has no time),
+        or the times asked for; with ``members``, dims ``(member, time, lat, lon)``
+        when the file holds more than one member.
     """
     files = _expand_paths(path, "open_target")
     if len(files) != 1:
@@ -239,33 +291,49 @@ def open_target(path, *, time=None, fields=None) -> xr.Dataset:
                                 f"{len(files)}: {_describe(files)}")
     (file,) = files
     requested = _check_fields(fields, "open_target")
-    dataset = _open_file(file, None)
-    candidates = _recognise(file, dataset)
-    chosen = _choose_fields(requested, candidates, files,
-                            {file: sorted(str(v) for v in dataset.data_vars)})
-    arrays = {field: _canonical_array(next(c for c in candidates if c.field == field),
-                                      time_optional=True) for field in chosen}
+    parts, names = _open_parts(file, None)  # GRIB: one Dataset per hypercube (15a)
+    candidates = [replace(c, curvilinear=True) for c in _candidates_in(file, parts)]
+    chosen = _choose_fields(requested, candidates, files, {file: names})
+    _say_computed(chosen, candidates, file)
+    member = next(filter(None, map(member_dimension, parts)), None) if members else None
+    arrays = {field: _target_array(next(c for c in candidates if c.field == field), member)
+              for field in chosen}
+    if requested is None:  # every other moisture field the file gives (15a)
+        arrays.update(_other_moisture(arrays, candidates, member))
     ds = _merge_fields(arrays, files)
-    ds = _select_time(ds, time, file)
+    ds = select_valid_times(ds, time, file)  # one time, "all" or START/END (15b)
+    ds = _checked_target_values(ds, file, {c.field: c.name for c in candidates})  # 13b
     ds.attrs = {"source_files": file}
     return ds
 
 
-def regrid_to(ds: xr.Dataset, lat, lon) -> xr.Dataset:
+def regrid_to(ds: xr.Dataset, lat, lon, *, partial=False) -> xr.Dataset:
     """Bilinear interpolation of a canonical field to the grid ``(lat, lon)``.
 
     Linear in latitude and longitude (``xarray.Dataset.interp``, scipy ``interpn``).
     A global source grid is wrapped periodically in longitude. Target points may lie
     up to half a source grid step outside the source extent (extrapolated linearly);
-    anything further raises :class:`AnalogsInputError` naming both extents.
+    anything further raises :class:`AnalogsInputError` naming both extents, or with
+    ``partial=True`` comes back as NaN (the caller measures the uncovered share; see
+    :func:`analogs.workflows.find.on_store_grid`).
 
     Parameters
     ----------
     ds : xarray.Dataset
-        Fields with ``lat`` and ``lon`` dims (any longitude convention or order).
+        Fields with ``lat`` and ``lon`` dims (any longitude convention or order);
+        other dims (``member``, ``time``) are carried along.
     lat, lon : 1-D arrays of degrees
         Target grid, for example a store's grid.
+    partial : bool
+        Leave target points outside the source extent NaN instead of refusing.
+
+    A field on a curvilinear grid (2-D ``lat`` and ``lon`` over dims ``(y, x)``, as
+    :func:`open_target` gives a Lambert conformal or other projected grid) is
+    interpolated linearly on a triangulation of its points instead
+    (:func:`_regrid_curvilinear`).
     """
+    if ds["lat"].ndim == 2:
+        return _regrid_curvilinear(ds, lat, lon, partial=partial)
     ds = normalise_grid(ds)
     lat = np.asarray(lat, dtype=float)
     lon = _wrap_lon(np.asarray(lon, dtype=float))
@@ -278,7 +346,7 @@ def regrid_to(ds: xr.Dataset, lat, lon) -> xr.Dataset:
               and lat.max() <= src_lat[-1] + half_lat + 1e-9)
     lon_ok = periodic or (lon.min() >= src_lon[0] - half_lon - 1e-9
                           and lon.max() <= src_lon[-1] + half_lon + 1e-9)
-    if not (lat_ok and lon_ok):
+    if not (lat_ok and lon_ok) and not partial:
         raise AnalogsInputError(
             f"{source}: the field covers lat {src_lat[0]:g} to {src_lat[-1]:g}, lon "
             f"{src_lon[0]:g} to {src_lon[-1]:g}, but the target grid needs lat "
@@ -287,7 +355,16 @@ def regrid_to(ds: xr.Dataset, lat, lon) -> xr.Dataset:
         ds = xr.concat([ds.isel(lon=[-1]).assign_coords(lon=src_lon[-1:] - 360.0), ds,
                         ds.isel(lon=[0]).assign_coords(lon=src_lon[:1] + 360.0)], dim="lon",
                        data_vars="all", coords="minimal", join="override")
-    out = ds.interp(lat=lat, lon=lon, method="linear", kwargs={"fill_value": None})
+    # xarray interpolates one axis at a time (scipy interp1d): "extrapolate" makes the
+    # half step beyond the edge linear, as promised above; None gave NaN there (15b).
+    out = ds.interp(lat=lat, lon=lon, method="linear", kwargs={"fill_value": "extrapolate"})
+    if not (lat_ok and lon_ok):  # partial: NaN beyond half a step outside (15b)
+        inside_lat = ((lat >= src_lat[0] - half_lat - 1e-9)
+                      & (lat <= src_lat[-1] + half_lat + 1e-9))
+        inside_lon = periodic | ((lon >= src_lon[0] - half_lon - 1e-9)
+                                 & (lon <= src_lon[-1] + half_lon + 1e-9))
+        out = out.where(xr.DataArray(inside_lat[:, None] & inside_lon[None, :],
+                                     dims=("lat", "lon")))
     out["lat"].attrs.update(_LAT_ATTRS)
     out["lon"].attrs.update(_LON_ATTRS)
     for name in out.data_vars:
@@ -384,7 +461,8 @@ def _expand_paths(paths, owner):
             matches = [item.rstrip("/")]
         elif os.path.isdir(item):
             matches = sorted(p for p in glob.glob(os.path.join(item, "*"))
-                             if p.endswith((".nc", ".nc4", ".netcdf", ".zarr")))
+                             if p.lower().endswith((".nc", ".nc4", ".netcdf", ".zarr")
+                                                   + GRIB_SUFFIXES))
             if not matches:
                 raise AnalogsInputError(f"{item}: directory holds no *.nc or *.zarr file")
         elif glob.has_magic(item):
@@ -401,9 +479,8 @@ def _expand_paths(paths, owner):
 
 def _recognised_in(path, chunks, seen):
     """The supported variables of one file (a warning when it has none)."""
-    dataset = _open_file(path, chunks)
-    found = _recognise(path, dataset)
-    seen[path] = sorted(str(v) for v in dataset.data_vars)
+    parts, seen[path] = _open_parts(path, chunks)
+    found = _candidates_in(path, parts)
     if not found:
         warnings.warn(f"{path}: no supported variable found (variables: "
                       f"{', '.join(seen[path]) or 'none'}); file skipped",
@@ -433,8 +510,10 @@ def _open_file(path, chunks):
     """Open one file with xarray (lazily); raise a one-line error when it cannot."""
     if not os.path.exists(path):
         raise AnalogsInputError(f"{path}: no such file")
+    _refuse_special_file(path)  # a FIFO or device would block the reads below
     open_chunks = {} if chunks else None
     if path.endswith(".zarr"):
+        _check_zarr(path)
         try:
             return xr.open_zarr(path, chunks=open_chunks)
         except ImportError:
@@ -474,6 +553,154 @@ def _open_file(path, chunks):
                                 f"truncated or damaged ({_one_line(err)})") from None
     _check_not_truncated(path, dataset)
     return dataset
+
+
+def _refuse_special_file(path):
+    """Refuse a path that is neither a regular file nor a directory (a named pipe, a
+    device, a socket): reading one may block for ever. ``os.stat`` looks without opening."""
+    mode = os.stat(path).st_mode
+    if stat.S_ISREG(mode) or stat.S_ISDIR(mode):
+        return
+    kind = ("a named pipe (FIFO)" if stat.S_ISFIFO(mode) else
+            "a character device" if stat.S_ISCHR(mode) else
+            "a block device" if stat.S_ISBLK(mode) else
+            "a socket" if stat.S_ISSOCK(mode) else "a special file")
+    raise AnalogsInputError(f"{path}: is {kind}, not a regular file; expected a NetCDF "
+                            "file or a .zarr directory")
+
+
+def _zarr_floor():
+    """The lowest zarr version the installed xarray reads (its own requirement), or 3."""
+    from importlib import metadata
+
+    from packaging.requirements import Requirement
+    try:
+        for text in metadata.requires("xarray") or ():
+            requirement = Requirement(text)
+            if requirement.name == "zarr":
+                floors = [s.version for s in requirement.specifier if s.operator in (">=", ">")]
+                if floors:
+                    return floors[0]
+    except (metadata.PackageNotFoundError, ValueError):
+        pass
+    return "3"
+
+
+def _check_zarr(path):
+    """Refuse Zarr reading without zarr-python, or with a version xarray cannot use."""
+    from packaging.version import InvalidVersion, Version
+    floor = _zarr_floor()
+    try:
+        import zarr
+    except ImportError:
+        raise AnalogsInputError(f"{path}: reading Zarr needs the 'zarr' package "
+                                f"(pip install 'zarr>={floor}')") from None
+    installed = str(getattr(zarr, "__version__", "0"))
+    try:
+        too_old = Version(installed) < Version(floor)
+    except InvalidVersion:
+        too_old = False
+    if too_old:
+        raise AnalogsInputError(
+            f"{path}: reading Zarr needs zarr {floor} or later, the version the installed "
+            f"xarray {xr.__version__} reads; zarr {installed} is installed "
+            f"(pip install 'zarr>={floor}')")
+
+
+def read_guard(paths):
+    """A context that turns an error raised while archive data are read into one
+    :class:`AnalogsInputError` naming the file: a damaged chunk of a NetCDF-4 file
+    (netCDF4's "NetCDF: HDF error"), or a file changed or cut while it was being read.
+
+    The data of an archive are read where they are computed (the missing-data pass, the
+    climatology, the EOF passes), long after the files were opened; such errors carry
+    no file name. On one, the files are looked at: one whose size, modification time or
+    inode changed since the guard was made is named as changed; otherwise each NetCDF
+    file is read through, and the first that cannot be read is named as damaged. When
+    no file is at fault the error passes unchanged (it is not an input problem). A file
+    changed without any error (HDF5 reads zeros past the end of a file cut short) is
+    caught by ``check_unchanged()``, to call when the reads are done and before their
+    results are kept.
+    """
+    try:
+        files = _expand_paths(paths, "read_guard")
+    except AnalogsInputError:
+        files = []
+    return _ReadGuard(files)
+
+
+class _ReadGuard:
+    def __init__(self, files):
+        self.files = list(files)
+        self.before = {f: _signature(f) for f in self.files}
+
+    def check_unchanged(self):
+        """Refuse when a file changed since the guard was made: a file cut or rewritten
+        under a lazy read may give other values (HDF5 reads zeros past the end of a
+        truncated file) without any error."""
+        for path in self.files:
+            if self.before.get(path) is not None and _signature(path) != self.before[path]:
+                raise AnalogsInputError(
+                    f"{path}: the file changed while it was being read (its size or "
+                    "modification time differ from when it was opened), so the values "
+                    "read may mix two versions; run again once it is complete and no "
+                    "longer being written")
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, kind, error, traceback):
+        if error is None or isinstance(error, AnalogsInputError) or not isinstance(
+                error, (OSError, RuntimeError, ValueError, KeyError, IndexError, EOFError)):
+            return False
+        message = _unreadable_file(self.files, self.before, error)
+        if message is None:
+            return False
+        raise AnalogsInputError(message) from None
+
+
+def _signature(path):
+    """(inode, size, modification time) of a regular file; None for anything else."""
+    try:
+        info = os.stat(path)
+    except OSError:
+        return None
+    return (info.st_ino, info.st_size, info.st_mtime_ns) if stat.S_ISREG(info.st_mode) else None
+
+
+def _unreadable_file(files, before, error):
+    """The message naming the file behind a read ``error``, or None."""
+    for path in files:
+        if before.get(path) is not None and _signature(path) != before[path]:
+            return (f"{path}: the file changed while it was being read ({_one_line(error)}); "
+                    "run again once it is complete and no longer being written")
+    for path in files:
+        problem = _damaged_data(path)
+        if problem is not None:
+            return (f"{path}: its data cannot be read ({problem}); the file is damaged "
+                    "(a corrupt or missing chunk) or was cut short")
+    return None
+
+
+def _damaged_data(path):
+    """The error met reading every value of a NetCDF file, chunk row by chunk row; None
+    when it reads (or is not a NetCDF file)."""
+    if _signature(path) is None:
+        return None
+    import netCDF4
+    try:
+        with netCDF4.Dataset(path) as handle:
+            for variable in handle.variables.values():
+                if variable.ndim == 0:
+                    variable[...]
+                    continue
+                chunking = variable.chunking()
+                step = chunking[0] if isinstance(chunking, list) else 1
+                for start in range(0, variable.shape[0], max(int(step), 1)):
+                    variable[start:start + step]
+    except (OSError, RuntimeError, ValueError, KeyError, IndexError, EOFError) as err:
+        return _one_line(err)
+    return None
 
 
 def _undecodable_times(path):
@@ -551,11 +778,13 @@ def _recognise(path, dataset):
             continue
         standard = str(var.attrs.get("standard_name", "")).strip().lower()
         if standard in _STANDARD_NAMES:
+            if _misplaced(_STANDARD_NAMES[standard], var):
+                continue
             by_standard.append(_Candidate(path, dataset, str(name),
                                           _STANDARD_NAMES[standard], None))
             continue
         field, level = _field_from_name(str(name))
-        if field is not None:
+        if field is not None and not _misplaced(field, var):
             by_name.append(_Candidate(path, dataset, str(name), field, level))
     found, taken = [], set()
     for candidate in by_standard + by_name:
@@ -590,7 +819,9 @@ def _choose_fields(requested, candidates, files, seen):
                 f"no 500 hPa height variable (standard_name geopotential_height or "
                 f"geopotential, or a name like z, hgt, zg) in {_describe(files)} "
                 f"(variables: {variables})")
-        moisture = [f for f in MOISTURE_PREFERENCE if f in found][:1]
+        held = {c.field for c in candidates if c.computed_from is None}
+        moisture = ([f for f in MOISTURE_PREFERENCE if f in held]
+                    or [f for f in MOISTURE_PREFERENCE if f in found])[:1]
         return ["z500"] + moisture
     missing = [f for f in requested if f not in found]
     if missing:
@@ -615,36 +846,44 @@ _LON_ATTRS = coordinate_attrs("lon", "units", "standard_name", "long_name")
 _TIME_ATTRS = {"standard_name": "time", "long_name": "valid time (UTC)"}
 
 
-def _canonical_array(candidate, *, time_optional=False):
+def _canonical_array(candidate, *, time_optional=False, check_sample=None):
     ds, name, path, field = candidate.dataset, candidate.name, candidate.path, candidate.field
     da = ds[name]
     where = f"{path}: variable {name!r}"
+    two_d = candidate.curvilinear
     lat_dim, lat = _find_axis(da, _LAT_NAMES, "latitude", ("degrees_north", "degree_north",
-                                                           "degrees_n", "degree_n"), where)
+                                                           "degrees_n", "degree_n"), where,
+                              two_d=two_d)
     lon_dim, lon = _find_axis(da, _LON_NAMES, "longitude", ("degrees_east", "degree_east",
-                                                            "degrees_e", "degree_e"), where)
+                                                            "degrees_e", "degree_e"), where,
+                              two_d=two_d)
+    if two_d:
+        lat_dim, lon_dim = _horizontal_dims(lat_dim, lon_dim, where)
     time_dim, times = _find_time(da, where, optional=time_optional)
     da, level_known = _select_level(da, field, candidate.implied_level_hpa, where,
                                     keep=(lat_dim, lon_dim, time_dim))
     extra = [d for d in da.dims if d not in (lat_dim, lon_dim, time_dim)]
     too_big = [d for d in extra if da.sizes[d] != 1]
     if too_big:
+        described = [f"{d} (units {da[d].attrs['units']!r}, not a pressure)"
+                     if d in da.coords and da[d].attrs.get("units") else d for d in too_big]
         raise AnalogsInputError(
-            f"{where} has extra dimension(s) {', '.join(too_big)}; expected only time, "
-            "latitude, longitude and a pressure level")
+            f"{where} has extra dimension(s) {', '.join(described)}; expected only time, "
+            "latitude, longitude and a pressure level (in units of pressure: hPa, Pa, kPa)")
     if extra:
         da = da.isel({d: 0 for d in extra})
     da = da.drop_vars(list(da.coords))
     if time_dim is None:
         da = da.expand_dims(time=1)
         time_dim = "time"
-    da = da.transpose(time_dim, lat_dim, lon_dim)
-    da = da.rename({time_dim: "_t", lat_dim: "_y", lon_dim: "_x"}).rename(
-        {"_t": "time", "_y": "lat", "_x": "lon"})
-    da = da.assign_coords(time=times, lat=lat, lon=lon)
+    da = _on_canonical_axes(da, (time_dim, lat_dim, lon_dim), times, lat, lon)
     if not np.issubdtype(da.dtype, np.floating):
         da = da.astype("float32")
-    da = _convert_units(da, ds[name].attrs, field, where)
+    # Targets (time optional) pass the plausibility gate here, archives every day in the
+    # one pass of apply_missing_data_policy (no extra read per file) (13b).
+    da, units_in_file = _convert_units(
+        da, ds[name].attrs, field, where, level_known=level_known,
+        check_sample=time_optional if check_sample is None else check_sample)
     if field == "z500" and not level_known:
         low, high = _sample_range(da)
         lo_ok, hi_ok = _Z500_PLAUSIBLE_GPM
@@ -657,8 +896,12 @@ def _canonical_array(candidate, *, time_optional=False):
                       f"values ({low:.0f} to {high:.0f} gpm) fit", UserWarning, stacklevel=3)
     da.attrs = dict(FIELD_ATTRS[field])
     da.name = field
-    da = normalise_grid(da.assign_attrs(source_files=path))
+    if lat.ndim == 1:
+        da = normalise_grid(da.assign_attrs(source_files=path))
     da.attrs = dict(FIELD_ATTRS[field])
+    if candidate.computed_from:
+        da.attrs["comment"] = candidate.computed_from
+    da.attrs["units_in_file"] = units_in_file  # taken off by open_archive / open_target
     da["time"].attrs = dict(_TIME_ATTRS)
     return da
 
@@ -669,9 +912,15 @@ def _matches(coord, names, standard_name, units):
             or str(coord.attrs.get("units", "")).lower() in units)
 
 
-def _find_axis(da, names, standard_name, units, where):
-    """(dim name, 1-D float values) of the latitude or longitude axis of ``da``."""
-    for key in list(da.dims) + [c for c in da.coords if c not in da.dims]:
+def _find_axis(da, names, standard_name, units, where, *, two_d=False):
+    """(dim name, 1-D float values) of the latitude or longitude axis of ``da``; with
+    ``two_d``, a 2-D coordinate gives (its two dim names, 2-D values)."""
+    keys = list(da.dims) + [c for c in da.coords if c not in da.dims]
+    if two_d:  # a coordinate that says what it is before one that is only so named
+        keys.sort(key=lambda k: k not in da.coords or not (
+            str(da.coords[k].attrs.get("standard_name", "")).lower() == standard_name
+            or str(da.coords[k].attrs.get("units", "")).lower() in units))
+    for key in keys:
         if key not in da.coords:
             continue
         coord = da.coords[key]
@@ -680,6 +929,8 @@ def _find_axis(da, names, standard_name, units, where):
         stated = str(coord.attrs.get("units", "")).strip().lower()
         if stated and not stated.startswith("deg"):
             continue  # projected x / y in metres, not a latitude-longitude axis
+        if two_d and coord.ndim == 2:
+            return _two_d_axis(coord, key, standard_name, where)
         if coord.ndim != 1:
             raise AnalogsInputError(
                 f"{where}: {standard_name} {key!r} is {coord.ndim}-D; expected a regular "
@@ -752,28 +1003,19 @@ def _as_datetime64(coord, where):
 
 
 def _level_coords(da):
-    """Coordinates of ``da`` that look like pressure levels."""
-    found = []
-    for key, coord in da.coords.items():
-        if coord.ndim > 1:
-            continue
-        units = str(coord.attrs.get("units", "")).strip().lower()
-        named = str(key).lower() in _LEVEL_NAMES
-        standard = str(coord.attrs.get("standard_name", "")).lower() == "air_pressure"
-        z_axis = (str(coord.attrs.get("axis", "")).upper() == "Z"
-                  and units in _HPA_UNITS | _PA_UNITS)
-        if named or standard or z_axis:
-            found.append(str(key))
-    return found
+    """Coordinates of ``da`` that are pressure levels (:func:`_is_pressure_level`: by CF
+    ``axis`` / ``positive`` / ``standard_name`` and units, a level name alone only
+    without units), dimension coordinates first."""
+    keys = [str(k) for k, c in da.coords.items() if _is_pressure_level(k, c)]
+    return sorted(keys, key=lambda k: k not in da.dims)
 
 
 def _levels_in_hpa(coord, where):
     values = np.atleast_1d(np.asarray(coord.values, dtype=float))
     units = str(coord.attrs.get("units", "")).strip().lower()
-    if units in _HPA_UNITS:
-        return values
-    if units in _PA_UNITS:
-        return values / 100.0
+    pressure, to_hpa = _pressure_unit(units)
+    if pressure:
+        return values * to_hpa
     guess = "Pa" if np.nanmax(values) > 1100.0 else "hPa"
     warnings.warn(f"{where}: level coordinate {coord.name!r} has "
                   f"{'no units' if not units else f'unknown units {units!r}'}; taken as "
@@ -815,45 +1057,213 @@ def _list(values):
     return ", ".join(f"{v:g}" for v in np.atleast_1d(values))
 
 
-def _normal_units(units):
-    """Lower-case, single-spaced units with ``**``/``^`` powers and ``/`` rewritten."""
-    text = str(units).strip().lower().replace("**", "").replace("^", "")
-    text = text.replace("°", "deg").replace("degrees_", "degrees ").replace("deg_", "deg")
-    text = re.sub(r"\s+", " ", text)
-    replacements = {"kg/kg": "kg kg-1", "g/kg": "g kg-1", "m2/s2": "m2 s-2",
-                    "kg/m2": "kg m-2", "kg.m-2": "kg m-2", "m2.s-2": "m2 s-2",
-                    "kg.kg-1": "kg kg-1", "g.kg-1": "g kg-1"}
-    return replacements.get(text, text)
+def _unit_registry():
+    """cf-xarray's pint registry of CF / UDUNITS units (imported on first use: building it
+    takes about half a second, which a query on an archive date does not need).
+
+    Importing ``cf_xarray.units`` makes its registry pint's application registry for the
+    whole process; the previous one is put back, so reading a file changes no global
+    setting (other libraries, MetPy among them, keep working with their own quantities).
+    """
+    import sys
+
+    import pint
+    if "cf_xarray.units" not in sys.modules:
+        previous = pint.get_application_registry().get()
+        try:
+            import cf_xarray.units  # noqa: F401  (builds the registry)
+        finally:
+            pint.set_application_registry(previous)
+    return sys.modules["cf_xarray.units"].units
 
 
-def _convert_units(da, attrs, field, where):
+def _parse_units(text):
+    """The pint unit of a units attribute, or None when the registry cannot read it."""
+    import tokenize
+
+    import pint
+    cleaned = " ".join(str(text).split())
+    cleaned = _UNIT_SPELLINGS.get(cleaned.lower(), cleaned)
+    try:
+        return _unit_registry().Unit(cleaned)
+    except (pint.PintError, AssertionError, AttributeError, TypeError, ValueError,
+            ZeroDivisionError, SyntaxError, tokenize.TokenError):
+        return None
+
+
+def _affine(unit, target):
+    """(factor, offset) with ``value in target = value in unit * factor + offset``.
+
+    Rounded to 12 significant digits: the registry's definitions are exact decimals,
+    and the rounding removes the last-bit error of taking an offset unit's factor as
+    a difference (274.15 K - 273.15 K)."""
+    registry = _unit_registry()
+    zero = float(registry.Quantity(0.0, unit).to(target).magnitude)
+    one = float(registry.Quantity(1.0, unit).to(target).magnitude)
+    return float(f"{one - zero:.12g}"), float(f"{zero:.12g}")
+
+
+def _field_conversion(unit, field):
+    """(factor, offset) from ``unit`` to the canonical unit of ``field``, or None when
+    ``unit`` measures another quantity."""
+    from pint.util import to_units_container
+    registry = _unit_registry()
+    dim = unit.dimensionality
+    if field == "z500":
+        if dim == {"[length]": 1}:
+            return _affine(unit, "m")
+        if dim == {"[length]": 2, "[time]": -2}:  # geopotential: divided by g0
+            return _affine(unit, "m2 s-2")[0] / G0, 0.0
+    elif field == "q850":
+        # A ratio of masses only: "%" (relative humidity) or an angle are not.
+        parts = to_units_container(unit)
+        if not dim and all(registry.Unit(name).dimensionality == {"[mass]": 1}
+                           for name in parts):
+            return _affine(unit, "dimensionless")
+    elif field == "td2m":
+        if dim == {"[temperature]": 1}:
+            return _affine(unit, "K")
+    elif field == "pwat":
+        if dim == {"[mass]": 1, "[length]": -2}:
+            return _affine(unit, "kg m-2")
+        if dim == {"[length]": 1}:  # depth of liquid water: 1 mm = 1 kg m-2
+            return _affine(unit, "m")[0] * WATER_DENSITY, 0.0
+    return None
+
+
+def _quantity_words(unit):
+    """What a unit measures, in words, for messages."""
+    dim = unit.dimensionality
+    for words, wanted in (("a length", {"[length]": 1}), ("a temperature", {"[temperature]": 1}),
+                          ("a geopotential (energy per mass)", {"[length]": 2, "[time]": -2}),
+                          ("a mass per area", {"[mass]": 1, "[length]": -2}),
+                          ("a pressure", {"[mass]": 1, "[length]": -1, "[time]": -2}),
+                          ("a speed", {"[length]": 1, "[time]": -1}),
+                          ("a time", {"[time]": 1})):
+        if dim == wanted:
+            return words
+    if not dim:
+        return "a dimensionless number that is not a ratio of masses"
+    return f"a quantity of dimension {dim}"
+
+
+def _convert_units(da, attrs, field, where, *, level_known=True, check_sample=True):
+    """Convert ``da`` to the canonical units of ``field``, through the unit registry;
+    return it and the units it was read in (as stated, or inferred).
+
+    Units naming another quantity, or that the registry cannot read, are refused.
+    Missing units are inferred from the magnitude of the values, with a warning. With
+    ``check_sample`` the result must pass the plausibility gate
+    (:data:`PLAUSIBLE_RANGE`) on its first and last time steps: when it does not, an
+    unambiguous scale error (:data:`_SCALE_ALTERNATIVES`) is converted with a warning
+    saying so, anything else is refused naming the variable, its units and the range
+    of values found. (Archives are gated on every day, the same way, by
+    :func:`apply_missing_data_policy`.)
+    """
     raw = attrs.get("units")
-    units = _normal_units(raw) if raw is not None else ""
-    table = _UNIT_TABLE[field]
-    if units in table:
-        factor, offset = table[units]
-    else:
-        inferred = _infer_units(da, field)
-        stated = "no units" if not units else f"unrecognised units {raw!r}"
-        canonical = FIELD_ATTRS[field]["units"]
+    stated = "" if raw is None else " ".join(str(raw).split())
+    canonical = FIELD_ATTRS[field]["units"]
+    long_name = FIELD_ATTRS[field]["long_name"]
+    if not stated:
+        low, high = _sample_range(da, where)
+        inferred = _infer_units(low, high, field)
         if inferred is None:
-            low, high = _sample_range(da)
             raise AnalogsInputError(
-                f"{where} has {stated} and its values ({low:.4g} to {high:.4g}) do not "
-                f"say which; set its units attribute (e.g. units='{canonical}'); accepted: "
-                f"{', '.join(sorted(table))}")
-        warnings.warn(f"{where} has {stated}; {inferred!r} inferred from the magnitude "
+                f"{where} has no units and its values ({low:.4g} to {high:.4g}) do not "
+                f"say which; set its units attribute (e.g. units='{canonical}'), units "
+                f"of {_EXPECTED_QUANTITY[field]}")
+        warnings.warn(f"{where} has no units; {inferred!r} inferred from the magnitude "
                       "of its values", UserWarning, stacklevel=4)
-        factor, offset = table[_normal_units(inferred)]
+        label = inferred
+    else:
+        unit = _parse_units(stated)
+        if unit is None:
+            raise AnalogsInputError(
+                f"{where} has unrecognised units {raw!r} (not in the CF / UDUNITS unit "
+                f"registry); set its units attribute to units of "
+                f"{_EXPECTED_QUANTITY[field]}, e.g. units='{canonical}'")
+        if _field_conversion(unit, field) is None:
+            raise AnalogsInputError(
+                f"{where} has units {raw!r}, {_quantity_words(unit)}; {long_name} needs "
+                f"units of {_EXPECTED_QUANTITY[field]}")
+        label = stated
+    factor, offset = _conversion_of(label, field)
+    if check_sample:
+        low, high = _sample_range(da, where)
+        lo_ok, hi_ok = PLAUSIBLE_RANGE[field]
+        if np.isfinite(low) and not (lo_ok <= low * factor + offset
+                                     and high * factor + offset <= hi_ok):
+            alternative = _scale_error(low, high, field, (factor, offset))
+            if alternative is None:
+                found = f"{low * factor + offset:.4g} to {high * factor + offset:.4g}"
+                if field == "z500" and not level_known:
+                    lo_ok, hi_ok = _Z500_PLAUSIBLE_GPM
+                    raise AnalogsInputError(
+                        f"{where} has no pressure level and its values ({found} gpm, units "
+                        f"{label!r}) do not look like 500 hPa heights ({lo_ok:.0f}-"
+                        f"{hi_ok:.0f} gpm); select the 500 hPa level or add a level "
+                        "coordinate")
+                raise AnalogsInputError(_implausible(where, repr(label), field, found))
+            warnings.warn(_scale_warning(where, label, alternative, field, low, high),
+                          UserWarning, stacklevel=4)
+            factor, offset = _conversion_of(alternative, field)
+            label = alternative
     if factor != 1.0:
         da = da * factor
     if offset != 0.0:
         da = da + offset
-    return da
+    return da, label
 
 
-def _infer_units(da, field):
-    low, high = _sample_range(da)
+def _conversion_of(label, field):
+    """(factor, offset) of units already accepted for ``field`` (stated or inferred)."""
+    return _field_conversion(_parse_units(label), field)
+
+
+def _implausible(where, stated, field, found):
+    """The refusal of values outside the plausible range, naming the units (``stated``,
+    quoted) and the values they give."""
+    low_ok, high_ok = PLAUSIBLE_RANGE[field]
+    units, long_name = FIELD_ATTRS[field]["units"], FIELD_ATTRS[field]["long_name"]
+    return (f"{where} has units {stated}, which give values of {found} {units}: outside "
+            f"the plausible range of {long_name} ({low_ok:g} to {high_ok:g} {units}); check "
+            "the units attribute, and any fill value not declared as _FillValue or "
+            "missing_value")
+
+
+def _scale_warning(where, label, alternative, field, low, high):
+    """The warning of a scale error of the units converted as ``alternative``."""
+    factor, offset = _conversion_of(label, field)
+    low_ok, high_ok = PLAUSIBLE_RANGE[field]
+    units, long_name = FIELD_ATTRS[field]["units"], FIELD_ATTRS[field]["long_name"]
+    return (f"{where} has units {label!r}, which give values of {low * factor + offset:.4g} "
+            f"to {high * factor + offset:.4g} {units}, outside the plausible range of "
+            f"{long_name} ({low_ok:g} to {high_ok:g} {units}); its values ({low:.4g} to "
+            f"{high:.4g}) look like {_UNIT_WORDS[alternative]}: converted as "
+            f"{alternative!r} (set units='{alternative}' in the file if that is right)")
+
+
+def _scale_error(low, high, field, stated):
+    """The units among :data:`_SCALE_ALTERNATIVES` that the raw values ``low``-``high``
+    unambiguously look like and that give plausible values, when they differ from the
+    ``stated`` conversion; otherwise None."""
+    family = _SCALE_ALTERNATIVES.get(field, ())
+    if not any(np.isclose(_conversion_of(units, field)[0], stated[0]) for units in family):
+        return None  # stated units outside the family (ft, furlongs): no guess (13b)
+    alternative = _infer_units(low, high, field)
+    if alternative is None or alternative not in family:
+        return None
+    factor, offset = _conversion_of(alternative, field)
+    if np.isclose(factor, stated[0]) and np.isclose(offset, stated[1]):
+        return None
+    lo_ok, hi_ok = PLAUSIBLE_RANGE[field]
+    if lo_ok <= low * factor + offset and high * factor + offset <= hi_ok:
+        return alternative
+    return None
+
+
+def _infer_units(low, high, field):
+    """The units whose magnitude window (:data:`_INFERENCE`) holds ``low``-``high``."""
     if not np.isfinite(low):
         return None
     for (lo, hi), units in _INFERENCE[field]:
@@ -866,11 +1276,19 @@ def _infer_units(da, field):
     return None
 
 
-def _sample_range(da):
-    """Min and max over the first and last time steps (cheap even for big archives)."""
+def _sample_range(da, where=None):
+    """Min and max of the finite values over the first and last time steps (cheap even
+    for big archives). A read error (a damaged chunk) names ``where``, the file."""
     steps = sorted({0, da.sizes["time"] - 1}) if "time" in da.dims else None
     sample = da.isel(time=steps) if steps is not None else da
-    values = np.asarray(sample.values, dtype=float)
+    try:
+        values = np.asarray(sample.values, dtype=float)
+    except (OSError, RuntimeError) as err:
+        if where is None:
+            raise
+        raise AnalogsInputError(f"{where}: its data cannot be read ({_one_line(err)}); the "
+                                "file is damaged (a corrupt or missing chunk) or was cut "
+                                "short") from None
     finite = values[np.isfinite(values)]
     if finite.size == 0:
         return np.nan, np.nan
@@ -883,91 +1301,442 @@ def _sample_range(da):
 
 #: Dates listed in the ``days_dropped`` entry of the missing-data report.
 _REPORTED_DAYS = 20
+#: Days and grid points named one by one in a missing-data message (then counted).
+_NAMED_IN_MESSAGES = 3
 
 
 def apply_missing_data_policy(ds, *, max_missing_fraction=0.1, max_gap_days=2,
-                              source="the archive"):
-    """Handle missing (NaN) values of a canonical archive explicitly.
+                              source="the archive", origins=None):
+    """Handle missing values (NaN, and infinite values, which count as missing) of a
+    canonical archive explicitly, in proportion to how much is missing.
 
     Grid points missing on every day (a land/sea mask) stay NaN: the EOF stage leaves
-    them out. At the other points, per field: a day missing more than
-    ``max_missing_fraction`` of them, or all of them, is dropped; runs of at most
-    ``max_gap_days`` consecutive missing days at a point are filled by linear
-    interpolation in time (gaps measured on the time coordinate, so a dropped day counts
-    towards the run); days still missing after that
-    are dropped. Calendar days absent from a daily time axis are counted, not invented.
-    Dask arrays stay lazy; the NaN counts (one value per day and per point) are computed.
+    them out. At the other points, per field:
+
+    1. a day missing more than ``max_missing_fraction`` of them (a real share of the
+       domain), or all of them, is dropped;
+    2. runs of at most ``max_gap_days`` consecutive missing days at a point are filled
+       by linear interpolation in time (gaps measured on the time coordinate, so a
+       dropped day counts towards the run);
+    3. what is still missing on the days that stay (a few points at the start or end of
+       the record, or in a longer run) is filled from the neighbouring grid points of
+       the same day: the discrete Laplace equation solved over the missing points with
+       the valid points around them as boundary values (each filled value is the mean
+       of its four neighbours; common practice for filling gaps in gridded fields, no
+       source). A group of missing points with no valid neighbour at all (cut off by
+       the mask) takes the day's mean.
+
+    So a few missing points never cost a day. Every value of a field named in
+    :data:`PLAUSIBLE_RANGE` must also lie in its plausible range (the gate applied to
+    every day; :func:`_convert_units` checks the first and last days of each file).
+    Calendar days absent from a daily time axis are counted, not invented. Dask arrays
+    stay lazy; the counts and the daily extremes are computed in one pass.
+
+    Parameters
+    ----------
+    ds : xarray.Dataset
+        Canonical fields ``(time, lat, lon)``.
+    max_missing_fraction : float
+        Share of a field's grid points (mask left out) above which a day is dropped.
+    max_gap_days : int
+        Longest run of missing days at a point filled by interpolation in time.
+    source : str
+        The files, for messages.
+    origins : dict, optional
+        ``{field: [(path, variable, times), ...]}``: which file and variable each time
+        of each field came from, so that messages name them.
 
     Returns
     -------
     (xarray.Dataset, dict)
         The archive and a report: ``days_dropped`` (first 20 dates), ``n_days_dropped``,
-        ``n_values_filled``, ``n_missing_calendar_days``, ``all_nan_points``.
+        ``n_values_filled`` (``n_values_filled_in_time`` plus
+        ``n_values_filled_in_space``), ``n_infinite_values``, ``n_missing_calendar_days``,
+        ``all_nan_points`` and, per field with missing values, ``fields``.
     """
     times = pd.DatetimeIndex(ds["time"].values)
     names = list(ds.data_vars)
-    n_points = ds.sizes["lat"] * ds.sizes["lon"]
-    per_day, per_point = _nan_counts(ds)
-    masks = {n: per_point[n] == ds.sizes["time"] for n in names}
+    lat, lon = ds["lat"].values, ds["lon"].values
+    stats = _missing_stats(ds)
+    ds = _plausibility_gate(ds, stats, times, source, origins)
+    n_infinite = _report_infinite(stats, times, source, origins)
+    if n_infinite:
+        ds = ds.copy()
+        for name in names:
+            if stats[name]["inf"].any():
+                ds[name] = ds[name].where(np.isfinite(ds[name]))
+    masks = {n: stats[n]["point"] == ds.sizes["time"] for n in names}
     for name in names:
         if masks[name].all():
-            raise AnalogsInputError(f"{name} in {source}: every value is missing (NaN); "
-                                    "expected a field with valid values")
-    missing = {n: per_day[n] - int(masks[n].sum()) for n in names}
-    heavy = np.zeros(times.size, dtype=bool)
-    for name in names:
-        valid_points = n_points - int(masks[name].sum())
-        heavy |= (missing[name] > max_missing_fraction * valid_points) | (
-            missing[name] >= valid_points)
+            files = _files_of(origins, name, times)
+            raise AnalogsInputError(
+                f"{f'{files} ({name})' if files else f'{name} in {source}'}: every value "
+                "is missing (NaN or infinite); expected a field with valid values")
+    valid_points = {n: int((~masks[n]).sum()) for n in names}
+    missing = {n: stats[n]["day"] - int(masks[n].sum()) for n in names}
+    heavy_by = {n: (missing[n] > max_missing_fraction * valid_points[n])
+                | (missing[n] >= valid_points[n]) for n in names}
+    heavy = np.logical_or.reduce([heavy_by[n] for n in names])
+    if heavy.all():
+        raise AnalogsInputError(_no_usable_day(names, heavy_by, missing, valid_points,
+                                               max_missing_fraction, source))
     keep = np.flatnonzero(~heavy)
     partial = [n for n in names if missing[n][keep].sum() > 0]
-    filled_count = 0
-    if partial and keep.size:
+    if heavy.any():
         ds = ds.isel(time=keep)
-        days = ((ds["time"].values - ds["time"].values[0]) / np.timedelta64(1, "D")
-                ).astype(float)
-        for name in partial:
-            da = ds[name]
-            if da.chunks is not None:
-                da = da.chunk({"time": -1})
-            ds[name] = xr.apply_ufunc(
-                _fill_short_gaps, da, input_core_dims=[["time"]],
-                output_core_dims=[["time"]], kwargs={"days": days,
-                                                     "max_span": max_gap_days + 1.0},
-                dask="parallelized", output_dtypes=[da.dtype], keep_attrs=True,
-            ).transpose(*da.dims)
-        after, _ = _nan_counts(ds[partial])
-        left = np.zeros(keep.size, dtype=bool)
-        residuals = {}
-        for name in partial:
-            residuals[name] = after[name] - int(masks[name].sum())
-            left |= residuals[name] > 0
-        for name in partial:  # values filled on the days that stay
-            filled = missing[name][keep] - residuals[name]
-            filled_count += int(filled[~left].sum())
-        dropped_days = np.sort(np.concatenate([np.flatnonzero(heavy), keep[left]]))
-        ds = ds.isel(time=np.flatnonzero(~left))
-    else:
-        dropped_days = np.flatnonzero(heavy)
-        if dropped_days.size:
-            ds = ds.isel(time=keep)
-    if ds.sizes["time"] == 0:
-        raise AnalogsInputError(
-            f"{source}: every day has more than {max_missing_fraction:g} of its grid "
-            "points missing (NaN) or gaps longer than max_gap_days; no day is usable")
-    dropped = times[dropped_days]
+    details = {}
+    if partial:
+        ds, details = _fill_missing(ds, partial, masks, max_gap_days, missing, keep)
+    for name in names:
+        if heavy_by[name].any():
+            details.setdefault(name, {})["days_dropped"] = _dropped_detail(
+                times, heavy_by[name], missing[name], valid_points[name])
+    dropped = times[heavy]
+    in_time = sum(d.get("values_filled_in_time", 0) for d in details.values())
+    in_space = sum(d.get("values_filled_in_space", 0) for d in details.values())
     report = {"days_dropped": [f"{t:%Y-%m-%d}" for t in dropped[:_REPORTED_DAYS]],
               "n_days_dropped": int(dropped.size),
-              "n_values_filled": int(filled_count),
+              "n_values_filled": int(in_time + in_space),
+              "n_values_filled_in_time": int(in_time),
+              "n_values_filled_in_space": int(in_space),
+              "n_infinite_values": int(n_infinite),
               "n_missing_calendar_days": _missing_calendar_days(times),
               "all_nan_points": int(np.logical_or.reduce([masks[n] for n in names]).sum())}
-    if dropped.size or filled_count:
-        warnings.warn(
-            f"{source}: missing values: {dropped.size} day(s) dropped"
-            f"{' (' + ', '.join(report['days_dropped'][:3]) + (', ...' if dropped.size > 3 else '') + ')' if dropped.size else ''}"
-            f", {filled_count} value(s) filled by linear interpolation in time",
-            UserWarning, stacklevel=3)
+    if details:
+        report["fields"] = {n: {k: v for k, v in d.items() if not k.startswith("_")}
+                            for n, d in details.items()}
+    if dropped.size or in_time or in_space:
+        warnings.warn(_missing_message(source, dropped.size, in_time + in_space, details,
+                                       lat, lon), UserWarning, stacklevel=3)
     return ds, report
+
+
+def _checked_target_values(ds, file, variables):
+    """The plausibility gate on every value of a target (small: computed here), and its
+    infinite values turned into missing ones with a warning naming file, variable and
+    valid times."""
+    for name in list(ds.data_vars):
+        label = ds[name].attrs.pop("units_in_file", None)
+        values = np.asarray(ds[name].values, dtype=float)
+        where = f"{file}: variable {variables.get(name, name)!r}"
+        finite = values[np.isfinite(values)]
+        if name in PLAUSIBLE_RANGE and finite.size:
+            low_ok, high_ok = PLAUSIBLE_RANGE[name]
+            if finite.min() < low_ok or finite.max() > high_ok:
+                stated = repr(label) if label else repr(FIELD_ATTRS[name]["units"])
+                raise AnalogsInputError(_implausible(
+                    where, stated, name, f"{finite.min():.4g} to {finite.max():.4g}"))
+        infinite = np.isinf(values)
+        if infinite.any():
+            other = tuple(a for a, d in enumerate(ds[name].dims) if d != "time")
+            at = pd.DatetimeIndex(ds["time"].values)[infinite.any(axis=other)]
+            shown = ", ".join("no valid time" if pd.isna(t) else f"{t:%Y-%m-%dT%H:%M}"
+                              for t in at[:_NAMED_IN_MESSAGES])
+            warnings.warn(f"{where} ({name}) has {int(infinite.sum())} infinite value(s) "
+                          f"(+Inf or -Inf) at {shown}"
+                          f"{' and more' if len(at) > _NAMED_IN_MESSAGES else ''}; "
+                          "treated as missing values", UserWarning, stacklevel=3)
+            ds[name] = ds[name].where(np.isfinite(ds[name]))
+    return ds
+
+
+def _missing_stats(ds):
+    """One pass over the data. Per field: missing (NaN or infinite) values per day
+    (``day``) and per grid point (``point``), infinite values per day (``inf``), and the
+    smallest and largest finite value of each day (``min``, ``max``)."""
+    stats = xr.Dataset()
+    for name in ds.data_vars:
+        da = ds[name]
+        finite = np.isfinite(da)
+        stats[f"{name}/day"] = (~finite).sum(("lat", "lon"))
+        stats[f"{name}/point"] = (~finite).sum("time")
+        stats[f"{name}/inf"] = np.isinf(da).sum(("lat", "lon"))
+        stats[f"{name}/min"] = da.where(finite).min(("lat", "lon"))
+        stats[f"{name}/max"] = da.where(finite).max(("lat", "lon"))
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN days: NaN extremes
+        stats = stats.compute()
+    out = {}
+    for name in ds.data_vars:
+        out[name] = {key: stats[f"{name}/{key}"].values for key in
+                     ("day", "point", "inf", "min", "max")}
+        for key in ("day", "point", "inf"):
+            out[name][key] = out[name][key].astype(int)
+    return out
+
+
+def _plausibility_gate(ds, stats, times, source, origins):
+    """The plausibility gate on every day of an archive (extremes from the one pass).
+
+    A file whose stated units give values outside :data:`PLAUSIBLE_RANGE` is converted
+    with a warning when the values show an unambiguous scale error of the units
+    (:func:`_scale_error`, as for a target), and refused otherwise, naming the file,
+    the variable, its units, the days and the range of values found."""
+    for name, numbers in stats.items():
+        if name not in PLAUSIBLE_RANGE:
+            continue
+        low_ok, high_ok = PLAUSIBLE_RANGE[name]
+
+        def outside():
+            with np.errstate(invalid="ignore"):
+                return (numbers["min"] < low_ok) | (numbers["max"] > high_ok)
+
+        bad = outside()
+        if not bad.any():
+            continue
+        days = np.asarray(times.values).astype("datetime64[D]")
+        for path, variable, held, label in (origins or {}).get(name, ()):
+            rows = np.isin(days, np.asarray(held).astype("datetime64[D]"))
+            if label is None or not bad[rows].any():
+                continue
+            factor, offset = _conversion_of(label, name)
+            low = (np.nanmin(numbers["min"][rows]) - offset) / factor  # as in the file
+            high = (np.nanmax(numbers["max"][rows]) - offset) / factor
+            alternative = _scale_error(low, high, name, (factor, offset))
+            if alternative is None:
+                continue
+            warnings.warn(_scale_warning(f"{path}: variable {variable!r}", label,
+                                         alternative, name, low, high),
+                          UserWarning, stacklevel=4)
+            new_factor, new_offset = _conversion_of(alternative, name)
+            scale = new_factor / factor
+            shift = new_offset - offset * scale
+            attrs = dict(ds[name].attrs)
+            ds = ds.copy()
+            ds[name] = xr.where(xr.DataArray(rows, dims="time"), ds[name] * scale + shift,
+                                ds[name]).transpose(*ds[name].dims).astype(ds[name].dtype)
+            ds[name].attrs = attrs
+            for key in ("min", "max"):
+                numbers[key][rows] = numbers[key][rows] * scale + shift
+        bad = outside()
+        if not bad.any():
+            continue
+        found = (f"{np.nanmin(numbers['min'][bad]):.4g} to "
+                 f"{np.nanmax(numbers['max'][bad]):.4g}")
+        labels = sorted({repr(o[3]) for o in (origins or {}).get(name, ())
+                         if o[3] is not None and np.isin(
+                             np.asarray(o[2]).astype("datetime64[D]"), days[bad]).any()})
+        where = _files_of(origins, name, times[bad]) or f"{name} in {source}"
+        stated = " or ".join(labels) or repr(FIELD_ATTRS[name]["units"])
+        raise AnalogsInputError(f"{_implausible(where, stated, name, found)} (on "
+                                f"{_which_days(times[bad])})")
+    return ds
+
+
+def _report_infinite(stats, times, source, origins):
+    """Warn of infinite values (+Inf or -Inf), naming file, variable and days; they are
+    treated as missing. Returns how many there are."""
+    total = 0
+    for name, numbers in stats.items():
+        count = int(numbers["inf"].sum())
+        if not count:
+            continue
+        total += count
+        days = times[numbers["inf"] > 0]
+        files = _files_of(origins, name, days)
+        warnings.warn(
+            f"{f'{files} ({name})' if files else f'{name} in {source}'}: {count} infinite "
+            f"value(s) (+Inf or -Inf) on {_which_days(days)}; treated as missing values",
+            UserWarning, stacklevel=4)
+    return total
+
+
+def _files_of(origins, name, days):
+    """"FILE: variable 'v'" for each file of ``name`` holding one of ``days`` ("" when
+    ``origins`` is not known)."""
+    if not origins or name not in origins:
+        return ""
+    wanted = np.asarray(pd.DatetimeIndex(days).values).astype("datetime64[D]")
+    parts = [f"{path}: variable {variable!r}" for path, variable, held, *_ in origins[name]
+             if np.isin(np.asarray(held).astype("datetime64[D]"), wanted).any()]
+    if len(parts) > _NAMED_IN_MESSAGES:
+        parts = parts[:_NAMED_IN_MESSAGES] + [f"{len(parts) - _NAMED_IN_MESSAGES} more files"]
+    return "; ".join(parts)
+
+
+def _which_days(days):
+    """"2001-01-03" or "2 day(s): 2001-01-03, 2001-01-04" or "12 days between
+    2001-01-03 and 2001-02-20"."""
+    days = pd.DatetimeIndex(days)
+    if len(days) <= _NAMED_IN_MESSAGES:
+        return (f"{len(days)} day(s): " if len(days) > 1 else "") + ", ".join(
+            f"{t:%Y-%m-%d}" for t in days)
+    return f"{len(days)} days between {days[0]:%Y-%m-%d} and {days[-1]:%Y-%m-%d}"
+
+
+def _which_points(points, lat, lon):
+    """"1 grid point (lat 32.5, lon -112.5)" or "57 grid points in lat 30 to 40, lon ..."."""
+    rows, cols = np.nonzero(points)
+    if rows.size <= _NAMED_IN_MESSAGES:
+        return f"{rows.size} grid point(s) (" + "; ".join(
+            f"lat {lat[r]:g}, lon {lon[c]:g}" for r, c in zip(rows, cols)) + ")"
+    return (f"{rows.size} grid points in lat {lat[rows].min():g} to {lat[rows].max():g}, "
+            f"lon {lon[cols].min():g} to {lon[cols].max():g}")
+
+
+def _dropped_detail(times, heavy, missing, valid_points):
+    days = np.flatnonzero(heavy)
+    shown = ", ".join(f"{times[d]:%Y-%m-%d} ({missing[d] / valid_points:.0%})"
+                      for d in days[:_NAMED_IN_MESSAGES])
+    more = f" and {days.size - _NAMED_IN_MESSAGES} more" if days.size > _NAMED_IN_MESSAGES else ""
+    return {"n_days": int(days.size), "points": int(valid_points),
+            "text": f"{shown}{more} of its {valid_points} grid points missing"}
+
+
+def _no_usable_day(names, heavy_by, missing, valid_points, fraction, source):
+    parts = []
+    for name in names:
+        if not heavy_by[name].any():
+            continue
+        share = missing[name][heavy_by[name]] / valid_points[name]
+        parts.append(f"{name} ({share.min():.0%} to {share.max():.0%} of its {valid_points[name]} "
+                     f"grid points on {int(heavy_by[name].sum())} day(s))")
+    return (f"{source}: every day has more than {fraction:g} of its grid points missing "
+            f"(NaN or infinite): {'; '.join(parts)}; no day is usable "
+            f"(max_missing_fraction={fraction:g})")
+
+
+def _fill_missing(ds, partial, masks, max_gap_days, missing, keep):
+    """Steps 2 and 3 of :func:`apply_missing_data_policy` on the days kept; returns the
+    archive and, per field, what was filled (counts, grid points, days)."""
+    ds = ds.copy()
+    days = ((ds["time"].values - ds["time"].values[0]) / np.timedelta64(1, "D")).astype(float)
+    before = {}
+    for name in partial:
+        da = ds[name]
+        before[name] = da
+        if da.chunks is not None:
+            da = da.chunk({"time": -1, "lat": "auto"})
+        ds[name] = xr.apply_ufunc(
+            _fill_short_gaps, da, input_core_dims=[["time"]],
+            output_core_dims=[["time"]], kwargs={"days": days,
+                                                 "max_span": max_gap_days + 1.0},
+            dask="parallelized", output_dtypes=[da.dtype], keep_attrs=True,
+        ).transpose(*da.dims)
+    counts = xr.Dataset()
+    for name in partial:
+        counts[f"{name}/gappy"] = before[name].isnull().sum("time")
+        counts[f"{name}/left"] = ds[name].isnull().sum("time")
+    counts = counts.compute()
+    lon = ds["lon"].values
+    step = _step(lon)
+    periodic = lon.size > 2 and abs(lon[-1] - lon[0] + step - 360.0) < 1e-6
+    details = {}
+    for name in partial:
+        mask = masks[name]
+        gappy = (counts[f"{name}/gappy"].values > 0) & ~mask
+        left = counts[f"{name}/left"].values.astype(int) * ~mask
+        total = int(missing[name][keep].sum())
+        in_space = int(left.sum())
+        if in_space:
+            da = ds[name]
+            if da.chunks is not None:
+                da = da.chunk({"time": "auto", "lat": -1, "lon": -1})
+            ds[name] = xr.apply_ufunc(
+                _fill_in_space, da, input_core_dims=[["lat", "lon"]],
+                output_core_dims=[["lat", "lon"]],
+                kwargs={"fillable": ~mask, "periodic": periodic},
+                dask="parallelized", output_dtypes=[da.dtype], keep_attrs=True,
+            ).transpose(*da.dims)
+        details[name] = {
+            "values_filled_in_time": total - in_space,
+            "values_filled_in_space": in_space,
+            "points_filled": int(gappy.sum()),
+            "days_filled": int((missing[name][keep] > 0).sum()),
+            "_points": gappy,
+            "_days": pd.DatetimeIndex(ds["time"].values)[missing[name][keep] > 0],
+        }
+    return ds, details
+
+
+def _missing_message(source, n_dropped, n_filled, details, lat, lon):
+    """The one warning of :func:`apply_missing_data_policy`."""
+    dropped = "; ".join(f"{name} on {d['days_dropped']['text']}" for name, d in details.items()
+                        if "days_dropped" in d)
+    filled = []
+    for name, d in details.items():
+        if "_points" not in d:
+            continue
+        count = d["values_filled_in_time"] + d["values_filled_in_space"]
+        filled.append(f"{name}: {count} at {_which_points(d['_points'], lat, lon)} on "
+                      f"{_which_days(d['_days'])}, {d['values_filled_in_time']} by linear "
+                      f"interpolation in time and {d['values_filled_in_space']} from the "
+                      "neighbouring grid points")
+    return (f"{source}: missing values (NaN or infinite): {n_dropped} day(s) dropped"
+            + (f" ({dropped})" if dropped else "")
+            + f", {n_filled} value(s) filled" + (f" ({'; '.join(filled)})" if filled else ""))
+
+
+def _fill_in_space(values, *, fillable, periodic):
+    """Fill NaN at the ``fillable`` points (lat, lon) of each 2-D slice of ``values``
+    (..., lat, lon) by the discrete Laplace equation: each filled value is the mean of
+    its four neighbours (fewer at the edge of the grid or of a mask; longitude wraps when
+    ``periodic``), the valid values being fixed. Its solution is exact for any field
+    linear in the grid indices and never leaves the range of the valid values around it.
+    Slices with the same missing points share one sparse LU factorisation."""
+    out = np.array(values, dtype=float, copy=True)
+    flat = out.reshape((-1,) + out.shape[-2:])
+    systems = {}
+    for k in range(flat.shape[0]):
+        field = flat[k]
+        hole = np.isnan(field) & fillable
+        if not hole.any():
+            continue
+        known = np.isfinite(field)
+        key = (hole.tobytes(), known.tobytes())
+        if key not in systems:
+            systems[key] = _laplace_system(hole, known, periodic)
+        factor, boundary, orphan = systems[key]
+        rhs = boundary @ field[known]
+        rhs[orphan] = field[known].mean()
+        field[hole] = factor.solve(rhs)
+    return out.astype(np.asarray(values).dtype, copy=False)
+
+
+def _laplace_system(hole, known, periodic):
+    """(LU factorisation of A, matrix B, orphans): A x = B v gives the missing values x
+    from the valid values v; orphans are missing points cut off from every valid one."""
+    from scipy import sparse
+    from scipy.sparse.csgraph import connected_components
+    from scipy.sparse.linalg import splu
+    ny, nx = hole.shape
+    hole_index = np.full(hole.shape, -1)
+    hole_index[hole] = np.arange(int(hole.sum()))
+    known_index = np.full(hole.shape, -1)
+    known_index[known] = np.arange(int(known.sum()))
+    rows, cols = np.nonzero(hole)
+    n = rows.size
+    degree = np.zeros(n)
+    couple_r, couple_c, edge_r, edge_c = [], [], [], []
+    for d_row, d_col in ((1, 0), (-1, 0), (0, 1), (0, -1)):
+        r, c = rows + d_row, cols + d_col
+        inside = (r >= 0) & (r < ny)
+        if periodic:
+            c = c % nx
+        else:
+            inside &= (c >= 0) & (c < nx)
+        source = np.flatnonzero(inside)
+        r, c = r[inside], c[inside]
+        h, k = hole_index[r, c], known_index[r, c]
+        degree[source[(h >= 0) | (k >= 0)]] += 1.0
+        couple_r.append(source[h >= 0])
+        couple_c.append(h[h >= 0])
+        edge_r.append(source[k >= 0])
+        edge_c.append(k[k >= 0])
+    couple_r, couple_c = np.concatenate(couple_r), np.concatenate(couple_c)
+    edge_r, edge_c = np.concatenate(edge_r), np.concatenate(edge_c)
+    coupling = sparse.csr_matrix((np.ones(couple_r.size), (couple_r, couple_c)), shape=(n, n))
+    boundary = sparse.csr_matrix((np.ones(edge_r.size), (edge_r, edge_c)),
+                                 shape=(n, int(known.sum())))
+    _, labels = connected_components(coupling, directed=False)
+    reached = np.zeros(labels.max() + 1, dtype=bool)
+    reached[labels[np.asarray(boundary.sum(axis=1)).ravel() > 0]] = True
+    orphan = ~reached[labels]
+    system = sparse.diags(degree) - coupling
+    if orphan.any():
+        system = (sparse.diags((~orphan).astype(float)) @ system
+                  + sparse.diags(orphan.astype(float)))
+    return splu(sparse.csc_matrix(system)), boundary, orphan
 
 
 def _fill_short_gaps(values, *, days, max_span):
@@ -993,19 +1762,6 @@ def _fill_short_gaps(values, *, days, max_span):
         end = np.take_along_axis(moved, high, axis=0)
         moved[fill] = (start + weight * (end - start))[fill]
     return values
-
-
-def _nan_counts(ds):
-    """({field: NaN count per day}, {field: NaN count per grid point}), computed in one pass."""
-    counts = xr.Dataset()
-    for name in ds.data_vars:
-        isnan = ds[name].isnull()
-        counts[f"{name}/day"] = isnan.sum(("lat", "lon"))
-        counts[f"{name}/point"] = isnan.sum("time")
-    counts = counts.compute()
-    per_day = {n: counts[f"{n}/day"].values.astype(int) for n in ds.data_vars}
-    per_point = {n: counts[f"{n}/point"].values.astype(int) for n in ds.data_vars}
-    return per_day, per_point
 
 
 def _missing_calendar_days(times):
@@ -1051,9 +1807,7 @@ def _merge_fields(arrays, files):
     ref = arrays[names[0]]
     for name in names[1:]:
         other = arrays[name]
-        if (other.sizes["lat"] != ref.sizes["lat"] or other.sizes["lon"] != ref.sizes["lon"]
-                or not np.allclose(other["lat"], ref["lat"], atol=1e-4)
-                or not np.allclose(other["lon"], ref["lon"], atol=1e-4)):
+        if not _same_grid(ref, other):
             raise AnalogsInputError(
                 f"{names[0]} and {name} in {_describe(files)} are on different grids; "
                 "expected both fields on one grid")
@@ -1151,6 +1905,804 @@ def _select_time(ds, time, file):
             f"{file}: {'no' if hits.size == 0 else 'more than one'} time matches "
             f"{time!r}; the file holds {len(times)} time(s), {span}")
     return ds.isel(time=hits)
+
+
+# ---------------------------------------------------------------------------
+# targets: ensemble members and several valid times (helper 15b; used by open_target)
+# ---------------------------------------------------------------------------
+
+#: Names of an ensemble-member dimension (lower case): GRIB/cfgrib ``number``, CMIP
+#: ``member_id``/``realization``, and common spellings. A dimension whose coordinate
+#: has the CF standard_name ``realization`` is one too, whatever its name.
+MEMBER_NAMES = ("number", "member", "members", "member_id", "realization", "realisation",
+                "ensemble", "ensemble_member", "ens", "mem")
+
+
+def member_dimension(dataset) -> str | None:
+    """The ensemble-member dimension of ``dataset`` (a Dataset or DataArray), or None.
+
+    A dimension named in :data:`MEMBER_NAMES` or whose coordinate has
+    ``standard_name: realization`` (the CF standard name that labels the members of
+    an ensemble; from memory), with more than one member.
+    """
+    for dim in dataset.dims:
+        coord = dataset.coords.get(dim)
+        standard = "" if coord is None else str(coord.attrs.get("standard_name", "")).lower()
+        if (str(dim).lower() in MEMBER_NAMES or standard == "realization") \
+                and dataset.sizes[dim] > 1:
+            return str(dim)
+    return None
+
+
+def _member_labels(dataset, member):
+    coord = dataset.coords.get(member)
+    if coord is None:
+        return np.arange(dataset.sizes[member])
+    values = np.asarray(coord.values)
+    if np.issubdtype(values.dtype, np.integer):
+        return values.astype("int64")
+    return np.array([str(v) for v in values], dtype=object)
+
+
+def _target_array(candidate, member):
+    """The canonical array of a target's variable; with ``member`` (a dimension name),
+    each member made canonical by the same path as a single field and stacked along
+    ``member`` (dims ``(member, time, lat, lon)``)."""
+    from dataclasses import replace
+    if member is None:
+        return _canonical_array(candidate, time_optional=True)
+    labels = _member_labels(candidate.dataset, member)
+    pieces = [_canonical_array(replace(candidate, dataset=candidate.dataset.isel({member: i})),
+                               time_optional=True) for i in range(labels.size)]
+    stacked = xr.concat(pieces, dim="member", join="override", coords="minimal",
+                        compat="override")
+    stacked = stacked.assign_coords(member=("member", labels, {
+        "standard_name": "realization", "long_name": f"ensemble member ({member} in the file)"}))
+    stacked.attrs = dict(pieces[0].attrs)
+    return stacked
+
+
+def several_times(time) -> bool:
+    """True when ``time`` asks for every valid time (``"all"``) or a range (``"A/B"``)."""
+    return isinstance(time, str) and (time.strip().lower() == "all" or "/" in time)
+
+
+def select_valid_times(ds, time, file):
+    """The valid times of a target asked for by ``time``.
+
+    ``None``: the file's only time (refused when it holds several); an ISO 8601 time
+    or date: that one time; ``"all"``: every time; ``"START/END"``: the times from
+    START to END inclusive (ISO 8601 interval notation; a date alone as END includes
+    that whole day; either end may be empty, open).
+    """
+    times = pd.DatetimeIndex(ds["time"].values)
+    if not several_times(time):
+        if time is None and len(times) > 1:
+            raise AnalogsInputError(
+                f"{file} holds {len(times)} times from {times[0]:%Y-%m-%dT%H:%M} to "
+                f"{times[-1]:%Y-%m-%dT%H:%M}; choose one with time='YYYY-MM-DDTHH:MM', "
+                "or take them all with time='all' (or a range 'START/END')")
+        return _select_time(ds, time, file)
+    if times.isna().any():
+        raise AnalogsInputError(f"{file} has no valid time; time={time!r} needs one")
+    text = time.strip()
+    if text.lower() == "all":
+        return ds
+    start_text, _, end_text = text.partition("/")
+
+    def bound(value, end):
+        value = value.strip()
+        if not value:
+            return None
+        try:
+            stamp = pd.Timestamp(value)
+        except (ValueError, TypeError):
+            fail("time", "open_target", "an ISO 8601 time, 'all' or a range START/END "
+                 "of ISO 8601 times", time)
+        if stamp.tzinfo is not None:
+            stamp = stamp.tz_convert("UTC").tz_localize(None)
+        if end and len(value) <= 10:  # a date alone ends with its day
+            stamp = stamp + pd.Timedelta(days=1) - pd.Timedelta(nanoseconds=1)
+        return stamp
+
+    start, end = bound(start_text, False), bound(end_text, True)
+    if start is not None and end is not None and end < start:
+        fail("time", "open_target", "a range START/END with START before END", time)
+    keep = np.ones(len(times), dtype=bool)
+    if start is not None:
+        keep &= times >= start
+    if end is not None:
+        keep &= times <= end
+    if not keep.any():
+        raise AnalogsInputError(
+            f"{file}: no time in {time!r}; the file holds {len(times)} time(s), "
+            f"{times[0]:%Y-%m-%dT%H:%M} to {times[-1]:%Y-%m-%dT%H:%M}")
+    return ds.isel(time=np.flatnonzero(keep))
+
+
+# ---------------------------------------------------------------------------
+# readers (helper 15a): GRIB through cfgrib / ecCodes, pressure-level recognition,
+# curvilinear grids, moisture fields computed from other variables
+# ---------------------------------------------------------------------------
+
+#: File name endings read as GRIB, besides any file whose first bytes are ``GRIB``.
+GRIB_SUFFIXES = (".grib", ".grib1", ".grib2", ".grb", ".grb1", ".grb2")
+
+#: The GRIB messages read, as cfgrib ``filter_by_keys``: (ecCodes shortName, typeOfLevel,
+#: level or None for any). 500 hPa geopotential or geopotential height; the 850 hPa
+#: moisture (specific humidity, or dewpoint, or relative humidity and temperature); the
+#: 2 m dewpoint (or 2 m relative humidity and temperature, or 2 m specific humidity and
+#: surface pressure); precipitable water. cfgrib names 2t, 2d, 2r and 2sh t2m, d2m, r2, sh2.
+_GRIB_MESSAGES = (
+    ("z", "isobaricInhPa", 500), ("gh", "isobaricInhPa", 500),
+    ("q", "isobaricInhPa", 850), ("dpt", "isobaricInhPa", 850),
+    ("r", "isobaricInhPa", 850), ("t", "isobaricInhPa", 850),
+    ("2d", "heightAboveGround", 2), ("2r", "heightAboveGround", 2),
+    ("2t", "heightAboveGround", 2), ("2sh", "heightAboveGround", 2),
+    ("sp", "surface", None), ("tcwv", None, None), ("pwat", None, None),
+)
+#: Messages listed when a GRIB file lacks what is needed.
+_GRIB_LISTED = 24
+
+
+def _is_grib(path):
+    """True for a GRIB file: first bytes ``GRIB`` or a GRIB file name ending."""
+    if os.path.isdir(path) or not os.path.exists(path):
+        return False
+    if path.lower().endswith(GRIB_SUFFIXES):
+        return True
+    with open(path, "rb") as handle:
+        return handle.read(4) == b"GRIB"
+
+
+def _open_parts(path, chunks):
+    """(Datasets, variable names) of one file: one Dataset for NetCDF or Zarr; one per
+    hypercube of the messages read (:data:`_GRIB_MESSAGES`) for GRIB."""
+    if os.path.exists(path):
+        _refuse_special_file(path)  # before any read: a FIFO would block (13b)
+    if _is_grib(path):
+        return _open_grib(path, chunks)
+    dataset = _open_file(path, chunks)
+    return [dataset], sorted(str(v) for v in dataset.data_vars)
+
+
+def _grib_inventory(path):
+    """(shortName, typeOfLevel, level) of every message of a GRIB file, in file order.
+
+    Read with ecCodes' own message iterator (headers only; the values are decoded later,
+    lazily, by cfgrib)."""
+    import eccodes
+    found = []
+    with open(path, "rb") as handle:
+        while True:
+            try:
+                message = eccodes.codes_grib_new_from_file(handle)
+            except eccodes.CodesInternalError as err:
+                raise AnalogsInputError(f"{path}: cannot be read as GRIB, the file may be "
+                                        f"truncated or damaged ({_one_line(err)})") from None
+            if message is None:
+                break
+            try:
+                found.append((str(eccodes.codes_get(message, "shortName")),
+                              str(eccodes.codes_get(message, "typeOfLevel")),
+                              float(eccodes.codes_get(message, "level", ktype=float))))
+            except eccodes.CodesInternalError as err:
+                raise AnalogsInputError(f"{path}: a GRIB message cannot be decoded "
+                                        f"({_one_line(err)})") from None
+            finally:
+                eccodes.codes_release(message)
+    if not found:
+        raise AnalogsInputError(f"{path}: holds no GRIB message; expected GRIB edition 1 "
+                                "or 2")
+    return found
+
+
+@contextlib.contextmanager
+def _quiet_cfgrib():
+    """cfgrib logs a traceback for each variable it skips; raise its logger's level for
+    the duration of the read and restore it."""
+    import logging
+    logger = logging.getLogger("cfgrib")
+    previous = logger.level
+    logger.setLevel(logging.ERROR)
+    try:
+        yield
+    finally:
+        logger.setLevel(previous)
+
+
+def _open_grib(path, chunks):
+    """One Dataset per hypercube of the GRIB messages analogs reads (see
+    :data:`_GRIB_MESSAGES`), each opened by cfgrib with ``filter_by_keys`` on shortName,
+    typeOfLevel and level, with ``valid_time`` as its time axis.
+
+    cfgrib's index files are never used: ``indexpath=""`` keeps cfgrib from writing a
+    ``.idx`` file beside the user's file (and from reading one, a pickle). The
+    backend class is passed to xarray itself (not ``engine="cfgrib"``, nor
+    ``cfgrib.open_datasets``, which names it): naming an engine makes xarray import
+    every installed backend. Each hypercube is opened on its own (as
+    ``cfgrib.open_datasets`` does per parameter), so one parameter at two kinds of
+    level never clash.
+    """
+    inventory = _grib_inventory(path)
+    filters = []
+    for short_name, level_type, level in _GRIB_MESSAGES:
+        found = sorted({(s, t) for s, t, v in inventory if s == short_name
+                        and (level_type is None or t == level_type)
+                        and (level is None or v == level)})
+        for name, kind in found:
+            keys = {"shortName": name, "typeOfLevel": kind}
+            if level is not None:
+                keys["level"] = level
+            filters.append(keys)
+    parts = []
+    with _quiet_cfgrib():
+        for keys in filters:
+            parts.extend(_open_grib_hypercubes(path, keys, chunks))
+    listed = list(dict.fromkeys(f"{s} ({t} {v:g})" for s, t, v in inventory))
+    names = listed[:_GRIB_LISTED] + ([f"and {len(listed) - _GRIB_LISTED} more"]
+                                     if len(listed) > _GRIB_LISTED else [])
+    return [_grib_valid_time(part) for part in parts], names
+
+
+def _open_grib_hypercubes(path, keys, chunks, depth=0):
+    """The hypercubes of the messages selected by ``keys``: one, or several when cfgrib
+    says the messages do not form one (it names the keys that split them)."""
+    from cfgrib.dataset import DatasetBuildError
+    from cfgrib.xarray_plugin import CfGribBackend
+    try:
+        dataset = xr.open_dataset(
+            path, engine=CfGribBackend, chunks={} if chunks else None,
+            backend_kwargs={"indexpath": "", "filter_by_keys": keys, "errors": "raise"})
+    except DatasetBuildError as err:
+        splits = [k for k in (err.args[2] if len(err.args) > 2 else []) if k != keys]
+        if not splits or depth > 3:
+            raise AnalogsInputError(f"{path}: the GRIB messages {keys} do not form one "
+                                    f"grid ({_one_line(err)})") from None
+        return [part for split in splits
+                for part in _open_grib_hypercubes(path, split, chunks, depth + 1)]
+    except (OSError, ValueError, RuntimeError, KeyError, EOFError) as err:
+        raise AnalogsInputError(f"{path}: cannot be read as GRIB, the file may be "
+                                f"truncated or damaged ({_one_line(err)})") from None
+    return [dataset]
+
+
+def _grib_valid_time(dataset):
+    """``valid_time`` as the time axis of a cfgrib Dataset, which keeps the model run in
+    ``time`` and the lead time in ``step``. Runs and leads both several: every (run,
+    lead) pair along ``valid_time``; a valid time reached by several runs keeps the
+    latest run (the shortest lead)."""
+    if "valid_time" not in dataset.coords:
+        return dataset
+    valid = dataset["valid_time"]
+    if valid.ndim == 1 and valid.dims[0] != "valid_time":
+        return dataset.swap_dims({valid.dims[0]: "valid_time"})
+    if valid.ndim != 2:
+        return dataset
+    run_dim = next((d for d in valid.dims if d in dataset.coords
+                    and np.issubdtype(dataset[d].dtype, np.datetime64)), valid.dims[0])
+    runs = np.asarray(dataset[run_dim].broadcast_like(valid).transpose(*valid.dims).values,
+                      dtype="datetime64[ns]").ravel()
+    stacked = dataset.stack(_run_lead=valid.dims)
+    stacked = stacked.drop_vars(["_run_lead", *valid.dims]).swap_dims(
+        {"_run_lead": "valid_time"})
+    times = stacked["valid_time"].values
+    order = np.lexsort((-runs.astype(np.int64), times))
+    keep = order[~pd.Index(times[order]).duplicated(keep="first")]
+    return stacked.isel(valid_time=keep)
+
+
+#: Coordinate names that mark a pressure level (lower case), also with a trailing
+#: number (``isobaric1``, ``lv_ISBL0``) or a CDO-style suffix (``lev_2``). A name alone
+#: is not enough: units that are not a pressure, ``positive: up`` or a standard_name of
+#: another vertical coordinate overrule it (see :func:`_is_pressure_level`).
+_PRESSURE_LEVEL_NAME = re.compile(
+    r"^(level|levels|lev|plev|plevel|plevs|pressure|pressure_level|pressure_levels|pres|"
+    r"isobaric|isobaricinhpa|isobaricinpa|levelist|lv_isbl|air_pressure)\d*(_\d+)?$")
+#: standard_names of vertical coordinates that are not pressure.
+_OTHER_VERTICAL = ("height", "altitude", "depth", "model_level_number",
+                   "atmosphere_sigma_coordinate", "atmosphere_hybrid_sigma_pressure_coordinate",
+                   "atmosphere_hybrid_height_coordinate", "air_potential_temperature",
+                   "atmosphere_ln_pressure_coordinate", "height_above_ground")
+#: Units of level indices and other vertical coordinates that pint does not read.
+_LEVEL_INDEX_UNITS = ("level", "levels", "layer", "layers", "sigma", "index", "hybrid",
+                      "model_level_number", "eta")
+
+
+def _pressure_unit(units):
+    """(is a pressure, factor to hPa): (True, f), (False, None) for other units, or
+    (None, None) when ``units`` is empty or unreadable."""
+    if not str(units).strip():
+        return None, None
+    unit = _parse_units(units)
+    if unit is None:
+        return None, None
+    if unit.dimensionality != {"[mass]": 1, "[length]": -1, "[time]": -2}:
+        return False, None
+    return True, _affine(unit, "hPa")[0]
+
+
+def _is_pressure_level(name, coord):
+    """True when a coordinate is a pressure level, by CF attributes and units first:
+    pressure units (hPa, Pa, mbar, kPa, ...) on a coordinate with ``axis: Z``, a
+    ``positive`` attribute, standard_name ``air_pressure`` or a level name; with no
+    units, standard_name ``air_pressure`` or a level name (the units are then inferred
+    from the values). Other units, ``positive: up`` or another vertical standard_name
+    say it is not."""
+    if coord.ndim > 1 or np.issubdtype(coord.dtype, np.datetime64) or np.issubdtype(
+            coord.dtype, np.timedelta64):
+        return False
+    attrs = coord.attrs
+    standard = str(attrs.get("standard_name", "")).strip().lower()
+    axis = str(attrs.get("axis", "")).strip().upper()
+    positive = str(attrs.get("positive", "")).strip().lower()
+    named = bool(_PRESSURE_LEVEL_NAME.match(str(name).lower()))
+    if standard in _OTHER_VERTICAL or positive == "up" or axis in ("X", "Y", "T"):
+        return False
+    units = str(attrs.get("units", "")).strip()
+    pressure, _ = _pressure_unit(units)
+    if pressure is not None:
+        return pressure
+    if units.lower() in _LEVEL_INDEX_UNITS:
+        return False
+    return standard == "air_pressure" or named or (axis == "Z" and positive == "down")
+
+
+def _is_two_metre(da):
+    """True when ``da`` carries a height coordinate of 2 m (cfgrib's heightAboveGround,
+    CF ``height``)."""
+    for key, coord in da.coords.items():
+        standard = str(coord.attrs.get("standard_name", "")).lower()
+        if str(key).lower() in ("height", "heightaboveground", "height_above_ground",
+                                "height2m") or standard == "height":
+            values = np.atleast_1d(np.asarray(coord.values, dtype=float))
+            units = str(coord.attrs.get("units", "m")).strip().lower() or "m"
+            if units in ("m", "meter", "meters", "metre", "metres") and values.size == 1 \
+                    and abs(values[0] - 2.0) < 1e-6:
+                return True
+    return False
+
+
+# --------------------------------------------------------------------- curvilinear grids
+
+#: Source points kept around each target point before the triangulation (see
+#: :func:`_regrid_curvilinear`).
+_NEIGHBOURS = 24
+#: A curvilinear grid must lie within this angle (degrees) of its centre.
+_MAX_CURVILINEAR_RADIUS_DEG = 80.0
+
+
+def _unit_vectors(lat, lon):
+    """Points on the unit sphere, shape (n, 3), from latitude and longitude in degrees."""
+    phi, lam = np.radians(np.ravel(lat)), np.radians(np.ravel(lon))
+    return np.column_stack([np.cos(phi) * np.cos(lam), np.cos(phi) * np.sin(lam),
+                            np.sin(phi)])
+
+
+def _gnomonic(points, centre):
+    """Gnomonic (central) projection of unit vectors onto the plane tangent at ``centre``:
+    great circles become straight lines. Shape (n, 2), in units of the sphere radius."""
+    axis = np.array([0.0, 0.0, 1.0]) if abs(centre[2]) < 0.9 else np.array([1.0, 0.0, 0.0])
+    east = np.cross(axis, centre)
+    east /= np.linalg.norm(east)
+    north = np.cross(centre, east)
+    along = points @ centre
+    return np.column_stack([(points @ east) / along, (points @ north) / along])
+
+
+def _regrid_curvilinear(ds, lat, lon, *, partial):
+    """Linear interpolation of fields on a curvilinear grid (2-D ``lat`` and ``lon`` over
+    dims ``(y, x)``) to the regular grid ``(lat, lon)``.
+
+    The source points and the target points are projected gnomonically onto the plane
+    tangent to the sphere at the centre of the source grid, the source points are
+    triangulated (Delaunay, scipy / Qhull) and each target point takes the linear
+    (barycentric) interpolation in its triangle (``scipy.interpolate.LinearNDInterpolator``).
+    Target points outside the triangulation's hull are NaN; without ``partial`` any
+    such point is refused, as :func:`regrid_to` refuses a regular grid too small.
+
+    Why scipy rather than pyresample: scipy is already a dependency, the interpolation
+    is exactly linear on the triangulation (pyresample's bilinear and kd-tree resamplers
+    weight neighbours found within a search radius instead), and nothing more has to be
+    installed. Why a gnomonic plane rather than 3-D Cartesian coordinates on the unit
+    sphere: points on a sphere are all vertices of their 3-D convex hull, so a 3-D
+    Delaunay triangulation fills the inside of the ball and leaves target points on
+    the sphere just outside its flat faces (NaN); the gnomonic projection keeps the
+    problem 2-D and maps great circles, the sides of spherical triangles, to straight
+    lines, with no seam at the date line. It needs the grid within 80 degrees of its
+    centre, which any regional model grid is.
+
+    Only the :data:`_NEIGHBOURS` source points nearest each target point (a kd-tree
+    on the sphere) are triangulated: a triangle of the full Delaunay triangulation
+    has no other source point inside its circumcircle, so the triangle holding a
+    target point, whose vertices and circumcircle lie among that point's nearest
+    neighbours on a grid of regular spacing, is also a triangle of the smaller one.
+    A 3 km grid of 2 million points is thus triangulated on a few tens of thousands.
+    """
+    from scipy.interpolate import LinearNDInterpolator
+    from scipy.spatial import Delaunay, QhullError, cKDTree
+    source = ds.attrs.get("source_files", "the field")
+    lat = np.asarray(lat, dtype=float)
+    lon = _wrap_lon(np.asarray(lon, dtype=float))
+    y_dim, x_dim = ds["lat"].dims
+    src_lat = np.asarray(ds["lat"].values, dtype=float)
+    src_lon = np.asarray(ds["lon"].values, dtype=float)
+    extent = (f"a curvilinear grid over lat {np.nanmin(src_lat):g} to {np.nanmax(src_lat):g}, "
+              f"lon {np.nanmin(src_lon):g} to {np.nanmax(src_lon):g}")
+    points = _unit_vectors(src_lat, src_lon)
+    centre = points.mean(axis=0)
+    centre /= np.linalg.norm(centre)
+    if (points @ centre).min() < np.cos(np.radians(_MAX_CURVILINEAR_RADIUS_DEG)):
+        raise AnalogsInputError(
+            f"{source}: {extent} reaches more than {_MAX_CURVILINEAR_RADIUS_DEG:g} degrees "
+            "from its centre; expected a regional grid (regrid a global one to latitude-"
+            "longitude first)")
+    grid_lat, grid_lon = np.meshgrid(lat, lon, indexing="ij")
+    targets = _unit_vectors(grid_lat, grid_lon)
+    facing = targets @ centre > np.cos(np.radians(_MAX_CURVILINEAR_RADIUS_DEG + 5.0))
+    names = list(ds.data_vars)
+    outer = [d for d in ds[names[0]].dims if d not in (y_dim, x_dim)]
+    n_out = targets.shape[0]
+    columns, shapes = [], []
+    if len(points) <= _NEIGHBOURS:
+        nearest = np.arange(len(points))
+    else:
+        nearest = np.unique(cKDTree(points).query(targets[facing], k=_NEIGHBOURS)[1])
+    for name in names:
+        da = ds[name].transpose(*outer, y_dim, x_dim)
+        values = np.asarray(da.values, dtype=float).reshape(-1, points.shape[0])
+        columns.append(values[:, nearest].T)
+        shapes.append(values.shape[0])
+    covered = np.zeros(n_out, dtype=bool)
+    result = np.full((n_out, sum(shapes)), np.nan)
+    if nearest.size >= 3 and facing.any():
+        try:
+            triangles = Delaunay(_gnomonic(points[nearest], centre))
+        except QhullError as err:
+            raise AnalogsInputError(f"{source}: {extent} cannot be triangulated "
+                                    f"({_one_line(err)})") from None
+        planar = _gnomonic(targets[facing], centre)
+        covered[facing] = triangles.find_simplex(planar) >= 0
+        result[facing] = LinearNDInterpolator(triangles, np.hstack(columns))(planar)
+    if not covered.all() and not partial:
+        raise AnalogsInputError(
+            f"{source}: {extent} leaves {int((~covered).sum())} of the {n_out} points of "
+            f"the target grid (lat {lat.min():g} to {lat.max():g}, lon {lon.min():g} to "
+            f"{lon.max():g}) uncovered")
+    result[~covered] = np.nan
+    out = xr.Dataset(coords={"lat": ("lat", lat, dict(_LAT_ATTRS)),
+                             "lon": ("lon", lon, dict(_LON_ATTRS))})
+    for dim in outer:
+        if dim in ds.coords:
+            out = out.assign_coords({dim: ds[dim]})
+    start = 0
+    for name, size in zip(names, shapes):
+        block = result[:, start:start + size].T.reshape(
+            tuple(ds.sizes[d] for d in outer) + (lat.size, lon.size))
+        start += size
+        out[name] = xr.DataArray(block.astype(ds[name].dtype, copy=False),
+                                 dims=(*outer, "lat", "lon"), attrs=dict(ds[name].attrs))
+    out.attrs = dict(ds.attrs)
+    return out
+
+
+# ---------------------------------------------- moisture fields computed from other variables
+
+#: Variables a moisture field can be computed from (:mod:`analogs.stages.humidity`), by
+#: standard_name, then by name: "td" dewpoint, "t" air temperature, "rh" relative
+#: humidity, "q" specific humidity, "ps" surface pressure (cfgrib's names included).
+_INGREDIENT_STANDARD_NAMES = {"dew_point_temperature": "td", "air_temperature": "t",
+                              "relative_humidity": "rh", "specific_humidity": "q",
+                              "surface_air_pressure": "ps"}
+_INGREDIENT_NAMES = {
+    "td": ("dpt", "td", "dewpoint", "dew_point", "dew_point_temperature", "d2m", "2d",
+           "td2m", "td2", "dpt2m"),
+    "t": ("t", "ta", "tmp", "air", "temp", "temperature", "air_temperature", "t2m", "2t",
+          "t2", "tas", "tmp2m"),
+    "rh": ("r", "rh", "hur", "rhum", "relhum", "relative_humidity", "r2", "2r", "rh2m",
+           "rh2", "hurs"),
+    "q": ("q", "shum", "hus", "sphum", "specific_humidity", "sh2", "2sh", "q2", "q2m",
+          "huss", "spfh2m"),
+    "ps": ("sp", "ps", "psfc", "surface_pressure", "surface_air_pressure", "pressfc"),
+}
+#: Names that say "at 2 m" by themselves (a height coordinate of 2 m says it too).
+_TWO_METRE_NAMES = frozenset({"d2m", "2d", "td2m", "td2", "dpt2m", "t2m", "2t", "t2", "tas",
+                              "tmp2m", "r2", "2r", "rh2m", "rh2", "hurs", "sh2", "2sh", "q2",
+                              "q2m", "huss", "spfh2m"})
+#: Ways to a moisture field, tried in order when a file lacks it: (field, ingredients,
+#: where they must be). "p" is the field's pressure level, "2m" a 2 m height.
+_MOISTURE_RECIPES = (
+    ("q850", ("td",), {"td": "p"}),
+    ("q850", ("rh", "t"), {"rh": "p", "t": "p"}),
+    ("td2m", ("rh", "t"), {"rh": "2m", "t": "2m"}),
+    ("td2m", ("q", "ps"), {"q": "2m", "ps": "surface"}),
+)
+#: Canonical units of each ingredient (pint), and the range its values must lie in.
+_INGREDIENT_UNITS = {"td": ("K", "[temperature]", (150.0, 350.0)),
+                     "t": ("K", "[temperature]", (150.0, 350.0)),
+                     "rh": ("dimensionless", "", (-0.05, 1.5)),
+                     "q": ("dimensionless", "", (-1e-3, 0.05)),
+                     "ps": ("hPa", "pressure", (300.0, 1100.0))}
+#: Missing units inferred from the magnitude, as in :data:`_INFERENCE`: (window, units).
+_INGREDIENT_INFERENCE = {
+    "td": (((150.0, 350.0), "K"), ((-100.0, 60.0), "degC")),
+    "t": (((150.0, 350.0), "K"), ((-100.0, 60.0), "degC")),
+    "rh": (((-0.05, 1.2), "1"), ((1.5, 110.0), "%")),
+    "q": (((-1e-3, 0.05), "kg kg-1"), ((1.0, 30.0), "g kg-1")),
+    "ps": (((30000.0, 110000.0), "Pa"), ((300.0, 1100.0), "hPa")),
+}
+_INGREDIENT_WORDS = {"td": "dewpoint", "t": "temperature", "rh": "relative humidity",
+                     "q": "specific humidity", "ps": "surface pressure"}
+
+
+def _ingredient_kind(name, var):
+    """(kind, level in hPa implied by the name or None) of a variable a moisture field
+    can be computed from, or (None, None)."""
+    standard = str(var.attrs.get("standard_name", "")).strip().lower()
+    if standard in _INGREDIENT_STANDARD_NAMES:
+        return _INGREDIENT_STANDARD_NAMES[standard], None
+    lowered = str(name).lower()
+    for kind, names in _INGREDIENT_NAMES.items():
+        if lowered in names:
+            return kind, None
+    match = _SUFFIXED_NAME.match(lowered)
+    if match:
+        for kind, names in _INGREDIENT_NAMES.items():
+            if match.group(1) in names and kind != "ps":
+                return kind, float(match.group(2))
+    return None, None
+
+
+def _ingredient_place(name, var, implied):
+    """Where an ingredient variable is: ``("p", levels in hPa)`` on pressure levels,
+    ``("2m", None)`` at 2 m, ``("surface", None)``, or ``(None, None)`` unknown."""
+    if implied is not None:
+        return "p", np.array([implied])
+    keys = _level_coords(var)
+    if keys:
+        coord = var.coords[keys[0]]
+        return "p", _levels_in_hpa(coord, f"variable {name!r}")
+    if str(name).lower() in _TWO_METRE_NAMES or _is_two_metre(var):
+        return "2m", None
+    return None, None
+
+
+def _converted_moisture(path, parts, present):
+    """Candidates for the moisture fields a file lacks but can give by conversion
+    (:data:`_MOISTURE_RECIPES`): 850 hPa specific humidity from the 850 hPa dewpoint
+    or from 850 hPa relative humidity and temperature, the 2 m dewpoint from 2 m
+    relative humidity and temperature or from 2 m specific humidity and surface
+    pressure. ``present``: fields the file holds as such (never replaced)."""
+    found = {}
+    for part in parts:
+        for name, var in part.data_vars.items():
+            if var.ndim < 2:
+                continue
+            kind, implied = _ingredient_kind(name, var)
+            if kind is None:
+                continue
+            if kind == "ps":
+                found.setdefault((kind, "surface"), (part, str(name), None))
+                continue
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore")  # level units are checked when used
+                place, levels = _ingredient_place(name, var, implied)
+            if place == "p" and np.any(np.abs(levels - FIELD_LEVEL_HPA["q850"]) < 0.5):
+                found.setdefault((kind, "p"), (part, str(name), implied))
+            elif place == "2m":
+                found.setdefault((kind, "2m"), (part, str(name), None))
+    candidates = []
+    for field, kinds, places in _MOISTURE_RECIPES:
+        if field in present or any(c.field == field for c in candidates):
+            continue
+        inputs = [found.get((kind, places[kind])) for kind in kinds]
+        if all(inputs):
+            dataset, name = _moisture_dataset(path, field, kinds, inputs, places)
+            candidates.append(_Candidate(path, dataset, name, field, FIELD_LEVEL_HPA[field],
+                                         computed_from=dataset[name].attrs["comment"]))
+    return candidates
+
+
+def _ingredient_array(path, part, name, kind, place, implied, field):
+    """One ingredient in its canonical units (:data:`_INGREDIENT_UNITS`), at the level
+    the recipe needs (its other dims untouched)."""
+    where = f"{path}: variable {name!r}"
+    da = part[name]
+    if place == "p":
+        da, _ = _select_level(da, field, implied, where, keep=())
+    elif place == "2m":
+        heights = [k for k in da.dims if str(k).lower() in (
+            "height", "heightaboveground", "height_above_ground")]
+        for key in heights:
+            values = np.asarray(da[key].values, dtype=float)
+            hits = np.flatnonzero(np.abs(values - 2.0) < 1e-6)
+            if hits.size == 0:
+                raise AnalogsInputError(f"{where}: no 2 m height in {key}=[{_list(values)}]")
+            da = da.isel({key: int(hits[0])})
+    target, dimension, (low_ok, high_ok) = _INGREDIENT_UNITS[kind]
+    raw = " ".join(str(da.attrs.get("units", "")).split())
+    low, high = _sample_range(da)
+    if raw:
+        unit = _parse_units(raw)
+        ok = unit is not None and (
+            (dimension == "" and not unit.dimensionality)
+            or (dimension == "pressure"
+                and unit.dimensionality == {"[mass]": 1, "[length]": -1, "[time]": -2})
+            or (dimension and dimension != "pressure"
+                and unit.dimensionality == {dimension: 1}))
+        if not ok:
+            raise AnalogsInputError(
+                f"{where} has units {raw!r}; a {_INGREDIENT_WORDS[kind]} needs units of "
+                f"{'a ratio' if not dimension else dimension.strip('[]')} "
+                f"(e.g. {_INGREDIENT_INFERENCE[kind][0][1]!r})")
+        label = raw
+    else:
+        label = next((units for (lo, hi), units in _INGREDIENT_INFERENCE[kind]
+                      if np.isfinite(low) and lo <= low and high <= hi), None)
+        if label is None:
+            raise AnalogsInputError(
+                f"{where} has no units and its values ({low:.4g} to {high:.4g}) do not say "
+                f"which; set its units attribute (e.g. units="
+                f"'{_INGREDIENT_INFERENCE[kind][0][1]}')")
+        warnings.warn(f"{where} has no units; {label!r} inferred from the magnitude of its "
+                      "values", UserWarning, stacklevel=5)
+        unit = _parse_units(label)
+    factor, offset = _affine(unit, target)
+    if np.isfinite(low) and not (low_ok <= low * factor + offset
+                                 and high * factor + offset <= high_ok):
+        raise AnalogsInputError(
+            f"{where} has units {label!r}, which give values of {low * factor + offset:.4g} "
+            f"to {high * factor + offset:.4g} {target}: not a plausible "
+            f"{_INGREDIENT_WORDS[kind]} ({low_ok:g} to {high_ok:g} {target})")
+    if not np.issubdtype(da.dtype, np.floating):
+        da = da.astype("float32")
+    return da * factor + offset if (factor, offset) != (1.0, 0.0) else da
+
+
+def _moisture_dataset(path, field, kinds, inputs, places):
+    """(Dataset, variable name) holding ``field`` computed from ``inputs`` (one
+    (dataset, name, implied level) per kind), with the dims and coordinates of its
+    ingredients, ready for :func:`_canonical_array` like any variable of a file."""
+    from analogs.stages import humidity
+    arrays = {kind: _ingredient_array(path, part, name, kind, places[kind], implied, field)
+              for kind, (part, name, implied) in zip(kinds, inputs)}
+    names = [name for _, name, _ in inputs]
+    try:
+        aligned = dict(zip(arrays, xr.align(*arrays.values(), join="exact")))
+    except ValueError:
+        raise AnalogsInputError(
+            f"{path}: {' and '.join(repr(n) for n in names)} are on different grids or "
+            f"times; {field} is computed from them point by point") from None
+    if field == "q850":
+        pressure = FIELD_LEVEL_HPA[field]
+        if kinds == ("td",):
+            value = humidity.specific_humidity_from_dewpoint(aligned["td"], pressure)
+        else:
+            value = humidity.specific_humidity_from_relative_humidity(
+                aligned["t"], aligned["rh"], pressure)
+    elif kinds == ("rh", "t"):
+        value = humidity.dewpoint_from_relative_humidity(aligned["t"], aligned["rh"])
+    else:
+        value = humidity.dewpoint_from_specific_humidity(aligned["q"], aligned["ps"])
+    words = " and ".join(f"{_INGREDIENT_WORDS[k]} {n!r}" for k, n in zip(kinds, names))
+    value.attrs = {"units": FIELD_ATTRS[field]["units"],
+                   "standard_name": FIELD_ATTRS[field]["standard_name"],
+                   "comment": f"computed from {words} (Bolton 1980)"}
+    name = f"{field}_from_{'_'.join(names)}"
+    return value.to_dataset(name=name), name
+
+
+# ------------------------------------------------ recognition and canonical axes (15a)
+
+def _candidates_in(path, parts):
+    """The canonical fields of one file's parts (the first of each field), then the
+    moisture fields it can give by conversion (:func:`_converted_moisture`)."""
+    found, taken = [], set()
+    for part in parts:
+        for candidate in _recognise(path, part):
+            if candidate.field not in taken:
+                taken.add(candidate.field)
+                found.append(candidate)
+    return found + _converted_moisture(path, parts, taken)
+
+
+def _misplaced(field, var):
+    """True when a variable named like ``field`` is at another level: a dewpoint or
+    precipitable water on pressure levels (an 850 hPa dewpoint gives q850 by
+    conversion), a specific humidity at 2 m."""
+    if FIELD_LEVEL_HPA[field] is None:
+        for key in _level_coords(var):
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore")
+                levels = _levels_in_hpa(var.coords[key], "")
+            if np.any((levels > 50.0) & (levels < 1100.0)):
+                return True
+        return False
+    if field == "q850":
+        return _is_two_metre(var) or str(var.name).lower() in _TWO_METRE_NAMES
+    return False
+
+
+def _say_computed(chosen, candidates, source):
+    """A warning for each chosen field that is computed from other variables."""
+    said = set()
+    for candidate in candidates:
+        if candidate.field in chosen and candidate.computed_from and (
+                candidate.field, candidate.computed_from) not in said:
+            said.add((candidate.field, candidate.computed_from))
+            warnings.warn(f"{source}: {candidate.field} {candidate.computed_from}",
+                          UserWarning, stacklevel=3)
+
+
+def _other_moisture(arrays, candidates, member):
+    """Canonical arrays of the moisture fields a target file gives besides those in
+    ``arrays``, so that a store built from any of them finds its field; one on
+    another grid or other times, or that cannot be read, is left out."""
+    reference = next(iter(arrays.values()))
+    extra = {}
+    for field in MOISTURE_PREFERENCE:
+        candidate = next((c for c in candidates if c.field == field), None)
+        if field in arrays or candidate is None:
+            continue
+        try:
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore")
+                array = _target_array(candidate, member)
+        except AnalogsInputError:
+            continue
+        if (_same_grid(reference, array) and array.sizes == reference.sizes
+                and np.array_equal(array["time"].values, reference["time"].values)):
+            extra[field] = array
+    return extra
+
+
+def _two_d_axis(coord, key, standard_name, where):
+    """(dim names, 2-D values) of a curvilinear latitude or longitude coordinate."""
+    values = np.asarray(coord.values, dtype=float)
+    if not np.all(np.isfinite(values)):
+        raise AnalogsInputError(f"{where}: {standard_name} {key!r} has missing values")
+    if standard_name == "latitude" and np.abs(values).max() > 90.0 + 1e-6:
+        raise AnalogsInputError(
+            f"{where}: latitude {key!r} reaches {np.abs(values).max():g}; expected "
+            "degrees north within [-90, 90]")
+    return tuple(str(d) for d in coord.dims), values
+
+
+def _horizontal_dims(lat_dim, lon_dim, where):
+    """(y dim, x dim) of a grid: the dims of 1-D latitude and longitude, or the two dims
+    shared by 2-D latitude and longitude."""
+    two_d = (isinstance(lat_dim, tuple), isinstance(lon_dim, tuple))
+    if two_d == (False, False):
+        return lat_dim, lon_dim
+    if two_d != (True, True) or lat_dim != lon_dim:
+        raise AnalogsInputError(
+            f"{where}: latitude over {lat_dim} and longitude over {lon_dim} do not form "
+            "one grid; expected both 1-D or both 2-D over the same two dims")
+    return lat_dim
+
+
+def _on_canonical_axes(da, dims, times, lat, lon):
+    """``da`` with dims (time, lat, lon), or (time, y, x) with 2-D ``lat`` and ``lon``
+    coordinates (wrapped to [-180, 180)) for a curvilinear grid."""
+    time_dim, lat_dim, lon_dim = dims
+    da = da.transpose(time_dim, lat_dim, lon_dim)
+    if np.ndim(lat) == 1:
+        da = da.rename({time_dim: "_t", lat_dim: "_y", lon_dim: "_x"}).rename(
+            {"_t": "time", "_y": "lat", "_x": "lon"})
+        return da.assign_coords(time=times, lat=lat, lon=lon)
+    da = da.rename({time_dim: "_t", lat_dim: "_y", lon_dim: "_x"}).rename(
+        {"_t": "time", "_y": "y", "_x": "x"})
+    return da.assign_coords(time=times, lat=(("y", "x"), lat, dict(_LAT_ATTRS)),
+                            lon=(("y", "x"), _wrap_lon(lon), dict(_LON_ATTRS)))
+
+
+def _same_grid(a, b):
+    """True when two canonical arrays have the same grid (1-D or 2-D coordinates)."""
+    if a["lat"].shape != b["lat"].shape or a["lon"].shape != b["lon"].shape:
+        return False
+    return bool(np.allclose(a["lat"], b["lat"], atol=1e-4)
+                and np.allclose(_wrap_lon(a["lon"].values), _wrap_lon(b["lon"].values),
+                                atol=1e-4))
 
 
 # ---------------------------------------------------------------------------

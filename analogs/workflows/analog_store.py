@@ -14,8 +14,22 @@ from analogs.stages.daily_climatology import HarmonicClimatology
 from analogs.stages.eof import MultivariateEOF
 from analogs.errors import StoreError
 from analogs.stages.index import AnalogIndex
-from analogs.stages.outcomes import Region
+from analogs.stages.outcomes import EVENT_COLUMNS, Region
 from analogs.workflows.build import region_from_config
+
+#: Columns every store's tags table holds (the diagnostics follow them).
+TAG_COLUMNS = ("date", "regime", "confidence")
+
+
+def _require_columns(path, name, table, columns) -> None:
+    """Refuse a store table (checksums valid) that lacks columns every reader needs."""
+    if table is None:
+        return
+    missing = [column for column in columns if column not in table.columns]
+    if missing:
+        raise StoreError(f"store {path}: {name} lacks the column(s) {', '.join(missing)} "
+                         f"(it holds {', '.join(map(str, table.columns[:8])) or 'none'}); "
+                         "it was not written by analogs: rebuild the store")
 
 
 class AnalogStore:
@@ -77,9 +91,22 @@ class AnalogStore:
         climatology = HarmonicClimatology.from_dataset(
             store_io.read_dataset(basis_path, group="climatology"))
         eof = MultivariateEOF.from_dataset(store_io.read_dataset(basis_path, group="eof"))
-        pcs = store_io.read_dataset(path / store_io.SCORES)["pcs"]
+        scores = store_io.read_dataset(path / store_io.SCORES)
+        if "pcs" not in scores:
+            raise StoreError(f"store {path}: {store_io.SCORES} holds no variable 'pcs' (it "
+                             f"holds {', '.join(map(str, scores.data_vars)) or 'none'}); "
+                             "rebuild the store")
+        pcs = scores["pcs"]
         events = store_io.read_table(path / store_io.EVENTS) if store_io.EVENTS in files else None
         tags = store_io.read_table(path / store_io.TAGS) if store_io.TAGS in files else None
+        _require_columns(path, store_io.EVENTS, events, EVENT_COLUMNS)
+        _require_columns(path, store_io.TAGS, tags, TAG_COLUMNS)
+        if pcs.ndim != 2 or "time" not in pcs.dims:
+            raise StoreError(f"store {path}: {store_io.SCORES} holds pcs of dims {pcs.dims}, "
+                             "not (time, mode); rebuild the store")
+        if tags is not None and len(tags) != pcs.sizes["time"]:
+            raise StoreError(f"store {path}: {store_io.TAGS} has {len(tags)} rows for the "
+                             f"{pcs.sizes['time']} days of {store_io.SCORES}; rebuild the store")
         if tags is not None:
             tags = tags.assign(date=pd.to_datetime(tags["date"])).set_index("date")
         store = cls(path, manifest, climatology, eof, pcs, events=events, tags=tags)
@@ -105,6 +132,17 @@ class AnalogStore:
     @property
     def region(self) -> Region:
         return region_from_config(self.manifest["config"].get("region"))
+
+    @property
+    def covered(self) -> np.ndarray:
+        """Whether each archive day has report coverage (bool, aligned with ``times``):
+        the events table is its report record (:mod:`analogs.workflows.reports`). Days
+        without coverage are left out of outcome statistics, climatology and skill."""
+        if "_covered" not in self.__dict__:
+            from analogs.workflows.reports import covered_mask
+            self._covered = covered_mask(self.manifest, self.days,
+                                         has_events=self.events is not None)
+        return self._covered
 
     @property
     def fields(self) -> list[str]:
@@ -135,7 +173,8 @@ class AnalogStore:
         :class:`~analogs.results.FindResult` (see :func:`analogs.workflows.find.find` for
         the options: ``date`` or ``field`` [``time``], ``top``, ``window``, ``exclude``,
         ``separation``, ``region``, ``regime``, ``weights``, ``confidence``, ``sequence``,
-        ``kinds``)."""
+        ``kinds``); for ``time="all"`` or ``"START/END"`` a
+        :class:`~analogs.results.ValidTimesResult`, one result per valid time."""
         return find_workflow.find(self, **options)
 
     def daily_counts(self, region, kinds=None) -> pd.DataFrame:
@@ -190,10 +229,15 @@ class AnalogStore:
     #: Summary of the update that returned this store (days added, skipped, drift
     #: figures; see :meth:`update`); None for a store not returned by an update.
     last_update: dict | None = None
+    #: Training figures of the retag that returned this store (the learned model's
+    #: cross-validated accuracy and its table against the rule regimes); None otherwise.
+    last_retag: dict | None = None
 
-    def update(self, paths, *, events=None, progress=True) -> "AnalogStore":
+    def update(self, paths, *, events=None, event_dates="time-required", events_period=None,
+               progress=True) -> "AnalogStore":
         """Append new days from ``paths`` to the store, projected on its climatology and
-        EOFs; return the new store (its ``last_update`` is the summary).
+        EOFs, and merge the reports of ``events`` by date; return the new store (its
+        ``last_update`` is the summary).
 
         The update applies to the store's current version on disk (loaded under the
         writer lock), not to this object, which keeps the version it was loaded as.
@@ -201,7 +245,8 @@ class AnalogStore:
         nothing. See :func:`analogs.workflows.update.update_store`.
         """
         from analogs.workflows.update import update_store
-        return update_store(self.path, paths, events=events, progress=progress)
+        return update_store(self.path, paths, events=events, event_dates=event_dates,
+                            events_period=events_period, progress=progress)
 
     def retag(self, *, rules=None, kmeans=None, labelled_days=None,
               progress=False) -> "AnalogStore":

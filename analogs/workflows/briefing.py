@@ -15,6 +15,7 @@ from __future__ import annotations
 from pathlib import Path
 
 import numpy as np
+import pandas as pd
 
 from analogs._validation import fail
 from analogs.errors import AnalogsInputError
@@ -24,6 +25,7 @@ from analogs.presentation.report import briefing_html
 from analogs.stages.outcomes import daily_event_counts
 from analogs.stages.seasonal import (
     TYPICAL_DAY_SEPARATION,
+    archive_sampling,
     outcomes_by_regime_and_month,
     regime_composites,
     regime_frequency_by_month,
@@ -36,6 +38,7 @@ from analogs.stages.seasonal import (
     typical_days,
 )
 from analogs.workflows import files as output
+from analogs.workflows.paths import check_output
 
 #: The public function named in this workflow's input errors.
 OWNER = "build_briefing"
@@ -74,10 +77,13 @@ def store_regime_composites(store, months=None, *, files=None):
 
 
 def _hindcast(store, months):
-    """Leave-one-year-out forecasts of the store's query defaults in ``months``."""
+    """Leave-one-year-out forecasts of the store's query defaults in ``months``, over the
+    days with report coverage (:func:`analogs.workflows.skill.hindcast_days`)."""
     from analogs.stages.hindcast import leave_one_year_out
+    from analogs.workflows.skill import hindcast_days
     defaults = store.query_defaults
-    return leave_one_year_out(store.pcs.values, store.times, store.observed(),
+    pcs, times, observed = hindcast_days(store, store.observed())
+    return leave_one_year_out(pcs, times, observed,
                               top=defaults.get("top") or P.top.default,
                               n_modes=defaults.get("n_modes"), months=months)
 
@@ -111,6 +117,7 @@ def build_briefing(store, out_dir, *, months=None, files=None, n_typical=5, hind
     if store.tags is None:
         raise AnalogsInputError(f"store {store.path} has no tags: the briefing needs them "
                                 "(rebuild the store)")
+    check_output(out_dir, "out_dir", OWNER, kind="directory")  # never inside a store
     out_dir = Path(out_dir)
     tags = season_tags(store.tags, months, owner=OWNER)
     if len(tags) == 0:
@@ -128,8 +135,12 @@ def build_briefing(store, out_dir, *, months=None, files=None, n_typical=5, hind
         "typical_days": typical_days(tags, n_typical),
     }
     if has_events:
-        counts = daily_event_counts(store.events, tags.index, store.region)
-        tables["outcomes_by_regime_and_month"] = outcomes_by_regime_and_month(tags, counts)
+        # Only days with report coverage: a day without reports yet is not a day without
+        # events (analogs.workflows.reports).
+        covered = pd.Series(store.covered, index=store.days)
+        reported = tags[covered.reindex(tags.index.normalize(), fill_value=False).to_numpy()]
+        counts = daily_event_counts(store.events, reported.index, store.region)
+        tables["outcomes_by_regime_and_month"] = outcomes_by_regime_and_month(reported, counts)
     for name, frame in tables.items():
         written.update(write_table(frame, out_dir, name))
     bar.update()
@@ -157,7 +168,9 @@ def build_briefing(store, out_dir, *, months=None, files=None, n_typical=5, hind
                         "outcomes_by_regime_and_month.png"))
     bar.update()
 
-    if hindcast and has_events and len(np.unique(store.times.year)) >= 2:
+    covered_years = np.unique(store.times[store.covered].year)
+    if (hindcast and has_events and len(covered_years) >= 2
+            and store.observed()[store.covered].any()):
         forecasts = _hindcast(store, months)
         p, o = forecasts["forecast"].to_numpy(), forecasts["observed"].to_numpy()
         if 0 < o.sum() < o.size:
@@ -179,6 +192,7 @@ def build_briefing(store, out_dir, *, months=None, files=None, n_typical=5, hind
     settings = {"store": str(store.path), "season": season,
                 "months": None if months is None else list(months),
                 "region": store.region.to_dict(), "days_tagged": int(len(tags)),
+                "sampling": archive_sampling(tags, months).describe(),
                 "composites": composites.attrs["composite_method"],
                 "trend_tests": "least-squares slope (t-test p-value) and Kendall tau "
                                "(Mann-Kendall p-value)",

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import contextlib
 import json
+import re
 from pathlib import Path
 
 import numpy as np
@@ -20,12 +21,15 @@ from analogs.parameters import P
 from analogs.stages.index import AnalogIndex, recall_at_k
 from analogs.stages.outcomes import (
     Region,
+    covered_days,
     daily_event_counts,
-    read_events,
+    parse_period,
 )
 from analogs.stages.selection import (DEFAULT_EXCLUDE, DEFAULT_WINDOW,
                     candidate_ids)
-from analogs.workflows.skill import skill_by_month  # the build records it in the manifest
+from analogs.workflows.reports import coverage_period, events_block, load_events
+from analogs.workflows.skill import measured_skill  # the build records it in the manifest
+from analogs.workflows.skill import skill_by_month  # noqa: F401 (re-exported by analogs.api)
 
 # The readers (sources), the regime diagnostics (regimes) and the hindcast are imported
 # inside the functions that use them: a query on an archive date needs none of them, and
@@ -53,14 +57,24 @@ def grid_box(ds) -> tuple[float, float, float, float]:
     return float(lat.min()), float(lat.max()), float(lon.min()), float(lon.max())
 
 
-#: Half-sizes (degrees of latitude, longitude) of the synoptic-scale box over which the
-#: regime of a point region is diagnosed: a regime is a pattern, not a point value.
-SYNOPTIC_HALF_BOX = (7.5, 10.0)
-
-
 def diagnostic_region(region: Region, ds) -> tuple[float, float, float, float]:
-    """The box, clipped to the grid, over which regime diagnostics are computed."""
-    south, north, west, east = grid_box(ds)
+    """The box (south, north, west, east), on the grid of ``ds``, over which regime
+    diagnostics are computed for an outcome ``region``.
+
+    - a box: the box itself, clipped to the domain;
+    - a point: the synoptic-scale box of half-sizes
+      :data:`analogs.stages.regimes.SYNOPTIC_HALF_BOX` around it, clipped: a regime is a
+      pattern, not a point value;
+    - the whole domain (no region given): the synoptic-scale box at the centre of the
+      domain (:func:`analogs.stages.regimes.default_diagnostic_box`), so that the ridge
+      is searched upstream (west) of it and the trough over and downstream (east) of
+      it; over the whole domain neither could be found. Outcome statistics of a store
+      built without a region still count the whole domain (README, "Regions").
+
+    On a domain across the date line the box is continuous: ``east`` may exceed 180.
+    """
+    from analogs.stages.regimes import SYNOPTIC_HALF_BOX, clip_to_domain, default_diagnostic_box
+    lat, lon = ds["lat"].values, ds["lon"].values
     if region.kind == "box":
         box = (region.south, region.north, region.west, region.east)
     elif region.kind == "point":
@@ -68,11 +82,22 @@ def diagnostic_region(region: Region, ds) -> tuple[float, float, float, float]:
         box = (region.lat - half_lat, region.lat + half_lat,
                region.lon - half_lon, region.lon + half_lon)
     else:
-        return south, north, west, east
-    return (max(box[0], south), min(box[1], north), max(box[2], west), min(box[3], east))
+        return tuple(float(v) for v in default_diagnostic_box(lat, lon))
+    return tuple(float(v) for v in clip_to_domain(box, lat, lon))
 
 
-def build_store(paths, store, *, events=None, fields=None, n_modes=P.n_modes.api_default,
+def diagnostic_region_info(region: Region, ds) -> dict:
+    """What the manifest, ``tag`` and ``find`` say of the diagnostic region: the box,
+    whether it is the default (no region given) and a sentence."""
+    from analogs.stages.regimes import describe_box
+    box = diagnostic_region(region, ds)
+    default = region.kind == "whole"
+    return {"south": box[0], "north": box[1], "west": box[2], "east": box[3],
+            "default": default, "description": describe_box(box, default=default)}
+
+
+def build_store(paths, store, *, events=None, event_dates=P.event_dates.default,
+                events_period=None, fields=None, n_modes=P.n_modes.api_default,
                 variance=None, region=None, domain=None, hour=P.hour.default,
                 daily=P.daily.default, n_harmonics=P.n_harmonics.default,
                 solver=P.solver.default, field_weights=None, chunks=None,
@@ -84,7 +109,13 @@ def build_store(paths, store, *, events=None, fields=None, n_modes=P.n_modes.api
     paths : list of NetCDF / Zarr paths (see :func:`analogs.stages.sources.open_archive`).
     store : directory to write; an existing store is replaced only when the build
         succeeds.
-    events : path of the events table (CSV or Parquet), optional.
+    events : path of the events table (CSV or Parquet), optional; reports outside the
+        archive's grid are counted, reported in a warning and left out.
+    event_dates : how an events time without a time of day is read
+        (:func:`analogs.stages.outcomes.read_events`): refused, or the convective day.
+    events_period : ``"FIRST,LAST"``, the convective days the events table is the report
+        record of (default every archive day); other days have no report coverage and
+        are left out of outcome statistics (:mod:`analogs.workflows.reports`).
     fields : fields to use (default: every supported field found).
     n_modes, variance : EOF truncation, by count (default 20) or by explained-variance
         target (a fraction in (0, 1]); give at most one.
@@ -117,45 +148,86 @@ def build_store(paths, store, *, events=None, fields=None, n_modes=P.n_modes.api
             f"one of them. Got n_modes={n_modes!r} and variance={variance!r} instead.")
     fields, domain = P.fields.check(fields, owner), P.domain.check(domain, owner)
     hour, n_harmonics = P.hour.check(hour, owner), P.n_harmonics.check(n_harmonics, owner)
-    for option, value in ((P.daily, daily), (P.solver, solver), (P.index, index)):
+    for option, value in ((P.daily, daily), (P.solver, solver), (P.index, index),
+                          (P.event_dates, event_dates)):
         option.check(value, owner)
+    if events_period is not None:
+        parse_period(events_period, "events_period", owner)  # refused before any work
+    store_io.check_new_store_path(store)  # a file, a folder of other files, inside a store
     # The region is parsed here and checked against the archive's grid in _build.
     with renamed_errors(owner, "region"):
         region = Region.parse(region) if isinstance(region, str) else (region or Region.whole())
-        with _dask_scheduler(scheduler):
-            return _build(paths, store, events=events, fields=fields, n_modes=n_modes,
+        from analogs.stages.sources import read_guard
+        # read_guard: a damaged chunk or a file changed under the build's reads (the
+        # missing-data, climatology, EOF and tagging passes) is named, exit 2.
+        guard = read_guard(paths)
+        with _dask_scheduler(scheduler), guard:
+            return _build(paths, store, events=events, event_dates=event_dates,
+                          events_period=events_period, fields=fields, n_modes=n_modes,
                           variance=variance, region=region, domain=domain, hour=hour,
                           daily=daily, n_harmonics=n_harmonics, solver=solver,
                           field_weights=field_weights, chunks=chunks, index=index,
-                          progress=progress)
+                          progress=progress, reads_done=guard.check_unchanged)
+
+
+#: A dask scheduler address: an optional scheme, a host name, IPv4 or [IPv6] address,
+#: and an optional port ("tcp://10.0.0.5:8786", "scheduler.example:8786");
+#: "inproc://..." names an in-process scheduler.
+_SCHEDULER_ADDRESS = re.compile(
+    r"^(?:(?:tcp|tls|ucx|ws|wss)://)?(?:\[[0-9A-Fa-f:.]+\]|[A-Za-z0-9](?:[A-Za-z0-9.-]*"
+    r"[A-Za-z0-9])?)(?::(?P<port>\d{1,5}))?$")
+
+
+def _check_scheduler_address(address) -> None:
+    """Refuse, before any connection, what is not ``"local"`` nor a scheduler address."""
+    expected = ("'local' or the address of a dask scheduler such as tcp://HOST:8786 "
+                "(a host name or IP address and a port from 1 to 65535)")
+    if not isinstance(address, str):
+        fail("scheduler", "build_store", expected, address)
+    if address == "local" or (address.startswith("inproc://") and len(address) > 9):
+        return
+    match = _SCHEDULER_ADDRESS.match(address)
+    if match is None or (match["port"] is not None and not 1 <= int(match["port"]) <= 65535):
+        fail("scheduler", "build_store", expected, address)
 
 
 @contextlib.contextmanager
 def _dask_scheduler(address):
-    """Run the enclosed dask work on a distributed scheduler when one is named."""
+    """Run the enclosed dask work on a distributed scheduler when one is named.
+
+    ``"local"`` starts a local cluster of two worker processes whose scheduler, workers
+    and dashboard (the scheduler's HTTP server, on a free port) listen on the loopback
+    interface only: a build opens no port to the network. Errors of the enclosed work pass unchanged; only
+    failing to reach or start the scheduler is reported as a bad ``scheduler``.
+    """
     if address is None:
         yield
         return
+    _check_scheduler_address(address)
     try:
         from distributed import Client, LocalCluster
     except ImportError:
         fail("scheduler", "build_store", "None without the 'distributed' package "
              "(pip install 'analogs[distributed]')", address)
-    try:
-        if address == "local":
-            with LocalCluster(n_workers=2, threads_per_worker=1, dashboard_address=":0") as cluster, \
-                    Client(cluster):
-                yield
-        else:
-            with Client(address, timeout=30):
-                yield
-    except OSError as error:
-        fail("scheduler", "build_store", f"the address of a reachable dask scheduler ({error})",
-             address)
+    with contextlib.ExitStack() as stack:
+        try:
+            if address == "local":
+                cluster = stack.enter_context(LocalCluster(
+                    n_workers=2, threads_per_worker=1, host="127.0.0.1",
+                    dashboard_address="127.0.0.1:0"))
+                stack.enter_context(Client(cluster))
+            else:
+                stack.enter_context(Client(address, timeout=30))
+        except (OSError, ValueError, TypeError) as error:
+            fail("scheduler", "build_store", "the address of a reachable dask scheduler "
+                 f"({' '.join(str(error).split()) or type(error).__name__})", address)
+        yield
 
 
-def _build(paths, store, *, events, fields, n_modes, variance, region, domain, hour, daily,
-           n_harmonics, solver, field_weights, chunks, index, progress):
+def _build(paths, store, *, events, event_dates, events_period, fields, n_modes, variance,
+           region, domain, hour, daily,
+           n_harmonics, solver, field_weights, chunks, index, progress,
+           reads_done=lambda: None):
     from analogs.stages.regimes import tag_days
     from analogs.stages.sources import open_archive
     archive = open_archive(paths, fields=fields, region=domain, hour=hour, daily=daily,
@@ -164,7 +236,8 @@ def _build(paths, store, *, events, fields, n_modes, variance, region, domain, h
         raise AnalogsInputError(
             f"the archive has {archive.sizes['time']} days; at least 3 are needed to build a store")
     region.require_grid_points(archive["lat"].values, archive["lon"].values)
-    event_table = read_events(events) if events is not None else None
+    event_table, n_outside = (None, 0) if events is None else load_events(
+        events, archive["lat"].values, archive["lon"].values, dates=event_dates)
 
     climatology = HarmonicClimatology(n_harmonics=n_harmonics).fit(archive)
     anomalies = climatology.transform(archive)
@@ -172,14 +245,22 @@ def _build(paths, store, *, events, fields, n_modes, variance, region, domain, h
                           field_weights=field_weights).fit(anomalies)
     pcs = eof.pcs_
     errors = eof.training_error_.values
-    tags = tag_days(archive, diagnostic_region(region, archive), progress=progress)
+    # No region: tag_days places the synoptic box at the domain's centre and says so.
+    tags = tag_days(archive, None if region.kind == "whole" else
+                    diagnostic_region(region, archive), progress=progress)
 
     times = pd.DatetimeIndex(archive["time"].values)
     index_info = _index_info(index, pcs.values, times)
-    skill = None
-    if event_table is not None and np.unique(times.year).size >= 2:
+    skill, events_entry = None, None
+    if event_table is not None:
+        # Report coverage (analogs.workflows.reports): every archive day, or --events-period.
+        period = coverage_period(event_table, events_period, default=(times[0], times[-1]),
+                                 owner="build_store")
+        events_entry = events_block(events, event_table, [period], times.normalize(),
+                                    n_outside=n_outside)
         observed = daily_event_counts(event_table, times.normalize(), region)["total"].to_numpy() > 0
-        skill = skill_by_month(pcs.values, times, observed, region=region)
+        skill = measured_skill(pcs.values, times, observed,
+                               covered_days(times, [period]), region=region)
     manifest = {
         "config": {
             "fields": list(archive.data_vars),
@@ -193,6 +274,7 @@ def _build(paths, store, *, events, fields, n_modes, variance, region, domain, h
             "daily": daily,
             "domain": list(domain) if domain is not None else list(grid_box(archive)),
             "region": region.to_dict(),
+            "diagnostic_region": diagnostic_region_info(region, archive),
             "field_weights": field_weights,
         },
         "archive": {
@@ -205,15 +287,12 @@ def _build(paths, store, *, events, fields, n_modes, variance, region, domain, h
             "missing_data": json.loads(archive.attrs.get("missing_data", "{}")),
             "reconstruction_error": error_summary(errors),
         },
-        "events": None if event_table is None else {
-            "source": str(Path(events).resolve()),
-            "n_events": int(len(event_table)),
-            "kinds": sorted(event_table["kind"].unique().tolist()),
-        },
+        "events": events_entry,
         "skill": skill,
         "index": index_info,
     }
     from analogs.workflows.analog_store import AnalogStore
+    reads_done()  # an archive file changed during the reads: refused before any write
     # A whole new version, written and loaded back under the writer lock.
     with store_io.transaction(store, new=True) as txn:
         staged = txn.staging
@@ -232,7 +311,7 @@ def _build(paths, store, *, events, fields, n_modes, variance, region, domain, h
             store_io.write_table(event_table, staged / store_io.EVENTS)
         store_io.write_table(tags.reset_index(drop=True), staged / store_io.TAGS)
         txn.commit(manifest)
-        return AnalogStore._load_version(Path(store), manifest=txn.committed)
+        return AnalogStore._load_version(txn.path, manifest=txn.committed)
 
 
 def _index_info(kind, vectors, times) -> dict:

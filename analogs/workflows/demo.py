@@ -8,10 +8,13 @@ import numpy as np
 import pandas as pd
 import xarray as xr
 
+from analogs._validation import fail
 from analogs.constants import G0
 from analogs.parameters import P
 from analogs.stages.outcomes import Region
 from analogs.workflows import files as output
+from analogs.workflows.tagging import write_tags
+from analogs.workflows.paths import check_output
 
 
 def write_forecast_like_field(archive: xr.Dataset, day, path) -> Path:
@@ -60,16 +63,40 @@ def _pick_target(tags: pd.DataFrame) -> pd.Timestamp:
     return tags.index[-1]
 
 
-def run_demo(out, *, years=P.years.default, seed=P.seed.default, progress=True) -> dict:
+#: What the demo writes under its folder (a folder holding any of them is refused
+#: unless ``replace=True``).
+DEMO_OUTPUTS = ("store", "events.csv", "truth.csv", "archive", "tags.csv",
+                "tags.csv-metadata.json", "report",
+                "forecast_field.nc")
+
+
+def check_demo_folder(out, *, replace=False, owner="run_demo") -> Path:
+    """``out`` as the demo's folder, refused when it is or lies inside an analogs store,
+    is a file, or already holds a store or other demo outputs (unless ``replace``)."""
+    check_output(out, "out", owner, kind="directory")
+    out = Path(out)
+    present = [name for name in DEMO_OUTPUTS if (out / name).exists()]
+    if present and not replace:
+        fail("out", owner, "a folder without an earlier demo's outputs (it holds "
+             f"{', '.join(present)}; pass --replace, or replace=True, to replace them)",
+             str(out))
+    return out
+
+
+def run_demo(out, *, years=P.years.default, seed=P.seed.default, replace=False,
+             progress=True) -> dict:
     """Generate the synthetic archive, build and tag a store, query one day and write
     its report.
 
     Writes, under ``out``: ``archive/`` (NetCDF), ``events.csv`` and ``truth.csv`` (by
     :mod:`reanalysis_demo`), ``store/``, ``tags.csv``, ``forecast_field.nc`` (one day
     written as a model centre might, to try ``find --field`` on) and
-    ``report/index.html``. Returns what was made: ``store`` (the built store),
-    ``result`` (the query's result), ``target`` (its day), ``files`` (the archive
-    files) and ``paths`` (name -> path of every output), for the caller to show.
+    ``report/index.html``. A folder that already holds a store, events or another of
+    these outputs is refused unless ``replace=True`` (then they are replaced; archive
+    files of an earlier, longer demo are left alone but not used). ``out`` is never
+    inside a store. Returns what was made: ``store`` (the built store), ``result`` (the
+    query's result), ``target`` (its day), ``files`` (the archive files) and ``paths``
+    (name -> path of every output), for the caller to show.
     """
     import reanalysis_demo
 
@@ -78,15 +105,13 @@ def run_demo(out, *, years=P.years.default, seed=P.seed.default, progress=True) 
     from analogs.workflows.build import build_store
 
     years, seed = P.years.check(years, "run_demo"), P.seed.check(seed, "run_demo")
-    out = Path(out)
+    out = check_demo_folder(out, replace=replace)
     written = reanalysis_demo.write_archive(out, years=years, seed=seed, progress=progress)
-    files = sorted((out / "archive").glob("*.nc"))
+    files = sorted(Path(p) for p in [*written["zg"], *written["hus"]])
     region = Region.box(*reanalysis_demo.CENTRAL_REGION)
     store = build_store(files, out / "store", events=out / "events.csv", region=region,
                         progress=progress)
-    tags = store.tags.reset_index()
-    tags["date"] = tags["date"].dt.strftime("%Y-%m-%d")
-    output.write_table(tags, out / "tags.csv")
+    write_tags(store, out / "tags.csv")  # with its CSVW sidecar of column units
     target = _pick_target(store.tags)
     archive = open_archive(files, progress=False)
     forecast = write_forecast_like_field(archive, target, out / "forecast_field.nc")

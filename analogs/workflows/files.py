@@ -6,7 +6,9 @@ user's umask (``0o666 & ~umask``), renames it over the target (``os.replace``) a
 the directory. A reader therefore sees the old file or the new one, never half a file;
 a failure (or a kill) before the rename leaves the old file as it was and removes the
 temporary (a killed process leaves at most a hidden ``.NAME.*.tmp`` sibling). Parent
-directories are created.
+directories are created. No file is ever written inside an analogs store
+(:func:`analogs.workflows.paths.refuse_inside_store`): a store's own files go to its
+staging directory, a sibling of the store.
 
 NetCDF files are CF-tidied (:func:`analogs.stages.cf.cf_tidy`) on the way out.
 """
@@ -26,6 +28,7 @@ import xarray as xr
 from analogs._validation import fail
 from analogs.errors import AnalogsInputError
 from analogs.stages.cf import cf_tidy, netcdf_encoding
+from analogs.workflows.paths import check_output, refuse_inside_store
 
 #: Suffixes :func:`write_table` knows, and the pandas writer of each.
 TABLE_SUFFIXES = (".csv", ".parquet")
@@ -80,6 +83,7 @@ def atomic_path(path):
     than a handle (``to_netcdf``, ``to_parquet``, ``savefig``).
     """
     path = Path(path)
+    refuse_inside_store(path)
     path.parent.mkdir(parents=True, exist_ok=True)
     fd, name = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
     os.close(fd)
@@ -153,9 +157,10 @@ def write_netcdf(ds: xr.Dataset, path, *, group=None, mode="w", encoding=None) -
 def write_maps(ds: xr.Dataset, path) -> Path:
     """Write outcome maps (:func:`analogs.stages.outcomes.outcome_maps`) as CF NetCDF,
     atomically: data variables float32 with NaN fill, coordinates without fill values.
-    The directory must exist (it is an output the user named)."""
+    The directory must exist (it is an output the user named) and lie outside any store."""
     import numpy as np
     path = Path(path)
+    check_output(path, "maps", None, kind="file")
     if not path.parent.is_dir():
         fail("maps", None, "a file in an existing directory", str(path))
     encoding = {name: {"dtype": "float32", "_FillValue": np.float32(np.nan)}

@@ -30,7 +30,10 @@ their indexes, regime arrays) are computed once per loaded store and kept beside
 
 from __future__ import annotations
 
+import warnings
 import weakref
+from dataclasses import dataclass
+from dataclasses import replace as dataclasses_replace
 
 import numpy as np
 import pandas as pd
@@ -39,11 +42,12 @@ import xarray as xr
 from analogs._validation import choice_expected, fail, renamed_errors
 from analogs.errors import AnalogsInputError
 from analogs.parameters import P
-from analogs.results import EVENTS_PREFIX, EVENTS_TOTAL, FindResult
+from analogs.results import EVENTS_PREFIX, EVENTS_TOTAL, FindResult, ValidTimesResult
 from analogs.stages.index import AnalogIndex
 from analogs.stages.outcomes import (
     Region,
     analog_weights,
+    binomial_interval,
     cyclone_relative_composite,
     daily_event_counts,
     summarize_outcomes,
@@ -61,6 +65,15 @@ WEIGHT_SCHEMES = P.weights.choices
 SEQUENCE_DECAY = 0.5
 #: Analog days drawn one by one in the report's panel.
 PANEL_ANALOGS = 6
+#: Largest share of the store grid a field target may leave without values (outside
+#: its file, or missing in it); up to it the target is projected by least squares on
+#: the covered points (Everson & Sirovich 1995), above it the target is refused.
+MAX_UNCOVERED_FRACTION = 0.10
+#: A first analog closer than this fraction of the typical length of a day's vector
+#: (the square root of the sum of the kept eigenvalues) is a near copy of the target:
+#: a regridded copy of an archive day lands around 1e-5 of it on the demo store, the
+#: closest day of another year above 0.2 (measured here).
+NEAR_DUPLICATE_FRACTION = 0.02
 
 _DERIVED: "weakref.WeakKeyDictionary" = weakref.WeakKeyDictionary()
 
@@ -79,7 +92,7 @@ def find(store, *, date=None, field=None, time=None, top=P.top.api_default,
          window=P.window.default, exclude=P.exclude.api_default,
          separation=P.separation.default, region=None, regime=None,
          weights=P.weights.default, confidence=P.confidence.default,
-         sequence=P.sequence.default, kinds=None) -> FindResult:
+         sequence=P.sequence.default, kinds=None) -> FindResult | ValidTimesResult:
     """Closest archive days of ``store`` to a target and what they produced.
 
     Give exactly one of ``date`` (an archive day, YYYY-MM-DD) or ``field`` (a path or a
@@ -95,6 +108,23 @@ def find(store, *, date=None, field=None, time=None, top=P.top.api_default,
     A field target is opened once and regridded to the store grid once; those fields
     serve the projection, the regime diagnostics and (``FindResult.target_fields``) the
     report. Returns a :class:`analogs.results.FindResult`.
+
+    Field targets (:func:`find_field`) may also be:
+
+    - an ensemble (a member dimension, :func:`analogs.stages.sources.member_dimension`):
+      each member gets its regime, analogs and outcomes (``FindResult.members``), the
+      outcomes are pooled over all members' analogs, and ``target.regime_probabilities``
+      gives the fraction of members in each regime (:func:`ensemble_result`);
+    - several valid times: ``time="all"`` or a range ``"START/END"`` gives a
+      :class:`analogs.results.ValidTimesResult`, one result per valid time, from one
+      opening and one regridding of the file;
+    - partly outside the store grid: up to ``MAX_UNCOVERED_FRACTION`` of the grid points
+      without a value, the target is projected on the covered points by least squares
+      (:meth:`analogs.stages.eof.MultivariateEOF.project_gappy`), with a warning.
+
+    A field that matches an archive day almost exactly (its own day, when valid inside
+    the archive) is answered with a warning offering to exclude it
+    (:func:`warn_near_duplicate`).
     """
     owner = "find"
     top = store.query_defaults.get("top", P.top.default) if top is None else top
@@ -110,54 +140,85 @@ def find(store, *, date=None, field=None, time=None, top=P.top.api_default,
         region = resolve_region(store, region)
         if kinds is not None and store.events is not None:
             daily_counts(store, region, kinds)  # refuses unknown kinds early; kept for later
-    n_modes = store.n_query_modes
-    fields = None
+    query = _Query.resolve(store, top=top, window=window, exclude=exclude,
+                           separation=separation, region=region, regime=regime,
+                           weights=weights, confidence=confidence, sequence=sequence,
+                           kinds=kinds)
     if date is not None:
         row = day_row(store, date)
-        vector = store.pcs.values[row, :n_modes]
+        vector = store.pcs.values[row, :query.n_modes]
         if sequence:
             vector = sequence_vectors(store, sequence)[0][row]
         target_time = store.times[row]
-        exclude = P.exclude.default if exclude is None else exclude
-        target = {"date": str(store.days[row].date()), **regime_of_day(store, row)}
-    else:
-        with renamed_errors(owner, "time"):
-            fields = target_fields(store, field, time)
-        target_time = pd.Timestamp(fields["time"].values[0])
-        vector = project(store, fields)
-        if sequence:
-            vector = _field_sequence_vector(store, field, target_time, vector, sequence)
-        target = {"date": str(target_time.date()), **regime_of_fields(store, fields, region)}
-    restrict = None
-    if regime is not None:
-        restrict = regime_mask(store, regime)
-    index = store.index
-    if sequence:
-        complete = sequence_vectors(store, sequence)[1]
-        restrict = complete if restrict is None else restrict & complete
-        index = _sequence_index(store, sequence)
-    else:
-        vector = vector[:n_modes]
-    chosen = find_analogs(index, store.times, vector, target_time=target_time,
-                          top=top, window=window, exclude=exclude,
-                          separation=separation, restrict=restrict)
-    if chosen.empty:
-        raise AnalogsInputError(
-            "no archive day is allowed as an analog of this target "
-            f"(season window +/-{window} d, exclusion {exclude} d"
-            + (f", regime {regime}" if regime else "")
-            + (f", sequence of {sequence} preceding days" if sequence else "")
-            + "); widen the season window or drop the regime")
-    analogs = describe_analogs(store, chosen, region, kinds)
-    outcomes = outcome_summary(store, analogs, target_time, window, region, weights,
-                               confidence, kinds)
-    settings = {"top": top, "window_days": window, "exclude_days": exclude,
-                "sequence_days": sequence, "kinds": kinds,
-                "separation_days": separation, "regime": regime,
-                "region": {**region.to_dict(), "label": region.label()}, "weights": weights,
-                "n_modes": n_modes, "store": str(store.path)}
-    return FindResult(target=target, analogs=analogs, outcomes=outcomes, settings=settings,
-                      region=region, target_fields=fields)
+        query = query.with_exclude(P.exclude.default if exclude is None else exclude)
+        target = {"date": str(store.days[row].date()), **regime_of_day(store, row),
+                  **diagnostics_of_day(store, row)}
+        analogs, outcomes = query.answer(store, vector, target_time)
+        return FindResult(target=target, analogs=analogs, outcomes=outcomes,
+                          settings=query.settings(store), region=query.region)
+    return find_field(store, field, time, query)
+
+
+@dataclass(frozen=True)
+class _Query:
+    """The checked settings of a query, and what they make of the store once for every
+    target of one call (members, valid times): the index searched and the rows allowed."""
+
+    top: int
+    window: int
+    exclude: int | None
+    separation: int
+    region: Region
+    regime: str | None
+    weights: str
+    confidence: float
+    sequence: int
+    kinds: list | None
+    n_modes: int
+    index: object
+    restrict: np.ndarray | None
+
+    @classmethod
+    def resolve(cls, store, **settings) -> _Query:
+        restrict, index = None, store.index
+        if settings["regime"] is not None:
+            restrict = regime_mask(store, settings["regime"])
+        if settings["sequence"]:
+            complete = sequence_vectors(store, settings["sequence"])[1]
+            restrict = complete if restrict is None else restrict & complete
+            index = _sequence_index(store, settings["sequence"])
+        return cls(**settings, n_modes=store.n_query_modes, index=index, restrict=restrict)
+
+    def with_exclude(self, exclude) -> _Query:
+        return dataclasses_replace(self, exclude=exclude)
+
+    def settings(self, store) -> dict:
+        region = self.region
+        return {"top": self.top, "window_days": self.window, "exclude_days": self.exclude,
+                "sequence_days": self.sequence, "kinds": self.kinds,
+                "separation_days": self.separation, "regime": self.regime,
+                "region": {**region.to_dict(), "label": region.label()},
+                "weights": self.weights, "n_modes": self.n_modes, "store": str(store.path)}
+
+    def answer(self, store, vector, target_time) -> tuple[pd.DataFrame, object]:
+        """The analogs table and the outcome summary of one target vector."""
+        vector = np.asarray(vector, dtype=float)
+        if not self.sequence:
+            vector = vector[:self.n_modes]
+        chosen = find_analogs(self.index, store.times, vector, target_time=target_time,
+                              top=self.top, window=self.window, exclude=self.exclude,
+                              separation=self.separation, restrict=self.restrict)
+        if chosen.empty:
+            raise AnalogsInputError(
+                "no archive day is allowed as an analog of this target "
+                f"(season window +/-{self.window} d, exclusion {self.exclude} d"
+                + (f", regime {self.regime}" if self.regime else "")
+                + (f", sequence of {self.sequence} preceding days" if self.sequence else "")
+                + "); widen the season window or drop the regime")
+        analogs = describe_analogs(store, chosen, self.region, self.kinds)
+        outcomes = outcome_summary(store, analogs, target_time, self.window, self.region,
+                                   self.weights, self.confidence, self.kinds)
+        return analogs, outcomes
 
 
 # ---------------------------------------------------------------------- targets
@@ -165,9 +226,12 @@ def find(store, *, date=None, field=None, time=None, top=P.top.api_default,
 def day_row(store, date) -> int:
     """Row of the archive day ``date`` (YYYY-MM-DD) in ``store``."""
     try:
-        day = pd.Timestamp(date).normalize()
+        day = pd.Timestamp(date)
     except (TypeError, ValueError):
         fail("date", "find", "a date YYYY-MM-DD", date)
+    if day.tz is not None:  # 2002-06-14T12:00Z: that UTC day (issue 13)
+        day = day.tz_convert(None)
+    day = day.normalize()
     rows = np.flatnonzero(store.days == day)
     if rows.size == 0:
         fail("date", "find", f"a day of the archive of store {store.path} "
@@ -177,11 +241,22 @@ def day_row(store, date) -> int:
 
 
 def open_field(field, time=None) -> xr.Dataset:
-    """A field target as a canonical Dataset (one time, its own grid): ``field`` is a
-    path (opened with :func:`analogs.stages.sources.open_target`) or a Dataset."""
-    from analogs.stages.sources import open_target
-    dataset = field if isinstance(field, xr.Dataset) else open_target(field, time=time)
-    if "time" not in dataset.dims or pd.isna(dataset["time"].values[0]):
+    """A field target as a canonical Dataset on its own grid: ``field`` is a path
+    (opened with :func:`analogs.stages.sources.open_target`, keeping an ensemble's
+    members) or a Dataset. Dims ``(time, lat, lon)``, with ``member`` first for an
+    ensemble; ``time`` of length one unless ``time`` asks for several
+    (:func:`analogs.stages.sources.several_times`)."""
+    from analogs.stages.sources import member_dimension, open_target, select_valid_times
+    if isinstance(field, xr.Dataset):
+        dataset = field
+        member = member_dimension(dataset)
+        if member is not None and member != "member":
+            dataset = dataset.rename({member: "member"})
+        if "time" in dataset.dims and (time is not None or dataset.sizes["time"] > 1):
+            dataset = select_valid_times(dataset, time, "the target Dataset")
+    else:
+        dataset = open_target(field, time=time, members=True)
+    if "time" not in dataset.dims or pd.isna(dataset["time"].values).any():
         raise AnalogsInputError(
             f"the target field {field if not isinstance(field, xr.Dataset) else ''} has no "
             "valid time; its calendar day is needed for the climatology and the season "
@@ -191,12 +266,14 @@ def open_field(field, time=None) -> xr.Dataset:
 
 def target_fields(store, field, time=None) -> xr.Dataset:
     """A field target's store fields, opened once and regridded once to the store grid
-    (``time`` of length one)."""
+    (:func:`open_field`, :func:`on_store_grid`)."""
     return on_store_grid(store, open_field(field, time))
 
 
 def on_store_grid(store, dataset: xr.Dataset) -> xr.Dataset:
-    """The store's fields of a canonical Dataset, bilinearly regridded to the store grid."""
+    """The store's fields of a canonical Dataset, bilinearly regridded to the store grid,
+    with the coverage checked (:func:`check_coverage`): store grid points outside the
+    field are NaN, up to ``MAX_UNCOVERED_FRACTION`` of them (with a warning)."""
     from analogs.stages.sources import regrid_to
     missing = [name for name in store.fields if name not in dataset.data_vars]
     if missing:
@@ -204,28 +281,190 @@ def on_store_grid(store, dataset: xr.Dataset) -> xr.Dataset:
             f"the target field lacks {', '.join(missing)}: the store was built from "
             f"{', '.join(store.fields)}")
     lat, lon = store.grid
-    return regrid_to(dataset[store.fields], lat, lon)
+    fields = regrid_to(dataset[store.fields], lat, lon, partial=True)
+    check_coverage(store, fields, dataset)
+    return fields
+
+
+def days_on_store_grid(store, days: xr.Dataset) -> xr.Dataset:
+    """Archive days (canonical, ``(time, lat, lon)``) brought to the store grid as a
+    field target is (for ``update``): unchanged when already on it; else regridded and
+    checked by :func:`on_store_grid` (bilinear, at most ``MAX_UNCOVERED_FRACTION``
+    uncovered, with a warning), and any uncovered points filled with the daily
+    climatology plus the EOF reconstruction of the days' gappy PCs. The filled days
+    project exactly onto those PCs (the EOFs are orthonormal, so the projection of the
+    reconstruction is the PCs themselves) and their regime diagnostics see no NaN."""
+    lat, lon = store.grid
+    if (days.sizes.get("lat") == lat.size and days.sizes.get("lon") == lon.size
+            and np.allclose(days["lat"].values, lat) and np.allclose(days["lon"].values, lon)):
+        return days
+    if set(days.data_vars) - set(store.fields):
+        return days  # other fields: the caller's field check refuses them
+    fields = on_store_grid(store, days)
+    if not bool(uncovered_fraction(fields).max() > 0):
+        return fields
+    pcs = project_samples(store, fields)
+    times = fields["time"].values
+    climate = store.climatology.predict(times)
+    anomaly = store.eof.reconstruct(xr.DataArray(
+        pcs, dims=("time", "mode"),
+        coords={"time": times, "mode": np.arange(1, pcs.shape[1] + 1)}))
+    for name in store.fields:
+        values = fields[name].transpose("time", "lat", "lon").values
+        estimate = climate[name].values + anomaly[name].transpose("time", "lat", "lon").values
+        fields[name] = (("time", "lat", "lon"), np.where(np.isnan(values), estimate, values),
+                        fields[name].attrs)
+    return fields
+
+
+def uncovered_fraction(fields: xr.Dataset) -> xr.DataArray:
+    """Share of the grid points without a value (NaN in any field) of each time (and
+    member) of fields on the store grid: a fraction in [0, 1]."""
+    gaps = None
+    for name in fields.data_vars:
+        missing = fields[name].isnull()
+        gaps = missing if gaps is None else gaps | missing
+    return gaps.mean(("lat", "lon"))
+
+
+def check_coverage(store, fields: xr.Dataset, source: xr.Dataset | None = None) -> float:
+    """The largest uncovered share of ``fields`` (on the store grid) over its times and
+    members; refused above ``MAX_UNCOVERED_FRACTION``, with a warning above 0.
+
+    ``source``: the fields before regridding, whose extent the refusal names.
+    """
+    worst = float(uncovered_fraction(fields).max())
+    if worst == 0.0:
+        return worst
+    name = fields.attrs.get("source_files", "the target field")
+    lat, lon = store.grid
+    by_field = ", ".join(
+        f"{variable} {100 * float(fields[variable].isnull().mean(('lat', 'lon')).max()):.1f} %"
+        for variable in fields.data_vars)
+    if worst > MAX_UNCOVERED_FRACTION:
+        extent = ""
+        if source is not None and "lat" in source.coords and "lon" in source.coords:
+            extent = (f"; it covers lat {float(source['lat'].min()):g} to "
+                      f"{float(source['lat'].max()):g}, lon {float(source['lon'].min()):g} to "
+                      f"{float(source['lon'].max()):g}")
+        raise AnalogsInputError(
+            f"{name}: the field leaves {100 * worst:.1f} % of the store grid uncovered (no "
+            f"value there: missing or outside the file; by field {by_field}), more than the {100 * MAX_UNCOVERED_FRACTION:g} % a projection "
+            f"on the covered points allows{extent}; the store needs lat {lat.min():g} to "
+            f"{lat.max():g}, lon {lon.min():g} to {lon.max():g}")
+    warnings.warn(
+        f"{name}: {100 * worst:.1f} % of the store grid has no value in the field (outside "
+        f"it or missing; by field {by_field}); the target is projected on the covered points only (least-squares "
+        "fit of the EOFs, Everson & Sirovich 1995) and its regime diagnostics use the EOF "
+        "reconstruction there", UserWarning, stacklevel=3)
+    return worst
+
+
+def project_samples(store, fields: xr.Dataset) -> np.ndarray:
+    """PC vectors of fields already on the store grid (:func:`on_store_grid`):
+    anomalies from the daily climatology, projected on the EOFs; grid points without a
+    value are left out by the least-squares (gappy) projection
+    (:meth:`analogs.stages.eof.MultivariateEOF.project_gappy`). Shape: the fields'
+    ``(member, time)`` dims (those present) followed by ``mode``."""
+    anomalies = store.climatology.transform(fields[store.fields])
+    gappy = bool(uncovered_fraction(fields).max() > 0)
+    if "member" not in anomalies.dims:
+        pcs = store.eof.transform(anomalies, gappy=gappy) if gappy \
+            else store.eof.transform(anomalies)
+        return np.asarray(pcs.values, dtype=float)
+    anomalies = anomalies.transpose("member", "time", "lat", "lon")
+    n_member, n_time = anomalies.sizes["member"], anomalies.sizes["time"]
+    stacked = xr.Dataset(
+        {name: (("time", "lat", "lon"),
+                anomalies[name].values.reshape(n_member * n_time, *anomalies[name].shape[2:]))
+         for name in store.fields},
+        coords={"time": np.arange(n_member * n_time), "lat": anomalies["lat"].values,
+                "lon": anomalies["lon"].values})
+    pcs = store.eof.transform(stacked, gappy=gappy)
+    return np.asarray(pcs.values, dtype=float).reshape(n_member, n_time, -1)
 
 
 def project(store, fields: xr.Dataset) -> np.ndarray:
     """PC vector of one time of fields already on the store grid (:func:`on_store_grid`):
-    anomalies from the daily climatology, projected on the EOFs."""
-    anomalies = store.climatology.transform(fields[store.fields])
-    pcs = store.eof.transform(anomalies)
-    return np.asarray(pcs.values, dtype=float).reshape(-1)
+    anomalies from the daily climatology, projected on the EOFs (gappy where needed)."""
+    return project_samples(store, fields).reshape(-1)
 
 
-def regime_of_fields(store, fields: xr.Dataset, region: Region) -> dict:
+def filled_for_diagnostics(store, fields: xr.Dataset, pcs, uncovered=None) -> xr.Dataset:
+    """One time of fields on the store grid with the points that have no value filled
+    by the daily climatology plus the EOF reconstruction of ``pcs`` (its gappy PCs), so
+    the regime diagnostics (spherical gradients) see no NaN; unchanged when complete
+    (``uncovered``: its uncovered share when already known)."""
+    if uncovered is None:
+        uncovered = float(uncovered_fraction(fields).max())
+    if not uncovered > 0:
+        return fields
+    times = fields["time"].values
+    climate = store.climatology.predict(times)
+    modes = np.arange(1, len(pcs) + 1)
+    anomaly = store.eof.reconstruct(xr.DataArray(np.atleast_2d(pcs), dims=("time", "mode"),
+                                                 coords={"time": times, "mode": modes}))
+    filled = fields.copy()
+    for name in store.fields:
+        estimate = (climate[name].values + anomaly[name].transpose("time", "lat", "lon").values)
+        values = fields[name].transpose("time", "lat", "lon").values
+        filled[name] = (("time", "lat", "lon"), np.where(np.isnan(values), estimate, values),
+                        fields[name].attrs)
+    return filled
+
+
+def regime_of_fields(store, fields: xr.Dataset, region: Region, *, all_rows=False):
     """Regime of one time of fields on the store grid, from the physical diagnostics
-    (:func:`analogs.stages.regimes.tag_days`) over ``region``."""
+    (:func:`analogs.stages.regimes.tag_days`) over ``region``; with ``all_rows``, a list
+    with one such block per time of ``fields`` (see :func:`member_regimes`)."""
     from analogs.stages.regimes import tag_days
     from analogs.workflows.build import diagnostic_region
     if "time" not in fields.dims:
         fields = fields.expand_dims(time=[pd.Timestamp("2000-01-01")])
-    tags = tag_days(fields, diagnostic_region(region, fields), progress=False)
-    row = tags.iloc[0]
-    return {"regime": str(row["regime"]), "regime_confidence": float(row["confidence"]),
-            "reason": str(row.get("reason", ""))}
+    # No region: the synoptic box at the centre of the domain (tag_days says so).
+    box = None if region.kind == "whole" else diagnostic_region(region, fields)
+    tags = tag_days(fields, box, progress=False)
+    # every row (15b: the members of an ensemble are tagged in one call, member_regimes)
+    blocks = [{"regime": str(row["regime"]), "regime_confidence": float(row["confidence"]),
+               "reason": str(row.get("reason", "")), **diagnostics_block(row, tags.attrs)}
+              for _, row in tags.iterrows()]
+    return blocks if all_rows else blocks[0]
+
+
+#: Columns of a tags table that are labels, not physical diagnostics.
+_LABEL_COLUMNS = ("date", "regime", "confidence", "reason", "kmeans_regime",
+                  "learned_regime", "learned_confidence")
+
+
+def diagnostics_block(row: pd.Series, attrs: dict) -> dict:
+    """The target's ``diagnostics`` (every diagnostic of its tags row, keyed as in the tag
+    file, each ``{"value": number or None, "units": str}``) and ``diagnostic_region``
+    (the box, whether it was the default, in words) for ``analogs find --json``; units and
+    region as in the tag file's metadata (:func:`analogs.stages.regimes.tag_metadata`)."""
+    from analogs.stages.regimes import tag_metadata
+    names = [name for name in row.index if name not in _LABEL_COLUMNS]
+    metadata = tag_metadata(attrs, names)
+    diagnostics = {}
+    for name in names:
+        value = row[name]
+        if isinstance(value, (bool, np.bool_)):
+            value = bool(value)
+        else:
+            try:
+                value = float(value)
+            except (TypeError, ValueError):
+                continue
+            value = value if np.isfinite(value) else None
+        diagnostics[str(name)] = {"value": value, "units": metadata["units"][name]}
+    return {"diagnostics": diagnostics, "diagnostic_region": metadata["diagnostic_region"]}
+
+
+def diagnostics_of_day(store, row: int) -> dict:
+    """:func:`diagnostics_block` of archive row ``row`` from the store's tags (empty
+    when the store has none)."""
+    if store.tags is None:
+        return {}
+    return diagnostics_block(store.tags.iloc[row], store.tag_attrs)
 
 
 def regime_of_day(store, row: int) -> dict:
@@ -269,6 +508,212 @@ def regime_mask(store, regime) -> np.ndarray:
     return (store.tags["regime"] == regime).to_numpy()
 
 
+# ------------------------------------------------- field targets: members, valid times
+
+def find_field(store, field, time, query: _Query):
+    """The answer for a field target (:func:`find` with ``field``).
+
+    The file is opened once and regridded once for all its members and the valid times
+    asked for; every (member, time) is projected in one batch. One valid time gives a
+    :class:`FindResult` (an ensemble result when the file has members, see
+    :func:`ensemble_result`); ``time="all"`` or a range ``"START/END"`` gives a
+    :class:`ValidTimesResult` with one such result per valid time.
+    """
+    from analogs.stages.sources import several_times
+    with renamed_errors("find", "time"):
+        opened = open_field(field, time)
+    fields = on_store_grid(store, opened)
+    uncovered = uncovered_fraction(fields)
+    vectors = project_samples(store, fields)
+    ensemble = "member" in fields.dims
+    times = pd.DatetimeIndex(fields["time"].values)
+    if query.sequence:  # preceding days already opened are taken from the batch
+        batch = {t: (vectors[:, i] if ensemble else vectors[i]) for i, t in enumerate(times)}
+    several = several_times(time)
+    results = []
+    for i, valid in enumerate(times):
+        one = fields.isel(time=[i])
+        vector = vectors[:, i] if ensemble else vectors[i]
+        full = vector
+        if query.sequence:
+            vector = _field_sequence_vector(store, field, valid, vector, query.sequence, batch)
+        gaps = uncovered.isel(time=i).values
+        if ensemble:
+            result = ensemble_result(store, one, full, vector, gaps, valid, query)
+        else:
+            target = {"date": str(valid.date()),
+                      **regime_of_fields(store, filled_for_diagnostics(store, one, full, gaps),
+                                         query.region)}
+            if gaps > 0:
+                target["uncovered_fraction"] = float(gaps)
+            analogs, outcomes = query.answer(store, vector, valid)
+            warn_near_duplicate(store, analogs, valid, query)
+            result = FindResult(target=target, analogs=analogs, outcomes=outcomes,
+                                settings=query.settings(store), region=query.region,
+                                target_fields=one)
+        if several:
+            result.target["valid_time"] = f"{valid:%Y-%m-%dT%H:%M:%S}Z"
+        results.append(result)
+    if not several:
+        return results[0]
+    settings = {**query.settings(store), "field": str(field) if not isinstance(
+        field, xr.Dataset) else "a Dataset", "time": time, "n_valid_times": len(results)}
+    return ValidTimesResult(results=tuple(results), settings=settings)
+
+
+def ensemble_result(store, fields: xr.Dataset, pcs, vectors, uncovered, valid,
+                    query: _Query) -> FindResult:
+    """The answer for one valid time of an ensemble target.
+
+    ``fields``: ``(member, time=1, lat, lon)`` on the store grid; ``pcs``: each member's
+    PCs ``(member, mode)``; ``vectors``: the query vectors (PCs, or sequence vectors);
+    ``uncovered``: each member's uncovered share. Every member gets its own regime,
+    analogs and outcomes (a :class:`FindResult` in ``members``). The outcomes are pooled
+    over all members' analogs (each member's analogs count once, so a day chosen by
+    several members counts as often; ``n_analogs`` = members x top), with the spread
+    across members in ``member_spread``. ``target.regime_probabilities`` gives the
+    fraction of members in each regime; ``target.regime`` is the most frequent one
+    (ties: the order of ``REGIME_LABELS``) with that fraction as ``regime_confidence``;
+    ``target.ensemble_mean`` is the regime of the members' mean field.
+    """
+    from analogs.parameters import REGIME_LABELS
+    labels = fields["member"].values
+    settings = query.settings(store)
+    members, tables = [], []
+    regimes = member_regimes(store, fields, pcs, query.region, uncovered)
+    for m, label in enumerate(labels):
+        member_label = label.item() if hasattr(label, "item") else label
+        target = {"member": member_label, "date": str(valid.date()), **regimes[m]}
+        if np.ndim(uncovered) and uncovered[m] > 0:
+            target["uncovered_fraction"] = float(uncovered[m])
+        analogs, outcomes = query.answer(store, vectors[m], valid)
+        members.append(FindResult(target=target, analogs=analogs, outcomes=outcomes,
+                                  settings=settings, region=query.region))
+        tables.append(analogs.assign(member=[member_label] * len(analogs)))
+    pooled = pd.concat(tables, ignore_index=True)
+    warn_near_duplicate(store, pd.concat([t.head(1) for t in tables]), valid, query,
+                        members=[t["member"].iloc[0] for t in tables])
+    outcomes = outcome_summary(store, pooled, valid, query.window, query.region,
+                               query.weights, query.confidence, query.kinds)
+    outcomes = outcomes.replace(member_spread=member_spread(members, pooled, query))
+    shares = pd.Series([member.target["regime"] for member in members]).value_counts() \
+        / len(members)
+    order = {label: i for i, label in enumerate(REGIME_LABELS)}
+    ranked = sorted(shares.index, key=lambda r: (-shares[r], order.get(r, len(order)), r))
+    target = {"date": str(valid.date()), "regime": str(ranked[0]),
+              "regime_confidence": float(shares[ranked[0]]),
+              "reason": f"{round(shares[ranked[0]] * len(members))} of {len(members)} "
+                        f"members are {ranked[0]}",
+              "regime_probabilities": {str(r): float(shares[r]) for r in ranked},
+              "n_members": len(members),
+              "ensemble_mean": regimes[-1]}
+    if np.max(uncovered) > 0:
+        target["uncovered_fraction"] = float(np.max(uncovered))
+    return FindResult(target=target, analogs=consensus_analogs(pooled), outcomes=outcomes,
+                      settings=settings, region=query.region, target_fields=fields,
+                      members=tuple(members))
+
+
+def member_regimes(store, fields: xr.Dataset, pcs, region, uncovered=None) -> list[dict]:
+    """:func:`regime_of_fields` of each member of one valid time (``fields``: ``(member,
+    time=1, lat, lon)`` on the store grid; ``pcs``: their PCs), then of the members'
+    mean field, tagged in one call: the samples go along ``time``, all at the valid
+    time (nanoseconds apart, so the day and month the rules may use are the valid
+    time's). Points without a value are filled first (:func:`filled_for_diagnostics`)."""
+    valid = fields["time"].values[0]
+    n_member = fields.sizes["member"]
+    gaps = [None] * n_member if uncovered is None else np.broadcast_to(uncovered, n_member)
+    samples = [filled_for_diagnostics(store, fields.isel(member=m), pcs[m], gaps[m])
+               for m in range(n_member)]
+    mean = fields.mean("member", keep_attrs=True)
+    complete = uncovered is not None and not np.max(uncovered) > 0
+    samples.append(filled_for_diagnostics(store, mean, np.mean(pcs, axis=0),
+                                          0.0 if complete else None))
+    samples = [sample.drop_vars("member", errors="ignore")[store.fields]
+               for sample in samples]
+    stacked = xr.concat(samples, dim="time", coords="minimal", compat="override",
+                        join="override")
+    offsets = np.arange(len(samples)).astype("timedelta64[ns]")
+    stacked = stacked.assign_coords(time=np.datetime64(valid, "ns") + offsets)
+    return regime_of_fields(store, stacked, region, all_rows=True)
+
+
+def consensus_analogs(pooled: pd.DataFrame) -> pd.DataFrame:
+    """The distinct analog days of an ensemble (``pooled``: every member's analogs with
+    a ``member`` column), most chosen first: ``n_members`` (members that chose the day),
+    ``distance`` its mean over those members; ties by distance."""
+    columns = [c for c in pooled.columns if c not in ("rank", "distance", "member")]
+    grouped = pooled.groupby("row", sort=False)
+    table = grouped[columns].first()
+    table["distance"] = grouped["distance"].mean()
+    table["n_members"] = grouped["member"].nunique()
+    table = table.sort_values(["n_members", "distance"], ascending=[False, True],
+                              kind="stable").reset_index(drop=True)
+    table.insert(0, "rank", np.arange(1, len(table) + 1))
+    order = ["rank", "date", "distance", "regime", "regime_confidence"]
+    rest = [c for c in table.columns if c not in order]
+    return table[order + rest]
+
+
+def member_spread(members, pooled: pd.DataFrame, query: _Query) -> dict:
+    """How the members' outcomes differ, and an interval for the pooled probability that
+    does not count a day twice: Kish's (1965) effective number of analogs of the distinct
+    days weighted by how many members chose them, ``(sum w)^2 / sum w^2``, with the
+    binomial interval at that n (as for the weighted outcomes)."""
+    p_members = np.array([m.outcomes.p_any_event for m in members], dtype=float)
+    mean_members = np.array([m.outcomes.mean_events for m in members], dtype=float)
+    multiplicity = pooled.groupby("row").size().to_numpy(dtype=float)
+    n_effective = float(multiplicity.sum() ** 2 / np.sum(multiplicity ** 2))
+    p_pooled = float(np.mean(pooled[EVENTS_TOTAL].to_numpy() > 0))
+    low, high = binomial_interval(p_pooled * n_effective, n_effective, query.confidence)
+
+    def spread(values):
+        return {"min": float(np.min(values)), "median": float(np.median(values)),
+                "max": float(np.max(values))}
+
+    return {"n_members": len(members), "n_distinct_days": int(multiplicity.size),
+            "n_effective": n_effective, "p_any_event_ci_effective": [float(low), float(high)],
+            "p_any_event": spread(p_members), "mean_events": spread(mean_members)}
+
+
+def warn_near_duplicate(store, analogs: pd.DataFrame, valid, query: _Query,
+                        members=None) -> None:
+    """Warn when the first analog is a near copy of the target (distance below
+    ``NEAR_DUPLICATE_FRACTION`` of the typical length of a day's vector): a field valid
+    on an archive day is most likely that day itself, and would be its own first analog
+    at distance ~0; the warning offers to exclude its episode. For an ensemble,
+    ``analogs`` holds each member's first analog and ``members`` their labels: one
+    warning names the members concerned."""
+    if analogs.empty:
+        return
+    scale = float(np.sqrt(np.sum(store.eof.eigenvalues_.values[:query.n_modes])))
+    limit = NEAR_DUPLICATE_FRACTION * scale
+    rows = [0] if members is None else list(range(len(analogs)))
+    close = [r for r in rows if analogs["distance"].iloc[r] < limit]
+    if not close:
+        return
+    first = analogs.iloc[close[0]]
+    who = "the target" if members is None else (
+        f"member{'s' if len(close) > 1 else ''} "
+        f"{', '.join(str(members[r]) for r in close)} of the target")
+    when = f"{valid:%Y-%m-%dT%H:%M}"
+    verb = "matches" if len(close) == 1 else "match"
+    distance = float(analogs["distance"].iloc[close].max())
+    if first["date"] == str(valid.date()):
+        warnings.warn(
+            f"{who} (valid {when}, inside the archive) {verb} the archive day "
+            f"{first['date']} almost exactly (distance {distance:.2g}, below "
+            f"{limit:.2g}): probably that day itself, found as its own first analog; "
+            f"to leave its episode out pass --time {when} --exclude "
+            f"{P.exclude.default} (time=..., exclude=... in Python)", UserWarning,
+            stacklevel=4)
+    else:
+        warnings.warn(
+            f"{who} (valid {when}) {verb} the archive day {first['date']} almost exactly "
+            f"(distance {distance:.2g}, below {limit:.2g}): is it that day's field with "
+            "another valid time? Check the file's valid time", UserWarning, stacklevel=4)
+
+
 # ---------------------------------------------------------------------- sequences
 
 def sequence_vectors(store, sequence) -> tuple[np.ndarray, np.ndarray]:
@@ -301,24 +746,36 @@ def _sequence_index(store, sequence) -> AnalogIndex:
     return indexes[sequence]
 
 
-def _field_sequence_vector(store, field, target_time, vector, sequence) -> np.ndarray:
-    """The sequence vector of a field target: its preceding days come from its file."""
+def _field_sequence_vector(store, field, target_time, vector, sequence,
+                           batch=None) -> np.ndarray:
+    """The sequence vector(s) of a field target: its preceding days come from the times
+    already opened (``batch``: valid time -> PC vectors) or else from its file.
+    ``vector`` is ``(mode,)``, or ``(member, mode)`` for an ensemble."""
     from analogs.stages.sources import open_target
-    if isinstance(field, xr.Dataset):
-        raise AnalogsInputError("a sequence match of a field needs its file (with the "
-                                "preceding days), not a Dataset")
     n_modes = store.n_query_modes
-    parts = [vector[:n_modes]]
+    vector = np.asarray(vector, dtype=float)
+    parts = [vector[..., :n_modes]]
     for lag in range(1, sequence + 1):
         earlier = target_time - pd.Timedelta(days=lag)
-        try:
-            previous = open_target(field, time=earlier.isoformat())
-        except AnalogsInputError as error:
-            fail("sequence", "find", f"at most the number of days before the target that "
-                 f"{field} holds: it lacks {earlier:%Y-%m-%dT%H:%M} ({error})", sequence)
-        previous = project(store, on_store_grid(store, previous))
-        parts.append(SEQUENCE_DECAY ** lag * previous[:n_modes])
-    return np.concatenate(parts)
+        if batch is not None and earlier in batch:
+            previous = batch[earlier]
+        else:
+            if isinstance(field, xr.Dataset):
+                raise AnalogsInputError("a sequence match of a field needs its file (with "
+                                        "the preceding days), not a Dataset")
+            try:
+                opened = open_target(field, time=earlier.isoformat(), members=True)
+            except AnalogsInputError as error:
+                fail("sequence", "find", f"at most the number of days before the target "
+                     f"that {field} holds: it lacks {earlier:%Y-%m-%dT%H:%M} ({error})",
+                     sequence)
+            previous = project_samples(store, on_store_grid(store, opened))
+            previous = previous[:, 0] if previous.ndim == 3 else previous[0]
+        if previous.shape[:-1] != vector.shape[:-1]:
+            raise AnalogsInputError(f"{field}: the day {earlier:%Y-%m-%d} before the target "
+                                    "has other ensemble members than the target")
+        parts.append(SEQUENCE_DECAY ** lag * previous[..., :n_modes])
+    return np.concatenate(parts, axis=-1)
 
 
 # ---------------------------------------------------------------------- outcomes
@@ -355,6 +812,8 @@ def describe_analogs(store, chosen: pd.DataFrame, region, kinds=None) -> pd.Data
     })
     for kind in kind_columns:
         table[EVENTS_PREFIX + kind] = counts[kind].to_numpy(dtype=int)
+    if store.events is not None:  # False: no reports yet for that day (issue 13)
+        table["reports_known"] = store.covered[rows]
     table["row"] = rows
     return table
 
@@ -365,19 +824,26 @@ def outcome_summary(store, analogs, target_time, window, region, weights, confid
     window's climatology, with the cyclone quadrants of the tropical analogs and the
     stored skill."""
     counts = daily_counts(store, region, kinds)
-    analog_counts = counts.iloc[analogs["row"].to_numpy()]
     if target_time is not None and window is not None:
         season = candidate_ids(store.times, target_time, window=window, exclude=None)
     else:
         season = np.arange(len(store.times))
+    # Only days with report coverage count (issue 13): an analog day without reports yet
+    # is left out of the statistics (and counted), and so is such a climatology day.
+    known = (store.covered[analogs["row"].to_numpy()] if store.events is not None
+             else np.ones(len(analogs), dtype=bool))
+    if store.events is not None:
+        season = season[store.covered[season]]
+    analogs_known = analogs[known]
+    analog_counts = counts.iloc[analogs_known["row"].to_numpy()]
     weight_values = None
-    if weights != "equal" and len(analogs):
-        weight_values = analog_weights(analogs["distance"].to_numpy(), scheme=weights)
+    if weights != "equal" and len(analogs_known):
+        weight_values = analog_weights(analogs_known["distance"].to_numpy(), scheme=weights)
     summary = summarize_outcomes(analog_counts, counts.iloc[season], weights=weight_values,
-                                 confidence=confidence)
+                                 confidence=confidence, n_without_reports=int((~known).sum()))
     # Reports around the cyclone of the analogs tagged tropical (the cyclone days that
     # matter for the region); skipped, at no cost, when there are none.
-    tropical = analogs.loc[analogs["regime"] == "tropical", "row"].to_numpy()
+    tropical = analogs_known.loc[analogs_known["regime"] == "tropical", "row"].to_numpy()
     composite = cyclone_composite(store, tropical) if tropical.size else None
     return summary.replace(has_events=store.events is not None, cyclone_quadrants=composite,
                            skill=store.skill_for(target_time))
@@ -391,9 +857,22 @@ def outcome_maps(store, result: FindResult) -> xr.Dataset:
         raise AnalogsInputError(f"store {store.path} has no events table: maps need one")
     lat, lon = store.grid
     days = pd.DatetimeIndex(pd.to_datetime(result.analogs["date"]))
-    maps = outcome_stage.outcome_maps(store.events, days, lat, lon)
+    weights = None
+    if "n_members" in result.analogs:  # an ensemble: each day as often as members chose it
+        weights = result.analogs["n_members"].to_numpy(dtype=float)
+    # Only analog days with reports (issue 13): a day without reports yet is not a day
+    # without reports nearby. With none, the maps are undefined (NaN).
+    known = (result.analogs["reports_known"].to_numpy(dtype=bool)
+             if "reports_known" in result.analogs else np.ones(len(days), dtype=bool))
+    chosen = known if known.any() else np.ones(len(days), dtype=bool)
+    maps = outcome_stage.outcome_maps(store.events, days[chosen], lat, lon,
+                                      weights=None if weights is None else weights[chosen])
+    if not known.any():
+        maps = maps.where(False)
     maps.attrs.update({"target": str(result.target["date"]),
-                       "n_analogs": int(len(days)), "source": f"analogs store {store.path}"})
+                       "n_analogs": int(known.sum()), "source": f"analogs store {store.path}"})
+    if not known.all():
+        maps.attrs["n_analogs_without_reports"] = int((~known).sum())
     return maps
 
 
@@ -467,6 +946,10 @@ def report_figures(store, result: FindResult, *, maps=None, hindcast=None,
         target = result.target_fields.squeeze("time", drop=True) \
             if "time" in result.target_fields.dims else result.target_fields
         source = "the given field, on the store grid"
+        if "member" in target.dims:
+            source = (f"mean of the {target.sizes['member']} ensemble members, on the "
+                      "store grid")
+            target = target.mean("member", keep_attrs=True)
     elif result.target.get("date"):
         analog_rows = np.concatenate([[day_row(store, result.target["date"])], analog_rows])
         source = f"climatology + anomaly on {store.eof.n_modes_} kept EOFs"

@@ -29,12 +29,47 @@ from analogs.workflows.find import resolve_region
 
 def observed(store, region=None, kinds=None) -> np.ndarray:
     """Whether at least one event (of ``kinds``, default any) fell in ``region`` (default
-    the store's) on each archive day: bool array aligned with ``store.times``."""
+    the store's) on each archive day: bool array aligned with ``store.times``. Days
+    without report coverage (``store.covered`` False) read False: leave them out
+    (:func:`hindcast_days`)."""
     if store.events is None:
         raise AnalogsInputError(f"store {store.path} has no events table: verification needs "
                                 "one (rebuild with --events FILE)")
     region = resolve_region(store, region)
     return store.daily_counts(region, kinds)["total"].to_numpy() > 0
+
+
+def hindcast_days(store, events: np.ndarray, *, region=None, kinds=None):
+    """The PCs, times and observed events of the days with report coverage: what a
+    hindcast may forecast and take analogs from (days without reports yet are not
+    known, so neither targets nor analogs). Refuses a store whose covered days hold no
+    event (of ``kinds``, in ``region``): there is nothing to verify."""
+    covered = store.covered
+    n_covered = int(covered.sum())
+    if n_covered == 0:
+        raise AnalogsInputError(
+            f"store {store.path}: no day has report coverage (its days were appended "
+            "without reports): pass their reports with analogs update --events")
+    if not events[covered].any():
+        label = region.label() if region is not None else "the region"
+        raise AnalogsInputError(
+            f"store {store.path}: its events table holds no report"
+            + (f" of kind {', '.join(kinds)}" if kinds else "")
+            + f" in {label} on any of its {n_covered} days with report coverage: there is "
+            "nothing to verify (a header-only events table, or a region without reports)")
+    return store.pcs.values[covered], store.times[covered], events[covered]
+
+
+def measured_skill(pcs, times, observed, covered, *, region) -> dict | None:
+    """:func:`skill_by_month` over the days with report coverage (``covered``); None when
+    it cannot be measured: fewer than two years covered, or no day (or every day) with
+    an event there."""
+    covered = np.asarray(covered, dtype=bool)
+    times = pd.DatetimeIndex(times)
+    events = np.asarray(observed, dtype=bool)[covered]
+    if np.unique(times[covered].year).size < 2 or not 0 < events.sum() < events.size:
+        return None
+    return skill_by_month(np.asarray(pcs)[covered], times[covered], events, region=region)
 
 
 def verify(store, *, top=P.top.api_default, window=P.window.default,
@@ -63,12 +98,12 @@ def verify(store, *, top=P.top.api_default, window=P.window.default,
     with renamed_errors(owner, "region", "kinds"):
         region = resolve_region(store, region)
         events = observed(store, region, kinds)
+    pcs, times, events = hindcast_days(store, events, region=region, kinds=kinds)
     common = dict(top=top, window=window, separation=separation, n_modes=n_modes,
                   months=months)
-    pcs = store.pcs.values
-    hindcast = leave_one_year_out(pcs, store.times, events, progress=progress, **common)
+    hindcast = leave_one_year_out(pcs, times, events, progress=progress, **common)
     summary = score_hindcast(hindcast, threshold=threshold, n_resamples=n_resamples)
-    baseline = score_hindcast(leave_one_year_out(pcs, store.times, events, method="random",
+    baseline = score_hindcast(leave_one_year_out(pcs, times, events, method="random",
                                                  **common),
                               threshold=threshold, n_resamples=n_resamples)
     summary["random_analogs"] = {k: baseline[k] for k in
@@ -79,6 +114,9 @@ def verify(store, *, top=P.top.api_default, window=P.window.default,
                            "months": None if months is None else sorted(months),
                            "region": region.to_dict(), "threshold": threshold,
                            "kinds": kinds, "method": "leave-one-year-out"}
+    left_out = int((~store.covered).sum())
+    if left_out:  # only then, so earlier answers keep their shape
+        summary["settings"]["n_days_without_reports"] = left_out
     return summary
 
 
@@ -94,8 +132,10 @@ def tune(store, *, tops=P.tops.default, modes=P.scan_modes.default,
     months, kinds = P.months.check(months, owner), P.kinds.check(kinds, owner)
     modes = modes + (int(store.eof.n_modes_),)
     with renamed_errors(owner, "region", "kinds"):
+        region = resolve_region(store, region)
         events = observed(store, region, kinds)
-    return scan(store.pcs.values, store.times, events, tops=tops,
+    pcs, times, events = hindcast_days(store, events, region=region, kinds=kinds)
+    return scan(pcs, times, events, tops=tops,
                 modes=modes, window=window, separation=separation, months=months,
                 progress=progress)
 

@@ -25,6 +25,7 @@ import copy
 import ctypes
 import ctypes.util
 import datetime as _dt
+import errno
 import glob
 import hashlib
 import json
@@ -42,6 +43,7 @@ from filelock import FileLock, Timeout
 from analogs import __version__
 from analogs.errors import StoreError
 from analogs.workflows import files as _files
+from analogs.workflows import paths as _paths
 
 FORMAT_VERSION = 1
 MANIFEST = "manifest.json"
@@ -190,10 +192,13 @@ class Transaction:
     def commit(self, manifest: dict) -> dict:
         """Write the manifest (``manifest`` plus format, version, time and the sha256 of
         every staged file), fsync, and swap the staged version in place of the store.
-        Returns the manifest written."""
+        Files and folders in the store directory that the store did not write are kept
+        (:func:`keep_foreign_entries`). Returns the manifest written."""
         if self.committed is not None:
             raise StoreError(f"store {self.path}: this transaction was already committed")
         full = _finish_manifest(self.staging, manifest)
+        keep_foreign_entries(self.path, self.staging,
+                             listed=() if self.manifest is None else self.manifest["files"])
         _swap_into_place(self.staging, self.path)
         self.committed = full
         return full
@@ -223,33 +228,150 @@ def transaction(path, *, new=False, timeout=None):
             txn.carry(BASIS)                      # and carry unchanged ones
             txn.commit({**editable(txn.manifest), "query_defaults": {...}})
     """
-    path = Path(path).absolute()
-    if path.exists() and not path.is_dir():
-        raise StoreError(f"store path {path} exists and is not a directory")
+    path = checked_store_path(path, new=new)
     seconds = lock_timeout(timeout)
     if not new:
         read_manifest(path)  # a clear error for a path that is no store, before any lock
-    path.parent.mkdir(parents=True, exist_ok=True)
-    try:
-        lock = lock_for(path)
-        lock.acquire(timeout=seconds)
-    except Timeout as error:
-        raise StoreError(f"store {path} is locked by another writer (lock {error.lock_file}, "
-                         f"waited {seconds:g} s); try again when it has finished") from None
+    with write_errors(path):
+        path.parent.mkdir(parents=True, exist_ok=True)
+        _check_writable(path)
+        try:
+            lock = lock_for(path)
+            lock.acquire(timeout=seconds)
+        except Timeout as error:
+            raise StoreError(f"store {path} is locked by another writer (lock "
+                             f"{error.lock_file}, waited {seconds:g} s); try again when it "
+                             "has finished") from None
     try:
         remove_stale_staging(path)
         manifest = None if new else check_checksums(path)
-        staged = Path(tempfile.mkdtemp(prefix=f"{_staging_prefix(path)}{os.getpid()}-",
-                                       dir=path.parent))
-        os.chmod(staged, _files.directory_mode())
+        if new and path.is_dir() and not _paths.is_store(path):
+            _refuse_foreign_folder(path)
+        with write_errors(path):
+            staged = Path(tempfile.mkdtemp(prefix=f"{_staging_prefix(path)}{os.getpid()}-",
+                                           dir=path.parent))
+            os.chmod(staged, _files.directory_mode())
         txn = Transaction(path, manifest, staged)
         try:
-            yield txn
+            with write_errors(path, staged):
+                yield txn
         finally:
             if txn.committed is None:
                 shutil.rmtree(staged, ignore_errors=True)
     finally:
         lock.release()
+
+
+def checked_store_path(path, *, new=False) -> Path:
+    """The real directory a store path names (symbolic links and ``..`` resolved), so
+    that a write through a link goes to the store it points at and leaves the link as
+    it is. Refused: a path that is a file, lies inside another store, or (``new``) is an
+    existing folder, not a store, that holds files of its own."""
+    given = path
+    path = _paths.real_path(path)
+    if path.exists() and not path.is_dir():
+        raise StoreError(f"store path {given} exists and is not a directory")
+    outer = _paths.enclosing_store(path.parent)
+    if outer is not None:
+        raise StoreError(f"store path {given} lies inside the analogs store {outer}; a store "
+                         "is a folder of its own, never inside another (from inside a store, "
+                         "'--store .' names it)")
+    if path == Path(path.anchor):
+        raise StoreError(f"store path {given} is the root of the file system; give a folder")
+    return path
+
+
+def check_new_store_path(path) -> Path:
+    """:func:`checked_store_path` for a new version (a build), with the refusal of an
+    existing folder that is not a store: called before a build's work, so a bad store
+    path is refused at once (the transaction checks again under the lock)."""
+    path = checked_store_path(path, new=True)
+    if path.is_dir() and not _paths.is_store(path):
+        _refuse_foreign_folder(path)
+    return path
+
+
+def _refuse_foreign_folder(path: Path) -> None:
+    """Refuse to build a store into an existing folder that holds files of its own (a
+    build replaces the whole folder)."""
+    foreign = _paths.foreign_entries(path)
+    if foreign:
+        shown = ", ".join(foreign[:5]) + (", ..." if len(foreign) > 5 else "")
+        raise StoreError(f"store path {path} is an existing folder that is not an analogs "
+                         f"store (it holds {shown}); build into a new or empty folder")
+
+
+def _check_writable(path: Path) -> None:
+    """Refuse, before any work, a store whose folder (or the folder around it, where the
+    new version is staged and the lock kept) cannot be written."""
+    for folder, what in ((path.parent, f"the folder {path.parent} around store {path}"),
+                         (path, f"store {path}")):
+        if folder.exists() and not os.access(folder, os.W_OK | os.X_OK):
+            raise StoreError(f"cannot write {what}: it is read-only (no write permission "
+                             "or a read-only file system); the store was left as it was")
+
+
+#: errno values of a write that cannot succeed: the disk (or the quota) is full, or the
+#: file system is read-only.
+_FULL = (errno.ENOSPC, errno.EDQUOT)
+_READ_ONLY = (errno.EROFS,)
+_DENIED = (errno.EACCES, errno.EPERM)
+
+
+@contextlib.contextmanager
+def write_errors(path, *where):
+    """Turn a write that cannot succeed (disk or quota full, read-only file system,
+    permission denied on the store or its staging directory) into one clear
+    :class:`~analogs.errors.StoreError` saying the store was left as it was. Other
+    errors pass unchanged."""
+    try:
+        yield
+    except OSError as error:
+        number = error.errno
+        filename = str(getattr(error, "filename", "") or "")
+        places = [str(path), str(Path(path).parent), *map(str, where)]
+        ours = not filename or any(filename.startswith(place) for place in places)
+        if number in _FULL:
+            reason = "no space left on the device (or the quota is full)"
+        elif number in _READ_ONLY:
+            reason = "the file system is read-only"
+        elif number in _DENIED and ours:
+            reason = "permission denied"
+        else:
+            raise
+        raise StoreError(f"cannot write store {path}: {reason}; the store was left as it "
+                         "was") from None
+
+
+def keep_foreign_entries(path, staging, *, listed=()) -> list[str]:
+    """Carry the files and folders of the store directory ``path`` that the store did
+    not write (:func:`analogs.workflows.paths.foreign_entries`) into ``staging``, so
+    the swap keeps them: hard links where the file system allows (no copy), else
+    copies; symbolic links as links. Names the new version writes itself win. Returns
+    the names kept."""
+    path, staging = Path(path), Path(staging)
+    if not path.is_dir():
+        return []
+    kept = []
+    for name in _paths.foreign_entries(path, listed):
+        source, target = path / name, staging / name
+        if os.path.lexists(target):
+            continue
+        if source.is_symlink():
+            os.symlink(os.readlink(source), target)
+        elif source.is_dir():
+            shutil.copytree(source, target, symlinks=True, copy_function=_link_or_copy)
+        else:
+            _link_or_copy(source, target)
+        kept.append(name)
+    return kept
+
+
+def _link_or_copy(source, target) -> None:
+    try:
+        os.link(source, target)
+    except OSError:
+        shutil.copy2(source, target)
 
 
 @contextlib.contextmanager
@@ -368,7 +490,8 @@ def check_checksums(path) -> dict:
     if extra:
         warnings.warn(f"store {path} holds files not listed in its manifest "
                       f"({', '.join(extra[:5])}{', ...' if len(extra) > 5 else ''}); "
-                      "they are ignored", UserWarning, stacklevel=2)
+                      "they are ignored (and kept as they are by writes)", UserWarning,
+                      stacklevel=2)
     return manifest
 
 
