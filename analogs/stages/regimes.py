@@ -219,8 +219,8 @@ class RegimeRules:
         unknown = sorted(set(values) - known)
         if unknown:
             raise AnalogsInputError(
-                f"{source}: unknown key(s) {', '.join(unknown)}; "
-                "see RegimeRules.describe() for the known ones")
+                f"{source}: unknown key(s) {', '.join(unknown)}; the known keys are "
+                f"{', '.join(sorted(known))}")
         unknown = sorted(set(overrides) - known)
         if unknown:
             raise AnalogsInputError(
