@@ -28,13 +28,14 @@ def synthetic():
 
 def test_each_forecast_equals_brute_force_over_other_years(synthetic):
     """With separation 0 the analogs of a day are exactly its nearest other-year days in the
-    season window (scikit-learn brute-force neighbours as the outside reference)."""
+    season window outside its own episode (the query's exclusion window, 10 days by
+    default), scikit-learn brute-force neighbours as the outside reference."""
     pcs, observed = synthetic
     hindcast = leave_one_year_out(pcs, TIMES, observed, top=15, window=30, separation=0)
     assert len(hindcast) == len(TIMES)
-    for row in (10, 400, 1500, 2800):
+    for row in (1, 10, 400, 1500, 2800):
         target = TIMES[row]
-        allowed = candidate_ids(TIMES, target, window=30, exclude=None,
+        allowed = candidate_ids(TIMES, target, window=30, exclude=10,
                                 restrict=TIMES.year != target.year)
         nn = NearestNeighbors(n_neighbors=15, algorithm="brute").fit(pcs[allowed])
         neighbours = allowed[nn.kneighbors(pcs[row:row + 1])[1][0]]
@@ -89,9 +90,9 @@ SAMPLE_ROWS = tuple(TIMES.normalize().get_indexer(pd.to_datetime([
 @pytest.mark.parametrize("top, window, separation", [(20, 45, 3), (12, 30, 0), (7, 10, 5)])
 def test_hindcast_analogs_are_the_live_query_selection(synthetic, top, window, separation):
     """The analogs the hindcast takes for a day are exactly what the live query's
-    find_analogs returns for that day with no exclusion window and the day's own year
-    removed by ``restrict``: one selection rule (season window, de-clustering, fetch
-    size) for both."""
+    find_analogs returns for that day with the query's default exclusion window (10 days,
+    across the turn of the year) and the day's own year removed by ``restrict``: one
+    selection rule (season window, exclusion, de-clustering, fetch size) for both."""
     pcs, _ = synthetic
     chosen = held_out_analogs(pcs, TIMES, rows=SAMPLE_ROWS, top=top, window=window,
                               separation=separation)
@@ -100,7 +101,7 @@ def test_hindcast_analogs_are_the_live_query_selection(synthetic, top, window, s
     for row in SAMPLE_ROWS:
         target = TIMES[row]
         live = find_analogs(index, TIMES, pcs[row], target_time=target, top=top,
-                            window=window, exclude=None, separation=separation,
+                            window=window, exclude=10, separation=separation,
                             restrict=TIMES.year != target.year)
         held_out = chosen[chosen["target"] == row]
         assert len(live) == top
@@ -134,3 +135,32 @@ def test_hindcast_restores_faiss_threads(synthetic):
     before = faiss.omp_get_max_threads()
     leave_one_year_out(pcs, TIMES, observed, top=5, months=[2])
     assert faiss.omp_get_max_threads() == before
+
+
+def test_own_episode_left_out_across_the_turn_of_the_year(synthetic):
+    """A target on 2 January takes no day of 23 December .. 11 January of another year:
+    days within the exclusion window (10 days) are its own episode, whatever their year.
+    Calendar arithmetic checked by hand (Python's datetime, from memory: 2 January minus
+    10 days is 23 December); common practice, no source, for leaving the episode out."""
+    pcs, observed = synthetic
+    target = pd.Timestamp("1994-01-02T12")
+    row = TIMES.get_loc(target)
+    # Make the previous year's last days the closest of all, so nothing else hides them.
+    pcs = pcs.copy()
+    episode = (TIMES >= "1993-12-23") & (TIMES <= "1994-01-12") & (TIMES.year == 1993)
+    pcs[episode] = pcs[row] + 1e-3
+    chosen = held_out_analogs(pcs, TIMES, rows=[row], top=10, window=30, separation=0)
+    times = pd.DatetimeIndex(chosen["time"])
+    gap = np.abs((times - target).days)
+    assert (gap > 10).all() and (times.year != 1994).all()
+    assert len(chosen) == 10
+    # Without the exclusion the hindcast would have taken them (the old behaviour).
+    old = held_out_analogs(pcs, TIMES, rows=[row], top=10, window=30, separation=0,
+                           exclude=None)
+    assert set(pd.DatetimeIndex(old["time"])) >= set(TIMES[episode])
+    # The forecast, climatology and random draws use the same candidates.
+    hindcast = leave_one_year_out(pcs, TIMES, observed, top=10, window=30, separation=0)
+    allowed = candidate_ids(TIMES, target, window=30, exclude=10, restrict=TIMES.year != 1994)
+    line = hindcast.loc[hindcast["time"] == target]
+    assert line["climatology"].item() == pytest.approx(observed[allowed].mean())
+    assert line["forecast"].item() == pytest.approx(observed[chosen["row"]].mean())

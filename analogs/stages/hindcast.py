@@ -4,9 +4,10 @@ Every archive day is forecast from analogs found in the other calendar years onl
 its own year's peculiarities cannot help), chosen by the live query's own selection
 (:func:`~analogs.stages.selection.candidate_ids` and
 :func:`~analogs.stages.selection.rank_many`: the same season window, de-clustering and
-fetch size), its own year removed as an extra restriction. No exclusion window is
-applied: within a few days of 1 January, the neighbouring days of the previous or next
-year (the same weather episode) may be analogs. The forecast is the fraction of analog days
+fetch size), its own year removed as an extra restriction together with the days within the
+query's exclusion window of the target (:func:`~analogs.stages.selection.held_out_mask`,
+default 10 days): near 1 January the neighbouring days of the previous or next year are
+the same weather episode, so they are neither analogs, random draws nor climatology. The forecast is the fraction of analog days
 with at least one event in the region; it is scored against what happened that day
 with the scores of :mod:`analogs.stages.scores`, and against the season-window climatology of
 the other years (the reference of the Brier skill score) and a random-analog baseline
@@ -25,20 +26,21 @@ from analogs.parameters import P
 from analogs.stages.index import AnalogIndex
 from analogs.stages.scores import (bootstrap_interval, brier_score, brier_skill_score, roc_auc,
                                    verification_summary)
-from analogs.stages.selection import (DEFAULT_SEPARATION, DEFAULT_TOP, DEFAULT_WINDOW,
-                                      candidate_ids, day_of_year, rank_many)
+from analogs.stages.selection import (DEFAULT_EXCLUDE, DEFAULT_SEPARATION, DEFAULT_TOP,
+                                      DEFAULT_WINDOW, candidate_ids, day_of_year,
+                                      held_out_mask, rank_many)
 
 HINDCAST_METHODS = ("analogs", "random")
 
 
 def leave_one_year_out(pcs, times, observed, *, top=DEFAULT_TOP, window=DEFAULT_WINDOW,
                        separation=DEFAULT_SEPARATION, n_modes=None, method="analogs",
-                       months=None, seed=0, progress=False):
+                       months=None, seed=0, exclude=DEFAULT_EXCLUDE, progress=False):
     """Forecast every day from analogs in the other years.
 
     The analogs of a day are those the live query would choose
-    (:func:`analogs.stages.selection.find_analogs` with no exclusion window) with the
-    day's own year removed as a restriction: see :func:`held_out_analogs`.
+    (:func:`analogs.stages.selection.find_analogs`) with the day's own year and the days
+    within ``exclude`` days of it removed as a restriction: see :func:`held_out_analogs`.
 
     Parameters
     ----------
@@ -52,17 +54,19 @@ def leave_one_year_out(pcs, times, observed, *, top=DEFAULT_TOP, window=DEFAULT_
     months : iterable of months (1-12) of the target days to forecast (default all);
         analogs may come from any month inside the season window.
     seed : random seed of the random baseline.
+    exclude : days within this many days of the target (its own episode, across the turn
+        of the year) are left out as well as its year; ``None`` leaves out the year only.
 
     Returns
     -------
     DataFrame indexed like the forecast days with ``time``, ``year``, ``forecast``
     (fraction of analogs with the event), ``observed`` (0/1), ``climatology`` (event
-    frequency over the other years' season-window days) and ``n_analogs``.
+    frequency over the season-window days the target may take) and ``n_analogs``.
     """
     owner = "leave_one_year_out"
     check_choice(method, "method", owner, HINDCAST_METHODS)
     pcs, times, top, window, separation = _checked(pcs, times, top, window, separation,
-                                                   n_modes, owner)
+                                                   n_modes, owner, exclude)
     observed = np.asarray(observed, dtype=bool)
     years = times.year.to_numpy()
     targets = np.ones(len(times), dtype=bool)
@@ -72,11 +76,11 @@ def leave_one_year_out(pcs, times, observed, *, top=DEFAULT_TOP, window=DEFAULT_
     forecast = np.full(len(times), np.nan)
     climatology = np.full(len(times), np.nan)
     n_analogs = np.zeros(len(times), dtype=int)
-    batches = _calendar_day_batches(times, targets, window, progress=progress)
+    batches = _calendar_day_batches(times, targets, window, exclude, progress=progress)
     if method == "analogs":
         batches = _with_analogs(batches, pcs, times, top=top, separation=separation)
     for queries, season, other_years, chosen in batches:
-        # Climatology of the other years: their share of event days in the season window.
+        # Climatology of the days the target may take: their share of event days.
         in_season = other_years[:, season]
         n_others = in_season.sum(axis=1)
         n_events = (in_season & observed[season]).sum(axis=1)
@@ -102,19 +106,21 @@ def leave_one_year_out(pcs, times, observed, *, top=DEFAULT_TOP, window=DEFAULT_
 
 
 def held_out_analogs(pcs, times, *, rows=None, top=DEFAULT_TOP, window=DEFAULT_WINDOW,
-                     separation=DEFAULT_SEPARATION, n_modes=None) -> pd.DataFrame:
+                     separation=DEFAULT_SEPARATION, n_modes=None,
+                     exclude=DEFAULT_EXCLUDE) -> pd.DataFrame:
     """The analogs the leave-one-year-out hindcast takes for the archive days ``rows``.
 
     For each target day: the season-window candidates of its calendar day
-    (:func:`~analogs.stages.selection.candidate_ids`, no exclusion window), less the
-    days of its own year, ranked by exact Euclidean distance and de-clustered
+    (:func:`~analogs.stages.selection.candidate_ids`), less the days of its own year
+    and those within ``exclude`` days of it (:func:`~analogs.stages.selection.held_out_mask`),
+    ranked by exact Euclidean distance and de-clustered
     (:func:`~analogs.stages.selection.rank_many`): what
     :func:`~analogs.stages.selection.find_analogs` returns for that day with
-    ``exclude=None`` and ``restrict`` = "not the target's year".
+    ``exclude=exclude`` and ``restrict`` = "not the target's year".
 
     Parameters
     ----------
-    pcs, times, top, window, separation, n_modes : as in :func:`leave_one_year_out`.
+    pcs, times, top, window, separation, n_modes, exclude : as in :func:`leave_one_year_out`.
     rows : int array of target rows (default every day).
 
     Returns
@@ -123,11 +129,11 @@ def held_out_analogs(pcs, times, *, rows=None, top=DEFAULT_TOP, window=DEFAULT_W
     ``rank`` (1 = closest), ``row``, ``time`` and ``distance`` of the analog.
     """
     pcs, times, top, window, separation = _checked(pcs, times, top, window, separation,
-                                                   n_modes, "held_out_analogs")
+                                                   n_modes, "held_out_analogs", exclude)
     targets = np.zeros(len(times), dtype=bool)
     targets[np.arange(len(times)) if rows is None else np.asarray(rows, dtype=np.int64)] = True
     parts = {"target": [], "rank": [], "row": [], "distance": []}
-    batches = _with_analogs(_calendar_day_batches(times, targets, window), pcs, times,
+    batches = _with_analogs(_calendar_day_batches(times, targets, window, exclude), pcs, times,
                             top=top, separation=separation)
     for queries, _, _, chosen in batches:
         for row, (analog_rows, distances) in zip(queries, chosen):
@@ -142,7 +148,7 @@ def held_out_analogs(pcs, times, *, rows=None, top=DEFAULT_TOP, window=DEFAULT_W
     return frame.sort_values(["target", "rank"], ignore_index=True)
 
 
-def _checked(pcs, times, top, window, separation, n_modes, owner):
+def _checked(pcs, times, top, window, separation, n_modes, owner, exclude=None):
     """Validated hindcast inputs: (pcs of the modes used, DatetimeIndex, top, window,
     separation)."""
     top = P.top.check(top, owner)
@@ -153,27 +159,30 @@ def _checked(pcs, times, top, window, separation, n_modes, owner):
     if n_modes is not None:
         n_modes = P.query_modes.check(n_modes, owner, maximum=pcs.shape[1])
         pcs = pcs[:, :n_modes]
+    if exclude is not None:
+        P.exclude.check(exclude, owner)
     if np.unique(times.year).size < 2:
         raise AnalogsInputError("a leave-one-year-out hindcast needs an archive of at least two years")
     return pcs, times, top, window, separation
 
 
-def _calendar_day_batches(times, targets, window, *, progress=False):
+def _calendar_day_batches(times, targets, window, exclude=DEFAULT_EXCLUDE, *, progress=False):
     """The target days grouped by calendar day, with what their analogs may be.
 
     Yields ``(queries, season, other_years, None)``: the rows of the targets of one
     calendar day; the season-window candidates they share (computed once, by the live
     query's :func:`~analogs.stages.selection.candidate_ids` for the first of them, with no
-    exclusion window); and a boolean array (len(queries), n_days) true on the days of
-    the other years (the leave-one-year-out restriction).
+    exclusion window: it differs between the years of one calendar day); and a boolean
+    array (len(queries), n_days), the leave-one-year-out restriction of each target
+    (:func:`~analogs.stages.selection.held_out_mask`: other years, outside its own
+    episode).
     """
     calendar_day = day_of_year(times)
-    years = times.year.to_numpy()
     days = np.unique(calendar_day[targets])
     for day in tqdm(days, desc="hindcast", unit="calendar day", disable=not progress):
         queries = np.flatnonzero(targets & (calendar_day == day))
         season = candidate_ids(times, times[queries[0]], window=window, exclude=None)
-        other_years = years[None, :] != years[queries][:, None]
+        other_years = held_out_mask(times, queries, exclude)
         yield queries, season, other_years, None
 
 
