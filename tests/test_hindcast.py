@@ -164,3 +164,71 @@ def test_own_episode_left_out_across_the_turn_of_the_year(synthetic):
     line = hindcast.loc[hindcast["time"] == target]
     assert line["climatology"].item() == pytest.approx(observed[allowed].mean())
     assert line["forecast"].item() == pytest.approx(observed[chosen["row"]].mean())
+
+
+def test_logistic_baseline_is_fitted_on_the_other_years(synthetic):
+    """The logistic-regression baseline of a year equals scikit-learn's LogisticRegression
+    (standardised inputs: the PCs plus two annual harmonics) fitted on the other years
+    alone; it keeps the hindcast's days, observations and reference."""
+    from sklearn.linear_model import LogisticRegression
+    from sklearn.preprocessing import StandardScaler
+
+    from analogs.stages.hindcast import logistic_hindcast
+
+    pcs, observed = synthetic
+    hindcast = leave_one_year_out(pcs, TIMES, observed, top=20)
+    regression = logistic_hindcast(pcs, TIMES, observed, hindcast, n_modes=4)
+    pd.testing.assert_frame_equal(regression.drop(columns="forecast"),
+                                  hindcast.drop(columns="forecast"))
+    angle = 2 * np.pi * TIMES.day_of_year.to_numpy() / 365.2425
+    inputs = np.column_stack([pcs[:, :4], np.cos(angle), np.cos(2 * angle),
+                              np.sin(angle), np.sin(2 * angle)])
+    train = TIMES.year != 1995
+    scaler = StandardScaler().fit(inputs[train])
+    model = LogisticRegression(max_iter=2000).fit(scaler.transform(inputs[train]),
+                                                  observed[train])
+    expected = model.predict_proba(scaler.transform(inputs[~train]))[:, 1]
+    got = regression.loc[regression["year"] == 1995, "forecast"].to_numpy()
+    np.testing.assert_allclose(got, expected, rtol=1e-6, atol=1e-8)
+    # On a signal linear in the first PC, the regression is at least as skilful.
+    scores = score_hindcast(regression, n_resamples=50)
+    assert scores["brier_skill_score"] > 0.1
+
+
+def test_nested_tuning_scores_each_year_with_a_setting_chosen_without_it(synthetic):
+    """Nested cross-validation (Varma & Simon 2006, from memory; common practice in model
+    selection): the setting that forecasts a held-out year is the best of an inner
+    leave-one-year-out run on the other years alone, and the reported score is that of
+    the pooled outer forecasts; the non-nested score is the scan's best."""
+    from analogs.stages.hindcast import nested_tune
+    from analogs.stages.scores import brier_skill_score
+
+    pcs, observed = synthetic
+    times = TIMES[TIMES.year <= 1994]
+    pcs, observed = pcs[:len(times)], observed[:len(times)]
+    pairs = [(5, 1), (20, 1), (5, 6), (20, 6)]
+    result = nested_tune(pcs, times, observed, tops=(5, 20), modes=(1, 6), months=[1, 2],
+                         reference=(20, 6), n_resamples=50)
+    parts = []
+    for year in range(1991, 1995):
+        keep = times.year != year
+        inner = {}
+        for top, n_modes in pairs:
+            h = leave_one_year_out(pcs[keep], times[keep], observed[keep], top=top,
+                                   n_modes=n_modes, months=[1, 2])
+            inner[(top, n_modes)] = brier_skill_score(h["forecast"], h["observed"],
+                                                      h["climatology"])
+        best = max(inner, key=inner.get)
+        assert result["chosen_by_year"][year] == {"top": best[0], "n_modes": best[1]}
+        outer = leave_one_year_out(pcs, times, observed, top=best[0], n_modes=best[1],
+                                   months=[1, 2])
+        parts.append(outer[outer["year"] == year])
+    pooled = pd.concat(parts)
+    assert result["nested"]["brier_skill_score"] == pytest.approx(brier_skill_score(
+        pooled["forecast"], pooled["observed"], pooled["climatology"]))
+    assert result["non_nested"]["brier_skill_score"] == pytest.approx(
+        result["table"]["brier_skill_score"].max())
+    assert result["best"] == {"top": int(result["table"].iloc[0]["top"]),
+                              "n_modes": int(result["table"].iloc[0]["n_modes"])}
+    with pytest.raises(AnalogsInputError, match="at least three years"):
+        nested_tune(pcs[:730], times[:730], observed[:730])

@@ -25,12 +25,14 @@ from analogs.errors import AnalogsInputError
 from analogs.parameters import P
 from analogs.stages.index import AnalogIndex
 from analogs.stages.scores import (bootstrap_interval, brier_score, brier_skill_score, roc_auc,
-                                   verification_summary)
+                                   roc_auc_within, verification_summary)
 from analogs.stages.selection import (DEFAULT_EXCLUDE, DEFAULT_SEPARATION, DEFAULT_TOP,
                                       DEFAULT_WINDOW, candidate_ids, day_of_year,
                                       held_out_mask, rank_many)
 
 HINDCAST_METHODS = ("analogs", "random")
+#: Annual harmonics beside the PCs in the logistic-regression baseline.
+N_HARMONICS = 2
 
 
 def leave_one_year_out(pcs, times, observed, *, top=DEFAULT_TOP, window=DEFAULT_WINDOW,
@@ -196,6 +198,53 @@ def _with_analogs(batches, pcs, times, *, top, separation):
         yield queries, season, other_years, chosen
 
 
+def seasonal_harmonics(times, n_harmonics=N_HARMONICS) -> np.ndarray:
+    """cos and sin of k * 2 pi * day of year / 365.2425 for k = 1 .. ``n_harmonics``:
+    array (n_days, 2 n_harmonics), the smooth seasonal cycle as regression inputs."""
+    from analogs.stages.selection import DAYS_PER_YEAR
+    angle = 2 * np.pi * day_of_year(pd.DatetimeIndex(times)).astype(float) / DAYS_PER_YEAR
+    k = np.arange(1, n_harmonics + 1)
+    return np.column_stack([np.cos(angle[:, None] * k), np.sin(angle[:, None] * k)])
+
+
+def logistic_hindcast(pcs, times, observed, hindcast: pd.DataFrame, *, n_modes=None,
+                      n_harmonics=N_HARMONICS, C=1.0) -> pd.DataFrame:
+    """The same-fold logistic-regression baseline of a hindcast.
+
+    For each year of ``hindcast`` (a :func:`leave_one_year_out` frame), a logistic
+    regression (scikit-learn; inputs standardised) on the leading ``n_modes`` PCs plus
+    ``n_harmonics`` annual harmonics (:func:`seasonal_harmonics`) is fitted on the days
+    of the other years and forecasts that year's days: the comparison Hamill & Whitaker
+    (2006) make between analogs and regression on the same predictors. Returns
+    ``hindcast`` with ``forecast`` replaced (same days, observations and climatology
+    reference), so the two are scored on the same folds.
+    """
+    from sklearn.linear_model import LogisticRegression
+    from sklearn.pipeline import make_pipeline
+    from sklearn.preprocessing import StandardScaler
+    times = times if isinstance(times, pd.DatetimeIndex) else pd.DatetimeIndex(times)
+    pcs = np.asarray(pcs, dtype=float)
+    if n_modes is not None:
+        pcs = pcs[:, :n_modes]
+    inputs = np.column_stack([pcs, seasonal_harmonics(times, n_harmonics)])
+    observed = np.asarray(observed, dtype=bool)
+    years = times.year.to_numpy()
+    rows = times.get_indexer(pd.DatetimeIndex(hindcast["time"]))
+    forecast = np.full(len(hindcast), np.nan)
+    for year in np.unique(hindcast["year"]):
+        train = years != year
+        targets = hindcast["year"].to_numpy() == year
+        if observed[train].all() or not observed[train].any():
+            forecast[targets] = float(observed[train].mean())
+            continue
+        model = make_pipeline(StandardScaler(), LogisticRegression(C=C, max_iter=2000))
+        model.fit(inputs[train], observed[train])
+        forecast[targets] = model.predict_proba(inputs[rows[targets]])[:, 1]
+    result = hindcast.copy()
+    result["forecast"] = forecast
+    return result
+
+
 def score_hindcast(hindcast: pd.DataFrame, *, threshold=P.threshold.default, n_bins=10,
                    n_resamples=P.n_resamples.default, confidence=0.9, seed=0) -> dict:
     """Scores of a hindcast (:func:`leave_one_year_out`) with year-block bootstrap intervals.
@@ -220,6 +269,10 @@ def score_hindcast(hindcast: pd.DataFrame, *, threshold=P.threshold.default, n_b
         summary["roc_auc_ci"] = list(bootstrap_interval(
             roc_auc, p, o, n_resamples=n_resamples, confidence=confidence, seed=seed,
             block=blocks))
+    summary["roc_auc_within_month"] = roc_auc_within(
+        p, o, pd.DatetimeIndex(hindcast["time"]).month.to_numpy())
+    summary["reliability_share"] = (summary["murphy"]["reliability"] / summary["brier_score"]
+                                    if summary["brier_score"] > 0 else float("nan"))
     summary["confidence"] = confidence
     return summary
 
@@ -246,3 +299,96 @@ def tune(pcs, times, observed, *, tops=P.tops.default, modes=P.scan_modes.defaul
                      "brier_score": brier_score(p, o),
                      "brier_skill_score": brier_skill_score(p, o, hindcast["climatology"].to_numpy())})
     return pd.DataFrame(rows).sort_values("brier_skill_score", ascending=False, ignore_index=True)
+
+
+def nested_tune(pcs, times, observed, *, tops=P.tops.default, modes=P.scan_modes.default,
+                window=DEFAULT_WINDOW, separation=DEFAULT_SEPARATION, months=None,
+                reference=(DEFAULT_TOP, None), n_resamples=P.n_resamples.default,
+                confidence=0.9, seed=0, progress=False) -> dict:
+    """The tuning scan with an honest score for the setting it chooses (nested
+    cross-validation).
+
+    Outer loop, leave one year out: for each year Y, every (number of analogs, modes)
+    pair is scored by a leave-one-year-out hindcast of the archive *without Y* (inner
+    loop: Y's days are neither targets nor analogs), the best pair is chosen there, and
+    Y's days are forecast with it from all the other years. The pooled outer forecasts
+    are scored against the same climatology reference as every hindcast: a score
+    measured on folds that did not choose the setting (Varma & Simon 2006, BMC
+    Bioinformatics, from memory; common practice in model selection). The non-nested
+    score (the best pair's score on the folds that chose it) is returned beside it.
+
+    Costs (number of years + 1) x (number of pairs) hindcasts.
+
+    Returns
+    -------
+    dict with ``table`` (the non-nested scan, as :func:`tune`), ``best`` (the pair chosen
+    on every year, which ``--save`` records), ``chosen_by_year``, ``nested`` (Brier
+    skill score of the outer forecasts with its year-bootstrap interval),
+    ``reference`` (the ``reference`` pair's score on the same days: the gain is
+    measured against it), ``non_nested_gain`` and ``nested_gain``.
+    """
+    times = times if isinstance(times, pd.DatetimeIndex) else pd.DatetimeIndex(times)
+    pcs, observed = np.asarray(pcs, dtype=float), np.asarray(observed, dtype=bool)
+    available = pcs.shape[1]
+    modes = sorted({int(m) for m in modes if m <= available})
+    if not modes:
+        raise AnalogsInputError(f"no mode count to scan: the store holds {available} modes")
+    years = np.unique(times.year)
+    if years.size < 3:
+        raise AnalogsInputError("nested tuning needs an archive of at least three years (one "
+                                "held out, two for the inner leave-one-year-out)")
+    pairs = [(t, m) for m in modes for t in tops]
+    reference = (int(reference[0]), int(reference[1] or available))
+    common = dict(window=window, separation=separation, months=months)
+
+    def skill(hindcast):
+        p, o = hindcast["forecast"].to_numpy(), hindcast["observed"].to_numpy()
+        return brier_skill_score(p, o, hindcast["climatology"].to_numpy())
+
+    full = {}
+    for top, n_modes in tqdm(pairs + [reference], desc="tuning", disable=not progress):
+        if (top, n_modes) not in full:
+            full[(top, n_modes)] = leave_one_year_out(pcs, times, observed, top=top,
+                                                      n_modes=n_modes, **common)
+    table = pd.DataFrame([{"top": t, "n_modes": m,
+                           "brier_score": brier_score(full[(t, m)]["forecast"].to_numpy(),
+                                                      full[(t, m)]["observed"].to_numpy()),
+                           "brier_skill_score": skill(full[(t, m)])} for t, m in pairs])
+    table = table.sort_values("brier_skill_score", ascending=False, ignore_index=True)
+    chosen, parts = {}, []
+    for year in tqdm(years, desc="nested tuning", disable=not progress):
+        keep = times.year != year
+        inner = {(t, m): skill(leave_one_year_out(pcs[keep], times[keep], observed[keep],
+                                                  top=t, n_modes=m, **common))
+                 for t, m in pairs}
+        best = max(pairs, key=lambda pair: (np.nan_to_num(inner[pair], nan=-np.inf)))
+        chosen[int(year)] = {"top": best[0], "n_modes": best[1]}
+        outer = full[best]
+        parts.append(outer[outer["year"] == year])
+    nested = pd.concat(parts).sort_values("time", ignore_index=True)
+    base = full[reference]
+    base = base[base["time"].isin(nested["time"])].sort_values("time", ignore_index=True)
+
+    def scored(hindcast):
+        p, o, r = (hindcast[c].to_numpy() for c in ("forecast", "observed", "climatology"))
+        interval = bootstrap_interval(brier_skill_score, p, o, r, n_resamples=n_resamples,
+                                      confidence=confidence, seed=seed,
+                                      block=hindcast["year"].to_numpy())
+        return {"brier_skill_score": skill(hindcast), "brier_skill_score_ci": list(interval)}
+
+    best = table.iloc[0]
+    best_pair = (int(best["top"]), int(best["n_modes"]))
+    nested_score, reference_score = scored(nested), scored(base)
+    apparent = float(best["brier_skill_score"])
+    return {
+        "table": table, "best": {"top": best_pair[0], "n_modes": best_pair[1]},
+        "chosen_by_year": chosen,
+        "nested": nested_score,
+        "non_nested": {"brier_skill_score": apparent},
+        "reference": {"top": reference[0], "n_modes": reference[1], **reference_score},
+        "non_nested_gain": apparent - reference_score["brier_skill_score"],
+        "nested_gain": nested_score["brier_skill_score"] - reference_score["brier_skill_score"],
+        "confidence": confidence,
+        "method": "nested leave-one-year-out: outer year held out, setting chosen by an "
+                  "inner leave-one-year-out on the other years",
+    }
