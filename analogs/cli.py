@@ -289,11 +289,11 @@ def _cmd_verify(args) -> int:
     store = AnalogStore.load(args.store)
     tuning = None
     if args.tune:
-        table = store.tune(window=args.window, separation=args.separation, region=args.region,
-                           months=args.season, kinds=args.kind, progress=not args.quiet)
-        best = table.iloc[0]
-        tuning = {"table": table.to_dict(orient="records"),
-                  "best": {"top": int(best["top"]), "n_modes": int(best["n_modes"])}}
+        from analogs.workflows.skill import nested_tune
+        # The chosen setting is scored on folds that did not choose it; saved only then.
+        tuning = nested_tune(store, window=args.window, separation=args.separation,
+                             region=args.region, months=args.season, kinds=args.kind,
+                             progress=not args.quiet)
         if args.save:
             store = store.save_query_defaults(**tuning["best"])
         args.top, args.modes = tuning["best"]["top"], tuning["best"]["n_modes"]

@@ -29,8 +29,9 @@ VERIFY_QUERIES = [
     ("default", []),
     ("season_kind", ["--season", "5-9", "--kind", "hail", "--top", "15", "--modes", "10"]),
 ]
-#: Keys whose values name this run's files or clock, not the answer.
-_RUN_KEYS = {"store", "written", "source", "path"}
+#: Keys whose values name this run's files or clock, not the answer ("command" holds the
+#: store path).
+_RUN_KEYS = {"store", "written", "source", "path", "command"}
 
 
 def _strip(value):

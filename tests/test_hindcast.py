@@ -28,13 +28,14 @@ def synthetic():
 
 def test_each_forecast_equals_brute_force_over_other_years(synthetic):
     """With separation 0 the analogs of a day are exactly its nearest other-year days in the
-    season window (scikit-learn brute-force neighbours as the outside reference)."""
+    season window outside its own episode (the query's exclusion window, 10 days by
+    default), scikit-learn brute-force neighbours as the outside reference."""
     pcs, observed = synthetic
     hindcast = leave_one_year_out(pcs, TIMES, observed, top=15, window=30, separation=0)
     assert len(hindcast) == len(TIMES)
-    for row in (10, 400, 1500, 2800):
+    for row in (1, 10, 400, 1500, 2800):
         target = TIMES[row]
-        allowed = candidate_ids(TIMES, target, window=30, exclude=None,
+        allowed = candidate_ids(TIMES, target, window=30, exclude=10,
                                 restrict=TIMES.year != target.year)
         nn = NearestNeighbors(n_neighbors=15, algorithm="brute").fit(pcs[allowed])
         neighbours = allowed[nn.kneighbors(pcs[row:row + 1])[1][0]]
@@ -89,9 +90,9 @@ SAMPLE_ROWS = tuple(TIMES.normalize().get_indexer(pd.to_datetime([
 @pytest.mark.parametrize("top, window, separation", [(20, 45, 3), (12, 30, 0), (7, 10, 5)])
 def test_hindcast_analogs_are_the_live_query_selection(synthetic, top, window, separation):
     """The analogs the hindcast takes for a day are exactly what the live query's
-    find_analogs returns for that day with no exclusion window and the day's own year
-    removed by ``restrict``: one selection rule (season window, de-clustering, fetch
-    size) for both."""
+    find_analogs returns for that day with the query's default exclusion window (10 days,
+    across the turn of the year) and the day's own year removed by ``restrict``: one
+    selection rule (season window, exclusion, de-clustering, fetch size) for both."""
     pcs, _ = synthetic
     chosen = held_out_analogs(pcs, TIMES, rows=SAMPLE_ROWS, top=top, window=window,
                               separation=separation)
@@ -100,7 +101,7 @@ def test_hindcast_analogs_are_the_live_query_selection(synthetic, top, window, s
     for row in SAMPLE_ROWS:
         target = TIMES[row]
         live = find_analogs(index, TIMES, pcs[row], target_time=target, top=top,
-                            window=window, exclude=None, separation=separation,
+                            window=window, exclude=10, separation=separation,
                             restrict=TIMES.year != target.year)
         held_out = chosen[chosen["target"] == row]
         assert len(live) == top
@@ -134,3 +135,100 @@ def test_hindcast_restores_faiss_threads(synthetic):
     before = faiss.omp_get_max_threads()
     leave_one_year_out(pcs, TIMES, observed, top=5, months=[2])
     assert faiss.omp_get_max_threads() == before
+
+
+def test_own_episode_left_out_across_the_turn_of_the_year(synthetic):
+    """A target on 2 January takes no day of 23 December .. 11 January of another year:
+    days within the exclusion window (10 days) are its own episode, whatever their year.
+    Calendar arithmetic checked by hand (Python's datetime, from memory: 2 January minus
+    10 days is 23 December); common practice, no source, for leaving the episode out."""
+    pcs, observed = synthetic
+    target = pd.Timestamp("1994-01-02T12")
+    row = TIMES.get_loc(target)
+    # Make the previous year's last days the closest of all, so nothing else hides them.
+    pcs = pcs.copy()
+    episode = (TIMES >= "1993-12-23") & (TIMES <= "1994-01-12") & (TIMES.year == 1993)
+    pcs[episode] = pcs[row] + 1e-3
+    chosen = held_out_analogs(pcs, TIMES, rows=[row], top=10, window=30, separation=0)
+    times = pd.DatetimeIndex(chosen["time"])
+    gap = np.abs((times - target).days)
+    assert (gap > 10).all() and (times.year != 1994).all()
+    assert len(chosen) == 10
+    # Without the exclusion the hindcast would have taken them (the old behaviour).
+    old = held_out_analogs(pcs, TIMES, rows=[row], top=10, window=30, separation=0,
+                           exclude=None)
+    assert set(pd.DatetimeIndex(old["time"])) >= set(TIMES[episode])
+    # The forecast, climatology and random draws use the same candidates.
+    hindcast = leave_one_year_out(pcs, TIMES, observed, top=10, window=30, separation=0)
+    allowed = candidate_ids(TIMES, target, window=30, exclude=10, restrict=TIMES.year != 1994)
+    line = hindcast.loc[hindcast["time"] == target]
+    assert line["climatology"].item() == pytest.approx(observed[allowed].mean())
+    assert line["forecast"].item() == pytest.approx(observed[chosen["row"]].mean())
+
+
+def test_logistic_baseline_is_fitted_on_the_other_years(synthetic):
+    """The logistic-regression baseline of a year equals scikit-learn's LogisticRegression
+    (standardised inputs: the PCs plus two annual harmonics) fitted on the other years
+    alone; it keeps the hindcast's days, observations and reference."""
+    from sklearn.linear_model import LogisticRegression
+    from sklearn.preprocessing import StandardScaler
+
+    from analogs.stages.hindcast import logistic_hindcast
+
+    pcs, observed = synthetic
+    hindcast = leave_one_year_out(pcs, TIMES, observed, top=20)
+    regression = logistic_hindcast(pcs, TIMES, observed, hindcast, n_modes=4)
+    pd.testing.assert_frame_equal(regression.drop(columns="forecast"),
+                                  hindcast.drop(columns="forecast"))
+    angle = 2 * np.pi * TIMES.day_of_year.to_numpy() / 365.2425
+    inputs = np.column_stack([pcs[:, :4], np.cos(angle), np.cos(2 * angle),
+                              np.sin(angle), np.sin(2 * angle)])
+    train = TIMES.year != 1995
+    scaler = StandardScaler().fit(inputs[train])
+    model = LogisticRegression(max_iter=2000).fit(scaler.transform(inputs[train]),
+                                                  observed[train])
+    expected = model.predict_proba(scaler.transform(inputs[~train]))[:, 1]
+    got = regression.loc[regression["year"] == 1995, "forecast"].to_numpy()
+    np.testing.assert_allclose(got, expected, rtol=1e-6, atol=1e-8)
+    # On a signal linear in the first PC, the regression is at least as skilful.
+    scores = score_hindcast(regression, n_resamples=50)
+    assert scores["brier_skill_score"] > 0.1
+
+
+def test_nested_tuning_scores_each_year_with_a_setting_chosen_without_it(synthetic):
+    """Nested cross-validation (Varma & Simon 2006, from memory; common practice in model
+    selection): the setting that forecasts a held-out year is the best of an inner
+    leave-one-year-out run on the other years alone, and the reported score is that of
+    the pooled outer forecasts; the non-nested score is the scan's best."""
+    from analogs.stages.hindcast import nested_tune
+    from analogs.stages.scores import brier_skill_score
+
+    pcs, observed = synthetic
+    times = TIMES[TIMES.year <= 1994]
+    pcs, observed = pcs[:len(times)], observed[:len(times)]
+    pairs = [(5, 1), (20, 1), (5, 6), (20, 6)]
+    result = nested_tune(pcs, times, observed, tops=(5, 20), modes=(1, 6), months=[1, 2],
+                         reference=(20, 6), n_resamples=50)
+    parts = []
+    for year in range(1991, 1995):
+        keep = times.year != year
+        inner = {}
+        for top, n_modes in pairs:
+            h = leave_one_year_out(pcs[keep], times[keep], observed[keep], top=top,
+                                   n_modes=n_modes, months=[1, 2])
+            inner[(top, n_modes)] = brier_skill_score(h["forecast"], h["observed"],
+                                                      h["climatology"])
+        best = max(inner, key=inner.get)
+        assert result["chosen_by_year"][year] == {"top": best[0], "n_modes": best[1]}
+        outer = leave_one_year_out(pcs, times, observed, top=best[0], n_modes=best[1],
+                                   months=[1, 2])
+        parts.append(outer[outer["year"] == year])
+    pooled = pd.concat(parts)
+    assert result["nested"]["brier_skill_score"] == pytest.approx(brier_skill_score(
+        pooled["forecast"], pooled["observed"], pooled["climatology"]))
+    assert result["non_nested"]["brier_skill_score"] == pytest.approx(
+        result["table"]["brier_skill_score"].max())
+    assert result["best"] == {"top": int(result["table"].iloc[0]["top"]),
+                              "n_modes": int(result["table"].iloc[0]["n_modes"])}
+    with pytest.raises(AnalogsInputError, match="at least three years"):
+        nested_tune(pcs[:730], times[:730], observed[:730])

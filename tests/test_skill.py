@@ -27,6 +27,24 @@ def test_verify_json_contract_and_skill(demo_store, capsys):
     assert 0 < lo <= data["brier_skill_score"] <= hi
     assert data["brier_skill_score"] > data["random_analogs"]["brier_skill_score"] + 0.1
     assert data["roc_auc"] > data["random_analogs"]["roc_auc"]
+    # Same-fold baselines (issue 16): season climatology is the reference itself (BSS 0 by
+    # definition of the Brier skill score, Wilks), random analogs as above, and a logistic
+    # regression on the same PCs (scikit-learn); each with its interval.
+    baselines = data["baselines"]
+    assert set(baselines) == {"season_climatology", "random_analogs", "logistic_regression"}
+    assert baselines["season_climatology"]["brier_skill_score"] == pytest.approx(0, abs=1e-12)
+    assert baselines["random_analogs"]["brier_skill_score"] == pytest.approx(
+        data["random_analogs"]["brier_skill_score"])
+    for scores in baselines.values():
+        low, high = scores["brier_skill_score_ci"]
+        assert low <= scores["brier_skill_score"] + 1e-12 and scores["brier_skill_score"] <= high + 1e-12
+    # The season alone discriminates over the year but not within the month (common
+    # practice, no source: a climatology ranks days only by their date).
+    assert abs(baselines["season_climatology"]["roc_auc_within_month"] - 0.5) < 0.05
+    assert data["roc_auc_within_month"] < data["roc_auc"]
+    murphy = data["murphy"]
+    assert data["reliability_share"] == pytest.approx(murphy["reliability"] / data["brier_score"])
+    assert "not a forecast" in data["caution"]
 
 
 def test_hindcast_scores_match_scikit_learn(demo_store):
@@ -100,6 +118,13 @@ def test_tune_and_save_sets_query_defaults(demo_store, tmp_path, capsys):
     table = pd.DataFrame(data["tuning"]["table"])
     best = table.loc[table["brier_skill_score"].idxmax()]
     assert data["tuning"]["best"] == {"top": int(best["top"]), "n_modes": int(best["n_modes"])}
+    # Nested cross-validation (issue 16): the chosen setting's score measured on folds
+    # that did not choose it, and the gains against the current setting on the same days.
+    tuning = data["tuning"]
+    assert set(tuning["chosen_by_year"]) == {str(y) for y in demo_store.times.year.unique()}
+    assert tuning["non_nested"]["brier_skill_score"] == pytest.approx(best["brier_skill_score"])
+    assert tuning["nested_gain"] == pytest.approx(
+        tuning["nested"]["brier_skill_score"] - tuning["reference"]["brier_skill_score"])
     assert data["settings"]["top"] == int(best["top"])
     assert main(["find", "--store", str(store), "--date", str(demo_store.days[300].date()),
                  "--json"]) == 0
@@ -146,3 +171,28 @@ def test_store_methods_delegate_to_the_skill_workflow(demo_store):
                                   skill.observed(demo_store, kinds=["hail"]))
     scan = dict(tops=(5, 10), modes=(3,), months=[7])
     pd.testing.assert_frame_equal(demo_store.tune(**scan), skill.tune(demo_store, **scan))
+
+
+def test_skill_line_is_the_skill_of_what_the_query_forecasts(demo_store, capsys):
+    """A query for the store's region quotes the skill measured for it with the base rate
+    beside it (the month's base rate equals the share of that month's days with an event,
+    counted here with numpy: common practice, no source); a 40 km point query, or one
+    asking about some kinds only, was not measured and says so with the command that
+    measures it (issue 16)."""
+    date = "2003-07-02"
+    assert main(["find", "--store", str(demo_store.path), "--date", date, "--json"]) == 0
+    skill = json.loads(capsys.readouterr().out)["outcomes"]["skill"]
+    assert skill["measured"] is True
+    july = demo_store.times.month == 7
+    assert skill["month_base_rate"] == pytest.approx(demo_store.observed()[july].mean())
+    assert 0 < skill["base_rate"] < 1
+    assert main(["find", "--store", str(demo_store.path), "--date", date, "--region",
+                 "38,-95,40"]) == 0
+    text = capsys.readouterr().out
+    assert "not measured for this region" in text
+    assert f"analogs verify --store {demo_store.path} --region 38,-95,40" in text
+    assert "not the range of today's probability" in text
+    assert main(["find", "--store", str(demo_store.path), "--date", date, "--kind",
+                 "tornado", "--json"]) == 0
+    skill = json.loads(capsys.readouterr().out)["outcomes"]["skill"]
+    assert skill["measured"] is False and skill["command"].endswith("--kind tornado")

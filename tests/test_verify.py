@@ -6,6 +6,7 @@ from sklearn.metrics import brier_score_loss, roc_auc_score, roc_curve
 
 from analogs.errors import AnalogsInputError
 from analogs.stages.scores import (
+    roc_auc_within,
     bootstrap_interval,
     brier_score,
     brier_skill_score,
@@ -201,3 +202,24 @@ def test_brier_formula_is_written_once():
                      if formula.search(path.read_text()))
     assert written == ["stages/scores.py"]
     assert formula.search("float(np.mean((ref - o) ** 2))")  # the pattern finds the old copies
+
+
+def test_roc_auc_within_groups_matches_sklearn_per_group():
+    """The within-month ROC area is each month's scikit-learn roc_auc_score weighted by its
+    number of (event, non-event) pairs (Mann-Whitney form of the ROC area, Wilks); a
+    forecast that only follows the season scores 0.5 within the month."""
+    rng = np.random.default_rng(3)
+    groups = np.repeat(np.arange(1, 7), 120)
+    season = np.linspace(0.1, 0.7, 6)[groups - 1]
+    o = (rng.random(groups.size) < season).astype(int)
+    p = np.clip(season + 0.3 * o * rng.random(groups.size), 0, 1)
+    weights, areas = [], []
+    for g in np.unique(groups):
+        part = groups == g
+        weights.append(o[part].sum() * (part.sum() - o[part].sum()))
+        areas.append(roc_auc_score(o[part], p[part]))
+    assert roc_auc_within(p, o, groups) == pytest.approx(np.average(areas, weights=weights))
+    assert roc_auc_within(season, o, groups) == pytest.approx(0.5)
+    assert roc_auc_score(o, season) > 0.6  # over the whole year the season alone looks skilful
+    with pytest.raises(AnalogsInputError, match="'groups' parameter of roc_auc_within"):
+        roc_auc_within(p, o, groups[:-1])

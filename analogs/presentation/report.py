@@ -27,15 +27,23 @@ def _fmt_interval(interval) -> str:
 
 
 def skill_line(skill) -> str:
-    """One line on what this guidance has been worth (cross-validated), or ''."""
+    """One line on what this query's guidance has been worth (cross-validated), or ''."""
     if not skill:
         return ""
+    if skill.get("measured") is False:
+        return ("Worth in the past: not measured for this region"
+                + (" and these kinds" if skill.get("kinds") else "")
+                + f"; measure it with: {skill['command']}")
     lo, hi = skill["brier_skill_score_ci"]
-    text = (f"Worth in the past (leave-one-year-out, store region): Brier skill score "
-            f"{skill['brier_skill_score']:.2f} [{lo:.2f}, {hi:.2f}] vs season climatology, "
-            f"ROC area {skill['roc_auc']:.2f}")
+    text = (f"Worth in the past (leave-one-year-out, store region, any kind): Brier skill "
+            f"score {skill['brier_skill_score']:.2f} [{lo:.2f}, {hi:.2f}] vs season "
+            f"climatology, ROC area {skill['roc_auc']:.2f}")
+    if skill.get("base_rate") is not None:
+        text += f", base rate {100 * skill['base_rate']:.0f}%"
     if skill.get("month_brier_skill_score") is not None:
         text += f"; in month {skill['month']}: {skill['month_brier_skill_score']:.2f}"
+        if skill.get("month_base_rate") is not None:
+            text += f", base rate {100 * skill['month_base_rate']:.0f}%"
     return text
 
 
@@ -95,6 +103,9 @@ def find_text(result) -> str:
                      f"{_fmt_probability(outcomes['p_any_event'])} "
                      f"{_fmt_interval(outcomes.get('p_any_event_ci'))}   "
                      f"season climatology: {_fmt_probability(outcomes['climatology_p_any_event'])}")
+        if outcomes.get("p_any_event_ci"):
+            lines.append(f"  the bracket is the uncertainty from having only {n} analogs "
+                         "(binomial), not the range of today's probability")
         weighted = outcomes.get("weighted")
         if weighted:
             lines.append(f"  weighted by similarity ({weighted['n_effective']:.1f} effective analogs): "
@@ -231,22 +242,56 @@ def valid_times_text(result) -> str:
     return "\n".join(lines)
 
 
+def _skill_table(summary: dict) -> list[str]:
+    """The analogs beside their same-fold baselines (older summaries: random analogs only)."""
+    columns = [("analogs", summary)]
+    baselines = summary.get("baselines")
+    if baselines:
+        columns += [("logistic regr.", baselines["logistic_regression"]),
+                    ("random analogs", baselines["random_analogs"]),
+                    ("season clim.", baselines["season_climatology"])]
+    else:
+        columns.append(("random analogs", summary["random_analogs"]))
+
+    def cell(value, fmt):
+        return f"{'-':>17}" if value is None or value != value else f"{value:{fmt}}"
+
+    def interval(scores):
+        lo, hi = scores.get("brier_skill_score_ci") or (None, None)
+        return f"{'-':>17}" if lo is None else f"{f'[{lo:.3f}, {hi:.3f}]':>17}"
+
+    rows = [("Brier score", "brier_score", "17.4f"),
+            ("Brier skill score", "brier_skill_score", "17.3f"),
+            ("  interval (year bootstrap)", None, None),
+            ("ROC area, whole year", "roc_auc", "17.3f"),
+            ("ROC area within the month", "roc_auc_within_month", "17.3f"),
+            ("reliability / Brier score", "reliability_share", "17.3f")]
+    lines = [f"{'score (same days, same folds)':30}"
+             + "".join(f"{name:>17}" for name, _ in columns)]
+    for label, key, fmt in rows:
+        if key is not None and not any(key in scores for _, scores in columns):
+            continue
+        lines.append(f"{label:30}" + "".join(
+            interval(scores) if key is None else cell(scores.get(key), fmt)
+            for _, scores in columns))
+    if baselines:
+        lines.append("logistic regression: "
+                     + baselines["logistic_regression"].get("inputs", ""))
+        lines.append("ROC area within the month: an event day against a day without one of "
+                     "the same month (the season's own share taken out)")
+    return lines
+
+
 def verify_text(summary: dict) -> str:
     """A readable terminal summary of ``AnalogStore.verify``."""
     settings = summary["settings"]
-    random = summary["random_analogs"]
-    lo, hi = summary["brier_skill_score_ci"]
     lines = [
         f"Leave-one-year-out hindcast of P(at least one event in region): "
         f"{summary['n_forecasts']} days, base rate {100 * summary['base_rate']:.1f}%",
         f"settings: {settings['top']} analogs, {settings['n_modes']} EOF modes, window "
         f"+/-{settings['window']} d, months {settings['months'] or 'all'}",
         "",
-        f"{'score':28} {'analogs':>10} {'random analogs':>15}",
-        f"{'Brier score':28} {summary['brier_score']:10.4f} {random['brier_score']:15.4f}",
-        f"{'Brier skill score':28} {summary['brier_skill_score']:10.3f} {random['brier_skill_score']:15.3f}",
-        f"{'  interval (year bootstrap)':28} {f'[{lo:.3f}, {hi:.3f}]':>10}",
-        f"{'ROC area':28} {summary['roc_auc']:10.3f} {random['roc_auc']:15.3f}",
+        *_skill_table(summary),
         "",
         f"yes/no at P >= {settings['threshold']}: " + ", ".join(
             f"{name} {value:.3f}" for name, value in summary["scores"].items()
@@ -263,6 +308,18 @@ def verify_text(summary: dict) -> str:
         best = summary["tuning"]["best"]
         lines.append("")
         lines.append(f"tuning: best {best['top']} analogs with {best['n_modes']} modes")
+        tuning = summary["tuning"]
+        if "nested" in tuning:
+            ref, nested = tuning["reference"], tuning["nested"]
+            lo, hi = nested["brier_skill_score_ci"]
+            lines.append(
+                f"  scored on folds that did not choose it (nested leave-one-year-out): BSS "
+                f"{nested['brier_skill_score']:.3f} [{lo:.3f}, {hi:.3f}]; on the folds that "
+                f"chose it: {tuning['non_nested']['brier_skill_score']:.3f}")
+            lines.append(
+                f"  gain over the current setting ({ref['top']} analogs, {ref['n_modes']} "
+                f"modes, BSS {ref['brier_skill_score']:.3f}): nested "
+                f"{tuning['nested_gain']:+.3f}, non-nested {tuning['non_nested_gain']:+.3f}")
         for row in summary["tuning"]["table"][:5]:
             lines.append(f"  top {row['top']:>3}  modes {row['n_modes']:>3}  BSS {row['brier_skill_score']:.3f}")
     lines.append("")

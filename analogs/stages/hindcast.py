@@ -4,9 +4,10 @@ Every archive day is forecast from analogs found in the other calendar years onl
 its own year's peculiarities cannot help), chosen by the live query's own selection
 (:func:`~analogs.stages.selection.candidate_ids` and
 :func:`~analogs.stages.selection.rank_many`: the same season window, de-clustering and
-fetch size), its own year removed as an extra restriction. No exclusion window is
-applied: within a few days of 1 January, the neighbouring days of the previous or next
-year (the same weather episode) may be analogs. The forecast is the fraction of analog days
+fetch size), its own year removed as an extra restriction together with the days within the
+query's exclusion window of the target (:func:`~analogs.stages.selection.held_out_mask`,
+default 10 days): near 1 January the neighbouring days of the previous or next year are
+the same weather episode, so they are neither analogs, random draws nor climatology. The forecast is the fraction of analog days
 with at least one event in the region; it is scored against what happened that day
 with the scores of :mod:`analogs.stages.scores`, and against the season-window climatology of
 the other years (the reference of the Brier skill score) and a random-analog baseline
@@ -24,21 +25,24 @@ from analogs.errors import AnalogsInputError
 from analogs.parameters import P
 from analogs.stages.index import AnalogIndex
 from analogs.stages.scores import (bootstrap_interval, brier_score, brier_skill_score, roc_auc,
-                                   verification_summary)
-from analogs.stages.selection import (DEFAULT_SEPARATION, DEFAULT_TOP, DEFAULT_WINDOW,
-                                      candidate_ids, day_of_year, rank_many)
+                                   roc_auc_within, verification_summary)
+from analogs.stages.selection import (DEFAULT_EXCLUDE, DEFAULT_SEPARATION, DEFAULT_TOP,
+                                      DEFAULT_WINDOW, candidate_ids, day_of_year,
+                                      held_out_mask, rank_many)
 
 HINDCAST_METHODS = ("analogs", "random")
+#: Annual harmonics beside the PCs in the logistic-regression baseline.
+N_HARMONICS = 2
 
 
 def leave_one_year_out(pcs, times, observed, *, top=DEFAULT_TOP, window=DEFAULT_WINDOW,
                        separation=DEFAULT_SEPARATION, n_modes=None, method="analogs",
-                       months=None, seed=0, progress=False):
+                       months=None, seed=0, exclude=DEFAULT_EXCLUDE, progress=False):
     """Forecast every day from analogs in the other years.
 
     The analogs of a day are those the live query would choose
-    (:func:`analogs.stages.selection.find_analogs` with no exclusion window) with the
-    day's own year removed as a restriction: see :func:`held_out_analogs`.
+    (:func:`analogs.stages.selection.find_analogs`) with the day's own year and the days
+    within ``exclude`` days of it removed as a restriction: see :func:`held_out_analogs`.
 
     Parameters
     ----------
@@ -52,17 +56,19 @@ def leave_one_year_out(pcs, times, observed, *, top=DEFAULT_TOP, window=DEFAULT_
     months : iterable of months (1-12) of the target days to forecast (default all);
         analogs may come from any month inside the season window.
     seed : random seed of the random baseline.
+    exclude : days within this many days of the target (its own episode, across the turn
+        of the year) are left out as well as its year; ``None`` leaves out the year only.
 
     Returns
     -------
     DataFrame indexed like the forecast days with ``time``, ``year``, ``forecast``
     (fraction of analogs with the event), ``observed`` (0/1), ``climatology`` (event
-    frequency over the other years' season-window days) and ``n_analogs``.
+    frequency over the season-window days the target may take) and ``n_analogs``.
     """
     owner = "leave_one_year_out"
     check_choice(method, "method", owner, HINDCAST_METHODS)
     pcs, times, top, window, separation = _checked(pcs, times, top, window, separation,
-                                                   n_modes, owner)
+                                                   n_modes, owner, exclude)
     observed = np.asarray(observed, dtype=bool)
     years = times.year.to_numpy()
     targets = np.ones(len(times), dtype=bool)
@@ -72,11 +78,11 @@ def leave_one_year_out(pcs, times, observed, *, top=DEFAULT_TOP, window=DEFAULT_
     forecast = np.full(len(times), np.nan)
     climatology = np.full(len(times), np.nan)
     n_analogs = np.zeros(len(times), dtype=int)
-    batches = _calendar_day_batches(times, targets, window, progress=progress)
+    batches = _calendar_day_batches(times, targets, window, exclude, progress=progress)
     if method == "analogs":
         batches = _with_analogs(batches, pcs, times, top=top, separation=separation)
     for queries, season, other_years, chosen in batches:
-        # Climatology of the other years: their share of event days in the season window.
+        # Climatology of the days the target may take: their share of event days.
         in_season = other_years[:, season]
         n_others = in_season.sum(axis=1)
         n_events = (in_season & observed[season]).sum(axis=1)
@@ -102,19 +108,21 @@ def leave_one_year_out(pcs, times, observed, *, top=DEFAULT_TOP, window=DEFAULT_
 
 
 def held_out_analogs(pcs, times, *, rows=None, top=DEFAULT_TOP, window=DEFAULT_WINDOW,
-                     separation=DEFAULT_SEPARATION, n_modes=None) -> pd.DataFrame:
+                     separation=DEFAULT_SEPARATION, n_modes=None,
+                     exclude=DEFAULT_EXCLUDE) -> pd.DataFrame:
     """The analogs the leave-one-year-out hindcast takes for the archive days ``rows``.
 
     For each target day: the season-window candidates of its calendar day
-    (:func:`~analogs.stages.selection.candidate_ids`, no exclusion window), less the
-    days of its own year, ranked by exact Euclidean distance and de-clustered
+    (:func:`~analogs.stages.selection.candidate_ids`), less the days of its own year
+    and those within ``exclude`` days of it (:func:`~analogs.stages.selection.held_out_mask`),
+    ranked by exact Euclidean distance and de-clustered
     (:func:`~analogs.stages.selection.rank_many`): what
     :func:`~analogs.stages.selection.find_analogs` returns for that day with
-    ``exclude=None`` and ``restrict`` = "not the target's year".
+    ``exclude=exclude`` and ``restrict`` = "not the target's year".
 
     Parameters
     ----------
-    pcs, times, top, window, separation, n_modes : as in :func:`leave_one_year_out`.
+    pcs, times, top, window, separation, n_modes, exclude : as in :func:`leave_one_year_out`.
     rows : int array of target rows (default every day).
 
     Returns
@@ -123,11 +131,11 @@ def held_out_analogs(pcs, times, *, rows=None, top=DEFAULT_TOP, window=DEFAULT_W
     ``rank`` (1 = closest), ``row``, ``time`` and ``distance`` of the analog.
     """
     pcs, times, top, window, separation = _checked(pcs, times, top, window, separation,
-                                                   n_modes, "held_out_analogs")
+                                                   n_modes, "held_out_analogs", exclude)
     targets = np.zeros(len(times), dtype=bool)
     targets[np.arange(len(times)) if rows is None else np.asarray(rows, dtype=np.int64)] = True
     parts = {"target": [], "rank": [], "row": [], "distance": []}
-    batches = _with_analogs(_calendar_day_batches(times, targets, window), pcs, times,
+    batches = _with_analogs(_calendar_day_batches(times, targets, window, exclude), pcs, times,
                             top=top, separation=separation)
     for queries, _, _, chosen in batches:
         for row, (analog_rows, distances) in zip(queries, chosen):
@@ -142,7 +150,7 @@ def held_out_analogs(pcs, times, *, rows=None, top=DEFAULT_TOP, window=DEFAULT_W
     return frame.sort_values(["target", "rank"], ignore_index=True)
 
 
-def _checked(pcs, times, top, window, separation, n_modes, owner):
+def _checked(pcs, times, top, window, separation, n_modes, owner, exclude=None):
     """Validated hindcast inputs: (pcs of the modes used, DatetimeIndex, top, window,
     separation)."""
     top = P.top.check(top, owner)
@@ -153,27 +161,30 @@ def _checked(pcs, times, top, window, separation, n_modes, owner):
     if n_modes is not None:
         n_modes = P.query_modes.check(n_modes, owner, maximum=pcs.shape[1])
         pcs = pcs[:, :n_modes]
+    if exclude is not None:
+        P.exclude.check(exclude, owner)
     if np.unique(times.year).size < 2:
         raise AnalogsInputError("a leave-one-year-out hindcast needs an archive of at least two years")
     return pcs, times, top, window, separation
 
 
-def _calendar_day_batches(times, targets, window, *, progress=False):
+def _calendar_day_batches(times, targets, window, exclude=DEFAULT_EXCLUDE, *, progress=False):
     """The target days grouped by calendar day, with what their analogs may be.
 
     Yields ``(queries, season, other_years, None)``: the rows of the targets of one
     calendar day; the season-window candidates they share (computed once, by the live
     query's :func:`~analogs.stages.selection.candidate_ids` for the first of them, with no
-    exclusion window); and a boolean array (len(queries), n_days) true on the days of
-    the other years (the leave-one-year-out restriction).
+    exclusion window: it differs between the years of one calendar day); and a boolean
+    array (len(queries), n_days), the leave-one-year-out restriction of each target
+    (:func:`~analogs.stages.selection.held_out_mask`: other years, outside its own
+    episode).
     """
     calendar_day = day_of_year(times)
-    years = times.year.to_numpy()
     days = np.unique(calendar_day[targets])
     for day in tqdm(days, desc="hindcast", unit="calendar day", disable=not progress):
         queries = np.flatnonzero(targets & (calendar_day == day))
         season = candidate_ids(times, times[queries[0]], window=window, exclude=None)
-        other_years = years[None, :] != years[queries][:, None]
+        other_years = held_out_mask(times, queries, exclude)
         yield queries, season, other_years, None
 
 
@@ -185,6 +196,53 @@ def _with_analogs(batches, pcs, times, *, top, separation):
         chosen = rank_many(index, times, pcs[queries], season, top=top,
                            separation=separation, restrict=other_years)
         yield queries, season, other_years, chosen
+
+
+def seasonal_harmonics(times, n_harmonics=N_HARMONICS) -> np.ndarray:
+    """cos and sin of k * 2 pi * day of year / 365.2425 for k = 1 .. ``n_harmonics``:
+    array (n_days, 2 n_harmonics), the smooth seasonal cycle as regression inputs."""
+    from analogs.stages.selection import DAYS_PER_YEAR
+    angle = 2 * np.pi * day_of_year(pd.DatetimeIndex(times)).astype(float) / DAYS_PER_YEAR
+    k = np.arange(1, n_harmonics + 1)
+    return np.column_stack([np.cos(angle[:, None] * k), np.sin(angle[:, None] * k)])
+
+
+def logistic_hindcast(pcs, times, observed, hindcast: pd.DataFrame, *, n_modes=None,
+                      n_harmonics=N_HARMONICS, C=1.0) -> pd.DataFrame:
+    """The same-fold logistic-regression baseline of a hindcast.
+
+    For each year of ``hindcast`` (a :func:`leave_one_year_out` frame), a logistic
+    regression (scikit-learn; inputs standardised) on the leading ``n_modes`` PCs plus
+    ``n_harmonics`` annual harmonics (:func:`seasonal_harmonics`) is fitted on the days
+    of the other years and forecasts that year's days: the comparison Hamill & Whitaker
+    (2006) make between analogs and regression on the same predictors. Returns
+    ``hindcast`` with ``forecast`` replaced (same days, observations and climatology
+    reference), so the two are scored on the same folds.
+    """
+    from sklearn.linear_model import LogisticRegression
+    from sklearn.pipeline import make_pipeline
+    from sklearn.preprocessing import StandardScaler
+    times = times if isinstance(times, pd.DatetimeIndex) else pd.DatetimeIndex(times)
+    pcs = np.asarray(pcs, dtype=float)
+    if n_modes is not None:
+        pcs = pcs[:, :n_modes]
+    inputs = np.column_stack([pcs, seasonal_harmonics(times, n_harmonics)])
+    observed = np.asarray(observed, dtype=bool)
+    years = times.year.to_numpy()
+    rows = times.get_indexer(pd.DatetimeIndex(hindcast["time"]))
+    forecast = np.full(len(hindcast), np.nan)
+    for year in np.unique(hindcast["year"]):
+        train = years != year
+        targets = hindcast["year"].to_numpy() == year
+        if observed[train].all() or not observed[train].any():
+            forecast[targets] = float(observed[train].mean())
+            continue
+        model = make_pipeline(StandardScaler(), LogisticRegression(C=C, max_iter=2000))
+        model.fit(inputs[train], observed[train])
+        forecast[targets] = model.predict_proba(inputs[rows[targets]])[:, 1]
+    result = hindcast.copy()
+    result["forecast"] = forecast
+    return result
 
 
 def score_hindcast(hindcast: pd.DataFrame, *, threshold=P.threshold.default, n_bins=10,
@@ -211,6 +269,10 @@ def score_hindcast(hindcast: pd.DataFrame, *, threshold=P.threshold.default, n_b
         summary["roc_auc_ci"] = list(bootstrap_interval(
             roc_auc, p, o, n_resamples=n_resamples, confidence=confidence, seed=seed,
             block=blocks))
+    summary["roc_auc_within_month"] = roc_auc_within(
+        p, o, pd.DatetimeIndex(hindcast["time"]).month.to_numpy())
+    summary["reliability_share"] = (summary["murphy"]["reliability"] / summary["brier_score"]
+                                    if summary["brier_score"] > 0 else float("nan"))
     summary["confidence"] = confidence
     return summary
 
@@ -237,3 +299,96 @@ def tune(pcs, times, observed, *, tops=P.tops.default, modes=P.scan_modes.defaul
                      "brier_score": brier_score(p, o),
                      "brier_skill_score": brier_skill_score(p, o, hindcast["climatology"].to_numpy())})
     return pd.DataFrame(rows).sort_values("brier_skill_score", ascending=False, ignore_index=True)
+
+
+def nested_tune(pcs, times, observed, *, tops=P.tops.default, modes=P.scan_modes.default,
+                window=DEFAULT_WINDOW, separation=DEFAULT_SEPARATION, months=None,
+                reference=(DEFAULT_TOP, None), n_resamples=P.n_resamples.default,
+                confidence=0.9, seed=0, progress=False) -> dict:
+    """The tuning scan with an honest score for the setting it chooses (nested
+    cross-validation).
+
+    Outer loop, leave one year out: for each year Y, every (number of analogs, modes)
+    pair is scored by a leave-one-year-out hindcast of the archive *without Y* (inner
+    loop: Y's days are neither targets nor analogs), the best pair is chosen there, and
+    Y's days are forecast with it from all the other years. The pooled outer forecasts
+    are scored against the same climatology reference as every hindcast: a score
+    measured on folds that did not choose the setting (Varma & Simon 2006, BMC
+    Bioinformatics, from memory; common practice in model selection). The non-nested
+    score (the best pair's score on the folds that chose it) is returned beside it.
+
+    Costs (number of years + 1) x (number of pairs) hindcasts.
+
+    Returns
+    -------
+    dict with ``table`` (the non-nested scan, as :func:`tune`), ``best`` (the pair chosen
+    on every year, which ``--save`` records), ``chosen_by_year``, ``nested`` (Brier
+    skill score of the outer forecasts with its year-bootstrap interval),
+    ``reference`` (the ``reference`` pair's score on the same days: the gain is
+    measured against it), ``non_nested_gain`` and ``nested_gain``.
+    """
+    times = times if isinstance(times, pd.DatetimeIndex) else pd.DatetimeIndex(times)
+    pcs, observed = np.asarray(pcs, dtype=float), np.asarray(observed, dtype=bool)
+    available = pcs.shape[1]
+    modes = sorted({int(m) for m in modes if m <= available})
+    if not modes:
+        raise AnalogsInputError(f"no mode count to scan: the store holds {available} modes")
+    years = np.unique(times.year)
+    if years.size < 3:
+        raise AnalogsInputError("nested tuning needs an archive of at least three years (one "
+                                "held out, two for the inner leave-one-year-out)")
+    pairs = [(t, m) for m in modes for t in tops]
+    reference = (int(reference[0]), int(reference[1] or available))
+    common = dict(window=window, separation=separation, months=months)
+
+    def skill(hindcast):
+        p, o = hindcast["forecast"].to_numpy(), hindcast["observed"].to_numpy()
+        return brier_skill_score(p, o, hindcast["climatology"].to_numpy())
+
+    full = {}
+    for top, n_modes in tqdm(pairs + [reference], desc="tuning", disable=not progress):
+        if (top, n_modes) not in full:
+            full[(top, n_modes)] = leave_one_year_out(pcs, times, observed, top=top,
+                                                      n_modes=n_modes, **common)
+    table = pd.DataFrame([{"top": t, "n_modes": m,
+                           "brier_score": brier_score(full[(t, m)]["forecast"].to_numpy(),
+                                                      full[(t, m)]["observed"].to_numpy()),
+                           "brier_skill_score": skill(full[(t, m)])} for t, m in pairs])
+    table = table.sort_values("brier_skill_score", ascending=False, ignore_index=True)
+    chosen, parts = {}, []
+    for year in tqdm(years, desc="nested tuning", disable=not progress):
+        keep = times.year != year
+        inner = {(t, m): skill(leave_one_year_out(pcs[keep], times[keep], observed[keep],
+                                                  top=t, n_modes=m, **common))
+                 for t, m in pairs}
+        best = max(pairs, key=lambda pair: (np.nan_to_num(inner[pair], nan=-np.inf)))
+        chosen[int(year)] = {"top": best[0], "n_modes": best[1]}
+        outer = full[best]
+        parts.append(outer[outer["year"] == year])
+    nested = pd.concat(parts).sort_values("time", ignore_index=True)
+    base = full[reference]
+    base = base[base["time"].isin(nested["time"])].sort_values("time", ignore_index=True)
+
+    def scored(hindcast):
+        p, o, r = (hindcast[c].to_numpy() for c in ("forecast", "observed", "climatology"))
+        interval = bootstrap_interval(brier_skill_score, p, o, r, n_resamples=n_resamples,
+                                      confidence=confidence, seed=seed,
+                                      block=hindcast["year"].to_numpy())
+        return {"brier_skill_score": skill(hindcast), "brier_skill_score_ci": list(interval)}
+
+    best = table.iloc[0]
+    best_pair = (int(best["top"]), int(best["n_modes"]))
+    nested_score, reference_score = scored(nested), scored(base)
+    apparent = float(best["brier_skill_score"])
+    return {
+        "table": table, "best": {"top": best_pair[0], "n_modes": best_pair[1]},
+        "chosen_by_year": chosen,
+        "nested": nested_score,
+        "non_nested": {"brier_skill_score": apparent},
+        "reference": {"top": reference[0], "n_modes": reference[1], **reference_score},
+        "non_nested_gain": apparent - reference_score["brier_skill_score"],
+        "nested_gain": nested_score["brier_skill_score"] - reference_score["brier_skill_score"],
+        "confidence": confidence,
+        "method": "nested leave-one-year-out: outer year held out, setting chosen by an "
+                  "inner leave-one-year-out on the other years",
+    }

@@ -175,6 +175,35 @@ def roc_auc(p, o) -> float:
     return float(np.trapezoid(hit_rate, false_alarm_rate))
 
 
+def roc_auc_within(p, o, groups) -> float:
+    """ROC area counting only pairs of one event and one non-event day of the same group.
+
+    With the calendar month as the group, it is the probability that a day with the
+    event gets a higher forecast than a day without it *in the same month*: the
+    discrimination left once the seasonal cycle is taken out (a season climatology
+    scores about 0.5, where over the whole year it scores well). Equal to the average
+    of each group's :func:`roc_auc` weighted by its number of (event, non-event)
+    pairs (Mann-Whitney form of the ROC area, Wilks); NaN when no group holds both
+    classes.
+    """
+    p, o = _forecasts(p, o, "roc_auc_within")
+    groups = np.asarray(groups)
+    if groups.shape != p.shape:
+        raise AnalogsInputError(
+            "The 'groups' parameter of roc_auc_within must give one label per forecast "
+            f"({p.size}). Got shape {groups.shape} instead.")
+    total, weight = 0.0, 0.0
+    for label in np.unique(groups):
+        part = groups == label
+        n_events = o[part].sum()
+        pairs = n_events * (part.sum() - n_events)
+        if pairs == 0:
+            continue
+        total += roc_auc(p[part], o[part]) * pairs
+        weight += pairs
+    return float(total / weight) if weight else float("nan")
+
+
 def contingency_table(p, o, threshold) -> dict:
     """2x2 table of the forecasts ``p >= threshold`` against the outcomes.
 

@@ -106,6 +106,25 @@ def day_numbers(times) -> np.ndarray:
     return _calendar(times)[1]
 
 
+def held_out_mask(times, target_rows, exclude_days=DEFAULT_EXCLUDE) -> np.ndarray:
+    """What each target of a leave-one-year-out hindcast may take: (m, n_days) booleans.
+
+    Row j is true on the days of the other calendar years than ``times[target_rows[j]]``
+    that also lie more than ``exclude_days`` days from that target (its own episode,
+    :func:`exclusion_mask`, which counts days across the turn of the year: a target on
+    2 January does not take 30 December of the previous year). ``exclude_days=None``
+    leaves only the own year out. The per-target ``restrict`` of :func:`rank_many`.
+    """
+    target_rows = np.asarray(target_rows, dtype=np.int64)
+    times = _as_index(times)
+    years = times.year.to_numpy()
+    allowed = years[None, :] != years[target_rows][:, None]
+    if exclude_days is not None:
+        days = day_numbers(times)
+        allowed &= np.abs(days[None, :] - days[target_rows][:, None]) > exclude_days
+    return allowed
+
+
 def decluster(times, separation_days, limit=None):
     """Indices of ``times`` (ordered best first) kept after de-clustering.
 

@@ -846,7 +846,7 @@ def outcome_summary(store, analogs, target_time, window, region, weights, confid
     tropical = analogs_known.loc[analogs_known["regime"] == "tropical", "row"].to_numpy()
     composite = cyclone_composite(store, tropical) if tropical.size else None
     return summary.replace(has_events=store.events is not None, cyclone_quadrants=composite,
-                           skill=store.skill_for(target_time))
+                           skill=store.skill_for(target_time, region=region, kinds=kinds))
 
 
 def outcome_maps(store, result: FindResult) -> xr.Dataset:

@@ -17,6 +17,7 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
+from analogs import CAUTION
 from analogs._validation import renamed_errors
 from analogs.errors import AnalogsInputError
 from analogs.parameters import P
@@ -84,7 +85,7 @@ def verify(store, *, top=P.top.api_default, window=P.window.default,
     ``random_analogs`` (the same scores of ``top`` days drawn at random from the same
     candidates) and ``settings``.
     """
-    from analogs.stages.hindcast import leave_one_year_out, score_hindcast
+    from analogs.stages.hindcast import logistic_hindcast, leave_one_year_out, score_hindcast
     owner = "verify"
     defaults = store.query_defaults
     top = defaults.get("top", P.top.default) if top is None else top
@@ -109,6 +110,21 @@ def verify(store, *, top=P.top.api_default, window=P.window.default,
     summary["random_analogs"] = {k: baseline[k] for k in
                                  ("brier_score", "brier_skill_score", "brier_skill_score_ci",
                                   "roc_auc")}
+    # Same-fold baselines: the same days, observations, year folds and reference.
+    climatology = hindcast.assign(forecast=hindcast["climatology"])
+    regression = logistic_hindcast(pcs, times, events, hindcast, n_modes=n_modes)
+    keys = ("brier_score", "brier_skill_score", "brier_skill_score_ci", "roc_auc",
+            "roc_auc_within_month", "reliability_share")
+    summary["baselines"] = {
+        "season_climatology": {k: v for k, v in score_hindcast(
+            climatology, threshold=threshold, n_resamples=n_resamples).items() if k in keys},
+        "random_analogs": {k: baseline[k] for k in keys},
+        "logistic_regression": {k: v for k, v in score_hindcast(
+            regression, threshold=threshold, n_resamples=n_resamples).items() if k in keys},
+    }
+    summary["baselines"]["logistic_regression"]["inputs"] = (
+        f"{int(n_modes or store.eof.n_modes_)} PCs + 2 annual harmonics, standardised, "
+        "fitted on the other years of each fold (scikit-learn LogisticRegression, C=1)")
     summary["settings"] = {"top": top, "n_modes": int(n_modes or store.eof.n_modes_),
                            "window": window, "separation": separation,
                            "months": None if months is None else sorted(months),
@@ -117,6 +133,7 @@ def verify(store, *, top=P.top.api_default, window=P.window.default,
     left_out = int((~store.covered).sum())
     if left_out:  # only then, so earlier answers keep their shape
         summary["settings"]["n_days_without_reports"] = left_out
+    summary["caution"] = CAUTION
     return summary
 
 
@@ -138,6 +155,32 @@ def tune(store, *, tops=P.tops.default, modes=P.scan_modes.default,
     return scan(pcs, times, events, tops=tops,
                 modes=modes, window=window, separation=separation, months=months,
                 progress=progress)
+
+
+def nested_tune(store, *, tops=P.tops.default, modes=P.scan_modes.default,
+                window=P.window.default, separation=P.separation.default, region=None,
+                months=None, kinds=None, progress=False) -> dict:
+    """The tuning scan with the chosen setting scored on folds that did not choose it
+    (:func:`analogs.stages.hindcast.nested_tune`), against the store's current query
+    settings on the same days. The dict of ``verify --tune --json``'s ``tuning`` (the
+    table as records)."""
+    from analogs.stages.hindcast import nested_tune as scan
+    owner = "tune"
+    tops, modes = P.tops.check(tops, owner), P.scan_modes.check(modes, owner)
+    window, separation = P.window.check(window, owner), P.separation.check(separation, owner)
+    months, kinds = P.months.check(months, owner), P.kinds.check(kinds, owner)
+    modes = modes + (int(store.eof.n_modes_),)
+    with renamed_errors(owner, "region", "kinds"):
+        region = resolve_region(store, region)
+        events = observed(store, region, kinds)
+    pcs, times, events = hindcast_days(store, events, region=region, kinds=kinds)
+    defaults = store.query_defaults
+    reference = (defaults.get("top", P.top.default), defaults.get("n_modes"))
+    result = scan(pcs, times, events, tops=tops, modes=modes, window=window,
+                  separation=separation, months=months, reference=reference,
+                  progress=progress)
+    result["table"] = result["table"].to_dict(orient="records")
+    return result
 
 
 def skill_by_month(pcs, times, observed, *, region, top=P.top.default,
@@ -176,18 +219,48 @@ def skill_by_month(pcs, times, observed, *, region, top=P.top.default,
             "roc_auc": overall["roc_auc"], "by_month": by_month}
 
 
-def skill_for(store, target_time=None) -> dict | None:
-    """The stored cross-validated skill of the default settings (:func:`skill_by_month`,
-    recorded at build), for the target's month when known; None when not measured."""
+def region_argument(region: dict) -> str:
+    """The ``--region`` text of a region dict (:meth:`Region.to_dict`); '' for the whole
+    domain."""
+    if region.get("kind") == "box":
+        return ",".join(f"{region[k]:g}" for k in ("south", "north", "west", "east"))
+    if region.get("kind") == "point":
+        return ",".join(f"{region[k]:g}" for k in ("lat", "lon", "radius_km"))
+    return ""
+
+
+def skill_for(store, target_time=None, *, region=None, kinds=None) -> dict | None:
+    """The cross-validated skill of what a query forecasts: P(at least one event of
+    ``kinds`` in ``region``), for the target's month when known.
+
+    The build measured it for the store's region and any kind (:func:`skill_by_month`);
+    that is quoted, with the base rate beside it, when the query asks about that region
+    and every kind. Any other region or kinds have not been measured: the answer says so
+    (``measured`` False) with the ``verify`` command that measures it. None when the store
+    holds no measured skill at all.
+    """
     skill = store.manifest.get("skill")
     if not skill:
         return None
-    answer = {"method": skill["method"], "region": skill["region"],
+    asked = (resolve_region(store, region).to_dict() if region is not None
+             else skill["region"])
+    if asked != skill["region"] or kinds:
+        argument = region_argument(asked)
+        command = (f"analogs verify --store {store.path}"
+                   + (f" --region {argument}" if argument else "")
+                   + (f" --kind {','.join(kinds)}" if kinds else ""))
+        return {"measured": False, "region": asked,
+                "kinds": list(kinds) if kinds else None, "command": command}
+    by_month = skill["by_month"]
+    n_days = sum(entry["n_days"] for entry in by_month.values())
+    answer = {"measured": True, "method": skill["method"], "region": skill["region"],
               "brier_skill_score": skill["brier_skill_score"],
               "brier_skill_score_ci": skill["brier_skill_score_ci"],
-              "roc_auc": skill["roc_auc"]}
+              "roc_auc": skill["roc_auc"],
+              "base_rate": (sum(e["base_rate"] * e["n_days"] for e in by_month.values())
+                            / n_days) if n_days else None}
     if target_time is not None:
-        month = skill["by_month"].get(str(pd.Timestamp(target_time).month))
+        month = by_month.get(str(pd.Timestamp(target_time).month))
         if month:
             answer["month"] = int(pd.Timestamp(target_time).month)
             answer["month_brier_skill_score"] = month["brier_skill_score"]
