@@ -40,6 +40,27 @@ def assert_not_blank(figure):
     assert image.var() * 255.0 ** 2 > MIN_PIXEL_VARIANCE
 
 
+def assert_degree_labels(figure, ax):
+    """Tick labels in degrees W/E and N/S, matching the tick positions (west of 0 is W,
+    from memory of the usual geographic convention)."""
+    figure.canvas.draw()
+    for tick, label in zip(ax.get_xticks(), ax.get_xticklabels()):
+        if label.get_text():
+            assert label.get_text() == f"{abs(tick):g}°{'W' if tick < 0 else 'E'}"
+    for tick, label in zip(ax.get_yticks(), ax.get_yticklabels()):
+        if label.get_text():
+            assert label.get_text() == f"{abs(tick):g}°{'S' if tick < 0 else 'N'}"
+    assert any(label.get_text().endswith("W") for label in ax.get_xticklabels())
+
+
+def test_degree_labels():
+    assert plots.degrees_east_label(-100) == "100°W"
+    assert plots.degrees_east_label(200) == "160°W"
+    assert plots.degrees_east_label(20.5) == "20.5°E"
+    assert plots.degrees_east_label(0) == "0°" and plots.degrees_east_label(180) == "180°"
+    assert plots.degrees_north_label(-10) == "10°S" and plots.degrees_north_label(35) == "35°N"
+
+
 def colourbar_labels(figure) -> list[str]:
     return [ax.get_ylabel() for ax in figure.axes if ax.get_label() == "<colorbar>"]
 
@@ -84,7 +105,7 @@ def test_target_map(demo_store, query):
     (ax,) = map_axes(figure)
     assert query.target["date"] in ax.get_title() and "500 hPa height" in ax.get_title()
     assert "60 F" in ax.get_title()
-    assert ax.get_xlabel() == "longitude (deg E)" and ax.get_ylabel() == "latitude (deg N)"
+    assert_degree_labels(figure, ax)
     # The shaded moisture is the field in g/kg.
     mesh = ax.collections[0]
     np.testing.assert_allclose(np.asarray(mesh.get_array()).ravel(),
@@ -99,14 +120,18 @@ def test_target_map_needs_height():
 
 
 def test_analog_panel(demo_store, query):
-    drawn = query.analogs.head(6)
+    drawn = query.analogs
     fields = day_fields(demo_store, drawn["row"].to_numpy()).rename(time="analog")
     events = demo_store.events[demo_store.events["day"].isin(pd.to_datetime(drawn["date"]))]
     figure = plots.analog_panel(fields, drawn, events, region=demo_store.region,
                                 title=f"Closest past days to {query.target['date']}")
     assert_not_blank(figure)
     axes = map_axes(figure)
-    assert len(axes) == 6
+    assert len(axes) == len(drawn) == 12     # every analog, in a grid
+    assert_degree_labels(figure, axes[-1])    # bottom row: longitudes
+    # Inner panels carry no labels, the first column its latitudes.
+    assert [t.get_text() for t in axes[1].get_yticklabels()] == []
+    assert all(t.get_text().endswith("N") for t in axes[0].get_yticklabels())
     for ax, analog in zip(axes, drawn.itertuples()):
         assert analog.date in ax.get_title() and analog.regime in ax.get_title()
         # The count in the title is the analogs table's (events in the region).
@@ -161,13 +186,23 @@ def test_probability_map(demo_store, query):
     maps = outcome_maps(demo_store.events, pd.to_datetime(query.analogs["date"]), lat, lon)
     figure = plots.probability_map(maps, region=demo_store.region, when=query.target["date"])
     assert_not_blank(figure)
-    assert len(figure.axes) == 2
-    (label,) = colourbar_labels(figure)
-    assert "within 40 km" in label and "(%)" in label
-    (ax,) = map_axes(figure)
-    assert "12 days" in ax.get_title()
-    np.testing.assert_allclose(np.asarray(ax.collections[0].get_array()).ravel(),
-                               100.0 * maps["neighbourhood_probability"].values.ravel())
+    assert len(figure.axes) == 4
+    fraction_label, density_label = colourbar_labels(figure)
+    assert "within 40 km" in fraction_label and "(%)" in fraction_label
+    assert "smoothed" in density_label
+    ax, right = map_axes(figure)
+    assert "12 days" in ax.get_title() and "density" in right.get_title()
+    assert_degree_labels(figure, ax)
+    # Reference: outcome_maps' arrays; zero is masked (drawn blank), every other cell shown.
+    shaded = ax.collections[0].get_array()
+    expected = 100.0 * maps["neighbourhood_probability"].values.ravel()
+    np.testing.assert_array_equal(np.ma.getmaskarray(shaded).ravel(), expected <= 0.0)
+    np.testing.assert_allclose(np.ma.filled(shaded, 0.0).ravel(), expected)
+    density = right.collections[0].get_array()
+    values = maps["report_density"].values.ravel()
+    shown = ~np.ma.getmaskarray(density).ravel()
+    np.testing.assert_array_equal(shown, values >= plots.DENSITY_FLOOR * values.max())
+    np.testing.assert_allclose(np.ma.compressed(density), values[shown])
 
 
 @pytest.fixture(scope="module")

@@ -25,9 +25,11 @@ import pandas as pd
 import xarray as xr
 from matplotlib import colormaps
 from matplotlib.backends.backend_agg import FigureCanvasAgg
+from matplotlib.collections import LineCollection
 from matplotlib.colors import BoundaryNorm, ListedColormap
 from matplotlib.figure import Figure
 from matplotlib.patches import Polygon, Rectangle
+from matplotlib.ticker import FuncFormatter, MaxNLocator
 
 from analogs.constants import SEVERE_DEWPOINT_C, ZERO_CELSIUS_K
 from analogs.stages.diagnostics import dewpoint_from_specific_humidity
@@ -41,22 +43,50 @@ HEIGHT_INTERVAL_GPM = 60.0
 #: Marker of each event kind on maps, in the order kinds sort (then reused).
 EVENT_MARKERS = ("o", "^", "s", "D", "v", "P", "X")
 PLAIN_AXES_NOTE = "plain latitude-longitude axes (no coastlines drawn)"
+#: Resolution of full-size figures and of the small maps of the analog grid, dots per inch.
+FIGURE_DPI = 90
+THUMBNAIL_DPI = 72
+#: Share of the largest smoothed density below which the density map is left blank.
+DENSITY_FLOOR = 0.02
+#: Columns of the analog grid.
+GRID_COLUMNS = 5
 
 
 # ---------------------------------------------------------------------- basics
 
-def new_figure(width=8.0, height=6.0) -> Figure:
-    """A Figure on its own Agg canvas (off-screen, independent of pyplot)."""
-    figure = Figure(figsize=(width, height), layout="constrained")
+def new_figure(width=8.0, height=6.0, *, layout=None) -> Figure:
+    """A Figure on its own Agg canvas (off-screen, independent of pyplot).
+
+    No layout engine by default: maps are placed by fixed margins, which is several
+    times faster to draw than a constrained layout (measured in
+    ``tests/benchmarks/bench_report.py``)."""
+    figure = Figure(figsize=(width, height), layout=layout)
     FigureCanvasAgg(figure)
     return figure
 
 
-def figure_png(figure: Figure, *, dpi=100) -> bytes:
-    """PNG bytes of ``figure``."""
+def figure_png(figure: Figure, *, dpi=None) -> bytes:
+    """PNG bytes of ``figure`` (at ``figure.png_dpi`` when the figure sets one, else
+    :data:`FIGURE_DPI`)."""
     buffer = io.BytesIO()
-    figure.savefig(buffer, format="png", dpi=dpi)
+    figure.savefig(buffer, format="png", dpi=dpi or getattr(figure, "png_dpi", FIGURE_DPI))
     return buffer.getvalue()
+
+
+def degrees_east_label(value, _position=None) -> str:
+    """``-100`` -> ``100°W``, ``20`` -> ``20°E`` (0 and 180 without a letter)."""
+    value = (float(value) + 180.0) % 360.0 - 180.0
+    if abs(value) < 1e-9 or abs(abs(value) - 180.0) < 1e-9:
+        return f"{abs(value):g}°"
+    return f"{abs(value):g}°{'W' if value < 0 else 'E'}"
+
+
+def degrees_north_label(value, _position=None) -> str:
+    """``35`` -> ``35°N``, ``-10`` -> ``10°S``, ``0`` -> ``0°``."""
+    value = float(value)
+    if abs(value) < 1e-9:
+        return "0°"
+    return f"{abs(value):g}°{'S' if value < 0 else 'N'}"
 
 
 def regime_colours(regimes) -> dict:
@@ -97,18 +127,44 @@ def _coastline_paths():
     return None
 
 
-def _map_axes(ax, lat, lon, region=None, *, coastlines=None):
-    """Plain lat/lon axes with a latitude-true aspect, the region drawn on them."""
+def _map_axes(ax, lat, lon, region=None, *, coastlines=None, xticks=True, yticks=True,
+              small=False):
+    """Lat/lon axes with a latitude-true aspect, ticks labelled in degrees W/E and N/S,
+    the region drawn on them; ``xticks`` / ``yticks`` False leaves the labels off (inner
+    panels of a grid)."""
     ax.set_xlim(float(np.min(lon)), float(np.max(lon)))
     ax.set_ylim(float(np.min(lat)), float(np.max(lat)))
     ax.set_aspect(1.0 / np.cos(np.radians(float(np.mean(lat)))))
-    ax.set_xlabel("longitude (deg E)")
-    ax.set_ylabel("latitude (deg N)")
+    if small:
+        # Small maps: the degree lines as one collection (cheap), labels on the outer
+        # edge of the grid only; no tick objects on inner edges (they dominate the time).
+        xs = _degree_lines(lon, 4)
+        ys = _degree_lines(lat, 3)
+        ax.add_collection(LineCollection(
+            [[(x, np.min(lat)), (x, np.max(lat))] for x in xs]
+            + [[(np.min(lon), y), (np.max(lon), y)] for y in ys],
+            colors="0.8", linewidths=0.4, zorder=0))
+        ax.set_xticks(xs if xticks else [], [degrees_east_label(x) for x in xs] if xticks else [])
+        ax.set_yticks(ys if yticks else [], [degrees_north_label(y) for y in ys] if yticks else [])
+        ax.tick_params(labelsize=6, length=2, pad=1)
+    else:
+        ax.xaxis.set_major_locator(MaxNLocator(6, steps=[1, 2, 5, 10]))
+        ax.yaxis.set_major_locator(MaxNLocator(5, steps=[1, 2, 5, 10]))
+        ax.xaxis.set_major_formatter(FuncFormatter(degrees_east_label))
+        ax.yaxis.set_major_formatter(FuncFormatter(degrees_north_label))
+        ax.tick_params(labelsize=8)
     if coastlines:
         for line in coastlines:
             ax.plot(line[:, 0], line[:, 1], color="0.3", linewidth=0.6)
     if region is not None:
         _draw_region(ax, region)
+
+
+def _degree_lines(values, n):
+    """About ``n`` round degree values inside the span of ``values``."""
+    low, high = float(np.min(values)), float(np.max(values))
+    ticks = MaxNLocator(n, steps=[1, 2, 5, 10]).tick_values(low, high)
+    return [float(t) for t in ticks if low <= t <= high]
 
 
 def _draw_region(ax, region):
@@ -208,6 +264,7 @@ def target_map(fields: xr.Dataset, *, region=None, when="target", source=None) -
     if "z500" not in fields:
         raise AnalogsInputError("target_map needs a 'z500' field (500 hPa height, gpm)")
     figure = new_figure(8.0, 6.0)
+    figure.subplots_adjust(left=0.08, right=0.97, bottom=0.06, top=0.86)
     ax = figure.add_subplot()
     coastlines = _coastline_paths()
     label = _moisture_layer(figure, ax, fields)
@@ -224,10 +281,10 @@ def target_map(fields: xr.Dataset, *, region=None, when="target", source=None) -
 
 
 def analog_panel(analog_fields: xr.Dataset, analogs: pd.DataFrame, events=None, *,
-                 region=None, title=None) -> Figure:
-    """One map per analog day drawn: height contours and that day's events by kind
-    (distinct markers); the rank, date, regime, distance and the table's event count in
-    each map's title.
+                 region=None, title=None, columns=GRID_COLUMNS) -> Figure:
+    """Every analog day as a small map in a compact grid: height contours and that
+    day's events by kind (distinct markers); rank, date, regime, distance and the
+    table's event count (events in the outcome region) above each map.
 
     Parameters
     ----------
@@ -239,6 +296,7 @@ def analog_panel(analog_fields: xr.Dataset, analogs: pd.DataFrame, events=None, 
         ``day``, the convective day), or None for no markers.
     region : the outcome region, drawn on every map.
     title : the figure's title.
+    columns : maps per row.
     """
     if len(analogs) == 0:
         raise AnalogsInputError("analog_panel needs at least one analog row")
@@ -250,32 +308,61 @@ def analog_panel(analog_fields: xr.Dataset, analogs: pd.DataFrame, events=None, 
             f"analog_panel got {analog_fields.sizes['analog']} analog fields for "
             f"{len(analogs)} analog rows; pass the fields of the rows drawn")
     kinds = sorted(events["kind"].astype(str).unique()) if events is not None else []
-    columns = min(3, len(analogs))
+    columns = min(columns, len(analogs))
     rows = int(np.ceil(len(analogs) / columns))
-    figure = new_figure(4.2 * columns, 3.6 * rows + 0.6)
-    coastlines = _coastline_paths()
     lat, lon = analog_fields["lat"].values, analog_fields["lon"].values
+    aspect = (np.ptp(lat) / max(np.ptp(lon), 1e-9)) / np.cos(np.radians(float(np.mean(lat))))
+    panel_w = 2.3
+    panel_h = panel_w * aspect + 0.45            # the map plus its two title lines
+    head, foot = 0.55, 0.75                      # suptitle; tick labels and legend
+    width, height = panel_w * columns + 0.5, panel_h * rows + head + foot
+    figure = new_figure(width, height)
+    figure.png_dpi = THUMBNAIL_DPI
+    coastlines = _coastline_paths()
+    z = analog_fields["z500"].transpose("analog", "lat", "lon").values
+    low = HEIGHT_INTERVAL_GPM * np.floor(np.nanmin(z) / HEIGHT_INTERVAL_GPM)
+    high = HEIGHT_INTERVAL_GPM * np.ceil(np.nanmax(z) / HEIGHT_INTERVAL_GPM)
+    levels = np.arange(low, high + HEIGHT_INTERVAL_GPM, HEIGHT_INTERVAL_GPM)
+    on_day = None
+    if events is not None and len(events):
+        on_day = events.assign(_day=pd.to_datetime(events["day"]).dt.normalize())
     for i, analog in enumerate(analogs.itertuples(index=False)):
-        ax = figure.add_subplot(rows, columns, i + 1)
-        _height_contours(ax, analog_fields["z500"].isel(analog=i), colour="0.25", labels=False)
-        _events_on_map(ax, events, analog.date, kinds)
-        _map_axes(ax, lat, lon, region, coastlines=coastlines)
+        row, column = divmod(i, columns)
+        left = (0.45 + column * panel_w) / width
+        bottom = (foot + (rows - 1 - row) * panel_h) / height
+        ax = figure.add_axes([left, bottom, (panel_w - 0.1) / width,
+                              (panel_h - 0.45) / height])
+        ax.contour(lon, lat, z[i], levels=levels, colors="0.25", linewidths=0.6)
+        if on_day is not None:
+            day = on_day[on_day["_day"] == pd.Timestamp(analog.date).normalize()]
+            for k, kind in enumerate(kinds):
+                part = day[day["kind"] == kind]
+                ax.scatter(part["lon"], part["lat"], marker=EVENT_MARKERS[k % len(EVENT_MARKERS)],
+                           s=9, facecolor=_kind_colour(k, len(kinds)), edgecolor="black",
+                           linewidths=0.3, label=kind, zorder=5)
+        _map_axes(ax, lat, lon, region, coastlines=coastlines, small=True,
+                  xticks=row == rows - 1 or i + columns >= len(analogs), yticks=column == 0)
         count = int(analog.events_total)
-        ax.set_title(f"#{analog.rank} {analog.date} - {analog.regime}\n"
-                     f"distance {analog.distance:.2f}, {count} event{'s' * (count != 1)} "
-                     "in region", fontsize=9)
+        ax.set_title(f"#{analog.rank} {analog.date} {analog.regime}\n"
+                     f"d {analog.distance:.2f}, {count} event{'s' * (count != 1)} in region",
+                     fontsize=6.5, pad=2)
     if kinds:
-        handles = [figure.axes[0].scatter([], [], marker=EVENT_MARKERS[i % len(EVENT_MARKERS)],
-                                          facecolor=colormaps["plasma"](
-                                              0.15 + 0.7 * i / max(len(kinds) - 1, 1)),
+        handles = [figure.axes[0].scatter([], [], marker=EVENT_MARKERS[k % len(EVENT_MARKERS)],
+                                          facecolor=_kind_colour(k, len(kinds)),
                                           edgecolor="black", label=kind)
-                   for i, kind in enumerate(kinds)]
-        figure.legend(handles=handles, loc="outside lower center", ncols=len(kinds),
-                      title="events of the day, anywhere on the map (convective day)")
+                   for k, kind in enumerate(kinds)]
+        figure.legend(handles=handles, loc="lower center", ncols=len(kinds), fontsize=7,
+                      title_fontsize=7, frameon=False,
+                      title="events of the day, anywhere on the map (convective day); "
+                            f"contours every {HEIGHT_INTERVAL_GPM:.0f} gpm")
     if title:
-        figure.suptitle(title, fontsize=11)
+        figure.suptitle(title, fontsize=9, y=1.0 - 0.08 / height)
     _note_plain_axes(figure, coastlines)
     return figure
+
+
+def _kind_colour(index, n_kinds):
+    return colormaps["plasma"](0.15 + 0.7 * index / max(n_kinds - 1, 1))
 
 
 def composite_difference(mean_fields: xr.Dataset, target_fields: xr.Dataset, *,
@@ -302,6 +389,7 @@ def composite_difference(mean_fields: xr.Dataset, target_fields: xr.Dataset, *,
         raise AnalogsInputError("composite_difference needs the mean and the target on one "
                                 "grid; regrid the target to the analogs' grid first")
     figure = new_figure(13.0, 5.4)
+    figure.subplots_adjust(left=0.05, right=0.97, bottom=0.07, top=0.82, wspace=0.15)
     coastlines = _coastline_paths()
     left, right = figure.add_subplot(1, 2, 1), figure.add_subplot(1, 2, 2)
     _moisture_layer(figure, left, mean_fields)
@@ -326,28 +414,47 @@ def composite_difference(mean_fields: xr.Dataset, target_fields: xr.Dataset, *,
 
 
 def probability_map(maps: xr.Dataset, *, region=None, when="target") -> Figure:
-    """Neighbourhood probability of the analog days (from
-    :func:`analogs.stages.outcomes.outcome_maps`) in percent, fixed 0-100 scale."""
+    """Left: the neighbourhood probability of the analog days (from
+    :func:`analogs.stages.outcomes.outcome_maps`) in percent on a fixed 0-100 scale, cells
+    of zero left blank so that every non-zero cell shows; right: the smoothed report
+    density (events per grid cell per analog day), zero left blank."""
     if "neighbourhood_probability" not in maps:
         raise AnalogsInputError("probability_map needs the Dataset of "
                                 "analogs.stages.outcomes.outcome_maps")
     probability = _plane(maps["neighbourhood_probability"], "probability_map")
+    lat, lon = probability["lat"].values, probability["lon"].values
     radius = probability.attrs.get("radius_km")
-    figure = new_figure(8.0, 6.0)
-    ax = figure.add_subplot()
+    density = (_plane(maps["report_density"], "probability_map")
+               if "report_density" in maps else None)
+    figure = new_figure(13.0 if density is not None else 8.0, 4.6)
+    figure.subplots_adjust(left=0.05, right=0.97, bottom=0.07, top=0.88, wspace=0.15)
     coastlines = _coastline_paths()
+    ax = figure.add_subplot(1, 2 if density is not None else 1, 1)
     levels = np.arange(0.0, 101.0, 10.0)
     norm = BoundaryNorm(levels, colormaps["viridis"].N)
-    mesh = ax.pcolormesh(probability["lon"].values, probability["lat"].values,
-                         100.0 * probability.values, cmap="viridis", norm=norm, shading="nearest")
+    percent = 100.0 * probability.values
+    mesh = ax.pcolormesh(lon, lat, np.ma.masked_less_equal(percent, 0.0), cmap="viridis",
+                         norm=norm, shading="nearest")
     near = f"within {radius:g} km" if radius else "nearby"
     figure.colorbar(mesh, ax=ax, label=f"share of analog days with an event {near} (%)",
                     shrink=0.85)
-    _map_axes(ax, probability["lat"].values, probability["lon"].values, region,
-              coastlines=coastlines)
+    _map_axes(ax, lat, lon, region, coastlines=coastlines)
     n = maps.attrs.get("n_analog_days")
     ax.set_title(f"Where the analog days of {when} had events nearby"
-                 + (f" ({n} days)" if n else ""), fontsize=10)
+                 + (f" ({n} days)" if n else "") + "\nblank: no analog day had one",
+                 fontsize=10)
+    if density is not None:
+        right = figure.add_subplot(1, 2, 2)
+        top = float(np.nanmax(density.values)) if np.nanmax(density.values) > 0 else 1.0
+        values = np.ma.masked_less(density.values, DENSITY_FLOOR * top)
+        shaded = right.pcolormesh(lon, lat, values, cmap="cividis", vmin=0.0, vmax=top,
+                                  shading="nearest")
+        figure.colorbar(shaded, ax=right, shrink=0.85,
+                        label="events per grid cell per analog day (smoothed)")
+        _map_axes(right, lat, lon, region, coastlines=coastlines)
+        right.set_title("Smoothed density of the analog days' events\n"
+                        f"blank: below {100 * DENSITY_FLOOR:g} % of the largest value",
+                        fontsize=10)
     _note_plain_axes(figure, coastlines)
     return figure
 
@@ -360,7 +467,7 @@ def reliability_diagram(reliability, *, title_suffix="") -> Figure:
     table = pd.DataFrame(list(reliability))
     if table.empty:
         raise AnalogsInputError("reliability_diagram needs at least one reliability bin")
-    figure = new_figure(6.0, 7.0)
+    figure = new_figure(6.0, 7.0, layout="constrained")
     top = figure.add_subplot(4, 1, (1, 3))
     bottom = figure.add_subplot(4, 1, 4, sharex=top)
     top.plot([0, 1], [0, 1], color="0.5", linestyle="--", label="perfect reliability")
@@ -385,7 +492,7 @@ def roc_diagram(false_alarm_rate, hit_rate, *, title_suffix="") -> Figure:
     false_alarm_rate = np.asarray(false_alarm_rate, dtype=float)
     hit_rate = np.asarray(hit_rate, dtype=float)
     area = float(np.trapezoid(hit_rate, false_alarm_rate))
-    figure = new_figure(6.0, 6.0)
+    figure = new_figure(6.0, 6.0, layout="constrained")
     ax = figure.add_subplot()
     ax.plot([0, 1], [0, 1], color="0.5", linestyle="--", label="no skill")
     ax.plot(false_alarm_rate, hit_rate, marker=".", color=colormaps["viridis"](0.3),
@@ -418,7 +525,7 @@ def regime_calendar(tags: pd.DataFrame, *, title_suffix="") -> Figure:
     colours = regime_colours(regimes)
     cmap = ListedColormap([colours[r] for r in regimes])
     norm = BoundaryNorm(np.arange(len(regimes) + 1) - 0.5, len(regimes))
-    figure = new_figure(11.0, 1.6 + 0.28 * years.size)
+    figure = new_figure(11.0, 1.6 + 0.28 * years.size, layout="constrained")
     ax = figure.add_subplot()
     image = ax.imshow(grid, aspect="auto", cmap=cmap, norm=norm, interpolation="nearest",
                       extent=(0.5, 366.5, years[-1] + 0.5, years[0] - 0.5))
@@ -448,7 +555,7 @@ def monthly_frequency_chart(frequency: pd.DataFrame, *, title_suffix="") -> Figu
     regimes = _ordered_regimes(shares.columns)
     colours = regime_colours(regimes)
     totals = frequency.groupby("month")[f"{unit}_tagged"].first()
-    figure = new_figure(9.0, 5.0)
+    figure = new_figure(9.0, 5.0, layout="constrained")
     ax = figure.add_subplot()
     months = shares.index.to_numpy()
     base = np.zeros(months.size)
@@ -480,7 +587,7 @@ def composite_maps(composites: xr.Dataset, *, region=None) -> Figure:
     limit = float(np.nanmax(np.abs(anomaly.values))) or 1.0
     columns = min(2, len(present))
     rows = int(np.ceil(len(present) / columns))
-    figure = new_figure(6.0 * columns + 1.0, 4.4 * rows + 0.6)
+    figure = new_figure(6.0 * columns + 1.0, 4.4 * rows + 0.6, layout="constrained")
     coastlines = _coastline_paths()
     lat, lon = composites["lat"].values, composites["lon"].values
     axes, mesh = [], None
@@ -509,7 +616,7 @@ def outcome_chart(outcomes: pd.DataFrame, *, title_suffix="") -> Figure:
         raise AnalogsInputError("outcome_chart needs the table of outcomes_by_regime_and_month")
     regimes = _ordered_regimes(outcomes["regime"])
     colours = regime_colours(regimes)
-    figure = new_figure(9.0, 5.0)
+    figure = new_figure(9.0, 5.0, layout="constrained")
     ax = figure.add_subplot()
     for offset, regime in zip(np.linspace(-0.2, 0.2, len(regimes)), regimes):
         part = outcomes[outcomes["regime"] == regime]
