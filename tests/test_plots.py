@@ -126,23 +126,34 @@ def test_analog_panel(demo_store, query):
     figure = plots.analog_panel(fields, drawn, events, region=demo_store.region,
                                 title=f"Closest past days to {query.target['date']}")
     assert_not_blank(figure)
-    axes = map_axes(figure)
-    assert len(axes) == len(drawn) == 12     # every analog, in a grid
-    assert_degree_labels(figure, axes[-1])    # bottom row: longitudes
-    # Inner panels carry no labels, the first column its latitudes.
-    assert [t.get_text() for t in axes[1].get_yticklabels()] == []
-    assert all(t.get_text().endswith("N") for t in axes[0].get_yticklabels())
-    for ax, analog in zip(axes, drawn.itertuples()):
-        assert analog.date in ax.get_title() and analog.regime in ax.get_title()
+    (ax,) = map_axes(figure)                  # every small map on one axes (fast)
+    titles = {t.get_gid(): t.get_text() for t in ax.texts if t.get_gid()}
+    assert len(titles) == len(drawn) == 12    # every analog, in a grid
+    for analog in drawn.itertuples():
+        title = titles[f"analog-{analog.rank}"]
+        assert analog.date in title and analog.regime in title
         # The count in the title is the analogs table's (events in the region).
-        assert f"{analog.events_total} event" in ax.get_title()
-        assert "in region" in ax.get_title()
+        assert f"{analog.events_total} event" in title and "in region" in title
+    labels = [t.get_text() for t in ax.texts if not t.get_gid()]
+    assert any(label.endswith("°W") for label in labels)
+    assert any(label.endswith("°N") for label in labels)
     assert query.target["date"] in figure.get_suptitle()
-    # Events plotted: the markers of the first analog's day are its events, by kind.
+    # Events plotted: the markers inside the first analog's map are its events on the
+    # map's grid, by kind (reference: the events table filtered here).
+    lat, lon = fields["lat"].values, fields["lon"].values
     first = drawn.iloc[0]
-    day_events = demo_store.events[demo_store.events["day"] == pd.Timestamp(first["date"])]
-    plotted = sum(len(c.get_offsets()) for c in axes[0].collections
-                  if c.get_label() in set(demo_store.events["kind"]))
+    day_events = demo_store.events[(demo_store.events["day"] == pd.Timestamp(first["date"]))
+                                   & demo_store.events["lat"].between(lat.min(), lat.max())
+                                   & demo_store.events["lon"].between(lon.min(), lon.max())]
+    dx, dy = figure.panel_offsets[0]
+    plotted = 0
+    for c in ax.collections:
+        if c.get_label() in set(demo_store.events["kind"]):
+            xy = np.asarray(c.get_offsets())
+            if xy.size:
+                plotted += int(np.sum((xy[:, 0] - dx >= lon.min()) & (xy[:, 0] - dx <= lon.max())
+                                      & (xy[:, 1] - dy >= lat.min())
+                                      & (xy[:, 1] - dy <= lat.max())))
     assert plotted == len(day_events)
 
 
@@ -299,3 +310,23 @@ def test_figures_take_no_store():
     for name, function in inspect.getmembers(plots, inspect.isfunction):
         if function.__module__ == plots.__name__:
             assert "store" not in inspect.signature(function).parameters, name
+
+
+def test_land_outline_is_the_half_contour_of_the_mask(demo_store, query):
+    """The land-sea line is the 0.5 contour of the mask: for land west of 100.5 W on a
+    1-degree grid, linear interpolation between the last land column (101 W, 1) and the
+    first sea column (100 W, 0) puts it at 100.5 W (worked by hand)."""
+    fields = day_fields(demo_store, demo_store.day_row(query.target["date"])).isel(time=0)
+    lat, lon = fields["lat"].values, fields["lon"].values
+    land = xr.DataArray(np.broadcast_to((lon <= -101.0).astype(float), (lat.size, lon.size)),
+                        dims=("lat", "lon"), coords={"lat": lat, "lon": lon},
+                        attrs={"standard_name": "land_binary_mask"})
+    figure = plots.target_map(fields, region=demo_store.region, land=land)
+    (ax,) = map_axes(figure)
+    outlines = [c for c in ax.collections
+                if hasattr(c, "levels") and list(getattr(c, "levels", [])) == [0.5]]
+    assert len(outlines) == 1
+    vertices = np.concatenate([p.vertices for p in outlines[0].get_paths()])
+    np.testing.assert_allclose(vertices[:, 0], -100.5)
+    assert plots.LAND_NOTE in [t.get_text() for t in figure.texts]
+    assert_not_blank(figure)

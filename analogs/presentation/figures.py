@@ -7,9 +7,11 @@ workflows gather the arrays (:func:`analogs.workflows.find.report_figures`,
 
 Every function returns a :class:`matplotlib.figure.Figure` attached to its own Agg
 canvas (no pyplot, so no global state changes and no display is needed); turn it
-into PNG bytes with :func:`figure_png`. Maps use plain latitude / longitude axes
-(the demo continent has no real coastline); coastlines are drawn only when cartopy
-and its Natural Earth files are already on disk (nothing is downloaded).
+into PNG bytes with :func:`figure_png`. Maps are latitude / longitude axes labelled in
+degrees W/E and N/S; every query map takes ``land``, a land-sea mask or land fraction
+on (lat, lon) (CF ``land_binary_mask`` / ``land_area_fraction``), and draws its 0.5
+contour; coastlines are drawn only when cartopy and its Natural Earth files are already
+on disk (nothing is downloaded).
 
 Colour maps: ``viridis`` / ``cividis`` (perceptually uniform) for amounts and
 probabilities, ``RdBu_r`` only for departures (anomalies and differences).
@@ -43,6 +45,7 @@ HEIGHT_INTERVAL_GPM = 60.0
 #: Marker of each event kind on maps, in the order kinds sort (then reused).
 EVENT_MARKERS = ("o", "^", "s", "D", "v", "P", "X")
 PLAIN_AXES_NOTE = "plain latitude-longitude axes (no coastlines drawn)"
+LAND_NOTE = "brown line: land-sea boundary from the archive's land-sea mask (0.5 contour)"
 #: Resolution of full-size figures and of the small maps of the analog grid, dots per inch.
 FIGURE_DPI = 90
 THUMBNAIL_DPI = 72
@@ -127,8 +130,20 @@ def _coastline_paths():
     return None
 
 
+def _land_outline(ax, land, dx=0.0, dy=0.0, *, linewidth=0.9):
+    """The 0.5 contour of a land-sea mask or land fraction (lat, lon), shifted by
+    (dx, dy) degrees: where land meets sea on the archive's own grid."""
+    if land is None:
+        return
+    land = _plane(land, "land outline")
+    values = np.asarray(land.values, dtype=float)
+    if np.nanmin(values) < 0.5 < np.nanmax(values):
+        ax.contour(land["lon"].values + dx, land["lat"].values + dy, values, levels=[0.5],
+                   colors="#6b4f2a", linewidths=linewidth, zorder=2)
+
+
 def _map_axes(ax, lat, lon, region=None, *, coastlines=None, xticks=True, yticks=True,
-              small=False):
+              small=False, land=None):
     """Lat/lon axes with a latitude-true aspect, ticks labelled in degrees W/E and N/S,
     the region drawn on them; ``xticks`` / ``yticks`` False leaves the labels off (inner
     panels of a grid)."""
@@ -156,6 +171,7 @@ def _map_axes(ax, lat, lon, region=None, *, coastlines=None, xticks=True, yticks
     if coastlines:
         for line in coastlines:
             ax.plot(line[:, 0], line[:, 1], color="0.3", linewidth=0.6)
+    _land_outline(ax, land)
     if region is not None:
         _draw_region(ax, region)
 
@@ -165,6 +181,21 @@ def _degree_lines(values, n):
     low, high = float(np.min(values)), float(np.max(values))
     ticks = MaxNLocator(n, steps=[1, 2, 5, 10]).tick_values(low, high)
     return [float(t) for t in ticks if low <= t <= high]
+
+
+def _region_outline(region):
+    """The region's outline as an (n, 2) array of (lon, lat), or None."""
+    if region.kind == "box":
+        return np.array([(region.west, region.south), (region.east, region.south),
+                         (region.east, region.north), (region.west, region.north),
+                         (region.west, region.south)])
+    if region.kind == "point":
+        # A circle of the radius in km, in degrees (1 deg lat = 111.2 km, from memory).
+        angle = np.linspace(0.0, 2.0 * np.pi, 73)
+        dlat = region.radius_km / 111.2
+        dlon = dlat / np.cos(np.radians(region.lat))
+        return np.c_[region.lon + dlon * np.cos(angle), region.lat + dlat * np.sin(angle)]
+    return None
 
 
 def _draw_region(ax, region):
@@ -183,8 +214,11 @@ def _draw_region(ax, region):
                              label="region"))
 
 
-def _note_plain_axes(figure, coastlines):
-    if not coastlines:
+def _note_plain_axes(figure, coastlines, land=None):
+    if land is not None:
+        figure.text(0.995, 0.003, LAND_NOTE, ha="right", va="bottom", fontsize=7,
+                    color="0.35")
+    elif not coastlines:
         figure.text(0.995, 0.003, PLAIN_AXES_NOTE, ha="right", va="bottom", fontsize=7,
                     color="0.35")
 
@@ -253,7 +287,8 @@ def _events_on_map(ax, events, day, kinds):
 
 # ------------------------------------------------------------------ query maps
 
-def target_map(fields: xr.Dataset, *, region=None, when="target", source=None) -> Figure:
+def target_map(fields: xr.Dataset, *, region=None, when="target", source=None,
+               land=None) -> Figure:
     """500 hPa height contours over moisture shading, with the 60 F dewpoint line.
 
     ``fields`` is one day on (lat, lon) with ``z500`` (gpm) and optionally a moisture
@@ -269,19 +304,20 @@ def target_map(fields: xr.Dataset, *, region=None, when="target", source=None) -
     coastlines = _coastline_paths()
     label = _moisture_layer(figure, ax, fields)
     _height_contours(ax, fields["z500"])
-    _map_axes(ax, fields["lat"].values, fields["lon"].values, region, coastlines=coastlines)
+    _map_axes(ax, fields["lat"].values, fields["lon"].values, region, coastlines=coastlines,
+              land=land)
     title = f"{when}: 500 hPa height (contours every {HEIGHT_INTERVAL_GPM:.0f} gpm)"
     if label:
         title += f"\nover {label.split(' (')[0]}; white line: dewpoint {SEVERE_DEWPOINT_C:.1f} deg C (60 F)"
     if source:
         title += f"\n[{source}]"
     ax.set_title(title, fontsize=10)
-    _note_plain_axes(figure, coastlines)
+    _note_plain_axes(figure, coastlines, land)
     return figure
 
 
 def analog_panel(analog_fields: xr.Dataset, analogs: pd.DataFrame, events=None, *,
-                 region=None, title=None, columns=GRID_COLUMNS) -> Figure:
+                 region=None, title=None, columns=GRID_COLUMNS, land=None) -> Figure:
     """Every analog day as a small map in a compact grid: height contours and that
     day's events by kind (distinct markers); rank, date, regime, distance and the
     table's event count (events in the outcome region) above each map.
@@ -311,45 +347,87 @@ def analog_panel(analog_fields: xr.Dataset, analogs: pd.DataFrame, events=None, 
     columns = min(columns, len(analogs))
     rows = int(np.ceil(len(analogs) / columns))
     lat, lon = analog_fields["lat"].values, analog_fields["lon"].values
-    aspect = (np.ptp(lat) / max(np.ptp(lon), 1e-9)) / np.cos(np.radians(float(np.mean(lat))))
-    panel_w = 2.3
-    panel_h = panel_w * aspect + 0.45            # the map plus its two title lines
-    head, foot = 0.55, 0.75                      # suptitle; tick labels and legend
-    width, height = panel_w * columns + 0.5, panel_h * rows + head + foot
+    lat0, lon0 = float(np.min(lat)), float(np.min(lon))
+    span_x, span_y = float(np.ptp(lon)), float(np.ptp(lat))
+    squeeze = np.cos(np.radians(float(np.mean(lat))))
+    # All small maps on ONE axes (one axes is drawn far faster than twenty): panel
+    # (row, column) is the map shifted by (column * step_x, -row * step_y) degrees.
+    step_x, step_y = span_x * 1.08, span_y * 1.42
+    panel_w = 2.3                                        # inches per panel
+    scale = panel_w / step_x                             # inches per degree of longitude
+    head, foot, side = 0.45, 0.7, 0.45
+    width = panel_w * columns + side
+    height = step_y * rows * scale / squeeze + head + foot
     figure = new_figure(width, height)
     figure.png_dpi = THUMBNAIL_DPI
+    ax = figure.add_axes([side / width, foot / height, panel_w * columns / width,
+                          (height - head - foot) / height])
+    ax.set_axis_off()
+    ax.set_xlim(-0.04 * span_x, columns * step_x - 0.04 * span_x)
+    ax.set_ylim(-(rows - 1) * step_y - 0.02 * span_y, span_y + 0.40 * span_y)
+    ax.set_aspect(1.0 / squeeze)
     coastlines = _coastline_paths()
     z = analog_fields["z500"].transpose("analog", "lat", "lon").values
     low = HEIGHT_INTERVAL_GPM * np.floor(np.nanmin(z) / HEIGHT_INTERVAL_GPM)
     high = HEIGHT_INTERVAL_GPM * np.ceil(np.nanmax(z) / HEIGHT_INTERVAL_GPM)
     levels = np.arange(low, high + HEIGHT_INTERVAL_GPM, HEIGHT_INTERVAL_GPM)
-    on_day = None
-    if events is not None and len(events):
-        on_day = events.assign(_day=pd.to_datetime(events["day"]).dt.normalize())
+    xs, ys = _degree_lines(lon, 4), _degree_lines(lat, 3)
+    outline = _region_outline(region) if region is not None else None
+    frames, graticule, regions, offsets = [], [], [], []
     for i, analog in enumerate(analogs.itertuples(index=False)):
         row, column = divmod(i, columns)
-        left = (0.45 + column * panel_w) / width
-        bottom = (foot + (rows - 1 - row) * panel_h) / height
-        ax = figure.add_axes([left, bottom, (panel_w - 0.1) / width,
-                              (panel_h - 0.45) / height])
-        ax.contour(lon, lat, z[i], levels=levels, colors="0.25", linewidths=0.6)
-        if on_day is not None:
-            day = on_day[on_day["_day"] == pd.Timestamp(analog.date).normalize()]
-            for k, kind in enumerate(kinds):
-                part = day[day["kind"] == kind]
-                ax.scatter(part["lon"], part["lat"], marker=EVENT_MARKERS[k % len(EVENT_MARKERS)],
-                           s=9, facecolor=_kind_colour(k, len(kinds)), edgecolor="black",
-                           linewidths=0.3, label=kind, zorder=5)
-        _map_axes(ax, lat, lon, region, coastlines=coastlines, small=True,
-                  xticks=row == rows - 1 or i + columns >= len(analogs), yticks=column == 0)
+        dx, dy = column * step_x - lon0, -row * step_y - lat0
+        offsets.append((dx, dy))
+        ax.contour(lon + dx, lat + dy, z[i], levels=levels, colors="0.25", linewidths=0.6)
+        left, bottom = lon0 + dx, lat0 + dy
+        frames.append([(left, bottom), (left + span_x, bottom), (left + span_x, bottom + span_y),
+                       (left, bottom + span_y), (left, bottom)])
+        graticule += [[(x + dx, bottom), (x + dx, bottom + span_y)] for x in xs]
+        graticule += [[(left, y + dy), (left + span_x, y + dy)] for y in ys]
+        if outline is not None:
+            regions.append(outline + (dx, dy))
+        _land_outline(ax, land, dx, dy, linewidth=0.6)
+        if coastlines:
+            clip = Rectangle((left, bottom), span_x, span_y, transform=ax.transData)
+            for line in coastlines:
+                ax.plot(line[:, 0] + dx, line[:, 1] + dy, color="0.3", linewidth=0.4,
+                        clip_path=clip)
         count = int(analog.events_total)
-        ax.set_title(f"#{analog.rank} {analog.date} {analog.regime}\n"
-                     f"d {analog.distance:.2f}, {count} event{'s' * (count != 1)} in region",
-                     fontsize=6.5, pad=2)
+        ax.text(left, bottom + span_y * 1.02,
+                f"#{analog.rank} {analog.date} {analog.regime}\n"
+                f"d {analog.distance:.2f}, {count} event{'s' * (count != 1)} in region",
+                fontsize=6.5, va="bottom", ha="left", gid=f"analog-{analog.rank}")
+        if row == rows - 1 or i + columns >= len(analogs):
+            for x in xs:
+                ax.text(x + dx, bottom - 0.03 * span_y, degrees_east_label(x), fontsize=6,
+                        ha="center", va="top", color="0.3")
+        if column == 0:
+            for y in ys:
+                ax.text(left - 0.01 * span_x, y + dy, degrees_north_label(y), fontsize=6,
+                        ha="right", va="center", color="0.3")
+    ax.add_collection(LineCollection(graticule, colors="0.82", linewidths=0.4, zorder=0))
+    ax.add_collection(LineCollection(frames, colors="0.2", linewidths=0.7, zorder=1))
+    if regions:
+        ax.add_collection(LineCollection(regions, colors="black", linewidths=1.1,
+                                         linestyles="--", zorder=4, label="region"))
+    if events is not None and len(events):
+        day = pd.to_datetime(events["day"]).dt.normalize()
+        by_day = dict(zip(pd.to_datetime(analogs["date"]).dt.normalize(), offsets))
+        shift = np.array([by_day.get(d, (np.nan, np.nan)) for d in day]).reshape(-1, 2)
+        inside = (events["lon"].between(lon0, lon0 + span_x)
+                  & events["lat"].between(lat0, lat0 + span_y)).to_numpy()
+        for k, kind in enumerate(kinds):
+            keep = ((events["kind"].astype(str) == kind).to_numpy() & inside
+                    & np.isfinite(shift[:, 0]))
+            ax.scatter(events["lon"].to_numpy()[keep] + shift[keep, 0],
+                       events["lat"].to_numpy()[keep] + shift[keep, 1],
+                       marker=EVENT_MARKERS[k % len(EVENT_MARKERS)], s=9,
+                       facecolor=_kind_colour(k, len(kinds)), edgecolor="black",
+                       linewidths=0.3, label=kind, zorder=5)
     if kinds:
-        handles = [figure.axes[0].scatter([], [], marker=EVENT_MARKERS[k % len(EVENT_MARKERS)],
-                                          facecolor=_kind_colour(k, len(kinds)),
-                                          edgecolor="black", label=kind)
+        handles = [ax.scatter([], [], marker=EVENT_MARKERS[k % len(EVENT_MARKERS)],
+                              facecolor=_kind_colour(k, len(kinds)), edgecolor="black",
+                              label=kind)
                    for k, kind in enumerate(kinds)]
         figure.legend(handles=handles, loc="lower center", ncols=len(kinds), fontsize=7,
                       title_fontsize=7, frameon=False,
@@ -357,7 +435,8 @@ def analog_panel(analog_fields: xr.Dataset, analogs: pd.DataFrame, events=None, 
                             f"contours every {HEIGHT_INTERVAL_GPM:.0f} gpm")
     if title:
         figure.suptitle(title, fontsize=9, y=1.0 - 0.08 / height)
-    _note_plain_axes(figure, coastlines)
+    figure.panel_offsets = offsets  # degrees (lon, lat) each analog's map is shifted by
+    _note_plain_axes(figure, coastlines, land)
     return figure
 
 
@@ -366,7 +445,7 @@ def _kind_colour(index, n_kinds):
 
 
 def composite_difference(mean_fields: xr.Dataset, target_fields: xr.Dataset, *,
-                         region=None, title=None) -> Figure:
+                         region=None, title=None, land=None) -> Figure:
     """Left: a mean of the analog days (height contours over moisture); right: that
     mean minus the target's 500 hPa height (shaded), target contours on top.
 
@@ -394,7 +473,7 @@ def composite_difference(mean_fields: xr.Dataset, target_fields: xr.Dataset, *,
     left, right = figure.add_subplot(1, 2, 1), figure.add_subplot(1, 2, 2)
     _moisture_layer(figure, left, mean_fields)
     _height_contours(left, mean_height)
-    _map_axes(left, lat, lon, region, coastlines=coastlines)
+    _map_axes(left, lat, lon, region, coastlines=coastlines, land=land)
     n_days = mean_fields.attrs.get("n_days")
     days = f"{int(n_days)} analog days" if n_days else "the analog days"
     left.set_title(f"mean of {days}:\n500 hPa height and moisture", fontsize=10)
@@ -405,15 +484,15 @@ def composite_difference(mean_fields: xr.Dataset, target_fields: xr.Dataset, *,
     figure.colorbar(mesh, ax=right, label="analog mean minus target, 500 hPa height (gpm)",
                     shrink=0.85)
     _height_contours(right, target_height, colour="0.2")
-    _map_axes(right, lat, lon, region, coastlines=coastlines)
+    _map_axes(right, lat, lon, region, coastlines=coastlines, land=land)
     right.set_title("analog mean minus target\ncontours: target 500 hPa height", fontsize=10)
     if title:
         figure.suptitle(title, fontsize=11)
-    _note_plain_axes(figure, coastlines)
+    _note_plain_axes(figure, coastlines, land)
     return figure
 
 
-def probability_map(maps: xr.Dataset, *, region=None, when="target") -> Figure:
+def probability_map(maps: xr.Dataset, *, region=None, when="target", land=None) -> Figure:
     """Left: the neighbourhood probability of the analog days (from
     :func:`analogs.stages.outcomes.outcome_maps`) in percent on a fixed 0-100 scale, cells
     of zero left blank so that every non-zero cell shows; right: the smoothed report
@@ -438,7 +517,7 @@ def probability_map(maps: xr.Dataset, *, region=None, when="target") -> Figure:
     near = f"within {radius:g} km" if radius else "nearby"
     figure.colorbar(mesh, ax=ax, label=f"share of analog days with an event {near} (%)",
                     shrink=0.85)
-    _map_axes(ax, lat, lon, region, coastlines=coastlines)
+    _map_axes(ax, lat, lon, region, coastlines=coastlines, land=land)
     n = maps.attrs.get("n_analog_days")
     ax.set_title(f"Where the analog days of {when} had events nearby"
                  + (f" ({n} days)" if n else "") + "\nblank: no analog day had one",
@@ -451,11 +530,11 @@ def probability_map(maps: xr.Dataset, *, region=None, when="target") -> Figure:
                                   shading="nearest")
         figure.colorbar(shaded, ax=right, shrink=0.85,
                         label="events per grid cell per analog day (smoothed)")
-        _map_axes(right, lat, lon, region, coastlines=coastlines)
+        _map_axes(right, lat, lon, region, coastlines=coastlines, land=land)
         right.set_title("Smoothed density of the analog days' events\n"
                         f"blank: below {100 * DENSITY_FLOOR:g} % of the largest value",
                         fontsize=10)
-    _note_plain_axes(figure, coastlines)
+    _note_plain_axes(figure, coastlines, land)
     return figure
 
 
