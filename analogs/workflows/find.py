@@ -978,8 +978,8 @@ def report_figures(store, result: FindResult, *, maps=None, hindcast=None,
     figures = []
     if target is not None:
         figures.append((f"Target {when}: 500 hPa height and moisture ({source})",
-                        draw.target_map(target, region=region, when=f"Target {when}",
-                                        source=source),
+                        _later(draw.target_map, target, region=region,
+                               when=f"Target {when}", source=source),
                         _alt_target(target, f"target {when}", source)))
     if len(analogs):
         gathered = gathered.assign_coords(analog=analogs["rank"].to_numpy())
@@ -994,10 +994,10 @@ def report_figures(store, result: FindResult, *, maps=None, hindcast=None,
                            f"{int(a.events_total)} events in region"
                            for a in shown.itertuples(index=False)) + ".")
         figures.append(("The closest past days and their events",
-                        draw.analog_panel(gathered.isel(analog=slice(0, len(shown))), shown,
-                                          events, region=region,
-                                          title=f"Closest past days to {when}: 500 hPa height "
-                                                "(climatology + EOF reconstruction)"),
+                        _later(draw.analog_panel, gathered.isel(analog=slice(0, len(shown))),
+                               shown, events, region=region,
+                               title=f"Closest past days to {when}: 500 hPa height "
+                                     "(climatology + EOF reconstruction)"),
                         alt))
         if target is not None:
             mean = gathered.mean("analog", keep_attrs=True).drop_vars("time", errors="ignore")
@@ -1005,11 +1005,10 @@ def report_figures(store, result: FindResult, *, maps=None, hindcast=None,
             difference = mean["z500"].values - target["z500"].values
             lat, lon = mean["lat"].values, mean["lon"].values
             figures.append(("Mean of the analog days and its difference from the target",
-                            draw.composite_difference(
-                                mean, target, region=region,
-                                title=f"Analog days and target {when} (analogs: climatology "
-                                      f"+ anomaly on {store.eof.n_modes_} kept EOFs; target: "
-                                      f"{source})"),
+                            _later(draw.composite_difference, mean, target, region=region,
+                                   title=f"Analog days and target {when} (analogs: "
+                                         f"climatology + anomaly on {store.eof.n_modes_} kept "
+                                         f"EOFs; target: {source})"),
                             f"Two maps. Left: mean 500 hPa height and moisture of the "
                             f"{len(analogs)} analog days. Right: that mean minus the target's "
                             f"height, shaded blue to red from {np.nanmin(difference):.0f} to "
@@ -1028,19 +1027,61 @@ def report_figures(store, result: FindResult, *, maps=None, hindcast=None,
                    + (f", largest near {_place(maps['report_density'].values, lat, lon)}"
                       if nonzero else "") + "; zero left blank on both.")
             figures.append(("Where the analog days had events nearby",
-                            draw.probability_map(maps, region=region, when=when), alt))
+                            _later(draw.probability_map, maps, region=region, when=when), alt))
     if hindcast is not None:
         from analogs.stages.scores import reliability_table, roc_curve_points
         p = hindcast["forecast"].to_numpy()
         o = hindcast["observed"].to_numpy()
         figures.append(("Reliability of past analog guidance",
-                        draw.reliability_diagram(reliability_table(p, o)),
+                        _later(draw.reliability_diagram, reliability_table(p, o)),
                         f"Reliability diagram of {p.size} hindcast probabilities: observed "
                         "frequency against forecast probability, diagonal for perfect "
                         "reliability, forecasts per bin below."))
         if 0 < o.sum() < o.size:
             figures.append(("ROC of past analog guidance",
-                            draw.roc_diagram(*roc_curve_points(p, o)[:2]),
+                            _later(draw.roc_diagram, *roc_curve_points(p, o)[:2]),
                             f"ROC curve of {p.size} hindcast probabilities: hit rate "
                             "against false alarm rate, with its area in the legend."))
-    return [(caption, draw.figure_png(figure), alt) for caption, figure, alt in figures]
+    pngs = _draw_all([job for _, job, _ in figures])
+    return [(caption, png, alt) for (caption, _, alt), png in zip(figures, pngs)]
+
+
+#: Figures waiting to be drawn by :func:`_draw_all` (read by forked workers, which
+#: inherit it: nothing but the PNG bytes travels between processes).
+_PENDING: list = []
+
+
+def _later(function, *args, **kwargs):
+    """A figure to draw later: (figure function, arguments)."""
+    return function, args, kwargs
+
+
+def _draw_one(index: int) -> bytes:
+    from analogs.presentation.figures import figure_png
+    function, args, kwargs = _PENDING[index]
+    return figure_png(function(*args, **kwargs))
+
+
+def _draw_all(jobs) -> list[bytes]:
+    """PNG bytes of every job, drawn in two forked processes when the machine has more
+    than one core and the platform forks (the figures are independent; measured in
+    tests/benchmarks/bench_report.py), else one after the other."""
+    import multiprocessing
+    import os
+    global _PENDING
+    workers = min(len(jobs), len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity")
+                  else os.cpu_count() or 1, 2)
+    if workers < 2 or "fork" not in multiprocessing.get_all_start_methods():
+        _PENDING = list(jobs)
+        try:
+            return [_draw_one(i) for i in range(len(jobs))]
+        finally:
+            _PENDING = []
+    from concurrent.futures import ProcessPoolExecutor
+    import analogs.presentation.figures  # noqa: F401  imported once, before the fork
+    _PENDING = list(jobs)
+    try:
+        with ProcessPoolExecutor(workers, mp_context=multiprocessing.get_context("fork")) as pool:
+            return list(pool.map(_draw_one, range(len(jobs))))
+    finally:
+        _PENDING = []
