@@ -356,12 +356,13 @@ def analog_panel(analog_fields: xr.Dataset, analogs: pd.DataFrame, events=None, 
     panel_w = 2.3                                        # inches per panel
     scale = panel_w / step_x                             # inches per degree of longitude
     head, foot, side = 0.45, 0.7, 0.45
-    width = panel_w * columns + side
+    # At least 7 inches wide so that the title and the legend fit a grid of one or two.
+    width = max(panel_w * columns + side, 7.0)
     height = step_y * rows * scale / squeeze + head + foot
     figure = new_figure(width, height)
     figure.png_dpi = THUMBNAIL_DPI
-    ax = figure.add_axes([side / width, foot / height, panel_w * columns / width,
-                          (height - head - foot) / height])
+    ax = figure.add_axes([max(side, (width - panel_w * columns) / 2) / width, foot / height,
+                          panel_w * columns / width, (height - head - foot) / height])
     ax.set_axis_off()
     ax.set_xlim(-0.04 * span_x, columns * step_x - 0.04 * span_x)
     ax.set_ylim(-(rows - 1) * step_y - 0.02 * span_y, span_y + 0.40 * span_y)
