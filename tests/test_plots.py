@@ -40,6 +40,27 @@ def assert_not_blank(figure):
     assert image.var() * 255.0 ** 2 > MIN_PIXEL_VARIANCE
 
 
+def assert_degree_labels(figure, ax):
+    """Tick labels in degrees W/E and N/S, matching the tick positions (west of 0 is W,
+    from memory of the usual geographic convention)."""
+    figure.canvas.draw()
+    for tick, label in zip(ax.get_xticks(), ax.get_xticklabels()):
+        if label.get_text():
+            assert label.get_text() == f"{abs(tick):g}°{'W' if tick < 0 else 'E'}"
+    for tick, label in zip(ax.get_yticks(), ax.get_yticklabels()):
+        if label.get_text():
+            assert label.get_text() == f"{abs(tick):g}°{'S' if tick < 0 else 'N'}"
+    assert any(label.get_text().endswith("W") for label in ax.get_xticklabels())
+
+
+def test_degree_labels():
+    assert plots.degrees_east_label(-100) == "100°W"
+    assert plots.degrees_east_label(200) == "160°W"
+    assert plots.degrees_east_label(20.5) == "20.5°E"
+    assert plots.degrees_east_label(0) == "0°" and plots.degrees_east_label(180) == "180°"
+    assert plots.degrees_north_label(-10) == "10°S" and plots.degrees_north_label(35) == "35°N"
+
+
 def colourbar_labels(figure) -> list[str]:
     return [ax.get_ylabel() for ax in figure.axes if ax.get_label() == "<colorbar>"]
 
@@ -84,7 +105,7 @@ def test_target_map(demo_store, query):
     (ax,) = map_axes(figure)
     assert query.target["date"] in ax.get_title() and "500 hPa height" in ax.get_title()
     assert "60 F" in ax.get_title()
-    assert ax.get_xlabel() == "longitude (deg E)" and ax.get_ylabel() == "latitude (deg N)"
+    assert_degree_labels(figure, ax)
     # The shaded moisture is the field in g/kg.
     mesh = ax.collections[0]
     np.testing.assert_allclose(np.asarray(mesh.get_array()).ravel(),
@@ -99,25 +120,40 @@ def test_target_map_needs_height():
 
 
 def test_analog_panel(demo_store, query):
-    drawn = query.analogs.head(6)
+    drawn = query.analogs
     fields = day_fields(demo_store, drawn["row"].to_numpy()).rename(time="analog")
     events = demo_store.events[demo_store.events["day"].isin(pd.to_datetime(drawn["date"]))]
     figure = plots.analog_panel(fields, drawn, events, region=demo_store.region,
                                 title=f"Closest past days to {query.target['date']}")
     assert_not_blank(figure)
-    axes = map_axes(figure)
-    assert len(axes) == 6
-    for ax, analog in zip(axes, drawn.itertuples()):
-        assert analog.date in ax.get_title() and analog.regime in ax.get_title()
+    (ax,) = map_axes(figure)                  # every small map on one axes (fast)
+    titles = {t.get_gid(): t.get_text() for t in ax.texts if t.get_gid()}
+    assert len(titles) == len(drawn) == 12    # every analog, in a grid
+    for analog in drawn.itertuples():
+        title = titles[f"analog-{analog.rank}"]
+        assert analog.date in title and analog.regime in title
         # The count in the title is the analogs table's (events in the region).
-        assert f"{analog.events_total} event" in ax.get_title()
-        assert "in region" in ax.get_title()
+        assert f"{analog.events_total} event" in title and "in region" in title
+    labels = [t.get_text() for t in ax.texts if not t.get_gid()]
+    assert any(label.endswith("°W") for label in labels)
+    assert any(label.endswith("°N") for label in labels)
     assert query.target["date"] in figure.get_suptitle()
-    # Events plotted: the markers of the first analog's day are its events, by kind.
+    # Events plotted: the markers inside the first analog's map are its events on the
+    # map's grid, by kind (reference: the events table filtered here).
+    lat, lon = fields["lat"].values, fields["lon"].values
     first = drawn.iloc[0]
-    day_events = demo_store.events[demo_store.events["day"] == pd.Timestamp(first["date"])]
-    plotted = sum(len(c.get_offsets()) for c in axes[0].collections
-                  if c.get_label() in set(demo_store.events["kind"]))
+    day_events = demo_store.events[(demo_store.events["day"] == pd.Timestamp(first["date"]))
+                                   & demo_store.events["lat"].between(lat.min(), lat.max())
+                                   & demo_store.events["lon"].between(lon.min(), lon.max())]
+    dx, dy = figure.panel_offsets[0]
+    plotted = 0
+    for c in ax.collections:
+        if c.get_label() in set(demo_store.events["kind"]):
+            xy = np.asarray(c.get_offsets())
+            if xy.size:
+                plotted += int(np.sum((xy[:, 0] - dx >= lon.min()) & (xy[:, 0] - dx <= lon.max())
+                                      & (xy[:, 1] - dy >= lat.min())
+                                      & (xy[:, 1] - dy <= lat.max())))
     assert plotted == len(day_events)
 
 
@@ -161,13 +197,23 @@ def test_probability_map(demo_store, query):
     maps = outcome_maps(demo_store.events, pd.to_datetime(query.analogs["date"]), lat, lon)
     figure = plots.probability_map(maps, region=demo_store.region, when=query.target["date"])
     assert_not_blank(figure)
-    assert len(figure.axes) == 2
-    (label,) = colourbar_labels(figure)
-    assert "within 40 km" in label and "(%)" in label
-    (ax,) = map_axes(figure)
-    assert "12 days" in ax.get_title()
-    np.testing.assert_allclose(np.asarray(ax.collections[0].get_array()).ravel(),
-                               100.0 * maps["neighbourhood_probability"].values.ravel())
+    assert len(figure.axes) == 4
+    fraction_label, density_label = colourbar_labels(figure)
+    assert "within 40 km" in fraction_label and "(%)" in fraction_label
+    assert "smoothed" in density_label
+    ax, right = map_axes(figure)
+    assert "12 days" in ax.get_title() and "density" in right.get_title()
+    assert_degree_labels(figure, ax)
+    # Reference: outcome_maps' arrays; zero is masked (drawn blank), every other cell shown.
+    shaded = ax.collections[0].get_array()
+    expected = 100.0 * maps["neighbourhood_probability"].values.ravel()
+    np.testing.assert_array_equal(np.ma.getmaskarray(shaded).ravel(), expected <= 0.0)
+    np.testing.assert_allclose(np.ma.filled(shaded, 0.0).ravel(), expected)
+    density = right.collections[0].get_array()
+    values = maps["report_density"].values.ravel()
+    shown = ~np.ma.getmaskarray(density).ravel()
+    np.testing.assert_array_equal(shown, values >= plots.DENSITY_FLOOR * values.max())
+    np.testing.assert_allclose(np.ma.compressed(density), values[shown])
 
 
 @pytest.fixture(scope="module")
@@ -264,3 +310,23 @@ def test_figures_take_no_store():
     for name, function in inspect.getmembers(plots, inspect.isfunction):
         if function.__module__ == plots.__name__:
             assert "store" not in inspect.signature(function).parameters, name
+
+
+def test_land_outline_is_the_half_contour_of_the_mask(demo_store, query):
+    """The land-sea line is the 0.5 contour of the mask: for land west of 100.5 W on a
+    1-degree grid, linear interpolation between the last land column (101 W, 1) and the
+    first sea column (100 W, 0) puts it at 100.5 W (worked by hand)."""
+    fields = day_fields(demo_store, demo_store.day_row(query.target["date"])).isel(time=0)
+    lat, lon = fields["lat"].values, fields["lon"].values
+    land = xr.DataArray(np.broadcast_to((lon <= -101.0).astype(float), (lat.size, lon.size)),
+                        dims=("lat", "lon"), coords={"lat": lat, "lon": lon},
+                        attrs={"standard_name": "land_binary_mask"})
+    figure = plots.target_map(fields, region=demo_store.region, land=land)
+    (ax,) = map_axes(figure)
+    outlines = [c for c in ax.collections
+                if hasattr(c, "levels") and list(getattr(c, "levels", [])) == [0.5]]
+    assert len(outlines) == 1
+    vertices = np.concatenate([p.vertices for p in outlines[0].get_paths()])
+    np.testing.assert_allclose(vertices[:, 0], -100.5)
+    assert plots.LAND_NOTE in [t.get_text() for t in figure.texts]
+    assert_not_blank(figure)

@@ -70,7 +70,7 @@ class PageContent(HTMLParser):
 
     def __init__(self):
         super().__init__()
-        self.tables, self.images, self.links = [], [], []
+        self.tables, self.images, self.links, self.alts = [], [], [], []
         self._cell = None
 
     def handle_starttag(self, tag, attrs):
@@ -83,6 +83,7 @@ class PageContent(HTMLParser):
             self._cell = []
         elif tag == "img":
             self.images.append(attrs.get("src", ""))
+            self.alts.append(attrs.get("alt", ""))
         for key in ("src", "href"):
             if key in attrs and tag != "img":
                 self.links.append(attrs[key])
@@ -126,6 +127,11 @@ def test_report_renders_with_table_images_and_no_console_message(report, tmp_pat
     assert [row[1] for row in rows] == list(result.analogs["date"])
     assert len(content.images) == n_figures >= 1
     assert all(src.startswith("data:image/png;base64,") for src in content.images)
+    # Alt text describes each image's content (not just its caption): the grid names
+    # every analog day; the maps say where in degrees.
+    assert all(len(alt) > 80 for alt in content.alts), content.alts
+    assert any(all(date in alt for date in result.analogs["date"]) for alt in content.alts)
+    assert any("°N" in alt and "°W" in alt for alt in content.alts)
     assert not [link for link in content.links if link.startswith(("http:", "https:"))]
 
 

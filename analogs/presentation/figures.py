@@ -7,9 +7,11 @@ workflows gather the arrays (:func:`analogs.workflows.find.report_figures`,
 
 Every function returns a :class:`matplotlib.figure.Figure` attached to its own Agg
 canvas (no pyplot, so no global state changes and no display is needed); turn it
-into PNG bytes with :func:`figure_png`. Maps use plain latitude / longitude axes
-(the demo continent has no real coastline); coastlines are drawn only when cartopy
-and its Natural Earth files are already on disk (nothing is downloaded).
+into PNG bytes with :func:`figure_png`. Maps are latitude / longitude axes labelled in
+degrees W/E and N/S; every query map takes ``land``, a land-sea mask or land fraction
+on (lat, lon) (CF ``land_binary_mask`` / ``land_area_fraction``), and draws its 0.5
+contour; coastlines are drawn only when cartopy and its Natural Earth files are already
+on disk (nothing is downloaded).
 
 Colour maps: ``viridis`` / ``cividis`` (perceptually uniform) for amounts and
 probabilities, ``RdBu_r`` only for departures (anomalies and differences).
@@ -25,9 +27,11 @@ import pandas as pd
 import xarray as xr
 from matplotlib import colormaps
 from matplotlib.backends.backend_agg import FigureCanvasAgg
+from matplotlib.collections import LineCollection
 from matplotlib.colors import BoundaryNorm, ListedColormap
 from matplotlib.figure import Figure
 from matplotlib.patches import Polygon, Rectangle
+from matplotlib.ticker import FuncFormatter, MaxNLocator
 
 from analogs.constants import SEVERE_DEWPOINT_C, ZERO_CELSIUS_K
 from analogs.stages.diagnostics import dewpoint_from_specific_humidity
@@ -41,22 +45,51 @@ HEIGHT_INTERVAL_GPM = 60.0
 #: Marker of each event kind on maps, in the order kinds sort (then reused).
 EVENT_MARKERS = ("o", "^", "s", "D", "v", "P", "X")
 PLAIN_AXES_NOTE = "plain latitude-longitude axes (no coastlines drawn)"
+LAND_NOTE = "brown line: land-sea boundary from the archive's land-sea mask (0.5 contour)"
+#: Resolution of full-size figures and of the small maps of the analog grid, dots per inch.
+FIGURE_DPI = 90
+THUMBNAIL_DPI = 72
+#: Share of the largest smoothed density below which the density map is left blank.
+DENSITY_FLOOR = 0.02
+#: Columns of the analog grid.
+GRID_COLUMNS = 5
 
 
 # ---------------------------------------------------------------------- basics
 
-def new_figure(width=8.0, height=6.0) -> Figure:
-    """A Figure on its own Agg canvas (off-screen, independent of pyplot)."""
-    figure = Figure(figsize=(width, height), layout="constrained")
+def new_figure(width=8.0, height=6.0, *, layout=None) -> Figure:
+    """A Figure on its own Agg canvas (off-screen, independent of pyplot).
+
+    No layout engine by default: maps are placed by fixed margins, which is several
+    times faster to draw than a constrained layout (measured in
+    ``tests/benchmarks/bench_report.py``)."""
+    figure = Figure(figsize=(width, height), layout=layout)
     FigureCanvasAgg(figure)
     return figure
 
 
-def figure_png(figure: Figure, *, dpi=100) -> bytes:
-    """PNG bytes of ``figure``."""
+def figure_png(figure: Figure, *, dpi=None) -> bytes:
+    """PNG bytes of ``figure`` (at ``figure.png_dpi`` when the figure sets one, else
+    :data:`FIGURE_DPI`)."""
     buffer = io.BytesIO()
-    figure.savefig(buffer, format="png", dpi=dpi)
+    figure.savefig(buffer, format="png", dpi=dpi or getattr(figure, "png_dpi", FIGURE_DPI))
     return buffer.getvalue()
+
+
+def degrees_east_label(value, _position=None) -> str:
+    """``-100`` -> ``100°W``, ``20`` -> ``20°E`` (0 and 180 without a letter)."""
+    value = (float(value) + 180.0) % 360.0 - 180.0
+    if abs(value) < 1e-9 or abs(abs(value) - 180.0) < 1e-9:
+        return f"{abs(value):g}°"
+    return f"{abs(value):g}°{'W' if value < 0 else 'E'}"
+
+
+def degrees_north_label(value, _position=None) -> str:
+    """``35`` -> ``35°N``, ``-10`` -> ``10°S``, ``0`` -> ``0°``."""
+    value = float(value)
+    if abs(value) < 1e-9:
+        return "0°"
+    return f"{abs(value):g}°{'S' if value < 0 else 'N'}"
 
 
 def regime_colours(regimes) -> dict:
@@ -97,18 +130,72 @@ def _coastline_paths():
     return None
 
 
-def _map_axes(ax, lat, lon, region=None, *, coastlines=None):
-    """Plain lat/lon axes with a latitude-true aspect, the region drawn on them."""
+def _land_outline(ax, land, dx=0.0, dy=0.0, *, linewidth=0.9):
+    """The 0.5 contour of a land-sea mask or land fraction (lat, lon), shifted by
+    (dx, dy) degrees: where land meets sea on the archive's own grid."""
+    if land is None:
+        return
+    land = _plane(land, "land outline")
+    values = np.asarray(land.values, dtype=float)
+    if np.nanmin(values) < 0.5 < np.nanmax(values):
+        ax.contour(land["lon"].values + dx, land["lat"].values + dy, values, levels=[0.5],
+                   colors="#6b4f2a", linewidths=linewidth, zorder=2)
+
+
+def _map_axes(ax, lat, lon, region=None, *, coastlines=None, xticks=True, yticks=True,
+              small=False, land=None):
+    """Lat/lon axes with a latitude-true aspect, ticks labelled in degrees W/E and N/S,
+    the region drawn on them; ``xticks`` / ``yticks`` False leaves the labels off (inner
+    panels of a grid)."""
     ax.set_xlim(float(np.min(lon)), float(np.max(lon)))
     ax.set_ylim(float(np.min(lat)), float(np.max(lat)))
     ax.set_aspect(1.0 / np.cos(np.radians(float(np.mean(lat)))))
-    ax.set_xlabel("longitude (deg E)")
-    ax.set_ylabel("latitude (deg N)")
+    if small:
+        # Small maps: the degree lines as one collection (cheap), labels on the outer
+        # edge of the grid only; no tick objects on inner edges (they dominate the time).
+        xs = _degree_lines(lon, 4)
+        ys = _degree_lines(lat, 3)
+        ax.add_collection(LineCollection(
+            [[(x, np.min(lat)), (x, np.max(lat))] for x in xs]
+            + [[(np.min(lon), y), (np.max(lon), y)] for y in ys],
+            colors="0.8", linewidths=0.4, zorder=0))
+        ax.set_xticks(xs if xticks else [], [degrees_east_label(x) for x in xs] if xticks else [])
+        ax.set_yticks(ys if yticks else [], [degrees_north_label(y) for y in ys] if yticks else [])
+        ax.tick_params(labelsize=6, length=2, pad=1)
+    else:
+        ax.xaxis.set_major_locator(MaxNLocator(6, steps=[1, 2, 5, 10]))
+        ax.yaxis.set_major_locator(MaxNLocator(5, steps=[1, 2, 5, 10]))
+        ax.xaxis.set_major_formatter(FuncFormatter(degrees_east_label))
+        ax.yaxis.set_major_formatter(FuncFormatter(degrees_north_label))
+        ax.tick_params(labelsize=8)
     if coastlines:
         for line in coastlines:
             ax.plot(line[:, 0], line[:, 1], color="0.3", linewidth=0.6)
+    _land_outline(ax, land)
     if region is not None:
         _draw_region(ax, region)
+
+
+def _degree_lines(values, n):
+    """About ``n`` round degree values inside the span of ``values``."""
+    low, high = float(np.min(values)), float(np.max(values))
+    ticks = MaxNLocator(n, steps=[1, 2, 5, 10]).tick_values(low, high)
+    return [float(t) for t in ticks if low <= t <= high]
+
+
+def _region_outline(region):
+    """The region's outline as an (n, 2) array of (lon, lat), or None."""
+    if region.kind == "box":
+        return np.array([(region.west, region.south), (region.east, region.south),
+                         (region.east, region.north), (region.west, region.north),
+                         (region.west, region.south)])
+    if region.kind == "point":
+        # A circle of the radius in km, in degrees (1 deg lat = 111.2 km, from memory).
+        angle = np.linspace(0.0, 2.0 * np.pi, 73)
+        dlat = region.radius_km / 111.2
+        dlon = dlat / np.cos(np.radians(region.lat))
+        return np.c_[region.lon + dlon * np.cos(angle), region.lat + dlat * np.sin(angle)]
+    return None
 
 
 def _draw_region(ax, region):
@@ -127,8 +214,11 @@ def _draw_region(ax, region):
                              label="region"))
 
 
-def _note_plain_axes(figure, coastlines):
-    if not coastlines:
+def _note_plain_axes(figure, coastlines, land=None):
+    if land is not None:
+        figure.text(0.995, 0.003, LAND_NOTE, ha="right", va="bottom", fontsize=7,
+                    color="0.35")
+    elif not coastlines:
         figure.text(0.995, 0.003, PLAIN_AXES_NOTE, ha="right", va="bottom", fontsize=7,
                     color="0.35")
 
@@ -197,7 +287,8 @@ def _events_on_map(ax, events, day, kinds):
 
 # ------------------------------------------------------------------ query maps
 
-def target_map(fields: xr.Dataset, *, region=None, when="target", source=None) -> Figure:
+def target_map(fields: xr.Dataset, *, region=None, when="target", source=None,
+               land=None) -> Figure:
     """500 hPa height contours over moisture shading, with the 60 F dewpoint line.
 
     ``fields`` is one day on (lat, lon) with ``z500`` (gpm) and optionally a moisture
@@ -208,26 +299,28 @@ def target_map(fields: xr.Dataset, *, region=None, when="target", source=None) -
     if "z500" not in fields:
         raise AnalogsInputError("target_map needs a 'z500' field (500 hPa height, gpm)")
     figure = new_figure(8.0, 6.0)
+    figure.subplots_adjust(left=0.08, right=0.97, bottom=0.06, top=0.86)
     ax = figure.add_subplot()
     coastlines = _coastline_paths()
     label = _moisture_layer(figure, ax, fields)
     _height_contours(ax, fields["z500"])
-    _map_axes(ax, fields["lat"].values, fields["lon"].values, region, coastlines=coastlines)
+    _map_axes(ax, fields["lat"].values, fields["lon"].values, region, coastlines=coastlines,
+              land=land)
     title = f"{when}: 500 hPa height (contours every {HEIGHT_INTERVAL_GPM:.0f} gpm)"
     if label:
         title += f"\nover {label.split(' (')[0]}; white line: dewpoint {SEVERE_DEWPOINT_C:.1f} deg C (60 F)"
     if source:
         title += f"\n[{source}]"
     ax.set_title(title, fontsize=10)
-    _note_plain_axes(figure, coastlines)
+    _note_plain_axes(figure, coastlines, land)
     return figure
 
 
 def analog_panel(analog_fields: xr.Dataset, analogs: pd.DataFrame, events=None, *,
-                 region=None, title=None) -> Figure:
-    """One map per analog day drawn: height contours and that day's events by kind
-    (distinct markers); the rank, date, regime, distance and the table's event count in
-    each map's title.
+                 region=None, title=None, columns=GRID_COLUMNS, land=None) -> Figure:
+    """Every analog day as a small map in a compact grid: height contours and that
+    day's events by kind (distinct markers); rank, date, regime, distance and the
+    table's event count (events in the outcome region) above each map.
 
     Parameters
     ----------
@@ -239,6 +332,7 @@ def analog_panel(analog_fields: xr.Dataset, analogs: pd.DataFrame, events=None, 
         ``day``, the convective day), or None for no markers.
     region : the outcome region, drawn on every map.
     title : the figure's title.
+    columns : maps per row.
     """
     if len(analogs) == 0:
         raise AnalogsInputError("analog_panel needs at least one analog row")
@@ -250,36 +344,109 @@ def analog_panel(analog_fields: xr.Dataset, analogs: pd.DataFrame, events=None, 
             f"analog_panel got {analog_fields.sizes['analog']} analog fields for "
             f"{len(analogs)} analog rows; pass the fields of the rows drawn")
     kinds = sorted(events["kind"].astype(str).unique()) if events is not None else []
-    columns = min(3, len(analogs))
+    columns = min(columns, len(analogs))
     rows = int(np.ceil(len(analogs) / columns))
-    figure = new_figure(4.2 * columns, 3.6 * rows + 0.6)
-    coastlines = _coastline_paths()
     lat, lon = analog_fields["lat"].values, analog_fields["lon"].values
+    lat0, lon0 = float(np.min(lat)), float(np.min(lon))
+    span_x, span_y = float(np.ptp(lon)), float(np.ptp(lat))
+    squeeze = np.cos(np.radians(float(np.mean(lat))))
+    # All small maps on ONE axes (one axes is drawn far faster than twenty): panel
+    # (row, column) is the map shifted by (column * step_x, -row * step_y) degrees.
+    step_x, step_y = span_x * 1.08, span_y * 1.42
+    panel_w = 2.3                                        # inches per panel
+    scale = panel_w / step_x                             # inches per degree of longitude
+    head, foot, side = 0.45, 0.7, 0.45
+    # At least 7 inches wide so that the title and the legend fit a grid of one or two.
+    width = max(panel_w * columns + side, 7.0)
+    height = step_y * rows * scale / squeeze + head + foot
+    figure = new_figure(width, height)
+    figure.png_dpi = THUMBNAIL_DPI
+    ax = figure.add_axes([max(side, (width - panel_w * columns) / 2) / width, foot / height,
+                          panel_w * columns / width, (height - head - foot) / height])
+    ax.set_axis_off()
+    ax.set_xlim(-0.04 * span_x, columns * step_x - 0.04 * span_x)
+    ax.set_ylim(-(rows - 1) * step_y - 0.02 * span_y, span_y + 0.40 * span_y)
+    ax.set_aspect(1.0 / squeeze)
+    coastlines = _coastline_paths()
+    z = analog_fields["z500"].transpose("analog", "lat", "lon").values
+    low = HEIGHT_INTERVAL_GPM * np.floor(np.nanmin(z) / HEIGHT_INTERVAL_GPM)
+    high = HEIGHT_INTERVAL_GPM * np.ceil(np.nanmax(z) / HEIGHT_INTERVAL_GPM)
+    levels = np.arange(low, high + HEIGHT_INTERVAL_GPM, HEIGHT_INTERVAL_GPM)
+    xs, ys = _degree_lines(lon, 4), _degree_lines(lat, 3)
+    outline = _region_outline(region) if region is not None else None
+    frames, graticule, regions, offsets = [], [], [], []
     for i, analog in enumerate(analogs.itertuples(index=False)):
-        ax = figure.add_subplot(rows, columns, i + 1)
-        _height_contours(ax, analog_fields["z500"].isel(analog=i), colour="0.25", labels=False)
-        _events_on_map(ax, events, analog.date, kinds)
-        _map_axes(ax, lat, lon, region, coastlines=coastlines)
+        row, column = divmod(i, columns)
+        dx, dy = column * step_x - lon0, -row * step_y - lat0
+        offsets.append((dx, dy))
+        ax.contour(lon + dx, lat + dy, z[i], levels=levels, colors="0.25", linewidths=0.6)
+        left, bottom = lon0 + dx, lat0 + dy
+        frames.append([(left, bottom), (left + span_x, bottom), (left + span_x, bottom + span_y),
+                       (left, bottom + span_y), (left, bottom)])
+        graticule += [[(x + dx, bottom), (x + dx, bottom + span_y)] for x in xs]
+        graticule += [[(left, y + dy), (left + span_x, y + dy)] for y in ys]
+        if outline is not None:
+            regions.append(outline + (dx, dy))
+        _land_outline(ax, land, dx, dy, linewidth=0.6)
+        if coastlines:
+            clip = Rectangle((left, bottom), span_x, span_y, transform=ax.transData)
+            for line in coastlines:
+                ax.plot(line[:, 0] + dx, line[:, 1] + dy, color="0.3", linewidth=0.4,
+                        clip_path=clip)
         count = int(analog.events_total)
-        ax.set_title(f"#{analog.rank} {analog.date} - {analog.regime}\n"
-                     f"distance {analog.distance:.2f}, {count} event{'s' * (count != 1)} "
-                     "in region", fontsize=9)
+        ax.text(left, bottom + span_y * 1.02,
+                f"#{analog.rank} {analog.date} {analog.regime}\n"
+                f"d {analog.distance:.2f}, {count} event{'s' * (count != 1)} in region",
+                fontsize=6.5, va="bottom", ha="left", gid=f"analog-{analog.rank}")
+        if row == rows - 1 or i + columns >= len(analogs):
+            for x in xs:
+                ax.text(x + dx, bottom - 0.03 * span_y, degrees_east_label(x), fontsize=6,
+                        ha="center", va="top", color="0.3")
+        if column == 0:
+            for y in ys:
+                ax.text(left - 0.01 * span_x, y + dy, degrees_north_label(y), fontsize=6,
+                        ha="right", va="center", color="0.3")
+    ax.add_collection(LineCollection(graticule, colors="0.82", linewidths=0.4, zorder=0))
+    ax.add_collection(LineCollection(frames, colors="0.2", linewidths=0.7, zorder=1))
+    if regions:
+        ax.add_collection(LineCollection(regions, colors="black", linewidths=1.1,
+                                         linestyles="--", zorder=4, label="region"))
+    if events is not None and len(events):
+        day = pd.to_datetime(events["day"]).dt.normalize()
+        by_day = dict(zip(pd.to_datetime(analogs["date"]).dt.normalize(), offsets))
+        shift = np.array([by_day.get(d, (np.nan, np.nan)) for d in day]).reshape(-1, 2)
+        inside = (events["lon"].between(lon0, lon0 + span_x)
+                  & events["lat"].between(lat0, lat0 + span_y)).to_numpy()
+        for k, kind in enumerate(kinds):
+            keep = ((events["kind"].astype(str) == kind).to_numpy() & inside
+                    & np.isfinite(shift[:, 0]))
+            ax.scatter(events["lon"].to_numpy()[keep] + shift[keep, 0],
+                       events["lat"].to_numpy()[keep] + shift[keep, 1],
+                       marker=EVENT_MARKERS[k % len(EVENT_MARKERS)], s=9,
+                       facecolor=_kind_colour(k, len(kinds)), edgecolor="black",
+                       linewidths=0.3, label=kind, zorder=5)
     if kinds:
-        handles = [figure.axes[0].scatter([], [], marker=EVENT_MARKERS[i % len(EVENT_MARKERS)],
-                                          facecolor=colormaps["plasma"](
-                                              0.15 + 0.7 * i / max(len(kinds) - 1, 1)),
-                                          edgecolor="black", label=kind)
-                   for i, kind in enumerate(kinds)]
-        figure.legend(handles=handles, loc="outside lower center", ncols=len(kinds),
-                      title="events of the day, anywhere on the map (convective day)")
+        handles = [ax.scatter([], [], marker=EVENT_MARKERS[k % len(EVENT_MARKERS)],
+                              facecolor=_kind_colour(k, len(kinds)), edgecolor="black",
+                              label=kind)
+                   for k, kind in enumerate(kinds)]
+        figure.legend(handles=handles, loc="lower center", ncols=len(kinds), fontsize=7,
+                      title_fontsize=7, frameon=False,
+                      title="events of the day, anywhere on the map (convective day); "
+                            f"contours every {HEIGHT_INTERVAL_GPM:.0f} gpm")
     if title:
-        figure.suptitle(title, fontsize=11)
-    _note_plain_axes(figure, coastlines)
+        figure.suptitle(title, fontsize=9, y=1.0 - 0.08 / height)
+    figure.panel_offsets = offsets  # degrees (lon, lat) each analog's map is shifted by
+    _note_plain_axes(figure, coastlines, land)
     return figure
 
 
+def _kind_colour(index, n_kinds):
+    return colormaps["plasma"](0.15 + 0.7 * index / max(n_kinds - 1, 1))
+
+
 def composite_difference(mean_fields: xr.Dataset, target_fields: xr.Dataset, *,
-                         region=None, title=None) -> Figure:
+                         region=None, title=None, land=None) -> Figure:
     """Left: a mean of the analog days (height contours over moisture); right: that
     mean minus the target's 500 hPa height (shaded), target contours on top.
 
@@ -302,11 +469,12 @@ def composite_difference(mean_fields: xr.Dataset, target_fields: xr.Dataset, *,
         raise AnalogsInputError("composite_difference needs the mean and the target on one "
                                 "grid; regrid the target to the analogs' grid first")
     figure = new_figure(13.0, 5.4)
+    figure.subplots_adjust(left=0.05, right=0.97, bottom=0.07, top=0.82, wspace=0.15)
     coastlines = _coastline_paths()
     left, right = figure.add_subplot(1, 2, 1), figure.add_subplot(1, 2, 2)
     _moisture_layer(figure, left, mean_fields)
     _height_contours(left, mean_height)
-    _map_axes(left, lat, lon, region, coastlines=coastlines)
+    _map_axes(left, lat, lon, region, coastlines=coastlines, land=land)
     n_days = mean_fields.attrs.get("n_days")
     days = f"{int(n_days)} analog days" if n_days else "the analog days"
     left.set_title(f"mean of {days}:\n500 hPa height and moisture", fontsize=10)
@@ -317,38 +485,57 @@ def composite_difference(mean_fields: xr.Dataset, target_fields: xr.Dataset, *,
     figure.colorbar(mesh, ax=right, label="analog mean minus target, 500 hPa height (gpm)",
                     shrink=0.85)
     _height_contours(right, target_height, colour="0.2")
-    _map_axes(right, lat, lon, region, coastlines=coastlines)
+    _map_axes(right, lat, lon, region, coastlines=coastlines, land=land)
     right.set_title("analog mean minus target\ncontours: target 500 hPa height", fontsize=10)
     if title:
         figure.suptitle(title, fontsize=11)
-    _note_plain_axes(figure, coastlines)
+    _note_plain_axes(figure, coastlines, land)
     return figure
 
 
-def probability_map(maps: xr.Dataset, *, region=None, when="target") -> Figure:
-    """Neighbourhood probability of the analog days (from
-    :func:`analogs.stages.outcomes.outcome_maps`) in percent, fixed 0-100 scale."""
+def probability_map(maps: xr.Dataset, *, region=None, when="target", land=None) -> Figure:
+    """Left: the neighbourhood probability of the analog days (from
+    :func:`analogs.stages.outcomes.outcome_maps`) in percent on a fixed 0-100 scale, cells
+    of zero left blank so that every non-zero cell shows; right: the smoothed report
+    density (events per grid cell per analog day), zero left blank."""
     if "neighbourhood_probability" not in maps:
         raise AnalogsInputError("probability_map needs the Dataset of "
                                 "analogs.stages.outcomes.outcome_maps")
     probability = _plane(maps["neighbourhood_probability"], "probability_map")
+    lat, lon = probability["lat"].values, probability["lon"].values
     radius = probability.attrs.get("radius_km")
-    figure = new_figure(8.0, 6.0)
-    ax = figure.add_subplot()
+    density = (_plane(maps["report_density"], "probability_map")
+               if "report_density" in maps else None)
+    figure = new_figure(13.0 if density is not None else 8.0, 4.6)
+    figure.subplots_adjust(left=0.05, right=0.97, bottom=0.07, top=0.88, wspace=0.15)
     coastlines = _coastline_paths()
+    ax = figure.add_subplot(1, 2 if density is not None else 1, 1)
     levels = np.arange(0.0, 101.0, 10.0)
     norm = BoundaryNorm(levels, colormaps["viridis"].N)
-    mesh = ax.pcolormesh(probability["lon"].values, probability["lat"].values,
-                         100.0 * probability.values, cmap="viridis", norm=norm, shading="nearest")
+    percent = 100.0 * probability.values
+    mesh = ax.pcolormesh(lon, lat, np.ma.masked_less_equal(percent, 0.0), cmap="viridis",
+                         norm=norm, shading="nearest")
     near = f"within {radius:g} km" if radius else "nearby"
     figure.colorbar(mesh, ax=ax, label=f"share of analog days with an event {near} (%)",
                     shrink=0.85)
-    _map_axes(ax, probability["lat"].values, probability["lon"].values, region,
-              coastlines=coastlines)
+    _map_axes(ax, lat, lon, region, coastlines=coastlines, land=land)
     n = maps.attrs.get("n_analog_days")
     ax.set_title(f"Where the analog days of {when} had events nearby"
-                 + (f" ({n} days)" if n else ""), fontsize=10)
-    _note_plain_axes(figure, coastlines)
+                 + (f" ({n} days)" if n else "") + "\nblank: no analog day had one",
+                 fontsize=10)
+    if density is not None:
+        right = figure.add_subplot(1, 2, 2)
+        top = float(np.nanmax(density.values)) if np.nanmax(density.values) > 0 else 1.0
+        values = np.ma.masked_less(density.values, DENSITY_FLOOR * top)
+        shaded = right.pcolormesh(lon, lat, values, cmap="cividis", vmin=0.0, vmax=top,
+                                  shading="nearest")
+        figure.colorbar(shaded, ax=right, shrink=0.85,
+                        label="events per grid cell per analog day (smoothed)")
+        _map_axes(right, lat, lon, region, coastlines=coastlines, land=land)
+        right.set_title("Smoothed density of the analog days' events\n"
+                        f"blank: below {100 * DENSITY_FLOOR:g} % of the largest value",
+                        fontsize=10)
+    _note_plain_axes(figure, coastlines, land)
     return figure
 
 
@@ -360,7 +547,7 @@ def reliability_diagram(reliability, *, title_suffix="") -> Figure:
     table = pd.DataFrame(list(reliability))
     if table.empty:
         raise AnalogsInputError("reliability_diagram needs at least one reliability bin")
-    figure = new_figure(6.0, 7.0)
+    figure = new_figure(6.0, 7.0, layout="constrained")
     top = figure.add_subplot(4, 1, (1, 3))
     bottom = figure.add_subplot(4, 1, 4, sharex=top)
     top.plot([0, 1], [0, 1], color="0.5", linestyle="--", label="perfect reliability")
@@ -385,7 +572,7 @@ def roc_diagram(false_alarm_rate, hit_rate, *, title_suffix="") -> Figure:
     false_alarm_rate = np.asarray(false_alarm_rate, dtype=float)
     hit_rate = np.asarray(hit_rate, dtype=float)
     area = float(np.trapezoid(hit_rate, false_alarm_rate))
-    figure = new_figure(6.0, 6.0)
+    figure = new_figure(6.0, 6.0, layout="constrained")
     ax = figure.add_subplot()
     ax.plot([0, 1], [0, 1], color="0.5", linestyle="--", label="no skill")
     ax.plot(false_alarm_rate, hit_rate, marker=".", color=colormaps["viridis"](0.3),
@@ -418,7 +605,7 @@ def regime_calendar(tags: pd.DataFrame, *, title_suffix="") -> Figure:
     colours = regime_colours(regimes)
     cmap = ListedColormap([colours[r] for r in regimes])
     norm = BoundaryNorm(np.arange(len(regimes) + 1) - 0.5, len(regimes))
-    figure = new_figure(11.0, 1.6 + 0.28 * years.size)
+    figure = new_figure(11.0, 1.6 + 0.28 * years.size, layout="constrained")
     ax = figure.add_subplot()
     image = ax.imshow(grid, aspect="auto", cmap=cmap, norm=norm, interpolation="nearest",
                       extent=(0.5, 366.5, years[-1] + 0.5, years[0] - 0.5))
@@ -448,7 +635,7 @@ def monthly_frequency_chart(frequency: pd.DataFrame, *, title_suffix="") -> Figu
     regimes = _ordered_regimes(shares.columns)
     colours = regime_colours(regimes)
     totals = frequency.groupby("month")[f"{unit}_tagged"].first()
-    figure = new_figure(9.0, 5.0)
+    figure = new_figure(9.0, 5.0, layout="constrained")
     ax = figure.add_subplot()
     months = shares.index.to_numpy()
     base = np.zeros(months.size)
@@ -480,7 +667,7 @@ def composite_maps(composites: xr.Dataset, *, region=None) -> Figure:
     limit = float(np.nanmax(np.abs(anomaly.values))) or 1.0
     columns = min(2, len(present))
     rows = int(np.ceil(len(present) / columns))
-    figure = new_figure(6.0 * columns + 1.0, 4.4 * rows + 0.6)
+    figure = new_figure(6.0 * columns + 1.0, 4.4 * rows + 0.6, layout="constrained")
     coastlines = _coastline_paths()
     lat, lon = composites["lat"].values, composites["lon"].values
     axes, mesh = [], None
@@ -509,7 +696,7 @@ def outcome_chart(outcomes: pd.DataFrame, *, title_suffix="") -> Figure:
         raise AnalogsInputError("outcome_chart needs the table of outcomes_by_regime_and_month")
     regimes = _ordered_regimes(outcomes["regime"])
     colours = regime_colours(regimes)
-    figure = new_figure(9.0, 5.0)
+    figure = new_figure(9.0, 5.0, layout="constrained")
     ax = figure.add_subplot()
     for offset, regime in zip(np.linspace(-0.2, 0.2, len(regimes)), regimes):
         part = outcomes[outcomes["regime"] == regime]

@@ -475,8 +475,8 @@ def find_html(result, manifest: dict, figures: list[tuple[str, bytes]] = ()) -> 
                          + html_table(outcome_rows, ["statistic", "analogs", "season climatology"],
                                       left=("statistic",))
                          + f"<p>{html.escape(skill_line(outcomes.get('skill')))}</p>"))
-    for caption, png in figures:
-        sections.append((caption, embed_png(png, caption)))
+    for caption, png, *alt in figures:  # (caption, PNG bytes[, alt text])
+        sections.append((caption, embed_png(png, alt[0] if alt else caption)))
     sections.append(("Settings", "<pre>" + html.escape(json.dumps(data["settings"], indent=2)) + "</pre>"))
     provenance = {"archive": manifest.get("archive"), "config": manifest.get("config"),
                   "events": manifest.get("events")}
@@ -634,8 +634,8 @@ def briefing_html(tables: dict, figures, manifest: dict, settings: dict) -> str:
         frame = _readable(name, frame)
         sections.append((heading, f"<p>{html.escape(note)}</p><div style=\"overflow-x:auto\">"
                          + html_frame(frame, left=("regime", "reason", "date")) + "</div>"))
-    for caption, png in figures:
-        sections.append((caption, embed_png(png, caption)))
+    for caption, png, *alt in figures:  # (caption, PNG bytes[, alt text])
+        sections.append((caption, embed_png(png, alt[0] if alt else caption)))
     sections.append(("Cross-validated skill of this store", _skill_section(manifest.get("skill"))))
     provenance = {"archive": manifest.get("archive"), "config": manifest.get("config"),
                   "events": manifest.get("events")}

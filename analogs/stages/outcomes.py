@@ -905,13 +905,20 @@ def _events_on_days(events, days):
     return lat[rows], lon[rows], positions
 
 
+def _unit_vectors(lat, lon) -> np.ndarray:
+    """(n, 3) unit vectors of points at ``lat``, ``lon`` (degrees)."""
+    phi, lam = np.radians(np.asarray(lat, float)), np.radians(np.asarray(lon, float))
+    return np.column_stack([np.cos(phi) * np.cos(lam), np.cos(phi) * np.sin(lam), np.sin(phi)])
+
+
 def neighbourhood_probability(events, analog_days, lat, lon, radius_km=NEIGHBOURHOOD_KM,
                               weights=None) -> xr.DataArray:
     """Fraction of analog days with at least one event within ``radius_km`` of each point.
 
     Distances are great-circle (haversine on the sphere of
     :data:`analogs.constants.EARTH_RADIUS`, as :func:`analogs.geo.great_circle_km`),
-    found with a scikit-learn ``BallTree`` over the grid points.
+    found with a scipy ``cKDTree`` over the grid points as unit vectors (the chord
+    ``2 sin(d / 2a)`` stands for the great-circle distance ``d``).
     With ``weights`` (one per analog day) the fraction is the weighted share.
     A day listed twice counts twice.
 
@@ -927,13 +934,17 @@ def neighbourhood_probability(events, analog_days, lat, lon, radius_km=NEIGHBOUR
     hit = np.zeros((days.size, lat.size * lon.size), dtype=bool)
     if ev_lat.size:
         lat2d, lon2d = np.meshgrid(lat, lon, indexing="ij")
-        from sklearn.neighbors import BallTree  # imported here: slow to import, maps only
+        # scipy's k-d tree on unit vectors (imported here: maps only; far quicker to
+        # import than scikit-learn): a great-circle distance d on the sphere of radius a
+        # is the chord 2 sin(d / 2a) between unit vectors, monotonic in d, so the points
+        # within the chord are those within d (as analogs.geo.great_circle_km).
+        from scipy.spatial import cKDTree
 
-        tree = BallTree(np.radians(np.column_stack([lat2d.ravel(), lon2d.ravel()])),
-                        metric="haversine")
-        # Haversine on the sphere of EARTH_RADIUS, as analogs.geo.great_circle_km.
-        near = tree.query_radius(np.radians(np.column_stack([ev_lat, ev_lon])),
-                                 r=radius_km * 1000.0 / EARTH_RADIUS)
+        tree = cKDTree(_unit_vectors(lat2d.ravel(), lon2d.ravel()))
+        chord = 2.0 * np.sin(min(radius_km * 1000.0 / EARTH_RADIUS, np.pi) / 2.0)
+        near = tree.query_ball_point(_unit_vectors(ev_lat, ev_lon), r=chord,
+                                     return_sorted=False)
+        near = [np.asarray(idx, dtype=int) for idx in near]
         sizes = np.fromiter((idx.size for idx in near), dtype=int, count=len(near))
         if sizes.sum():
             hit[np.repeat(positions, sizes), np.concatenate(near)] = True

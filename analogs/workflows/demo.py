@@ -126,7 +126,7 @@ def run_demo(out, *, years=P.years.default, seed=P.seed.default, replace=False,
 
 
 def _query_with_figures(store, date):
-    """The demo's query and its report figures, (caption, PNG bytes), through the find
+    """The demo's query and its report figures, (caption, PNG bytes, alt text), through the find
     workflow (the target's fields gathered once)."""
     from analogs.workflows import find as find_workflow
     result = find_workflow.find(store, date=date)

@@ -4,7 +4,7 @@
 >>> from analogs.workflows.find import find, report_figures
 >>> store = AnalogStore.load("store")
 >>> result = find(store, field="forecast.nc", top=20)     # same as store.find(...)
->>> figures = report_figures(store, result)                # [(caption, PNG bytes), ...]
+>>> figures = report_figures(store, result)                # [(caption, PNG bytes, alt text), ...]
 
 Data flow of a query:
 
@@ -63,8 +63,6 @@ from analogs.stages.selection import candidate_ids, find_analogs
 WEIGHT_SCHEMES = P.weights.choices
 #: Weight of the day ``lag`` days before the target in a sequence match: 0.5 ** lag.
 SEQUENCE_DECAY = 0.5
-#: Analog days drawn one by one in the report's panel.
-PANEL_ANALOGS = 6
 #: Largest share of the store grid a field target may leave without values (outside
 #: its file, or missing in it); up to it the target is projected by least squares on
 #: the covered points (Everson & Sirovich 1995), above it the target is refused.
@@ -923,16 +921,37 @@ def day_fields(store, rows) -> xr.Dataset:
     return fields
 
 
+def _place(values, lat, lon) -> str:
+    """Where the largest of ``values`` (lat, lon) is, in degrees N/S and W/E."""
+    from analogs.presentation.figures import degrees_east_label, degrees_north_label
+    i, j = np.unravel_index(int(np.nanargmax(values)), np.shape(values))
+    return f"{degrees_north_label(lat[i])} {degrees_east_label(lon[j])}"
+
+
+def _alt_target(target, when, source) -> str:
+    z = target["z500"].values
+    lat, lon = target["lat"].values, target["lon"].values
+    text = (f"Map of {when} ({source}): 500 hPa height contours every 60 gpm from "
+            f"{np.nanmin(z):.0f} to {np.nanmax(z):.0f} gpm, highest near {_place(z, lat, lon)}, "
+            f"lowest near {_place(-z, lat, lon)}")
+    moisture = next((name for name in ("q850", "td2m", "pwat") if name in target), None)
+    if moisture:
+        m = target[moisture].values
+        text += (f"; {moisture} shaded (viridis), most moist near {_place(m, lat, lon)}")
+    return text + "; the outcome region dashed."
+
+
 def report_figures(store, result: FindResult, *, maps=None, hindcast=None,
-                   n_panel=PANEL_ANALOGS) -> list[tuple[str, bytes]]:
-    """Figures of one query, as (caption, PNG bytes) for
-    :func:`analogs.presentation.report.find_html`.
+                   n_panel=None) -> list[tuple[str, bytes, str]]:
+    """Figures of one query, as (caption, PNG bytes, alt text describing the content)
+    for :func:`analogs.presentation.report.find_html`.
 
     Everything is gathered once: the target's fields (``result.target_fields`` for a
     field target; for a date target its store reconstruction), the analog days' fields
     (:func:`day_fields`: one climatology evaluation and one EOF reconstruction for the
     target day and all analog days together), their mean, the events of the days drawn
     and the outcome maps (``maps`` when already computed, e.g. for ``--maps``).
+    Every analog is drawn in the grid unless ``n_panel`` limits it.
     ``hindcast``: optional DataFrame of :func:`analogs.stages.hindcast.leave_one_year_out`
     for the reliability and ROC figures.
     """
@@ -959,41 +978,110 @@ def report_figures(store, result: FindResult, *, maps=None, hindcast=None,
     figures = []
     if target is not None:
         figures.append((f"Target {when}: 500 hPa height and moisture ({source})",
-                        draw.target_map(target, region=region, when=f"Target {when}",
-                                        source=source)))
+                        _later(draw.target_map, target, region=region,
+                               when=f"Target {when}", source=source),
+                        _alt_target(target, f"target {when}", source)))
     if len(analogs):
         gathered = gathered.assign_coords(analog=analogs["rank"].to_numpy())
-        shown = analogs.head(n_panel)
+        shown = analogs if n_panel is None else analogs.head(n_panel)
         days = pd.to_datetime(shown["date"])
         events = None
         if store.events is not None:
             events = store.events[store.events["day"].isin(days)]
+        alt = (f"Grid of {len(shown)} small maps of 500 hPa height, one per analog day in "
+               "rank order, with that day's events marked by kind: "
+               + "; ".join(f"#{a.rank} {a.date} {a.regime}, distance {a.distance:.2f}, "
+                           f"{int(a.events_total)} events in region"
+                           for a in shown.itertuples(index=False)) + ".")
         figures.append(("The closest past days and their events",
-                        draw.analog_panel(gathered.isel(analog=slice(0, len(shown))), shown,
-                                          events, region=region,
-                                          title=f"Closest past days to {when}: 500 hPa height "
-                                                "(climatology + EOF reconstruction, every "
-                                                f"{draw.HEIGHT_INTERVAL_GPM:.0f} gpm)")))
+                        _later(draw.analog_panel, gathered.isel(analog=slice(0, len(shown))),
+                               shown, events, region=region,
+                               title=f"Closest past days to {when}: 500 hPa height "
+                                     "(climatology + EOF reconstruction)"),
+                        alt))
         if target is not None:
             mean = gathered.mean("analog", keep_attrs=True).drop_vars("time", errors="ignore")
             mean.attrs["n_days"] = int(len(analogs))
+            difference = mean["z500"].values - target["z500"].values
+            lat, lon = mean["lat"].values, mean["lon"].values
             figures.append(("Mean of the analog days and its difference from the target",
-                            draw.composite_difference(
-                                mean, target, region=region,
-                                title=f"Analog days and target {when} (analogs: climatology "
-                                      f"+ anomaly on {store.eof.n_modes_} kept EOFs; target: "
-                                      f"{source})")))
+                            _later(draw.composite_difference, mean, target, region=region,
+                                   title=f"Analog days and target {when} (analogs: "
+                                         f"climatology + anomaly on {store.eof.n_modes_} kept "
+                                         f"EOFs; target: {source})"),
+                            f"Two maps. Left: mean 500 hPa height and moisture of the "
+                            f"{len(analogs)} analog days. Right: that mean minus the target's "
+                            f"height, shaded blue to red from {np.nanmin(difference):.0f} to "
+                            f"{np.nanmax(difference):+.0f} gpm (most above the target near "
+                            f"{_place(difference, lat, lon)}, most below near "
+                            f"{_place(-difference, lat, lon)}), target contours on top."))
         if store.events is not None:
             maps = outcome_maps(store, result) if maps is None else maps
+            p = 100.0 * maps["neighbourhood_probability"].values
+            lat, lon = maps["lat"].values, maps["lon"].values
+            nonzero = int(np.count_nonzero(p > 0))
+            alt = (f"Two maps of the {len(analogs)} analog days' events. Left: share of analog "
+                   f"days with an event nearby, non-zero in {nonzero} grid cells"
+                   + (f", at most {np.nanmax(p):.0f} % near {_place(p, lat, lon)}"
+                      if nonzero else "") + ". Right: smoothed event density"
+                   + (f", largest near {_place(maps['report_density'].values, lat, lon)}"
+                      if nonzero else "") + "; zero left blank on both.")
             figures.append(("Where the analog days had events nearby",
-                            draw.probability_map(maps, region=region, when=when)))
+                            _later(draw.probability_map, maps, region=region, when=when), alt))
     if hindcast is not None:
         from analogs.stages.scores import reliability_table, roc_curve_points
         p = hindcast["forecast"].to_numpy()
         o = hindcast["observed"].to_numpy()
         figures.append(("Reliability of past analog guidance",
-                        draw.reliability_diagram(reliability_table(p, o))))
+                        _later(draw.reliability_diagram, reliability_table(p, o)),
+                        f"Reliability diagram of {p.size} hindcast probabilities: observed "
+                        "frequency against forecast probability, diagonal for perfect "
+                        "reliability, forecasts per bin below."))
         if 0 < o.sum() < o.size:
             figures.append(("ROC of past analog guidance",
-                            draw.roc_diagram(*roc_curve_points(p, o)[:2])))
-    return [(caption, draw.figure_png(figure)) for caption, figure in figures]
+                            _later(draw.roc_diagram, *roc_curve_points(p, o)[:2]),
+                            f"ROC curve of {p.size} hindcast probabilities: hit rate "
+                            "against false alarm rate, with its area in the legend."))
+    pngs = _draw_all([job for _, job, _ in figures])
+    return [(caption, png, alt) for (caption, _, alt), png in zip(figures, pngs)]
+
+
+#: Figures waiting to be drawn by :func:`_draw_all` (read by forked workers, which
+#: inherit it: nothing but the PNG bytes travels between processes).
+_PENDING: list = []
+
+
+def _later(function, *args, **kwargs):
+    """A figure to draw later: (figure function, arguments)."""
+    return function, args, kwargs
+
+
+def _draw_one(index: int) -> bytes:
+    from analogs.presentation.figures import figure_png
+    function, args, kwargs = _PENDING[index]
+    return figure_png(function(*args, **kwargs))
+
+
+def _draw_all(jobs) -> list[bytes]:
+    """PNG bytes of every job, drawn in two forked processes when the machine has more
+    than one core and the platform forks (the figures are independent; measured in
+    tests/benchmarks/bench_report.py), else one after the other."""
+    import multiprocessing
+    import os
+    global _PENDING
+    workers = min(len(jobs), len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity")
+                  else os.cpu_count() or 1, 2)
+    if workers < 2 or "fork" not in multiprocessing.get_all_start_methods():
+        _PENDING = list(jobs)
+        try:
+            return [_draw_one(i) for i in range(len(jobs))]
+        finally:
+            _PENDING = []
+    from concurrent.futures import ProcessPoolExecutor
+    import analogs.presentation.figures  # noqa: F401  imported once, before the fork
+    _PENDING = list(jobs)
+    try:
+        with ProcessPoolExecutor(workers, mp_context=multiprocessing.get_context("fork")) as pool:
+            return list(pool.map(_draw_one, range(len(jobs))))
+    finally:
+        _PENDING = []

@@ -1,0 +1,104 @@
+"""How much the HTML report adds to a query: ``find --report`` against ``find --json``.
+
+Builds a demo store (reanalysis_demo, ``--years`` years) under ``--out`` (reused when
+present), then times both commands as separate processes on the same query (a date
+target and a field target written from the archive), ``--runs`` times each, and prints
+the medians and their ratio. Also times ``report_figures`` in process (median of the same
+number of runs, after one warm-up), the part of the report that is drawing.
+
+    python tests/benchmarks/bench_report.py --out /tmp/analogs-bench-report
+
+The issue's goal: ``find --report`` at most about twice ``find --json``.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import statistics
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+ROOT = Path(__file__).resolve().parents[2]
+
+
+def make_store(out: Path, years: int) -> Path:
+    import reanalysis_demo
+    from analogs.api import build_store
+    from analogs.stages.outcomes import Region
+    store = out / "store"
+    if (store / "manifest.json").exists():
+        return store
+    reanalysis_demo.write_archive(out, years=years, seed=11, progress=False)
+    build_store(sorted((out / "archive").glob("*.nc")), store, events=out / "events.csv",
+                region=Region.box(*reanalysis_demo.CENTRAL_REGION), progress=False)
+    return store
+
+
+def timed(command) -> float:
+    env = dict(os.environ, PYTHONPATH=str(ROOT), MPLBACKEND="Agg")
+    start = time.perf_counter()
+    subprocess.run(command, check=True, env=env, stdout=subprocess.DEVNULL,
+                   stderr=subprocess.DEVNULL)
+    return time.perf_counter() - start
+
+
+def main(argv=None) -> int:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--out", type=Path,
+                        default=Path(tempfile.gettempdir()) / "analogs-bench-report")
+    parser.add_argument("--years", type=int, default=6)
+    parser.add_argument("--runs", type=int, default=5)
+    parser.add_argument("--date", default=None, help="target day (default: a July day)")
+    args = parser.parse_args(argv)
+    args.out.mkdir(parents=True, exist_ok=True)
+    store = make_store(args.out, args.years)
+
+    from analogs.api import AnalogStore
+    from analogs.workflows.find import find, outcome_maps, report_figures
+    loaded = AnalogStore.load(store)
+    date = args.date or str(loaded.days[len(loaded.days) // 2 + 180].date())
+    base = [sys.executable, "-m", "analogs", "find", "--store", str(store), "--date", date,
+            "--top", "20"]
+    report_dir = args.out / "report"
+    json_times, report_times = [], []
+    timed(base + ["--json"])  # warm the file cache
+    for _ in range(args.runs):
+        json_times.append(timed(base + ["--json"]))
+        report_times.append(timed(base + ["--report", str(report_dir)]))
+
+    result = find(loaded, date=date, top=20)
+    maps = outcome_maps(loaded, result)
+    report_figures(loaded, result, maps=maps)
+    figure_times = []
+    for _ in range(args.runs):
+        start = time.perf_counter()
+        report_figures(loaded, result, maps=maps)
+        figure_times.append(time.perf_counter() - start)
+
+    summary = {
+        "date": date, "runs": args.runs, "load_average": os.getloadavg()[0],
+        "find_json_median_s": statistics.median(json_times),
+        "find_report_median_s": statistics.median(report_times),
+        "report_figures_median_s": statistics.median(figure_times),
+        "find_json_s": json_times, "find_report_s": report_times,
+        "report_figures_s": figure_times,
+    }
+    summary["ratio_report_over_json"] = (summary["find_report_median_s"]
+                                         / summary["find_json_median_s"])
+    print(f"{'command':<28}{'median s':>10}")
+    print(f"{'find --json':<28}{summary['find_json_median_s']:>10.2f}")
+    print(f"{'find --report':<28}{summary['find_report_median_s']:>10.2f}")
+    print(f"{'report_figures (in process)':<28}{summary['report_figures_median_s']:>10.2f}")
+    print(f"ratio report/json: {summary['ratio_report_over_json']:.2f} "
+          f"(load average {summary['load_average']:.2f})")
+    print(json.dumps(summary))
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
