@@ -104,7 +104,12 @@ def test_target_map(demo_store, query):
     assert colourbar_labels(figure) == ["850 hPa specific humidity (g/kg)"]
     (ax,) = map_axes(figure)
     assert query.target["date"] in ax.get_title() and "500 hPa height" in ax.get_title()
-    assert "60 F" in ax.get_title()
+    # The line of rich moisture at the field's own level: 12 C at 850 hPa (common practice,
+    # from memory; see analogs.stages.diagnostics.RICH_MOISTURE), not the surface 60 F line.
+    assert "850 hPa dewpoint 12 degC" in ax.get_title() and "60 F" not in ax.get_title()
+    dewpoint_lines = [c for c in ax.collections if hasattr(c, "levels")
+                      and list(getattr(c, "levels", [])) == [12.0]]
+    assert dewpoint_lines, "no 12 C line drawn"
     assert_degree_labels(figure, ax)
     # The shaded moisture is the field in g/kg.
     mesh = ax.collections[0]

@@ -33,8 +33,8 @@ from matplotlib.figure import Figure
 from matplotlib.patches import Polygon, Rectangle
 from matplotlib.ticker import FuncFormatter, MaxNLocator
 
-from analogs.constants import SEVERE_DEWPOINT_C, ZERO_CELSIUS_K
-from analogs.stages.diagnostics import dewpoint_from_specific_humidity
+from analogs.constants import ZERO_CELSIUS_K
+from analogs.stages.diagnostics import RICH_MOISTURE, dewpoint_from_specific_humidity
 from analogs.errors import AnalogsInputError
 from analogs.stages.regimes import REGIME_LABELS
 
@@ -231,18 +231,27 @@ def _plane(field: xr.DataArray, owner: str) -> xr.DataArray:
 
 
 def _moisture(fields: xr.Dataset):
-    """(shaded values, colour-bar label, dewpoint in deg C or None) of the moisture field."""
+    """(shaded values, colour-bar label, values of the rich-moisture line, its
+    :data:`~analogs.stages.diagnostics.RICH_MOISTURE` entry) of the moisture field: the
+    line is drawn at the threshold of the field's own level (the 60 F line only for a
+    2 m dewpoint)."""
     if "q850" in fields:
         q = _plane(fields["q850"], "moisture")
         dewpoint = dewpoint_from_specific_humidity(np.clip(q.values, 1e-6, None),
                                                    MOISTURE_LEVEL_HPA) - ZERO_CELSIUS_K
-        return q.values * 1000.0, "850 hPa specific humidity (g/kg)", dewpoint
+        return q.values * 1000.0, "850 hPa specific humidity (g/kg)", dewpoint, RICH_MOISTURE["q850"]
     if "td2m" in fields:
         td = _plane(fields["td2m"], "moisture").values - ZERO_CELSIUS_K
-        return td, "2 m dewpoint (deg C)", td
+        return td, "2 m dewpoint (deg C)", td, RICH_MOISTURE["td2m"]
     if "pwat" in fields:
-        return _plane(fields["pwat"], "moisture").values, "precipitable water (kg m-2)", None
-    return None, None, None
+        pwat = _plane(fields["pwat"], "moisture").values
+        return pwat, "precipitable water (kg m-2)", pwat, RICH_MOISTURE["pwat"]
+    return None, None, None, None
+
+
+def _rich_line_text(rich) -> str:
+    """'white line: 850 hPa dewpoint 12 degC' for the title of a map."""
+    return f"white line: {rich.measure} {rich.threshold:g} {rich.units}"
 
 
 def _height_contours(ax, z500: xr.DataArray, *, colour="black", labels=True):
@@ -258,18 +267,19 @@ def _height_contours(ax, z500: xr.DataArray, *, colour="black", labels=True):
 
 
 def _moisture_layer(figure, ax, fields, *, colourbar=True):
-    """Moisture shading with its colour bar and the 60 F dewpoint line; returns label."""
-    values, label, dewpoint = _moisture(fields)
+    """Moisture shading with its colour bar and the rich-moisture line of the field's
+    level; returns (label, RICH_MOISTURE entry)."""
+    values, label, line_values, rich = _moisture(fields)
     if values is None:
-        return None
+        return None, None
     lat, lon = fields["lat"].values, fields["lon"].values
     mesh = ax.pcolormesh(lon, lat, values, cmap="viridis", shading="nearest")
     if colourbar:
         figure.colorbar(mesh, ax=ax, label=label, shrink=0.85)
-    if dewpoint is not None and np.nanmin(dewpoint) < SEVERE_DEWPOINT_C < np.nanmax(dewpoint):
-        ax.contour(lon, lat, dewpoint, levels=[SEVERE_DEWPOINT_C], colors="white",
+    if np.nanmin(line_values) < rich.threshold < np.nanmax(line_values):
+        ax.contour(lon, lat, line_values, levels=[rich.threshold], colors="white",
                    linewidths=2.0, linestyles="-")
-    return label
+    return label, rich
 
 
 def _events_on_map(ax, events, day, kinds):
@@ -289,7 +299,8 @@ def _events_on_map(ax, events, day, kinds):
 
 def target_map(fields: xr.Dataset, *, region=None, when="target", source=None,
                land=None) -> Figure:
-    """500 hPa height contours over moisture shading, with the 60 F dewpoint line.
+    """500 hPa height contours over moisture shading, with the rich-moisture line of the
+    field's level (850 hPa dewpoint 12 C, 2 m dewpoint 60 F, precipitable water 30 kg m-2).
 
     ``fields`` is one day on (lat, lon) with ``z500`` (gpm) and optionally a moisture
     field (``q850`` shaded in g/kg with its 850 hPa dewpoint from Bolton's formula,
@@ -302,13 +313,13 @@ def target_map(fields: xr.Dataset, *, region=None, when="target", source=None,
     figure.subplots_adjust(left=0.08, right=0.97, bottom=0.06, top=0.86)
     ax = figure.add_subplot()
     coastlines = _coastline_paths()
-    label = _moisture_layer(figure, ax, fields)
+    label, rich = _moisture_layer(figure, ax, fields)
     _height_contours(ax, fields["z500"])
     _map_axes(ax, fields["lat"].values, fields["lon"].values, region, coastlines=coastlines,
               land=land)
     title = f"{when}: 500 hPa height (contours every {HEIGHT_INTERVAL_GPM:.0f} gpm)"
     if label:
-        title += f"\nover {label.split(' (')[0]}; white line: dewpoint {SEVERE_DEWPOINT_C:.1f} deg C (60 F)"
+        title += f"\nover {label.split(' (')[0]}; {_rich_line_text(rich)}"
     if source:
         title += f"\n[{source}]"
     ax.set_title(title, fontsize=10)
