@@ -221,7 +221,7 @@ def _cmd_build(args) -> int:
 
 def _cmd_find(args) -> int:
     from analogs.api import AnalogStore
-    from analogs.presentation.report import dumps, find_html, find_text
+    from analogs.presentation.report import find_html
     from analogs.workflows import files
     from analogs.workflows.find import find, outcome_maps, report_figures
     if args.time and args.field is None:
@@ -246,6 +246,12 @@ def _cmd_find(args) -> int:
         figures = report_figures(store, result, maps=maps)
         files.write_text(Path(args.report) / "index.html",
                          find_html(result, store.manifest, figures=figures))
+    return _print_find(result, args)
+
+
+def _print_find(result, args) -> int:
+    """A find result (one target, an ensemble or several valid times) as JSON or text."""
+    from analogs.presentation.report import dumps, find_text
     if args.json:
         print(dumps(result.to_dict()))
     else:
@@ -258,7 +264,7 @@ def _cmd_find(args) -> int:
 def _print_valid_times(store, result, args) -> int:
     """find with several valid times: the table (or JSON) and, with --report, one page
     per valid time under DIR plus DIR/index.html linking them."""
-    from analogs.presentation.report import dumps, find_html, find_text, valid_times_html
+    from analogs.presentation.report import find_html, valid_times_html
     from analogs.workflows import files
     from analogs.workflows.find import outcome_maps, report_figures
     if args.report:
@@ -272,13 +278,7 @@ def _print_valid_times(store, result, args) -> int:
             links.append(f"{name}/index.html")
         files.write_text(Path(args.report) / "index.html",
                          valid_times_html(result, store.manifest, links))
-    if args.json:
-        print(dumps(result.to_dict()))
-    else:
-        print(find_text(result))
-        if args.report:
-            print(f"\nreport: {Path(args.report) / 'index.html'}")
-    return 0
+    return _print_find(result, args)
 
 
 def _cmd_verify(args) -> int:

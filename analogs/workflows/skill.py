@@ -137,12 +137,10 @@ def verify(store, *, top=P.top.api_default, window=P.window.default,
     return summary
 
 
-def tune(store, *, tops=P.tops.default, modes=P.scan_modes.default,
-         window=P.window.default, separation=P.separation.default, region=None,
-         months=None, kinds=None, progress=False) -> pd.DataFrame:
-    """Brier skill score of each (number of analogs, number of modes), best first
-    (:func:`analogs.stages.hindcast.tune`; the store's own mode count is scanned too)."""
-    from analogs.stages.hindcast import tune as scan
+def _scan_inputs(store, tops, modes, window, separation, region, months, kinds):
+    """The checked settings of a tuning scan (the store's own mode count added to the
+    modes scanned) and the days it forecasts: (tops, modes, window, separation, months,
+    pcs, times, events)."""
     owner = "tune"
     tops, modes = P.tops.check(tops, owner), P.scan_modes.check(modes, owner)
     window, separation = P.window.check(window, owner), P.separation.check(separation, owner)
@@ -152,6 +150,17 @@ def tune(store, *, tops=P.tops.default, modes=P.scan_modes.default,
         region = resolve_region(store, region)
         events = observed(store, region, kinds)
     pcs, times, events = hindcast_days(store, events, region=region, kinds=kinds)
+    return tops, modes, window, separation, months, pcs, times, events
+
+
+def tune(store, *, tops=P.tops.default, modes=P.scan_modes.default,
+         window=P.window.default, separation=P.separation.default, region=None,
+         months=None, kinds=None, progress=False) -> pd.DataFrame:
+    """Brier skill score of each (number of analogs, number of modes), best first
+    (:func:`analogs.stages.hindcast.tune`; the store's own mode count is scanned too)."""
+    from analogs.stages.hindcast import tune as scan
+    tops, modes, window, separation, months, pcs, times, events = _scan_inputs(
+        store, tops, modes, window, separation, region, months, kinds)
     return scan(pcs, times, events, tops=tops,
                 modes=modes, window=window, separation=separation, months=months,
                 progress=progress)
@@ -165,15 +174,8 @@ def nested_tune(store, *, tops=P.tops.default, modes=P.scan_modes.default,
     settings on the same days. The dict of ``verify --tune --json``'s ``tuning`` (the
     table as records)."""
     from analogs.stages.hindcast import nested_tune as scan
-    owner = "tune"
-    tops, modes = P.tops.check(tops, owner), P.scan_modes.check(modes, owner)
-    window, separation = P.window.check(window, owner), P.separation.check(separation, owner)
-    months, kinds = P.months.check(months, owner), P.kinds.check(kinds, owner)
-    modes = modes + (int(store.eof.n_modes_),)
-    with renamed_errors(owner, "region", "kinds"):
-        region = resolve_region(store, region)
-        events = observed(store, region, kinds)
-    pcs, times, events = hindcast_days(store, events, region=region, kinds=kinds)
+    tops, modes, window, separation, months, pcs, times, events = _scan_inputs(
+        store, tops, modes, window, separation, region, months, kinds)
     defaults = store.query_defaults
     reference = (defaults.get("top", P.top.default), defaults.get("n_modes"))
     result = scan(pcs, times, events, tops=tops, modes=modes, window=window,
