@@ -112,15 +112,19 @@ def find_text(result) -> str:
                          f"{_fmt_probability(weighted['p_any_event'])} "
                          f"{_fmt_interval(weighted.get('p_any_event_ci'))}")
         lines.append(f"Mean events per analog day: {outcomes['mean_events']:.2f}")
-        for kind, stats in sorted(outcomes.get("by_kind", {}).items()):
-            lines.append(f"  {kind:10} P(any) {_fmt_probability(stats['p_any'])}   "
-                         f"mean {stats['mean']:.2f}")
+        lines.extend(_kind_lines(outcomes))
         skill = skill_line(outcomes.get("skill"))
         if skill:
             lines.append(skill)
     lines.append("")
     lines.append(CAUTION)
     return "\n".join(lines)
+
+
+def _kind_lines(outcomes) -> list[str]:
+    """One terminal line per kind of report: P(at least one) and the mean count."""
+    return [f"  {kind:10} P(any) {_fmt_probability(stats['p_any'])}   mean {stats['mean']:.2f}"
+            for kind, stats in sorted(outcomes.get("by_kind", {}).items())]
 
 
 def _fmt_spread(spread) -> str:
@@ -187,9 +191,7 @@ def ensemble_text(result) -> str:
         lines.append(f"Mean events per analog day: {outcomes['mean_events']:.2f}"
                      + (f" (members {mean_spread['min']:.2f} to {mean_spread['max']:.2f})"
                         if mean_spread else ""))
-        for kind, stats in sorted(outcomes.get("by_kind", {}).items()):
-            lines.append(f"  {kind:10} P(any) {_fmt_probability(stats['p_any'])}   "
-                         f"mean {stats['mean']:.2f}")
+        lines.extend(_kind_lines(outcomes))
         agreed = [a for a in data["analogs"] if a.get("n_members", 0) > 1][:5]
         if agreed:
             lines.append("Days chosen by most members: " + ", ".join(

@@ -935,14 +935,7 @@ def _find_axis(da, names, standard_name, units, where, *, two_d=False):
             raise AnalogsInputError(
                 f"{where}: {standard_name} {key!r} is {coord.ndim}-D; expected a regular "
                 "latitude-longitude grid with 1-D coordinates (regrid it first)")
-        values = np.asarray(coord.values, dtype=float)
-        if not np.all(np.isfinite(values)):
-            raise AnalogsInputError(f"{where}: {standard_name} {key!r} has missing values")
-        if standard_name == "latitude" and np.abs(values).max() > 90.0 + 1e-6:
-            raise AnalogsInputError(
-                f"{where}: latitude {key!r} reaches {np.abs(values).max():g}; expected "
-                "degrees north within [-90, 90]")
-        return coord.dims[0], values
+        return coord.dims[0], _coordinate_values(coord, key, standard_name, where)
     raise AnalogsInputError(
         f"{where} has no {standard_name} coordinate; expected one named "
         f"{' or '.join(names[:3])} or with standard_name {standard_name}")
@@ -2658,6 +2651,13 @@ def _other_moisture(arrays, candidates, member):
 
 def _two_d_axis(coord, key, standard_name, where):
     """(dim names, 2-D values) of a curvilinear latitude or longitude coordinate."""
+    return (tuple(str(d) for d in coord.dims),
+            _coordinate_values(coord, key, standard_name, where))
+
+
+def _coordinate_values(coord, key, standard_name, where) -> np.ndarray:
+    """A latitude or longitude coordinate's values in degrees, refused when some are
+    missing or a latitude leaves [-90, 90]."""
     values = np.asarray(coord.values, dtype=float)
     if not np.all(np.isfinite(values)):
         raise AnalogsInputError(f"{where}: {standard_name} {key!r} has missing values")
@@ -2665,7 +2665,7 @@ def _two_d_axis(coord, key, standard_name, where):
         raise AnalogsInputError(
             f"{where}: latitude {key!r} reaches {np.abs(values).max():g}; expected "
             "degrees north within [-90, 90]")
-    return tuple(str(d) for d in coord.dims), values
+    return values
 
 
 def _horizontal_dims(lat_dim, lon_dim, where):
