@@ -33,7 +33,8 @@ from analogs import __version__
 from analogs.errors import AnalogsInputError
 from analogs.parameters import P
 from analogs.stages.cf import CONVENTIONS, coordinate_attrs
-from analogs.stages.outcomes import binomial_interval
+from analogs.stages.outcomes import (PRACTICALLY_PERFECT_SIGMA_KM, binomial_interval,
+                                     report_density)
 from analogs.stages.regimes import REGIME_LABELS
 
 #: Least spacing, in days, between two typical days of one regime (distinct cases).
@@ -538,6 +539,287 @@ def typical_days(tags, n=5, *, separation=TYPICAL_DAY_SEPARATION) -> pd.DataFram
     return pd.DataFrame(rows, columns=["regime", "rank", "date", "confidence", "reason"])
 
 
+
+# ------------------------------------------------------------------ slide tables
+
+def yearly_regime_series(tags, months=None) -> pd.DataFrame:
+    """Each regime's days per season, year by year, with its least-squares line.
+
+    The yearly value is the regime's share of the year's tagged days in the season
+    times the season's length (:func:`archive_sampling` ``per_season``): the day count
+    itself for a fully tagged season, and a partly covered year is not read as a drop.
+    The line is the ordinary least-squares fit of that value on the year
+    (``scipy.stats.linregress``; Wilks, *Statistical Methods in the Atmospheric
+    Sciences*, ch. 7), the same fit whose t-test p-value :func:`regime_trend` reports
+    (scaling the series by a constant changes neither the p-value nor Kendall's tau).
+
+    Returns
+    -------
+    Long table, one row per (year, regime): ``year``, ``regime``, ``days`` (tagged days
+    of the regime), ``days_tagged``, ``days_per_season`` and ``fitted_days_per_season``
+    (the line's value that year; NaN with fewer than 3 years or a constant series). On
+    an archive of means, ``samples`` replaces ``days`` in the names.
+    """
+    by_year = regime_frequency_by_year(tags, months)
+    sampling = archive_sampling(tags, months)
+    unit = sampling.plural
+    value, fitted = f"{unit}_per_season", f"fitted_{unit}_per_season"
+    by_year[value] = by_year["fraction"] * sampling.per_season
+    by_year[fitted] = np.nan
+    for regime, part in by_year.groupby("regime", sort=False):
+        years = part["year"].to_numpy(dtype=float)
+        series = part[value].to_numpy(dtype=float)
+        if years.size >= 3 and np.ptp(series) > 0:
+            fit = stats.linregress(years, series)
+            by_year.loc[part.index, fitted] = fit.intercept + fit.slope * years
+    table = by_year.drop(columns="fraction")
+    table.attrs["sampling"] = sampling.to_dict()
+    return table
+
+
+def run_length_counts(tags) -> pd.DataFrame:
+    """How many spells of each length each regime had (the duration histogram).
+
+    Spells are runs of one regime on consecutive days (:func:`regime_runs`). An
+    archive without consecutive days (seasonal or monthly means) has none: the table
+    is empty and ``attrs["note"]`` says why.
+
+    Returns
+    -------
+    Long table: ``regime``, ``length_days`` (1 to the regime's longest spell, every
+    length listed) and ``n_runs``.
+    """
+    tags = _check_tags(tags, "run_length_counts")
+    sampling = archive_sampling(tags)
+    columns = ["regime", "length_days", "n_runs"]
+    if not (sampling.unit == "day" and sampling.consecutive_days):
+        table = pd.DataFrame({c: pd.Series(dtype=object if c == "regime" else np.int64)
+                              for c in columns})
+        table.attrs["note"] = ("no run lengths: the archive has no consecutive days ("
+                               + sampling.describe() + ")")
+        return table
+    runs = regime_runs(tags)
+    parts = []
+    for regime in _regimes_of(tags):
+        lengths = runs.loc[runs["regime"] == regime, "length_days"].to_numpy(dtype=np.int64)
+        if lengths.size == 0:
+            continue
+        counts = np.bincount(lengths)[1:]
+        parts.append(pd.DataFrame({"regime": regime,
+                                   "length_days": np.arange(1, counts.size + 1),
+                                   "n_runs": counts.astype(np.int64)}))
+    return (pd.concat(parts, ignore_index=True) if parts
+            else pd.DataFrame({c: [] for c in columns}))
+
+
+def regime_report_density(tags, events, lat, lon, *, months=None,
+                          sigma_km=None) -> xr.DataArray:
+    """Smoothed report density of each regime's days: events per grid cell per day.
+
+    :func:`analogs.stages.outcomes.report_density` (events on their nearest grid point,
+    averaged over the regime's days, Gaussian-smoothed; Brooks et al. 1998) of the days
+    of each regime in ``tags``; pass only days with report coverage. A regime without
+    days is NaN.
+
+    Returns a DataArray ``(regime, lat, lon)``, units "1" (events per cell per day),
+    with ``n_days (regime)`` as a coordinate.
+    """
+    tags = _check_tags(tags, "regime_report_density", months)
+    sigma_km = PRACTICALLY_PERFECT_SIGMA_KM if sigma_km is None else sigma_km
+    lat, lon = np.asarray(lat, dtype=float), np.asarray(lon, dtype=float)
+    regimes = _regimes_of(tags)
+    planes, n_days = [], []
+    for regime in regimes:
+        days = tags.index[tags["regime"].astype(str).to_numpy() == regime]
+        n_days.append(len(days))
+        planes.append(report_density(events, days, lat, lon, sigma_km).values if len(days)
+                      else np.full((lat.size, lon.size), np.nan))
+    return xr.DataArray(
+        np.stack(planes), dims=("regime", "lat", "lon"),
+        coords={"regime": regimes, "lat": lat, "lon": lon,
+                "n_days": ("regime", np.asarray(n_days, dtype=np.int64))},
+        name="report_density",
+        attrs={"units": "1", "sigma_km": float(sigma_km),
+               "long_name": f"events per grid cell per regime day, Gaussian-smoothed "
+                            f"(sigma {sigma_km:g} km)"})
+
+
+def cyclone_centred_composite(fields: xr.Dataset, centres: pd.DataFrame, *,
+                              half_width_cells=10, events=None, event_days=None) -> xr.Dataset:
+    """Fields averaged in a frame that moves with each day's cyclone centre.
+
+    Each day's fields are shifted so that the grid point nearest that day's centre
+    sits at offset (0, 0), then averaged offset by offset over the days whose shifted
+    grid reaches it (cells beyond the archive's edge are left out, not counted as
+    zero). A plain mean of lows at different places smears them into a shallow trough;
+    this storm-relative compositing (as in the tropical-cyclone composites of Frank
+    1977, from memory) keeps the low's depth.
+
+    Parameters
+    ----------
+    fields : Dataset ``(time, lat, lon)`` on a regular grid; ``time`` is the day
+        (its time of day is ignored).
+    centres : DataFrame with ``day``, ``lat``, ``lon`` (degrees), one row a day; days
+        without fields are ignored.
+    half_width_cells : offsets from -this to +this grid cells in each direction.
+    events : optional reports (``lat``, ``lon``, ``day``): each report of a centre's
+        day is counted in the frame cell nearest its offset from that day's centre
+        grid point, giving ``report_density``.
+    event_days : days whose reports count (those with report coverage); default
+        every centre day. The density is per day of these.
+
+    Returns
+    -------
+    Dataset ``(dlat, dlon)``: each variable's mean (units kept), ``n_days`` (days
+    reaching each offset), with ``events`` also ``report_density`` (reports per frame
+    cell per cyclone day with coverage), and coordinates ``dlat`` / ``dlon`` in
+    degrees from the centre; ``attrs["n_days"]`` days used.
+    """
+    owner = "cyclone_centred_composite"
+    if isinstance(half_width_cells, bool) or not isinstance(half_width_cells, (int, np.integer)) \
+            or half_width_cells < 1:
+        raise AnalogsInputError(f"The 'half_width_cells' parameter of {owner} must be an "
+                                f"integer >= 1. Got {half_width_cells!r} instead.")
+    missing = [c for c in ("day", "lat", "lon") if c not in centres.columns]
+    if missing:
+        raise AnalogsInputError(f"The 'centres' parameter of {owner} needs column(s) "
+                                + ", ".join(missing) + ".")
+    lat, lon = fields["lat"].values.astype(float), fields["lon"].values.astype(float)
+    dlat, dlon = float(np.mean(np.diff(lat))), float(np.mean(np.diff(lon)))
+    k = int(half_width_cells)
+    field_days = pd.DatetimeIndex(fields["time"].values).normalize()
+    position = pd.Series(np.arange(len(field_days)), index=field_days)
+    position = position[~position.index.duplicated()]
+    centres = centres.assign(day=pd.to_datetime(centres["day"]).dt.normalize())
+    centres = centres[centres["day"].isin(position.index)].drop_duplicates("day")
+    names = list(fields.data_vars)
+    totals = {name: np.zeros((2 * k + 1, 2 * k + 1)) for name in names}
+    counts = np.zeros((2 * k + 1, 2 * k + 1))
+    planes = {name: fields[name].transpose("time", "lat", "lon").values for name in names}
+    for day, c_lat, c_lon in centres[["day", "lat", "lon"]].itertuples(index=False):
+        t = position[day]
+        i, j = int(np.abs(lat - c_lat).argmin()), int(np.abs(lon - c_lon).argmin())
+        # Window rows i-k..i+k clipped to the grid, and where they land in the frame.
+        i0, i1 = max(i - k, 0), min(i + k + 1, lat.size)
+        j0, j1 = max(j - k, 0), min(j + k + 1, lon.size)
+        frame = (slice(i0 - (i - k), i1 - (i - k)), slice(j0 - (j - k), j1 - (j - k)))
+        valid = np.ones((i1 - i0, j1 - j0), dtype=bool)
+        for name in names:
+            window = planes[name][t, i0:i1, j0:j1]
+            valid &= np.isfinite(window)
+        for name in names:
+            totals[name][frame] += np.where(valid, planes[name][t, i0:i1, j0:j1], 0.0)
+        counts[frame] += valid
+    offsets = np.arange(-k, k + 1)
+    out = xr.Dataset(coords={
+        "dlat": ("dlat", offsets * dlat, {"long_name": "latitude offset from the cyclone "
+                                          "centre", "units": "degrees"}),
+        "dlon": ("dlon", offsets * dlon, {"long_name": "longitude offset from the cyclone "
+                                          "centre", "units": "degrees"})})
+    with np.errstate(invalid="ignore", divide="ignore"):
+        for name in names:
+            out[name] = (("dlat", "dlon"), np.where(counts > 0, totals[name] / counts, np.nan),
+                         dict(fields[name].attrs))
+    out["n_days"] = (("dlat", "dlon"), counts.astype(np.int64),
+                     {"long_name": "days reaching this offset", "units": "1"})
+    if events is not None:
+        covered = centres if event_days is None else centres[centres["day"].isin(
+            pd.DatetimeIndex(event_days).normalize())]
+        origin = covered.assign(
+            lat0=lat[np.abs(lat[None, :] - covered["lat"].to_numpy(float)[:, None]).argmin(1)],
+            lon0=lon[np.abs(lon[None, :] - covered["lon"].to_numpy(float)[:, None]).argmin(1)])
+        origin = origin.set_index("day")
+        days = pd.to_datetime(events["day"]).dt.normalize()
+        on = days.isin(origin.index).to_numpy()
+        base = origin.loc[days[on]]
+        di = np.rint((events["lat"].to_numpy(float)[on] - base["lat0"].to_numpy()) / dlat)
+        dj = np.rint((events["lon"].to_numpy(float)[on] - base["lon0"].to_numpy()) / dlon)
+        keep = (np.abs(di) <= k) & (np.abs(dj) <= k)
+        density = np.zeros((2 * k + 1, 2 * k + 1))
+        np.add.at(density, ((di[keep] + k).astype(int), (dj[keep] + k).astype(int)), 1.0)
+        out["report_density"] = (("dlat", "dlon"), density / max(len(covered), 1),
+                                 {"long_name": "reports per frame cell per cyclone day",
+                                  "units": "1"})
+        out.attrs["n_days_with_reports"] = int(len(covered))
+    out.attrs = {**out.attrs, "n_days": int(len(centres)), "method": "fields shifted to each day's "
+                 "cyclone centre (nearest grid point) before averaging"}
+    return out
+
+
+def events_relative_to_centres(events: pd.DataFrame, centres: pd.DataFrame) -> pd.DataFrame:
+    """Events of the cyclone days placed relative to that day's centre.
+
+    Returns ``kind``, ``dlat`` and ``dlon`` (degrees north / east of the centre; the
+    longitude difference wrapped to [-180, 180)) for every event whose convective
+    ``day`` has a centre (the first centre of a day when several are given).
+    """
+    centres = centres.assign(day=pd.to_datetime(centres["day"]).dt.normalize())
+    centres = centres.drop_duplicates("day").set_index("day")
+    days = pd.to_datetime(events["day"]).dt.normalize()
+    on = days.isin(centres.index).to_numpy()
+    chosen = events[on]
+    centre = centres.loc[days[on]]
+    dlon = (chosen["lon"].to_numpy(float) - centre["lon"].to_numpy(float) + 180.0) % 360.0 - 180.0
+    return pd.DataFrame({"kind": chosen["kind"].astype(str).to_numpy(),
+                         "dlat": chosen["lat"].to_numpy(float) - centre["lat"].to_numpy(float),
+                         "dlon": dlon})
+
+
+def example_days_across_record(tags, pcs, *, n_periods=5) -> pd.DataFrame:
+    """The most typical day of each regime in each period of the record.
+
+    The record's years are split into ``n_periods`` consecutive blocks of (nearly)
+    equal numbers of years; in each block, each regime's example is its day whose PC
+    vector lies nearest (Euclidean distance, the analog distance) to the mean PC
+    vector of all the regime's days: the regime's centroid, as in k-means (Lloyd
+    1982). Chosen so, the examples spread over the whole record instead of gathering
+    where the classifier happened to be most confident.
+
+    Parameters
+    ----------
+    tags : the tags table (already restricted to the season when wanted).
+    pcs : DataArray ``(time, mode)`` of the archive days' PCs (the store's scores).
+    n_periods : blocks of years (fewer when the record has fewer years).
+
+    Returns
+    -------
+    One row per (regime, period) with days: ``regime``, ``period`` (``"2001-2002"``),
+    ``date``, ``distance_to_centroid`` (PC units) and ``confidence`` when tagged.
+    """
+    owner = "example_days_across_record"
+    if isinstance(n_periods, bool) or not isinstance(n_periods, (int, np.integer)) \
+            or n_periods < 1:
+        raise AnalogsInputError(f"The 'n_periods' parameter of {owner} must be an integer "
+                                f">= 1. Got {n_periods!r} instead.")
+    tags = _check_tags(tags, owner)
+    times = pd.DatetimeIndex(pcs["time"].values).normalize()
+    row_of_day = pd.Series(np.arange(len(times)), index=times)
+    row_of_day = row_of_day[~row_of_day.index.duplicated()]
+    tags = tags[tags.index.isin(row_of_day.index)]
+    vectors = np.asarray(pcs.transpose("time", "mode").values, dtype=float)
+    years = np.unique(tags.index.year)
+    blocks = [b for b in np.array_split(years, min(n_periods, years.size)) if b.size]
+    rows = []
+    for regime in _regimes_of(tags):
+        part = tags[tags["regime"].astype(str).to_numpy() == regime]
+        if len(part) == 0:
+            continue
+        own = vectors[row_of_day.loc[part.index].to_numpy()]
+        distance = np.linalg.norm(own - own.mean(axis=0), axis=1)
+        for block in blocks:
+            inside = np.flatnonzero(np.isin(part.index.year, block))
+            if inside.size == 0:
+                continue
+            best = inside[np.argmin(distance[inside])]
+            label = f"{block[0]}" if block.size == 1 else f"{block[0]}-{block[-1]}"
+            rows.append({"regime": regime, "period": label, "date": part.index[best],
+                         "distance_to_centroid": float(distance[best]),
+                         "confidence": float(part["confidence"].iloc[best])
+                         if "confidence" in part else np.nan})
+    return pd.DataFrame(rows, columns=["regime", "period", "date", "distance_to_centroid",
+                                       "confidence"])
+
+
 def season_label(months) -> str:
     """Short text for a season: ``"May-Sep"``, ``"Jun, Aug"`` or ``"all months"``."""
     months = _check_months(months, "season_label")
@@ -557,5 +839,7 @@ __all__ = [
     "Sampling", "archive_sampling", "outcomes_by_regime_and_month", "parse_months", "regime_composites",
     "regime_frequency_by_month", "regime_frequency_by_year", "regime_persistence",
     "regime_runs", "regime_trend", "season_days", "season_label", "season_months",
-    "season_tags", "typical_days",
+    "season_tags", "typical_days", "yearly_regime_series", "run_length_counts",
+    "regime_report_density", "cyclone_centred_composite", "events_relative_to_centres",
+    "example_days_across_record",
 ]
