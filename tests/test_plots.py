@@ -18,8 +18,6 @@ from analogs.presentation import figures as plots
 from analogs.errors import AnalogsInputError
 from analogs.stages.hindcast import leave_one_year_out
 from analogs.stages.outcomes import outcome_maps
-from analogs.stages.seasonal import regime_frequency_by_month
-from analogs.workflows.briefing import store_regime_composites
 from analogs.stages.scores import reliability_table, roc_curve_points
 
 #: Least variance of the RGBA pixel values (0-255) of a figure with content; a blank
@@ -248,57 +246,6 @@ def test_roc_diagram_area_matches_scikit_learn(hindcast):
     assert ax.get_xlabel() == "false alarm rate" and ax.get_ylabel() == "hit rate"
     label = [l for l in ax.get_lines() if l.get_label().startswith("hindcast")][0].get_label()
     assert f"area {roc_auc_score(o, p):.2f}" in label
-
-
-def test_regime_calendar(demo_store):
-    tags = demo_store.tags
-    figure = plots.regime_calendar(tags, title_suffix="all months")
-    assert_not_blank(figure)
-    assert len(figure.axes) == 2
-    ax = map_axes(figure)[0]
-    assert "Regime of every tagged day" in ax.get_title()
-    (bar,) = [a for a in figure.axes if a.get_label() == "<colorbar>"]
-    regimes = [t.get_text() for t in bar.get_yticklabels()]
-    assert set(regimes) == set(tags["regime"])
-    image = ax.get_images()[0].get_array()
-    day = tags.index[200]
-    code = image[day.year - tags.index.year.min(), day.day_of_year - 1]
-    assert regimes[int(code)] == tags["regime"].iloc[200]
-
-
-def test_monthly_frequency_chart(demo_store):
-    frequency = regime_frequency_by_month(demo_store.tags)
-    figure = plots.monthly_frequency_chart(frequency)
-    assert_not_blank(figure)
-    (ax,) = figure.axes
-    assert ax.get_ylabel() == "share of tagged days (%)"
-    heights = {}
-    for container, regime in zip(ax.containers, ax.get_legend_handles_labels()[1]):
-        heights[regime] = [bar.get_height() for bar in container]
-    july = frequency[frequency["month"] == 7].set_index("regime")["fraction"]
-    for regime, values in heights.items():
-        assert values[6] == pytest.approx(100.0 * july[regime])
-
-
-def test_composite_maps(demo_store):
-    composites = store_regime_composites(demo_store, [6, 7, 8])
-    figure = plots.composite_maps(composites, region=demo_store.region)
-    assert_not_blank(figure)
-    present = int((composites["n_days"] > 0).sum())
-    assert len(map_axes(figure)) == present
-    assert colourbar_labels(figure) == ["mean 500 hPa height anomaly (gpm)"]
-    assert "kept EOFs" in figure.get_suptitle()
-
-
-def test_outcome_chart(demo_store):
-    from analogs.stages.outcomes import daily_event_counts
-    from analogs.stages.seasonal import outcomes_by_regime_and_month
-    tags = demo_store.tags
-    counts = daily_event_counts(demo_store.events, tags.index, demo_store.region)
-    figure = plots.outcome_chart(outcomes_by_regime_and_month(tags, counts))
-    assert_not_blank(figure)
-    (ax,) = figure.axes
-    assert "at least one event" in ax.get_title()
 
 
 def test_plots_leave_pyplot_alone():

@@ -309,10 +309,12 @@ def test_build_briefing_writes_everything(demo_store, tmp_path):
     out = tmp_path / "briefing"
     written = build_briefing(demo_store, out, months="5-9", progress=False)
     for name in ("regime_frequency_by_month.csv", "regime_frequency_by_month.parquet",
-                 "regime_trend.csv", "regime_persistence.parquet", "typical_days.csv",
+                 "regime_trend.csv", "regime_persistence.parquet", "example_days.csv",
+                 "regime_run_lengths.csv", "regime_yearly_series.parquet",
                  "outcomes_by_regime_and_month.csv", "regime_composites.nc",
-                 "regime_calendar.png", "regime_frequency_by_month.png",
-                 "regime_composites.png", "reliability.png", "roc.png", "index.html"):
+                 "slides/02-regime-calendar.png", "slides/01-regime-share-by-month.png",
+                 "slides/06-regime-composites.png", "slides/09-reliability.png",
+                 "slides/10-roc.png", "index.html"):
         assert written[name].is_file(), name
         assert written[name].stat().st_size > 0
     csv = pd.read_csv(written["regime_frequency_by_month.csv"])

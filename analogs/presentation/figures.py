@@ -28,7 +28,7 @@ import xarray as xr
 from matplotlib import colormaps
 from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.collections import LineCollection
-from matplotlib.colors import BoundaryNorm, ListedColormap
+from matplotlib.colors import BoundaryNorm
 from matplotlib.figure import Figure
 from matplotlib.patches import Polygon, Rectangle
 from matplotlib.ticker import FuncFormatter, MaxNLocator
@@ -36,7 +36,6 @@ from matplotlib.ticker import FuncFormatter, MaxNLocator
 from analogs.constants import ZERO_CELSIUS_K
 from analogs.stages.diagnostics import RICH_MOISTURE, dewpoint_from_specific_humidity
 from analogs.errors import AnalogsInputError
-from analogs.stages.regimes import REGIME_LABELS
 
 #: Pressure (hPa) of the ``q850`` field, for its dewpoint.
 MOISTURE_LEVEL_HPA = 850.0
@@ -90,23 +89,6 @@ def degrees_north_label(value, _position=None) -> str:
     if abs(value) < 1e-9:
         return "0°"
     return f"{abs(value):g}°{'S' if value < 0 else 'N'}"
-
-
-def regime_colours(regimes) -> dict:
-    """A fixed colour per regime: viridis samples for the named regimes, grey for
-    ``other``, cividis samples for any further label."""
-    palette = colormaps["viridis"]
-    named = {"tropical": palette(0.85), "strong_trough": palette(0.1),
-             "northwest_flow": palette(0.5), "other": (0.78, 0.78, 0.78, 1.0)}
-    extra = [r for r in regimes if r not in named]
-    spare = colormaps["cividis"]
-    named.update({r: spare(0.2 + 0.6 * i / max(len(extra), 1)) for i, r in enumerate(extra)})
-    return {r: named[r] for r in regimes}
-
-
-def _ordered_regimes(labels) -> list[str]:
-    labels = set(map(str, labels))
-    return [r for r in REGIME_LABELS if r in labels] + sorted(labels - set(REGIME_LABELS))
 
 
 def _coastline_paths():
@@ -597,133 +579,4 @@ def roc_diagram(false_alarm_rate, hit_rate, *, title_suffix="") -> Figure:
     ax.set_title("ROC of P(at least one event in region)"
                  + (f", {title_suffix}" if title_suffix else "")
                  + "\nleave-one-year-out hindcast", fontsize=10)
-    return figure
-
-
-# -------------------------------------------------------------------- seasonal
-
-def regime_calendar(tags: pd.DataFrame, *, title_suffix="") -> Figure:
-    """Year by day of year, each tagged day coloured by its regime (blank: untagged)."""
-    if not isinstance(tags.index, pd.DatetimeIndex) or "regime" not in tags:
-        raise AnalogsInputError("regime_calendar needs the tags table (indexed by date, "
-                                "column 'regime')")
-    regimes = _ordered_regimes(tags["regime"])
-    years = np.arange(tags.index.year.min(), tags.index.year.max() + 1)
-    codes = {r: i for i, r in enumerate(regimes)}
-    grid = np.full((years.size, 366), np.nan)
-    grid[tags.index.year - years[0], tags.index.day_of_year - 1] = \
-        tags["regime"].astype(str).map(codes).to_numpy()
-    colours = regime_colours(regimes)
-    cmap = ListedColormap([colours[r] for r in regimes])
-    norm = BoundaryNorm(np.arange(len(regimes) + 1) - 0.5, len(regimes))
-    figure = new_figure(11.0, 1.6 + 0.28 * years.size, layout="constrained")
-    ax = figure.add_subplot()
-    image = ax.imshow(grid, aspect="auto", cmap=cmap, norm=norm, interpolation="nearest",
-                      extent=(0.5, 366.5, years[-1] + 0.5, years[0] - 0.5))
-    bar = figure.colorbar(image, ax=ax, ticks=np.arange(len(regimes)), label="regime")
-    bar.ax.set_yticklabels(regimes)
-    month_starts = pd.date_range("2001-01-01", periods=12, freq="MS")
-    ax.set_xticks(month_starts.day_of_year, month_starts.strftime("%b"))
-    ax.set_xlabel("day of year")
-    ax.set_ylabel("year")
-    if years.size <= 15:
-        ax.set_yticks(years)
-    ax.set_title("Regime of every tagged day" + (f", {title_suffix}" if title_suffix else ""),
-                 fontsize=11)
-    return figure
-
-
-def monthly_frequency_chart(frequency: pd.DataFrame, *, title_suffix="") -> Figure:
-    """Stacked bars: share of each month's tagged days in each regime (the table of
-    :func:`analogs.stages.seasonal.regime_frequency_by_month`), days tagged above each bar."""
-    # Counts are days, or samples on an archive of seasonal / monthly means.
-    unit = "samples" if "samples_tagged" in frequency.columns else "days"
-    needed = {"month", "regime", "fraction", f"{unit}_tagged"}
-    if not needed <= set(frequency.columns):
-        raise AnalogsInputError("monthly_frequency_chart needs the table of "
-                                "regime_frequency_by_month")
-    shares = frequency.pivot(index="month", columns="regime", values="fraction").fillna(0.0)
-    regimes = _ordered_regimes(shares.columns)
-    colours = regime_colours(regimes)
-    totals = frequency.groupby("month")[f"{unit}_tagged"].first()
-    figure = new_figure(9.0, 5.0, layout="constrained")
-    ax = figure.add_subplot()
-    months = shares.index.to_numpy()
-    base = np.zeros(months.size)
-    for regime in regimes:
-        ax.bar(months, 100.0 * shares[regime].to_numpy(), bottom=base, color=colours[regime],
-               label=regime, edgecolor="white", linewidth=0.5)
-        base += 100.0 * shares[regime].to_numpy()
-    for month, total in totals.items():
-        ax.text(month, 101.0, f"{total}", ha="center", va="bottom", fontsize=7)
-    ax.set_xticks(months, [pd.Timestamp(2001, int(m), 1).strftime("%b") for m in months])
-    ax.set_ylim(0, 110)
-    ax.set_ylabel(f"share of tagged {unit} (%)")
-    ax.set_xlabel(f"month (number above a bar: {unit} tagged)")
-    ax.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), title="regime")
-    ax.set_title("How often each regime occurs, by month"
-                 + (f", {title_suffix}" if title_suffix else ""), fontsize=11)
-    return figure
-
-
-def composite_maps(composites: xr.Dataset, *, region=None) -> Figure:
-    """One map per regime with days: mean 500 hPa height anomaly shaded (shared
-    symmetric scale) and the regime's mean height contoured."""
-    if "z500_anomaly" not in composites:
-        raise AnalogsInputError("composite_maps needs the Dataset of "
-                                "analogs.stages.seasonal.regime_composites")
-    present = [str(r) for r, n in zip(composites["regime"].values,
-                                      composites["n_days"].values) if n > 0]
-    anomaly = composites["z500_anomaly"].sel(regime=present)
-    limit = float(np.nanmax(np.abs(anomaly.values))) or 1.0
-    columns = min(2, len(present))
-    rows = int(np.ceil(len(present) / columns))
-    figure = new_figure(6.0 * columns + 1.0, 4.4 * rows + 0.6, layout="constrained")
-    coastlines = _coastline_paths()
-    lat, lon = composites["lat"].values, composites["lon"].values
-    axes, mesh = [], None
-    for i, regime in enumerate(present):
-        ax = figure.add_subplot(rows, columns, i + 1)
-        mesh = ax.pcolormesh(lon, lat, anomaly.sel(regime=regime).values, cmap="RdBu_r",
-                             vmin=-limit, vmax=limit, shading="nearest")
-        _height_contours(ax, composites["z500_mean"].sel(regime=regime), colour="0.15")
-        _map_axes(ax, lat, lon, region, coastlines=coastlines)
-        n = int(composites["n_days"].sel(regime=regime))
-        ax.set_title(f"{regime}: {n} days", fontsize=10)
-        axes.append(ax)
-    figure.colorbar(mesh, ax=axes, label="mean 500 hPa height anomaly (gpm)", shrink=0.8)
-    method = composites.attrs.get("composite_method", "")
-    figure.suptitle(f"Mean pattern of each regime, {composites.attrs.get('season', '')}\n"
-                    f"shading: {method}; contours: mean height every "
-                    f"{HEIGHT_INTERVAL_GPM:.0f} gpm", fontsize=10)
-    _note_plain_axes(figure, coastlines)
-    return figure
-
-
-def outcome_chart(outcomes: pd.DataFrame, *, title_suffix="") -> Figure:
-    """P(at least one event in the region) by month for each regime, with intervals
-    (the table of :func:`analogs.stages.seasonal.outcomes_by_regime_and_month`)."""
-    if "p_any_event" not in outcomes:
-        raise AnalogsInputError("outcome_chart needs the table of outcomes_by_regime_and_month")
-    regimes = _ordered_regimes(outcomes["regime"])
-    colours = regime_colours(regimes)
-    figure = new_figure(9.0, 5.0, layout="constrained")
-    ax = figure.add_subplot()
-    for offset, regime in zip(np.linspace(-0.2, 0.2, len(regimes)), regimes):
-        part = outcomes[outcomes["regime"] == regime]
-        x = part["month"].to_numpy() + offset
-        p = 100.0 * part["p_any_event"].to_numpy()
-        error = 100.0 * np.vstack([part["p_any_event"] - part["p_any_event_low"],
-                                   part["p_any_event_high"] - part["p_any_event"]])
-        ax.errorbar(x, p, yerr=error, marker="o", capsize=2, color=colours[regime],
-                    label=regime)
-    months = np.unique(outcomes["month"])
-    ax.set_xticks(months, [pd.Timestamp(2001, int(m), 1).strftime("%b") for m in months])
-    ax.set_ylim(0, 100)
-    ax.set_xlabel("month")
-    level = outcomes.attrs.get("confidence", 0.9)
-    ax.set_ylabel(f"days with at least one event in region (%), {100 * level:.0f}% interval")
-    ax.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), title="regime")
-    ax.set_title("What each regime brings: chance of at least one event"
-                 + (f", {title_suffix}" if title_suffix else ""), fontsize=11)
     return figure

@@ -22,6 +22,7 @@ import numpy as np
 import pandas as pd
 import xarray as xr
 from matplotlib.colors import BoundaryNorm, ListedColormap
+from matplotlib.figure import Figure
 from matplotlib.patches import Patch
 
 from analogs.errors import AnalogsInputError
@@ -100,7 +101,7 @@ def _panel_grid(figure, n, columns, *, left=0.07, right=0.98, bottom=0.1, top=0.
 
 # ------------------------------------------------------------------ 1. share by month
 
-def regime_share_by_month(frequency: pd.DataFrame, *, season="") -> "Figure":
+def regime_share_by_month(frequency: pd.DataFrame, *, season="") -> Figure:
     """Stacked bars: each month's tagged days split by regime (%), the season's months
     only (those in the table), named, in season order; days tagged above each bar.
 
@@ -147,7 +148,7 @@ def regime_share_by_month(frequency: pd.DataFrame, *, season="") -> "Figure":
 
 # ------------------------------------------------------------------ 2. calendar
 
-def regime_calendar(tags: pd.DataFrame, months, *, season="") -> "Figure":
+def regime_calendar(tags: pd.DataFrame, months, *, season="") -> Figure:
     """Year by day, each tagged day coloured by its regime, over the season only (the
     whole year when ``months`` is None)."""
     if not isinstance(tags, pd.DataFrame) or not isinstance(tags.index, pd.DatetimeIndex) \
@@ -199,7 +200,7 @@ def _p_text(p) -> str:
 
 
 def yearly_series_with_trend(series: pd.DataFrame, trend: pd.DataFrame, *,
-                             season="") -> "Figure":
+                             season="") -> Figure:
     """One panel per regime: its days per season year by year, the least-squares line,
     the slope per decade and the p-values of both trend tests in the panel's title.
 
@@ -246,7 +247,7 @@ def yearly_series_with_trend(series: pd.DataFrame, trend: pd.DataFrame, *,
 
 # ------------------------------------------------------------------ 4. run lengths
 
-def run_length_histograms(counts: pd.DataFrame, *, season="", note=None) -> "Figure":
+def run_length_histograms(counts: pd.DataFrame, *, season="", note=None) -> Figure:
     """One panel per regime: how many spells lasted 1, 2, 3... consecutive days, with
     the median spell marked. ``counts`` is
     :func:`analogs.stages.seasonal.run_length_counts`; an empty table (no consecutive
@@ -291,7 +292,7 @@ def run_length_histograms(counts: pd.DataFrame, *, season="", note=None) -> "Fig
 
 # ------------------------------------------------------------------ 5. outcomes
 
-def outcomes_by_regime_month_kind(outcomes: pd.DataFrame, *, season="") -> "Figure":
+def outcomes_by_regime_month_kind(outcomes: pd.DataFrame, *, season="") -> Figure:
     """One panel per kind (and one for any report): the share of each regime's days in
     each month with at least one report of that kind in the region (%), the
     Clopper-Pearson interval drawn for any report. ``outcomes`` is
@@ -362,7 +363,7 @@ def _moisture_values(name, values):
 
 
 def regime_composite_maps(composites: xr.Dataset, density: xr.DataArray | None = None, *,
-                          region=None, season="", density_floor=0.05) -> "Figure":
+                          region=None, season="", density_floor=0.05) -> Figure:
     """One row per regime with days: mean 500 hPa height anomaly (shaded, shared
     symmetric scale) under the mean height (contours); the mean moisture field
     (shaded); the smoothed report density (shaded, cells below ``density_floor`` of
@@ -458,7 +459,7 @@ def regime_composite_maps(composites: xr.Dataset, density: xr.DataArray | None =
 
 # ------------------------------------------------------------------ 7. cyclone-centred
 
-def cyclone_centred_maps(in_place: xr.Dataset, centred: xr.Dataset, *, season="") -> "Figure":
+def cyclone_centred_maps(in_place: xr.Dataset, centred: xr.Dataset, *, season="") -> Figure:
     """Tropical days averaged two ways: in place (each day's low where it was, so lows
     at different places smear out) and centred on each day's cyclone (fields shifted
     before averaging), and the reports of those days around the centre.
@@ -541,7 +542,7 @@ def cyclone_centred_maps(in_place: xr.Dataset, centred: xr.Dataset, *, season=""
 # ------------------------------------------------------------------ 8. gallery
 
 def example_day_gallery(fields: xr.Dataset, examples: pd.DataFrame, events=None, *,
-                        region=None, season="", source="") -> "Figure":
+                        region=None, season="", source="") -> Figure:
     """A grid of example days, one row per regime and one column per period of the
     record: 500 hPa height contours over moisture shading, and the day's reports.
 

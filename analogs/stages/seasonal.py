@@ -746,25 +746,6 @@ def cyclone_centred_composite(fields: xr.Dataset, centres: pd.DataFrame, *,
     return out
 
 
-def events_relative_to_centres(events: pd.DataFrame, centres: pd.DataFrame) -> pd.DataFrame:
-    """Events of the cyclone days placed relative to that day's centre.
-
-    Returns ``kind``, ``dlat`` and ``dlon`` (degrees north / east of the centre; the
-    longitude difference wrapped to [-180, 180)) for every event whose convective
-    ``day`` has a centre (the first centre of a day when several are given).
-    """
-    centres = centres.assign(day=pd.to_datetime(centres["day"]).dt.normalize())
-    centres = centres.drop_duplicates("day").set_index("day")
-    days = pd.to_datetime(events["day"]).dt.normalize()
-    on = days.isin(centres.index).to_numpy()
-    chosen = events[on]
-    centre = centres.loc[days[on]]
-    dlon = (chosen["lon"].to_numpy(float) - centre["lon"].to_numpy(float) + 180.0) % 360.0 - 180.0
-    return pd.DataFrame({"kind": chosen["kind"].astype(str).to_numpy(),
-                         "dlat": chosen["lat"].to_numpy(float) - centre["lat"].to_numpy(float),
-                         "dlon": dlon})
-
-
 def example_days_across_record(tags, pcs, *, n_periods=5) -> pd.DataFrame:
     """The most typical day of each regime in each period of the record.
 
@@ -840,6 +821,6 @@ __all__ = [
     "regime_frequency_by_month", "regime_frequency_by_year", "regime_persistence",
     "regime_runs", "regime_trend", "season_days", "season_label", "season_months",
     "season_tags", "typical_days", "yearly_regime_series", "run_length_counts",
-    "regime_report_density", "cyclone_centred_composite", "events_relative_to_centres",
+    "regime_report_density", "cyclone_centred_composite",
     "example_days_across_record",
 ]
