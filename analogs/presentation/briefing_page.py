@@ -20,6 +20,8 @@ import numpy as np
 import pandas as pd
 
 from analogs import CAUTION, __version__
+from analogs.presentation.figures import degrees_east_label as east
+from analogs.presentation.figures import degrees_north_label as north
 from analogs.presentation.report import embed_png
 from analogs.stages.outcomes import binomial_interval
 
@@ -31,7 +33,7 @@ th{background:#f2f2f2}td.l,th.l{text-align:left}td.d{white-space:nowrap;font-var
 td{font-variant-numeric:tabular-nums}
 .caution{border-left:4px solid #555;padding:.5em 1em;background:#f7f7f7}
 .answer{background:#f4f7fb;border:1px solid #d5dfea;padding:.6em 1.2em;border-radius:4px}
-.answer li{margin:.3em 0}
+.answer li{margin:.3em 0}.answer h2{margin-top:.3em}
 figure{margin:1.2em 0}figcaption{font-size:.9em;color:#444}
 img{max-width:100%;height:auto;border:1px solid #eee}
 .scroll{overflow-x:auto}
@@ -124,7 +126,7 @@ def summary_items(tables: dict, trend: pd.DataFrame | None, settings: dict,
         others = ", ".join(f"{html.escape(r)} {percent(p)}" for r, p in per["p"].iloc[1:].items())
         items.append(
             f"Reports in the region: <strong>{html.escape(top)}</strong> days most often had "
-            f"one or more ({percent(per.loc[top, 'p'])}, {100 * level:.0f}% interval "
+            f"one or more reports ({percent(per.loc[top, 'p'])}, {100 * level:.0f}% interval "
             f"{percent(per.loc[top, 'low'])} to {percent(per.loc[top, 'high'])}), against "
             f"{percent(overall)} of all days; {others}.")
     if trend is not None and len(trend):
@@ -162,11 +164,11 @@ def settings_table(settings: dict) -> str:
     """What the briefing was made from, one row a setting, in words."""
     region = settings.get("region") or {}
     if region.get("kind") == "box":
-        region_text = (f"box {region.get('south')} to {region.get('north')} °N, "
-                       f"{region.get('west')} to {region.get('east')} °E")
+        region_text = (f"box {north(region['south'])} to {north(region['north'])}, "
+                       f"{east(region['west'])} to {east(region['east'])}")
     elif region.get("kind") == "point":
-        region_text = (f"{region.get('radius_km')} km around {region.get('lat')} °N, "
-                       f"{region.get('lon')} °E")
+        region_text = (f"{region.get('radius_km'):g} km around {north(region['lat'])}, "
+                       f"{east(region['lon'])}")
     else:
         region_text = "whole domain" if region.get("kind") == "whole" else str(region or "n/a")
     months = settings.get("months")
@@ -248,7 +250,7 @@ def _examples_table(examples: pd.DataFrame) -> str:
                         "tag confidence"], kinds="lldnn")
 
 
-def _skill_section(skill) -> str:
+def _skill_section(skill, months=None) -> str:
     if not skill:
         return ("<p>No cross-validated skill in this store (it was built without reports "
                 "or from fewer than two years).</p>")
@@ -259,7 +261,8 @@ def _skill_section(skill) -> str:
             f"(year-bootstrap interval {lo:.2f} to {hi:.2f}), ROC area "
             f"{skill.get('roc_auc', float('nan')):.2f}. Above 0 means the analogs beat the "
             "season's climatology.</p>")
-    by_month = sorted((skill.get("by_month") or {}).items(), key=lambda item: int(item[0]))
+    by_month = sorted(((m, e) for m, e in (skill.get("by_month") or {}).items()
+                       if not months or int(m) in months), key=lambda item: int(item[0]))
     rows = [[month_name(m), e["n_days"], percent(e["base_rate"]), f"{e['brier_score']:.3f}",
              "n/a" if e["brier_skill_score"] is None else f"{e['brier_skill_score']:.2f}"]
             for m, e in by_month]
@@ -334,7 +337,8 @@ def briefing_html(tables: dict, slides, manifest: dict, settings: dict, *,
                          "the regime's mean pattern (in the EOF space the analogs are "
                          "searched in), so the examples span the whole record.</p>"
                          + _examples_table(examples)))
-    sections.append(("Cross-validated skill of this store", _skill_section(skill)))
+    sections.append(("Cross-validated skill of this store",
+                     _skill_section(skill, settings.get("months"))))
     for heading, body in sections:
         parts.append(f"<h2>{html.escape(heading)}</h2>\n{body}")
     archive = manifest.get("archive") or {}
