@@ -530,12 +530,16 @@ def cyclone_centred_maps(in_place: xr.Dataset, centred: xr.Dataset, *, season=""
                           pad=0.16, aspect=40)
     bar.set_label("mean 500 hPa height anomaly (gpm)", fontsize=8)
     n = centred.attrs.get("n_days", "")
+    low = np.unravel_index(np.nanargmin(z_centre), z_centre.shape)
+    low_at = (f"{abs(dlat[low[0]]):g} degrees {'north' if dlat[low[0]] >= 0 else 'south'} "
+              f"and {abs(dlon[low[1]]):g} degrees {'east' if dlon[low[1]] >= 0 else 'west'} "
+              "of the centre")
     figure.suptitle(_title(f"Tropical days with a cyclone centre ({n} days)", season)
                     + "\nthe same days averaged in place and centred on each day's cyclone "
                       "(+)", fontsize=11)
     figure.alt_text = (f"Mean 500 hPa height anomaly of {n} tropical days: averaged in "
                        f"place the lowest value is {np.nanmin(z_place):.0f} gpm; centred on "
-                       f"each day's cyclone it is {np.nanmin(z_centre):.0f} gpm." + text)
+                       f"each day's cyclone it is {np.nanmin(z_centre):.0f} gpm, {low_at}." + text)
     return figure
 
 
