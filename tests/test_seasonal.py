@@ -11,6 +11,7 @@ from scipy import stats
 from analogs.errors import AnalogsInputError
 from analogs.stages.outcomes import daily_event_counts
 from analogs.stages.seasonal import (
+    example_days_across_record,
     outcomes_by_regime_and_month,
     parse_months,
     regime_composites,
@@ -20,7 +21,6 @@ from analogs.stages.seasonal import (
     regime_runs,
     regime_trend,
     season_days,
-    typical_days,
 )
 from analogs.workflows.briefing import build_briefing, store_regime_composites
 from analogs.workflows.files import write_netcdf
@@ -280,27 +280,15 @@ def test_persistence_statistics_against_numpy():
     assert np.isnan(table.loc["tropical", "mean_days"])
 
 
-def test_typical_days_are_confident_and_apart(demo_store):
-    table = typical_days(demo_store.tags, n=4)
-    tags = demo_store.tags
-    for regime, part in table.groupby("regime"):
-        of_regime = tags[tags["regime"] == regime]
-        assert part["confidence"].iloc[0] == pytest.approx(of_regime["confidence"].max())
-        assert part["confidence"].is_monotonic_decreasing
-        gaps = np.abs(np.subtract.outer(part["date"].values, part["date"].values))
-        gaps = gaps[~np.eye(len(part), dtype=bool)].astype("timedelta64[D]").astype(int)
-        assert (gaps >= 7).all()
-        assert len(part) == min(4, len(of_regime))
-
-
 def test_bad_tags_and_months_are_refused():
     with pytest.raises(AnalogsInputError, match="'regime' column"):
         regime_frequency_by_month(pd.DataFrame({"label": ["other"]}))
     tags = _tags(pd.date_range("2001-06-01", periods=3), ["other"] * 3)
     with pytest.raises(AnalogsInputError, match="'months' parameter.*1-12"):
         regime_frequency_by_month(tags, months=[13])
-    with pytest.raises(AnalogsInputError, match="'n' parameter of typical_days"):
-        typical_days(tags, n=0)
+    with pytest.raises(AnalogsInputError, match="'n_periods' parameter of "
+                                                "example_days_across_record"):
+        example_days_across_record(tags, None, n_periods=0)
 
 
 # ---------------------------------------------------------------- briefing

@@ -37,8 +37,6 @@ from analogs.stages.outcomes import (PRACTICALLY_PERFECT_SIGMA_KM, binomial_inte
                                      report_density)
 from analogs.stages.regimes import REGIME_LABELS
 
-#: Least spacing, in days, between two typical days of one regime (distinct cases).
-TYPICAL_DAY_SEPARATION = 7
 #: Days of climatology predicted at once when averaging it over many days (memory bound).
 _CLIMATOLOGY_CHUNK_DAYS = 1000
 
@@ -509,36 +507,6 @@ def regime_persistence(tags) -> pd.DataFrame:
     return table
 
 
-def typical_days(tags, n=5, *, separation=TYPICAL_DAY_SEPARATION) -> pd.DataFrame:
-    """A few example days of each regime for case studies: its most confident days,
-    each at least ``separation`` days from the others chosen (distinct cases).
-
-    Returns one row per chosen day: ``regime``, ``rank``, ``date``, ``confidence`` and
-    ``reason`` (when the tags have it), best first within each regime.
-    """
-    owner = "typical_days"
-    if isinstance(n, bool) or not isinstance(n, (int, np.integer)) or n < 1:
-        raise AnalogsInputError(f"The 'n' parameter of {owner} must be an integer >= 1. "
-                                f"Got {n!r} instead.")
-    tags = _check_tags(tags, owner)
-    if "confidence" not in tags.columns:
-        raise AnalogsInputError(f"The 'tags' parameter of {owner} needs a 'confidence' column.")
-    rows = []
-    for regime in _regimes_of(tags):
-        part = tags[tags["regime"].astype(str) == regime]
-        part = part.sort_values("confidence", ascending=False, kind="stable")
-        chosen = []
-        for day, row in part.iterrows():
-            if all(abs((day - other).days) >= separation for other in chosen):
-                chosen.append(day)
-                rows.append({"regime": regime, "rank": len(chosen), "date": day,
-                             "confidence": float(row["confidence"]),
-                             "reason": str(row.get("reason", ""))})
-            if len(chosen) == n:
-                break
-    return pd.DataFrame(rows, columns=["regime", "rank", "date", "confidence", "reason"])
-
-
 
 # ------------------------------------------------------------------ slide tables
 
@@ -820,7 +788,7 @@ __all__ = [
     "Sampling", "archive_sampling", "outcomes_by_regime_and_month", "parse_months", "regime_composites",
     "regime_frequency_by_month", "regime_frequency_by_year", "regime_persistence",
     "regime_runs", "regime_trend", "season_days", "season_label", "season_months",
-    "season_tags", "typical_days", "yearly_regime_series", "run_length_counts",
+    "season_tags", "yearly_regime_series", "run_length_counts",
     "regime_report_density", "cyclone_centred_composite",
     "example_days_across_record",
 ]
