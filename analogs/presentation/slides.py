@@ -381,7 +381,7 @@ def regime_composite_maps(composites: xr.Dataset, density: xr.DataArray | None =
     if moisture:
         columns.append((moisture, None))
     if density is not None:
-        columns.append(("density", "reports per 1000 grid cells per day"))
+        columns.append(("density", "reports per grid cell per 1000 days"))
     lat, lon = composites["lat"].values, composites["lon"].values
     aspect = np.ptp(lat) / (np.ptp(lon) * np.cos(np.radians(np.mean(lat))))
     panel_w = 3.6
