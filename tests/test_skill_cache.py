@@ -157,3 +157,23 @@ def test_skip_option_and_read_only_store_give_the_command(store_copy, tmp_path, 
             subprocess.run(["umount", "-l", str(mount)], capture_output=True)
     assert read_only["measured"] is False and "read-only" in read_only["reason"]
     assert f"analogs verify --store {where} --region {POINT}" == read_only["command"]
+
+
+def test_two_queries_measuring_at_once_keep_both_entries(store_copy):
+    """Two processes measuring two regions at the same time: each keeps its entry through
+    the store's transaction (the second writer reads the first's version under the lock),
+    so both are there afterwards and every checksum holds."""
+    import sys
+    commands = [[sys.executable, "-m", "analogs", "find", "--store", str(store_copy),
+                 "--date", DATE, "--region", region, "--json"]
+                for region in (POINT, "36,-97,150")]
+    running = [subprocess.Popen(c, stdout=subprocess.PIPE, stderr=subprocess.PIPE)
+               for c in commands]
+    for process in running:
+        out, err = process.communicate(timeout=600)
+        assert process.returncode == 0, err.decode()
+        assert json.loads(out)["outcomes"]["skill"]["measured"] is True
+    manifest = store_io.check_checksums(store_copy)
+    regions = sorted(entry["key"]["region"]["radius_km"]
+                     for entry in manifest["skill_cache"].values())
+    assert regions == [100.0, 150.0]

@@ -278,13 +278,15 @@ class HeldOutNeighbours:
         distances arrays (n, top) best first, row -1 past the last analog. Targets of
         ``drop_year`` are left out and its days are not analogs."""
         rows, distances = self.rows[n_modes], self.distances[n_modes]
+        days = self.days[np.maximum(rows, 0)]
         targets = np.ones(self.targets.size, dtype=bool)
         valid = rows >= 0
         if drop_year is not None:
             targets = self.years[self.targets] != drop_year
-            rows, distances, valid = rows[targets], distances[targets], valid[targets]
+            rows, distances, valid, days = (rows[targets], distances[targets],
+                                            valid[targets], days[targets])
             valid &= self.years[np.maximum(rows, 0)] != drop_year
-        kept = decluster_many(self.days[np.maximum(rows, 0)], valid, self.separation, self.top)
+        kept = decluster_many(days, valid, self.separation, self.top)
         found = kept >= 0
         safe = np.maximum(kept, 0)
         return (targets, np.where(found, np.take_along_axis(rows, safe, axis=1), -1),
