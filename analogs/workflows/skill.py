@@ -352,11 +352,12 @@ def skill_for(store, target_time=None, *, region=None, kinds=None, settings=None
       (``reason`` says why: not asked to measure, or a read-only store).
 
     A region without any report on the covered days (or every day with one) cannot be
-    measured: ``measured`` False with ``reason``. None when the store holds no events.
+    measured: ``measured`` False with ``reason``. None when the store holds no events (no events table, or
+    a header-only one).
     """
     from analogs.workflows import store as store_io
     from analogs.workflows.find import _derived
-    if store.events is None:
+    if store.events is None or len(store.events) == 0:
         return None
     settings = skill_settings(store) if settings is None else settings
     region_object = resolve_region(store, region)
