@@ -91,7 +91,7 @@ def find(store, *, date=None, field=None, time=None, top=P.top.api_default,
          separation=P.separation.default, region=None, regime=None,
          weights=P.weights.default, confidence=P.confidence.default,
          sequence=P.sequence.default, kinds=None,
-         skip_skill_hindcast=False) -> FindResult | ValidTimesResult:
+         skip_skill_hindcast=P.skip_skill_hindcast.api_default) -> FindResult | ValidTimesResult:
     """Closest archive days of ``store`` to a target and what they produced.
 
     Give exactly one of ``date`` (an archive day, YYYY-MM-DD) or ``field`` (a path or a
