@@ -23,7 +23,11 @@ POINT = "38,-95,100"
 
 @pytest.fixture
 def store_copy(demo_store, tmp_path):
-    return rh.copy_store(demo_store.path, tmp_path / "store")
+    """A copy of the session's store without the measurements other tests kept in it."""
+    path = rh.copy_store(demo_store.path, tmp_path / "store")
+    store_io.edit_manifest(path, lambda manifest, files: {
+        k: v for k, v in manifest.items() if k != "skill_cache"})
+    return path
 
 
 def _find_skill(path, *extra):
