@@ -83,7 +83,7 @@ def build_parser() -> argparse.ArgumentParser:
                          f"two days is {DISTANCE}.",
              options=(P.store, P.date, P.field, P.time, P.top, P.window, P.separation,
                       P.region, P.exclude, P.regime, P.kinds, P.sequence, P.weights, P.json,
-                      P.report, P.maps),
+                      P.report, P.maps, P.skip_skill_hindcast),
              exclusive=((True, (P.date, P.field)),))
     _command(commands, "verify", handler=_cmd_verify,
              help="cross-validated skill of the store's analog probabilities",
@@ -234,7 +234,8 @@ def _cmd_find(args) -> int:
     result = find(store, date=args.date, field=args.field, time=args.time, top=args.top,
                   window=args.window, exclude=args.exclude, separation=args.separation,
                   region=args.region, regime=args.regime, weights=args.weights,
-                  sequence=args.sequence, kinds=args.kind)
+                  sequence=args.sequence, kinds=args.kind,
+                  skip_skill_hindcast=args.skip_skill_hindcast)
     if several_times(args.time):  # one answer per valid time (a ValidTimesResult)
         return _print_valid_times(store, result, args)
     drawn = args.report and store.events is not None

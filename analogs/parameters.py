@@ -367,6 +367,11 @@ PARAMETERS: dict[str, Parameter] = _table(
               "fraction of analogs with a report within 40 km of each grid point and a "
               "smoothed report density (Gaussian, sigma 120 km); never inside a store",
               kind="path", metavar="FILE.nc", default_text="no maps", output="file"),
+    Parameter("skip_skill_hindcast", ("--skip-skill-hindcast",), "do not measure the "
+              "skill of the query's region, kinds and settings when the store holds no "
+              "measurement of them (a leave-one-year-out hindcast, about a second for a few "
+              "years of days, kept in the store for later queries); the skill line then "
+              "gives the command that measures it", kind="flag"),
     # -- verify -----------------------------------------------------------------------------
     Parameter("query_modes", ("--modes",), "use only the leading K EOF modes", name="n_modes",
               kind="int", minimum=1, units="modes", metavar="K",

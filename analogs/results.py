@@ -189,8 +189,9 @@ class OutcomeSummary:
         if self.cyclone_quadrants is not None:
             lines.append("cyclone_quadrants: events around the tropical analogs' cyclones "
                          f"({len(self.cyclone_quadrants)} rows)")
-        lines.append("skill: " + ("not measured" if not self.skill else
-                                  f"Brier skill score {self.skill.get('brier_skill_score')}"))
+        measured = bool(self.skill) and self.skill.get("measured") is not False
+        lines.append("skill: " + (f"Brier skill score {self.skill.get('brier_skill_score')}"
+                                  if measured else "not measured"))
         return "\n".join(lines)
 
     def replace(self, **changes) -> "OutcomeSummary":

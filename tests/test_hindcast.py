@@ -232,3 +232,43 @@ def test_nested_tuning_scores_each_year_with_a_setting_chosen_without_it(synthet
                               "n_modes": int(result["table"].iloc[0]["n_modes"])}
     with pytest.raises(AnalogsInputError, match="at least three years"):
         nested_tune(pcs[:730], times[:730], observed[:730])
+
+
+@pytest.mark.parametrize("separation,exclude", [(3, 10), (0, None)])
+def test_one_search_gives_every_hindcast_of_a_scan(synthetic, separation, exclude):
+    """HeldOutNeighbours (one ranking per mode count, vectorised de-clustering) gives, for
+    every setting and with any one year dropped, the very frame of leave_one_year_out
+    run on its own (the faiss path of the live query's selection), day by day."""
+    from analogs.stages.hindcast import HeldOutNeighbours
+
+    pcs, observed = synthetic
+    months = [12, 1, 6]
+    neighbours = HeldOutNeighbours(pcs, TIMES, observed, modes=(2, 6), top=25,
+                                   separation=separation, exclude=exclude, months=months,
+                                   drop_years=True)
+    for drop_year in (None, 1991, 1995):
+        keep = TIMES.year != drop_year
+        for n_modes in (2, 6):
+            frames = neighbours.hindcasts((4, 25), n_modes, drop_year=drop_year)
+            for top, frame in frames.items():
+                expected = leave_one_year_out(pcs[keep], TIMES[keep], observed[keep],
+                                              top=top, n_modes=n_modes, months=months,
+                                              separation=separation, exclude=exclude)
+                pd.testing.assert_frame_equal(frame, expected, check_dtype=False)
+
+
+def test_vectorised_declustering_equals_the_greedy_rule():
+    """decluster_many against decluster_days (the one greedy rule, kept list by list) on
+    random ranked lists with gaps (common practice, no source: a greedy de-clustering)."""
+    from analogs.stages.selection import decluster_days, decluster_many
+
+    rng = np.random.default_rng(3)
+    days = rng.integers(0, 60, size=(200, 40))
+    valid = rng.random((200, 40)) > 0.2
+    for separation, limit in ((0, 7), (2, 5), (5, 12)):
+        kept = decluster_many(days, valid, separation, limit)
+        for j in range(days.shape[0]):
+            positions = np.flatnonzero(valid[j])
+            expected = positions[decluster_days(days[j][positions], separation, limit)]
+            got = kept[j][kept[j] >= 0]
+            np.testing.assert_array_equal(got, expected)

@@ -175,7 +175,8 @@ def _public_functions():
     from analogs.workflows import analog_store, briefing, build, demo, find, skill, update
     return [
         (find.find, (P.date, P.field, P.time, P.top, P.window, P.exclude, P.separation,
-                     P.region, P.regime, P.weights, P.confidence, P.sequence, P.kinds)),
+                     P.region, P.regime, P.weights, P.confidence, P.sequence, P.kinds,
+                     P.skip_skill_hindcast)),
         (skill.verify, (P.top, P.window, P.separation, P.query_modes, P.region, P.months,
                         P.threshold, P.n_resamples, P.kinds)),
         (skill.tune, (P.tops, P.scan_modes, P.window, P.separation, P.region, P.months,

@@ -177,22 +177,27 @@ def test_skill_line_is_the_skill_of_what_the_query_forecasts(demo_store, capsys)
     """A query for the store's region quotes the skill measured for it with the base rate
     beside it (the month's base rate equals the share of that month's days with an event,
     counted here with numpy: common practice, no source); a 40 km point query, or one
-    asking about some kinds only, was not measured and says so with the command that
-    measures it (issue 16)."""
+    asking about some kinds only, told not to measure (measuring, on copies of the store,
+    is in test_skill_cache.py) says "not measured" with the command that measures it
+    (issue 16)."""
     date = "2003-07-02"
     assert main(["find", "--store", str(demo_store.path), "--date", date, "--json"]) == 0
     skill = json.loads(capsys.readouterr().out)["outcomes"]["skill"]
-    assert skill["measured"] is True
+    assert skill["measured"] is True and skill["source"] == "build"
     july = demo_store.times.month == 7
     assert skill["month_base_rate"] == pytest.approx(demo_store.observed()[july].mean())
     assert 0 < skill["base_rate"] < 1
+    assert main(["find", "--store", str(demo_store.path), "--date", date]) == 0
+    text = capsys.readouterr().out
+    assert f"base rate {100 * skill['base_rate']:.0f}% of days" in text
+    assert "90% range over resampled years" in text
     assert main(["find", "--store", str(demo_store.path), "--date", date, "--region",
-                 "38,-95,40"]) == 0
+                 "38,-95,40", "--skip-skill-hindcast"]) == 0
     text = capsys.readouterr().out
     assert "not measured for this region" in text
     assert f"analogs verify --store {demo_store.path} --region 38,-95,40" in text
     assert "not the range of today's probability" in text
     assert main(["find", "--store", str(demo_store.path), "--date", date, "--kind",
-                 "tornado", "--json"]) == 0
+                 "tornado", "--json", "--skip-skill-hindcast"]) == 0
     skill = json.loads(capsys.readouterr().out)["outcomes"]["skill"]
     assert skill["measured"] is False and skill["command"].endswith("--kind tornado")

@@ -26,24 +26,36 @@ def _fmt_interval(interval) -> str:
     return f"[{100.0 * lo:.0f}-{100.0 * hi:.0f}%]"
 
 
+def _percent(value) -> str:
+    """A base rate as a percentage: one decimal below 10 %, where rare events live."""
+    return f"{100 * value:.1f}%" if value < 0.1 else f"{100 * value:.0f}%"
+
+
 def skill_line(skill) -> str:
     """One line on what this query's guidance has been worth (cross-validated), or ''."""
     if not skill:
         return ""
+    where = "this region" + (f" and kinds {', '.join(skill['kinds'])}" if skill.get("kinds")
+                             else "")
     if skill.get("measured") is False:
-        return ("Worth in the past: not measured for this region"
-                + (" and these kinds" if skill.get("kinds") else "")
-                + f"; measure it with: {skill['command']}")
+        reason = f" ({skill['reason']})" if skill.get("reason") else ""
+        return (f"Worth in the past: not measured for {where}{reason}; measure it with: "
+                f"{skill['command']}")
     lo, hi = skill["brier_skill_score_ci"]
-    text = (f"Worth in the past (leave-one-year-out, store region, any kind): Brier skill "
-            f"score {skill['brier_skill_score']:.2f} [{lo:.2f}, {hi:.2f}] vs season "
-            f"climatology, ROC area {skill['roc_auc']:.2f}")
+    text = (f"Worth in the past for {where} (leave-one-year-out hindcast of P(any report), "
+            f"{skill.get('source', 'build')}): Brier skill score "
+            f"{skill['brier_skill_score']:.2f} vs season climatology (0 = no better, 1 = "
+            f"perfect; 90% range over resampled years {lo:.2f} to {hi:.2f})")
     if skill.get("base_rate") is not None:
-        text += f", base rate {100 * skill['base_rate']:.0f}%"
+        text += f", base rate {_percent(skill['base_rate'])} of days"
+    text += f", ROC area {skill['roc_auc']:.2f}"
     if skill.get("month_brier_skill_score") is not None:
         text += f"; in month {skill['month']}: {skill['month_brier_skill_score']:.2f}"
+        if skill.get("month_brier_skill_score_ci"):
+            m_lo, m_hi = skill["month_brier_skill_score_ci"]
+            text += f" ({m_lo:.2f} to {m_hi:.2f})"
         if skill.get("month_base_rate") is not None:
-            text += f", base rate {100 * skill['month_base_rate']:.0f}%"
+            text += f", base rate {_percent(skill['month_base_rate'])}"
     return text
 
 

@@ -27,8 +27,8 @@ from analogs.stages.index import AnalogIndex
 from analogs.stages.scores import (bootstrap_interval, brier_score, brier_skill_score, roc_auc,
                                    roc_auc_within, verification_summary)
 from analogs.stages.selection import (DEFAULT_EXCLUDE, DEFAULT_SEPARATION, DEFAULT_TOP,
-                                      DEFAULT_WINDOW, candidate_ids, day_of_year,
-                                      held_out_mask, rank_many)
+                                      DEFAULT_WINDOW, candidate_ids, day_numbers,
+                                      day_of_year, decluster_many, held_out_mask, rank_many)
 
 HINDCAST_METHODS = ("analogs", "random")
 #: Annual harmonics beside the PCs in the logistic-regression baseline.
@@ -198,6 +198,140 @@ def _with_analogs(batches, pcs, times, *, top, separation):
         yield queries, season, other_years, chosen
 
 
+class HeldOutNeighbours:
+    """Every leave-one-year-out hindcast of a scan, from one neighbour search.
+
+    :func:`leave_one_year_out` searches the index once per setting. A scan over numbers
+    of analogs and of modes, and the inner folds of nested tuning (the archive without
+    one year), need many hindcasts of the same days: here each target's held-out
+    candidates (the same season window and :func:`~analogs.stages.selection.held_out_mask`
+    as the hindcast) are ranked once per mode count, from squared differences summed
+    over the leading modes (every prefix of the modes from one pass), deep enough for
+    the largest number of analogs after de-clustering and, for the inner folds, after
+    any one year's days are dropped. Each hindcast is then a vectorised de-clustering
+    (:func:`~analogs.stages.selection.decluster_many`, once per mode count and dropped
+    year: the first k kept are the k analogs for every k) and prefix sums.
+    :meth:`hindcast` returns what :func:`leave_one_year_out` returns for the same
+    setting (and, with ``drop_year``, for the archive without that year): the tests
+    check it day by day.
+
+    Parameters
+    ----------
+    pcs, times, observed, window, separation, months, exclude : as in
+        :func:`leave_one_year_out`.
+    modes : the numbers of leading modes that will be asked for.
+    top : the largest number of analogs that will be asked for.
+    drop_years : whether :meth:`hindcast` will be asked to drop a year (nested tuning):
+        the ranked lists are then one year's season window deeper.
+    """
+
+    def __init__(self, pcs, times, observed, *, modes, top, window=DEFAULT_WINDOW,
+                 separation=DEFAULT_SEPARATION, months=None, exclude=DEFAULT_EXCLUDE,
+                 drop_years=False, progress=False):
+        owner = "HeldOutNeighbours"
+        pcs, times, top, window, separation = _checked(pcs, times, top, window, separation,
+                                                       None, owner, exclude)
+        self.modes = sorted({int(m) for m in modes})
+        if not self.modes or self.modes[0] < 1 or self.modes[-1] > pcs.shape[1]:
+            raise AnalogsInputError(f"{owner}: mode counts must lie in 1..{pcs.shape[1]}; "
+                                    f"got {list(modes)}")
+        self.times, self.top, self.separation = times, top, separation
+        self.observed = np.asarray(observed, dtype=bool)
+        self.years = times.year.to_numpy()
+        self.year_values = np.unique(self.years)
+        self.days = day_numbers(times)
+        targets = np.ones(len(times), dtype=bool)
+        if months is not None:
+            targets &= np.isin(times.month, list(months))
+        self.targets = np.flatnonzero(targets)
+        depth = top * (2 * separation + 1) + (2 * window + 2 if drop_years else 0)
+        n_targets = self.targets.size
+        self.rows = {m: np.full((n_targets, depth), -1, dtype=np.int64) for m in self.modes}
+        self.distances = {m: np.full((n_targets, depth), np.inf) for m in self.modes}
+        # Per target and year: season-window days it may take, and those with the event
+        # (the climatology reference, with or without a dropped year).
+        self.n_allowed = np.zeros((n_targets, self.year_values.size))
+        self.n_events = np.zeros((n_targets, self.year_values.size))
+        year_column = np.searchsorted(self.year_values, self.years)
+        position = np.full(len(times), -1)
+        position[self.targets] = np.arange(n_targets)
+        batches = _calendar_day_batches(times, targets, window, exclude, progress=progress)
+        top_modes = self.modes[-1]
+        for queries, season, other_years, _ in batches:
+            at = position[queries]
+            allowed = other_years[:, season]
+            one_hot = np.eye(self.year_values.size)[year_column[season]]
+            self.n_allowed[at] = allowed @ one_hot
+            self.n_events[at] = (allowed & self.observed[season]) @ one_hot
+            squared = np.cumsum((pcs[queries][:, None, :top_modes]
+                                 - pcs[season][None, :, :top_modes]) ** 2, axis=2)
+            keep = min(depth, season.size)
+            for m in self.modes:
+                distance = np.where(allowed, np.sqrt(squared[:, :, m - 1]), np.inf)
+                order = np.argsort(distance, axis=1, kind="stable")[:, :keep]
+                ranked = np.take_along_axis(distance, order, axis=1)
+                self.rows[m][at, :keep] = np.where(np.isfinite(ranked), season[order], -1)
+                self.distances[m][at, :keep] = ranked
+
+    def analogs(self, n_modes, drop_year=None):
+        """The analogs of every target: (targets kept, rows, distances), the rows and
+        distances arrays (n, top) best first, row -1 past the last analog. Targets of
+        ``drop_year`` are left out and its days are not analogs."""
+        rows, distances = self.rows[n_modes], self.distances[n_modes]
+        days = self.days[np.maximum(rows, 0)]
+        targets = np.ones(self.targets.size, dtype=bool)
+        valid = rows >= 0
+        if drop_year is not None:
+            targets = self.years[self.targets] != drop_year
+            rows, distances, valid, days = (rows[targets], distances[targets],
+                                            valid[targets], days[targets])
+            valid &= self.years[np.maximum(rows, 0)] != drop_year
+        kept = decluster_many(days, valid, self.separation, self.top)
+        found = kept >= 0
+        safe = np.maximum(kept, 0)
+        return (targets, np.where(found, np.take_along_axis(rows, safe, axis=1), -1),
+                np.where(found, np.take_along_axis(distances, safe, axis=1), np.nan))
+
+    def climatology(self, drop_year=None) -> np.ndarray:
+        """The season-window climatology of every target (of the targets outside
+        ``drop_year``, without that year's days), as in :func:`leave_one_year_out`."""
+        n_allowed, n_events = self.n_allowed, self.n_events
+        if drop_year is not None:
+            targets = self.years[self.targets] != drop_year
+            column = np.searchsorted(self.year_values, drop_year)
+            n_allowed = np.delete(n_allowed[targets], column, axis=1)
+            n_events = np.delete(n_events[targets], column, axis=1)
+        total = n_allowed.sum(axis=1)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            return np.where(total > 0, n_events.sum(axis=1) / total, np.nan)
+
+    def hindcasts(self, tops, n_modes, drop_year=None) -> dict:
+        """``{top: hindcast}`` for each number of analogs in ``tops`` with ``n_modes``
+        modes: the frames of :func:`leave_one_year_out` (without ``drop_year``)."""
+        targets, rows, _ = self.analogs(n_modes, drop_year)
+        found = rows >= 0
+        hits = np.cumsum(np.where(found, self.observed[np.maximum(rows, 0)], False), axis=1)
+        count = found.sum(axis=1)
+        climatology = self.climatology(drop_year)
+        target_rows = self.targets[targets]
+        frames = {}
+        for top in tops:
+            n_analogs = np.minimum(count, top)
+            with np.errstate(invalid="ignore", divide="ignore"):
+                forecast = np.where(
+                    n_analogs > 0,
+                    hits[np.arange(hits.shape[0]), np.maximum(n_analogs - 1, 0)] / n_analogs,
+                    np.nan)
+            done = np.isfinite(forecast) & np.isfinite(climatology)
+            chosen = target_rows[done]
+            frames[top] = pd.DataFrame({
+                "time": self.times[chosen], "year": self.years[chosen],
+                "forecast": forecast[done], "observed": self.observed[chosen].astype(int),
+                "climatology": climatology[done], "n_analogs": n_analogs[done],
+            })
+        return frames
+
+
 def seasonal_harmonics(times, n_harmonics=N_HARMONICS) -> np.ndarray:
     """cos and sin of k * 2 pi * day of year / 365.2425 for k = 1 .. ``n_harmonics``:
     array (n_days, 2 n_harmonics), the smooth seasonal cycle as regression inputs."""
@@ -289,15 +423,16 @@ def tune(pcs, times, observed, *, tops=P.tops.default, modes=P.scan_modes.defaul
     modes = sorted({int(m) for m in modes if m <= available})
     if not modes:
         raise AnalogsInputError(f"no mode count to scan: the store holds {available} modes")
+    neighbours = HeldOutNeighbours(pcs, times, observed, modes=modes, top=max(tops),
+                                   window=window, separation=separation, months=months,
+                                   progress=progress)
     rows = []
-    pairs = [(t, m) for m in modes for t in tops]
-    for top, n_modes in tqdm(pairs, desc="tuning", disable=not progress):
-        hindcast = leave_one_year_out(pcs, times, observed, top=top, window=window,
-                                      separation=separation, n_modes=n_modes, months=months)
-        p, o = hindcast["forecast"].to_numpy(), hindcast["observed"].to_numpy()
-        rows.append({"top": top, "n_modes": n_modes,
-                     "brier_score": brier_score(p, o),
-                     "brier_skill_score": brier_skill_score(p, o, hindcast["climatology"].to_numpy())})
+    for n_modes in modes:
+        for top, hindcast in neighbours.hindcasts(tops, n_modes).items():
+            p, o = hindcast["forecast"].to_numpy(), hindcast["observed"].to_numpy()
+            rows.append({"top": top, "n_modes": n_modes, "brier_score": brier_score(p, o),
+                         "brier_skill_score": brier_skill_score(
+                             p, o, hindcast["climatology"].to_numpy())})
     return pd.DataFrame(rows).sort_values("brier_skill_score", ascending=False, ignore_index=True)
 
 
@@ -317,7 +452,8 @@ def nested_tune(pcs, times, observed, *, tops=P.tops.default, modes=P.scan_modes
     Bioinformatics, from memory; common practice in model selection). The non-nested
     score (the best pair's score on the folds that chose it) is returned beside it.
 
-    Costs (number of years + 1) x (number of pairs) hindcasts.
+    Costs one neighbour search (:class:`HeldOutNeighbours`) and (number of years + 1) x
+    (number of mode counts) vectorised de-clusterings.
 
     Returns
     -------
@@ -345,11 +481,14 @@ def nested_tune(pcs, times, observed, *, tops=P.tops.default, modes=P.scan_modes
         p, o = hindcast["forecast"].to_numpy(), hindcast["observed"].to_numpy()
         return brier_skill_score(p, o, hindcast["climatology"].to_numpy())
 
+    neighbours = HeldOutNeighbours(pcs, times, observed, modes=modes + [reference[1]],
+                                   top=max([*tops, reference[0]]), drop_years=True,
+                                   progress=progress, **common)
     full = {}
-    for top, n_modes in tqdm(pairs + [reference], desc="tuning", disable=not progress):
-        if (top, n_modes) not in full:
-            full[(top, n_modes)] = leave_one_year_out(pcs, times, observed, top=top,
-                                                      n_modes=n_modes, **common)
+    for n_modes in sorted(set(modes + [reference[1]])):
+        wanted = [t for t, m in pairs + [reference] if m == n_modes]
+        full.update({(t, n_modes): frame
+                     for t, frame in neighbours.hindcasts(wanted, n_modes).items()})
     table = pd.DataFrame([{"top": t, "n_modes": m,
                            "brier_score": brier_score(full[(t, m)]["forecast"].to_numpy(),
                                                       full[(t, m)]["observed"].to_numpy()),
@@ -357,10 +496,10 @@ def nested_tune(pcs, times, observed, *, tops=P.tops.default, modes=P.scan_modes
     table = table.sort_values("brier_skill_score", ascending=False, ignore_index=True)
     chosen, parts = {}, []
     for year in tqdm(years, desc="nested tuning", disable=not progress):
-        keep = times.year != year
-        inner = {(t, m): skill(leave_one_year_out(pcs[keep], times[keep], observed[keep],
-                                                  top=t, n_modes=m, **common))
-                 for t, m in pairs}
+        inner = {}
+        for n_modes in modes:
+            for t, frame in neighbours.hindcasts(tops, n_modes, drop_year=year).items():
+                inner[(t, n_modes)] = skill(frame)
         best = max(pairs, key=lambda pair: (np.nan_to_num(inner[pair], nan=-np.inf)))
         chosen[int(year)] = {"top": best[0], "n_modes": best[1]}
         outer = full[best]

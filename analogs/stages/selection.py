@@ -289,3 +289,44 @@ def rank_many(index: AnalogIndex, times, target_vectors, allowed, *, top, separa
         keep = decluster_days(days[rows], separation, limit=top)
         ranked.append((rows[keep], row_distances[keep]))
     return ranked
+
+
+def decluster_many(days, valid, separation_days, limit) -> np.ndarray:
+    """:func:`decluster_days` for many ranked lists at once, vectorised over the lists.
+
+    Parameters
+    ----------
+    days : int array (m, n), the day numbers (:func:`day_numbers`) of each list, best first.
+    valid : bool array (m, n), False where a list has no candidate (padding or removed).
+    separation_days, limit : as in :func:`decluster_days`.
+
+    Returns
+    -------
+    int array (m, limit): the positions kept in each list, best first, -1 after the last
+    one kept. Row j equals ``decluster_days(days[j][valid[j]], separation_days, limit)``
+    mapped back to positions of ``days[j]``.
+    """
+    days = np.asarray(days, dtype=np.int64)
+    valid = np.asarray(valid, dtype=bool)
+    n_lists, depth = days.shape
+    kept = np.full((n_lists, limit), -1, dtype=np.int64)
+    # Day numbers kept so far; far from any real day where nothing is kept yet.
+    kept_days = np.full((n_lists, limit), np.iinfo(np.int32).min, dtype=np.int64)
+    count = np.zeros(n_lists, dtype=np.int64)
+    for position in range(depth):
+        open_lists = np.flatnonzero(valid[:, position] & (count < limit))
+        if open_lists.size == 0:
+            if not (count < limit).any():
+                break
+            continue
+        if separation_days > 0:
+            day = days[open_lists, position]
+            near = np.abs(kept_days[open_lists] - day[:, None]) <= separation_days
+            taken = open_lists[~near.any(axis=1)]
+        else:
+            taken = open_lists
+        slot = count[taken]
+        kept[taken, slot] = position
+        kept_days[taken, slot] = days[taken, position]
+        count[taken] += 1
+    return kept

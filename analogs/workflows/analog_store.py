@@ -183,11 +183,11 @@ class AnalogStore:
         return find_workflow.daily_counts(self, region, kinds)
 
     # -- cross-validated skill -------------------------------------------------------
-    def skill_for(self, target_time=None, *, region=None, kinds=None) -> dict | None:
+    def skill_for(self, target_time=None, *, region=None, kinds=None, **options) -> dict | None:
         """The cross-validated skill of a query for ``region`` and ``kinds``, for the
         target's month when known (:func:`analogs.workflows.skill.skill_for`)."""
         from analogs.workflows import skill
-        return skill.skill_for(self, target_time, region=region, kinds=kinds)
+        return skill.skill_for(self, target_time, region=region, kinds=kinds, **options)
 
     def observed(self, region=None, kinds=None) -> np.ndarray:
         """Whether at least one event (of ``kinds``, default any) fell in the region on

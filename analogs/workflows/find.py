@@ -90,7 +90,8 @@ def find(store, *, date=None, field=None, time=None, top=P.top.api_default,
          window=P.window.default, exclude=P.exclude.api_default,
          separation=P.separation.default, region=None, regime=None,
          weights=P.weights.default, confidence=P.confidence.default,
-         sequence=P.sequence.default, kinds=None) -> FindResult | ValidTimesResult:
+         sequence=P.sequence.default, kinds=None,
+         skip_skill_hindcast=P.skip_skill_hindcast.api_default) -> FindResult | ValidTimesResult:
     """Closest archive days of ``store`` to a target and what they produced.
 
     Give exactly one of ``date`` (an archive day, YYYY-MM-DD) or ``field`` (a path or a
@@ -102,6 +103,9 @@ def find(store, *, date=None, field=None, time=None, top=P.top.api_default,
     :func:`sequence_vectors`); a field target then needs those days in its file.
     ``weights`` weighs the analogs in the outcome statistics (one of ``WEIGHT_SCHEMES``);
     ``confidence`` is the level of their intervals; ``kinds`` limits the events counted.
+    The outcomes quote the cross-validated skill of what the query forecasts (its region,
+    kinds and settings: :func:`analogs.workflows.skill.skill_for`), measured now and kept
+    in the store when no measurement is there, unless ``skip_skill_hindcast``.
 
     A field target is opened once and regridded to the store grid once; those fields
     serve the projection, the regime diagnostics and (``FindResult.target_fields``) the
@@ -141,7 +145,7 @@ def find(store, *, date=None, field=None, time=None, top=P.top.api_default,
     query = _Query.resolve(store, top=top, window=window, exclude=exclude,
                            separation=separation, region=region, regime=regime,
                            weights=weights, confidence=confidence, sequence=sequence,
-                           kinds=kinds)
+                           kinds=kinds, skip_skill_hindcast=bool(skip_skill_hindcast))
     if date is not None:
         row = day_row(store, date)
         vector = store.pcs.values[row, :query.n_modes]
@@ -172,6 +176,7 @@ class _Query:
     confidence: float
     sequence: int
     kinds: list | None
+    skip_skill_hindcast: bool
     n_modes: int
     index: object
     restrict: np.ndarray | None
@@ -198,6 +203,15 @@ class _Query:
                 "region": {**region.to_dict(), "label": region.label()},
                 "weights": self.weights, "n_modes": self.n_modes, "store": str(store.path)}
 
+    def skill(self, store, target_time) -> dict | None:
+        """The cross-validated skill of what this query forecasts (its region, kinds and
+        hindcast settings; :func:`analogs.workflows.skill.skill_for`)."""
+        from analogs.workflows.skill import skill_settings
+        settings = skill_settings(store, top=self.top, window=self.window,
+                                  separation=self.separation, n_modes=self.n_modes)
+        return store.skill_for(target_time, region=self.region, kinds=self.kinds,
+                               settings=settings, measure=not self.skip_skill_hindcast)
+
     def answer(self, store, vector, target_time) -> tuple[pd.DataFrame, object]:
         """The analogs table and the outcome summary of one target vector."""
         vector = np.asarray(vector, dtype=float)
@@ -215,7 +229,8 @@ class _Query:
                 + "); widen the season window or drop the regime")
         analogs = describe_analogs(store, chosen, self.region, self.kinds)
         outcomes = outcome_summary(store, analogs, target_time, self.window, self.region,
-                                   self.weights, self.confidence, self.kinds)
+                                   self.weights, self.confidence, self.kinds,
+                                   skill=self.skill(store, target_time))
         return analogs, outcomes
 
 
@@ -592,7 +607,8 @@ def ensemble_result(store, fields: xr.Dataset, pcs, vectors, uncovered, valid,
     warn_near_duplicate(store, pd.concat([t.head(1) for t in tables]), valid, query,
                         members=[t["member"].iloc[0] for t in tables])
     outcomes = outcome_summary(store, pooled, valid, query.window, query.region,
-                               query.weights, query.confidence, query.kinds)
+                               query.weights, query.confidence, query.kinds,
+                               skill=query.skill(store, valid))
     outcomes = outcomes.replace(member_spread=member_spread(members, pooled, query))
     shares = pd.Series([member.target["regime"] for member in members]).value_counts() \
         / len(members)
@@ -817,10 +833,10 @@ def describe_analogs(store, chosen: pd.DataFrame, region, kinds=None) -> pd.Data
 
 
 def outcome_summary(store, analogs, target_time, window, region, weights, confidence,
-                    kinds=None):
+                    kinds=None, skill=None):
     """:class:`analogs.results.OutcomeSummary` of the analog days beside the season
     window's climatology, with the cyclone quadrants of the tropical analogs and the
-    stored skill."""
+    query's cross-validated ``skill`` (:meth:`_Query.skill`)."""
     counts = daily_counts(store, region, kinds)
     if target_time is not None and window is not None:
         season = candidate_ids(store.times, target_time, window=window, exclude=None)
@@ -844,7 +860,7 @@ def outcome_summary(store, analogs, target_time, window, region, weights, confid
     tropical = analogs_known.loc[analogs_known["regime"] == "tropical", "row"].to_numpy()
     composite = cyclone_composite(store, tropical) if tropical.size else None
     return summary.replace(has_events=store.events is not None, cyclone_quadrants=composite,
-                           skill=store.skill_for(target_time, region=region, kinds=kinds))
+                           skill=skill)
 
 
 def outcome_maps(store, result: FindResult) -> xr.Dataset:

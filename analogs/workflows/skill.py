@@ -61,7 +61,8 @@ def hindcast_days(store, events: np.ndarray, *, region=None, kinds=None):
     return store.pcs.values[covered], store.times[covered], events[covered]
 
 
-def measured_skill(pcs, times, observed, covered, *, region) -> dict | None:
+def measured_skill(pcs, times, observed, covered, *, region, top=P.top.default,
+                   window=P.window.default, separation=P.separation.default) -> dict | None:
     """:func:`skill_by_month` over the days with report coverage (``covered``); None when
     it cannot be measured: fewer than two years covered, or no day (or every day) with
     an event there."""
@@ -70,7 +71,8 @@ def measured_skill(pcs, times, observed, covered, *, region) -> dict | None:
     events = np.asarray(observed, dtype=bool)[covered]
     if np.unique(times[covered].year).size < 2 or not 0 < events.sum() < events.size:
         return None
-    return skill_by_month(np.asarray(pcs)[covered], times[covered], events, region=region)
+    return skill_by_month(np.asarray(pcs)[covered], times[covered], events, region=region,
+                          top=top, window=window, separation=separation)
 
 
 def verify(store, *, top=P.top.api_default, window=P.window.default,
@@ -196,7 +198,7 @@ def skill_by_month(pcs, times, observed, *, region, top=P.top.default,
     reference forecasts are perfect has ``brier_skill_score`` null (the manifest is JSON).
     """
     from analogs.stages.hindcast import leave_one_year_out, score_hindcast
-    from analogs.stages.scores import brier_score, brier_skill_score
+    from analogs.stages.scores import bootstrap_interval, brier_score, brier_skill_score
     hindcast = leave_one_year_out(pcs, times, observed, top=top, window=window,
                                   separation=separation)
     months = pd.DatetimeIndex(hindcast["time"]).month
@@ -207,10 +209,17 @@ def skill_by_month(pcs, times, observed, *, region, top=P.top.default,
             continue
         p, o, reference = (part[c].to_numpy() for c in ("forecast", "observed", "climatology"))
         skill = brier_skill_score(p, o, reference)
+        try:  # none when too few resampled years have a defined score (no event)
+            interval = bootstrap_interval(brier_skill_score, p, o, reference,
+                                          n_resamples=200, block=part["year"].to_numpy())
+        except AnalogsInputError:
+            interval = (np.nan, np.nan)
         by_month[str(month)] = {
             "n_days": int(len(part)), "base_rate": float(o.mean()),
             "brier_score": brier_score(p, o),
             "brier_skill_score": None if np.isnan(skill) else skill,
+            "brier_skill_score_ci": (None if not np.all(np.isfinite(interval))
+                                     else [float(v) for v in interval]),
         }
     overall = score_hindcast(hindcast, n_resamples=200)
     return {"method": "leave-one-year-out hindcast of P(at least one event in region)",
@@ -231,34 +240,176 @@ def region_argument(region: dict) -> str:
     return ""
 
 
-def skill_for(store, target_time=None, *, region=None, kinds=None) -> dict | None:
-    """The cross-validated skill of what a query forecasts: P(at least one event of
-    ``kinds`` in ``region``), for the target's month when known.
+#: Entries of measured skill kept in a store's manifest (``skill_cache``): the newest.
+SKILL_CACHE_SIZE = 64
+#: Seconds a query waits for the store's writer lock to keep a skill it measured (a
+#: query does not wait behind an update: the skill is then quoted, not kept).
+SKILL_CACHE_LOCK_SECONDS = 5.0
+#: What the measured skill is; part of the cache key, so a change of method re-measures.
+SKILL_METHOD = "leave-one-year-out hindcast of P(at least one event in region)"
+#: Store files whose content the skill depends on (PCs and reports): their checksums
+#: are part of the cache key, so an update (new days or new reports) re-measures.
+_SKILL_INPUTS = ("scores.nc", "events.parquet")
 
-    The build measured it for the store's region and any kind (:func:`skill_by_month`);
-    that is quoted, with the base rate beside it, when the query asks about that region
-    and every kind. Any other region or kinds have not been measured: the answer says so
-    (``measured`` False) with the ``verify`` command that measures it. None when the store
-    holds no measured skill at all.
+
+def skill_settings(store, *, top=None, window=P.window.default,
+                   separation=P.separation.default, n_modes=None) -> dict:
+    """The hindcast settings a query's skill is measured with: its number of analogs,
+    season window, de-clustering and modes (defaults: the store's query defaults)."""
+    return {"top": int(store.query_defaults.get("top", P.top.default) if top is None else top),
+            "window_days": None if window is None else int(window),
+            "separation_days": int(separation),
+            "n_modes": int(store.n_query_modes if n_modes is None else n_modes)}
+
+
+def skill_key(store, region: dict, kinds, settings: dict) -> tuple[str, dict]:
+    """The cache key of a skill measurement: a short hash, and what it hashes (region,
+    kinds, hindcast settings, method and the checksums of the store's PCs and reports)."""
+    import hashlib
+    import json
+    fields = {"region": region, "kinds": sorted(kinds) if kinds else None, **settings,
+              "method": SKILL_METHOD,
+              "data": {name: store.manifest["files"].get(name) for name in _SKILL_INPUTS}}
+    text = json.dumps(fields, sort_keys=True)
+    return hashlib.sha256(text.encode()).hexdigest()[:16], fields
+
+
+def _verify_command(store, region: dict, kinds, settings: dict) -> str:
+    """The ``analogs verify`` command that measures a query's skill."""
+    argument = region_argument(region)
+    defaults = {"top": store.query_defaults.get("top", P.top.default),
+                "window_days": P.window.default, "separation_days": P.separation.default,
+                "n_modes": store.n_query_modes}
+    options = {"top": "--top", "window_days": "--window", "separation_days": "--separation",
+               "n_modes": "--modes"}
+    return (f"analogs verify --store {store.path}"
+            + (f" --region {argument}" if argument else "")
+            + (f" --kind {','.join(kinds)}" if kinds else "")
+            + "".join(f" {options[k]} {settings[k]}" for k in options
+                      if settings[k] != defaults[k]))
+
+
+def _measure(store, region, kinds, settings) -> dict | None:
+    """:func:`measured_skill` of P(at least one event of ``kinds`` in ``region``) with
+    ``settings``; None when it cannot be measured (see :func:`measured_skill`)."""
+    events = observed(store, region, kinds)
+    measured = measured_skill(store.pcs.values[:, :settings["n_modes"]], store.times, events,
+                              store.covered, region=region, top=settings["top"],
+                              window=settings["window_days"],
+                              separation=settings["separation_days"])
+    if measured is not None:
+        measured["kinds"] = sorted(kinds) if kinds else None
+        measured["n_modes"] = settings["n_modes"]
+    return measured
+
+
+def _keep(store, key: str, fields: dict, measured) -> bool:
+    """Keep a measurement in the store's manifest (``skill_cache``), through one
+    transaction under the writer lock (:func:`analogs.workflows.store.edit_manifest`).
+    Nothing is written when the store changed its PCs or reports since ``store`` was
+    loaded (the measurement is of the older data). Entries of other data are dropped,
+    and the oldest beyond :data:`SKILL_CACHE_SIZE`. False when it could not be kept (a
+    read-only store, or the lock held by another writer)."""
+    import datetime
+    from analogs.errors import StoreError
+    from analogs.workflows import store as store_io
+
+    def edit(manifest, files):
+        if {n: files.get(n) for n in _SKILL_INPUTS} != fields["data"]:
+            return None
+        cache = {k: v for k, v in (manifest.get("skill_cache") or {}).items()
+                 if v.get("key", {}).get("data") == fields["data"]}
+        cache[key] = {"key": fields, "skill": measured,
+                      "measured": datetime.datetime.now(datetime.timezone.utc).isoformat()}
+        newest = sorted(cache, key=lambda k: cache[k]["measured"])[-SKILL_CACHE_SIZE:]
+        manifest["skill_cache"] = {k: cache[k] for k in newest}
+        return manifest
+
+    try:
+        return store_io.edit_manifest(store.path, edit,
+                                      timeout=SKILL_CACHE_LOCK_SECONDS) is not None
+    except StoreError:
+        return False
+
+
+def skill_for(store, target_time=None, *, region=None, kinds=None, settings=None,
+              measure=True, progress=False) -> dict | None:
+    """The cross-validated skill of what a query forecasts: P(at least one event of
+    ``kinds`` in ``region``), overall and for the target's month when known.
+
+    ``settings`` (:func:`skill_settings`; default the store's query settings) are the
+    hindcast's number of analogs, window, de-clustering and modes. Where it comes from:
+
+    - the build measured the store's region, any kind, with the default settings
+      (:func:`skill_by_month`, ``manifest["skill"]``): quoted (``source`` "build");
+    - a measurement kept in the store for this region, kinds and settings, on the
+      store's current PCs and reports (``manifest["skill_cache"]``, key
+      :func:`skill_key`): quoted (``source`` "kept in the store");
+    - otherwise, with ``measure`` and a writable store: measured now (one hindcast, about
+      a second for a few years of days) and kept in the store for the next query
+      (``source`` "measured now");
+    - otherwise ``measured`` False with the ``analogs verify`` command that measures it
+      (``reason`` says why: not asked to measure, or a read-only store).
+
+    A region without any report on the covered days (or every day with one) cannot be
+    measured: ``measured`` False with ``reason``. None when the store holds no events (no events table, or
+    a header-only one).
     """
-    skill = store.manifest.get("skill")
-    if not skill:
+    from analogs.workflows import store as store_io
+    from analogs.workflows.find import _derived
+    if store.events is None or len(store.events) == 0:
         return None
-    asked = (resolve_region(store, region).to_dict() if region is not None
-             else skill["region"])
-    if asked != skill["region"] or kinds:
-        argument = region_argument(asked)
-        command = (f"analogs verify --store {store.path}"
-                   + (f" --region {argument}" if argument else "")
-                   + (f" --kind {','.join(kinds)}" if kinds else ""))
-        return {"measured": False, "region": asked,
-                "kinds": list(kinds) if kinds else None, "command": command}
-    by_month = skill["by_month"]
+    settings = skill_settings(store) if settings is None else settings
+    region_object = resolve_region(store, region)
+    asked = region_object.to_dict()
+    kinds = sorted(kinds) if kinds else None
+    built = store.manifest.get("skill")
+    measured, source = None, None
+    if (built and asked == built["region"] and not kinds
+            and settings["top"] == built.get("top") and settings["n_modes"] == store.eof.n_modes_
+            and settings["window_days"] == built.get("window_days")
+            and settings["separation_days"] == built.get("separation_days")):
+        measured, source = built, "build"
+    else:
+        key, fields = skill_key(store, asked, kinds, settings)
+        memory = _derived(store).setdefault("skill", {})
+        kept = (store.manifest.get("skill_cache") or {}).get(key)
+        if key in memory:
+            measured, source = memory[key]
+        elif kept is not None and kept.get("key") == fields:
+            measured, source = kept["skill"], "kept in the store"
+        else:
+            reason = None
+            if settings["window_days"] is None:
+                reason = "a query without season window is not hindcast"
+            elif not measure:
+                reason = "not asked to measure it"
+            elif not store_io.writable(store.path):
+                reason = "the store is read-only, so a measurement could not be kept"
+            if reason:
+                return {"measured": False, "region": asked, "kinds": kinds,
+                        "reason": reason,
+                        "command": _verify_command(store, asked, kinds, settings)}
+            measured = _measure(store, region_object, kinds, settings)
+            source = "measured now" + (", kept in the store"
+                                       if _keep(store, key, fields, measured) else "")
+            memory[key] = (measured, "kept in the store" if source.endswith("store")
+                           else source)
+    if measured is None:
+        return {"measured": False, "region": asked, "kinds": kinds,
+                "reason": "no day, or every day, of the archive with report coverage had "
+                          "such a report there (or it covers fewer than two years)",
+                "command": _verify_command(store, asked, kinds, settings)}
+    by_month = measured["by_month"]
     n_days = sum(entry["n_days"] for entry in by_month.values())
-    answer = {"measured": True, "method": skill["method"], "region": skill["region"],
-              "brier_skill_score": skill["brier_skill_score"],
-              "brier_skill_score_ci": skill["brier_skill_score_ci"],
-              "roc_auc": skill["roc_auc"],
+    answer = {"measured": True, "source": source, "method": measured["method"],
+              "region": measured["region"], "kinds": kinds,
+              "top": measured.get("top"), "n_modes": measured.get("n_modes",
+                                                                  int(store.eof.n_modes_)),
+              "brier_skill_score": measured["brier_skill_score"],
+              "brier_skill_score_ci": measured["brier_skill_score_ci"],
+              "interval": "90% year-bootstrap interval of the Brier skill score",
+              "roc_auc": measured["roc_auc"],
               "base_rate": (sum(e["base_rate"] * e["n_days"] for e in by_month.values())
                             / n_days) if n_days else None}
     if target_time is not None:
@@ -267,4 +418,6 @@ def skill_for(store, target_time=None, *, region=None, kinds=None) -> dict | Non
             answer["month"] = int(pd.Timestamp(target_time).month)
             answer["month_brier_skill_score"] = month["brier_skill_score"]
             answer["month_base_rate"] = month["base_rate"]
+            if month.get("brier_skill_score_ci") is not None:
+                answer["month_brier_skill_score_ci"] = month["brier_skill_score_ci"]
     return answer

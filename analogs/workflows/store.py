@@ -262,6 +262,32 @@ def transaction(path, *, new=False, timeout=None):
         lock.release()
 
 
+def writable(path) -> bool:
+    """Whether a writer could write the store at ``path`` (its folder and the one around
+    it, where the new version is staged and the lock kept, accept writes): False on a
+    read-only folder or file system. Readers that only add to a store (a cached
+    measurement) ask before doing work they could not keep."""
+    path = Path(path)
+    return all(os.access(folder, os.W_OK | os.X_OK) for folder in (path.parent, path))
+
+
+def edit_manifest(path, edit, *, timeout=None) -> dict | None:
+    """One transaction that changes only the manifest of the store at ``path``.
+
+    ``edit(manifest, files)`` gets the current version's manifest (a copy,
+    :func:`editable`, read under the writer lock, so what other writers committed is
+    there) and the checksums of its files, and returns the manifest to write, or None to
+    write nothing. Every file is carried unchanged.
+    Returns the manifest written, or None.
+    """
+    with transaction(path, timeout=timeout) as txn:
+        manifest = edit(editable(txn.manifest), dict(txn.manifest["files"]))
+        if manifest is None:
+            return None
+        txn.carry(*txn.manifest["files"])
+        return txn.commit(manifest)
+
+
 def checked_store_path(path, *, new=False) -> Path:
     """The real directory a store path names (symbolic links and ``..`` resolved), so
     that a write through a link goes to the store it points at and leaves the link as
