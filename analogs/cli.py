@@ -395,7 +395,7 @@ def _cmd_demo(args) -> int:
     import time
 
     from analogs.presentation.report import find_text
-    from analogs.workflows.demo import run_demo
+    from analogs.workflows.demo import run_demo, skill_notes
     started = time.perf_counter()
     demo = run_demo(args.out, years=args.years, seed=args.seed, replace=args.replace,
                     progress=not args.quiet)
@@ -409,6 +409,12 @@ def _cmd_demo(args) -> int:
     print(f"  report      {paths['report']}")
     print(f"  try also    analogs find --store {paths['store']} --field {paths['forecast_field']} "
           f"--time {demo['target'].date()}T12:00")
+    point = demo["metadata"]["point_region"]
+    print(f"  point       analogs find --store {paths['store']} --date {demo['target'].date()} "
+          f"--region {point['option']}   ({point['town']}, {point['radius_km']:g} km)")
+    print(f"  skill       analogs verify --store {paths['store']} [--region {point['option']}]")
+    print()
+    print("\n".join(skill_notes(demo["metadata"])))
     return 0
 
 
