@@ -65,7 +65,9 @@ def build_parser() -> argparse.ArgumentParser:
     _command(commands, "demo", handler=_cmd_demo,
              help="make a synthetic archive, build a store, tag it, run a query, write a report",
              description="Make the synthetic demo archive and its events, build a store, tag "
-                         "every day, run one query and write an HTML report.",
+                         "every day, run one query and write an HTML report; then print the "
+                         "demo's point region and the best skill its reports allow (an upper "
+                         "bound by construction, far above what real archives give).",
              options=(P.demo_out, P.years, P.seed, P.replace, P.quiet))
     _command(commands, "build", handler=_cmd_build,
              help="build a store from archive files",

@@ -117,9 +117,11 @@ def year_streams(seed, year):
     """The random streams of one calendar year: a dict of numpy Generators.
 
     Spawned from ``SeedSequence(seed, spawn_key=(year,))``, so a year's draws depend only
-    on (seed, year): any year is reproducible on its own, different years differ, and a
-    demo that starts in 2011 is not 2001 again. ``start`` draws the state of the first
-    year of a run; later years carry the state of the year before.
+    on (seed, year), not on the start year of the run: a run of any years is reproducible,
+    different years differ, and a demo that starts in 2011 is not 2001 again. ``start``
+    draws the state of the first year of a run; later years carry the state of the year
+    before (red noise, wave phases, episodes, the hidden trigger), so the same year
+    reached from an earlier start has the same draws but not the same weather.
     """
     names = ("schedule", "trigger", "events", "start")
     children = np.random.SeedSequence(seed, spawn_key=(year,)).spawn(len(names))

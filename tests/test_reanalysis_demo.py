@@ -472,3 +472,14 @@ def test_land_sea_mask_and_metadata_are_written(written, tmp_path):
     assert 0 < metadata["best_attainable"]["box"]["base_rate"] < 1
     chances = pd.read_csv(written["chances"])
     assert len(chances) == 365 + 366
+
+
+def test_demo_skill_notes_name_the_point_region_and_the_upper_bound(written):
+    """What `analogs demo` prints from the archive's metadata: both regions in the option
+    syntax of --region, their base rates, and that demo skill is an upper bound."""
+    from analogs.workflows.demo import skill_notes
+    metadata = json.loads(written["metadata"].read_text())
+    text = "\n".join(skill_notes(metadata))
+    assert "box 30,45,-105,-85" in text and "point 37,-97.5,40 (Harrow Ford, 40 km)" in text
+    assert f"{100 * metadata['best_attainable']['box']['base_rate']:.1f} % of days" in text
+    assert "upper bound by construction" in text and "from memory" in text
