@@ -65,7 +65,9 @@ def build_parser() -> argparse.ArgumentParser:
     _command(commands, "demo", handler=_cmd_demo,
              help="make a synthetic archive, build a store, tag it, run a query, write a report",
              description="Make the synthetic demo archive and its events, build a store, tag "
-                         "every day, run one query and write an HTML report.",
+                         "every day, run one query and write an HTML report; then print the "
+                         "demo's point region and the best skill its reports allow (an upper "
+                         "bound by construction, far above what real archives give).",
              options=(P.demo_out, P.years, P.seed, P.replace, P.quiet))
     _command(commands, "build", handler=_cmd_build,
              help="build a store from archive files",
@@ -396,7 +398,7 @@ def _cmd_demo(args) -> int:
     import time
 
     from analogs.presentation.report import find_text
-    from analogs.workflows.demo import run_demo
+    from analogs.workflows.demo import run_demo, skill_notes
     started = time.perf_counter()
     demo = run_demo(args.out, years=args.years, seed=args.seed, replace=args.replace,
                     progress=not args.quiet)
@@ -410,6 +412,12 @@ def _cmd_demo(args) -> int:
     print(f"  report      {paths['report']}")
     print(f"  try also    analogs find --store {paths['store']} --field {paths['forecast_field']} "
           f"--time {demo['target'].date()}T12:00")
+    point = demo["metadata"]["point_region"]
+    print(f"  point       analogs find --store {paths['store']} --date {demo['target'].date()} "
+          f"--region {point['option']}   ({point['town']}, {point['radius_km']:g} km)")
+    print(f"  skill       analogs verify --store {paths['store']} [--region {point['option']}]")
+    print()
+    print("\n".join(skill_notes(demo["metadata"])))
     return 0
 
 

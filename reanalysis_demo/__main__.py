@@ -22,10 +22,14 @@ def build_parser():
         prog="python -m reanalysis_demo",
         description="Write a synthetic daily reanalysis archive of an invented continent: "
                     "500 hPa height and 850 hPa specific humidity (CF NetCDF, one file per year "
-                    "and variable), truth.csv (regime of each day) and events.csv (severe reports).")
+                    "and variable, and the land-sea mask in archive/static/), truth.csv (regime of each "
+                    "day), events.csv (recorded severe reports), chances.csv (the generator's own "
+                    "chance of a report in the box and the point region) and demo_metadata.json "
+                    "(regions, reporting history, best attainable skill).")
     parser.add_argument("--out", required=True, metavar="DIR",
                         help="output directory (created if missing); files go to DIR/archive/, "
-                             "DIR/truth.csv and DIR/events.csv")
+                             "DIR/truth.csv, DIR/events.csv, DIR/chances.csv and "
+                             "DIR/demo_metadata.json")
     parser.add_argument("--years", type=int, default=10, metavar="N",
                         help="number of calendar years (default: 10)")
     parser.add_argument("--start-year", type=int, default=2001, metavar="Y",
@@ -33,7 +37,8 @@ def build_parser():
     parser.add_argument("--grid", type=float, default=1.0, metavar="DEG",
                         help="grid spacing in degrees of latitude and longitude (default: 1.0)")
     parser.add_argument("--seed", type=int, default=0, metavar="S",
-                        help="random seed; the same seed gives the same archive (default: 0)")
+                        help="random seed; the same seed and years give the same archive, and each "
+                             "year's draws depend on (seed, year) (default: 0)")
     parser.add_argument("--quiet", action="store_true", help="no progress bar")
     return parser
 

@@ -1,19 +1,24 @@
 """Severe-weather events drawn from ingredients computed on the generated fields.
 
-Per grid cell and convective day the expected number of reports is
+Per grid cell and convective day the expected number of storms is
 
-.. math:: \\lambda = \\lambda_0\\,\\frac{A}{10^4\\,\\mathrm{km}^2}\\,M\\,S\\,F\\,B\\,\\mathrm{land}
+.. math:: \\lambda\\,T = \\lambda_0\\,\\frac{A}{10^4\\,\\mathrm{km}^2}\\,M\\,S\\,F\\,B\\,\\mathrm{land}\\;T
 
-with moisture M (850 hPa dewpoint above about 60 F, 15.6 C), deep-layer
+with T the hidden trigger factor (:mod:`.trigger`, not in the archive),
+moisture M (850 hPa dewpoint above about 60 F, 15.6 C), deep-layer
 shear S (500 hPa geostrophic wind speed, the surface wind taken as weak),
 forcing F (cyclonic vorticity advection by the geostrophic wind, with a
 floor: weakly forced days still produce storms) and buoyancy B (moisture
 under steep mid-level lapse rates, i.e. air aloft that left the plateau
-about 18 h earlier along the 500 hPa flow). Reports occur over land only.
-Near tropical cyclones a separate tornado intensity is the per-point
+about 18 h earlier along the 500 hPa flow). Storms occur over land only.
+Near tropical cyclones a separate, uncapped tornado storm intensity is the per-point
 overlap of low-level shear and buoyancy (:func:`cyclone_tornado_intensity`).
 
-Kinds: tornado, hail or wind with weights that follow the ingredients
+A storm starts at a uniformly random point of its cell and makes 1 + Poisson(2)
+reports about 10 km around its start (sub-grid initiation); each is recorded with the reporting
+efficiency of :mod:`.reporting` (towns, roads, growth by kind and year).
+
+Kinds (one per storm): tornado, hail or wind with weights that follow the ingredients
 (tornadoes with shear, moisture and forcing; hail with steep lapse rates and
 shear; wind with buoyancy). Magnitudes: tornado EF rating 0-5, hail diameter
 in cm (>= 2.5), wind gust in m/s (>= 26). Times fall in the convective day,
@@ -28,14 +33,15 @@ import pandas as pd
 from analogs.constants import CONVECTIVE_DAY_START_HOUR, EARTH_RADIUS, G0, OMEGA, SEVERE_DEWPOINT_C
 from analogs.geo import great_circle_km, spherical_gradient
 
+from . import reporting
 from .geography import logistic, cell_area_km2, plateau_fraction
 from .heights import geostrophic_wind, relative_vorticity
 from .moisture import dewpoint_from_specific_humidity
 
-#: Reports per 10^4 km2 per day when every ingredient is fully present.
-BASE_RATE = 0.6
-#: Tropical-cyclone tornadoes per 10^4 km2 per day at full overlap of shear and buoyancy.
-CYCLONE_TORNADO_RATE = 0.5
+#: Storms per 10^4 km2 per day when every ingredient is fully present and the cap breaks.
+BASE_RATE = 5.0
+#: Tropical-cyclone tornado storms per 10^4 km2 per day at full overlap of shear and buoyancy.
+CYCLONE_TORNADO_RATE = 0.3
 #: Back-trajectory time (s) for the plateau (steep lapse rate) air.
 PLUME_TRAVEL_S = 18 * 3600.0
 KINDS = ("tornado", "hail", "wind")
@@ -138,52 +144,84 @@ def _format_times(day_starts, hours):
     return stamps.strftime("%Y-%m-%dT%H:%M:%SZ")
 
 
-def draw_events(rng, times, height, q, lat, lon, s, land, grid, cyclones_by_day):
-    """Poisson events for a block of days; returns (DataFrame, ingredients dict).
+def storm_rates(height, q, lat, lon, s, land, grid, cyclones_by_day):
+    """Storm intensities of a block of days before the hidden trigger.
 
-    ``times`` are the field valid times (12 UTC), ``land`` a boolean mask
-    (nlat, nlon), ``cyclones_by_day`` the cyclone tuples of each day.
+    Returns a dict of arrays (ndays, nlat, nlon): ``general`` (storms per cell-day where
+    the cap breaks everywhere), ``cyclone`` (tropical-cyclone tornado storms per cell-day,
+    not capped), ``kind_probs`` (3, ndays, nlat, nlon: tornado, hail, wind shares of the
+    general storms) and the ``ingredients``.
     """
     ing = ingredients(height, q, lat, lon, s)
     area = cell_area_km2(lat, grid) / 1e4
     general = BASE_RATE * area * ing["moisture"] * ing["shear"] * ing["forcing"] * ing["buoyancy"] * land
-    tornado_tc = np.zeros_like(general)
+    cyclone = np.zeros_like(general)
     for i, cyclones in enumerate(cyclones_by_day):
-        for cyclone in cyclones:
-            tornado_tc[i] += CYCLONE_TORNADO_RATE * area * land * cyclone_tornado_intensity(lat, lon, q[i], cyclone)
-    n_general = rng.poisson(general)
-    n_tc = rng.poisson(tornado_tc)
+        for one in cyclones:
+            cyclone[i] += CYCLONE_TORNADO_RATE * area * land * cyclone_tornado_intensity(lat, lon, q[i], one)
     weights = kind_weights(ing)
-    probs = weights / weights.sum(axis=0)
+    return {"general": general, "cyclone": cyclone, "kind_probs": weights / weights.sum(axis=0),
+            "ingredients": ing}
+
+
+def draw_events(rng, times, rates, trigger, lat, lon, grid, year):
+    """Storms, their reports and which reports are recorded, for a block of days.
+
+    Storms are Poisson in each cell with mean ``rates["general"] * trigger`` (plus the
+    uncapped cyclone tornado storms) and start at a uniformly random point of their cell
+    (sub-grid initiation). Each makes 1 + Poisson(1) reports scattered about 10 km around
+    its start, each recorded with the reporting efficiency of its kind, year and place
+    (:mod:`.reporting`). Returns the recorded reports with a ``day`` column (index of the
+    day in the block).
+    """
+    ing = rates["ingredients"]
     frames = []
-    for counts, from_cyclone in ((n_general, False), (n_tc, True)):
+    for intensity, from_cyclone in ((rates["general"] * trigger, False), (rates["cyclone"], True)):
+        counts = rng.poisson(intensity)
         idx = np.nonzero(counts)
-        reps = counts[idx]
-        d, j, k = (np.repeat(a, reps) for a in idx)
-        n = d.size
-        if n == 0:
+        d, j, k = (np.repeat(a, counts[idx]) for a in idx)
+        n_storms = d.size
+        if n_storms == 0:
             continue
         if from_cyclone:
-            kind = np.zeros(n, dtype=int)
+            kind = np.zeros(n_storms, dtype=int)
         else:
-            cum = np.cumsum(probs[:, d, j, k], axis=0)
-            kind = (rng.uniform(size=n)[None] > cum).sum(axis=0).clip(0, 2)
+            cum = np.cumsum(rates["kind_probs"][:, d, j, k], axis=0)
+            kind = (rng.uniform(size=n_storms)[None] > cum).sum(axis=0).clip(0, 2)
+        start_lat = lat[j, k] + rng.uniform(-0.5, 0.5, n_storms) * grid
+        start_lon = lon[j, k] + rng.uniform(-0.5, 0.5, n_storms) * grid
+        start_hour = rng.normal(10.0, 3.5, n_storms)
+        per_storm = 1 + rng.poisson(reporting.REPORTS_PER_STORM_EXTRA, n_storms)
+        storm = np.repeat(np.arange(n_storms), per_storm)
+        n = storm.size
+        d, j, k, kind = d[storm], j[storm], k[storm], kind[storm]
+        scatter_deg = reporting.REPORT_SCATTER_KM / 111.195
+        rep_lat = start_lat[storm] + rng.normal(0.0, scatter_deg, n)
+        rep_lon = start_lon[storm] + rng.normal(0.0, scatter_deg, n) / np.cos(np.radians(rep_lat))
+        hours = np.clip(start_hour[storm] + rng.uniform(0.0, 1.5, n), 0.05, 23.95)
         shear = ing["shear"][d, j, k]
         plume = ing["plume"][d, j, k]
         magnitude = np.where(
             kind == 0, np.minimum(rng.geometric(0.65 - 0.25 * shear) - 1, 5),
             np.where(kind == 1, 2.5 + np.round(2.0 * rng.exponential(1.0 + plume)) / 2.0,
                      np.round(26.0 + rng.exponential(4.0))))
-        hours = np.clip(rng.normal(10.0, 3.5, n), 0.05, 23.95)
-        day_starts = pd.DatetimeIndex(times[d]).normalize() + pd.Timedelta(hours=CONVECTIVE_DAY_START_HOUR)
+        point_access = reporting.access(rep_lat, rep_lon)
+        chance = np.empty(n)
+        for code, name in enumerate(KINDS):
+            mine = kind == code
+            chance[mine] = reporting.efficiency(name, year, point_access[mine])
+        kept = rng.uniform(size=n) < chance
+        day_starts = pd.DatetimeIndex(times[d[kept]]).normalize() + pd.Timedelta(hours=CONVECTIVE_DAY_START_HOUR)
         frames.append(pd.DataFrame({
-            "time": _format_times(day_starts, hours),
-            "lat": np.round(lat[j, k] + rng.uniform(-0.5, 0.5, n) * grid, 3),
-            "lon": np.round(lon[j, k] + rng.uniform(-0.5, 0.5, n) * grid, 3),
-            "kind": np.asarray(KINDS)[kind],
-            "magnitude": magnitude.astype(float),
+            "time": _format_times(day_starts, hours[kept]),
+            "lat": np.round(rep_lat[kept], 3),
+            "lon": np.round(rep_lon[kept], 3),
+            "kind": np.asarray(KINDS)[kind[kept]],
+            "magnitude": magnitude[kept].astype(float),
+            "day": d[kept],
         }))
     if not frames:
-        return pd.DataFrame({"time": [], "lat": [], "lon": [], "kind": [], "magnitude": []}), ing
+        return pd.DataFrame({"time": [], "lat": [], "lon": [], "kind": [], "magnitude": [],
+                             "day": np.array([], dtype=int)})
     events = pd.concat(frames, ignore_index=True).sort_values(["time", "lat", "lon"], kind="stable")
-    return events.reset_index(drop=True), ing
+    return events.reset_index(drop=True)

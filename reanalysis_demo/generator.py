@@ -2,9 +2,10 @@
 
 :func:`iter_years` yields one :class:`DemoYear` at a time, with the state
 (red noise, wave phases, episodes, cyclones, scouring memory) carried across
-the new year; :func:`generate` concatenates it. Two random streams are
-spawned from the seed: the schedule (grid independent, so the truth table and
-every large-scale anomaly are the same on any grid) and the events.
+the new year; :func:`generate` concatenates it. Each year's random streams are
+spawned from (seed, year) (:func:`year_streams`): the schedule (grid independent,
+so the truth table and every large-scale anomaly are the same on any grid), the
+hidden trigger, the events, and the start state of a run's first year.
 """
 
 from __future__ import annotations
@@ -19,8 +20,10 @@ from analogs._validation import check_float, check_int
 from analogs.errors import AnalogsInputError
 
 from . import heights, moisture, schedule
-from .events import draw_events
+from .chances import CHANCE_COLUMNS, RegionChances, observed_days
+from .events import draw_events, storm_rates
 from .geography import DEFAULT_DOMAIN, land_mask, make_grid
+from .trigger import HiddenTrigger, trigger_factor
 
 #: Days per block of field computation (bounds memory on fine grids).
 BLOCK_DAYS = 32
@@ -31,21 +34,26 @@ EVENT_COLUMNS = ["time", "lat", "lon", "kind", "magnitude"]
 
 @dataclass
 class DemoYear:
-    """One year: ``fields`` (Dataset zg, hus on (time, lat, lon)), ``truth`` and ``events`` DataFrames."""
+    """One year: ``fields`` (Dataset zg, hus on (time, lat, lon)), ``truth``, ``events`` and
+    ``chances`` DataFrames (:mod:`.chances`: the generator's own chance of a recorded
+    report in the box and the point region, and what happened)."""
 
     year: int
     fields: xr.Dataset
     truth: pd.DataFrame
     events: pd.DataFrame
+    chances: pd.DataFrame
 
 
 @dataclass
 class DemoArchive:
-    """A whole synthetic archive: ``fields``, ``truth`` and ``events`` as in :class:`DemoYear`."""
+    """A whole synthetic archive: ``fields``, ``truth``, ``events`` and ``chances`` as in
+    :class:`DemoYear`."""
 
     fields: xr.Dataset
     truth: pd.DataFrame
     events: pd.DataFrame
+    chances: pd.DataFrame
 
 
 def _check_domain(domain, owner):
@@ -105,22 +113,42 @@ def iter_years(years=10, *, start_year=2001, grid=1.0, seed=0, domain=DEFAULT_DO
     return _iter_years(years, start_year, grid, seed, domain)
 
 
+def year_streams(seed, year):
+    """The random streams of one calendar year: a dict of numpy Generators.
+
+    Spawned from ``SeedSequence(seed, spawn_key=(year,))``, so a year's draws depend only
+    on (seed, year), not on the start year of the run: a run of any years is reproducible,
+    different years differ, and a demo that starts in 2011 is not 2001 again. ``start``
+    draws the state of the first year of a run; later years carry the state of the year
+    before (red noise, wave phases, episodes, the hidden trigger), so the same year
+    reached from an earlier start has the same draws but not the same weather.
+    """
+    names = ("schedule", "trigger", "events", "start")
+    children = np.random.SeedSequence(seed, spawn_key=(year,)).spawn(len(names))
+    return {name: np.random.default_rng(child) for name, child in zip(names, children)}
+
+
 def _iter_years(years, start_year, grid, seed, domain):
-    schedule_rng, event_rng = (np.random.default_rng(s) for s in np.random.SeedSequence(seed).spawn(2))
     lat1d, lon1d = make_grid(domain, grid)
     lon, lat = np.meshgrid(lon1d, lat1d)
     land = land_mask(lat, lon)
     height_shapes = heights.pattern_shapes(lat, lon, heights.HEIGHT_PATTERNS)
     moisture_shapes = moisture.moisture_shapes(lat, lon)
     static_dry = moisture.plateau_dryness(lat, lon)
-    state = schedule.initial_state(schedule_rng)
+    hidden = HiddenTrigger(lat1d, lon1d)
+    region_chances = RegionChances(lat, lon, grid, hidden, seed)
+    first = year_streams(seed, start_year)["start"]
+    state = schedule.initial_state(first)
+    trigger_nodes = hidden.start(first)
     scouring = np.zeros(lat.shape)
     for year in range(start_year, start_year + years):
+        streams = year_streams(seed, year)
         times = pd.date_range(f"{year}-01-01 {VALID_HOUR:02d}:00", f"{year}-12-31 {VALID_HOUR:02d}:00", freq="D")
-        days = [schedule.step_day(state, schedule_rng, t.day_of_year) for t in times]
+        days = [schedule.step_day(state, streams["schedule"], t.day_of_year) for t in times]
         z_year = np.empty((len(times),) + lat.shape, dtype=np.float32)
         q_year = np.empty_like(z_year)
         event_frames = []
+        chance_frames = []
         for start in range(0, len(times), BLOCK_DAYS):
             block = days[start:start + BLOCK_DAYS]
             s = np.array([d.s for d in block])
@@ -143,8 +171,20 @@ def _iter_years(years, start_year, grid, seed, domain):
             z32, q32 = z.astype(np.float32), q.astype(np.float32)
             z_year[start:start + len(block)] = z32
             q_year[start:start + len(block)] = q32
-            events, _ = draw_events(event_rng, times[start:start + len(block)].values,
-                                    z32.astype(float), q32.astype(float), lat, lon, s, land, grid, cyclones)
+            node_days = []
+            for _ in block:
+                trigger_nodes = hidden.step(trigger_nodes, streams["trigger"])
+                node_days.append(trigger_nodes)
+            trigger = trigger_factor(hidden.field(np.stack(node_days)))
+            rates = storm_rates(z32.astype(float), q32.astype(float), lat, lon, s, land, grid, cyclones)
+            block_times = times[start:start + len(block)].values
+            events = draw_events(streams["events"], block_times, rates, trigger, lat, lon, grid, year)
+            chances = region_chances.daily(rates, trigger, year)
+            box_observed, point_observed = observed_days(events, len(block))
+            chance_frames.append(pd.DataFrame({
+                "box_observed": box_observed, "box_chance": chances["box"][0],
+                "box_chance_fields": chances["box"][1], "point_observed": point_observed,
+                "point_chance": chances["point"][0], "point_chance_fields": chances["point"][1]}))
             event_frames.append(events)
         south, north, west, east = domain
         events = pd.concat(event_frames, ignore_index=True)
@@ -154,8 +194,11 @@ def _iter_years(years, start_year, grid, seed, domain):
         truth = pd.DataFrame(rows)
         truth.insert(0, "date", times.strftime("%Y-%m-%d"))
         truth["tc_id"] = truth["tc_id"].astype("Int64")
+        year_chances = pd.concat(chance_frames, ignore_index=True)
+        year_chances.insert(0, "date", times.strftime("%Y-%m-%d"))
         yield DemoYear(year=year, fields=_fields_dataset(times, lat1d, lon1d, z_year, q_year),
-                       truth=truth, events=events[EVENT_COLUMNS])
+                       truth=truth, events=events[EVENT_COLUMNS],
+                       chances=year_chances[CHANCE_COLUMNS].round(6))
 
 
 def generate(years=10, *, start_year=2001, grid=1.0, seed=0, domain=DEFAULT_DOMAIN):
@@ -166,7 +209,8 @@ def generate(years=10, *, start_year=2001, grid=1.0, seed=0, domain=DEFAULT_DOMA
     return DemoArchive(
         fields=xr.concat([p.fields for p in parts], dim="time"),
         truth=pd.concat([p.truth for p in parts], ignore_index=True),
-        events=pd.concat([p.events for p in parts], ignore_index=True))
+        events=pd.concat([p.events for p in parts], ignore_index=True),
+        chances=pd.concat([p.chances for p in parts], ignore_index=True))
 
 
 

@@ -9,19 +9,28 @@ from __future__ import annotations
 
 import warnings
 
+import json
+import shutil
+import subprocess
+
 import netCDF4
 import numpy as np
 import pandas as pd
 import pytest
 import xarray as xr
 import metpy.calc as mpcalc
+from scipy import stats
 from metpy.units import units
 
 import reanalysis_demo as rd
 from analogs.constants import SEVERE_DEWPOINT_C
 from analogs.errors import AnalogsInputError
 from analogs.geo import great_circle_km
+from analogs.stages.outcomes import Region
 from reanalysis_demo.__main__ import main
+from reanalysis_demo import reporting
+from reanalysis_demo.chances import best_attainable_skill, in_box
+from reanalysis_demo.generator import year_streams
 from reanalysis_demo.geography import land_mask
 from reanalysis_demo.moisture import dewpoint_from_specific_humidity
 
@@ -285,10 +294,16 @@ def test_generate_equals_concatenated_iter_years():
     pd.testing.assert_frame_equal(fine.truth, parts[0].truth)
 
 
-def test_default_ten_years_regime_mix():
+@pytest.fixture(scope="module")
+def ten_years():
+    """The default demo's archive: ten years from 2001, seed 0, 1 degree."""
+    return rd.generate(10)
+
+
+def test_default_ten_years_regime_mix(ten_years):
     """Ten default years: 'other' is the plurality, each named regime >= 8 % of days, tropical
     days only June-October (scenario specification; common practice, no source)."""
-    truth = rd.generate(10).truth
+    truth = ten_years.truth
     share = truth["regime"].value_counts(normalize=True)
     assert share.idxmax() == "other"
     for regime in ("northwest_flow", "tropical", "strong_trough"):
@@ -332,3 +347,139 @@ def test_forty_years_quarter_degree_year_by_year(tmp_path):
     """40 years at 0.25 degree, written year by year with bounded memory (performance check)."""
     paths = rd.write_archive(tmp_path, 40, grid=0.25, progress=False)
     assert len(paths["zg"]) == 40
+
+
+def test_each_year_draws_from_its_own_stream():
+    """A year's random streams depend on (seed, year): the same pair gives the same draws,
+    another year other draws; a demo starting in 2011 has no day equal to any day of a demo
+    starting in 2001 with the same seed (numpy SeedSequence spawn keys; common practice)."""
+    assert year_streams(0, 2011)["events"].random() == year_streams(0, 2011)["events"].random()
+    assert year_streams(0, 2011)["events"].random() != year_streams(0, 2001)["events"].random()
+    first = rd.generate(1, start_year=2001, grid=2.5, seed=0)
+    later = rd.generate(1, start_year=2011, grid=2.5, seed=0)
+    again = rd.generate(1, start_year=2011, grid=2.5, seed=0)
+    xr.testing.assert_identical(later.fields, again.fields)
+    pd.testing.assert_frame_equal(later.events, again.events)
+    a = first.fields["zg"].values.reshape(365, -1)
+    b = later.fields["zg"].values.reshape(365, -1)
+    closest = np.min(np.abs(a[:, None, :] - b[None, :, :]).max(axis=2))
+    assert closest > 1.0  # gpm: no twin day
+
+
+def test_reports_start_anywhere_in_their_cell(archive):
+    """Sub-grid initiation: the position of reports within their grid cell is uniform
+    (scipy.stats.kstest against the uniform law), not at cell centres."""
+    lat0, lat1 = archive.fields["lat"].values[[0, -1]]
+    lon0, lon1 = archive.fields["lon"].values[[0, -1]]
+    events = archive.events
+    inner = events[events["lat"].between(lat0 + 1, lat1 - 1) & events["lon"].between(lon0 + 1, lon1 - 1)]
+    for offset in (np.mod(inner["lat"] - lat0 + 0.5, 1.0), np.mod(inner["lon"] - lon0 + 0.5, 1.0)):
+        assert stats.kstest(offset, "uniform").pvalue > 1e-3
+
+
+def test_generator_chances_are_calibrated(ten_years):
+    """The generator's own chance of a recorded report in the box matches what it recorded:
+    in each tenth of the chances the observed frequency is within 4 binomial standard errors
+    of the mean chance (reliability of a calibrated forecast, Murphy 1973, from memory)."""
+    chances = ten_years.chances
+    p = chances["box_chance"].to_numpy()
+    o = chances["box_observed"].to_numpy()
+    bins = np.minimum((p * 10).astype(int), 9)
+    for b in np.unique(bins):
+        mine = bins == b
+        if mine.sum() < 30:
+            continue
+        expected = p[mine].mean()
+        error = np.sqrt(max(expected * (1 - expected), 1e-4) / mine.sum())
+        assert abs(o[mine].mean() - expected) < 4 * error + 0.01, b
+
+
+def test_hidden_trigger_limits_skill_and_the_box_does_not_saturate(ten_years):
+    """Outcomes are not a function of the archived fields alone: the chance computed from the
+    fields only scores a lower Brier skill score than the one that knows the hidden trigger;
+    reports fall in the box on 10-25 % of days (design target of the demo)."""
+    best = best_attainable_skill(ten_years.chances)
+    assert 0.10 <= best["box"]["base_rate"] <= 0.25
+    assert 0.0 < best["box"]["bss_fields_only"] < best["box"]["bss_full_state"] - 0.05
+    assert 0.0 < best["point"]["base_rate"] < best["box"]["base_rate"]
+    assert best["point"]["bss_fields_only"] < best["point"]["bss_full_state"]
+
+
+def test_reports_follow_towns_and_roads(ten_years):
+    """Reports in the box fall where people are more often than the area there would give:
+    the share of reports with access above one half is at least 1.5 times the share of the
+    box's area (uniform points, numpy) with it (reporting efficiency; common practice)."""
+    events = ten_years.events
+    inside = events[in_box(events["lat"].to_numpy(), events["lon"].to_numpy())]
+    report_share = np.mean(reporting.access(inside["lat"].to_numpy(), inside["lon"].to_numpy()) > 0.5)
+    south, north, west, east = rd.CENTRAL_REGION
+    rng = np.random.default_rng(1)
+    lat = rng.uniform(south, north, 20000)
+    lon = rng.uniform(west, east, 20000)
+    area_share = np.mean(reporting.access(lat, lon) > 0.5)
+    assert report_share > 1.5 * area_share
+
+
+def test_reporting_grows_by_kind_and_changes_in_2006(ten_years):
+    """Hail and wind reports grow faster than tornado reports over the decade, and the 2006
+    change (spotter reports away from towns) raises the odds that a hail or wind report lies
+    far from towns and roads (its recording floor there goes from 0.15 to 0.35, odds about
+    2.3 times; scenario specification in reanalysis_demo.reporting)."""
+    events = ten_years.events.copy()
+    events["year"] = events["time"].str[:4].astype(int)
+    events = events[events["year"] <= 2010]
+    counts = events.groupby(["year", "kind"]).size().unstack()
+    early, late = counts.loc[2001:2005].sum(), counts.loc[2006:2010].sum()
+    growth = late / early
+    assert growth["hail"] > 1.5 * growth["tornado"] and growth["wind"] > 1.5 * growth["tornado"]
+    rural = reporting.access(events["lat"].to_numpy(), events["lon"].to_numpy()) < 0.05
+    hail_wind = events["kind"].isin(["hail", "wind"]).to_numpy()
+    after = events["year"].to_numpy() >= reporting.REPORTING_CHANGE_YEAR
+    odds_before, odds_after = (rural[hail_wind & period].mean() / (1 - rural[hail_wind & period].mean())
+                               for period in (~after, after))
+    assert odds_after > 1.5 * odds_before
+
+
+def test_land_sea_mask_and_metadata_are_written(written, tmp_path):
+    """archive/static/land_sea_mask.nc: lsm float32 0/1 on the archive files' exact lat/lon
+    (values and attributes), standard_name land_binary_mask, units 1 (CF standard-name table);
+    no CF-1.8 errors from the IOOS compliance checker when it is installed. The metadata's
+    point region is a region analogs parses (analogs.stages.outcomes.Region)."""
+    mask_path = written["land_sea_mask"]
+    assert mask_path.parent.name == "static" and mask_path.parent.parent == written["archive"]
+    assert mask_path not in set(written["archive"].glob("*.nc"))
+    with xr.open_dataset(mask_path) as mask, xr.open_dataset(written["zg"][0]) as fields:
+        assert mask["lsm"].dims == ("lat", "lon") and mask["lsm"].dtype == np.float32
+        assert mask["lsm"].attrs["standard_name"] == "land_binary_mask"
+        assert mask["lsm"].attrs["units"] == "1" and mask["lsm"].attrs["long_name"]
+        assert set(np.unique(mask["lsm"].values)) == {0.0, 1.0}
+        for name in ("lat", "lon"):
+            xr.testing.assert_identical(mask[name], fields[name])
+        lon2, lat2 = np.meshgrid(mask["lon"].values, mask["lat"].values)
+        np.testing.assert_array_equal(mask["lsm"].values == 1.0, land_mask(lat2, lon2))
+    checker = shutil.which("cchecker.py") or shutil.which("compliance-checker")
+    if checker:
+        report = tmp_path / "lsm.json"
+        subprocess.run([checker, "--test", "cf:1.8", "--format", "json", "-o", str(report),
+                        str(mask_path)], capture_output=True, check=False)
+        results = json.loads(report.read_text())["cf:1.8"]
+        assert [item["name"] for item in results["high_priorities"]
+                if item["value"][0] < item["value"][1]] == []
+    metadata = json.loads(written["metadata"].read_text())
+    point = Region.parse(metadata["point_region"]["option"])
+    assert point.radius_km == 40.0
+    assert metadata["reporting_change"]["year"] == reporting.REPORTING_CHANGE_YEAR
+    assert 0 < metadata["best_attainable"]["box"]["base_rate"] < 1
+    chances = pd.read_csv(written["chances"])
+    assert len(chances) == 365 + 366
+
+
+def test_demo_skill_notes_name_the_point_region_and_the_upper_bound(written):
+    """What `analogs demo` prints from the archive's metadata: both regions in the option
+    syntax of --region, their base rates, and that demo skill is an upper bound."""
+    from analogs.workflows.demo import skill_notes
+    metadata = json.loads(written["metadata"].read_text())
+    text = "\n".join(skill_notes(metadata))
+    assert "box 30,45,-105,-85" in text and "point 37,-97.5,40 (Harrow Ford, 40 km)" in text
+    assert f"{100 * metadata['best_attainable']['box']['base_rate']:.1f} % of days" in text
+    assert "upper bound by construction" in text and "from memory" in text

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import json
 from pathlib import Path
 
 import numpy as np
@@ -67,7 +68,29 @@ def _pick_target(tags: pd.DataFrame) -> pd.Timestamp:
 #: unless ``replace=True``).
 DEMO_OUTPUTS = ("store", "events.csv", "truth.csv", "archive", "tags.csv",
                 "tags.csv-metadata.json", "report",
-                "forecast_field.nc")
+                "forecast_field.nc", "chances.csv", "demo_metadata.json")
+
+
+def skill_notes(metadata: dict) -> list[str]:
+    """What skill to expect on the demo, from the archive's metadata: the generator's own best
+    attainable Brier skill score for the box and the point region, and how demo skill relates
+    to real archives."""
+    point = metadata["point_region"]
+    lines = []
+    for name, label in (("box", f"box {metadata['box_region']['option']}"),
+                        ("point", f"point {point['option']} ({point['town']}, "
+                                  f"{point['radius_km']:g} km)")):
+        best = metadata["best_attainable"][name]
+        scores = ", ".join(f"{text} {best[key]:.2f}" if best[key] is not None else f"{text} n/a"
+                           for key, text in (("bss_full_state", "knowing everything"),
+                                             ("bss_fields_only", "knowing only the fields")))
+        lines.append(f"{label}: base rate {100 * best['base_rate']:.1f} % of days; best "
+                     f"attainable BSS {scores}")
+    lines.append("The demo's skill is an upper bound by construction: its reports come from "
+                 "a generator driven by the very fields the store compresses (plus a hidden "
+                 "trigger). On real report archives, published analog guidance for severe "
+                 "reports is far less skilful (from memory).")
+    return lines
 
 
 def check_demo_folder(out, *, replace=False, owner="run_demo") -> Path:
@@ -88,15 +111,17 @@ def run_demo(out, *, years=P.years.default, seed=P.seed.default, replace=False,
     """Generate the synthetic archive, build and tag a store, query one day and write
     its report.
 
-    Writes, under ``out``: ``archive/`` (NetCDF), ``events.csv`` and ``truth.csv`` (by
-    :mod:`reanalysis_demo`), ``store/``, ``tags.csv``, ``forecast_field.nc`` (one day
+    Writes, under ``out``: ``archive/`` (NetCDF, with the land-sea mask in
+    ``archive/static/``), ``events.csv``, ``truth.csv``, ``chances.csv`` and
+    ``demo_metadata.json`` (by :mod:`reanalysis_demo`), ``store/``, ``tags.csv``, ``forecast_field.nc`` (one day
     written as a model centre might, to try ``find --field`` on) and
     ``report/index.html``. A folder that already holds a store, events or another of
     these outputs is refused unless ``replace=True`` (then they are replaced; archive
     files of an earlier, longer demo are left alone but not used). ``out`` is never
     inside a store. Returns what was made: ``store`` (the built store), ``result`` (the
-    query's result), ``target`` (its day), ``files`` (the archive files) and ``paths``
-    (name -> path of every output), for the caller to show.
+    query's result), ``target`` (its day), ``files`` (the archive files), ``paths``
+    (name -> path of every output) and ``metadata`` (the archive's ``demo_metadata.json``:
+    its regions, reporting history and best attainable skill), for the caller to show.
     """
     import reanalysis_demo
 
@@ -120,9 +145,10 @@ def run_demo(out, *, years=P.years.default, seed=P.seed.default, replace=False,
                                find_html(result, store.manifest, figures=figures))
     paths = {"archive": out / "archive", "events": written.get("events", out / "events.csv"),
              "store": out / "store", "tags": out / "tags.csv", "forecast_field": forecast,
-             "report": report}
+             "report": report, "metadata": written["metadata"]}
+    metadata = json.loads(Path(written["metadata"]).read_text())
     return {"store": store, "result": result, "target": target, "files": files,
-            "paths": paths}
+            "paths": paths, "metadata": metadata}
 
 
 def _query_with_figures(store, date):
