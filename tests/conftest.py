@@ -32,3 +32,11 @@ def demo_store(demo_dir, demo_files):
     from analogs.stages.outcomes import Region
     return build_store(demo_files, demo_dir / "store", events=demo_dir / "events.csv",
                        region=Region.box(*reanalysis_demo.CENTRAL_REGION), progress=False)
+
+
+@pytest.fixture(scope="session")
+def default_demo_years():
+    """The default demo's archive in memory: ten years from 2001, seed 0, 1 degree."""
+    import reanalysis_demo
+
+    return reanalysis_demo.generate(10)

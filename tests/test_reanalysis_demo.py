@@ -294,16 +294,10 @@ def test_generate_equals_concatenated_iter_years():
     pd.testing.assert_frame_equal(fine.truth, parts[0].truth)
 
 
-@pytest.fixture(scope="module")
-def ten_years():
-    """The default demo's archive: ten years from 2001, seed 0, 1 degree."""
-    return rd.generate(10)
-
-
-def test_default_ten_years_regime_mix(ten_years):
+def test_default_ten_years_regime_mix(default_demo_years):
     """Ten default years: 'other' is the plurality, each named regime >= 8 % of days, tropical
     days only June-October (scenario specification; common practice, no source)."""
-    truth = ten_years.truth
+    truth = default_demo_years.truth
     share = truth["regime"].value_counts(normalize=True)
     assert share.idxmax() == "other"
     for regime in ("northwest_flow", "tropical", "strong_trough"):
@@ -377,11 +371,11 @@ def test_reports_start_anywhere_in_their_cell(archive):
         assert stats.kstest(offset, "uniform").pvalue > 1e-3
 
 
-def test_generator_chances_are_calibrated(ten_years):
+def test_generator_chances_are_calibrated(default_demo_years):
     """The generator's own chance of a recorded report in the box matches what it recorded:
     in each tenth of the chances the observed frequency is within 4 binomial standard errors
     of the mean chance (reliability of a calibrated forecast, Murphy 1973, from memory)."""
-    chances = ten_years.chances
+    chances = default_demo_years.chances
     p = chances["box_chance"].to_numpy()
     o = chances["box_observed"].to_numpy()
     bins = np.minimum((p * 10).astype(int), 9)
@@ -394,22 +388,22 @@ def test_generator_chances_are_calibrated(ten_years):
         assert abs(o[mine].mean() - expected) < 4 * error + 0.01, b
 
 
-def test_hidden_trigger_limits_skill_and_the_box_does_not_saturate(ten_years):
+def test_hidden_trigger_limits_skill_and_the_box_does_not_saturate(default_demo_years):
     """Outcomes are not a function of the archived fields alone: the chance computed from the
     fields only scores a lower Brier skill score than the one that knows the hidden trigger;
     reports fall in the box on 10-25 % of days (design target of the demo)."""
-    best = best_attainable_skill(ten_years.chances)
+    best = best_attainable_skill(default_demo_years.chances)
     assert 0.10 <= best["box"]["base_rate"] <= 0.25
     assert 0.0 < best["box"]["bss_fields_only"] < best["box"]["bss_full_state"] - 0.05
     assert 0.0 < best["point"]["base_rate"] < best["box"]["base_rate"]
     assert best["point"]["bss_fields_only"] < best["point"]["bss_full_state"]
 
 
-def test_reports_follow_towns_and_roads(ten_years):
+def test_reports_follow_towns_and_roads(default_demo_years):
     """Reports in the box fall where people are more often than the area there would give:
     the share of reports with access above one half is at least 1.5 times the share of the
     box's area (uniform points, numpy) with it (reporting efficiency; common practice)."""
-    events = ten_years.events
+    events = default_demo_years.events
     inside = events[in_box(events["lat"].to_numpy(), events["lon"].to_numpy())]
     report_share = np.mean(reporting.access(inside["lat"].to_numpy(), inside["lon"].to_numpy()) > 0.5)
     south, north, west, east = rd.CENTRAL_REGION
@@ -420,12 +414,12 @@ def test_reports_follow_towns_and_roads(ten_years):
     assert report_share > 1.5 * area_share
 
 
-def test_reporting_grows_by_kind_and_changes_in_2006(ten_years):
+def test_reporting_grows_by_kind_and_changes_in_2006(default_demo_years):
     """Hail and wind reports grow faster than tornado reports over the decade, and the 2006
     change (spotter reports away from towns) raises the odds that a hail or wind report lies
     far from towns and roads (its recording floor there goes from 0.15 to 0.35, odds about
     2.3 times; scenario specification in reanalysis_demo.reporting)."""
-    events = ten_years.events.copy()
+    events = default_demo_years.events.copy()
     events["year"] = events["time"].str[:4].astype(int)
     events = events[events["year"] <= 2010]
     counts = events.groupby(["year", "kind"]).size().unstack()
