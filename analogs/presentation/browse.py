@@ -26,8 +26,9 @@ import numpy as np
 #: climatology is a neutral grey, never a hue that reads as a level of danger.
 VIRIDIS_DARK, VIRIDIS_MID, VIRIDIS_LIGHT = "#3b528b", "#21918c", "#5ec962"
 BASE_RATE_GREY = "#8c8c8c"
-#: Pixels of margin kept around each analog's map when it is cut from the grid.
-TILE_MARGIN_PX = 3
+#: Pixels of margin kept around each analog's map when it is cut from the grid (more
+#: would take in the panel's own title line just above the frame).
+TILE_MARGIN_PX = 1
 
 
 def panel_tiles(figure, png: bytes, lat, lon) -> list[bytes]:
@@ -241,9 +242,13 @@ def browser_section(data: dict, days: dict | None = None) -> str:
                   "distance": f"{a['distance']:.2f}", "regime": a["regime"],
                   "events": "no reports yet" if total is None else total}
         values.update({f"kind-{k}": "" if total is None else by_kind.get(k, 0) for k in kinds})
-        attrs = " ".join(
-            f'data-{key}="{_e(-1 if total is None and (key == "events" or key.startswith("kind-")) else values[key])}"'
-            for key, _, _ in columns)
+        # Sorted and filtered on the full values (the cells show them rounded); a day
+        # without reports yet sorts below zero events.
+        data_values = {**values, "distance": repr(float(a["distance"]))}
+        if total is None:
+            data_values.update({key: -1 for key, _, _ in columns
+                                if key == "events" or key.startswith("kind-")})
+        attrs = " ".join(f'data-{key}="{_e(data_values[key])}"' for key, _, _ in columns)
         cells = []
         for key, _, kind in columns:
             text = _e(values[key])
@@ -310,12 +315,12 @@ def day_detail(analog: dict, day: dict) -> str:
             f'<td class="num">{_e(r["lon"])}</td><td class="text">'
             f'{"yes" if r["in_region"] else "no"}</td></tr>'
             for r in reports)
-        parts.append(f'<table class="reports"><caption>{len(reports)} report'
+        parts.append(f'<div class="scroll"><table class="reports"><caption>{len(reports)} report'
                      f"{'s' * (len(reports) != 1)} of the convective day on the map</caption>"
-                     '<thead><tr><th scope="col">time (UTC)</th><th scope="col">kind</th>'
+                     '<thead><tr><th scope="col">UTC (month-day time)</th><th scope="col">kind</th>'
                      '<th scope="col">magnitude</th><th scope="col">lat</th>'
                      '<th scope="col">lon</th><th scope="col">in region</th></tr></thead>'
-                     f"<tbody>{rows}</tbody></table>")
+                     f"<tbody>{rows}</tbody></table></div>")
     parts.append("</article>")
     return "".join(parts)
 
@@ -338,7 +343,7 @@ td.num,th.num,.num{text-align:right}td.text{text-align:left}
 svg.bar{display:block;width:14em;height:.55em;margin:.15em 0}svg.bar .track{fill:#e7e9ee}
 .skill{color:var(--muted)}.why{background:#fff;border:1px solid var(--line);border-radius:6px;padding:.2em 1em .6em;margin-top:1em}
 .regime strong{color:var(--accent)}
-.controls{display:flex;flex-wrap:wrap;gap:1em;align-items:center;margin:.4em 0}
+.controls[hidden]{display:none}.controls{display:flex;flex-wrap:wrap;gap:1em;align-items:center;margin:.4em 0}
 .controls select,.controls input{font:inherit;padding:.15em .3em}.controls input{width:5.5em}
 .browse{display:grid;grid-template-columns:minmax(0,1fr);gap:1.2em}
 .js .browse{grid-template-columns:minmax(0,1.15fr) minmax(0,1fr)}
@@ -351,9 +356,10 @@ svg.marker{width:.8em;height:.8em;vertical-align:-.05em}.key{font-size:.9em;colo
 table.analogs tbody tr[aria-selected=true]{background:#d8ecea;outline:2px solid var(--teal)}
 tr:focus,button:focus,a:focus,select:focus,input:focus{outline:3px solid var(--accent);outline-offset:1px}
 .day{background:#fff;border:1px solid var(--line);border-radius:6px;padding:.2em 1em 1em;margin-bottom:1em}
+@media (max-width:60em){.js .browse{grid-template-columns:minmax(0,1fr)}}
 .js .day{display:none}.js .day.shown{display:block;position:sticky;top:.5em}
-img{max-width:100%%;height:auto}img.tile{width:100%%;max-width:30em;image-rendering:auto;border:1px solid var(--line)}
-.reports{font-size:.9em}.figures figure{margin:1em 0}figcaption{color:var(--muted);font-size:.9em}
+img{max-width:100%%;height:auto}img.tile{width:100%%;max-width:26em;image-rendering:auto;border:1px solid var(--line)}
+.reports{font-size:.9em}.reports th,.reports td{padding:.2em .4em}.scroll{overflow-x:auto}.figures figure{margin:1em 0}figcaption{color:var(--muted);font-size:.9em}
 .sr{position:absolute;left:-9999px}
 pre{white-space:pre-wrap;font-size:.85em}
 """ % {"dark": VIRIDIS_DARK, "mid": VIRIDIS_MID}

@@ -19,7 +19,7 @@ from analogs.results import FindResult
 def analog_days(store, result: FindResult, tiles=()) -> dict:
     """rank -> {"tile": PNG bytes or None, "alt": text, "reports": list of dicts} for
     each analog of ``result``: the reports of its convective day on the store's grid
-    (time UTC, kind, magnitude, lat, lon, and whether in the outcome region), by time;
+    (time UTC as month-day hour:minute, kind, magnitude, lat, lon, and whether in the outcome region), by time;
     ``reports`` is None when the store has no events table or no reports for that day
     yet; ``extent``: the map's latitudes and longitudes; ``markers``: kind -> (marker, colour) as the grid draws them. ``tiles``: the analogs' maps in rank order (as
     ``report_figures(..., tiles=[])`` fills them)."""
@@ -66,7 +66,7 @@ def _report_rows(day: pd.DataFrame, region) -> list[dict]:
     inside = (region.contains(day["lat"].to_numpy(), day["lon"].to_numpy())
               if region is not None else np.ones(len(day), dtype=bool))
     magnitudes = day["magnitude"] if "magnitude" in day else [None] * len(day)
-    return [{"time": pd.Timestamp(t).strftime("%Y-%m-%d %H:%M"), "kind": str(k),
+    return [{"time": pd.Timestamp(t).strftime("%m-%d %H:%M"), "kind": str(k),
              "magnitude": _magnitude(m), "lat": f"{y:.2f}", "lon": f"{x:.2f}",
              "in_region": bool(flag)}
             for t, k, m, y, x, flag in zip(day["time"], day["kind"], magnitudes,
