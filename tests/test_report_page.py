@@ -5,8 +5,8 @@ self-contained, answer first, with alt text on every image and a link from every
 row to its day. An ensemble target's page renders the same way.
 """
 
-from html.parser import HTMLParser
 import io
+from html.parser import HTMLParser
 
 import numpy as np
 import pandas as pd

@@ -24,7 +24,7 @@ import numpy as np
 #: Colours of the page, sampled from matplotlib's viridis (perceptually uniform):
 #: the analogs' probability in its middle, the accents at its dark end; the
 #: climatology is a neutral grey, never a hue that reads as a level of danger.
-VIRIDIS_DARK, VIRIDIS_MID, VIRIDIS_LIGHT = "#3b528b", "#21918c", "#5ec962"
+VIRIDIS_DARK, VIRIDIS_MID = "#3b528b", "#21918c"
 BASE_RATE_GREY = "#8c8c8c"
 #: Pixels of margin kept around each analog's map when it is cut from the grid (more
 #: would take in the panel's own title line just above the frame).
@@ -51,10 +51,10 @@ def panel_tiles(figure, png: bytes, lat, lon) -> list[bytes]:
     for dx, dy in figure.panel_offsets:
         (x0, y0), (x1, y1) = to_figure.transform([(lon0 + dx, lat0 + dy),
                                                   (lon1 + dx, lat1 + dy)])
-        box = (max(int(math.floor(x0 * width)) - TILE_MARGIN_PX, 0),
-               max(int(math.floor((1.0 - y1) * height)) - TILE_MARGIN_PX, 0),
-               min(int(math.ceil(x1 * width)) + TILE_MARGIN_PX, width),
-               min(int(math.ceil((1.0 - y0) * height)) + TILE_MARGIN_PX, height))
+        box = (max(math.floor(x0 * width) - TILE_MARGIN_PX, 0),
+               max(math.floor((1.0 - y1) * height) - TILE_MARGIN_PX, 0),
+               min(math.ceil(x1 * width) + TILE_MARGIN_PX, width),
+               min(math.ceil((1.0 - y0) * height) + TILE_MARGIN_PX, height))
         buffer = io.BytesIO()
         image.crop(box).save(buffer, format="PNG")
         tiles.append(buffer.getvalue())
@@ -89,15 +89,20 @@ def _e(value) -> str:
     return html.escape(str(value), quote=True)
 
 
+def _known(value) -> bool:
+    """Not None and not NaN (the JSON-shaped answer may carry either for 'undefined')."""
+    return value is not None and not (isinstance(value, float) and math.isnan(value))
+
+
 def _percent(value, digits=0) -> str:
-    if value is None or (isinstance(value, float) and math.isnan(value)):
+    if not _known(value):
         return "n/a"
     return f"{100.0 * value:.{digits}f}%"
 
 
 def _bar(value, colour, label) -> str:
     """A horizontal bar on a 0-100 % scale (inline SVG; the number is beside it)."""
-    share = 0.0 if value is None or value != value else max(0.0, min(1.0, float(value)))
+    share = max(0.0, min(1.0, float(value))) if _known(value) else 0.0
     return (f'<svg class="bar" viewBox="0 0 100 6" preserveAspectRatio="none" role="img" '
             f'aria-label="{_e(label)}"><rect width="100" height="6" class="track"/>'
             f'<rect width="{100 * share:.2f}" height="6" fill="{colour}"/></svg>')
@@ -115,9 +120,9 @@ def answer_section(data: dict, skill_text: str) -> str:
     """The answer to the forecaster's question, first: P(at least one event in the
     region) beside the season's base rate, per kind, the measured skill, then the
     target's regime and the diagnostics that decided it."""
-    target, outcomes = data["target"], data["outcomes"]
-    parts = ['<section id="answer" aria-labelledby="answer-h">'
-             '<h2 id="answer-h">What days like this produced</h2>']
+    outcomes = data["outcomes"]
+    parts = [('<section id="answer" aria-labelledby="answer-h">'
+              '<h2 id="answer-h">What days like this produced</h2>')]
     if not outcomes.get("has_events", True):
         parts.append("<p>No events table in this store: outcome statistics are not "
                      "available (build with --events FILE).</p>")
@@ -125,7 +130,7 @@ def answer_section(data: dict, skill_text: str) -> str:
         n = outcomes["n_analogs"]
         p, base = outcomes["p_any_event"], outcomes["climatology_p_any_event"]
         ci = outcomes.get("p_any_event_ci")
-        ratio = (f"{p / base:.1f} times the base rate" if base and p == p and base == base
+        ratio = (f"{p / base:.1f} times the base rate" if _known(p) and _known(base) and base
                  else "")
         parts.append(
             f'<div class="headline"><div class="big" id="p-any">{_percent(p)}</div>'

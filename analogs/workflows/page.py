@@ -74,7 +74,7 @@ def _report_rows(day: pd.DataFrame, region) -> list[dict]:
 
 
 def _magnitude(value) -> str:
-    if value is None or (isinstance(value, float) and value != value):
+    if value is None or (isinstance(value, float) and np.isnan(value)):
         return ""
     return f"{value:g}" if isinstance(value, (int, float, np.number)) else str(value)
 
