@@ -56,7 +56,7 @@ def panel_tiles(figure, png: bytes, lat, lon) -> list[bytes]:
                min(math.ceil(x1 * width) + TILE_MARGIN_PX, width),
                min(math.ceil((1.0 - y0) * height) + TILE_MARGIN_PX, height))
         buffer = io.BytesIO()
-        image.crop(box).save(buffer, format="PNG")
+        image.crop(box).save(buffer, format="PNG", compress_level=1)  # small; speed first
         tiles.append(buffer.getvalue())
     return tiles
 

@@ -17,12 +17,14 @@ from analogs.results import FindResult
 
 
 def analog_days(store, result: FindResult, tiles=()) -> dict:
-    """rank -> {"tile": PNG bytes or None, "alt": text, "reports": list of dicts} for
-    each analog of ``result``: the reports of its convective day on the store's grid
-    (time UTC as month-day hour:minute, kind, magnitude, lat, lon, and whether in the outcome region), by time;
-    ``reports`` is None when the store has no events table or no reports for that day
-    yet; ``extent``: the map's latitudes and longitudes; ``markers``: kind -> (marker, colour) as the grid draws them. ``tiles``: the analogs' maps in rank order (as
-    ``report_figures(..., tiles=[])`` fills them)."""
+    """rank -> {"tile", "alt", "reports", "extent", "markers"} for each analog of
+    ``result``: ``tile``, its map (PNG bytes, from ``tiles``: the analogs' maps in rank
+    order, as ``report_figures(..., tiles=[])`` fills them) or None; ``alt``, the map's
+    description; ``reports``, its convective day's reports on the store's grid by time
+    (dicts of time UTC as month-day hour:minute, kind, magnitude, lat, lon and whether
+    in the outcome region), None when the store has no events table or no reports for
+    that day yet; ``extent``, the map's latitudes and longitudes; ``markers``, kind ->
+    (marker, colour) as the grid draws them."""
     from analogs.presentation.browse import marker_styles
     from analogs.presentation.figures import degrees_east_label, degrees_north_label
     analogs = result.analogs
@@ -35,11 +37,13 @@ def analog_days(store, result: FindResult, tiles=()) -> dict:
               f"{degrees_east_label(float(np.max(lon)))}")
     markers = {}
     if events is not None:
-        # The grid's markers: one per kind among every event of the analog days drawn.
+        # Only the analog days' events (grouping the whole table by day would cost more
+        # than the rest of the page).
         drawn = events[events["day"].isin(pd.to_datetime(analogs["date"]))]
+        # The grid's markers: one per kind among every event of the analog days drawn.
         markers = marker_styles(sorted(drawn["kind"].astype(str).unique()))
-        on_map = events[events["lat"].between(float(np.min(lat)), float(np.max(lat)))
-                        & events["lon"].between(float(np.min(lon)), float(np.max(lon)))]
+        on_map = drawn[drawn["lat"].between(float(np.min(lat)), float(np.max(lat)))
+                       & drawn["lon"].between(float(np.min(lon)), float(np.max(lon)))]
         by_day = dict(tuple(on_map.groupby(pd.to_datetime(on_map["day"]).dt.normalize())))
     known = (analogs["reports_known"].to_numpy(dtype=bool) if "reports_known" in analogs
              else np.ones(len(analogs), dtype=bool))

@@ -26,6 +26,7 @@ import time
 from pathlib import Path
 
 ROOT = Path(__file__).resolve().parents[2]
+sys.path.insert(0, str(ROOT))  # this tree's package in process, as the subprocesses use
 
 
 def make_store(out: Path, years: int) -> Path:
@@ -60,7 +61,6 @@ def main(argv=None) -> int:
     args.out.mkdir(parents=True, exist_ok=True)
     store = make_store(args.out, args.years)
 
-    sys.path.insert(0, str(ROOT))  # this tree's package, as the subprocesses use
     from analogs.api import AnalogStore
     from analogs.workflows.find import find, outcome_maps, report_figures
     from analogs.workflows.page import report_page
