@@ -223,9 +223,9 @@ def _cmd_build(args) -> int:
 
 def _cmd_find(args) -> int:
     from analogs.api import AnalogStore
-    from analogs.presentation.report import find_html
     from analogs.workflows import files
-    from analogs.workflows.find import find, outcome_maps, report_figures
+    from analogs.workflows.find import find, outcome_maps
+    from analogs.workflows.page import report_page
     if args.time and args.field is None:
         raise AnalogsInputError("--time applies to --field only")
     from analogs.stages.sources import several_times
@@ -246,9 +246,8 @@ def _cmd_find(args) -> int:
         files.write_maps(maps, args.maps)
     if args.report:
         # The figures reuse the query's arrays: the target's regridded fields and the maps.
-        figures = report_figures(store, result, maps=maps)
         files.write_text(Path(args.report) / "index.html",
-                         find_html(result, store.manifest, figures=figures))
+                         report_page(store, result, maps=maps))
     return _print_find(result, args)
 
 
@@ -267,17 +266,17 @@ def _print_find(result, args) -> int:
 def _print_valid_times(store, result, args) -> int:
     """find with several valid times: the table (or JSON) and, with --report, one page
     per valid time under DIR plus DIR/index.html linking them."""
-    from analogs.presentation.report import find_html, valid_times_html
+    from analogs.presentation.report import valid_times_html
     from analogs.workflows import files
-    from analogs.workflows.find import outcome_maps, report_figures
+    from analogs.workflows.find import outcome_maps
+    from analogs.workflows.page import report_page
     if args.report:
         links = []
         for one in result.results:
             name = "valid_" + one.target["valid_time"].replace("-", "").replace(":", "")[:13]
             maps = outcome_maps(store, one) if store.events is not None else None
             files.write_text(Path(args.report) / name / "index.html",
-                             find_html(one, store.manifest,
-                                       figures=report_figures(store, one, maps=maps)))
+                             report_page(store, one, maps=maps))
             links.append(f"{name}/index.html")
         files.write_text(Path(args.report) / "index.html",
                          valid_times_html(result, store.manifest, links))

@@ -426,40 +426,20 @@ def html_table(rows: list[dict], columns: list[str], *, left=()) -> str:
     return f"<table><thead><tr>{head}</tr></thead><tbody>{''.join(body)}</tbody></table>"
 
 
-def find_html(result, manifest: dict, figures: list[tuple[str, bytes]] = ()) -> str:
-    """The HTML page of one query (a :class:`~analogs.results.FindResult` or its
-    ``to_dict()``): target, analog table, outcomes, figures as (caption, PNG bytes)
-    embedded, settings and the store's provenance from ``manifest``."""
+def find_html(result, manifest: dict, figures: list[tuple[str, bytes]] = (),
+              days: dict | None = None) -> str:
+    """The page of one query (a :class:`~analogs.results.FindResult` or its
+    ``to_dict()``), answer first: P(at least one event) beside the base rate, per kind,
+    its measured skill, the target's regime and why; then the evidence to browse (the
+    analog table, sortable and filterable, with each day's map and reports: ``days``,
+    rank -> {"tile", "alt", "reports"} of :func:`analogs.workflows.page.analog_days`);
+    then the ``figures`` (caption, PNG bytes[, alt text]), the settings and the store's
+    provenance from ``manifest``. Self-contained (see :mod:`analogs.presentation.browse`)."""
+    from analogs.presentation import browse
     data = _find_data(result)
-    target, outcomes = data["target"], data["outcomes"]
-    kinds = sorted({k for a in data["analogs"] for k in a["events"]["by_kind"]})
-    rows = []
-    for analog in data["analogs"]:
-        row = {"rank": analog["rank"], "date": analog["date"],
-               "distance": f"{analog['distance']:.2f}", "regime": analog["regime"],
-               "events": analog["events"]["total"]}
-        row.update({k: analog["events"]["by_kind"].get(k, 0) for k in kinds})
-        if row["events"] is None:  # a day without report coverage (issue 13)
-            row.update({"events": "no reports yet", **{k: "" for k in kinds}})
-        rows.append(row)
-    sections = [
-        ("Target", f"<p>{html.escape(str(target['date'] or 'forecast field'))}: regime "
-                   f"<strong>{html.escape(target['regime'])}</strong> (confidence "
-                   f"{target['regime_confidence']:.2f}). {html.escape(target.get('reason', ''))}</p>"),
-        ("Closest past days", html_table(rows, ["rank", "date", "distance", "regime", "events", *kinds],
-                                         left=("date", "regime"))),
-    ]
-    if "members" in data:  # an ensemble: the consensus days above, each member here
-        sections[0] = ("Target", f"<p>{html.escape(str(target['date']))}, ensemble of "
-                       f"{len(data['members'])} members: regime <strong>"
-                       f"{html.escape(target['regime'])}</strong> in "
-                       f"{100 * target['regime_confidence']:.0f}% of members "
-                       f"({html.escape(_regime_shares(target))}).</p>")
-        sections[1] = ("Closest past days chosen by the members (most chosen first)",
-                       html_table([{**row, "members": analog.get("n_members", "")}
-                                   for row, analog in zip(rows, data["analogs"])],
-                                  ["rank", "date", "members", "distance", "regime", "events",
-                                   *kinds], left=("date", "regime")))
+    target = data["target"]
+    sections = [browse.answer_section(data, skill_line(data["outcomes"].get("skill")))]
+    if "members" in data:  # an ensemble: each member's answer before the pooled days
         member_rows = [{"member": m["member"], "regime": m["regime"],
                         "confidence": f"{m['regime_confidence']:.2f}",
                         "P(any event)": _fmt_probability(m["outcomes"]["p_any_event"]) + " "
@@ -467,34 +447,19 @@ def find_html(result, manifest: dict, figures: list[tuple[str, bytes]] = ()) -> 
                         "mean events": f"{m['outcomes']['mean_events']:.2f}",
                         "closest days": " ".join(a["date"] for a in m["analogs"][:3])}
                        for m in data["members"]]
-        sections.insert(1, ("Members", html_table(
+        sections.append("<h2>Members</h2>" + html_table(
             member_rows, ["member", "regime", "confidence", "P(any event)", "mean events",
-                          "closest days"], left=("regime", "closest days"))))
-    if outcomes.get("has_events", True):
-        outcome_rows = [{"statistic": "P(at least one event in region)",
-                         "analogs": _fmt_probability(outcomes["p_any_event"]) + " "
-                         + _fmt_interval(outcomes.get("p_any_event_ci")),
-                         "season climatology": _fmt_probability(outcomes["climatology_p_any_event"])},
-                        {"statistic": "mean events per day", "analogs": f"{outcomes['mean_events']:.2f}",
-                         "season climatology": ""}]
-        for kind, stats in sorted(outcomes.get("by_kind", {}).items()):
-            outcome_rows.append({"statistic": f"P(any {kind})", "analogs": _fmt_probability(stats["p_any"]),
-                                 "season climatology": _fmt_probability(stats.get("climatology_p_any"))})
-        unknown = outcomes.get("n_analogs_without_reports", 0)  # issue 13
-        sections.append(("What these days produced",
-                         (f"<p>{unknown} of the {outcomes['n_analogs'] + unknown} analogs have "
-                          "no reports yet (days the events table does not cover): the "
-                          f"statistics count the {outcomes['n_analogs']} with reports.</p>"
-                          if unknown else "")
-                         + html_table(outcome_rows, ["statistic", "analogs", "season climatology"],
-                                      left=("statistic",))
-                         + f"<p>{html.escape(skill_line(outcomes.get('skill')))}</p>"))
-    for caption, png, *alt in figures:  # (caption, PNG bytes[, alt text])
-        sections.append((caption, embed_png(png, alt[0] if alt else caption)))
-    sections.append(("Settings", "<pre>" + html.escape(json.dumps(data["settings"], indent=2)) + "</pre>"))
+                          "closest days"], left=("regime", "closest days")))
+    sections.append(browse.browser_section(data, days))
+    sections.append(browse.figures_section(figures))
     provenance = {"archive": manifest.get("archive"), "config": manifest.get("config"),
                   "events": manifest.get("events")}
-    return html_page("Analogs of " + str(target["date"] or "a forecast field"), sections, provenance)
+    sections.append("<h2>Settings</h2>" + browse.settings_table(data["settings"])
+                    + "<details><summary>Provenance of the store</summary><pre>"
+                    + html.escape(json.dumps(provenance, indent=2)) + "</pre></details>")
+    when = target.get("valid_time") or target["date"] or "a forecast field"
+    return browse.page(f"Analogs of {when}", CAUTION, sections,
+                       f"<p><small>Written by analogs {__version__}.</small></p>")
 
 
 def valid_times_html(result, manifest: dict, links=()) -> str:

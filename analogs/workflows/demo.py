@@ -125,7 +125,6 @@ def run_demo(out, *, years=P.years.default, seed=P.seed.default, replace=False,
     """
     import reanalysis_demo
 
-    from analogs.presentation.report import find_html
     from analogs.stages.sources import open_archive
     from analogs.workflows.build import build_store
 
@@ -140,9 +139,8 @@ def run_demo(out, *, years=P.years.default, seed=P.seed.default, replace=False,
     target = _pick_target(store.tags)
     archive = open_archive(files, progress=False)
     forecast = write_forecast_like_field(archive, target, out / "forecast_field.nc")
-    result, figures = _query_with_figures(store, str(target.date()))
-    report = output.write_text(out / "report" / "index.html",
-                               find_html(result, store.manifest, figures=figures))
+    result, page = _query_with_page(store, str(target.date()))
+    report = output.write_text(out / "report" / "index.html", page)
     paths = {"archive": out / "archive", "events": written.get("events", out / "events.csv"),
              "store": out / "store", "tags": out / "tags.csv", "forecast_field": forecast,
              "report": report, "metadata": written["metadata"]}
@@ -151,9 +149,10 @@ def run_demo(out, *, years=P.years.default, seed=P.seed.default, replace=False,
             "paths": paths, "metadata": metadata}
 
 
-def _query_with_figures(store, date):
-    """The demo's query and its report figures, (caption, PNG bytes, alt text), through the find
-    workflow (the target's fields gathered once)."""
+def _query_with_page(store, date):
+    """The demo's query and its report page, through the find workflow (the target's
+    fields gathered once) and the page workflow."""
     from analogs.workflows import find as find_workflow
+    from analogs.workflows.page import report_page
     result = find_workflow.find(store, date=date)
-    return result, find_workflow.report_figures(store, result)
+    return result, report_page(store, result)

@@ -958,7 +958,7 @@ def _alt_target(target, when, source) -> str:
 
 
 def report_figures(store, result: FindResult, *, maps=None, hindcast=None,
-                   n_panel=None) -> list[tuple[str, bytes, str]]:
+                   n_panel=None, tiles=None) -> list[tuple[str, bytes, str]]:
     """Figures of one query, as (caption, PNG bytes, alt text describing the content)
     for :func:`analogs.presentation.report.find_html`.
 
@@ -969,7 +969,9 @@ def report_figures(store, result: FindResult, *, maps=None, hindcast=None,
     and the outcome maps (``maps`` when already computed, e.g. for ``--maps``).
     Every analog is drawn in the grid unless ``n_panel`` limits it.
     ``hindcast``: optional DataFrame of :func:`analogs.stages.hindcast.leave_one_year_out`
-    for the reliability and ROC figures.
+    for the reliability and ROC figures. ``tiles``: a list to which each analog's own map,
+    cropped from the grid's PNG (no second drawing), is appended as PNG bytes in rank
+    order, for the browsing page.
     """
     from analogs.presentation import figures as draw
     region = result.region if result.region is not None else store.region
@@ -1058,7 +1060,7 @@ def report_figures(store, result: FindResult, *, maps=None, hindcast=None,
                             _later(draw.roc_diagram, *roc_curve_points(p, o)[:2]),
                             f"ROC curve of {p.size} hindcast probabilities: hit rate "
                             "against false alarm rate, with its area in the legend."))
-    pngs = _draw_all([job for _, job, _ in figures])
+    pngs = _draw_all([job for _, job, _ in figures], tiles)
     return [(caption, png, alt) for (caption, _, alt), png in zip(figures, pngs)]
 
 
@@ -1067,10 +1069,18 @@ def _later(function, *args, **kwargs):
     return function, args, kwargs
 
 
-def _draw_all(jobs) -> list[bytes]:
+def _draw_all(jobs, tiles=None) -> list[bytes]:
     """PNG bytes of every job, drawn one after the other. (Drawing in forked processes
     was measured faster on two cores, 1.59 vs 2.19 times `find --json`, but forking a
     process that holds faiss's OpenMP pool and HDF5 can deadlock the child, and a report
     must never hang.)"""
+    from analogs.presentation.browse import panel_tiles
     from analogs.presentation.figures import figure_png
-    return [figure_png(function(*args, **kwargs)) for function, args, kwargs in jobs]
+    pngs = []
+    for function, args, kwargs in jobs:
+        figure = function(*args, **kwargs)
+        pngs.append(figure_png(figure))
+        if tiles is not None and hasattr(figure, "panel_offsets"):
+            tiles.extend(panel_tiles(figure, pngs[-1], args[0]["lat"].values,
+                                     args[0]["lon"].values))
+    return pngs

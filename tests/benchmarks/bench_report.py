@@ -4,7 +4,9 @@ Builds a demo store (reanalysis_demo, ``--years`` years) under ``--out`` (reused
 present), then times both commands as separate processes on the same query (a date
 target and a field target written from the archive), ``--runs`` times each, and prints
 the medians and their ratio. Also times ``report_figures`` in process (median of the same
-number of runs, after one warm-up), the part of the report that is drawing.
+number of runs, after one warm-up), the part of the report that is drawing, and
+``report_page`` (the whole page: the figures, each analog's map cut from the grid, each
+day's reports, the HTML) alternating with it, for what the browsing page adds.
 
     python tests/benchmarks/bench_report.py --out /tmp/analogs-bench-report
 
@@ -24,6 +26,7 @@ import time
 from pathlib import Path
 
 ROOT = Path(__file__).resolve().parents[2]
+sys.path.insert(0, str(ROOT))  # this tree's package in process, as the subprocesses use
 
 
 def make_store(out: Path, years: int) -> Path:
@@ -60,6 +63,7 @@ def main(argv=None) -> int:
 
     from analogs.api import AnalogStore
     from analogs.workflows.find import find, outcome_maps, report_figures
+    from analogs.workflows.page import report_page
     loaded = AnalogStore.load(store)
     date = args.date or str(loaded.days[len(loaded.days) // 2 + 180].date())
     base = [sys.executable, "-m", "analogs", "find", "--store", str(store), "--date", date,
@@ -74,26 +78,35 @@ def main(argv=None) -> int:
     result = find(loaded, date=date, top=20)
     maps = outcome_maps(loaded, result)
     report_figures(loaded, result, maps=maps)
-    figure_times = []
+    report_page(loaded, result, maps=maps)
+    figure_times, page_times = [], []
     for _ in range(args.runs):
         start = time.perf_counter()
         report_figures(loaded, result, maps=maps)
         figure_times.append(time.perf_counter() - start)
+        start = time.perf_counter()
+        report_page(loaded, result, maps=maps)
+        page_times.append(time.perf_counter() - start)
 
     summary = {
         "date": date, "runs": args.runs, "load_average": os.getloadavg()[0],
         "find_json_median_s": statistics.median(json_times),
         "find_report_median_s": statistics.median(report_times),
         "report_figures_median_s": statistics.median(figure_times),
+        "report_page_median_s": statistics.median(page_times),
         "find_json_s": json_times, "find_report_s": report_times,
-        "report_figures_s": figure_times,
+        "report_figures_s": figure_times, "report_page_s": page_times,
     }
+    summary["ratio_page_over_figures"] = (summary["report_page_median_s"]
+                                          / summary["report_figures_median_s"])
     summary["ratio_report_over_json"] = (summary["find_report_median_s"]
                                          / summary["find_json_median_s"])
     print(f"{'command':<28}{'median s':>10}")
     print(f"{'find --json':<28}{summary['find_json_median_s']:>10.2f}")
     print(f"{'find --report':<28}{summary['find_report_median_s']:>10.2f}")
     print(f"{'report_figures (in process)':<28}{summary['report_figures_median_s']:>10.2f}")
+    print(f"{'report_page (in process)':<28}{summary['report_page_median_s']:>10.2f}")
+    print(f"ratio page/figures: {summary['ratio_page_over_figures']:.2f}")
     print(f"ratio report/json: {summary['ratio_report_over_json']:.2f} "
           f"(load average {summary['load_average']:.2f})")
     print(json.dumps(summary))

@@ -1,0 +1,94 @@
+"""Workflow: the find report's page, answer first, with every analog day to browse.
+
+>>> from analogs.workflows.page import report_page
+>>> text = report_page(store, result)          # HTML of analogs.presentation.report.find_html
+
+The figures are :func:`analogs.workflows.find.report_figures`'s; each analog's own map is
+cut from the analog grid's PNG as it is saved (no second drawing); each day's reports
+come from the store's events table.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+
+from analogs.results import FindResult
+
+
+def analog_days(store, result: FindResult, tiles=()) -> dict:
+    """rank -> {"tile", "alt", "reports", "extent", "markers"} for each analog of
+    ``result``: ``tile``, its map (PNG bytes, from ``tiles``: the analogs' maps in rank
+    order, as ``report_figures(..., tiles=[])`` fills them) or None; ``alt``, the map's
+    description; ``reports``, its convective day's reports on the store's grid by time
+    (dicts of time UTC as month-day hour:minute, kind, magnitude, lat, lon and whether
+    in the outcome region), None when the store has no events table or no reports for
+    that day yet; ``extent``, the map's latitudes and longitudes; ``markers``, kind ->
+    (marker, colour) as the grid draws them."""
+    from analogs.presentation.browse import marker_styles
+    from analogs.presentation.figures import degrees_east_label, degrees_north_label
+    analogs = result.analogs
+    region = result.region if result.region is not None else store.region
+    lat, lon = store.grid
+    events = store.events
+    extent = (f"{degrees_north_label(float(np.min(lat)))} to "
+              f"{degrees_north_label(float(np.max(lat)))}, "
+              f"{degrees_east_label(float(np.min(lon)))} to "
+              f"{degrees_east_label(float(np.max(lon)))}")
+    markers = {}
+    if events is not None:
+        # Only the analog days' events (grouping the whole table by day would cost more
+        # than the rest of the page).
+        drawn = events[events["day"].isin(pd.to_datetime(analogs["date"]))]
+        # The grid's markers: one per kind among every event of the analog days drawn.
+        markers = marker_styles(sorted(drawn["kind"].astype(str).unique()))
+        on_map = drawn[drawn["lat"].between(float(np.min(lat)), float(np.max(lat)))
+                       & drawn["lon"].between(float(np.min(lon)), float(np.max(lon)))]
+        by_day = dict(tuple(on_map.groupby(pd.to_datetime(on_map["day"]).dt.normalize())))
+    known = (analogs["reports_known"].to_numpy(dtype=bool) if "reports_known" in analogs
+             else np.ones(len(analogs), dtype=bool))
+    days = {}
+    for i, analog in enumerate(analogs.itertuples(index=False)):
+        reports = None
+        if events is not None and known[i]:
+            day = by_day.get(pd.Timestamp(analog.date).normalize())
+            reports = [] if day is None else _report_rows(day.sort_values("time"), region)
+        kinds = sorted({r["kind"] for r in reports or []})
+        alt = (f"Map of analog day {analog.date} (rank {analog.rank}, {analog.regime}, "
+               f"distance {analog.distance:.2f}) over {extent}: 500 hPa height contours every "
+               "60 gpm, the "
+               "outcome region dashed, "
+               + (f"{len(reports)} reports of the day marked by kind ({', '.join(kinds)})"
+                  if reports else "no reports marked") + ".")
+        days[int(analog.rank)] = {"tile": tiles[i] if i < len(tiles) else None,
+                                  "alt": alt, "reports": reports, "markers": markers,
+                                  "extent": extent}
+    return days
+
+
+def _report_rows(day: pd.DataFrame, region) -> list[dict]:
+    inside = (region.contains(day["lat"].to_numpy(), day["lon"].to_numpy())
+              if region is not None else np.ones(len(day), dtype=bool))
+    magnitudes = day["magnitude"] if "magnitude" in day else [None] * len(day)
+    return [{"time": pd.Timestamp(t).strftime("%m-%d %H:%M"), "kind": str(k),
+             "magnitude": _magnitude(m), "lat": f"{y:.2f}", "lon": f"{x:.2f}",
+             "in_region": bool(flag)}
+            for t, k, m, y, x, flag in zip(day["time"], day["kind"], magnitudes,
+                                           day["lat"], day["lon"], inside)]
+
+
+def _magnitude(value) -> str:
+    if value is None or (isinstance(value, float) and np.isnan(value)):
+        return ""
+    return f"{value:g}" if isinstance(value, (int, float, np.number)) else str(value)
+
+
+def report_page(store, result: FindResult, *, maps=None, hindcast=None) -> str:
+    """The HTML page of one query: figures, each analog's map and reports, answer first
+    (:func:`analogs.presentation.report.find_html`)."""
+    from analogs.presentation.report import find_html
+    from analogs.workflows.find import report_figures
+    tiles = []
+    figures = report_figures(store, result, maps=maps, hindcast=hindcast, tiles=tiles)
+    return find_html(result, store.manifest, figures=figures,
+                     days=analog_days(store, result, tiles))
