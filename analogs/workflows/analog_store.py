@@ -132,13 +132,15 @@ class AnalogStore:
         are then counted from the events when a query asks)."""
         if counts is None:
             return None
-        if ("total" not in counts.columns or len(counts) != len(self.times)
-                or counts.attrs != counts_region_attrs(self.region)):
+        day = counts.columns[0] if len(counts.columns) else None
+        if (day is None or "total" not in counts.columns
+                or counts.attrs != counts_region_attrs(self.region)
+                or not pd.DatetimeIndex(counts[day]).equals(self.days)):
             raise StoreError(f"store {self.path}: {store_io.COUNTS} does not hold the daily "
                              f"counts of its {len(self.times)} days in its region; rebuild "
                              "the store")
+        counts = counts.set_index(day)
         counts.attrs = {}
-        counts.index = self.days
         return counts
 
     # -- read when first used ---------------------------------------------------------

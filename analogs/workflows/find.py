@@ -869,10 +869,10 @@ def daily_counts(store, region, kinds=None) -> pd.DataFrame:
 def stored_daily_counts(events: pd.DataFrame, days, region: Region) -> pd.DataFrame:
     """The daily counts a store keeps (``counts.parquet``, written at build and update):
     :func:`analogs.stages.outcomes.daily_event_counts` of every kind in the store's
-    ``region`` on ``days``, without the index (the store's days give it back at load),
-    the region named in the table's attrs."""
+    ``region`` on ``days``, the days as a column (a store's tables are written without
+    their index), the region named in the table's attrs."""
     from analogs.workflows.analog_store import counts_region_attrs
-    table = daily_event_counts(events, days, region).reset_index(drop=True)
+    table = daily_event_counts(events, days, region).reset_index()
     table.attrs = counts_region_attrs(region)
     return table
 

@@ -550,7 +550,7 @@ def read_scores(path) -> dict:
                      if not name.startswith("_")}
     except (OSError, ValueError, KeyError, AttributeError, IndexError) as error:
         raise StoreError(f"cannot read store file {path}: {error}") from None
-    times = pd.DatetimeIndex(np.asarray(times, dtype="datetime64[ns]"), name="time")
+    times = pd.DatetimeIndex(np.asarray(times, dtype="datetime64[ns]"))
     return {"values": values, "times": times, "modes": modes, "mode_name": mode_name,
             "attrs": attrs}
 

@@ -63,8 +63,8 @@ def make_store(out: Path, years: int) -> Path:
     return store
 
 
-def timed(command) -> float:
-    env = dict(os.environ, PYTHONPATH=str(ROOT))
+def timed(command, tree=ROOT) -> float:
+    env = dict(os.environ, PYTHONPATH=str(tree))
     start = time.perf_counter()
     subprocess.run(command, check=True, env=env, stdout=subprocess.DEVNULL,
                    stderr=subprocess.DEVNULL)
@@ -90,13 +90,16 @@ def main(argv=None) -> int:
                         help="an existing store (default: a demo store built under --out)")
     parser.add_argument("--years", type=int, default=10)
     parser.add_argument("--runs", type=int, default=9)
+    parser.add_argument("--baseline-tree", type=Path, default=None,
+                        help="also time find --json of another checkout of analogs (e.g. "
+                             "the main branch before this change), interleaved")
     parser.add_argument("--batch", type=int, default=200,
                         help="dates of the batch command (default 200; 0: no batch)")
     args = parser.parse_args(argv)
     args.out.mkdir(parents=True, exist_ok=True)
     store = args.store or make_store(args.out, args.years)
     dates = archive_dates(store, max(args.batch, 1))
-    date = dates[len(dates) // 2]
+    date = archive_dates(store, 5)[2]
     row = _row_of(store, date)
     minimal_script = args.out / "minimal_query.py"
     minimal_script.write_text(MINIMAL_PROGRAM)
@@ -109,10 +112,12 @@ def main(argv=None) -> int:
     batch = [sys.executable, "-m", "analogs", "find", "--store", str(store), "--dates",
              str(dates_file), "--json"]
     timed(tool), timed(floor)  # warm the file cache
-    tool_times, floor_times, batch_times = [], [], []
+    tool_times, floor_times, batch_times, baseline_times = [], [], [], []
     for _ in range(args.runs):  # interleaved, so load changes hit both alike
         tool_times.append(timed(tool))
         floor_times.append(timed(floor))
+        if args.baseline_tree:
+            baseline_times.append(timed(tool, args.baseline_tree))
     for _ in range(max(3, args.runs // 3) if args.batch else 0):
         batch_times.append(timed(batch))
     tool_median, floor_median = statistics.median(tool_times), statistics.median(floor_times)
@@ -125,13 +130,21 @@ def main(argv=None) -> int:
         "batch_dates": len(dates), "batch_command_s": batch_median,
         "batch_per_date_s": batch_median / len(dates),
         "single_over_batch_per_date": tool_median / (batch_median / len(dates)),
-        "tool_runs_s": tool_times, "floor_runs_s": floor_times, "batch_runs_s": batch_times,
+        "baseline_tree": str(args.baseline_tree) if args.baseline_tree else None,
+        "baseline_find_json_s": (statistics.median(baseline_times) if baseline_times
+                                 else None),
+        "baseline_ratio": (statistics.median(baseline_times) / floor_median
+                           if baseline_times else None),
+        "tool_runs_s": tool_times, "baseline_runs_s": baseline_times, "floor_runs_s": floor_times, "batch_runs_s": batch_times,
     }
     print(f"load average {figures['load_average'][0]:.2f}; store {store} "
           f"({figures['n_days']} days), date {date}, medians of {args.runs} runs")
     print(f"  find --json (whole command)     {tool_median:8.3f} s")
     print(f"  minimal program (floor)         {floor_median:8.3f} s")
     print(f"  ratio                           {figures['ratio']:8.2f}x  (target 4x, moonshot 2.5x)")
+    if baseline_times:
+        print(f"  baseline tree {args.baseline_tree}: find --json "
+              f"{figures['baseline_find_json_s']:.3f} s, {figures['baseline_ratio']:.2f}x the floor")
     print(f"  find --dates ({len(dates)} dates, one command) {batch_median:8.3f} s: "
           f"{1000 * figures['batch_per_date_s']:.1f} ms a date, "
           f"{figures['single_over_batch_per_date']:.0f}x faster than one command a date")
