@@ -119,6 +119,8 @@ class AnalogStore:
         if events is not None and store_io.COUNTS in files:
             counts = store_io.read_table(path / store_io.COUNTS)
         store = cls(path, manifest, scores, events=events, tags=tags)
+        # The grid (two short vectors of basis.nc) is read with the version it belongs to.
+        store._grid = store_io.read_grid(path / store_io.BASIS)
         store.stored_counts = store._checked_counts(counts)
         if tags is not None:
             # The diagnostics' units and region, kept apart because pandas deep-copies
@@ -217,8 +219,6 @@ class AnalogStore:
     @property
     def grid(self) -> tuple[np.ndarray, np.ndarray]:
         """Latitudes and longitudes of the store grid (degrees)."""
-        if "_grid" not in self.__dict__:
-            self._grid = store_io.read_grid(self.path / store_io.BASIS)
         return self._grid
 
     @property
