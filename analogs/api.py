@@ -18,7 +18,17 @@ The CLI is a thin layer over this module; the work is done in :mod:`analogs.work
 
 from analogs.results import AnalogResult, FindResult, OutcomeSummary, ValidTimesResult
 from analogs.workflows.analog_store import AnalogStore
-from analogs.workflows.build import build_store, skill_by_month
 
 __all__ = ["AnalogResult", "AnalogStore", "FindResult", "OutcomeSummary", "ValidTimesResult",
-           "build_store", "skill_by_month"]
+           "build_store", "skill_by_month"]  # noqa: F822 (module __getattr__)
+
+#: Imported when first asked for: a build needs the readers, xarray and dask, which a
+#: query of a loaded store does not.
+_FROM_BUILD = ("build_store", "skill_by_month")
+
+
+def __getattr__(name):
+    if name in _FROM_BUILD:
+        from analogs.workflows import build
+        return getattr(build, name)
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")

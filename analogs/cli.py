@@ -83,10 +83,11 @@ def build_parser() -> argparse.ArgumentParser:
              description="Find the closest archive days to a target day or forecast field, "
                          "with the regime of each and what they produced. The distance of "
                          f"two days is {DISTANCE}.",
-             options=(P.store, P.date, P.field, P.time, P.top, P.window, P.separation,
-                      P.region, P.exclude, P.regime, P.kinds, P.sequence, P.weights, P.json,
-                      P.report, P.maps, P.skip_skill_hindcast),
-             exclusive=((True, (P.date, P.field)),))
+             options=(P.store, P.date, P.dates, P.field, P.time, P.top, P.window,
+                      P.separation, P.region, P.exclude, P.regime, P.kinds, P.sequence,
+                      P.weights, P.json, P.json_lines, P.report, P.maps,
+                      P.skip_skill_hindcast),
+             exclusive=((True, (P.date, P.dates, P.field)), (False, (P.json, P.json_lines))))
     _command(commands, "verify", handler=_cmd_verify,
              help="cross-validated skill of the store's analog probabilities",
              description="Leave-one-year-out hindcast: every archive day is forecast from "
@@ -223,23 +224,35 @@ def _cmd_build(args) -> int:
 
 def _cmd_find(args) -> int:
     from analogs.api import AnalogStore
-    from analogs.workflows import files
-    from analogs.workflows.find import find, outcome_maps
-    from analogs.workflows.page import report_page
+    from analogs.workflows.find import find
     if args.time and args.field is None:
         raise AnalogsInputError("--time applies to --field only")
-    from analogs.stages.sources import several_times
-    if several_times(args.time) and args.maps:
+    several_times = _several_times(args)
+    if several_times and args.maps:
         raise AnalogsInputError(f"--maps writes one file: with --time {args.time} (several "
                                 "valid times) choose one valid time for the maps")
+    if args.dates is not None and (args.maps or args.report):
+        raise AnalogsInputError(f"--{'maps' if args.maps else 'report'} draws one target: "
+                                "with --dates, ask for one date with --date")
     store = AnalogStore.load(args.store)
+    if args.dates is not None:
+        return _print_many(store.find_many(
+            args.dates, top=args.top, window=args.window, exclude=args.exclude,
+            separation=args.separation, region=args.region, regime=args.regime,
+            weights=args.weights, sequence=args.sequence, kinds=args.kind,
+            skip_skill_hindcast=args.skip_skill_hindcast), args)
     result = find(store, date=args.date, field=args.field, time=args.time, top=args.top,
                   window=args.window, exclude=args.exclude, separation=args.separation,
                   region=args.region, regime=args.regime, weights=args.weights,
                   sequence=args.sequence, kinds=args.kind,
                   skip_skill_hindcast=args.skip_skill_hindcast)
-    if several_times(args.time):  # one answer per valid time (a ValidTimesResult)
+    if several_times:  # one answer per valid time (a ValidTimesResult)
         return _print_valid_times(store, result, args)
+    if not (args.maps or args.report):
+        return _print_find(result, args)
+    from analogs.workflows import files
+    from analogs.workflows.find import outcome_maps
+    from analogs.workflows.page import report_page
     drawn = args.report and store.events is not None
     maps = outcome_maps(store, result) if args.maps or drawn else None
     if args.maps:
@@ -251,15 +264,41 @@ def _cmd_find(args) -> int:
     return _print_find(result, args)
 
 
+def _several_times(args) -> bool:
+    """Whether --time asks for several valid times of a --field (the readers, and xarray
+    with them, are imported only for a field)."""
+    if args.field is None or args.time is None:
+        return False
+    from analogs.stages.sources import several_times
+    return several_times(args.time)
+
+
 def _print_find(result, args) -> int:
     """A find result (one target, an ensemble or several valid times) as JSON or text."""
     from analogs.presentation.report import dumps, find_text
-    if args.json:
+    if args.json_lines:  # one line per valid time, or the one answer
+        for one in getattr(result, "results", (result,)):
+            print(dumps(one.to_dict(), indent=None))
+    elif args.json:
         print(dumps(result.to_dict()))
     else:
         print(find_text(result))
         if args.report:
             print(f"\nreport: {Path(args.report) / 'index.html'}")
+    return 0
+
+
+def _print_many(results, args) -> int:
+    """The answers of find --dates: a JSON array (--json), one JSON object a line
+    (--json-lines) or one table after another."""
+    from analogs.presentation.report import dumps, find_text
+    if args.json_lines:
+        for result in results:
+            print(dumps(result.to_dict(), indent=None))
+    elif args.json:
+        print(dumps([result.to_dict() for result in results]))
+    else:
+        print("\n\n".join(find_text(result) for result in results))
     return 0
 
 

@@ -320,13 +320,20 @@ PARAMETERS: dict[str, Parameter] = _table(
               metavar="N"),
     # -- find and verify ------------------------------------------------------------------
     Parameter("date", ("--date",), "target: an archive day", metavar="YYYY-MM-DD",
-              default_text="none, give --date or --field"),
+              default_text="none, give --date, --dates or --field"),
+    Parameter("dates", ("--dates",), "targets: a text file of archive days, one YYYY-MM-DD "
+              "a line (blank lines and lines starting with # skipped), answered in one "
+              "process from one loading of the store, in the file's order", kind="path",
+              metavar="FILE", default_text="none, give --date, --dates or --field"),
+    Parameter("json_lines", ("--json-lines",), "print one compact JSON object a line, one "
+              "per target (--dates) or valid time (--time all or START/END), instead of a "
+              "table", kind="flag"),
     Parameter("field", ("--field",), "target: a forecast or analysis field (NetCDF; any "
               "grid covering the store's, or all but at most 10 % of it, projected on "
               "the covered points); an ensemble file (a member dimension such as number "
               "or realization) gives each member's regime and analogs and outcomes "
               "pooled over the members", kind="path", metavar="FILE",
-              default_text="none, give --date or --field"),
+              default_text="none, give --date, --dates or --field"),
     Parameter("time", ("--time",), "valid time to take from --field (ISO 8601, UTC); "
               "'all' takes every valid time in the file and START/END (ISO 8601 interval, "
               "e.g. 2024-05-03/2024-05-05, either end may be left open) those in the "

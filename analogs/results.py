@@ -7,8 +7,8 @@ the settings and region used and, for a ``field`` target, the target's fields on
 store grid (xarray Dataset). ``to_dict()`` gives the JSON shape of ``analogs find --json``
 (DESIGN.md), where an undefined statistic is ``None`` (``null``); nothing else does.
 
-This module is in the base layer: it imports pandas, xarray, numpy and the package's
-base modules only.
+This module is in the base layer: it imports pandas, numpy and the package's base
+modules only (a field target's result holds xarray objects, made elsewhere).
 """
 
 from __future__ import annotations
@@ -16,12 +16,15 @@ from __future__ import annotations
 import dataclasses
 import math
 from dataclasses import dataclass, field
+from typing import TYPE_CHECKING
 
 import numpy as np
 import pandas as pd
-import xarray as xr
 
 from analogs import CAUTION
+
+if TYPE_CHECKING:  # only a field target's result holds xarray objects
+    import xarray as xr
 
 #: Prefix of the per-kind event-count columns of :attr:`FindResult.analogs`.
 EVENTS_PREFIX = "events_"

@@ -363,13 +363,13 @@ def training_text(training: dict) -> str:
     return "\n".join(lines)
 
 
-def dumps(data) -> str:
+def dumps(data, *, indent=2) -> str:
     """JSON text with NaN written as null (strict JSON for scripts). ``data`` is plain
     JSON values or a result object with ``to_dict()`` (a
-    :class:`~analogs.results.FindResult`)."""
+    :class:`~analogs.results.FindResult`); ``indent=None`` gives one line."""
     if not isinstance(data, (dict, list)) and callable(getattr(data, "to_dict", None)):
         data = data.to_dict()
-    return json.dumps(_nan_to_none(data), indent=2)
+    return json.dumps(_nan_to_none(data), indent=indent)
 
 
 def _nan_to_none(value):

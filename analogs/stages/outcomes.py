@@ -39,11 +39,10 @@ from __future__ import annotations
 import dataclasses
 import math
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import numpy as np
 import pandas as pd
-import xarray as xr
-from scipy import special
 
 from analogs import __version__
 from analogs._validation import ParameterError, check_choice, check_float
@@ -54,10 +53,12 @@ from analogs.constants import (
     PRACTICALLY_PERFECT_SIGMA_KM,
 )
 from analogs.errors import AnalogsInputError
-from analogs.stages.cf import label_coordinates
 from analogs.geo import great_circle_km, initial_bearing_deg
 from analogs.parameters import P
 from analogs.results import OutcomeSummary, WeightedOutcomes
+
+if TYPE_CHECKING:  # xarray is imported by the maps, which alone return labelled arrays
+    import xarray as xr
 
 #: Columns every events table must have.
 REQUIRED_EVENT_COLUMNS = ("time", "lat", "lon", "kind")
@@ -630,6 +631,7 @@ def binomial_interval(successes, trials, confidence=0.9, method="clopper-pearson
         raise AnalogsInputError(
             f"The 'successes' parameter of {owner} must be a number in [0, trials]. "
             f"Got {successes!r} instead.")
+    from scipy import special  # imported here: scipy is not needed to load a store
     alpha = 1.0 - confidence
     if method == "wilson":
         z = special.ndtri(1.0 - alpha / 2.0)
@@ -950,6 +952,7 @@ def neighbourhood_probability(events, analog_days, lat, lon, radius_km=NEIGHBOUR
             hit[np.repeat(positions, sizes), np.concatenate(near)] = True
     hit = hit.reshape(days.size, lat.size, lon.size)
     probability = np.tensordot(w, hit.astype(float), axes=1)
+    import xarray as xr
     return xr.DataArray(
         np.clip(probability, 0.0, 1.0), dims=("lat", "lon"),
         coords={"lat": lat, "lon": lon}, name="neighbourhood_probability",
@@ -1018,6 +1021,7 @@ def report_density(events, analog_days, lat, lon, sigma_km=PRACTICALLY_PERFECT_S
     from scipy import ndimage  # imported here: only maps need it
 
     density = ndimage.gaussian_filter(counts, sigma=sigma, mode="constant", cval=0.0)
+    import xarray as xr
     return xr.DataArray(
         density, dims=("lat", "lon"), coords={"lat": lat, "lon": lon},
         name="report_density",
@@ -1038,6 +1042,9 @@ def outcome_maps(events, analog_days, lat, lon, *, radius_km=NEIGHBOURHOOD_KM,
     days = _as_days(analog_days)
     probability = neighbourhood_probability(events, days, lat, lon, radius_km, weights)
     density = report_density(events, days, lat, lon, sigma_km, weights)
+    import xarray as xr
+
+    from analogs.stages.cf import label_coordinates
     ds = xr.Dataset({"neighbourhood_probability": probability, "report_density": density})
     ds = label_coordinates(ds, replace=True)
     ds.attrs = {

@@ -38,10 +38,10 @@ import tomllib
 from dataclasses import dataclass, field, fields
 from os import PathLike
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import numpy as np
 import pandas as pd
-import xarray as xr
 
 from analogs import __version__
 from analogs._validation import check_int
@@ -49,8 +49,12 @@ from analogs._validation import check_int
 from analogs.parameters import REGIME_LABELS
 from analogs.constants import ZERO_CELSIUS_K
 from analogs.geo import great_circle_km, initial_bearing_deg
-from analogs.stages.diagnostics import compute_diagnostics, dewpoint_from_specific_humidity
 from analogs.errors import AnalogsInputError, NotFittedError
+
+# xarray and the diagnostics (scipy) are imported by the functions that compute: a query
+# of a store reads only the labels and the units of its stored tags.
+if TYPE_CHECKING:
+    import xarray as xr
 
 __all__ = [
     "REGIME_LABELS",
@@ -348,6 +352,7 @@ def cyclone_structure(ds: xr.Dataset, diagnostics: pd.DataFrame) -> pd.DataFrame
     Everything is NaN on days without a closed low and for a measure the archive
     lacks. Area means use cos-latitude weights; missing values are skipped.
     """
+    from analogs.stages.diagnostics import dewpoint_from_specific_humidity
     names = list(STRUCTURE_UNITS)
     n = len(diagnostics)
     out = {name: np.full(n, np.nan) for name in names}
@@ -886,9 +891,11 @@ def tag_metadata(attrs: dict, columns) -> dict:
     ``attrs``: the tags' attributes (:func:`tag_days` ``attrs``, kept in the store);
     ``columns``: the columns written.
     """
-    from analogs.stages.diagnostics import DIAGNOSTIC_UNITS
-    known = {**_TAG_COLUMN_UNITS, **DIAGNOSTIC_UNITS, **STRUCTURE_UNITS,
-             **(attrs.get("units") or {})}
+    known = {**_TAG_COLUMN_UNITS, **STRUCTURE_UNITS, **(attrs.get("units") or {})}
+    if any(str(c) not in known for c in columns):  # tags written without their units
+        from analogs.stages.diagnostics import DIAGNOSTIC_UNITS
+        known = {**_TAG_COLUMN_UNITS, **DIAGNOSTIC_UNITS, **STRUCTURE_UNITS,
+                 **(attrs.get("units") or {})}
     region = attrs.get("region")
     region = None if region is None else [float(v) for v in region]
     default = bool(attrs.get("region_default", False))
@@ -929,6 +936,9 @@ def tag_days(ds: xr.Dataset, region=None, *, rules: RegimeRules | None = None,
     ``attrs["region_default"]`` whether it was the default and
     ``attrs["region_description"]`` says so in words.
     """
+    import xarray as xr
+
+    from analogs.stages.diagnostics import compute_diagnostics
     default = region is None
     if default:
         if not isinstance(ds, xr.Dataset) or "lat" not in ds.coords or "lon" not in ds.coords:
@@ -958,6 +968,7 @@ def tag_days(ds: xr.Dataset, region=None, *, rules: RegimeRules | None = None,
 
 
 def _pcs_array(pcs, owner: str) -> tuple[np.ndarray, pd.DatetimeIndex | None]:
+    import xarray as xr
     times = None
     if isinstance(pcs, xr.DataArray):
         if pcs.ndim != 2 or "time" not in pcs.dims:
@@ -1063,11 +1074,13 @@ class KMeansRegimes:
 
     def predict(self, pcs) -> np.ndarray:
         """Regime index of each day (consecutive days), persistence-filtered."""
+        import xarray as xr
         times = pd.DatetimeIndex(pcs["time"].values) if isinstance(pcs, xr.DataArray) \
             else None
         return persistence_filter(self.assign(pcs), self.min_persistence, times)
 
     def to_dataset(self) -> xr.Dataset:
+        import xarray as xr
         self._check_fitted()
         return xr.Dataset(
             {"cluster_centers": (("regime", "mode"), self.cluster_centers_,
@@ -1166,6 +1179,7 @@ class SupervisedRegimes:
 
     def _training_set(self, pcs, labelled_days, owner):
         """(PCs of the labelled days, their labels as a Series indexed by date)."""
+        import xarray as xr
         if not isinstance(pcs, xr.DataArray):
             raise AnalogsInputError(
                 f"{owner} needs the PCs as a DataArray (time, mode), to match labelled dates")
@@ -1257,6 +1271,7 @@ class SupervisedRegimes:
         return self.classes_[np.argmax(self.predict_proba(pcs), axis=1)]
 
     def to_dataset(self) -> xr.Dataset:
+        import xarray as xr
         self._check_fitted()
         n_rows = self.coef_.shape[0]
         return xr.Dataset(

@@ -2,20 +2,21 @@
 
 from __future__ import annotations
 
+import json
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
 
-from analogs.workflows import find as find_workflow
-from analogs.workflows import store as store_io
-from analogs.results import FindResult
-from analogs.stages.daily_climatology import HarmonicClimatology
-from analogs.stages.eof import MultivariateEOF
 from analogs.errors import StoreError
+from analogs.results import FindResult
 from analogs.stages.index import AnalogIndex
 from analogs.stages.outcomes import EVENT_COLUMNS, Region
-from analogs.workflows.build import region_from_config
+from analogs.workflows import find as find_workflow
+from analogs.workflows import store as store_io
+
+# The climatology and EOFs (xarray, dask) are read from basis.nc when first used: a query
+# of an archive date reads only the PCs, tags, events and the stored daily counts.
 
 #: Columns every store's tags table holds (the diagnostics follow them).
 TAG_COLUMNS = ("date", "regime", "confidence")
@@ -32,6 +33,17 @@ def _require_columns(path, name, table, columns) -> None:
                          "it was not written by analogs: rebuild the store")
 
 
+def region_from_config(config) -> Region:
+    """The store's outcome region from its manifest's ``config["region"]``."""
+    return Region.whole() if config is None else Region.from_dict(config)
+
+
+def counts_region_attrs(region: Region) -> dict:
+    """How ``counts.parquet`` names the region it counts (JSON-normalised, so it compares
+    equal after the Parquet metadata round trip)."""
+    return {"region": json.loads(json.dumps(region.to_dict()))}
+
+
 class AnalogStore:
     """A loaded store: the fitted climatology and EOFs, every day's PCs, events, tags.
 
@@ -39,17 +51,22 @@ class AnalogStore:
     because the object never changes. Writes (:meth:`update`, :meth:`retag`,
     :meth:`save_query_defaults`) apply to the store's current version under the writer
     lock and return a new object; use that one (``store = store.update(files)``).
+
+    Loading reads the PCs (``pc_values``, ``times``), the tags, the events and the stored
+    daily counts of the store's region; ``climatology``, ``eof`` and the labelled
+    ``pcs`` are made when first used (``basis.nc`` is then checked against the checksum
+    of the version loaded, so an object never mixes two versions).
     """
 
-    def __init__(self, path, manifest, climatology, eof, pcs, events=None, tags=None):
+    def __init__(self, path, manifest, scores, events=None, tags=None, counts=None):
         self.path = Path(path)
         self.manifest = manifest
-        self.climatology = climatology
-        self.eof = eof
-        self.pcs = pcs
+        self.pc_values = scores["values"]
+        self.times = scores["times"]
+        self._scores = scores
         self.events = events
         self.tags = tags
-        self.times = pd.DatetimeIndex(pcs["time"].values)
+        self.stored_counts = counts
         self.tag_attrs: dict = {}
         self._index = None
 
@@ -87,46 +104,102 @@ class AnalogStore:
         for required in (store_io.BASIS, store_io.SCORES):
             if required not in files:
                 raise StoreError(f"store {path} lists no {required} in its manifest; rebuild it")
-        basis_path = path / store_io.BASIS
-        climatology = HarmonicClimatology.from_dataset(
-            store_io.read_dataset(basis_path, group="climatology"))
-        eof = MultivariateEOF.from_dataset(store_io.read_dataset(basis_path, group="eof"))
-        scores = store_io.read_dataset(path / store_io.SCORES)
-        if "pcs" not in scores:
-            raise StoreError(f"store {path}: {store_io.SCORES} holds no variable 'pcs' (it "
-                             f"holds {', '.join(map(str, scores.data_vars)) or 'none'}); "
-                             "rebuild the store")
-        pcs = scores["pcs"]
+        scores = store_io.read_scores(path / store_io.SCORES)
+        n_days = len(scores["times"])
         events = store_io.read_table(path / store_io.EVENTS) if store_io.EVENTS in files else None
         tags = store_io.read_table(path / store_io.TAGS) if store_io.TAGS in files else None
         _require_columns(path, store_io.EVENTS, events, EVENT_COLUMNS)
         _require_columns(path, store_io.TAGS, tags, TAG_COLUMNS)
-        if pcs.ndim != 2 or "time" not in pcs.dims:
-            raise StoreError(f"store {path}: {store_io.SCORES} holds pcs of dims {pcs.dims}, "
-                             "not (time, mode); rebuild the store")
-        if tags is not None and len(tags) != pcs.sizes["time"]:
+        if tags is not None and len(tags) != n_days:
             raise StoreError(f"store {path}: {store_io.TAGS} has {len(tags)} rows for the "
-                             f"{pcs.sizes['time']} days of {store_io.SCORES}; rebuild the store")
+                             f"{n_days} days of {store_io.SCORES}; rebuild the store")
         if tags is not None:
             tags = tags.assign(date=pd.to_datetime(tags["date"])).set_index("date")
-        store = cls(path, manifest, climatology, eof, pcs, events=events, tags=tags)
+        counts = None
+        if events is not None and store_io.COUNTS in files:
+            counts = store_io.read_table(path / store_io.COUNTS)
+        store = cls(path, manifest, scores, events=events, tags=tags)
+        # The grid (two short vectors of basis.nc) is read with the version it belongs to.
+        store._grid = store_io.read_grid(path / store_io.BASIS)
+        store.stored_counts = store._checked_counts(counts)
         if tags is not None:
             # The diagnostics' units and region, kept apart because pandas deep-copies
             # attrs on every operation, which would dominate a query's time.
             store.tag_attrs, tags.attrs = dict(tags.attrs), {}
         return store
 
+    def _checked_counts(self, counts) -> pd.DataFrame | None:
+        """The stored daily counts (:data:`~analogs.workflows.store.COUNTS`) indexed by the
+        archive days, when they count this store's region over its days; else None (they
+        are then counted from the events when a query asks)."""
+        if counts is None:
+            return None
+        day = counts.columns[0] if len(counts.columns) else None
+        if (day is None or "total" not in counts.columns
+                or counts.attrs != counts_region_attrs(self.region)
+                or not pd.DatetimeIndex(counts[day]).equals(self.days)):
+            raise StoreError(f"store {self.path}: {store_io.COUNTS} does not hold the daily "
+                             f"counts of its {len(self.times)} days in its region; rebuild "
+                             "the store")
+        counts = counts.set_index(day)
+        counts.attrs = {}
+        return counts
+
+    # -- read when first used ---------------------------------------------------------
+    def _basis(self, group):
+        """A group of this version's ``basis.nc``, checked against its loaded checksum."""
+        basis_path = self.path / store_io.BASIS
+        expected = (self.manifest["files"].get(store_io.BASIS) or {}).get("sha256")
+        if expected is not None and store_io.sha256_file(basis_path) != expected:
+            raise StoreError(f"store {self.path} was replaced by a new version since this "
+                             "object was loaded; load it again")
+        return store_io.read_dataset(basis_path, group=group)
+
+    @property
+    def climatology(self):
+        """The fitted daily climatology (:class:`~analogs.stages.daily_climatology.HarmonicClimatology`)."""
+        if "_climatology" not in self.__dict__:
+            from analogs.stages.daily_climatology import HarmonicClimatology
+            self._climatology = HarmonicClimatology.from_dataset(self._basis("climatology"))
+        return self._climatology
+
+    @property
+    def eof(self):
+        """The fitted EOFs (:class:`~analogs.stages.eof.MultivariateEOF`)."""
+        if "_eof" not in self.__dict__:
+            from analogs.stages.eof import MultivariateEOF
+            self._eof = MultivariateEOF.from_dataset(self._basis("eof"))
+        return self._eof
+
+    @property
+    def pcs(self):
+        """Every day's PCs as a labelled ``(time, mode)`` DataArray (``pc_values`` is the
+        same array, unlabelled)."""
+        if "_pcs" not in self.__dict__:
+            import xarray as xr
+            scores = self._scores
+            self._pcs = xr.DataArray(
+                self.pc_values, dims=("time", scores["mode_name"]), name="pcs",
+                coords={"time": self.times.values, scores["mode_name"]: scores["modes"]},
+                attrs=scores["attrs"])
+        return self._pcs
+
     # -- derived state -------------------------------------------------------------
+    @property
+    def n_modes(self) -> int:
+        """EOF modes kept by the build (the stored PCs' columns; the EOFs are not read)."""
+        return int(self.pc_values.shape[1])
+
     @property
     def n_query_modes(self) -> int:
         """EOF modes used in queries: the tuned count when one was saved, else all."""
-        return int(self.query_defaults.get("n_modes") or self.eof.n_modes_)
+        return int(self.query_defaults.get("n_modes") or self.n_modes)
 
     @property
     def index(self) -> AnalogIndex:
         if self._index is None:
             kind = (self.manifest.get("index") or {}).get("kind", "auto")
-            self._index = AnalogIndex(kind=kind).fit(self.pcs.values[:, :self.n_query_modes])
+            self._index = AnalogIndex(kind=kind).fit(self.pc_values[:, :self.n_query_modes])
         return self._index
 
     @property
@@ -151,9 +224,6 @@ class AnalogStore:
     @property
     def grid(self) -> tuple[np.ndarray, np.ndarray]:
         """Latitudes and longitudes of the store grid (degrees)."""
-        if "_grid" not in self.__dict__:
-            basis = self.eof.eofs_
-            self._grid = (basis["lat"].values, basis["lon"].values)
         return self._grid
 
     @property
@@ -176,6 +246,12 @@ class AnalogStore:
         ``kinds``); for ``time="all"`` or ``"START/END"`` a
         :class:`~analogs.results.ValidTimesResult`, one result per valid time."""
         return find_workflow.find(self, **options)
+
+    def find_many(self, dates, **options) -> list[FindResult]:
+        """:meth:`find` for many archive ``dates`` (a list, or the path of a text file
+        with one YYYY-MM-DD a line) in one process, each answer the one ``find(date=...)``
+        gives (:func:`analogs.workflows.find.find_many`)."""
+        return find_workflow.find_many(self, dates, **options)
 
     def daily_counts(self, region, kinds=None) -> pd.DataFrame:
         """Events in ``region`` on every archive day, one column per kind plus ``total``

@@ -46,12 +46,6 @@ def provenance(paths) -> list[dict]:
     return entries
 
 
-def region_from_config(config) -> Region:
-    if config is None:
-        return Region.whole()
-    return Region.from_dict(config)
-
-
 def grid_box(ds) -> tuple[float, float, float, float]:
     lat, lon = ds["lat"].values, ds["lon"].values
     return float(lat.min()), float(lat.max()), float(lon.min()), float(lon.max())
@@ -292,6 +286,7 @@ def _build(paths, store, *, events, event_dates, events_period, fields, n_modes,
         "index": index_info,
     }
     from analogs.workflows.analog_store import AnalogStore
+    from analogs.workflows.find import stored_daily_counts
     reads_done()  # an archive file changed during the reads: refused before any write
     # A whole new version, written and loaded back under the writer lock.
     with store_io.transaction(store, new=True) as txn:
@@ -309,6 +304,8 @@ def _build(paths, store, *, events, event_dates, events_period, fields, n_modes,
         store_io.write_dataset(scores, staged / store_io.SCORES)
         if event_table is not None:
             store_io.write_table(event_table, staged / store_io.EVENTS)
+            store_io.write_table(stored_daily_counts(event_table, times.normalize(), region),
+                                 staged / store_io.COUNTS)
         store_io.write_table(tags.reset_index(drop=True), staged / store_io.TAGS)
         txn.commit(manifest)
         return AnalogStore._load_version(txn.path, manifest=txn.committed)

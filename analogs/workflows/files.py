@@ -21,14 +21,16 @@ import shutil
 import tempfile
 import threading
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import pandas as pd
-import xarray as xr
 
 from analogs._validation import fail
 from analogs.errors import AnalogsInputError
-from analogs.stages.cf import cf_tidy, netcdf_encoding
 from analogs.workflows.paths import check_output, refuse_inside_store
+
+if TYPE_CHECKING:  # xarray is imported where a NetCDF file is written: a query reads none
+    import xarray as xr
 
 #: Suffixes :func:`write_table` knows, and the pandas writer of each.
 TABLE_SUFFIXES = (".csv", ".parquet")
@@ -143,6 +145,7 @@ def write_netcdf(ds: xr.Dataset, path, *, group=None, mode="w", encoding=None) -
     path = Path(path)
     if mode not in ("w", "a"):
         raise ValueError(f"write_netcdf: mode must be 'w' or 'a', not {mode!r}")
+    from analogs.stages.cf import cf_tidy, netcdf_encoding
     tidy = cf_tidy(ds)
     with atomic_path(path) as temporary, NETCDF_LOCK:
         if mode == "a" and path.exists():

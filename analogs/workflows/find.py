@@ -25,19 +25,23 @@ events of those days, the outcome maps) and hands arrays to the pure figure func
 :mod:`analogs.presentation.figures`.
 
 Derived arrays of a store version (daily event counts per region, sequence vectors and
-their indexes, regime arrays) are computed once per loaded store and kept beside it.
+their indexes, regime arrays) are computed once per loaded store and kept beside it; the
+daily counts of the store's own region are kept in the store (``counts.parquet``,
+:func:`stored_daily_counts`) and read back.
 """
 
 from __future__ import annotations
 
+import os
 import warnings
 import weakref
 from dataclasses import dataclass
 from dataclasses import replace as dataclasses_replace
+from pathlib import Path
+from typing import TYPE_CHECKING
 
 import numpy as np
 import pandas as pd
-import xarray as xr
 
 from analogs._validation import choice_expected, fail, renamed_errors
 from analogs.errors import AnalogsInputError
@@ -54,6 +58,9 @@ from analogs.stages.outcomes import (
 )
 from analogs.stages import outcomes as outcome_stage
 from analogs.stages.selection import candidate_ids, find_analogs
+
+if TYPE_CHECKING:  # xarray is imported by the field targets and the report only
+    import xarray as xr
 
 # The readers (sources) and the regime diagnostics (regimes) are imported inside the
 # functions that use them: a query on an archive date needs neither, and the start-up of
@@ -148,7 +155,7 @@ def find(store, *, date=None, field=None, time=None, top=P.top.api_default,
                            kinds=kinds, skip_skill_hindcast=bool(skip_skill_hindcast))
     if date is not None:
         row = day_row(store, date)
-        vector = store.pcs.values[row, :query.n_modes]
+        vector = store.pc_values[row, :query.n_modes]
         if sequence:
             vector = sequence_vectors(store, sequence)[0][row]
         target_time = store.times[row]
@@ -159,6 +166,63 @@ def find(store, *, date=None, field=None, time=None, top=P.top.api_default,
         return FindResult(target=target, analogs=analogs, outcomes=outcomes,
                           settings=query.settings(store), region=query.region)
     return find_field(store, field, time, query)
+
+
+def find_many(store, dates, **options) -> list[FindResult]:
+    """:func:`find` for many archive dates in one process: the store is loaded once and
+    everything a query derives from it (index, daily counts, regime arrays, the rows a
+    regime or sequence allows) is made once, so each date costs what the query itself
+    costs. Each answer is the one ``find(store, date=..., **options)`` gives.
+
+    ``dates``: archive days (YYYY-MM-DD text, Timestamps) or the path (``str`` or
+    ``Path``) of a text file with one day a line (:func:`read_dates`). ``options`` are
+    those of :func:`find` except the targets (``date``, ``field``, ``time``).
+    """
+    for target in ("date", "field", "time"):
+        if target in options:
+            raise AnalogsInputError(f"find_many takes its targets from 'dates'; "
+                                    f"'{target}' is not one of its options")
+    if isinstance(dates, (str, os.PathLike)):
+        dates = read_dates(dates)
+    else:
+        dates = [(f"dates[{position}]", date) for position, date in enumerate(dates)]
+    results = []
+    for where, date in dates:
+        try:
+            results.append(find(store, date=date, **options))
+        except AnalogsInputError as error:
+            if not where.startswith("dates["):  # a file line: its name and line first
+                raise AnalogsInputError(f"{where}: {' '.join(str(error).split())}") from None
+            raise AnalogsInputError(f"{where} ({date!r}): {error}") from None
+    return results
+
+
+def read_dates(path) -> list[tuple[str, str]]:
+    """The archive days listed in the text file ``path``, one a line (YYYY-MM-DD, or a
+    time whose UTC day is meant); blank lines and lines starting with ``#`` are skipped.
+    Returns ``("FILE line N", text)`` pairs; a line that is not a date is refused with
+    its file and line, and so is a file without any."""
+    path = Path(path)
+    try:
+        text = path.read_text(encoding="utf-8")
+    except UnicodeDecodeError:
+        raise AnalogsInputError(f"dates file {path} is not UTF-8 text with one date "
+                                "(YYYY-MM-DD) a line") from None
+    dates = []
+    for number, line in enumerate(text.splitlines(), start=1):
+        item = line.strip()
+        if not item or item.startswith("#"):
+            continue
+        try:
+            pd.Timestamp(item)
+        except (TypeError, ValueError):
+            raise AnalogsInputError(f"dates file {path} line {number}: expected a date "
+                                    f"YYYY-MM-DD, got {item[:40]!r}") from None
+        dates.append((f"dates file {path} line {number}", item))
+    if not dates:
+        raise AnalogsInputError(f"dates file {path} lists no date (one YYYY-MM-DD a line "
+                                "expected)")
+    return dates
 
 
 @dataclass(frozen=True)
@@ -259,6 +323,7 @@ def open_field(field, time=None) -> xr.Dataset:
     members) or a Dataset. Dims ``(time, lat, lon)``, with ``member`` first for an
     ensemble; ``time`` of length one unless ``time`` asks for several
     (:func:`analogs.stages.sources.several_times`)."""
+    import xarray as xr
     from analogs.stages.sources import member_dimension, open_target, select_valid_times
     if isinstance(field, xr.Dataset):
         dataset = field
@@ -307,6 +372,7 @@ def days_on_store_grid(store, days: xr.Dataset) -> xr.Dataset:
     climatology plus the EOF reconstruction of the days' gappy PCs. The filled days
     project exactly onto those PCs (the EOFs are orthonormal, so the projection of the
     reconstruction is the PCs themselves) and their regime diagnostics see no NaN."""
+    import xarray as xr
     lat, lon = store.grid
     if (days.sizes.get("lat") == lat.size and days.sizes.get("lon") == lon.size
             and np.allclose(days["lat"].values, lat) and np.allclose(days["lon"].values, lon)):
@@ -379,6 +445,7 @@ def project_samples(store, fields: xr.Dataset) -> np.ndarray:
     value are left out by the least-squares (gappy) projection
     (:meth:`analogs.stages.eof.MultivariateEOF.project_gappy`). Shape: the fields'
     ``(member, time)`` dims (those present) followed by ``mode``."""
+    import xarray as xr
     anomalies = store.climatology.transform(fields[store.fields])
     gappy = bool(uncovered_fraction(fields).max() > 0)
     if "member" not in anomalies.dims:
@@ -408,6 +475,7 @@ def filled_for_diagnostics(store, fields: xr.Dataset, pcs, uncovered=None) -> xr
     by the daily climatology plus the EOF reconstruction of ``pcs`` (its gappy PCs), so
     the regime diagnostics (spherical gradients) see no NaN; unchanged when complete
     (``uncovered``: its uncovered share when already known)."""
+    import xarray as xr
     if uncovered is None:
         uncovered = float(uncovered_fraction(fields).max())
     if not uncovered > 0:
@@ -532,6 +600,7 @@ def find_field(store, field, time, query: _Query):
     :func:`ensemble_result`); ``time="all"`` or a range ``"START/END"`` gives a
     :class:`ValidTimesResult` with one such result per valid time.
     """
+    import xarray as xr
     from analogs.stages.sources import several_times
     with renamed_errors("find", "time"):
         opened = open_field(field, time)
@@ -634,6 +703,7 @@ def member_regimes(store, fields: xr.Dataset, pcs, region, uncovered=None) -> li
     mean field, tagged in one call: the samples go along ``time``, all at the valid
     time (nanoseconds apart, so the day and month the rules may use are the valid
     time's). Points without a value are filled first (:func:`filled_for_diagnostics`)."""
+    import xarray as xr
     valid = fields["time"].values[0]
     n_member = fields.sizes["member"]
     gaps = [None] * n_member if uncovered is None else np.broadcast_to(uncovered, n_member)
@@ -741,7 +811,7 @@ def sequence_vectors(store, sequence) -> tuple[np.ndarray, np.ndarray]:
     sequence = P.sequence.check(sequence, "find")
     cache = _derived(store).setdefault("sequence_vectors", {})
     if sequence not in cache:
-        pcs = store.pcs.values[:, :store.n_query_modes]
+        pcs = store.pc_values[:, :store.n_query_modes]
         day_numbers = (store.days - pd.Timestamp("1970-01-01")).days.to_numpy()
         parts, complete = [pcs], np.ones(len(pcs), dtype=bool)
         for lag in range(1, sequence + 1):
@@ -765,6 +835,7 @@ def _field_sequence_vector(store, field, target_time, vector, sequence,
     """The sequence vector(s) of a field target: its preceding days come from the times
     already opened (``batch``: valid time -> PC vectors) or else from its file.
     ``vector`` is ``(mode,)``, or ``(member, mode)`` for an ensemble."""
+    import xarray as xr
     from analogs.stages.sources import open_target
     n_modes = store.n_query_modes
     vector = np.asarray(vector, dtype=float)
@@ -800,12 +871,26 @@ def daily_counts(store, region, kinds=None) -> pd.DataFrame:
     key = (region, None if kinds is None else tuple(sorted(kinds)))
     cache = _derived(store).setdefault("daily_counts", {})
     if key not in cache:
-        if store.events is None:
+        stored = getattr(store, "stored_counts", None)  # the store region's, every kind
+        if stored is not None and kinds is None and region == store.region:
+            cache[key] = stored
+        elif store.events is None:
             cache[key] = pd.DataFrame({"total": np.zeros(len(store.days), dtype=int)},
                                       index=store.days)
         else:
             cache[key] = daily_event_counts(store.events, store.days, region, kinds=kinds)
     return cache[key]
+
+
+def stored_daily_counts(events: pd.DataFrame, days, region: Region) -> pd.DataFrame:
+    """The daily counts a store keeps (``counts.parquet``, written at build and update):
+    :func:`analogs.stages.outcomes.daily_event_counts` of every kind in the store's
+    ``region`` on ``days``, the days as a column (a store's tables are written without
+    their index), the region named in the table's attrs."""
+    from analogs.workflows.analog_store import counts_region_attrs
+    table = daily_event_counts(events, days, region).reset_index()
+    table.attrs = counts_region_attrs(region)
+    return table
 
 
 def describe_analogs(store, chosen: pd.DataFrame, region, kinds=None) -> pd.DataFrame:
@@ -922,6 +1007,7 @@ def day_fields(store, rows) -> xr.Dataset:
     (one evaluation) plus their anomalies reconstructed from the kept EOFs (one batch).
     The store keeps PCs, not the archive's fields, so detail beyond the kept modes is
     missing. Units and names are the store's (``z500`` in gpm, ...)."""
+    import xarray as xr
     rows = np.atleast_1d(np.asarray(rows, dtype=int))
     times = store.times[rows]
     climate = store.climatology.predict(times)[store.fields]

@@ -94,7 +94,7 @@ def verify(store, *, top=P.top.api_default, window=P.window.default,
     n_modes = defaults.get("n_modes") if n_modes is None else n_modes
     top, window = P.top.check(top, owner), P.window.check(window, owner)
     separation = P.separation.check(separation, owner)
-    n_modes = P.query_modes.check(n_modes, owner, maximum=int(store.eof.n_modes_))
+    n_modes = P.query_modes.check(n_modes, owner, maximum=store.n_modes)
     months, kinds = P.months.check(months, owner), P.kinds.check(kinds, owner)
     threshold = P.threshold.check(threshold, owner)
     n_resamples = P.n_resamples.check(n_resamples, owner)
@@ -125,9 +125,9 @@ def verify(store, *, top=P.top.api_default, window=P.window.default,
             regression, threshold=threshold, n_resamples=n_resamples).items() if k in keys},
     }
     summary["baselines"]["logistic_regression"]["inputs"] = (
-        f"{int(n_modes or store.eof.n_modes_)} PCs + 2 annual harmonics, standardised, "
+        f"{int(n_modes or store.n_modes)} PCs + 2 annual harmonics, standardised, "
         "fitted on the other years of each fold (scikit-learn LogisticRegression, C=1)")
-    summary["settings"] = {"top": top, "n_modes": int(n_modes or store.eof.n_modes_),
+    summary["settings"] = {"top": top, "n_modes": int(n_modes or store.n_modes),
                            "window": window, "separation": separation,
                            "months": None if months is None else sorted(months),
                            "region": region.to_dict(), "threshold": threshold,
@@ -147,7 +147,7 @@ def _scan_inputs(store, tops, modes, window, separation, region, months, kinds):
     tops, modes = P.tops.check(tops, owner), P.scan_modes.check(modes, owner)
     window, separation = P.window.check(window, owner), P.separation.check(separation, owner)
     months, kinds = P.months.check(months, owner), P.kinds.check(kinds, owner)
-    modes = modes + (int(store.eof.n_modes_),)
+    modes = modes + (store.n_modes,)
     with renamed_errors(owner, "region", "kinds"):
         region = resolve_region(store, region)
         events = observed(store, region, kinds)
@@ -366,7 +366,7 @@ def skill_for(store, target_time=None, *, region=None, kinds=None, settings=None
     built = store.manifest.get("skill")
     measured, source = None, None
     if (built and asked == built["region"] and not kinds
-            and settings["top"] == built.get("top") and settings["n_modes"] == store.eof.n_modes_
+            and settings["top"] == built.get("top") and settings["n_modes"] == store.n_modes
             and settings["window_days"] == built.get("window_days")
             and settings["separation_days"] == built.get("separation_days")):
         measured, source = built, "build"
@@ -405,7 +405,7 @@ def skill_for(store, target_time=None, *, region=None, kinds=None, settings=None
     answer = {"measured": True, "source": source, "method": measured["method"],
               "region": measured["region"], "kinds": kinds,
               "top": measured.get("top"), "n_modes": measured.get("n_modes",
-                                                                  int(store.eof.n_modes_)),
+                                                                  store.n_modes),
               "brier_skill_score": measured["brier_skill_score"],
               "brier_skill_score_ci": measured["brier_skill_score_ci"],
               "interval": "90% year-bootstrap interval of the Brier skill score",

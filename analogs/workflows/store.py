@@ -34,16 +34,19 @@ import shutil
 import tempfile
 import warnings
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import numpy as np
 import pandas as pd
-import xarray as xr
 from filelock import FileLock, Timeout
 
 from analogs import __version__
 from analogs.errors import StoreError
 from analogs.workflows import files as _files
 from analogs.workflows import paths as _paths
+
+if TYPE_CHECKING:  # xarray is imported to read or write a NetCDF file whole
+    import xarray as xr
 
 FORMAT_VERSION = 1
 MANIFEST = "manifest.json"
@@ -52,6 +55,9 @@ SCORES = "scores.nc"
 EVENTS = "events.parquet"
 TAGS = "tags.parquet"
 MODELS = "models.nc"
+#: Events in the store's region on every day, per kind (what every query counts; written
+#: at build and update from events.parquet, read back instead of counted per process).
+COUNTS = "counts.parquet"
 #: Seconds a second writer waits for the lock before giving up (default).
 LOCK_TIMEOUT = 600.0
 #: Environment variable that overrides :data:`LOCK_TIMEOUT` (seconds).
@@ -530,11 +536,61 @@ def write_dataset(ds: xr.Dataset, path, *, group=None, mode="w") -> None:
 def read_dataset(path, *, group=None) -> xr.Dataset:
     """Read a NetCDF file of the store fully into memory and close it."""
     try:
+        import xarray as xr
         with _files.NETCDF_LOCK, xr.open_dataset(path, group=group, engine="netcdf4") as ds:
             return ds.load()
     except (OSError, ValueError, KeyError) as error:
         where = f"{path}" + (f" (group {group})" if group else "")
         raise StoreError(f"cannot read store file {where}: {error}") from None
+
+
+def read_scores(path) -> dict:
+    """The PCs of ``scores.nc`` at ``path`` without xarray (a query reads nothing else
+    of the file, and xarray with dask costs more to import than the query takes):
+    ``values`` (time, mode) float64, ``times`` (DatetimeIndex, decoded by netCDF4 from
+    the CF units), ``modes`` and the variable's ``attrs``."""
+    import netCDF4
+    path = Path(path)
+    try:
+        with _files.NETCDF_LOCK, netCDF4.Dataset(path) as scores:
+            if "pcs" not in scores.variables:
+                raise StoreError(f"store {path.parent}: {SCORES} holds no variable 'pcs' (it "
+                                 f"holds {', '.join(scores.variables) or 'none'}); rebuild "
+                                 "the store")
+            variable = scores["pcs"]
+            if variable.ndim != 2 or "time" not in variable.dimensions:
+                raise StoreError(f"store {path.parent}: {SCORES} holds pcs of dims "
+                                 f"{variable.dimensions}, not (time, mode); rebuild the store")
+            variable.set_auto_mask(False)
+            values = np.asarray(variable[:], dtype=float)
+            if variable.dimensions[0] != "time":
+                values = values.T
+            mode_name = next(d for d in variable.dimensions if d != "time")
+            modes = (np.asarray(scores[mode_name][:]) if mode_name in scores.variables
+                     else np.arange(values.shape[1]))
+            time = scores["time"]
+            times = netCDF4.num2date(time[:], time.units, getattr(time, "calendar", "standard"),
+                                     only_use_cftime_datetimes=False,
+                                     only_use_python_datetimes=True)
+            attrs = {name: variable.getncattr(name) for name in variable.ncattrs()
+                     if not name.startswith("_")}
+    except (OSError, ValueError, KeyError, AttributeError, IndexError) as error:
+        raise StoreError(f"cannot read store file {path}: {error}") from None
+    times = pd.DatetimeIndex(np.asarray(times, dtype="datetime64[ns]"))
+    return {"values": values, "times": times, "modes": modes, "mode_name": mode_name,
+            "attrs": attrs}
+
+
+def read_grid(path) -> tuple[np.ndarray, np.ndarray]:
+    """Latitudes and longitudes (degrees) of the store grid, from the root of ``basis.nc``
+    at ``path`` (without reading the climatology or the EOFs)."""
+    import netCDF4
+    try:
+        with _files.NETCDF_LOCK, netCDF4.Dataset(path) as basis:
+            return (np.asarray(basis["lat"][:], dtype=float),
+                    np.asarray(basis["lon"][:], dtype=float))
+    except (OSError, IndexError, KeyError) as error:
+        raise StoreError(f"cannot read the grid of store file {path}: {error}") from None
 
 
 def write_table(frame: pd.DataFrame, path) -> None:

@@ -34,6 +34,7 @@ from analogs.stages.outcomes import EVENT_COLUMNS, merged_periods, parse_period
 from analogs.workflows import reports
 from analogs.workflows import store as store_io
 from analogs.workflows.build import diagnostic_region, provenance
+from analogs.workflows.find import stored_daily_counts
 
 #: The public function named in this workflow's parameter errors.
 OWNER = "update_store"
@@ -240,6 +241,11 @@ def _write_update(txn, current, manifest, pcs, tags, tag_attrs, event_table) -> 
         txn.carry(store_io.EVENTS)
     else:
         store_io.write_table(event_table, txn.staging / store_io.EVENTS)
+    events = current.events if event_table is None else event_table
+    if events is not None:  # the region's daily counts over the new days and events
+        days = pd.DatetimeIndex(pcs["time"].values).normalize()
+        store_io.write_table(stored_daily_counts(events, days, current.region),
+                             txn.staging / store_io.COUNTS)
     if pcs is current.pcs:  # only the events changed
         txn.carry(store_io.SCORES, store_io.TAGS)
     else:

@@ -1,0 +1,157 @@
+"""Queries at the floor and batch queries (issue 18).
+
+- A store loads only what a date query reads: PCs and times (read with netCDF4 and
+  checked here against xarray's reading of the same file), tags, events and the daily
+  counts kept in the store; the climatology and EOFs are read when first used.
+- ``find --dates FILE`` / ``AnalogStore.find_many`` answer many dates in one process,
+  each answer equal to the single query's.
+"""
+
+from __future__ import annotations
+
+import json
+import shutil
+import subprocess
+import sys
+
+import numpy as np
+import pandas as pd
+import pytest
+import xarray as xr
+
+from analogs.cli import main
+from analogs.errors import AnalogsInputError, StoreError
+from analogs.presentation.report import dumps
+from analogs.stages.outcomes import daily_event_counts
+from analogs.workflows import store as store_io
+from analogs.workflows.analog_store import AnalogStore
+
+
+def _run(argv, capsys):
+    code = main([str(a) for a in argv])
+    captured = capsys.readouterr()
+    return code, captured.out, captured.err
+
+
+def _dates(store, count=6):
+    rows = np.linspace(20, len(store.times) - 20, count).astype(int)
+    return [str(store.days[row].date()) for row in rows]
+
+
+# ---------------------------------------------------------------- what a load reads
+
+def test_the_pcs_read_without_xarray_equal_xarrays_reading(demo_store):
+    """netCDF4's decoding of scores.nc (values, CF time units) against xarray's."""
+    store = AnalogStore.load(demo_store.path)
+    with xr.open_dataset(store.path / store_io.SCORES) as scores:
+        expected = scores["pcs"].load()
+    np.testing.assert_array_equal(store.pc_values, expected.values)
+    assert store.times.equals(pd.DatetimeIndex(expected["time"].values))
+    xr.testing.assert_identical(store.pcs.drop_attrs(), expected.drop_attrs())
+
+
+def test_a_date_query_reads_neither_climatology_nor_eofs(demo_store):
+    store = AnalogStore.load(demo_store.path)
+    store.find(date=_dates(store)[2])
+    assert "_eof" not in store.__dict__ and "_climatology" not in store.__dict__
+    assert store.eof.n_modes_ == store.pc_values.shape[1]  # read when asked for
+
+
+def test_the_stored_daily_counts_are_the_counts_of_the_events(demo_store):
+    """counts.parquet against the on-demand count of the store's events table, and its
+    totals against a plain pandas count of the events inside the region box."""
+    store = AnalogStore.load(demo_store.path)
+    assert store.stored_counts is not None
+    computed = daily_event_counts(store.events, store.days, store.region)
+    pd.testing.assert_frame_equal(store.stored_counts, computed, check_freq=False)
+    region = store.region
+    inside = store.events[store.events["lat"].between(region.south, region.north)
+                          & store.events["lon"].between(region.west, region.east)]
+    per_day = pd.to_datetime(inside["day"]).value_counts()
+    expected = per_day.reindex(store.days, fill_value=0).to_numpy()
+    np.testing.assert_array_equal(store.stored_counts["total"].to_numpy(), expected)
+
+
+def test_a_store_replaced_after_loading_is_not_mixed_in(demo_store, tmp_path):
+    copy = tmp_path / "store"
+    shutil.copytree(demo_store.path, copy)
+    store = AnalogStore.load(copy)
+    basis = copy / store_io.BASIS
+    basis.write_bytes(basis.read_bytes() + b"\0")  # another version's basis
+    with pytest.raises(StoreError, match="replaced by a new version"):
+        store.eof
+
+
+def test_a_date_query_imports_no_build_dask_or_figures(demo_store):
+    code = ("import sys; from analogs.cli import main; "
+            f"main(['find', '--store', {str(demo_store.path)!r}, '--date', "
+            f"{_dates(demo_store)[1]!r}, '--json']); "
+            "print('MODULES', [m for m in ('dask', 'matplotlib', 'sklearn', "
+            "'analogs.workflows.build', 'analogs.stages.sources', 'analogs.stages.eof', "
+            "'analogs.stages.daily_climatology') if m in sys.modules])")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                         check=True).stdout
+    assert out.strip().splitlines()[-1] == "MODULES []"
+
+
+# ------------------------------------------------------------------- batch queries
+
+def test_find_many_equals_single_queries(demo_store):
+    store = AnalogStore.load(demo_store.path)
+    dates = _dates(store)
+    # The skill of these settings is measured by the first query and kept in the store
+    # (its "source" says so); measure it once first so every answer reads the kept one.
+    store.find(date=dates[0], top=7, window=30)
+    store = AnalogStore.load(demo_store.path)
+    many = store.find_many(dates, top=7, window=30)
+    fresh = AnalogStore.load(demo_store.path)  # single queries from their own load
+    assert [dumps(result) for result in many] == [
+        dumps(fresh.find(date=date, top=7, window=30)) for date in dates]
+
+
+def test_find_dates_on_the_command_line_equals_find_date(demo_store, tmp_path, capsys):
+    dates = _dates(demo_store, 4)
+    path = tmp_path / "dates.txt"
+    path.write_text("# target days\n" + "\n\n".join(dates) + "\n")
+    code, out, _ = _run(["find", "--store", demo_store.path, "--dates", path, "--json"],
+                        capsys)
+    assert code == 0
+    batch = json.loads(out)
+    singles = []
+    for date in dates:
+        code, single, _ = _run(["find", "--store", demo_store.path, "--date", date, "--json"],
+                               capsys)
+        assert code == 0
+        singles.append(json.loads(single))
+    assert batch == singles
+    code, out, _ = _run(["find", "--store", demo_store.path, "--dates", path,
+                         "--json-lines"], capsys)
+    assert code == 0
+    assert [json.loads(line) for line in out.splitlines()] == singles
+
+
+@pytest.mark.parametrize("content, line", [("2003-07-01\nnot a date\n", "line 2"),
+                                           ("2003-07-01\n1850-06-01\n", "line 2"),
+                                           ("# only a comment\n\n", "lists no date")])
+def test_a_bad_dates_file_names_the_file_and_line(demo_store, tmp_path, capsys, content,
+                                                  line):
+    path = tmp_path / "dates.txt"
+    path.write_text(content)
+    code, out, err = _run(["find", "--store", demo_store.path, "--dates", path, "--json"],
+                          capsys)
+    assert code == 2 and out == ""
+    assert len(err.strip().splitlines()) == 1
+    assert str(path) in err and line in err
+
+
+def test_dates_that_cannot_be_answered_together_are_refused(demo_store, tmp_path, capsys):
+    path = tmp_path / "dates.txt"
+    path.write_text("2003-07-01\n")
+    code, _, err = _run(["find", "--store", demo_store.path, "--dates", path, "--report",
+                         tmp_path / "page"], capsys)
+    assert code == 2 and "--report" in err
+    code, _, err = _run(["find", "--store", demo_store.path, "--dates", tmp_path / "none.txt"],
+                        capsys)
+    assert code == 2 and "none.txt" in err
+    with pytest.raises(AnalogsInputError, match=r"dates\[1\]"):
+        demo_store.find_many(["2003-07-01", "July"])
