@@ -223,6 +223,32 @@ class MultivariateEOF:
             blocks.append((raw.astype(dtype, copy=False) - mean) * factor)
         return blocks
 
+    def _column_blocks(self, ds: xr.Dataset, dtype, *, overwrite: bool) -> list:
+        """Per field, the in-memory (time, valid space) block of M in ``dtype``, made a
+        block of rows at a time (no full-size temporaries); with ``overwrite``, a
+        field that is a writeable C-ordered array of ``dtype`` with no missing point
+        is scaled in place and its block is a view of the caller's data."""
+        blocks = []
+        for field in self.fields_:
+            raw = self._flat(ds[field])
+            valid = self._valid[field]
+            mean = self._means[field][valid].astype(dtype)
+            factor = self._point_factor[field][valid].astype(dtype)
+            in_place = (overwrite and valid.all() and raw.dtype == dtype
+                        and raw.flags.writeable and raw.flags.c_contiguous)
+            block = raw if in_place else np.empty((raw.shape[0], int(valid.sum())), dtype)
+            step = max(1, 2 ** 22 // max(raw.shape[1], 1))
+            for start in range(0, raw.shape[0], step):
+                rows = slice(start, start + step)
+                part = raw[rows] if valid.all() else raw[rows][:, valid]
+                if in_place:
+                    part -= mean
+                    part *= factor
+                else:
+                    np.multiply(part.astype(dtype, copy=False) - mean, factor, out=block[rows])
+            blocks.append(block)
+        return blocks
+
     def _matrix(self, ds: xr.Dataset, dtype=np.float64):
         blocks = self._scaled_blocks(ds, dtype)
         if any(_is_dask(b) for b in blocks):
@@ -304,8 +330,14 @@ class MultivariateEOF:
         self.total_variance_ = float(sum(user.values()))
 
     # -- solving ---------------------------------------------------------------
-    def fit(self, anomalies: xr.Dataset) -> "MultivariateEOF":
-        """Fit the EOFs of ``anomalies`` (Dataset of fields with dims (time, lat, lon))."""
+    def fit(self, anomalies: xr.Dataset, *, overwrite: bool = False) -> "MultivariateEOF":
+        """Fit the EOFs of ``anomalies`` (Dataset of fields with dims (time, lat, lon)).
+
+        ``overwrite=True`` lets the randomized solver scale in-memory float32 fields in
+        place (like scikit-learn's ``copy=False``): ``anomalies`` hold the weighted,
+        scaled matrix afterwards and must not be used again. It saves one copy of the
+        data matrix; the results are the same.
+        """
         self._validate_params()
         self._preprocess(anomalies)
         n_time = self.n_time_
@@ -322,7 +354,11 @@ class MultivariateEOF:
         # The randomized solver works in float32, the precision of the faiss index the
         # PCs feed: half the memory and twice the BLAS speed of float64, with
         # eigenvalues equal to the float64 ones to about 1e-6.
-        matrix = self._matrix(anomalies, np.float32 if solver == "randomized" else np.float64)
+        if solver == "randomized" and not any(_is_dask(anomalies[f].data) for f in self.fields_):
+            # In memory: per-field column blocks, made without temporaries (or in place).
+            matrix = self._column_blocks(anomalies, np.float32, overwrite=overwrite)
+        else:
+            matrix = self._matrix(anomalies, np.float32 if solver == "randomized" else np.float64)
         row_energy = None
 
         if solver == "randomized":
@@ -330,7 +366,10 @@ class MultivariateEOF:
             while True:
                 if k + self.n_oversamples >= rank:
                     solver = "exact"
-                    matrix = self._matrix(anomalies)
+                    # Overwritten anomalies already hold M (in float32).
+                    matrix = (np.concatenate(matrix, axis=1).astype(np.float64)
+                              if overwrite and isinstance(matrix, list)
+                              else self._matrix(anomalies))
                     break
                 u, s, vt, row_energy = self._randomized_svd(matrix, k)
                 fractions = s ** 2 / total_ss
@@ -731,8 +770,9 @@ class MultivariateEOF:
 
 
 def _randomized_svd(matrix, k: int, *, n_oversamples: int, n_power_iter: int, seed: int):
-    """Randomized SVD of a numpy or dask matrix; with dask, one pass over the data per
-    product.
+    """Randomized SVD of a numpy or dask matrix, or of a list of in-memory column
+    blocks ``[M_1 | M_2 | ...]`` (products taken block by block, never concatenated);
+    with dask, one pass over the data per product.
 
     Halko, Martinsson & Tropp (2011, SIAM Review 53, 217-288), algorithms 4.4 (range
     finder with ``n_power_iter`` power iterations, re-orthonormalised by QR at each
@@ -745,11 +785,27 @@ def _randomized_svd(matrix, k: int, *, n_oversamples: int, n_power_iter: int, se
     alive for the later passes: the whole matrix ends up in memory.) Also returns the
     squared norm of every row, taken in the first pass.
     """
-    n_time, n_space = matrix.shape
+    if isinstance(matrix, list):  # in-memory column blocks [M_1 | M_2 | ...]
+        n_time, n_space = matrix[0].shape[0], sum(block.shape[1] for block in matrix)
+        dtype = matrix[0].dtype
+    else:
+        n_time, n_space = matrix.shape
+        dtype = matrix.dtype
     width = min(k + n_oversamples, n_time, n_space)
-    dtype = matrix.dtype
     omega = np.random.default_rng(seed).standard_normal((n_space, width)).astype(dtype)
-    if _is_dask(matrix):
+    if isinstance(matrix, list):
+        edges = np.cumsum([0] + [block.shape[1] for block in matrix])
+
+        def times_matrix(right):
+            right = right.astype(dtype)
+            return sum(block @ right[lo:hi] for block, lo, hi in zip(matrix, edges[:-1], edges[1:]))
+
+        def matrix_transposed_times(left):
+            left = left.astype(dtype)
+            return np.concatenate([block.T @ left for block in matrix])
+
+        sample, row_energy = times_matrix(omega), sum(_row_energy(block) for block in matrix)
+    elif _is_dask(matrix):
         import dask
         import dask.array as da
 

@@ -240,9 +240,11 @@ def _build(paths, store, *, events, event_dates, events_period, fields, n_modes,
         events, archive["lat"].values, archive["lon"].values, dates=event_dates)
 
     climatology = HarmonicClimatology(n_harmonics=n_harmonics).fit(archive)
-    anomalies = climatology.transform(archive)
+    # Anomalies in the archive's float32, made block-wise; the EOF fit scales them in
+    # place into its data matrix (one copy of the archive beside the archive itself).
     eof = MultivariateEOF(n_modes, variance=variance, solver=solver,
-                          field_weights=field_weights).fit(anomalies)
+                          field_weights=field_weights).fit(climatology.transform(archive),
+                                                           overwrite=True)
     pcs = eof.pcs_
     errors = eof.training_error_.values
     # No region: tag_days places the synoptic box at the domain's centre and says so.
