@@ -136,6 +136,25 @@ def test_dask_input_matches_numpy_and_stays_lazy():
     xr.testing.assert_allclose(anomalies.compute(), eager.transform(_daily_archive()))
 
 
+def test_float32_archive_gives_float32_anomalies_within_round_off():
+    """A float32 archive (the readers' precision) gets float32 anomalies, in memory and
+    chunked alike, equal to y - X a computed in float64 from numpy.linalg.lstsq's
+    coefficients (outside reference: LAPACK least squares) to float32 round-off."""
+    ds = _daily_archive().astype("float32")
+    design = harmonic_design_matrix(ds.time.values, 3)
+    for data in (ds, ds.chunk({"time": 200})):
+        anomalies = HarmonicClimatology(n_harmonics=3).fit(data).transform(data)
+        for name in ("z500", "q850"):
+            assert anomalies[name].dtype == np.float32
+            y = ds[name].values.reshape(ds.time.size, -1).astype(np.float64)
+            reference, *_ = np.linalg.lstsq(design, y, rcond=None)
+            expected = (y - design @ reference).reshape(ds[name].shape)
+            # float32 spacing of the raw values bounds the round-off of y itself
+            tolerance = 4 * np.finfo(np.float32).eps * float(np.abs(y).max())
+            np.testing.assert_allclose(anomalies[name].values, expected, rtol=0,
+                                       atol=tolerance)
+
+
 def test_gaps_in_time_are_skipped():
     """A grid point with missing days is fitted from its valid days (lstsq on the
     valid rows, numpy reference)."""

@@ -125,6 +125,33 @@ def test_two_fields_against_sklearn_pca():
     assert equal.total_variance_ == pytest.approx(2.0)
 
 
+def test_overwrite_scales_float32_anomalies_in_place_with_the_same_fit():
+    """fit(overwrite=True) on in-memory float32 anomalies (the build's path) gives the
+    fit of overwrite=False, and leaves in the anomalies the weighted, balanced matrix
+    built by hand from the published recipe (sqrt(cos lat) weights, Hannachi et al.
+    2007); its eigenvalues agree with scikit-learn PCA(svd_solver="full") of that
+    float64 matrix to float32 round-off."""
+    from sklearn.decomposition import PCA
+
+    ds = _synthetic(n_time=600, n_lat=20, n_lon=30, rank=60).astype("float32")
+    kept = MultivariateEOF(n_modes=8, solver="randomized").fit(ds)
+    scratch = ds.copy(deep=True)
+    model = MultivariateEOF(n_modes=8, solver="randomized").fit(scratch, overwrite=True)
+    np.testing.assert_array_equal(model.eigenvalues_, kept.eigenvalues_)
+    np.testing.assert_array_equal(model.pcs_, kept.pcs_)
+    w = area_weights(ds.lat.values)[None, :, None]
+    blocks = []
+    for name in ("z500", "q850"):
+        x = ds[name].values.astype(np.float64)
+        wx = ((x - x.mean(axis=0)) * w).reshape(ds.sizes["time"], -1)
+        block = wx / np.sqrt((wx ** 2).sum() / (ds.sizes["time"] - 1))
+        np.testing.assert_allclose(scratch[name].values.reshape(block.shape), block,
+                                   atol=1e-5 * np.abs(block).max())
+        blocks.append(block)
+    pca = PCA(svd_solver="full").fit(np.concatenate(blocks, axis=1))
+    np.testing.assert_allclose(model.eigenvalues_, pca.explained_variance_[:8], rtol=1e-4)
+
+
 def test_randomized_agrees_with_exact_on_leading_modes():
     """Halko, Martinsson & Tropp (2011) randomized SVD with power iterations
     recovers the leading modes of a decaying spectrum (eigenvalues within 0.5 %,

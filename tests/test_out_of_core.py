@@ -195,3 +195,75 @@ def test_local_cluster_matches_threaded(small_archive, chunked):
                          scheduler="local")
     _assert_same_eofs(chunked, distributed)
     _assert_same_analogs(chunked, distributed)
+
+
+def test_scratch_copies_give_the_streamed_fit(small_archive, tmp_path):
+    """``fit(scratch=...)`` on dask anomalies (each field written once into a
+    memory-mapped float32 copy, then scaled and solved there) gives the streamed
+    fit's eigenvalues and PCs to float32 round-off, through a dask.distributed client
+    too, and numpy's full SVD's eigenvalues (outside reference)."""
+    distributed = pytest.importorskip("distributed")
+    from analogs.stages.daily_climatology import HarmonicClimatology
+    from analogs.stages.eof import MultivariateEOF
+    from analogs.stages.sources import open_archive
+
+    _, files = small_archive
+    archive = open_archive(files, chunks={"time": CHUNK_DAYS})
+    anomalies = HarmonicClimatology().fit(archive).transform(archive)
+    made = []
+
+    def scratch(shape, dtype):
+        made.append(np.memmap(tmp_path / f"copy{len(made)}.bin", dtype=dtype, mode="w+",
+                              shape=shape))
+        return made[-1]
+
+    streamed = MultivariateEOF(8, solver="randomized").fit(anomalies)
+    copied = MultivariateEOF(8, solver="randomized").fit(anomalies, scratch=scratch)
+    assert len(made) == 2 and hasattr(anomalies["z500"].data, "dask")
+    with distributed.LocalCluster(n_workers=1, threads_per_worker=2, processes=False,
+                                  dashboard_address=":0") as cluster, \
+            distributed.Client(cluster):
+        clustered = MultivariateEOF(8, solver="randomized").fit(anomalies, scratch=scratch)
+    pcs = streamed.pcs_.values.T
+    for other in (copied, clustered):
+        np.testing.assert_allclose(other.eigenvalues_.values, streamed.eigenvalues_.values,
+                                   rtol=1e-5)
+        np.testing.assert_allclose(_matched_signs(pcs, other.pcs_.values.T), pcs,
+                                   atol=1e-5 * np.abs(pcs).max())
+    np.testing.assert_allclose(copied.eigenvalues_.values, _exact_eigenvalues(files)[:8],
+                               rtol=1e-5)
+
+
+def test_scratch_folder_is_removed_and_a_full_disk_refused(small_archive, chunked,
+                                                          monkeypatch, capsys):
+    """The out-of-core build's scratch folder (beside the store) is gone after a build
+    and after a failed one; a disk with too little free space is refused up front,
+    exit status 2 from the command line, with the sizes and the folder named."""
+    import shutil
+    from collections import namedtuple
+
+    from analogs.cli import main
+    from analogs.errors import AnalogsInputError
+    from analogs.stages import eof as eof_module
+
+    out, files = small_archive
+    assert not list(out.glob(".analogs-scratch-*"))
+
+    def broken(*args, **kwargs):
+        raise RuntimeError("solver failed")
+
+    with monkeypatch.context() as patch:
+        patch.setattr(eof_module, "_randomized_svd", broken)
+        with pytest.raises(RuntimeError, match="solver failed"):
+            _build(small_archive, "store_failed", chunks={"time": CHUNK_DAYS})
+    assert not list(out.glob(".analogs-scratch-*"))
+
+    usage = namedtuple("usage", "total used free")
+    monkeypatch.setattr(shutil, "disk_usage", lambda path: usage(10 ** 6, 10 ** 6 - 1000, 1000))
+    with pytest.raises(AnalogsInputError, match="GB of scratch space"):
+        _build(small_archive, "store_full", chunks={"time": CHUNK_DAYS})
+    status = main(["build", *files, "--store", str(out / "store_full_cli"),
+                   "--chunk-days", str(CHUNK_DAYS), "--quiet"])
+    message = capsys.readouterr().err
+    assert status == 2 and "scratch space" in message and str(out) in message
+    assert "Traceback" not in message and not (out / "store_full_cli").exists()

@@ -151,6 +151,61 @@ def _as_time_series(ds: xr.Dataset) -> tuple[xr.Dataset, bool]:
     )
 
 
+#: Values per block of the block-wise passes (about 32 MB in float64): large enough for
+#: BLAS speed, small enough that the float64 temporaries stay small beside the field.
+_BLOCK_VALUES = 2 ** 22
+
+
+def _block_length(values_per_time: int) -> int:
+    """Times per block of :data:`_BLOCK_VALUES` values."""
+    return max(1, _BLOCK_VALUES // max(int(values_per_time), 1))
+
+
+def _flat_time_first(var: xr.DataArray):
+    """The in-memory ``(time, points)`` view of ``var``, or ``None`` (dask data)."""
+    if var.chunks is not None:
+        return None
+    values = np.asarray(var.transpose("time", ...).values)
+    return values.reshape(values.shape[0], -1)
+
+
+def _any_missing(flat: np.ndarray) -> bool:
+    step = _block_length(flat.shape[1])
+    return any(np.isnan(flat[start:start + step]).any() for start in range(0, flat.shape[0], step))
+
+
+def _fit_complete(var: xr.DataArray, flat: np.ndarray, times, n_harmonics: int,
+                  terms) -> xr.DataArray:
+    """Harmonic coefficients of a gap-free in-memory field: one normal matrix
+    ``X^T X`` for every point and ``X^T y`` summed over blocks of times in float64
+    (no float64 copy of the field is made)."""
+    design = harmonic_design_matrix(times, n_harmonics)
+    step = _block_length(flat.shape[1])
+    rhs = np.zeros((design.shape[1], flat.shape[1]))
+    for start in range(0, flat.shape[0], step):
+        rows = slice(start, start + step)
+        rhs += design[rows].T @ flat[rows].astype(np.float64)
+    normal_matrix = design.T @ design
+    if np.linalg.cond(normal_matrix) < 1e10:
+        solution = np.linalg.solve(normal_matrix, rhs)
+    else:
+        solution = np.full(rhs.shape, np.nan)
+    spatial_dims = [d for d in var.transpose("time", ...).dims if d != "time"]
+    shape = tuple(var.sizes[d] for d in spatial_dims)
+    return xr.DataArray(
+        solution.reshape(len(terms), *shape), dims=("harmonic_term", *spatial_dims),
+        coords={**{d: var[d] for d in spatial_dims if d in var.coords}, "harmonic_term": terms})
+
+
+def _anomaly_block(values, times, coef_flat, n_harmonics: int, dtype):
+    """One block of times of ``values (time, lat, lon)`` minus its harmonic
+    climatology, computed in float64 and returned in ``dtype``."""
+    times = np.asarray(times).reshape(-1)
+    climatology = harmonic_design_matrix(times, n_harmonics) @ coef_flat
+    out = values.reshape(values.shape[0], -1) - climatology
+    return out.astype(dtype, copy=False).reshape(values.shape)
+
+
 class HarmonicClimatology:
     """Smooth annual-cycle climatology (mean + annual harmonics) per grid point.
 
@@ -208,6 +263,9 @@ class HarmonicClimatology:
     @staticmethod
     def _fit_harmonics(var: xr.DataArray, times, n_harmonics: int) -> xr.DataArray:
         terms = harmonic_term_names(n_harmonics)
+        flat = _flat_time_first(var)
+        if flat is not None and not _any_missing(flat):
+            return _fit_complete(var, flat, times, n_harmonics, terms)
         time_chunks = var.chunksizes["time"] if var.chunks is not None else None
         design = _design_array(var["time"], n_harmonics, terms, time_chunks)
         spatial_dims = [d for d in var.dims if d != "time"]
@@ -298,7 +356,7 @@ class HarmonicClimatology:
             )
         first = ds[self.variables_[0]]
         time_chunks = first.chunksizes["time"] if first.chunks is not None else None
-        clim = self.predict(ds["time"], time_chunks=time_chunks)
+        clim = None
         out = {}
         for name in self.variables_:
             var = ds[name]
@@ -311,15 +369,53 @@ class HarmonicClimatology:
                         f"The {dim} coordinate of {name!r} does not match the grid of the "
                         "fitted climatology; regrid the field to the archive grid first."
                     )
-            aligned = clim[name].assign_coords({dim: var[dim] for dim in spatial})
-            anomaly = var - aligned.drop_vars(
-                [c for c in aligned.coords if c not in ("time", *spatial)])
-            anomaly = anomaly.transpose(*var.dims)
+            anomaly = self._blockwise_anomaly(var, coef)
+            if anomaly is None:
+                if clim is None:
+                    clim = self.predict(ds["time"], time_chunks=time_chunks)
+                aligned = clim[name].assign_coords({dim: var[dim] for dim in spatial})
+                anomaly = var - aligned.drop_vars(
+                    [c for c in aligned.coords if c not in ("time", *spatial)])
+                anomaly = anomaly.transpose(*var.dims)
             anomaly.attrs = dict(var.attrs)
             anomaly.attrs["long_name"] = f"{var.attrs.get('long_name', name)} anomaly"
             out[name] = anomaly
         result = xr.Dataset(out, attrs=dict(ds.attrs))
         return result.squeeze("time") if squeeze else result
+
+    def _blockwise_anomaly(self, var: xr.DataArray, coef: xr.DataArray):
+        """``var - climatology`` in ``var``'s float precision, a block of times at a
+        time, so that neither the climatology nor a float64 copy of the field is ever
+        held whole (in memory: one output array; with dask: one task per chunk).
+
+        ``None`` where this does not apply (monthly method, fields other than
+        ``(time, lat, lon)``, dask chunks across the grid): the general path is used.
+        """
+        if (self.method_ == "monthly" or var.dims != ("time", "lat", "lon")
+                or coef.dims != ("harmonic_term", "lat", "lon")):
+            return None
+        data = var.data
+        coef_flat = np.asarray(coef.values, dtype=np.float64).reshape(coef.shape[0], -1)
+        dtype = np.result_type(var.dtype, np.float32)
+        times = np.asarray(var["time"].values, dtype="datetime64[ns]")
+        n_harmonics = self.n_harmonics_
+        if hasattr(data, "dask"):
+            if len(data.chunks[1]) != 1 or len(data.chunks[2]) != 1:
+                return None
+            import dask.array as da
+
+            stamps = da.from_array(times, chunks=(data.chunks[0],))[:, None, None]
+            values = da.map_blocks(_anomaly_block, data, stamps, coef_flat, n_harmonics,
+                                   dtype, dtype=dtype, meta=np.empty((0, 0, 0), dtype))
+        else:
+            field = np.asarray(data)
+            values = np.empty(field.shape, dtype=dtype)
+            step = _block_length(field[0].size)
+            for start in range(0, field.shape[0], step):
+                rows = slice(start, start + step)
+                values[rows] = _anomaly_block(field[rows], times[rows], coef_flat,
+                                              n_harmonics, dtype)
+        return xr.DataArray(values, dims=var.dims, coords=var.coords)
 
     def fit_transform(self, ds: xr.Dataset) -> xr.Dataset:
         """``fit(ds)`` then ``transform(ds)``."""

@@ -50,6 +50,7 @@ from __future__ import annotations
 import datetime as _dt
 import json
 import numbers
+import os
 
 import numpy as np
 import xarray as xr
@@ -223,6 +224,38 @@ class MultivariateEOF:
             blocks.append((raw.astype(dtype, copy=False) - mean) * factor)
         return blocks
 
+    def _column_blocks(self, ds: xr.Dataset, dtype, *, overwrite: bool, copies=None,
+                       scratch=None) -> list:
+        """Per field, the in-memory (time, valid space) block of M in ``dtype``, made a
+        block of rows at a time (no full-size temporaries); with ``overwrite``, a
+        field that is a writeable C-ordered array of ``dtype`` with no missing point
+        is scaled in place and its block is a view of the caller's data. ``copies``
+        (field -> array) replace the fields of ``ds``; new blocks come from
+        ``scratch`` when given."""
+        blocks = []
+        for field in self.fields_:
+            raw = (copies or {}).get(field)
+            raw = self._flat(ds[field]) if raw is None else raw
+            valid = self._valid[field]
+            mean = self._means[field][valid].astype(dtype)
+            factor = self._point_factor[field][valid].astype(dtype)
+            in_place = (overwrite and valid.all() and raw.dtype == dtype
+                        and raw.flags.writeable and raw.flags.c_contiguous)
+            shape = (raw.shape[0], int(valid.sum()))
+            block = raw if in_place else (np.empty(shape, dtype) if scratch is None
+                                          else scratch(shape, dtype))
+            step = max(1, 2 ** 22 // max(raw.shape[1], 1))
+            for start in range(0, raw.shape[0], step):
+                rows = slice(start, start + step)
+                part = raw[rows] if valid.all() else raw[rows][:, valid]
+                if in_place:
+                    part -= mean
+                    part *= factor
+                else:
+                    np.multiply(part.astype(dtype, copy=False) - mean, factor, out=block[rows])
+            blocks.append(block)
+        return blocks
+
     def _matrix(self, ds: xr.Dataset, dtype=np.float64):
         blocks = self._scaled_blocks(ds, dtype)
         if any(_is_dask(b) for b in blocks):
@@ -231,8 +264,12 @@ class MultivariateEOF:
             return da.concatenate([da.asarray(b) for b in blocks], axis=1).rechunk({1: -1})
         return np.concatenate(blocks, axis=1)
 
-    def _preprocess(self, ds: xr.Dataset) -> None:
-        """Learn means, NaN masks, area weights and field scales (one data pass)."""
+    def _preprocess(self, ds: xr.Dataset, scratch=None) -> dict:
+        """Learn means, NaN masks, area weights and field scales (one data pass).
+
+        With ``scratch`` (see :meth:`fit`), each dask field is written once into a
+        float32 array from ``scratch`` in that pass, and its moments are taken from
+        that copy; returns the copies by field (empty without ``scratch``)."""
         self.fields_ = self._fields_of(ds)
         for field in self.fields_:
             if "time" not in ds[field].dims:
@@ -265,9 +302,13 @@ class MultivariateEOF:
         # chunk is read, reduced and freed before the next; one field at a time
         # (measured: computed together, the two fields' anomaly chunks were all held
         # at once, 4.6 GB at 40 years x 0.25 degree).
-        moments, origins = {}, {}
+        moments, origins, copies = {}, {}, {}
         for field in self.fields_:
             raw = self._flat(ds[field])
+            if scratch is not None and _is_dask(raw):
+                copies[field] = scratch(raw.shape, np.float32)
+                _store_by_chunks(raw.astype(np.float32), copies[field])
+                raw = copies[field]
             origins[field] = _computed(raw[0]).astype(np.float64)
             moments[field] = _computed(_column_moments(raw, origins[field]))
         self._valid = {f: moments[f][0] == 0 for f in self.fields_}
@@ -302,12 +343,27 @@ class MultivariateEOF:
         self._point_factor = {f: point_weight * np.sqrt(user[f]) / scales[f] for f in self.fields_}
         # Frobenius norm^2 of M: each field contributes (N - 1) * u_f by construction.
         self.total_variance_ = float(sum(user.values()))
+        return copies
 
     # -- solving ---------------------------------------------------------------
-    def fit(self, anomalies: xr.Dataset) -> "MultivariateEOF":
-        """Fit the EOFs of ``anomalies`` (Dataset of fields with dims (time, lat, lon))."""
+    def fit(self, anomalies: xr.Dataset, *, overwrite: bool = False,
+            scratch=None) -> "MultivariateEOF":
+        """Fit the EOFs of ``anomalies`` (Dataset of fields with dims (time, lat, lon)).
+
+        ``overwrite=True`` lets the randomized solver scale in-memory float32 fields in
+        place (like scikit-learn's ``copy=False``): ``anomalies`` hold the weighted,
+        scaled matrix afterwards and must not be used again. It saves one copy of the
+        data matrix; the results are the same.
+
+        ``scratch``, a callable ``(shape, dtype) -> writeable array`` (the caller's
+        memory-mapped scratch file, say), is for dask (out-of-core) anomalies: each
+        field is computed once, chunk by chunk, into such an array, and the moments,
+        the scaling (in place) and the randomized solver work on those copies instead
+        of recomputing the anomalies from the archive for each of the solver's
+        passes. The results are those of the in-memory fit.
+        """
         self._validate_params()
-        self._preprocess(anomalies)
+        copies = self._preprocess(anomalies, scratch)
         n_time = self.n_time_
         n_space = int(sum(self._valid[f].sum() for f in self.fields_))
         rank = min(n_time, n_space)
@@ -322,7 +378,15 @@ class MultivariateEOF:
         # The randomized solver works in float32, the precision of the faiss index the
         # PCs feed: half the memory and twice the BLAS speed of float64, with
         # eigenvalues equal to the float64 ones to about 1e-6.
-        matrix = self._matrix(anomalies, np.float32 if solver == "randomized" else np.float64)
+        if solver == "randomized" and (copies or not any(_is_dask(anomalies[f].data)
+                                                        for f in self.fields_)):
+            # In memory or in scratch copies: per-field column blocks, made without
+            # temporaries (or in place).
+            matrix = self._column_blocks(anomalies, np.float32,
+                                         overwrite=overwrite or bool(copies), copies=copies,
+                                         scratch=scratch)
+        else:
+            matrix = self._matrix(anomalies, np.float32 if solver == "randomized" else np.float64)
         row_energy = None
 
         if solver == "randomized":
@@ -330,7 +394,10 @@ class MultivariateEOF:
             while True:
                 if k + self.n_oversamples >= rank:
                     solver = "exact"
-                    matrix = self._matrix(anomalies)
+                    # Overwritten anomalies already hold M (in float32).
+                    matrix = (np.concatenate(matrix, axis=1).astype(np.float64)
+                              if (overwrite or copies) and isinstance(matrix, list)
+                              else self._matrix(anomalies))
                     break
                 u, s, vt, row_energy = self._randomized_svd(matrix, k)
                 fractions = s ** 2 / total_ss
@@ -731,8 +798,9 @@ class MultivariateEOF:
 
 
 def _randomized_svd(matrix, k: int, *, n_oversamples: int, n_power_iter: int, seed: int):
-    """Randomized SVD of a numpy or dask matrix; with dask, one pass over the data per
-    product.
+    """Randomized SVD of a numpy or dask matrix, or of a list of in-memory column
+    blocks ``[M_1 | M_2 | ...]`` (products taken block by block, never concatenated);
+    with dask, one pass over the data per product.
 
     Halko, Martinsson & Tropp (2011, SIAM Review 53, 217-288), algorithms 4.4 (range
     finder with ``n_power_iter`` power iterations, re-orthonormalised by QR at each
@@ -745,11 +813,27 @@ def _randomized_svd(matrix, k: int, *, n_oversamples: int, n_power_iter: int, se
     alive for the later passes: the whole matrix ends up in memory.) Also returns the
     squared norm of every row, taken in the first pass.
     """
-    n_time, n_space = matrix.shape
+    if isinstance(matrix, list):  # in-memory column blocks [M_1 | M_2 | ...]
+        n_time, n_space = matrix[0].shape[0], sum(block.shape[1] for block in matrix)
+        dtype = matrix[0].dtype
+    else:
+        n_time, n_space = matrix.shape
+        dtype = matrix.dtype
     width = min(k + n_oversamples, n_time, n_space)
-    dtype = matrix.dtype
     omega = np.random.default_rng(seed).standard_normal((n_space, width)).astype(dtype)
-    if _is_dask(matrix):
+    if isinstance(matrix, list):
+        edges = np.cumsum([0] + [block.shape[1] for block in matrix])
+
+        def times_matrix(right):
+            right = right.astype(dtype)
+            return sum(block @ right[lo:hi] for block, lo, hi in zip(matrix, edges[:-1], edges[1:]))
+
+        def matrix_transposed_times(left):
+            left = left.astype(dtype)
+            return np.concatenate([block.T @ left for block in matrix])
+
+        sample, row_energy = times_matrix(omega), sum(_row_energy(block) for block in matrix)
+    elif _is_dask(matrix):
         import dask
         import dask.array as da
 
@@ -804,6 +888,20 @@ def _column_moments(raw, origin):
     step = max(1, 2 ** 22 // max(raw.shape[1], 1))
     return sum(_block_moments(raw[start:start + step], origin)
                for start in range(0, raw.shape[0], step))
+
+
+def _store_by_chunks(array, out: np.ndarray) -> None:
+    """Write the dask ``array`` (chunked along its first axis) into ``out``, a few
+    chunks computed at a time and copied in here: any scheduler (a distributed one
+    too) hands the values back to this process, and memory holds a few chunks."""
+    import dask
+
+    edges = np.cumsum((0,) + array.chunks[0])
+    at_once = max(2, os.cpu_count() or 2)
+    for first in range(0, len(array.chunks[0]), at_once):
+        numbers = range(first, min(first + at_once, len(array.chunks[0])))
+        for number, values in zip(numbers, dask.compute(*[array.blocks[i] for i in numbers])):
+            out[edges[number]:edges[number + 1]] = values
 
 
 def _row_energy(matrix: np.ndarray) -> np.ndarray:

@@ -47,8 +47,8 @@ from analogs import __version__
 from analogs._validation import check_int
 # Machine labels of the regimes (DESIGN.md), in order of precedence: the --regime table entry.
 from analogs.parameters import REGIME_LABELS
-from analogs.constants import ZERO_CELSIUS_K
-from analogs.geo import great_circle_km, initial_bearing_deg
+from analogs.constants import EARTH_RADIUS, ZERO_CELSIUS_K
+from analogs.geo import great_circle_km, initial_bearing_deg, wrap_longitude
 from analogs.errors import AnalogsInputError, NotFittedError
 
 # xarray and the diagnostics (scipy) are imported by the functions that compute: a query
@@ -314,6 +314,22 @@ def _hart_height_difference(z, distance):
     return float(z[near].max() - z[near].min()) if near.any() else np.nan
 
 
+def _box_around(centre_lat, centre_lon, lat, lon, radius_km):
+    """``numpy.ix_`` indices of the grid rows and columns that can lie within
+    ``radius_km`` of the centre: the latitude band of the spherical cap and, away from
+    the poles, its longitude half-width ``arcsin(sin r / cos phi)`` (the bounding box
+    of a spherical cap; common practice, no source), each widened by half a degree
+    against round-off. Longitude differences are taken modulo 360."""
+    reach = np.degrees(radius_km / (EARTH_RADIUS / 1000.0))
+    rows = np.flatnonzero(np.abs(lat - centre_lat) <= reach + 0.5)
+    columns = np.arange(lon.size)
+    if abs(centre_lat) + reach + 0.5 < 90.0:
+        half_width = np.degrees(np.arcsin(min(1.0, np.sin(np.radians(reach))
+                                              / np.cos(np.radians(centre_lat)))))
+        columns = np.flatnonzero(np.abs(wrap_longitude(lon - centre_lon)) <= half_width + 0.5)
+    return np.ix_(rows, columns)
+
+
 def cyclone_structure(ds: xr.Dataset, diagnostics: pd.DataFrame) -> pd.DataFrame:
     r"""Structure of the closed low of each day, for the tropical rule.
 
@@ -380,6 +396,11 @@ def cyclone_structure(ds: xr.Dataset, diagnostics: pd.DataFrame) -> pd.DataFrame
     for start in range(0, rows.size, _STRUCTURE_BLOCK_DAYS):
         block = rows[start:start + _STRUCTURE_BLOCK_DAYS]
         z = block_values("z500", block)
+        with np.errstate(invalid="ignore"):
+            # the zonal median of each row, for the whole block at once (numpy's
+            # median where no value is missing: the same values, far faster)
+            zonal = (np.median if not np.isnan(z).any() else np.nanmedian)(
+                z, axis=-1, keepdims=True)
         m = None if moisture is None else block_values(moisture, block)
         if moisture == "q850":
             m = dewpoint_from_specific_humidity(m, 850.0) - ZERO_CELSIUS_K
@@ -387,21 +408,24 @@ def cyclone_structure(ds: xr.Dataset, diagnostics: pd.DataFrame) -> pd.DataFrame
             m = m - ZERO_CELSIUS_K
         low = None if lower is None else block_values(lower, block)
         for k, row in enumerate(block):
-            distance = great_circle_km(c_lat[row], c_lon[row], lat2, lon2)
-            bearing = initial_bearing_deg(c_lat[row], c_lon[row], lat2, lon2)
-            with np.errstate(invalid="ignore"):
-                anomaly = z[k] - np.nanmedian(z[k], axis=-1, keepdims=True)
-            out["tc_asymmetry"][row] = _ring_asymmetry(anomaly, distance, bearing, weights,
-                                                       c_depth[row])
+            # Every measure is taken within RING_KM[1] of the centre: only the grid
+            # points of the box around that disc are looked at (same values, in the
+            # same order, as over the whole grid).
+            near = _box_around(c_lat[row], c_lon[row], lat, lon, RING_KM[1])
+            distance = great_circle_km(c_lat[row], c_lon[row], lat2[near], lon2[near])
+            bearing = initial_bearing_deg(c_lat[row], c_lon[row], lat2[near], lon2[near])
+            anomaly = z[k][near] - zonal[k, :, 0][near[0]]
+            out["tc_asymmetry"][row] = _ring_asymmetry(anomaly, distance, bearing,
+                                                       weights[near], c_depth[row])
             if m is not None:
-                core, ring = _core_and_ring(m[k], distance, weights)
+                core, ring = _core_and_ring(m[k][near], distance, weights[near])
                 level = {"q850": "tc_td850_c", "td2m": "tc_td2m_c", "pwat": "tc_pwat"}[moisture]
                 excess = "tc_core_pwat_excess" if moisture == "pwat" else "tc_core_td_excess_k"
                 out[level][row] = core
                 out[excess][row] = core - ring
             if low is not None:
-                dz_low = _hart_height_difference(low[k], distance)
-                dz_500 = _hart_height_difference(z[k], distance)
+                dz_low = _hart_height_difference(low[k][near], distance)
+                dz_500 = _hart_height_difference(z[k][near], distance)
                 out["tc_thermal_wind_gpm"][row] = (dz_low - dz_500) / np.log(
                     LOWER_LEVELS[lower] / 500.0)
     return pd.DataFrame(out, index=diagnostics.index)

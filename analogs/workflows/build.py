@@ -5,6 +5,9 @@ from __future__ import annotations
 import contextlib
 import json
 import re
+import shutil
+import sys
+import tempfile
 from pathlib import Path
 
 import numpy as np
@@ -234,9 +237,14 @@ def _build(paths, store, *, events, event_dates, events_period, fields, n_modes,
         events, archive["lat"].values, archive["lon"].values, dates=event_dates)
 
     climatology = HarmonicClimatology(n_harmonics=n_harmonics).fit(archive)
-    anomalies = climatology.transform(archive)
-    eof = MultivariateEOF(n_modes, variance=variance, solver=solver,
-                          field_weights=field_weights).fit(anomalies)
+    # Anomalies in the archive's float32, made block-wise; the EOF fit scales them in
+    # place into its data matrix (one copy of the archive beside the archive itself).
+    # Out of core, that copy is a scratch file written in one pass over the archive.
+    with _scratch_files(store, archive, chunked=chunks is not None,
+                        progress=progress) as scratch:
+        eof = MultivariateEOF(n_modes, variance=variance, solver=solver,
+                              field_weights=field_weights).fit(
+            climatology.transform(archive), overwrite=True, scratch=scratch)
     pcs = eof.pcs_
     errors = eof.training_error_.values
     # No region: tag_days places the synoptic box at the domain's centre and says so.
@@ -309,6 +317,50 @@ def _build(paths, store, *, events, event_dates, events_period, fields, n_modes,
         store_io.write_table(tags.reset_index(drop=True), staged / store_io.TAGS)
         txn.commit(manifest)
         return AnalogStore._load_version(txn.path, manifest=txn.committed)
+
+
+#: Free space kept beyond the scratch files' size (the store is written beside them).
+_SCRATCH_MARGIN = 1.1
+
+
+@contextlib.contextmanager
+def _scratch_files(store, archive, *, chunked: bool, progress: bool):
+    """For an out-of-core build, a maker of float32 memory-mapped arrays in a
+    temporary folder beside ``store``, removed afterwards (also on error); ``None``
+    for an in-memory build.
+
+    The size (every field's values in float32) is said up front when ``progress`` is
+    on; a disk with less free space than that is refused before any is written.
+    """
+    if not chunked:
+        yield None
+        return
+    parent = Path(store).resolve().parent
+    parent.mkdir(parents=True, exist_ok=True)
+    n_bytes = 4 * sum(int(np.prod(archive[name].shape)) for name in archive.data_vars)
+    free = shutil.disk_usage(parent).free
+    if free < _SCRATCH_MARGIN * n_bytes:
+        raise AnalogsInputError(
+            f"the out-of-core build needs {n_bytes / 1e9:.2f} GB of scratch space for its "
+            f"float32 anomaly matrix in {parent} (beside the store), but only "
+            f"{free / 1e9:.2f} GB are free there; free some space or build the store "
+            "on another disk")
+    folder = Path(tempfile.mkdtemp(prefix=".analogs-scratch-", dir=parent))
+    if progress:
+        print(f"analogs build: {n_bytes / 1e9:.2f} GB of scratch space in {folder} "
+              "(float32 anomalies, removed after the build)", file=sys.stderr)
+    made = []
+
+    def allocate(shape, dtype):
+        made.append(np.memmap(folder / f"matrix_{len(made)}.bin", dtype=dtype, mode="w+",
+                              shape=tuple(int(n) for n in shape)))
+        return made[-1]
+
+    try:
+        yield allocate
+    finally:
+        made.clear()
+        shutil.rmtree(folder, ignore_errors=True)
 
 
 def _index_info(kind, vectors, times) -> dict:

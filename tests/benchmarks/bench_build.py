@@ -1,0 +1,260 @@
+"""Build benchmark: the tool's build against its floor (read once + one randomized SVD).
+
+Cases (synthetic archives from ``reanalysis_demo``, generated once into ``--out`` and
+reused while their settings match):
+- ``y40_g1``: 40 years at 1 degree on the default domain (36 x 71 points);
+- ``y10_g025`` (with ``--quarter``): 10 years at 0.25 degree on
+  (20, 54.75, -130, -60.25), 140 x 280 points (about 0.6 GB of NetCDF; generating it
+  takes several minutes on 2 cores).
+
+Measured in one run, each task in its own child process (its peak resident memory is
+that process's VmHWM; its time excludes the interpreter's start-up):
+- floor, read: every archive file read once into float32 (netCDF4, whole variables);
+- floor, SVD: ``sklearn.utils.extmath.randomized_svd`` of the weighted anomaly matrix
+  (float32; 20 modes, 20 oversamples, 2 power iterations, as the tool's solver), the
+  matrix made beforehand and not timed;
+- floor = median read + median SVD;
+- the tool's build (``build_store`` with the demo's events and central region: reading,
+  climatology, EOFs, tagging, skill hindcast, store write), in memory and out of core
+  (``chunks={"time": CHUNK_DAYS}``, threaded scheduler).
+
+Prints, per case, each median, the ratios build / floor and out-of-core / in-memory,
+and each task's peak memory; then a JSON object (also written to OUT/bench_build.json).
+
+Run:  python tests/benchmarks/bench_build.py [--out DIR] [--runs 3] [--quarter]
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import shutil
+import statistics
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+
+CASES = {
+    "y40_g1": {"years": 40, "grid": 1.0, "domain": None},
+    "y10_g025": {"years": 10, "grid": 0.25, "domain": [20.0, 54.75, -130.0, -60.25]},
+}
+CHUNK_DAYS = 365
+START_YEAR = 1981
+SEED = 0
+N_MODES, N_OVERSAMPLES, N_POWER_ITER = 20, 20, 2
+
+
+def peak_rss_mb() -> float:
+    """Peak resident memory of this process (VmHWM), MB."""
+    with open("/proc/self/status") as status:
+        for line in status:
+            if line.startswith("VmHWM:"):
+                return int(line.split()[1]) / 1024.0
+    import resource
+
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
+
+
+def run_child(task: str, spec: dict) -> dict:
+    """Run ``task`` in a fresh interpreter; return the JSON of its last stdout line."""
+    command = [sys.executable, str(Path(__file__).resolve()), "--child", task,
+               "--spec", json.dumps(spec)]
+    done = subprocess.run(command, capture_output=True, text=True)
+    if done.returncode != 0:
+        lines = done.stderr.strip().splitlines()
+        return {"error": lines[-1] if lines else f"exit status {done.returncode}"}
+    return json.loads(done.stdout.strip().splitlines()[-1])
+
+
+def archive_files(case_dir: Path) -> list[str]:
+    return [str(f) for f in sorted((case_dir / "archive").glob("*.nc"))]
+
+
+def generate(case: str, out: Path) -> dict:
+    """Write the archive of ``case`` under ``out/case`` unless the same one is there."""
+    import reanalysis_demo
+
+    settings = CASES[case]
+    case_dir = out / case
+    record = case_dir / "generation.json"
+    wanted = {"years": settings["years"], "grid": settings["grid"], "seed": SEED,
+              "start_year": START_YEAR, "domain": settings["domain"]}
+    if record.exists():
+        recorded = json.loads(record.read_text())
+        if ({k: recorded.get(k) for k in wanted} == wanted
+                and len(archive_files(case_dir)) == 2 * settings["years"]):
+            return {"generate_s": round(recorded["generate_s"], 1), "reused": True}
+    if case_dir.exists():
+        shutil.rmtree(case_dir)
+    options = {"domain": tuple(settings["domain"])} if settings["domain"] else {}
+    started = time.perf_counter()
+    reanalysis_demo.write_archive(case_dir, settings["years"], start_year=START_YEAR,
+                                  grid=settings["grid"], seed=SEED, progress=False, **options)
+    elapsed = time.perf_counter() - started
+    record.write_text(json.dumps({**wanted, "generate_s": elapsed}))
+    return {"generate_s": round(elapsed, 1), "reused": False}
+
+
+# ----------------------------------------------------------------------- child tasks
+
+def _read_float32(files) -> dict:
+    """Every gridded variable of every file, read whole into float32, by variable."""
+    import netCDF4
+
+    arrays = {}
+    for path in files:
+        with netCDF4.Dataset(path) as dataset:
+            for name, variable in dataset.variables.items():
+                if variable.ndim >= 3:
+                    arrays.setdefault(name, []).append(
+                        np.asarray(variable[:], dtype=np.float32).reshape(variable.shape[0], -1))
+    return arrays
+
+
+def child_read(spec: dict) -> dict:
+    started = time.perf_counter()
+    arrays = _read_float32(spec["files"])
+    elapsed = time.perf_counter() - started
+    n_bytes = sum(a.nbytes for parts in arrays.values() for a in parts)
+    return {"seconds": elapsed, "peak_rss_mb": peak_rss_mb(), "gb": n_bytes / 1e9}
+
+
+def child_svd(spec: dict) -> dict:
+    """One randomized SVD of the area-weighted, per-field balanced anomalies (float32).
+
+    The anomalies here are departures from each point's time mean: the floor times
+    only the SVD call, whose cost does not depend on how the anomalies were made."""
+    import netCDF4
+    from sklearn.utils.extmath import randomized_svd
+
+    arrays = _read_float32(spec["files"])
+    with netCDF4.Dataset(spec["files"][0]) as dataset:
+        lat = np.asarray(dataset.variables["lat"][:], dtype=float)
+        n_lon = dataset.dimensions["lon"].size
+    weights = np.repeat(np.sqrt(np.cos(np.radians(lat))), n_lon).astype(np.float32)
+    blocks = []
+    for name in sorted(arrays):
+        block = np.concatenate(arrays.pop(name))
+        block -= block.mean(axis=0)
+        block *= weights
+        block /= np.float32(np.sqrt((block.astype(np.float64) ** 2).sum() / (len(block) - 1)))
+        blocks.append(block)
+    matrix = np.concatenate(blocks, axis=1)
+    del blocks
+    started = time.perf_counter()
+    randomized_svd(matrix, N_MODES, n_oversamples=N_OVERSAMPLES, n_iter=N_POWER_ITER,
+                   power_iteration_normalizer="QR", random_state=0)
+    elapsed = time.perf_counter() - started
+    return {"seconds": elapsed, "peak_rss_mb": peak_rss_mb(), "shape": list(matrix.shape)}
+
+
+def child_build(spec: dict) -> dict:
+    import reanalysis_demo
+    from analogs.api import build_store
+    from analogs.stages.outcomes import Region
+
+    chunks = {"time": spec["chunk_days"]} if spec.get("chunk_days") else None
+    started = time.perf_counter()
+    store = build_store(spec["files"], spec["store"], events=spec["events"],
+                        region=Region.box(*reanalysis_demo.CENTRAL_REGION), chunks=chunks,
+                        progress=False)
+    elapsed = time.perf_counter() - started
+    return {"seconds": elapsed, "peak_rss_mb": peak_rss_mb(),
+            "eigenvalues": store.eof.eigenvalues_.values[:10].tolist()}
+
+
+CHILD_TASKS = {"read": child_read, "svd": child_svd, "build": child_build}
+
+
+# ----------------------------------------------------------------------------- driver
+
+def _summary(runs: list[dict]) -> dict:
+    errors = [r["error"] for r in runs if "error" in r]
+    if errors:
+        return {"error": errors[0]}
+    return {"median_s": round(statistics.median(r["seconds"] for r in runs), 2),
+            "runs_s": [round(r["seconds"], 2) for r in runs],
+            "peak_rss_mb": round(max(r["peak_rss_mb"] for r in runs), 1)}
+
+
+def bench_case(case: str, out: Path, args) -> dict:
+    generation = generate(case, out)
+    files = archive_files(out / case)
+    events = str(out / case / "events.csv")
+    runs = args.runs if case == "y40_g1" else args.quarter_runs
+    result = {"case": case, **CASES[case], "n_files": len(files), **generation}
+    result["floor_read"] = _summary([run_child("read", {"files": files}) for _ in range(runs)])
+    result["floor_svd"] = _summary([run_child("svd", {"files": files}) for _ in range(runs)])
+    with tempfile.TemporaryDirectory(dir=out) as scratch:
+        for label, chunk_days in (("build_memory", None), ("build_chunked", args.chunk_days)):
+            spec = {"files": files, "events": events, "chunk_days": chunk_days,
+                    "store": str(Path(scratch) / label)}
+            result[label] = _summary([run_child("build", spec) for _ in range(runs)])
+    if all("median_s" in result[k] for k in ("floor_read", "floor_svd", "build_memory",
+                                               "build_chunked")):
+        floor = result["floor_read"]["median_s"] + result["floor_svd"]["median_s"]
+        result["floor_s"] = round(floor, 2)
+        result["ratio_memory_to_floor"] = round(result["build_memory"]["median_s"] / floor, 2)
+        result["ratio_chunked_to_floor"] = round(result["build_chunked"]["median_s"] / floor, 2)
+        result["ratio_chunked_to_memory"] = round(
+            result["build_chunked"]["median_s"] / result["build_memory"]["median_s"], 2)
+    return result
+
+
+def print_case(result: dict) -> None:
+    print(f"\n== {result['case']}: {result['years']} years at {result['grid']} degree "
+          f"(archive generated in {result['generate_s']} s{', reused' if result['reused'] else ''})")
+    for key in ("floor_read", "floor_svd", "build_memory", "build_chunked"):
+        entry = result[key]
+        if "error" in entry:
+            print(f"  {key:15} ERROR {entry['error']}")
+        else:
+            print(f"  {key:15} median {entry['median_s']:8.2f} s   peak {entry['peak_rss_mb']:8.1f} MB"
+                  f"   runs {entry['runs_s']}")
+    for key in ("floor_s", "ratio_memory_to_floor", "ratio_chunked_to_floor",
+                "ratio_chunked_to_memory"):
+        if key in result:
+            print(f"  {key:24} {result[key]}")
+
+
+def main(argv=None):
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--out", type=Path,
+                        default=Path(tempfile.gettempdir()) / "analogs-bench-build",
+                        help="work directory (archives are generated once and reused)")
+    parser.add_argument("--runs", type=int, default=3, help="runs of each task (1-degree case)")
+    parser.add_argument("--quarter", action="store_true",
+                        help="also the 10-year 0.25-degree case (large)")
+    parser.add_argument("--quarter-runs", type=int, default=1)
+    parser.add_argument("--only-quarter", action="store_true", help="skip the 1-degree case")
+    parser.add_argument("--chunk-days", type=int, default=CHUNK_DAYS)
+    parser.add_argument("--child", choices=sorted(CHILD_TASKS), help=argparse.SUPPRESS)
+    parser.add_argument("--spec", help=argparse.SUPPRESS)
+    args = parser.parse_args(argv)
+    if args.child:
+        print(json.dumps(CHILD_TASKS[args.child](json.loads(args.spec))))
+        return None
+    args.out.mkdir(parents=True, exist_ok=True)
+    cases = ([] if args.only_quarter else ["y40_g1"]) + (
+        ["y10_g025"] if args.quarter or args.only_quarter else [])
+    results = {"load_average_start": [round(x, 2) for x in os.getloadavg()], "cases": []}
+    for case in cases:
+        result = bench_case(case, args.out, args)
+        print_case(result)
+        results["cases"].append(result)
+    results["load_average_end"] = [round(x, 2) for x in os.getloadavg()]
+    print(f"\nload average: start {results['load_average_start']}, "
+          f"end {results['load_average_end']}")
+    text = json.dumps(results, indent=2)
+    print(text)
+    (args.out / "bench_build.json").write_text(text)
+    return results
+
+
+if __name__ == "__main__":
+    main()
