@@ -52,6 +52,9 @@ SCORES = "scores.nc"
 EVENTS = "events.parquet"
 TAGS = "tags.parquet"
 MODELS = "models.nc"
+#: Group of ``basis.nc`` holding the land fraction on the store grid (variable ``land``),
+#: when the build was given or found a land-sea mask (only to draw maps).
+LAND_GROUP = "land"
 #: Seconds a second writer waits for the lock before giving up (default).
 LOCK_TIMEOUT = 600.0
 #: Environment variable that overrides :data:`LOCK_TIMEOUT` (seconds).
