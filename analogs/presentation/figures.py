@@ -501,7 +501,7 @@ def analog_panel(analog_fields: xr.Dataset, analogs: pd.DataFrame, events=None, 
 MARK_STYLES = {
     "trough": {"color": "#b2182b", "linestyle": (0, (5, 2.5)), "label": "trough axis"},
     "ridge": {"color": "#2c5fa8", "linestyle": (0, (1.2, 1.8)), "label": "ridge axis"},
-    "low": {"color": "#b2182b", "label": "compact 500 hPa low (L)"},
+    "low": {"color": "#b2182b", "label": "closed 500 hPa low (L)"},
 }
 
 

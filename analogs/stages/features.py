@@ -51,11 +51,14 @@ def _smooth(z, passes):
     return z
 
 
-def _row_crossings(slope, curvature, lon):
-    """(longitude, curvature, kind) of each sign change of ``slope`` along one row;
-    kind +1 for a minimum (trough), -1 for a maximum (ridge)."""
+def _row_crossings(slope, curvature, lon, margin):
+    """(longitude, curvature, kind) of each sign change of ``slope`` along one row, at
+    least ``margin`` columns from either edge (where the smoothing and the one-sided
+    differences bend the field); kind +1 for a minimum (trough), -1 for a maximum."""
     a, b = slope[:-1], slope[1:]
     change = np.isfinite(a) & np.isfinite(b) & (np.sign(a) != np.sign(b)) & (a != 0)
+    change[:margin] = False
+    change[max(change.size - margin, 0):] = False
     out = []
     for j in np.flatnonzero(change):
         share = a[j] / (a[j] - b[j])                   # linear zero crossing in (j, j+1)
@@ -115,7 +118,10 @@ def trough_ridge_axes(z500: xr.DataArray, *, min_curvature=AXIS_DEFAULTS["min_cu
     the grid columns; a point counts when :math:`|\partial^2 Z/\partial x^2|`
     there is at least ``min_curvature`` gpm per (1000 km)^2. Points are joined into
     lines across consecutive rows (:func:`_link`); lines shorter than
-    ``min_length_km`` are dropped. See the module docstring for the references.
+    ``min_length_km`` are dropped. Crossings within ``smoothing_passes + 2`` columns
+    of the grid's west or east edge are not looked for: the smoothing keeps the edge
+    values and the differences there are one-sided, which moves an axis by up to a
+    grid length. See the module docstring for the references.
 
     Longitudes are taken in the grid's order (ascending, as on a store grid); a
     crossing of a global grid's seam is not looked for.
@@ -144,7 +150,8 @@ def trough_ridge_axes(z500: xr.DataArray, *, min_curvature=AXIS_DEFAULTS["min_cu
         curvature = zonal_derivative(slope, lat, lon) * (1000.0 * _KM) ** 2
         points = {1: [], -1: []}
         for i in range(lat.size):
-            for x, c, kind in _row_crossings(slope[i], curvature[i], lon):
+            for x, c, kind in _row_crossings(slope[i], curvature[i], lon,
+                                             smoothing_passes + 2):
                 if np.isfinite(c) and abs(c) >= min_curvature and np.sign(c) == kind:
                     points[kind].append((i, lat[i], x, c))
         number = 0
@@ -165,8 +172,10 @@ def trough_ridge_axes(z500: xr.DataArray, *, min_curvature=AXIS_DEFAULTS["min_cu
 
 def synoptic_marks(z500: xr.DataArray, dim: str = "time") -> pd.DataFrame:
     """What a map marks on each 500 hPa height field of ``z500`` (``dim``, lat, lon):
-    trough and ridge axes (:func:`trough_ridge_axes`) and the centres of compact lows
-    (:func:`analogs.stages.diagnostics.find_closed_lows`, its defaults). One table:
+    trough and ridge axes (:func:`trough_ridge_axes`) and the centres of closed lows
+    (:func:`analogs.stages.diagnostics.find_closed_lows` with its defaults, closed
+    circulations only: the sharp trough of an open wave is a compact low to that search
+    but not closed). One table:
     ``panel`` (position along ``dim``), ``kind`` ("trough", "ridge" or "low"), ``axis``
     (line number; -1 for a low), ``lat``, ``lon``."""
     from analogs.stages.diagnostics import find_closed_lows
@@ -174,7 +183,7 @@ def synoptic_marks(z500: xr.DataArray, dim: str = "time") -> pd.DataFrame:
     z = z.drop_vars([c for c in z.coords if c not in ("lat", "lon")]).rename({dim: "time"})
     z = z.assign_coords(time=np.arange(z.sizes["time"]))
     axes = trough_ridge_axes(z).rename(columns={"time": "panel"})
-    lows = find_closed_lows(z)
+    lows = find_closed_lows(z, closed_only=True)
     lows = pd.DataFrame({"panel": lows["time"].to_numpy(dtype=int), "kind": "low",
                          "axis": -1, "lat": lows["lat"].to_numpy(),
                          "lon": lows["lon"].to_numpy()})

@@ -1018,7 +1018,7 @@ def _alt_target(target, when, source) -> str:
 
 
 def _marks(target, gathered):
-    """Trough and ridge axes and compact lows (:func:`analogs.stages.features.synoptic_marks`)
+    """Trough and ridge axes and closed lows (:func:`analogs.stages.features.synoptic_marks`)
     of the target (or None) and of the analog days, found in one pass over the fields
     the maps draw."""
     from analogs.stages.features import synoptic_marks
@@ -1039,7 +1039,7 @@ def _marks(target, gathered):
 def _alt_marks(marks) -> str:
     """Alt text of the synoptic marks of one map."""
     if marks is None or not len(marks):
-        return " No trough or ridge axis and no compact low found."
+        return " No trough or ridge axis and no closed low found."
     from analogs.presentation.figures import degrees_east_label, degrees_north_label
     parts = []
     for kind, words in (("trough", "trough axis"), ("ridge", "ridge axis")):
@@ -1051,7 +1051,7 @@ def _alt_marks(marks) -> str:
                          f"{degrees_north_label(round(north.lat))} "
                          f"{degrees_east_label(round(north.lon))}")
     for low in marks[marks["kind"] == "low"].itertuples(index=False):
-        parts.append(f"compact low (L) at {degrees_north_label(round(low.lat))} "
+        parts.append(f"closed low (L) at {degrees_north_label(round(low.lat))} "
                      f"{degrees_east_label(round(low.lon))}")
     return " Marked: " + "; ".join(parts) + "."
 
@@ -1076,7 +1076,7 @@ def report_figures(store, result: FindResult, *, maps=None, hindcast=None,
     (:func:`archive_day_fields`, only those days read), else the store's
     reconstruction (:func:`day_fields`: one climatology evaluation and one EOF
     reconstruction for all the days together), said in every title and alt text;
-    their mean, their trough and ridge axes and compact lows (:func:`_marks`), the
+    their mean, their trough and ridge axes and closed lows (:func:`_marks`), the
     land-sea boundary of the store's mask (traced once), the events of the days drawn
     and the outcome maps (``maps`` when already computed, e.g. for ``--maps``).
     Every analog is drawn in the grid unless ``n_panel`` limits it.
@@ -1133,7 +1133,7 @@ def report_figures(store, result: FindResult, *, maps=None, hindcast=None,
                + "; ".join(f"#{a.rank} {a.date} {a.regime}, distance {a.distance:.2f}, "
                            f"{int(a.events_total)} events in region"
                            for a in shown.itertuples(index=False)) + "."
-               + (" Each day's trough axes (red dashed), ridge axes (blue dotted) and compact "
+               + (" Each day's trough axes (red dashed), ridge axes (blue dotted) and closed "
                   "lows (L) of the 500 hPa height are marked." if len(analog_marks) else "")
                + _alt_land(land))
         figures.append(("The closest past days and their events",
