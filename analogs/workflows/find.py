@@ -945,35 +945,36 @@ def archive_day_fields(store, rows) -> tuple[xr.Dataset | None, str]:
         if provenance([path])[0]["bytes"] != entry["bytes"]:
             return None, f"archive file {path} changed size since the build"
     wanted = pd.DatetimeIndex(store.times[rows])
-    found = {}
+    found, fields_of = {}, {}  # fields_of: the fields files of the same variables held
     try:
         from analogs.stages.sources import open_target
         for entry in inputs:
-            held = _times_held(entry["path"])
+            held, variables = _times_held(entry["path"])
             if held is None:
                 continue
             inside = wanted[wanted.isin(held)]
             if inside.empty:
                 continue
             span = f"{inside.min().isoformat()}/{inside.max().isoformat()}"
-            for name in store.fields:
-                if name in found and inside.isin(found[name]["time"].values).all():
-                    continue
+            known = fields_of.get(variables)
+            for name in store.fields if known is None else known:
                 try:
                     part = open_target(entry["path"], time=span, fields=[name])
                 except AnalogsInputError:
                     continue  # the file holds another field
-                part = part.sel(time=part["time"].isin(inside.values))
-                found[name] = part if name not in found else xr.concat(
-                    [found[name], part], dim="time")
+                if known is None:
+                    fields_of.setdefault(variables, []).append(name)
+                found.setdefault(name, []).append(
+                    part[name].sel(time=part["time"].isin(inside.values)))
     except (AnalogsInputError, OSError, ValueError) as error:
         return None, f"the archive could not be read ({' '.join(str(error).split())[:120]})"
+    found = {name: xr.concat(parts, dim="time").drop_duplicates("time")
+             for name, parts in found.items()}
     missing = [name for name in store.fields if name not in found
                or not wanted.isin(found[name]["time"].values).all()]
     if missing:
         return None, f"the archive files do not hold every day drawn ({', '.join(missing)})"
-    merged = xr.Dataset({name: found[name][name].drop_duplicates("time").sel(time=wanted.values)
-                         for name in store.fields})
+    merged = xr.Dataset({name: found[name].sel(time=wanted.values) for name in store.fields})
     fields = on_store_grid(store, merged)
     lat, lon = store.grid
     out = xr.Dataset(coords={"time": ("analog", wanted.values), "lat": lat, "lon": lon})
@@ -983,18 +984,26 @@ def archive_day_fields(store, rows) -> tuple[xr.Dataset | None, str]:
     return out, "archive"
 
 
-def _times_held(path) -> pd.DatetimeIndex | None:
-    """The times of an archive file from its header (None when it has no time axis
-    that decodes)."""
+def _times_held(path) -> tuple[pd.DatetimeIndex | None, frozenset]:
+    """The times and variable names of an archive file, read from its header with
+    netCDF4 (a tenth of what opening it with xarray costs); no times when it has no
+    time axis that decodes (then the file is not read for the maps)."""
+    import netCDF4
     from analogs.workflows.files import NETCDF_LOCK
     try:
-        with NETCDF_LOCK, xr.open_dataset(path, engine="netcdf4") as dataset:
-            for coord in dataset.coords.values():
-                if np.issubdtype(coord.dtype, np.datetime64) and coord.ndim == 1:
-                    return pd.DatetimeIndex(coord.values)
-    except (OSError, ValueError):
-        return None
-    return None
+        with NETCDF_LOCK, netCDF4.Dataset(path) as dataset:
+            for name in ("time", "valid_time", "t"):
+                if name in dataset.variables and dataset.variables[name].ndim == 1:
+                    var = dataset.variables[name]
+                    dates = netCDF4.num2date(var[:], var.units,
+                                             getattr(var, "calendar", "standard"),
+                                             only_use_cftime_datetimes=False,
+                                             only_use_python_datetimes=True)
+                    return (pd.DatetimeIndex(pd.to_datetime([d.isoformat() for d in dates])),
+                            frozenset(dataset.variables))
+    except (OSError, ValueError, AttributeError, TypeError):
+        pass
+    return None, frozenset()
 
 
 def _place(values, lat, lon) -> str:
