@@ -109,7 +109,8 @@ def read_land_mask(path) -> tuple[xr.DataArray, dict]:
                 f"{', '.join(map(str, dataset.data_vars)) or 'none'}); expected one with "
                 f"standard_name {' or '.join(MASK_STANDARD_NAMES)}, or named "
                 f"{', '.join(MASK_SHORT_NAMES[:3])}")
-        mask = canonical_land_mask(dataset[name].load(), f"{where}, variable {name!r}")
+        # Lazy: only the first time step of a mask with a time axis is read.
+        mask = canonical_land_mask(dataset[name], f"{where}, variable {name!r}")
         standard_name = str(dataset[name].attrs.get("standard_name", ""))
     return mask, {"path": where, "variable": name, "standard_name": standard_name or None}
 
@@ -132,5 +133,5 @@ def land_mask_in_archive(paths) -> tuple[xr.DataArray | None, dict | None]:
     return None, None
 
 
-__all__ = ["read_land_mask", "land_mask_in_archive", "MASK_SHORT_NAMES", "MASK_STANDARD_NAMES", "canonical_land_mask",
-           "find_land_mask", "land_on_grid"]
+__all__ = ["MASK_SHORT_NAMES", "MASK_STANDARD_NAMES", "canonical_land_mask", "find_land_mask",
+           "land_mask_in_archive", "land_on_grid", "read_land_mask"]
