@@ -74,7 +74,7 @@ def build_parser() -> argparse.ArgumentParser:
              description="Read a gridded archive (NetCDF or Zarr; any CF-ish convention), fit "
                          "the climatology and EOFs, index every day and write the store.",
              options=(P.files, P.store, P.events, P.event_dates, P.events_period, P.n_modes,
-                      P.variance, P.fields, P.region,
+                      P.variance, P.fields, P.region, P.land_mask,
                       P.domain, P.hour, P.daily, P.solver, P.chunk_days, P.scheduler, P.index,
                       P.n_harmonics, P.quiet),
              exclusive=((False, (P.n_modes, P.variance)),))
@@ -213,7 +213,7 @@ def _cmd_build(args) -> int:
                         chunks={"time": args.chunk_days} if args.chunk_days else None,
                         scheduler=args.scheduler,
                         events=args.events, event_dates=args.event_dates,
-                        events_period=args.events_period)
+                        events_period=args.events_period, land_mask=args.land_mask)
     config = store.manifest["config"]
     print(f"built store {store.path}: {len(store.times)} days "
           f"{store.days[0].date()} to {store.days[-1].date()}, fields {', '.join(config['fields'])}, "

@@ -280,6 +280,13 @@ PARAMETERS: dict[str, Parameter] = _table(
               "verification)", metavar="FIRST,LAST",
               default_text="build: every archive day; update: the table's first to last "
                            "report day"),
+    Parameter("land_mask", ("--land-mask",), "static land-sea mask file (NetCDF or Zarr "
+              "with a CF land_binary_mask or land_area_fraction variable, or one named "
+              "lsm / LANDMASK, values 0 sea to 1 land, covering the archive's grid; a time "
+              "dimension keeps its first step): regridded to the store grid and kept in the "
+              "store to draw the land-sea boundary on maps, never used as a predictor",
+              kind="path", metavar="MASK.nc",
+              default_text="a mask variable found in the archive files, else none"),
     Parameter("n_modes", ("--modes",), "number of EOF modes to keep", kind="int",
               default=20, api_default=None, minimum=1, units="modes", metavar="K",
               default_text="20, unless --variance is given"),

@@ -194,13 +194,23 @@ def test_find_result_is_labelled(demo_store):
     assert json.dumps(data, allow_nan=False)
 
 
+def assert_archive_opens(opened, archive_files):
+    """Archive files opened by a report: once each, twice for at most one file of each
+    kind of the demo archive (zg500_*, hus850_*)."""
+    counts = [n for path, n in opened.items() if path in archive_files]
+    assert max(counts) <= 2 and sum(n == 2 for n in counts) <= 2
+
+
 def test_field_report_opens_and_regrids_its_target_once(demo_store, demo_files, tmp_path,
                                                         monkeypatch, capsys):
     """One `find --field F --report D` opens F once, regrids it once, evaluates the daily
-    climatology twice (the target's anomaly; the analog days for the figures in one batch)
-    and reconstructs fields from the EOFs once (it was 2 opens, 3 regrids, 8
-    climatology evaluations and 7 reconstructions before the find workflow kept its
-    arrays). A date target needs no file and one evaluation of each."""
+    climatology once (the target's anomaly) and, the archive being at hand, draws the
+    analog days from the archive files: each opened once (the first file of each kind
+    twice: one guess of its field refused before any data is read), the days regridded
+    in one batch, no EOF reconstruction (it was 2 opens, 3 regrids, 8 climatology
+    evaluations and 7 reconstructions before the find workflow kept its arrays). A date
+    target needs no field file: its day and the analog days come from the archive in
+    one batch."""
     from collections import Counter
 
     import analogs.stages.sources as sources
@@ -219,7 +229,13 @@ def test_field_report_opens_and_regrids_its_target_once(demo_store, demo_files, 
             return original(*args, **kwargs)
         monkeypatch.setattr(owner, name, counted)
 
-    counting(sources, "open_target")
+    opened = Counter()
+    original_open = sources.open_target
+
+    def counted_open(path, *args, **kwargs):
+        opened[str(path)] += 1
+        return original_open(path, *args, **kwargs)
+    monkeypatch.setattr(sources, "open_target", counted_open)
     counting(sources, "regrid_to")
     # climatology evaluations: predict, and transform (its block-wise subtraction of
     # every field; it calls predict only for the monthly method, not on the demo)
@@ -230,13 +246,20 @@ def test_field_report_opens_and_regrids_its_target_once(demo_store, demo_files, 
     assert main(["find", "--store", store, "--field", str(field),
                  "--report", str(tmp_path / "field_report")]) == 0
     assert (tmp_path / "field_report" / "index.html").is_file()
-    assert calls["open_target"] == 1 and calls["regrid_to"] == 1
-    assert calls["predict"] + calls["transform"] == 2 and calls["reconstruct"] == 1
+    archive_files = {str(path.resolve()) for path in demo_files}
+    assert opened[str(field)] == 1
+    assert set(opened) - {str(field)} <= archive_files
+    assert_archive_opens(opened, archive_files)
+    assert calls["regrid_to"] == 2   # the target, then the analog days in one batch
+    assert calls["predict"] + calls["transform"] == 1 and calls["reconstruct"] == 0
     calls.clear()
+    opened.clear()
     day = str(demo_store.days[540].date())
     assert main(["find", "--store", store, "--date", day,
                  "--report", str(tmp_path / "date_report")]) == 0
-    assert calls == Counter(predict=1, reconstruct=1)
+    assert calls == Counter(regrid_to=1)
+    assert set(opened) <= archive_files
+    assert_archive_opens(opened, archive_files)
     capsys.readouterr()
 
 

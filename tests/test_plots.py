@@ -7,7 +7,9 @@ import io
 import subprocess
 import sys
 
+import matplotlib.colors
 import matplotlib.image
+from matplotlib.collections import LineCollection
 import numpy as np
 import pandas as pd
 import pytest
@@ -264,6 +266,12 @@ def test_figures_take_no_store():
             assert "store" not in inspect.signature(function).parameters, name
 
 
+def land_collections(ax):
+    return [c for c in ax.collections
+            if isinstance(c, LineCollection) and np.allclose(
+                c.get_colors()[0], matplotlib.colors.to_rgba(plots.LAND_COLOUR))]
+
+
 def test_land_outline_is_the_half_contour_of_the_mask(demo_store, query):
     """The land-sea line is the 0.5 contour of the mask: for land west of 100.5 W on a
     1-degree grid, linear interpolation between the last land column (101 W, 1) and the
@@ -275,10 +283,56 @@ def test_land_outline_is_the_half_contour_of_the_mask(demo_store, query):
                         attrs={"standard_name": "land_binary_mask"})
     figure = plots.target_map(fields, region=demo_store.region, land=land)
     (ax,) = map_axes(figure)
-    outlines = [c for c in ax.collections
-                if hasattr(c, "levels") and list(getattr(c, "levels", [])) == [0.5]]
-    assert len(outlines) == 1
-    vertices = np.concatenate([p.vertices for p in outlines[0].get_paths()])
+    (outline,) = land_collections(ax)
+    vertices = np.concatenate([p.vertices for p in outline.get_paths()])
     np.testing.assert_allclose(vertices[:, 0], -100.5)
     assert plots.LAND_NOTE in [t.get_text() for t in figure.texts]
     assert_not_blank(figure)
+
+
+def test_land_lines_match_matplotlib_contour():
+    """The boundary traced once (contourpy) is the path matplotlib's own contour of the
+    0.5 level draws, for an analytic round island."""
+    from matplotlib.figure import Figure
+    lat, lon = np.arange(20.0, 50.1, 1.0), np.arange(-120.0, -80.1, 1.0)
+    lat2d, lon2d = np.meshgrid(lat, lon, indexing="ij")
+    island = ((lat2d - 35.0) ** 2 + (lon2d + 100.0) ** 2 < 60.0).astype(float)
+    land = xr.DataArray(island, dims=("lat", "lon"), coords={"lat": lat, "lon": lon})
+    (line,) = plots.land_lines(land)
+    reference = Figure().add_subplot().contour(lon, lat, island, levels=[0.5])
+    expected = np.concatenate([p.vertices for p in reference.get_paths() if len(p.vertices)])
+    as_set = lambda points: np.unique(np.round(points, 9), axis=0)  # noqa: E731
+    np.testing.assert_allclose(as_set(line), as_set(expected))
+
+
+def test_marks_are_drawn_with_their_legend(demo_store, query):
+    """The target map draws each trough and ridge axis handed to it (one line per axis,
+    through its points) and each closed low as an L, and its legend names them; the analog
+    grid draws each panel's marks shifted by that panel's offset."""
+    fields = day_fields(demo_store, demo_store.day_row(query.target["date"])).isel(time=0)
+    marks = pd.DataFrame({"kind": ["trough", "trough", "ridge", "ridge", "low"],
+                          "axis": [0, 0, 1, 1, -1], "lat": [30.0, 45.0, 30.0, 50.0, 33.0],
+                          "lon": [-95.0, -92.0, -110.0, -111.0, -90.0]})
+    figure = plots.target_map(fields, region=demo_store.region, marks=marks)
+    (ax,) = map_axes(figure)
+    by_label = {c.get_label(): c for c in ax.collections if isinstance(c, LineCollection)}
+    np.testing.assert_allclose(by_label["trough axis"].get_segments()[0],
+                               [[-95.0, 30.0], [-92.0, 45.0]])
+    np.testing.assert_allclose(by_label["ridge axis"].get_segments()[0],
+                               [[-110.0, 30.0], [-111.0, 50.0]])
+    assert [(t.get_text(), t.get_position()) for t in ax.texts if t.get_text() == "L"] == [
+        ("L", (-90.0, 33.0))]
+    legend = [t.get_text() for t in ax.get_legend().get_texts()]
+    assert legend == ["trough axis", "ridge axis", "closed 500 hPa low (L)"]
+    assert_not_blank(figure)
+
+    drawn = query.analogs.head(3)
+    grid_fields = day_fields(demo_store, drawn["row"].to_numpy()).rename(time="analog")
+    panel_marks = pd.concat([marks.assign(panel=1)], ignore_index=True)
+    grid = plots.analog_panel(grid_fields, drawn, None, marks=panel_marks)
+    (grid_ax,) = grid.axes
+    dx, dy = grid.panel_offsets[1]
+    trough = [c for c in grid_ax.collections if c.get_label() == "trough axis"][0]
+    np.testing.assert_allclose(trough.get_segments()[0],
+                               [[-95.0 + dx, 30.0 + dy], [-92.0 + dx, 45.0 + dy]])
+    assert "trough axis" in [t.get_text() for t in grid.legends[0].get_texts()]

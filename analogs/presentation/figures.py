@@ -112,16 +112,39 @@ def _coastline_paths():
     return None
 
 
-def _land_outline(ax, land, dx=0.0, dy=0.0, *, linewidth=0.9):
-    """The 0.5 contour of a land-sea mask or land fraction (lat, lon), shifted by
-    (dx, dy) degrees: where land meets sea on the archive's own grid."""
+LAND_COLOUR = "#8c510a"
+
+
+def land_lines(land) -> list[np.ndarray]:
+    """The 0.5 contour of a land-sea mask or land fraction (lat, lon) as (n, 2) arrays
+    of (lon, lat): where land meets sea on the archive's own grid. Traced once
+    (contourpy, matplotlib's contour engine) and reused by every map of a figure."""
     if land is None:
-        return
+        return []
+    if isinstance(land, list):
+        return land
+    from contourpy import contour_generator
     land = _plane(land, "land outline")
     values = np.asarray(land.values, dtype=float)
-    if np.nanmin(values) < 0.5 < np.nanmax(values):
-        ax.contour(land["lon"].values + dx, land["lat"].values + dy, values, levels=[0.5],
-                   colors="#6b4f2a", linewidths=linewidth, zorder=2)
+    if not np.nanmin(values) < 0.5 < np.nanmax(values):
+        return []
+    generator = contour_generator(land["lon"].values, land["lat"].values,
+                                  np.ma.masked_invalid(values))
+    return [line for line in generator.lines(0.5) if len(line) > 1]
+
+
+def _land_outline(ax, land, offsets=((0.0, 0.0),), *, linewidth=1.2):
+    """The land-sea boundary (:func:`land_lines`) shifted by each (dx, dy) of
+    ``offsets`` degrees, as ONE line collection (one artist for every panel)."""
+    lines = land_lines(land)
+    if lines:
+        from matplotlib import patheffects
+        collection = LineCollection([line + offset for offset in offsets for line in lines],
+                                    colors=LAND_COLOUR, linewidths=linewidth, zorder=2)
+        # A light edge keeps the boundary visible over dark shading.
+        collection.set_path_effects([patheffects.withStroke(linewidth=linewidth + 1.2,
+                                                            foreground="#f3e6c8")])
+        ax.add_collection(collection)
 
 
 def _map_axes(ax, lat, lon, region=None, *, coastlines=None, xticks=True, yticks=True,
@@ -280,14 +303,18 @@ def _events_on_map(ax, events, day, kinds):
 # ------------------------------------------------------------------ query maps
 
 def target_map(fields: xr.Dataset, *, region=None, when="target", source=None,
-               land=None) -> Figure:
+               land=None, marks=None) -> Figure:
     """500 hPa height contours over moisture shading, with the rich-moisture line of the
     field's level (850 hPa dewpoint 12 C, 2 m dewpoint 60 F, precipitable water 30 kg m-2).
 
     ``fields`` is one day on (lat, lon) with ``z500`` (gpm) and optionally a moisture
     field (``q850`` shaded in g/kg with its 850 hPa dewpoint from Bolton's formula,
     ``td2m`` or ``pwat``). ``when`` goes in the title; ``source`` says where the fields
-    came from (e.g. "EOF reconstruction").
+    came from (e.g. "EOF reconstruction"). ``land``: land fraction on (lat, lon) or the
+    lines of :func:`land_lines`. ``marks``: table of trough and ridge axes and closed
+    lows (``kind`` "trough" / "ridge" / "low", ``axis``, ``lat``, ``lon``; from
+    :func:`analogs.stages.features.trough_ridge_axes` and
+    :func:`analogs.stages.diagnostics.find_closed_lows`), drawn with a legend.
     """
     if "z500" not in fields:
         raise AnalogsInputError("target_map needs a 'z500' field (500 hPa height, gpm)")
@@ -299,6 +326,9 @@ def target_map(fields: xr.Dataset, *, region=None, when="target", source=None,
     _height_contours(ax, fields["z500"])
     _map_axes(ax, fields["lat"].values, fields["lon"].values, region, coastlines=coastlines,
               land=land)
+    if marks is not None and len(marks):
+        _draw_marks(ax, marks)
+        ax.legend(handles=mark_handles(marks), loc="lower left", fontsize=7, framealpha=0.85)
     title = f"{when}: 500 hPa height (contours every {HEIGHT_INTERVAL_GPM:.0f} gpm)"
     if label:
         title += f"\nover {label.split(' (')[0]}; {_rich_line_text(rich)}"
@@ -310,7 +340,8 @@ def target_map(fields: xr.Dataset, *, region=None, when="target", source=None,
 
 
 def analog_panel(analog_fields: xr.Dataset, analogs: pd.DataFrame, events=None, *,
-                 region=None, title=None, columns=GRID_COLUMNS, land=None) -> Figure:
+                 region=None, title=None, columns=GRID_COLUMNS, land=None,
+                 marks=None) -> Figure:
     """Every analog day as a small map in a compact grid: height contours and that
     day's events by kind (distinct markers); rank, date, regime, distance and the
     table's event count (events in the outcome region) above each map.
@@ -326,6 +357,10 @@ def analog_panel(analog_fields: xr.Dataset, analogs: pd.DataFrame, events=None, 
     region : the outcome region, drawn on every map.
     title : the figure's title.
     columns : maps per row.
+    land : land fraction on (lat, lon), or the lines of :func:`land_lines`: the land-sea
+        boundary of every map, drawn as one collection.
+    marks : trough and ridge axes and closed lows as for :func:`target_map`, with a
+        ``panel`` column (position of the analog in ``analogs``).
     """
     if len(analogs) == 0:
         raise AnalogsInputError("analog_panel needs at least one analog row")
@@ -380,7 +415,6 @@ def analog_panel(analog_fields: xr.Dataset, analogs: pd.DataFrame, events=None, 
         graticule += [[(left, y + dy), (left + span_x, y + dy)] for y in ys]
         if outline is not None:
             regions.append(outline + (dx, dy))
-        _land_outline(ax, land, dx, dy, linewidth=0.6)
         if coastlines:
             clip = Rectangle((left, bottom), span_x, span_y, transform=ax.transData)
             for line in coastlines:
@@ -401,6 +435,13 @@ def analog_panel(analog_fields: xr.Dataset, analogs: pd.DataFrame, events=None, 
                         ha="right", va="center", color="0.3")
     ax.add_collection(LineCollection(graticule, colors="0.82", linewidths=0.4, zorder=0))
     ax.add_collection(LineCollection(frames, colors="0.2", linewidths=0.7, zorder=1))
+    _land_outline(ax, land, offsets, linewidth=0.7)
+    if marks is not None and len(marks):
+        panel = marks["panel"].to_numpy(dtype=int)
+        shift = np.array(offsets)[panel]
+        _draw_marks(ax, marks.assign(lon=marks["lon"] + shift[:, 0],
+                                     lat=marks["lat"] + shift[:, 1],
+                                     axis=marks["axis"] + 10000 * panel), small=True)
     if regions:
         ax.add_collection(LineCollection(regions, colors="black", linewidths=1.1,
                                          linestyles="--", zorder=4, label="region"))
@@ -418,20 +459,73 @@ def analog_panel(analog_fields: xr.Dataset, analogs: pd.DataFrame, events=None, 
                        marker=EVENT_MARKERS[k % len(EVENT_MARKERS)], s=9,
                        facecolor=_kind_colour(k, len(kinds)), edgecolor="black",
                        linewidths=0.3, label=kind, zorder=5)
-    if kinds:
-        handles = [ax.scatter([], [], marker=EVENT_MARKERS[k % len(EVENT_MARKERS)],
-                              facecolor=_kind_colour(k, len(kinds)), edgecolor="black",
-                              label=kind)
-                   for k, kind in enumerate(kinds)]
-        figure.legend(handles=handles, loc="lower center", ncols=len(kinds), fontsize=7,
+    handles = [ax.scatter([], [], marker=EVENT_MARKERS[k % len(EVENT_MARKERS)],
+                          facecolor=_kind_colour(k, len(kinds)), edgecolor="black",
+                          label=kind)
+               for k, kind in enumerate(kinds)] + mark_handles(marks)
+    if handles:
+        # Lifted above the bottom line, where the note on the land-sea boundary goes.
+        figure.legend(handles=handles, loc="lower center", ncols=len(handles), fontsize=7,
+                      bbox_to_anchor=(0.5, 0.14 / height),
                       title_fontsize=7, frameon=False,
-                      title="events of the day, anywhere on the map (convective day); "
-                            f"contours every {HEIGHT_INTERVAL_GPM:.0f} gpm")
+                      title="events of the day, anywhere on the map (convective day)"
+                            + ("; axes and lows of the 500 hPa height drawn" if marks is not None
+                               and len(marks) else "")
+                            + f"; contours every {HEIGHT_INTERVAL_GPM:.0f} gpm")
     if title:
         figure.suptitle(title, fontsize=9, y=1.0 - 0.08 / height)
     figure.panel_offsets = offsets  # degrees (lon, lat) each analog's map is shifted by
     _note_plain_axes(figure, coastlines, land)
     return figure
+
+
+#: How the synoptic marks are drawn (a white halo keeps them readable over any shading).
+MARK_STYLES = {
+    "trough": {"color": "#b2182b", "linestyle": (0, (5, 2.5)), "label": "trough axis"},
+    "ridge": {"color": "#2c5fa8", "linestyle": (0, (1.2, 1.8)), "label": "ridge axis"},
+    "low": {"color": "#b2182b", "label": "closed 500 hPa low (L)"},
+}
+
+
+def _draw_marks(ax, marks, *, small=False):
+    """Trough and ridge axes (lines of points with one ``axis`` number each) and the
+    centres of closed lows (an L) from a table with ``kind``, ``axis``, ``lat``,
+    ``lon``: one line collection per kind of axis."""
+    from matplotlib import patheffects
+    halo = [patheffects.withStroke(linewidth=(2.6 if small else 4.0), foreground="white")]
+    for kind in ("trough", "ridge"):
+        part = marks[marks["kind"] == kind]
+        lines = [group[["lon", "lat"]].to_numpy() for _, group in part.groupby("axis")]
+        if lines:
+            style = MARK_STYLES[kind]
+            collection = LineCollection(lines, colors=style["color"],
+                                        linestyles=[style["linestyle"]],
+                                        linewidths=1.1 if small else 2.0, zorder=6,
+                                        label=style["label"])
+            collection.set_path_effects(halo)
+            ax.add_collection(collection)
+    lows = marks[marks["kind"] == "low"]
+    for low in lows.itertuples(index=False):
+        ax.text(low.lon, low.lat, "L", color=MARK_STYLES["low"]["color"],
+                fontsize=7 if small else 13, fontweight="bold", ha="center", va="center",
+                zorder=7, path_effects=halo)
+
+
+def mark_handles(marks) -> list:
+    """Legend entries for the kinds present in ``marks``."""
+    from matplotlib.lines import Line2D
+    handles = []
+    present = set() if marks is None else set(marks["kind"])
+    for kind in ("trough", "ridge"):
+        if kind in present:
+            style = MARK_STYLES[kind]
+            handles.append(Line2D([], [], color=style["color"], linestyle=style["linestyle"],
+                                  linewidth=2.0, label=style["label"]))
+    if "low" in present:
+        handles.append(Line2D([], [], color=MARK_STYLES["low"]["color"], marker="$L$",
+                              linestyle="none", markersize=9,
+                              label=MARK_STYLES["low"]["label"]))
+    return handles
 
 
 def _kind_colour(index, n_kinds):

@@ -227,6 +227,18 @@ class AnalogStore:
         return self._grid
 
     @property
+    def land(self) -> xr.DataArray | None:
+        """Land fraction (0 sea to 1 land) on the store grid, from the land-sea mask the
+        build was given or found (``manifest["land_mask"]`` says which); None without
+        one. Read on first use: only maps draw it."""
+        if "_land" not in self.__dict__:
+            self._land = None
+            if self.manifest.get("land_mask"):
+                self._land = store_io.read_dataset(self.path / store_io.BASIS,
+                                                   group=store_io.LAND_GROUP)["land"]
+        return self._land
+
+    @property
     def days(self) -> pd.DatetimeIndex:
         """Calendar days of the archive (the convective days the fields describe)."""
         if "_days" not in self.__dict__:

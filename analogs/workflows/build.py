@@ -98,7 +98,7 @@ def build_store(paths, store, *, events=None, event_dates=P.event_dates.default,
                 variance=None, region=None, domain=None, hour=P.hour.default,
                 daily=P.daily.default, n_harmonics=P.n_harmonics.default,
                 solver=P.solver.default, field_weights=None, chunks=None,
-                index=P.index.default, scheduler=None, progress=True):
+                index=P.index.default, scheduler=None, land_mask=None, progress=True):
     """Build (or rebuild) the store at ``store`` from archive ``paths``.
 
     Parameters
@@ -130,6 +130,11 @@ def build_store(paths, store, *, events=None, event_dates=P.event_dates.default,
     index : ``"auto" | "flat" | "hnsw"``, the faiss index rebuilt at every load
         (approximate HNSW above 500,000 days with ``"auto"``); for HNSW the recall@20
         against exact search, with the season window applied, is measured and stored.
+    land_mask : path of a static land-sea mask file (CF ``land_binary_mask`` /
+        ``land_area_fraction``, :mod:`analogs.stages.landmask`); default: a mask
+        variable found in the archive files, if any. Regridded to the store grid and
+        kept in ``basis.nc`` (group ``/land``) to draw the land-sea boundary on maps;
+        never a predictor.
 
     Returns
     -------
@@ -151,6 +156,10 @@ def build_store(paths, store, *, events=None, event_dates=P.event_dates.default,
     if events_period is not None:
         parse_period(events_period, "events_period", owner)  # refused before any work
     store_io.check_new_store_path(store)  # a file, a folder of other files, inside a store
+    mask = None
+    if land_mask is not None:  # a bad mask file is refused before any work
+        from analogs.stages.landmask import read_land_mask
+        mask = read_land_mask(P.land_mask.check(land_mask, owner))
     # The region is parsed here and checked against the archive's grid in _build.
     with renamed_errors(owner, "region"):
         region = Region.parse(region) if isinstance(region, str) else (region or Region.whole())
@@ -164,7 +173,7 @@ def build_store(paths, store, *, events=None, event_dates=P.event_dates.default,
                           variance=variance, region=region, domain=domain, hour=hour,
                           daily=daily, n_harmonics=n_harmonics, solver=solver,
                           field_weights=field_weights, chunks=chunks, index=index,
-                          progress=progress, reads_done=guard.check_unchanged)
+                          progress=progress, reads_done=guard.check_unchanged, mask=mask)
 
 
 #: A dask scheduler address: an optional scheme, a host name, IPv4 or [IPv6] address,
@@ -224,7 +233,7 @@ def _dask_scheduler(address):
 def _build(paths, store, *, events, event_dates, events_period, fields, n_modes, variance,
            region, domain, hour, daily,
            n_harmonics, solver, field_weights, chunks, index, progress,
-           reads_done=lambda: None):
+           reads_done=lambda: None, mask=None):
     from analogs.stages.regimes import tag_days
     from analogs.stages.sources import open_archive
     archive = open_archive(paths, fields=fields, region=domain, hour=hour, daily=daily,
@@ -233,6 +242,7 @@ def _build(paths, store, *, events, event_dates, events_period, fields, n_modes,
         raise AnalogsInputError(
             f"the archive has {archive.sizes['time']} days; at least 3 are needed to build a store")
     region.require_grid_points(archive["lat"].values, archive["lon"].values)
+    land, land_entry = _land_on_store_grid(mask, paths, archive)
     event_table, n_outside = (None, 0) if events is None else load_events(
         events, archive["lat"].values, archive["lon"].values, dates=event_dates)
 
@@ -290,6 +300,7 @@ def _build(paths, store, *, events, event_dates, events_period, fields, n_modes,
             "reconstruction_error": error_summary(errors),
         },
         "events": events_entry,
+        "land_mask": land_entry,
         "skill": skill,
         "index": index_info,
     }
@@ -306,6 +317,9 @@ def _build(paths, store, *, events, event_dates, events_period, fields, n_modes,
         store_io.write_dataset(climatology.to_dataset(), staged / store_io.BASIS,
                                group="climatology", mode="a")
         store_io.write_dataset(eof.to_dataset(), staged / store_io.BASIS, group="eof", mode="a")
+        if land is not None:
+            store_io.write_dataset(land.to_dataset(name="land"), staged / store_io.BASIS,
+                                   group=store_io.LAND_GROUP, mode="a")
         scores = xr.Dataset({"pcs": pcs.astype("float64")},
                             attrs={"title": "analogs store principal components",
                                    "Conventions": "CF-1.8"})
@@ -361,6 +375,26 @@ def _scratch_files(store, archive, *, chunked: bool, progress: bool):
     finally:
         made.clear()
         shutil.rmtree(folder, ignore_errors=True)
+def _land_on_store_grid(mask, paths, archive):
+    """(land fraction on the archive's grid, manifest entry) from the ``--land-mask``
+    file read before (``mask``: (DataArray, source)), else from a mask variable in the
+    archive files; (None, None) when there is none."""
+    from analogs.stages.landmask import land_mask_in_archive, land_on_grid
+    if mask is None:
+        mask = land_mask_in_archive(paths)
+        origin = "archive file"
+    else:
+        origin = "given file (land_mask)"
+    values, source = mask
+    if values is None:
+        return None, None
+    land = land_on_grid(values, archive["lat"].values, archive["lon"].values,
+                        f"{source['path']}, variable {source['variable']!r}")
+    entry = {**source, "path": str(Path(source["path"]).resolve()), "origin": origin,
+             "regridding": "bilinear to the store grid (as fields)",
+             "land_share": round(float(np.nanmean(land.values >= 0.5)), 4),
+             "use": "drawing the land-sea boundary on maps only; never a predictor"}
+    return land.astype("float32"), entry
 
 
 def _index_info(kind, vectors, times) -> dict:

@@ -133,8 +133,10 @@ def run_demo(out, *, years=P.years.default, seed=P.seed.default, replace=False,
     written = reanalysis_demo.write_archive(out, years=years, seed=seed, progress=progress)
     files = sorted(Path(p) for p in [*written["zg"], *written["hus"]])
     region = Region.box(*reanalysis_demo.CENTRAL_REGION)
+    # The demo continent's land-sea mask, when reanalysis_demo writes one (maps only).
+    mask = out / "archive" / "static" / "land_sea_mask.nc"
     store = build_store(files, out / "store", events=out / "events.csv", region=region,
-                        progress=progress)
+                        land_mask=mask if mask.is_file() else None, progress=progress)
     write_tags(store, out / "tags.csv")  # with its CSVW sidecar of column units
     target = _pick_target(store.tags)
     archive = open_archive(files, progress=False)

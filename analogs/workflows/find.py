@@ -34,6 +34,7 @@ from __future__ import annotations
 
 import os
 import warnings
+from pathlib import Path
 import weakref
 from dataclasses import dataclass
 from dataclasses import replace as dataclasses_replace
@@ -1023,6 +1024,90 @@ def day_fields(store, rows) -> xr.Dataset:
     return fields
 
 
+def archive_day_fields(store, rows) -> tuple[xr.Dataset | None, str]:
+    """The archive's own fields of archive ``rows`` on the store grid, shaped as
+    :func:`day_fields`, read from the archive files the manifest lists when every one
+    is still at its recorded path with its recorded size; else (None, why not).
+
+    Only the days asked for are read: each file's times are looked at first (its
+    header), then the files holding some of the days are read over the span of those
+    days, through the archive reader (:func:`analogs.stages.sources.open_target`, one
+    way of recognising variables and units) and put on the store grid
+    (:func:`on_store_grid`). A store of daily means (``--daily mean``) keeps the
+    reconstruction: its days are not single times of the files."""
+    from analogs.workflows.build import provenance
+    rows = np.atleast_1d(np.asarray(rows, dtype=int))
+    if store.manifest["config"].get("daily", "instant") != "instant":
+        return None, "the store holds daily means"
+    inputs = store.manifest["archive"].get("inputs") or []
+    for entry in inputs:
+        path = Path(entry["path"])
+        if not path.exists():
+            return None, f"archive file {path} is no longer at its recorded path"
+        if provenance([path])[0]["bytes"] != entry["bytes"]:
+            return None, f"archive file {path} changed size since the build"
+    wanted = pd.DatetimeIndex(store.times[rows])
+    found, fields_of = {}, {}  # fields_of: the fields files of the same variables held
+    try:
+        from analogs.stages.sources import open_target
+        for entry in inputs:
+            held, variables = _times_held(entry["path"])
+            if held is None:
+                continue
+            inside = wanted[wanted.isin(held)]
+            if inside.empty:
+                continue
+            span = f"{inside.min().isoformat()}/{inside.max().isoformat()}"
+            known = fields_of.get(variables)
+            for name in store.fields if known is None else known:
+                try:
+                    part = open_target(entry["path"], time=span, fields=[name])
+                except AnalogsInputError:
+                    continue  # the file holds another field
+                if known is None:
+                    fields_of.setdefault(variables, []).append(name)
+                found.setdefault(name, []).append(
+                    part[name].sel(time=part["time"].isin(inside.values)))
+    except (AnalogsInputError, OSError, ValueError) as error:
+        return None, f"the archive could not be read ({' '.join(str(error).split())[:120]})"
+    found = {name: xr.concat(parts, dim="time").drop_duplicates("time")
+             for name, parts in found.items()}
+    missing = [name for name in store.fields if name not in found
+               or not wanted.isin(found[name]["time"].values).all()]
+    if missing:
+        return None, f"the archive files do not hold every day drawn ({', '.join(missing)})"
+    merged = xr.Dataset({name: found[name].sel(time=wanted.values) for name in store.fields})
+    fields = on_store_grid(store, merged)
+    lat, lon = store.grid
+    out = xr.Dataset(coords={"time": ("analog", wanted.values), "lat": lat, "lon": lon})
+    for name in store.fields:
+        out[name] = xr.DataArray(fields[name].transpose("time", "lat", "lon").values,
+                                 dims=("analog", "lat", "lon"), attrs=dict(fields[name].attrs))
+    return out, "archive"
+
+
+def _times_held(path) -> tuple[pd.DatetimeIndex | None, frozenset]:
+    """The times and variable names of an archive file, read from its header with
+    netCDF4 (a tenth of what opening it with xarray costs); no times when it has no
+    time axis that decodes (then the file is not read for the maps)."""
+    import netCDF4
+    from analogs.workflows.files import NETCDF_LOCK
+    try:
+        with NETCDF_LOCK, netCDF4.Dataset(path) as dataset:
+            for name in ("time", "valid_time", "t"):
+                if name in dataset.variables and dataset.variables[name].ndim == 1:
+                    var = dataset.variables[name]
+                    dates = netCDF4.num2date(var[:], var.units,
+                                             getattr(var, "calendar", "standard"),
+                                             only_use_cftime_datetimes=False,
+                                             only_use_python_datetimes=True)
+                    return (pd.DatetimeIndex(pd.to_datetime([d.isoformat() for d in dates])),
+                            frozenset(dataset.variables))
+    except (OSError, ValueError, AttributeError, TypeError):
+        pass
+    return None, frozenset()
+
+
 def _place(values, lat, lon) -> str:
     """Where the largest of ``values`` (lat, lon) is, in degrees N/S and W/E."""
     from analogs.presentation.figures import degrees_east_label, degrees_north_label
@@ -1043,15 +1128,67 @@ def _alt_target(target, when, source) -> str:
     return text + "; the outcome region dashed."
 
 
+def _marks(target, gathered):
+    """Trough and ridge axes and closed lows (:func:`analogs.stages.features.synoptic_marks`)
+    of the target (or None) and of the analog days, found in one pass over the fields
+    the maps draw."""
+    from analogs.stages.features import synoptic_marks
+    heights = [f["z500"].drop_vars("time", errors="ignore").expand_dims("analog")
+               for f in ([target] if target is not None else [])]
+    if gathered is not None:
+        heights.append(gathered["z500"].drop_vars(["time", "analog"], errors="ignore"))
+    if not heights:
+        return None, None
+    marks = synoptic_marks(xr.concat(heights, dim="analog", coords="minimal",
+                                     compat="override"), dim="analog")
+    if target is None:
+        return None, marks
+    target_marks = marks[marks["panel"] == 0]
+    return target_marks, marks[marks["panel"] > 0].assign(panel=lambda m: m["panel"] - 1)
+
+
+def _alt_marks(marks) -> str:
+    """Alt text of the synoptic marks of one map."""
+    if marks is None or not len(marks):
+        return " No trough or ridge axis and no closed low found."
+    from analogs.presentation.figures import degrees_east_label, degrees_north_label
+    parts = []
+    for kind, words in (("trough", "trough axis"), ("ridge", "ridge axis")):
+        lines = marks[marks["kind"] == kind].groupby("axis")
+        for _, line in lines:
+            south, north = line.iloc[0], line.iloc[-1]
+            parts.append(f"{words} from {degrees_north_label(round(south.lat))} "
+                         f"{degrees_east_label(round(south.lon))} to "
+                         f"{degrees_north_label(round(north.lat))} "
+                         f"{degrees_east_label(round(north.lon))}")
+    for low in marks[marks["kind"] == "low"].itertuples(index=False):
+        parts.append(f"closed low (L) at {degrees_north_label(round(low.lat))} "
+                     f"{degrees_east_label(round(low.lon))}")
+    return " Marked: " + "; ".join(parts) + "."
+
+
+def _short(source) -> str:
+    """A figure title's account of where fields came from, without the reason."""
+    return source.split(", as ")[0]
+
+
+def _alt_land(land) -> str:
+    return " The land-sea boundary from the archive's mask is drawn in brown." if land else ""
+
+
 def report_figures(store, result: FindResult, *, maps=None, hindcast=None,
                    n_panel=None, tiles=None) -> list[tuple[str, bytes, str]]:
     """Figures of one query, as (caption, PNG bytes, alt text describing the content)
     for :func:`analogs.presentation.report.find_html`.
 
     Everything is gathered once: the target's fields (``result.target_fields`` for a
-    field target; for a date target its store reconstruction), the analog days' fields
-    (:func:`day_fields`: one climatology evaluation and one EOF reconstruction for the
-    target day and all analog days together), their mean, the events of the days drawn
+    field target), the archive days' fields (a date target and the analog days): the
+    archive's own fields when its files are still where the build read them
+    (:func:`archive_day_fields`, only those days read), else the store's
+    reconstruction (:func:`day_fields`: one climatology evaluation and one EOF
+    reconstruction for all the days together), said in every title and alt text;
+    their mean, their trough and ridge axes and closed lows (:func:`_marks`), the
+    land-sea boundary of the store's mask (traced once), the events of the days drawn
     and the outcome maps (``maps`` when already computed, e.g. for ``--maps``).
     Every analog is drawn in the grid unless ``n_panel`` limits it.
     ``hindcast``: optional DataFrame of :func:`analogs.stages.hindcast.leave_one_year_out`
@@ -1075,16 +1212,27 @@ def report_figures(store, result: FindResult, *, maps=None, hindcast=None,
             target = target.mean("member", keep_attrs=True)
     elif result.target.get("date"):
         analog_rows = np.concatenate([[day_row(store, result.target["date"])], analog_rows])
-        source = f"climatology + anomaly on {store.eof.n_modes_} kept EOFs"
-    gathered = day_fields(store, analog_rows) if analog_rows.size else None
-    if target is None and source is not None:
+    gathered, days_source = None, None
+    if analog_rows.size:
+        gathered, why_not = archive_day_fields(store, analog_rows)
+        days_source = "the archive's fields"
+        if gathered is None:
+            gathered = day_fields(store, analog_rows)
+            days_source = (f"EOF reconstruction: climatology + anomaly on "
+                           f"{store.eof.n_modes_} kept EOFs, as {why_not}")
+    if target is None and result.target.get("date"):
+        source = days_source
         target, gathered = gathered.isel(analog=0), gathered.isel(analog=slice(1, None))
+    land = draw.land_lines(store.land)  # traced once for every map
+    target_marks, analog_marks = _marks(target, gathered)
     figures = []
     if target is not None:
         figures.append((f"Target {when}: 500 hPa height and moisture ({source})",
                         _later(draw.target_map, target, region=region,
-                               when=f"Target {when}", source=source),
-                        _alt_target(target, f"target {when}", source)))
+                               when=f"Target {when}", source=source, land=land,
+                               marks=target_marks),
+                        _alt_target(target, f"target {when}", source)
+                        + _alt_marks(target_marks) + _alt_land(land)))
     if len(analogs):
         gathered = gathered.assign_coords(analog=analogs["rank"].to_numpy())
         shown = analogs if n_panel is None else analogs.head(n_panel)
@@ -1092,16 +1240,21 @@ def report_figures(store, result: FindResult, *, maps=None, hindcast=None,
         events = None
         if store.events is not None:
             events = store.events[store.events["day"].isin(days)]
-        alt = (f"Grid of {len(shown)} small maps of 500 hPa height, one per analog day in "
+        alt = (f"Grid of {len(shown)} small maps of 500 hPa height ({days_source}), one per "
+               "analog day in "
                "rank order, with that day's events marked by kind: "
                + "; ".join(f"#{a.rank} {a.date} {a.regime}, distance {a.distance:.2f}, "
                            f"{int(a.events_total)} events in region"
-                           for a in shown.itertuples(index=False)) + ".")
+                           for a in shown.itertuples(index=False)) + "."
+               + (" Each day's trough axes (red dashed), ridge axes (blue dotted) and closed "
+                  "lows (L) of the 500 hPa height are marked." if len(analog_marks) else "")
+               + _alt_land(land))
         figures.append(("The closest past days and their events",
                         _later(draw.analog_panel, gathered.isel(analog=slice(0, len(shown))),
-                               shown, events, region=region,
+                               shown, events, region=region, land=land,
+                               marks=analog_marks[analog_marks["panel"] < len(shown)],
                                title=f"Closest past days to {when}: 500 hPa height "
-                                     "(climatology + EOF reconstruction)"),
+                                     f"({_short(days_source)})"),
                         alt))
         if target is not None:
             mean = gathered.mean("analog", keep_attrs=True).drop_vars("time", errors="ignore")
@@ -1110,11 +1263,11 @@ def report_figures(store, result: FindResult, *, maps=None, hindcast=None,
             lat, lon = mean["lat"].values, mean["lon"].values
             figures.append(("Mean of the analog days and its difference from the target",
                             _later(draw.composite_difference, mean, target, region=region,
+                                   land=land,
                                    title=f"Analog days and target {when} (analogs: "
-                                         f"climatology + anomaly on {store.eof.n_modes_} kept "
-                                         f"EOFs; target: {source})"),
+                                         f"{_short(days_source)}; target: {_short(source)})"),
                             f"Two maps. Left: mean 500 hPa height and moisture of the "
-                            f"{len(analogs)} analog days. Right: that mean minus the target's "
+                            f"{len(analogs)} analog days ({_short(days_source)}). Right: that mean minus the target's "
                             f"height, shaded blue to red from {np.nanmin(difference):.0f} to "
                             f"{np.nanmax(difference):+.0f} gpm (most above the target near "
                             f"{_place(difference, lat, lon)}, most below near "
@@ -1131,7 +1284,8 @@ def report_figures(store, result: FindResult, *, maps=None, hindcast=None,
                    + (f", largest near {_place(maps['report_density'].values, lat, lon)}"
                       if nonzero else "") + "; zero left blank on both.")
             figures.append(("Where the analog days had events nearby",
-                            _later(draw.probability_map, maps, region=region, when=when), alt))
+                            _later(draw.probability_map, maps, region=region, when=when,
+                                   land=land), alt))
     if hindcast is not None:
         from analogs.stages.scores import reliability_table, roc_curve_points
         p = hindcast["forecast"].to_numpy()

@@ -58,6 +58,9 @@ MODELS = "models.nc"
 #: Events in the store's region on every day, per kind (what every query counts; written
 #: at build and update from events.parquet, read back instead of counted per process).
 COUNTS = "counts.parquet"
+#: Group of ``basis.nc`` holding the land fraction on the store grid (variable ``land``),
+#: when the build was given or found a land-sea mask (only to draw maps).
+LAND_GROUP = "land"
 #: Seconds a second writer waits for the lock before giving up (default).
 LOCK_TIMEOUT = 600.0
 #: Environment variable that overrides :data:`LOCK_TIMEOUT` (seconds).

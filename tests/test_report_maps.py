@@ -1,0 +1,70 @@
+"""The report's maps draw the archive's own fields when its files are where the build read
+them, else the store's EOF reconstruction, and say which (titles, alt text); the
+land-sea boundary comes from the store's mask.
+
+References: the demo archive files read directly with xarray (``zg`` in m, CF
+geopotential_height at plev 50000 Pa: metres of geopotential height are gpm); the
+store's own reconstruction (climatology + EOF anomaly) for the fallback."""
+
+import copy
+
+import numpy as np
+import pytest
+import xarray as xr
+
+from analogs.workflows.find import archive_day_fields, day_fields, report_figures
+
+
+@pytest.fixture(scope="module")
+def query(demo_store):
+    tags = demo_store.tags
+    summer = tags[(tags.index.year == tags.index.year.min() + 1) & tags.index.month.isin([7])]
+    return demo_store.find(date=str(summer.index[10].date()), top=8)
+
+
+def with_inputs(store, change):
+    """A copy of ``store`` whose manifest's archive inputs are changed by ``change``."""
+    other = copy.copy(store)
+    other.manifest = copy.deepcopy(store.manifest)
+    change(other.manifest["archive"]["inputs"])
+    return other
+
+
+def test_archive_fields_are_the_files_values(demo_store, demo_dir, query):
+    row = demo_store.day_row(query.target["date"])
+    rows = [row, *query.analogs["row"].head(3)]
+    fields, source = archive_day_fields(demo_store, rows)
+    assert source == "archive"
+    for k, day in enumerate(demo_store.times[rows]):
+        with xr.open_dataset(demo_dir / "archive" / f"zg500_{day.year}.nc") as zg:
+            expected = zg["zg"].sel(time=day, plev=50000.0).values
+        np.testing.assert_allclose(fields["z500"].values[k], expected, rtol=1e-6)
+    assert np.array_equal(fields["time"].values, demo_store.times[rows].values)
+
+
+def test_report_says_where_the_fields_come_from(demo_store, query):
+    figures = report_figures(demo_store, query)
+    (caption, _, alt), grid = figures[0], figures[1]
+    assert "the archive's fields" in caption and "the archive's fields" in alt
+    assert "the archive's fields" in grid[2]
+    moved = with_inputs(demo_store, lambda inputs: inputs[0].update(
+        path=inputs[0]["path"] + ".moved"))
+    figures = report_figures(moved, query)
+    (caption, _, alt), grid = figures[0], figures[1]
+    assert "EOF reconstruction" in caption and "no longer at its recorded path" in caption
+    assert "EOF reconstruction" in alt and "EOF reconstruction" in grid[2]
+
+
+@pytest.mark.parametrize("change, reason", [
+    (lambda inputs: inputs[-1].update(bytes=inputs[-1]["bytes"] + 1), "changed size"),
+    (lambda inputs: inputs[0].update(path="/nonexistent/zg.nc"), "no longer at its recorded"),
+])
+def test_changed_archive_falls_back_to_the_reconstruction(demo_store, query, change, reason):
+    rows = query.analogs["row"].to_numpy()
+    fields, why = archive_day_fields(with_inputs(demo_store, change), rows)
+    assert fields is None and reason in why
+    # What is drawn instead: climatology + the kept EOFs' anomaly of those days.
+    climate = demo_store.climatology.predict(demo_store.times[rows])["z500"]
+    anomaly = demo_store.eof.reconstruct(demo_store.pcs.isel(time=rows))["z500"]
+    np.testing.assert_allclose(day_fields(demo_store, rows)["z500"].values,
+                               climate.values + anomaly.transpose("time", "lat", "lon").values)
