@@ -104,6 +104,7 @@ def test_an_update_of_the_reports_measures_again(store_copy, demo_dir, tmp_path)
     the reports, the kept entry no longer answers, the skill is measured again on the new
     reports, and the stale entry is dropped from the store."""
     first = _find_skill(store_copy, "--region", POINT)
+    assert first["measured"] and first["source"] != "build"
     from analogs.stages.outcomes import convective_day
     events = pd.read_csv(demo_dir / "events.csv")
     year = convective_day(pd.to_datetime(events["time"], utc=True)).dt.year

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import json
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import numpy as np
 import pandas as pd
@@ -14,6 +15,9 @@ from analogs.stages.index import AnalogIndex
 from analogs.stages.outcomes import EVENT_COLUMNS, Region
 from analogs.workflows import find as find_workflow
 from analogs.workflows import store as store_io
+
+if TYPE_CHECKING:
+    import xarray as xr
 
 # The climatology and EOFs (xarray, dask) are read from basis.nc when first used: a query
 # of an archive date reads only the PCs, tags, events and the stored daily counts.

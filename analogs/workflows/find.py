@@ -34,7 +34,6 @@ from __future__ import annotations
 
 import os
 import warnings
-from pathlib import Path
 import weakref
 from dataclasses import dataclass
 from dataclasses import replace as dataclasses_replace
