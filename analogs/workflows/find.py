@@ -1034,6 +1034,7 @@ def archive_day_fields(store, rows) -> tuple[xr.Dataset | None, str]:
     way of recognising variables and units) and put on the store grid
     (:func:`on_store_grid`). A store of daily means (``--daily mean``) keeps the
     reconstruction: its days are not single times of the files."""
+    import xarray as xr
     from analogs.workflows.build import provenance
     rows = np.atleast_1d(np.asarray(rows, dtype=int))
     if store.manifest["config"].get("daily", "instant") != "instant":
@@ -1131,6 +1132,8 @@ def _marks(target, gathered):
     """Trough and ridge axes and closed lows (:func:`analogs.stages.features.synoptic_marks`)
     of the target (or None) and of the analog days, found in one pass over the fields
     the maps draw."""
+    import xarray as xr
+
     from analogs.stages.features import synoptic_marks
     heights = [f["z500"].drop_vars("time", errors="ignore").expand_dims("analog")
                for f in ([target] if target is not None else [])]
