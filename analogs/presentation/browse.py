@@ -47,16 +47,22 @@ def panel_tiles(figure, png: bytes, lat, lon) -> list[bytes]:
     to_figure = ax.transData + figure.transFigure.inverted()
     lon0, lon1 = float(np.min(lon)), float(np.max(lon))
     lat0, lat1 = float(np.min(lat)), float(np.max(lat))
+    boxes = [to_figure.transform([(lon0 + dx, lat0 + dy), (lon1 + dx, lat1 + dy)])
+             for dx, dy in figure.panel_offsets]
+    # One tile size for every map (the panels are equal; rounding each box on its own
+    # gave tiles a pixel apart, which a page showing them in one frame should not).
+    tile_width = min(max(math.ceil((x1 - x0) * width) for (x0, _), (x1, _) in boxes)
+                     + 2 * TILE_MARGIN_PX, width)
+    tile_height = min(max(math.ceil((y1 - y0) * height) for (_, y0), (_, y1) in boxes)
+                      + 2 * TILE_MARGIN_PX, height)
     tiles = []
-    for dx, dy in figure.panel_offsets:
-        (x0, y0), (x1, y1) = to_figure.transform([(lon0 + dx, lat0 + dy),
-                                                  (lon1 + dx, lat1 + dy)])
-        box = (max(math.floor(x0 * width) - TILE_MARGIN_PX, 0),
-               max(math.floor((1.0 - y1) * height) - TILE_MARGIN_PX, 0),
-               min(math.ceil(x1 * width) + TILE_MARGIN_PX, width),
-               min(math.ceil((1.0 - y0) * height) + TILE_MARGIN_PX, height))
+    for (x0, _), (_, y1) in boxes:
+        left = min(max(math.floor(x0 * width) - TILE_MARGIN_PX, 0), width - tile_width)
+        top = min(max(math.floor((1.0 - y1) * height) - TILE_MARGIN_PX, 0),
+                  height - tile_height)
         buffer = io.BytesIO()
-        image.crop(box).save(buffer, format="PNG", compress_level=1)  # small; speed first
+        image.crop((left, top, left + tile_width, top + tile_height)).save(
+            buffer, format="PNG", compress_level=1)  # small; speed first
         tiles.append(buffer.getvalue())
     return tiles
 
