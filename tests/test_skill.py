@@ -192,7 +192,7 @@ def test_skill_line_is_the_skill_of_what_the_query_forecasts(demo_store, capsys)
     assert 0 < skill["base_rate"] < 1
     assert main(["find", "--store", str(demo_store.path), "--date", date]) == 0
     text = capsys.readouterr().out
-    assert f"base rate {100 * skill['base_rate']:.0f}% of days" in text
+    assert f"base rate {100 * skill['base_rate']:.0f}% of days (all year)" in text
     assert "90% range over resampled years" in text
     assert main(["find", "--store", str(demo_store.path), "--date", date, "--region",
                  "38,-95,40", "--skip-skill-hindcast"]) == 0

@@ -357,7 +357,7 @@ svg.bar{display:block;width:14em;height:.55em;margin:.15em 0}svg.bar .track{fill
 .controls[hidden]{display:none}.controls{display:flex;flex-wrap:wrap;gap:1em;align-items:center;margin:.4em 0}
 .controls select,.controls input{font:inherit;padding:.15em .3em}.controls input{width:5.5em}
 .browse{display:grid;grid-template-columns:minmax(0,1fr);gap:1.2em}
-.js .browse{grid-template-columns:minmax(0,1.15fr) minmax(0,1fr)}
+.js .browse{grid-template-columns:max-content minmax(18em,1fr)}
 table.analogs thead th{background:var(--soft);position:sticky;top:0}
 th button.sort{font:inherit;font-weight:600;background:none;border:0;padding:0;cursor:pointer;color:inherit}
 th[aria-sort=ascending] .arrow::after{content:" \\25B2"}th[aria-sort=descending] .arrow::after{content:" \\25BC"}

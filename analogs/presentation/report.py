@@ -47,7 +47,7 @@ def skill_line(skill) -> str:
             f"{skill['brier_skill_score']:.2f} vs season climatology (0 = no better, 1 = "
             f"perfect; 90% range over resampled years {lo:.2f} to {hi:.2f})")
     if skill.get("base_rate") is not None:
-        text += f", base rate {_percent(skill['base_rate'])} of days"
+        text += f", base rate {_percent(skill['base_rate'])} of days (all year)"
     text += f", ROC area {skill['roc_auc']:.2f}"
     if skill.get("month_brier_skill_score") is not None:
         text += f"; in month {skill['month']}: {skill['month_brier_skill_score']:.2f}"
@@ -55,7 +55,7 @@ def skill_line(skill) -> str:
             m_lo, m_hi = skill["month_brier_skill_score_ci"]
             text += f" ({m_lo:.2f} to {m_hi:.2f})"
         if skill.get("month_base_rate") is not None:
-            text += f", base rate {_percent(skill['month_base_rate'])}"
+            text += f", base rate {_percent(skill['month_base_rate'])} of its days"
     return text
 
 
