@@ -245,3 +245,31 @@ def test_figure_png_of_a_slide_is_reused_verbatim(briefing, demo_store):
     assert figure_png(slides.regime_share_by_month(
         regime_frequency_by_month(season_tags(demo_store.tags, MAY_TO_SEPTEMBER)),
         season="May-Sep")) == png
+
+
+def test_composites_from_the_archive_are_the_archive_days_means(demo_store, demo_files,
+                                                               tmp_path):
+    """With the archive at hand (`climatology --archive`), a regime's mean 500 hPa height
+    is the plain mean of the archive's own heights on its season days (climatology +
+    mean anomaly = mean of the fields: the identity mean(c) + mean(x - c) = mean(x)).
+    Reference: the archive files read here with xarray, not through the tool's reader."""
+    out = tmp_path / "brief"
+    build_briefing(demo_store, out, months="5-9", files=demo_files, progress=False)
+    composites = xr.open_dataset(out / "regime_composites.nc").load()
+    heights = xr.open_mfdataset([f for f in demo_files if "zg" in f.name],
+                                combine="by_coords")["zg"].squeeze("plev", drop=True)
+    tags = demo_store.tags
+    season = tags[tags.index.month.isin(range(5, 10))]
+    lat, lon = demo_store.grid
+    for regime in ("northwest_flow", "other"):
+        days = season.index[season["regime"].astype(str) == regime].normalize()
+        expected = heights.sel(time=heights["time"].dt.floor("D").isin(days.values)).mean(
+            "time").sel(lat=lat, lon=lon)
+        np.testing.assert_allclose(composites["z500_mean"].sel(regime=regime).values,
+                                   expected.values, rtol=0, atol=0.05)  # gpm, float32
+        assert int(composites["n_days"].sel(regime=regime)) == len(days)
+    # the composites and the example days are the archive's, and the page says so (the
+    # settings table, and the example days' alt text; html-escaped apostrophe)
+    page = (out / "index.html").read_text()
+    assert "archive anomalies (daily climatology removed)" in page
+    assert "moisture (the archive&#x27;s fields on the store grid)" in page

@@ -636,7 +636,8 @@ def example_day_gallery(fields: xr.Dataset, examples: pd.DataFrame, events=None,
                     + (f" [{source}]" if source else ""), fontsize=10, x=0.4)
     _note_plain_axes(figure, coastlines)
     figure.alt_text = ("Example days, one per regime and period, each a map of height and "
-                       "moisture with the day's reports: " + "; ".join(described) + ".")
+                       "moisture" + (f" ({source})" if source else "")
+                       + " with the day's reports: " + "; ".join(described) + ".")
     return figure
 
 
