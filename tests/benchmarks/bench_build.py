@@ -28,76 +28,32 @@ from __future__ import annotations
 
 import argparse
 import json
-import os
-import shutil
 import statistics
-import subprocess
-import sys
 import tempfile
 import time
 from pathlib import Path
 
 import numpy as np
 
+import bench_scale as scale
+from bench_scale import archive_files, load_average, peak_rss_mb
+
 CASES = {
     "y40_g1": {"years": 40, "grid": 1.0, "domain": None},
     "y10_g025": {"years": 10, "grid": 0.25, "domain": [20.0, 54.75, -130.0, -60.25]},
 }
 CHUNK_DAYS = 365
-START_YEAR = 1981
-SEED = 0
 N_MODES, N_OVERSAMPLES, N_POWER_ITER = 20, 20, 2
 
 
-def peak_rss_mb() -> float:
-    """Peak resident memory of this process (VmHWM), MB."""
-    with open("/proc/self/status") as status:
-        for line in status:
-            if line.startswith("VmHWM:"):
-                return int(line.split()[1]) / 1024.0
-    import resource
-
-    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
-
-
 def run_child(task: str, spec: dict) -> dict:
-    """Run ``task`` in a fresh interpreter; return the JSON of its last stdout line."""
-    command = [sys.executable, str(Path(__file__).resolve()), "--child", task,
-               "--spec", json.dumps(spec)]
-    done = subprocess.run(command, capture_output=True, text=True)
-    if done.returncode != 0:
-        lines = done.stderr.strip().splitlines()
-        return {"error": lines[-1] if lines else f"exit status {done.returncode}"}
-    return json.loads(done.stdout.strip().splitlines()[-1])
-
-
-def archive_files(case_dir: Path) -> list[str]:
-    return [str(f) for f in sorted((case_dir / "archive").glob("*.nc"))]
+    """Run ``task`` of this script in a fresh interpreter (bench_scale's runner)."""
+    return scale.run_child(task, spec, script=__file__)
 
 
 def generate(case: str, out: Path) -> dict:
     """Write the archive of ``case`` under ``out/case`` unless the same one is there."""
-    import reanalysis_demo
-
-    settings = CASES[case]
-    case_dir = out / case
-    record = case_dir / "generation.json"
-    wanted = {"years": settings["years"], "grid": settings["grid"], "seed": SEED,
-              "start_year": START_YEAR, "domain": settings["domain"]}
-    if record.exists():
-        recorded = json.loads(record.read_text())
-        if ({k: recorded.get(k) for k in wanted} == wanted
-                and len(archive_files(case_dir)) == 2 * settings["years"]):
-            return {"generate_s": round(recorded["generate_s"], 1), "reused": True}
-    if case_dir.exists():
-        shutil.rmtree(case_dir)
-    options = {"domain": tuple(settings["domain"])} if settings["domain"] else {}
-    started = time.perf_counter()
-    reanalysis_demo.write_archive(case_dir, settings["years"], start_year=START_YEAR,
-                                  grid=settings["grid"], seed=SEED, progress=False, **options)
-    elapsed = time.perf_counter() - started
-    record.write_text(json.dumps({**wanted, "generate_s": elapsed}))
-    return {"generate_s": round(elapsed, 1), "reused": False}
+    return scale.generate_archive(CASES[case], out / case)
 
 
 # ----------------------------------------------------------------------- child tasks
@@ -242,12 +198,12 @@ def main(argv=None):
     args.out.mkdir(parents=True, exist_ok=True)
     cases = ([] if args.only_quarter else ["y40_g1"]) + (
         ["y10_g025"] if args.quarter or args.only_quarter else [])
-    results = {"load_average_start": [round(x, 2) for x in os.getloadavg()], "cases": []}
+    results = {"load_average_start": load_average(), "cases": []}
     for case in cases:
         result = bench_case(case, args.out, args)
         print_case(result)
         results["cases"].append(result)
-    results["load_average_end"] = [round(x, 2) for x in os.getloadavg()]
+    results["load_average_end"] = load_average()
     print(f"\nload average: start {results['load_average_start']}, "
           f"end {results['load_average_end']}")
     text = json.dumps(results, indent=2)

@@ -77,9 +77,10 @@ def load_average() -> list[float]:
     return [round(x, 2) for x in os.getloadavg()]
 
 
-def run_child(task: str, spec: dict) -> dict:
-    """Run ``task`` in a fresh interpreter; return the JSON of its last stdout line."""
-    command = [sys.executable, str(Path(__file__).resolve()), "--child", task,
+def run_child(task: str, spec: dict, script=__file__) -> dict:
+    """Run ``task`` of benchmark ``script`` (its ``--child`` option) in a fresh
+    interpreter; return the JSON of its last stdout line."""
+    command = [sys.executable, str(Path(script).resolve()), "--child", task,
                "--spec", json.dumps(spec)]
     done = subprocess.run(command, capture_output=True, text=True)
     if done.returncode != 0:
@@ -98,23 +99,27 @@ def archive_files(size_dir: Path, years=None) -> list[str]:
 
 def generate(size: str, out: Path) -> dict:
     """Write the archive of ``size`` under ``out/size`` unless the same one is there."""
+    return generate_archive(SIZES[size], out / size)
+
+
+def generate_archive(settings: dict, case_dir: Path) -> dict:
+    """Write a demo archive of ``settings`` (years, grid, domain) into ``case_dir``
+    unless the same one is there (its ``generation.json`` records the settings)."""
     import reanalysis_demo
 
-    settings = SIZES[size]
-    size_dir = out / size
-    record = size_dir / "generation.json"
+    record = case_dir / "generation.json"
     wanted = {"years": settings["years"], "grid": settings["grid"], "seed": SEED,
               "start_year": START_YEAR, "domain": settings["domain"]}
     if record.exists():
         recorded = json.loads(record.read_text())
         if {k: recorded.get(k) for k in wanted} == wanted and \
-                len(archive_files(size_dir)) == 2 * settings["years"]:
+                len(archive_files(case_dir)) == 2 * settings["years"]:
             return {"generate_s": round(recorded["generate_s"], 1), "reused": True}
-    if size_dir.exists():
-        shutil.rmtree(size_dir)
+    if case_dir.exists():
+        shutil.rmtree(case_dir)
     options = {"domain": tuple(settings["domain"])} if settings["domain"] else {}
     started = time.perf_counter()
-    reanalysis_demo.write_archive(size_dir, settings["years"], start_year=START_YEAR,
+    reanalysis_demo.write_archive(case_dir, settings["years"], start_year=START_YEAR,
                                   grid=settings["grid"], seed=SEED, progress=False, **options)
     elapsed = time.perf_counter() - started
     record.write_text(json.dumps({**wanted, "generate_s": elapsed}))
