@@ -31,6 +31,11 @@ def _percent(value) -> str:
     return f"{100 * value:.1f}%" if value < 0.1 else f"{100 * value:.0f}%"
 
 
+def _with_caution(lines) -> str:
+    """A terminal text's lines, then a blank line and the caution every output carries."""
+    return "\n".join([*lines, "", CAUTION])
+
+
 def skill_line(skill) -> str:
     """One line on what this query's guidance has been worth (cross-validated), or ''."""
     if not skill:
@@ -128,9 +133,7 @@ def find_text(result) -> str:
         skill = skill_line(outcomes.get("skill"))
         if skill:
             lines.append(skill)
-    lines.append("")
-    lines.append(CAUTION)
-    return "\n".join(lines)
+    return _with_caution(lines)
 
 
 def _kind_lines(outcomes) -> list[str]:
@@ -211,9 +214,7 @@ def ensemble_text(result) -> str:
         skill = skill_line(outcomes.get("skill"))
         if skill:
             lines.append(skill)
-    lines.append("")
-    lines.append(CAUTION)
-    return "\n".join(lines)
+    return _with_caution(lines)
 
 
 def valid_times_text(result) -> str:
@@ -251,9 +252,7 @@ def valid_times_text(result) -> str:
         lines.append("")
         lines.append("regime: the most frequent among the members (share of members); "
                      "members: range of the members' P(any event)")
-    lines.append("")
-    lines.append(CAUTION)
-    return "\n".join(lines)
+    return _with_caution(lines)
 
 
 def _skill_table(summary: dict) -> list[str]:
@@ -336,9 +335,7 @@ def verify_text(summary: dict) -> str:
                 f"{tuning['nested_gain']:+.3f}, non-nested {tuning['non_nested_gain']:+.3f}")
         for row in summary["tuning"]["table"][:5]:
             lines.append(f"  top {row['top']:>3}  modes {row['n_modes']:>3}  BSS {row['brier_skill_score']:.3f}")
-    lines.append("")
-    lines.append(CAUTION)
-    return "\n".join(lines)
+    return _with_caution(lines)
 
 
 def training_text(training: dict) -> str:

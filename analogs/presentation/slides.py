@@ -362,6 +362,13 @@ def _moisture_values(name, values):
     return values, "precipitable water (kg m-2)"
 
 
+def _height_to_width(lat, lon) -> float:
+    """Height over width of a latitude-longitude map drawn with equal distances along
+    both axes at its middle latitude (a degree of longitude is cos(lat) of one of
+    latitude)."""
+    return float(np.ptp(lat) / (np.ptp(lon) * np.cos(np.radians(np.mean(lat)))))
+
+
 def regime_composite_maps(composites: xr.Dataset, density: xr.DataArray | None = None, *,
                           region=None, season="", density_floor=0.05) -> Figure:
     """One row per regime with days: mean 500 hPa height anomaly (shaded, shared
@@ -383,7 +390,7 @@ def regime_composite_maps(composites: xr.Dataset, density: xr.DataArray | None =
     if density is not None:
         columns.append(("density", "reports per grid cell per 1000 days"))
     lat, lon = composites["lat"].values, composites["lon"].values
-    aspect = np.ptp(lat) / (np.ptp(lon) * np.cos(np.radians(np.mean(lat))))
+    aspect = _height_to_width(lat, lon)
     panel_w = 3.6
     width = panel_w * len(columns) + 0.8
     height = len(present) * (panel_w * aspect + 0.45) + 1.6
@@ -564,7 +571,7 @@ def example_day_gallery(fields: xr.Dataset, examples: pd.DataFrame, events=None,
     regimes = ordered_regimes(examples["regime"])
     periods = list(dict.fromkeys(examples.sort_values("date")["period"]))
     lat, lon = fields["lat"].values, fields["lon"].values
-    aspect = np.ptp(lat) / (np.ptp(lon) * np.cos(np.radians(np.mean(lat))))
+    aspect = _height_to_width(lat, lon)
     panel_w = 2.4
     width = panel_w * len(periods) + 1.0
     height = len(regimes) * (panel_w * aspect + 0.5) + 1.7
