@@ -369,6 +369,13 @@ PARAMETERS: dict[str, Parameter] = _table(
               "(weights 0.5, 0.25), so analogs share the pattern's evolution; a --field file "
               "must then hold those days too", kind="int", default=0, minimum=0, maximum=2,
               units="days", metavar="DAYS", default_text="0, the day alone"),
+    Parameter("metric", ("--metric",), "distance of the analog search: 'plain' is the "
+              "Euclidean distance of the PCs; 'event_weighted' scales each PC by how much it "
+              "says about the event forecast (reports of --kind in --region), from a logistic "
+              "regression on the archive's days (in verify, on the other years only), and "
+              "adds the regression's PC score as one more coordinate (predictor weighting, "
+              "Delle Monache et al. 2013)", kind="choice", default="plain",
+              choices=("plain", "event_weighted")),
     Parameter("weights", ("--weights",), "weights of the analogs in the outcome statistics",
               kind="choice", default="equal", choices=("equal", "inverse_distance", "gaussian")),
     Parameter("confidence", (), "level of the confidence intervals of the outcome "

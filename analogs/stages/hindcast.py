@@ -37,7 +37,8 @@ N_HARMONICS = 2
 
 def leave_one_year_out(pcs, times, observed, *, top=DEFAULT_TOP, window=DEFAULT_WINDOW,
                        separation=DEFAULT_SEPARATION, n_modes=None, method="analogs",
-                       months=None, seed=0, exclude=DEFAULT_EXCLUDE, progress=False):
+                       months=None, seed=0, exclude=DEFAULT_EXCLUDE,
+                       metric=P.metric.default, progress=False):
     """Forecast every day from analogs in the other years.
 
     The analogs of a day are those the live query would choose
@@ -58,6 +59,10 @@ def leave_one_year_out(pcs, times, observed, *, top=DEFAULT_TOP, window=DEFAULT_
     seed : random seed of the random baseline.
     exclude : days within this many days of the target (its own episode, across the turn
         of the year) are left out as well as its year; ``None`` leaves out the year only.
+    metric : ``"plain"`` (Euclidean distance of the PCs) or ``"event_weighted"``: the
+        days of each year are forecast in the space of
+        :func:`~analogs.stages.predictor_weights.fit_predictor_weights` fitted on the
+        days of the other years only (``observed`` of the held-out year never enters it).
 
     Returns
     -------
@@ -67,6 +72,7 @@ def leave_one_year_out(pcs, times, observed, *, top=DEFAULT_TOP, window=DEFAULT_
     """
     owner = "leave_one_year_out"
     check_choice(method, "method", owner, HINDCAST_METHODS)
+    metric = P.metric.check(metric, owner)
     pcs, times, top, window, separation = _checked(pcs, times, top, window, separation,
                                                    n_modes, owner, exclude)
     observed = np.asarray(observed, dtype=bool)
@@ -78,8 +84,12 @@ def leave_one_year_out(pcs, times, observed, *, top=DEFAULT_TOP, window=DEFAULT_
     forecast = np.full(len(times), np.nan)
     climatology = np.full(len(times), np.nan)
     n_analogs = np.zeros(len(times), dtype=int)
-    batches = _calendar_day_batches(times, targets, window, exclude, progress=progress)
-    if method == "analogs":
+    if method == "analogs" and metric == "event_weighted":
+        batches = _weighted_fold_batches(pcs, times, observed, targets, window, exclude,
+                                         top=top, separation=separation, progress=progress)
+    else:
+        batches = _calendar_day_batches(times, targets, window, exclude, progress=progress)
+    if method == "analogs" and metric == "plain":
         batches = _with_analogs(batches, pcs, times, top=top, separation=separation)
     for queries, season, other_years, chosen in batches:
         # Climatology of the days the target may take: their share of event days.
@@ -196,6 +206,23 @@ def _with_analogs(batches, pcs, times, *, top, separation):
         chosen = rank_many(index, times, pcs[queries], season, top=top,
                            separation=separation, restrict=other_years)
         yield queries, season, other_years, chosen
+
+
+def _weighted_fold_batches(pcs, times, observed, targets, window, exclude, *, top,
+                           separation, progress=False):
+    """The batches of :func:`_with_analogs`, year by year: the targets of year Y ranked
+    in the event-weighted space fitted on the days of the other years only
+    (:func:`~analogs.stages.predictor_weights.fit_predictor_weights`; nested, so no day
+    of Y, neither its fields nor its events, shapes the metric of its forecasts)."""
+    from analogs.stages.predictor_weights import fit_predictor_weights
+    years = times.year.to_numpy()
+    for year in tqdm(np.unique(years[targets]), desc="hindcast", unit="year",
+                     disable=not progress):
+        train = years != year
+        transform = fit_predictor_weights(pcs[train], times[train], observed[train])
+        batches = _calendar_day_batches(times, targets & ~train, window, exclude)
+        yield from _with_analogs(batches, pcs @ transform, times, top=top,
+                                 separation=separation)
 
 
 class HeldOutNeighbours:

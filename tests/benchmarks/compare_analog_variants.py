@@ -36,6 +36,14 @@ import numpy as np
 import pandas as pd
 
 
+WEIGHTED_ONLY = False
+#: Predictor-weight fits measured: (power of |beta|, floor as a share of the largest,
+#: regression C, weight of the regression's score as one more coordinate).
+WEIGHT_FITS = ((0.5, 0.0, 1.0, 0.0), (1.0, 0.0, 1.0, 0.0), (1.0, 0.0, 0.1, 0.0),
+               (1.0, 0.0, 1.0, 1.0), (1.0, 0.0, 1.0, 10.0), (0.5, 0.0, 1.0, 10.0),
+               (0.0, 0.0, 1.0, 100.0))
+
+
 def _logit(p, n):
     """Logit of an analog frequency shrunk by half an event (finite at 0 and 1)."""
     q = (np.asarray(p) * n + 0.5) / (n + 1)
@@ -119,14 +127,72 @@ def area_focused_pcs(store, region, floor, length_km):
     return store.pcs.values @ np.linalg.cholesky(metric)
 
 
+def regression_weights(pcs, times, observed, power=1.0, floor=0.0, C=1.0, score=0.0):
+    """Per-PC scale factors from a logistic regression of the event on the standardised
+    PCs plus two annual harmonics (the analog ensemble's predictor weighting, Delle
+    Monache et al. 2013): w_j = max(|beta_j|, floor * max|beta|) ** power / sd_j, so the
+    Euclidean distance of the scaled PCs weights each standardised PC by its coefficient."""
+    from sklearn.linear_model import LogisticRegression
+    from analogs.stages.hindcast import seasonal_harmonics
+    pcs = np.asarray(pcs, dtype=float)
+    sd = pcs.std(axis=0)
+    inputs = np.column_stack([pcs / sd, seasonal_harmonics(times)])
+    model = LogisticRegression(C=C, max_iter=2000).fit(inputs, observed)
+    signed = model.coef_[0, :pcs.shape[1]]
+    beta = np.maximum(np.abs(signed), floor * np.abs(signed).max())
+    scale = np.diag(beta ** power / sd)
+    if score:  # one more coordinate: the regression's PC score, weighted by sqrt(score)
+        scale = np.column_stack([scale, np.sqrt(score) * signed / sd])
+    return scale
+
+
+def weighted_space_frequencies(pcs, times, observed, default, top, scheme, fit, cache):
+    """A hindcast frame (days and climatology of ``default``) whose forecast for each
+    year Y is the ``scheme``-weighted share of the ``top`` analogs found in the PC space
+    scaled by weights fitted (``fit``) on the other years only (nested: no day of Y)."""
+    from analogs.stages.hindcast import held_out_analogs
+    key = fit
+    if key not in cache:
+        power, floor, C, score = fit
+        years = times.year.to_numpy()
+        parts = []
+        for year in np.unique(years):
+            train = years != year
+            scale = regression_weights(pcs[train], times[train], observed[train],
+                                       power=power, floor=floor, C=C, score=score)
+            parts.append(held_out_analogs(pcs @ scale, times, rows=np.flatnonzero(~train),
+                                          top=100))
+        cache[key] = pd.concat(parts, ignore_index=True)
+    table = cache[key]
+    table = table[table["rank"] <= top]
+    distance = table["distance"].to_numpy()
+    grouped = table.groupby("target")["distance"]
+    median = grouped.transform("median").to_numpy()
+    kth = grouped.transform("max").to_numpy()
+    with np.errstate(invalid="ignore", divide="ignore"):
+        weight = {"equal": np.ones_like(distance),
+                  "gaussian": np.exp(-0.5 * (distance / median) ** 2),
+                  "tricube": (1 - (distance / (kth * 1.0001)) ** 3) ** 3}[scheme]
+    hit = observed[table["row"].to_numpy()].astype(float)
+    frame = pd.DataFrame({"target": table["target"], "w": weight, "wh": weight * hit})
+    sums = frame.groupby("target")[["w", "wh"]].sum()
+    forecast = pd.Series((sums["wh"] / sums["w"]).to_numpy(), index=times[sums.index])
+    result = default.copy()
+    result["forecast"] = forecast.reindex(pd.DatetimeIndex(default["time"])).to_numpy()
+    return result[np.isfinite(result["forecast"])]
+
+
 def compare(store, region, name, n_resamples):
     from analogs.stages.hindcast import HeldOutNeighbours, logistic_hindcast, score_hindcast
     from analogs.workflows.skill import hindcast_days
     all_modes = int(store.eof.n_modes_)
 
+    frames = []
+
     def scored(frame):
+        frames.append(frame)
         s = score_hindcast(frame, n_resamples=n_resamples)
-        return [s["brier_skill_score"], *s["brier_skill_score_ci"]]
+        return [s["brier_skill_score"], *s["brier_skill_score_ci"], len(frames) - 1]
 
     pcs, times, observed = hindcast_days(store, store.observed(region), region=region)
     started = time.perf_counter()
@@ -139,15 +205,17 @@ def compare(store, region, name, n_resamples):
             logistic_hindcast(pcs, times, observed, default, n_modes=all_modes)),
         "season climatology": scored(default.assign(forecast=default["climatology"])),
     }
-    for modes in (5, 10, 15, all_modes):
+    for modes in (() if WEIGHTED_ONLY else (5, 10, 15)) + (all_modes,):
         for top in (10, 20, 30, 50):
             table[f"analogs {top}, {modes} modes, equal"] = scored(
                 weighted_frequencies(neighbours, modes, top, "equal"))
     for scheme in ("gaussian", "gaussian_k", "inverse", "tricube"):
         for top in (20, 50):
+            if WEIGHTED_ONLY and scheme != "tricube":
+                continue
             table[f"analogs {top}, all modes, {scheme} weights"] = scored(
                 weighted_frequencies(neighbours, all_modes, top, scheme))
-    for top in (20, 50):
+    for top in (() if WEIGHTED_ONLY else (20, 50)):
         table[f"analogs {top} + Platt calibration in folds"] = scored(
             fitted_in_folds(neighbours, all_modes, top, "equal", _platt))
         table[f"analogs {top} + seasonal harmonics in folds"] = scored(
@@ -156,6 +224,16 @@ def compare(store, region, name, n_resamples):
             fitted_in_folds(neighbours, all_modes, top, "equal", _with_climatology))
         table[f"analogs {top} tricube + seasonal harmonics in folds"] = scored(
             fitted_in_folds(neighbours, all_modes, top, "tricube", _seasonal))
+    cache = {}
+    for fit in WEIGHT_FITS:
+        for top in (20, 30, 50, 75, 100):
+            for scheme in ("equal", "gaussian"):
+                label = (f"analogs {top}, PCs weighted by in-fold regression |beta|^{fit[0]:g}"
+                         f" (floor {fit[1]:g}, C {fit[2]:g}, score {fit[3]:g}), {scheme}")
+                table[label] = scored(weighted_space_frequencies(
+                    pcs, times, observed, default, top, scheme, fit, cache))
+    if WEIGHTED_ONLY:
+        return finished(name, observed, started, table, frames, n_resamples)
     for floor, length in ((0.05, 600), (0.1, 1000), (0.3, 1500)):
         focused = area_focused_pcs(store, region, floor, length)[store.covered]
         near = HeldOutNeighbours(focused, times, observed, modes=(all_modes,), top=50,
@@ -165,8 +243,38 @@ def compare(store, region, name, n_resamples):
             table[label] = scored(weighted_frequencies(near, all_modes, top, "equal"))
             table[label + " + seasonal harmonics in folds"] = scored(
                 fitted_in_folds(near, all_modes, top, "equal", _seasonal))
+    return finished(name, observed, started, table, frames, n_resamples)
+
+
+def paired_difference(frame, other, n_resamples):
+    """BSS(frame) - BSS(other) on their common days, with its 90% year-bootstrap interval
+    (both forecasts resampled together: the paired comparison)."""
+    from analogs.stages.scores import bootstrap_interval, brier_skill_score
+    both = frame.merge(other[["time", "forecast"]], on="time", suffixes=("", "_other"))
+    p, q, o, r = (both[c].to_numpy() for c in ("forecast", "forecast_other", "observed",
+                                               "climatology"))
+
+    def gain(p, q, o, r):
+        return brier_skill_score(p, o, r) - brier_skill_score(q, o, r)
+
+    return [gain(p, q, o, r), *bootstrap_interval(gain, p, q, o, r, n_resamples=n_resamples,
+                                                  block=both["year"].to_numpy())]
+
+
+def finished(name, observed, started, table, frames, n_resamples):
+    """The result dict: every variant's BSS and interval, and its paired differences from
+    the logistic regression and from the default analogs (same days, same resampled
+    years)."""
+    default = frames[table["analogs 20, all modes, equal (default)"][3]]
+    regression = frames[table["logistic regression, PCs + 2 harmonics"][3]]
+    paired = {label: {"minus_regression": paired_difference(frames[v[3]], regression,
+                                                            n_resamples),
+                      "minus_default": paired_difference(frames[v[3]], default, n_resamples)}
+              for label, v in table.items()}
     return {"region": name, "base_rate": float(observed.mean()), "n_days": int(observed.size),
-            "seconds": round(time.perf_counter() - started, 1), "bss_and_interval": table}
+            "seconds": round(time.perf_counter() - started, 1),
+            "bss_and_interval": {label: v[:3] for label, v in table.items()},
+            "paired": paired}
 
 
 def main(argv=None):
@@ -176,7 +284,11 @@ def main(argv=None):
                         "the store's region, 40 km)")
     parser.add_argument("--resamples", type=int, default=300)
     parser.add_argument("--json", default=None)
+    parser.add_argument("--weighted-only", action="store_true",
+                        help="only the predictor-weighted variants and the baselines")
     args = parser.parse_args(argv)
+    global WEIGHTED_ONLY
+    WEIGHTED_ONLY = args.weighted_only
 
     from analogs.api import AnalogStore
     from analogs.stages.outcomes import Region
@@ -191,9 +303,13 @@ def main(argv=None):
     for result in results:
         print(f"\n{result['region']}: base rate {100 * result['base_rate']:.1f}% of "
               f"{result['n_days']} days ({result['seconds']} s)")
+        print("      BSS  interval            minus regression        minus default")
         for label, (bss, low, high) in sorted(result["bss_and_interval"].items(),
                                               key=lambda item: -item[1][0]):
-            print(f"  {bss:7.3f}  [{low:6.3f}, {high:6.3f}]  {label}")
+            versus = result["paired"][label]
+            gaps = "  ".join("{:7.3f} [{:6.3f}, {:6.3f}]".format(*versus[k])
+                             for k in ("minus_regression", "minus_default"))
+            print(f"  {bss:7.3f}  [{low:6.3f}, {high:6.3f}]  {gaps}  {label}")
     if args.json:
         with open(args.json, "w", encoding="utf-8") as handle:
             json.dump(results, handle, indent=1)
