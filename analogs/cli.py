@@ -85,7 +85,7 @@ def build_parser() -> argparse.ArgumentParser:
                          f"two days is {DISTANCE}.",
              options=(P.store, P.date, P.dates, P.field, P.time, P.top, P.window,
                       P.separation, P.region, P.exclude, P.regime, P.kinds, P.sequence,
-                      P.weights, P.json, P.json_lines, P.report, P.maps,
+                      P.metric, P.weights, P.json, P.json_lines, P.report, P.maps,
                       P.skip_skill_hindcast),
              exclusive=((True, (P.date, P.dates, P.field)), (False, (P.json, P.json_lines))))
     _command(commands, "verify", handler=_cmd_verify,
@@ -95,7 +95,8 @@ def build_parser() -> argparse.ArgumentParser:
                          "scored against what happened, the season climatology and random "
                          "analogs.",
              options=(P.store, P.top, P.query_modes, P.window, P.separation, P.region,
-                      P.months, P.kinds, P.threshold, P.tune, P.save, P.json, P.quiet))
+                      P.months, P.kinds, P.metric, P.threshold, P.tune, P.save, P.json,
+                      P.quiet))
     _command(commands, "update", handler=_cmd_update,
              help="append new days to a store without a rebuild",
              description="Append new days (for example yesterday's analysis), projected on "
@@ -240,11 +241,11 @@ def _cmd_find(args) -> int:
             args.dates, top=args.top, window=args.window, exclude=args.exclude,
             separation=args.separation, region=args.region, regime=args.regime,
             weights=args.weights, sequence=args.sequence, kinds=args.kind,
-            skip_skill_hindcast=args.skip_skill_hindcast), args)
+            metric=args.metric, skip_skill_hindcast=args.skip_skill_hindcast), args)
     result = find(store, date=args.date, field=args.field, time=args.time, top=args.top,
                   window=args.window, exclude=args.exclude, separation=args.separation,
                   region=args.region, regime=args.regime, weights=args.weights,
-                  sequence=args.sequence, kinds=args.kind,
+                  sequence=args.sequence, kinds=args.kind, metric=args.metric,
                   skip_skill_hindcast=args.skip_skill_hindcast)
     if several_times:  # one answer per valid time (a ValidTimesResult)
         return _print_valid_times(store, result, args)
@@ -327,6 +328,9 @@ def _cmd_verify(args) -> int:
     from analogs.presentation.report import dumps, verify_text
     if args.save and not args.tune:
         raise AnalogsInputError("--save records the result of --tune; pass both")
+    if args.tune and args.metric != P.metric.default:
+        raise AnalogsInputError(f"--tune scans the numbers of analogs and modes with --metric "
+                                f"{P.metric.default} only; drop --metric {args.metric}")
     store = AnalogStore.load(args.store)
     tuning = None
     if args.tune:
@@ -340,7 +344,7 @@ def _cmd_verify(args) -> int:
         args.top, args.modes = tuning["best"]["top"], tuning["best"]["n_modes"]
     summary = store.verify(top=args.top, window=args.window, separation=args.separation,
                            n_modes=args.modes, region=args.region, months=args.season,
-                           threshold=args.threshold, kinds=args.kind,
+                           threshold=args.threshold, kinds=args.kind, metric=args.metric,
                            progress=not args.quiet)
     if tuning is not None:
         summary["tuning"] = tuning

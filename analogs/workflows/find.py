@@ -97,7 +97,7 @@ def find(store, *, date=None, field=None, time=None, top=P.top.api_default,
          window=P.window.default, exclude=P.exclude.api_default,
          separation=P.separation.default, region=None, regime=None,
          weights=P.weights.default, confidence=P.confidence.default,
-         sequence=P.sequence.default, kinds=None,
+         sequence=P.sequence.default, kinds=None, metric=P.metric.default,
          skip_skill_hindcast=P.skip_skill_hindcast.api_default) -> FindResult | ValidTimesResult:
     """Closest archive days of ``store`` to a target and what they produced.
 
@@ -110,6 +110,9 @@ def find(store, *, date=None, field=None, time=None, top=P.top.api_default,
     :func:`sequence_vectors`); a field target then needs those days in its file.
     ``weights`` weighs the analogs in the outcome statistics (one of ``WEIGHT_SCHEMES``);
     ``confidence`` is the level of their intervals; ``kinds`` limits the events counted.
+    ``metric`` is the analog search's distance (``P.metric``): ``"event_weighted"``
+    searches the PCs transformed by :func:`event_weighted_transform` for the query's
+    region and kinds (fitted on the store's days, kept in the store).
     The outcomes quote the cross-validated skill of what the query forecasts (its region,
     kinds and settings: :func:`analogs.workflows.skill.skill_for`), measured now and kept
     in the store when no measurement is there, unless ``skip_skill_hindcast``.
@@ -144,7 +147,13 @@ def find(store, *, date=None, field=None, time=None, top=P.top.api_default,
                             P.exclude.check(exclude, owner))
     separation, sequence = P.separation.check(separation, owner), P.sequence.check(sequence, owner)
     weights, confidence = P.weights.check(weights, owner), P.confidence.check(confidence, owner)
-    kinds = P.kinds.check(kinds, owner)
+    kinds, metric = P.kinds.check(kinds, owner), P.metric.check(metric, owner)
+    if metric != "plain" and sequence:
+        raise AnalogsInputError(f"find: metric {metric} does not combine with a sequence "
+                                f"match (sequence {sequence}); use metric plain with it")
+    if metric != "plain" and store.events is None:
+        raise AnalogsInputError(f"find: metric {metric} is fitted on the store's reports and "
+                                f"store {store.path} has no events table; use metric plain")
     with renamed_errors(owner, "region", "kinds"):
         region = resolve_region(store, region)
         if kinds is not None and store.events is not None:
@@ -152,7 +161,8 @@ def find(store, *, date=None, field=None, time=None, top=P.top.api_default,
     query = _Query.resolve(store, top=top, window=window, exclude=exclude,
                            separation=separation, region=region, regime=regime,
                            weights=weights, confidence=confidence, sequence=sequence,
-                           kinds=kinds, skip_skill_hindcast=bool(skip_skill_hindcast))
+                           kinds=kinds, metric=metric,
+                           skip_skill_hindcast=bool(skip_skill_hindcast))
     if date is not None:
         row = day_row(store, date)
         vector = store.pc_values[row, :query.n_modes]
@@ -240,10 +250,12 @@ class _Query:
     confidence: float
     sequence: int
     kinds: list | None
+    metric: str
     skip_skill_hindcast: bool
     n_modes: int
     index: object
     restrict: np.ndarray | None
+    transform: np.ndarray | None  # the event-weighted metric's map of the PCs, or None
 
     @classmethod
     def resolve(cls, store, **settings) -> _Query:
@@ -254,7 +266,12 @@ class _Query:
             complete = sequence_vectors(store, settings["sequence"])[1]
             restrict = complete if restrict is None else restrict & complete
             index = _sequence_index(store, settings["sequence"])
-        return cls(**settings, n_modes=store.n_query_modes, index=index, restrict=restrict)
+        transform = None
+        if settings["metric"] == "event_weighted":
+            transform = event_weighted_transform(store, settings["region"], settings["kinds"])
+            index = _weighted_index(store, transform)
+        return cls(**settings, n_modes=store.n_query_modes, index=index, restrict=restrict,
+                   transform=transform)
 
     def with_exclude(self, exclude) -> _Query:
         return dataclasses_replace(self, exclude=exclude)
@@ -265,14 +282,16 @@ class _Query:
                 "sequence_days": self.sequence, "kinds": self.kinds,
                 "separation_days": self.separation, "regime": self.regime,
                 "region": {**region.to_dict(), "label": region.label()},
-                "weights": self.weights, "n_modes": self.n_modes, "store": str(store.path)}
+                "weights": self.weights, "n_modes": self.n_modes, "store": str(store.path),
+                **({"metric": self.metric} if self.metric != P.metric.default else {})}
 
     def skill(self, store, target_time) -> dict | None:
         """The cross-validated skill of what this query forecasts (its region, kinds and
         hindcast settings; :func:`analogs.workflows.skill.skill_for`)."""
         from analogs.workflows.skill import skill_settings
         settings = skill_settings(store, top=self.top, window=self.window,
-                                  separation=self.separation, n_modes=self.n_modes)
+                                  separation=self.separation, n_modes=self.n_modes,
+                                  metric=self.metric)
         return store.skill_for(target_time, region=self.region, kinds=self.kinds,
                                settings=settings, measure=not self.skip_skill_hindcast)
 
@@ -281,6 +300,8 @@ class _Query:
         vector = np.asarray(vector, dtype=float)
         if not self.sequence:
             vector = vector[:self.n_modes]
+        if self.transform is not None:
+            vector = vector @ self.transform
         chosen = find_analogs(self.index, store.times, vector, target_time=target_time,
                               top=self.top, window=self.window, exclude=self.exclude,
                               separation=self.separation, restrict=self.restrict)
@@ -821,6 +842,89 @@ def sequence_vectors(store, sequence) -> tuple[np.ndarray, np.ndarray]:
         complete[:sequence] = False
         cache[sequence] = (np.hstack(parts), complete)
     return cache[sequence]
+
+
+# ------------------------------------------------------------ event-weighted metric
+
+#: Fitted event-weighted metrics kept in a store's manifest (``predictor_weights``): the newest.
+PREDICTOR_WEIGHTS_CACHE_SIZE = 32
+#: What the fitted map is; part of its key, so a change of method refits.
+PREDICTOR_WEIGHTS_METHOD = ("logistic regression (C={C:g}) on standardised PCs + 2 annual "
+                            "harmonics: PC j scaled by |beta_j|/sd_j, plus the PC score "
+                            "weighted {w:g}")
+
+
+def _predictor_weights_key(store, region, kinds) -> tuple[str, dict]:
+    """The cache key of a fitted metric: a short hash and what it hashes (region, kinds,
+    modes, method, and the checksums of the store's PCs and reports)."""
+    import hashlib
+    import json
+    from analogs.stages.predictor_weights import REGRESSION_C, SCORE_WEIGHT
+    fields = {"region": region.to_dict(), "kinds": sorted(kinds) if kinds else None,
+              "n_modes": store.n_query_modes,
+              "method": PREDICTOR_WEIGHTS_METHOD.format(C=REGRESSION_C, w=SCORE_WEIGHT),
+              "data": {name: store.manifest["files"].get(name)
+                       for name in ("scores.nc", "events.parquet")}}
+    text = json.dumps(fields, sort_keys=True)
+    return hashlib.sha256(text.encode()).hexdigest()[:16], fields
+
+
+def event_weighted_transform(store, region, kinds=None) -> np.ndarray:
+    """The map of the store's PCs (its query modes) under which the Euclidean distance
+    is the event-weighted metric for reports of ``kinds`` in ``region``
+    (:func:`analogs.stages.predictor_weights.fit_predictor_weights` on every day with
+    report coverage, the live query's counterpart of the hindcast's in-fold fit).
+
+    Fitted once per store version, region and kinds: kept in the loaded store and in its
+    manifest (``predictor_weights``, through one manifest-only transaction,
+    :func:`analogs.workflows.store.edit_manifest`; not kept on a read-only store or
+    when another writer holds the lock), keyed by the checksums of the PCs and reports
+    so an update refits."""
+    from analogs.errors import StoreError
+    from analogs.stages.predictor_weights import fit_predictor_weights
+    from analogs.workflows import store as store_io
+    from analogs.workflows.skill import SKILL_CACHE_LOCK_SECONDS, observed
+    key, fields = _predictor_weights_key(store, region, kinds)
+    memory = _derived(store).setdefault("predictor_weights", {})
+    if key in memory:
+        return memory[key]
+    kept = (store.manifest.get("predictor_weights") or {}).get(key)
+    if kept is not None and kept.get("key") == fields:
+        memory[key] = np.asarray(kept["transform"], dtype=float)
+        return memory[key]
+    covered = store.covered
+    events = observed(store, region, kinds)
+    transform = fit_predictor_weights(store.pc_values[covered, :store.n_query_modes],
+                                      store.times[covered], events[covered])
+    memory[key] = transform
+
+    def edit(manifest, files):
+        if {n: files.get(n) for n in fields["data"]} != fields["data"]:
+            return None  # the store changed since it was loaded: the fit is of older data
+        entries = {k: v for k, v in (manifest.get("predictor_weights") or {}).items()
+                   if v.get("key", {}).get("data") == fields["data"]}
+        entries.pop(key, None)
+        entries[key] = {"key": fields, "transform": transform.tolist()}
+        manifest["predictor_weights"] = dict(list(entries.items())
+                                             [-PREDICTOR_WEIGHTS_CACHE_SIZE:])
+        return manifest
+
+    if store_io.writable(store.path):
+        try:
+            store_io.edit_manifest(store.path, edit, timeout=SKILL_CACHE_LOCK_SECONDS)
+        except StoreError:
+            pass  # kept in memory only; the next load fits it again
+    return transform
+
+
+def _weighted_index(store, transform) -> AnalogIndex:
+    """An index of the store's query-mode PCs mapped by ``transform``, one per map."""
+    indexes = _derived(store).setdefault("weighted_indexes", {})
+    key = transform.tobytes()
+    if key not in indexes:
+        indexes[key] = AnalogIndex(kind="auto").fit(
+            store.pc_values[:, :store.n_query_modes] @ transform)
+    return indexes[key]
 
 
 def _sequence_index(store, sequence) -> AnalogIndex:

@@ -62,7 +62,8 @@ def hindcast_days(store, events: np.ndarray, *, region=None, kinds=None):
 
 
 def measured_skill(pcs, times, observed, covered, *, region, top=P.top.default,
-                   window=P.window.default, separation=P.separation.default) -> dict | None:
+                   window=P.window.default, separation=P.separation.default,
+                   metric=P.metric.default) -> dict | None:
     """:func:`skill_by_month` over the days with report coverage (``covered``); None when
     it cannot be measured: fewer than two years covered, or no day (or every day) with
     an event there."""
@@ -72,20 +73,21 @@ def measured_skill(pcs, times, observed, covered, *, region, top=P.top.default,
     if np.unique(times[covered].year).size < 2 or not 0 < events.sum() < events.size:
         return None
     return skill_by_month(np.asarray(pcs)[covered], times[covered], events, region=region,
-                          top=top, window=window, separation=separation)
+                          top=top, window=window, separation=separation, metric=metric)
 
 
 def verify(store, *, top=P.top.api_default, window=P.window.default,
            separation=P.separation.default, n_modes=P.query_modes.api_default, region=None,
            months=None, threshold=P.threshold.default, n_resamples=P.n_resamples.default,
-           kinds=None, progress=False) -> dict:
+           kinds=None, metric=P.metric.default, progress=False) -> dict:
     """Leave-one-year-out hindcast scores, with the random-analog baseline beside them.
 
     ``top`` and ``n_modes`` default to the store's saved query defaults (else
     ``P.top.default`` and every mode). Returns the ``analogs verify --json`` dict:
     :func:`analogs.stages.hindcast.score_hindcast` of the analog forecasts, plus
     ``random_analogs`` (the same scores of ``top`` days drawn at random from the same
-    candidates) and ``settings``.
+    candidates) and ``settings``. ``metric`` is the analog search's distance
+    (``P.metric``; event-weighted: fitted inside each fold, without the held-out year).
     """
     from analogs.stages.hindcast import logistic_hindcast, leave_one_year_out, score_hindcast
     owner = "verify"
@@ -98,13 +100,15 @@ def verify(store, *, top=P.top.api_default, window=P.window.default,
     months, kinds = P.months.check(months, owner), P.kinds.check(kinds, owner)
     threshold = P.threshold.check(threshold, owner)
     n_resamples = P.n_resamples.check(n_resamples, owner)
+    metric = P.metric.check(metric, owner)
     with renamed_errors(owner, "region", "kinds"):
         region = resolve_region(store, region)
         events = observed(store, region, kinds)
     pcs, times, events = hindcast_days(store, events, region=region, kinds=kinds)
     common = dict(top=top, window=window, separation=separation, n_modes=n_modes,
                   months=months)
-    hindcast = leave_one_year_out(pcs, times, events, progress=progress, **common)
+    hindcast = leave_one_year_out(pcs, times, events, metric=metric, progress=progress,
+                                  **common)
     summary = score_hindcast(hindcast, threshold=threshold, n_resamples=n_resamples)
     baseline = score_hindcast(leave_one_year_out(pcs, times, events, method="random",
                                                  **common),
@@ -132,6 +136,8 @@ def verify(store, *, top=P.top.api_default, window=P.window.default,
                            "months": None if months is None else sorted(months),
                            "region": region.to_dict(), "threshold": threshold,
                            "kinds": kinds, "method": "leave-one-year-out"}
+    if metric != P.metric.default:  # only then, so earlier answers keep their shape
+        summary["settings"]["metric"] = metric
     left_out = int((~store.covered).sum())
     if left_out:  # only then, so earlier answers keep their shape
         summary["settings"]["n_days_without_reports"] = left_out
@@ -188,7 +194,8 @@ def nested_tune(store, *, tops=P.tops.default, modes=P.scan_modes.default,
 
 
 def skill_by_month(pcs, times, observed, *, region, top=P.top.default,
-                   window=P.window.default, separation=P.separation.default) -> dict:
+                   window=P.window.default, separation=P.separation.default,
+                   metric=P.metric.default) -> dict:
     """Cross-validated skill of the default query settings, overall and by month.
 
     A leave-one-year-out hindcast (:func:`analogs.stages.hindcast.leave_one_year_out`) of "at
@@ -200,7 +207,7 @@ def skill_by_month(pcs, times, observed, *, region, top=P.top.default,
     from analogs.stages.hindcast import leave_one_year_out, score_hindcast
     from analogs.stages.scores import bootstrap_interval, brier_score, brier_skill_score
     hindcast = leave_one_year_out(pcs, times, observed, top=top, window=window,
-                                  separation=separation)
+                                  separation=separation, metric=metric)
     months = pd.DatetimeIndex(hindcast["time"]).month
     by_month = {}
     for month in range(1, 13):
@@ -222,9 +229,12 @@ def skill_by_month(pcs, times, observed, *, region, top=P.top.default,
                                      else [float(v) for v in interval]),
         }
     overall = score_hindcast(hindcast, n_resamples=200)
-    return {"method": "leave-one-year-out hindcast of P(at least one event in region)",
-            "region": region.to_dict(), "top": top, "window_days": window,
-            "separation_days": separation,
+    measured = {"method": "leave-one-year-out hindcast of P(at least one event in region)",
+                "region": region.to_dict(), "top": top, "window_days": window,
+                "separation_days": separation}
+    if metric != P.metric.default:  # only then, so earlier manifests keep their shape
+        measured["metric"] = metric
+    return {**measured,
             "brier_skill_score": overall["brier_skill_score"],
             "brier_skill_score_ci": overall["brier_skill_score_ci"],
             "roc_auc": overall["roc_auc"], "by_month": by_month}
@@ -253,13 +263,20 @@ _SKILL_INPUTS = ("scores.nc", "events.parquet")
 
 
 def skill_settings(store, *, top=None, window=P.window.default,
-                   separation=P.separation.default, n_modes=None) -> dict:
+                   separation=P.separation.default, n_modes=None,
+                   metric=P.metric.default) -> dict:
     """The hindcast settings a query's skill is measured with: its number of analogs,
-    season window, de-clustering and modes (defaults: the store's query defaults)."""
-    return {"top": int(store.query_defaults.get("top", P.top.default) if top is None else top),
-            "window_days": None if window is None else int(window),
-            "separation_days": int(separation),
-            "n_modes": int(store.n_query_modes if n_modes is None else n_modes)}
+    season window, de-clustering, modes (defaults: the store's query defaults) and the
+    analog search's metric (named only when not the default, so keys kept before it
+    existed still match)."""
+    settings = {"top": int(store.query_defaults.get("top", P.top.default) if top is None
+                           else top),
+                "window_days": None if window is None else int(window),
+                "separation_days": int(separation),
+                "n_modes": int(store.n_query_modes if n_modes is None else n_modes)}
+    if metric != P.metric.default:
+        settings["metric"] = metric
+    return settings
 
 
 def skill_key(store, region: dict, kinds, settings: dict) -> tuple[str, dict]:
@@ -281,12 +298,13 @@ def _verify_command(store, region: dict, kinds, settings: dict) -> str:
                 "window_days": P.window.default, "separation_days": P.separation.default,
                 "n_modes": store.n_query_modes}
     options = {"top": "--top", "window_days": "--window", "separation_days": "--separation",
-               "n_modes": "--modes"}
+               "n_modes": "--modes", "metric": "--metric"}
+    defaults["metric"] = P.metric.default
     return (f"analogs verify --store {store.path}"
             + (f" --region {argument}" if argument else "")
             + (f" --kind {','.join(kinds)}" if kinds else "")
             + "".join(f" {options[k]} {settings[k]}" for k in options
-                      if settings[k] != defaults[k]))
+                      if settings.get(k, P.metric.default) != defaults[k]))
 
 
 def _measure(store, region, kinds, settings) -> dict | None:
@@ -296,7 +314,8 @@ def _measure(store, region, kinds, settings) -> dict | None:
     measured = measured_skill(store.pcs.values[:, :settings["n_modes"]], store.times, events,
                               store.covered, region=region, top=settings["top"],
                               window=settings["window_days"],
-                              separation=settings["separation_days"])
+                              separation=settings["separation_days"],
+                              metric=settings.get("metric", P.metric.default))
     if measured is not None:
         measured["kinds"] = sorted(kinds) if kinds else None
         measured["n_modes"] = settings["n_modes"]
@@ -368,7 +387,9 @@ def skill_for(store, target_time=None, *, region=None, kinds=None, settings=None
     if (built and asked == built["region"] and not kinds
             and settings["top"] == built.get("top") and settings["n_modes"] == store.n_modes
             and settings["window_days"] == built.get("window_days")
-            and settings["separation_days"] == built.get("separation_days")):
+            and settings["separation_days"] == built.get("separation_days")
+            and settings.get("metric", P.metric.default) == built.get("metric",
+                                                                        P.metric.default)):
         measured, source = built, "build"
     else:
         key, fields = skill_key(store, asked, kinds, settings)

@@ -1,0 +1,171 @@
+"""The event-weighted metric of the analog search (predictor weighting of the EOF space,
+Delle Monache et al. 2013): its fit, its use inside the hindcast's folds, and the
+query's --metric option."""
+
+import contextlib
+import io
+import json
+
+import numpy as np
+import pandas as pd
+import pytest
+from scipy.spatial.distance import cdist
+
+import _reliability_helpers as rh
+from analogs.api import AnalogStore
+from analogs.cli import main
+from analogs.stages.hindcast import leave_one_year_out
+from analogs.stages.predictor_weights import (SCORE_WEIGHT, fit_predictor_weights,
+                                              pc_weights)
+from analogs.workflows import store as store_io
+from analogs.workflows.find import event_weighted_transform
+
+DATE = "2003-07-02"
+
+
+def _synthetic(n_years=10, n_modes=8, seed=0):
+    """Daily PCs of unequal spread whose event depends on PCs 1 and 4 only (and the
+    season): logit p = -1.5 + 1.6 z1 - 1.2 z4 + 0.8 cos(season), z the standardised PCs.
+    The generating coefficients are the reference (the design of the test)."""
+    rng = np.random.default_rng(seed)
+    times = pd.date_range("2001-01-01T12:00", periods=365 * n_years, freq="D")
+    spread = np.linspace(3.0, 0.5, n_modes)
+    pcs = rng.standard_normal((times.size, n_modes)) * spread
+    season = np.cos(2 * np.pi * (times.day_of_year.to_numpy() - 180) / 365.2425)
+    logit = -1.5 + 1.6 * pcs[:, 1] / spread[1] - 1.2 * pcs[:, 4] / spread[4] + 0.8 * season
+    observed = rng.random(times.size) < 1 / (1 + np.exp(-logit))
+    return pcs, times, observed, spread
+
+
+def test_fitted_weights_recover_the_informative_pcs():
+    """On days whose event depends on PCs 1 and 4 only, the weights of PCs 1 and 4 (their
+    coefficients per standard deviation, the scale of each standardised PC) are near the
+    generating coefficients 1.6 and 1.2 and every other PC's is near zero (below an
+    eighth of the smaller informative weight; their standard error is about 0.05 on
+    3,650 days, from memory of the logistic regression's sqrt(1 / (n p (1 - p)))); the appended
+    coordinate is the PC score sqrt(SCORE_WEIGHT) * beta_j / sd_j with beta's signs."""
+    pcs, times, observed, spread = _synthetic()
+    transform = fit_predictor_weights(pcs, times, observed)
+    assert transform.shape == (8, 9)
+    per_standard_pc = pc_weights(transform) * pcs.std(axis=0)
+    assert per_standard_pc[1] == pytest.approx(1.6, abs=0.2)
+    assert per_standard_pc[4] == pytest.approx(1.2, abs=0.2)
+    others = np.delete(per_standard_pc, [1, 4])
+    assert others.max() < per_standard_pc[[1, 4]].min() / 8
+    score = transform[:, -1] * pcs.std(axis=0) / np.sqrt(SCORE_WEIGHT)
+    assert np.sign(score[[1, 4]]).tolist() == [1.0, -1.0]
+    np.testing.assert_allclose(np.abs(score), per_standard_pc, rtol=1e-12)
+
+
+def test_no_event_gives_the_plain_distance():
+    """Nothing to fit (no event day): the identity and a zero score column, so distances
+    are those of the PCs themselves (scipy's Euclidean cdist)."""
+    pcs, times, _, _ = _synthetic(n_years=2)
+    transform = fit_predictor_weights(pcs, times, np.zeros(len(times), dtype=bool))
+    np.testing.assert_allclose(cdist(pcs[:5] @ transform, pcs[5:9] @ transform),
+                               cdist(pcs[:5], pcs[5:9]))
+
+
+def test_hindcast_weights_never_see_the_held_out_year():
+    """Changing every outcome of one year leaves that year's event-weighted forecasts as
+    they were (its metric is fitted on the other years, its analogs and climatology come
+    from them), while the other years' forecasts move (their metric and analogs do see
+    it): the nested fit of the leave-one-year-out folds."""
+    pcs, times, observed, _ = _synthetic(n_years=4)
+    changed = observed.copy()
+    held_out = times.year == 2002
+    changed[held_out] = ~observed[held_out]
+    before = leave_one_year_out(pcs, times, observed, metric="event_weighted")
+    after = leave_one_year_out(pcs, times, changed, metric="event_weighted")
+    mine = before["year"] == 2002
+    np.testing.assert_array_equal(before.loc[mine, "forecast"], after.loc[mine, "forecast"])
+    assert not np.array_equal(before.loc[~mine, "forecast"], after.loc[~mine, "forecast"])
+    # The plain metric's forecasts are another thing: the option changes the hindcast.
+    plain = leave_one_year_out(pcs, times, observed)
+    assert not np.array_equal(plain["forecast"], before["forecast"])
+
+
+@pytest.fixture
+def store_copy(demo_store, tmp_path):
+    """A copy of the session's store without what other tests kept in its manifest."""
+    path = rh.copy_store(demo_store.path, tmp_path / "store")
+    store_io.edit_manifest(path, lambda manifest, files: {
+        k: v for k, v in manifest.items() if k not in ("skill_cache", "predictor_weights")})
+    return path
+
+
+def _cli_json(*argv):
+    out = io.StringIO()
+    with contextlib.redirect_stdout(out):
+        assert main([*argv, "--json"]) == 0
+    return json.loads(out.getvalue())
+
+
+def test_find_searches_the_weighted_space_fitted_on_the_store(store_copy):
+    """find --metric event_weighted: the map is fitted on the store's days (equal to
+    fit_predictor_weights on them), kept in the manifest for the next load, and the
+    analogs' distances are the Euclidean distances of the mapped vectors (scipy cdist);
+    the default stays the plain metric, whose distances are those of the PCs."""
+    store = AnalogStore.load(store_copy)
+    weighted = _cli_json("find", "--store", str(store_copy), "--date", DATE,
+                         "--metric", "event_weighted", "--skip-skill-hindcast")
+    assert weighted["settings"]["metric"] == "event_weighted"
+    reloaded = AnalogStore.load(store_copy)
+    assert len(reloaded.manifest["predictor_weights"]) == 1
+    kept = np.asarray(next(iter(reloaded.manifest["predictor_weights"].values()))["transform"])
+    covered = store.covered
+    expected = fit_predictor_weights(store.pc_values[covered], store.times[covered],
+                                     store.observed()[covered])
+    np.testing.assert_allclose(kept, expected, rtol=1e-12)
+    np.testing.assert_allclose(event_weighted_transform(reloaded, reloaded.region), kept)
+    row = int(np.flatnonzero(store.days == pd.Timestamp(DATE))[0])
+    rows = [int(np.flatnonzero(store.days == pd.Timestamp(a["date"]))[0])
+            for a in weighted["analogs"]]
+    distances = cdist(store.pc_values[[row]] @ kept, store.pc_values[rows] @ kept)[0]
+    np.testing.assert_allclose([a["distance"] for a in weighted["analogs"]], distances,
+                               rtol=1e-5)
+    plain = _cli_json("find", "--store", str(store_copy), "--date", DATE,
+                      "--skip-skill-hindcast")
+    assert "metric" not in plain["settings"]
+    rows = [int(np.flatnonzero(store.days == pd.Timestamp(a["date"]))[0])
+            for a in plain["analogs"]]
+    np.testing.assert_allclose([a["distance"] for a in plain["analogs"]],
+                               cdist(store.pc_values[[row]], store.pc_values[rows])[0],
+                               rtol=1e-5)
+    assert [a["date"] for a in plain["analogs"]] != [a["date"] for a in weighted["analogs"]]
+
+
+def test_verify_and_skill_line_measure_the_metric_asked(store_copy):
+    """verify --metric event_weighted scores the in-fold weighted hindcast (equal to
+    leave_one_year_out with that metric scored by scikit-learn's brier_score_loss), and
+    find's skill line with that metric is measured with it (the same score)."""
+    from sklearn.metrics import brier_score_loss
+    store = AnalogStore.load(store_copy)
+    summary = _cli_json("verify", "--store", str(store_copy), "--metric", "event_weighted",
+                        "--quiet")
+    assert summary["settings"]["metric"] == "event_weighted"
+    assert "caution" in summary
+    hindcast = leave_one_year_out(store.pcs.values, store.times, store.observed(),
+                                  metric="event_weighted")
+    expected = 1 - (brier_score_loss(hindcast["observed"], hindcast["forecast"])
+                    / brier_score_loss(hindcast["observed"], hindcast["climatology"]))
+    assert summary["brier_skill_score"] == pytest.approx(expected, rel=1e-9)
+    plain = _cli_json("verify", "--store", str(store_copy), "--quiet")
+    assert "metric" not in plain["settings"]
+    assert plain["brier_skill_score"] != pytest.approx(expected, rel=1e-6)
+    skill = _cli_json("find", "--store", str(store_copy), "--date", DATE, "--metric",
+                      "event_weighted")["outcomes"]["skill"]
+    assert skill["source"].startswith("measured now")
+    assert skill["brier_skill_score"] == pytest.approx(expected, rel=1e-9)
+
+
+@pytest.mark.parametrize("argv, expected", [
+    (["verify", "--metric", "event_weighted", "--tune"], "--tune scans"),
+    (["verify", "--metric", "nearest"], "--metric must be one of"),
+    (["find", "--date", DATE, "--metric", "event_weighted", "--sequence", "1"],
+     "does not combine with a sequence"),
+])
+def test_metric_refusals(demo_store, capsys, argv, expected):
+    """Refused with one line and exit status 2 (common practice, no source)."""
+    assert main([argv[0], "--store", str(demo_store.path), *argv[1:]]) == 2
+    assert expected in capsys.readouterr().err
