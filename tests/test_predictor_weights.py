@@ -42,9 +42,9 @@ def test_fitted_weights_recover_the_informative_pcs():
     coefficients per standard deviation, the scale of each standardised PC) are near the
     generating coefficients 1.6 and 1.2 and every other PC's is near zero (below an
     eighth of the smaller informative weight; their standard error is about 0.05 on
-    3,650 days, from memory of the logistic regression's sqrt(1 / (n p (1 - p)))); the appended
+    3,650 days, from memory of the regression's sqrt(1 / (n p (1 - p)))); the appended
     coordinate is the PC score sqrt(SCORE_WEIGHT) * beta_j / sd_j with beta's signs."""
-    pcs, times, observed, spread = _synthetic()
+    pcs, times, observed, _ = _synthetic()
     transform = fit_predictor_weights(pcs, times, observed)
     assert transform.shape == (8, 9)
     per_standard_pc = pc_weights(transform) * pcs.std(axis=0)

@@ -15,14 +15,26 @@ against the season climatology, with its 90% year-bootstrap interval, of:
   held-out year Y it is fitted on the forecasts of the other years made WITHOUT Y (no
   day of Y is a target or an analog of them: HeldOutNeighbours with Y dropped), then
   applied to Y's forecasts;
+- predictor weighting of the EOF space (Delle Monache et al. 2013): each PC scaled by
+  the |coefficient| (per standard deviation, to a power) of a logistic regression of the
+  event on the standardised PCs plus two annual harmonics, fitted on the other years
+  only (nested: no day of the held-out year), optionally with the regression's PC score
+  as one more coordinate; equal or Gaussian weights over 20 to 100 analogs. The shipped
+  form (``--metric event_weighted``, analogs.stages.predictor_weights) is measured
+  through leave_one_year_out itself;
 - the baselines: logistic regression on the same PCs plus two annual harmonics
-  (scikit-learn, the same folds; verify's baseline) and the season climatology.
+  (scikit-learn, the same folds; verify's baseline), random analogs and the season
+  climatology.
+
+Beside each BSS: its paired differences from the regression and from the default
+analogs, BSS(variant) - BSS(other) on the same days with both resampled by the same
+years (the comparison that the two separate intervals cannot make).
 
 Every variant uses the leave-one-year-out folds of `analogs verify` (one neighbour search:
 stages.hindcast.HeldOutNeighbours, tested equal to leave_one_year_out).
 
 Run:  python tests/benchmarks/compare_analog_variants.py STORE [--point LAT,LON,KM]
-          [--resamples 300] [--json OUT.json]
+          [--resamples 300] [--json OUT.json] [--weighted-only]
 Prints one table per region, best first.
 """
 
@@ -34,7 +46,6 @@ import time
 
 import numpy as np
 import pandas as pd
-
 
 WEIGHTED_ONLY = False
 #: Predictor-weight fits measured: (power of |beta|, floor as a share of the largest,
@@ -133,6 +144,7 @@ def regression_weights(pcs, times, observed, power=1.0, floor=0.0, C=1.0, score=
     Monache et al. 2013): w_j = max(|beta_j|, floor * max|beta|) ** power / sd_j, so the
     Euclidean distance of the scaled PCs weights each standardised PC by its coefficient."""
     from sklearn.linear_model import LogisticRegression
+
     from analogs.stages.hindcast import seasonal_harmonics
     pcs = np.asarray(pcs, dtype=float)
     sd = pcs.std(axis=0)
@@ -183,7 +195,8 @@ def weighted_space_frequencies(pcs, times, observed, default, top, scheme, fit, 
 
 
 def compare(store, region, name, n_resamples):
-    from analogs.stages.hindcast import HeldOutNeighbours, logistic_hindcast, score_hindcast
+    from analogs.stages.hindcast import (HeldOutNeighbours, leave_one_year_out,
+                                         logistic_hindcast, score_hindcast)
     from analogs.workflows.skill import hindcast_days
     all_modes = int(store.eof.n_modes_)
 
@@ -204,7 +217,14 @@ def compare(store, region, name, n_resamples):
         "logistic regression, PCs + 2 harmonics": scored(
             logistic_hindcast(pcs, times, observed, default, n_modes=all_modes)),
         "season climatology": scored(default.assign(forecast=default["climatology"])),
+        "random analogs 20 (verify's baseline)": scored(_on_days(leave_one_year_out(
+            pcs, times, observed, method="random"), default)),
     }
+    # The shipped option (analogs --metric event_weighted), through the hindcast itself.
+    for top in (20, 50):
+        table[f"analogs {top}, --metric event_weighted (leave_one_year_out)"] = scored(
+            _on_days(leave_one_year_out(pcs, times, observed, top=top,
+                                        metric="event_weighted"), default))
     for modes in (() if WEIGHTED_ONLY else (5, 10, 15)) + (all_modes,):
         for top in (10, 20, 30, 50):
             table[f"analogs {top}, {modes} modes, equal"] = scored(
@@ -244,6 +264,11 @@ def compare(store, region, name, n_resamples):
             table[label + " + seasonal harmonics in folds"] = scored(
                 fitted_in_folds(near, all_modes, top, "equal", _seasonal))
     return finished(name, observed, started, table, frames, n_resamples)
+
+
+def _on_days(frame, default):
+    """``frame`` on the days of ``default`` (the same forecast days for every variant)."""
+    return frame[frame["time"].isin(default["time"])].reset_index(drop=True)
 
 
 def paired_difference(frame, other, n_resamples):
