@@ -169,3 +169,21 @@ def test_metric_refusals(demo_store, capsys, argv, expected):
     """Refused with one line and exit status 2 (common practice, no source)."""
     assert main([argv[0], "--store", str(demo_store.path), *argv[1:]]) == 2
     assert expected in capsys.readouterr().err
+
+
+def test_field_that_is_an_archive_day_is_flagged_in_the_weighted_space(store_copy,
+                                                                       demo_files, tmp_path,
+                                                                       capsys):
+    """A field that is an archive day (written on another grid) is its own first analog
+    in the event-weighted space too, and flagged: the near-copy limit is measured in the
+    space searched (a day is not its own analog; common practice, no source)."""
+    from analogs.stages.sources import open_archive
+    from analogs.workflows.demo import write_forecast_like_field
+    archive = open_archive(demo_files, progress=False)
+    path = write_forecast_like_field(archive, DATE, tmp_path / "copy.nc")
+    status = main(["find", "--store", str(store_copy), "--field", str(path), "--metric",
+                   "event_weighted", "--skip-skill-hindcast", "--json"])
+    captured = capsys.readouterr()
+    assert status == 0
+    assert json.loads(captured.out)["analogs"][0]["date"] == DATE
+    assert "almost exactly" in captured.err

@@ -791,7 +791,11 @@ def warn_near_duplicate(store, analogs: pd.DataFrame, valid, query: _Query,
     warning names the members concerned."""
     if analogs.empty:
         return
-    scale = float(np.sqrt(np.sum(store.eof.eigenvalues_.values[:query.n_modes])))
+    if query.transform is None:
+        scale = float(np.sqrt(np.sum(store.eof.eigenvalues_.values[:query.n_modes])))
+    else:  # the same length in the event-weighted space: the spread of the mapped days
+        mapped = store.pc_values[:, :query.n_modes] @ query.transform
+        scale = float(np.sqrt(np.sum(mapped.var(axis=0))))
     limit = NEAR_DUPLICATE_FRACTION * scale
     rows = [0] if members is None else list(range(len(analogs)))
     close = [r for r in rows if analogs["distance"].iloc[r] < limit]
