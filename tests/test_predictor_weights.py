@@ -138,7 +138,8 @@ def test_find_searches_the_weighted_space_fitted_on_the_store(store_copy):
 def test_verify_and_skill_line_measure_the_metric_asked(store_copy):
     """verify --metric event_weighted scores the in-fold weighted hindcast (equal to
     leave_one_year_out with that metric scored by scikit-learn's brier_score_loss), and
-    find's skill line with that metric is measured with it (the same score)."""
+    find's skill line with that metric is measured with it (the same score); unmeasured,
+    it names the verify command with --metric."""
     from sklearn.metrics import brier_score_loss
     store = AnalogStore.load(store_copy)
     summary = _cli_json("verify", "--store", str(store_copy), "--metric", "event_weighted",
@@ -153,6 +154,10 @@ def test_verify_and_skill_line_measure_the_metric_asked(store_copy):
     plain = _cli_json("verify", "--store", str(store_copy), "--quiet")
     assert "metric" not in plain["settings"]
     assert plain["brier_skill_score"] != pytest.approx(expected, rel=1e-6)
+    from analogs.workflows.skill import skill_settings
+    unmeasured = store.skill_for(DATE, settings=skill_settings(store, metric="event_weighted"),
+                                 measure=False)
+    assert unmeasured["command"].endswith("--metric event_weighted")
     skill = _cli_json("find", "--store", str(store_copy), "--date", DATE, "--metric",
                       "event_weighted")["outcomes"]["skill"]
     assert skill["source"].startswith("measured now")

@@ -296,15 +296,14 @@ def _verify_command(store, region: dict, kinds, settings: dict) -> str:
     argument = region_argument(region)
     defaults = {"top": store.query_defaults.get("top", P.top.default),
                 "window_days": P.window.default, "separation_days": P.separation.default,
-                "n_modes": store.n_query_modes}
+                "n_modes": store.n_query_modes, "metric": P.metric.default}
     options = {"top": "--top", "window_days": "--window", "separation_days": "--separation",
                "n_modes": "--modes", "metric": "--metric"}
-    defaults["metric"] = P.metric.default
     return (f"analogs verify --store {store.path}"
             + (f" --region {argument}" if argument else "")
             + (f" --kind {','.join(kinds)}" if kinds else "")
             + "".join(f" {options[k]} {settings[k]}" for k in options
-                      if settings.get(k, P.metric.default) != defaults[k]))
+                      if settings.get(k, defaults[k]) != defaults[k]))
 
 
 def _measure(store, region, kinds, settings) -> dict | None:
