@@ -37,6 +37,7 @@ environments. Mon. Wea. Rev., 119, 1954-1978 (from memory).
 from __future__ import annotations
 
 import dataclasses
+import functools
 import math
 import sys
 from pathlib import Path
@@ -703,6 +704,7 @@ def regularized_beta(x: float, a: float, b: float) -> float:
     raise ArithmeticError(f"regularized_beta({x}, {a}, {b}): continued fraction did not converge")
 
 
+@functools.lru_cache(maxsize=4096)  # a batch of queries asks for the same few counts
 def _beta_quantile_scalar(q: float, a: float, b: float) -> float:
     if a <= 0.0:  # the degenerate limits of Beta(a, b): all mass at 0 or at 1
         return 0.0
