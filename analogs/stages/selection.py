@@ -246,6 +246,9 @@ def _ranking_table(times, rows, distances) -> pd.DataFrame:
 #: searched once and each target drops the rows of the others' windows afterwards, so a
 #: wider spread fetches more rows per target for fewer searches.
 BATCH_SPREAD_DAYS = 10
+#: Most (target, archive day) pairs of one batch's allowed-rows mask (bytes): the batch
+#: is cut before the mask of a long archive outgrows this.
+BATCH_MAX_MASK = 2 ** 25
 
 
 def find_analogs_many(index: AnalogIndex, times, target_vectors, target_times, *,
@@ -256,7 +259,8 @@ def find_analogs_many(index: AnalogIndex, times, target_vectors, target_times, *
     Targets are sorted by calendar day and taken in groups whose calendar days lie
     within ``BATCH_SPREAD_DAYS`` of the group's first (and at most
     :func:`~analogs.stages.index.sequential_batch_size` targets, so faiss computes each
-    distance as for a target alone): one :func:`rank_many` call ranks the union of the
+    distance as for a target alone, and within ``BATCH_MAX_MASK`` of memory for their
+    allowed rows): one :func:`rank_many` call ranks the union of the
     group's allowed rows, and each target keeps only its own (its season window and
     exclusion, ``restrict``), fetching more rows to make up for the others'. So each
     table equals ``find_analogs(index, times, target_vectors[j],
@@ -289,7 +293,8 @@ def find_analogs_many(index: AnalogIndex, times, target_vectors, target_times, *
                 for vector, when in zip(target_vectors, target_times)]
     calendar_days = day_of_year(target_times)
     order = np.argsort(calendar_days, kind="stable")
-    most = sequential_batch_size(target_vectors.shape[1])
+    most = min(sequential_batch_size(target_vectors.shape[1]),
+               max(1, BATCH_MAX_MASK // max(1, len(times))))
     tables: list = [None] * len(target_times)
     start = 0
     while start < len(order):
