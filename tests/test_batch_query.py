@@ -83,10 +83,13 @@ def test_a_store_replaced_after_loading_is_not_mixed_in(demo_store, tmp_path):
 
 
 def test_a_date_query_imports_no_build_dask_or_figures(demo_store):
+    """Nor scipy (the intervals' Beta quantiles are analogs' own), xarray or the
+    writers' lock."""
     code = ("import sys; from analogs.cli import main; "
             f"main(['find', '--store', {str(demo_store.path)!r}, '--date', "
             f"{_dates(demo_store)[1]!r}, '--json']); "
-            "print('MODULES', [m for m in ('dask', 'matplotlib', 'sklearn', "
+            "print('MODULES', [m for m in ('dask', 'matplotlib', 'sklearn', 'scipy', "
+            "'xarray', 'filelock', "
             "'analogs.workflows.build', 'analogs.stages.sources', 'analogs.stages.eof', "
             "'analogs.stages.daily_climatology') if m in sys.modules])")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
@@ -96,17 +99,24 @@ def test_a_date_query_imports_no_build_dask_or_figures(demo_store):
 
 # ------------------------------------------------------------------- batch queries
 
-def test_find_many_equals_single_queries(demo_store):
+@pytest.mark.parametrize("settings", [dict(top=7, window=30),
+                                      dict(sequence=1, separation=0, top=12),
+                                      dict(window=183, exclude=0, weights="inverse_distance"),
+                                      dict(metric="event_weighted", top=15)])
+def test_find_many_equals_single_queries(demo_store, settings):
+    """find_many ranks its dates in batched searches (find_analogs_many); each answer,
+    JSON text and all, is the single query's (dates on neighbouring calendar days of
+    several years, so that groups form)."""
     store = AnalogStore.load(demo_store.path)
-    dates = _dates(store)
+    dates = _dates(store) + [str(day.date()) for day in store.days[[40, 41, 45, 406, 772]]]
     # The skill of these settings is measured by the first query and kept in the store
     # (its "source" says so); measure it once first so every answer reads the kept one.
-    store.find(date=dates[0], top=7, window=30)
+    store.find(date=dates[0], **settings)
     store = AnalogStore.load(demo_store.path)
-    many = store.find_many(dates, top=7, window=30)
+    many = store.find_many(dates, **settings)
     fresh = AnalogStore.load(demo_store.path)  # single queries from their own load
     assert [dumps(result) for result in many] == [
-        dumps(fresh.find(date=date, top=7, window=30)) for date in dates]
+        dumps(fresh.find(date=date, **settings)) for date in dates]
 
 
 def test_find_dates_on_the_command_line_equals_find_date(demo_store, tmp_path, capsys):

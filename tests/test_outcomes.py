@@ -9,13 +9,14 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from pyproj import Geod
-from scipy import ndimage, stats
+from scipy import ndimage, special, stats
 
 from analogs.errors import AnalogsInputError
 from analogs.geo import great_circle_km, initial_bearing_deg
 from analogs.stages.outcomes import (
     Region,
     analog_weights,
+    beta_quantile,
     binomial_interval,
     clean_events,
     convective_day,
@@ -27,6 +28,7 @@ from analogs.stages.outcomes import (
     neighbourhood_probability,
     outcome_maps,
     read_events,
+    regularized_beta,
     report_density,
     summarize_outcomes,
 )
@@ -246,6 +248,43 @@ def test_jeffreys_interval_coverage_near_nominal():
     assert np.mean(coverage) == pytest.approx(confidence, abs=0.015)
     exact_low, _ = binomial_interval(k, np.full(k.size, n), confidence)
     assert np.all(low[1:] >= exact_low[1:])  # shorter than the conservative exact one
+
+
+def test_beta_quantile_and_regularized_beta_match_scipy():
+    """beta_quantile (what the intervals use instead of scipy) against
+    scipy.special.betaincinv, and regularized_beta against scipy.special.betainc, over
+    the integer parameters of Clopper-Pearson bounds (k, n - k + 1) and random
+    non-integer ones (weighted effective counts, Jeffreys' k + 1/2)."""
+    rng = np.random.default_rng(18)
+    points = [(k, n - k + 1, q) for n in (1, 2, 5, 20, 30, 100, 250, 1000)
+              for k in range(1, n + 1, max(1, n // 25))
+              for q in (0.0005, 0.025, 0.05, 0.1, 0.5, 0.9, 0.95, 0.975, 0.9995)]
+    points += [tuple(row) for row in np.column_stack([rng.uniform(0.02, 300, 3000),
+                                                      rng.uniform(0.02, 300, 3000),
+                                                      rng.uniform(0.001, 0.999, 3000)])]
+    a, b, q = (np.array(column, dtype=float) for column in zip(*points))
+    expected = special.betaincinv(a, b, q)
+    np.testing.assert_allclose(beta_quantile(q, a, b), expected, rtol=1e-10, atol=0)
+    x = np.clip(expected, 1e-300, 1.0)
+    np.testing.assert_allclose([regularized_beta(*point) for point in zip(x, a, b)],
+                               special.betainc(a, b, x), rtol=1e-11, atol=1e-300)
+
+
+def test_beta_quantile_worked_examples():
+    """Closed forms (from memory): I_x(1, b) = 1 - (1 - x)^b, so the q quantile of
+    Beta(1, b) is 1 - (1 - q)^(1/b), the Clopper-Pearson upper bound for k = 0
+    (the "rule of three" 3/n at 95 % one-sided, approximately); Beta(1/2, 1/2) is the
+    arcsine law, quantile sin^2(pi q / 2); a = 0 and b = 0 are the degenerate limits."""
+    for b in (1, 3, 17.5, 400):
+        for q in (0.05, 0.5, 0.95):
+            assert beta_quantile(q, 1, b) == pytest.approx(-np.expm1(np.log1p(-q) / b),
+                                                           rel=1e-12)
+    for q in (0.01, 0.3, 0.9):
+        assert beta_quantile(q, 0.5, 0.5) == pytest.approx(np.sin(np.pi * q / 2) ** 2,
+                                                           rel=1e-12)
+    assert binomial_interval(0, 30, 0.9)[1] == pytest.approx(1 - 0.05 ** (1 / 30), rel=1e-12)
+    assert beta_quantile(0.05, 0, 5) == 0.0 and beta_quantile(0.95, 5, 0) == 1.0
+    assert beta_quantile(np.array([0.05, 0.95]), 2, 3).shape == (2,)
 
 
 def test_binomial_interval_errors():

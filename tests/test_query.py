@@ -14,7 +14,8 @@ from analogs.errors import AnalogsInputError
 from analogs.stages.index import AnalogIndex
 from analogs.stages.selection import (DEFAULT_SEPARATION, DEFAULT_TOP, DEFAULT_WINDOW,
                                       calendar_distance_days, candidate_ids, decluster,
-                                      exclusion_mask, find_analogs, rank_candidates, rank_many,
+                                      exclusion_mask, find_analogs, find_analogs_many,
+                                      rank_candidates, rank_many,
                                       season_mask)
 
 DAYS = pd.date_range("1991-01-01", "2000-12-31", freq="D") + pd.Timedelta(hours=12)
@@ -149,6 +150,34 @@ def test_rank_many_with_restrict_equals_ranking_each_target_alone(separation):
         np.testing.assert_array_equal(distances, alone["distance"].to_numpy())
     assert len(batch[0][0]) == 10
     assert 0 < len(batch[1][0]) <= 6 and (separation or len(batch[1][0]) == 6)
+
+
+@pytest.mark.parametrize(("kind", "settings"), [
+    ("flat", dict(top=10, window=45, exclude=10, separation=3)),
+    ("flat", dict(top=25, window=0, exclude=0, separation=0)),
+    ("flat", dict(top=5, window=183, exclude=None, separation=5)),
+    ("hnsw", dict(top=10, window=30, exclude=10, separation=3))])
+def test_find_analogs_many_equals_find_analogs_target_by_target(kind, settings):
+    """The batched searches of find_analogs_many (targets grouped by calendar day, the
+    union of their windows searched once) give each target exactly the table
+    find_analogs gives it alone: rows, ranks, times and bit-equal distances; with a
+    restriction (every other day) and targets on the same and neighbouring calendar
+    days, across the turn of the year and in any order."""
+    rng = np.random.default_rng(18)
+    pcs = np.cumsum(rng.normal(size=(len(DAYS), 6)), axis=0) * 0.1
+    index = AnalogIndex(kind=kind, hnsw_threshold=1).fit(pcs)
+    targets = np.concatenate([rng.choice(len(DAYS), 60, replace=False),
+                              [200, 565, 931, 1296, 1, 363, 364, 730]])
+    restrict = np.arange(len(DAYS)) % 2 == 0
+    many = find_analogs_many(index, DAYS, pcs[targets], DAYS[targets], restrict=restrict,
+                             **settings)
+    assert len(many) == len(targets)
+    for target, table in zip(targets, many):
+        alone = find_analogs(index, DAYS, pcs[target], target_time=DAYS[target],
+                             restrict=restrict, **settings)
+        pd.testing.assert_frame_equal(table, alone, check_exact=True)
+        # a window of 0 days leaves fewer allowed days than top: the short rankings too
+        assert len(alone) == settings["top"] or (settings["window"] == 0 and len(alone))
 
 
 def test_rank_many_rejects_a_restriction_of_the_wrong_shape():

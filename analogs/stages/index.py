@@ -32,6 +32,16 @@ INDEX_KINDS = P.index.choices
 SUBSET_SEARCH_MAX_SHARE = {"flat": 1 / 16, "hnsw": 1 / 8}
 
 
+def sequential_batch_size(n_dims) -> int:
+    """Most queries of ``n_dims`` components one flat search may hold and still have
+    faiss compute every distance with its sequential kernel, as for a query searched
+    alone. Above ``faiss.cvar.distance_compute_blas_threshold`` (queries times
+    components; a query count in faiss before 1.9, which this reads as a batch of one)
+    faiss computes the distances through a BLAS product, ``|x|^2 + |y|^2 - 2 x.y``, which
+    rounds otherwise and could reorder near ties."""
+    return max(1, (int(faiss.cvar.distance_compute_blas_threshold) - 1) // max(1, int(n_dims)))
+
+
 @contextlib.contextmanager
 def faiss_threads(n_threads):
     """Run the enclosed faiss work on ``n_threads`` OpenMP threads, then restore the

@@ -37,7 +37,9 @@ environments. Mon. Wea. Rev., 119, 1954-1978 (from memory).
 from __future__ import annotations
 
 import dataclasses
+import functools
 import math
+import sys
 from pathlib import Path
 from typing import TYPE_CHECKING
 
@@ -614,6 +616,11 @@ def binomial_interval(successes, trials, confidence=0.9, method="clopper-pearson
         is widened where needed to hold k / n (only a non-integer Jeffreys
         count within 1/2 of 0 or n needs it).
 
+    The Beta quantiles are :func:`beta_quantile` and the normal quantile of
+    Wilson's interval the standard library's ``NormalDist.inv_cdf``: scipy is
+    not imported, so a query does not pay for scipy.special's import (measured:
+    about 0.2 s of a 1.2 s ``find --json``).
+
     Returns
     -------
     (low, high) as floats for scalar input, else arrays.
@@ -631,31 +638,120 @@ def binomial_interval(successes, trials, confidence=0.9, method="clopper-pearson
         raise AnalogsInputError(
             f"The 'successes' parameter of {owner} must be a number in [0, trials]. "
             f"Got {successes!r} instead.")
-    from scipy import special  # imported here: scipy is not needed to load a store
     alpha = 1.0 - confidence
     if method == "wilson":
-        z = special.ndtri(1.0 - alpha / 2.0)
+        from statistics import NormalDist  # the standard normal quantile (Wichura 1988)
+        z = NormalDist().inv_cdf(1.0 - alpha / 2.0)
         p = k / n
         centre = (p + z * z / (2 * n)) / (1 + z * z / n)
         half = z * np.sqrt(p * (1 - p) / n + z * z / (4 * n * n)) / (1 + z * z / n)
         low, high = centre - half, centre + half
+    elif method == "jeffreys":
+        low = beta_quantile(alpha / 2, k + 0.5, n - k + 0.5)
+        high = beta_quantile(1 - alpha / 2, k + 0.5, n - k + 0.5)
     else:
-        with np.errstate(invalid="ignore", divide="ignore"):
-            if method == "jeffreys":
-                low = special.betaincinv(k + 0.5, n - k + 0.5, alpha / 2)
-                high = special.betaincinv(k + 0.5, n - k + 0.5, 1 - alpha / 2)
-            else:
-                low = special.betaincinv(k, n - k + 1, alpha / 2)
-                high = special.betaincinv(k + 1, n - k, 1 - alpha / 2)
-    # The exact limits at k = 0 and k = n, free of rounding in the formulas above;
-    # an interval always holds k / n (Jeffreys with a non-integer effective count
-    # within 1/2 of 0 or n would otherwise miss it).
+        low = beta_quantile(alpha / 2, k, n - k + 1)
+        high = beta_quantile(1 - alpha / 2, k + 1, n - k)
     low = np.where(k <= 0, 0.0, np.clip(np.minimum(low, k / n), 0.0, 1.0))
     high = np.where(k >= n, 1.0, np.clip(np.maximum(high, k / n), 0.0, 1.0))
     if np.ndim(low) == 0:
         return float(low), float(high)
     return low, high
 
+
+#: Relative step at which :func:`beta_quantile`'s Newton iterations stop, and the
+#: tolerance of the continued fraction of :func:`regularized_beta` (a few units in the
+#: last place of a float64).
+_BETA_TOLERANCE = 4 * sys.float_info.epsilon
+#: Terms of the continued fraction before it is declared not converging (it needs
+#: about sqrt(max(a, b)) terms: a few dozen for the counts of a query).
+_BETA_MAX_TERMS = 10_000
+
+
+def regularized_beta(x: float, a: float, b: float) -> float:
+    """The regularized incomplete beta function I_x(a, b), the Beta(a, b) CDF at x
+    (dimensionless; a, b > 0, 0 <= x <= 1).
+
+    Evaluated by its continued fraction (DLMF 8.17.22; Press et al. 2007, Numerical
+    Recipes 3rd ed., section 6.4) with the modified Lentz algorithm (Thompson &
+    Barnett 1986), on the side of the symmetry I_x(a, b) = 1 - I_{1-x}(b, a)
+    (DLMF 8.17.4) where it converges fast: x < (a + 1) / (a + b + 2).
+    """
+    if x <= 0.0:
+        return 0.0
+    if x >= 1.0:
+        return 1.0
+    if x > (a + 1.0) / (a + b + 2.0):
+        return 1.0 - regularized_beta(1.0 - x, b, a)
+    log_front = (a * math.log(x) + b * math.log1p(-x)
+                 - (math.lgamma(a) + math.lgamma(b) - math.lgamma(a + b)))
+    tiny = 1e-300
+    numerator, denominator = 1.0, 1.0 - (a + b) * x / (a + 1.0)  # Lentz's C and D
+    denominator = 1.0 / (denominator if abs(denominator) > tiny else tiny)
+    fraction = denominator
+    for m in range(1, _BETA_MAX_TERMS):
+        # d_{2m} then d_{2m+1} of DLMF 8.17.22
+        for term in (m * (b - m) * x / ((a + 2 * m - 1.0) * (a + 2 * m)),
+                     -(a + m) * (a + b + m) * x / ((a + 2 * m) * (a + 2 * m + 1.0))):
+            denominator = 1.0 + term * denominator
+            denominator = 1.0 / (denominator if abs(denominator) > tiny else tiny)
+            numerator = 1.0 + term / numerator
+            numerator = numerator if abs(numerator) > tiny else tiny
+            change = numerator * denominator
+            fraction *= change
+        if abs(change - 1.0) < _BETA_TOLERANCE:
+            return math.exp(log_front) * fraction / a
+    raise ArithmeticError(f"regularized_beta({x}, {a}, {b}): continued fraction did not converge")
+
+
+@functools.lru_cache(maxsize=4096)  # a batch of queries asks for the same few counts
+def _beta_quantile_scalar(q: float, a: float, b: float) -> float:
+    if a <= 0.0:  # the degenerate limits of Beta(a, b): all mass at 0 or at 1
+        return 0.0
+    if b <= 0.0:
+        return 1.0
+    if q <= 0.0 or q >= 1.0:
+        return 0.0 if q <= 0.0 else 1.0
+    log_beta = math.lgamma(a) + math.lgamma(b) - math.lgamma(a + b)
+    low, high = 0.0, 1.0
+    x = a / (a + b)  # the mean: a start inside the bracket
+    for _ in range(200):
+        excess = regularized_beta(x, a, b) - q
+        if excess == 0.0:
+            return x
+        if excess > 0.0:
+            high = x
+        else:
+            low = x
+        density = math.exp((a - 1.0) * math.log(x) + (b - 1.0) * math.log1p(-x) - log_beta)
+        step = excess / density if density > 0.0 else math.inf
+        if abs(step) <= _BETA_TOLERANCE * x:
+            return x - step
+        guess = x - step
+        if not low < guess < high:  # Newton left the bracket: bisect instead
+            guess = 0.5 * (low + high)
+        if high - low <= _BETA_TOLERANCE * high:
+            return guess
+        x = guess
+    return x
+
+
+def beta_quantile(q, a, b):
+    """The ``q`` quantile of the Beta(a, b) distribution: x with I_x(a, b) = q
+    (dimensionless; arrays broadcast). a = 0 gives 0 and b = 0 gives 1 (the limits of
+    the distribution), as the Clopper-Pearson bounds at k = 0 and k = n are.
+
+    Newton's method on :func:`regularized_beta` (its derivative is the Beta density),
+    kept inside a bracket of the root that every step narrows, so it falls back to
+    bisection where Newton would leave it (Press et al. 2007, Numerical Recipes 3rd ed.,
+    sections 6.14 and 9.4). Accurate to a few units in the last place, as the inverse
+    of scipy's ``betaincinv`` it replaces (tested against it).
+    """
+    q, a, b = np.broadcast_arrays(*(np.asarray(value, dtype=float) for value in (q, a, b)))
+    values = np.array([_beta_quantile_scalar(*point) for point in zip(q.ravel().tolist(),
+                                                                       a.ravel().tolist(),
+                                                                       b.ravel().tolist())])
+    return float(values[0]) if q.ndim == 0 else values.reshape(q.shape)
 
 def analog_weights(distances, scheme="equal") -> np.ndarray:
     """Similarity weights for analogs from their distances, summing to 1.

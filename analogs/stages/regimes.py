@@ -34,7 +34,6 @@ from __future__ import annotations
 import calendar
 import dataclasses
 import numbers
-import tomllib
 from dataclasses import dataclass, field, fields
 from os import PathLike
 from pathlib import Path
@@ -208,6 +207,7 @@ class RegimeRules:
         values: dict = {}
         source = "keyword arguments"
         if path is not None:
+            import tomllib  # imported here: a query reads the tags' units, never a rules file
             path = Path(path)
             try:
                 with open(path, "rb") as handle:

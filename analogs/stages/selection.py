@@ -20,7 +20,7 @@ import pandas as pd
 
 from analogs.parameters import P
 from analogs.errors import AnalogsInputError
-from analogs.stages.index import AnalogIndex
+from analogs.stages.index import AnalogIndex, sequential_batch_size
 
 #: Mean length of the year in days, for circular calendar-day distances.
 DAYS_PER_YEAR = 365.2425
@@ -228,12 +228,91 @@ def rank_candidates(index: AnalogIndex, times, target_vector, allowed, *, top, s
     times = _as_index(times)
     (rows, distances), = rank_many(index, times, np.atleast_2d(target_vector), allowed,
                                    top=top, separation=separation)
+    return _ranking_table(times, rows, distances)
+
+
+def _ranking_table(times, rows, distances) -> pd.DataFrame:
+    """The ranking of one target as :func:`find_analogs` returns it."""
     return pd.DataFrame({
         "rank": np.arange(1, len(rows) + 1),
         "time": times[rows],
         "distance": distances,
         "row": rows,
     })
+
+
+#: Largest spread of calendar days (circular, days) of the targets that
+#: :func:`find_analogs_many` ranks in one search: the union of their season windows is
+#: searched once and each target drops the rows of the others' windows afterwards, so a
+#: wider spread fetches more rows per target for fewer searches.
+BATCH_SPREAD_DAYS = 10
+#: Most (target, archive day) pairs of one batch's allowed-rows mask (bytes): the batch
+#: is cut before the mask of a long archive outgrows this.
+BATCH_MAX_MASK = 2 ** 25
+
+
+def find_analogs_many(index: AnalogIndex, times, target_vectors, target_times, *,
+                      top=DEFAULT_TOP, window=DEFAULT_WINDOW, exclude=0,
+                      separation=DEFAULT_SEPARATION, restrict=None) -> list[pd.DataFrame]:
+    """:func:`find_analogs` for many targets with the same settings, in batched searches.
+
+    Targets are sorted by calendar day and taken in groups whose calendar days lie
+    within ``BATCH_SPREAD_DAYS`` of the group's first (and at most
+    :func:`~analogs.stages.index.sequential_batch_size` targets, so faiss computes each
+    distance as for a target alone, and within ``BATCH_MAX_MASK`` of memory for their
+    allowed rows): one :func:`rank_many` call ranks the union of the
+    group's allowed rows, and each target keeps only its own (its season window and
+    exclusion, ``restrict``), fetching more rows to make up for the others'. So each
+    table equals ``find_analogs(index, times, target_vectors[j],
+    target_time=target_times[j], ...)``, which an approximate (HNSW) index is asked
+    target by target to give: its walk depends on the rows allowed.
+
+    Parameters
+    ----------
+    target_vectors : array (m, d) in the index's space.
+    target_times : m valid times (none missing).
+    top, window, exclude, separation, restrict : as in :func:`find_analogs`.
+
+    Returns
+    -------
+    list of m DataFrames as :func:`find_analogs` returns them, in the targets' order.
+    """
+    owner = "find_analogs_many"
+    top, separation = P.top.check(top, owner), P.separation.check(separation, owner)
+    if window is not None:
+        P.window.check(window, owner)
+    if exclude is not None:
+        P.exclude.check(exclude, owner)
+    times = _as_index(times)
+    target_vectors = np.atleast_2d(np.asarray(target_vectors))
+    target_times = pd.DatetimeIndex(target_times)
+    settings = {"top": top, "window": window, "exclude": exclude, "separation": separation,
+                "restrict": restrict}
+    if getattr(index, "kind_", None) != "flat":
+        return [find_analogs(index, times, vector, target_time=when, **settings)
+                for vector, when in zip(target_vectors, target_times)]
+    calendar_days = day_of_year(target_times)
+    order = np.argsort(calendar_days, kind="stable")
+    most = min(sequential_batch_size(target_vectors.shape[1]),
+               max(1, BATCH_MAX_MASK // max(1, len(times))))
+    tables: list = [None] * len(target_times)
+    start = 0
+    while start < len(order):
+        stop = start + 1
+        while (stop < len(order) and stop - start < most
+               and calendar_days[order[stop]] - calendar_days[order[start]] <= BATCH_SPREAD_DAYS):
+            stop += 1
+        group = order[start:stop]
+        allowed = np.zeros((len(group), len(times)), dtype=bool)
+        for position, target in enumerate(group):
+            allowed[position, candidate_ids(times, target_times[target], window=window,
+                                            exclude=exclude, restrict=restrict)] = True
+        ranked = rank_many(index, times, target_vectors[group], np.flatnonzero(allowed.any(axis=0)),
+                           top=top, separation=separation, restrict=allowed)
+        for target, (rows, distances) in zip(group, ranked):
+            tables[target] = _ranking_table(times, rows, distances)
+        start = stop
+    return tables
 
 
 def rank_many(index: AnalogIndex, times, target_vectors, allowed, *, top, separation,

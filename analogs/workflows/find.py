@@ -32,6 +32,7 @@ daily counts of the store's own region are kept in the store (``counts.parquet``
 
 from __future__ import annotations
 
+import inspect
 import os
 import warnings
 import weakref
@@ -57,7 +58,7 @@ from analogs.stages.outcomes import (
     summarize_outcomes,
 )
 from analogs.stages import outcomes as outcome_stage
-from analogs.stages.selection import candidate_ids, find_analogs
+from analogs.stages.selection import candidate_ids, find_analogs, find_analogs_many
 
 if TYPE_CHECKING:  # xarray is imported by the field targets and the report only
     import xarray as xr
@@ -139,10 +140,22 @@ def find(store, *, date=None, field=None, time=None, top=P.top.api_default,
     (:func:`warn_near_duplicate`).
     """
     owner = "find"
-    top = store.query_defaults.get("top", P.top.default) if top is None else top
     if (date is None) == (field is None):
         raise AnalogsInputError(f"{owner} needs exactly one target, date (YYYY-MM-DD) or "
                                 f"field (a file or Dataset). Got {'both' if date is not None else 'neither'}.")
+    query = _checked_query(store, owner, top=top, window=window, exclude=exclude,
+                           separation=separation, region=region, regime=regime,
+                           weights=weights, confidence=confidence, sequence=sequence,
+                           kinds=kinds, metric=metric, skip_skill_hindcast=skip_skill_hindcast)
+    if date is not None:
+        return _day_result(store, query.for_date(), day_row(store, date))
+    return find_field(store, field, time, query)
+
+
+def _checked_query(store, owner, *, top, window, exclude, separation, region, regime,
+                   weights, confidence, sequence, kinds, metric, skip_skill_hindcast) -> _Query:
+    """The options of :func:`find` but its targets, checked, as a :class:`_Query`."""
+    top = store.query_defaults.get("top", P.top.default) if top is None else top
     top, window, exclude = (P.top.check(top, owner), P.window.check(window, owner),
                             P.exclude.check(exclude, owner))
     separation, sequence = P.separation.check(separation, owner), P.sequence.check(sequence, owner)
@@ -158,53 +171,92 @@ def find(store, *, date=None, field=None, time=None, top=P.top.api_default,
         region = resolve_region(store, region)
         if kinds is not None and store.events is not None:
             daily_counts(store, region, kinds)  # refuses unknown kinds early; kept for later
-    query = _Query.resolve(store, top=top, window=window, exclude=exclude,
-                           separation=separation, region=region, regime=regime,
-                           weights=weights, confidence=confidence, sequence=sequence,
-                           kinds=kinds, metric=metric,
-                           skip_skill_hindcast=bool(skip_skill_hindcast))
-    if date is not None:
-        row = day_row(store, date)
-        vector = store.pc_values[row, :query.n_modes]
-        if sequence:
-            vector = sequence_vectors(store, sequence)[0][row]
-        target_time = store.times[row]
-        query = query.with_exclude(P.exclude.default if exclude is None else exclude)
-        target = {"date": str(store.days[row].date()), **regime_of_day(store, row),
-                  **diagnostics_of_day(store, row)}
-        analogs, outcomes = query.answer(store, vector, target_time)
-        return FindResult(target=target, analogs=analogs, outcomes=outcomes,
-                          settings=query.settings(store), region=query.region)
-    return find_field(store, field, time, query)
+    return _Query.resolve(store, top=top, window=window, exclude=exclude,
+                          separation=separation, region=region, regime=regime,
+                          weights=weights, confidence=confidence, sequence=sequence,
+                          kinds=kinds, metric=metric,
+                          skip_skill_hindcast=bool(skip_skill_hindcast))
+
+
+def _day_vector(store, query: _Query, row: int) -> np.ndarray:
+    """The vector searched for archive row ``row`` as a date target."""
+    if query.sequence:
+        return sequence_vectors(store, query.sequence)[0][row]
+    return store.pc_values[row, :query.n_modes]
+
+
+def _day_result(store, query: _Query, row: int, chosen=None) -> FindResult:
+    """The answer for archive row ``row`` as a date target; ``chosen``: its selection
+    when already made (:func:`find_many` ranks its dates in batches)."""
+    target = {"date": str(store.days[row].date()), **regime_of_day(store, row),
+              **diagnostics_of_day(store, row)}
+    analogs, outcomes = query.answer(store, _day_vector(store, query, row), store.times[row],
+                                     chosen=chosen)
+    return FindResult(target=target, analogs=analogs, outcomes=outcomes,
+                      settings=query.settings(store), region=query.region)
 
 
 def find_many(store, dates, **options) -> list[FindResult]:
     """:func:`find` for many archive dates in one process: the store is loaded once and
     everything a query derives from it (index, daily counts, regime arrays, the rows a
-    regime or sequence allows) is made once, so each date costs what the query itself
-    costs. Each answer is the one ``find(store, date=..., **options)`` gives.
+    regime or sequence allows) is made once, and the dates' analogs are ranked in
+    batched searches of the index
+    (:func:`analogs.stages.selection.find_analogs_many`), so each date costs what the
+    query itself costs. Each answer is the one ``find(store, date=..., **options)`` gives.
 
     ``dates``: archive days (YYYY-MM-DD text, Timestamps) or the path (``str`` or
     ``Path``) of a text file with one day a line (:func:`read_dates`). ``options`` are
-    those of :func:`find` except the targets (``date``, ``field``, ``time``).
+    those of :func:`find` except the targets (``date``, ``field``, ``time``). A date that
+    cannot be answered is refused with its place (file and line, or list position).
     """
     for target in ("date", "field", "time"):
         if target in options:
             raise AnalogsInputError(f"find_many takes its targets from 'dates'; "
                                     f"'{target}' is not one of its options")
+    unknown = sorted(set(options) - set(_FIND_OPTIONS))
+    if unknown:
+        raise TypeError(f"find_many() got an unexpected keyword argument {unknown[0]!r}")
     if isinstance(dates, (str, os.PathLike)):
         dates = read_dates(dates)
     else:
         dates = [(f"dates[{position}]", date) for position, date in enumerate(dates)]
-    results = []
+    query = _checked_query(store, "find", **{**_FIND_OPTIONS, **options}).for_date()
+    rows, refused = [], None
     for where, date in dates:
         try:
-            results.append(find(store, date=date, **options))
+            rows.append(day_row(store, date))
+        except AnalogsInputError as error:  # the dates before it are answered first
+            refused = _date_refused(where, date, error)
+            break
+    vectors = np.array([_day_vector(store, query, row) for row in rows])
+    if query.transform is not None and rows:
+        vectors = vectors @ query.transform
+    rankings = find_analogs_many(
+        query.index, store.times, vectors, store.times[rows], top=query.top, window=query.window, exclude=query.exclude,
+        separation=query.separation, restrict=query.restrict) if rows else []
+    results = []
+    for (where, date), row, chosen in zip(dates, rows, rankings):
+        try:
+            results.append(_day_result(store, query, row, chosen))
         except AnalogsInputError as error:
-            if not where.startswith("dates["):  # a file line: its name and line first
-                raise AnalogsInputError(f"{where}: {' '.join(str(error).split())}") from None
-            raise AnalogsInputError(f"{where} ({date!r}): {error}") from None
+            raise _date_refused(where, date, error) from None
+    if refused is not None:
+        raise refused from None
     return results
+
+
+def _date_refused(where, date, error) -> AnalogsInputError:
+    if not where.startswith("dates["):  # a file line: its name and line first
+        return AnalogsInputError(f"{where}: {' '.join(str(error).split())}")
+    return AnalogsInputError(f"{where} ({date!r}): {error}")
+
+
+#: find's options but its targets, with their defaults (from its signature, where
+#: they are defined once), for find_many.
+_FIND_OPTIONS = {name: parameter.default
+                 for name, parameter in inspect.signature(find).parameters.items()
+                 if parameter.kind is parameter.KEYWORD_ONLY
+                 and name not in ("date", "field", "time")}
 
 
 def read_dates(path) -> list[tuple[str, str]]:
@@ -276,6 +328,10 @@ class _Query:
     def with_exclude(self, exclude) -> _Query:
         return dataclasses_replace(self, exclude=exclude)
 
+    def for_date(self) -> _Query:
+        """The query of a date target: by default its own episode is excluded."""
+        return self.with_exclude(P.exclude.default if self.exclude is None else self.exclude)
+
     def settings(self, store) -> dict:
         region = self.region
         return {"top": self.top, "window_days": self.window, "exclude_days": self.exclude,
@@ -295,16 +351,18 @@ class _Query:
         return store.skill_for(target_time, region=self.region, kinds=self.kinds,
                                settings=settings, measure=not self.skip_skill_hindcast)
 
-    def answer(self, store, vector, target_time) -> tuple[pd.DataFrame, object]:
-        """The analogs table and the outcome summary of one target vector."""
-        vector = np.asarray(vector, dtype=float)
-        if not self.sequence:
-            vector = vector[:self.n_modes]
-        if self.transform is not None:
-            vector = vector @ self.transform
-        chosen = find_analogs(self.index, store.times, vector, target_time=target_time,
-                              top=self.top, window=self.window, exclude=self.exclude,
-                              separation=self.separation, restrict=self.restrict)
+    def answer(self, store, vector, target_time, chosen=None) -> tuple[pd.DataFrame, object]:
+        """The analogs table and the outcome summary of one target vector; ``chosen``: its
+        selection (:func:`~analogs.stages.selection.find_analogs`) when already made."""
+        if chosen is None:
+            vector = np.asarray(vector, dtype=float)
+            if not self.sequence:
+                vector = vector[:self.n_modes]
+            if self.transform is not None:
+                vector = vector @ self.transform
+            chosen = find_analogs(self.index, store.times, vector, target_time=target_time,
+                                  top=self.top, window=self.window, exclude=self.exclude,
+                                  separation=self.separation, restrict=self.restrict)
         if chosen.empty:
             raise AnalogsInputError(
                 "no archive day is allowed as an analog of this target "

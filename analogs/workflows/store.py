@@ -38,7 +38,6 @@ from typing import TYPE_CHECKING
 
 import numpy as np
 import pandas as pd
-from filelock import FileLock, Timeout
 
 from analogs import __version__
 from analogs.errors import StoreError
@@ -47,6 +46,7 @@ from analogs.workflows import paths as _paths
 
 if TYPE_CHECKING:  # xarray is imported to read or write a NetCDF file whole
     import xarray as xr
+    from filelock import FileLock
 
 FORMAT_VERSION = 1
 MANIFEST = "manifest.json"
@@ -104,6 +104,7 @@ def _swap_into_place(staged: Path, target: Path) -> None:
 
 def lock_for(path) -> FileLock:
     """The lock that keeps two writers of one store apart (a file beside the store)."""
+    from filelock import FileLock  # imported here: only writers lock (readers retry)
     path = Path(path)
     return FileLock(str(path.with_name(f".{path.name}.lock")))
 
@@ -244,6 +245,7 @@ def transaction(path, *, new=False, timeout=None):
     with write_errors(path):
         path.parent.mkdir(parents=True, exist_ok=True)
         _check_writable(path)
+        from filelock import Timeout
         try:
             lock = lock_for(path)
             lock.acquire(timeout=seconds)

@@ -8,7 +8,11 @@ ratio are printed for wall time and for CPU time (user + system of the child: on
 machine the steadier figure) (issue 18: within 4x, moonshot 2.5x).
 
 Batch: ``analogs find --dates FILE --json`` over ``--batch`` archive dates, per date,
-against one single command (the median above).
+against one single command (the median above), and a date's own cost (what the batch
+command takes beyond one single command, over the other dates).
+
+The children keep their bytecode in ``OUT/bytecode`` whatever PYTHONDONTWRITEBYTECODE
+says, as an installed package has its modules compiled (``--no-bytecode-cache``: not).
 
     python tests/benchmarks/bench_query.py --out /tmp/analogs-bench-query [--store STORE]
 
@@ -65,10 +69,20 @@ def make_store(out: Path, years: int) -> Path:
     return store
 
 
+#: Where the children keep their bytecode (set by main): an installed package has its
+#: modules compiled (pip compiles them), so a child run with PYTHONDONTWRITEBYTECODE
+#: would time the compiler instead (about 0.1 s of find --json). The folder is outside
+#: the trees timed, which are left as they are.
+BYTECODE = {"prefix": None}
+
+
 def timed(command, tree=ROOT) -> tuple[float, float]:
     """Wall time and CPU time (user + system of the child) of one run, in seconds. On a
     shared machine the CPU time is the steadier figure: waiting for a core is not in it."""
     env = dict(os.environ, PYTHONPATH=str(tree))
+    if BYTECODE["prefix"] is not None:
+        env.pop("PYTHONDONTWRITEBYTECODE", None)
+        env["PYTHONPYCACHEPREFIX"] = str(BYTECODE["prefix"])
     before = resource.getrusage(resource.RUSAGE_CHILDREN)
     start = time.perf_counter()
     # From a neutral folder: `python -m` puts the working folder first on sys.path, which
@@ -104,8 +118,13 @@ def main(argv=None) -> int:
                              "the main branch before this change), interleaved")
     parser.add_argument("--batch", type=int, default=200,
                         help="dates of the batch command (default 200; 0: no batch)")
+    parser.add_argument("--no-bytecode-cache", action="store_true",
+                        help="let the children follow PYTHONDONTWRITEBYTECODE (compile every "
+                             "module of a tree without bytecode at each run)")
     args = parser.parse_args(argv)
     args.out.mkdir(parents=True, exist_ok=True)
+    if not args.no_bytecode_cache:
+        BYTECODE["prefix"] = args.out / "bytecode"
     store = args.store or make_store(args.out, args.years)
     dates = archive_dates(store, max(args.batch, 1))
     date = archive_dates(store, 5)[2]
@@ -120,8 +139,16 @@ def main(argv=None) -> int:
     floor = [sys.executable, str(minimal_script), str(store / "scores.nc"), str(row)]
     batch = [sys.executable, "-m", "analogs", "find", "--store", str(store), "--dates",
              str(dates_file), "--json"]
-    timed(tool), timed(floor)  # warm the file cache
+    # Warm the file cache and write the bytecode of every tree timed.
+    timed(tool), timed(floor)
+    if args.baseline_tree:
+        timed(tool, args.baseline_tree)
+    if args.batch:
+        timed(batch)
+        if args.baseline_tree:
+            timed(batch, args.baseline_tree)
     tool_times, floor_times, batch_times, baseline_times = [], [], [], []
+    baseline_batch_times = []
     for _ in range(args.runs):  # interleaved, so load changes hit both alike
         tool_times.append(timed(tool))
         floor_times.append(timed(floor))
@@ -129,6 +156,8 @@ def main(argv=None) -> int:
             baseline_times.append(timed(tool, args.baseline_tree))
     for _ in range(max(3, args.runs // 3) if args.batch else 0):
         batch_times.append(timed(batch))
+        if args.baseline_tree:
+            baseline_batch_times.append(timed(batch, args.baseline_tree))
 
     def median(runs, which):  # which: 0 wall, 1 CPU
         return statistics.median(run[which] for run in runs) if runs else float("nan")
@@ -141,12 +170,20 @@ def main(argv=None) -> int:
     for which, label in ((0, "wall"), (1, "cpu")):
         tool_median, floor_median = median(tool_times, which), median(floor_times, which)
         batch_per_date = median(batch_times, which) / len(dates)
+        # A date's own cost: what the batch command takes beyond one single command
+        # (start-up, imports, load), shared out over the other dates.
+        marginal = (median(batch_times, which) - tool_median) / max(1, len(dates) - 1)
+        baseline_marginal = ((median(baseline_batch_times, which)
+                              - median(baseline_times, which)) / max(1, len(dates) - 1))
         figures[label] = {
             "find_json_s": tool_median, "minimal_program_s": floor_median,
             "ratio": tool_median / floor_median,
             "baseline_find_json_s": median(baseline_times, which),
             "baseline_ratio": median(baseline_times, which) / floor_median,
             "batch_command_s": median(batch_times, which), "batch_per_date_s": batch_per_date,
+            "batch_marginal_per_date_s": marginal,
+            "baseline_batch_command_s": median(baseline_batch_times, which),
+            "baseline_batch_marginal_per_date_s": baseline_marginal,
             "single_over_batch_per_date": tool_median / batch_per_date}
         line = figures[label]
         print(f"{label} time (median s)")
@@ -159,9 +196,13 @@ def main(argv=None) -> int:
         if batch_times:
             print(f"  find --dates, {len(dates)} dates: {line['batch_command_s']:.3f} s, "
                   f"{1000 * batch_per_date:.1f} ms a date, "
-                  f"{line['single_over_batch_per_date']:.0f}x less than one command a date")
+                  f"{line['single_over_batch_per_date']:.0f}x less than one command a date; "
+                  f"{1000 * marginal:.1f} ms a date beyond one command")
+        if baseline_batch_times:
+            print(f"  baseline tree: find --dates     {line['baseline_batch_command_s']:8.3f} s, "
+                  f"{1000 * baseline_marginal:.1f} ms a date beyond one command")
     figures.update(tool_runs=tool_times, floor_runs=floor_times, baseline_runs=baseline_times,
-                   batch_runs=batch_times)
+                   batch_runs=batch_times, baseline_batch_runs=baseline_batch_times)
     print(json.dumps(figures))
     return 0
 
