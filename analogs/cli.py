@@ -326,11 +326,12 @@ def _print_valid_times(store, result, args) -> int:
 def _cmd_verify(args) -> int:
     from analogs.api import AnalogStore
     from analogs.presentation.report import dumps, verify_text
+    from analogs.workflows.skill import TUNED_METRIC
     if args.save and not args.tune:
         raise AnalogsInputError("--save records the result of --tune; pass both")
-    if args.tune and args.metric != P.metric.default:
+    if args.tune and args.metric not in (None, TUNED_METRIC):
         raise AnalogsInputError(f"--tune scans the numbers of analogs and modes with --metric "
-                                f"{P.metric.default} only; drop --metric {args.metric}")
+                                f"{TUNED_METRIC} only; drop --metric {args.metric}")
     store = AnalogStore.load(args.store)
     tuning = None
     if args.tune:
@@ -339,9 +340,10 @@ def _cmd_verify(args) -> int:
         tuning = nested_tune(store, window=args.window, separation=args.separation,
                              region=args.region, months=args.season, kinds=args.kind,
                              progress=not args.quiet)
-        if args.save:
+        if args.save:  # the metric tuned (plain) is recorded with its setting
             store = store.save_query_defaults(**tuning["best"])
         args.top, args.modes = tuning["best"]["top"], tuning["best"]["n_modes"]
+        args.metric = tuning["best"]["metric"]
     summary = store.verify(top=args.top, window=args.window, separation=args.separation,
                            n_modes=args.modes, region=args.region, months=args.season,
                            threshold=args.threshold, kinds=args.kind, metric=args.metric,

@@ -347,8 +347,11 @@ PARAMETERS: dict[str, Parameter] = _table(
               "range, one answer per valid time from one reading of the file",
               metavar="ISO|all|START/END", default_text="the file's only time"),
     Parameter("top", ("--top",), "number of analogs: the closest archive days by "
-              "distance, " + DISTANCE, kind="int", default=20, api_default=None, minimum=1,
-              metavar="N", default_text="the store's tuned value, else 20"),
+              "distance, " + DISTANCE + "; with --metric event_weighted (the default) "
+              "the distances are in its weighted space. 50 by default: with 20 the "
+              "event-weighted analogs fell short of a logistic regression on the demo",
+              kind="int", default=50, api_default=None, minimum=1,
+              metavar="N", default_text="the store's tuned value, else 50"),
     Parameter("window", ("--window",), "season window: only days within this many calendar "
               "days of the target's calendar day, any year", kind="int", default=45,
               minimum=0, maximum=183, units="calendar days", metavar="DAYS"),
@@ -369,15 +372,18 @@ PARAMETERS: dict[str, Parameter] = _table(
               "(weights 0.5, 0.25), so analogs share the pattern's evolution; a --field file "
               "must then hold those days too", kind="int", default=0, minimum=0, maximum=2,
               units="days", metavar="DAYS", default_text="0, the day alone"),
-    Parameter("metric", ("--metric",), "distance of the analog search: 'plain' is the "
-              "Euclidean distance of the PCs; 'event_weighted' scales each PC by how much it "
-              "says about the event forecast (reports of --kind in --region), from a logistic "
-              "regression on the archive's days (in verify, on the other years only), and "
-              "adds the regression's PC score as one more coordinate (predictor weighting, "
-              "Delle Monache et al. 2013; the analogs' distances are then in that space); "
-              "with 50 analogs it matched that regression's skill on the demo, with 20 "
-              "it did not", kind="choice", default="plain",
-              choices=("plain", "event_weighted")),
+    Parameter("metric", ("--metric",), "distance of the analog search: "
+              "'event_weighted' scales each PC by how much it says about the event "
+              "forecast (reports of --kind in --region), from a logistic regression on the "
+              "archive's days (in verify, on the other years only), and adds the "
+              "regression's PC score as one more coordinate (predictor weighting, Delle "
+              "Monache et al. 2013; the analogs' distances are then in that space): the "
+              "default, because with 50 analogs it matched that regression's skill on the "
+              "demo where the plain distance did not; 'plain', the simple version, is the "
+              "Euclidean distance of the PCs", kind="choice", default="event_weighted",
+              api_default=None, choices=("plain", "event_weighted"),
+              default_text="the store's tuned value (verify --tune --save records plain), "
+              "else event_weighted"),
     Parameter("weights", ("--weights",), "weights of the analogs in the outcome statistics",
               kind="choice", default="equal", choices=("equal", "inverse_distance", "gaussian")),
     Parameter("confidence", (), "level of the confidence intervals of the outcome "

@@ -81,16 +81,25 @@ def test_hindcast_weights_never_see_the_held_out_year():
     np.testing.assert_array_equal(before.loc[mine, "forecast"], after.loc[mine, "forecast"])
     assert not np.array_equal(before.loc[~mine, "forecast"], after.loc[~mine, "forecast"])
     # The plain metric's forecasts are another thing: the option changes the hindcast.
-    plain = leave_one_year_out(pcs, times, observed)
+    plain = leave_one_year_out(pcs, times, observed, metric="plain")
     assert not np.array_equal(plain["forecast"], before["forecast"])
 
 
 @pytest.fixture
 def store_copy(demo_store, tmp_path):
-    """A copy of the session's store without what other tests kept in its manifest."""
+    """A copy of the session's store without what other tests kept in its manifest (the
+    build's own map, of the store's region and every kind, stays)."""
     path = rh.copy_store(demo_store.path, tmp_path / "store")
-    store_io.edit_manifest(path, lambda manifest, files: {
-        k: v for k, v in manifest.items() if k not in ("skill_cache", "predictor_weights")})
+
+    def built_only(manifest, files):
+        kept = {k: v for k, v in (manifest.get("predictor_weights") or {}).items()
+                if v["key"]["region"] == manifest["config"]["region"]
+                and v["key"]["kinds"] is None}
+        return {**{k: v for k, v in manifest.items()
+                   if k not in ("skill_cache", "predictor_weights")},
+                "predictor_weights": kept}
+
+    store_io.edit_manifest(path, built_only)
     return path
 
 
@@ -102,16 +111,19 @@ def _cli_json(*argv):
 
 
 def test_find_searches_the_weighted_space_fitted_on_the_store(store_copy):
-    """find --metric event_weighted: the map is fitted on the store's days (equal to
-    fit_predictor_weights on them), kept in the manifest for the next load, and the
-    analogs' distances are the Euclidean distances of the mapped vectors (scipy cdist);
-    the default stays the plain metric, whose distances are those of the PCs."""
+    """find (event_weighted, the default): the map of the store's region is fitted on
+    the store's days at build (equal to fit_predictor_weights on them) and kept in the
+    manifest, so the query finds it there, and the analogs' distances are the Euclidean
+    distances of the mapped vectors (scipy cdist); --metric plain, the simple version,
+    gives distances of the PCs."""
     store = AnalogStore.load(store_copy)
+    assert len(store.manifest["predictor_weights"]) == 1  # kept by the build
     weighted = _cli_json("find", "--store", str(store_copy), "--date", DATE,
-                         "--metric", "event_weighted", "--skip-skill-hindcast")
+                         "--skip-skill-hindcast")
     assert weighted["settings"]["metric"] == "event_weighted"
+    assert len(weighted["analogs"]) == 50
     reloaded = AnalogStore.load(store_copy)
-    assert len(reloaded.manifest["predictor_weights"]) == 1
+    assert reloaded.manifest["predictor_weights"] == store.manifest["predictor_weights"]
     kept = np.asarray(next(iter(reloaded.manifest["predictor_weights"].values()))["transform"])
     covered = store.covered
     expected = fit_predictor_weights(store.pc_values[covered], store.times[covered],
@@ -125,8 +137,8 @@ def test_find_searches_the_weighted_space_fitted_on_the_store(store_copy):
     np.testing.assert_allclose([a["distance"] for a in weighted["analogs"]], distances,
                                rtol=1e-5)
     plain = _cli_json("find", "--store", str(store_copy), "--date", DATE,
-                      "--skip-skill-hindcast")
-    assert "metric" not in plain["settings"]
+                      "--metric", "plain", "--skip-skill-hindcast")
+    assert plain["settings"]["metric"] == "plain"
     rows = [int(np.flatnonzero(store.days == pd.Timestamp(a["date"]))[0])
             for a in plain["analogs"]]
     np.testing.assert_allclose([a["distance"] for a in plain["analogs"]],
@@ -142,8 +154,7 @@ def test_verify_and_skill_line_measure_the_metric_asked(store_copy):
     it names the verify command with --metric."""
     from sklearn.metrics import brier_score_loss
     store = AnalogStore.load(store_copy)
-    summary = _cli_json("verify", "--store", str(store_copy), "--metric", "event_weighted",
-                        "--quiet")
+    summary = _cli_json("verify", "--store", str(store_copy), "--quiet")  # the default
     assert summary["settings"]["metric"] == "event_weighted"
     assert "caution" in summary
     hindcast = leave_one_year_out(store.pcs.values, store.times, store.observed(),
@@ -151,24 +162,21 @@ def test_verify_and_skill_line_measure_the_metric_asked(store_copy):
     expected = 1 - (brier_score_loss(hindcast["observed"], hindcast["forecast"])
                     / brier_score_loss(hindcast["observed"], hindcast["climatology"]))
     assert summary["brier_skill_score"] == pytest.approx(expected, rel=1e-9)
-    plain = _cli_json("verify", "--store", str(store_copy), "--quiet")
-    assert "metric" not in plain["settings"]
+    plain = _cli_json("verify", "--store", str(store_copy), "--metric", "plain", "--quiet")
+    assert plain["settings"]["metric"] == "plain"
     assert plain["brier_skill_score"] != pytest.approx(expected, rel=1e-6)
     from analogs.workflows.skill import skill_settings
-    unmeasured = store.skill_for(DATE, settings=skill_settings(store, metric="event_weighted"),
+    unmeasured = store.skill_for(DATE, settings=skill_settings(store, metric="plain"),
                                  measure=False)
-    assert unmeasured["command"].endswith("--metric event_weighted")
-    skill = _cli_json("find", "--store", str(store_copy), "--date", DATE, "--metric",
-                      "event_weighted")["outcomes"]["skill"]
-    assert skill["source"].startswith("measured now")
+    assert unmeasured["command"].endswith("--metric plain")
+    skill = _cli_json("find", "--store", str(store_copy), "--date", DATE)["outcomes"]["skill"]
+    assert skill["source"] == "build"  # the build measured the default metric
     assert skill["brier_skill_score"] == pytest.approx(expected, rel=1e-9)
 
 
 @pytest.mark.parametrize("argv, expected", [
     (["verify", "--metric", "event_weighted", "--tune"], "--tune scans"),
     (["verify", "--metric", "nearest"], "--metric must be one of"),
-    (["find", "--date", DATE, "--metric", "event_weighted", "--sequence", "1"],
-     "does not combine with a sequence"),
 ])
 def test_metric_refusals(demo_store, capsys, argv, expected):
     """Refused with one line and exit status 2 (common practice, no source)."""
@@ -192,3 +200,53 @@ def test_field_that_is_an_archive_day_is_flagged_in_the_weighted_space(store_cop
     assert status == 0
     assert json.loads(captured.out)["analogs"][0]["date"] == DATE
     assert "almost exactly" in captured.err
+
+
+def _sequence_rows(pcs, lag_weights=(1.0, 0.5)):
+    """[pc_t, 0.5 pc_{t-1}] for consecutive days (the first day wraps round; it is never
+    compared as a target in the tests below), written out directly."""
+    return np.hstack([w * np.roll(pcs, lag, axis=0) for lag, w in enumerate(lag_weights)])
+
+
+def test_sequence_hindcast_maps_each_day_by_the_fold_map():
+    """--sequence with event_weighted in the hindcast: each year's targets are ranked in
+    the space of [pc_t, 0.5 pc_{t-1}] with each day's PCs mapped by that fold's map
+    (fitted on the day's own PCs of the other years): equal to the plain hindcast of the
+    vectors mapped by hand block by block, year by year (the design of the test)."""
+    pcs, times, observed, _ = _synthetic(n_years=3, n_modes=5)
+    sequences = _sequence_rows(pcs)
+    weighted = leave_one_year_out(sequences, times, observed, metric="event_weighted",
+                                  sequence=1, top=30)
+    years = times.year.to_numpy()
+    for year in np.unique(years):
+        train = years != year
+        transform = fit_predictor_weights(pcs[train], times[train], observed[train])
+        by_hand = np.hstack([sequences[:, :5] @ transform, sequences[:, 5:] @ transform])
+        plain = leave_one_year_out(by_hand, times, observed, metric="plain", top=30,
+                                   months=None)
+        mine, theirs = weighted["year"] == year, plain["year"] == year
+        np.testing.assert_array_equal(weighted.loc[mine, "forecast"].to_numpy(),
+                                      plain.loc[theirs, "forecast"].to_numpy())
+
+
+def test_find_with_a_sequence_searches_the_mapped_sequence(store_copy):
+    """find --sequence 1 with the default event_weighted metric: each analog's distance is
+    the Euclidean distance (scipy cdist) of [pc_t, 0.5 pc_{t-1}] with both days' PCs
+    mapped by the store's kept map, computed here block by block."""
+    store = AnalogStore.load(store_copy)
+    transform = np.asarray(next(iter(store.manifest["predictor_weights"].values()))
+                           ["transform"])
+    found = _cli_json("find", "--store", str(store_copy), "--date", DATE, "--sequence", "1",
+                      "--skip-skill-hindcast")
+    assert found["settings"]["metric"] == "event_weighted"
+
+    def mapped(row):
+        return np.hstack([store.pc_values[row] @ transform,
+                          0.5 * store.pc_values[row - 1] @ transform])
+
+    target = int(np.flatnonzero(store.days == pd.Timestamp(DATE))[0])
+    rows = [int(np.flatnonzero(store.days == pd.Timestamp(a["date"]))[0])
+            for a in found["analogs"]]
+    expected = cdist(mapped(target)[None], np.array([mapped(r) for r in rows]))[0]
+    np.testing.assert_allclose([a["distance"] for a in found["analogs"]], expected, rtol=1e-5)
+    assert np.all(np.diff(expected) >= -1e-9)  # ranked by that distance

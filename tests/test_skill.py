@@ -112,7 +112,10 @@ def test_find_maps_netcdf(demo_store, tmp_path, capsys):
 
 def test_tune_and_save_sets_query_defaults(demo_store, tmp_path, capsys):
     """--tune reports the best (analogs, modes) by Brier skill score and --save makes them
-    the store's query defaults."""
+    the store's query defaults. The scan measures the plain metric (the default is
+    event_weighted): it says so, verify scores the plain metric with the chosen setting,
+    and --save records metric plain with it, so the store's queries search what was
+    tuned."""
     import shutil
     store = tmp_path / "store"
     shutil.copytree(demo_store.path, store)
@@ -120,7 +123,9 @@ def test_tune_and_save_sets_query_defaults(demo_store, tmp_path, capsys):
     data = json.loads(capsys.readouterr().out)
     table = pd.DataFrame(data["tuning"]["table"])
     best = table.loc[table["brier_skill_score"].idxmax()]
-    assert data["tuning"]["best"] == {"top": int(best["top"]), "n_modes": int(best["n_modes"])}
+    assert data["tuning"]["best"] == {"top": int(best["top"]), "n_modes": int(best["n_modes"]),
+                                      "metric": "plain"}
+    assert data["tuning"]["metric"] == "plain" and data["settings"]["metric"] == "plain"
     # Nested cross-validation (issue 16): the chosen setting's score measured on folds
     # that did not choose it, and the gains against the current setting on the same days.
     tuning = data["tuning"]
@@ -134,6 +139,7 @@ def test_tune_and_save_sets_query_defaults(demo_store, tmp_path, capsys):
     found = json.loads(capsys.readouterr().out)
     assert len(found["analogs"]) == int(best["top"])
     assert found["settings"]["n_modes"] == int(best["n_modes"])
+    assert found["settings"]["metric"] == "plain"
 
 
 def test_stored_skill_by_month_matches_scikit_learn(demo_store):

@@ -302,7 +302,8 @@ def verify_text(summary: dict) -> str:
         f"Leave-one-year-out hindcast of P(at least one event in region): "
         f"{summary['n_forecasts']} days, base rate {100 * summary['base_rate']:.1f}%",
         f"settings: {settings['top']} analogs, {settings['n_modes']} EOF modes, window "
-        f"+/-{settings['window']} d, months {settings['months'] or 'all'}",
+        f"+/-{settings['window']} d, months {settings['months'] or 'all'}"
+        + (f", metric {settings['metric']}" if settings.get("metric") else ""),
         "",
         *_skill_table(summary),
         "",
@@ -320,8 +321,11 @@ def verify_text(summary: dict) -> str:
     if "tuning" in summary:
         best = summary["tuning"]["best"]
         lines.append("")
-        lines.append(f"tuning: best {best['top']} analogs with {best['n_modes']} modes")
         tuning = summary["tuning"]
+        lines.append(f"tuning: best {best['top']} analogs with {best['n_modes']} modes"
+                     + (f", metric {tuning['metric']} (the scan measures that metric "
+                        "only; the scores above are of it, and --save records it)"
+                        if "metric" in tuning else ""))
         if "nested" in tuning:
             ref, nested = tuning["reference"], tuning["nested"]
             lo, hi = nested["brier_skill_score_ci"]

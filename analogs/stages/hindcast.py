@@ -38,7 +38,7 @@ N_HARMONICS = 2
 def leave_one_year_out(pcs, times, observed, *, top=DEFAULT_TOP, window=DEFAULT_WINDOW,
                        separation=DEFAULT_SEPARATION, n_modes=None, method="analogs",
                        months=None, seed=0, exclude=DEFAULT_EXCLUDE,
-                       metric=P.metric.default, progress=False):
+                       metric=P.metric.default, sequence=0, progress=False):
     """Forecast every day from analogs in the other years.
 
     The analogs of a day are those the live query would choose
@@ -63,6 +63,11 @@ def leave_one_year_out(pcs, times, observed, *, top=DEFAULT_TOP, window=DEFAULT_
         days of each year are forecast in the space of
         :func:`~analogs.stages.predictor_weights.fit_predictor_weights` fitted on the
         days of the other years only (``observed`` of the held-out year never enters it).
+    sequence : the rows of ``pcs`` are sequence vectors of the day and its ``sequence``
+        preceding days (``[pc_t, 0.5 pc_{t-1}, ...]``, the live query's ``--sequence``):
+        the event-weighted map is fitted on the first block, the day's own PCs, and
+        maps each block alike
+        (:func:`~analogs.stages.predictor_weights.block_transform`).
 
     Returns
     -------
@@ -86,7 +91,8 @@ def leave_one_year_out(pcs, times, observed, *, top=DEFAULT_TOP, window=DEFAULT_
     n_analogs = np.zeros(len(times), dtype=int)
     if method == "analogs" and metric == "event_weighted":
         batches = _weighted_fold_batches(pcs, times, observed, targets, window, exclude,
-                                         top=top, separation=separation, progress=progress)
+                                         top=top, separation=separation, sequence=sequence,
+                                         progress=progress)
     else:
         batches = _calendar_day_batches(times, targets, window, exclude, progress=progress)
     if method == "analogs" and metric == "plain":
@@ -209,20 +215,25 @@ def _with_analogs(batches, pcs, times, *, top, separation):
 
 
 def _weighted_fold_batches(pcs, times, observed, targets, window, exclude, *, top,
-                           separation, progress=False):
+                           separation, sequence=0, progress=False):
     """The batches of :func:`_with_analogs`, year by year: the targets of year Y ranked
     in the event-weighted space fitted on the days of the other years only
     (:func:`~analogs.stages.predictor_weights.fit_predictor_weights`; nested, so no day
-    of Y, neither its fields nor its events, shapes the metric of its forecasts)."""
-    from analogs.stages.predictor_weights import fit_predictor_weights
+    of Y, neither its fields nor its events, shapes the metric of its forecasts). With a
+    ``sequence``, the map is fitted on each vector's first block (the day's PCs) and
+    applied to every block."""
+    from analogs.stages.predictor_weights import block_transform, fit_predictor_weights
     years = times.year.to_numpy()
+    n_blocks = 1 + int(sequence)
+    n_modes = pcs.shape[1] // n_blocks
     for year in tqdm(np.unique(years[targets]), desc="hindcast", unit="year",
                      disable=not progress):
         train = years != year
-        transform = fit_predictor_weights(pcs[train], times[train], observed[train])
+        transform = fit_predictor_weights(pcs[train, :n_modes], times[train],
+                                          observed[train])
         batches = _calendar_day_batches(times, targets & ~train, window, exclude)
-        yield from _with_analogs(batches, pcs @ transform, times, top=top,
-                                 separation=separation)
+        yield from _with_analogs(batches, pcs @ block_transform(transform, n_blocks), times,
+                                 top=top, separation=separation)
 
 
 class HeldOutNeighbours:

@@ -79,3 +79,22 @@ def pc_weights(transform) -> np.ndarray:
     scale factor of its diagonal (``|beta_j| / sd_j``)."""
     transform = np.asarray(transform, dtype=float)
     return np.diag(transform[:, :transform.shape[0]]).copy()
+
+
+def block_transform(transform, n_blocks) -> np.ndarray:
+    """The map of vectors that hold ``n_blocks`` days' PCs side by side (a sequence
+    match's ``[pc_t, 0.5 pc_{t-1}, 0.25 pc_{t-2}]``): the block-diagonal matrix with
+    ``transform`` on its diagonal, so each day's PCs are mapped by the same
+    ``transform`` and the squared distance is the sum of the days' weighted squared
+    distances (each with its decay weight squared, as in the plain sequence match).
+
+    Parameters
+    ----------
+    transform : array (n_modes, n_modes + 1) of :func:`fit_predictor_weights`.
+    n_blocks : the number of days in each vector (1 + the sequence's preceding days).
+
+    Returns
+    -------
+    array (n_blocks * n_modes, n_blocks * (n_modes + 1)).
+    """
+    return np.kron(np.eye(int(n_blocks)), np.asarray(transform, dtype=float))

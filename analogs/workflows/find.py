@@ -98,7 +98,7 @@ def find(store, *, date=None, field=None, time=None, top=P.top.api_default,
          window=P.window.default, exclude=P.exclude.api_default,
          separation=P.separation.default, region=None, regime=None,
          weights=P.weights.default, confidence=P.confidence.default,
-         sequence=P.sequence.default, kinds=None, metric=P.metric.default,
+         sequence=P.sequence.default, kinds=None, metric=P.metric.api_default,
          skip_skill_hindcast=P.skip_skill_hindcast.api_default) -> FindResult | ValidTimesResult:
     """Closest archive days of ``store`` to a target and what they produced.
 
@@ -111,9 +111,12 @@ def find(store, *, date=None, field=None, time=None, top=P.top.api_default,
     :func:`sequence_vectors`); a field target then needs those days in its file.
     ``weights`` weighs the analogs in the outcome statistics (one of ``WEIGHT_SCHEMES``);
     ``confidence`` is the level of their intervals; ``kinds`` limits the events counted.
-    ``metric`` is the analog search's distance (``P.metric``): ``"event_weighted"``
-    searches the PCs transformed by :func:`event_weighted_transform` for the query's
-    region and kinds (fitted on the store's days, kept in the store).
+    ``metric`` is the analog search's distance (``P.metric``; default the store's saved
+    query default, else ``P.metric.default``): ``"event_weighted"`` searches the PCs
+    transformed by :func:`event_weighted_transform` for the query's region and kinds
+    (fitted on the store's days, kept in the store; with ``sequence``, each day of the
+    sequence vector by the same map); a store without an events table has nothing to
+    weight by, and its default is ``"plain"``.
     The outcomes quote the cross-validated skill of what the query forecasts (its region,
     kinds and settings: :func:`analogs.workflows.skill.skill_for`), measured now and kept
     in the store when no measurement is there, unless ``skip_skill_hindcast``.
@@ -160,10 +163,10 @@ def _checked_query(store, owner, *, top, window, exclude, separation, region, re
                             P.exclude.check(exclude, owner))
     separation, sequence = P.separation.check(separation, owner), P.sequence.check(sequence, owner)
     weights, confidence = P.weights.check(weights, owner), P.confidence.check(confidence, owner)
+    if metric is None:  # nothing to weight by without reports: the simple distance
+        metric = store.query_defaults.get(
+            "metric", P.metric.default if store.events is not None else "plain")
     kinds, metric = P.kinds.check(kinds, owner), P.metric.check(metric, owner)
-    if metric != "plain" and sequence:
-        raise AnalogsInputError(f"find: metric {metric} does not combine with a sequence "
-                                f"match (sequence {sequence}); use metric plain with it")
     if metric != "plain" and store.events is None:
         raise AnalogsInputError(f"find: metric {metric} is fitted on the store's reports and "
                                 f"store {store.path} has no events table; use metric plain")
@@ -229,8 +232,8 @@ def find_many(store, dates, **options) -> list[FindResult]:
             refused = _date_refused(where, date, error)
             break
     vectors = np.array([_day_vector(store, query, row) for row in rows])
-    if query.transform is not None and rows:
-        vectors = vectors @ query.transform
+    if rows:
+        vectors = query.mapped(vectors)
     rankings = find_analogs_many(
         query.index, store.times, vectors, store.times[rows], top=query.top, window=query.window, exclude=query.exclude,
         separation=query.separation, restrict=query.restrict) if rows else []
@@ -321,9 +324,16 @@ class _Query:
         transform = None
         if settings["metric"] == "event_weighted":
             transform = event_weighted_transform(store, settings["region"], settings["kinds"])
-            index = _weighted_index(store, transform)
+            index = _weighted_index(store, transform, settings["sequence"])
         return cls(**settings, n_modes=store.n_query_modes, index=index, restrict=restrict,
                    transform=transform)
+
+    def mapped(self, vectors) -> np.ndarray:
+        """Query vectors (PCs, or sequence vectors) in the space this query searches."""
+        if self.transform is None:
+            return vectors
+        from analogs.stages.predictor_weights import block_transform
+        return vectors @ block_transform(self.transform, 1 + self.sequence)
 
     def with_exclude(self, exclude) -> _Query:
         return dataclasses_replace(self, exclude=exclude)
@@ -339,7 +349,7 @@ class _Query:
                 "separation_days": self.separation, "regime": self.regime,
                 "region": {**region.to_dict(), "label": region.label()},
                 "weights": self.weights, "n_modes": self.n_modes, "store": str(store.path),
-                **({"metric": self.metric} if self.metric != P.metric.default else {})}
+                "metric": self.metric}
 
     def skill(self, store, target_time) -> dict | None:
         """The cross-validated skill of what this query forecasts (its region, kinds and
@@ -359,7 +369,7 @@ class _Query:
             if not self.sequence:
                 vector = vector[:self.n_modes]
             if self.transform is not None:
-                vector = vector @ self.transform
+                vector = self.mapped(vector)
             chosen = find_analogs(self.index, store.times, vector, target_time=target_time,
                                   top=self.top, window=self.window, exclude=self.exclude,
                                   separation=self.separation, restrict=self.restrict)
@@ -979,13 +989,18 @@ def event_weighted_transform(store, region, kinds=None) -> np.ndarray:
     return transform
 
 
-def _weighted_index(store, transform) -> AnalogIndex:
-    """An index of the store's query-mode PCs mapped by ``transform``, one per map."""
+def _weighted_index(store, transform, sequence=0) -> AnalogIndex:
+    """An index of the store's query-mode PCs (or ``sequence`` vectors, each day's PCs
+    by the same map: :func:`~analogs.stages.predictor_weights.block_transform`) mapped
+    by ``transform``, one per map and sequence."""
+    from analogs.stages.predictor_weights import block_transform
     indexes = _derived(store).setdefault("weighted_indexes", {})
-    key = transform.tobytes()
+    key = (transform.tobytes(), sequence)
     if key not in indexes:
+        vectors = (sequence_vectors(store, sequence)[0] if sequence
+                   else store.pc_values[:, :store.n_query_modes])
         indexes[key] = AnalogIndex(kind="auto").fit(
-            store.pc_values[:, :store.n_query_modes] @ transform)
+            vectors @ block_transform(transform, 1 + sequence))
     return indexes[key]
 
 

@@ -79,7 +79,7 @@ def measured_skill(pcs, times, observed, covered, *, region, top=P.top.default,
 def verify(store, *, top=P.top.api_default, window=P.window.default,
            separation=P.separation.default, n_modes=P.query_modes.api_default, region=None,
            months=None, threshold=P.threshold.default, n_resamples=P.n_resamples.default,
-           kinds=None, metric=P.metric.default, progress=False) -> dict:
+           kinds=None, metric=P.metric.api_default, progress=False) -> dict:
     """Leave-one-year-out hindcast scores, with the random-analog baseline beside them.
 
     ``top`` and ``n_modes`` default to the store's saved query defaults (else
@@ -87,13 +87,15 @@ def verify(store, *, top=P.top.api_default, window=P.window.default,
     :func:`analogs.stages.hindcast.score_hindcast` of the analog forecasts, plus
     ``random_analogs`` (the same scores of ``top`` days drawn at random from the same
     candidates) and ``settings``. ``metric`` is the analog search's distance
-    (``P.metric``; event-weighted: fitted inside each fold, without the held-out year).
+    (``P.metric``, default the store's saved query default, else ``P.metric.default``;
+    event-weighted: fitted inside each fold, without the held-out year).
     """
     from analogs.stages.hindcast import logistic_hindcast, leave_one_year_out, score_hindcast
     owner = "verify"
     defaults = store.query_defaults
     top = defaults.get("top", P.top.default) if top is None else top
     n_modes = defaults.get("n_modes") if n_modes is None else n_modes
+    metric = defaults.get("metric", P.metric.default) if metric is None else metric
     top, window = P.top.check(top, owner), P.window.check(window, owner)
     separation = P.separation.check(separation, owner)
     n_modes = P.query_modes.check(n_modes, owner, maximum=store.n_modes)
@@ -135,9 +137,7 @@ def verify(store, *, top=P.top.api_default, window=P.window.default,
                            "window": window, "separation": separation,
                            "months": None if months is None else sorted(months),
                            "region": region.to_dict(), "threshold": threshold,
-                           "kinds": kinds, "method": "leave-one-year-out"}
-    if metric != P.metric.default:  # only then, so earlier answers keep their shape
-        summary["settings"]["metric"] = metric
+                           "kinds": kinds, "method": "leave-one-year-out", "metric": metric}
     left_out = int((~store.covered).sum())
     if left_out:  # only then, so earlier answers keep their shape
         summary["settings"]["n_days_without_reports"] = left_out
@@ -174,13 +174,23 @@ def tune(store, *, tops=P.tops.default, modes=P.scan_modes.default,
                 progress=progress)
 
 
+#: The metric a tuning scan measures (see :func:`nested_tune`).
+TUNED_METRIC = "plain"
+
+
 def nested_tune(store, *, tops=P.tops.default, modes=P.scan_modes.default,
                 window=P.window.default, separation=P.separation.default, region=None,
                 months=None, kinds=None, progress=False) -> dict:
     """The tuning scan with the chosen setting scored on folds that did not choose it
-    (:func:`analogs.stages.hindcast.nested_tune`), against the store's current query
-    settings on the same days. The dict of ``verify --tune --json``'s ``tuning`` (the
-    table as records)."""
+    (:func:`analogs.stages.hindcast.nested_tune`), against the store's current number of
+    analogs and modes on the same days. The dict of ``verify --tune --json``'s
+    ``tuning`` (the table as records).
+
+    The scan measures the plain metric only (:data:`TUNED_METRIC`; one neighbour search
+    serves every setting, :class:`~analogs.stages.hindcast.HeldOutNeighbours`, where the
+    event-weighted metric would need its map refitted without each held-out year, outer
+    and inner): ``metric`` and ``best["metric"]`` say so, and ``verify --tune --save``
+    records it with the chosen setting."""
     from analogs.stages.hindcast import nested_tune as scan
     tops, modes, window, separation, months, pcs, times, events = _scan_inputs(
         store, tops, modes, window, separation, region, months, kinds)
@@ -190,6 +200,8 @@ def nested_tune(store, *, tops=P.tops.default, modes=P.scan_modes.default,
                   separation=separation, months=months, reference=reference,
                   progress=progress)
     result["table"] = result["table"].to_dict(orient="records")
+    result["metric"] = TUNED_METRIC
+    result["best"] = {**result["best"], "metric": TUNED_METRIC}
     return result
 
 
@@ -232,7 +244,7 @@ def skill_by_month(pcs, times, observed, *, region, top=P.top.default,
     measured = {"method": "leave-one-year-out hindcast of P(at least one event in region)",
                 "region": region.to_dict(), "top": top, "window_days": window,
                 "separation_days": separation}
-    if metric != P.metric.default:  # only then, so earlier manifests keep their shape
+    if metric != UNNAMED_METRIC:  # only then, so earlier manifests keep their meaning
         measured["metric"] = metric
     return {**measured,
             "brier_skill_score": overall["brier_skill_score"],
@@ -250,6 +262,10 @@ def region_argument(region: dict) -> str:
     return ""
 
 
+#: The metric of a skill measurement, settings or cache key that names none: those were
+#: kept before ``--metric`` existed, or measured with the simple distance, so a store
+#: built before the default became event_weighted keeps the meaning of what it holds.
+UNNAMED_METRIC = "plain"
 #: Entries of measured skill kept in a store's manifest (``skill_cache``): the newest.
 SKILL_CACHE_SIZE = 64
 #: Seconds a query waits for the store's writer lock to keep a skill it measured (a
@@ -264,17 +280,19 @@ _SKILL_INPUTS = ("scores.nc", "events.parquet")
 
 def skill_settings(store, *, top=None, window=P.window.default,
                    separation=P.separation.default, n_modes=None,
-                   metric=P.metric.default) -> dict:
+                   metric=None) -> dict:
     """The hindcast settings a query's skill is measured with: its number of analogs,
-    season window, de-clustering, modes (defaults: the store's query defaults) and the
-    analog search's metric (named only when not the default, so keys kept before it
-    existed still match)."""
+    season window, de-clustering, modes and the analog search's metric (defaults: the
+    store's query defaults; the metric named only when not :data:`UNNAMED_METRIC`, so
+    keys kept before it existed still match)."""
+    if metric is None:
+        metric = store.query_defaults.get("metric", P.metric.default)
     settings = {"top": int(store.query_defaults.get("top", P.top.default) if top is None
                            else top),
                 "window_days": None if window is None else int(window),
                 "separation_days": int(separation),
                 "n_modes": int(store.n_query_modes if n_modes is None else n_modes)}
-    if metric != P.metric.default:
+    if metric != UNNAMED_METRIC:
         settings["metric"] = metric
     return settings
 
@@ -296,9 +314,11 @@ def _verify_command(store, region: dict, kinds, settings: dict) -> str:
     argument = region_argument(region)
     defaults = {"top": store.query_defaults.get("top", P.top.default),
                 "window_days": P.window.default, "separation_days": P.separation.default,
-                "n_modes": store.n_query_modes, "metric": P.metric.default}
+                "n_modes": store.n_query_modes,
+                "metric": store.query_defaults.get("metric", P.metric.default)}
     options = {"top": "--top", "window_days": "--window", "separation_days": "--separation",
                "n_modes": "--modes", "metric": "--metric"}
+    settings = {"metric": UNNAMED_METRIC, **settings}
     return (f"analogs verify --store {store.path}"
             + (f" --region {argument}" if argument else "")
             + (f" --kind {','.join(kinds)}" if kinds else "")
@@ -314,7 +334,7 @@ def _measure(store, region, kinds, settings) -> dict | None:
                               store.covered, region=region, top=settings["top"],
                               window=settings["window_days"],
                               separation=settings["separation_days"],
-                              metric=settings.get("metric", P.metric.default))
+                              metric=settings.get("metric", UNNAMED_METRIC))
     if measured is not None:
         measured["kinds"] = sorted(kinds) if kinds else None
         measured["n_modes"] = settings["n_modes"]
@@ -387,8 +407,8 @@ def skill_for(store, target_time=None, *, region=None, kinds=None, settings=None
             and settings["top"] == built.get("top") and settings["n_modes"] == store.n_modes
             and settings["window_days"] == built.get("window_days")
             and settings["separation_days"] == built.get("separation_days")
-            and settings.get("metric", P.metric.default) == built.get("metric",
-                                                                        P.metric.default)):
+            and settings.get("metric", UNNAMED_METRIC) == built.get("metric",
+                                                                      UNNAMED_METRIC)):
         measured, source = built, "build"
     else:
         key, fields = skill_key(store, asked, kinds, settings)

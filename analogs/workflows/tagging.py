@@ -24,7 +24,7 @@ from analogs.parameters import P
 from analogs.workflows import store as store_io
 
 #: Query settings a store can record, with the owner of their checks.
-QUERY_DEFAULT_KEYS = ("top", "n_modes")
+QUERY_DEFAULT_KEYS = ("top", "n_modes", "metric")
 
 
 def classify_store(store, *, rules=None, kmeans=None, labelled_days=None) -> dict:
@@ -146,10 +146,12 @@ def _classified(current, rules, kmeans, labelled_days):
 
 def updated_query_defaults(defaults: dict, settings: dict, *, n_modes: int,
                            owner: str = "save_query_defaults") -> dict:
-    """``defaults`` with ``settings`` (``top``, ``n_modes``) checked and merged over them.
+    """``defaults`` with ``settings`` (``top``, ``n_modes``, ``metric``) checked and
+    merged over them.
 
-    ``top`` must be an integer >= 1 and ``n_modes`` an integer from 1 to the store's
-    ``n_modes`` EOF modes; None removes a setting.
+    ``top`` must be an integer >= 1, ``n_modes`` an integer from 1 to the store's
+    ``n_modes`` EOF modes and ``metric`` one of ``P.metric``'s choices; None removes a
+    setting.
     """
     unknown = sorted(set(settings) - set(QUERY_DEFAULT_KEYS))
     if unknown:
@@ -161,13 +163,15 @@ def updated_query_defaults(defaults: dict, settings: dict, *, n_modes: int,
             merged.pop(key, None)
         elif key == "top":
             merged[key] = P.top.check(value, owner)
+        elif key == "metric":
+            merged[key] = P.metric.check(value, owner)
         else:
             merged[key] = P.query_modes.check(value, owner, maximum=n_modes)
     return merged
 
 
 def save_query_defaults(path, *, timeout=None, **settings):
-    """Record query settings (``top``, ``n_modes``) in the manifest of the store at
+    """Record query settings (``top``, ``n_modes``, ``metric``) in the manifest of the store at
     ``path`` (as ``analogs verify --tune --save`` does); return the new store, whose
     queries use them."""
     from analogs.workflows.analog_store import AnalogStore
