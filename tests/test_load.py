@@ -18,6 +18,7 @@ import pytest
 
 import _reliability_helpers as rh
 from analogs.api import AnalogStore
+from analogs.parameters import P
 
 #: Eight archive days across the seasons, queried in the burst.
 BURST_DATES = ("2001-02-03", "2001-05-20", "2001-09-09", "2002-01-15", "2002-06-14",
@@ -62,7 +63,7 @@ def _find(store, date):
 def test_concurrent_threads_answer_like_sequential_calls(shared):
     store = AnalogStore.load(shared["store"])
     sequential = [_find(store, d) for d in BURST_DATES]
-    assert all(len(answer["analogs"]) == 20 for answer in sequential)
+    assert all(len(answer["analogs"]) == P.top.default for answer in sequential)
     fresh = AnalogStore.load(shared["store"])  # index built lazily, under contention
     with ThreadPoolExecutor(max_workers=8) as pool:
         concurrent = list(pool.map(lambda d: _find(fresh, d), BURST_DATES * 2))

@@ -13,6 +13,7 @@ from sklearn.metrics import brier_score_loss
 import _reliability_helpers as rh
 from analogs.api import AnalogStore
 from analogs.cli import main
+from analogs.parameters import P
 from analogs.stages.hindcast import leave_one_year_out
 from analogs.stages.outcomes import Region
 from analogs.workflows import store as store_io
@@ -39,7 +40,7 @@ def _find_skill(path, *extra):
     return json.loads(out.getvalue())["outcomes"]["skill"]
 
 
-def _reference(store, region, kinds=None, top=20):
+def _reference(store, region, kinds=None, top=P.top.default):
     """The point region's hindcast scored with scikit-learn's brier_score_loss: BSS =
     1 - BS / BS(climatology) (Wilks, Statistical Methods in the Atmospheric Sciences,
     from memory), and the base rate as the share of days with such a report (numpy)."""
@@ -68,7 +69,7 @@ def test_point_query_skill_is_measured_once_and_kept(store_copy):
     cache = store.manifest["skill_cache"]
     (key, entry), = cache.items()
     assert entry["key"]["region"] == Region.parse(POINT).to_dict()
-    assert entry["key"]["kinds"] is None and entry["key"]["top"] == 20
+    assert entry["key"]["kinds"] is None and entry["key"]["top"] == P.top.default
     assert entry["key"]["data"] == {n: store.manifest["files"][n]
                                     for n in ("scores.nc", "events.parquet")}
     token = store_io.version_token(store_copy)
@@ -128,12 +129,16 @@ def test_an_update_of_the_reports_measures_again(store_copy, demo_dir, tmp_path)
 def test_skip_option_and_read_only_store_give_the_command(store_copy, tmp_path, capsys):
     """--skip-skill-hindcast, or a store that cannot be written (chmod a-w; for root, a
     read-only tmpfs), gives "not measured" with the verify command that measures it, and
-    the store is left as it was."""
+    no skill is kept (the query keeps only the event-weighted map of its region, as
+    test_predictor_weights.py checks: the manifest alone changes)."""
     before = rh.file_digests(store_copy)
     skipped = _find_skill(store_copy, "--region", POINT, "--skip-skill-hindcast")
     assert skipped["measured"] is False and "not asked" in skipped["reason"]
     assert skipped["command"].endswith(f"--region {POINT}")
-    assert rh.file_digests(store_copy) == before
+    after = rh.file_digests(store_copy)
+    assert {k: v for k, v in after.items() if k != "manifest.json"} == {
+        k: v for k, v in before.items() if k != "manifest.json"}
+    assert "skill_cache" not in AnalogStore.load(store_copy).manifest
     assert main(["find", "--store", str(store_copy), "--date", DATE, "--region", POINT,
                  "--skip-skill-hindcast"]) == 0
     assert "not measured for this region" in capsys.readouterr().out

@@ -305,7 +305,7 @@ def _build(paths, store, *, events, event_dates, events_period, fields, n_modes,
         "index": index_info,
     }
     from analogs.workflows.analog_store import AnalogStore
-    from analogs.workflows.find import event_weighted_transform, stored_daily_counts
+    from analogs.workflows.find import stored_daily_counts, with_default_predictor_weights
     reads_done()  # an archive file changed during the reads: refused before any write
     # A whole new version, written and loaded back under the writer lock.
     with store_io.transaction(store, new=True) as txn:
@@ -331,11 +331,9 @@ def _build(paths, store, *, events, event_dates, events_period, fields, n_modes,
         store_io.write_table(tags.reset_index(drop=True), staged / store_io.TAGS)
         txn.commit(manifest)
         built = AnalogStore._load_version(txn.path, manifest=txn.committed)
-    if event_table is not None:
-        # The default query's event-weighted map (the store's region, every kind), kept
-        # in the manifest so that a default query need not fit it (nor load scikit-learn).
-        event_weighted_transform(built, built.region)
-    return built
+    # The default query's event-weighted map (the store's region, every kind), kept in
+    # the manifest so that a default query need not fit it (nor load scikit-learn).
+    return with_default_predictor_weights(built)
 
 
 #: Free space kept beyond the scratch files' size (the store is written beside them).

@@ -989,6 +989,22 @@ def event_weighted_transform(store, region, kinds=None) -> np.ndarray:
     return transform
 
 
+def with_default_predictor_weights(store):
+    """``store`` with the event-weighted map of its own region (every kind) kept in its
+    manifest (:func:`event_weighted_transform`), as the build and ``update`` leave it so
+    that a default query neither fits it nor imports scikit-learn: the store loaded
+    again when the map was written (the version's manifest changed)."""
+    from analogs.workflows import store as store_io
+    from analogs.workflows.analog_store import AnalogStore
+    if store.events is None:
+        return store
+    version = store_io.version_token(store.path)
+    event_weighted_transform(store, store.region)
+    if store_io.version_token(store.path) == version:
+        return store
+    return AnalogStore.load(store.path)
+
+
 def _weighted_index(store, transform, sequence=0) -> AnalogIndex:
     """An index of the store's query-mode PCs (or ``sequence`` vectors, each day's PCs
     by the same map: :func:`~analogs.stages.predictor_weights.block_transform`) mapped

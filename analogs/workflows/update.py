@@ -34,7 +34,7 @@ from analogs.stages.outcomes import EVENT_COLUMNS, merged_periods, parse_period
 from analogs.workflows import reports
 from analogs.workflows import store as store_io
 from analogs.workflows.build import diagnostic_region, provenance
-from analogs.workflows.find import event_weighted_transform, stored_daily_counts
+from analogs.workflows.find import stored_daily_counts, with_default_predictor_weights
 
 #: The public function named in this workflow's parameter errors.
 OWNER = "update_store"
@@ -89,10 +89,10 @@ def update_store(path, files, *, events=None, event_dates=P.event_dates.default,
         else:
             _write_update(txn, current, *change)
             new = AnalogStore._load_version(txn.path, manifest=txn.committed)
-    if change is not None and new.events is not None:
+    if change is not None:
         # The default query's event-weighted map refitted on the new days and reports
         # (as the build keeps it), so a default query need not fit it.
-        event_weighted_transform(new, new.region)
+        new = with_default_predictor_weights(new)
     if new.events is not None:  # report coverage (issue 13) means something with events
         summary["days_covered"] = int(new.covered.sum())
         summary["days_without_reports"] = int((~new.covered).sum())

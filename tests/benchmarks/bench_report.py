@@ -14,7 +14,7 @@ not write it), so every map draws the land-sea boundary. ``find --report`` is ti
 twice: with the archive at hand (the maps draw the archive's own fields, read for the
 drawn days only) and with the archive folder moved aside (the EOF reconstruction).
 
-    python tests/benchmarks/bench_report.py --out /tmp/analogs-bench-report
+    python tests/benchmarks/bench_report.py --out /tmp/analogs-bench-report [--top default]
 
 The issue's goal: ``find --report`` at most about twice ``find --json``.
 """
@@ -80,6 +80,8 @@ def main(argv=None) -> int:
     parser.add_argument("--years", type=int, default=6)
     parser.add_argument("--runs", type=int, default=5)
     parser.add_argument("--date", default=None, help="target day (default: a July day)")
+    parser.add_argument("--top", default="20", help="number of analogs, or 'default' for "
+                        "the query's default (50 with the event-weighted metric)")
     args = parser.parse_args(argv)
     args.out.mkdir(parents=True, exist_ok=True)
     store = make_store(args.out, args.years)
@@ -89,8 +91,9 @@ def main(argv=None) -> int:
     from analogs.workflows.page import report_page
     loaded = AnalogStore.load(store)
     date = args.date or str(loaded.days[len(loaded.days) // 2 + 180].date())
+    top = None if args.top == "default" else int(args.top)
     base = [sys.executable, "-m", "analogs", "find", "--store", str(store), "--date", date,
-            "--top", "20"]
+            *(["--top", str(top)] if top else [])]
     report_dir = args.out / "report"
     json_times, report_times, reconstruction_times = [], [], []
     timed(base + ["--json"])  # warm the file cache
@@ -106,7 +109,7 @@ def main(argv=None) -> int:
     finally:
         aside.rename(archive)
 
-    result = find(loaded, date=date, top=20)
+    result = find(loaded, date=date, top=top)
     maps = outcome_maps(loaded, result)
     report_figures(loaded, result, maps=maps)
     report_page(loaded, result, maps=maps)
@@ -120,7 +123,7 @@ def main(argv=None) -> int:
         page_times.append(time.perf_counter() - start)
 
     summary = {
-        "date": date, "runs": args.runs, "load_average": os.getloadavg()[0],
+        "date": date, "top": args.top, "runs": args.runs, "load_average": os.getloadavg()[0],
         "find_json_median_s": statistics.median(json_times),
         "find_report_median_s": statistics.median(report_times),
         "report_figures_median_s": statistics.median(figure_times),
