@@ -500,7 +500,9 @@ def _closed_lows_np(z, lat, lon, *, moisture=None, max_lat, min_depth, max_radiu
         band = z[:, rows[0]:rows[-1] + 1]
         valid = np.isfinite(band)
         filled = np.where(valid, band, 0.0)
-        weight = valid.astype(float)
+        # The filters act on each day alone: with no value missing, every day's
+        # point counts are those of the first day.
+        weight = valid.astype(float) if not valid.all() else np.ones((1,) + band.shape[1:])
         cos_lat = np.cos(np.radians(np.clip(np.abs(lat[rows]).mean(), 0.0, 80.0)))
         modes = ("constant", "constant", lon_mode)
         sums = []
