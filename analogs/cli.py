@@ -75,7 +75,8 @@ def build_parser() -> argparse.ArgumentParser:
                          "the climatology and EOFs, index every day and write the store.",
              options=(P.files, P.store, P.events, P.event_dates, P.events_period, P.n_modes,
                       P.variance, P.fields, P.region, P.land_mask,
-                      P.domain, P.hour, P.daily, P.solver, P.chunk_days, P.scheduler, P.index,
+                      P.domain, P.hour, P.daily, P.solver, P.chunk_days, P.scratch, P.scheduler,
+                      P.index,
                       P.n_harmonics, P.quiet),
              exclusive=((False, (P.n_modes, P.variance)),))
     _command(commands, "find", handler=_cmd_find,
@@ -207,12 +208,15 @@ def _cmd_build(args) -> int:
     from analogs.api import build_store
     if args.scheduler and not args.chunk_days:
         raise AnalogsInputError("--scheduler distributes chunked work: pass --chunk-days too")
+    if args.scratch and not args.chunk_days:
+        raise AnalogsInputError("--scratch holds the out-of-core build's scratch files: "
+                                "pass --chunk-days too")
     store = build_store(args.files, args.store, fields=args.fields, n_modes=args.modes,
                         variance=args.variance, region=args.region, domain=args.domain,
                         hour=args.hour, daily=args.daily, solver=args.solver,
                         n_harmonics=args.harmonics, index=args.index, progress=not args.quiet,
                         chunks={"time": args.chunk_days} if args.chunk_days else None,
-                        scheduler=args.scheduler,
+                        scheduler=args.scheduler, scratch=args.scratch,
                         events=args.events, event_dates=args.event_dates,
                         events_period=args.events_period, land_mask=args.land_mask)
     config = store.manifest["config"]

@@ -315,6 +315,11 @@ PARAMETERS: dict[str, Parameter] = _table(
     Parameter("chunk_days", ("--chunk-days",), "read and process the archive out of core "
               "in chunks of N days (dask), for archives larger than memory", kind="int",
               minimum=1, units="days", metavar="N", default_text="in memory"),
+    Parameter("scratch", ("--scratch",), "folder for the out-of-core build's temporary "
+              "float32 anomaly matrix (its size is said first, a disk without that much "
+              "free space is refused, and it is removed after the build); needs "
+              "--chunk-days", kind="path", metavar="DIR", default_text="beside the store",
+              output="directory"),
     Parameter("scheduler", ("--scheduler",), "run the chunked work on a dask.distributed "
               "scheduler at ADDRESS (tcp://host:8786), or 'local' for a local process "
               "cluster; needs --chunk-days", metavar="ADDRESS",
