@@ -11,6 +11,7 @@ import json
 import math
 
 from analogs import CAUTION, __version__
+from analogs.parameters import P
 
 
 def _fmt_probability(value) -> str:
@@ -36,12 +37,28 @@ def _with_caution(lines) -> str:
     return "\n".join([*lines, "", CAUTION])
 
 
+def _skill_settings_text(settings) -> str:
+    """The query settings a skill was measured with that narrow or weigh its analogs,
+    as words after "for this region" ('' for the plain query)."""
+    parts = []
+    if settings.get("regime") is not None:
+        parts.append(f"analogs of regime {settings['regime']} only")
+    if settings.get("sequence_days"):
+        parts.append(f"sequences of {settings['sequence_days']} preceding days")
+    if settings.get("weights", P.weights.default) != P.weights.default:
+        parts.append(f"analogs weighted ({settings['weights'].replace('_', ' ')})")
+    if settings.get("exclude_days", P.exclude.default) != P.exclude.default:
+        parts.append(f"{settings['exclude_days']} days around each target left out")
+    return (" with " + ", ".join(parts)) if parts else ""
+
+
 def skill_line(skill) -> str:
     """One line on what this query's guidance has been worth (cross-validated), or ''."""
     if not skill:
         return ""
     where = "this region" + (f" and kinds {', '.join(skill['kinds'])}" if skill.get("kinds")
                              else "")
+    where += _skill_settings_text(skill.get("settings") or {})
     if skill.get("measured") is False:
         reason = f" ({skill['reason']})" if skill.get("reason") else ""
         return (f"Worth in the past: not measured for {where}{reason}; measure it with: "
@@ -52,7 +69,11 @@ def skill_line(skill) -> str:
             f"{skill['brier_skill_score']:.2f} vs season climatology (0 = no better, 1 = "
             f"perfect; 90% range over resampled years {lo:.2f} to {hi:.2f})")
     if skill.get("base_rate") is not None:
-        text += f", base rate {_percent(skill['base_rate'])} of days (all year)"
+        narrowed = (skill.get("settings") or {}).get("regime") is not None or \
+            (skill.get("settings") or {}).get("sequence_days")
+        text += (f", base rate {_percent(skill['base_rate'])} of "
+                 + (f"the days forecast ({skill['days_forecast']}, all year)" if narrowed
+                    else "days (all year)"))
     text += f", ROC area {skill['roc_auc']:.2f}"
     if skill.get("month_brier_skill_score") is not None:
         text += f"; in month {skill['month']}: {skill['month_brier_skill_score']:.2f}"

@@ -57,7 +57,8 @@ from analogs.stages.outcomes import (
     summarize_outcomes,
 )
 from analogs.stages import outcomes as outcome_stage
-from analogs.stages.selection import candidate_ids, find_analogs
+from analogs.stages.selection import SEQUENCE_DECAY, candidate_ids, find_analogs
+from analogs.stages.selection import sequence_vectors as selection_sequence_vectors
 
 if TYPE_CHECKING:  # xarray is imported by the field targets and the report only
     import xarray as xr
@@ -68,8 +69,6 @@ if TYPE_CHECKING:  # xarray is imported by the field targets and the report only
 
 #: How the analogs may be weighted in the outcome statistics.
 WEIGHT_SCHEMES = P.weights.choices
-#: Weight of the day ``lag`` days before the target in a sequence match: 0.5 ** lag.
-SEQUENCE_DECAY = 0.5
 #: Largest share of the store grid a field target may leave without values (outside
 #: its file, or missing in it); up to it the target is projected by least squares on
 #: the covered points (Everson & Sirovich 1995), above it the target is refused.
@@ -272,7 +271,9 @@ class _Query:
         hindcast settings; :func:`analogs.workflows.skill.skill_for`)."""
         from analogs.workflows.skill import skill_settings
         settings = skill_settings(store, top=self.top, window=self.window,
-                                  separation=self.separation, n_modes=self.n_modes)
+                                  separation=self.separation, n_modes=self.n_modes,
+                                  regime=self.regime, sequence=self.sequence,
+                                  weights=self.weights, exclude=self.exclude)
         return store.skill_for(target_time, region=self.region, kinds=self.kinds,
                                settings=settings, measure=not self.skip_skill_hindcast)
 
@@ -801,25 +802,14 @@ def warn_near_duplicate(store, analogs: pd.DataFrame, valid, query: _Query,
 # ---------------------------------------------------------------------- sequences
 
 def sequence_vectors(store, sequence) -> tuple[np.ndarray, np.ndarray]:
-    """Vectors of each day followed by its ``sequence`` preceding days.
-
-    Row t is ``[pcs(t), w1 pcs(t-1), ..., ws pcs(t-s)]`` with ``w_lag = 0.5 ** lag``
-    (``SEQUENCE_DECAY``), so the Euclidean distance between two rows is the weighted
-    distance of the two short sequences. The boolean array marks rows whose preceding
-    days are all in the archive (consecutive calendar days); only those can be analogs.
-    """
+    """Vectors of each day followed by its ``sequence`` preceding days, over the store's
+    query modes (:func:`analogs.stages.selection.sequence_vectors`, kept per loaded
+    store), and the rows whose preceding days are all in the archive."""
     sequence = P.sequence.check(sequence, "find")
     cache = _derived(store).setdefault("sequence_vectors", {})
     if sequence not in cache:
-        pcs = store.pc_values[:, :store.n_query_modes]
-        day_numbers = (store.days - pd.Timestamp("1970-01-01")).days.to_numpy()
-        parts, complete = [pcs], np.ones(len(pcs), dtype=bool)
-        for lag in range(1, sequence + 1):
-            shifted = np.roll(pcs, lag, axis=0)
-            complete &= np.roll(day_numbers, lag) == day_numbers - lag
-            parts.append(SEQUENCE_DECAY ** lag * shifted)
-        complete[:sequence] = False
-        cache[sequence] = (np.hstack(parts), complete)
+        cache[sequence] = selection_sequence_vectors(
+            store.pc_values[:, :store.n_query_modes], store.days, sequence)
     return cache[sequence]
 
 
