@@ -83,7 +83,8 @@ def test_skill_line_equals_verify_with_the_same_setting(store_path, regime, name
     assert measured["measured"] is True and measured["source"].startswith("measured now")
     assert measured["brier_skill_score"] == pytest.approx(verified["brier_skill_score"],
                                                           rel=1e-12)
-    assert abs(measured["brier_skill_score"] - plain["brier_skill_score"]) > 1e-4
+    # --exclude changes only the targets near the turn of the year: a small difference.
+    assert abs(measured["brier_skill_score"] - plain["brier_skill_score"]) > 1e-6
     settings = measured["settings"]
     assert {"regime": settings["regime"], "sequence": str(settings["sequence_days"]),
             "weights": settings["weights"], "exclude": str(settings["exclude_days"])
