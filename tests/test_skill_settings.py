@@ -176,13 +176,19 @@ def test_weighted_hindcast_forecast_is_the_weighted_share(store_path):
 
 def test_text_and_json_lines_say_what_was_measured(store_path, regime, tmp_path):
     """The terminal line names the regime, sequence and weights it was measured with and
-    the days it forecast; --json-lines carries the same settings."""
+    the days it forecast, and so does verify's text; --json-lines carries the same
+    settings."""
     text = _run(["find", "--store", store_path, "--date", DATE, "--regime", regime,
                  "--sequence", "1", "--weights", "gaussian"])
-    assert (f"with analogs of regime {regime} only, sequences of 1 preceding days, analogs "
-            "weighted (gaussian)") in text
+    assert (f"with analogs of regime {regime} only, sequences with the 1 preceding day, "
+            "analogs weighted (gaussian)") in text
     assert (f"of the days forecast (every archive day with report coverage tagged {regime} "
-            "whose 1 preceding days are in the archive, all year)") in text
+            "whose 1 preceding day is in the archive, all year)") in text
+    verified = _run(["verify", "--store", store_path, "--regime", regime, "--sequence", "1",
+                     "--quiet"])
+    assert f"with analogs of regime {regime} only, sequences with the 1 preceding day" in verified
+    assert (f"days forecast: every archive day with report coverage tagged {regime} whose 1 "
+            "preceding day is in the archive") in verified
     dates = tmp_path / "dates.txt"
     dates.write_text(f"{DATE}\n2003-07-20\n")
     lines = _run(["find", "--store", store_path, "--dates", dates, "--weights", "gaussian",

@@ -44,7 +44,8 @@ def _skill_settings_text(settings) -> str:
     if settings.get("regime") is not None:
         parts.append(f"analogs of regime {settings['regime']} only")
     if settings.get("sequence_days"):
-        parts.append(f"sequences of {settings['sequence_days']} preceding days")
+        n = settings["sequence_days"]
+        parts.append(f"sequences with the {n} preceding day{'s' if n > 1 else ''}")
     if settings.get("weights", P.weights.default) != P.weights.default:
         parts.append(f"analogs weighted ({settings['weights'].replace('_', ' ')})")
     if settings.get("exclude_days", P.exclude.default) != P.exclude.default:
@@ -323,7 +324,8 @@ def verify_text(summary: dict) -> str:
         f"Leave-one-year-out hindcast of P(at least one event in region): "
         f"{summary['n_forecasts']} days, base rate {100 * summary['base_rate']:.1f}%",
         f"settings: {settings['top']} analogs, {settings['n_modes']} EOF modes, window "
-        f"+/-{settings['window']} d, months {settings['months'] or 'all'}",
+        f"+/-{settings['window']} d, months {settings['months'] or 'all'}"
+        + (f";{narrowed}" if (narrowed := _skill_settings_text(settings)) else ""),
         "",
         *_skill_table(summary),
         "",
@@ -333,6 +335,8 @@ def verify_text(summary: dict) -> str:
         "",
         "reliability (forecast mean -> observed frequency, count):",
     ]
+    if settings.get("days_forecast"):
+        lines.insert(2, f"days forecast: {settings['days_forecast']}")
     if settings.get("n_days_without_reports"):
         lines.insert(2, f"{settings['n_days_without_reports']} days without reports yet left "
                         "out (neither forecast nor used as analogs)")

@@ -184,6 +184,8 @@ def verify(store, *, top=P.top.api_default, window=P.window.default,
                            "kinds": kinds, "method": "leave-one-year-out",
                            "regime": regime, "sequence_days": sequence, "weights": weights,
                            "exclude_days": exclude}
+    if restrict is not None:  # only then, so earlier answers keep their shape
+        summary["settings"]["days_forecast"] = days_forecast(summary["settings"])
     left_out = int((~store.covered).sum())
     if left_out:  # only then, so earlier answers keep their shape
         summary["settings"]["n_days_without_reports"] = left_out
@@ -368,7 +370,8 @@ def days_forecast(settings: dict) -> str:
     if settings.get("regime") is not None:
         days += f" tagged {settings['regime']}"
     if settings.get("sequence_days"):
-        days += f" whose {settings['sequence_days']} preceding days are in the archive"
+        n = settings["sequence_days"]
+        days += f" whose {n} preceding day{'s are' if n > 1 else ' is'} in the archive"
     return days
 
 
