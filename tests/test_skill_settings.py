@@ -201,3 +201,16 @@ def test_verify_tune_refuses_the_query_only_settings(store_path, capsys):
     """--tune scans the plain analogs: with --regime it is refused (exit 2, one line)."""
     assert main(["verify", "--store", str(store_path), "--tune", "--regime", "other"]) == 2
     assert "--tune scans the plain analogs" in capsys.readouterr().err
+
+
+def test_sequence_query_without_its_preceding_days_is_refused(store_path, capsys):
+    """The archive's second day has one preceding day: --sequence 2 cannot be matched
+    there (the hindcast does not forecast it either) and is refused with exit 2 and one
+    line, instead of matching a vector whose earlier days wrap round the archive."""
+    second = AnalogStore.load(store_path).days[1].date()
+    assert main(["find", "--store", str(store_path), "--date", str(second),
+                 "--sequence", "2"]) == 2
+    err = capsys.readouterr().err
+    assert f"--sequence must be at most the number of days before {second}" in err
+    assert main(["find", "--store", str(store_path), "--date", str(second),
+                 "--sequence", "1", "--json", "--skip-skill-hindcast"]) == 0

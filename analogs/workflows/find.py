@@ -156,7 +156,11 @@ def find(store, *, date=None, field=None, time=None, top=P.top.api_default,
         row = day_row(store, date)
         vector = store.pc_values[row, :query.n_modes]
         if sequence:
-            vector = sequence_vectors(store, sequence)[0][row]
+            vectors, complete = sequence_vectors(store, sequence)
+            if not complete[row]:  # its sequence is not in the archive (nor hindcast)
+                fail("sequence", owner, f"at most the number of days before {date} that "
+                     "the archive holds", sequence)
+            vector = vectors[row]
         target_time = store.times[row]
         query = query.with_exclude(P.exclude.default if exclude is None else exclude)
         target = {"date": str(store.days[row].date()), **regime_of_day(store, row),
