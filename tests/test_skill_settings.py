@@ -214,3 +214,24 @@ def test_sequence_query_without_its_preceding_days_is_refused(store_path, capsys
     assert f"--sequence must be at most the number of days before {second}" in err
     assert main(["find", "--store", str(store_path), "--date", str(second),
                  "--sequence", "1", "--json", "--skip-skill-hindcast"]) == 0
+
+
+def test_field_sequence_says_what_was_not_measured(store_path, demo_files, tmp_path):
+    """A --field query with --sequence takes its preceding days from its file; the
+    hindcast can only match the archive's own sequences, so the line says plainly that
+    the field's sequence is not measured (the BSS quoted is the archive days' one, equal
+    to the --date query's with the same setting)."""
+    from analogs.stages.sources import open_archive
+    field = tmp_path / "three_days.nc"
+    (open_archive(demo_files, progress=False).sel(time=slice("2003-06-30", DATE)).load()
+     .to_netcdf(field))
+    answer = json.loads(_run(["find", "--store", store_path, "--field", field, "--time",
+                              f"{DATE}T12:00", "--sequence", "2", "--json"]))
+    skill = answer["outcomes"]["skill"]
+    assert "preceding days come from its file" in skill["not_measured"]
+    assert skill["brier_skill_score"] == _skill(store_path, "--sequence", "2")[
+        "brier_skill_score"]
+    assert "not_measured" not in _skill(store_path, "--sequence", "2")
+    text = _run(["find", "--store", store_path, "--field", field, "--time",
+                 f"{DATE}T12:00", "--sequence", "2"])
+    assert "; not measured: the field's 2 preceding days come from its file" in text

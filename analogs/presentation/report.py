@@ -60,10 +60,11 @@ def skill_line(skill) -> str:
     where = "this region" + (f" and kinds {', '.join(skill['kinds'])}" if skill.get("kinds")
                              else "")
     where += _skill_settings_text(skill.get("settings") or {})
+    caveat = f"; not measured: {skill['not_measured']}" if skill.get("not_measured") else ""
     if skill.get("measured") is False:
         reason = f" ({skill['reason']})" if skill.get("reason") else ""
         return (f"Worth in the past: not measured for {where}{reason}; measure it with: "
-                f"{skill['command']}")
+                f"{skill['command']}{caveat}")
     lo, hi = skill["brier_skill_score_ci"]
     text = (f"Worth in the past for {where} (leave-one-year-out hindcast of P(any report), "
             f"{skill.get('source', 'build')}): Brier skill score "
@@ -83,7 +84,7 @@ def skill_line(skill) -> str:
             text += f" ({m_lo:.2f} to {m_hi:.2f})"
         if skill.get("month_base_rate") is not None:
             text += f", base rate {_percent(skill['month_base_rate'])} of its days"
-    return text
+    return text + caveat
 
 
 def _find_data(result) -> dict:

@@ -247,6 +247,7 @@ class _Query:
     n_modes: int
     index: object
     restrict: np.ndarray | None
+    field_target: bool = False  # a --field query (its sequence comes from its file)
 
     @classmethod
     def resolve(cls, store, **settings) -> _Query:
@@ -278,8 +279,14 @@ class _Query:
                                   separation=self.separation, n_modes=self.n_modes,
                                   regime=self.regime, sequence=self.sequence,
                                   weights=self.weights, exclude=self.exclude)
-        return store.skill_for(target_time, region=self.region, kinds=self.kinds,
-                               settings=settings, measure=not self.skip_skill_hindcast)
+        skill = store.skill_for(target_time, region=self.region, kinds=self.kinds,
+                                settings=settings, measure=not self.skip_skill_hindcast)
+        if skill is not None and self.field_target and self.sequence:
+            skill = {**skill, "not_measured": (
+                f"the field's {self.sequence} preceding days come from its file, while the "
+                "hindcast matched archive days with the archive's own preceding days: a "
+                "sequence of forecast fields is not hindcast")}
+        return skill
 
     def answer(self, store, vector, target_time) -> tuple[pd.DataFrame, object]:
         """The analogs table and the outcome summary of one target vector."""
@@ -607,6 +614,7 @@ def find_field(store, field, time, query: _Query):
     """
     import xarray as xr
     from analogs.stages.sources import several_times
+    query = dataclasses_replace(query, field_target=True)
     with renamed_errors("find", "time"):
         opened = open_field(field, time)
     fields = on_store_grid(store, opened)
