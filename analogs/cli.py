@@ -96,8 +96,8 @@ def build_parser() -> argparse.ArgumentParser:
                          "scored against what happened, the season climatology and random "
                          "analogs.",
              options=(P.store, P.top, P.query_modes, P.window, P.separation, P.region,
-                      P.months, P.kinds, P.metric, P.threshold, P.tune, P.save, P.json,
-                      P.quiet))
+                      P.months, P.kinds, P.regime, P.sequence, P.weights, P.exclude,
+                      P.metric, P.threshold, P.tune, P.save, P.json, P.quiet))
     _command(commands, "update", handler=_cmd_update,
              help="append new days to a store without a rebuild",
              description="Append new days (for example yesterday's analysis), projected on "
@@ -332,9 +332,15 @@ def _cmd_verify(args) -> int:
     from analogs.presentation.report import dumps, verify_text
     if args.save and not args.tune:
         raise AnalogsInputError("--save records the result of --tune; pass both")
-    if args.tune and args.metric != P.metric.default:
-        raise AnalogsInputError(f"--tune scans the numbers of analogs and modes with --metric "
-                                f"{P.metric.default} only; drop --metric {args.metric}")
+    narrowed = [flag for flag, value in (("--regime", args.regime),
+                                         ("--sequence", args.sequence),
+                                         ("--weights", args.weights != P.weights.default),
+                                         ("--exclude", args.exclude is not None),
+                                         ("--metric", args.metric != P.metric.default))
+                if value]
+    if args.tune and narrowed:
+        raise AnalogsInputError(f"--tune scans the plain analogs; run it without "
+                                f"{', '.join(narrowed)}")
     store = AnalogStore.load(args.store)
     tuning = None
     if args.tune:
@@ -349,6 +355,9 @@ def _cmd_verify(args) -> int:
     summary = store.verify(top=args.top, window=args.window, separation=args.separation,
                            n_modes=args.modes, region=args.region, months=args.season,
                            threshold=args.threshold, kinds=args.kind, metric=args.metric,
+                           regime=args.regime, sequence=args.sequence, weights=args.weights,
+                           exclude=(P.exclude.default if args.exclude is None
+                                    else args.exclude),
                            progress=not args.quiet)
     if tuning is not None:
         summary["tuning"] = tuning
