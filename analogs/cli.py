@@ -75,7 +75,8 @@ def build_parser() -> argparse.ArgumentParser:
                          "the climatology and EOFs, index every day and write the store.",
              options=(P.files, P.store, P.events, P.event_dates, P.events_period, P.n_modes,
                       P.variance, P.fields, P.region, P.land_mask,
-                      P.domain, P.hour, P.daily, P.solver, P.chunk_days, P.scheduler, P.index,
+                      P.domain, P.hour, P.daily, P.solver, P.chunk_days, P.scratch, P.scheduler,
+                      P.index,
                       P.n_harmonics, P.quiet),
              exclusive=((False, (P.n_modes, P.variance)),))
     _command(commands, "find", handler=_cmd_find,
@@ -95,8 +96,8 @@ def build_parser() -> argparse.ArgumentParser:
                          "scored against what happened, the season climatology and random "
                          "analogs.",
              options=(P.store, P.top, P.query_modes, P.window, P.separation, P.region,
-                      P.months, P.kinds, P.metric, P.threshold, P.tune, P.save, P.json,
-                      P.quiet))
+                      P.months, P.kinds, P.regime, P.sequence, P.weights, P.exclude,
+                      P.metric, P.threshold, P.tune, P.save, P.json, P.quiet))
     _command(commands, "update", handler=_cmd_update,
              help="append new days to a store without a rebuild",
              description="Append new days (for example yesterday's analysis), projected on "
@@ -207,12 +208,15 @@ def _cmd_build(args) -> int:
     from analogs.api import build_store
     if args.scheduler and not args.chunk_days:
         raise AnalogsInputError("--scheduler distributes chunked work: pass --chunk-days too")
+    if args.scratch and not args.chunk_days:
+        raise AnalogsInputError("--scratch holds the out-of-core build's scratch files: "
+                                "pass --chunk-days too")
     store = build_store(args.files, args.store, fields=args.fields, n_modes=args.modes,
                         variance=args.variance, region=args.region, domain=args.domain,
                         hour=args.hour, daily=args.daily, solver=args.solver,
                         n_harmonics=args.harmonics, index=args.index, progress=not args.quiet,
                         chunks={"time": args.chunk_days} if args.chunk_days else None,
-                        scheduler=args.scheduler,
+                        scheduler=args.scheduler, scratch=args.scratch,
                         events=args.events, event_dates=args.event_dates,
                         events_period=args.events_period, land_mask=args.land_mask)
     config = store.manifest["config"]
@@ -329,9 +333,15 @@ def _cmd_verify(args) -> int:
     from analogs.workflows.skill import TUNED_METRIC
     if args.save and not args.tune:
         raise AnalogsInputError("--save records the result of --tune; pass both")
-    if args.tune and args.metric not in (None, TUNED_METRIC):
-        raise AnalogsInputError(f"--tune scans the numbers of analogs and modes with --metric "
-                                f"{TUNED_METRIC} only; drop --metric {args.metric}")
+    narrowed = [flag for flag, value in (("--regime", args.regime),
+                                         ("--sequence", args.sequence),
+                                         ("--weights", args.weights != P.weights.default),
+                                         ("--exclude", args.exclude is not None),
+                                         ("--metric", args.metric not in (None, TUNED_METRIC)))
+                if value]
+    if args.tune and narrowed:
+        raise AnalogsInputError(f"--tune scans the plain analogs; run it without "
+                                f"{', '.join(narrowed)}")
     store = AnalogStore.load(args.store)
     tuning = None
     if args.tune:
@@ -347,6 +357,9 @@ def _cmd_verify(args) -> int:
     summary = store.verify(top=args.top, window=args.window, separation=args.separation,
                            n_modes=args.modes, region=args.region, months=args.season,
                            threshold=args.threshold, kinds=args.kind, metric=args.metric,
+                           regime=args.regime, sequence=args.sequence, weights=args.weights,
+                           exclude=(P.exclude.default if args.exclude is None
+                                    else args.exclude),
                            progress=not args.quiet)
     if tuning is not None:
         summary["tuning"] = tuning

@@ -315,6 +315,11 @@ PARAMETERS: dict[str, Parameter] = _table(
     Parameter("chunk_days", ("--chunk-days",), "read and process the archive out of core "
               "in chunks of N days (dask), for archives larger than memory", kind="int",
               minimum=1, units="days", metavar="N", default_text="in memory"),
+    Parameter("scratch", ("--scratch",), "folder for the out-of-core build's temporary "
+              "float32 anomaly matrix (its size is said first, a disk without that much "
+              "free space is refused, and it is removed after the build); needs "
+              "--chunk-days", kind="path", metavar="DIR", default_text="beside the store",
+              output="directory"),
     Parameter("scheduler", ("--scheduler",), "run the chunked work on a dask.distributed "
               "scheduler at ADDRESS (tcp://host:8786), or 'local' for a local process "
               "cluster; needs --chunk-days", metavar="ADDRESS",
@@ -361,16 +366,19 @@ PARAMETERS: dict[str, Parameter] = _table(
     Parameter("exclude", ("--exclude",), "exclude days within this many days of the "
               "target date (its own episode)", kind="int", default=10, api_default=None,
               minimum=0, units="days", metavar="DAYS",
-              default_text="10 for --date; nothing for --field"),
+              default_text="10 for --date and for verify (whose targets are archive days); "
+                           "nothing for --field"),
     Parameter("regime", ("--regime",), "only analogs of this regime (machine labels "
-              + ", ".join(REGIME_LABELS) + ", or a label of the store's tags)",
+              + ", ".join(REGIME_LABELS) + ", or a label of the store's tags); verify then "
+              "forecasts that regime's days",
               metavar="LABEL", default_text="any regime"),
     Parameter("kinds", ("--kind",), "count only reports of these kinds, comma-separated "
               "(e.g. tornado,hail); for verify the event is at least one report of them",
               kind="list", metavar="LIST", default_text="every kind"),
     Parameter("sequence", ("--sequence",), "also match the target's preceding 1 or 2 days "
               "(weights 0.5, 0.25), so analogs share the pattern's evolution; a --field file "
-              "must then hold those days too", kind="int", default=0, minimum=0, maximum=2,
+              "must then hold those days too; verify then forecasts the days whose "
+              "preceding days are in the archive", kind="int", default=0, minimum=0, maximum=2,
               units="days", metavar="DAYS", default_text="0, the day alone"),
     Parameter("metric", ("--metric",), "distance of the analog search: "
               "'event_weighted' scales each PC by how much it says about the event "

@@ -119,6 +119,24 @@ def test_hindcast_analogs_are_the_live_query_selection(synthetic, top, window, s
         assert (pd.DatetimeIndex(held_out["time"]).year != target.year).all()
 
 
+def test_restricted_hindcast_analogs_are_the_live_query_selection(synthetic):
+    """With a restriction (a --regime's days: here the days whose second PC is positive),
+    the hindcast's analogs of a day are what find_analogs returns with that restriction
+    and the day's own year removed, and none lies outside it."""
+    pcs, _ = synthetic
+    allowed = pcs[:, 1] > 0
+    chosen = held_out_analogs(pcs, TIMES, rows=SAMPLE_ROWS, restrict=allowed)
+    index = AnalogIndex(kind="flat").fit(pcs)
+    assert allowed[chosen["row"]].all()
+    for row in SAMPLE_ROWS:
+        target = TIMES[row]
+        live = find_analogs(index, TIMES, pcs[row], target_time=target, exclude=10,
+                            restrict=allowed & (TIMES.year != target.year))
+        held_out = chosen[chosen["target"] == row]
+        np.testing.assert_array_equal(held_out["row"].to_numpy(), live["row"].to_numpy())
+        np.testing.assert_allclose(held_out["distance"].to_numpy(), live["distance"].to_numpy())
+
+
 def test_hindcast_forecast_is_the_share_of_its_analogs_with_the_event(synthetic):
     """leave_one_year_out's forecast of a day is the event frequency over exactly the
     analogs held_out_analogs lists for it."""

@@ -125,6 +125,16 @@ def test_out_of_core_matches_in_memory(small_archive, in_memory, chunked):
     np.testing.assert_allclose(chunked.eof.eigenvalues_.values[:k], exact[:k], rtol=1e-5)
 
 
+def test_out_of_core_tags_match_in_memory(in_memory, chunked):
+    """Out of core, tagging reads each time chunk once and works it in the in-memory
+    build's blocks of days: the tags are the in-memory build's, value for value, with
+    closed lows among them (the structure columns are read chunk by chunk too)."""
+    import pandas as pd
+
+    assert chunked.tags["tc_present"].sum() > 10
+    pd.testing.assert_frame_equal(chunked.tags, in_memory.tags, check_exact=True)
+
+
 def test_analogs_match_sklearn_brute_force(chunked):
     """Ranking of the chunked store against scikit-learn's exact brute-force neighbours
     over the same season-window candidates (no de-clustering: separation 0)."""
@@ -267,3 +277,51 @@ def test_scratch_folder_is_removed_and_a_full_disk_refused(small_archive, chunke
     message = capsys.readouterr().err
     assert status == 2 and "scratch space" in message and str(out) in message
     assert "Traceback" not in message and not (out / "store_full_cli").exists()
+
+
+def test_scratch_folder_given(small_archive, chunked, tmp_path, monkeypatch, capsys):
+    """``--scratch DIR`` puts the scratch files in DIR (said up front, removed after),
+    gives the same store as the default folder beside the store (the same anomaly
+    matrix, only elsewhere); a DIR on a full disk is refused naming DIR, and --scratch
+    without --chunk-days, or inside a store, is refused, exit status 2."""
+    import shutil
+    from collections import namedtuple
+
+    from analogs.cli import main
+    from analogs.stages import eof as eof_module
+
+    out, files = small_archive
+    scratch = tmp_path / "scratch"
+    seen = []
+    real_fit = eof_module.MultivariateEOF.fit
+
+    def spying_fit(self, *args, **kwargs):  # where the scratch arrays are made
+        seen.extend(scratch.glob(".analogs-scratch-*"))
+        return real_fit(self, *args, **kwargs)
+
+    with monkeypatch.context() as patch:
+        patch.setattr(eof_module.MultivariateEOF, "fit", spying_fit)
+        status = main(["build", *files, "--store", str(out / "store_scratch"),
+                       "--chunk-days", str(CHUNK_DAYS), "--scratch", str(scratch)])
+    message = capsys.readouterr().err
+    assert status == 0 and len(seen) == 1 and f"scratch space in {seen[0]}" in message
+    assert not list(scratch.iterdir()) and not list(out.glob(".analogs-scratch-*"))
+    from analogs.api import AnalogStore
+    _assert_same_eofs(chunked, AnalogStore.load(out / "store_scratch"))
+
+    usage = namedtuple("usage", "total used free")
+    real_usage = shutil.disk_usage
+    monkeypatch.setattr(shutil, "disk_usage", lambda path: usage(10 ** 6, 10 ** 6 - 1000, 1000)
+                        if str(path) == str(scratch.resolve()) else real_usage(path))
+    status = main(["build", *files, "--store", str(out / "store_scratch_full"),
+                   "--chunk-days", str(CHUNK_DAYS), "--scratch", str(scratch), "--quiet"])
+    message = capsys.readouterr().err
+    assert status == 2 and f"{scratch.resolve()} (the scratch folder given)" in message
+    assert not (out / "store_scratch_full").exists()
+    for arguments, expected in ((["--scratch", str(scratch)], "pass --chunk-days too"),
+                                (["--chunk-days", str(CHUNK_DAYS), "--scratch",
+                                  str(out / "store_scratch" / "tmp")], "outside any analogs store")):
+        status = main(["build", *files, "--store", str(out / "store_refused"), "--quiet",
+                       *arguments])
+        message = capsys.readouterr().err
+        assert status == 2 and expected in message and "Traceback" not in message

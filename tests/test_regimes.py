@@ -270,3 +270,47 @@ def test_agreement_with_demo_truth_table(capsys, default_demo_years):
     assert agreement >= 0.85
     assert recall["northwest_flow"] >= 0.80 and recall["strong_trough"] >= 0.80, recall
     assert precision["tropical"] >= 0.80 and recall["tropical"] >= 0.60, (precision, recall)
+
+
+def test_closed_low_asymmetry_against_pyproj_on_the_whole_grid(default_demo_years,
+                                                               monkeypatch):
+    """``tc_asymmetry`` (the wavenumber-2 amplitude of the height departure from its
+    zonal median on the 500-800 km ring, from eight octant means, over the depth) of
+    the demo's closed-low days, recomputed here over the whole grid with distances and
+    azimuths from pyproj's great-circle inverse on the same sphere (outside reference),
+    equals the function's box-limited one; and emptying the centre-geometry cache at
+    every new centre changes no value."""
+    pyproj = pytest.importorskip("pyproj")
+    import analogs.stages.regimes as regimes
+    from analogs.constants import EARTH_RADIUS
+    from analogs.stages.diagnostics import compute_diagnostics
+    import reanalysis_demo
+
+    fields = default_demo_years.fields.rename({"zg": "z500", "hus": "q850"}).isel(
+        time=slice(0, 400)).load()
+    diagnostics = compute_diagnostics(fields, reanalysis_demo.CENTRAL_REGION)
+    structure = regimes.cyclone_structure(fields, diagnostics)
+    days = np.flatnonzero(np.isfinite(structure["tc_asymmetry"].to_numpy()))
+    assert days.size >= 20
+    lat, lon = fields["lat"].values, fields["lon"].values
+    lat2, lon2 = np.meshgrid(lat, lon, indexing="ij")
+    geod = pyproj.Geod(a=EARTH_RADIUS, b=EARTH_RADIUS)
+    weights = np.cos(np.radians(lat2))
+    for day in days[::max(1, days.size // 20)]:
+        c_lat, c_lon = diagnostics["tc_lat"].iloc[day], diagnostics["tc_lon"].iloc[day]
+        azimuth, _, metres = geod.inv(np.full(lat2.size, c_lon), np.full(lat2.size, c_lat),
+                                      lon2.ravel(), lat2.ravel())
+        km, octant = metres / 1000.0, (np.floor(np.mod(azimuth, 360.0) / 45.0)).astype(int) % 8
+        z = fields["z500"].values[day]
+        anomaly = (z - np.median(z, axis=1, keepdims=True)).ravel()
+        ring = (km >= 500.0) & (km <= 800.0)
+        means = np.array([np.average(anomaly[ring & (octant == k)],
+                                     weights=weights.ravel()[ring & (octant == k)])
+                          for k in range(8)])
+        angles = np.radians(22.5 + 45.0 * np.arange(8))
+        expected = 2.0 / 8.0 * abs(np.sum(means * np.exp(2j * angles))) \
+            / diagnostics["tc_depth"].iloc[day]
+        assert structure["tc_asymmetry"].iloc[day] == pytest.approx(expected, rel=1e-9)
+    monkeypatch.setattr(regimes, "_CENTRE_CACHE_BYTES", -1)
+    pd.testing.assert_frame_equal(regimes.cyclone_structure(fields, diagnostics), structure,
+                                  check_exact=True)

@@ -119,13 +119,15 @@ def test_updated_store_object_answers_for_the_new_days(archive, store_path):
     assert len(store.times) == 365
     with pytest.raises(AnalogsInputError, match="outside the archive"):
         store.find(date=day)
-    # Appending the same days again writes nothing and says so.
+    # Appending the same days again writes nothing and says so. (The find above may
+    # have kept its measured skill in the manifest: compare with the store as it is now.)
+    written = AnalogStore.load(store_path).manifest["written"]
     again = new.update(archive["files"][2002], progress=False)
     assert again.last_update == {"days_in_files": 365, "days_added": 0,
                                  "days_already_present": 365,
                                  # the appended year came without reports (issue 13)
                                  "days_covered": 365, "days_without_reports": 365}
-    assert again.manifest["written"] == new.manifest["written"]
+    assert again.manifest["written"] == written
 
 
 def test_save_query_defaults_then_find(store_path):

@@ -11,6 +11,7 @@ import json
 import math
 
 from analogs import CAUTION, __version__
+from analogs.parameters import P
 
 
 def _fmt_probability(value) -> str:
@@ -36,23 +37,45 @@ def _with_caution(lines) -> str:
     return "\n".join([*lines, "", CAUTION])
 
 
+def _skill_settings_text(settings) -> str:
+    """The query settings a skill was measured with that narrow or weigh its analogs,
+    as words after "for this region" ('' for the plain query)."""
+    parts = []
+    if settings.get("regime") is not None:
+        parts.append(f"analogs of regime {settings['regime']} only")
+    if settings.get("sequence_days"):
+        n = settings["sequence_days"]
+        parts.append(f"sequences with the {n} preceding day{'s' if n > 1 else ''}")
+    if settings.get("weights", P.weights.default) != P.weights.default:
+        parts.append(f"analogs weighted ({settings['weights'].replace('_', ' ')})")
+    if settings.get("exclude_days", P.exclude.default) != P.exclude.default:
+        parts.append(f"{settings['exclude_days']} days around each target left out")
+    return (" with " + ", ".join(parts)) if parts else ""
+
+
 def skill_line(skill) -> str:
     """One line on what this query's guidance has been worth (cross-validated), or ''."""
     if not skill:
         return ""
     where = "this region" + (f" and kinds {', '.join(skill['kinds'])}" if skill.get("kinds")
                              else "")
+    where += _skill_settings_text(skill.get("settings") or {})
+    caveat = f"; not measured: {skill['not_measured']}" if skill.get("not_measured") else ""
     if skill.get("measured") is False:
         reason = f" ({skill['reason']})" if skill.get("reason") else ""
         return (f"Worth in the past: not measured for {where}{reason}; measure it with: "
-                f"{skill['command']}")
+                f"{skill['command']}{caveat}")
     lo, hi = skill["brier_skill_score_ci"]
     text = (f"Worth in the past for {where} (leave-one-year-out hindcast of P(any report), "
             f"{skill.get('source', 'build')}): Brier skill score "
             f"{skill['brier_skill_score']:.2f} vs season climatology (0 = no better, 1 = "
             f"perfect; 90% range over resampled years {lo:.2f} to {hi:.2f})")
     if skill.get("base_rate") is not None:
-        text += f", base rate {_percent(skill['base_rate'])} of days (all year)"
+        narrowed = (skill.get("settings") or {}).get("regime") is not None or \
+            (skill.get("settings") or {}).get("sequence_days")
+        text += (f", base rate {_percent(skill['base_rate'])} of "
+                 + (f"the days forecast ({skill['days_forecast']}, all year)" if narrowed
+                    else "days (all year)"))
     text += f", ROC area {skill['roc_auc']:.2f}"
     if skill.get("month_brier_skill_score") is not None:
         text += f"; in month {skill['month']}: {skill['month_brier_skill_score']:.2f}"
@@ -61,7 +84,7 @@ def skill_line(skill) -> str:
             text += f" ({m_lo:.2f} to {m_hi:.2f})"
         if skill.get("month_base_rate") is not None:
             text += f", base rate {_percent(skill['month_base_rate'])} of its days"
-    return text
+    return text + caveat
 
 
 def _find_data(result) -> dict:
@@ -303,7 +326,8 @@ def verify_text(summary: dict) -> str:
         f"{summary['n_forecasts']} days, base rate {100 * summary['base_rate']:.1f}%",
         f"settings: {settings['top']} analogs, {settings['n_modes']} EOF modes, window "
         f"+/-{settings['window']} d, months {settings['months'] or 'all'}"
-        + (f", metric {settings['metric']}" if settings.get("metric") else ""),
+        + (f", metric {settings['metric']}" if settings.get("metric") else "")
+        + (f";{narrowed}" if (narrowed := _skill_settings_text(settings)) else ""),
         "",
         *_skill_table(summary),
         "",
@@ -313,6 +337,8 @@ def verify_text(summary: dict) -> str:
         "",
         "reliability (forecast mean -> observed frequency, count):",
     ]
+    if settings.get("days_forecast"):
+        lines.insert(2, f"days forecast: {settings['days_forecast']}")
     if settings.get("n_days_without_reports"):
         lines.insert(2, f"{settings['n_days_without_reports']} days without reports yet left "
                         "out (neither forecast nor used as analogs)")

@@ -24,6 +24,7 @@ from analogs._validation import check_choice
 from analogs.errors import AnalogsInputError
 from analogs.parameters import P
 from analogs.stages.index import AnalogIndex
+from analogs.stages.outcomes import analog_weights
 from analogs.stages.scores import (bootstrap_interval, brier_score, brier_skill_score, roc_auc,
                                    roc_auc_within, verification_summary)
 from analogs.stages.selection import (DEFAULT_EXCLUDE, DEFAULT_SEPARATION, DEFAULT_TOP,
@@ -37,8 +38,9 @@ N_HARMONICS = 2
 
 def leave_one_year_out(pcs, times, observed, *, top=DEFAULT_TOP, window=DEFAULT_WINDOW,
                        separation=DEFAULT_SEPARATION, n_modes=None, method="analogs",
-                       months=None, seed=0, exclude=DEFAULT_EXCLUDE,
-                       metric=P.metric.default, sequence=0, progress=False):
+                       months=None, seed=0, exclude=DEFAULT_EXCLUDE, restrict=None,
+                       targets=None, weights=P.weights.default, metric=P.metric.default,
+                       sequence=0, progress=False):
     """Forecast every day from analogs in the other years.
 
     The analogs of a day are those the live query would choose
@@ -63,6 +65,14 @@ def leave_one_year_out(pcs, times, observed, *, top=DEFAULT_TOP, window=DEFAULT_
         days of each year are forecast in the space of
         :func:`~analogs.stages.predictor_weights.fit_predictor_weights` fitted on the
         days of the other years only (``observed`` of the held-out year never enters it).
+    restrict : bool array (n_days,), optional: the days allowed as analogs (and random
+        draws), as the live query's ``restrict`` (``--regime``: the days of that regime;
+        ``--sequence``: the days with their preceding days). The climatology reference
+        stays the season window's days of the other years, as the query prints it.
+    targets : bool array (n_days,), optional: the days to forecast (with ``months``).
+    weights : how the analogs are weighed in the forecast (``--weights``;
+        :func:`analogs.stages.outcomes.analog_weights` of their distances): ``"equal"``
+        is the fraction of analogs with the event.
     sequence : the rows of ``pcs`` are sequence vectors of the day and its ``sequence``
         preceding days (``[pc_t, 0.5 pc_{t-1}, ...]``, the live query's ``--sequence``):
         the event-weighted map is fitted on the first block, the day's own PCs, and
@@ -78,11 +88,13 @@ def leave_one_year_out(pcs, times, observed, *, top=DEFAULT_TOP, window=DEFAULT_
     owner = "leave_one_year_out"
     check_choice(method, "method", owner, HINDCAST_METHODS)
     metric = P.metric.check(metric, owner)
+    weights = P.weights.check(weights, owner)
     pcs, times, top, window, separation = _checked(pcs, times, top, window, separation,
                                                    n_modes, owner, exclude)
     observed = np.asarray(observed, dtype=bool)
     years = times.year.to_numpy()
-    targets = np.ones(len(times), dtype=bool)
+    targets = (np.ones(len(times), dtype=bool) if targets is None
+               else np.asarray(targets, dtype=bool).copy())
     if months is not None:
         targets &= np.isin(times.month, list(months))
     rng = np.random.default_rng(seed)
@@ -91,12 +103,16 @@ def leave_one_year_out(pcs, times, observed, *, top=DEFAULT_TOP, window=DEFAULT_
     n_analogs = np.zeros(len(times), dtype=int)
     if method == "analogs" and metric == "event_weighted":
         batches = _weighted_fold_batches(pcs, times, observed, targets, window, exclude,
-                                         top=top, separation=separation, sequence=sequence,
+                                         top=top, separation=separation, restrict=restrict,
+                                         sequence=sequence,
                                          progress=progress)
     else:
         batches = _calendar_day_batches(times, targets, window, exclude, progress=progress)
     if method == "analogs" and metric == "plain":
-        batches = _with_analogs(batches, pcs, times, top=top, separation=separation)
+        batches = _with_analogs(batches, pcs, times, top=top, separation=separation,
+                                restrict=restrict)
+    if restrict is not None:
+        restrict = np.asarray(restrict, dtype=bool)
     for queries, season, other_years, chosen in batches:
         # Climatology of the days the target may take: their share of event days.
         in_season = other_years[:, season]
@@ -107,13 +123,20 @@ def leave_one_year_out(pcs, times, observed, *, top=DEFAULT_TOP, window=DEFAULT_
         for position, row in enumerate(queries):
             if n_others[position] == 0:
                 continue
+            distances = None
             if method == "random":
                 others = season[in_season[position]]
+                if restrict is not None:
+                    others = others[restrict[others]]
                 rows = rng.choice(others, size=min(top, others.size), replace=False)
             else:
-                rows = chosen[position][0]
+                rows, distances = chosen[position]
             if rows.size:
-                forecast[row] = observed[rows].mean()
+                # Weights sum to 1 up to round-off: clipped into [0, 1].
+                forecast[row] = (observed[rows].mean() if weights == "equal"
+                                 or distances is None else min(1.0, float(
+                                     analog_weights(distances, scheme=weights)
+                                     @ observed[rows])))
                 n_analogs[row] = rows.size
     done = np.isfinite(forecast) & np.isfinite(climatology)
     return pd.DataFrame({
@@ -125,7 +148,7 @@ def leave_one_year_out(pcs, times, observed, *, top=DEFAULT_TOP, window=DEFAULT_
 
 def held_out_analogs(pcs, times, *, rows=None, top=DEFAULT_TOP, window=DEFAULT_WINDOW,
                      separation=DEFAULT_SEPARATION, n_modes=None,
-                     exclude=DEFAULT_EXCLUDE) -> pd.DataFrame:
+                     exclude=DEFAULT_EXCLUDE, restrict=None) -> pd.DataFrame:
     """The analogs the leave-one-year-out hindcast takes for the archive days ``rows``.
 
     For each target day: the season-window candidates of its calendar day
@@ -138,7 +161,8 @@ def held_out_analogs(pcs, times, *, rows=None, top=DEFAULT_TOP, window=DEFAULT_W
 
     Parameters
     ----------
-    pcs, times, top, window, separation, n_modes, exclude : as in :func:`leave_one_year_out`.
+    pcs, times, top, window, separation, n_modes, exclude, restrict : as in
+        :func:`leave_one_year_out`.
     rows : int array of target rows (default every day).
 
     Returns
@@ -152,7 +176,7 @@ def held_out_analogs(pcs, times, *, rows=None, top=DEFAULT_TOP, window=DEFAULT_W
     targets[np.arange(len(times)) if rows is None else np.asarray(rows, dtype=np.int64)] = True
     parts = {"target": [], "rank": [], "row": [], "distance": []}
     batches = _with_analogs(_calendar_day_batches(times, targets, window, exclude), pcs, times,
-                            top=top, separation=separation)
+                            top=top, separation=separation, restrict=restrict)
     for queries, _, _, chosen in batches:
         for row, (analog_rows, distances) in zip(queries, chosen):
             parts["target"].append(np.full(analog_rows.size, row, dtype=np.int64))
@@ -204,18 +228,25 @@ def _calendar_day_batches(times, targets, window, exclude=DEFAULT_EXCLUDE, *, pr
         yield queries, season, other_years, None
 
 
-def _with_analogs(batches, pcs, times, *, top, separation):
+def _with_analogs(batches, pcs, times, *, top, separation, restrict=None):
     """``batches`` with each target's analogs, ``(rows, distances)`` from
-    :func:`~analogs.stages.selection.rank_many` over an exact (flat) index of ``pcs``."""
+    :func:`~analogs.stages.selection.rank_many` over an exact (flat) index of ``pcs``.
+    ``restrict`` (bool per day) narrows the candidates as the live query's does
+    (:func:`~analogs.stages.selection.candidate_ids`)."""
     index = AnalogIndex(kind="flat").fit(pcs)
+    if restrict is not None:
+        restrict = np.asarray(restrict, dtype=bool)
     for queries, season, other_years, _ in batches:
-        chosen = rank_many(index, times, pcs[queries], season, top=top,
+        # The season window's candidates that the restriction allows: candidate_ids
+        # with the query's restrict (its conditions are combined by "and").
+        candidates = season if restrict is None else season[restrict[season]]
+        chosen = rank_many(index, times, pcs[queries], candidates, top=top,
                            separation=separation, restrict=other_years)
         yield queries, season, other_years, chosen
 
 
 def _weighted_fold_batches(pcs, times, observed, targets, window, exclude, *, top,
-                           separation, sequence=0, progress=False):
+                           separation, restrict=None, sequence=0, progress=False):
     """The batches of :func:`_with_analogs`, year by year: the targets of year Y ranked
     in the event-weighted space fitted on the days of the other years only
     (:func:`~analogs.stages.predictor_weights.fit_predictor_weights`; nested, so no day
@@ -233,7 +264,7 @@ def _weighted_fold_batches(pcs, times, observed, targets, window, exclude, *, to
                                           observed[train])
         batches = _calendar_day_batches(times, targets & ~train, window, exclude)
         yield from _with_analogs(batches, pcs @ block_transform(transform, n_blocks), times,
-                                 top=top, separation=separation)
+                                 top=top, separation=separation, restrict=restrict)
 
 
 class HeldOutNeighbours:

@@ -115,6 +115,26 @@ def read_land_mask(path) -> tuple[xr.DataArray, dict]:
     return mask, {"path": where, "variable": name, "standard_name": standard_name or None}
 
 
+def _may_hold_mask(path) -> bool:
+    """Whether the header of the NetCDF file ``path`` names a variable
+    :func:`find_land_mask` could take, read with netCDF4 without decoding (a screen: an
+    xarray open of each yearly file of a 40-year archive cost a second, measured). True
+    when the header cannot be read this way (a Zarr store, a damaged file): the full
+    open decides, and names the file when it fails."""
+    import types
+
+    import netCDF4
+    try:
+        with netCDF4.Dataset(path) as dataset:
+            header = types.SimpleNamespace(data_vars={
+                name: types.SimpleNamespace(
+                    attrs={"standard_name": getattr(variable, "standard_name", "")})
+                for name, variable in dataset.variables.items()})
+    except (OSError, RuntimeError, ValueError):
+        return True
+    return find_land_mask(header) is not None
+
+
 def land_mask_in_archive(paths) -> tuple[xr.DataArray | None, dict | None]:
     """The first land-sea mask found in the archive files ``paths`` (as
     :func:`read_land_mask`), or (None, None). A variable named like a mask whose values
@@ -122,7 +142,7 @@ def land_mask_in_archive(paths) -> tuple[xr.DataArray | None, dict | None]:
     something else."""
     from analogs.stages.sources import _expand_paths, _is_grib
     for path in _expand_paths(paths, "build_store"):
-        if _is_grib(path):
+        if _is_grib(path) or not _may_hold_mask(path):
             continue
         try:
             return read_land_mask(path)

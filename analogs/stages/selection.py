@@ -409,3 +409,33 @@ def decluster_many(days, valid, separation_days, limit) -> np.ndarray:
         kept_days[taken, slot] = days[taken, position]
         count[taken] += 1
     return kept
+
+
+#: Weight of the day ``lag`` days before the target in a sequence match: 0.5 ** lag.
+SEQUENCE_DECAY = 0.5
+
+
+def sequence_vectors(pcs, times, sequence) -> tuple[np.ndarray, np.ndarray]:
+    """Vectors of each day followed by its ``sequence`` preceding days (``--sequence``).
+
+    Row t is ``[pcs(t), w1 pcs(t-1), ..., ws pcs(t-s)]`` with ``w_lag = SEQUENCE_DECAY **
+    lag`` (0.5, 0.25), so the Euclidean distance between two rows is the weighted
+    distance of the two short sequences. The boolean array marks the rows whose
+    preceding days are all in ``times`` (consecutive calendar days): only those can be
+    analogs, and only those are hindcast targets. The live query (a store's cached
+    vectors) and the hindcast of its skill take their vectors from here.
+
+    Parameters
+    ----------
+    pcs : array (n_days, n_modes), row i for ``times[i]`` (times ascending).
+    times : the days.
+    sequence : 0, 1 or 2 preceding days.
+    """
+    pcs = np.asarray(pcs)
+    days = day_numbers(_as_index(times))
+    parts, complete = [pcs], np.ones(len(pcs), dtype=bool)
+    for lag in range(1, sequence + 1):
+        complete &= np.roll(days, lag) == days - lag
+        parts.append(SEQUENCE_DECAY ** lag * np.roll(pcs, lag, axis=0))
+    complete[:sequence] = False
+    return np.hstack(parts), complete

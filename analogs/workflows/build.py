@@ -98,7 +98,8 @@ def build_store(paths, store, *, events=None, event_dates=P.event_dates.default,
                 variance=None, region=None, domain=None, hour=P.hour.default,
                 daily=P.daily.default, n_harmonics=P.n_harmonics.default,
                 solver=P.solver.default, field_weights=None, chunks=None,
-                index=P.index.default, scheduler=None, land_mask=None, progress=True):
+                index=P.index.default, scheduler=None, scratch=None, land_mask=None,
+                progress=True):
     """Build (or rebuild) the store at ``store`` from archive ``paths``.
 
     Parameters
@@ -127,6 +128,10 @@ def build_store(paths, store, *, events=None, event_dates=P.event_dates.default,
     scheduler : address of a ``dask.distributed`` scheduler (``"tcp://host:8786"``), or
         ``"local"`` for a local cluster of processes; default: dask's threaded scheduler.
         Only chunked (out-of-core) work is distributed.
+    scratch : folder for the out-of-core build's float32 anomaly matrix (a temporary
+        folder made inside it, removed afterwards); default beside ``store``. Only with
+        ``chunks``. Its size is said up front (with ``progress``) and a disk with less
+        free space is refused before any is written.
     index : ``"auto" | "flat" | "hnsw"``, the faiss index rebuilt at every load
         (approximate HNSW above 500,000 days with ``"auto"``); for HNSW the recall@20
         against exact search, with the season window applied, is measured and stored.
@@ -156,6 +161,12 @@ def build_store(paths, store, *, events=None, event_dates=P.event_dates.default,
     if events_period is not None:
         parse_period(events_period, "events_period", owner)  # refused before any work
     store_io.check_new_store_path(store)  # a file, a folder of other files, inside a store
+    if scratch is not None:
+        if chunks is None:
+            fail("scratch", owner, "None for an in-memory build: it holds the out-of-core "
+                 "build's anomaly matrix (give chunks too)", scratch)
+        from analogs.workflows.paths import check_output
+        check_output(P.scratch.check(scratch, owner), "scratch", owner, kind="directory")
     mask = None
     if land_mask is not None:  # a bad mask file is refused before any work
         from analogs.stages.landmask import read_land_mask
@@ -173,7 +184,8 @@ def build_store(paths, store, *, events=None, event_dates=P.event_dates.default,
                           variance=variance, region=region, domain=domain, hour=hour,
                           daily=daily, n_harmonics=n_harmonics, solver=solver,
                           field_weights=field_weights, chunks=chunks, index=index,
-                          progress=progress, reads_done=guard.check_unchanged, mask=mask)
+                          progress=progress, reads_done=guard.check_unchanged, mask=mask,
+                          scratch=scratch)
 
 
 #: A dask scheduler address: an optional scheme, a host name, IPv4 or [IPv6] address,
@@ -233,7 +245,7 @@ def _dask_scheduler(address):
 def _build(paths, store, *, events, event_dates, events_period, fields, n_modes, variance,
            region, domain, hour, daily,
            n_harmonics, solver, field_weights, chunks, index, progress,
-           reads_done=lambda: None, mask=None):
+           reads_done=lambda: None, mask=None, scratch=None):
     from analogs.stages.regimes import tag_days
     from analogs.stages.sources import open_archive
     archive = open_archive(paths, fields=fields, region=domain, hour=hour, daily=daily,
@@ -250,8 +262,8 @@ def _build(paths, store, *, events, event_dates, events_period, fields, n_modes,
     # Anomalies in the archive's float32, made block-wise; the EOF fit scales them in
     # place into its data matrix (one copy of the archive beside the archive itself).
     # Out of core, that copy is a scratch file written in one pass over the archive.
-    with _scratch_files(store, archive, chunked=chunks is not None,
-                        progress=progress) as scratch:
+    with _scratch_files(store, archive, chunked=chunks is not None, progress=progress,
+                        folder=scratch) as scratch:
         eof = MultivariateEOF(n_modes, variance=variance, solver=solver,
                               field_weights=field_weights).fit(
             climatology.transform(archive), overwrite=True, scratch=scratch)
@@ -341,10 +353,10 @@ _SCRATCH_MARGIN = 1.1
 
 
 @contextlib.contextmanager
-def _scratch_files(store, archive, *, chunked: bool, progress: bool):
+def _scratch_files(store, archive, *, chunked: bool, progress: bool, folder=None):
     """For an out-of-core build, a maker of float32 memory-mapped arrays in a
-    temporary folder beside ``store``, removed afterwards (also on error); ``None``
-    for an in-memory build.
+    temporary folder inside ``folder`` (default: beside ``store``), removed afterwards
+    (also on error); ``None`` for an in-memory build.
 
     The size (every field's values in float32) is said up front when ``progress`` is
     on; a disk with less free space than that is refused before any is written.
@@ -352,16 +364,18 @@ def _scratch_files(store, archive, *, chunked: bool, progress: bool):
     if not chunked:
         yield None
         return
-    parent = Path(store).resolve().parent
+    given = folder is not None
+    parent = Path(folder).resolve() if given else Path(store).resolve().parent
     parent.mkdir(parents=True, exist_ok=True)
     n_bytes = 4 * sum(int(np.prod(archive[name].shape)) for name in archive.data_vars)
     free = shutil.disk_usage(parent).free
     if free < _SCRATCH_MARGIN * n_bytes:
         raise AnalogsInputError(
             f"the out-of-core build needs {n_bytes / 1e9:.2f} GB of scratch space for its "
-            f"float32 anomaly matrix in {parent} (beside the store), but only "
-            f"{free / 1e9:.2f} GB are free there; free some space or build the store "
-            "on another disk")
+            f"float32 anomaly matrix in {parent} "
+            f"({'the scratch folder given' if given else 'beside the store'}), but only "
+            f"{free / 1e9:.2f} GB are free there; free some space or give a scratch "
+            "folder on a disk with room (--scratch DIR, or scratch= from Python)")
     folder = Path(tempfile.mkdtemp(prefix=".analogs-scratch-", dir=parent))
     if progress:
         print(f"analogs build: {n_bytes / 1e9:.2f} GB of scratch space in {folder} "

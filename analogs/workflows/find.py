@@ -58,7 +58,9 @@ from analogs.stages.outcomes import (
     summarize_outcomes,
 )
 from analogs.stages import outcomes as outcome_stage
-from analogs.stages.selection import candidate_ids, find_analogs, find_analogs_many
+from analogs.stages.selection import (SEQUENCE_DECAY, candidate_ids, find_analogs,
+                                      find_analogs_many)
+from analogs.stages.selection import sequence_vectors as selection_sequence_vectors
 
 if TYPE_CHECKING:  # xarray is imported by the field targets and the report only
     import xarray as xr
@@ -69,8 +71,6 @@ if TYPE_CHECKING:  # xarray is imported by the field targets and the report only
 
 #: How the analogs may be weighted in the outcome statistics.
 WEIGHT_SCHEMES = P.weights.choices
-#: Weight of the day ``lag`` days before the target in a sequence match: 0.5 ** lag.
-SEQUENCE_DECAY = 0.5
 #: Largest share of the store grid a field target may leave without values (outside
 #: its file, or missing in it); up to it the target is projected by least squares on
 #: the covered points (Everson & Sirovich 1995), above it the target is refused.
@@ -182,9 +182,14 @@ def _checked_query(store, owner, *, top, window, exclude, separation, region, re
 
 
 def _day_vector(store, query: _Query, row: int) -> np.ndarray:
-    """The vector searched for archive row ``row`` as a date target."""
+    """The vector searched for archive row ``row`` as a date target; a sequence query
+    is refused on a day whose preceding days are not in the archive (nor hindcast)."""
     if query.sequence:
-        return sequence_vectors(store, query.sequence)[0][row]
+        vectors, complete = sequence_vectors(store, query.sequence)
+        if not complete[row]:
+            fail("sequence", "find", f"at most the number of days before "
+                 f"{store.days[row].date()} that the archive holds", query.sequence)
+        return vectors[row]
     return store.pc_values[row, :query.n_modes]
 
 
@@ -224,14 +229,16 @@ def find_many(store, dates, **options) -> list[FindResult]:
     else:
         dates = [(f"dates[{position}]", date) for position, date in enumerate(dates)]
     query = _checked_query(store, "find", **{**_FIND_OPTIONS, **options}).for_date()
-    rows, refused = [], None
+    rows, vectors, refused = [], [], None
     for where, date in dates:
         try:
-            rows.append(day_row(store, date))
+            row = day_row(store, date)
+            vectors.append(_day_vector(store, query, row))
         except AnalogsInputError as error:  # the dates before it are answered first
             refused = _date_refused(where, date, error)
             break
-    vectors = np.array([_day_vector(store, query, row) for row in rows])
+        rows.append(row)
+    vectors = np.array(vectors)
     if rows:
         vectors = query.mapped(vectors)
     rankings = find_analogs_many(
@@ -311,6 +318,7 @@ class _Query:
     index: object
     restrict: np.ndarray | None
     transform: np.ndarray | None  # the event-weighted metric's map of the PCs, or None
+    field_target: bool = False  # a --field query (its sequence comes from its file)
 
     @classmethod
     def resolve(cls, store, **settings) -> _Query:
@@ -357,9 +365,17 @@ class _Query:
         from analogs.workflows.skill import skill_settings
         settings = skill_settings(store, top=self.top, window=self.window,
                                   separation=self.separation, n_modes=self.n_modes,
+                                  regime=self.regime, sequence=self.sequence,
+                                  weights=self.weights, exclude=self.exclude,
                                   metric=self.metric)
-        return store.skill_for(target_time, region=self.region, kinds=self.kinds,
-                               settings=settings, measure=not self.skip_skill_hindcast)
+        skill = store.skill_for(target_time, region=self.region, kinds=self.kinds,
+                                settings=settings, measure=not self.skip_skill_hindcast)
+        if skill is not None and self.field_target and self.sequence:
+            skill = {**skill, "not_measured": (
+                f"the field's {self.sequence} preceding days come from its file, while the "
+                "hindcast matched archive days with the archive's own preceding days: a "
+                "sequence of forecast fields is not hindcast")}
+        return skill
 
     def answer(self, store, vector, target_time, chosen=None) -> tuple[pd.DataFrame, object]:
         """The analogs table and the outcome summary of one target vector; ``chosen``: its
@@ -691,6 +707,7 @@ def find_field(store, field, time, query: _Query):
     """
     import xarray as xr
     from analogs.stages.sources import several_times
+    query = dataclasses_replace(query, field_target=True)
     with renamed_errors("find", "time"):
         opened = open_field(field, time)
     fields = on_store_grid(store, opened)
@@ -894,25 +911,14 @@ def warn_near_duplicate(store, analogs: pd.DataFrame, valid, query: _Query,
 # ---------------------------------------------------------------------- sequences
 
 def sequence_vectors(store, sequence) -> tuple[np.ndarray, np.ndarray]:
-    """Vectors of each day followed by its ``sequence`` preceding days.
-
-    Row t is ``[pcs(t), w1 pcs(t-1), ..., ws pcs(t-s)]`` with ``w_lag = 0.5 ** lag``
-    (``SEQUENCE_DECAY``), so the Euclidean distance between two rows is the weighted
-    distance of the two short sequences. The boolean array marks rows whose preceding
-    days are all in the archive (consecutive calendar days); only those can be analogs.
-    """
+    """Vectors of each day followed by its ``sequence`` preceding days, over the store's
+    query modes (:func:`analogs.stages.selection.sequence_vectors`, kept per loaded
+    store), and the rows whose preceding days are all in the archive."""
     sequence = P.sequence.check(sequence, "find")
     cache = _derived(store).setdefault("sequence_vectors", {})
     if sequence not in cache:
-        pcs = store.pc_values[:, :store.n_query_modes]
-        day_numbers = (store.days - pd.Timestamp("1970-01-01")).days.to_numpy()
-        parts, complete = [pcs], np.ones(len(pcs), dtype=bool)
-        for lag in range(1, sequence + 1):
-            shifted = np.roll(pcs, lag, axis=0)
-            complete &= np.roll(day_numbers, lag) == day_numbers - lag
-            parts.append(SEQUENCE_DECAY ** lag * shifted)
-        complete[:sequence] = False
-        cache[sequence] = (np.hstack(parts), complete)
+        cache[sequence] = selection_sequence_vectors(
+            store.pc_values[:, :store.n_query_modes], store.days, sequence)
     return cache[sequence]
 
 

@@ -61,29 +61,67 @@ def hindcast_days(store, events: np.ndarray, *, region=None, kinds=None):
     return store.pcs.values[covered], store.times[covered], events[covered]
 
 
+def query_vectors(store, n_modes, *, regime=None, sequence=P.sequence.default):
+    """The vectors a query with ``regime`` and ``sequence`` searches, and the days it
+    allows as analogs, on every archive day: ``(vectors, restrict)``, the live query's
+    own (:class:`analogs.workflows.find._Query`): the leading ``n_modes`` PCs, with the
+    preceding days' when ``sequence`` (:func:`analogs.stages.selection.sequence_vectors`),
+    and ``restrict`` the days tagged ``regime`` that have their preceding days (None
+    when neither setting narrows them). A hindcast of these settings forecasts the
+    ``restrict`` days only: the days such a query is asked about (of that regime) and
+    whose own sequence is known."""
+    from analogs.stages.selection import sequence_vectors
+    from analogs.workflows.find import regime_mask
+    vectors = store.pc_values[:, :n_modes]
+    if regime is None and not sequence:
+        return vectors, None
+    restrict = np.ones(len(store.times), dtype=bool)
+    if regime is not None:
+        restrict &= regime_mask(store, regime)
+    if sequence:
+        vectors, complete = sequence_vectors(vectors, store.days, sequence)
+        restrict &= complete
+    return vectors, restrict
+
+
 def measured_skill(pcs, times, observed, covered, *, region, top=P.top.default,
                    window=P.window.default, separation=P.separation.default,
-                   metric=P.metric.default) -> dict | None:
+                   restrict=None, weights=P.weights.default,
+                   exclude=P.exclude.default, metric=P.metric.default,
+                   sequence=P.sequence.default) -> dict | None:
     """:func:`skill_by_month` over the days with report coverage (``covered``); None when
     it cannot be measured: fewer than two years covered, or no day (or every day) with
-    an event there."""
+    an event there. ``restrict`` (bool per day, :func:`query_vectors`): the days allowed
+    as analogs, which are also the days forecast; ``sequence``: ``pcs`` are the sequence
+    vectors of that many preceding days (for the event-weighted map)."""
     covered = np.asarray(covered, dtype=bool)
     times = pd.DatetimeIndex(times)
-    events = np.asarray(observed, dtype=bool)[covered]
-    if np.unique(times[covered].year).size < 2 or not 0 < events.sum() < events.size:
+    targets = covered if restrict is None else covered & np.asarray(restrict, dtype=bool)
+    events = np.asarray(observed, dtype=bool)[targets]
+    if np.unique(times[targets].year).size < 2 or not 0 < events.sum() < events.size:
         return None
-    return skill_by_month(np.asarray(pcs)[covered], times[covered], events, region=region,
-                          top=top, window=window, separation=separation, metric=metric)
+    restrict = None if restrict is None else np.asarray(restrict, dtype=bool)[covered]
+    return skill_by_month(np.asarray(pcs)[covered], times[covered],
+                          np.asarray(observed, dtype=bool)[covered], region=region,
+                          top=top, window=window, separation=separation,
+                          restrict=restrict, weights=weights, exclude=exclude, metric=metric,
+                          sequence=sequence)
 
 
 def verify(store, *, top=P.top.api_default, window=P.window.default,
            separation=P.separation.default, n_modes=P.query_modes.api_default, region=None,
            months=None, threshold=P.threshold.default, n_resamples=P.n_resamples.default,
-           kinds=None, metric=P.metric.api_default, progress=False) -> dict:
+           kinds=None, regime=None, sequence=P.sequence.default, weights=P.weights.default,
+           exclude=P.exclude.default, metric=P.metric.api_default, progress=False) -> dict:
     """Leave-one-year-out hindcast scores, with the random-analog baseline beside them.
 
     ``top`` and ``n_modes`` default to the store's saved query defaults (else
-    ``P.top.default`` and every mode). Returns the ``analogs verify --json`` dict:
+    ``P.top.default`` and every mode). ``regime``, ``sequence``, ``weights`` and
+    ``exclude`` are find's: the hindcast takes its analogs as such a query does
+    (:func:`query_vectors`; with ``regime`` or ``sequence`` it forecasts the days the
+    query applies to: that regime's days, the days with their preceding days), weighs
+    them as it does, and leaves out the target's year and the days within ``exclude``
+    days of it. Returns the ``analogs verify --json`` dict:
     :func:`analogs.stages.hindcast.score_hindcast` of the analog forecasts, plus
     ``random_analogs`` (the same scores of ``top`` days drawn at random from the same
     candidates) and ``settings``. ``metric`` is the analog search's distance
@@ -103,17 +141,31 @@ def verify(store, *, top=P.top.api_default, window=P.window.default,
     threshold = P.threshold.check(threshold, owner)
     n_resamples = P.n_resamples.check(n_resamples, owner)
     metric = P.metric.check(metric, owner)
-    with renamed_errors(owner, "region", "kinds"):
+    sequence, weights = P.sequence.check(sequence, owner), P.weights.check(weights, owner)
+    exclude = P.exclude.check(exclude, owner)
+    with renamed_errors(owner, "region", "kinds", "regime"):
         region = resolve_region(store, region)
         events = observed(store, region, kinds)
+        vectors, restrict = query_vectors(store, int(n_modes or store.n_modes),
+                                          regime=regime, sequence=sequence)
     pcs, times, events = hindcast_days(store, events, region=region, kinds=kinds)
-    common = dict(top=top, window=window, separation=separation, n_modes=n_modes,
-                  months=months)
-    hindcast = leave_one_year_out(pcs, times, events, metric=metric, progress=progress,
+    covered = store.covered
+    if restrict is not None:
+        restrict = restrict[covered]
+        if not events[restrict].any():
+            raise AnalogsInputError(
+                f"store {store.path}: no day it would forecast with these settings "
+                + (f"(days tagged {regime}" if regime is not None else "(days")
+                + (f" with their {sequence} preceding days" if sequence else "")
+                + ") had an event there: there is nothing to verify")
+    common = dict(top=top, window=window, separation=separation, months=months,
+                  exclude=exclude, restrict=restrict, targets=restrict)
+    hindcast = leave_one_year_out(vectors[covered], times, events, progress=progress,
+                                  weights=weights, metric=metric, sequence=sequence,
                                   **common)
     summary = score_hindcast(hindcast, threshold=threshold, n_resamples=n_resamples)
-    baseline = score_hindcast(leave_one_year_out(pcs, times, events, method="random",
-                                                 **common),
+    baseline = score_hindcast(leave_one_year_out(vectors[covered], times, events,
+                                                 method="random", **common),
                               threshold=threshold, n_resamples=n_resamples)
     summary["random_analogs"] = {k: baseline[k] for k in
                                  ("brier_score", "brier_skill_score", "brier_skill_score_ci",
@@ -137,7 +189,11 @@ def verify(store, *, top=P.top.api_default, window=P.window.default,
                            "window": window, "separation": separation,
                            "months": None if months is None else sorted(months),
                            "region": region.to_dict(), "threshold": threshold,
-                           "kinds": kinds, "method": "leave-one-year-out", "metric": metric}
+                           "kinds": kinds, "method": "leave-one-year-out",
+                           "regime": regime, "sequence_days": sequence, "weights": weights,
+                           "exclude_days": exclude, "metric": metric}
+    if restrict is not None:  # only then, so earlier answers keep their shape
+        summary["settings"]["days_forecast"] = days_forecast(summary["settings"])
     left_out = int((~store.covered).sum())
     if left_out:  # only then, so earlier answers keep their shape
         summary["settings"]["n_days_without_reports"] = left_out
@@ -207,7 +263,9 @@ def nested_tune(store, *, tops=P.tops.default, modes=P.scan_modes.default,
 
 def skill_by_month(pcs, times, observed, *, region, top=P.top.default,
                    window=P.window.default, separation=P.separation.default,
-                   metric=P.metric.default) -> dict:
+                   restrict=None, weights=P.weights.default,
+                   exclude=P.exclude.default, metric=P.metric.default,
+                   sequence=P.sequence.default) -> dict:
     """Cross-validated skill of the default query settings, overall and by month.
 
     A leave-one-year-out hindcast (:func:`analogs.stages.hindcast.leave_one_year_out`) of "at
@@ -215,11 +273,16 @@ def skill_by_month(pcs, times, observed, *, region, top=P.top.default,
     other years' season-window climatology. Stored in the manifest at build so that
     every query can say how much this kind of guidance has been worth. A month whose
     reference forecasts are perfect has ``brier_skill_score`` null (the manifest is JSON).
+    ``restrict`` (bool per day, :func:`query_vectors`) narrows the analogs and the days
+    forecast as a ``--regime`` or ``--sequence`` query does; ``weights`` and
+    ``exclude`` are the query's.
     """
     from analogs.stages.hindcast import leave_one_year_out, score_hindcast
     from analogs.stages.scores import bootstrap_interval, brier_score, brier_skill_score
     hindcast = leave_one_year_out(pcs, times, observed, top=top, window=window,
-                                  separation=separation, metric=metric)
+                                  separation=separation, restrict=restrict,
+                                  targets=restrict, weights=weights, exclude=exclude,
+                                  metric=metric, sequence=sequence)
     months = pd.DatetimeIndex(hindcast["time"]).month
     by_month = {}
     for month in range(1, 13):
@@ -279,22 +342,34 @@ _SKILL_INPUTS = ("scores.nc", "events.parquet")
 
 
 def skill_settings(store, *, top=None, window=P.window.default,
-                   separation=P.separation.default, n_modes=None,
-                   metric=None) -> dict:
+                   separation=P.separation.default, n_modes=None, regime=None,
+                   sequence=P.sequence.default, weights=P.weights.default,
+                   exclude=None, metric=None) -> dict:
     """The hindcast settings a query's skill is measured with: its number of analogs,
-    season window, de-clustering, modes and the analog search's metric (defaults: the
-    store's query defaults; the metric named only when not :data:`UNNAMED_METRIC`, so
-    keys kept before it existed still match)."""
+    season window, de-clustering, modes and metric (defaults: the store's query
+    defaults), regime of the analogs, sequence days, analog weights, the exclusion
+    around each target (the query's ``exclude`` when wider than ``P.exclude.default``,
+    else that default: a hindcast always leaves the target's own episode out; a field
+    query excludes nothing because its day is not in the archive). The metric is named
+    only when not :data:`UNNAMED_METRIC`, so keys kept before it existed still match."""
+    exclude = max(int(exclude or 0), P.exclude.default)
     if metric is None:
         metric = store.query_defaults.get("metric", P.metric.default)
     settings = {"top": int(store.query_defaults.get("top", P.top.default) if top is None
                            else top),
                 "window_days": None if window is None else int(window),
                 "separation_days": int(separation),
-                "n_modes": int(store.n_query_modes if n_modes is None else n_modes)}
+                "n_modes": int(store.n_query_modes if n_modes is None else n_modes),
+                "regime": regime, "sequence_days": int(sequence), "weights": weights,
+                "exclude_days": exclude}
     if metric != UNNAMED_METRIC:
         settings["metric"] = metric
     return settings
+
+
+#: Settings of :func:`skill_settings` that the build's measurement has at these values.
+_PLAIN_SETTINGS = {"regime": None, "sequence_days": P.sequence.default,
+                   "weights": P.weights.default, "exclude_days": P.exclude.default}
 
 
 def skill_key(store, region: dict, kinds, settings: dict) -> tuple[str, dict]:
@@ -315,9 +390,11 @@ def _verify_command(store, region: dict, kinds, settings: dict) -> str:
     defaults = {"top": store.query_defaults.get("top", P.top.default),
                 "window_days": P.window.default, "separation_days": P.separation.default,
                 "n_modes": store.n_query_modes,
-                "metric": store.query_defaults.get("metric", P.metric.default)}
+                "metric": store.query_defaults.get("metric", P.metric.default),
+                **_PLAIN_SETTINGS}
     options = {"top": "--top", "window_days": "--window", "separation_days": "--separation",
-               "n_modes": "--modes", "metric": "--metric"}
+               "n_modes": "--modes", "regime": "--regime", "sequence_days": "--sequence",
+               "weights": "--weights", "exclude_days": "--exclude", "metric": "--metric"}
     settings = {"metric": UNNAMED_METRIC, **settings}
     return (f"analogs verify --store {store.path}"
             + (f" --region {argument}" if argument else "")
@@ -326,15 +403,29 @@ def _verify_command(store, region: dict, kinds, settings: dict) -> str:
                       if settings.get(k, defaults[k]) != defaults[k]))
 
 
+def days_forecast(settings: dict) -> str:
+    """Which archive days a hindcast of ``settings`` forecasts, in words."""
+    days = "every archive day with report coverage"
+    if settings.get("regime") is not None:
+        days += f" tagged {settings['regime']}"
+    if settings.get("sequence_days"):
+        n = settings["sequence_days"]
+        days += f" whose {n} preceding day{'s are' if n > 1 else ' is'} in the archive"
+    return days
+
+
 def _measure(store, region, kinds, settings) -> dict | None:
     """:func:`measured_skill` of P(at least one event of ``kinds`` in ``region``) with
     ``settings``; None when it cannot be measured (see :func:`measured_skill`)."""
     events = observed(store, region, kinds)
-    measured = measured_skill(store.pcs.values[:, :settings["n_modes"]], store.times, events,
-                              store.covered, region=region, top=settings["top"],
-                              window=settings["window_days"],
-                              separation=settings["separation_days"],
-                              metric=settings.get("metric", UNNAMED_METRIC))
+    vectors, restrict = query_vectors(store, settings["n_modes"], regime=settings["regime"],
+                                      sequence=settings["sequence_days"])
+    measured = measured_skill(vectors, store.times, events, store.covered, region=region,
+                              top=settings["top"], window=settings["window_days"],
+                              separation=settings["separation_days"], restrict=restrict,
+                              weights=settings["weights"], exclude=settings["exclude_days"],
+                              metric=settings.get("metric", UNNAMED_METRIC),
+                              sequence=settings["sequence_days"])
     if measured is not None:
         measured["kinds"] = sorted(kinds) if kinds else None
         measured["n_modes"] = settings["n_modes"]
@@ -404,6 +495,7 @@ def skill_for(store, target_time=None, *, region=None, kinds=None, settings=None
     built = store.manifest.get("skill")
     measured, source = None, None
     if (built and asked == built["region"] and not kinds
+            and all(settings.get(k, v) == v for k, v in _PLAIN_SETTINGS.items())
             and settings["top"] == built.get("top") and settings["n_modes"] == store.n_modes
             and settings["window_days"] == built.get("window_days")
             and settings["separation_days"] == built.get("separation_days")
@@ -428,7 +520,7 @@ def skill_for(store, target_time=None, *, region=None, kinds=None, settings=None
                 reason = "the store is read-only, so a measurement could not be kept"
             if reason:
                 return {"measured": False, "region": asked, "kinds": kinds,
-                        "reason": reason,
+                        "reason": reason, "settings": settings,
                         "command": _verify_command(store, asked, kinds, settings)}
             measured = _measure(store, region_object, kinds, settings)
             source = "measured now" + (", kept in the store"
@@ -439,6 +531,7 @@ def skill_for(store, target_time=None, *, region=None, kinds=None, settings=None
         return {"measured": False, "region": asked, "kinds": kinds,
                 "reason": "no day, or every day, of the archive with report coverage had "
                           "such a report there (or it covers fewer than two years)",
+                "settings": settings,
                 "command": _verify_command(store, asked, kinds, settings)}
     by_month = measured["by_month"]
     n_days = sum(entry["n_days"] for entry in by_month.values())
@@ -451,7 +544,8 @@ def skill_for(store, target_time=None, *, region=None, kinds=None, settings=None
               "interval": "90% year-bootstrap interval of the Brier skill score",
               "roc_auc": measured["roc_auc"],
               "base_rate": (sum(e["base_rate"] * e["n_days"] for e in by_month.values())
-                            / n_days) if n_days else None}
+                            / n_days) if n_days else None,
+              "settings": settings, "days_forecast": days_forecast(settings)}
     if target_time is not None:
         month = by_month.get(str(pd.Timestamp(target_time).month))
         if month:
