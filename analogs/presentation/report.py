@@ -112,7 +112,9 @@ def find_text(result) -> str:
         lines.append(f"  diagnosed over the {target['diagnostic_region']['description']}")
     lines.append(f"Region {settings['region'].get('label', settings['region'])}; "
                  f"season window +/-{settings['window_days']} d; "
-                 f"{settings['n_modes']} EOF modes")
+                 f"{settings['n_modes']} EOF modes"
+                 + (f"; {settings['metric'].replace('_', '-')} distances (--metric)"
+                    if settings.get("metric") else ""))
     lines.append("")
     kinds = sorted({k for a in data["analogs"] for k in a["events"]["by_kind"]})
     header = f"{'rank':>4}  {'date':10}  {'distance':>9}  {'regime':14}  {'events':>6}"
