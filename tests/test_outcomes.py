@@ -411,6 +411,38 @@ def test_neighbourhood_probability_against_pyproj(grid):
     assert field.attrs["units"] == "1"
 
 
+def test_neighbourhood_probability_matches_scipy_kdtree():
+    """Same cells as a scipy cKDTree ball query over the grid's unit vectors (the
+    search this function used before) with the chord of 40 km on the 6371.0088 km
+    sphere, on a coarse grid crossing the date line and reaching the pole, with events
+    near rows' edges, the pole and the grid's corners."""
+    from scipy.spatial import cKDTree
+    lat, lon = np.arange(50.0, 90.01, 0.3), np.arange(-180.0, 180.0, 0.4)
+    rng = np.random.default_rng(8)
+    n = 300
+    ev_lat = np.concatenate([rng.uniform(49.5, 90.0, n - 3), [90.0, 50.0, 89.9]])
+    ev_lon = np.concatenate([rng.uniform(-180.0, 180.0, n - 3), [0.0, -180.0, 179.9]])
+    day = rng.integers(0, 5, n)
+    times = pd.Timestamp("2020-05-01T18:00") + pd.to_timedelta(day, "D")
+    events = _events(list(zip(times.astype(str), ev_lat, ev_lon, ["hail"] * n)))
+    days = pd.date_range("2020-05-01", periods=5, freq="D")
+    field = neighbourhood_probability(events, days, lat, lon, radius_km=40)
+
+    def unit(la, lo):
+        la, lo = np.radians(la), np.radians(lo)
+        return np.column_stack([np.cos(la) * np.cos(lo), np.cos(la) * np.sin(lo), np.sin(la)])
+
+    lat2d, lon2d = np.meshgrid(lat, lon, indexing="ij")
+    tree = cKDTree(unit(lat2d.ravel(), lon2d.ravel()))
+    chord = 2 * np.sin(40.0 / 6371.0088 / 2)
+    hit = np.zeros((5, lat2d.size), dtype=bool)
+    for k, cells in enumerate(tree.query_ball_point(unit(ev_lat, ev_lon), r=chord)):
+        hit[day[k], cells] = True
+    expected = hit.mean(axis=0).reshape(lat2d.shape)
+    assert expected.max() > 0
+    np.testing.assert_allclose(field.values, expected, atol=1e-12)
+
+
 def test_neighbourhood_weights_and_repeated_days(grid):
     lat, lon = grid
     events = _events([("2020-05-01T18:00", 35.0, -95.0, "hail")])

@@ -68,3 +68,16 @@ def test_changed_archive_falls_back_to_the_reconstruction(demo_store, query, cha
     anomaly = demo_store.eof.reconstruct(demo_store.pcs.isel(time=rows))["z500"]
     np.testing.assert_allclose(day_fields(demo_store, rows)["z500"].values,
                                climate.values + anomaly.transpose("time", "lat", "lon").values)
+
+
+def test_store_points_found_among_the_archive_points():
+    """The archive days are cut at the store's points when each is an archive point, and
+    interpolated otherwise: the positions equal those numpy.isclose finds one by one."""
+    from analogs.workflows.find import _positions
+    archive = np.arange(-130.0, -59.5, 1.0)
+    store = archive[5:40]
+    expected = [int(np.flatnonzero(np.isclose(archive, value))[0]) for value in store]
+    assert list(_positions(archive, store)) == expected
+    assert list(_positions(archive, store + 1e-8)) == expected  # rounding in a file
+    assert _positions(archive, store + 0.5) is None  # a shifted grid: interpolated
+    assert _positions(archive, np.array([-131.0, -130.0])) is None  # beyond the archive

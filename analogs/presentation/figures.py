@@ -48,6 +48,10 @@ LAND_NOTE = "brown line: land-sea boundary from the archive's land-sea mask (0.5
 #: Resolution of full-size figures and of the small maps of the analog grid, dots per inch.
 FIGURE_DPI = 90
 THUMBNAIL_DPI = 72
+#: zlib level of the PNG files: 3 encodes the report's maps in about 60 % of the time of
+#: the default 6, at sizes within 5 % (smaller for the analog grid; measured here on the
+#: demo report's four maps).
+PNG_COMPRESS_LEVEL = 3
 #: Share of the largest smoothed density below which the density map is left blank.
 DENSITY_FLOOR = 0.02
 #: Columns of the analog grid.
@@ -69,9 +73,10 @@ def new_figure(width=8.0, height=6.0, *, layout=None) -> Figure:
 
 def figure_png(figure: Figure, *, dpi=None) -> bytes:
     """PNG bytes of ``figure`` (at ``figure.png_dpi`` when the figure sets one, else
-    :data:`FIGURE_DPI`)."""
+    :data:`FIGURE_DPI`), compressed at :data:`PNG_COMPRESS_LEVEL`."""
     buffer = io.BytesIO()
-    figure.savefig(buffer, format="png", dpi=dpi or getattr(figure, "png_dpi", FIGURE_DPI))
+    figure.savefig(buffer, format="png", dpi=dpi or getattr(figure, "png_dpi", FIGURE_DPI),
+                   pil_kwargs={"compress_level": PNG_COMPRESS_LEVEL})
     return buffer.getvalue()
 
 

@@ -1015,8 +1015,9 @@ def neighbourhood_probability(events, analog_days, lat, lon, radius_km=NEIGHBOUR
 
     Distances are great-circle (haversine on the sphere of
     :data:`analogs.constants.EARTH_RADIUS`, as :func:`analogs.geo.great_circle_km`),
-    found with a scipy ``cKDTree`` over the grid points as unit vectors (the chord
-    ``2 sin(d / 2a)`` stands for the great-circle distance ``d``).
+    compared as chords between unit vectors (the chord ``2 sin(d / 2a)`` stands for the
+    great-circle distance ``d``): for each event, only the grid rows within ``d / a``
+    radians of latitude of it are measured (no point of another row can be as close).
     With ``weights`` (one per analog day) the fraction is the weighted share.
     A day listed twice counts twice.
 
@@ -1029,24 +1030,27 @@ def neighbourhood_probability(events, analog_days, lat, lon, radius_km=NEIGHBOUR
     lat, lon = _check_grid(lat, lon, owner)
     days, w = _day_weights(analog_days, weights, owner)
     ev_lat, ev_lon, positions = _events_on_days(events, days)
-    hit = np.zeros((days.size, lat.size * lon.size), dtype=bool)
+    hit = np.zeros((days.size, lat.size, lon.size), dtype=bool)
     if ev_lat.size:
-        lat2d, lon2d = np.meshgrid(lat, lon, indexing="ij")
-        # scipy's k-d tree on unit vectors (imported here: maps only; far quicker to
-        # import than scikit-learn): a great-circle distance d on the sphere of radius a
-        # is the chord 2 sin(d / 2a) between unit vectors, monotonic in d, so the points
-        # within the chord are those within d (as analogs.geo.great_circle_km).
-        from scipy.spatial import cKDTree
-
-        tree = cKDTree(_unit_vectors(lat2d.ravel(), lon2d.ravel()))
-        chord = 2.0 * np.sin(min(radius_km * 1000.0 / EARTH_RADIUS, np.pi) / 2.0)
-        near = tree.query_ball_point(_unit_vectors(ev_lat, ev_lon), r=chord,
-                                     return_sorted=False)
-        near = [np.asarray(idx, dtype=int) for idx in near]
-        sizes = np.fromiter((idx.size for idx in near), dtype=int, count=len(near))
-        if sizes.sum():
-            hit[np.repeat(positions, sizes), np.concatenate(near)] = True
-    hit = hit.reshape(days.size, lat.size, lon.size)
+        # Plain numpy rather than a k-d tree: a report's few hundred events each meet a
+        # band of a few grid rows, and importing scipy.spatial would cost more than
+        # the search (measured in tests/benchmarks/bench_report.py).
+        angle = min(radius_km * 1000.0 / EARTH_RADIUS, np.pi)
+        limit = (2.0 * np.sin(angle / 2.0)) ** 2
+        band = np.degrees(angle) + 1e-9
+        phi, lam = np.radians(lat), np.radians(lon)
+        row_xyz = np.stack([np.cos(phi)[:, None] * np.cos(lam)[None, :],
+                            np.cos(phi)[:, None] * np.sin(lam)[None, :],
+                            np.broadcast_to(np.sin(phi)[:, None], (lat.size, lon.size))])
+        first = np.searchsorted(lat, ev_lat - band, side="left")
+        last = np.searchsorted(lat, ev_lat + band, side="right")
+        for vector, position, start, stop in zip(_unit_vectors(ev_lat, ev_lon), positions,
+                                                 first, last):
+            if start < stop:
+                part = row_xyz[:, start:stop]
+                chord2 = ((part[0] - vector[0]) ** 2 + (part[1] - vector[1]) ** 2
+                          + (part[2] - vector[2]) ** 2)
+                hit[position, start:stop] |= chord2 <= limit
     probability = np.tensordot(w, hit.astype(float), axes=1)
     import xarray as xr
     return xr.DataArray(

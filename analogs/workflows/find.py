@@ -1280,13 +1280,30 @@ def archive_day_fields(store, rows) -> tuple[xr.Dataset | None, str]:
     if missing:
         return None, f"the archive files do not hold every day drawn ({', '.join(missing)})"
     merged = xr.Dataset({name: found[name].sel(time=wanted.values) for name in store.fields})
-    fields = on_store_grid(store, merged)
     lat, lon = store.grid
+    rows_at = _positions(merged["lat"].values, lat)
+    columns_at = _positions(merged["lon"].values, lon)
+    if rows_at is not None and columns_at is not None:
+        # The store's grid points are points of the archive (a domain cut at build):
+        # taken as they are, where bilinear interpolation would return the same values
+        # after importing scipy's interpolators.
+        fields = merged.isel(lat=rows_at, lon=columns_at)
+    else:
+        fields = on_store_grid(store, merged)
     out = xr.Dataset(coords={"time": ("analog", wanted.values), "lat": lat, "lon": lon})
     for name in store.fields:
         out[name] = xr.DataArray(fields[name].transpose("time", "lat", "lon").values,
                                  dims=("analog", "lat", "lon"), attrs=dict(fields[name].attrs))
     return out, "archive"
+
+
+def _positions(source, target, tolerance=1e-6) -> np.ndarray | None:
+    """Indices of the ascending coordinate ``source`` at each value of ``target``, or
+    None when some value of ``target`` is not a point of ``source`` (degrees)."""
+    at = np.clip(np.searchsorted(source, target), 0, source.size - 1)
+    before = np.clip(at - 1, 0, source.size - 1)
+    at = np.where(np.abs(source[before] - target) < np.abs(source[at] - target), before, at)
+    return at if np.all(np.abs(source[at] - target) <= tolerance) else None
 
 
 def _times_held(path) -> tuple[pd.DatetimeIndex | None, frozenset]:
