@@ -83,7 +83,9 @@ def build_parser() -> argparse.ArgumentParser:
              help="closest past days to a date or a forecast field",
              description="Find the closest archive days to a target day or forecast field, "
                          "with the regime of each and what they produced. The distance of "
-                         f"two days is {DISTANCE}.",
+                         f"two days is {DISTANCE}; with --metric event_weighted (the "
+                         "default) those vectors are first scaled toward the event "
+                         "forecast, so the distances are in that weighted space.",
              options=(P.store, P.date, P.dates, P.field, P.time, P.top, P.window,
                       P.separation, P.region, P.exclude, P.regime, P.kinds, P.sequence,
                       P.metric, P.weights, P.json, P.json_lines, P.report, P.maps,
