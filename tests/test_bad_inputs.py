@@ -836,7 +836,8 @@ RIGHT_ANSWERS = [
      ("--event-dates", "convective-day"), (), ()),
     ("events-outside-the-grid", _far_reports, (),
      ("7 of", "reports lie outside the archive's grid", "left out"), ()),
-    ("find-date-with-utc-time", None, (), (), ("--date", rh.QUERY_DATE + "T12:00Z")),
+    ("find-date-with-utc-time", None, (), (), ("--date", rh.QUERY_DATE + "T12:00Z",
+                                               "--metric", "plain")),
 ]
 
 
