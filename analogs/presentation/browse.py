@@ -283,7 +283,10 @@ def browser_section(data: dict, days: dict | None = None) -> str:
         f'step="0.05" value="{math.ceil(largest * 100) / 100:.2f}"></label>'
         '<output id="shown" aria-live="polite"></output></form>')
     table = (f'<table id="analogs" class="analogs"><caption>The closest past days: '
-             f"{len(analogs)} analog days (distance in the EOF space; events counted in the "
+             f"{len(analogs)} analog days (distance in the "
+             + ("event-weighted EOF space" if (data.get("settings") or {}).get("metric")
+                == "event_weighted" else "EOF space")
+             + "; events counted in the "
              f"outcome region). Select a day to see its map and reports.</caption>"
              f"<thead><tr>{head}</tr></thead><tbody>{''.join(body)}</tbody></table>")
     details = "".join(day_detail(a, days.get(a["rank"]) or {}) for a in analogs)
