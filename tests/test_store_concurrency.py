@@ -163,3 +163,18 @@ def test_transaction_without_commit_writes_nothing(store_path):
         txn.carry(store_io.BASIS)
     assert {p.name: p.read_bytes() for p in store_path.iterdir()} == before
     assert list(store_path.parent.glob(f".{store_path.name}.tmp-*")) == []
+
+
+def test_update_keeps_the_default_event_weighted_map_of_the_new_version(archive, store_path):
+    """An update refits the map of the default query (the store's region, every kind) on
+    the new version's covered days and keeps it under the new checksums, so a default
+    query after it finds it in the manifest (as after a build)."""
+    import numpy as np
+    from analogs.stages.predictor_weights import fit_predictor_weights
+    new = AnalogStore.load(store_path).update(archive["files"][2002], progress=False)
+    (entry,) = new.manifest["predictor_weights"].values()
+    assert entry["key"]["data"]["scores.nc"] == new.manifest["files"]["scores.nc"]
+    covered = new.covered
+    expected = fit_predictor_weights(new.pc_values[covered], new.times[covered],
+                                     new.observed()[covered])
+    np.testing.assert_allclose(np.asarray(entry["transform"]), expected, rtol=1e-10)
