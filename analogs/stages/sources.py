@@ -1437,6 +1437,8 @@ def _missing_stats(ds):
     """One pass over the data. Per field: missing (NaN or infinite) values per day
     (``day``) and per grid point (``point``), infinite values per day (``inf``), and the
     smallest and largest finite value of each day (``min``, ``max``)."""
+    if all(ds[name].chunks is None for name in ds.data_vars):
+        return {name: _missing_stats_in_memory(ds[name].values) for name in ds.data_vars}
     stats = xr.Dataset()
     for name in ds.data_vars:
         da = ds[name]
@@ -1456,6 +1458,24 @@ def _missing_stats(ds):
         for key in ("day", "point", "inf"):
             out[name][key] = out[name][key].astype(int)
     return out
+
+
+def _missing_stats_in_memory(values):
+    """:func:`_missing_stats` of one field held in memory, ``(time, lat, lon)``, with
+    numpy: without a missing value (the usual archive) one finiteness test and plain
+    daily extremes, no masked copy."""
+    missing = ~np.isfinite(values)
+    if not missing.any():
+        n_days, n_lat, n_lon = values.shape
+        return {"day": np.zeros(n_days, dtype=int), "point": np.zeros((n_lat, n_lon), dtype=int),
+                "inf": np.zeros(n_days, dtype=int),
+                "min": values.min(axis=(1, 2)), "max": values.max(axis=(1, 2))}
+    finite_only = np.where(missing, np.nan, values).astype(values.dtype, copy=False)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN days: NaN extremes
+        low, high = np.nanmin(finite_only, axis=(1, 2)), np.nanmax(finite_only, axis=(1, 2))
+    return {"day": missing.sum(axis=(1, 2)).astype(int), "point": missing.sum(axis=0).astype(int),
+            "inf": np.isinf(values).sum(axis=(1, 2)).astype(int), "min": low, "max": high}
 
 
 def _plausibility_gate(ds, stats, times, source, origins):
@@ -1774,8 +1794,12 @@ def _missing_calendar_days(times):
 # ---------------------------------------------------------------------------
 
 def _join_pieces(field, pieces):
-    if len(pieces) == 1:
-        return pieces[0]
+    """The files' pieces of one field joined along time, sorted by time.
+
+    Pieces read in memory are copied one by one into a single preallocated array in
+    their common dtype (float32 from float32 files): xarray's concat would hold every
+    decoded piece and the joined copy at once. Lazy (dask) pieces are concatenated
+    lazily."""
     first = pieces[0]
     for piece in pieces[1:]:
         if (piece.sizes["lat"] != first.sizes["lat"] or piece.sizes["lon"] != first.sizes["lon"]
@@ -1785,14 +1809,36 @@ def _join_pieces(field, pieces):
                 f"{field}: files are on different grids ({first.sizes['lat']}x"
                 f"{first.sizes['lon']} and {piece.sizes['lat']}x{piece.sizes['lon']}); "
                 "expected every file of the archive on one grid")
-    pieces = [p.assign_coords(lat=first["lat"], lon=first["lon"]) for p in pieces]
-    joined = xr.concat(pieces, dim="time", join="override", coords="minimal",
-                       compat="override")
+    if len(pieces) == 1:
+        return first
+    if any(p.chunks is not None for p in pieces):
+        pieces = [p.assign_coords(lat=first["lat"], lon=first["lon"]) for p in pieces]
+        joined = xr.concat(pieces, dim="time", join="override", coords="minimal",
+                           compat="override")
+    else:
+        joined = _joined_in_memory(pieces)
     order = np.argsort(joined["time"].values, kind="stable")
     if np.any(np.diff(order) != 1):
         joined = joined.isel(time=order)
     joined.attrs = dict(FIELD_ATTRS[field])
     return joined
+
+
+def _joined_in_memory(pieces):
+    """Pieces on one grid (checked before) copied into one array along time, labelled
+    with the first piece's grid and every piece's times."""
+    first = pieces[0]
+    lengths = [p.sizes["time"] for p in pieces]
+    values = np.empty((sum(lengths),) + first.shape[1:],
+                      dtype=np.result_type(*[p.dtype for p in pieces]))
+    start = 0
+    for piece, length in zip(pieces, lengths):
+        values[start:start + length] = piece.values  # decoded here, one file at a time
+        start += length
+    times = xr.Variable("time", np.concatenate([p["time"].values for p in pieces]),
+                        first["time"].attrs)
+    return xr.DataArray(values, dims=first.dims, name=first.name,
+                        coords={"time": times, "lat": first["lat"], "lon": first["lon"]})
 
 
 def _merge_fields(arrays, files):
