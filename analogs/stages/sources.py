@@ -398,7 +398,11 @@ def normalise_grid(obj):
     # crossing 0) has at most one step against its direction: a convention, not disorder.
     steps = np.diff(wrapped)
     monotonic = (steps < 0).sum() <= 1 or (steps > 0).sum() <= 1
-    obj = obj.assign_coords(lat=obj["lat"].values.astype(float), lon=wrapped)
+    if (obj["lat"].dtype == np.float64 and obj["lon"].dtype == np.float64
+            and np.array_equal(obj["lon"].values, wrapped)):
+        obj = obj.copy(deep=False)  # already so (every archive file): no index rebuilt
+    else:
+        obj = obj.assign_coords(lat=obj["lat"].values.astype(float), lon=wrapped)
     if not monotonic:
         warnings.warn(f"{source}: longitude is not monotonic; it is sorted for you",
                       UserWarning, stacklevel=2)
@@ -2735,7 +2739,8 @@ def _on_canonical_axes(da, dims, times, lat, lon):
     if np.ndim(lat) == 1:
         da = da.rename({time_dim: "_t", lat_dim: "_y", lon_dim: "_x"}).rename(
             {"_t": "time", "_y": "lat", "_x": "lon"})
-        return da.assign_coords(time=times, lat=lat, lon=lon)
+        # Wrapped here, so that normalise_grid finds nothing to relabel on a sorted grid.
+        return da.assign_coords(time=times, lat=lat, lon=_wrap_lon(lon))
     da = da.rename({time_dim: "_t", lat_dim: "_y", lon_dim: "_x"}).rename(
         {"_t": "time", "_y": "y", "_x": "x"})
     return da.assign_coords(time=times, lat=(("y", "x"), lat, dict(_LAT_ATTRS)),
