@@ -235,11 +235,8 @@ def open_archive(paths, *, fields=None, region=None, hour=P.hour.default,
     _say_computed(chosen, candidates, _describe(files))
     arrays, duplicates, origins = {}, 0, {}
     for field in chosen:
-        found = [c for c in candidates if c.field == field]
-        pieces = [_sorted_in_time(_canonical_array(c), c.path) for c in found]
-        origins[field] = [(c.path, c.name, p["time"].values, p.attrs.pop("units_in_file", None))
-                          for c, p in zip(found, pieces)]
-        arrays[field], dropped = _drop_duplicate_times(_join_pieces(field, pieces), files)
+        joined, origins[field] = _read_field(field, [c for c in candidates if c.field == field])
+        arrays[field], dropped = _drop_duplicate_times(joined, files)
         duplicates = max(duplicates, dropped)
     ds = _merge_fields(arrays, files)
     ds = _to_daily(ds, hour=hour, how=daily, files=files)
@@ -251,7 +248,9 @@ def open_archive(paths, *, fields=None, region=None, hour=P.hour.default,
                                                source=_describe(files), origins=origins)
     guard.check_unchanged()
     report["n_duplicate_times_dropped"] = int(duplicates)
-    if chunks:
+    if not chunks:
+        _release_freed_memory()
+    else:
         ds = ds.chunk({k: v for k, v in chunks.items() if k in ds.dims})
     ds.attrs = {"source_files": "; ".join(files), "missing_data": json.dumps(report)}
     return ds
@@ -1797,6 +1796,16 @@ def _missing_calendar_days(times):
 # joining files and fields, time handling
 # ---------------------------------------------------------------------------
 
+def _read_field(field, found):
+    """(one field joined over its files, where each time came from: [(path, variable,
+    times, units in the file)]). The files' canonical pieces (each holding its decoded
+    values once read) are let go on return."""
+    pieces = [_sorted_in_time(_canonical_array(c), c.path) for c in found]
+    origins = [(c.path, c.name, p["time"].values, p.attrs.pop("units_in_file", None))
+               for c, p in zip(found, pieces)]
+    return _join_pieces(field, pieces), origins
+
+
 def _join_pieces(field, pieces):
     """The files' pieces of one field joined along time, sorted by time.
 
@@ -1843,6 +1852,20 @@ def _joined_in_memory(pieces):
                         first["time"].attrs)
     return xr.DataArray(values, dims=first.dims, name=first.name,
                         coords={"time": times, "lat": first["lat"], "lon": first["lon"]})
+
+
+def _release_freed_memory():
+    """Give the heap memory freed while reading in memory back to the system (glibc's
+    ``malloc_trim``; nothing elsewhere). The decoded pieces, freed one by one between
+    other allocations, left about one field's size of heap held (measured: 150 MB
+    resident more after reading 40 years at 1 degree, the build's peak 90 MB higher)."""
+    import ctypes
+    import ctypes.util
+    name = ctypes.util.find_library("c")
+    try:
+        ctypes.CDLL(name).malloc_trim(0)
+    except (OSError, AttributeError, TypeError):
+        pass
 
 
 def _merge_fields(arrays, files):
