@@ -167,6 +167,37 @@ def test_dask_backed_and_lazy(tmp_path):
     np.testing.assert_allclose(ds["z500"].values, smooth_height(times))
 
 
+def test_yearly_files_join_as_xarray_concat_in_float32_and_as_the_lazy_read(tmp_path):
+    """Float32 yearly files listed out of order, one holding NaN and infinite values:
+    the in-memory archive (the files copied into one preallocated array) holds exactly
+    xarray's concatenation of the files sorted by time, stays float32, and equals the
+    lazy (dask) read value for value, with the same missing-data report."""
+    times = daily_times(start="2001-12-25", periods=12)
+    z = smooth_height(times).astype(np.float32)
+    z[2, 3, 4], z[9, 5, 6] = np.nan, np.inf
+    paths = []
+    for year in (2002, 2001):  # the later year first
+        sel = np.flatnonzero(times.year == year)
+        path = tmp_path / f"zg500_{year}.nc"
+        xr.Dataset({"zg": (("time", "lat", "lon"), z[sel], {"units": "m"})},
+                   coords={"time": times[sel], "lat": LAT, "lon": LON,
+                           "plev": ((), 50000.0, {"units": "Pa"})}).to_netcdf(path)
+        paths.append(path)
+    reference = xr.concat([xr.open_dataset(p)["zg"] for p in paths], "time").sortby("time")
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", UserWarning)  # the NaN and Inf, filled and said
+        eager = open_archive(paths)
+        lazy = open_archive(paths, chunks={"time": 5})
+    assert eager["z500"].dtype == np.float32 and eager["z500"].chunks is None
+    np.testing.assert_array_equal(eager["time"].values, reference["time"].values)
+    finite = np.isfinite(reference.values)
+    np.testing.assert_array_equal(eager["z500"].values[finite], reference.values[finite])
+    np.testing.assert_array_equal(eager["z500"].values, lazy["z500"].values)
+    assert eager.attrs["missing_data"] == lazy.attrs["missing_data"]
+    report = _missing_report(eager)
+    assert report["n_infinite_values"] == 1 and report["n_values_filled"] == 2
+
+
 # --------------------------------------------------------------------------- time handling
 
 def _six_hourly(tmp_path):

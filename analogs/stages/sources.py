@@ -235,11 +235,8 @@ def open_archive(paths, *, fields=None, region=None, hour=P.hour.default,
     _say_computed(chosen, candidates, _describe(files))
     arrays, duplicates, origins = {}, 0, {}
     for field in chosen:
-        found = [c for c in candidates if c.field == field]
-        pieces = [_sorted_in_time(_canonical_array(c), c.path) for c in found]
-        origins[field] = [(c.path, c.name, p["time"].values, p.attrs.pop("units_in_file", None))
-                          for c, p in zip(found, pieces)]
-        arrays[field], dropped = _drop_duplicate_times(_join_pieces(field, pieces), files)
+        joined, origins[field] = _read_field(field, [c for c in candidates if c.field == field])
+        arrays[field], dropped = _drop_duplicate_times(joined, files)
         duplicates = max(duplicates, dropped)
     ds = _merge_fields(arrays, files)
     ds = _to_daily(ds, hour=hour, how=daily, files=files)
@@ -251,7 +248,9 @@ def open_archive(paths, *, fields=None, region=None, hour=P.hour.default,
                                                source=_describe(files), origins=origins)
     guard.check_unchanged()
     report["n_duplicate_times_dropped"] = int(duplicates)
-    if chunks:
+    if not chunks:
+        _release_freed_memory()
+    else:
         ds = ds.chunk({k: v for k, v in chunks.items() if k in ds.dims})
     ds.attrs = {"source_files": "; ".join(files), "missing_data": json.dumps(report)}
     return ds
@@ -398,7 +397,11 @@ def normalise_grid(obj):
     # crossing 0) has at most one step against its direction: a convention, not disorder.
     steps = np.diff(wrapped)
     monotonic = (steps < 0).sum() <= 1 or (steps > 0).sum() <= 1
-    obj = obj.assign_coords(lat=obj["lat"].values.astype(float), lon=wrapped)
+    if (obj["lat"].dtype == np.float64 and obj["lon"].dtype == np.float64
+            and np.array_equal(obj["lon"].values, wrapped)):
+        obj = obj.copy(deep=False)  # already so (every archive file): no index rebuilt
+    else:
+        obj = obj.assign_coords(lat=obj["lat"].values.astype(float), lon=wrapped)
     if not monotonic:
         warnings.warn(f"{source}: longitude is not monotonic; it is sorted for you",
                       UserWarning, stacklevel=2)
@@ -1437,6 +1440,8 @@ def _missing_stats(ds):
     """One pass over the data. Per field: missing (NaN or infinite) values per day
     (``day``) and per grid point (``point``), infinite values per day (``inf``), and the
     smallest and largest finite value of each day (``min``, ``max``)."""
+    if all(ds[name].chunks is None for name in ds.data_vars):
+        return {name: _missing_stats_in_memory(ds[name].values) for name in ds.data_vars}
     stats = xr.Dataset()
     for name in ds.data_vars:
         da = ds[name]
@@ -1456,6 +1461,24 @@ def _missing_stats(ds):
         for key in ("day", "point", "inf"):
             out[name][key] = out[name][key].astype(int)
     return out
+
+
+def _missing_stats_in_memory(values):
+    """:func:`_missing_stats` of one field held in memory, ``(time, lat, lon)``, with
+    numpy: without a missing value (the usual archive) one finiteness test and plain
+    daily extremes, no masked copy."""
+    missing = ~np.isfinite(values)
+    if not missing.any():
+        n_days, n_lat, n_lon = values.shape
+        return {"day": np.zeros(n_days, dtype=int), "point": np.zeros((n_lat, n_lon), dtype=int),
+                "inf": np.zeros(n_days, dtype=int),
+                "min": values.min(axis=(1, 2)), "max": values.max(axis=(1, 2))}
+    finite_only = np.where(missing, np.nan, values).astype(values.dtype, copy=False)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN days: NaN extremes
+        low, high = np.nanmin(finite_only, axis=(1, 2)), np.nanmax(finite_only, axis=(1, 2))
+    return {"day": missing.sum(axis=(1, 2)).astype(int), "point": missing.sum(axis=0).astype(int),
+            "inf": np.isinf(values).sum(axis=(1, 2)).astype(int), "min": low, "max": high}
 
 
 def _plausibility_gate(ds, stats, times, source, origins):
@@ -1773,9 +1796,23 @@ def _missing_calendar_days(times):
 # joining files and fields, time handling
 # ---------------------------------------------------------------------------
 
+def _read_field(field, found):
+    """(one field joined over its files, where each time came from: [(path, variable,
+    times, units in the file)]). The files' canonical pieces (each holding its decoded
+    values once read) are let go on return."""
+    pieces = [_sorted_in_time(_canonical_array(c), c.path) for c in found]
+    origins = [(c.path, c.name, p["time"].values, p.attrs.pop("units_in_file", None))
+               for c, p in zip(found, pieces)]
+    return _join_pieces(field, pieces), origins
+
+
 def _join_pieces(field, pieces):
-    if len(pieces) == 1:
-        return pieces[0]
+    """The files' pieces of one field joined along time, sorted by time.
+
+    Pieces read in memory are copied one by one into a single preallocated array in
+    their common dtype (float32 from float32 files): xarray's concat would hold every
+    decoded piece and the joined copy at once. Lazy (dask) pieces are concatenated
+    lazily."""
     first = pieces[0]
     for piece in pieces[1:]:
         if (piece.sizes["lat"] != first.sizes["lat"] or piece.sizes["lon"] != first.sizes["lon"]
@@ -1785,14 +1822,50 @@ def _join_pieces(field, pieces):
                 f"{field}: files are on different grids ({first.sizes['lat']}x"
                 f"{first.sizes['lon']} and {piece.sizes['lat']}x{piece.sizes['lon']}); "
                 "expected every file of the archive on one grid")
-    pieces = [p.assign_coords(lat=first["lat"], lon=first["lon"]) for p in pieces]
-    joined = xr.concat(pieces, dim="time", join="override", coords="minimal",
-                       compat="override")
+    if len(pieces) == 1:
+        return first
+    if any(p.chunks is not None for p in pieces):
+        pieces = [p.assign_coords(lat=first["lat"], lon=first["lon"]) for p in pieces]
+        joined = xr.concat(pieces, dim="time", join="override", coords="minimal",
+                           compat="override")
+    else:
+        joined = _joined_in_memory(pieces)
     order = np.argsort(joined["time"].values, kind="stable")
     if np.any(np.diff(order) != 1):
         joined = joined.isel(time=order)
     joined.attrs = dict(FIELD_ATTRS[field])
     return joined
+
+
+def _joined_in_memory(pieces):
+    """Pieces on one grid (checked before) copied into one array along time, labelled
+    with the first piece's grid and every piece's times."""
+    first = pieces[0]
+    lengths = [p.sizes["time"] for p in pieces]
+    values = np.empty((sum(lengths),) + first.shape[1:],
+                      dtype=np.result_type(*[p.dtype for p in pieces]))
+    start = 0
+    for piece, length in zip(pieces, lengths):
+        values[start:start + length] = piece.values  # decoded here, one file at a time
+        start += length
+    times = xr.Variable("time", np.concatenate([p["time"].values for p in pieces]),
+                        first["time"].attrs)
+    return xr.DataArray(values, dims=first.dims, name=first.name,
+                        coords={"time": times, "lat": first["lat"], "lon": first["lon"]})
+
+
+def _release_freed_memory():
+    """Give the heap memory freed while reading in memory back to the system (glibc's
+    ``malloc_trim``; nothing elsewhere). The decoded pieces, freed one by one between
+    other allocations, left about one field's size of heap held (measured: 150 MB
+    resident more after reading 40 years at 1 degree, the build's peak 90 MB higher)."""
+    import ctypes
+    import ctypes.util
+    name = ctypes.util.find_library("c")
+    try:
+        ctypes.CDLL(name).malloc_trim(0)
+    except (OSError, AttributeError, TypeError):
+        pass
 
 
 def _merge_fields(arrays, files):
@@ -2689,7 +2762,8 @@ def _on_canonical_axes(da, dims, times, lat, lon):
     if np.ndim(lat) == 1:
         da = da.rename({time_dim: "_t", lat_dim: "_y", lon_dim: "_x"}).rename(
             {"_t": "time", "_y": "lat", "_x": "lon"})
-        return da.assign_coords(time=times, lat=lat, lon=lon)
+        # Wrapped here, so that normalise_grid finds nothing to relabel on a sorted grid.
+        return da.assign_coords(time=times, lat=lat, lon=_wrap_lon(lon))
     da = da.rename({time_dim: "_t", lat_dim: "_y", lon_dim: "_x"}).rename(
         {"_t": "time", "_y": "y", "_x": "x"})
     return da.assign_coords(time=times, lat=(("y", "x"), lat, dict(_LAT_ATTRS)),
