@@ -257,12 +257,25 @@ def _weighted_fold_batches(pcs, times, observed, targets, window, exclude, *, to
     years = times.year.to_numpy()
     n_blocks = 1 + int(sequence)
     n_modes = pcs.shape[1] // n_blocks
+    calendar_day = day_of_year(times)
+    seasons = {}  # the season window of a calendar day, the same in every fold
+
+    def single_target_batches(rows):
+        # A year holds one target a calendar day: the batches of _calendar_day_batches,
+        # without rescanning the archive for each (year, calendar day).
+        held_out = held_out_mask(times, rows, exclude)  # (one year's days, n_days)
+        for position, row in enumerate(rows):
+            day = calendar_day[row]
+            if day not in seasons:
+                seasons[day] = candidate_ids(times, times[row], window=window, exclude=None)
+            yield rows[position:position + 1], seasons[day], held_out[position:position + 1], None
+
     for year in tqdm(np.unique(years[targets]), desc="hindcast", unit="year",
                      disable=not progress):
         train = years != year
         transform = fit_predictor_weights(pcs[train, :n_modes], times[train],
                                           observed[train])
-        batches = _calendar_day_batches(times, targets & ~train, window, exclude)
+        batches = single_target_batches(np.flatnonzero(targets & ~train))
         yield from _with_analogs(batches, pcs @ block_transform(transform, n_blocks), times,
                                  top=top, separation=separation, restrict=restrict)
 
