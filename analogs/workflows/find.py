@@ -958,7 +958,6 @@ def event_weighted_transform(store, region, kinds=None) -> np.ndarray:
     :func:`analogs.workflows.store.edit_manifest`; not kept on a read-only store or
     when another writer holds the lock), keyed by the checksums of the PCs and reports
     so an update refits."""
-    from analogs.errors import StoreError
     from analogs.stages.predictor_weights import fit_predictor_weights
     from analogs.workflows import store as store_io
     from analogs.workflows.skill import SKILL_CACHE_LOCK_SECONDS, observed
@@ -975,23 +974,11 @@ def event_weighted_transform(store, region, kinds=None) -> np.ndarray:
     transform = fit_predictor_weights(store.pc_values[covered, :store.n_query_modes],
                                       store.times[covered], events[covered])
     memory[key] = transform
-
-    def edit(manifest, files):
-        if {n: files.get(n) for n in fields["data"]} != fields["data"]:
-            return None  # the store changed since it was loaded: the fit is of older data
-        entries = {k: v for k, v in (manifest.get("predictor_weights") or {}).items()
-                   if v.get("key", {}).get("data") == fields["data"]}
-        entries.pop(key, None)
-        entries[key] = {"key": fields, "transform": transform.tolist()}
-        manifest["predictor_weights"] = dict(list(entries.items())
-                                             [-PREDICTOR_WEIGHTS_CACHE_SIZE:])
-        return manifest
-
-    if store_io.writable(store.path):
-        try:
-            store_io.edit_manifest(store.path, edit, timeout=SKILL_CACHE_LOCK_SECONDS)
-        except StoreError:
-            pass  # kept in memory only; the next load fits it again
+    if store_io.writable(store.path):  # else kept in memory only; the next load fits it
+        store_io.keep_in_manifest(store.path, "predictor_weights", key, fields,
+                                  {"transform": transform.tolist()},
+                                  limit=PREDICTOR_WEIGHTS_CACHE_SIZE,
+                                  timeout=SKILL_CACHE_LOCK_SECONDS)
     return transform
 
 

@@ -433,32 +433,15 @@ def _measure(store, region, kinds, settings) -> dict | None:
 
 
 def _keep(store, key: str, fields: dict, measured) -> bool:
-    """Keep a measurement in the store's manifest (``skill_cache``), through one
-    transaction under the writer lock (:func:`analogs.workflows.store.edit_manifest`).
-    Nothing is written when the store changed its PCs or reports since ``store`` was
-    loaded (the measurement is of the older data). Entries of other data are dropped,
-    and the oldest beyond :data:`SKILL_CACHE_SIZE`. False when it could not be kept (a
-    read-only store, or the lock held by another writer)."""
+    """Keep a measurement in the store's manifest (``skill_cache``, the newest
+    :data:`SKILL_CACHE_SIZE`; :func:`analogs.workflows.store.keep_in_manifest`). False
+    when it could not be kept."""
     import datetime
-    from analogs.errors import StoreError
     from analogs.workflows import store as store_io
-
-    def edit(manifest, files):
-        if {n: files.get(n) for n in _SKILL_INPUTS} != fields["data"]:
-            return None
-        cache = {k: v for k, v in (manifest.get("skill_cache") or {}).items()
-                 if v.get("key", {}).get("data") == fields["data"]}
-        cache[key] = {"key": fields, "skill": measured,
-                      "measured": datetime.datetime.now(datetime.timezone.utc).isoformat()}
-        newest = sorted(cache, key=lambda k: cache[k]["measured"])[-SKILL_CACHE_SIZE:]
-        manifest["skill_cache"] = {k: cache[k] for k in newest}
-        return manifest
-
-    try:
-        return store_io.edit_manifest(store.path, edit,
-                                      timeout=SKILL_CACHE_LOCK_SECONDS) is not None
-    except StoreError:
-        return False
+    measured_at = datetime.datetime.now(datetime.timezone.utc).isoformat()
+    return store_io.keep_in_manifest(store.path, "skill_cache", key, fields,
+                                     {"skill": measured, "measured": measured_at},
+                                     limit=SKILL_CACHE_SIZE, timeout=SKILL_CACHE_LOCK_SECONDS)
 
 
 def skill_for(store, target_time=None, *, region=None, kinds=None, settings=None,

@@ -282,6 +282,30 @@ def writable(path) -> bool:
     return all(os.access(folder, os.W_OK | os.X_OK) for folder in (path.parent, path))
 
 
+def keep_in_manifest(path, section, key, fields, entry, *, limit, timeout=None) -> bool:
+    """Keep a derived result in the manifest of the store at ``path``: ``entry`` (a
+    JSON-ready dict) with its ``fields`` under ``manifest[section][key]``, the newest
+    last, through :func:`edit_manifest`. ``fields["data"]`` names the checksums of the
+    files it was derived from: nothing is written when the store's files changed since
+    (a result of older data), entries of other data are dropped, and the oldest beyond
+    ``limit``. False when it could not be kept (a read-only store, or the lock held by
+    another writer beyond ``timeout``)."""
+    def edit(manifest, files):
+        if {name: files.get(name) for name in fields["data"]} != fields["data"]:
+            return None
+        kept = {k: v for k, v in (manifest.get(section) or {}).items()
+                if v.get("key", {}).get("data") == fields["data"]}
+        kept.pop(key, None)
+        kept[key] = {"key": fields, **entry}
+        manifest[section] = dict(list(kept.items())[-limit:])
+        return manifest
+
+    try:
+        return edit_manifest(path, edit, timeout=timeout) is not None
+    except StoreError:
+        return False
+
+
 def edit_manifest(path, edit, *, timeout=None) -> dict | None:
     """One transaction that changes only the manifest of the store at ``path``.
 
