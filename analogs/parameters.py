@@ -408,7 +408,9 @@ PARAMETERS: dict[str, Parameter] = _table(
               "skill of the query's region, kinds and settings when the store holds no "
               "measurement of them (a leave-one-year-out hindcast, about a second for a few "
               "years of days, kept in the store for later queries); the skill line then "
-              "gives the command that measures it", kind="flag"),
+              "gives the command that measures it. The query then writes nothing to the "
+              "store: an event-weighted metric it fits for a new region or kinds is used "
+              "and not kept", kind="flag"),
     # -- verify -----------------------------------------------------------------------------
     Parameter("query_modes", ("--modes",), "use only the leading K EOF modes", name="n_modes",
               kind="int", minimum=1, units="modes", metavar="K",

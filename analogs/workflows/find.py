@@ -119,7 +119,8 @@ def find(store, *, date=None, field=None, time=None, top=P.top.api_default,
     weight by, and its default is ``"plain"``.
     The outcomes quote the cross-validated skill of what the query forecasts (its region,
     kinds and settings: :func:`analogs.workflows.skill.skill_for`), measured now and kept
-    in the store when no measurement is there, unless ``skip_skill_hindcast``.
+    in the store when no measurement is there, unless ``skip_skill_hindcast`` (the query
+    then writes nothing to the store: an event-weighted map it fits is not kept either).
 
     A field target is opened once and regridded to the store grid once; those fields
     serve the projection, the regime diagnostics and (``FindResult.target_fields``) the
@@ -331,7 +332,8 @@ class _Query:
             index = _sequence_index(store, settings["sequence"])
         transform = None
         if settings["metric"] == "event_weighted":
-            transform = event_weighted_transform(store, settings["region"], settings["kinds"])
+            transform = event_weighted_transform(store, settings["region"], settings["kinds"],
+                                                 keep=not settings["skip_skill_hindcast"])
             index = _weighted_index(store, transform, settings["sequence"])
         return cls(**settings, n_modes=store.n_query_modes, index=index, restrict=restrict,
                    transform=transform)
@@ -947,7 +949,7 @@ def _predictor_weights_key(store, region, kinds) -> tuple[str, dict]:
     return hashlib.sha256(text.encode()).hexdigest()[:16], fields
 
 
-def event_weighted_transform(store, region, kinds=None) -> np.ndarray:
+def event_weighted_transform(store, region, kinds=None, keep=True) -> np.ndarray:
     """The map of the store's PCs (its query modes) under which the Euclidean distance
     is the event-weighted metric for reports of ``kinds`` in ``region``
     (:func:`analogs.stages.predictor_weights.fit_predictor_weights` on every day with
@@ -956,8 +958,9 @@ def event_weighted_transform(store, region, kinds=None) -> np.ndarray:
     Fitted once per store version, region and kinds: kept in the loaded store and in its
     manifest (``predictor_weights``, through one manifest-only transaction,
     :func:`analogs.workflows.store.edit_manifest`; not kept on a read-only store or
-    when another writer holds the lock), keyed by the checksums of the PCs and reports
-    so an update refits."""
+    when another writer holds the lock, nor without ``keep``: a query asked to skip the
+    skill hindcast writes nothing to the store), keyed by the checksums of the PCs and
+    reports so an update refits."""
     from analogs.stages.predictor_weights import fit_predictor_weights
     from analogs.workflows import store as store_io
     from analogs.workflows.skill import SKILL_CACHE_LOCK_SECONDS, observed
@@ -974,7 +977,7 @@ def event_weighted_transform(store, region, kinds=None) -> np.ndarray:
     transform = fit_predictor_weights(store.pc_values[covered, :store.n_query_modes],
                                       store.times[covered], events[covered])
     memory[key] = transform
-    if store_io.writable(store.path):  # else kept in memory only; the next load fits it
+    if keep and store_io.writable(store.path):  # else in memory only; the next load fits it
         store_io.keep_in_manifest(store.path, "predictor_weights", key, fields,
                                   {"transform": transform.tolist()},
                                   limit=PREDICTOR_WEIGHTS_CACHE_SIZE,
