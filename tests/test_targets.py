@@ -162,6 +162,33 @@ def test_ensemble_terminal_output_has_one_line_per_member(demo_store, archive, t
     assert "spread across members: min" in out
 
 
+def test_pooled_probability_says_its_skill_is_of_single_analyses(demo_store, archive,
+                                                                 tmp_path, capsys):
+    """The skill quoted beside an ensemble's pooled probability is the hindcast of single
+    analyses (one field, its analogs: the build's measurement, the same score each member
+    quotes); the pooled probability itself was never verified, and the skill line says
+    so in the text, the JSON and the HTML page (verification of what was forecast, not
+    of something else: common practice, no source)."""
+    from analogs.presentation.report import find_html
+    path = _ensemble_file(archive, ENSEMBLE_DAY, tmp_path / "ensemble.nc", 3, seed=7)
+    said = "skill measured for single analyses; the pooled ensemble probability is not verified"
+    status, out, err = _run(["find", "--store", demo_store.path, "--field", path, "--json"],
+                            capsys)
+    assert status == 0, err
+    data = json.loads(out)
+    pooled = data["outcomes"]["skill"]
+    assert pooled["brier_skill_score"] == demo_store.manifest["skill"]["brier_skill_score"]
+    assert said in pooled["not_measured"]
+    for member in data["members"]:
+        skill = member["outcomes"]["skill"]
+        assert "not_measured" not in skill
+        assert skill["brier_skill_score"] == pooled["brier_skill_score"]
+    status, out, err = _run(["find", "--store", demo_store.path, "--field", path], capsys)
+    assert status == 0, err
+    assert said in " ".join(out.split())
+    assert said in " ".join(find_html(data, demo_store.manifest).split())
+
+
 # ------------------------------------------------------------------- several valid times
 
 def test_every_valid_time_in_one_run(demo_store, archive, tmp_path, capsys, monkeypatch):

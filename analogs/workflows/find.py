@@ -372,11 +372,11 @@ class _Query:
                                   metric=self.metric)
         skill = store.skill_for(target_time, region=self.region, kinds=self.kinds,
                                 settings=settings, measure=not self.skip_skill_hindcast)
-        if skill is not None and self.field_target and self.sequence:
-            skill = {**skill, "not_measured": (
+        if self.field_target and self.sequence:
+            skill = with_caveat(skill, (
                 f"the field's {self.sequence} preceding days come from its file, while the "
                 "hindcast matched archive days with the archive's own preceding days: a "
-                "sequence of forecast fields is not hindcast")}
+                "sequence of forecast fields is not hindcast"))
         return skill
 
     def answer(self, store, vector, target_time, chosen=None) -> tuple[pd.DataFrame, object]:
@@ -403,6 +403,20 @@ class _Query:
                                    self.weights, self.confidence, self.kinds,
                                    skill=self.skill(store, target_time))
         return analogs, outcomes
+
+
+POOLED_NOT_VERIFIED = ("the probability pooled over the ensemble's members (skill measured "
+                       "for single analyses; the pooled ensemble probability is not "
+                       "verified)")
+
+
+def with_caveat(skill: dict | None, text: str) -> dict | None:
+    """``skill`` with ``text`` added to what its measurement does not cover
+    (``not_measured``, which the skill line prints after it), or None."""
+    if skill is None:
+        return None
+    known = skill.get("not_measured")
+    return {**skill, "not_measured": f"{known}; {text}" if known else text}
 
 
 # ---------------------------------------------------------------------- targets
@@ -761,7 +775,8 @@ def ensemble_result(store, fields: xr.Dataset, pcs, vectors, uncovered, valid,
     analogs and outcomes (a :class:`FindResult` in ``members``). The outcomes are pooled
     over all members' analogs (each member's analogs count once, so a day chosen by
     several members counts as often; ``n_analogs`` = members x top), with the spread
-    across members in ``member_spread``. ``target.regime_probabilities`` gives the
+    across members in ``member_spread``; their skill line is the single analyses'
+    hindcast and says so (``POOLED_NOT_VERIFIED``). ``target.regime_probabilities`` gives the
     fraction of members in each regime; ``target.regime`` is the most frequent one
     (ties: the order of ``REGIME_LABELS``) with that fraction as ``regime_confidence``;
     ``target.ensemble_mean`` is the regime of the members' mean field.
@@ -785,7 +800,8 @@ def ensemble_result(store, fields: xr.Dataset, pcs, vectors, uncovered, valid,
                         members=[t["member"].iloc[0] for t in tables])
     outcomes = outcome_summary(store, pooled, valid, query.window, query.region,
                                query.weights, query.confidence, query.kinds,
-                               skill=query.skill(store, valid))
+                               skill=with_caveat(query.skill(store, valid),
+                                                 POOLED_NOT_VERIFIED))
     outcomes = outcomes.replace(member_spread=member_spread(members, pooled, query))
     shares = pd.Series([member.target["regime"] for member in members]).value_counts() \
         / len(members)
