@@ -47,7 +47,24 @@ def test_the_pcs_read_without_xarray_equal_xarrays_reading(demo_store):
         expected = scores["pcs"].load()
     np.testing.assert_array_equal(store.pc_values, expected.values)
     assert store.times.equals(pd.DatetimeIndex(expected["time"].values))
+    assert store.times.dtype == np.dtype("datetime64[ns]")
     xr.testing.assert_identical(store.pcs.drop_attrs(), expected.drop_attrs())
+
+
+@pytest.mark.parametrize("units", ["hours since 1850-01-01 00:00", "seconds since 2000-03-01",
+                                   "days since 1900-01-01 12:00:00"])
+def test_the_times_of_scores_nc_in_other_units_equal_xarrays_decoding(tmp_path, units):
+    """Other CF time units and times off the hour (06:30 UTC): the times read for a query
+    (netCDF4's decoding, converted by pandas) equal xarray's CF decoding of the file."""
+    times = pd.date_range("1999-12-30 06:30", periods=40, freq="D")
+    pcs = xr.DataArray(np.arange(80.0).reshape(40, 2), dims=("time", "mode"),
+                       coords={"time": times, "mode": [1, 2]}, name="pcs")
+    pcs.to_dataset().to_netcdf(tmp_path / "scores.nc",
+                               encoding={"time": {"units": units, "dtype": "float64"}})
+    read = store_io.read_scores(tmp_path / "scores.nc")["times"]
+    with xr.open_dataset(tmp_path / "scores.nc") as decoded:
+        assert read.equals(pd.DatetimeIndex(decoded["time"].values))
+    assert read.equals(times) and read.dtype == np.dtype("datetime64[ns]")
 
 
 def test_a_date_query_reads_neither_climatology_nor_eofs(demo_store):

@@ -605,7 +605,8 @@ def read_scores(path) -> dict:
                      if not name.startswith("_")}
     except (OSError, ValueError, KeyError, AttributeError, IndexError) as error:
         raise StoreError(f"cannot read store file {path}: {error}") from None
-    times = pd.DatetimeIndex(np.asarray(times, dtype="datetime64[ns]"))
+    # pandas converts the datetimes in C (numpy's object cast took 13 ms of 10 years' days)
+    times = pd.DatetimeIndex(times).as_unit("ns")
     return {"values": values, "times": times, "modes": modes, "mode_name": mode_name,
             "attrs": attrs}
 
