@@ -287,6 +287,22 @@ def test_beta_quantile_worked_examples():
     assert beta_quantile(np.array([0.05, 0.95]), 2, 3).shape == (2,)
 
 
+def test_beta_quantile_with_a_parameter_within_rounding_of_zero():
+    """Weighted counts leave n - k a rounding residue (4.4e-16) when every analog had an
+    event: the Beta's mean rounds to 1 and its density cannot be taken there. The
+    quantile is then 1 (or 0) to a float's resolution, as scipy.special.betaincinv
+    gives; found by hypothesis (test_p_any_event_in_unit_interval_and_inside_ci)."""
+    tiny = 4.440892098500626e-16
+    for q, a, b in [(0.95, 4.8565068887439065, tiny), (0.999, 2.0, 1e-300),
+                    (0.05, tiny, 5.0), (0.5, 3.0, tiny)]:
+        assert beta_quantile(q, a, b) == pytest.approx(special.betaincinv(a, b, q),
+                                                       rel=0, abs=1e-12)
+    counts = _counts([1, 1, 1, 1])
+    out = summarize_outcomes(counts, counts, weights=[1, 1.5, 1.453125, 1],
+                             method="clopper-pearson")
+    assert out.weighted.p_any_event_ci[1] == pytest.approx(1.0, abs=1e-12)
+
+
 def test_binomial_interval_errors():
     with pytest.raises(AnalogsInputError, match=r"'trials' parameter of binomial_interval"):
         binomial_interval(0, 0)

@@ -715,6 +715,8 @@ def _beta_quantile_scalar(q: float, a: float, b: float) -> float:
     log_beta = math.lgamma(a) + math.lgamma(b) - math.lgamma(a + b)
     low, high = 0.0, 1.0
     x = a / (a + b)  # the mean: a start inside the bracket
+    if not 0.0 < x < 1.0:  # a or b within rounding of 0 (weighted counts): the mean is a bound
+        x = 0.5
     for _ in range(200):
         excess = regularized_beta(x, a, b) - q
         if excess == 0.0:
@@ -730,8 +732,8 @@ def _beta_quantile_scalar(q: float, a: float, b: float) -> float:
         guess = x - step
         if not low < guess < high:  # Newton left the bracket: bisect instead
             guess = 0.5 * (low + high)
-        if high - low <= _BETA_TOLERANCE * high:
-            return guess
+        if high - low <= _BETA_TOLERANCE * high or guess in (low, high):
+            return guess  # the bracket is at the resolution of a float
         x = guess
     return x
 
