@@ -587,7 +587,12 @@ def mark_handles(marks) -> list:
             handles.append(Line2D([], [], color=style["color"], linestyle=style["linestyle"],
                                   linewidth=2.0, label=style["label"]))
     if "low" in present:
-        handles.append(Line2D([], [], color=MARK_STYLES["low"]["color"], marker="$L$",
+        # The L as a path of the bold font, as the maps write it ("$L$" would import and
+        # build matplotlib's mathtext parser for one letter).
+        from matplotlib.font_manager import FontProperties
+        from matplotlib.textpath import TextPath
+        letter = TextPath((0, 0), "L", prop=FontProperties(weight="bold"))
+        handles.append(Line2D([], [], color=MARK_STYLES["low"]["color"], marker=letter,
                               linestyle="none", markersize=9,
                               label=MARK_STYLES["low"]["label"]))
     return handles
