@@ -354,8 +354,8 @@ def test_text_drawn_as_matplotlib_draws_it():
     and size of a two-line label as the analog grid's titles are."""
     from matplotlib.backends.backend_agg import FigureCanvasAgg
     from matplotlib.figure import Figure
-    cases = [dict(ha="left", va="bottom"), dict(ha="center", va="top"),
-             dict(ha="right", va="center"), dict(ha="left", va="baseline")]
+    cases = [{"ha": "left", "va": "bottom"}, {"ha": "center", "va": "top"},
+             {"ha": "right", "va": "center"}, {"ha": "left", "va": "baseline"}]
     for case, size in [(case, size) for case in cases for size in (6.5, 10.0)]:
         drawn = []
         for make in (lambda: plots.new_figure(3.0, 1.0),
@@ -387,8 +387,10 @@ def test_grid_contours_are_each_maps_contours():
     ax = Figure().add_subplot()
     plots._grid_contours(ax, lon, lat, z, offsets, levels)
     (contours,) = [c for c in ax.collections if hasattr(c, "levels")]
-    as_set = lambda paths: np.unique(  # noqa: E731
-        np.round(np.concatenate([p.vertices for p in paths if len(p.vertices)]), 6), axis=0)
+    def as_set(paths):
+        points = np.concatenate([p.vertices for p in paths if len(p.vertices)])
+        return np.unique(np.round(points, 6), axis=0)
+
     reference_ax = Figure().add_subplot()
     for level, path in zip(contours.levels, contours.get_paths()):
         expected = [reference_ax.contour(lon + dx, lat + dy, z[i], levels=[level]).get_paths()
