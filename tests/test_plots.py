@@ -336,3 +336,84 @@ def test_marks_are_drawn_with_their_legend(demo_store, query):
     np.testing.assert_allclose(trough.get_segments()[0],
                                [[-95.0 + dx, 30.0 + dy], [-92.0 + dx, 45.0 + dy]])
     assert "trough axis" in [t.get_text() for t in grid.legends[0].get_texts()]
+
+
+def _ink(figure):
+    """Ink of a figure drawn at 90 dpi on white: (sum of darkness, bounding box rows and
+    columns of the inked pixels)."""
+    figure.set_dpi(90)
+    grey = pixels(figure)[..., :3].mean(axis=-1)
+    rows, columns = np.nonzero(grey < 250)
+    return (255.0 - grey).sum(), (rows.min(), rows.max(), columns.min(), columns.max())
+
+
+def test_text_drawn_as_matplotlib_draws_it():
+    """The maps' canvas writes each line of text as one FreeType bitmap: the text covers
+    the place matplotlib's own Agg renderer gives it (reference: a stock
+    FigureCanvasAgg) to a pixel, with the same amount of ink to 1 %, for each alignment
+    and size of a two-line label as the analog grid's titles are."""
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.figure import Figure
+    cases = [{"ha": "left", "va": "bottom"}, {"ha": "center", "va": "top"},
+             {"ha": "right", "va": "center"}, {"ha": "left", "va": "baseline"}]
+    for case, size in [(case, size) for case in cases for size in (6.5, 10.0)]:
+        drawn = []
+        for make in (lambda: plots.new_figure(3.0, 1.0),
+                     lambda: FigureCanvasAgg(Figure(figsize=(3.0, 1.0))).figure):
+            figure = make()
+            figure.text(0.5, 0.5, "#12 2003-07-02 northwest_flow\nd 0.83, 4 events in region",
+                        fontsize=size, **case)
+            drawn.append(_ink(figure))
+        (ours, box), (theirs, reference) = drawn
+        assert np.all(np.abs(np.subtract(box, reference)) <= 1), (case, size)
+        assert abs(ours - theirs) <= 0.01 * theirs, (case, size)
+    # Rotated text keeps matplotlib's own path (it is not written as one bitmap).
+    figure = plots.new_figure(1.0, 3.0)
+    figure.text(0.5, 0.5, "rotated", rotation=90)
+    assert _ink(figure)[0] > 0
+
+
+def test_grid_contours_are_each_maps_contours():
+    """The analog grid's one contour set draws, at every level, the lines that a contour
+    of each map on its own shifted coordinates draws (reference: matplotlib's contour
+    of each map), none joining two maps."""
+    from matplotlib.figure import Figure
+    rng = np.random.default_rng(3)
+    lat, lon = np.linspace(20.0, 50.0, 16), np.linspace(-120.0, -70.0, 26)
+    z = 5600.0 + np.cumsum(rng.normal(0.0, 25.0, (3, lat.size, lon.size)), axis=2)
+    z[1, 4, 7] = np.nan  # a missing value inside a map stays a gap
+    offsets = [(0.0, 0.0), (60.0, 0.0), (0.0, -40.0)]
+    levels = np.arange(5400.0, 6000.0, 60.0)
+    ax = Figure().add_subplot()
+    plots._grid_contours(ax, lon, lat, z, offsets, levels)
+    (contours,) = [c for c in ax.collections if hasattr(c, "levels")]
+    def as_set(paths):
+        points = np.concatenate([p.vertices for p in paths if len(p.vertices)])
+        return np.unique(np.round(points, 6), axis=0)
+
+    reference_ax = Figure().add_subplot()
+    for level, path in zip(contours.levels, contours.get_paths()):
+        expected = [reference_ax.contour(lon + dx, lat + dy, z[i], levels=[level]).get_paths()
+                    for i, (dx, dy) in enumerate(offsets)]
+        expected = [p for paths in expected for p in paths]
+        if not any(len(p.vertices) for p in expected):
+            assert not len(path.vertices)
+            continue
+        np.testing.assert_allclose(as_set([path]), as_set(expected))
+        # No segment spans two maps: every step stays inside one map's box.
+        steps = np.abs(np.diff(path.vertices, axis=0))
+        codes = path.codes[1:] if path.codes is not None else np.full(len(steps), 2)
+        assert np.all(steps[codes == 2].max(axis=0) < (np.ptp(lon), np.ptp(lat)))
+
+
+def test_axis_lines_are_the_groups_of_each_axis():
+    """The marks' lines are pandas' groups by axis number (reference: groupby), points
+    in the table's order within a line."""
+    marks = pd.DataFrame({"axis": [3, 1, 3, 1, 7, 3], "lat": [30.0, 31.0, 32.0, 33.0, 34.0, 35.0],
+                          "lon": [-100.0, -99.0, -98.0, -97.0, -96.0, -95.0]})
+    expected = [group[["lon", "lat"]].to_numpy() for _, group in marks.groupby("axis")]
+    lines = plots._axis_lines(marks)
+    assert len(lines) == len(expected)
+    for line, reference in zip(lines, expected):
+        np.testing.assert_array_equal(line, reference)
+    assert plots._axis_lines(marks.iloc[:0]) == []

@@ -26,10 +26,11 @@ import numpy as np
 import pandas as pd
 import xarray as xr
 from matplotlib import colormaps
-from matplotlib.backends.backend_agg import FigureCanvasAgg
+from matplotlib.backends.backend_agg import FigureCanvasAgg, RendererAgg, get_hinting_flag
 from matplotlib.collections import LineCollection
 from matplotlib.colors import BoundaryNorm
 from matplotlib.figure import Figure
+from matplotlib.ft2font import FT2Font
 from matplotlib.patches import Polygon, Rectangle
 from matplotlib.ticker import FuncFormatter, MaxNLocator
 
@@ -67,7 +68,7 @@ def new_figure(width=8.0, height=6.0, *, layout=None) -> Figure:
     times faster to draw than a constrained layout (measured in
     ``tests/benchmarks/bench_report.py``)."""
     figure = Figure(figsize=(width, height), layout=layout)
-    FigureCanvasAgg(figure)
+    _Canvas(figure)
     return figure
 
 
@@ -78,6 +79,38 @@ def figure_png(figure: Figure, *, dpi=None) -> bytes:
     figure.savefig(buffer, format="png", dpi=dpi or getattr(figure, "png_dpi", FIGURE_DPI),
                    pil_kwargs={"compress_level": PNG_COMPRESS_LEVEL})
     return buffer.getvalue()
+
+
+class _LineTextRenderer(RendererAgg):
+    """Agg renderer that draws each plain, unrotated line of text as one FreeType
+    bitmap (``FT2Font.set_text`` and ``draw_glyphs_to_bitmap``, in C), as matplotlib
+    did up to 3.9: 3.11 places and renders glyph by glyph in Python, which was most of
+    the time of saving a map with labels (two thirds of the analog grid's). Mathtext,
+    rotated text and a matplotlib without that call take matplotlib's own path."""
+
+    def draw_text(self, gc, x, y, s, prop, angle, ismath=False, mtext=None):
+        if ismath or angle % 360 or not hasattr(FT2Font, "set_text"):
+            return super().draw_text(gc, x, y, s, prop, angle, ismath=ismath, mtext=mtext)
+        font = self._prepare_font(prop)
+        font.set_text(s, 0, flags=get_hinting_flag())
+        font.draw_glyphs_to_bitmap(antialiased=gc.get_antialiased())
+        x_offset, y_offset = font.get_bitmap_offset()  # 26.6 fixed point, as the descent
+        # draw_text_image takes the bitmap's left and its bottom, y downwards.
+        self._renderer.draw_text_image(
+            font.get_image(), round(x + x_offset / 64.0),
+            round(y + (y_offset + font.get_descent()) / 64.0) + 1, 0, gc)
+
+
+class _Canvas(FigureCanvasAgg):
+    """The Agg canvas of every figure here, drawing with :class:`_LineTextRenderer`."""
+
+    def get_renderer(self):
+        width, height = self.get_width_height(physical=True)
+        key = width, height, self.figure.dpi
+        if self._lastKey != key:
+            self.renderer = _LineTextRenderer(width, height, self.figure.dpi)
+            self._lastKey = key
+        return self.renderer
 
 
 def degrees_east_label(value, _position=None) -> str:
@@ -412,7 +445,6 @@ def analog_panel(analog_fields: xr.Dataset, analogs: pd.DataFrame, events=None, 
         row, column = divmod(i, columns)
         dx, dy = column * step_x - lon0, -row * step_y - lat0
         offsets.append((dx, dy))
-        ax.contour(lon + dx, lat + dy, z[i], levels=levels, colors="0.25", linewidths=0.6)
         left, bottom = lon0 + dx, lat0 + dy
         frames.append([(left, bottom), (left + span_x, bottom), (left + span_x, bottom + span_y),
                        (left, bottom + span_y), (left, bottom)])
@@ -438,6 +470,7 @@ def analog_panel(analog_fields: xr.Dataset, analogs: pd.DataFrame, events=None, 
             for y in ys:
                 ax.text(left - 0.01 * span_x, y + dy, degrees_north_label(y), fontsize=6,
                         ha="right", va="center", color="0.3")
+    _grid_contours(ax, lon, lat, z, offsets, levels)
     ax.add_collection(LineCollection(graticule, colors="0.82", linewidths=0.4, zorder=0))
     ax.add_collection(LineCollection(frames, colors="0.2", linewidths=0.7, zorder=1))
     _land_outline(ax, land, offsets, linewidth=0.7)
@@ -484,6 +517,23 @@ def analog_panel(analog_fields: xr.Dataset, analogs: pd.DataFrame, events=None, 
     return figure
 
 
+def _grid_contours(ax, lon, lat, z, offsets, levels):
+    """The height contours of every map of the grid as ONE contour set: the maps' fields
+    side by side in one array, each on its shifted coordinates, a column of NaN after
+    each map so that no line joins two maps (a quad with a masked corner is left out,
+    as one with a NaN inside a map always was). The same lines as one contour per map,
+    in a fiftieth of the calls."""
+    n, ny, nx = z.shape
+    dx = np.array([offset[0] for offset in offsets])
+    dy = np.array([offset[1] for offset in offsets])
+    x = np.concatenate([lon[None, :] + dx[:, None], (lon[-1] + dx)[:, None]], axis=1)
+    x = np.broadcast_to(x.reshape(1, -1), (ny, n * (nx + 1)))
+    y = np.broadcast_to(lat[:, None, None] + dy[None, :, None], (ny, n, nx + 1)).reshape(ny, -1)
+    values = np.full((ny, n, nx + 1), np.nan)
+    values[:, :, :nx] = z.transpose(1, 0, 2)
+    ax.contour(x, y, values.reshape(ny, -1), levels=levels, colors="0.25", linewidths=0.6)
+
+
 #: How the synoptic marks are drawn (a white halo keeps them readable over any shading).
 MARK_STYLES = {
     "trough": {"color": "#b2182b", "linestyle": (0, (5, 2.5)), "label": "trough axis"},
@@ -499,8 +549,7 @@ def _draw_marks(ax, marks, *, small=False):
     from matplotlib import patheffects
     halo = [patheffects.withStroke(linewidth=(2.6 if small else 4.0), foreground="white")]
     for kind in ("trough", "ridge"):
-        part = marks[marks["kind"] == kind]
-        lines = [group[["lon", "lat"]].to_numpy() for _, group in part.groupby("axis")]
+        lines = _axis_lines(marks[marks["kind"] == kind])
         if lines:
             style = MARK_STYLES[kind]
             collection = LineCollection(lines, colors=style["color"],
@@ -516,6 +565,17 @@ def _draw_marks(ax, marks, *, small=False):
                 zorder=7, path_effects=halo)
 
 
+def _axis_lines(part) -> list[np.ndarray]:
+    """The (lon, lat) points of each ``axis`` of ``part``, in order of the axis number
+    and, within one, of the table (as ``groupby("axis")`` gives them, without a pandas
+    group per axis: the grid's fifty maps hold hundreds)."""
+    axis = part["axis"].to_numpy()
+    order = np.argsort(axis, kind="stable")
+    points = part[["lon", "lat"]].to_numpy()[order]
+    return [line for line in np.split(points, np.flatnonzero(np.diff(axis[order])) + 1)
+            if len(line)]
+
+
 def mark_handles(marks) -> list:
     """Legend entries for the kinds present in ``marks``."""
     from matplotlib.lines import Line2D
@@ -527,7 +587,12 @@ def mark_handles(marks) -> list:
             handles.append(Line2D([], [], color=style["color"], linestyle=style["linestyle"],
                                   linewidth=2.0, label=style["label"]))
     if "low" in present:
-        handles.append(Line2D([], [], color=MARK_STYLES["low"]["color"], marker="$L$",
+        # The L as a path of the bold font, as the maps write it ("$L$" would import and
+        # build matplotlib's mathtext parser for one letter).
+        from matplotlib.font_manager import FontProperties
+        from matplotlib.textpath import TextPath
+        letter = TextPath((0, 0), "L", prop=FontProperties(weight="bold"))
+        handles.append(Line2D([], [], color=MARK_STYLES["low"]["color"], marker=letter,
                               linestyle="none", markersize=9,
                               label=MARK_STYLES["low"]["label"]))
     return handles

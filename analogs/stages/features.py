@@ -41,31 +41,32 @@ _KM = 1000.0
 
 
 def _smooth(z, passes):
-    """1-2-1 smoothing along longitude ``passes`` times and once along latitude; the
-    edge values are kept."""
+    """1-2-1 smoothing along longitude ``passes`` times and once along latitude, of
+    fields (..., lat, lon); the edge values are kept."""
     z = z.copy()
     for _ in range(passes):
-        z[:, 1:-1] = 0.25 * z[:, :-2] + 0.5 * z[:, 1:-1] + 0.25 * z[:, 2:]
-    if z.shape[0] > 2:
-        z[1:-1] = 0.25 * z[:-2] + 0.5 * z[1:-1] + 0.25 * z[2:]
+        z[..., 1:-1] = 0.25 * z[..., :-2] + 0.5 * z[..., 1:-1] + 0.25 * z[..., 2:]
+    if z.shape[-2] > 2:
+        z[..., 1:-1, :] = 0.25 * z[..., :-2, :] + 0.5 * z[..., 1:-1, :] + 0.25 * z[..., 2:, :]
     return z
 
 
-def _row_crossings(slope, curvature, lon, margin):
-    """(longitude, curvature, kind) of each sign change of ``slope`` along one row, at
-    least ``margin`` columns from either edge (where the smoothing and the one-sided
-    differences bend the field); kind +1 for a minimum (trough), -1 for a maximum."""
-    a, b = slope[:-1], slope[1:]
+def _crossings(slope, curvature, lon, margin):
+    """Each sign change of ``slope`` (..., lat, lon) along the rows, at least ``margin``
+    columns from either edge (where the smoothing and the one-sided differences bend
+    the field): (index tuple of the field and row, longitude, curvature, kind), kind +1
+    for a minimum (trough), -1 for a maximum, in the order of the fields, rows and
+    columns; placed by linear interpolation between the columns j and j+1."""
+    a, b = slope[..., :-1], slope[..., 1:]
     change = np.isfinite(a) & np.isfinite(b) & (np.sign(a) != np.sign(b)) & (a != 0)
-    change[:margin] = False
-    change[max(change.size - margin, 0):] = False
-    out = []
-    for j in np.flatnonzero(change):
-        share = a[j] / (a[j] - b[j])                   # linear zero crossing in (j, j+1)
-        x = lon[j] + share * (lon[j + 1] - lon[j])
-        c = curvature[j] + share * (curvature[j + 1] - curvature[j])
-        out.append((x, c, 1 if b[j] > a[j] else -1))
-    return out
+    change[..., :margin] = False
+    change[..., max(change.shape[-1] - margin, 0):] = False
+    *where, j = np.nonzero(change)
+    a, b = a[(*where, j)], b[(*where, j)]
+    share = a / (a - b)
+    x = lon[j] + share * (lon[j + 1] - lon[j])
+    c = curvature[(*where, j)] + share * (curvature[(*where, j + 1)] - curvature[(*where, j)])
+    return where, x, c, np.where(b > a, 1, -1)
 
 
 def _link(points, max_step_km):
@@ -143,17 +144,18 @@ def trough_ridge_axes(z500: xr.DataArray, *, min_curvature=AXIS_DEFAULTS["min_cu
     lon = np.asarray(z500["lon"].values, dtype=float)
     if lon.size < 3 or lat.size < 2:
         raise AnalogsInputError("trough_ridge_axes needs at least 2 latitudes and 3 longitudes")
+    # Every field at once (elementwise, the same numbers as one field at a time).
+    z = _smooth(np.asarray(z500.values, dtype=float), smoothing_passes)
+    slope = zonal_derivative(z, lat, lon)                          # gpm per metre
+    curvature = zonal_derivative(slope, lat, lon) * (1000.0 * _KM) ** 2
+    (field, row), x, bend, kinds = _crossings(slope, curvature, lon, smoothing_passes + 2)
+    kept = np.isfinite(bend) & (np.abs(bend) >= min_curvature) & (np.sign(bend) == kinds)
+    field, row, x, bend, kinds = field[kept], row[kept], x[kept], bend[kept], kinds[kept]
     rows = []
-    for t, values in enumerate(np.asarray(z500.values, dtype=float)):
-        z = _smooth(values, smoothing_passes)
-        slope = zonal_derivative(z, lat, lon)                      # gpm per metre
-        curvature = zonal_derivative(slope, lat, lon) * (1000.0 * _KM) ** 2
+    for t in range(z.shape[0]):
         points = {1: [], -1: []}
-        for i in range(lat.size):
-            for x, c, kind in _row_crossings(slope[i], curvature[i], lon,
-                                             smoothing_passes + 2):
-                if np.isfinite(c) and abs(c) >= min_curvature and np.sign(c) == kind:
-                    points[kind].append((i, lat[i], x, c))
+        for k in np.flatnonzero(field == t):
+            points[int(kinds[k])].append((int(row[k]), lat[row[k]], x[k], bend[k]))
         number = 0
         for kind, name in ((1, "trough"), (-1, "ridge")):
             for line in _link(points[kind], max_step_km):

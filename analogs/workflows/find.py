@@ -1327,8 +1327,7 @@ def _times_held(path) -> tuple[pd.DatetimeIndex | None, frozenset]:
                                              getattr(var, "calendar", "standard"),
                                              only_use_cftime_datetimes=False,
                                              only_use_python_datetimes=True)
-                    return (pd.DatetimeIndex(pd.to_datetime([d.isoformat() for d in dates])),
-                            frozenset(dataset.variables))
+                    return pd.DatetimeIndex(list(dates)), frozenset(dataset.variables)
     except (OSError, ValueError, AttributeError, TypeError):
         pass
     return None, frozenset()
