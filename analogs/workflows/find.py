@@ -1406,6 +1406,7 @@ def report_figures(store, result: FindResult, *, maps=None, hindcast=None,
     order, for the browsing page.
     """
     from analogs.presentation import figures as draw
+    from analogs.workflows.geography import map_lines
     region = result.region if result.region is not None else store.region
     when = result.target.get("date") or "the forecast field"
     analogs = result.analogs
@@ -1433,13 +1434,14 @@ def report_figures(store, result: FindResult, *, maps=None, hindcast=None,
         source = days_source
         target, gathered = gathered.isel(analog=0), gathered.isel(analog=slice(1, None))
     land = draw.land_lines(store.land)  # traced once for every map
+    geography = map_lines(*store.grid, store.land)
     target_marks, analog_marks = _marks(target, gathered)
     figures = []
     if target is not None:
         figures.append((f"Target {when}: 500 hPa height and moisture ({source})",
                         _later(draw.target_map, target, region=region,
                                when=f"Target {when}", source=source, land=land,
-                               marks=target_marks),
+                               marks=target_marks, geography=geography),
                         _alt_target(target, f"target {when}", source)
                         + _alt_marks(target_marks) + _alt_land(land)))
     if len(analogs):
@@ -1460,7 +1462,7 @@ def report_figures(store, result: FindResult, *, maps=None, hindcast=None,
                + _alt_land(land))
         figures.append(("The closest past days and their events",
                         _later(draw.analog_panel, gathered.isel(analog=slice(0, len(shown))),
-                               shown, events, region=region, land=land,
+                               shown, events, region=region, land=land, geography=geography,
                                marks=analog_marks[analog_marks["panel"] < len(shown)],
                                title=f"Closest past days to {when}: 500 hPa height "
                                      f"({_short(days_source)})"),
@@ -1472,7 +1474,7 @@ def report_figures(store, result: FindResult, *, maps=None, hindcast=None,
             lat, lon = mean["lat"].values, mean["lon"].values
             figures.append(("Mean of the analog days and its difference from the target",
                             _later(draw.composite_difference, mean, target, region=region,
-                                   land=land,
+                                   land=land, geography=geography,
                                    title=f"Analog days and target {when} (analogs: "
                                          f"{_short(days_source)}; target: {_short(source)})"),
                             f"Two maps. Left: mean 500 hPa height and moisture of the "
@@ -1494,7 +1496,7 @@ def report_figures(store, result: FindResult, *, maps=None, hindcast=None,
                       if nonzero else "") + "; zero left blank on both.")
             figures.append(("Where the analog days had events nearby",
                             _later(draw.probability_map, maps, region=region, when=when,
-                                   land=land), alt))
+                                   land=land, geography=geography), alt))
     if hindcast is not None:
         from analogs.stages.scores import reliability_table, roc_curve_points
         p = hindcast["forecast"].to_numpy()
