@@ -65,7 +65,7 @@ def test_clip_cuts_at_the_edges_where_the_line_crosses_them():
 def test_clip_matches_shapely():
     """Random polylines cut to a box: the same pieces as shapely's clip_by_rect
     (GEOS), compared by length and by every piece lying inside the box."""
-    shapely = pytest.importorskip("shapely", reason="shapely (a cartopy dependency) absent")
+    shapely = pytest.importorskip("shapely", reason="shapely (the test extra) is not installed")
     rng = np.random.default_rng(3)
     for _ in range(20):
         line = np.cumsum(rng.normal(0.0, 4.0, size=(40, 2)), axis=0)
@@ -110,13 +110,13 @@ def test_coast_agreement_of_a_mask_and_its_coast():
 def test_known_coastal_points_lie_on_the_coastline():
     """Cape Hatteras (35.22 N, 75.53 W), Cape Cod (42.05 N, 70.19 W) and Galveston
     (29.3 N, 94.8 W) lie on the coastline drawn for a North American map (coordinates
-    from memory); Raleigh (35.8 N, 78.6 W), inland, does not."""
+    from memory); Dodge City, Kansas (37.75 N, 100.0 W), far inland, does not."""
     files = _files()
     lines = geography.map_lines(np.arange(20.0, 55.1), np.arange(-130.0, -60.1))
     assert lines.source and lines.coastline
     for lon, lat in ((-75.53, 35.22), (-70.19, 42.05), (-94.8, 29.3)):
         assert _distance_deg(lines.coastline, lon, lat) < COAST_TOLERANCE_DEG, (lon, lat)
-    assert _distance_deg(lines.coastline, -78.6, 35.8) > 1.0
+    assert _distance_deg(lines.coastline, -100.0, 37.75) > 1.0
     if "border" in files:
         # The United States - Canada border runs along 49 N west of the Lake of the Woods
         # (from memory).
@@ -167,7 +167,7 @@ def test_the_earth_lines_are_withheld_on_another_geography(demo_dir):
     _files()
     land_files = [folder / name for folder in geography.data_folders()
                   for name in ("shapefiles/natural_earth/physical/ne_50m_land.shp",
-                               *geography.GSHHS_COASTLINES)]
+                               *geography.GSHHS_FILES["coastline"])]
     land_file = next((path for path in land_files if path.is_file()), None)
     if land_file is None:
         pytest.skip("no land polygons (Natural Earth land or GSHHS) to make a real mask")
@@ -176,10 +176,10 @@ def test_the_earth_lines_are_withheld_on_another_geography(demo_dir):
     real = _real_land(lat, lon, rings)
     assert geography.map_lines(lat, lon, real).coastline
     moved = _real_land(lat, lon - 5.0, rings).assign_coords(lon=lon)
-    assert "not drawn" in geography.map_lines(lat, lon, moved).withheld
+    assert "left off" in geography.map_lines(lat, lon, moved).withheld
     mask, _ = read_land_mask(demo_dir / "archive" / "static" / "land_sea_mask.nc")
     demo = geography.map_lines(mask["lat"].values, mask["lon"].values, mask)
-    assert not demo and "near the archive's own land-sea boundary" in demo.withheld
+    assert not demo and "near the archive's own coast" in demo.withheld
 
 
 def test_missing_data_gives_no_lines(monkeypatch, tmp_path):
@@ -249,3 +249,10 @@ def test_report_maps_carry_the_offline_coastlines():
     (drawn,) = _earth_collections(figure.axes[0], "coastline")
     assert len(drawn.get_paths()) == len(lines.coastline)
     assert lines.source in " ".join(t.get_text() for t in figure.texts)
+
+
+def test_a_store_without_a_mask_is_not_said_to_draw_one():
+    """No land-sea lines (a store without a mask hands an empty list): the map says its
+    axes are plain, not that a boundary from a mask is drawn."""
+    notes = [t.get_text() for t in plots.target_map(_fields(), land=[]).texts]
+    assert plots.PLAIN_AXES_NOTE in notes and plots.LAND_NOTE not in notes

@@ -45,6 +45,10 @@ HEIGHT_INTERVAL_GPM = 60.0
 EVENT_MARKERS = ("o", "^", "s", "D", "v", "P", "X")
 PLAIN_AXES_NOTE = "plain latitude-longitude axes (no coastlines drawn)"
 LAND_NOTE = "brown line: land-sea boundary from the archive's land-sea mask (0.5 contour)"
+#: Notes under a map: font size (points); from this width (inches) two notes stand side by
+#: side, on narrower figures one above the other.
+NOTE_FONT_SIZE = 7
+WIDE_FIGURE_INCHES = 10.0
 #: How the Earth's lines are drawn: thin greys above the shading, below the contours.
 EARTH_LINE_STYLES = {
     "coastline": {"name": "coastlines", "colors": "0.2", "linewidths": 0.8,
@@ -234,17 +238,20 @@ def earth_note(geography) -> str:
 
 
 def _note_plain_axes(figure, geography, land=None):
-    """The map's notes at the bottom: the land-sea boundary's (right), the Earth's
-    lines' (left), or that the axes are plain."""
-    if land is not None:
-        figure.text(0.995, 0.003, LAND_NOTE, ha="right", va="bottom", fontsize=7,
-                    color="0.35")
-    if earth_note(geography):
-        figure.text(0.005, 0.003, earth_note(geography), ha="left", va="bottom",
-                    fontsize=7, color="0.35")
-    elif land is None:
-        figure.text(0.995, 0.003, PLAIN_AXES_NOTE, ha="right", va="bottom", fontsize=7,
-                    color="0.35")
+    """The map's notes at the bottom right: the land-sea boundary's, the Earth's lines'
+    (on its left on a wide figure, above it on a narrow one), or that the axes are
+    plain."""
+    notes = ([LAND_NOTE] if land_lines(land) else []) + [earth_note(geography)] * bool(
+        earth_note(geography))
+    if not notes:
+        notes = [PLAIN_AXES_NOTE]
+    stacked = figure.get_figwidth() < WIDE_FIGURE_INCHES
+    line_height = 1.4 * NOTE_FONT_SIZE / 72.0 / figure.get_figheight()
+    for i, note in enumerate(notes):
+        side_by_side = i and not stacked
+        figure.text(0.005 if side_by_side else 0.995, 0.003 + (i * line_height) * stacked,
+                    note, ha="left" if side_by_side else "right", va="bottom",
+                    fontsize=NOTE_FONT_SIZE, color="0.35")
 
 
 def _plane(field: xr.DataArray, owner: str) -> xr.DataArray:

@@ -30,12 +30,16 @@ NATURAL_EARTH_SCALES = ("50m", "110m", "10m")
 #: The file of each kind of line, inside a data folder ({scale}: a Natural Earth scale).
 NATURAL_EARTH_FILES = {
     "coastline": "shapefiles/natural_earth/physical/ne_{scale}_coastline.shp",
+    "lake": "shapefiles/natural_earth/physical/ne_{scale}_lakes.shp",
     "border": "shapefiles/natural_earth/cultural/ne_{scale}_admin_0_boundary_lines_land.shp",
     "state": "shapefiles/natural_earth/cultural/ne_{scale}_admin_1_states_provinces_lines.shp",
 }
-#: GSHHS shorelines (level 1: land against ocean), low then crude resolution: the
-#: coastline when no Natural Earth coastline is on disk.
-GSHHS_COASTLINES = ("shapefiles/gshhs/l/GSHHS_l_L1.shp", "shapefiles/gshhs/c/GSHHS_c_L1.shp")
+#: GSHHS shorelines, low then crude resolution, when no Natural Earth file is on disk:
+#: level 1 (land against ocean) for the coastline, level 2 (lakes) for the lakes.
+GSHHS_FILES = {
+    "coastline": ("shapefiles/gshhs/l/GSHHS_l_L1.shp", "shapefiles/gshhs/c/GSHHS_c_L1.shp"),
+    "lake": ("shapefiles/gshhs/l/GSHHS_l_L2.shp", "shapefiles/gshhs/c/GSHHS_c_L2.shp"),
+}
 #: Debian's folder of cartopy's data (package python-cartopy-data).
 DEBIAN_CARTOPY_DATA = Path("/usr/share/cartopy/data")
 #: Below this share of its coastline near the archive's own land-sea boundary
@@ -63,13 +67,12 @@ def data_folders() -> list[Path]:
 
 def line_files(folders) -> dict[str, Path]:
     """The shapefile of each kind of line found in ``folders`` (first folder first;
-    Natural Earth at the first scale found, GSHHS for a coastline otherwise)."""
+    Natural Earth at the first scale found, GSHHS for a coastline or lakes otherwise)."""
     found = {}
     for kind, pattern in NATURAL_EARTH_FILES.items():
         candidates = [folder / pattern.format(scale=scale)
                       for scale in NATURAL_EARTH_SCALES for folder in folders]
-        if kind == "coastline":
-            candidates += [folder / name for name in GSHHS_COASTLINES for folder in folders]
+        candidates += [folder / name for name in GSHHS_FILES.get(kind, ()) for folder in folders]
         first = next((path for path in candidates if path.is_file()), None)
         if first is not None:
             found[kind] = first
@@ -91,9 +94,9 @@ def shapefile_lines(path: str) -> tuple[np.ndarray, ...]:
 
 
 def map_lines(lat, lon, land=None) -> MapLines | None:
-    """The coastlines, borders and state lines inside the extent of the grid ``lat``,
-    ``lon`` (degrees; longitudes in any frame), or None when pyshp or the files are
-    missing. With ``land``, the archive's land fraction on that grid, the lines are
+    """The coastlines (with lake shores), borders and state lines inside the extent of
+    the grid ``lat``, ``lon`` (degrees; longitudes in any frame), or None when pyshp or
+    the files are missing. With ``land``, the archive's land fraction on that grid, the lines are
     withheld (``MapLines.withheld`` says why) when the archive's coast does not follow
     the Earth's (:data:`MIN_COAST_AGREEMENT`): a synthetic archive's continent."""
     if importlib.util.find_spec("shapefile") is None:
@@ -105,12 +108,15 @@ def map_lines(lat, lon, land=None) -> MapLines | None:
     lines = {kind: clip_lines(shapefile_lines(str(path)), *box) for kind, path in files.items()}
     source = _source_name(files)
     if land is not None:
+        # Judged on the sea coast alone: a coarse mask may count a lake as land.
         from analogs.stages.landmask import coast_agreement
         agreement = coast_agreement(land, lines.get("coastline", []))
         if agreement is not None and agreement < MIN_COAST_AGREEMENT:
             return MapLines(source=source, withheld=(
-                f"{source} coastlines and borders not drawn: only {100 * agreement:.0f} % "
-                "of that coastline lies near the archive's own land-sea boundary"))
+                f"{source} coastlines and borders left off: only {100 * agreement:.0f} % "
+                "of that coastline lies near the archive's own coast (another geography)"))
+    # Lake shores are drawn as coastlines (where land meets water).
+    lines["coastline"] = lines.get("coastline", []) + lines.pop("lake", [])
     return MapLines(**lines, source=source)
 
 
