@@ -256,3 +256,34 @@ def test_a_store_without_a_mask_is_not_said_to_draw_one():
     axes are plain, not that a boundary from a mask is drawn."""
     notes = [t.get_text() for t in plots.target_map(_fields(), land=[]).texts]
     assert plots.PLAIN_AXES_NOTE in notes and plots.LAND_NOTE not in notes
+
+
+def _write_shapefile(path, kind, parts):
+    shapefile = pytest.importorskip("shapefile", reason="pyshp (the maps extra) absent")
+    path.parent.mkdir(parents=True, exist_ok=True)
+    with shapefile.Writer(str(path), shapeType=kind) as writer:
+        writer.field("name", "C")
+        for part in parts:
+            (writer.poly if kind == shapefile.POLYGON else writer.line)([part])
+            writer.record("x")
+
+
+def test_files_in_cartopy_layout_give_each_kind_and_drop_small_lakes(monkeypatch, tmp_path):
+    """Natural Earth files written in cartopy's layout under $CARTOPY_DATA_DIR are found
+    and read: the border, and of two lakes the 2 x 1 degree one (2 square degrees, by
+    hand) but not the 0.2 x 0.2 one (0.04, below MIN_LAKE_AREA_DEG2)."""
+    import shapefile
+    root = tmp_path / "shapefiles" / "natural_earth"
+    _write_shapefile(root / "physical" / "ne_50m_coastline.shp", shapefile.POLYLINE,
+                     [[[-100.0, 30.0], [-90.0, 30.0]]])
+    _write_shapefile(root / "cultural" / "ne_50m_admin_0_boundary_lines_land.shp",
+                     shapefile.POLYLINE, [[[-110.0, 40.0], [-80.0, 40.0]]])
+    big = [[-95.0, 35.0], [-95.0, 36.0], [-93.0, 36.0], [-93.0, 35.0], [-95.0, 35.0]]
+    small = [[-85.0, 35.0], [-85.0, 35.2], [-84.8, 35.2], [-84.8, 35.0], [-85.0, 35.0]]
+    _write_shapefile(root / "physical" / "ne_50m_lakes.shp", shapefile.POLYGON, [big, small])
+    monkeypatch.setenv("CARTOPY_DATA_DIR", str(tmp_path))
+    lines = geography.map_lines(np.arange(25.0, 45.1), np.arange(-105.0, -75.1))
+    assert lines.source == "Natural Earth 50m"
+    np.testing.assert_allclose(lines.border[0], [[-105.0, 40.0], [-80.0, 40.0]])
+    assert len(lines.coastline) == 2          # the coast and the big lake's shore
+    np.testing.assert_allclose(lines.coastline[1], big)

@@ -149,13 +149,20 @@ def _earth_lines(ax, geography, offsets=((0.0, 0.0),), *, thin=1.0):
     to the map) shifted by each (dx, dy) of ``offsets``: one line collection per kind."""
     if not geography:
         return
+    from matplotlib import patheffects
     for kind, style in EARTH_LINE_STYLES.items():
         lines = getattr(geography, kind)
         if lines:
-            ax.add_collection(LineCollection(
+            collection = LineCollection(
                 [line + offset for offset in offsets for line in lines],
                 colors=style["colors"], linewidths=style["linewidths"] * thin,
-                linestyles=[style["linestyles"]], zorder=1.8, gid=f"earth-{kind}"))
+                linestyles=[style["linestyles"]], zorder=1.8, gid=f"earth-{kind}")
+            if thin == 1.0:
+                # A light edge keeps the lines visible over dark shading (full-size maps;
+                # the small maps of the grids have none).
+                collection.set_path_effects([patheffects.withStroke(
+                    linewidth=style["linewidths"] + 1.0, foreground="#f2f2f2")])
+            ax.add_collection(collection)
 
 
 def _map_axes(ax, lat, lon, region=None, *, geography=None, xticks=True, yticks=True,

@@ -1381,8 +1381,13 @@ def _short(source) -> str:
     return source.split(", as ")[0]
 
 
-def _alt_land(land) -> str:
-    return " The land-sea boundary from the archive's mask is drawn in brown." if land else ""
+def _alt_land(land, geography) -> str:
+    """The alt text's account of the geography drawn: the archive's land-sea boundary,
+    the Earth's lines (or why they are left off)."""
+    from analogs.presentation.figures import earth_note
+    note = earth_note(geography)
+    return ((" The land-sea boundary from the archive's mask is drawn in brown." if land else "")
+            + (f" {note[0].upper()}{note[1:]}." if note else ""))
 
 
 def report_figures(store, result: FindResult, *, maps=None, hindcast=None,
@@ -1443,7 +1448,7 @@ def report_figures(store, result: FindResult, *, maps=None, hindcast=None,
                                when=f"Target {when}", source=source, land=land,
                                marks=target_marks, geography=geography),
                         _alt_target(target, f"target {when}", source)
-                        + _alt_marks(target_marks) + _alt_land(land)))
+                        + _alt_marks(target_marks) + _alt_land(land, geography)))
     if len(analogs):
         gathered = gathered.assign_coords(analog=analogs["rank"].to_numpy())
         shown = analogs if n_panel is None else analogs.head(n_panel)
@@ -1459,7 +1464,7 @@ def report_figures(store, result: FindResult, *, maps=None, hindcast=None,
                            for a in shown.itertuples(index=False)) + "."
                + (" Each day's trough axes (red dashed), ridge axes (blue dotted) and closed "
                   "lows (L) of the 500 hPa height are marked." if len(analog_marks) else "")
-               + _alt_land(land))
+               + _alt_land(land, geography))
         figures.append(("The closest past days and their events",
                         _later(draw.analog_panel, gathered.isel(analog=slice(0, len(shown))),
                                shown, events, region=region, land=land, geography=geography,

@@ -42,6 +42,9 @@ GSHHS_FILES = {
 }
 #: Debian's folder of cartopy's data (package python-cartopy-data).
 DEBIAN_CARTOPY_DATA = Path("/usr/share/cartopy/data")
+#: Lakes smaller than this (square degrees, about 1000 km2 at 35 N) are left off: dots at
+#: the scale of a synoptic map (GSHHS's low-resolution lakes covered Canada in specks).
+MIN_LAKE_AREA_DEG2 = 0.1
 #: Below this share of its coastline near the archive's own land-sea boundary
 #: (:func:`analogs.stages.landmask.coast_agreement`) the Earth's lines are not drawn:
 #: they would contradict the archive's geography. Measured with the Natural Earth 50m
@@ -80,9 +83,10 @@ def line_files(folders) -> dict[str, Path]:
 
 
 @lru_cache(maxsize=8)
-def shapefile_lines(path: str) -> tuple[np.ndarray, ...]:
+def shapefile_lines(path: str, min_area: float = 0.0) -> tuple[np.ndarray, ...]:
     """Every part of every shape of the shapefile ``path`` as an (n, 2) array of
-    (lon, lat); polygons give their rings."""
+    (lon, lat); polygons give their rings, only those enclosing at least ``min_area``
+    square degrees (shoelace formula) when it is positive."""
     import shapefile
     lines = []
     with shapefile.Reader(path) as reader:
@@ -90,6 +94,10 @@ def shapefile_lines(path: str) -> tuple[np.ndarray, ...]:
             points = np.asarray(shape.points, dtype=float)
             bounds = list(shape.parts) + [len(points)]
             lines.extend(points[a:b] for a, b in pairwise(bounds) if b - a > 1)
+    if min_area > 0.0:
+        lines = [ring for ring in lines if 0.5 * abs(
+            float(np.dot(ring[:, 0], np.roll(ring[:, 1], 1))
+                  - np.dot(ring[:, 1], np.roll(ring[:, 0], 1)))) >= min_area]
     return tuple(lines)
 
 
@@ -105,7 +113,9 @@ def map_lines(lat, lon, land=None) -> MapLines | None:
     if not files:
         return None
     box = (float(np.min(lon)), float(np.max(lon)), float(np.min(lat)), float(np.max(lat)))
-    lines = {kind: clip_lines(shapefile_lines(str(path)), *box) for kind, path in files.items()}
+    lines = {kind: clip_lines(shapefile_lines(str(path), MIN_LAKE_AREA_DEG2 if kind == "lake"
+                                              else 0.0), *box)
+             for kind, path in files.items()}
     source = _source_name(files)
     if land is not None:
         # Judged on the sea coast alone: a coarse mask may count a lake as land.
