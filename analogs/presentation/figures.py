@@ -166,7 +166,7 @@ def _earth_lines(ax, geography, offsets=((0.0, 0.0),), *, thin=1.0):
                 # A light edge keeps the lines visible over dark shading (full-size maps;
                 # the small maps of the grids have none).
                 collection.set_path_effects([patheffects.withStroke(
-                    linewidth=style["linewidths"] + 1.0, foreground="#f2f2f2")])
+                    linewidth=style["linewidths"] + 0.8, foreground="#f2f2f2", alpha=0.6)])
             ax.add_collection(collection)
 
 
