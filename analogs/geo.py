@@ -17,6 +17,7 @@ differences.
 from __future__ import annotations
 
 from dataclasses import dataclass
+from dataclasses import field as dataclass_field
 
 import numpy as np
 
@@ -292,3 +293,75 @@ def initial_bearing_deg(lat1, lon1, lat2, lon2):
     y = np.sin(dlam) * np.cos(phi2)
     x = np.cos(phi1) * np.sin(phi2) - np.sin(phi1) * np.cos(phi2) * np.cos(dlam)
     return np.degrees(np.arctan2(y, x)) % 360.0
+
+
+@dataclass(frozen=True, eq=False)
+class MapLines:
+    """The Earth's lines for the maps of one grid, cut to its extent: each a list of
+    (n, 2) arrays of (lon, lat) in the grid's longitude frame.
+
+    ``source`` names the data (e.g. "Natural Earth 50m"); ``withheld``, when not empty,
+    says why no line is drawn although the data are there."""
+
+    coastline: list = dataclass_field(default_factory=list)
+    border: list = dataclass_field(default_factory=list)
+    state: list = dataclass_field(default_factory=list)
+    source: str = ""
+    withheld: str = ""
+
+    def __bool__(self) -> bool:
+        return bool(self.coastline or self.border or self.state)
+
+
+def clip_lines(lines, west, east, south, north) -> list[np.ndarray]:
+    """The parts of polylines ((n, 2) arrays of lon, lat in degrees, longitudes in
+    [-180, 180]) inside the box, cut exactly at its edges.
+
+    The box's longitudes may lie in any frame (0 .. 360, or continuous across the date
+    line as 150 .. 210): each line is also tried shifted by the multiples of 360 that
+    bring it into the box, and the pieces come back in the box's frame. Each segment is
+    clipped by the Liang-Barsky parametric test (Liang and Barsky 1984, ACM Transactions
+    on Graphics 3, 1); consecutive clipped segments that meet at an original vertex are
+    joined back into one polyline.
+    """
+    first = int(np.ceil((west - 180.0) / 360.0))
+    last = int(np.floor((east + 180.0) / 360.0))
+    pieces = []
+    for line in lines:
+        line = np.asarray(line, dtype=float)
+        if len(line) < 2:
+            continue
+        low, high = line.min(axis=0), line.max(axis=0)
+        if high[1] < south or low[1] > north:
+            continue
+        for shift in range(first, last + 1):
+            dx = 360.0 * shift
+            if high[0] + dx < west or low[0] + dx > east:
+                continue
+            pieces.extend(_clip_polyline(line + (dx, 0.0), west, east, south, north))
+    return pieces
+
+
+def _clip_polyline(points, west, east, south, north) -> list[np.ndarray]:
+    start, step = points[:-1], np.diff(points, axis=0)
+    # For each of the four edges: p * t <= q keeps the point start + t * step inside.
+    p = np.stack([-step[:, 0], step[:, 0], -step[:, 1], step[:, 1]], axis=1)
+    q = np.stack([start[:, 0] - west, east - start[:, 0],
+                  start[:, 1] - south, north - start[:, 1]], axis=1)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        ratio = q / p
+    enter = np.max(np.where(p < 0, ratio, 0.0), axis=1, initial=0.0)
+    leave = np.min(np.where(p > 0, ratio, 1.0), axis=1, initial=1.0)
+    kept = (enter <= leave) & ~np.any((p == 0) & (q < 0), axis=1)
+    index = np.flatnonzero(kept)
+    if index.size == 0:
+        return []
+    enter, leave = enter[index], leave[index]
+    begin = start[index] + enter[:, None] * step[index]
+    end = start[index] + leave[:, None] * step[index]
+    # A new piece starts where the previous kept segment left the box, is not the
+    # previous segment, or this one enters the box part-way.
+    new_piece = np.r_[True, (leave[:-1] < 1.0) | (np.diff(index) != 1) | (enter[1:] > 0.0)]
+    starts = np.flatnonzero(new_piece)
+    stops = np.r_[starts[1:], index.size]
+    return [np.vstack([begin[a], end[a:b]]) for a, b in zip(starts, stops)]

@@ -100,13 +100,13 @@ def test_a_store_replaced_after_loading_is_not_mixed_in(demo_store, tmp_path):
 
 
 def test_a_date_query_imports_no_build_dask_or_figures(demo_store):
-    """Nor scipy (the intervals' Beta quantiles are analogs' own), xarray or the
-    writers' lock."""
+    """Nor scipy (the intervals' Beta quantiles are analogs' own), xarray, the writers'
+    lock or the maps' coastline reader."""
     code = ("import sys; from analogs.cli import main; "
             f"main(['find', '--store', {str(demo_store.path)!r}, '--date', "
             f"{_dates(demo_store)[1]!r}, '--json']); "
             "print('MODULES', [m for m in ('dask', 'matplotlib', 'sklearn', 'scipy', "
-            "'xarray', 'filelock', "
+            "'xarray', 'filelock', 'shapefile', 'cartopy', 'analogs.workflows.geography', "
             "'analogs.workflows.build', 'analogs.stages.sources', 'analogs.stages.eof', "
             "'analogs.stages.daily_climatology') if m in sys.modules])")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,

@@ -10,8 +10,9 @@ canvas (no pyplot, so no global state changes and no display is needed); turn it
 into PNG bytes with :func:`figure_png`. Maps are latitude / longitude axes labelled in
 degrees W/E and N/S; every query map takes ``land``, a land-sea mask or land fraction
 on (lat, lon) (CF ``land_binary_mask`` / ``land_area_fraction``), and draws its 0.5
-contour; coastlines are drawn only when cartopy and its Natural Earth files are already
-on disk (nothing is downloaded).
+contour, and ``geography``, the Earth's coastlines, borders and state lines cut to the
+map (:class:`analogs.geo.MapLines`, read by :mod:`analogs.workflows.geography` from
+cartopy's offline data when it is on disk); plain axes when handed neither.
 
 Colour maps: ``viridis`` / ``cividis`` (perceptually uniform) for amounts and
 probabilities, ``RdBu_r`` only for departures (anomalies and differences).
@@ -20,7 +21,6 @@ probabilities, ``RdBu_r`` only for departures (anomalies and differences).
 from __future__ import annotations
 
 import io
-from pathlib import Path
 
 import numpy as np
 import pandas as pd
@@ -46,6 +46,22 @@ HEIGHT_INTERVAL_GPM = 60.0
 EVENT_MARKERS = ("o", "^", "s", "D", "v", "P", "X")
 PLAIN_AXES_NOTE = "plain latitude-longitude axes (no coastlines drawn)"
 LAND_NOTE = "brown line: land-sea boundary from the archive's land-sea mask (0.5 contour)"
+#: Notes under a map: font size (points); from this width (inches) two notes stand side by
+#: side, on narrower figures one above the other.
+NOTE_FONT_SIZE = 7
+WIDE_FIGURE_INCHES = 10.0
+#: Spacing (degrees along the line) of the Earth's lines' vertices on the small maps of
+#: the grids: about a pixel there (2.3 inches at 72 dpi for 70 degrees: 0.4 degree).
+SMALL_MAP_VERTEX_STEP_DEG = 0.25
+#: How the Earth's lines are drawn: thin greys above the shading, below the contours.
+EARTH_LINE_STYLES = {
+    "coastline": {"name": "coastlines", "colors": "0.2", "linewidths": 0.8,
+                  "linestyles": "solid"},
+    "border": {"name": "borders (dashed)", "colors": "0.25", "linewidths": 0.7,
+               "linestyles": (0, (4, 2))},
+    "state": {"name": "state lines (dotted)", "colors": "0.4", "linewidths": 0.5,
+              "linestyles": (0, (1, 1.5))},
+}
 #: Resolution of full-size figures and of the small maps of the analog grid, dots per inch.
 FIGURE_DPI = 90
 THUMBNAIL_DPI = 72
@@ -129,27 +145,6 @@ def degrees_north_label(value, _position=None) -> str:
     return f"{abs(value):g}°{'S' if value < 0 else 'N'}"
 
 
-def _coastline_paths():
-    """Coastline polylines from cartopy's Natural Earth files already on disk, else None."""
-    try:
-        import cartopy
-        from cartopy.io import shapereader
-    except ImportError:
-        return None
-    for key in ("pre_existing_data_dir", "data_dir"):
-        root = cartopy.config.get(key)
-        if not root:
-            continue
-        candidates = sorted(Path(root).glob("shapefiles/natural_earth/physical/*coastline.shp"))
-        if candidates:
-            lines = []
-            for geometry in shapereader.Reader(str(candidates[0])).geometries():
-                parts = getattr(geometry, "geoms", [geometry])
-                lines.extend(np.asarray(part.coords) for part in parts)
-            return lines
-    return None
-
-
 LAND_COLOUR = "#8c510a"
 
 
@@ -185,7 +180,39 @@ def _land_outline(ax, land, offsets=((0.0, 0.0),), *, linewidth=1.2):
         ax.add_collection(collection)
 
 
-def _map_axes(ax, lat, lon, region=None, *, coastlines=None, xticks=True, yticks=True,
+def _earth_lines(ax, geography, offsets=((0.0, 0.0),), *, thin=1.0):
+    """The Earth's lines of ``geography`` (:class:`analogs.geo.MapLines`, already cut
+    to the map) shifted by each (dx, dy) of ``offsets``: one line collection per kind."""
+    if not geography:
+        return
+    from matplotlib import patheffects
+    for kind, style in EARTH_LINE_STYLES.items():
+        lines = getattr(geography, kind)
+        if thin < 1.0:
+            lines = [_thinned(line, SMALL_MAP_VERTEX_STEP_DEG) for line in lines]
+        if lines:
+            collection = LineCollection(
+                [line + offset for offset in offsets for line in lines],
+                colors=style["colors"], linewidths=style["linewidths"] * thin,
+                linestyles=[style["linestyles"]], zorder=1.8, gid=f"earth-{kind}")
+            if thin == 1.0:
+                # A light edge keeps the lines visible over dark shading (full-size maps;
+                # the small maps of the grids have none).
+                collection.set_path_effects([patheffects.withStroke(
+                    linewidth=style["linewidths"] + 0.8, foreground="#f2f2f2", alpha=0.6)])
+            ax.add_collection(collection)
+
+
+def _thinned(line, step):
+    """``line`` keeping its ends and one vertex per ``step`` degrees along it: on the
+    small maps a vertex every few km draws nothing more and costs time."""
+    along = np.r_[0.0, np.cumsum(np.hypot(*np.diff(line, axis=0).T))]
+    keep = np.r_[True, np.diff(np.floor(along / step)) > 0]
+    keep[-1] = True
+    return line[keep]
+
+
+def _map_axes(ax, lat, lon, region=None, *, geography=None, xticks=True, yticks=True,
               small=False, land=None):
     """Lat/lon axes with a latitude-true aspect, ticks labelled in degrees W/E and N/S,
     the region drawn on them; ``xticks`` / ``yticks`` False leaves the labels off (inner
@@ -211,9 +238,7 @@ def _map_axes(ax, lat, lon, region=None, *, coastlines=None, xticks=True, yticks
         ax.xaxis.set_major_formatter(FuncFormatter(degrees_east_label))
         ax.yaxis.set_major_formatter(FuncFormatter(degrees_north_label))
         ax.tick_params(labelsize=8)
-    if coastlines:
-        for line in coastlines:
-            ax.plot(line[:, 0], line[:, 1], color="0.3", linewidth=0.6)
+    _earth_lines(ax, geography, thin=0.7 if small else 1.0)
     _land_outline(ax, land)
     if region is not None:
         _draw_region(ax, region)
@@ -257,13 +282,30 @@ def _draw_region(ax, region):
                              label="region"))
 
 
-def _note_plain_axes(figure, coastlines, land=None):
-    if land is not None:
-        figure.text(0.995, 0.003, LAND_NOTE, ha="right", va="bottom", fontsize=7,
-                    color="0.35")
-    elif not coastlines:
-        figure.text(0.995, 0.003, PLAIN_AXES_NOTE, ha="right", va="bottom", fontsize=7,
-                    color="0.35")
+def earth_note(geography) -> str:
+    """What the grey lines are and where they come from (or why none is drawn)."""
+    if geography:
+        kinds = [style["name"] for kind, style in EARTH_LINE_STYLES.items()
+                 if getattr(geography, kind)]
+        return f"grey: {', '.join(kinds)} ({geography.source})"
+    return getattr(geography, "withheld", "")
+
+
+def _note_plain_axes(figure, geography, land=None):
+    """The map's notes at the bottom right: the land-sea boundary's, the Earth's lines'
+    (on its left on a wide figure, above it on a narrow one), or that the axes are
+    plain."""
+    notes = ([LAND_NOTE] if land_lines(land) else []) + [earth_note(geography)] * bool(
+        earth_note(geography))
+    if not notes:
+        notes = [PLAIN_AXES_NOTE]
+    stacked = figure.get_figwidth() < WIDE_FIGURE_INCHES
+    line_height = 1.4 * NOTE_FONT_SIZE / 72.0 / figure.get_figheight()
+    for i, note in enumerate(notes):
+        side_by_side = i and not stacked
+        figure.text(0.005 if side_by_side else 0.995, 0.003 + (i * line_height) * stacked,
+                    note, ha="left" if side_by_side else "right", va="bottom",
+                    fontsize=NOTE_FONT_SIZE, color="0.35")
 
 
 def _plane(field: xr.DataArray, owner: str) -> xr.DataArray:
@@ -341,7 +383,7 @@ def _events_on_map(ax, events, day, kinds):
 # ------------------------------------------------------------------ query maps
 
 def target_map(fields: xr.Dataset, *, region=None, when="target", source=None,
-               land=None, marks=None) -> Figure:
+               land=None, marks=None, geography=None) -> Figure:
     """500 hPa height contours over moisture shading, with the rich-moisture line of the
     field's level (850 hPa dewpoint 12 C, 2 m dewpoint 60 F, precipitable water 30 kg m-2).
 
@@ -349,7 +391,8 @@ def target_map(fields: xr.Dataset, *, region=None, when="target", source=None,
     field (``q850`` shaded in g/kg with its 850 hPa dewpoint from Bolton's formula,
     ``td2m`` or ``pwat``). ``when`` goes in the title; ``source`` says where the fields
     came from (e.g. "EOF reconstruction"). ``land``: land fraction on (lat, lon) or the
-    lines of :func:`land_lines`. ``marks``: table of trough and ridge axes and closed
+    lines of :func:`land_lines`. ``geography``: the Earth's lines cut to the map
+    (:class:`analogs.geo.MapLines`). ``marks``: table of trough and ridge axes and closed
     lows (``kind`` "trough" / "ridge" / "low", ``axis``, ``lat``, ``lon``; from
     :func:`analogs.stages.features.trough_ridge_axes` and
     :func:`analogs.stages.diagnostics.find_closed_lows`), drawn with a legend.
@@ -359,10 +402,9 @@ def target_map(fields: xr.Dataset, *, region=None, when="target", source=None,
     figure = new_figure(8.0, 6.0)
     figure.subplots_adjust(left=0.08, right=0.97, bottom=0.06, top=0.86)
     ax = figure.add_subplot()
-    coastlines = _coastline_paths()
     label, rich = _moisture_layer(figure, ax, fields)
     _height_contours(ax, fields["z500"])
-    _map_axes(ax, fields["lat"].values, fields["lon"].values, region, coastlines=coastlines,
+    _map_axes(ax, fields["lat"].values, fields["lon"].values, region, geography=geography,
               land=land)
     if marks is not None and len(marks):
         _draw_marks(ax, marks)
@@ -373,13 +415,13 @@ def target_map(fields: xr.Dataset, *, region=None, when="target", source=None,
     if source:
         title += f"\n[{source}]"
     ax.set_title(title, fontsize=10)
-    _note_plain_axes(figure, coastlines, land)
+    _note_plain_axes(figure, geography, land)
     return figure
 
 
 def analog_panel(analog_fields: xr.Dataset, analogs: pd.DataFrame, events=None, *,
                  region=None, title=None, columns=GRID_COLUMNS, land=None,
-                 marks=None) -> Figure:
+                 marks=None, geography=None) -> Figure:
     """Every analog day as a small map in a compact grid: height contours and that
     day's events by kind (distinct markers); rank, date, regime, distance and the
     table's event count (events in the outcome region) above each map.
@@ -397,6 +439,8 @@ def analog_panel(analog_fields: xr.Dataset, analogs: pd.DataFrame, events=None, 
     columns : maps per row.
     land : land fraction on (lat, lon), or the lines of :func:`land_lines`: the land-sea
         boundary of every map, drawn as one collection.
+    geography : the Earth's lines cut to the map (:class:`analogs.geo.MapLines`), on
+        every map, one collection per kind.
     marks : trough and ridge axes and closed lows as for :func:`target_map`, with a
         ``panel`` column (position of the analog in ``analogs``).
     """
@@ -433,7 +477,6 @@ def analog_panel(analog_fields: xr.Dataset, analogs: pd.DataFrame, events=None, 
     ax.set_xlim(-0.04 * span_x, columns * step_x - 0.04 * span_x)
     ax.set_ylim(-(rows - 1) * step_y - 0.02 * span_y, span_y + 0.40 * span_y)
     ax.set_aspect(1.0 / squeeze)
-    coastlines = _coastline_paths()
     z = analog_fields["z500"].transpose("analog", "lat", "lon").values
     low = HEIGHT_INTERVAL_GPM * np.floor(np.nanmin(z) / HEIGHT_INTERVAL_GPM)
     high = HEIGHT_INTERVAL_GPM * np.ceil(np.nanmax(z) / HEIGHT_INTERVAL_GPM)
@@ -452,11 +495,6 @@ def analog_panel(analog_fields: xr.Dataset, analogs: pd.DataFrame, events=None, 
         graticule += [[(left, y + dy), (left + span_x, y + dy)] for y in ys]
         if outline is not None:
             regions.append(outline + (dx, dy))
-        if coastlines:
-            clip = Rectangle((left, bottom), span_x, span_y, transform=ax.transData)
-            for line in coastlines:
-                ax.plot(line[:, 0] + dx, line[:, 1] + dy, color="0.3", linewidth=0.4,
-                        clip_path=clip)
         count = int(analog.events_total)
         ax.text(left, bottom + span_y * 1.02,
                 f"#{analog.rank} {analog.date} {analog.regime}\n"
@@ -473,6 +511,7 @@ def analog_panel(analog_fields: xr.Dataset, analogs: pd.DataFrame, events=None, 
     _grid_contours(ax, lon, lat, z, offsets, levels)
     ax.add_collection(LineCollection(graticule, colors="0.82", linewidths=0.4, zorder=0))
     ax.add_collection(LineCollection(frames, colors="0.2", linewidths=0.7, zorder=1))
+    _earth_lines(ax, geography, offsets, thin=0.6)
     _land_outline(ax, land, offsets, linewidth=0.7)
     if marks is not None and len(marks):
         panel = marks["panel"].to_numpy(dtype=int)
@@ -513,7 +552,7 @@ def analog_panel(analog_fields: xr.Dataset, analogs: pd.DataFrame, events=None, 
     if title:
         figure.suptitle(title, fontsize=9, y=1.0 - 0.08 / height)
     figure.panel_offsets = offsets  # degrees (lon, lat) each analog's map is shifted by
-    _note_plain_axes(figure, coastlines, land)
+    _note_plain_axes(figure, geography, land)
     return figure
 
 
@@ -603,7 +642,7 @@ def _kind_colour(index, n_kinds):
 
 
 def composite_difference(mean_fields: xr.Dataset, target_fields: xr.Dataset, *,
-                         region=None, title=None, land=None) -> Figure:
+                         region=None, title=None, land=None, geography=None) -> Figure:
     """Left: a mean of the analog days (height contours over moisture); right: that
     mean minus the target's 500 hPa height (shaded), target contours on top.
 
@@ -627,11 +666,10 @@ def composite_difference(mean_fields: xr.Dataset, target_fields: xr.Dataset, *,
                                 "grid; regrid the target to the analogs' grid first")
     figure = new_figure(13.0, 5.4)
     figure.subplots_adjust(left=0.05, right=0.97, bottom=0.07, top=0.82, wspace=0.15)
-    coastlines = _coastline_paths()
     left, right = figure.add_subplot(1, 2, 1), figure.add_subplot(1, 2, 2)
     _moisture_layer(figure, left, mean_fields)
     _height_contours(left, mean_height)
-    _map_axes(left, lat, lon, region, coastlines=coastlines, land=land)
+    _map_axes(left, lat, lon, region, geography=geography, land=land)
     n_days = mean_fields.attrs.get("n_days")
     days = f"{int(n_days)} analog days" if n_days else "the analog days"
     left.set_title(f"mean of {days}:\n500 hPa height and moisture", fontsize=10)
@@ -642,15 +680,16 @@ def composite_difference(mean_fields: xr.Dataset, target_fields: xr.Dataset, *,
     figure.colorbar(mesh, ax=right, label="analog mean minus target, 500 hPa height (gpm)",
                     shrink=0.85)
     _height_contours(right, target_height, colour="0.2")
-    _map_axes(right, lat, lon, region, coastlines=coastlines, land=land)
+    _map_axes(right, lat, lon, region, geography=geography, land=land)
     right.set_title("analog mean minus target\ncontours: target 500 hPa height", fontsize=10)
     if title:
         figure.suptitle(title, fontsize=11)
-    _note_plain_axes(figure, coastlines, land)
+    _note_plain_axes(figure, geography, land)
     return figure
 
 
-def probability_map(maps: xr.Dataset, *, region=None, when="target", land=None) -> Figure:
+def probability_map(maps: xr.Dataset, *, region=None, when="target", land=None,
+                    geography=None) -> Figure:
     """Left: the neighbourhood probability of the analog days (from
     :func:`analogs.stages.outcomes.outcome_maps`) in percent on a fixed 0-100 scale, cells
     of zero left blank so that every non-zero cell shows; right: the smoothed report
@@ -665,7 +704,6 @@ def probability_map(maps: xr.Dataset, *, region=None, when="target", land=None) 
                if "report_density" in maps else None)
     figure = new_figure(13.0 if density is not None else 8.0, 4.6)
     figure.subplots_adjust(left=0.05, right=0.97, bottom=0.07, top=0.88, wspace=0.15)
-    coastlines = _coastline_paths()
     ax = figure.add_subplot(1, 2 if density is not None else 1, 1)
     levels = np.arange(0.0, 101.0, 10.0)
     norm = BoundaryNorm(levels, colormaps["viridis"].N)
@@ -675,7 +713,7 @@ def probability_map(maps: xr.Dataset, *, region=None, when="target", land=None) 
     near = f"within {radius:g} km" if radius else "nearby"
     figure.colorbar(mesh, ax=ax, label=f"share of analog days with an event {near} (%)",
                     shrink=0.85)
-    _map_axes(ax, lat, lon, region, coastlines=coastlines, land=land)
+    _map_axes(ax, lat, lon, region, geography=geography, land=land)
     n = maps.attrs.get("n_analog_days")
     ax.set_title(f"Where the analog days of {when} had events nearby"
                  + (f" ({n} days)" if n else "") + "\nblank: no analog day had one",
@@ -688,11 +726,11 @@ def probability_map(maps: xr.Dataset, *, region=None, when="target", land=None) 
                                   shading="nearest")
         figure.colorbar(shaded, ax=right, shrink=0.85,
                         label="events per grid cell per analog day (smoothed)")
-        _map_axes(right, lat, lon, region, coastlines=coastlines, land=land)
+        _map_axes(right, lat, lon, region, geography=geography, land=land)
         right.set_title("Smoothed density of the analog days' events\n"
                         f"blank: below {100 * DENSITY_FLOOR:g} % of the largest value",
                         fontsize=10)
-    _note_plain_axes(figure, coastlines, land)
+    _note_plain_axes(figure, geography, land)
     return figure
 
 

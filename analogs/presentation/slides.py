@@ -30,7 +30,6 @@ from analogs.presentation.figures import (
     EVENT_MARKERS,
     HEIGHT_INTERVAL_GPM,
     THUMBNAIL_DPI,
-    _coastline_paths,
     _map_axes,
     _note_plain_axes,
     new_figure,
@@ -370,13 +369,16 @@ def _height_to_width(lat, lon) -> float:
 
 
 def regime_composite_maps(composites: xr.Dataset, density: xr.DataArray | None = None, *,
-                          region=None, season="", density_floor=0.05) -> Figure:
+                          region=None, season="", density_floor=0.05, land=None,
+                          geography=None) -> Figure:
     """One row per regime with days: mean 500 hPa height anomaly (shaded, shared
     symmetric scale) under the mean height (contours); the mean moisture field
     (shaded); the smoothed report density (shaded, cells below ``density_floor`` of
     the largest left blank). ``composites`` is
     :func:`analogs.stages.seasonal.regime_composites`; ``density`` is
     :func:`analogs.stages.seasonal.regime_report_density` (column left out when None).
+    ``land`` and ``geography``: the archive's land-sea boundary and the Earth's lines,
+    as for :func:`analogs.presentation.figures.target_map`.
     """
     if "z500_anomaly" not in composites:
         raise AnalogsInputError("regime_composite_maps needs the Dataset of "
@@ -399,7 +401,6 @@ def regime_composite_maps(composites: xr.Dataset, density: xr.DataArray | None =
     axes = figure.subplots(len(present), len(columns), squeeze=False)
     figure.subplots_adjust(left=0.06, right=0.98, top=1 - 1.0 / height, bottom=0.6 / height,
                            wspace=0.12, hspace=0.28)
-    coastlines = _coastline_paths()
     anomaly = composites["z500_anomaly"].sel(regime=present)
     limit = float(np.nanmax(np.abs(anomaly.values))) or 1.0
     if moisture:
@@ -429,7 +430,7 @@ def regime_composite_maps(composites: xr.Dataset, density: xr.DataArray | None =
             else:
                 meshes[c] = ax.pcolormesh(lon, lat, shaded[r], cmap="viridis", vmin=m_low,
                                           vmax=m_high, shading="nearest")
-            _map_axes(ax, lat, lon, region, coastlines=coastlines, small=True,
+            _map_axes(ax, lat, lon, region, geography=geography, small=True, land=land,
                       xticks=r == len(present) - 1, yticks=c == 0)
             if c == 0:
                 n = int(composites["n_days"].sel(regime=regime))
@@ -449,7 +450,7 @@ def regime_composite_maps(composites: xr.Dataset, density: xr.DataArray | None =
     method = composites.attrs.get("composite_method", "")
     figure.suptitle(_title("Mean pattern of each regime", season) + f"\n({method})",
                     fontsize=11)
-    _note_plain_axes(figure, coastlines)
+    _note_plain_axes(figure, geography, land)
     extremes = []
     for regime in present:
         a = anomaly.sel(regime=regime)
@@ -466,7 +467,8 @@ def regime_composite_maps(composites: xr.Dataset, density: xr.DataArray | None =
 
 # ------------------------------------------------------------------ 7. cyclone-centred
 
-def cyclone_centred_maps(in_place: xr.Dataset, centred: xr.Dataset, *, season="") -> Figure:
+def cyclone_centred_maps(in_place: xr.Dataset, centred: xr.Dataset, *, season="",
+                         land=None, geography=None) -> Figure:
     """Tropical days averaged two ways: in place (each day's low where it was, so lows
     at different places smear out) and centred on each day's cyclone (fields shifted
     before averaging), and the reports of those days around the centre.
@@ -474,6 +476,8 @@ def cyclone_centred_maps(in_place: xr.Dataset, centred: xr.Dataset, *, season=""
     ``in_place``: the mean anomalies of the days on (lat, lon) (``z500_anomaly``);
     ``centred``: :func:`analogs.stages.seasonal.cyclone_centred_composite` of the same
     days' anomalies (``z500``, a moisture anomaly, optionally ``report_density``).
+    ``land`` and ``geography`` go on the in-place map, as for
+    :func:`analogs.presentation.figures.target_map`.
     """
     if "z500" not in centred or "dlat" not in centred.dims:
         raise AnalogsInputError("cyclone_centred_maps needs the Dataset of "
@@ -488,7 +492,7 @@ def cyclone_centred_maps(in_place: xr.Dataset, centred: xr.Dataset, *, season=""
     lat, lon = in_place["lat"].values, in_place["lon"].values
     mesh = axes[0].pcolormesh(lon, lat, z_place, cmap="RdBu_r", vmin=-limit, vmax=limit,
                               shading="nearest")
-    _map_axes(axes[0], lat, lon, coastlines=_coastline_paths())
+    _map_axes(axes[0], lat, lon, geography=geography, land=land)
     axes[0].set_title(f"averaged in place: lowest {np.nanmin(z_place):.0f} gpm", fontsize=10)
     dlat, dlon = centred["dlat"].values, centred["dlon"].values
     squeeze = np.cos(np.radians(float(np.mean(lat))))
@@ -544,6 +548,7 @@ def cyclone_centred_maps(in_place: xr.Dataset, centred: xr.Dataset, *, season=""
     figure.suptitle(_title(f"Tropical days with a cyclone centre ({n} days)", season)
                     + "\nthe same days averaged in place and centred on each day's cyclone "
                       "(+)", fontsize=11)
+    _note_plain_axes(figure, geography, land)
     figure.alt_text = (f"Mean 500 hPa height anomaly of {n} tropical days: averaged in "
                        f"place the lowest value is {np.nanmin(z_place):.0f} gpm; centred on "
                        f"each day's cyclone it is {np.nanmin(z_centre):.0f} gpm, {low_at}." + text)
@@ -553,7 +558,8 @@ def cyclone_centred_maps(in_place: xr.Dataset, centred: xr.Dataset, *, season=""
 # ------------------------------------------------------------------ 8. gallery
 
 def example_day_gallery(fields: xr.Dataset, examples: pd.DataFrame, events=None, *,
-                        region=None, season="", source="") -> Figure:
+                        region=None, season="", source="", land=None,
+                        geography=None) -> Figure:
     """A grid of example days, one row per regime and one column per period of the
     record: 500 hPa height contours over moisture shading, and the day's reports.
 
@@ -561,7 +567,8 @@ def example_day_gallery(fields: xr.Dataset, examples: pd.DataFrame, events=None,
     moisture field, in the order of ``examples``
     (:func:`analogs.stages.seasonal.example_days_across_record`: ``regime``,
     ``period``, ``date``); ``events``: the reports of those days (``lat``, ``lon``,
-    ``kind``, ``day``); ``source`` says where the fields come from.
+    ``kind``, ``day``); ``source`` says where the fields come from; ``land`` and
+    ``geography`` as for :func:`analogs.presentation.figures.target_map`.
     """
     _need(examples, ["regime", "period", "date"], "example_day_gallery",
           "the table of example_days_across_record")
@@ -587,7 +594,6 @@ def example_day_gallery(fields: xr.Dataset, examples: pd.DataFrame, events=None,
     kinds = sorted(events["kind"].astype(str).unique()) if events is not None and len(events) else []
     kind_colour = {k: MAP_KIND_FILLS[i % len(MAP_KIND_FILLS)] for i, k in enumerate(kinds)}
     event_days = (pd.to_datetime(events["day"]).dt.normalize() if kinds else None)
-    coastlines = _coastline_paths()
     z_all = fields["z500"].values
     levels = np.arange(HEIGHT_INTERVAL_GPM * np.floor(np.nanmin(z_all) / HEIGHT_INTERVAL_GPM),
                        np.nanmax(z_all) + HEIGHT_INTERVAL_GPM, HEIGHT_INTERVAL_GPM)
@@ -613,7 +619,7 @@ def example_day_gallery(fields: xr.Dataset, examples: pd.DataFrame, events=None,
                            marker=EVENT_MARKERS[k % len(EVENT_MARKERS)],
                            color=kind_colour[kind], edgecolor="black", linewidths=0.3,
                            zorder=5)
-        _map_axes(ax, lat, lon, region, coastlines=coastlines, small=True,
+        _map_axes(ax, lat, lon, region, geography=geography, small=True, land=land,
                   xticks=r == len(regimes) - 1, yticks=c == 0)
         date = pd.Timestamp(row.date)
         ax.set_title(f"{date:%Y-%m-%d}: {n_reports} report{'s' * (n_reports != 1)}",
@@ -641,7 +647,7 @@ def example_day_gallery(fields: xr.Dataset, examples: pd.DataFrame, events=None,
     figure.suptitle(_title("The most typical day of each regime in each period", season)
                     + f"\ncontours: 500 hPa height every {HEIGHT_INTERVAL_GPM:.0f} gpm"
                     + (f" [{source}]" if source else ""), fontsize=10, x=0.4)
-    _note_plain_axes(figure, coastlines)
+    _note_plain_axes(figure, geography, land)
     figure.alt_text = ("Example days, one per regime and period, each a map of height and "
                        "moisture" + (f" ({source})" if source else "")
                        + " with the day's reports: " + "; ".join(described) + ".")

@@ -76,6 +76,35 @@ def canonical_land_mask(da: xr.DataArray, where: str) -> xr.DataArray:
     return mask["land"]
 
 
+def coast_agreement(land: xr.DataArray, coastlines) -> float | None:
+    """Share of the vertices of ``coastlines`` ((n, 2) arrays of lon, lat in the grid's
+    longitude frame) that lie within one grid cell of a land-sea change of ``land``
+    (land fraction on (lat, lon), land where >= 0.5): near 1 when the mask is the real
+    Earth's on a real grid, small when it draws another geography (a synthetic
+    continent) or is shifted. None when no vertex lies on the grid."""
+    if not coastlines:
+        return None
+    points = np.concatenate(coastlines)
+    lat, lon = land["lat"].values, land["lon"].values
+    inside = ((points[:, 1] >= lat.min()) & (points[:, 1] <= lat.max())
+              & (points[:, 0] >= lon.min()) & (points[:, 0] <= lon.max()))
+    if not inside.any():
+        return None
+    points = points[inside]
+    row = np.abs(points[:, 1, None] - lat[None, :]).argmin(axis=1)
+    column = np.abs(points[:, 0, None] - lon[None, :]).argmin(axis=1)
+    is_land = np.pad(np.asarray(land.transpose("lat", "lon").values) >= 0.5, 1, mode="edge")
+    any_land = np.zeros(is_land.shape, bool)
+    any_sea = np.zeros(is_land.shape, bool)
+    for dy in (-1, 0, 1):       # the 3 x 3 cells around each cell
+        for dx in (-1, 0, 1):
+            shifted = np.roll(np.roll(is_land, dy, axis=0), dx, axis=1)
+            any_land |= shifted
+            any_sea |= ~shifted
+    changes = (any_land & any_sea)[1:-1, 1:-1]
+    return float(changes[row, column].mean())
+
+
 def land_on_grid(mask: xr.DataArray, lat, lon, where: str) -> xr.DataArray:
     """The land fraction ``mask`` (from :func:`canonical_land_mask`) on the grid
     ``(lat, lon)``, bilinear as the archive's fields are regridded
@@ -153,5 +182,5 @@ def land_mask_in_archive(paths) -> tuple[xr.DataArray | None, dict | None]:
     return None, None
 
 
-__all__ = ["MASK_SHORT_NAMES", "MASK_STANDARD_NAMES", "canonical_land_mask", "find_land_mask",
-           "land_mask_in_archive", "land_on_grid", "read_land_mask"]
+__all__ = ["MASK_SHORT_NAMES", "MASK_STANDARD_NAMES", "canonical_land_mask", "coast_agreement",
+           "find_land_mask", "land_mask_in_archive", "land_on_grid", "read_land_mask"]

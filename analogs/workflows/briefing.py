@@ -43,6 +43,7 @@ from analogs.stages.seasonal import (
     yearly_regime_series,
 )
 from analogs.workflows import files as output
+from analogs.workflows.geography import map_lines
 from analogs.workflows.paths import check_output
 
 #: The public function named in this workflow's input errors.
@@ -214,6 +215,8 @@ def build_briefing(store, out_dir, *, months=None, files=None, n_periods=EXAMPLE
                if has_events and len(reported) else None)
     bar.update()
 
+    land = plots.land_lines(store.land)  # traced once for every map
+    geography = map_lines(lat, lon, store.land)
     trend = regime_trend(tags, months)
     slides = [
         ("regime-share-by-month", "Share of days in each regime by month",
@@ -233,7 +236,8 @@ def build_briefing(store, out_dir, *, months=None, files=None, n_periods=EXAMPLE
                            tables["outcomes_by_regime_and_month"], season=season)))
     slides.append(("regime-composites", "Mean height, moisture and reports of each regime",
                    draw.regime_composite_maps(composites, density, region=store.region,
-                                              season=season)))
+                                              season=season, land=land,
+                                              geography=geography)))
     tropical = tags[(tags["regime"].astype(str) == "tropical").to_numpy()]
     if "tc_lat" in tropical:
         tropical = tropical[tropical["tc_lat"].notna().to_numpy()]
@@ -249,7 +253,8 @@ def build_briefing(store, out_dir, *, months=None, files=None, n_periods=EXAMPLE
                 {name: f"{name}_anomaly" for name in store.fields})
             slides.append(("tropical-cyclone-centred",
                            "Tropical days centred on each day's cyclone",
-                           draw.cyclone_centred_maps(in_place, centred, season=season)))
+                           draw.cyclone_centred_maps(in_place, centred, season=season,
+                                                     land=land, geography=geography)))
     examples = tables["example_days"]
     if len(examples):
         gallery, source = _gallery_fields(store, examples["date"], archive)
@@ -258,7 +263,8 @@ def build_briefing(store, out_dir, *, months=None, files=None, n_periods=EXAMPLE
         slides.append(("example-days", "Example days across the record",
                        draw.example_day_gallery(gallery, examples, day_events,
                                                 region=store.region, season=season,
-                                                source=source)))
+                                                source=source, land=land,
+                                                geography=geography)))
     bar.update()
 
     covered_years = np.unique(store.times[store.covered].year)

@@ -1399,8 +1399,13 @@ def _short(source) -> str:
     return source.split(", as ")[0]
 
 
-def _alt_land(land) -> str:
-    return " The land-sea boundary from the archive's mask is drawn in brown." if land else ""
+def _alt_land(land, geography) -> str:
+    """The alt text's account of the geography drawn: the archive's land-sea boundary,
+    the Earth's lines (or why they are left off)."""
+    from analogs.presentation.figures import earth_note
+    note = earth_note(geography)
+    return ((" The land-sea boundary from the archive's mask is drawn in brown." if land else "")
+            + (f" {note[0].upper()}{note[1:]}." if note else ""))
 
 
 def report_figures(store, result: FindResult, *, maps=None, hindcast=None,
@@ -1424,6 +1429,7 @@ def report_figures(store, result: FindResult, *, maps=None, hindcast=None,
     order, for the browsing page.
     """
     from analogs.presentation import figures as draw
+    from analogs.workflows.geography import map_lines
     region = result.region if result.region is not None else store.region
     when = result.target.get("date") or "the forecast field"
     analogs = result.analogs
@@ -1451,15 +1457,16 @@ def report_figures(store, result: FindResult, *, maps=None, hindcast=None,
         source = days_source
         target, gathered = gathered.isel(analog=0), gathered.isel(analog=slice(1, None))
     land = draw.land_lines(store.land)  # traced once for every map
+    geography = map_lines(*store.grid, store.land)
     target_marks, analog_marks = _marks(target, gathered)
     figures = []
     if target is not None:
         figures.append((f"Target {when}: 500 hPa height and moisture ({source})",
                         _later(draw.target_map, target, region=region,
                                when=f"Target {when}", source=source, land=land,
-                               marks=target_marks),
+                               marks=target_marks, geography=geography),
                         _alt_target(target, f"target {when}", source)
-                        + _alt_marks(target_marks) + _alt_land(land)))
+                        + _alt_marks(target_marks) + _alt_land(land, geography)))
     if len(analogs):
         gathered = gathered.assign_coords(analog=analogs["rank"].to_numpy())
         shown = analogs if n_panel is None else analogs.head(n_panel)
@@ -1475,10 +1482,10 @@ def report_figures(store, result: FindResult, *, maps=None, hindcast=None,
                            for a in shown.itertuples(index=False)) + "."
                + (" Each day's trough axes (red dashed), ridge axes (blue dotted) and closed "
                   "lows (L) of the 500 hPa height are marked." if len(analog_marks) else "")
-               + _alt_land(land))
+               + _alt_land(land, geography))
         figures.append(("The closest past days and their events",
                         _later(draw.analog_panel, gathered.isel(analog=slice(0, len(shown))),
-                               shown, events, region=region, land=land,
+                               shown, events, region=region, land=land, geography=geography,
                                marks=analog_marks[analog_marks["panel"] < len(shown)],
                                title=f"Closest past days to {when}: 500 hPa height "
                                      f"({_short(days_source)})"),
@@ -1490,7 +1497,7 @@ def report_figures(store, result: FindResult, *, maps=None, hindcast=None,
             lat, lon = mean["lat"].values, mean["lon"].values
             figures.append(("Mean of the analog days and its difference from the target",
                             _later(draw.composite_difference, mean, target, region=region,
-                                   land=land,
+                                   land=land, geography=geography,
                                    title=f"Analog days and target {when} (analogs: "
                                          f"{_short(days_source)}; target: {_short(source)})"),
                             f"Two maps. Left: mean 500 hPa height and moisture of the "
@@ -1512,7 +1519,7 @@ def report_figures(store, result: FindResult, *, maps=None, hindcast=None,
                       if nonzero else "") + "; zero left blank on both.")
             figures.append(("Where the analog days had events nearby",
                             _later(draw.probability_map, maps, region=region, when=when,
-                                   land=land), alt))
+                                   land=land, geography=geography), alt))
     if hindcast is not None:
         from analogs.stages.scores import reliability_table, roc_curve_points
         p = hindcast["forecast"].to_numpy()
