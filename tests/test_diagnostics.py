@@ -826,8 +826,7 @@ def test_region_diagnostics_from_the_window_equal_the_whole_grid(monkeypatch, re
 def test_closed_lows_near_the_box_are_the_lows_of_the_whole_search():
     # _closed_lows_np(near=(box, km)) measures only the centres within km of the box:
     # the same lows, with the same measures, as the whole search filtered afterwards
-    # (the earlier computation); the moisture converted around each centre
-    # (moisture_measure) equals the mean of the dewpoint field converted whole.
+    # (the earlier computation).
     import _regime_helpers
 
     lat, lon = _regime_helpers.LAT, _regime_helpers.LON
@@ -840,7 +839,7 @@ def test_closed_lows_near_the_box_are_the_lows_of_the_whole_search():
     whole = dg._closed_lows_np(z, lat, lon, moisture=dg._dewpoint_np(q, 850.0), **params)
     near = dg._distance_to_box_km(whole["lat"], whole["lon"], box) <= km
     assert 0 < near.sum() < near.size
-    found = dg._closed_lows_np(z, lat, lon, moisture=q, near=(box, km),
-                               moisture_measure=lambda v: dg._dewpoint_np(v, 850.0), **params)
+    found = dg._closed_lows_np(z, lat, lon, moisture=dg._dewpoint_np(q, 850.0),
+                               near=(box, km), **params)
     for key in found:
         np.testing.assert_allclose(found[key], whole[key][near], rtol=1e-12, err_msg=key)

@@ -460,15 +460,13 @@ def _zonal_median(z):
 
 def _closed_lows_np(z, lat, lon, *, moisture=None, max_lat, min_depth, max_radius_km,
                     ring_km, neighbourhood_km, moisture_radius_km, poleward_rise_gpm,
-                    min_ring_valid, near=None, moisture_measure=None):
+                    min_ring_valid, near=None):
     """Compact closed lows in z (nt, nlat, nlon); returns a dict of 1-D arrays.
 
     Works in the seam-continuous longitude frame of ``lon`` (periodic round the
     globe); longitudes come back in [-180, 180). ``near`` = (box, km): only centres
     within ``km`` of the box (:func:`_distance_to_box_km`) are measured and returned
-    (each centre is measured on its own, so those kept are the same lows).
-    ``moisture_measure``, when given, converts the moisture values read around a
-    centre (say specific humidity to dewpoint) before their mean."""
+    (each centre is measured on its own, so those kept are the same lows)."""
     frame = longitude_frame(lon)
     z = frame.to_frame(np.asarray(z, dtype=float))
     if moisture is not None:
@@ -621,10 +619,9 @@ def _closed_lows_np(z, lat, lon, *, moisture=None, max_lat, min_depth, max_radiu
 
         if moisture is not None:
             near = dist <= moisture_radius_km
-            m_vals = moisture[t_idx[sel, None], rows_c[:, near], cols_c[:, near]]
-            if moisture_measure is not None:
-                m_vals = moisture_measure(m_vals)
-            m_vals = np.where(inside[:, near], m_vals, np.nan)
+            m_vals = np.where(inside[:, near],
+                              moisture[t_idx[sel, None], rows_c[:, near], cols_c[:, near]],
+                              np.nan)
             with warnings.catch_warnings():
                 warnings.simplefilter("ignore", RuntimeWarning)   # all missing: NaN
                 out["moisture"][sel] = np.nanmean(m_vals, axis=1)
@@ -1159,8 +1156,7 @@ def _moisture_block(block: xr.Dataset, kind: str | None):
 
 def _moisture_measure(values, kind: str | None):
     """Moisture values at their own level as the rules read them: a dewpoint in K
-    (from ``q850`` at 850 hPa, or ``td2m``), or precipitable water in kg m-2. Applied
-    only to the values a diagnostic reads (the conversion is per value)."""
+    (from ``q850`` at 850 hPa, or ``td2m``), or precipitable water in kg m-2."""
     return _dewpoint_np(values, 850.0) if kind == "q850" else values
 
 
@@ -1252,8 +1248,8 @@ def _block_columns(z, moisture, *, lat, lon, lat_in, lon_in, weights, band_in,
         columns[name] = np.where(np.isfinite(columns[amp]), columns[name], np.nan)
 
     # Only the lows near the box are measured: the search elsewhere is not needed.
-    lows = _closed_lows_np(z, lat, lon, moisture=moisture, near=(region, tc_near_km),
-                           moisture_measure=lambda values: _moisture_measure(values, moisture_kind),
+    lows = _closed_lows_np(z, lat, lon, moisture=_moisture_measure(moisture, moisture_kind)
+                           if moisture is not None else None, near=(region, tc_near_km),
                            **low_params)
     # The deepest closed low near the box, else the deepest low.
     order = np.lexsort((-lows["depth"], ~lows["closed"], lows["t"]))
@@ -1298,6 +1294,8 @@ def _block_columns(z, moisture, *, lat, lon, lat_in, lon_in, weights, band_in,
     return columns
 
 
+#: The diagnostics a ``block_measures`` callable of :func:`compute_diagnostics` is handed.
+_MEASURES_READ = ("tc_present", "tc_closed", "tc_lat", "tc_lon", "tc_depth")
 #: Working memory of the diagnostics of a whole archive, bytes (all threads together).
 DIAGNOSTICS_MEMORY_BYTES = 10**9
 #: Working memory per grid point and day of a block, bytes (measured: 5.4 MB a day at
@@ -1322,7 +1320,7 @@ def compute_diagnostics(ds: xr.Dataset, region, *, upstream_deg: float = 25.0,
                         closed_lows: Mapping | None = None,
                         moist_threshold: float | None = None,
                         block_days: int | None = None, n_threads: int | None = None,
-                        progress: bool = False) -> pd.DataFrame:
+                        block_measures=None, progress: bool = False) -> pd.DataFrame:
     r"""All regime diagnostics of an archive over a region, one row a day.
 
     ``region`` is (south, north, west, east) in degrees; west > east (or east past
@@ -1377,6 +1375,13 @@ def compute_diagnostics(ds: xr.Dataset, region, *, upstream_deg: float = 25.0,
     4); all maths is vectorised over the days of a block. By default a block holds as
     many days as fit :data:`DIAGNOSTICS_MEMORY_BYTES` shared by the threads (at most
     1000): 1000 days at 1 degree, about 90 at 0.25 degree.
+
+    ``block_measures``, optional: a callable ``(block, diagnostics) -> DataFrame`` of
+    more columns (one row a day), called on each block of days while its fields are in
+    memory, with the block's Dataset and its diagnostics; its columns are appended. A
+    measure that needs the fields again (the closed-low structure of
+    :func:`analogs.stages.regimes.cyclone_structure`) so reads an archive chunked in
+    time once, not twice. Its values must not depend on how the days are blocked.
     """
     if not isinstance(ds, xr.Dataset) or "z500" not in ds:
         raise AnalogsInputError(
@@ -1419,13 +1424,19 @@ def compute_diagnostics(ds: xr.Dataset, region, *, upstream_deg: float = 25.0,
 
     def one_block(start):
         block = ds.isel(time=slice(start, start + read_days))
-        if read_days > block_days:  # a whole time chunk read once, worked block by block
-            block = block.load()
+        if read_days > block_days or block_measures is not None:
+            block = block.load()  # a whole time chunk read once, worked block by block
         parts = []
         for first in range(0, block.sizes["time"], block_days):
             part = block.isel(time=slice(first, first + block_days))
             z = np.asarray(part["z500"].transpose("time", "lat", "lon").values, dtype=float)
-            parts.append(_block_columns(z, _moisture_block(part, kind), **setup))
+            columns = _block_columns(z, _moisture_block(part, kind), **setup)
+            if block_measures is not None:
+                found = pd.DataFrame({name: columns[name] for name in _MEASURES_READ},
+                                     index=pd.DatetimeIndex(part["time"].values))
+                more = block_measures(part, found)
+                columns.update({name: more[name].to_numpy() for name in more.columns})
+            parts.append(columns)
         return {name: np.concatenate([p[name] for p in parts]) for name in parts[0]}
 
     starts = range(0, times.size, read_days)
@@ -1437,7 +1448,9 @@ def compute_diagnostics(ds: xr.Dataset, region, *, upstream_deg: float = 25.0,
             from tqdm.auto import tqdm
             results = tqdm(results, total=len(starts), desc="diagnostics", unit="block")
         blocks = list(results)
-    columns = {name: np.concatenate([b[name] for b in blocks]) for name in DIAGNOSTIC_UNITS}
+    names = list(DIAGNOSTIC_UNITS) + [name for name in blocks[0] if name not in DIAGNOSTIC_UNITS
+                                      and name != "_missing_height_day"]
+    columns = {name: np.concatenate([b[name] for b in blocks]) for name in names}
     frame = pd.DataFrame(columns, index=pd.DatetimeIndex(times, name="time"))
     if kind != "pwat":
         frame = frame.drop(columns="pwat_region")
