@@ -909,14 +909,22 @@ def _store_by_chunks(array, out: np.ndarray) -> None:
             out[edges[number]:edges[number + 1]] = values
 
 
+#: Memory-mapped scratch blocks at least this large are dropped from resident memory
+#: after each pass (:func:`_release_pages`); smaller ones stay mapped.
+_RELEASE_BYTES = 2**30
+
+
 def _release_pages(array) -> None:
-    """Drop the pages of a memory-mapped ``array`` (the out-of-core build's scratch
-    copies, :class:`numpy.memmap`) from this process's resident memory; the values stay
-    in the file (and the page cache) and are read back on the next access. Without it
-    every pass over the scratch matrix left all of it resident: 40 years at 0.25
-    degree, 4.6 GB. Other arrays are left alone."""
+    """Drop the pages of a large memory-mapped ``array`` (the out-of-core build's
+    scratch copies, :class:`numpy.memmap`, of at least :data:`_RELEASE_BYTES`) from
+    this process's resident memory; the values stay in the file (and the page cache)
+    and are read back on the next access. Without it every pass over the scratch
+    matrix left all of it resident: 40 years at 0.25 degree, 4.6 GB. Smaller blocks
+    are kept: mapping a dropped page back costs a page fault per 4 kB on every pass
+    (5.1 million minor faults in the 40-year build). Other arrays are left alone."""
     mapped = getattr(array, "_mmap", None)
-    if isinstance(mapped, mmap.mmap) and hasattr(mapped, "madvise"):
+    if (isinstance(mapped, mmap.mmap) and hasattr(mapped, "madvise")
+            and len(mapped) >= _RELEASE_BYTES):
         mapped.madvise(mmap.MADV_DONTNEED)
 
 
