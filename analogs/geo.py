@@ -181,7 +181,7 @@ def zonal_derivative(field, lat, lon):
         step = np.radians(frame.step)
         d_dlam = (np.roll(values, -1, axis=-1) - np.roll(values, 1, axis=-1)) / (2.0 * step)
     else:
-        d_dlam = _axis_derivative(values, np.radians(frame.lon), -1)
+        d_dlam = _axis_derivative(values, frame.lon, -1)
     poles = pole_rows(lat)
     if not poles.any():
         return frame.from_frame(d_dlam / (EARTH_RADIUS * np.cos(np.radians(lat))[:, None]))
@@ -205,10 +205,10 @@ def meridional_derivative(field, lat, lon=None):
     values = np.asarray(field, dtype=float)
     poles = pole_rows(lat)
     if not poles.any():
-        return _axis_derivative(values, np.radians(lat), -2) / EARTH_RADIUS
+        return _axis_derivative(values, lat, -2) / EARTH_RADIUS
     frame = None if lon is None else longitude_frame(lon)
     if frame is not None and frame.periodic:
-        out = _axis_derivative(values, np.radians(lat), -2) / EARTH_RADIUS
+        out = _axis_derivative(values, lat, -2) / EARTH_RADIUS
         framed = frame.to_frame(values)
         for row, ring in pole_neighbour_rows(lat):
             out[..., row, :] = frame.from_frame(
@@ -217,7 +217,7 @@ def meridional_derivative(field, lat, lon=None):
     out = np.full(values.shape, np.nan)
     keep = np.flatnonzero(~poles)
     if keep.size >= 2:
-        out[..., keep, :] = _axis_derivative(values[..., keep, :], np.radians(lat[keep]),
+        out[..., keep, :] = _axis_derivative(values[..., keep, :], lat[keep],
                                              -2) / EARTH_RADIUS
     return out
 
@@ -269,14 +269,18 @@ def pole_neighbour_rows(lat) -> list[tuple[int, int]]:
     return pairs
 
 
-def _axis_derivative(field, coordinate, axis):
-    """``numpy.gradient`` along one axis; with the scalar spacing of an evenly spaced
-    axis (several times faster than numpy's uneven-spacing formula, same values)."""
+def _axis_derivative(field, degrees, axis):
+    """``numpy.gradient`` along one axis of coordinate ``degrees``, per radian; with the
+    scalar spacing of an evenly spaced axis (several times faster than numpy's
+    uneven-spacing formula, same values). That spacing is the first step in degrees
+    converted to radians: on a grid whose degrees and steps are exact (0.25, 1 degree)
+    it is the same for any run of the axis, so a field cut to a window has, inside,
+    the derivatives of the whole grid to the last bit."""
     field = np.asarray(field, dtype=float)
-    step = np.diff(coordinate)
+    step = np.diff(degrees)
     if step.size and np.allclose(step, step[0], rtol=1e-9, atol=0.0):
-        return np.gradient(field, float(step[0]), axis=axis)
-    return np.gradient(field, coordinate, axis=axis)
+        return np.gradient(field, float(np.radians(step[0])), axis=axis)
+    return np.gradient(field, np.radians(degrees), axis=axis)
 
 
 def initial_bearing_deg(lat1, lon1, lat2, lon2):

@@ -793,3 +793,53 @@ def test_moisture_measures_use_the_threshold_of_their_level():
     custom = dg.compute_diagnostics(_moisture_case("q850"), region, moist_threshold=8.0)
     assert custom["moist_line_lat"].iloc[0] == pytest.approx(32.0)
     assert custom.attrs["moisture"]["threshold"] == 8.0
+
+
+def _whole_grid_window(lat_in, lon_in, lon):
+    return slice(None), np.arange(lon.size)
+
+
+@pytest.mark.parametrize("shift", [0.0, 280.0])
+@pytest.mark.parametrize("region", [REGION, (20.0, 30.0, -140.0, -120.0)])
+def test_region_diagnostics_from_the_window_equal_the_whole_grid(monkeypatch, region, shift):
+    # The flow and vorticity diagnostics are taken on the window of grid lengths around
+    # the region that their centred differences reach (_stencil_window): the same
+    # numbers, to the last bit, as on the whole grid (the earlier computation, itself
+    # checked against MetPy above). Also for a region at the domain's corner and for
+    # grid and box moved across the date line (the grid stored in two pieces).
+    z = _height_field(seed=3, n_time=6)
+    q = xr.DataArray(0.004 + 0.008 * np.random.default_rng(3).random(z.shape), dims=z.dims,
+                     coords=z.coords, attrs={"units": "kg kg-1"})
+    ds = xr.Dataset({"z500": z, "q850": q})
+    if shift:
+        ds = _shifted(ds, shift)
+        region = (region[0], region[1], region[2] + shift, region[3] + shift)
+    windowed = dg.compute_diagnostics(ds, region)
+    _, columns = dg._stencil_window(*dg.region_mask(ds["lat"].values, ds["lon"].values,
+                                                       region), ds["lon"].values)
+    assert columns.size < ds.sizes["lon"]
+    monkeypatch.setattr(dg, "_stencil_window", _whole_grid_window)
+    pd.testing.assert_frame_equal(windowed, dg.compute_diagnostics(ds, region),
+                                  check_exact=True)
+
+
+def test_closed_lows_near_the_box_are_the_lows_of_the_whole_search():
+    # _closed_lows_np(near=(box, km)) measures only the centres within km of the box:
+    # the same lows, with the same measures, as the whole search filtered afterwards
+    # (the earlier computation).
+    import _regime_helpers
+
+    lat, lon = _regime_helpers.LAT, _regime_helpers.LON
+    centres = [(18.0, -100.0), (25.0, -75.0), (33.0, -95.0), (22.0, -120.0)]
+    z = np.stack([zonal_height() + sum(vortex(la, lo, 60.0, 250.0) for la, lo in centres[day:])
+                  for day in range(2)])
+    q = 0.004 + 0.01 * np.random.default_rng(5).random(z.shape)
+    params = dict(dg.CLOSED_LOW_DEFAULTS)
+    box, km = (28.0, 36.0, -100.0, -90.0), 600.0
+    whole = dg._closed_lows_np(z, lat, lon, moisture=dg._dewpoint_np(q, 850.0), **params)
+    near = dg._distance_to_box_km(whole["lat"], whole["lon"], box) <= km
+    assert 0 < near.sum() < near.size
+    found = dg._closed_lows_np(z, lat, lon, moisture=dg._dewpoint_np(q, 850.0),
+                               near=(box, km), **params)
+    for key in found:
+        np.testing.assert_allclose(found[key], whole[key][near], rtol=1e-12, err_msg=key)

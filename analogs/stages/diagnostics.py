@@ -460,11 +460,13 @@ def _zonal_median(z):
 
 def _closed_lows_np(z, lat, lon, *, moisture=None, max_lat, min_depth, max_radius_km,
                     ring_km, neighbourhood_km, moisture_radius_km, poleward_rise_gpm,
-                    min_ring_valid):
+                    min_ring_valid, near=None):
     """Compact closed lows in z (nt, nlat, nlon); returns a dict of 1-D arrays.
 
     Works in the seam-continuous longitude frame of ``lon`` (periodic round the
-    globe); longitudes come back in [-180, 180)."""
+    globe); longitudes come back in [-180, 180). ``near`` = (box, km): only centres
+    within ``km`` of the box (:func:`_distance_to_box_km`) are measured and returned
+    (each centre is measured on its own, so those kept are the same lows)."""
     frame = longitude_frame(lon)
     z = frame.to_frame(np.asarray(z, dtype=float))
     if moisture is not None:
@@ -526,6 +528,10 @@ def _closed_lows_np(z, lat, lon, *, moisture=None, max_lat, min_depth, max_radiu
                                               & (screen >= 0.5 * min_depth))
     candidate &= (np.abs(lat) <= max_lat)[None, :, None]
     t_idx, i_idx, j_idx = np.nonzero(candidate)
+    if near is not None:
+        box, km = near
+        kept = _distance_to_box_km(lat[i_idx], wrap_longitude(lon[j_idx]), box) <= km
+        t_idx, i_idx, j_idx = t_idx[kept], i_idx[kept], j_idx[kept]
 
     reach_km = max(ring_outer, moisture_radius_km)
     bin_km = _KM_PER_DEG * dlat
@@ -1141,16 +1147,21 @@ def moist_area_fraction(dewpoint: xr.DataArray, region,
 
 
 def _moisture_block(block: xr.Dataset, kind: str | None):
-    """The moisture of one block of days at its own level: a dewpoint in K (from
-    ``q850`` at 850 hPa, or ``td2m``), or precipitable water in kg m-2; None without."""
+    """The moisture field of one block of days as stored (float64); None without.
+    :func:`_moisture_measure` turns values of it into the measure the rules read."""
     if kind is None:
         return None
-    values = np.asarray(block[kind].transpose("time", "lat", "lon").values, dtype=float)
+    return np.asarray(block[kind].transpose("time", "lat", "lon").values, dtype=float)
+
+
+def _moisture_measure(values, kind: str | None):
+    """Moisture values at their own level as the rules read them: a dewpoint in K
+    (from ``q850`` at 850 hPa, or ``td2m``), or precipitable water in kg m-2."""
     return _dewpoint_np(values, 850.0) if kind == "q850" else values
 
 
 def _moisture_threshold(kind: str | None, override: float | None) -> float:
-    """Rich-moisture threshold of a field in the units of :func:`_moisture_block`."""
+    """Rich-moisture threshold of a field in the units of :func:`_moisture_measure`."""
     if kind is None:
         return np.nan
     value = RICH_MOISTURE[kind].threshold if override is None else float(override)
@@ -1167,32 +1178,60 @@ def _distance_to_box_km(lat, lon, region):
     return great_circle_km(lat, near, np.clip(lat, south, north), np.clip(near, west, east))
 
 
+#: Grid lengths around the region that its flow and vorticity diagnostics depend on:
+#: the vorticity advection is a derivative of a derivative of the geostrophic wind,
+#: itself a derivative of the height (three centred differences).
+_STENCIL_REACH = 3
+
+
+def _stencil_window(lat_in, lon_in, lon):
+    """(rows, columns) of the grid within :data:`_STENCIL_REACH` grid lengths of the
+    region (``lat_in``, ``lon_in``; columns counted along the circle, in grid order;
+    every column of a grid that goes round the globe): the flow and vorticity
+    diagnostics of the region, computed on that window, are those of the whole grid
+    (the same differences of the same values: :func:`analogs.geo._axis_derivative`)."""
+    rows = np.flatnonzero(lat_in)
+    rows = slice(max(rows[0] - _STENCIL_REACH, 0), rows[-1] + _STENCIL_REACH + 1)
+    frame = longitude_frame(lon)
+    if frame.periodic:
+        return rows, np.arange(lon.size)
+    inside = np.flatnonzero(lon_in[frame.order])      # the region's places in the frame
+    first = max(inside[0] - _STENCIL_REACH, 0)
+    return rows, np.sort(frame.order[first:inside[-1] + _STENCIL_REACH + 1])
+
+
 def _block_columns(z, moisture, *, lat, lon, lat_in, lon_in, weights, band_in,
                    band_weights, region, ridge_cols, trough_cols, tc_near_km,
-                   moisture_kind, moist_threshold, low_params) -> dict[str, np.ndarray]:
+                   moisture_kind, moist_threshold, low_params,
+                   window) -> dict[str, np.ndarray]:
     """Every column of :func:`compute_diagnostics` for one block of days."""
     nt = z.shape[0]
-    sub = (Ellipsis,) + np.ix_(lat_in, lon_in)
     columns = {}
-    dz_dx, dz_dy = spherical_gradient(z, lat, lon)
-    u, v = _geostrophic_np(z, lat, lon, gradient=(dz_dx, dz_dy))
-    zeta = _vorticity_np(u, v, lat, lon)
-    vort_adv = _advection_np(zeta, u, v, lat, lon)
-    u_mean = _weighted_mean_np(u[sub], weights)
-    v_mean = _weighted_mean_np(v[sub], weights)
+    # The region's flow and vorticity from the window around it (_stencil_window).
+    rows, cols = window
+    z_near, lat_near, lon_near = z[:, rows][..., cols], lat[rows], lon[cols]
+    near = (Ellipsis,) + np.ix_(lat_in[rows], lon_in[cols])
+    dz_dx, dz_dy = spherical_gradient(z_near, lat_near, lon_near)
+    u, v = _geostrophic_np(z_near, lat_near, lon_near, gradient=(dz_dx, dz_dy))
+    zeta = _vorticity_np(u, v, lat_near, lon_near)
+    vort_adv = _advection_np(zeta, u, v, lat_near, lon_near)
+    u_mean = _weighted_mean_np(u[near], weights)
+    v_mean = _weighted_mean_np(v[near], weights)
     columns["flow_u_ms"] = u_mean
     columns["flow_v_ms"] = v_mean
     columns["flow_direction_deg"] = _direction_np(u_mean, v_mean)
     columns["flow_speed_ms"] = np.hypot(u_mean, v_mean)
-    columns["height_gradient"] = _weighted_mean_np(np.hypot(dz_dx, dz_dy)[sub], weights) * 1.0e6
-    columns["vorticity"] = _weighted_mean_np(zeta[sub], weights)
-    columns["vorticity_advection"] = _weighted_mean_np(vort_adv[sub], weights)
-    columns["cyclonic_advection"] = _weighted_mean_np(np.maximum(vort_adv[sub], 0.0), weights)
+    columns["height_gradient"] = _weighted_mean_np(np.hypot(dz_dx, dz_dy)[near], weights) * 1.0e6
+    columns["vorticity"] = _weighted_mean_np(zeta[near], weights)
+    columns["vorticity_advection"] = _weighted_mean_np(vort_adv[near], weights)
+    columns["cyclonic_advection"] = _weighted_mean_np(np.maximum(vort_adv[near], 0.0), weights)
 
+    # The wave profile needs the band's rows only (each row's own zonal mean).
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)   # an all-missing latitude row
-        wave = z - np.nanmean(z, axis=-1, keepdims=True)
-    band = np.where(np.isfinite(wave[:, band_in, :]), wave[:, band_in, :], np.nan)
+        band = z[:, band_in, :]
+        band = band - np.nanmean(band, axis=-1, keepdims=True)
+    band = np.where(np.isfinite(band), band, np.nan)
     band_w = np.where(np.isfinite(band), band_weights[None, :, None], 0.0)
     with np.errstate(invalid="ignore", divide="ignore"):
         profile = np.nansum(band * band_w, axis=1) / band_w.sum(axis=1)
@@ -1208,17 +1247,19 @@ def _block_columns(z, moisture, *, lat, lon, lat_in, lon_in, weights, band_in,
     for name, amp in (("ridge_lon", "ridge_amplitude"), ("trough_lon", "trough_amplitude")):
         columns[name] = np.where(np.isfinite(columns[amp]), columns[name], np.nan)
 
-    lows = _closed_lows_np(z, lat, lon, moisture=moisture, **low_params)
-    near = _distance_to_box_km(lows["lat"], lows["lon"], region) <= tc_near_km
+    # Only the lows near the box are measured: the search elsewhere is not needed.
+    lows = _closed_lows_np(z, lat, lon, moisture=_moisture_measure(moisture, moisture_kind)
+                           if moisture is not None else None, near=(region, tc_near_km),
+                           **low_params)
     # The deepest closed low near the box, else the deepest low.
-    order = np.lexsort((-lows["depth"][near], ~lows["closed"][near], lows["t"][near]))
-    t_near = lows["t"][near][order]
+    order = np.lexsort((-lows["depth"], ~lows["closed"], lows["t"]))
+    t_near = lows["t"][order]
     first = np.unique(t_near, return_index=True)[1]
     days = t_near[first]
     for name, key in (("tc_lat", "lat"), ("tc_lon", "lon"), ("tc_depth", "depth"),
                       ("tc_radius_km", "radius"), ("tc_dewpoint_c", "moisture")):
         values = np.full(nt, np.nan)
-        values[days] = lows[key][near][order][first]
+        values[days] = lows[key][order][first]
         columns[name] = values
     if moisture_kind in ("q850", "td2m"):
         columns["tc_dewpoint_c"] = columns["tc_dewpoint_c"] - ZERO_CELSIUS_K
@@ -1226,7 +1267,7 @@ def _block_columns(z, moisture, *, lat, lon, lat_in, lon_in, weights, band_in,
         columns["tc_dewpoint_c"] = np.full(nt, np.nan)
     columns["tc_present"] = np.isin(np.arange(nt), days)
     closed = np.zeros(nt, dtype=bool)
-    closed[days] = lows["closed"][near][order][first]
+    closed[days] = lows["closed"][order][first]
     columns["tc_closed"] = closed
 
     nan = np.full(nt, np.nan)
@@ -1234,14 +1275,17 @@ def _block_columns(z, moisture, *, lat, lon, lat_in, lon_in, weights, band_in,
         columns[name] = nan
     columns["moisture_available"] = np.zeros(nt, dtype=bool)
     if moisture is not None:
-        region_mean = _weighted_mean_np(moisture[sub], weights)
+        # The region's columns, every latitude (the moist line is searched along them).
+        measure = _moisture_measure(moisture[..., lon_in], moisture_kind)
+        part = measure[:, lat_in]
+        region_mean = _weighted_mean_np(part, weights)
         columns["moisture_available"] = np.isfinite(region_mean)
         if moisture_kind == "pwat":
             columns["pwat_region"] = region_mean
         else:
             columns["dewpoint_region_c"] = region_mean - ZERO_CELSIUS_K
-        columns["moist_line_lat"] = _moist_line_np(moisture, lat, moist_threshold, lon_in)
-        part = moisture[sub]
+        columns["moist_line_lat"] = _moist_line_np(measure, lat, moist_threshold,
+                                                   np.ones(measure.shape[-1], dtype=bool))
         with np.errstate(invalid="ignore"):
             moist = np.where(np.isfinite(part), (part >= moist_threshold).astype(float),
                              np.nan)
@@ -1250,6 +1294,8 @@ def _block_columns(z, moisture, *, lat, lon, lat_in, lon_in, weights, band_in,
     return columns
 
 
+#: The diagnostics a ``block_measures`` callable of :func:`compute_diagnostics` is handed.
+_MEASURES_READ = ("tc_present", "tc_closed", "tc_lat", "tc_lon", "tc_depth")
 #: Working memory of the diagnostics of a whole archive, bytes (all threads together).
 DIAGNOSTICS_MEMORY_BYTES = 10**9
 #: Working memory per grid point and day of a block, bytes (measured: 5.4 MB a day at
@@ -1274,7 +1320,7 @@ def compute_diagnostics(ds: xr.Dataset, region, *, upstream_deg: float = 25.0,
                         closed_lows: Mapping | None = None,
                         moist_threshold: float | None = None,
                         block_days: int | None = None, n_threads: int | None = None,
-                        progress: bool = False) -> pd.DataFrame:
+                        block_measures=None, progress: bool = False) -> pd.DataFrame:
     r"""All regime diagnostics of an archive over a region, one row a day.
 
     ``region`` is (south, north, west, east) in degrees; west > east (or east past
@@ -1329,6 +1375,13 @@ def compute_diagnostics(ds: xr.Dataset, region, *, upstream_deg: float = 25.0,
     4); all maths is vectorised over the days of a block. By default a block holds as
     many days as fit :data:`DIAGNOSTICS_MEMORY_BYTES` shared by the threads (at most
     1000): 1000 days at 1 degree, about 90 at 0.25 degree.
+
+    ``block_measures``, optional: a callable ``(block, diagnostics) -> DataFrame`` of
+    more columns (one row a day), called on each block of days while its fields are in
+    memory, with the block's Dataset and its diagnostics; its columns are appended. A
+    measure that needs the fields again (the closed-low structure of
+    :func:`analogs.stages.regimes.cyclone_structure`) so reads an archive chunked in
+    time once, not twice. Its values must not depend on how the days are blocked.
     """
     if not isinstance(ds, xr.Dataset) or "z500" not in ds:
         raise AnalogsInputError(
@@ -1360,7 +1413,8 @@ def compute_diagnostics(ds: xr.Dataset, region, *, upstream_deg: float = 25.0,
              "band_weights": np.cos(np.radians(lat[band_in])), "region": bounds,
              "ridge_cols": ridge_cols, "trough_cols": trough_cols,
              "tc_near_km": tc_near_km, "moisture_kind": kind,
-             "moist_threshold": threshold, "low_params": low_params}
+             "moist_threshold": threshold, "low_params": low_params,
+             "window": _stencil_window(lat_in, lon_in, lon)}
 
     threads = n_threads or min(os.cpu_count() or 1, 4)
     if block_days is None:
@@ -1370,13 +1424,19 @@ def compute_diagnostics(ds: xr.Dataset, region, *, upstream_deg: float = 25.0,
 
     def one_block(start):
         block = ds.isel(time=slice(start, start + read_days))
-        if read_days > block_days:  # a whole time chunk read once, worked block by block
-            block = block.load()
+        if read_days > block_days or block_measures is not None:
+            block = block.load()  # a whole time chunk read once, worked block by block
         parts = []
         for first in range(0, block.sizes["time"], block_days):
             part = block.isel(time=slice(first, first + block_days))
             z = np.asarray(part["z500"].transpose("time", "lat", "lon").values, dtype=float)
-            parts.append(_block_columns(z, _moisture_block(part, kind), **setup))
+            columns = _block_columns(z, _moisture_block(part, kind), **setup)
+            if block_measures is not None:
+                found = pd.DataFrame({name: columns[name] for name in _MEASURES_READ},
+                                     index=pd.DatetimeIndex(part["time"].values))
+                more = block_measures(part, found)
+                columns.update({name: more[name].to_numpy() for name in more.columns})
+            parts.append(columns)
         return {name: np.concatenate([p[name] for p in parts]) for name in parts[0]}
 
     starts = range(0, times.size, read_days)
@@ -1388,7 +1448,9 @@ def compute_diagnostics(ds: xr.Dataset, region, *, upstream_deg: float = 25.0,
             from tqdm.auto import tqdm
             results = tqdm(results, total=len(starts), desc="diagnostics", unit="block")
         blocks = list(results)
-    columns = {name: np.concatenate([b[name] for b in blocks]) for name in DIAGNOSTIC_UNITS}
+    names = list(DIAGNOSTIC_UNITS) + [name for name in blocks[0] if name not in DIAGNOSTIC_UNITS
+                                      and name != "_missing_height_day"]
+    columns = {name: np.concatenate([b[name] for b in blocks]) for name in names}
     frame = pd.DataFrame(columns, index=pd.DatetimeIndex(times, name="time"))
     if kind != "pwat":
         frame = frame.drop(columns="pwat_region")

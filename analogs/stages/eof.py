@@ -49,6 +49,7 @@ from __future__ import annotations
 
 import datetime as _dt
 import json
+import mmap
 import numbers
 import os
 
@@ -253,6 +254,7 @@ class MultivariateEOF:
                     part *= factor
                 else:
                     np.multiply(part.astype(dtype, copy=False) - mean, factor, out=block[rows])
+            _release_pages(block)
             blocks.append(block)
         return blocks
 
@@ -311,6 +313,7 @@ class MultivariateEOF:
                 raw = copies[field]
             origins[field] = _computed(raw[0]).astype(np.float64)
             moments[field] = _computed(_column_moments(raw, origins[field]))
+            _release_pages(raw)
         self._valid = {f: moments[f][0] == 0 for f in self.fields_}
         shifted_means = {f: moments[f][1] / self.n_time_ for f in self.fields_}
         squares = {f: moments[f][2] for f in self.fields_}
@@ -826,13 +829,15 @@ def _randomized_svd(matrix, k: int, *, n_oversamples: int, n_power_iter: int, se
 
         def times_matrix(right):
             right = right.astype(dtype)
-            return sum(block @ right[lo:hi] for block, lo, hi in zip(matrix, edges[:-1], edges[1:]))
+            return sum(_released(block, block @ right[lo:hi])
+                       for block, lo, hi in zip(matrix, edges[:-1], edges[1:]))
 
         def matrix_transposed_times(left):
             left = left.astype(dtype)
-            return np.concatenate([block.T @ left for block in matrix])
+            return np.concatenate([_released(block, block.T @ left) for block in matrix])
 
-        sample, row_energy = times_matrix(omega), sum(_row_energy(block) for block in matrix)
+        sample = times_matrix(omega)
+        row_energy = sum(_released(block, _row_energy(block)) for block in matrix)
     elif _is_dask(matrix):
         import dask
         import dask.array as da
@@ -902,6 +907,32 @@ def _store_by_chunks(array, out: np.ndarray) -> None:
         numbers = range(first, min(first + at_once, len(array.chunks[0])))
         for number, values in zip(numbers, dask.compute(*[array.blocks[i] for i in numbers])):
             out[edges[number]:edges[number + 1]] = values
+
+
+#: Memory-mapped scratch blocks at least this large are dropped from resident memory
+#: after each pass (:func:`_release_pages`); smaller ones stay mapped.
+_RELEASE_BYTES = 2**30
+
+
+def _release_pages(array) -> None:
+    """Drop the pages of a large memory-mapped ``array`` (the out-of-core build's
+    scratch copies, :class:`numpy.memmap`, of at least :data:`_RELEASE_BYTES`) from
+    this process's resident memory; the values stay in the file (and the page cache)
+    and are read back on the next access. Without it every pass over the scratch
+    matrix left all of it resident: 40 years at 0.25 degree, 4.6 GB. Smaller blocks
+    are kept: mapping a dropped page back costs a page fault per 4 kB on every pass
+    (5.1 million minor faults in the 40-year build). Other arrays are left alone."""
+    mapped = getattr(array, "_mmap", None)
+    if (isinstance(mapped, mmap.mmap) and hasattr(mapped, "madvise")
+            and len(mapped) >= _RELEASE_BYTES):
+        mapped.madvise(mmap.MADV_DONTNEED)
+
+
+def _released(block, result):
+    """``result`` (a product or sum over ``block`` just taken), after dropping the
+    block's pages (:func:`_release_pages`)."""
+    _release_pages(block)
+    return result
 
 
 def _row_energy(matrix: np.ndarray) -> np.ndarray:

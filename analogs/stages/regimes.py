@@ -1040,12 +1040,11 @@ def tag_days(ds: xr.Dataset, region=None, *, rules: RegimeRules | None = None,
                 "tag_days needs a Dataset with lat and lon coordinates to place its default "
                 "diagnostic region; give region=(south, north, west, east) otherwise")
         region = default_diagnostic_box(ds["lat"].values, ds["lon"].values)
-    diagnostics = compute_diagnostics(ds, region, progress=progress, **diagnostic_options)
-    structure = cyclone_structure(ds, diagnostics)
-    for name in structure.columns:
-        diagnostics[name] = structure[name].to_numpy()
-    diagnostics.attrs["units"] = {**diagnostics.attrs.get("units", {}),
-                                  **{k: STRUCTURE_UNITS[k] for k in structure.columns}}
+    # The closed-low structure is measured block by block as the diagnostics read the
+    # fields (one read of an archive chunked in time; its values are per day).
+    diagnostics = compute_diagnostics(ds, region, progress=progress,
+                                      block_measures=cyclone_structure, **diagnostic_options)
+    diagnostics.attrs["units"] = {**diagnostics.attrs.get("units", {}), **STRUCTURE_UNITS}
     diagnostics.attrs["region_default"] = bool(default)
     diagnostics.attrs["region_description"] = describe_box(
         diagnostics.attrs.get("region", region), default=default)
