@@ -307,8 +307,13 @@ def test_grouped_ranking_equals_ranking_each_group_alone():
     coarse step so that many distances tie exactly: the same rows in the same order and
     the same distances (the design of the test: two paths of the one selection rule;
     the greedy de-clustering is common practice, no source)."""
-    from analogs.stages.selection import (calendar_groups, day_of_year, held_out_mask,
-                                          rank_groups, rank_many)
+    from analogs.stages.selection import (
+        calendar_groups,
+        day_of_year,
+        held_out_mask,
+        rank_groups,
+        rank_many,
+    )
 
     pcs = np.round(synthetic_pcs_for_ties(), 0)
     index = AnalogIndex(kind="flat").fit(pcs)

@@ -54,16 +54,17 @@ _CALENDAR_CACHE: dict[int, tuple] = {}
 _CALENDAR_CACHE_SIZE = 8
 
 
-def _calendar(times) -> tuple[np.ndarray, np.ndarray]:
-    """(day of year, whole days since 1970-01-01) of each time."""
+def _calendar(times) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """(day of year, whole days since 1970-01-01, calendar year) of each time."""
     if isinstance(times, pd.DatetimeIndex):
         hit = _CALENDAR_CACHE.get(id(times))
         if hit is not None and hit[0]() is times:
-            return hit[1], hit[2]
+            return hit[1:]
     stamps = _as_datetime64(times)
     days = stamps.astype("datetime64[D]")
-    arrays = ((days - stamps.astype("datetime64[Y]")).astype(np.int64) + 1,
-              days.astype(np.int64))
+    years = stamps.astype("datetime64[Y]")
+    arrays = ((days - years).astype(np.int64) + 1, days.astype(np.int64),
+              years.astype(np.int64) + 1970)
     if isinstance(times, pd.DatetimeIndex):
         if len(_CALENDAR_CACHE) >= _CALENDAR_CACHE_SIZE:
             _CALENDAR_CACHE.pop(next(iter(_CALENDAR_CACHE)))
@@ -121,7 +122,7 @@ def held_out_mask(times, target_rows, exclude_days=DEFAULT_EXCLUDE, *, columns=N
     target_rows = np.asarray(target_rows, dtype=np.int64)
     times = _as_index(times)
     looked_at = slice(None) if columns is None else np.asarray(columns, dtype=np.int64)
-    years = times.year.to_numpy()
+    years = _calendar(times)[2]  # cached per index: the hindcast asks once per batch
     allowed = years[looked_at][None, :] != years[target_rows][:, None]
     if exclude_days is not None:
         days = day_numbers(times)
