@@ -298,3 +298,56 @@ def test_vectorised_declustering_equals_the_greedy_rule():
             expected = positions[decluster_days(days[j][positions], separation, limit)]
             got = kept[j][kept[j] >= 0]
             np.testing.assert_array_equal(got, expected)
+
+
+def test_grouped_ranking_equals_ranking_each_group_alone():
+    """rank_groups (the event-weighted hindcast's batched path: one search per group of
+    targets, one vectorised de-clustering of every list) against rank_many group by group
+    and against find_analogs target by target (the live query), on PCs rounded to a
+    coarse step so that many distances tie exactly: the same rows in the same order and
+    the same distances (the design of the test: two paths of the one selection rule;
+    the greedy de-clustering is common practice, no source)."""
+    from analogs.stages.selection import (
+        calendar_groups,
+        day_of_year,
+        held_out_mask,
+        rank_groups,
+        rank_many,
+    )
+
+    pcs = np.round(synthetic_pcs_for_ties(), 0)
+    index = AnalogIndex(kind="flat").fit(pcs)
+    targets = np.flatnonzero(TIMES.year == 1994)[::3]
+    groups, expected = [], []
+    for group in calendar_groups(day_of_year(TIMES[targets]), pcs.shape[1], len(TIMES)):
+        rows = targets[group]
+        own = np.zeros((rows.size, len(TIMES)), dtype=bool)
+        for position, row in enumerate(rows):
+            own[position, candidate_ids(TIMES, TIMES[row], window=30, exclude=None)] = True
+        season = np.flatnonzero(own.any(axis=0))
+        restrict = own & held_out_mask(TIMES, rows, 10, columns=season)
+        groups.append((pcs[rows], season, restrict))
+        expected.append(rank_many(index, TIMES, pcs[rows], season, top=15, separation=2,
+                                  restrict=restrict))
+        for row in rows[:2]:
+            live = find_analogs(index, TIMES, pcs[row], target_time=TIMES[row], top=15,
+                                window=30, exclude=10, separation=2,
+                                restrict=TIMES.year != TIMES[row].year)
+            rows_found, distances = expected[-1][list(rows).index(row)]
+            np.testing.assert_array_equal(rows_found, live["row"].to_numpy())
+            np.testing.assert_array_equal(distances, live["distance"].to_numpy())
+    assert len(groups) > 5
+    for got, want in zip(rank_groups(index, TIMES, groups, top=15, separation=2), expected):
+        assert len(got) == len(want)
+        for (rows_got, distances_got), (rows_want, distances_want) in zip(got, want):
+            np.testing.assert_array_equal(rows_got, rows_want)
+            np.testing.assert_array_equal(distances_got, distances_want)
+
+
+def synthetic_pcs_for_ties():
+    """PCs of every day in TIMES with persistence (integers after rounding: exact ties)."""
+    rng = np.random.default_rng(21)
+    pcs = np.zeros((len(TIMES), 4))
+    for t in range(1, len(TIMES)):
+        pcs[t] = 0.7 * pcs[t - 1] + rng.normal(size=4) * 2
+    return pcs

@@ -85,6 +85,38 @@ def test_hindcast_weights_never_see_the_held_out_year():
     assert not np.array_equal(plain["forecast"], before["forecast"])
 
 
+@pytest.mark.parametrize("weights", ["equal", "inverse_distance"])
+def test_weighted_hindcast_equals_the_live_query_target_by_target(weights):
+    """The event-weighted hindcast ranks a year's targets in batches (the union of
+    nearby calendar days' season windows searched once, every list de-clustered in one
+    vectorised pass): its forecasts equal those made target by target with the live
+    query's find_analogs in the fold's mapped space (its own year and episode left out
+    by restrict and exclude), the forecast being the (weighted) share of those analogs
+    with the event (the design of the test: two paths of the one selection rule). One
+    year repeats another's PCs for a season, so distances tie exactly."""
+    from analogs.stages.index import AnalogIndex
+    from analogs.stages.outcomes import analog_weights
+    from analogs.stages.selection import find_analogs
+
+    pcs, times, observed, _ = _synthetic(n_years=3, n_modes=5, seed=4)
+    years = times.year.to_numpy()
+    pcs[(years == 2003) & (times.month < 7)] = pcs[(years == 2002) & (times.month < 7)]
+    hindcast = leave_one_year_out(pcs, times, observed, metric="event_weighted", top=20,
+                                  weights=weights)
+    by_hand = []
+    for year in np.unique(years):
+        train = years != year
+        mapped = pcs @ fit_predictor_weights(pcs[train], times[train], observed[train])
+        index = AnalogIndex(kind="flat").fit(mapped)
+        for row in np.flatnonzero(~train):
+            live = find_analogs(index, times, mapped[row], target_time=times[row], top=20,
+                                exclude=10, restrict=train)
+            chosen = observed[live["row"].to_numpy()]
+            by_hand.append(chosen.mean() if weights == "equal" else min(1.0, float(
+                analog_weights(live["distance"].to_numpy(), scheme=weights) @ chosen)))
+    np.testing.assert_array_equal(hindcast["forecast"].to_numpy(), np.array(by_hand))
+
+
 @pytest.fixture
 def store_copy(demo_store, tmp_path):
     """A copy of the session's store without what other tests kept in its manifest (the

@@ -28,8 +28,9 @@ from analogs.stages.outcomes import analog_weights
 from analogs.stages.scores import (bootstrap_interval, brier_score, brier_skill_score, roc_auc,
                                    roc_auc_within, verification_summary)
 from analogs.stages.selection import (DEFAULT_EXCLUDE, DEFAULT_SEPARATION, DEFAULT_TOP,
-                                      DEFAULT_WINDOW, candidate_ids, day_numbers,
-                                      day_of_year, decluster_many, held_out_mask, rank_many)
+                                      DEFAULT_WINDOW, calendar_groups, candidate_ids,
+                                      day_numbers, day_of_year, decluster_many,
+                                      held_out_mask, rank_groups, rank_many)
 
 HINDCAST_METHODS = ("analogs", "random")
 #: Annual harmonics beside the PCs in the logistic-regression baseline.
@@ -237,12 +238,15 @@ def _with_analogs(batches, pcs, times, *, top, separation, restrict=None):
     if restrict is not None:
         restrict = np.asarray(restrict, dtype=bool)
     for queries, season, other_years, _ in batches:
-        # The season window's candidates that the restriction allows: candidate_ids
-        # with the query's restrict (its conditions are combined by "and").
-        candidates = season if restrict is None else season[restrict[season]]
-        chosen = rank_many(index, times, pcs[queries], candidates, top=top,
+        chosen = rank_many(index, times, pcs[queries], _restricted(season, restrict), top=top,
                            separation=separation, restrict=other_years)
         yield queries, season, other_years, chosen
+
+
+def _restricted(season, restrict):
+    """The season window's candidates that the restriction allows: candidate_ids with
+    the query's restrict (its conditions are combined by "and")."""
+    return season if restrict is None else season[restrict[season]]
 
 
 def _weighted_fold_batches(pcs, times, observed, targets, window, exclude, *, top,
@@ -260,24 +264,40 @@ def _weighted_fold_batches(pcs, times, observed, targets, window, exclude, *, to
     calendar_day = day_of_year(times)
     seasons = {}  # the season window of a calendar day, the same in every fold
 
-    def single_target_batches(rows):
-        # A year holds one target a calendar day: the batches of _calendar_day_batches,
-        # without rescanning the archive for each (year, calendar day).
-        held_out = held_out_mask(times, rows, exclude)  # (one year's days, n_days)
-        for position, row in enumerate(rows):
-            day = calendar_day[row]
-            if day not in seasons:
-                seasons[day] = candidate_ids(times, times[row], window=window, exclude=None)
-            yield rows[position:position + 1], seasons[day], held_out[position:position + 1], None
+    def year_batches(rows, n_dims):
+        # The year's targets in the batches of find_analogs_many (calendar_groups): one
+        # search of the union of a group's season windows, each target restricted to its
+        # own window, other years and outside its own episode. "season" is the union,
+        # so other_years[:, season] is each target's own allowed season days.
+        for group in calendar_groups(calendar_day[rows], n_dims, len(times)):
+            queries = rows[group]
+            own_window = np.zeros((queries.size, len(times)), dtype=bool)
+            for position, row in enumerate(queries):
+                day = calendar_day[row]
+                if day not in seasons:
+                    seasons[day] = candidate_ids(times, times[row], window=window, exclude=None)
+                own_window[position, seasons[day]] = True
+            season = np.flatnonzero(own_window.any(axis=0))
+            yield (queries, season,
+                   own_window & held_out_mask(times, queries, exclude, columns=season), None)
 
+    if restrict is not None:
+        restrict = np.asarray(restrict, dtype=bool)
     for year in tqdm(np.unique(years[targets]), desc="hindcast", unit="year",
                      disable=not progress):
         train = years != year
         transform = fit_predictor_weights(pcs[train, :n_modes], times[train],
                                           observed[train])
-        batches = single_target_batches(np.flatnonzero(targets & ~train))
-        yield from _with_analogs(batches, pcs @ block_transform(transform, n_blocks), times,
-                                 top=top, separation=separation, restrict=restrict)
+        mapped = pcs @ block_transform(transform, n_blocks)
+        batches = list(year_batches(np.flatnonzero(targets & ~train), mapped.shape[1]))
+        # One de-clustering of the whole year's lists (rank_groups), as rank_many would
+        # give group by group.
+        ranked = rank_groups(AnalogIndex(kind="flat").fit(mapped), times,
+                             [(mapped[queries], _restricted(season, restrict), other_years)
+                              for queries, season, other_years, _ in batches],
+                             top=top, separation=separation)
+        for (queries, season, other_years, _), chosen in zip(batches, ranked):
+            yield queries, season, other_years, chosen
 
 
 class HeldOutNeighbours:

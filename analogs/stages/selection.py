@@ -13,6 +13,7 @@ per-target restriction).
 
 from __future__ import annotations
 
+import itertools
 import weakref
 
 import numpy as np
@@ -53,16 +54,17 @@ _CALENDAR_CACHE: dict[int, tuple] = {}
 _CALENDAR_CACHE_SIZE = 8
 
 
-def _calendar(times) -> tuple[np.ndarray, np.ndarray]:
-    """(day of year, whole days since 1970-01-01) of each time."""
+def _calendar(times) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """(day of year, whole days since 1970-01-01, calendar year) of each time."""
     if isinstance(times, pd.DatetimeIndex):
         hit = _CALENDAR_CACHE.get(id(times))
         if hit is not None and hit[0]() is times:
-            return hit[1], hit[2]
+            return hit[1:]
     stamps = _as_datetime64(times)
     days = stamps.astype("datetime64[D]")
-    arrays = ((days - stamps.astype("datetime64[Y]")).astype(np.int64) + 1,
-              days.astype(np.int64))
+    years = stamps.astype("datetime64[Y]")
+    arrays = ((days - years).astype(np.int64) + 1, days.astype(np.int64),
+              years.astype(np.int64) + 1970)
     if isinstance(times, pd.DatetimeIndex):
         if len(_CALENDAR_CACHE) >= _CALENDAR_CACHE_SIZE:
             _CALENDAR_CACHE.pop(next(iter(_CALENDAR_CACHE)))
@@ -106,7 +108,7 @@ def day_numbers(times) -> np.ndarray:
     return _calendar(times)[1]
 
 
-def held_out_mask(times, target_rows, exclude_days=DEFAULT_EXCLUDE) -> np.ndarray:
+def held_out_mask(times, target_rows, exclude_days=DEFAULT_EXCLUDE, *, columns=None) -> np.ndarray:
     """What each target of a leave-one-year-out hindcast may take: (m, n_days) booleans.
 
     Row j is true on the days of the other calendar years than ``times[target_rows[j]]``
@@ -114,15 +116,22 @@ def held_out_mask(times, target_rows, exclude_days=DEFAULT_EXCLUDE) -> np.ndarra
     :func:`exclusion_mask`, which counts days across the turn of the year: a target on
     2 January does not take 30 December of the previous year). ``exclude_days=None``
     leaves only the own year out. The per-target ``restrict`` of :func:`rank_many`.
+    ``columns`` (int array of rows, optional): only these days are looked at (a season
+    window), the others are false.
     """
     target_rows = np.asarray(target_rows, dtype=np.int64)
     times = _as_index(times)
-    years = times.year.to_numpy()
-    allowed = years[None, :] != years[target_rows][:, None]
+    looked_at = slice(None) if columns is None else np.asarray(columns, dtype=np.int64)
+    years = _calendar(times)[2]  # cached per index: the hindcast asks once per batch
+    allowed = years[looked_at][None, :] != years[target_rows][:, None]
     if exclude_days is not None:
         days = day_numbers(times)
-        allowed &= np.abs(days[None, :] - days[target_rows][:, None]) > exclude_days
-    return allowed
+        allowed &= np.abs(days[looked_at][None, :] - days[target_rows][:, None]) > exclude_days
+    if columns is None:
+        return allowed
+    whole = np.zeros((target_rows.size, len(times)), dtype=bool)
+    whole[:, looked_at] = allowed
+    return whole
 
 
 def decluster(times, separation_days, limit=None):
@@ -291,18 +300,8 @@ def find_analogs_many(index: AnalogIndex, times, target_vectors, target_times, *
     if getattr(index, "kind_", None) != "flat":
         return [find_analogs(index, times, vector, target_time=when, **settings)
                 for vector, when in zip(target_vectors, target_times)]
-    calendar_days = day_of_year(target_times)
-    order = np.argsort(calendar_days, kind="stable")
-    most = min(sequential_batch_size(target_vectors.shape[1]),
-               max(1, BATCH_MAX_MASK // max(1, len(times))))
     tables: list = [None] * len(target_times)
-    start = 0
-    while start < len(order):
-        stop = start + 1
-        while (stop < len(order) and stop - start < most
-               and calendar_days[order[stop]] - calendar_days[order[start]] <= BATCH_SPREAD_DAYS):
-            stop += 1
-        group = order[start:stop]
+    for group in calendar_groups(day_of_year(target_times), target_vectors.shape[1], len(times)):
         allowed = np.zeros((len(group), len(times)), dtype=bool)
         for position, target in enumerate(group):
             allowed[position, candidate_ids(times, target_times[target], window=window,
@@ -311,8 +310,27 @@ def find_analogs_many(index: AnalogIndex, times, target_vectors, target_times, *
                            top=top, separation=separation, restrict=allowed)
         for target, (rows, distances) in zip(group, ranked):
             tables[target] = _ranking_table(times, rows, distances)
-        start = stop
     return tables
+
+
+def calendar_groups(calendar_days, n_dims, n_days):
+    """The batches of :func:`find_analogs_many` (and of the event-weighted hindcast):
+    positions of the targets sorted by calendar day, cut into groups whose calendar days
+    lie within ``BATCH_SPREAD_DAYS`` of the group's first, of at most
+    :func:`~analogs.stages.index.sequential_batch_size` targets of ``n_dims``
+    components (faiss then computes each distance as for a target alone) and within
+    ``BATCH_MAX_MASK`` for their allowed-rows mask over ``n_days`` archive days."""
+    calendar_days = np.asarray(calendar_days)
+    order = np.argsort(calendar_days, kind="stable")
+    most = min(sequential_batch_size(n_dims), max(1, BATCH_MAX_MASK // max(1, n_days)))
+    start = 0
+    while start < len(order):
+        stop = start + 1
+        while (stop < len(order) and stop - start < most
+               and calendar_days[order[stop]] - calendar_days[order[start]] <= BATCH_SPREAD_DAYS):
+            stop += 1
+        yield order[start:stop]
+        start = stop
 
 
 def rank_many(index: AnalogIndex, times, target_vectors, allowed, *, top, separation,
@@ -341,6 +359,57 @@ def rank_many(index: AnalogIndex, times, target_vectors, allowed, *, top, separa
     list of m ``(rows, distances)`` pairs, best first: the kept rows (int64) and their
     Euclidean distances to the target; fewer than ``top`` when fewer rows are allowed.
     """
+    ids, distances = _nearest_allowed(index, times, target_vectors, allowed, top=top,
+                                      separation=separation, restrict=restrict)
+    days = day_numbers(times)
+    ranked = []
+    for j in range(ids.shape[0]):
+        found = ids[j] >= 0
+        rows, row_distances = ids[j][found], distances[j][found]
+        keep = decluster_days(days[rows], separation, limit=top)
+        ranked.append((rows[keep], row_distances[keep]))
+    return ranked
+
+
+def rank_groups(index: AnalogIndex, times, groups, *, top, separation):
+    """:func:`rank_many` for several groups of targets, each group with its own allowed
+    rows: one search per group, then one vectorised de-clustering of every target's
+    list (:func:`decluster_many`, equal to :func:`decluster_days` list by list), which
+    costs less than de-clustering each list alone once there are hundreds of them.
+
+    Parameters
+    ----------
+    groups : sequence of ``(target_vectors, allowed, restrict)``, the arguments of one
+        :func:`rank_many` call each.
+
+    Returns
+    -------
+    list (one per group) of the lists :func:`rank_many` returns.
+    """
+    searched = [_nearest_allowed(index, times, vectors, allowed, top=top,
+                                 separation=separation, restrict=restrict)
+                for vectors, allowed, restrict in groups]
+    if not searched:
+        return []
+    depth = max(ids.shape[1] for ids, _ in searched)
+    ids = np.concatenate([np.pad(i, ((0, 0), (0, depth - i.shape[1])), constant_values=-1)
+                          for i, _ in searched])
+    distances = np.concatenate([np.pad(d, ((0, 0), (0, depth - d.shape[1])),
+                                       constant_values=np.inf) for _, d in searched])
+    found = ids >= 0
+    kept = decluster_many(day_numbers(times)[np.maximum(ids, 0)], found, separation, top)
+    ranked = []
+    for j in range(ids.shape[0]):
+        keep = kept[j][kept[j] >= 0]
+        ranked.append((ids[j][keep], distances[j][keep]))
+    sizes = np.cumsum([0] + [i.shape[0] for i, _ in searched])
+    return [ranked[a:b] for a, b in itertools.pairwise(sizes)]
+
+
+def _nearest_allowed(index, times, target_vectors, allowed, *, top, separation,
+                     restrict=None) -> tuple[np.ndarray, np.ndarray]:
+    """The search of :func:`rank_many` before de-clustering: ids and distances (m,
+    fetch), nearest first, id -1 where nothing was found or ``restrict`` forbids it."""
     allowed = np.asarray(allowed, dtype=np.int64)
     target_vectors = np.atleast_2d(target_vectors)
     n_targets = target_vectors.shape[0]
@@ -356,18 +425,13 @@ def rank_many(index: AnalogIndex, times, target_vectors, allowed, *, top, separa
             removed = int((~restrict[:, allowed]).sum(axis=1).max())
     fetch = fetch_size(top, separation, allowed.size, extra=removed)
     if fetch == 0:
-        return [(np.zeros(0, dtype=np.int64), np.zeros(0))] * n_targets
+        return np.zeros((n_targets, 0), dtype=np.int64), np.zeros((n_targets, 0))
     distances, ids = index.search(target_vectors, fetch, allowed=allowed)
-    days = day_numbers(times)
-    ranked = []
-    for j in range(n_targets):
-        found = ids[j] >= 0
-        if restrict is not None:
-            found[found] = restrict[j][ids[j][found]]
-        rows, row_distances = ids[j][found], distances[j][found]
-        keep = decluster_days(days[rows], separation, limit=top)
-        ranked.append((rows[keep], row_distances[keep]))
-    return ranked
+    if restrict is not None:
+        found = ids >= 0
+        found[found] = restrict[np.nonzero(found)[0], ids[found]]
+        ids = np.where(found, ids, -1)
+    return ids, distances
 
 
 def decluster_many(days, valid, separation_days, limit) -> np.ndarray:
