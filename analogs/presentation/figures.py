@@ -105,7 +105,8 @@ class _LineTextRenderer(RendererAgg):
     rotated text and a matplotlib without that call take matplotlib's own path."""
 
     def draw_text(self, gc, x, y, s, prop, angle, ismath=False, mtext=None):
-        if ismath or angle % 360 or not hasattr(FT2Font, "set_text"):
+        if (ismath or angle % 360 or not hasattr(FT2Font, "set_text")
+                or not hasattr(self, "_prepare_font")):  # private to matplotlib's Agg
             return super().draw_text(gc, x, y, s, prop, angle, ismath=ismath, mtext=mtext)
         font = self._prepare_font(prop)
         font.set_text(s, 0, flags=get_hinting_flag())
