@@ -176,7 +176,11 @@ def test_the_earth_lines_are_withheld_on_another_geography(demo_dir):
     real = _real_land(lat, lon, rings)
     assert geography.map_lines(lat, lon, real).coastline
     moved = _real_land(lat, lon - 5.0, rings).assign_coords(lon=lon)
-    assert "left off" in geography.map_lines(lat, lon, moved).withheld
+    withheld = geography.map_lines(lat, lon, moved).withheld
+    assert "left off" in withheld
+    # Borders are named only when a border file is there to be left off.
+    has_borders = "border" in geography.line_files(geography.data_folders())
+    assert ("borders" in withheld) == has_borders
     mask, _ = read_land_mask(demo_dir / "archive" / "static" / "land_sea_mask.nc")
     demo = geography.map_lines(mask["lat"].values, mask["lon"].values, mask)
     assert not demo and "near the archive's own coast" in demo.withheld

@@ -122,8 +122,9 @@ def map_lines(lat, lon, land=None) -> MapLines | None:
         from analogs.stages.landmask import coast_agreement
         agreement = coast_agreement(land, lines.get("coastline", []))
         if agreement is not None and agreement < MIN_COAST_AGREEMENT:
+            drawn = "coastlines and borders" if "border" in files else "coastlines"
             return MapLines(source=source, withheld=(
-                f"{source} coastlines and borders left off: only {100 * agreement:.0f} % "
+                f"{source} {drawn} left off: only {100 * agreement:.0f} % "
                 "of that coastline lies near the archive's own coast (another geography)"))
     # Lake shores are drawn as coastlines (where land meets water).
     lines["coastline"] = lines.get("coastline", []) + lines.pop("lake", [])
