@@ -276,7 +276,7 @@ def test_files_in_cartopy_layout_give_each_kind_and_drop_small_lakes(monkeypatch
     """Natural Earth files written in cartopy's layout under $CARTOPY_DATA_DIR are found
     and read: the border, and of two lakes the 2 x 1 degree one (2 square degrees, by
     hand) but not the 0.2 x 0.2 one (0.04, below MIN_LAKE_AREA_DEG2)."""
-    import shapefile
+    shapefile = pytest.importorskip("shapefile", reason="pyshp (the maps extra) absent")
     root = tmp_path / "shapefiles" / "natural_earth"
     _write_shapefile(root / "physical" / "ne_50m_coastline.shp", shapefile.POLYLINE,
                      [[[-100.0, 30.0], [-90.0, 30.0]]])
