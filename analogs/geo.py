@@ -283,6 +283,16 @@ def _axis_derivative(field, degrees, axis):
     return np.gradient(field, np.radians(degrees), axis=axis)
 
 
+def nearest_index(ascending, values) -> np.ndarray:
+    """Index of the nearest point of the ascending coordinate ``ascending`` to each of
+    ``values`` (a binary search: memory of the size of ``values``, not of both)."""
+    ascending, values = np.asarray(ascending), np.asarray(values)
+    at = np.clip(np.searchsorted(ascending, values), 0, ascending.size - 1)
+    before = np.clip(at - 1, 0, ascending.size - 1)
+    return np.where(np.abs(ascending[before] - values) < np.abs(ascending[at] - values),
+                    before, at)
+
+
 def initial_bearing_deg(lat1, lon1, lat2, lon2):
     """Initial great-circle bearing from point 1 to point 2, degrees in [0, 360).
 

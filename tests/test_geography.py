@@ -14,7 +14,7 @@ import pytest
 import xarray as xr
 from matplotlib.path import Path as MatplotlibPath
 
-from analogs.geo import MapLines, clip_lines
+from analogs.geo import MapLines, clip_lines, nearest_index
 from analogs.presentation import figures as plots
 from analogs.stages.landmask import coast_agreement, read_land_mask
 from analogs.workflows import geography
@@ -291,3 +291,15 @@ def test_files_in_cartopy_layout_give_each_kind_and_drop_small_lakes(monkeypatch
     np.testing.assert_allclose(lines.border[0], [[-105.0, 40.0], [-80.0, 40.0]])
     assert len(lines.coastline) == 2          # the coast and the big lake's shore
     np.testing.assert_allclose(lines.coastline[1], big)
+
+
+def test_nearest_index_equals_the_brute_force_nearest_point():
+    """The binary search of nearest_index gives numpy's argmin of |coordinate - value|
+    (the plain definition) on an uneven ascending axis, at values outside it too;
+    coast_agreement and the report's grid-point match use it."""
+    rng = np.random.default_rng(4)
+    axis = np.sort(rng.uniform(-80.0, 80.0, 300))
+    values = rng.uniform(-100.0, 100.0, 5000)
+    brute = np.abs(values[:, None] - axis[None, :]).argmin(axis=1)
+    np.testing.assert_array_equal(nearest_index(axis, values), brute)
+

@@ -46,6 +46,7 @@ import pandas as pd
 
 from analogs._validation import choice_expected, fail, renamed_errors
 from analogs.errors import AnalogsInputError
+from analogs.geo import nearest_index
 from analogs.parameters import P
 from analogs.results import EVENTS_PREFIX, EVENTS_TOTAL, FindResult, ValidTimesResult
 from analogs.stages.index import AnalogIndex
@@ -1306,9 +1307,7 @@ def archive_day_fields(store, rows) -> tuple[xr.Dataset | None, str]:
 def _positions(source, target, tolerance=1e-6) -> np.ndarray | None:
     """Indices of the ascending coordinate ``source`` at each value of ``target``, or
     None when some value of ``target`` is not a point of ``source`` (degrees)."""
-    at = np.clip(np.searchsorted(source, target), 0, source.size - 1)
-    before = np.clip(at - 1, 0, source.size - 1)
-    at = np.where(np.abs(source[before] - target) < np.abs(source[at] - target), before, at)
+    at = nearest_index(source, target)
     return at if np.all(np.abs(source[at] - target) <= tolerance) else None
 
 
