@@ -300,48 +300,77 @@ def test_vectorised_declustering_equals_the_greedy_rule():
             np.testing.assert_array_equal(got, expected)
 
 
-def test_grouped_ranking_equals_ranking_each_group_alone():
-    """rank_groups (the event-weighted hindcast's batched path: one search per group of
-    targets, one vectorised de-clustering of every list) against rank_many group by group
-    and against find_analogs target by target (the live query), on PCs rounded to a
-    coarse step so that many distances tie exactly: the same rows in the same order and
-    the same distances (the design of the test: two paths of the one selection rule;
-    the greedy de-clustering is common practice, no source)."""
-    from analogs.stages.selection import (
-        calendar_groups,
-        day_of_year,
-        held_out_mask,
-        rank_groups,
-        rank_many,
-    )
+def _own_windows(rows, window):
+    """Each target's season window (candidate_ids, no exclusion), padded with -1."""
+    own = [candidate_ids(TIMES, TIMES[row], window=window, exclude=None) for row in rows]
+    windows = np.full((len(own), max(map(len, own))), -1, dtype=np.int64)
+    for position, season in enumerate(own):
+        windows[position, :season.size] = season
+    return windows
+
+
+def test_window_ranking_equals_the_flat_search_ties_included():
+    """rank_windows (the event-weighted hindcast's path: faiss' pairwise kernel over each
+    target's own window, one partial sort, one vectorised de-clustering) against
+    rank_many (the flat index's search) target by target and against find_analogs (the
+    live query), on PCs rounded to a coarse step so that many distances tie exactly: the
+    same rows in the same order and the same distances (two paths of the one selection
+    rule; the greedy de-clustering is common practice, no source)."""
+    from analogs.stages.selection import held_out_mask, rank_many, rank_windows
 
     pcs = np.round(synthetic_pcs_for_ties(), 0)
     index = AnalogIndex(kind="flat").fit(pcs)
-    targets = np.flatnonzero(TIMES.year == 1994)[::3]
-    groups, expected = [], []
-    for group in calendar_groups(day_of_year(TIMES[targets]), pcs.shape[1], len(TIMES)):
-        rows = targets[group]
-        own = np.zeros((rows.size, len(TIMES)), dtype=bool)
+    rows = np.flatnonzero(TIMES.year == 1994)[::3]
+    windows = _own_windows(rows, 30)
+    columns = np.maximum(windows, 0)
+    allowed = held_out_mask(TIMES, rows, 10, columns=columns) & (windows >= 0)
+    restrict = pcs[:, 1] > -3  # a regime-like restriction as well
+    n_ties = 0
+    for narrowed in (allowed, allowed & restrict[columns]):
+        ranked = rank_windows(pcs, TIMES, rows, windows, narrowed, top=15, separation=2)
+        assert len(ranked) == rows.size
         for position, row in enumerate(rows):
-            own[position, candidate_ids(TIMES, TIMES[row], window=30, exclude=None)] = True
-        season = np.flatnonzero(own.any(axis=0))
-        restrict = own & held_out_mask(TIMES, rows, 10, columns=season)
-        groups.append((pcs[rows], season, restrict))
-        expected.append(rank_many(index, TIMES, pcs[rows], season, top=15, separation=2,
-                                  restrict=restrict))
-        for row in rows[:2]:
-            live = find_analogs(index, TIMES, pcs[row], target_time=TIMES[row], top=15,
-                                window=30, exclude=10, separation=2,
-                                restrict=TIMES.year != TIMES[row].year)
-            rows_found, distances = expected[-1][list(rows).index(row)]
-            np.testing.assert_array_equal(rows_found, live["row"].to_numpy())
-            np.testing.assert_array_equal(distances, live["distance"].to_numpy())
-    assert len(groups) > 5
-    for got, want in zip(rank_groups(index, TIMES, groups, top=15, separation=2), expected):
-        assert len(got) == len(want)
-        for (rows_got, distances_got), (rows_want, distances_want) in zip(got, want):
-            np.testing.assert_array_equal(rows_got, rows_want)
-            np.testing.assert_array_equal(distances_got, distances_want)
+            candidates = windows[position][narrowed[position]]
+            (want_rows, want_distances), = rank_many(index, TIMES, pcs[row:row + 1],
+                                                     candidates, top=15, separation=2)
+            got_rows, got_distances = ranked[position]
+            np.testing.assert_array_equal(got_rows, want_rows)
+            np.testing.assert_array_equal(got_distances, want_distances)
+            n_ties += int(np.sum(np.diff(got_distances) == 0))
+    assert n_ties > 50  # the rounding made ties: their order (lower row first) was checked
+    for position, row in enumerate(rows[:3]):
+        live = find_analogs(index, TIMES, pcs[row], target_time=TIMES[row], top=15,
+                            window=30, exclude=10, separation=2,
+                            restrict=TIMES.year != TIMES[row].year)
+        got_rows, got_distances = rank_windows(pcs, TIMES, rows, windows, allowed, top=15,
+                                               separation=2)[position]
+        np.testing.assert_array_equal(got_rows, live["row"].to_numpy())
+        np.testing.assert_array_equal(got_distances, live["distance"].to_numpy())
+
+
+def test_window_ranking_equals_brute_force_neighbours():
+    """Without de-clustering, rank_windows' analogs of a target are its nearest allowed
+    days by Euclidean distance: scipy's cdist and scikit-learn's brute-force
+    NearestNeighbors over the same candidates as outside references (continuous PCs:
+    no ties, so float32 and float64 agree on the order)."""
+    from scipy.spatial.distance import cdist
+
+    from analogs.stages.selection import held_out_mask, rank_windows
+
+    pcs = synthetic_pcs_for_ties()
+    rows = np.flatnonzero(TIMES.year == 1996)[::17]
+    windows = _own_windows(rows, 45)
+    allowed = held_out_mask(TIMES, rows, 10, columns=np.maximum(windows, 0)) & (windows >= 0)
+    ranked = rank_windows(pcs, TIMES, rows, windows, allowed, top=20, separation=0)
+    for position, row in enumerate(rows):
+        candidates = windows[position][allowed[position]]
+        distances = cdist(pcs[row:row + 1], pcs[candidates])[0]
+        order = np.argsort(distances, kind="stable")[:20]
+        got_rows, got_distances = ranked[position]
+        np.testing.assert_array_equal(got_rows, candidates[order])
+        np.testing.assert_allclose(got_distances, distances[order], rtol=1e-5)
+        nn = NearestNeighbors(n_neighbors=20, algorithm="brute").fit(pcs[candidates])
+        np.testing.assert_array_equal(got_rows, candidates[nn.kneighbors(pcs[row:row + 1])[1][0]])
 
 
 def synthetic_pcs_for_ties():

@@ -27,10 +27,10 @@ from analogs.stages.index import AnalogIndex
 from analogs.stages.outcomes import analog_weights
 from analogs.stages.scores import (bootstrap_interval, brier_score, brier_skill_score, roc_auc,
                                    roc_auc_within, verification_summary)
-from analogs.stages.selection import (DEFAULT_EXCLUDE, DEFAULT_SEPARATION, DEFAULT_TOP,
-                                      DEFAULT_WINDOW, calendar_groups, candidate_ids,
+from analogs.stages.selection import (BATCH_MAX_MASK, DEFAULT_EXCLUDE, DEFAULT_SEPARATION,
+                                      DEFAULT_TOP, DEFAULT_WINDOW, candidate_ids,
                                       day_numbers, day_of_year, decluster_many,
-                                      held_out_mask, rank_groups, rank_many)
+                                      held_out_mask, rank_many, rank_windows)
 
 HINDCAST_METHODS = ("analogs", "random")
 #: Annual harmonics beside the PCs in the logistic-regression baseline.
@@ -263,23 +263,20 @@ def _weighted_fold_batches(pcs, times, observed, targets, window, exclude, *, to
     n_modes = pcs.shape[1] // n_blocks
     calendar_day = day_of_year(times)
     seasons = {}  # the season window of a calendar day, the same in every fold
+    # Targets ranked at once: their masks over every day stay within the batch budget.
+    per_batch = max(1, BATCH_MAX_MASK // len(times))
 
-    def year_batches(rows, n_dims):
-        # The year's targets in the batches of find_analogs_many (calendar_groups): one
-        # search of the union of a group's season windows, each target restricted to its
-        # own window, other years and outside its own episode. "season" is the union,
-        # so other_years[:, season] is each target's own allowed season days.
-        for group in calendar_groups(calendar_day[rows], n_dims, len(times)):
-            queries = rows[group]
-            own_window = np.zeros((queries.size, len(times)), dtype=bool)
-            for position, row in enumerate(queries):
-                day = calendar_day[row]
-                if day not in seasons:
-                    seasons[day] = candidate_ids(times, times[row], window=window, exclude=None)
-                own_window[position, seasons[day]] = True
-            season = np.flatnonzero(own_window.any(axis=0))
-            yield (queries, season,
-                   own_window & held_out_mask(times, queries, exclude, columns=season), None)
+    def windows_of(rows):
+        # Each target's season window (candidate_ids), ascending, padded with -1.
+        for row in rows:
+            if calendar_day[row] not in seasons:
+                seasons[calendar_day[row]] = candidate_ids(times, times[row], window=window,
+                                                           exclude=None)
+        own = [seasons[day] for day in calendar_day[rows]]
+        windows = np.full((len(own), max(map(len, own))), -1, dtype=np.int64)
+        for position, season in enumerate(own):
+            windows[position, :season.size] = season
+        return windows
 
     if restrict is not None:
         restrict = np.asarray(restrict, dtype=bool)
@@ -289,15 +286,21 @@ def _weighted_fold_batches(pcs, times, observed, targets, window, exclude, *, to
         transform = fit_predictor_weights(pcs[train, :n_modes], times[train],
                                           observed[train])
         mapped = pcs @ block_transform(transform, n_blocks)
-        batches = list(year_batches(np.flatnonzero(targets & ~train), mapped.shape[1]))
-        # One de-clustering of the whole year's lists (rank_groups), as rank_many would
-        # give group by group.
-        ranked = rank_groups(AnalogIndex(kind="flat").fit(mapped), times,
-                             [(mapped[queries], _restricted(season, restrict), other_years)
-                              for queries, season, other_years, _ in batches],
-                             top=top, separation=separation)
-        for (queries, season, other_years, _), chosen in zip(batches, ranked):
-            yield queries, season, other_years, chosen
+        rows = np.flatnonzero(targets & ~train)
+        for start in range(0, rows.size, per_batch):
+            queries = rows[start:start + per_batch]
+            windows = windows_of(queries)
+            columns = np.maximum(windows, 0)
+            # Each target's own season days of the other years, outside its own episode.
+            held = held_out_mask(times, queries, exclude, columns=columns) & (windows >= 0)
+            other_years = np.zeros((queries.size, len(times)), dtype=bool)
+            other_years[np.nonzero(held)[0], windows[held]] = True
+            allowed = held if restrict is None else held & restrict[columns]
+            chosen = rank_windows(mapped, times, queries, windows, allowed, top=top,
+                                  separation=separation)
+            in_a_window = np.zeros(len(times), dtype=bool)
+            in_a_window[columns] = True  # (padding marks row 0, in every window's union)
+            yield queries, np.flatnonzero(in_a_window), other_years, chosen
 
 
 class HeldOutNeighbours:

@@ -60,6 +60,35 @@ def faiss_threads(n_threads):
         faiss.omp_set_num_threads(previous)
 
 
+
+def window_distances(vectors, queries, ids) -> np.ndarray:
+    """Squared Euclidean distances of each query to the vectors of its own rows ``ids``,
+    float32 (m, w), computed by faiss' pairwise kernel (``fvec_L2sqr_by_idx``): the
+    very values a flat search ranks (its sequential kernel, bit for bit; tested against
+    :meth:`AnalogIndex.search`), so a ranking made from them is the search's, near ties
+    included. ``inf`` where an id is -1 (padding).
+
+    Parameters
+    ----------
+    vectors : array (n, d), the indexed vectors (cast to float32, as :meth:`AnalogIndex.fit`).
+    queries : array (m, d).
+    ids : int array (m, w) of rows of ``vectors``, -1 for none.
+    """
+    vectors = np.ascontiguousarray(vectors, dtype=np.float32)
+    queries = np.ascontiguousarray(np.atleast_2d(queries), dtype=np.float32)
+    ids = np.ascontiguousarray(ids, dtype=np.int64)
+    if (ids.shape[0] != queries.shape[0] or queries.shape[1] != vectors.shape[1]
+            or (ids.size and not -1 <= ids.min() <= ids.max() < vectors.shape[0])):
+        raise ValueError(f"window_distances: {queries.shape[0]} queries of {queries.shape[1]} "
+                         f"components, ids of shape {ids.shape}, vectors of shape {vectors.shape}")
+    squared = np.empty(ids.shape, dtype=np.float32)
+    if ids.size:
+        with faiss_threads(1):
+            faiss.fvec_L2sqr_by_idx(faiss.swig_ptr(squared), faiss.swig_ptr(queries),
+                                    faiss.swig_ptr(vectors), faiss.swig_ptr(ids),
+                                    vectors.shape[1], ids.shape[0], ids.shape[1])
+    return squared
+
 class AnalogIndex:
     """Exact or approximate Euclidean nearest-neighbour search over PC vectors.
 

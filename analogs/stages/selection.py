@@ -13,7 +13,6 @@ per-target restriction).
 
 from __future__ import annotations
 
-import itertools
 import weakref
 
 import numpy as np
@@ -117,17 +116,19 @@ def held_out_mask(times, target_rows, exclude_days=DEFAULT_EXCLUDE, *, columns=N
     2 January does not take 30 December of the previous year). ``exclude_days=None``
     leaves only the own year out. The per-target ``restrict`` of :func:`rank_many`.
     ``columns`` (int array of rows, optional): only these days are looked at (a season
-    window), the others are false.
+    window), the others are false; a 2-D array (m, w) gives each target its own rows,
+    and the answer is then (m, w), row j for the days ``columns[j]``.
     """
     target_rows = np.asarray(target_rows, dtype=np.int64)
     times = _as_index(times)
     looked_at = slice(None) if columns is None else np.asarray(columns, dtype=np.int64)
+    own_columns = columns is not None and looked_at.ndim == 2
     years = _calendar(times)[2]  # cached per index: the hindcast asks once per batch
-    allowed = years[looked_at][None, :] != years[target_rows][:, None]
+    allowed = years[looked_at] != years[target_rows][:, None]
     if exclude_days is not None:
         days = day_numbers(times)
-        allowed &= np.abs(days[looked_at][None, :] - days[target_rows][:, None]) > exclude_days
-    if columns is None:
+        allowed &= np.abs(days[looked_at] - days[target_rows][:, None]) > exclude_days
+    if columns is None or own_columns:
         return allowed
     whole = np.zeros((target_rows.size, len(times)), dtype=bool)
     whole[:, looked_at] = allowed
@@ -314,7 +315,7 @@ def find_analogs_many(index: AnalogIndex, times, target_vectors, target_times, *
 
 
 def calendar_groups(calendar_days, n_dims, n_days):
-    """The batches of :func:`find_analogs_many` (and of the event-weighted hindcast):
+    """The batches of :func:`find_analogs_many`:
     positions of the targets sorted by calendar day, cut into groups whose calendar days
     lie within ``BATCH_SPREAD_DAYS`` of the group's first, of at most
     :func:`~analogs.stages.index.sequential_batch_size` targets of ``n_dims``
@@ -371,39 +372,58 @@ def rank_many(index: AnalogIndex, times, target_vectors, allowed, *, top, separa
     return ranked
 
 
-def rank_groups(index: AnalogIndex, times, groups, *, top, separation):
-    """:func:`rank_many` for several groups of targets, each group with its own allowed
-    rows: one search per group, then one vectorised de-clustering of every target's
-    list (:func:`decluster_many`, equal to :func:`decluster_days` list by list), which
-    costs less than de-clustering each list alone once there are hundreds of them.
+def rank_windows(vectors, times, targets, windows, allowed, *, top, separation):
+    """:func:`rank_many` for many targets that each have their own candidate rows,
+    from one distance computation (:func:`~analogs.stages.index.window_distances`, the
+    flat index's own float32 values) and one vectorised de-clustering
+    (:func:`decluster_many`): the event-weighted hindcast ranks a whole held-out year so.
+
+    Each target's allowed rows are ordered as the flat search orders them (by distance,
+    then by row: faiss keeps the lower id of a tie), the first
+    :func:`fetch_size` kept (enough for ``top`` to survive de-clustering), then
+    de-clustered: the answer of ``rank_many`` with that target's allowed rows alone.
 
     Parameters
     ----------
-    groups : sequence of ``(target_vectors, allowed, restrict)``, the arguments of one
-        :func:`rank_many` call each.
+    vectors : array (n_days, d), the vectors of every day (the index's space).
+    times : DatetimeIndex of the days.
+    targets : int array (m,), the rows of the targets.
+    windows : int array (m, w), each target's candidate rows in ascending order, -1
+        after the last (padding).
+    allowed : bool array (m, w), which of them the target may take.
+    top, separation : as in :func:`find_analogs`.
 
     Returns
     -------
-    list (one per group) of the lists :func:`rank_many` returns.
+    list of m ``(rows, distances)`` pairs, as :func:`rank_many` returns them.
     """
-    searched = [_nearest_allowed(index, times, vectors, allowed, top=top,
-                                 separation=separation, restrict=restrict)
-                for vectors, allowed, restrict in groups]
-    if not searched:
-        return []
-    depth = max(ids.shape[1] for ids, _ in searched)
-    ids = np.concatenate([np.pad(i, ((0, 0), (0, depth - i.shape[1])), constant_values=-1)
-                          for i, _ in searched])
-    distances = np.concatenate([np.pad(d, ((0, 0), (0, depth - d.shape[1])),
-                                       constant_values=np.inf) for _, d in searched])
-    found = ids >= 0
-    kept = decluster_many(day_numbers(times)[np.maximum(ids, 0)], found, separation, top)
+    from analogs.stages.index import window_distances
+    windows = np.asarray(windows, dtype=np.int64)
+    allowed = np.asarray(allowed, dtype=bool) & (windows >= 0)
+    n_targets, width = windows.shape
+    depth = fetch_size(top, separation, int(allowed.sum(axis=1).max(initial=0)))
+    if depth == 0:
+        return [(np.zeros(0, dtype=np.int64), np.zeros(0))] * n_targets
+    squared = window_distances(vectors, np.asarray(vectors)[targets], windows)
+    # One integer key per candidate, ordered as (distance, row): the float32 bits of a
+    # non-negative distance order as the distances do, and a window's positions as its
+    # rows (ascending). Unique keys: a partial sort picks exactly the first ``depth``.
+    last = np.iinfo(np.int64).max
+    keys = (squared.view(np.int32).astype(np.int64) << 32) | np.arange(width, dtype=np.int64)
+    keys[~allowed] = last
+    if depth < width:
+        keys = np.take_along_axis(keys, np.argpartition(keys, depth - 1, axis=1)[:, :depth],
+                                  axis=1)
+    keys.sort(axis=1)
+    found = keys != last
+    rows = np.take_along_axis(windows, np.where(found, keys & 0xFFFFFFFF, 0), axis=1)
+    kept = decluster_many(day_numbers(times)[rows], found, separation, top)
+    distances = np.sqrt((keys >> 32).astype(np.int32).view(np.float32).astype(np.float64))
     ranked = []
-    for j in range(ids.shape[0]):
+    for j in range(n_targets):
         keep = kept[j][kept[j] >= 0]
-        ranked.append((ids[j][keep], distances[j][keep]))
-    sizes = np.cumsum([0] + [i.shape[0] for i, _ in searched])
-    return [ranked[a:b] for a, b in itertools.pairwise(sizes)]
+        ranked.append((rows[j][keep], distances[j][keep]))
+    return ranked
 
 
 def _nearest_allowed(index, times, target_vectors, allowed, *, top, separation,
