@@ -3,11 +3,13 @@
 from __future__ import annotations
 
 import contextlib
+import contextvars
 import json
 import re
 import shutil
 import sys
 import tempfile
+from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 
 import numpy as np
@@ -269,22 +271,28 @@ def _build(paths, store, *, events, event_dates, events_period, fields, n_modes,
             climatology.transform(archive), overwrite=True, scratch=scratch)
     pcs = eof.pcs_
     errors = eof.training_error_.values
-    # No region: tag_days places the synoptic box at the domain's centre and says so.
-    tags = tag_days(archive, None if region.kind == "whole" else
-                    diagnostic_region(region, archive), progress=progress)
-
     times = pd.DatetimeIndex(archive["time"].values)
-    index_info = _index_info(index, pcs.values, times)
-    skill, events_entry = None, None
-    if event_table is not None:
-        # Report coverage (analogs.workflows.reports): every archive day, or --events-period.
-        period = coverage_period(event_table, events_period, default=(times[0], times[-1]),
-                                 owner="build_store")
-        events_entry = events_block(events, event_table, [period], times.normalize(),
-                                    n_outside=n_outside)
-        observed = daily_event_counts(event_table, times.normalize(), region)["total"].to_numpy() > 0
-        skill = measured_skill(pcs.values, times, observed,
-                               covered_days(times, [period]), region=region)
+    # The tags need only the archive, the index check and the skill hindcast only the
+    # PCs: the tags are computed in a thread beside them (numpy and faiss release the
+    # GIL in their heavy loops). Started after the EOF fit, the build's memory peak, so
+    # the diagnostics' working memory never adds to it. No region: tag_days places the
+    # synoptic box at the domain's centre and says so.
+    with _beside(tag_days, archive, None if region.kind == "whole" else
+                 diagnostic_region(region, archive), progress=progress) as tagging:
+        index_info = _index_info(index, pcs.values, times)
+        skill, events_entry = None, None
+        if event_table is not None:
+            # Report coverage (analogs.workflows.reports): every archive day, or
+            # --events-period.
+            period = coverage_period(event_table, events_period,
+                                     default=(times[0], times[-1]), owner="build_store")
+            events_entry = events_block(events, event_table, [period], times.normalize(),
+                                        n_outside=n_outside)
+            observed = daily_event_counts(event_table, times.normalize(),
+                                          region)["total"].to_numpy() > 0
+            skill = measured_skill(pcs.values, times, observed,
+                                   covered_days(times, [period]), region=region)
+    tags = tagging.result()
     manifest = {
         "config": {
             "fields": list(archive.data_vars),
@@ -346,6 +354,26 @@ def _build(paths, store, *, events, event_dates, events_period, fields, n_modes,
     # The default query's event-weighted map (the store's region, every kind), kept in
     # the manifest so that a default query need not fit it (nor load scikit-learn).
     return with_default_predictor_weights(built)
+
+
+@contextlib.contextmanager
+def _beside(work, *args, **kwargs):
+    """Run ``work(*args, **kwargs)`` in a thread while the enclosed block runs; yields
+    its future (``result()`` gives its answer or raises its error).
+
+    The thread has always ended when the block is left, also on error (no thread
+    outlives the build). When both fail, ``work``'s error is raised: it is the one a
+    sequential run, ``work`` first, would have met. The thread runs in a copy of the
+    caller's context (context variables such as a dask client's).
+    """
+    with ThreadPoolExecutor(max_workers=1, thread_name_prefix="analogs-build") as pool:
+        future = pool.submit(contextvars.copy_context().run, work, *args, **kwargs)
+        try:
+            yield future
+        except BaseException:
+            if future.exception() is not None:  # waits for the thread
+                raise future.exception() from None
+            raise
 
 
 #: Free space kept beyond the scratch files' size (the store is written beside them).
