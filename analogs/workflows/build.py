@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import contextlib
 import contextvars
+import importlib
 import json
 import re
 import shutil
@@ -180,7 +181,11 @@ def build_store(paths, store, *, events=None, event_dates=P.event_dates.default,
         # read_guard: a damaged chunk or a file changed under the build's reads (the
         # missing-data, climatology, EOF and tagging passes) is named, exit 2.
         guard = read_guard(paths)
-        with _dask_scheduler(scheduler), guard:
+        # The skill hindcast's regression needs scikit-learn, about a second to import:
+        # imported in a thread while the archive is read.
+        preload = (contextlib.nullcontext() if events is None
+                   else _beside(_import_quietly, "sklearn.linear_model"))
+        with _dask_scheduler(scheduler), guard, preload:
             return _build(paths, store, events=events, event_dates=event_dates,
                           events_period=events_period, fields=fields, n_modes=n_modes,
                           variance=variance, region=region, domain=domain, hour=hour,
@@ -374,6 +379,13 @@ def _beside(work, *args, **kwargs):
             if future.exception() is not None:  # waits for the thread
                 raise future.exception() from None
             raise
+
+
+def _import_quietly(module: str) -> None:
+    """Import ``module`` ahead of its use; a failure is left to the import that uses it,
+    where it is reported."""
+    with contextlib.suppress(Exception):
+        importlib.import_module(module)
 
 
 #: Free space kept beyond the scratch files' size (the store is written beside them).
