@@ -257,6 +257,8 @@ def _weighted_fold_batches(pcs, times, observed, targets, window, exclude, *, to
     of Y, neither its fields nor its events, shapes the metric of its forecasts). With a
     ``sequence``, the map is fitted on each vector's first block (the day's PCs) and
     applied to every block."""
+    from threadpoolctl import threadpool_limits
+
     from analogs.stages.predictor_weights import block_transform, fit_predictor_weights
     years = times.year.to_numpy()
     n_blocks = 1 + int(sequence)
@@ -285,7 +287,10 @@ def _weighted_fold_batches(pcs, times, observed, targets, window, exclude, *, to
         train = years != year
         transform = fit_predictor_weights(pcs[train, :n_modes], times[train],
                                           observed[train])
-        mapped = pcs @ block_transform(transform, n_blocks)
+        # A (days x ~21) product: on one BLAS thread, as the fit (predictor_weights), the
+        # same values without a second thread spinning beside the tagging's.
+        with threadpool_limits(1, user_api="blas"):
+            mapped = pcs @ block_transform(transform, n_blocks)
         rows = np.flatnonzero(targets & ~train)
         for start in range(0, rows.size, per_batch):
             queries = rows[start:start + per_batch]
