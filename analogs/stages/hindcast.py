@@ -256,7 +256,9 @@ def _weighted_fold_batches(pcs, times, observed, targets, window, exclude, *, to
     (:func:`~analogs.stages.predictor_weights.fit_predictor_weights`; nested, so no day
     of Y, neither its fields nor its events, shapes the metric of its forecasts). With a
     ``sequence``, the map is fitted on each vector's first block (the day's PCs) and
-    applied to every block."""
+    applied to every block. The year's targets are ranked at once, each among its own
+    season window's allowed days (:func:`~analogs.stages.selection.rank_windows`); the
+    batch's ``season`` is the union of their windows."""
     from threadpoolctl import threadpool_limits
 
     from analogs.stages.predictor_weights import block_transform, fit_predictor_weights
@@ -304,7 +306,7 @@ def _weighted_fold_batches(pcs, times, observed, targets, window, exclude, *, to
             chosen = rank_windows(mapped, times, queries, windows, allowed, top=top,
                                   separation=separation)
             in_a_window = np.zeros(len(times), dtype=bool)
-            in_a_window[columns] = True  # (padding marks row 0, in every window's union)
+            in_a_window[windows[windows >= 0]] = True
             yield queries, np.flatnonzero(in_a_window), other_years, chosen
 
 
