@@ -340,7 +340,8 @@ def _memmap_maker(folder, made):
 def _write_gappy_360_files(folder):
     """Per-variable, per-year files on a global 5-degree grid in 0-360 longitudes with
     latitude descending (as NCEP's), z500 holding a one-day gap at one point (filled in
-    time) and a point missing on every day (kept missing, a mask)."""
+    time), a point missing on every day (kept missing, a mask), and q850 an infinite
+    value (counted, then filled as a missing one)."""
     import pandas as pd
     import xarray as xr
     from _sources_helpers import (
@@ -358,6 +359,7 @@ def _write_gappy_360_files(folder):
     q = smooth_humidity(times)[:, ::-1][:, :, order].astype(np.float32)
     z[6, 12, 40] = np.nan
     z[:, 20, 32] = np.nan
+    q[3, 10, 38] = np.inf
     paths = []
     for year in (2001, 2002):
         sel = np.flatnonzero(times.year == year)
@@ -376,8 +378,9 @@ def test_archive_decoded_once_is_the_archive_read_lazily_or_in_memory(tmp_path):
     into a memory-mapped copy, every later pass reading its chunks from there) gives
     exactly the in-memory read's and the lazy read's values and missing-data report: on
     files given in any order, in 0-360 longitudes with latitude descending, over a region
-    across the date line, with a one-day gap filled and a masked point kept missing; its
-    chunks come from the copy, not the files. External reference: the values read from
+    across the date line, with a one-day gap filled, an infinite value counted and
+    filled, and a masked point kept missing (the census, taken while decoding, gives the
+    same report); its chunks come from the copy, not the files. External reference: the values read from
     the files with netCDF4 directly, placed on the canonical grid by hand."""
     import netCDF4
 
@@ -405,7 +408,8 @@ def test_archive_decoded_once_is_the_archive_read_lazily_or_in_memory(tmp_path):
         np.testing.assert_array_equal(once[name].values, in_memory[name].values)
         np.testing.assert_array_equal(lazy[name].values, in_memory[name].values)
     assert once.attrs["missing_data"] == in_memory.attrs["missing_data"]
-    assert json.loads(once.attrs["missing_data"])["n_values_filled"] == 1
+    report = json.loads(once.attrs["missing_data"])  # the census taken while decoding
+    assert report["n_values_filled"] == 2 and report["n_infinite_values"] == 1
     assert np.isnan(once["z500"].values).sum() > 0  # the masked point, kept missing
 
     lon = once["lon"].values
