@@ -185,7 +185,7 @@ def build_store(paths, store, *, events=None, event_dates=P.event_dates.default,
                           daily=daily, n_harmonics=n_harmonics, solver=solver,
                           field_weights=field_weights, chunks=chunks, index=index,
                           progress=progress, reads_done=guard.check_unchanged, mask=mask,
-                          scratch=scratch, local=scheduler is None)
+                          scratch=scratch, threaded=scheduler is None)
 
 
 #: A dask scheduler address: an optional scheme, a host name, IPv4 or [IPv6] address,
@@ -245,17 +245,17 @@ def _dask_scheduler(address):
 def _build(paths, store, *, events, event_dates, events_period, fields, n_modes, variance,
            region, domain, hour, daily,
            n_harmonics, solver, field_weights, chunks, index, progress,
-           reads_done=lambda: None, mask=None, scratch=None, local=True):
+           reads_done=lambda: None, mask=None, scratch=None, threaded=True):
     from analogs.stages.regimes import tag_days
     from analogs.stages.sources import open_archive
     # Out of core, the scratch folder holds the archive decoded once (read back by every
     # pass: census, climatology, EOF, tagging; not with a distributed scheduler, whose
     # workers read the files themselves) and the EOF's anomaly matrix.
     with _scratch_files(store, chunked=chunks is not None, progress=progress,
-                        folder=scratch) as scratch:
+                        folder=scratch) as make_scratch:
         archive = open_archive(paths, fields=fields, region=domain, hour=hour, daily=daily,
                                chunks=chunks, progress=progress,
-                               scratch=scratch if local else None)
+                               scratch=make_scratch if threaded else None)
         if archive.sizes["time"] < 3:
             raise AnalogsInputError(f"the archive has {archive.sizes['time']} days; at "
                                     "least 3 are needed to build a store")
@@ -270,7 +270,7 @@ def _build(paths, store, *, events, event_dates, events_period, fields, n_modes,
         # Out of core, that copy is a scratch file written in one pass over the archive.
         eof = MultivariateEOF(n_modes, variance=variance, solver=solver,
                               field_weights=field_weights).fit(
-            climatology.transform(archive), overwrite=True, scratch=scratch)
+            climatology.transform(archive), overwrite=True, scratch=make_scratch)
         pcs = eof.pcs_
         errors = eof.training_error_.values
         # No region: tag_days places the synoptic box at the domain's centre and says so.
