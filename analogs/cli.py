@@ -241,6 +241,9 @@ def _cmd_find(args) -> int:
     if args.dates is not None and (args.maps or args.report):
         raise AnalogsInputError(f"--{'maps' if args.maps else 'report'} draws one target: "
                                 "with --dates, ask for one date with --date")
+    if args.field or args.maps or args.report:  # xarray objects, none of dask or pint
+        from analogs._duck_arrays import defer_duck_array_imports
+        defer_duck_array_imports()
     store = AnalogStore.load(args.store)
     if args.dates is not None:
         return _print_many(store.find_many(

@@ -293,6 +293,42 @@ def test_files_in_cartopy_layout_give_each_kind_and_drop_small_lakes(monkeypatch
     np.testing.assert_allclose(lines.coastline[1], big)
 
 
+def test_ring_areas_match_shapely():
+    """Areas of random rings (open or closed, either orientation) and of the installed
+    GSHHS lakes, all in one pass: shapely's Polygon.area (GEOS) is the reference."""
+    shapely = pytest.importorskip("shapely", reason="shapely (the test extra) is not installed")
+    rng = np.random.default_rng(3)
+    rings = []
+    for n in rng.integers(3, 40, size=60):
+        angles = np.sort(rng.uniform(0.0, 2 * np.pi, n)) * rng.choice([-1, 1])
+        radius = rng.uniform(0.1, 5.0, n)
+        ring = np.c_[radius * np.cos(angles) + rng.uniform(-170, 170),
+                     radius * np.sin(angles) + rng.uniform(-80, 80)]
+        rings.append(np.vstack([ring, ring[:1]]) if rng.random() < 0.5 else ring)
+    lakes = [folder / geography.GSHHS_FILES["lake"][0] for folder in geography.data_folders()]
+    lake_file = next((path for path in lakes if path.is_file()), None)
+    if lake_file is not None:
+        rings += [ring for ring in geography.shapefile_lines(str(lake_file)) if len(ring) > 3]
+    expected = [shapely.Polygon(ring).area for ring in rings]
+    # atol: rounding of the products of coordinates up to 180 x 90 (tiny lakes far from
+    # the origin), far below the 0.1 square degree cut.
+    np.testing.assert_allclose(geography.ring_areas(rings), expected, rtol=1e-9, atol=1e-9)
+    assert geography.ring_areas([]).size == 0
+
+
+def test_withheld_lines_read_the_coastline_file_alone(monkeypatch, demo_dir):
+    """On another geography only the coastline is read to judge the agreement: the
+    lakes, borders and state lines that would be left off are never read."""
+    _files()
+    read = []
+    original = geography.shapefile_lines
+    monkeypatch.setattr(geography, "shapefile_lines",
+                        lambda path, min_area=0.0: read.append(path) or original(path, min_area))
+    mask, _ = read_land_mask(demo_dir / "archive" / "static" / "land_sea_mask.nc")
+    assert geography.map_lines(mask["lat"].values, mask["lon"].values, mask).withheld
+    assert read == [str(geography.line_files(geography.data_folders())["coastline"])]
+
+
 def test_nearest_index_equals_the_brute_force_nearest_point():
     """The binary search of nearest_index gives numpy's argmin of |coordinate - value|
     (the plain definition) on an uneven ascending axis, at values outside it too;

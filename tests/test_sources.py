@@ -1010,3 +1010,64 @@ def test_store_moisture_from_dewpoint_or_humidity_and_temperature(tmp_path):
         warnings.simplefilter("error")  # nothing computed, nothing to say
         ds = open_archive(tmp_path / "both.nc")
     np.testing.assert_allclose(ds["q850"].values, q)
+
+
+# --------------------------------------------------------------------------- common units
+
+def test_common_units_table_agrees_with_the_unit_registry():
+    """Every spelling the reader answers without the registry (_COMMON_UNITS) converts
+    exactly as cf-xarray's pint registry of CF / UDUNITS units says (the reference), for
+    every field and as a pressure level."""
+    from analogs.stages.sources import (
+        _COMMON_UNITS,
+        _UNIT_SPELLINGS,
+        _affine,
+        _common_conversion,
+        _field_conversion,
+        _parse_units,
+        _pressure_unit,
+    )
+    spellings = list(_COMMON_UNITS) + [k for k, v in _UNIT_SPELLINGS.items()
+                                       if v in _COMMON_UNITS]
+    for text in spellings:
+        unit = _parse_units(text)
+        assert unit is not None, text
+        for field in ("z500", "q850", "td2m", "pwat"):
+            assert _common_conversion(text, field) == _field_conversion(unit, field), \
+                (text, field)
+        is_pressure = unit.dimensionality == {"[mass]": 1, "[length]": -1, "[time]": -2}
+        assert _pressure_unit(text) == ((True, _affine(unit, "hPa")[0]) if is_pressure
+                                        else (False, None)), text
+    # Each entry is a pressure, accepted by some field, or a coordinate's angle.
+    assert all(_pressure_unit(text)[0] or _COMMON_UNITS[text][0] == "angle" or any(
+        _common_conversion(text, f) for f in ("z500", "q850", "td2m", "pwat"))
+        for text in _COMMON_UNITS)
+
+
+def test_units_outside_the_table_still_go_to_the_registry():
+    """Spellings not in the table keep the registry's answer: ft is a length (0.3048 m,
+    international foot, from memory), percent is no ratio of masses, bar is 1000 hPa."""
+    from analogs.stages.sources import _COMMON_UNITS, _conversion_of, _pressure_unit
+    assert "ft" not in _COMMON_UNITS and "bar" not in _COMMON_UNITS
+    assert _conversion_of("ft", "z500") == (0.3048, 0.0)
+    assert _pressure_unit("bar") == (True, 1000.0)
+    assert _pressure_unit("percent") == (False, None)
+
+
+def test_reading_common_units_does_not_build_the_registry(tmp_path):
+    """A demo-style archive (m, kg kg-1, levels in Pa) is read without building the
+    pint registry (about 0.7 s of a report's archive read): checked in a fresh process,
+    where nothing else has imported cf_xarray.units."""
+    import subprocess
+    import sys
+    from pathlib import Path
+    paths = write_demo_style(tmp_path, daily_times("2001-06-01", periods=5))
+    code = ("import sys; from analogs.stages.sources import open_target, open_archive; "
+            f"open_target({str(paths[0])!r}, time='all', fields=['z500']); "
+            f"open_target({str(paths[1])!r}, time='all', fields=['q850']); "
+            f"open_archive({[str(p) for p in paths]!r}); "
+            "print('cf_xarray.units' in sys.modules)")
+    root = Path(__file__).resolve().parents[1]
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                         check=True, env={**__import__("os").environ, "PYTHONPATH": str(root)})
+    assert out.stdout.split() == ["False"]

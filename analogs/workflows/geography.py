@@ -95,10 +95,23 @@ def shapefile_lines(path: str, min_area: float = 0.0) -> tuple[np.ndarray, ...]:
             bounds = list(shape.parts) + [len(points)]
             lines.extend(points[a:b] for a, b in pairwise(bounds) if b - a > 1)
     if min_area > 0.0:
-        lines = [ring for ring in lines if 0.5 * abs(
-            float(np.dot(ring[:, 0], np.roll(ring[:, 1], 1))
-                  - np.dot(ring[:, 1], np.roll(ring[:, 0], 1)))) >= min_area]
+        lines = [ring for ring, area in zip(lines, ring_areas(lines)) if area >= min_area]
     return tuple(lines)
+
+
+def ring_areas(rings) -> np.ndarray:
+    """Area enclosed by each ring ((n, 2) arrays of x, y; closed or not), by the
+    shoelace formula, every ring in one array pass (a numpy call per ring took most of
+    the time of reading GSHHS's lakes)."""
+    if not rings:
+        return np.zeros(0)
+    points = np.concatenate(rings)
+    lengths = np.array([len(ring) for ring in rings])
+    starts = np.cumsum(lengths) - lengths
+    previous = np.roll(points, 1, axis=0)
+    previous[starts] = points[starts + lengths - 1]  # each ring's first vertex follows its last
+    terms = points[:, 0] * previous[:, 1] - points[:, 1] * previous[:, 0]
+    return 0.5 * np.abs(np.add.reduceat(terms, starts))
 
 
 def map_lines(lat, lon, land=None) -> MapLines | None:
@@ -113,12 +126,16 @@ def map_lines(lat, lon, land=None) -> MapLines | None:
     if not files:
         return None
     box = (float(np.min(lon)), float(np.max(lon)), float(np.min(lat)), float(np.max(lat)))
-    lines = {kind: clip_lines(shapefile_lines(str(path), MIN_LAKE_AREA_DEG2 if kind == "lake"
-                                              else 0.0), *box)
-             for kind, path in files.items()}
+
+    def clipped(kind):
+        minimum = MIN_LAKE_AREA_DEG2 if kind == "lake" else 0.0
+        return clip_lines(shapefile_lines(str(files[kind]), minimum), *box)
+
     source = _source_name(files)
+    lines = {"coastline": clipped("coastline")} if "coastline" in files else {}
     if land is not None:
-        # Judged on the sea coast alone: a coarse mask may count a lake as land.
+        # Judged on the sea coast alone (a coarse mask may count a lake as land), before
+        # the other files are read: withheld lines are not read at all.
         from analogs.stages.landmask import coast_agreement
         agreement = coast_agreement(land, lines.get("coastline", []))
         if agreement is not None and agreement < MIN_COAST_AGREEMENT:
@@ -126,6 +143,7 @@ def map_lines(lat, lon, land=None) -> MapLines | None:
             return MapLines(source=source, withheld=(
                 f"{source} {drawn} left off: only {100 * agreement:.0f} % "
                 "of that coastline lies near the archive's own coast (another geography)"))
+    lines.update({kind: clipped(kind) for kind in files if kind not in lines})
     # Lake shores are drawn as coastlines (where land meets water).
     lines["coastline"] = lines.get("coastline", []) + lines.pop("lake", [])
     return MapLines(**lines, source=source)

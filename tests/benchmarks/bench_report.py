@@ -14,7 +14,12 @@ not write it), so every map draws the land-sea boundary. ``find --report`` is ti
 twice: with the archive at hand (the maps draw the archive's own fields, read for the
 drawn days only) and with the archive folder moved aside (the EOF reconstruction).
 Each command's CPU seconds (user + system of the child) are printed beside the wall
-times: on a shared machine they move less with the load than the wall time does.
+times: on a shared machine they move less with the load than the wall time does. The
+children keep their bytecode in ``OUT/bytecode`` whatever PYTHONDONTWRITEBYTECODE says,
+as an installed package has its modules compiled (``--no-bytecode-cache``: not; the
+report imports more of the package than ``--json``, so compiling it at each run, about
+0.6 s, weighed on the ratio). ``--tree DIR`` times another checkout's package (e.g. the
+main branch) with this script, for a comparison in the same session.
 
     python tests/benchmarks/bench_report.py --out /tmp/analogs-bench-report [--top default]
 
@@ -35,7 +40,9 @@ import time
 from pathlib import Path
 
 ROOT = Path(__file__).resolve().parents[2]
-sys.path.insert(0, str(ROOT))  # this tree's package in process, as the subprocesses use
+#: The package tree timed (``--tree``, default this one) and where the children keep
+#: their bytecode (None: as PYTHONDONTWRITEBYTECODE says).
+TIMED = {"tree": ROOT, "bytecode": None}
 
 
 def make_store(out: Path, years: int) -> Path:
@@ -74,7 +81,10 @@ CPU_SECONDS: list[float] = []
 
 
 def timed(command) -> float:
-    env = dict(os.environ, PYTHONPATH=str(ROOT), MPLBACKEND="Agg")
+    env = dict(os.environ, PYTHONPATH=str(TIMED["tree"]), MPLBACKEND="Agg")
+    if TIMED["bytecode"] is not None:
+        env.pop("PYTHONDONTWRITEBYTECODE", None)
+        env["PYTHONPYCACHEPREFIX"] = str(TIMED["bytecode"])
     before = resource.getrusage(resource.RUSAGE_CHILDREN)
     start = time.perf_counter()
     subprocess.run(command, check=True, env=env, stdout=subprocess.DEVNULL,
@@ -94,8 +104,16 @@ def main(argv=None) -> int:
     parser.add_argument("--date", default=None, help="target day (default: a July day)")
     parser.add_argument("--top", default="20", help="number of analogs, or 'default' for "
                         "the query's default (50 with the event-weighted metric)")
+    parser.add_argument("--tree", type=Path, default=ROOT,
+                        help="checkout whose package is timed (default: this one)")
+    parser.add_argument("--no-bytecode-cache", action="store_true",
+                        help="let the children follow PYTHONDONTWRITEBYTECODE (compile every "
+                             "module they import at each run)")
     args = parser.parse_args(argv)
     args.out.mkdir(parents=True, exist_ok=True)
+    TIMED["tree"] = args.tree.resolve()
+    TIMED["bytecode"] = None if args.no_bytecode_cache else args.out / "bytecode"
+    sys.path.insert(0, str(TIMED["tree"]))  # that tree's package in process too
     store = make_store(args.out, args.years)
 
     from analogs.api import AnalogStore
@@ -139,6 +157,7 @@ def main(argv=None) -> int:
         page_times.append(time.perf_counter() - start)
 
     summary = {
+        "tree": str(TIMED["tree"]), "bytecode_cache": TIMED["bytecode"] is not None,
         "date": date, "top": args.top, "runs": args.runs, "load_average": os.getloadavg()[0],
         "find_json_median_s": statistics.median(json_times),
         "find_report_median_s": statistics.median(report_times),

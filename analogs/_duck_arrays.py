@@ -1,0 +1,77 @@
+"""xarray's checks for dask and pint arrays without importing dask.array and pint.
+
+xarray asks, for every array it wraps or converts, whether it is a dask array or a pint
+quantity (``xarray.namedarray.pycompat.array_type``), and to know the classes it
+imports those libraries on first use: ``dask.array`` (which imports ``scipy.sparse``)
+and ``pint`` cost about 0.4 s of CPU in a ``find --report`` that holds neither kind of
+array. An object of ``dask.array.Array`` or ``pint.Quantity`` cannot exist before its
+module is imported, so the check "is ``x`` such an array" is answered exactly by looking
+for the module in ``sys.modules`` first: :func:`defer_duck_array_imports` gives xarray
+that check, and the library itself, with its version, when xarray asks for more than
+the class. It relies on xarray's record of these libraries (``pycompat.
+_cached_duck_array_modules``, ``DuckArrayModule``; xarray 2023.x to 2026.x): where a
+version of xarray has no such record, or has already filled it, it changes nothing and
+xarray imports the libraries as before (tests/test_duck_arrays.py runs both paths).
+"""
+
+from __future__ import annotations
+
+import functools
+import importlib.util
+import sys
+
+#: The duck-array libraries deferred: xarray's name of each, and where its array class is.
+DEFERRED = {"dask": ("dask.array", "Array"), "pint": ("pint", "Quantity")}
+
+
+class _ClassOnceImported(type):
+    """Metaclass of a stand-in whose isinstance check is that of the named class when
+    its module is imported, and False before (no instance can exist yet)."""
+
+    def __instancecheck__(cls, instance) -> bool:
+        module = sys.modules.get(cls.module_name)
+        real = getattr(module, cls.class_name, None) if module is not None else None
+        return real is not None and isinstance(instance, real)
+
+
+def defer_duck_array_imports() -> bool:
+    """Give xarray the deferred checks of :data:`DEFERRED` (see the module's docstring);
+    True when they are in place (now or from an earlier call), False when this xarray
+    keeps its own."""
+    try:
+        from xarray.namedarray import pycompat
+        cache, record = pycompat._cached_duck_array_modules, _deferred_record_class()
+    except (ImportError, AttributeError, TypeError):
+        return False
+    if not isinstance(cache, dict):
+        return False
+    for name, (module_name, _) in DEFERRED.items():
+        if name not in cache and module_name not in sys.modules \
+                and importlib.util.find_spec(name) is not None:
+            cache[name] = record(name)
+    return any(isinstance(cache.get(name), record) for name in DEFERRED)
+
+
+@functools.cache
+def _deferred_record_class():
+    """A subclass of xarray's record of a duck-array library whose class check is
+    deferred (:class:`_ClassOnceImported`); the rest (the module, its version, whether
+    it is there) is xarray's own record, built when first asked for."""
+    from xarray.namedarray.pycompat import DuckArrayModule
+
+    class DeferredRecord(DuckArrayModule):
+        def __init__(self, name: str) -> None:  # xarray's __init__ would import it
+            self.name = name
+            module_name, class_name = DEFERRED[name]
+            self.type = (_ClassOnceImported(f"Deferred{class_name}", (), {
+                "module_name": module_name, "class_name": class_name}),)
+
+        @functools.cached_property
+        def _loaded(self):
+            return DuckArrayModule(self.name)
+
+        module = property(lambda self: self._loaded.module)
+        version = property(lambda self: self._loaded.version)
+        available = property(lambda self: self._loaded.available)
+
+    return DeferredRecord

@@ -1,0 +1,92 @@
+"""analogs._duck_arrays: xarray's dask / pint checks deferred until those libraries are
+imported. The reference is xarray itself: the same script run in a fresh process with
+and without the deferred checks must print the same (dask chunks, a masked dask array's
+values, a pint quantity kept as data and its magnitudes, the repr of a dask-backed
+DataArray)."""
+
+from __future__ import annotations
+
+import os
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+
+ROOT = Path(__file__).resolve().parents[1]
+
+#: Exercises every use xarray makes of its dask and pint records.
+SCRIPT = """
+import sys
+import numpy as np
+{install}
+import xarray as xr
+plain = xr.DataArray(np.arange(3.0), dims="x")
+print(float(plain.sum()), plain.to_numpy().tolist())
+print("before", "dask.array" in sys.modules, "pint" in sys.modules)
+import dask.array as da
+import pint
+print(xr.DataArray(da.ones(4, chunks=2), dims="x").chunks)
+masked = da.from_array(np.ma.masked_array([1.0, 2.0, 3.0], mask=[0, 1, 0]), chunks=2)
+print(xr.Variable("x", masked).values.tolist())
+print(repr(xr.DataArray(da.zeros((2, 2), chunks=1), dims=("y", "x"))))
+quantity = xr.DataArray(pint.UnitRegistry().Quantity(np.ones(2), "m"), dims="x")
+print(type(quantity.data).__name__, quantity.to_numpy().tolist())
+from xarray.namedarray.pycompat import mod_version
+print(mod_version("dask"), mod_version("pint"))
+"""
+
+
+def _run(install: str) -> list[str]:
+    out = subprocess.run([sys.executable, "-c", SCRIPT.format(install=install)],
+                         capture_output=True, text=True, check=True,
+                         env={**os.environ, "PYTHONPATH": str(ROOT)})
+    return out.stdout.splitlines()
+
+
+def test_deferred_checks_answer_as_xarray_does_and_import_nothing_early():
+    deferred = _run("from analogs._duck_arrays import defer_duck_array_imports; "
+                    "print(defer_duck_array_imports())")
+    plain = _run("")
+    assert deferred[0] == "True"
+    assert deferred[2] == "before False False"  # numpy-only work imported neither
+    assert plain[1] == "before True True"  # xarray's own records import both
+    assert deferred[3:] == plain[2:]
+    assert deferred[1] == plain[0]
+
+
+def test_without_xarrays_record_nothing_changes(monkeypatch):
+    """An xarray without the record (renamed or removed in a later version): the
+    function says so and xarray keeps its own checks."""
+    from xarray.namedarray import pycompat
+
+    from analogs._duck_arrays import defer_duck_array_imports
+    monkeypatch.delattr(pycompat, "_cached_duck_array_modules")
+    assert defer_duck_array_imports() is False
+
+
+def test_a_record_xarray_already_built_is_kept(monkeypatch):
+    from xarray.namedarray import pycompat
+
+    from analogs._duck_arrays import defer_duck_array_imports
+    built = {name: pycompat.DuckArrayModule(name) for name in ("dask", "pint")}
+    monkeypatch.setattr(pycompat, "_cached_duck_array_modules", dict(built))
+    assert defer_duck_array_imports() is False
+    assert pycompat._cached_duck_array_modules == built
+
+
+@pytest.mark.parametrize("command", [["--report", "REPORT"], ["--json"]])
+def test_find_report_imports_neither_library(demo_store, tmp_path, command):
+    """`find --report` draws its maps without importing dask.array or pint (about 0.4 s
+    of CPU), and `find --json` still imports no xarray at all."""
+    command = [str(tmp_path / "report") if part == "REPORT" else part for part in command]
+    code = ("import sys; from analogs.cli import main; "
+            f"main(['find', '--store', {str(demo_store.path)!r}, '--date', "
+            f"{str(demo_store.days[400].date())!r}, *{command!r}]); "
+            "print([m for m in ('xarray', 'dask.array', 'pint') if m in sys.modules], "
+            "file=sys.stderr)")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                         check=True, env={**os.environ, "PYTHONPATH": str(ROOT),
+                                          "MPLBACKEND": "Agg"})
+    imported = out.stderr.strip().splitlines()[-1]
+    assert imported == ("['xarray']" if "--report" in command else "[]")
