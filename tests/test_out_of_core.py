@@ -11,6 +11,8 @@ checked against brute-force Euclidean nearest neighbours from scikit-learn
 
 from __future__ import annotations
 
+import json
+
 import numpy as np
 import pytest
 
@@ -325,3 +327,135 @@ def test_scratch_folder_given(small_archive, chunked, tmp_path, monkeypatch, cap
                        *arguments])
         message = capsys.readouterr().err
         assert status == 2 and expected in message and "Traceback" not in message
+
+
+def _memmap_maker(folder, made):
+    def scratch(shape, dtype):
+        made.append(np.memmap(folder / f"copy{len(made)}.bin", dtype=dtype, mode="w+",
+                              shape=tuple(shape)))
+        return made[-1]
+    return scratch
+
+
+def _write_gappy_360_files(folder):
+    """Per-variable, per-year files on a global 5-degree grid in 0-360 longitudes with
+    latitude descending (as NCEP's), z500 holding a one-day gap at one point (filled in
+    time), a point missing on every day (kept missing, a mask), and q850 an infinite
+    value (counted, then filled as a missing one)."""
+    import pandas as pd
+    import xarray as xr
+    from _sources_helpers import (
+        LAT,
+        LON,
+        daily_times,
+        smooth_height,
+        smooth_humidity,
+        to_360,
+    )
+
+    times = pd.DatetimeIndex(daily_times("2001-12-15", periods=30))
+    lon360, order = to_360(LON)
+    z = smooth_height(times)[:, ::-1][:, :, order]
+    q = smooth_humidity(times)[:, ::-1][:, :, order].astype(np.float32)
+    z[6, 12, 40] = np.nan
+    z[:, 20, 32] = np.nan
+    q[3, 10, 38] = np.inf
+    paths = []
+    for year in (2001, 2002):
+        sel = np.flatnonzero(times.year == year)
+        coords = {"time": times[sel], "lat": ("lat", LAT[::-1], {"units": "degrees_north"}),
+                  "lon": ("lon", lon360, {"units": "degrees_east"})}
+        for name, values, units in (("hgt", z, "gpm"), ("shum", q, "kg/kg")):
+            path = folder / f"{name}_{year}.nc"
+            xr.Dataset({name: (("time", "lat", "lon"), values[sel], {"units": units})},
+                       coords=coords).to_netcdf(path)
+            paths.append(str(path))
+    return paths
+
+
+def test_archive_decoded_once_is_the_archive_read_lazily_or_in_memory(tmp_path):
+    """``open_archive(chunks=..., scratch=...)`` (each field decoded from the files once
+    into a memory-mapped copy, every later pass reading its chunks from there) gives
+    exactly the in-memory read's and the lazy read's values and missing-data report: on
+    files given in any order, in 0-360 longitudes with latitude descending, over a region
+    across the date line, with a one-day gap filled, an infinite value counted and
+    filled, and a masked point kept missing (the census, taken while decoding, gives the
+    same report); its chunks come from the copy, not the files. External reference: the values read from
+    the files with netCDF4 directly, placed on the canonical grid by hand."""
+    import netCDF4
+
+    from analogs.stages.sources import open_archive
+
+    files = _write_gappy_360_files(tmp_path)
+    region = (-30.0, 60.0, 150.0, -150.0)  # across the date line
+    made = []
+    options = {"fields": ["z500", "q850"], "region": region}
+    with pytest.warns(UserWarning, match="filled"):
+        in_memory = open_archive(files, **options)
+    with pytest.warns(UserWarning, match="filled"):
+        lazy = open_archive(files, chunks={"time": 7}, **options)
+    with pytest.warns(UserWarning, match="filled"):
+        once = open_archive(files[::-1], chunks={"time": 7},
+                            scratch=_memmap_maker(tmp_path, made), **options)
+    assert len(made) == 2
+    for name in ("z500", "q850"):
+        data = once[name].data
+        assert data.chunks[0][:4] == (7, 7, 7, 7)
+        layers = data.__dask_graph__().layers
+        assert any(k.startswith(f"archive-{name}") for k in layers)
+        assert not any(k.startswith("open_dataset") for k in layers)  # no file read
+        assert once[name].dtype == in_memory[name].dtype
+        np.testing.assert_array_equal(once[name].values, in_memory[name].values)
+        np.testing.assert_array_equal(lazy[name].values, in_memory[name].values)
+    assert once.attrs["missing_data"] == in_memory.attrs["missing_data"]
+    report = json.loads(once.attrs["missing_data"])  # the census taken while decoding
+    assert report["n_values_filled"] == 2 and report["n_infinite_values"] == 1
+    assert np.isnan(once["z500"].values).sum() > 0  # the masked point, kept missing
+
+    lon = once["lon"].values
+    assert lon.min() <= -150.0 and lon.max() >= 150.0  # both sides of 180
+    z = np.concatenate([netCDF4.Dataset(p)["hgt"][:].filled(np.nan) for p in sorted(files)
+                        if "hgt" in p])
+    with netCDF4.Dataset(files[0]) as first:
+        file_lat, file_lon = first["lat"][:], first["lon"][:]
+    rows = [int(np.flatnonzero(np.isclose(file_lat, v))[0]) for v in once["lat"].values]
+    cols = [int(np.flatnonzero(np.isclose(file_lon, v % 360.0))[0]) for v in lon]
+    expected = z[:, rows][:, :, cols]
+    unfilled = ~np.isnan(expected)  # the gap's value is the filled one, checked above
+    np.testing.assert_array_equal(once["z500"].values[unfilled], expected[unfilled])
+
+
+def test_scratch_rows_released_and_read_back(tmp_path):
+    """Rows written through a memory-mapped scratch array (at a file offset that is not
+    a page boundary) and dropped from resident memory (``release_rows``) read back,
+    through ``chunked_copy``, as the file holds them (external reference:
+    ``numpy.fromfile`` of the file), and the dropped pages leave the process's resident
+    file-backed memory (``RssFile`` of /proc/self/status, Linux)."""
+    import mmap
+    import os
+
+    from analogs.stages.scratch import chunked_copy, release_rows
+
+    if not hasattr(mmap.mmap, "madvise") or not os.path.exists("/proc/self/status"):
+        pytest.skip("needs madvise and /proc (Linux)")
+
+    def rss_file_kb():
+        with open("/proc/self/status") as status:
+            return int(status.read().split("RssFile:")[1].split()[0])
+
+    path, offset, shape = tmp_path / "rows.bin", 100, (64, 256, 1024)  # 64 MiB of float32
+    path.write_bytes(b"\0" * offset)
+    rows = np.memmap(path, dtype=np.float32, mode="r+", offset=offset, shape=shape)
+    values = np.random.default_rng(3).standard_normal(shape).astype(np.float32)
+    rows[:] = values
+    before = rss_file_kb()
+    for start in range(0, shape[0], 10):
+        release_rows(rows, start, min(start + 10, shape[0]))
+    assert before - rss_file_kb() > 0.9 * values.nbytes / 1024
+    copy = chunked_copy(rows, (10, -1, -1), "rows-test")
+    assert copy.chunks[0] == (10,) * 6 + (4,)
+    from_file = np.fromfile(path, dtype=np.float32, offset=offset).reshape(shape)
+    np.testing.assert_array_equal(copy.compute(), from_file)
+    np.testing.assert_array_equal(copy[13:29, 5:9, ::7].compute(), values[13:29, 5:9, ::7])
+    plain = chunked_copy(values, (10, -1, -1), "plain-test")  # not a file: as it is
+    np.testing.assert_array_equal(plain.compute(), values)

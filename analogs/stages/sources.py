@@ -197,7 +197,7 @@ class _Candidate:
 
 def open_archive(paths, *, fields=None, region=None, hour=P.hour.default,
                  daily=P.daily.default, chunks=None, progress=False, max_missing_fraction=0.1,
-                 max_gap_days=2) -> xr.Dataset:
+                 max_gap_days=2, scratch=None) -> xr.Dataset:
     """Open one or many NetCDF / Zarr / GRIB files as a canonical daily archive.
 
     Parameters
@@ -230,6 +230,11 @@ def open_archive(paths, *, fields=None, region=None, hour=P.hour.default,
     max_gap_days : int
         Runs of at most this many consecutive missing days at a grid point are filled
         by linear interpolation in time; a point missing for longer drops those days.
+    scratch : callable ``(shape, dtype) -> writeable array``, optional
+        With ``chunks`` (a whole number of days in time): each field is decoded from
+        the files once, in one pass, into an array from ``scratch`` (the out-of-core
+        build's memory-mapped scratch file), and the archive returned reads its chunks
+        from there (:func:`_decoded_once`).
 
     Returns
     -------
@@ -263,9 +268,13 @@ def open_archive(paths, *, fields=None, region=None, hour=P.hour.default,
     if south_north_west_east is not None:
         ds = subset_region(ds, south_north_west_east, source=_describe(files))
     with guard:  # the first pass over every value
+        census = None
+        if scratch is not None and _whole_chunks(chunks):
+            ds, census = _decoded_once(ds, scratch, chunks)
         ds, report = apply_missing_data_policy(ds, max_missing_fraction=max_missing_fraction,
                                                max_gap_days=max_gap_days,
-                                               source=_describe(files), origins=origins)
+                                               source=_describe(files), origins=origins,
+                                               census=census)
     guard.check_unchanged()
     report["n_duplicate_times_dropped"] = int(duplicates)
     if not chunks:
@@ -274,6 +283,48 @@ def open_archive(paths, *, fields=None, region=None, hour=P.hour.default,
         ds = ds.chunk({k: v for k, v in chunks.items() if k in ds.dims})
     ds.attrs = {"source_files": "; ".join(files), "missing_data": json.dumps(report)}
     return ds
+
+
+def _whole_chunks(chunks):
+    """Whether ``chunks`` is a dask layout by whole numbers of days (and of grid points)."""
+    return bool(chunks) and set(chunks) <= {"time", "lat", "lon"} and all(
+        isinstance(size, int) and size > 0 for size in chunks.values())
+
+
+def _decoded_once(ds, scratch, chunks):
+    """(``ds`` (lazy) with each field decoded from its files once, a time chunk at a
+    time, into an array from ``scratch``, and read back from there chunk by chunk
+    (:func:`analogs.stages.scratch.chunked_copy`); its missing-data census).
+
+    The census (:func:`_missing_stats`) is taken from each chunk while it is in hand;
+    every later pass over the archive (the climatology, the EOF's anomalies, tagging)
+    reads plain values instead of decompressing and converting the files again: out of
+    core the archive was decoded four times. The values are the lazy archive's own,
+    computed by the same tasks, so no answer changes."""
+    import uuid
+
+    import dask
+
+    from analogs.stages.scratch import chunked_copy, release_rows
+    names, n_days = list(ds.data_vars), ds.sizes["time"]
+    step = chunks.get("time", n_days)
+    copies = {name: scratch(ds[name].shape, ds[name].dtype) for name in names}
+    counted = {name: [] for name in names}
+    for start in range(0, n_days, step):
+        stop = min(start + step, n_days)
+        for name, values in zip(names, dask.compute(*[ds[name].data[start:stop]
+                                                        for name in names])):
+            copies[name][start:stop] = values
+            release_rows(copies[name], start, stop)
+            counted[name].append(_missing_stats_in_memory(values))
+    token = uuid.uuid4().hex
+    census = {name: {"point": sum(part["point"] for part in parts),
+                     **{key: np.concatenate([part[key] for part in parts])
+                        for key in ("day", "inf", "min", "max")}}
+              for name, parts in counted.items()}
+    return ds.assign({name: (ds[name].dims, chunked_copy(
+        copies[name], tuple(chunks.get(dim, -1) for dim in ds[name].dims),
+        f"archive-{name}-{token}"), ds[name].attrs) for name in names}), census
 
 
 def open_target(path, *, time=None, fields=None, members=False) -> xr.Dataset:
@@ -1343,7 +1394,7 @@ _NAMED_IN_MESSAGES = 3
 
 
 def apply_missing_data_policy(ds, *, max_missing_fraction=0.1, max_gap_days=2,
-                              source="the archive", origins=None):
+                              source="the archive", origins=None, census=None):
     """Handle missing values (NaN, and infinite values, which count as missing) of a
     canonical archive explicitly, in proportion to how much is missing.
 
@@ -1382,6 +1433,9 @@ def apply_missing_data_policy(ds, *, max_missing_fraction=0.1, max_gap_days=2,
     origins : dict, optional
         ``{field: [(path, variable, times), ...]}``: which file and variable each time
         of each field came from, so that messages name them.
+    census : dict, optional
+        The counts and daily extremes of :func:`_missing_stats` when they were taken
+        already (while the archive was decoded once, :func:`_decoded_once`).
 
     Returns
     -------
@@ -1394,7 +1448,7 @@ def apply_missing_data_policy(ds, *, max_missing_fraction=0.1, max_gap_days=2,
     times = pd.DatetimeIndex(ds["time"].values)
     names = list(ds.data_vars)
     lat, lon = ds["lat"].values, ds["lon"].values
-    stats = _missing_stats(ds)
+    stats = _missing_stats(ds) if census is None else census
     ds = _plausibility_gate(ds, stats, times, source, origins)
     n_infinite = _report_infinite(stats, times, source, origins)
     if n_infinite:

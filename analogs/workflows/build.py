@@ -192,7 +192,7 @@ def build_store(paths, store, *, events=None, event_dates=P.event_dates.default,
                           daily=daily, n_harmonics=n_harmonics, solver=solver,
                           field_weights=field_weights, chunks=chunks, index=index,
                           progress=progress, reads_done=guard.check_unchanged, mask=mask,
-                          scratch=scratch)
+                          scratch=scratch, threaded=scheduler is None)
 
 
 #: A dask scheduler address: an optional scheme, a host name, IPv4 or [IPv6] address,
@@ -252,52 +252,57 @@ def _dask_scheduler(address):
 def _build(paths, store, *, events, event_dates, events_period, fields, n_modes, variance,
            region, domain, hour, daily,
            n_harmonics, solver, field_weights, chunks, index, progress,
-           reads_done=lambda: None, mask=None, scratch=None):
+           reads_done=lambda: None, mask=None, scratch=None, threaded=True):
     from analogs.stages.regimes import tag_days
     from analogs.stages.sources import open_archive
-    archive = open_archive(paths, fields=fields, region=domain, hour=hour, daily=daily,
-                           chunks=chunks, progress=progress)
-    if archive.sizes["time"] < 3:
-        raise AnalogsInputError(
-            f"the archive has {archive.sizes['time']} days; at least 3 are needed to build a store")
-    region.require_grid_points(archive["lat"].values, archive["lon"].values)
-    land, land_entry = _land_on_store_grid(mask, paths, archive)
-    event_table, n_outside = (None, 0) if events is None else load_events(
-        events, archive["lat"].values, archive["lon"].values, dates=event_dates)
+    # Out of core, the scratch folder holds the archive decoded once (read back by every
+    # pass: census, climatology, EOF, tagging; not with a distributed scheduler, whose
+    # workers read the files themselves) and the EOF's anomaly matrix.
+    with _scratch_files(store, chunked=chunks is not None, progress=progress,
+                        folder=scratch) as make_scratch:
+        archive = open_archive(paths, fields=fields, region=domain, hour=hour, daily=daily,
+                               chunks=chunks, progress=progress,
+                               scratch=make_scratch if threaded else None)
+        if archive.sizes["time"] < 3:
+            raise AnalogsInputError(f"the archive has {archive.sizes['time']} days; at "
+                                    "least 3 are needed to build a store")
+        region.require_grid_points(archive["lat"].values, archive["lon"].values)
+        land, land_entry = _land_on_store_grid(mask, paths, archive)
+        event_table, n_outside = (None, 0) if events is None else load_events(
+            events, archive["lat"].values, archive["lon"].values, dates=event_dates)
 
-    climatology = HarmonicClimatology(n_harmonics=n_harmonics).fit(archive)
-    # Anomalies in the archive's float32, made block-wise; the EOF fit scales them in
-    # place into its data matrix (one copy of the archive beside the archive itself).
-    # Out of core, that copy is a scratch file written in one pass over the archive.
-    with _scratch_files(store, archive, chunked=chunks is not None, progress=progress,
-                        folder=scratch) as scratch:
+        climatology = HarmonicClimatology(n_harmonics=n_harmonics).fit(archive)
+        # Anomalies in the archive's float32, made block-wise; the EOF fit scales them in
+        # place into its data matrix (one copy of the archive beside the archive itself).
+        # Out of core, that copy is a scratch file written in one pass over the archive.
         eof = MultivariateEOF(n_modes, variance=variance, solver=solver,
                               field_weights=field_weights).fit(
-            climatology.transform(archive), overwrite=True, scratch=scratch)
-    pcs = eof.pcs_
-    errors = eof.training_error_.values
-    times = pd.DatetimeIndex(archive["time"].values)
-    # The tags need only the archive, the index check and the skill hindcast only the
-    # PCs: the tags are computed in a thread beside them (numpy and faiss release the
-    # GIL in their heavy loops). Started after the EOF fit, the build's memory peak, so
-    # the diagnostics' working memory never adds to it. No region: tag_days places the
-    # synoptic box at the domain's centre and says so.
-    with _beside(tag_days, archive, None if region.kind == "whole" else
-                 diagnostic_region(region, archive), progress=progress) as tagging:
-        index_info = _index_info(index, pcs.values, times)
-        skill, events_entry = None, None
-        if event_table is not None:
-            # Report coverage (analogs.workflows.reports): every archive day, or
-            # --events-period.
-            period = coverage_period(event_table, events_period,
-                                     default=(times[0], times[-1]), owner="build_store")
-            events_entry = events_block(events, event_table, [period], times.normalize(),
-                                        n_outside=n_outside)
-            observed = daily_event_counts(event_table, times.normalize(),
-                                          region)["total"].to_numpy() > 0
-            skill = measured_skill(pcs.values, times, observed,
-                                   covered_days(times, [period]), region=region)
-    tags = tagging.result()
+            climatology.transform(archive), overwrite=True, scratch=make_scratch)
+        pcs = eof.pcs_
+        errors = eof.training_error_.values
+        times = pd.DatetimeIndex(archive["time"].values)
+        # The tags need only the archive, the index check and the skill hindcast only the
+        # PCs: the tags are computed in a thread beside them (numpy and faiss release the
+        # GIL in their heavy loops). Started after the EOF fit, the build's memory peak, so
+        # the diagnostics' working memory never adds to it; inside the scratch folder's
+        # block, because out of core tagging reads the archive's decoded copy there. No
+        # region: tag_days places the synoptic box at the domain's centre and says so.
+        with _beside(tag_days, archive, None if region.kind == "whole" else
+                     diagnostic_region(region, archive), progress=progress) as tagging:
+            index_info = _index_info(index, pcs.values, times)
+            skill, events_entry = None, None
+            if event_table is not None:
+                # Report coverage (analogs.workflows.reports): every archive day, or
+                # --events-period.
+                period = coverage_period(event_table, events_period,
+                                         default=(times[0], times[-1]), owner="build_store")
+                events_entry = events_block(events, event_table, [period], times.normalize(),
+                                            n_outside=n_outside)
+                observed = daily_event_counts(event_table, times.normalize(),
+                                              region)["total"].to_numpy() > 0
+                skill = measured_skill(pcs.values, times, observed,
+                                       covered_days(times, [period]), region=region)
+        tags = tagging.result()
     manifest = {
         "config": {
             "fields": list(archive.data_vars),
@@ -393,13 +398,13 @@ _SCRATCH_MARGIN = 1.1
 
 
 @contextlib.contextmanager
-def _scratch_files(store, archive, *, chunked: bool, progress: bool, folder=None):
-    """For an out-of-core build, a maker of float32 memory-mapped arrays in a
-    temporary folder inside ``folder`` (default: beside ``store``), removed afterwards
-    (also on error); ``None`` for an in-memory build.
+def _scratch_files(store, *, chunked: bool, progress: bool, folder=None):
+    """For an out-of-core build, a maker of memory-mapped arrays in a temporary folder
+    inside ``folder`` (default: beside ``store``), removed afterwards (also on error);
+    ``None`` for an in-memory build.
 
-    The size (every field's values in float32) is said up front when ``progress`` is
-    on; a disk with less free space than that is refused before any is written.
+    Each array's size is said when it is made, with ``progress``; one that the disk has
+    no room for is refused before it is made.
     """
     if not chunked:
         yield None
@@ -407,30 +412,32 @@ def _scratch_files(store, archive, *, chunked: bool, progress: bool, folder=None
     given = folder is not None
     parent = Path(folder).resolve() if given else Path(store).resolve().parent
     parent.mkdir(parents=True, exist_ok=True)
-    n_bytes = 4 * sum(int(np.prod(archive[name].shape)) for name in archive.data_vars)
-    free = shutil.disk_usage(parent).free
-    if free < _SCRATCH_MARGIN * n_bytes:
-        raise AnalogsInputError(
-            f"the out-of-core build needs {n_bytes / 1e9:.2f} GB of scratch space for its "
-            f"float32 anomaly matrix in {parent} "
-            f"({'the scratch folder given' if given else 'beside the store'}), but only "
-            f"{free / 1e9:.2f} GB are free there; free some space or give a scratch "
-            "folder on a disk with room (--scratch DIR, or scratch= from Python)")
     folder = Path(tempfile.mkdtemp(prefix=".analogs-scratch-", dir=parent))
-    if progress:
-        print(f"analogs build: {n_bytes / 1e9:.2f} GB of scratch space in {folder} "
-              "(float32 anomalies, removed after the build)", file=sys.stderr)
+    # Sizes only: the arrays are let go by the stages that use them, so that their
+    # mapped pages (the EOF's anomaly matrix) are not resident while tagging runs.
     made = []
 
     def allocate(shape, dtype):
-        made.append(np.memmap(folder / f"matrix_{len(made)}.bin", dtype=dtype, mode="w+",
-                              shape=tuple(int(n) for n in shape)))
-        return made[-1]
+        n_bytes = np.dtype(dtype).itemsize * int(np.prod(shape))
+        free = shutil.disk_usage(parent).free
+        if free < _SCRATCH_MARGIN * n_bytes:
+            raise AnalogsInputError(
+                f"the out-of-core build needs {n_bytes / 1e9:.2f} GB of scratch space for "
+                f"its next array in {parent} "
+                f"({'the scratch folder given' if given else 'beside the store'}), with "
+                f"{sum(made) / 1e9:.2f} GB made there already, but only "
+                f"{free / 1e9:.2f} GB are free there; free some space or give a "
+                "scratch folder on a disk with room (--scratch DIR, or scratch= from Python)")
+        if progress:
+            print(f"analogs build: {n_bytes / 1e9:.2f} GB of scratch space in {folder} "
+                  "(removed after the build)", file=sys.stderr)
+        made.append(n_bytes)
+        return np.memmap(folder / f"matrix_{len(made)}.bin", dtype=dtype, mode="w+",
+                         shape=tuple(int(n) for n in shape))
 
     try:
         yield allocate
     finally:
-        made.clear()
         shutil.rmtree(folder, ignore_errors=True)
 def _land_on_store_grid(mask, paths, archive):
     """(land fraction on the archive's grid, manifest entry) from the ``--land-mask``
