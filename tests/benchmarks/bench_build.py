@@ -5,7 +5,11 @@ reused while their settings match):
 - ``y40_g1``: 40 years at 1 degree on the default domain (36 x 71 points);
 - ``y10_g025`` (with ``--quarter``): 10 years at 0.25 degree on
   (20, 54.75, -130, -60.25), 140 x 280 points (about 0.6 GB of NetCDF; generating it
-  takes several minutes on 2 cores).
+  takes several minutes on 2 cores);
+- ``large`` (with ``--large``): 40 years at 0.25 degree on the same domain (about 2.3 GB
+  of NetCDF, the archive ``bench_scale.py --sizes large`` writes; generating it takes
+  over an hour on 2 cores): the out-of-core build alone, ``--large-runs`` times (issue
+  18's target: under 150 s at under 4 GB peak), no floor and no in-memory build.
 
 Measured in one run, each task in its own child process (its peak resident memory is
 that process's VmHWM; its time excludes the interpreter's start-up):
@@ -24,6 +28,7 @@ Prints, per case, each median, the ratios build / floor and out-of-core / in-mem
 and each task's peak memory; then a JSON object (also written to OUT/bench_build.json).
 
 Run:  python tests/benchmarks/bench_build.py [--out DIR] [--runs 3] [--quarter] [--memory-only]
+      python tests/benchmarks/bench_build.py --large [--large-runs 1]
 """
 
 from __future__ import annotations
@@ -43,6 +48,7 @@ from bench_scale import archive_files, load_average, peak_rss_mb
 CASES = {
     "y40_g1": {"years": 40, "grid": 1.0, "domain": None},
     "y10_g025": {"years": 10, "grid": 0.25, "domain": [20.0, 54.75, -130.0, -60.25]},
+    "large": {"years": 40, "grid": 0.25, "domain": [20.0, 54.75, -130.0, -60.25]},
 }
 CHUNK_DAYS = 365
 N_MODES, N_OVERSAMPLES, N_POWER_ITER = 20, 20, 2
@@ -147,8 +153,14 @@ def bench_case(case: str, out: Path, args) -> dict:
     generation = generate(case, out)
     files = archive_files(out / case)
     events = str(out / case / "events.csv")
-    runs = args.runs if case == "y40_g1" else args.quarter_runs
+    runs = {"y40_g1": args.runs, "y10_g025": args.quarter_runs, "large": args.large_runs}[case]
     result = {"case": case, **CASES[case], "n_files": len(files), **generation}
+    if case == "large":
+        with tempfile.TemporaryDirectory(dir=out) as scratch:
+            spec = {"files": files, "events": events, "chunk_days": args.chunk_days,
+                    "store": str(Path(scratch) / "build_chunked")}
+            result["build_chunked"] = _summary([run_child("build", spec) for _ in range(runs)])
+        return result
     result["floor_read"] = _summary([run_child("read", {"files": files}) for _ in range(runs)])
     result["floor_svd"] = _summary([run_child("svd", {"files": files}) for _ in range(runs)])
     with tempfile.TemporaryDirectory(dir=out) as scratch:
@@ -199,6 +211,9 @@ def main(argv=None):
                         help="also the 10-year 0.25-degree case (large)")
     parser.add_argument("--quarter-runs", type=int, default=1)
     parser.add_argument("--only-quarter", action="store_true", help="skip the 1-degree case")
+    parser.add_argument("--large", action="store_true",
+                        help="only the 40-year 0.25-degree case, out of core")
+    parser.add_argument("--large-runs", type=int, default=1)
     parser.add_argument("--chunk-days", type=int, default=CHUNK_DAYS)
     parser.add_argument("--memory-only", action="store_true",
                         help="skip the out-of-core builds (half the run time)")
@@ -209,7 +224,7 @@ def main(argv=None):
         print(json.dumps(CHILD_TASKS[args.child](json.loads(args.spec))))
         return None
     args.out.mkdir(parents=True, exist_ok=True)
-    cases = ([] if args.only_quarter else ["y40_g1"]) + (
+    cases = ["large"] if args.large else ([] if args.only_quarter else ["y40_g1"]) + (
         ["y10_g025"] if args.quarter or args.only_quarter else [])
     results = {"load_average_start": load_average(), "cases": []}
     for case in cases:
