@@ -10,8 +10,13 @@ process pause inside the write, so each test kills it at a known stage.
 
 from __future__ import annotations
 
+import contextlib
+import errno
 import json
+import os
+import shutil
 import signal
+import subprocess
 import time
 
 import pytest
@@ -230,12 +235,6 @@ def test_live_writers_staging_is_kept_dead_ones_removed(tmp_path):
 # POSIX errors of those conditions (errno(3), from memory); fsync may report a full disk
 # (fsync(2), "ENOSPC ... no room for the data", from memory), so failing every fsync of
 # the writer is a faithful stand-in for a full disk when no small file system can be made.
-
-import contextlib
-import errno
-import os
-import shutil
-import subprocess
 
 
 def _new_days(tmp_path, n=15):

@@ -234,7 +234,7 @@ def test_reliability_diagram(hindcast):
     assert len(figure.axes) == 2
     top, bottom = figure.axes
     assert "Reliability" in top.get_title() and "May-Sep" in top.get_title()
-    line = [l for l in top.get_lines() if l.get_label() == "hindcast"][0]
+    line = [drawn for drawn in top.get_lines() if drawn.get_label() == "hindcast"][0]
     np.testing.assert_allclose(line.get_ydata(), [b["observed_frequency"] for b in table])
     assert [p.get_height() for p in bottom.patches] == [b["count"] for b in table]
 
@@ -246,7 +246,7 @@ def test_roc_diagram_area_matches_scikit_learn(hindcast):
     assert_not_blank(figure)
     (ax,) = figure.axes
     assert ax.get_xlabel() == "false alarm rate" and ax.get_ylabel() == "hit rate"
-    label = [l for l in ax.get_lines() if l.get_label().startswith("hindcast")][0].get_label()
+    label = [drawn for drawn in ax.get_lines() if drawn.get_label().startswith("hindcast")][0].get_label()
     assert f"area {roc_auc_score(o, p):.2f}" in label
 
 

@@ -1,13 +1,18 @@
 """`analogs update`: new days on the existing EOFs, idempotent, refusing other grids."""
 
 import hashlib
+import json
+import os
+import shutil
 
 import numpy as np
+import pandas as pd
 import pytest
 import xarray as xr
 
 from analogs.api import AnalogStore, build_store
 from analogs.cli import main
+from analogs.stages.outcomes import convective_day
 
 
 def _digests(path):
@@ -91,13 +96,6 @@ def test_update_from_python_returns_the_new_store(split_files, demo_dir, tmp_pat
 # Report history as data (issue 13): merged by date, coverage kept, days without reports
 # left out of every outcome statistic.
 
-import json
-import os
-import shutil
-
-import pandas as pd
-
-from analogs.stages.outcomes import convective_day
 
 #: Target of the climatology checks: a summer day of the first three years.
 OLD_DAY = "2002-07-15"
