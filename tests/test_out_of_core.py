@@ -281,6 +281,38 @@ def test_scratch_folder_is_removed_and_a_full_disk_refused(small_archive, chunke
     assert "Traceback" not in message and not (out / "store_full_cli").exists()
 
 
+def test_scratch_space_counts_arrays_not_yet_written(tmp_path, monkeypatch):
+    """Each scratch array is a sparse file until written (a fresh numpy.memmap: stat(2)
+    reports its size but few blocks, from memory), so the room checked for the next
+    array takes off what the earlier ones will still claim: two arrays that each fit in
+    the free space but not together are refused before the second is made, not left to
+    meet a full disk while written."""
+    import os
+    import shutil
+    from collections import namedtuple
+
+    from analogs.errors import AnalogsInputError
+    from analogs.workflows.build import _scratch_files
+
+    probe = np.memmap(tmp_path / "probe.bin", dtype="float32", mode="w+", shape=(2 ** 20,))
+    if os.stat(tmp_path / "probe.bin").st_blocks * 512 >= probe.nbytes:
+        pytest.skip("this file system allocates new files whole: no sparse scratch arrays")
+    del probe
+    n_bytes = 4 * 2 ** 20
+    usage = namedtuple("usage", "total used free")
+    free = int(1.5 * n_bytes)  # room for one array and its margin, not for two
+    monkeypatch.setattr(shutil, "disk_usage", lambda path: usage(10 ** 12, 10 ** 12 - free, free))
+    with _scratch_files(tmp_path / "store", chunked=True, progress=False) as make:
+        first = make((2 ** 20,), "float32")
+        with pytest.raises(AnalogsInputError, match="GB made there already"):
+            make((2 ** 20,), "float32")
+        # Once the first is written, its blocks are on disk: the free space reported by
+        # the file system is then what counts (here, unchanged by the stand-in).
+        first[:] = 1.0
+        first.flush()
+        make((2 ** 20,), "float32")
+
+
 def test_scratch_folder_given(small_archive, chunked, tmp_path, monkeypatch, capsys):
     """``--scratch DIR`` puts the scratch files in DIR (said up front, removed after),
     gives the same store as the default folder beside the store (the same anomaly

@@ -1237,7 +1237,8 @@ def _quantity_words(unit):
 
 def _convert_units(da, attrs, field, where, *, level_known=True, check_sample=True):
     """Convert ``da`` to the canonical units of ``field`` (common units by
-    :data:`_COMMON_UNITS`, any other through the unit registry); return it and the units it was read in (as stated, or inferred).
+    :data:`_COMMON_UNITS`, any other through the unit registry); return it and the
+    units it was read in (as stated, or inferred).
 
     Units naming another quantity, or that the registry cannot read, are refused.
     Missing units are inferred from the magnitude of the values, with a warning. With

@@ -192,7 +192,7 @@ def build_store(paths, store, *, events=None, event_dates=P.event_dates.default,
                           daily=daily, n_harmonics=n_harmonics, solver=solver,
                           field_weights=field_weights, chunks=chunks, index=index,
                           progress=progress, reads_done=guard.check_unchanged, mask=mask,
-                          scratch=scratch, threaded=scheduler is None)
+                          scratch=scratch, decode_to_scratch=scheduler is None)
 
 
 #: A dask scheduler address: an optional scheme, a host name, IPv4 or [IPv6] address,
@@ -252,7 +252,7 @@ def _dask_scheduler(address):
 def _build(paths, store, *, events, event_dates, events_period, fields, n_modes, variance,
            region, domain, hour, daily,
            n_harmonics, solver, field_weights, chunks, index, progress,
-           reads_done=lambda: None, mask=None, scratch=None, threaded=True):
+           reads_done=lambda: None, mask=None, scratch=None, decode_to_scratch=True):
     from analogs.stages.regimes import tag_days
     from analogs.stages.sources import open_archive
     # Out of core, the scratch folder holds the archive decoded once (read back by every
@@ -262,7 +262,7 @@ def _build(paths, store, *, events, event_dates, events_period, fields, n_modes,
                         folder=scratch) as make_scratch:
         archive = open_archive(paths, fields=fields, region=domain, hour=hour, daily=daily,
                                chunks=chunks, progress=progress,
-                               scratch=make_scratch if threaded else None)
+                               scratch=make_scratch if decode_to_scratch else None)
         if archive.sizes["time"] < 3:
             raise AnalogsInputError(f"the archive has {archive.sizes['time']} days; at "
                                     "least 3 are needed to build a store")
@@ -419,7 +419,9 @@ def _scratch_files(store, *, chunked: bool, progress: bool, folder=None):
 
     def allocate(shape, dtype):
         n_bytes = np.dtype(dtype).itemsize * int(np.prod(shape))
-        free = shutil.disk_usage(parent).free
+        # Arrays made earlier are sparse files until written: the space they will still
+        # take counts against what is free, or a later write could meet a full disk.
+        free = shutil.disk_usage(parent).free - _unclaimed_bytes(folder.iterdir())
         if free < _SCRATCH_MARGIN * n_bytes:
             raise AnalogsInputError(
                 f"the out-of-core build needs {n_bytes / 1e9:.2f} GB of scratch space for "
@@ -439,6 +441,22 @@ def _scratch_files(store, *, chunked: bool, progress: bool, folder=None):
         yield allocate
     finally:
         shutil.rmtree(folder, ignore_errors=True)
+
+
+def _unclaimed_bytes(paths) -> int:
+    """Bytes that the files ``paths`` may still take on disk: the part of each file's
+    size that no disk block holds yet (a sparse file, such as a new memory-mapped array,
+    claims its blocks as it is written; stat(2)'s st_blocks counts 512-byte units, from
+    memory). Where st_blocks is not reported, files count as fully claimed."""
+    unclaimed = 0
+    for path in paths:
+        status = path.stat()
+        blocks = getattr(status, "st_blocks", None)
+        if blocks is not None:
+            unclaimed += max(0, status.st_size - 512 * blocks)
+    return unclaimed
+
+
 def _land_on_store_grid(mask, paths, archive):
     """(land fraction on the archive's grid, manifest entry) from the ``--land-mask``
     file read before (``mask``: (DataArray, source)), else from a mask variable in the
