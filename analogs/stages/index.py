@@ -60,7 +60,6 @@ def faiss_threads(n_threads):
         faiss.omp_set_num_threads(previous)
 
 
-
 def window_distances(vectors, queries, ids) -> np.ndarray:
     """Squared Euclidean distances of each query to the vectors of its own rows ``ids``,
     float32 (m, w), computed by faiss' pairwise kernel (``fvec_L2sqr_by_idx``): the
@@ -88,6 +87,7 @@ def window_distances(vectors, queries, ids) -> np.ndarray:
                                     faiss.swig_ptr(vectors), faiss.swig_ptr(ids),
                                     vectors.shape[1], ids.shape[0], ids.shape[1])
     return squared
+
 
 class AnalogIndex:
     """Exact or approximate Euclidean nearest-neighbour search over PC vectors.

@@ -755,6 +755,7 @@ def beta_quantile(q, a, b):
                                                                        b.ravel().tolist())])
     return float(values[0]) if q.ndim == 0 else values.reshape(q.shape)
 
+
 def analog_weights(distances, scheme="equal") -> np.ndarray:
     """Similarity weights for analogs from their distances, summing to 1.
 

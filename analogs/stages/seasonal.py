@@ -507,7 +507,6 @@ def regime_persistence(tags) -> pd.DataFrame:
     return table
 
 
-
 # ------------------------------------------------------------------ slide tables
 
 def yearly_regime_series(tags, months=None) -> pd.DataFrame:
