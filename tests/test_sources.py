@@ -125,14 +125,20 @@ def test_dewpoint_in_celsius_and_pwat(tmp_path):
 
 
 def test_eofs_hgt_djf_opens_with_units_inference_warning():
-    """eofs' shipped hgt_djf.nc: 65 DJF means of real 500 hPa height, no units attribute."""
+    """eofs' shipped hgt_djf.nc: 65 DJF means of real 500 hPa height, no units attribute;
+    its yearly step is said (each value is then taken for one day)."""
     eofs_examples = pytest.importorskip("eofs.examples")
     path = eofs_examples.example_data_path("hgt_djf.nc")
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", xr.SerializationWarning)  # its reference date
-        with pytest.warns(UserWarning, match=r"variable 'z' has no units; 'gpm' inferred"):
+        with pytest.warns(UserWarning) as record:
             ds = open_archive(path)
         raw = xr.open_dataset(path)
+    messages = [str(warning.message) for warning in record]
+    assert any("variable 'z' has no units; 'gpm' inferred" in m for m in messages)
+    step = pd.Series(pd.DatetimeIndex(raw["time"].values)).diff().median().days  # pandas
+    assert step == 365 and any(f"are {step} days apart (median step), not daily" in m
+                               for m in messages)
     assert ds.sizes["time"] == 65
     assert ds["z500"].attrs["units"] == "gpm"
     np.testing.assert_array_equal(ds["lat"].values, np.sort(raw["latitude"].values))
@@ -239,9 +245,10 @@ def test_daily_at_other_hour_is_kept_with_warning(tmp_path):
     times = daily_times(periods=4, hour=0)
     path = _height_file(tmp_path / "d.nc", smooth_height(times), times=times,
                         attrs={"units": "gpm"}, level=500.0)
-    with pytest.warns(UserWarning, match="valid at 00 UTC, not 12 UTC"):
+    with pytest.warns(UserWarning, match="valid at 00 UTC, not 12 UTC") as record:
         ds = open_archive(path)
     np.testing.assert_array_equal(ds["time"].values, times.values)
+    assert not any("not daily" in str(warning.message) for warning in record)
 
 
 def test_duplicate_times_keep_first(tmp_path):

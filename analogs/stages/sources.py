@@ -2012,18 +2012,24 @@ def _drop_duplicate_times(da, files):
 
 
 def _to_daily(ds, *, hour, how, files):
-    """One value a day at ``hour`` UTC; daily and coarser archives pass through."""
+    """One value a day at ``hour`` UTC; daily and coarser archives pass through (a
+    coarser one with a warning: each of its values is then taken for one day)."""
     times = pd.DatetimeIndex(ds["time"].values)
     if len(times) < 2:
         return ds
     step = pd.Series(times).diff().dropna().median()
+    if step >= pd.Timedelta(days=2):
+        warnings.warn(f"the times in {_describe(files)} are {step.days} days apart (median "
+                      "step), not daily: each value is taken for a single day (analog days, "
+                      "season windows, episodes and report counts assume daily values); "
+                      "give daily fields for a daily analog archive", UserWarning, stacklevel=3)
+    elif step >= pd.Timedelta(days=1):
+        hours = sorted(set(times.hour))
+        if hours != [hour]:
+            warnings.warn(f"daily values in {_describe(files)} are valid at "
+                          f"{', '.join(f'{h:02d}' for h in hours)} UTC, not {hour:02d} "
+                          "UTC; kept as they are", UserWarning, stacklevel=3)
     if step >= pd.Timedelta(days=1):
-        if step < pd.Timedelta(days=2):
-            hours = sorted(set(times.hour))
-            if hours != [hour]:
-                warnings.warn(f"daily values in {_describe(files)} are valid at "
-                              f"{', '.join(f'{h:02d}' for h in hours)} UTC, not {hour:02d} "
-                              "UTC; kept as they are", UserWarning, stacklevel=3)
         return ds
     if how == "instant":
         at_hour = (times.hour == hour) & (times.minute == 0) & (times.second == 0)
