@@ -1,4 +1,5 @@
-"""xarray's checks for dask and pint arrays without importing dask.array and pint.
+"""xarray's checks for dask and pint arrays without importing dask.array and pint, and
+its check for a dask.distributed client without importing distributed.
 
 xarray asks, for every array it wraps or converts, whether it is a dask array or a pint
 quantity (``xarray.namedarray.pycompat.array_type``), and to know the classes it
@@ -12,6 +13,12 @@ the class. It relies on xarray's record of these libraries (``pycompat.
 _cached_duck_array_modules``, ``DuckArrayModule``; xarray 2023.x to 2026.x): where a
 version of xarray has no such record, or has already filled it, it changes nothing and
 xarray imports the libraries as before (tests/test_duck_arrays.py runs both paths).
+
+Writing any NetCDF file, xarray asks which dask scheduler is active (to pick its write
+lock and whether to close files between writes), and the question imports
+``distributed`` when it is installed (0.3 s of every store write). A client cannot exist
+before ``distributed`` is imported, so while it is not, and no scheduler is configured,
+the answer is xarray's own for that case, "threaded": :func:`defer_scheduler_probe`.
 """
 
 from __future__ import annotations
@@ -75,3 +82,35 @@ def _deferred_record_class():
         available = property(lambda self: self._loaded.available)
 
     return DeferredRecord
+
+
+def defer_scheduler_probe() -> bool:
+    """Give xarray's NetCDF writers a scheduler check that answers "threaded" without
+    importing ``distributed`` while nothing could have made a client (see the module's
+    docstring) and asks xarray's own check otherwise. True when in place (now or from an
+    earlier call), False when this xarray has no such check where expected."""
+    try:
+        from xarray.backends import locks, writers
+        original = locks.get_dask_scheduler
+    except (ImportError, AttributeError):
+        return False
+    if getattr(original, "defers_distributed", False):
+        return True
+    if getattr(writers, "get_dask_scheduler", None) is not original:
+        return False
+
+    @functools.wraps(original)
+    def get_dask_scheduler(get=None, collection=None):
+        if get is None and collection is None and "distributed" not in sys.modules:
+            try:
+                import dask
+            except ImportError:
+                return original(get, collection)
+            if dask.config.get("scheduler", None) is None \
+                    and dask.config.get("get", None) is None:
+                return "threaded"
+        return original(get, collection)
+
+    get_dask_scheduler.defers_distributed = True
+    locks.get_dask_scheduler = writers.get_dask_scheduler = get_dask_scheduler
+    return True

@@ -90,3 +90,58 @@ def test_find_report_imports_neither_library(demo_store, tmp_path, command):
                                           "MPLBACKEND": "Agg"})
     imported = out.stderr.strip().splitlines()[-1]
     assert imported == ("['xarray']" if "--report" in command else "[]")
+
+
+#: xarray's scheduler answer in each case that decides its NetCDF write lock.
+SCHEDULER_SCRIPT = """
+import sys
+import dask
+{install}
+from xarray.backends import locks, writers
+print(locks.get_dask_scheduler(), "distributed" in sys.modules)
+with dask.config.set(scheduler="processes"):
+    print(writers.get_dask_scheduler())
+with dask.config.set(scheduler="synchronous"):
+    print(locks.get_dask_scheduler())
+import distributed
+print(locks.get_dask_scheduler())
+with distributed.Client(processes=False, n_workers=1, threads_per_worker=1,
+                        dashboard_address=None):
+    print(locks.get_dask_scheduler(), writers.get_dask_scheduler())
+"""
+
+
+def test_deferred_scheduler_probe_answers_as_xarray_does():
+    """The reference is xarray's own check, run in a fresh process: the same answer with
+    no scheduler configured, with processes or synchronous configured, with distributed
+    imported but no client and with a client; distributed is not imported to answer."""
+    pytest.importorskip("distributed")
+
+    def run(install):
+        out = subprocess.run([sys.executable, "-c", SCHEDULER_SCRIPT.format(install=install)],
+                             capture_output=True, text=True, check=True,
+                             env={**os.environ, "PYTHONPATH": str(ROOT)})
+        return out.stdout.splitlines()
+
+    deferred = run("from analogs._duck_arrays import defer_scheduler_probe; "
+                   "print(defer_scheduler_probe())")
+    plain = run("")
+    assert deferred[0] == "True"
+    assert deferred[1] == "threaded False"
+    assert plain[0] == "threaded True"  # xarray's own check imports distributed
+    assert deferred[2:] == plain[1:]
+    assert plain[1:] == ["multiprocessing", "threaded", "threaded",
+                         "distributed distributed"]
+
+
+def test_store_writes_do_not_import_distributed(tmp_path):
+    pytest.importorskip("distributed")
+    code = ("import sys, numpy as np, xarray as xr; "
+            "from analogs.workflows.files import write_netcdf; "
+            f"write_netcdf(xr.Dataset({{'a': ('x', np.arange(3.0))}}), {str(tmp_path / 'a.nc')!r}); "
+            "print('distributed' in sys.modules)")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                         check=True, env={**os.environ, "PYTHONPATH": str(ROOT)})
+    assert out.stdout.strip() == "False"
+    import xarray as xr
+    assert xr.open_dataset(tmp_path / "a.nc")["a"].values.tolist() == [0.0, 1.0, 2.0]

@@ -145,7 +145,9 @@ def write_netcdf(ds: xr.Dataset, path, *, group=None, mode="w", encoding=None) -
     path = Path(path)
     if mode not in ("w", "a"):
         raise ValueError(f"write_netcdf: mode must be 'w' or 'a', not {mode!r}")
+    from analogs._duck_arrays import defer_scheduler_probe
     from analogs.stages.cf import cf_tidy, netcdf_encoding
+    defer_scheduler_probe()  # no import of dask.distributed to learn there is no client
     tidy = cf_tidy(ds)
     with atomic_path(path) as temporary, NETCDF_LOCK:
         if mode == "a" and path.exists():
