@@ -18,11 +18,13 @@ Writing any NetCDF file, xarray asks which dask scheduler is active (to pick its
 lock and whether to close files between writes), and the question imports
 ``distributed`` when it is installed (0.3 s of every store write). A client cannot exist
 before ``distributed`` is imported, so while it is not, and no scheduler is configured,
-the answer is xarray's own for that case, "threaded": :func:`defer_scheduler_probe`.
+the answer is xarray's own for that case, "threaded":
+:func:`scheduler_probe_without_distributed`.
 """
 
 from __future__ import annotations
 
+import contextlib
 import functools
 import importlib.util
 import sys
@@ -84,20 +86,21 @@ def _deferred_record_class():
     return DeferredRecord
 
 
-def defer_scheduler_probe() -> bool:
-    """Give xarray's NetCDF writers a scheduler check that answers "threaded" without
+@contextlib.contextmanager
+def scheduler_probe_without_distributed():
+    """Within the block, xarray's NetCDF writers check the dask scheduler without
     importing ``distributed`` while nothing could have made a client (see the module's
-    docstring) and asks xarray's own check otherwise. True when in place (now or from an
-    earlier call), False when this xarray has no such check where expected."""
+    docstring), and with xarray's own check otherwise; xarray's check is put back on
+    exit. Where this xarray has no such check where expected, nothing changes."""
     try:
         from xarray.backends import locks, writers
         original = locks.get_dask_scheduler
     except (ImportError, AttributeError):
-        return False
-    if getattr(original, "defers_distributed", False):
-        return True
+        yield
+        return
     if getattr(writers, "get_dask_scheduler", None) is not original:
-        return False
+        yield
+        return
 
     @functools.wraps(original)
     def get_dask_scheduler(get=None, collection=None):
@@ -111,6 +114,8 @@ def defer_scheduler_probe() -> bool:
                 return "threaded"
         return original(get, collection)
 
-    get_dask_scheduler.defers_distributed = True
     locks.get_dask_scheduler = writers.get_dask_scheduler = get_dask_scheduler
-    return True
+    try:
+        yield
+    finally:
+        locks.get_dask_scheduler = writers.get_dask_scheduler = original

@@ -145,11 +145,11 @@ def write_netcdf(ds: xr.Dataset, path, *, group=None, mode="w", encoding=None) -
     path = Path(path)
     if mode not in ("w", "a"):
         raise ValueError(f"write_netcdf: mode must be 'w' or 'a', not {mode!r}")
-    from analogs._duck_arrays import defer_scheduler_probe
+    from analogs._duck_arrays import scheduler_probe_without_distributed
     from analogs.stages.cf import cf_tidy, netcdf_encoding
-    defer_scheduler_probe()  # no import of dask.distributed to learn there is no client
     tidy = cf_tidy(ds)
-    with atomic_path(path) as temporary, NETCDF_LOCK:
+    # No import of dask.distributed (0.3 s) only to learn that there is no client.
+    with atomic_path(path) as temporary, NETCDF_LOCK, scheduler_probe_without_distributed():
         if mode == "a" and path.exists():
             shutil.copyfile(path, temporary)
         else:
