@@ -28,7 +28,6 @@ from analogs.stages.index import AnalogIndex, recall_at_k
 from analogs.stages.outcomes import (
     Region,
     covered_days,
-    daily_event_counts,
     parse_period,
 )
 from analogs.stages.selection import (DEFAULT_EXCLUDE, DEFAULT_WINDOW,
@@ -298,8 +297,10 @@ def _build(paths, store, *, events, event_dates, events_period, fields, n_modes,
                                          default=(times[0], times[-1]), owner="build_store")
                 events_entry = events_block(events, event_table, [period], times.normalize(),
                                             n_outside=n_outside)
-                observed = daily_event_counts(event_table, times.normalize(),
-                                              region)["total"].to_numpy() > 0
+                # The store's daily counts (written below) give the days with an event.
+                from analogs.workflows.find import stored_daily_counts
+                counts = stored_daily_counts(event_table, times.normalize(), region)
+                observed = counts["total"].to_numpy() > 0
                 skill = measured_skill(pcs.values, times, observed,
                                        covered_days(times, [period]), region=region)
         tags = tagging.result()
@@ -335,7 +336,7 @@ def _build(paths, store, *, events, event_dates, events_period, fields, n_modes,
         "index": index_info,
     }
     from analogs.workflows.analog_store import AnalogStore
-    from analogs.workflows.find import stored_daily_counts, with_default_predictor_weights
+    from analogs.workflows.find import with_default_predictor_weights
     reads_done()  # an archive file changed during the reads: refused before any write
     # A whole new version, written and loaded back under the writer lock.
     with store_io.transaction(store, new=True) as txn:
@@ -356,8 +357,7 @@ def _build(paths, store, *, events, event_dates, events_period, fields, n_modes,
         store_io.write_dataset(scores, staged / store_io.SCORES)
         if event_table is not None:
             store_io.write_table(event_table, staged / store_io.EVENTS)
-            store_io.write_table(stored_daily_counts(event_table, times.normalize(), region),
-                                 staged / store_io.COUNTS)
+            store_io.write_table(counts, staged / store_io.COUNTS)
         store_io.write_table(tags.reset_index(drop=True), staged / store_io.TAGS)
         txn.commit(manifest)
         built = AnalogStore._load_version(txn.path, manifest=txn.committed)
