@@ -285,7 +285,7 @@ def test_report_figures_take_the_querys_arrays(demo_store, demo_files, tmp_path)
                                climate.values + anomaly.values, rtol=1e-12)
     figures = report_figures(demo_store, result)
     assert len(figures) == 4 and figures[0][0].startswith("Target")
-    assert all(png.startswith(b"\x89PNG") for _, png, _ in figures)
+    assert all(svg.startswith("<svg") and 'role="img"' in svg for _, svg, _ in figures)
     # Alt text describes the content: the analog grid names every analog drawn.
     grid_alt = figures[1][2]
     assert all(date in grid_alt for date in result.analogs["date"])

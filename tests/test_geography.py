@@ -8,14 +8,14 @@ Earth files in ``$CARTOPY_DATA_DIR`` give borders too)."""
 
 import importlib.util
 
-import matplotlib.colors
 import numpy as np
 import pytest
 import xarray as xr
 from matplotlib.path import Path as MatplotlibPath
 
 from analogs.geo import MapLines, clip_lines, nearest_index
-from analogs.presentation import figures as plots
+from analogs.presentation import svg_maps
+from analogs.presentation.map_layers import LAND_NOTE, PLAIN_AXES_NOTE
 from analogs.stages.landmask import coast_agreement, read_land_mask
 from analogs.workflows import geography
 
@@ -199,48 +199,75 @@ def _fields():
     return xr.Dataset({"z500": (("lat", "lon"), z)}, coords={"lat": lat, "lon": lon})
 
 
-def _earth_collections(ax, kind):
-    """The line collections of one kind of Earth line, in their own style."""
-    style = plots.EARTH_LINE_STYLES[kind]
-    found = [c for c in ax.collections if c.get_gid() == f"earth-{kind}"]
-    for collection in found:
-        assert np.allclose(collection.get_colors()[0], matplotlib.colors.to_rgba(style["colors"]))
+SVG = "{http://www.w3.org/2000/svg}"
+
+
+def _svg(svg):
+    import xml.etree.ElementTree as ET
+    return ET.fromstring(svg)
+
+
+def _earth_paths(root, kind):
+    """The drawn lines of one kind of Earth line, in their own style, as (lon, lat)
+    arrays per map (pixels of each map taken back to degrees)."""
+    from analogs.presentation.map_layers import EARTH_LINE_STYLES
+    style = EARTH_LINE_STYLES[kind]
+    found = []
+    for the_map in root.iter(f"{SVG}svg"):
+        for path in the_map.findall(f"{SVG}path"):
+            if path.get("class") == f"earth-{kind}":
+                assert path.get("stroke") == style["colour"]
+                found.append((the_map, [np.array([[float(v) for v in pair.split(",")]
+                                                  for pair in part.split()])
+                                        for part in path.get("d").split("M") if part.strip()]))
     return found
 
 
+def _texts(root):
+    return [t.text for t in root.iter(f"{SVG}text")]
+
+
+def _in_degrees(fields, width, lines):
+    frame = svg_maps.Frame(fields["lat"].values, fields["lon"].values, width)
+    return [np.c_[frame.lon0 + line[:, 0] / frame.x_scale, frame.lat1 - line[:, 1] / frame.y_scale]
+            for line in lines]
+
+
 def test_maps_draw_the_earth_lines_they_are_handed():
-    """Each kind of line is one collection in its own style, with the note naming the
-    source; the analog grid draws them once per panel, shifted with it."""
+    """Each kind of line is one path in its own style, with the note naming the source;
+    the analog grid draws them on every small map."""
     import pandas as pd
     coast = [np.array([[-110.0, 25.0], [-100.0, 30.0]])]
     border = [np.array([[-115.0, 45.0], [-90.0, 45.0]])]
     lines = MapLines(coastline=coast, border=border, source="test data")
     fields = _fields()
-    figure = plots.target_map(fields, geography=lines)
-    ax = figure.axes[0]
-    (drawn,) = _earth_collections(ax, "coastline")
-    np.testing.assert_allclose(drawn.get_paths()[0].vertices, coast[0])
-    (drawn,) = _earth_collections(ax, "border")
-    np.testing.assert_allclose(drawn.get_paths()[0].vertices, border[0])
-    notes = [t.get_text() for t in figure.texts]
+    root = _svg(svg_maps.target_map(fields, geography=lines))
+    ((_, drawn),) = _earth_paths(root, "coastline")
+    np.testing.assert_allclose(_in_degrees(fields, svg_maps.MAP_WIDTH, drawn)[0], coast[0],
+                               atol=0.02)
+    ((_, drawn),) = _earth_paths(root, "border")
+    np.testing.assert_allclose(_in_degrees(fields, svg_maps.MAP_WIDTH, drawn)[0], border[0],
+                               atol=0.02)
+    notes = _texts(root)
     assert "grey: coastlines, borders (dashed) (test data)" in notes
-    assert plots.PLAIN_AXES_NOTE not in notes
+    assert PLAIN_AXES_NOTE not in notes
     analogs = pd.DataFrame({"rank": [1, 2, 3], "date": ["2001-06-01", "2001-06-02",
                                                          "2001-06-03"],
                             "distance": [1.0, 2.0, 3.0], "regime": ["a", "b", "c"],
                             "events_total": [0, 0, 0]})
     grid = xr.concat([fields] * 3, dim="analog")
-    figure = plots.analog_panel(grid, analogs, geography=lines)
-    (drawn,) = _earth_collections(figure.axes[0], "coastline")
-    offsets = np.array(figure.panel_offsets)
-    np.testing.assert_allclose([p.vertices for p in drawn.get_paths()],
-                               [coast[0] + offset for offset in offsets])
+    found = _earth_paths(_svg(svg_maps.analog_panel(grid, analogs, geography=lines)),
+                         "coastline")
+    assert len(found) == 3
+    for _, drawn in found:
+        np.testing.assert_allclose(_in_degrees(fields, svg_maps.SMALL_MAP_WIDTH, drawn)[0],
+                                   coast[0], atol=0.1)
 
 
 def test_withheld_lines_are_named_in_the_note():
-    figure = plots.target_map(_fields(), geography=MapLines(source="x", withheld="why not"))
-    assert "why not" in [t.get_text() for t in figure.texts]
-    assert not _earth_collections(figure.axes[0], "coastline")
+    root = _svg(svg_maps.target_map(_fields(), geography=MapLines(source="x", withheld="why not")))
+    assert "why not" in _texts(root)
+    assert not _earth_paths(root, "coastline")
 
 
 def test_report_maps_carry_the_offline_coastlines():
@@ -249,17 +276,17 @@ def test_report_maps_carry_the_offline_coastlines():
     _files()
     fields = _fields()
     lines = geography.map_lines(fields["lat"].values, fields["lon"].values)
-    figure = plots.target_map(fields, geography=lines)
-    (drawn,) = _earth_collections(figure.axes[0], "coastline")
-    assert len(drawn.get_paths()) == len(lines.coastline)
-    assert lines.source in " ".join(t.get_text() for t in figure.texts)
+    root = _svg(svg_maps.target_map(fields, geography=lines))
+    ((_, drawn),) = _earth_paths(root, "coastline")
+    assert len(drawn) == len(lines.coastline)
+    assert lines.source in " ".join(_texts(root))
 
 
 def test_a_store_without_a_mask_is_not_said_to_draw_one():
     """No land-sea lines (a store without a mask hands an empty list): the map says its
     axes are plain, not that a boundary from a mask is drawn."""
-    notes = [t.get_text() for t in plots.target_map(_fields(), land=[]).texts]
-    assert plots.PLAIN_AXES_NOTE in notes and plots.LAND_NOTE not in notes
+    notes = _texts(_svg(svg_maps.target_map(_fields(), land=[])))
+    assert PLAIN_AXES_NOTE in notes and LAND_NOTE not in notes
 
 
 def _write_shapefile(path, kind, parts):

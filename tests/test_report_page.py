@@ -1,27 +1,26 @@
 """The find report's page without a browser (the clicking is in test_report_browser.py):
-each analog's map cut from the grid is that map (its frame on the tile's edges), each
-day's report list is the events table's (filtered here with pandas), and the page is
-self-contained, answer first, with alt text on every image and a link from every table
-row to its day. An ensemble target's page renders the same way.
+each analog's map in the browsing panel is its map in the grid shown again (same size,
+latitude-true shape), each day's report list is the events table's (filtered here with
+pandas), the page is self-contained, answer first, with alt text on every map and a link
+from every table row to its day, and making it never imports matplotlib. An ensemble
+target's page renders the same way.
 """
 
-import io
+import subprocess
+import sys
 from html.parser import HTMLParser
 
 import numpy as np
 import pandas as pd
 import pytest
 import xarray as xr
-from PIL import Image
 
 import reanalysis_demo
 from analogs import CAUTION
-from analogs.presentation import figures as plots
-from analogs.presentation.browse import panel_tiles
 from analogs.presentation.report import find_html
 from analogs.stages.sources import open_archive
 from analogs.workflows.demo import write_forecast_like_field
-from analogs.workflows.find import day_fields, report_figures
+from analogs.workflows.find import report_figures
 from analogs.workflows.page import analog_days, report_page
 
 
@@ -32,43 +31,39 @@ def query(demo_store):
     return demo_store.find(date=str(summer.index[len(summer) // 2].date()), top=12)
 
 
-def _dark(pixels, threshold=160):
-    """The frame (0.2 grey, 0.7 pt wide) antialiased at 72 dpi reads about 110 of 255."""
-    return pixels[..., :3].mean(axis=-1) < threshold
-
-
-def test_each_tile_is_one_map_of_the_grid(demo_store, query):
-    """Cut from the grid's PNG, every tile holds one map: the map's frame (drawn 0.2 grey
-    by analog_panel) runs along the tile's four edges, within the cutting margin."""
-    analogs = query.analogs.head(7)
-    fields = day_fields(demo_store, analogs["row"].to_numpy())
-    fields = fields.assign_coords(analog=analogs["rank"].to_numpy())
-    figure = plots.analog_panel(fields, analogs, None, region=demo_store.region)
-    png = plots.figure_png(figure)
+def test_each_days_map_is_its_map_in_the_grid(demo_store, query):
+    """The browsing panel shows each analog day's map of the grid again (an SVG <use> of
+    the grid's <svg id="analog-map-RANK">, the same size and shape), with alt text
+    naming the day; none is drawn twice."""
+    page = _Page()
+    page.feed(report_page(demo_store, query))
+    maps = {attrs["id"]: attrs for tag, attrs in page.svgs if attrs.get("id", "").startswith(
+        "analog-map-")}
+    tiles = [attrs for tag, attrs in page.svgs if attrs.get("class") == "tile"]
+    assert len(maps) == len(tiles) == len(query.analogs)
+    for analog, tile, use in zip(query.analogs.itertuples(), tiles, page.uses):
+        assert use == f"#analog-map-{analog.rank}"
+        the_map = maps[f"analog-map-{analog.rank}"]
+        assert tile["viewbox"] == the_map["viewbox"]
+        assert analog.date in tile["aria-label"] and tile["role"] == "img"
+    # Their shape is the grid's: width / height is the span in longitude over the span
+    # in latitude times cos of the mean latitude (a latitude-true aspect).
     lat, lon = demo_store.grid
-    tiles = panel_tiles(figure, png, lat, lon)
-    assert len(tiles) == len(analogs)
-    sizes = set()
-    for tile in tiles:
-        pixels = np.asarray(Image.open(io.BytesIO(tile)).convert("RGB"), dtype=float)
-        dark = _dark(pixels)
-        height, width = dark.shape
-        sizes.add((width, height))
-        edge = 4  # the margin plus the frame's width, in pixels
-        assert dark[:edge].any(axis=0).mean() > 0.8
-        assert dark[-edge:].any(axis=0).mean() > 0.8
-        assert dark[:, :edge].any(axis=1).mean() > 0.8
-        assert dark[:, -edge:].any(axis=1).mean() > 0.8
-        # Inside the frame: a light map with contours, not another panel's frame.
-        inner = dark[edge:-edge, edge:-edge]
-        assert 0.005 < inner.mean() < 0.2
-    # The maps share one size (to a pixel of rounding); their shape is the grid's
-    # (width / height close to the span in longitude over the span in latitude times
-    # 1/cos of the mean latitude, the aspect analog_panel draws with).
-    widths, heights = zip(*sizes)
-    assert max(widths) - min(widths) <= 1 and max(heights) - min(heights) <= 1
-    expected = np.ptp(lon) / np.ptp(lat) * np.cos(np.radians(np.mean(lat)))
-    assert widths[0] / heights[0] == pytest.approx(expected, rel=0.08)
+    _, _, width, height = map(float, tiles[0]["viewbox"].split())
+    assert width / height == pytest.approx(
+        np.ptp(lon) / np.ptp(lat) * np.cos(np.radians(np.mean(lat))), rel=1e-3)
+
+
+def test_a_report_imports_no_matplotlib(demo_store, tmp_path):
+    """`find --report` draws its maps as SVG: matplotlib is never imported (nor pyplot)."""
+    code = ("import sys; from analogs.cli import main; "
+            f"main(['find', '--store', {str(demo_store.path)!r}, '--date', "
+            f"{str(demo_store.times[400].date())!r}, '--report', {str(tmp_path / 'r')!r}]); "
+            "print('MODULES', sorted(m for m in sys.modules if m.split('.')[0] == 'matplotlib'))")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                         check=True).stdout
+    assert out.strip().splitlines()[-1] == "MODULES []"
+    assert "<svg" in (tmp_path / "r" / "index.html").read_text()
 
 
 def test_each_days_reports_are_the_events_tables(demo_store, query):
@@ -99,6 +94,7 @@ class _Page(HTMLParser):
     def __init__(self):
         super().__init__()
         self.order, self.images, self.ids, self.links, self.scripts = [], [], set(), [], []
+        self.svgs, self.uses = [], []
 
     def handle_starttag(self, tag, attrs):
         attrs = dict(attrs)
@@ -107,8 +103,12 @@ class _Page(HTMLParser):
             self.order.append(attrs["id"])
         if "class" in attrs and "caution" in attrs["class"].split():
             self.order.append("caution")
-        if tag == "img":
+        if tag in ("img", "image"):
             self.images.append(attrs)
+        if tag == "svg":
+            self.svgs.append((tag, attrs))
+        if tag == "use" and attrs["href"].startswith("#analog-map-"):
+            self.uses.append(attrs["href"])
         if "href" in attrs:
             self.links.append(attrs["href"])
         if tag == "script":
@@ -122,17 +122,22 @@ def test_page_is_self_contained_and_answer_first(demo_store, query):
     # Caution, then the answer, then the analogs.
     assert page.order.index("caution") < page.order.index("answer") < page.order.index("analogs")
     assert CAUTION in page_text.replace("&#x27;", "'")
-    # Nothing fetched: every image a data URI, no script file, no link off the page.
-    assert page.images and all(i["src"].startswith("data:image/png;base64,") for i in page.images)
-    assert all(len(i.get("alt", "")) > 40 for i in page.images)
+    # Nothing fetched: every image (the maps' shaded fields) a data URI, no script file,
+    # no link off the page.
+    assert page.images and all(i["href"].startswith("data:image/png;base64,")
+                               for i in page.images)
     assert page.scripts == [{}]
-    assert all(link.startswith("#") for link in page.links)
+    assert all(link.startswith(("#", "data:image/png;base64,")) for link in page.links)
     # Every table row links to its day, and every day is on the page.
     for rank in query.analogs["rank"]:
         assert f"#analog-{rank}" in page.links and f"analog-{rank}" in page.ids
-    # One map per analog day, plus the figures.
+    # The figures, each an SVG image with its alt text, and one map per analog day.
     figures = report_figures(demo_store, query)
-    assert len(page.images) == len(figures) + len(query.analogs)
+    drawn = [attrs for _, attrs in page.svgs if attrs.get("class") == "map"]
+    assert len(drawn) == len(figures) == 4
+    assert [attrs["aria-label"] for attrs in drawn] == [alt for _, _, alt in figures]
+    assert all(len(alt) > 40 for _, _, alt in figures)
+    assert len([a for _, a in page.svgs if a.get("class") == "tile"]) == len(query.analogs)
     outcomes = query.outcomes
     assert f">{100 * outcomes.p_any_event:.0f}%<" in page_text
     assert f">{100 * outcomes.climatology_p_any_event:.0f}%<" in page_text

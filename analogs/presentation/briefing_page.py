@@ -20,8 +20,8 @@ import numpy as np
 import pandas as pd
 
 from analogs import CAUTION, __version__
-from analogs.presentation.figures import degrees_east_label as east
-from analogs.presentation.figures import degrees_north_label as north
+from analogs.presentation.map_layers import degrees_east_label as east
+from analogs.presentation.map_layers import degrees_north_label as north
 from analogs.presentation.report import embed_png
 from analogs.stages.outcomes import binomial_interval
 

@@ -1,11 +1,11 @@
 """The find report as a page to read and browse: the answer first, then the evidence.
 
 Presentation only: every function lays out what it is handed (the JSON-shaped answer of
-a query, PNG bytes, report lists gathered by
-:func:`analogs.workflows.page.analog_days`) and returns HTML text or PNG bytes.
+a query, the SVG maps of :mod:`analogs.presentation.svg_maps`, report lists gathered by
+:func:`analogs.workflows.page.analog_days`) and returns HTML text.
 
-The page is self-contained: one file, the style and a small script of our own inline,
-every image a ``data:`` URI, nothing fetched. Without the script it is a plain page (the
+The page is self-contained: one file, the style, the maps (inline SVG, their shaded
+fields ``data:`` URIs) and a small script of our own inline, nothing fetched. Without the script it is a plain page (the
 analog table, then each analog day's map and reports one below the other, linked from
 the table); with it the table sorts by any column, filters by regime, largest distance
 and kind of report, and shows one analog day at a time beside the table.
@@ -13,80 +13,22 @@ and kind of report, and shows one analog day at a time beside the table.
 
 from __future__ import annotations
 
-import base64
 import html
-import io
 import json
 import math
 
-import numpy as np
+from analogs.presentation.svg_maps import MARKER_SHAPES, map_view
 
 #: Colours of the page, sampled from matplotlib's viridis (perceptually uniform):
 #: the analogs' probability in its middle, the accents at its dark end; the
 #: climatology is a neutral grey, never a hue that reads as a level of danger.
 VIRIDIS_DARK, VIRIDIS_MID = "#3b528b", "#21918c"
 BASE_RATE_GREY = "#8c8c8c"
-#: Pixels of margin kept around each analog's map when it is cut from the grid (more
-#: would take in the panel's own title line just above the frame).
-TILE_MARGIN_PX = 1
-
-
-def panel_tiles(figure, png: bytes, lat, lon) -> list[bytes]:
-    """Each analog's map cut out of the analog grid's PNG (no second drawing).
-
-    ``figure`` is the :func:`analogs.presentation.figures.analog_panel` figure that
-    ``png`` was saved from (it records ``panel_offsets``, the degrees each map is
-    shifted by on its one axes); ``lat`` / ``lon`` are the grid's coordinates. The box
-    of each map is found through the axes' data-to-figure transform, so it follows
-    the grid's layout whatever it is. Returns PNG bytes in the grid's (rank) order.
-    """
-    from PIL import Image
-    image = Image.open(io.BytesIO(png))
-    width, height = image.size
-    ax = figure.axes[0]
-    to_figure = ax.transData + figure.transFigure.inverted()
-    lon0, lon1 = float(np.min(lon)), float(np.max(lon))
-    lat0, lat1 = float(np.min(lat)), float(np.max(lat))
-    boxes = [to_figure.transform([(lon0 + dx, lat0 + dy), (lon1 + dx, lat1 + dy)])
-             for dx, dy in figure.panel_offsets]
-    # One tile size for every map (the panels are equal; rounding each box on its own
-    # gave tiles a pixel apart, which a page showing them in one frame should not).
-    tile_width = min(max(math.ceil((x1 - x0) * width) for (x0, _), (x1, _) in boxes)
-                     + 2 * TILE_MARGIN_PX, width)
-    tile_height = min(max(math.ceil((y1 - y0) * height) for (_, y0), (_, y1) in boxes)
-                      + 2 * TILE_MARGIN_PX, height)
-    tiles = []
-    for (x0, _), (_, y1) in boxes:
-        left = min(max(math.floor(x0 * width) - TILE_MARGIN_PX, 0), width - tile_width)
-        top = min(max(math.floor((1.0 - y1) * height) - TILE_MARGIN_PX, 0),
-                  height - tile_height)
-        buffer = io.BytesIO()
-        image.crop((left, top, left + tile_width, top + tile_height)).save(
-            buffer, format="PNG", compress_level=1)  # small; speed first
-        tiles.append(buffer.getvalue())
-    return tiles
-
-
-def marker_styles(kinds) -> dict:
-    """kind -> (matplotlib marker, colour as #rrggbb) as the analog grid draws the
-    events of ``kinds`` (sorted, as the grid sorts them), for the page's keys."""
-    from matplotlib.colors import to_hex
-
-    from analogs.presentation.figures import EVENT_MARKERS, _kind_colour
-    return {kind: (EVENT_MARKERS[i % len(EVENT_MARKERS)], to_hex(_kind_colour(i, len(kinds))))
-            for i, kind in enumerate(kinds)}
-
-
-#: SVG shapes (in a 10 x 10 box) of the grid's matplotlib markers.
-_SHAPES = {"o": '<circle cx="5" cy="5" r="4"/>', "^": '<path d="M5 1 9 9 1 9z"/>',
-           "s": '<path d="M1.5 1.5h7v7h-7z"/>', "D": '<path d="M5 .5 9.5 5 5 9.5 .5 5z"/>',
-           "v": '<path d="M1 1h8L5 9z"/>', "P": '<path d="M3.5 1h3v2.5H9v3H6.5V9h-3V6.5H1v-3h2.5z"/>',
-           "X": '<path d="M1 3 3 1 5 3 7 1 9 3 7 5 9 7 7 9 5 7 3 9 1 7 3 5z"/>'}
 
 
 def marker_svg(marker: str, colour: str) -> str:
     """A small inline SVG of a grid marker (decorative: the kind is written beside it)."""
-    shape = _SHAPES.get(marker, _SHAPES["o"])
+    shape = MARKER_SHAPES.get(marker, MARKER_SHAPES["o"])
     return (f'<svg class="marker" viewBox="0 0 10 10" aria-hidden="true" focusable="false">'
             f'<g fill="{_e(colour)}" stroke="#000" stroke-width=".7">{shape}</g></svg>')
 
@@ -297,7 +239,7 @@ def browser_section(data: dict, days: dict | None = None) -> str:
 
 
 def day_detail(analog: dict, day: dict) -> str:
-    """One analog day: its map (cut from the grid) and its reports."""
+    """One analog day: its map (the grid's, shown again larger) and its reports."""
     rank = analog["rank"]
     total = analog["events"]["total"]
     parts = [f'<article class="day" id="analog-{rank}" aria-labelledby="analog-{rank}-h">'
@@ -306,8 +248,7 @@ def day_detail(analog: dict, day: dict) -> str:
              + ("no reports yet" if total is None else f"{total} event{'s' * (total != 1)} "
                 "in region") + "</h3>"]
     if day.get("tile"):
-        parts.append(f'<img class="tile" alt="{_e(day.get("alt") or "map of " + analog["date"])}" '
-                     f'src="data:image/png;base64,{base64.b64encode(day["tile"]).decode()}">')
+        parts.append(map_view(day["tile"], day.get("alt") or "map of " + analog["date"]))
     markers = day.get("markers") or {}
     if day.get("tile"):
         parts.append(f'<p class="key">Map {_e(day.get("extent", ""))}: 500 hPa height every '
@@ -372,7 +313,7 @@ tr:focus,button:focus,a:focus,select:focus,input:focus{outline:3px solid var(--a
 .day{background:#fff;border:1px solid var(--line);border-radius:6px;padding:.2em 1em 1em;margin-bottom:1em}
 @media (max-width:60em){.js .browse{grid-template-columns:minmax(0,1fr)}}
 .js .day{display:none}.js .day.shown{display:block;position:sticky;top:.5em}
-img{max-width:100%%;height:auto}img.tile{width:100%%;max-width:26em;image-rendering:auto;border:1px solid var(--line)}
+img,svg.map{max-width:100%%;height:auto}svg.tile{display:block;width:100%%;max-width:32em;height:auto;border:1px solid var(--line)}
 .reports{font-size:.9em}.reports th,.reports td{padding:.2em .4em}.scroll{overflow-x:auto}.figures figure{margin:1em 0}figcaption{color:var(--muted);font-size:.9em}
 .sr{position:absolute;left:-9999px}
 pre{white-space:pre-wrap;font-size:.85em}
@@ -467,12 +408,11 @@ SCRIPT = r"""
 
 
 def figures_section(figures) -> str:
-    """The report's other maps, each a figure with its caption and descriptive alt text."""
+    """The report's maps, each a figure: its SVG (which holds its descriptive alt text)
+    and its caption."""
     parts = []
-    for caption, png, *alt in figures:
-        parts.append(f'<figure><img alt="{_e(alt[0] if alt else caption)}" '
-                     f'src="data:image/png;base64,{base64.b64encode(png).decode()}">'
-                     f"<figcaption>{_e(caption)}</figcaption></figure>")
+    for caption, svg, *_ in figures:
+        parts.append(f"<figure>{svg}<figcaption>{_e(caption)}</figcaption></figure>")
     if not parts:
         return ""
     return ('<section id="maps" class="figures" aria-labelledby="maps-h"><h2 id="maps-h">'

@@ -27,13 +27,12 @@ from matplotlib.patches import Patch
 
 from analogs.errors import AnalogsInputError
 from analogs.presentation.figures import (
-    EVENT_MARKERS,
-    HEIGHT_INTERVAL_GPM,
     THUMBNAIL_DPI,
     _map_axes,
     _note_plain_axes,
     new_figure,
 )
+from analogs.presentation.map_layers import EVENT_MARKERS, HEIGHT_INTERVAL_GPM, height_levels
 from analogs.stages.regimes import REGIME_LABELS
 
 #: The regimes' own colours (Tol's qualitative scheme: indigo, teal, wine; grey for the
@@ -378,7 +377,7 @@ def regime_composite_maps(composites: xr.Dataset, density: xr.DataArray | None =
     :func:`analogs.stages.seasonal.regime_composites`; ``density`` is
     :func:`analogs.stages.seasonal.regime_report_density` (column left out when None).
     ``land`` and ``geography``: the archive's land-sea boundary and the Earth's lines,
-    as for :func:`analogs.presentation.figures.target_map`.
+    as for :func:`analogs.presentation.svg_maps.target_map`.
     """
     if "z500_anomaly" not in composites:
         raise AnalogsInputError("regime_composite_maps needs the Dataset of "
@@ -419,8 +418,7 @@ def regime_composite_maps(composites: xr.Dataset, density: xr.DataArray | None =
                                           cmap="RdBu_r", vmin=-limit, vmax=limit,
                                           shading="nearest")
                 z = composites["z500_mean"].sel(regime=regime).values
-                levels = np.arange(HEIGHT_INTERVAL_GPM * np.floor(np.nanmin(z) / HEIGHT_INTERVAL_GPM),
-                                   np.nanmax(z) + HEIGHT_INTERVAL_GPM, HEIGHT_INTERVAL_GPM)
+                levels = height_levels(z)
                 contours = ax.contour(lon, lat, z, levels=levels, colors="0.15", linewidths=0.7)
                 ax.clabel(contours, fontsize=6, fmt="%.0f")
             elif name == "density":
@@ -477,7 +475,7 @@ def cyclone_centred_maps(in_place: xr.Dataset, centred: xr.Dataset, *, season=""
     ``centred``: :func:`analogs.stages.seasonal.cyclone_centred_composite` of the same
     days' anomalies (``z500``, a moisture anomaly, optionally ``report_density``).
     ``land`` and ``geography`` go on the in-place map, as for
-    :func:`analogs.presentation.figures.target_map`.
+    :func:`analogs.presentation.svg_maps.target_map`.
     """
     if "z500" not in centred or "dlat" not in centred.dims:
         raise AnalogsInputError("cyclone_centred_maps needs the Dataset of "
@@ -568,7 +566,7 @@ def example_day_gallery(fields: xr.Dataset, examples: pd.DataFrame, events=None,
     (:func:`analogs.stages.seasonal.example_days_across_record`: ``regime``,
     ``period``, ``date``); ``events``: the reports of those days (``lat``, ``lon``,
     ``kind``, ``day``); ``source`` says where the fields come from; ``land`` and
-    ``geography`` as for :func:`analogs.presentation.figures.target_map`.
+    ``geography`` as for :func:`analogs.presentation.svg_maps.target_map`.
     """
     _need(examples, ["regime", "period", "date"], "example_day_gallery",
           "the table of example_days_across_record")
@@ -595,8 +593,7 @@ def example_day_gallery(fields: xr.Dataset, examples: pd.DataFrame, events=None,
     kind_colour = {k: MAP_KIND_FILLS[i % len(MAP_KIND_FILLS)] for i, k in enumerate(kinds)}
     event_days = (pd.to_datetime(events["day"]).dt.normalize() if kinds else None)
     z_all = fields["z500"].values
-    levels = np.arange(HEIGHT_INTERVAL_GPM * np.floor(np.nanmin(z_all) / HEIGHT_INTERVAL_GPM),
-                       np.nanmax(z_all) + HEIGHT_INTERVAL_GPM, HEIGHT_INTERVAL_GPM)
+    levels = height_levels(z_all)
     mesh, described = None, []
     for ax in axes.ravel():
         ax.set_axis_off()

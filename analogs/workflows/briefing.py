@@ -24,6 +24,7 @@ from analogs.parameters import P
 from analogs.presentation import figures as plots
 from analogs.presentation import slides as draw
 from analogs.presentation.briefing_page import briefing_html
+from analogs.presentation.map_layers import land_lines
 from analogs.stages.outcomes import daily_event_counts
 from analogs.stages.seasonal import (
     archive_sampling,
@@ -215,7 +216,7 @@ def build_briefing(store, out_dir, *, months=None, files=None, n_periods=EXAMPLE
                if has_events and len(reported) else None)
     bar.update()
 
-    land = plots.land_lines(store.land)  # traced once for every map
+    land = land_lines(store.land)  # traced once for every map
     geography = map_lines(lat, lon, store.land)
     trend = regime_trend(tags, months)
     slides = [

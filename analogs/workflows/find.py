@@ -4,7 +4,7 @@
 >>> from analogs.workflows.find import find, report_figures
 >>> store = AnalogStore.load("store")
 >>> result = find(store, field="forecast.nc", top=20)     # same as store.find(...)
->>> figures = report_figures(store, result)                # [(caption, PNG bytes, alt text), ...]
+>>> figures = report_figures(store, result)                # [(caption, SVG text, alt text), ...]
 
 Data flow of a query:
 
@@ -1334,7 +1334,7 @@ def _times_held(path) -> tuple[pd.DatetimeIndex | None, frozenset]:
 
 def _place(values, lat, lon) -> str:
     """Where the largest of ``values`` (lat, lon) is, in degrees N/S and W/E."""
-    from analogs.presentation.figures import degrees_east_label, degrees_north_label
+    from analogs.presentation.map_layers import degrees_east_label, degrees_north_label
     i, j = np.unravel_index(int(np.nanargmax(values)), np.shape(values))
     return f"{degrees_north_label(lat[i])} {degrees_east_label(lon[j])}"
 
@@ -1377,7 +1377,7 @@ def _alt_marks(marks) -> str:
     """Alt text of the synoptic marks of one map."""
     if marks is None or not len(marks):
         return " No trough or ridge axis and no closed low found."
-    from analogs.presentation.figures import degrees_east_label, degrees_north_label
+    from analogs.presentation.map_layers import degrees_east_label, degrees_north_label
     parts = []
     for kind, words in (("trough", "trough axis"), ("ridge", "ridge axis")):
         lines = marks[marks["kind"] == kind].groupby("axis")
@@ -1401,16 +1401,17 @@ def _short(source) -> str:
 def _alt_land(land, geography) -> str:
     """The alt text's account of the geography drawn: the archive's land-sea boundary,
     the Earth's lines (or why they are left off)."""
-    from analogs.presentation.figures import earth_note
+    from analogs.presentation.map_layers import earth_note
     note = earth_note(geography)
     return ((" The land-sea boundary from the archive's mask is drawn in brown." if land else "")
             + (f" {note[0].upper()}{note[1:]}." if note else ""))
 
 
-def report_figures(store, result: FindResult, *, maps=None, hindcast=None,
-                   n_panel=None, tiles=None) -> list[tuple[str, bytes, str]]:
-    """Figures of one query, as (caption, PNG bytes, alt text describing the content)
-    for :func:`analogs.presentation.report.find_html`.
+def report_figures(store, result: FindResult, *, maps=None, n_panel=None,
+                   views=None) -> list[tuple[str, str, str]]:
+    """Figures of one query, as (caption, SVG text, alt text describing the content)
+    for :func:`analogs.presentation.report.find_html`, drawn by
+    :mod:`analogs.presentation.svg_maps` (no matplotlib).
 
     Everything is gathered once: the target's fields (``result.target_fields`` for a
     field target), the archive days' fields (a date target and the analog days): the
@@ -1421,13 +1422,13 @@ def report_figures(store, result: FindResult, *, maps=None, hindcast=None,
     their mean, their trough and ridge axes and closed lows (:func:`_marks`), the
     land-sea boundary of the store's mask (traced once), the events of the days drawn
     and the outcome maps (``maps`` when already computed, e.g. for ``--maps``).
-    Every analog is drawn in the grid unless ``n_panel`` limits it.
-    ``hindcast``: optional DataFrame of :func:`analogs.stages.hindcast.leave_one_year_out`
-    for the reliability and ROC figures. ``tiles``: a list to which each analog's own map,
-    cropped from the grid's PNG (no second drawing), is appended as PNG bytes in rank
-    order, for the browsing page.
+    Every analog is drawn in the grid unless ``n_panel`` limits it. ``views``: a list
+    to which each analog's map in the grid is appended as (SVG id, width, height) in
+    rank order, for the browsing page to show it again
+    (:func:`analogs.presentation.svg_maps.map_view`).
     """
-    from analogs.presentation import figures as draw
+    from analogs.presentation import svg_maps as draw
+    from analogs.presentation.map_layers import land_lines
     from analogs.workflows.geography import map_lines
     region = result.region if result.region is not None else store.region
     when = result.target.get("date") or "the forecast field"
@@ -1455,17 +1456,17 @@ def report_figures(store, result: FindResult, *, maps=None, hindcast=None,
     if target is None and result.target.get("date"):
         source = days_source
         target, gathered = gathered.isel(analog=0), gathered.isel(analog=slice(1, None))
-    land = draw.land_lines(store.land)  # traced once for every map
+    land = land_lines(store.land)  # traced once for every map
     geography = map_lines(*store.grid, store.land)
     target_marks, analog_marks = _marks(target, gathered)
     figures = []
     if target is not None:
+        alt = (_alt_target(target, f"target {when}", source) + _alt_marks(target_marks)
+               + _alt_land(land, geography))
         figures.append((f"Target {when}: 500 hPa height and moisture ({source})",
-                        _later(draw.target_map, target, region=region,
-                               when=f"Target {when}", source=source, land=land,
-                               marks=target_marks, geography=geography),
-                        _alt_target(target, f"target {when}", source)
-                        + _alt_marks(target_marks) + _alt_land(land, geography)))
+                        draw.target_map(target, region=region, when=f"Target {when}",
+                                        source=source, land=land, marks=target_marks,
+                                        geography=geography, alt=alt), alt))
     if len(analogs):
         gathered = gathered.assign_coords(analog=analogs["rank"].to_numpy())
         shown = analogs if n_panel is None else analogs.head(n_panel)
@@ -1483,28 +1484,30 @@ def report_figures(store, result: FindResult, *, maps=None, hindcast=None,
                   "lows (L) of the 500 hPa height are marked." if len(analog_marks) else "")
                + _alt_land(land, geography))
         figures.append(("The closest past days and their events",
-                        _later(draw.analog_panel, gathered.isel(analog=slice(0, len(shown))),
-                               shown, events, region=region, land=land, geography=geography,
-                               marks=analog_marks[analog_marks["panel"] < len(shown)],
-                               title=f"Closest past days to {when}: 500 hPa height "
-                                     f"({_short(days_source)})"),
-                        alt))
+                        draw.analog_panel(gathered.isel(analog=slice(0, len(shown))),
+                                          shown, events, region=region, land=land,
+                                          geography=geography,
+                                          marks=analog_marks[analog_marks["panel"] < len(shown)],
+                                          title=f"Closest past days to {when}: 500 hPa height "
+                                                f"({_short(days_source)})",
+                                          alt=alt, views=views), alt))
         if target is not None:
             mean = gathered.mean("analog", keep_attrs=True).drop_vars("time", errors="ignore")
             mean.attrs["n_days"] = int(len(analogs))
             difference = mean["z500"].values - target["z500"].values
             lat, lon = mean["lat"].values, mean["lon"].values
+            alt = (f"Two maps. Left: mean 500 hPa height and moisture of the "
+                   f"{len(analogs)} analog days ({_short(days_source)}). Right: that mean minus the target's "
+                   f"height, shaded blue to red from {np.nanmin(difference):.0f} to "
+                   f"{np.nanmax(difference):+.0f} gpm (most above the target near "
+                   f"{_place(difference, lat, lon)}, most below near "
+                   f"{_place(-difference, lat, lon)}), target contours on top.")
             figures.append(("Mean of the analog days and its difference from the target",
-                            _later(draw.composite_difference, mean, target, region=region,
-                                   land=land, geography=geography,
-                                   title=f"Analog days and target {when} (analogs: "
-                                         f"{_short(days_source)}; target: {_short(source)})"),
-                            f"Two maps. Left: mean 500 hPa height and moisture of the "
-                            f"{len(analogs)} analog days ({_short(days_source)}). Right: that mean minus the target's "
-                            f"height, shaded blue to red from {np.nanmin(difference):.0f} to "
-                            f"{np.nanmax(difference):+.0f} gpm (most above the target near "
-                            f"{_place(difference, lat, lon)}, most below near "
-                            f"{_place(-difference, lat, lon)}), target contours on top."))
+                            draw.composite_difference(
+                                mean, target, region=region, land=land, geography=geography,
+                                title=f"Analog days and target {when} (analogs: "
+                                      f"{_short(days_source)}; target: {_short(source)})",
+                                alt=alt), alt))
         if store.events is not None:
             maps = outcome_maps(store, result) if maps is None else maps
             p = 100.0 * maps["neighbourhood_probability"].values
@@ -1517,43 +1520,6 @@ def report_figures(store, result: FindResult, *, maps=None, hindcast=None,
                    + (f", largest near {_place(maps['report_density'].values, lat, lon)}"
                       if nonzero else "") + "; zero left blank on both.")
             figures.append(("Where the analog days had events nearby",
-                            _later(draw.probability_map, maps, region=region, when=when,
-                                   land=land, geography=geography), alt))
-    if hindcast is not None:
-        from analogs.stages.scores import reliability_table, roc_curve_points
-        p = hindcast["forecast"].to_numpy()
-        o = hindcast["observed"].to_numpy()
-        figures.append(("Reliability of past analog guidance",
-                        _later(draw.reliability_diagram, reliability_table(p, o)),
-                        f"Reliability diagram of {p.size} hindcast probabilities: observed "
-                        "frequency against forecast probability, diagonal for perfect "
-                        "reliability, forecasts per bin below."))
-        if 0 < o.sum() < o.size:
-            figures.append(("ROC of past analog guidance",
-                            _later(draw.roc_diagram, *roc_curve_points(p, o)[:2]),
-                            f"ROC curve of {p.size} hindcast probabilities: hit rate "
-                            "against false alarm rate, with its area in the legend."))
-    pngs = _draw_all([job for _, job, _ in figures], tiles)
-    return [(caption, png, alt) for (caption, _, alt), png in zip(figures, pngs)]
-
-
-def _later(function, *args, **kwargs):
-    """A figure to draw: (figure function, arguments)."""
-    return function, args, kwargs
-
-
-def _draw_all(jobs, tiles=None) -> list[bytes]:
-    """PNG bytes of every job, drawn one after the other. (Drawing in forked processes
-    was measured faster on two cores, 1.59 vs 2.19 times `find --json`, but forking a
-    process that holds faiss's OpenMP pool and HDF5 can deadlock the child, and a report
-    must never hang.)"""
-    from analogs.presentation.browse import panel_tiles
-    from analogs.presentation.figures import figure_png
-    pngs = []
-    for function, args, kwargs in jobs:
-        figure = function(*args, **kwargs)
-        pngs.append(figure_png(figure))
-        if tiles is not None and hasattr(figure, "panel_offsets"):
-            tiles.extend(panel_tiles(figure, pngs[-1], args[0]["lat"].values,
-                                     args[0]["lon"].values))
-    return pngs
+                            draw.probability_map(maps, region=region, when=when, land=land,
+                                                 geography=geography, alt=alt), alt))
+    return figures

@@ -3,9 +3,9 @@
 >>> from analogs.workflows.page import report_page
 >>> text = report_page(store, result)          # HTML of analogs.presentation.report.find_html
 
-The figures are :func:`analogs.workflows.find.report_figures`'s; each analog's own map is
-cut from the analog grid's PNG as it is saved (no second drawing); each day's reports
-come from the store's events table.
+The figures are :func:`analogs.workflows.find.report_figures`'s SVG maps; each analog's
+own map in the browsing panel is its map in the analog grid shown again (``<use>``, no
+second drawing); each day's reports come from the store's events table.
 """
 
 from __future__ import annotations
@@ -16,17 +16,18 @@ import pandas as pd
 from analogs.results import FindResult
 
 
-def analog_days(store, result: FindResult, tiles=()) -> dict:
+def analog_days(store, result: FindResult, views=()) -> dict:
     """rank -> {"tile", "alt", "reports", "extent", "markers"} for each analog of
-    ``result``: ``tile``, its map (PNG bytes, from ``tiles``: the analogs' maps in rank
-    order, as ``report_figures(..., tiles=[])`` fills them) or None; ``alt``, the map's
+    ``result``: ``tile``, its map in the analog grid ((SVG id, width, height), from
+    ``views``: the analogs' maps in rank order, as ``report_figures(..., views=[])``
+    fills them) or None; ``alt``, the map's
     description; ``reports``, its convective day's reports on the store's grid by time
     (dicts of time UTC as month-day hour:minute, kind, magnitude, lat, lon and whether
     in the outcome region), None when the store has no events table or no reports for
     that day yet; ``extent``, the map's latitudes and longitudes; ``markers``, kind ->
     (marker, colour) as the grid draws them."""
-    from analogs.presentation.browse import marker_styles
-    from analogs.presentation.figures import degrees_east_label, degrees_north_label
+    from analogs.presentation.map_layers import degrees_east_label, degrees_north_label
+    from analogs.presentation.svg_maps import marker_styles
     analogs = result.analogs
     region = result.region if result.region is not None else store.region
     lat, lon = store.grid
@@ -60,7 +61,7 @@ def analog_days(store, result: FindResult, tiles=()) -> dict:
                "outcome region dashed, "
                + (f"{len(reports)} reports of the day marked by kind ({', '.join(kinds)})"
                   if reports else "no reports marked") + ".")
-        days[int(analog.rank)] = {"tile": tiles[i] if i < len(tiles) else None,
+        days[int(analog.rank)] = {"tile": views[i] if i < len(views) else None,
                                   "alt": alt, "reports": reports, "markers": markers,
                                   "extent": extent}
     return days
@@ -83,12 +84,12 @@ def _magnitude(value) -> str:
     return f"{value:g}" if isinstance(value, (int, float, np.number)) else str(value)
 
 
-def report_page(store, result: FindResult, *, maps=None, hindcast=None) -> str:
+def report_page(store, result: FindResult, *, maps=None) -> str:
     """The HTML page of one query: figures, each analog's map and reports, answer first
     (:func:`analogs.presentation.report.find_html`)."""
     from analogs.presentation.report import find_html
     from analogs.workflows.find import report_figures
-    tiles = []
-    figures = report_figures(store, result, maps=maps, hindcast=hindcast, tiles=tiles)
+    views = []
+    figures = report_figures(store, result, maps=maps, views=views)
     return find_html(result, store.manifest, figures=figures,
-                     days=analog_days(store, result, tiles))
+                     days=analog_days(store, result, views))
