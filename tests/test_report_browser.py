@@ -71,7 +71,8 @@ def screenshot(page: Path, tmp_path: Path, name: str):
 
 
 class PageContent(HTMLParser):
-    """Tables (as lists of rows of cell text) and <img> sources of a DOM."""
+    """Tables (as lists of rows of cell text), the maps' alt text (``aria-label`` of each
+    ``<svg role="img">`` but the small bars) and the sources of their images."""
 
     def __init__(self):
         super().__init__()
@@ -86,11 +87,12 @@ class PageContent(HTMLParser):
             self.tables[-1].append([])
         elif tag in ("td", "th"):
             self._cell = []
-        elif tag == "img":
-            self.images.append(attrs.get("src", ""))
-            self.alts.append(attrs.get("alt", ""))
+        elif tag == "svg" and attrs.get("role") == "img" and attrs.get("class") != "bar":
+            self.alts.append(attrs.get("aria-label", ""))
+        elif tag in ("img", "image"):
+            self.images.append(attrs.get("src") or attrs.get("href", ""))
         for key in ("src", "href"):
-            if key in attrs and tag != "img":
+            if key in attrs and tag not in ("img", "image"):
                 self.links.append(attrs[key])
 
     def handle_data(self, data):
@@ -108,13 +110,13 @@ def report(demo_store, tmp_path_factory):
     tags = demo_store.tags
     summer = tags[(tags.index.year == tags.index.year.max()) & tags.index.month.isin([6, 7, 8])]
     result = demo_store.find(date=str(summer["confidence"].idxmax().date()), top=15)
-    tiles = []
-    figures = report_figures(demo_store, result, tiles=tiles)
+    views = []
+    figures = report_figures(demo_store, result, views=views)
     page = tmp_path_factory.mktemp("report") / "index.html"
-    days = analog_days(demo_store, result, tiles)
+    days = analog_days(demo_store, result, views)
     write_text(page, find_html(result, demo_store.manifest, figures=figures, days=days))
-    # Every image: the figures and one map per analog day.
-    return page, result, len(figures) + len(tiles), days
+    # Every map: the figures and one map per analog day.
+    return page, result, len(figures) + len(views), days
 
 
 @needs_chromium
@@ -133,8 +135,9 @@ def test_report_renders_with_table_images_and_no_console_message(report, tmp_pat
     assert len(analog_table) == 1
     rows = analog_table[0][1:]
     assert [row[1] for row in rows] == list(result.analogs["date"])
-    assert len(content.images) == n_figures >= 1
-    assert all(src.startswith("data:image/png;base64,") for src in content.images)
+    assert len(content.alts) == n_figures >= 1
+    assert content.images and all(src.startswith("data:image/png;base64,")
+                                  for src in content.images)
     # Alt text describes each image's content (not just its caption): the grid names
     # every analog day; the maps say where in degrees.
     assert all(len(alt) > 80 for alt in content.alts), content.alts
@@ -144,18 +147,25 @@ def test_report_renders_with_table_images_and_no_console_message(report, tmp_pat
 
 
 @needs_chromium
-def test_report_images_decode_in_the_browser(report, tmp_path):
-    """An instrumented copy logs each image's decoded width: every figure decodes."""
-    page, _, n_figures, _ = report
-    probe = ("<script>window.addEventListener('load', () => { for (const i of document.images)"
-             " console.log('decoded ' + i.naturalWidth + 'x' + i.naturalHeight); });</script>")
+def test_report_images_decode_in_the_browser(report, demo_store, tmp_path):
+    """An instrumented copy decodes each image of the maps (the shaded fields and the
+    colour bars) and logs its size: the fields are the store's grid (one pixel per grid
+    point), the colour bars one pixel wide."""
+    page, _, _, _ = report
+    probe = ("<script>window.addEventListener('load', () => { for (const e of "
+             "document.querySelectorAll('svg image')) { const i = new Image(); "
+             "i.onload = () => console.log('decoded ' + i.naturalWidth + 'x' + i.naturalHeight);"
+             " i.src = e.getAttribute('href'); } });</script>")
     copy = tmp_path / "probe.html"
     copy.write_text(page.read_text().replace("</body>", probe + "</body>"))
     done = run_chromium(copy, tmp_path / "profile-probe", "--dump-dom")
     sizes = [line.split('"decoded ')[1].split('"')[0] for line in console_lines(done.stderr)
              if '"decoded ' in line]
-    assert len(sizes) == n_figures
-    assert all(int(size.split("x")[0]) > 100 for size in sizes)
+    lat, lon = demo_store.grid
+    n_images = page.read_text().count("<image ")
+    assert len(sizes) == n_images > 4
+    assert f"{lon.size}x{lat.size}" in sizes
+    assert set(sizes) <= {f"{lon.size}x{lat.size}", "1x256", "1x10"}
 
 
 @needs_chromium
@@ -313,9 +323,8 @@ def test_page_sorts_filters_and_shows_the_clicked_day(report, demo_store, browse
     day = browser.find_element(By.ID, f"analog-{rank}")
     date = analogs.loc[analogs["rank"] == rank, "date"].iloc[0]
     assert date in day.find_element(By.TAG_NAME, "h3").text
-    tile = day.find_element(By.CSS_SELECTOR, "img.tile")
-    assert date in tile.get_attribute("alt")
-    assert browser.execute_script("return arguments[0].naturalWidth", tile) > 100
+    tile = day.find_element(By.CSS_SELECTOR, "svg.tile")
+    assert date in tile.get_attribute("aria-label")
     assert tile.size["width"] > 200 and tile.size["height"] > 100
     # Its report list: the events table's reports of that convective day on the map
     # (reference: the events table filtered here with pandas).
@@ -343,7 +352,7 @@ def test_page_sorts_filters_and_shows_the_clicked_day(report, demo_store, browse
     other = next(r for r in days if r != rank)
     browser.find_element(By.ID, f"row-{other}").click()
     other_pixels = _png_pixels(browser.find_element(
-        By.CSS_SELECTOR, f"#analog-{other} img.tile").screenshot_as_png)
+        By.CSS_SELECTOR, f"#analog-{other} svg.tile").screenshot_as_png)
     assert other_pixels.shape == map_pixels.shape
     assert np.abs(other_pixels - map_pixels).mean() > 1.0
     assert _severe_logs(browser) == []
