@@ -21,8 +21,8 @@ Data flow of a query:
 
 :func:`report_figures` gathers what the figures need in one pass (one daily-climatology
 evaluation and one EOF reconstruction for the target day and every analog day, the
-events of those days, the outcome maps) and hands arrays to the pure figure functions of
-:mod:`analogs.presentation.figures`.
+events of those days, the outcome maps) and hands arrays to the pure SVG map functions of
+:mod:`analogs.presentation.svg_maps`.
 
 Derived arrays of a store version (daily event counts per region, sequence vectors and
 their indexes, regime arrays) are computed once per loaded store and kept beside it; the

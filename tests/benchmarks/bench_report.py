@@ -4,9 +4,12 @@ Builds a demo store (reanalysis_demo, ``--years`` years) under ``--out`` (reused
 present), then times both commands as separate processes on the same query (a date
 target and a field target written from the archive), ``--runs`` times each, and prints
 the medians and their ratio. Also times ``report_figures`` in process (median of the same
-number of runs, after one warm-up), the part of the report that is drawing, and
-``report_page`` (the whole page: the figures, each analog's map cut from the grid, each
-day's reports, the HTML) alternating with it, for what the browsing page adds.
+number of runs, after one warm-up: gathering the drawn days' fields, the marks and the
+outcome maps, and drawing the SVG maps), and ``report_page`` (the whole page: the
+figures, each analog's map shown again by reference, each day's reports, the HTML)
+alternating with it, for what the browsing page adds. The report's maps are SVG of
+the package's own (no matplotlib import); with ``--tree`` an older checkout is timed
+as it draws.
 
 The store is built with the demo continent's land-sea mask (``archive/static/
 land_sea_mask.nc``, written here from ``reanalysis_demo.geography`` when the demo did
@@ -87,7 +90,9 @@ def timed(command) -> float:
         env["PYTHONPYCACHEPREFIX"] = str(TIMED["bytecode"])
     before = resource.getrusage(resource.RUSAGE_CHILDREN)
     start = time.perf_counter()
-    subprocess.run(command, check=True, env=env, stdout=subprocess.DEVNULL,
+    # Run from the timed tree: `python -m` puts the working directory first on sys.path,
+    # ahead of PYTHONPATH, so from another checkout that checkout's package would run.
+    subprocess.run(command, check=True, env=env, cwd=TIMED["tree"], stdout=subprocess.DEVNULL,
                    stderr=subprocess.DEVNULL)
     elapsed = time.perf_counter() - start
     after = resource.getrusage(resource.RUSAGE_CHILDREN)
