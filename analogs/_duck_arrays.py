@@ -9,7 +9,9 @@ array. An object of ``dask.array.Array`` or ``pint.Quantity`` cannot exist befor
 module is imported, so the check "is ``x`` such an array" is answered exactly by looking
 for the module in ``sys.modules`` first: :func:`defer_duck_array_imports` gives xarray
 that check, and the library itself, with its version, when xarray asks for more than
-the class. It relies on xarray's record of these libraries (``pycompat.
+the class. xarray's ``is_dask_collection`` (which imports dask itself) answers the
+objects dask's own first test answers (types, objects without ``__dask_graph__``)
+without importing dask. It relies on xarray's record of these libraries (``pycompat.
 _cached_duck_array_modules``, ``DuckArrayModule``; xarray 2023.x to 2026.x): where a
 version of xarray has no such record, or has already filled it, it changes nothing and
 xarray imports the libraries as before (tests/test_duck_arrays.py runs both paths).
@@ -58,7 +60,34 @@ def defer_duck_array_imports() -> bool:
         if name not in cache and module_name not in sys.modules \
                 and importlib.util.find_spec(name) is not None:
             cache[name] = record(name)
+    _defer_dask_collection_check()
     return any(isinstance(cache.get(name), record) for name in DEFERRED)
+
+
+def _defer_dask_collection_check() -> None:
+    """xarray's ``is_dask_collection`` (asked of every array it wraps, through
+    ``is_duck_dask_array``) imports ``dask.base``, and with it dask (about 0.3 s CPU),
+    to ask dask's own ``is_dask_collection``, whose first test needs no dask: a type, or
+    an object without a callable ``__dask_graph__``, is not a collection. The deferred
+    check answers those without importing dask and hands every other object to
+    xarray's own check (tests/test_duck_arrays.py compares the answers with dask's)."""
+    try:
+        from xarray.namedarray import utils
+        own = utils.is_dask_collection
+    except (ImportError, AttributeError):
+        return
+    if getattr(own, "deferred", False):
+        return
+
+    @functools.wraps(own)
+    def is_dask_collection(x) -> bool:
+        if "dask" not in sys.modules and (
+                isinstance(x, type) or not callable(getattr(x, "__dask_graph__", None))):
+            return False
+        return own(x)
+
+    is_dask_collection.deferred = True
+    utils.is_dask_collection = is_dask_collection
 
 
 @functools.cache

@@ -23,7 +23,7 @@ import numpy as np
 import xarray as xr
 plain = xr.DataArray(np.arange(3.0), dims="x")
 print(float(plain.sum()), plain.to_numpy().tolist())
-print("before", "dask.array" in sys.modules, "pint" in sys.modules)
+print("before", "dask.array" in sys.modules, "pint" in sys.modules, "dask" in sys.modules)
 import dask.array as da
 import pint
 print(xr.DataArray(da.ones(4, chunks=2), dims="x").chunks)
@@ -49,10 +49,48 @@ def test_deferred_checks_answer_as_xarray_does_and_import_nothing_early():
                     "print(defer_duck_array_imports())")
     plain = _run("")
     assert deferred[0] == "True"
-    assert deferred[2] == "before False False"  # numpy-only work imported neither
-    assert plain[1] == "before True True"  # xarray's own records import both
+    assert deferred[2] == "before False False False"  # numpy-only work imported none
+    assert plain[1] == "before True True True"  # xarray's own records import them
     assert deferred[3:] == plain[2:]
     assert deferred[1] == plain[0]
+
+
+#: Objects asked about before dask is imported, then compared with dask's own answers.
+COLLECTIONS = """
+import sys
+import numpy as np
+import pandas as pd
+from analogs._duck_arrays import defer_duck_array_imports
+import xarray as xr
+defer_duck_array_imports()
+from xarray.namedarray.utils import is_dask_collection
+
+class NotCallable:
+    __dask_graph__ = None
+
+objects = [np.arange(3), pd.Index([1, 2]), [1, 2], np.ndarray, NotCallable(),
+           xr.DataArray(np.arange(3.0), dims="x")]
+answers = [is_dask_collection(x) for x in objects[:-1]]
+print("dask imported", "dask" in sys.modules)
+answers.append(is_dask_collection(objects[-1]))  # has __dask_graph__: asks dask
+import dask.array as da
+from dask.base import is_dask_collection as dasks
+objects.append(xr.DataArray(da.ones(4, chunks=2), dims="x"))
+answers.append(is_dask_collection(objects[-1]))
+print(answers == [dasks(x) for x in objects], answers)
+"""
+
+
+def test_dask_collections_answered_as_dask_does():
+    """The deferred is_dask_collection answers numpy arrays, pandas indexes, lists, types
+    and objects whose __dask_graph__ is not callable without importing dask, and every
+    answer is dask.base.is_dask_collection's (the reference), for a numpy-backed and a
+    dask-backed DataArray too."""
+    out = subprocess.run([sys.executable, "-c", COLLECTIONS], capture_output=True,
+                         text=True, check=True, env={**os.environ, "PYTHONPATH": str(ROOT)})
+    lines = out.stdout.splitlines()
+    assert lines[0] == "dask imported False"
+    assert lines[1] == "True [False, False, False, False, False, False, True]"
 
 
 def test_without_xarrays_record_nothing_changes(monkeypatch):
@@ -77,13 +115,13 @@ def test_a_record_xarray_already_built_is_kept(monkeypatch):
 
 @pytest.mark.parametrize("command", [["--report", "REPORT"], ["--json"]])
 def test_find_report_imports_neither_library(demo_store, tmp_path, command):
-    """`find --report` draws its maps without importing dask.array or pint (about 0.4 s
-    of CPU), and `find --json` still imports no xarray at all."""
+    """`find --report` draws its maps without importing dask (dask.array and dask.base)
+    or pint (about 0.7 s of CPU), and `find --json` still imports no xarray at all."""
     command = [str(tmp_path / "report") if part == "REPORT" else part for part in command]
     code = ("import sys; from analogs.cli import main; "
             f"main(['find', '--store', {str(demo_store.path)!r}, '--date', "
             f"{str(demo_store.days[400].date())!r}, *{command!r}]); "
-            "print([m for m in ('xarray', 'dask.array', 'pint') if m in sys.modules], "
+            "print([m for m in ('xarray', 'dask', 'dask.array', 'pint') if m in sys.modules], "
             "file=sys.stderr)")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
                          check=True, env={**os.environ, "PYTHONPATH": str(ROOT),

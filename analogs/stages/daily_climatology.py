@@ -25,7 +25,6 @@ and to the plain time mean otherwise; ``method_`` records which was used.
 
 from __future__ import annotations
 
-import dask
 import numpy as np
 import pandas as pd
 import xarray as xr
@@ -276,7 +275,9 @@ class HarmonicClimatology:
             rhs = _contract(design, var, "time")
         else:
             # Per-point normal equations so that gaps in time only drop those samples;
-            # for dask input both sums come from one pass over the data.
+            # for dask input both sums come from one pass over the data (dask imported
+            # here: evaluating a stored climatology for the maps needs none of it).
+            import dask
             valid = var.notnull().astype(design.dtype)
             normal_matrix, rhs = dask.compute(_contract(outer, valid, "time"),
                                               _contract(design, var.fillna(0.0), "time"))

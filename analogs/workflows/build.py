@@ -32,6 +32,7 @@ from analogs.stages.outcomes import (
 )
 from analogs.stages.selection import (DEFAULT_EXCLUDE, DEFAULT_WINDOW,
                     candidate_ids)
+from analogs.workflows.paths import provenance
 from analogs.workflows.reports import coverage_period, events_block, load_events
 from analogs.workflows.skill import measured_skill  # the build records it in the manifest
 from analogs.workflows.skill import skill_by_month  # noqa: F401 (re-exported by analogs.api)
@@ -39,16 +40,6 @@ from analogs.workflows.skill import skill_by_month  # noqa: F401 (re-exported by
 # The readers (sources), the regime diagnostics (regimes) and the hindcast are imported
 # inside the functions that use them: a query on an archive date needs none of them, and
 # the start-up of `analogs find` is part of a forecaster's wait.
-
-
-def provenance(paths) -> list[dict]:
-    entries = []
-    for path in paths:
-        path = Path(path)
-        size = path.stat().st_size if path.is_file() else sum(
-            f.stat().st_size for f in path.rglob("*") if f.is_file())
-        entries.append({"path": str(path.resolve()), "bytes": size})
-    return entries
 
 
 def grid_box(ds) -> tuple[float, float, float, float]:

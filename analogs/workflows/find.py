@@ -1245,7 +1245,7 @@ def archive_day_fields(store, rows) -> tuple[xr.Dataset | None, str]:
     (:func:`on_store_grid`). A store of daily means (``--daily mean``) keeps the
     reconstruction: its days are not single times of the files."""
     import xarray as xr
-    from analogs.workflows.build import provenance
+    from analogs.workflows.paths import provenance
     rows = np.atleast_1d(np.asarray(rows, dtype=int))
     if store.manifest["config"].get("daily", "instant") != "instant":
         return None, "the store holds daily means"

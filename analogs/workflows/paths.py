@@ -31,6 +31,18 @@ STORE_FILES = ("manifest.json", "basis.nc", "scores.nc", "events.parquet", "tags
 _MANIFEST_READ_LIMIT = 16 << 20
 
 
+def provenance(paths) -> list[dict]:
+    """Each input path as the manifest records it: its real absolute path and its size
+    in bytes (a folder, such as a Zarr store: the sum of its files)."""
+    entries = []
+    for path in paths:
+        path = Path(path)
+        size = path.stat().st_size if path.is_file() else sum(
+            f.stat().st_size for f in path.rglob("*") if f.is_file())
+        entries.append({"path": str(path.resolve()), "bytes": size})
+    return entries
+
+
 def real_path(path) -> Path:
     """``path`` as the real directory or file it names: absolute, symbolic links and
     ``..`` resolved (the parts that do not exist yet are kept as written)."""

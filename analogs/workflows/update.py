@@ -33,7 +33,8 @@ from analogs.parameters import P
 from analogs.stages.outcomes import EVENT_COLUMNS, merged_periods, parse_period
 from analogs.workflows import reports
 from analogs.workflows import store as store_io
-from analogs.workflows.build import diagnostic_region, provenance
+from analogs.workflows.build import diagnostic_region
+from analogs.workflows.paths import provenance
 from analogs.workflows.find import stored_daily_counts, with_default_predictor_weights
 
 #: The public function named in this workflow's parameter errors.
