@@ -107,8 +107,11 @@ def test_a_record_xarray_already_built_is_kept(monkeypatch):
     from xarray.namedarray import pycompat
 
     from analogs._duck_arrays import defer_duck_array_imports
+    from xarray.namedarray import utils
     built = {name: pycompat.DuckArrayModule(name) for name in ("dask", "pint")}
     monkeypatch.setattr(pycompat, "_cached_duck_array_modules", dict(built))
+    # (the deferred is_dask_collection the call puts in place is taken off afterwards)
+    monkeypatch.setattr(utils, "is_dask_collection", utils.is_dask_collection)
     assert defer_duck_array_imports() is False
     assert pycompat._cached_duck_array_modules == built
 

@@ -455,14 +455,14 @@ def html_table(rows: list[dict], columns: list[str], *, left=()) -> str:
     return f"<table><thead><tr>{head}</tr></thead><tbody>{''.join(body)}</tbody></table>"
 
 
-def find_html(result, manifest: dict, figures: list[tuple[str, bytes]] = (),
+def find_html(result, manifest: dict, figures: list[tuple[str, str, str]] = (),
               days: dict | None = None) -> str:
     """The page of one query (a :class:`~analogs.results.FindResult` or its
     ``to_dict()``), answer first: P(at least one event) beside the base rate, per kind,
     its measured skill, the target's regime and why; then the evidence to browse (the
     analog table, sortable and filterable, with each day's map and reports: ``days``,
     rank -> {"tile", "alt", "reports"} of :func:`analogs.workflows.page.analog_days`);
-    then the ``figures`` (caption, PNG bytes[, alt text]), the settings and the store's
+    then the ``figures`` (caption, SVG text, alt text), the settings and the store's
     provenance from ``manifest``. Self-contained (see :mod:`analogs.presentation.browse`)."""
     from analogs.presentation import browse
     data = _find_data(result)
