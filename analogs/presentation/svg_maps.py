@@ -101,11 +101,11 @@ class Frame:
         return ((np.asarray(lon, dtype=float) - self.lon0) * self.x_scale,
                 (self.lat1 - np.asarray(lat, dtype=float)) * self.y_scale)
 
-    def path(self, lines, shift=(0.0, 0.0)) -> str:
+    def path(self, lines) -> str:
         """The SVG path data of (n, 2) arrays of (lon, lat)."""
         parts = []
         for line in lines:
-            x, y = self.px(line[:, 0] + shift[0], line[:, 1] + shift[1])
+            x, y = self.px(line[:, 0], line[:, 1])
             parts.append("M" + _points(np.c_[x, y]))
         return "".join(parts)
 
@@ -198,7 +198,7 @@ def _label_place(frame, line, placed):
     return None
 
 
-def _earth(frame, geography, *, small=False, shift=(0.0, 0.0)) -> str:
+def _earth(frame, geography, *, small=False) -> str:
     """The Earth's lines (:class:`analogs.geo.MapLines`, cut to the map), one path per
     kind, greys with a light edge on full-size maps."""
     if not geography:
@@ -209,7 +209,7 @@ def _earth(frame, geography, *, small=False, shift=(0.0, 0.0)) -> str:
         lines = getattr(geography, kind)
         if small:
             lines = [thinned(line, SMALL_MAP_VERTEX_STEP_DEG) for line in lines]
-        d = frame.path(lines, shift)
+        d = frame.path(lines)
         if not small:
             parts.append(_stroke(d, "#f2f2f2", (style["width"] + 0.8) * PX_PER_PT,
                                  extra=' stroke-opacity="0.6"'))
@@ -337,8 +337,9 @@ def _colour_bar(x, y, height, name, vmin, vmax, label, *, bins=None) -> str:
     return "".join(parts)
 
 
-def _svg(width, height, alt, body, css_class="map") -> str:
-    return (f'<svg xmlns="http://www.w3.org/2000/svg" class="{css_class}" role="img" '
+def _svg(width, height, alt, body) -> str:
+    """A whole figure: its size in pixels, its alt text as aria-label and title."""
+    return (f'<svg xmlns="http://www.w3.org/2000/svg" class="map" role="img" '
             f'aria-label="{_e(alt)}" viewBox="0 0 {width:.0f} {height:.0f}" '
             f'width="{width:.0f}" height="{height:.0f}" font-family="{FONT}">'
             f"<title>{_e(alt)}</title>"
