@@ -24,6 +24,7 @@ from analogs.stages.outcomes import (
     daily_event_counts,
     effective_sample_size,
     gaussian_sigma_grid,
+    gaussian_smooth,
     grid_event_counts,
     neighbourhood_probability,
     outcome_maps,
@@ -492,8 +493,27 @@ def test_report_density_matches_scipy_gaussian_filter(grid):
     assert gaussian_sigma_grid(lat, lon, 120) == pytest.approx(sigma)
     expected = ndimage.gaussian_filter(counts, sigma=sigma, mode="constant")
     np.testing.assert_allclose(field.values, expected, atol=1e-15)
+    assert np.array_equal(field.values, ndimage.gaussian_filter(
+        grid_event_counts(events, days, lat, lon), sigma=gaussian_sigma_grid(lat, lon, 120),
+        mode="constant"))
     # Mass (events per analog day) conserved when the reports sit away from the edges.
     assert field.values.sum() == pytest.approx(n / 4, rel=1e-6)
+
+
+@settings(max_examples=200, deadline=None)
+@given(shape=st.tuples(st.integers(1, 40), st.integers(1, 40)),
+       sigma=st.tuples(st.floats(0.0, 7.0), st.floats(0.0, 7.0)),
+       truncate=st.sampled_from([4.0, 2.0, 0.6]), seed=st.integers(0, 2 ** 16))
+def test_gaussian_smooth_is_scipy_gaussian_filter_to_the_last_bit(shape, sigma, truncate, seed):
+    """The reference is scipy.ndimage.gaussian_filter (mode "constant"): the same values
+    bit for bit, for sparse counts and dense fields, kernels wider than the array, an
+    axis without smoothing (sigma 0) and short truncations."""
+    rng = np.random.default_rng(seed)
+    sparse = rng.random(shape) * (rng.random(shape) < 0.1) * 3
+    for values in (sparse, rng.standard_normal(shape) * 100):
+        expected = ndimage.gaussian_filter(values, sigma=sigma, mode="constant", cval=0.0,
+                                           truncate=truncate)
+        assert np.array_equal(gaussian_smooth(values, sigma, truncate=truncate), expected)
 
 
 def test_outcome_maps_cf_netcdf_atomic(tmp_path, grid, small_events):
