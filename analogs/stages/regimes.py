@@ -33,7 +33,9 @@ from __future__ import annotations
 
 import calendar
 import dataclasses
+import functools
 import numbers
+import warnings
 from dataclasses import dataclass, field, fields
 from os import PathLike
 from pathlib import Path
@@ -281,8 +283,11 @@ LOWER_LEVELS = {"z850": 850.0, "z1000": 1000.0}
 #: at once; emptied when full. 40 years at 1 degree have 411 centres of a few kB each; at
 #: 0.25 degree a centre's box holds some 4,000 points (about 80 kB).
 _CENTRE_CACHE_BYTES = 64 * 2**20
-#: Days of fields read at once by :func:`cyclone_structure`.
-_STRUCTURE_BLOCK_DAYS = 64
+#: Bytes of one field's float64 values that :func:`cyclone_structure` reads at once
+#: from an in-memory archive (days of a block are measured together, centre by centre:
+#: the larger the block, the fewer the groups; 64 MB: 3,000 days at 1 degree, 200 at
+#: 0.25 degree).
+_STRUCTURE_BLOCK_BYTES = 64 * 2**20
 
 
 #: exp(2i theta) at the centre bearings of the eight octants (22.5, 67.5, ... degrees).
@@ -306,12 +311,28 @@ def _finite_mean(values, weights, points):
     return _weighted_mean(part, weights[points])
 
 
+def _finite_means(values, weights, points):
+    """:func:`_finite_mean` of each row of ``values`` (days, flat points), to the last
+    bit: numpy sums each row of a 2-D array whose rows are contiguous (``numpy.take``
+    keeps them so, fancy indexing would not) pairwise, as it sums a 1-D array; rows
+    with a missing value at ``points`` are taken one by one."""
+    if points.size == 0:
+        return np.full(values.shape[0], np.nan)
+    part = np.take(values, points, axis=1)
+    point_weights = weights[points]
+    means = np.multiply(part, point_weights).sum(axis=1) / point_weights.sum()
+    for row in np.flatnonzero(~np.isfinite(part).all(axis=1)):
+        means[row] = _finite_mean(values[row], weights, points)
+    return means
+
+
 class _AroundCentre:
     """The grid around one closed-low centre, shared by every day centred there: the
     points of the box that can lie within RING_KM[1] (:func:`_box_around`), flattened
     in grid order, with their cos-latitude weights and the flat indices of the ring's
-    eight octants (by initial bearing, 45 degrees each from north), of the core disc,
-    of the ring and of Hart's disc."""
+    eight octants (by initial bearing, 45 degrees each from north; ``by_octant`` the
+    eight one after the other, ``octant_ends`` where each ends), of the core disc, of
+    the ring and of Hart's disc."""
 
     def __init__(self, c_lat, c_lon, lat, lon, lat2, lon2, weights):
         self.near = _box_around(c_lat, c_lon, lat, lon, RING_KM[1])
@@ -323,40 +344,104 @@ class _AroundCentre:
         ring = (distance >= RING_KM[0]) & (distance <= RING_KM[1])
         octant = (np.floor(bearing / 45.0).astype(int)) % 8
         self.octants = [np.flatnonzero(ring & (octant == k)) for k in range(8)]
+        self.by_octant = np.concatenate(self.octants)
+        self.octant_ends = np.cumsum([points.size for points in self.octants])
+        self.octant_weights = np.array([self.weights[points].sum() if points.size else np.nan
+                                        for points in self.octants])
         self.core = np.flatnonzero(distance <= CORE_RADIUS_KM)
         self.ring = np.flatnonzero(ring)
         self.hart = np.flatnonzero(distance <= HART_RADIUS_KM)
         self.nbytes = sum(a.nbytes for a in (self.weights, self.core, self.ring, self.hart,
-                                             *self.octants))
+                                             self.by_octant, *self.octants))
 
-    def values(self, field):
-        """``field`` (lat, lon) at the box's points, flattened in grid order."""
-        return field[self.near].ravel()
+    def box(self, field, days):
+        """``field`` (time, lat, lon) on ``days`` over the box: (days, rows, columns)."""
+        rows, columns = self.near
+        return field[days[:, None, None], rows[None], columns[None]]
+
+    def values(self, field, days):
+        """``field`` (time, lat, lon) on ``days`` at the box's points: (days, points),
+        each day's points flattened in grid order."""
+        return self.box(field, days).reshape(days.size, -1)
+
+
+class _CentreGeometries:
+    """The geometry around each closed-low centre of one grid (:class:`_AroundCentre`),
+    computed once and shared by every block of days (and thread) of an archive; emptied
+    when it holds more than :data:`_CENTRE_CACHE_BYTES`."""
+
+    def __init__(self, lat, lon):
+        self.lat, self.lon = np.asarray(lat, dtype=float), np.asarray(lon, dtype=float)
+        self.lat2, self.lon2 = np.meshgrid(self.lat, self.lon, indexing="ij")
+        self.weights = np.cos(np.radians(self.lat2))
+        self.centres: dict = {}
+        self.nbytes = 0
+
+    def on_grid(self, lat, lon) -> bool:
+        return np.array_equal(self.lat, lat) and np.array_equal(self.lon, lon)
+
+    def around(self, c_lat, c_lon) -> _AroundCentre:
+        key = (c_lat, c_lon)
+        found = self.centres.get(key)
+        if found is None:
+            if self.nbytes > _CENTRE_CACHE_BYTES:
+                self.centres.clear()
+                self.nbytes = 0
+            found = _AroundCentre(c_lat, c_lon, self.lat, self.lon, self.lat2, self.lon2,
+                                  self.weights)
+            self.centres[key] = found
+            self.nbytes += found.nbytes
+        return found
+
+
+def _octant_means(anomaly, around: _AroundCentre):
+    """Weighted means (days, 8) of ``anomaly`` (days, ``around``'s points) over the
+    ring's eight octants, each :func:`_finite_mean` to the last bit (as in
+    :func:`_finite_means`: one product array, each octant a column slice of it, whose
+    rows stay contiguous); NaN for an octant without a grid point; days with a missing
+    value on the ring taken by :func:`_finite_mean`."""
+    part = np.take(anomaly, around.by_octant, axis=1)
+    products = np.multiply(part, around.weights[around.by_octant])
+    sums = np.stack([products[:, start:stop].sum(axis=1) for start, stop in
+                     zip(np.r_[0, around.octant_ends[:-1]], around.octant_ends)], axis=1)
+    means = sums / around.octant_weights
+    for row in np.flatnonzero(~np.isfinite(part).all(axis=1)):
+        means[row] = [_finite_mean(anomaly[row], around.weights, points)
+                      for points in around.octants]
+    return means
 
 
 def _ring_asymmetry(anomaly, around: _AroundCentre, depth):
-    """Wavenumber-2 amplitude of ``anomaly`` (flat, at ``around``'s points) on the ring,
-    over ``depth``: octant means (each octant needs a grid point with a value; NaN
-    otherwise: the ring leaves the grid)."""
-    means = np.array([_finite_mean(anomaly, around.weights, points)
-                      for points in around.octants])
-    if not np.all(np.isfinite(means)) or not depth > 0:
-        return np.nan
-    amplitude = 2.0 / 8.0 * abs(np.sum(means * _OCTANT_WAVE2))
-    return float(amplitude / depth)
+    """Wavenumber-2 amplitude of ``anomaly`` (days, ``around``'s points) on the ring,
+    over ``depth`` (days): octant means (each octant needs a grid point with a value;
+    NaN otherwise: the ring leaves the grid)."""
+    means = _octant_means(anomaly, around)
+    wave = np.sum(means * _OCTANT_WAVE2, axis=1)
+    # The modulus as Python's abs() of a complex takes it (hypot): numpy's complex
+    # absolute value of an array differs from it in the last bit.
+    amplitude = 2.0 / 8.0 * np.hypot(wave.real, wave.imag)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.where(np.isfinite(means).all(axis=1) & (depth > 0), amplitude / depth,
+                        np.nan)
 
 
 def _core_and_ring(values, around: _AroundCentre):
-    """Area means of ``values`` within CORE_RADIUS_KM and on the RING_KM annulus."""
-    return (_finite_mean(values, around.weights, around.core),
-            _finite_mean(values, around.weights, around.ring))
+    """Area means of ``values`` (days, ``around``'s points) within CORE_RADIUS_KM and
+    on the RING_KM annulus."""
+    return (_finite_means(values, around.weights, around.core),
+            _finite_means(values, around.weights, around.ring))
 
 
 def _hart_height_difference(z, around: _AroundCentre):
-    """Zmax - Zmin within HART_RADIUS_KM of the centre (Hart 2003), gpm."""
-    near = z[around.hart]
-    near = near[np.isfinite(near)]
-    return float(near.max() - near.min()) if near.size else np.nan
+    """Zmax - Zmin within HART_RADIUS_KM of the centre (Hart 2003), gpm, of each day
+    (``z``: days, ``around``'s points); missing values skipped."""
+    if around.hart.size == 0:
+        return np.full(z.shape[0], np.nan)
+    near = np.take(z, around.hart, axis=1)
+    near = np.where(np.isfinite(near), near, np.nan)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)   # a day without a value: NaN
+        return np.nanmax(near, axis=1) - np.nanmin(near, axis=1)
 
 
 def _box_around(centre_lat, centre_lon, lat, lon, radius_km):
@@ -376,20 +461,21 @@ def _box_around(centre_lat, centre_lon, lat, lon, radius_km):
 
 
 def _structure_blocks(rows: np.ndarray, z500) -> list[np.ndarray]:
-    """The closed-low days ``rows`` in blocks read at once: at most
-    ``_STRUCTURE_BLOCK_DAYS`` days of an in-memory archive; of a chunked (dask) one, the
-    days of one time chunk, so that each chunk is read once (64-day blocks of scattered
-    days read each chunk about five times: measured, 40 years at 1 degree in 365-day
-    chunks, 14 s of 16 s)."""
+    """The closed-low days ``rows`` in blocks read at once: of an in-memory archive, as
+    many days as :data:`_STRUCTURE_BLOCK_BYTES` hold; of a chunked (dask) one, the days
+    of one time chunk, so that each chunk is read once (64-day blocks of scattered days
+    read each chunk about five times: measured, 40 years at 1 degree in 365-day chunks,
+    14 s of 16 s)."""
     sizes = (z500.chunksizes or {}).get("time")
     if not sizes:
-        return [rows[start:start + _STRUCTURE_BLOCK_DAYS]
-                for start in range(0, rows.size, _STRUCTURE_BLOCK_DAYS)]
+        days = max(1, _STRUCTURE_BLOCK_BYTES // (8 * z500.sizes["lat"] * z500.sizes["lon"]))
+        return [rows[start:start + days] for start in range(0, rows.size, days)]
     chunk = np.searchsorted(np.cumsum(sizes), rows, side="right")
     return np.split(rows, np.flatnonzero(np.diff(chunk)) + 1)
 
 
-def cyclone_structure(ds: xr.Dataset, diagnostics: pd.DataFrame) -> pd.DataFrame:
+def cyclone_structure(ds: xr.Dataset, diagnostics: pd.DataFrame, *,
+                      centres: _CentreGeometries | None = None) -> pd.DataFrame:
     r"""Structure of the closed low of each day, for the tropical rule.
 
     For every day whose diagnostics have a closed low (``tc_present``, ``tc_lat``,
@@ -425,7 +511,10 @@ def cyclone_structure(ds: xr.Dataset, diagnostics: pd.DataFrame) -> pd.DataFrame
       for a cold core.
 
     Everything is NaN on days without a closed low and for a measure the archive
-    lacks. Area means use cos-latitude weights; missing values are skipped.
+    lacks. Area means use cos-latitude weights; missing values are skipped. The days of
+    a block that share a centre are measured together, each with the arithmetic of a
+    day alone. ``centres``: the geometry around each centre, kept from earlier calls on
+    the same grid (:func:`tag_days` passes one to every block of days).
     """
     from analogs.stages.diagnostics import dewpoint_from_specific_humidity
     names = list(STRUCTURE_UNITS)
@@ -443,17 +532,17 @@ def cyclone_structure(ds: xr.Dataset, diagnostics: pd.DataFrame) -> pd.DataFrame
         ds = ds.expand_dims("time")
     lat = np.asarray(ds["lat"].values, dtype=float)
     lon = np.asarray(ds["lon"].values, dtype=float)
-    lat2, lon2 = np.meshgrid(lat, lon, indexing="ij")
-    weights = np.cos(np.radians(lat2))
+    if centres is None or not centres.on_grid(lat, lon):
+        centres = _CentreGeometries(lat, lon)
     moisture = next((name for name in ("q850", "td2m", "pwat") if name in ds), None)
     lower = next((name for name in LOWER_LEVELS if name in ds), None)
+    level = {"q850": "tc_td850_c", "td2m": "tc_td2m_c", "pwat": "tc_pwat"}.get(moisture)
+    excess = "tc_core_pwat_excess" if moisture == "pwat" else "tc_core_td_excess_k"
 
     def block_values(name, block):
         return np.asarray(ds[name].transpose("time", "lat", "lon").isel(time=block).values,
                           dtype=float)
 
-    centres: dict = {}
-    cached_bytes = 0
     for block in _structure_blocks(rows, ds["z500"]):
         z = block_values("z500", block)
         with np.errstate(invalid="ignore"):
@@ -462,36 +551,35 @@ def cyclone_structure(ds: xr.Dataset, diagnostics: pd.DataFrame) -> pd.DataFrame
             zonal = (np.median if not np.isnan(z).any() else np.nanmedian)(
                 z, axis=-1, keepdims=True)
         m = None if moisture is None else block_values(moisture, block)
-        if moisture == "q850":
-            m = dewpoint_from_specific_humidity(m, 850.0) - ZERO_CELSIUS_K
-        elif moisture == "td2m":
-            m = m - ZERO_CELSIUS_K
         low = None if lower is None else block_values(lower, block)
-        for k, row in enumerate(block):
-            # Every measure is taken within RING_KM[1] of the centre: only the grid
-            # points of the box around that disc are looked at (same values, in the
-            # same order, as over the whole grid); centres recur on grid points, so
-            # the geometry around each is computed once.
-            key = (c_lat[row], c_lon[row])
-            around = centres.get(key)
-            if around is None:
-                if cached_bytes > _CENTRE_CACHE_BYTES:
-                    centres.clear()
-                    cached_bytes = 0
-                around = centres[key] = _AroundCentre(*key, lat, lon, lat2, lon2, weights)
-                cached_bytes += around.nbytes
-            anomaly = (z[k][around.near] - zonal[k, :, 0][around.rows]).ravel()
-            out["tc_asymmetry"][row] = _ring_asymmetry(anomaly, around, c_depth[row])
+        # Every measure is taken within RING_KM[1] of the centre: only the grid points
+        # of the box around that disc are looked at (same values, in the same order, as
+        # over the whole grid); centres recur on grid points, so the geometry around
+        # each is computed once.
+        keys, which = np.unique(np.stack([c_lat[block], c_lon[block]], axis=1), axis=0,
+                                return_inverse=True)
+        which = which.ravel()
+        for index, key in enumerate(keys):
+            days = np.flatnonzero(which == index)
+            archive_rows = block[days]
+            around = centres.around(*key)
+            anomaly = (around.box(z, days)
+                       - zonal[days[:, None, None], around.rows[None], 0]).reshape(days.size, -1)
+            out["tc_asymmetry"][archive_rows] = _ring_asymmetry(anomaly, around,
+                                                                c_depth[archive_rows])
             if m is not None:
-                core, ring = _core_and_ring(around.values(m[k]), around)
-                level = {"q850": "tc_td850_c", "td2m": "tc_td2m_c", "pwat": "tc_pwat"}[moisture]
-                excess = "tc_core_pwat_excess" if moisture == "pwat" else "tc_core_td_excess_k"
-                out[level][row] = core
-                out[excess][row] = core - ring
+                values = around.values(m, days)
+                if moisture == "q850":
+                    values = dewpoint_from_specific_humidity(values, 850.0) - ZERO_CELSIUS_K
+                elif moisture == "td2m":
+                    values = values - ZERO_CELSIUS_K
+                core, ring = _core_and_ring(values, around)
+                out[level][archive_rows] = core
+                out[excess][archive_rows] = core - ring
             if low is not None:
-                dz_low = _hart_height_difference(around.values(low[k]), around)
-                dz_500 = _hart_height_difference(around.values(z[k]), around)
-                out["tc_thermal_wind_gpm"][row] = (dz_low - dz_500) / np.log(
+                dz_low = _hart_height_difference(around.values(low, days), around)
+                dz_500 = _hart_height_difference(around.values(z, days), around)
+                out["tc_thermal_wind_gpm"][archive_rows] = (dz_low - dz_500) / np.log(
                     LOWER_LEVELS[lower] / 500.0)
     return pd.DataFrame(out, index=diagnostics.index)
 
@@ -1041,9 +1129,14 @@ def tag_days(ds: xr.Dataset, region=None, *, rules: RegimeRules | None = None,
                 "diagnostic region; give region=(south, north, west, east) otherwise")
         region = default_diagnostic_box(ds["lat"].values, ds["lon"].values)
     # The closed-low structure is measured block by block as the diagnostics read the
-    # fields (one read of an archive chunked in time; its values are per day).
-    diagnostics = compute_diagnostics(ds, region, progress=progress,
-                                      block_measures=cyclone_structure, **diagnostic_options)
+    # fields (one read of an archive chunked in time; its values are per day), with the
+    # geometry around each centre computed once for all blocks.
+    centres = (_CentreGeometries(ds["lat"].values, ds["lon"].values)
+               if isinstance(ds, xr.Dataset) and {"lat", "lon"} <= set(ds.coords) else None)
+    diagnostics = compute_diagnostics(
+        ds, region, progress=progress,
+        block_measures=functools.partial(cyclone_structure, centres=centres),
+        **diagnostic_options)
     diagnostics.attrs["units"] = {**diagnostics.attrs.get("units", {}), **STRUCTURE_UNITS}
     diagnostics.attrs["region_default"] = bool(default)
     diagnostics.attrs["region_description"] = describe_box(
