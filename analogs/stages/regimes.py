@@ -311,58 +311,66 @@ def _finite_mean(values, weights, points):
     return _weighted_mean(part, weights[points])
 
 
-def _finite_means(values, weights, points):
-    """:func:`_finite_mean` of each row of ``values`` (days, flat points), to the last
-    bit: numpy sums each row of a 2-D array whose rows are contiguous (``numpy.take``
-    keeps them so, fancy indexing would not) pairwise, as it sums a 1-D array; rows
-    with a missing value at ``points`` are taken one by one."""
-    if points.size == 0:
-        return np.full(values.shape[0], np.nan)
-    part = np.take(values, points, axis=1)
-    point_weights = weights[points]
-    means = np.multiply(part, point_weights).sum(axis=1) / point_weights.sum()
+def _slice_means(part, weights, bounds, totals):
+    """Weighted means of each row of ``part`` (days, points) over each column slice
+    ``bounds`` (start, stop) of it, skipping NaN: (days, slices), each to the last bit
+    :func:`_finite_mean` of one day over those points (the products of a C-ordered
+    array, each row of a slice summed by one reduction: numpy's pairwise sum of a
+    contiguous row, the same as of a 1-D array). ``totals``: each slice's sum of
+    ``weights``, NaN for an empty slice. Days with a missing value are taken one by one."""
+    products = np.multiply(part, weights)
+    means = np.stack([np.add.reduce(products[:, start:stop], axis=1)
+                      for start, stop in bounds], axis=1) / totals
     for row in np.flatnonzero(~np.isfinite(part).all(axis=1)):
-        means[row] = _finite_mean(values[row], weights, points)
+        means[row] = [_finite_mean(part[row], weights, np.arange(start, stop))
+                      for start, stop in bounds]
     return means
 
 
 class _AroundCentre:
     """The grid around one closed-low centre, shared by every day centred there: the
-    points of the box that can lie within RING_KM[1] (:func:`_box_around`), flattened
-    in grid order, with their cos-latitude weights and the flat indices of the ring's
-    eight octants (by initial bearing, 45 degrees each from north; ``by_octant`` the
-    eight one after the other, ``octant_ends`` where each ends), of the core disc, of
-    the ring and of Hart's disc."""
+    points of the box that can lie within RING_KM[1] (:func:`_box_around`), with their
+    cos-latitude weights, and, as flat indices into a (lat, lon) field and with the
+    row of each, the points each measure reads: the ring's eight octants one after the
+    other (by initial bearing, 45 degrees each from north; each in grid order), the
+    core disc then the ring (grid order), and Hart's disc."""
 
     def __init__(self, c_lat, c_lon, lat, lon, lat2, lon2, weights):
-        self.near = _box_around(c_lat, c_lon, lat, lon, RING_KM[1])
-        self.rows = self.near[0]
-        points_lat, points_lon = lat2[self.near], lon2[self.near]
+        near = _box_around(c_lat, c_lon, lat, lon, RING_KM[1])
+        points_lat, points_lon = lat2[near], lon2[near]
         distance = great_circle_km(c_lat, c_lon, points_lat, points_lon).ravel()
         bearing = initial_bearing_deg(c_lat, c_lon, points_lat, points_lon).ravel()
-        self.weights = weights[self.near].ravel()
+        box_weights = weights[near].ravel()
+        rows = np.broadcast_to(near[0], points_lat.shape).ravel()
+        flat = np.ravel_multi_index((rows, np.broadcast_to(near[1], points_lat.shape).ravel()),
+                                    lat2.shape)
         ring = (distance >= RING_KM[0]) & (distance <= RING_KM[1])
         octant = (np.floor(bearing / 45.0).astype(int)) % 8
-        self.octants = [np.flatnonzero(ring & (octant == k)) for k in range(8)]
-        self.by_octant = np.concatenate(self.octants)
-        self.octant_ends = np.cumsum([points.size for points in self.octants])
-        self.octant_weights = np.array([self.weights[points].sum() if points.size else np.nan
-                                        for points in self.octants])
-        self.core = np.flatnonzero(distance <= CORE_RADIUS_KM)
-        self.ring = np.flatnonzero(ring)
-        self.hart = np.flatnonzero(distance <= HART_RADIUS_KM)
-        self.nbytes = sum(a.nbytes for a in (self.weights, self.core, self.ring, self.hart,
-                                             self.by_octant, *self.octants))
+        octants = [np.flatnonzero(ring & (octant == k)) for k in range(8)]
+        moist = [np.flatnonzero(distance <= CORE_RADIUS_KM), np.flatnonzero(ring)]
+        self.octant, self.moisture = (
+            _Points(parts, flat, rows, box_weights) for parts in (octants, moist))
+        self.hart = flat[distance <= HART_RADIUS_KM]
+        self.nbytes = self.octant.nbytes + self.moisture.nbytes + self.hart.nbytes
 
-    def box(self, field, days):
-        """``field`` (time, lat, lon) on ``days`` over the box: (days, rows, columns)."""
-        rows, columns = self.near
-        return field[days[:, None, None], rows[None], columns[None]]
 
-    def values(self, field, days):
-        """``field`` (time, lat, lon) on ``days`` at the box's points: (days, points),
-        each day's points flattened in grid order."""
-        return self.box(field, days).reshape(days.size, -1)
+class _Points:
+    """Groups of a centre's box points (``parts``: indices into the box), one after the
+    other: their flat grid indices (``flat``), rows (``rows``) and weights, each group's
+    column slice (``bounds``) and sum of weights (``totals``, NaN when empty)."""
+
+    def __init__(self, parts, flat, rows, weights):
+        order = np.concatenate(parts)
+        ends = np.cumsum([part.size for part in parts]).tolist()
+        self.bounds = list(zip([0] + ends[:-1], ends))
+        self.flat, self.rows, self.weights = flat[order], rows[order], weights[order]
+        self.totals = np.array([weights[part].sum() if part.size else np.nan
+                                for part in parts])
+        self.nbytes = self.flat.nbytes + self.rows.nbytes + self.weights.nbytes
+
+    def means(self, values):
+        """Weighted means (days, groups) of ``values`` (days, these points)."""
+        return _slice_means(values, self.weights, self.bounds, self.totals)
 
 
 class _CentreGeometries:
@@ -394,29 +402,12 @@ class _CentreGeometries:
         return found
 
 
-def _octant_means(anomaly, around: _AroundCentre):
-    """Weighted means (days, 8) of ``anomaly`` (days, ``around``'s points) over the
-    ring's eight octants, each :func:`_finite_mean` to the last bit (as in
-    :func:`_finite_means`: one product array, each octant a column slice of it, whose
-    rows stay contiguous); NaN for an octant without a grid point; days with a missing
-    value on the ring taken by :func:`_finite_mean`."""
-    part = np.take(anomaly, around.by_octant, axis=1)
-    products = np.multiply(part, around.weights[around.by_octant])
-    sums = np.stack([products[:, start:stop].sum(axis=1) for start, stop in
-                     zip(np.r_[0, around.octant_ends[:-1]], around.octant_ends)], axis=1)
-    means = sums / around.octant_weights
-    for row in np.flatnonzero(~np.isfinite(part).all(axis=1)):
-        means[row] = [_finite_mean(anomaly[row], around.weights, points)
-                      for points in around.octants]
-    return means
-
-
 def _ring_asymmetry(anomaly, around: _AroundCentre, depth):
-    """Wavenumber-2 amplitude of ``anomaly`` (days, ``around``'s points) on the ring,
-    over ``depth`` (days): octant means (each octant needs a grid point with a value;
-    NaN otherwise: the ring leaves the grid)."""
-    means = _octant_means(anomaly, around)
-    wave = np.sum(means * _OCTANT_WAVE2, axis=1)
+    """Wavenumber-2 amplitude of ``anomaly`` (days, ``around.octant``'s points) on the
+    ring, over ``depth`` (days): octant means (each octant needs a grid point with a
+    value; NaN otherwise: the ring leaves the grid)."""
+    means = around.octant.means(anomaly)
+    wave = np.add.reduce(means * _OCTANT_WAVE2, axis=1)
     # The modulus as Python's abs() of a complex takes it (hypot): numpy's complex
     # absolute value of an array differs from it in the last bit.
     amplitude = 2.0 / 8.0 * np.hypot(wave.real, wave.imag)
@@ -425,20 +416,12 @@ def _ring_asymmetry(anomaly, around: _AroundCentre, depth):
                         np.nan)
 
 
-def _core_and_ring(values, around: _AroundCentre):
-    """Area means of ``values`` (days, ``around``'s points) within CORE_RADIUS_KM and
-    on the RING_KM annulus."""
-    return (_finite_means(values, around.weights, around.core),
-            _finite_means(values, around.weights, around.ring))
-
-
-def _hart_height_difference(z, around: _AroundCentre):
+def _hart_height_difference(z):
     """Zmax - Zmin within HART_RADIUS_KM of the centre (Hart 2003), gpm, of each day
-    (``z``: days, ``around``'s points); missing values skipped."""
-    if around.hart.size == 0:
+    (``z``: days, the disc's points); missing values skipped."""
+    if z.shape[1] == 0:
         return np.full(z.shape[0], np.nan)
-    near = np.take(z, around.hart, axis=1)
-    near = np.where(np.isfinite(near), near, np.nan)
+    near = np.where(np.isfinite(z), z, np.nan)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)   # a day without a value: NaN
         return np.nanmax(near, axis=1) - np.nanmin(near, axis=1)
@@ -548,37 +531,37 @@ def cyclone_structure(ds: xr.Dataset, diagnostics: pd.DataFrame, *,
         with np.errstate(invalid="ignore"):
             # the zonal median of each row, for the whole block at once (numpy's
             # median where no value is missing: the same values, far faster)
-            zonal = (np.median if not np.isnan(z).any() else np.nanmedian)(
-                z, axis=-1, keepdims=True)
+            zonal = (np.median if not np.isnan(z).any() else np.nanmedian)(z, axis=-1)
         m = None if moisture is None else block_values(moisture, block)
         low = None if lower is None else block_values(lower, block)
+        z, m, low = (None if f is None else f.reshape(block.size, -1) for f in (z, m, low))
         # Every measure is taken within RING_KM[1] of the centre: only the grid points
-        # of the box around that disc are looked at (same values, in the same order, as
-        # over the whole grid); centres recur on grid points, so the geometry around
-        # each is computed once.
+        # around it are read (same values, in the same order, as over the whole grid);
+        # the days of the block that share a centre are measured together.
         keys, which = np.unique(np.stack([c_lat[block], c_lon[block]], axis=1), axis=0,
                                 return_inverse=True)
-        which = which.ravel()
-        for index, key in enumerate(keys):
-            days = np.flatnonzero(which == index)
-            archive_rows = block[days]
+        by_centre = np.argsort(which.ravel(), kind="stable")
+        starts = np.searchsorted(which.ravel()[by_centre], np.arange(len(keys) + 1))
+        for key, start, stop in zip(keys, starts[:-1], starts[1:]):
+            days = by_centre[start:stop, None]           # the days' places in the block
+            archive_rows = block[days[:, 0]]
             around = centres.around(*key)
-            anomaly = (around.box(z, days)
-                       - zonal[days[:, None, None], around.rows[None], 0]).reshape(days.size, -1)
+            octant = around.octant
+            anomaly = z[days, octant.flat] - zonal[days, octant.rows]
             out["tc_asymmetry"][archive_rows] = _ring_asymmetry(anomaly, around,
                                                                 c_depth[archive_rows])
             if m is not None:
-                values = around.values(m, days)
+                values = m[days, around.moisture.flat]
                 if moisture == "q850":
                     values = dewpoint_from_specific_humidity(values, 850.0) - ZERO_CELSIUS_K
                 elif moisture == "td2m":
                     values = values - ZERO_CELSIUS_K
-                core, ring = _core_and_ring(values, around)
+                core, ring = around.moisture.means(values).T
                 out[level][archive_rows] = core
                 out[excess][archive_rows] = core - ring
             if low is not None:
-                dz_low = _hart_height_difference(around.values(low, days), around)
-                dz_500 = _hart_height_difference(around.values(z, days), around)
+                dz_low = _hart_height_difference(low[days, around.hart])
+                dz_500 = _hart_height_difference(z[days, around.hart])
                 out["tc_thermal_wind_gpm"][archive_rows] = (dz_low - dz_500) / np.log(
                     LOWER_LEVELS[lower] / 500.0)
     return pd.DataFrame(out, index=diagnostics.index)
