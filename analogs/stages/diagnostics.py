@@ -532,14 +532,20 @@ def _closed_lows_np(z, lat, lon, *, moisture=None, moisture_kind=None, max_lat, 
     screen -= s_in
     with np.errstate(invalid="ignore", divide="ignore"):
         screen /= np.maximum(count, 0.5)
-    np.copyto(screen, np.nan, where=count < 0.5)
+    no_value = count < 0.5
+    if no_value.any():
+        np.copyto(screen, np.nan, where=no_value)
     screen -= band
-    screen[~np.isfinite(screen)] = -np.inf
+    finite = np.isfinite(screen)
+    if not finite.all():
+        screen[~finite] = -np.inf
     hi, hj = half_widths(neighbourhood_km, cos_lat)
     peak = ndimage.maximum_filter(screen, size=(1, 2 * hi + 1, 2 * hj + 1),
                                   mode=("nearest", "nearest", "wrap" if periodic else "nearest"))
-    candidate = (np.isfinite(screen) & (screen >= peak) & (screen >= 0.5 * min_depth)
-                 & (np.abs(band_lat) <= max_lat)[None, :, None])
+    candidate = finite
+    candidate &= screen >= peak
+    candidate &= screen >= 0.5 * min_depth
+    candidate &= (np.abs(band_lat) <= max_lat)[None, :, None]
     t_idx, i_idx, j_idx = np.nonzero(candidate)
     if near is not None:
         box, km = near

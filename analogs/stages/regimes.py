@@ -34,6 +34,7 @@ from __future__ import annotations
 import calendar
 import dataclasses
 import functools
+import math
 import numbers
 import warnings
 from dataclasses import dataclass, field, fields
@@ -831,66 +832,69 @@ class RuleClassifier:
         return pd.DataFrame({"regime": regime.astype(str), "confidence": confidence,
                              "reason": reasons}, index=diagnostics.index)
 
-    def _tropical_text(self, k, v, facts, margins, label, r: RegimeRules) -> str:
+    def _tropical_text(self, k, v, facts, failing, label, r: RegimeRules) -> str:
         """The cyclone part of a reason under rules ``r``: what made it tropical, or
-        why it is not."""
+        why it is not (``failing``: the names of the criteria it fails). ``facts``:
+        those of :meth:`_tropical` as lists, with ``month_names``."""
         known = facts["known"][k]
-        month = facts["month"][k]
-        month_name = calendar.month_abbr[int(month)] if np.isfinite(month) else "unknown month"
-        asym = (f"asymmetry {v['tc_asymmetry']:.2f}" if np.isfinite(v["tc_asymmetry"])
-                else "ring off the grid")
-        parts = {
-            "depth": f"depth {v['tc_depth']:.0f} gpm (needs {facts['depth_needed'][k]:.0f})",
-            "latitude": f"centre at {abs(v['tc_lat']):.1f} deg latitude (at most "
-                        f"{facts['max_lat'][k]:.0f})",
-            "radius": f"radius {v['tc_radius_km']:.0f} km (at most "
-                      f"{facts['max_radius'][k]:.0f})",
-            "symmetry": f"{asym} (at most {facts['max_asym'][k]:.2f})",
-            "season": f"{month_name}: " + ("warm season" if facts["in_season"][k]
-                                           else "outside the warm season"),
-        }
-        measure = facts["measure"][k]
-        if known:
-            column, rule, name, units = next(m for m in _TC_MOISTURE if m[0] == measure)
-            parts["moisture"] = (f"{name} {v[column]:.1f} {units} within "
-                                 f"{CORE_RADIUS_KM:.0f} km (needs {getattr(r, rule):g})")
-        elif r.tropical_without_moisture:
-            parts["moisture"] = "moisture missing around the centre"
-        else:
-            parts["moisture"] = ("moisture missing around the centre (height-only archive: "
-                                 "not called tropical, a cold-core upper low looks the same "
-                                 "at 500 hPa)")
-        if np.isfinite(v["tc_thermal_wind_gpm"]):
-            parts["warm_core"] = (f"Hart thermal wind {v['tc_thermal_wind_gpm']:+.0f} gpm ("
-                                  + ("warm" if v["tc_thermal_wind_gpm"] > 0 else "cold")
-                                  + " core)")
-        elif known and np.isfinite(v["tc_core_td_excess_k"]):
-            parts["warm_core"] = (f"core {v['tc_core_td_excess_k']:+.1f} K dewpoint vs its "
-                                  "ring (one-level warm-core proxy)")
-        elif known and np.isfinite(v["tc_core_pwat_excess"]):
-            parts["warm_core"] = (f"core {v['tc_core_pwat_excess']:+.1f} kg/m2 PW vs its ring "
-                                  "(one-level warm-core proxy)")
-        elif known:
-            parts["warm_core"] = "core moisture unknown"
-        else:
-            parts["warm_core"] = "warm core untested (height only)"
+
+        def part(name):
+            if name == "depth":
+                return f"depth {v['tc_depth']:.0f} gpm (needs {facts['depth_needed'][k]:.0f})"
+            if name == "latitude":
+                return (f"centre at {abs(v['tc_lat']):.1f} deg latitude (at most "
+                        f"{facts['max_lat'][k]:.0f})")
+            if name == "radius":
+                return (f"radius {v['tc_radius_km']:.0f} km (at most "
+                        f"{facts['max_radius'][k]:.0f})")
+            if name == "symmetry":
+                asym = (f"asymmetry {v['tc_asymmetry']:.2f}" if math.isfinite(v["tc_asymmetry"])
+                        else "ring off the grid")
+                return f"{asym} (at most {facts['max_asym'][k]:.2f})"
+            if name == "season":
+                month = facts["month"][k]
+                month_name = (facts["month_names"][int(month)] if math.isfinite(month)
+                              else "unknown month")
+                return f"{month_name}: " + ("warm season" if facts["in_season"][k]
+                                            else "outside the warm season")
+            if name == "moisture":
+                if known:
+                    column, rule, label_, units = next(m for m in _TC_MOISTURE
+                                                       if m[0] == facts["measure"][k])
+                    return (f"{label_} {v[column]:.1f} {units} within "
+                            f"{CORE_RADIUS_KM:.0f} km (needs {getattr(r, rule):g})")
+                if r.tropical_without_moisture:
+                    return "moisture missing around the centre"
+                return ("moisture missing around the centre (height-only archive: not "
+                        "called tropical, a cold-core upper low looks the same at 500 hPa)")
+            # the warm core
+            if math.isfinite(v["tc_thermal_wind_gpm"]):
+                return (f"Hart thermal wind {v['tc_thermal_wind_gpm']:+.0f} gpm ("
+                        + ("warm" if v["tc_thermal_wind_gpm"] > 0 else "cold") + " core)")
+            if known and math.isfinite(v["tc_core_td_excess_k"]):
+                return (f"core {v['tc_core_td_excess_k']:+.1f} K dewpoint vs its ring "
+                        "(one-level warm-core proxy)")
+            if known and math.isfinite(v["tc_core_pwat_excess"]):
+                return (f"core {v['tc_core_pwat_excess']:+.1f} kg/m2 PW vs its ring "
+                        "(one-level warm-core proxy)")
+            return "core moisture unknown" if known else "warm core untested (height only)"
+
         lat_text = f"{abs(v['tc_lat']):.1f} {'N' if v['tc_lat'] >= 0 else 'S'}"
         lon = (v["tc_lon"] + 180.0) % 360.0 - 180.0
         lon_text = f"{abs(lon):.1f} {'E' if lon >= 0 else 'W'}"
         low = (f"closed low {v['tc_depth']:.0f} gpm deep, r {v['tc_radius_km']:.0f} km at "
                f"{lat_text} {lon_text}")
         if label == "tropical":
-            text = f"{low}; {parts['moisture']}; {parts['warm_core']}; {parts['season']}"
+            text = f"{low}; {part('moisture')}; {part('warm_core')}; {part('season')}"
             if not known:
                 text += ("; moisture missing: tropical from the height field alone (deep, "
                          "compact, symmetric, warm season)")
             return text
-        failing = [name for name in margins if margins[name][k] < 0]
-        why = "; ".join(parts[name] for name in failing) if failing else ""
+        why = "; ".join(part(name) for name in failing)
         return f"{low}, not tropical: {why}" if why else low
 
     def _reasons(self, d: pd.DataFrame, regime: np.ndarray, tropical_margins=None) -> list[str]:
-        moisture_known = _moisture_known(d)
+        moisture_known = _moisture_known(d).tolist()
         cols = {name: _column(d, name) for name in (
             "flow_direction_deg", "flow_speed_ms", "ridge_amplitude", "trough_amplitude",
             "height_gradient", "cyclonic_advection", "tc_lat", "tc_lon", "tc_depth",
@@ -898,29 +902,32 @@ class RuleClassifier:
             *STRUCTURE_UNITS)}
         if not any(m[0] in d for m in _TC_MOISTURE) and "tc_dewpoint_c" in d:
             cols["tc_td850_c"] = _column(d, "tc_dewpoint_c")  # a table of an older store
-        # Python floats: a day's text reads some twenty values, and numpy scalars cost
-        # a per-value overhead that made the reasons a tenth of tagging (measured).
-        cols = {name: values.tolist() for name, values in cols.items()}
+        # Each day's values as Python floats (numpy scalars cost a per-value overhead that
+        # made the reasons a tenth of tagging, measured); + 0.0 turns a negative zero
+        # into zero, so "-0 gpm" never shows.
+        names = list(cols)
+        days = zip(*((values + 0.0).tolist() for values in cols.values()))
         rules = self._rules()
         line_name = _moist_line_name(d.attrs.get("moisture"))
         td_name = {"q850": "Td850", "td2m": "Td2m"}.get(
             (d.attrs.get("moisture") or {}).get("field"), "Td")
         margins, facts = self._tropical(d)
-        present = facts["present"]
+        facts = {name: np.asarray(values).tolist() for name, values in facts.items()}
+        facts["month_names"] = list(calendar.month_abbr)
+        fails = {name: (values < 0).tolist() for name, values in margins.items()}
         out = []
-        for k, label in enumerate(regime):
-            # + 0.0 turns a negative zero into zero, so "-0 gpm" never shows
-            v = {name: values[k] + 0.0 for name, values in cols.items()}
+        for k, (label, day) in enumerate(zip(regime, days)):
+            v = dict(zip(names, day))
             flow = f"flow {v['flow_direction_deg']:.0f} deg at {v['flow_speed_ms']:.0f} m/s"
             if moisture_known[k]:
-                moist = (f"{td_name} {v['dewpoint_region_c']:.1f} C" if np.isfinite(
+                moist = (f"{td_name} {v['dewpoint_region_c']:.1f} C" if math.isfinite(
                     v["dewpoint_region_c"]) else f"PW {v['pwat_region']:.0f} kg/m2")
-                if np.isfinite(v["moist_line_lat"]):
+                if math.isfinite(v["moist_line_lat"]):
                     moist += f", {line_name} {v['moist_line_lat']:.1f} N"
             else:
                 moist = "moisture missing"
-            low = (self._tropical_text(k, v, facts, margins, label, rules) if present[k]
-                   else "")
+            low = (self._tropical_text(k, v, facts, [name for name in fails if fails[name][k]],
+                                       label, rules) if facts["present"][k] else "")
             if label == "tropical":
                 text = low
             elif label == "strong_trough":
