@@ -525,28 +525,53 @@ def _closed_lows_np(z, lat, lon, *, moisture=None, moisture_kind=None, max_lat, 
         box_count = ndimage.uniform_filter(weight, size=size, mode=modes)
         box_count *= n
         sums.append((box_sum, box_count))
-    (screen, n_out), (s_in, n_in) = sums
+    (s_out, n_out), (s_in, n_in) = sums
+    # Centres are kept only at |lat| <= max_lat (and, with ``near``, within km of the
+    # box): the screen, its neighbourhood maximum and the candidates are taken over the
+    # rows and columns that can hold one, the maximum over a window reaching hi, hj
+    # beyond them (where that window is cut short of the band, its edge never reaches
+    # a point that can hold a centre).
+    hi, hj = half_widths(neighbourhood_km, cos_lat)
+    kept_rows = np.abs(band_lat) <= max_lat
+    kept_cols = np.ones(nlon, dtype=bool)
+    if near is not None:
+        within = _distance_to_box_km(band_lat[:, None], wrap_longitude(lon)[None, :],
+                                     near[0]) <= near[1]
+        within &= kept_rows[:, None]
+        kept_rows = within.any(axis=1)
+        if not periodic:
+            kept_cols = within.any(axis=0)
+    if not kept_rows.any() or not kept_cols.any():
+        return empty
+    (r0, r1), (c0, c1) = ((int(np.flatnonzero(kept)[0]), int(np.flatnonzero(kept)[-1]) + 1)
+                          for kept in (kept_rows, kept_cols))
+    e0, e1 = max(r0 - hi, 0), min(r1 + hi, band.shape[1])
+    f0, f1 = max(c0 - hj, 0), min(c1 + hj, nlon)
+    reach = (slice(None), slice(e0, e1), slice(f0, f1))
+    inner = (slice(None), slice(r0 - e0, r1 - e0), slice(c0 - f0, c1 - f0))
     # In place, the arithmetic of (s_out - s_in) / max(count, 0.5) (NaN where the
     # annulus has no value) - band, then -inf where that is not finite.
-    count = n_out - n_in
-    screen -= s_in
+    screen = s_out[reach]
+    count = (n_out - n_in)[reach]
+    screen -= s_in[reach]
     with np.errstate(invalid="ignore", divide="ignore"):
         screen /= np.maximum(count, 0.5)
     no_value = count < 0.5
     if no_value.any():
         np.copyto(screen, np.nan, where=no_value)
-    screen -= band
+    screen -= band[reach]
     finite = np.isfinite(screen)
     if not finite.all():
         screen[~finite] = -np.inf
-    hi, hj = half_widths(neighbourhood_km, cos_lat)
     peak = ndimage.maximum_filter(screen, size=(1, 2 * hi + 1, 2 * hj + 1),
                                   mode=("nearest", "nearest", "wrap" if periodic else "nearest"))
-    candidate = finite
-    candidate &= screen >= peak
+    screen = screen[inner]
+    candidate = finite[inner]
+    candidate &= screen >= peak[inner]
     candidate &= screen >= 0.5 * min_depth
-    candidate &= (np.abs(band_lat) <= max_lat)[None, :, None]
+    candidate &= (np.abs(band_lat[r0:r1]) <= max_lat)[None, :, None]
     t_idx, i_idx, j_idx = np.nonzero(candidate)
+    i_idx, j_idx = i_idx + r0, j_idx + c0
     if near is not None:
         box, km = near
         kept = _distance_to_box_km(band_lat[i_idx], wrap_longitude(lon[j_idx]), box) <= km
@@ -1403,11 +1428,14 @@ def compute_diagnostics(ds: xr.Dataset, region, *, upstream_deg: float = 25.0,
     1000): 1000 days at 1 degree, about 90 at 0.25 degree.
 
     ``block_measures``, optional: a callable ``(block, diagnostics) -> DataFrame`` of
-    more columns (one row a day), called on each block of days while its fields are in
-    memory, with the block's Dataset and its diagnostics; its columns are appended. A
-    measure that needs the fields again (the closed-low structure of
-    :func:`analogs.stages.regimes.cyclone_structure`) so reads an archive chunked in
-    time once, not twice. Its values must not depend on how the days are blocked.
+    more columns (one row a day), called with a Dataset of days and their diagnostics;
+    its columns are appended. For a dask-backed archive it is called on each block of
+    days while its fields are in memory: a measure that needs the fields again (the
+    closed-low structure of :func:`analogs.stages.regimes.cyclone_structure`) so reads
+    an archive chunked in time once, not twice. For an archive in memory it is called
+    once, on every day (the closed-low structure measures the days that share a centre
+    together: fewer, larger groups). Its values must not depend on how the days are
+    blocked.
     """
     if not isinstance(ds, xr.Dataset) or "z500" not in ds:
         raise AnalogsInputError(
@@ -1447,22 +1475,25 @@ def compute_diagnostics(ds: xr.Dataset, region, *, upstream_deg: float = 25.0,
         per_day = _BYTES_PER_POINT_DAY * lat.size * lon.size
         block_days = int(min(1000, max(1, DIAGNOSTICS_MEMORY_BYTES // (threads * per_day))))
     read_days = _read_days(z500, block_days)
+    measure_blocks = block_measures is not None and z500.chunks is not None
+
+    def measured(columns, part):
+        """``columns`` with those of ``block_measures`` on the days of ``part``."""
+        found = pd.DataFrame({name: columns[name] for name in _MEASURES_READ},
+                             index=pd.DatetimeIndex(part["time"].values))
+        more = block_measures(part, found)
+        return {**columns, **{name: more[name].to_numpy() for name in more.columns}}
 
     def one_block(start):
         block = ds.isel(time=slice(start, start + read_days))
-        if read_days > block_days or block_measures is not None:
+        if read_days > block_days or measure_blocks:
             block = block.load()  # a whole time chunk read once, worked block by block
         parts = []
         for first in range(0, block.sizes["time"], block_days):
             part = block.isel(time=slice(first, first + block_days))
             z = np.asarray(part["z500"].transpose("time", "lat", "lon").values, dtype=float)
             columns = _block_columns(z, _moisture_block(part, kind), **setup)
-            if block_measures is not None:
-                found = pd.DataFrame({name: columns[name] for name in _MEASURES_READ},
-                                     index=pd.DatetimeIndex(part["time"].values))
-                more = block_measures(part, found)
-                columns.update({name: more[name].to_numpy() for name in more.columns})
-            parts.append(columns)
+            parts.append(measured(columns, part) if measure_blocks else columns)
         return {name: np.concatenate([p[name] for p in parts]) for name in parts[0]}
 
     starts = range(0, times.size, read_days)
@@ -1474,9 +1505,12 @@ def compute_diagnostics(ds: xr.Dataset, region, *, upstream_deg: float = 25.0,
             from tqdm.auto import tqdm
             results = tqdm(results, total=len(starts), desc="diagnostics", unit="block")
         blocks = list(results)
-    names = list(DIAGNOSTIC_UNITS) + [name for name in blocks[0] if name not in DIAGNOSTIC_UNITS
+    columns = {name: np.concatenate([b[name] for b in blocks]) for name in blocks[0]}
+    if block_measures is not None and not measure_blocks:
+        columns = measured(columns, ds)
+    names = list(DIAGNOSTIC_UNITS) + [name for name in columns if name not in DIAGNOSTIC_UNITS
                                       and name != "_missing_height_day"]
-    columns = {name: np.concatenate([b[name] for b in blocks]) for name in names}
+    columns = {name: columns[name] for name in names}
     frame = pd.DataFrame(columns, index=pd.DatetimeIndex(times, name="time"))
     if kind != "pwat":
         frame = frame.drop(columns="pwat_region")
@@ -1491,5 +1525,5 @@ def compute_diagnostics(ds: xr.Dataset, region, *, upstream_deg: float = 25.0,
             used.update(threshold=float(moist_threshold), source="given by the caller")
         frame.attrs["moisture"] = used
     frame.attrs["missing_height_days"] = int(
-        np.concatenate([b["_missing_height_day"] for b in blocks]).sum())
+        sum(b["_missing_height_day"].sum() for b in blocks))
     return frame
