@@ -282,7 +282,7 @@ HART_RADIUS_KM = 500.0
 LOWER_LEVELS = {"z850": 850.0, "z1000": 1000.0}
 #: Bytes of centre geometries (:class:`_AroundCentre`) :func:`cyclone_structure` keeps
 #: at once; emptied when full. 40 years at 1 degree have 411 centres of a few kB each; at
-#: 0.25 degree a centre's box holds some 4,000 points (about 80 kB).
+#: 0.25 degree a centre's measures read some 6,000 points (about 140 kB).
 _CENTRE_CACHE_BYTES = 64 * 2**20
 #: Bytes of one field's float64 values that :func:`cyclone_structure` reads at once
 #: from an in-memory archive (days of a block are measured together, centre by centre:
