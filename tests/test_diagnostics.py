@@ -24,6 +24,7 @@ from metpy.units import units
 from analogs.stages import diagnostics as dg
 from analogs.constants import EARTH_RADIUS, G0, SEVERE_DEWPOINT_C
 from analogs.errors import AnalogsInputError
+from analogs.geo import great_circle_km, wrap_longitude
 
 from _regime_helpers import REGION, tropical_case, vortex, wave, zonal_height
 
@@ -823,23 +824,59 @@ def test_region_diagnostics_from_the_window_equal_the_whole_grid(monkeypatch, re
                                   check_exact=True)
 
 
-def test_closed_lows_near_the_box_are_the_lows_of_the_whole_search():
-    # _closed_lows_np(near=(box, km)) measures only the centres within km of the box:
-    # the same lows, with the same measures, as the whole search filtered afterwards
-    # (the earlier computation).
+def _lows_on_three_grids(grid):
+    """Two days of compact lows (the second without the first's first low) on: the
+    helpers' limited domain, with missing heights and humidities on the ring of a low
+    near the box and far away; that domain moved across the date line (stored in two
+    pieces, as normalise_grid stores it); a global grid with its pole rows (periodic,
+    a low across the 0 E seam and one in the southern hemisphere). Returns lat, lon, z,
+    q (kg/kg) and a box near some of the lows."""
     import _regime_helpers
 
+    if grid == "global":
+        lat, lon = np.arange(-90.0, 90.1, 2.0), np.arange(0.0, 360.0, 2.0)
+        la, lo = np.meshgrid(lat, lon, indexing="ij")
+        centres = [(26.0, 10.0), (34.0, 356.0), (-28.0, 200.0), (22.0, 120.0)]
+        z = np.stack([5900.0 - 8.0 * np.abs(la) + sum(
+            -60.0 * np.exp(-0.5 * (great_circle_km(c_lat, c_lon, la, lo) / 300.0) ** 2)
+            for c_lat, c_lon in centres[day:]) for day in range(2)])
+        q = 0.004 + 0.01 * np.random.default_rng(5).random(z.shape)
+        z[1, 58, 3] = q[1, 58, 2] = np.nan
+        return lat, lon, z, q, (28.0, 40.0, -15.0, 15.0)
     lat, lon = _regime_helpers.LAT, _regime_helpers.LON
-    centres = [(18.0, -100.0), (25.0, -75.0), (33.0, -95.0), (22.0, -120.0)]
+    centres = [(18.0, -100.0), (25.0, -75.0), (33.0, -95.0), (22.0, -120.0), (31.0, -81.0),
+               (40.0, -109.0)]
     z = np.stack([zonal_height() + sum(vortex(la, lo, 60.0, 250.0) for la, lo in centres[day:])
                   for day in range(2)])
     q = 0.004 + 0.01 * np.random.default_rng(5).random(z.shape)
-    params = dict(dg.CLOSED_LOW_DEFAULTS)
-    box, km = (28.0, 36.0, -100.0, -90.0), 600.0
+    z[1, 24:26, 38:40] = z[0, 20, 5] = q[1, 17, 33] = q[0, 25:27, 40] = np.nan
+    box = (28.0, 36.0, -100.0, -90.0)
+    if grid == "date_line":
+        order = np.argsort(wrap_longitude(lon + 260.0))
+        lon, z, q = wrap_longitude(lon + 260.0)[order], z[..., order], q[..., order]
+        box = (box[0], box[1], box[2] + 260.0, box[3] + 260.0)
+    return lat, lon, z, q, box
+
+
+@pytest.mark.parametrize("grid", ["limited", "date_line", "global"])
+def test_closed_lows_near_the_box_are_the_lows_of_the_whole_search(grid):
+    # _closed_lows_np(near=(box, km)) screens and measures only where a centre within
+    # km of the box can be: the same lows, with the same measures to the last bit, as
+    # the whole search filtered afterwards (the earlier computation). The moisture is
+    # turned into a dewpoint only at the points around each centre (moisture_kind): the
+    # same values as the dewpoint of the whole grid read there (the earlier path).
+    # Rows beyond the search's band of latitudes change nothing either.
+    lat, lon, z, q, box = _lows_on_three_grids(grid)
+    params, km = dict(dg.CLOSED_LOW_DEFAULTS), 600.0
     whole = dg._closed_lows_np(z, lat, lon, moisture=dg._dewpoint_np(q, 850.0), **params)
     near = dg._distance_to_box_km(whole["lat"], whole["lon"], box) <= km
-    assert 0 < near.sum() < near.size
-    found = dg._closed_lows_np(z, lat, lon, moisture=dg._dewpoint_np(q, 850.0),
+    assert 0 < near.sum() < near.size and np.isfinite(whole["moisture"]).all()
+    found = dg._closed_lows_np(z, lat, lon, moisture=q, moisture_kind="q850",
                                near=(box, km), **params)
     for key in found:
-        np.testing.assert_allclose(found[key], whole[key][near], rtol=1e-12, err_msg=key)
+        np.testing.assert_array_equal(found[key], whole[key][near], err_msg=key)
+    rows = np.abs(lat) <= 60.0
+    cut = dg._closed_lows_np(z[:, rows], lat[rows], lon, moisture=q[:, rows],
+                             moisture_kind="q850", **params)
+    for key in cut:
+        np.testing.assert_array_equal(cut[key], whole[key], err_msg=key)

@@ -314,3 +314,138 @@ def test_closed_low_asymmetry_against_pyproj_on_the_whole_grid(default_demo_year
     monkeypatch.setattr(regimes, "_CENTRE_CACHE_BYTES", -1)
     pd.testing.assert_frame_equal(regimes.cyclone_structure(fields, diagnostics), structure,
                                   check_exact=True)
+
+
+def _structure_day_by_day(ds, diagnostics):
+    """The closed-low structure one day at a time over the whole grid: the path the
+    grouped, box-limited measures of cyclone_structure replace. Each octant, core or
+    ring mean is the sum of the products over the sum of the weights of its points that
+    have a value, in grid order (numpy.average's arithmetic); the wavenumber-2 amplitude
+    is Python's abs() of the complex sum of the octant means; Hart's (2003, from memory)
+    height difference is Zmax - Zmin of the points that have a value."""
+    from analogs.constants import ZERO_CELSIUS_K
+    from analogs.geo import great_circle_km, initial_bearing_deg
+    from analogs.stages import regimes
+    from analogs.stages.diagnostics import dewpoint_from_specific_humidity
+
+    lat2, lon2 = np.meshgrid(ds["lat"].values, ds["lon"].values, indexing="ij")
+    weights = np.cos(np.radians(lat2)).ravel()
+    heights = ds["z500"].values
+    median = np.nanmedian if np.isnan(heights).any() else np.median
+    wave2 = np.exp(2j * np.radians(22.5 + 45.0 * np.arange(8)))
+    out = {name: np.full(len(diagnostics), np.nan) for name in regimes.STRUCTURE_UNITS}
+
+    def mean(values, points):
+        points = points & np.isfinite(values)
+        if not points.any():
+            return np.nan
+        return np.multiply(values[points], weights[points]).sum() / weights[points].sum()
+
+    def spread(values, points):
+        values = values[points & np.isfinite(values)]
+        return float(values.max() - values.min()) if values.size else np.nan
+
+    for day in np.flatnonzero(diagnostics["tc_present"].to_numpy()):
+        c_lat, c_lon, depth = (diagnostics[name].iloc[day] for name in ("tc_lat", "tc_lon",
+                                                                         "tc_depth"))
+        distance = great_circle_km(c_lat, c_lon, lat2, lon2).ravel()
+        octant = np.floor(initial_bearing_deg(c_lat, c_lon, lat2, lon2).ravel()
+                          / 45.0).astype(int) % 8
+        ring = (distance >= 500.0) & (distance <= 800.0)
+        z = heights[day]
+        anomaly = (z - median(z, axis=-1, keepdims=True)).ravel()
+        means = np.array([mean(anomaly, ring & (octant == k)) for k in range(8)])
+        if np.all(np.isfinite(means)) and depth > 0:
+            out["tc_asymmetry"][day] = float(2.0 / 8.0 * abs(np.sum(means * wave2)) / depth)
+        for name, level, excess, offset in (
+                ("q850", "tc_td850_c", "tc_core_td_excess_k", ZERO_CELSIUS_K),
+                ("td2m", "tc_td2m_c", "tc_core_td_excess_k", ZERO_CELSIUS_K),
+                ("pwat", "tc_pwat", "tc_core_pwat_excess", 0.0)):
+            if name in ds:
+                values = ds[name].values[day]
+                if name == "q850":
+                    values = dewpoint_from_specific_humidity(values, 850.0)
+                values = (values - offset).ravel()
+                core, around = mean(values, distance <= 400.0), mean(values, ring)
+                out[level][day], out[excess][day] = core, core - around
+                break
+        if "z850" in ds:
+            hart = distance <= 500.0
+            out["tc_thermal_wind_gpm"][day] = (spread(ds["z850"].values[day].ravel(), hart)
+                                               - spread(z.ravel(), hart)) / np.log(850.0 / 500.0)
+    return pd.DataFrame(out, index=diagnostics.index)
+
+
+def _closed_low_days(grid, moisture):
+    """Ten days of noisy heights with compact lows on: the helpers' limited domain;
+    that domain moved across the date line (stored in two pieces, as normalise_grid
+    stores it); a global grid with its pole rows (a centre whose ring crosses the north
+    pole, one on the 0 E seam, one in the southern hemisphere). Days share centres, one
+    day has none; missing heights and moisture lie on some rings and cores. Returns the
+    Dataset (``moisture``: q850, td2m, pwat or None; with a z850 height) and the
+    diagnostics cyclone_structure reads."""
+    import _regime_helpers
+    from analogs.geo import great_circle_km, wrap_longitude
+
+    rng = np.random.default_rng(7)
+    if grid == "global":
+        lat, lon = np.arange(-90.0, 90.1, 2.0), np.arange(0.0, 360.0, 2.0)
+        centres = [(84.0, 40.0), (26.0, 0.0), (-30.0, 200.0)]
+    else:
+        lat, lon = _regime_helpers.LAT, _regime_helpers.LON
+        centres = [(27.0, -93.0), (33.0, -100.0), (21.0, -120.0)]
+    la, lo = np.meshgrid(lat, lon, indexing="ij")
+    which = [0, 1, 0, 2, None, 1, 0, 2, 2, 0]
+    z = 5900.0 - 8.0 * np.abs(la) + rng.normal(0.0, 3.0, (len(which),) + la.shape)
+    for day, centre in enumerate(which):
+        if centre is not None:
+            c_lat, c_lon = centres[centre]
+            z[day] -= 60.0 * np.exp(-0.5 * (great_circle_km(c_lat, c_lon, la, lo) / 300.0) ** 2)
+    fields = {"z500": z, "z850": 1500.0 - 0.5 * (z - 5900.0)
+              + rng.normal(0.0, 2.0, z.shape)}
+    if moisture is not None:
+        scale = {"q850": 0.012, "td2m": 290.0, "pwat": 40.0}[moisture]
+        fields[moisture] = scale * (1.0 + 0.1 * rng.random(z.shape))
+    i, j = (np.argmin(np.abs(lat - centres[0][0])),
+            np.argmin(np.abs(wrap_longitude(lon - centres[0][1]))))
+    for name in fields:
+        fields[name][2, i + 3, j] = fields[name][6, i, (j + 6) % lon.size] = np.nan
+    fields[next(iter(fields))][9, i - 1, j] = np.nan
+    if grid == "date_line":
+        lon = wrap_longitude(lon + 260.0)
+        order = np.argsort(lon)
+        lon, fields = lon[order], {name: f[..., order] for name, f in fields.items()}
+        centres = [(c_lat, float(wrap_longitude(c_lon + 260.0))) for c_lat, c_lon in centres]
+    times = pd.date_range("2001-07-01", periods=len(which))
+    ds = xr.Dataset({name: (("time", "lat", "lon"), f) for name, f in fields.items()},
+                    coords={"time": times, "lat": lat, "lon": lon})
+    position = np.array([centres[c] if c is not None else (np.nan, np.nan) for c in which])
+    diagnostics = pd.DataFrame({"tc_present": [c is not None for c in which],
+                                "tc_lat": position[:, 0], "tc_lon": position[:, 1],
+                                "tc_depth": np.where(np.arange(len(which)) == 5, -1.0, 40.0)},
+                               index=times)
+    return ds, diagnostics
+
+
+@pytest.mark.parametrize("moisture", ["q850", "td2m", "pwat", None])
+@pytest.mark.parametrize("grid", ["limited", "date_line", "global"])
+def test_cyclone_structure_by_centre_equals_day_by_day(grid, moisture, monkeypatch):
+    """The days that share a closed-low centre are measured together, on the points of
+    the box around it: every measure equals, to the last bit, the day-by-day measure
+    over the whole grid (the path it replaces), on a limited grid, one across the date
+    line and a global grid with a pole inside a ring; with missing values on rings and
+    cores, a day without a low and a low of no depth; in blocks of one day (a dask
+    archive chunked by two days, or a tiny block budget) as in one block."""
+    from analogs.stages import regimes
+
+    ds, diagnostics = _closed_low_days(grid, moisture)
+    expected = _structure_day_by_day(ds, diagnostics)
+    assert np.isfinite(expected["tc_asymmetry"]).sum() >= 5
+    assert np.isfinite(expected["tc_thermal_wind_gpm"]).sum() >= 8
+    found = regimes.cyclone_structure(ds, diagnostics)
+    pd.testing.assert_frame_equal(found, expected, check_exact=True)
+    pd.testing.assert_frame_equal(regimes.cyclone_structure(ds.chunk({"time": 2}), diagnostics),
+                                  expected, check_exact=True)
+    monkeypatch.setattr(regimes, "_STRUCTURE_BLOCK_BYTES", 1)
+    pd.testing.assert_frame_equal(regimes.cyclone_structure(ds, diagnostics), expected,
+                                  check_exact=True)

@@ -458,79 +458,123 @@ def _zonal_median(z):
         return np.nanmedian(z, axis=-1, keepdims=True)
 
 
-def _closed_lows_np(z, lat, lon, *, moisture=None, max_lat, min_depth, max_radius_km,
-                    ring_km, neighbourhood_km, moisture_radius_km, poleward_rise_gpm,
-                    min_ring_valid, near=None):
+def _closed_lows_np(z, lat, lon, *, moisture=None, moisture_kind=None, max_lat, min_depth,
+                    max_radius_km, ring_km, neighbourhood_km, moisture_radius_km,
+                    poleward_rise_gpm, min_ring_valid, near=None):
     """Compact closed lows in z (nt, nlat, nlon); returns a dict of 1-D arrays.
 
     Works in the seam-continuous longitude frame of ``lon`` (periodic round the
-    globe); longitudes come back in [-180, 180). ``near`` = (box, km): only centres
-    within ``km`` of the box (:func:`_distance_to_box_km`) are measured and returned
-    (each centre is measured on its own, so those kept are the same lows)."""
+    globe); longitudes come back in [-180, 180). ``moisture``: values as stored, turned
+    into the measure (:func:`_moisture_measure` of ``moisture_kind``) only at the
+    points around each centre. ``near`` = (box, km): only centres within ``km`` of the
+    box (:func:`_distance_to_box_km`) are measured and returned (each centre is
+    measured on its own, so those kept are the same lows)."""
     frame = longitude_frame(lon)
     z = frame.to_frame(np.asarray(z, dtype=float))
     if moisture is not None:
-        moisture = frame.to_frame(np.asarray(moisture, dtype=float))
+        moisture = frame.to_frame(np.asarray(moisture))
     lon = frame.lon
     periodic = frame.periodic
-    _, nlat, nlon = z.shape
+    nt, nlat, nlon = z.shape
     dlat = float(np.mean(np.diff(lat))) if nlat > 1 else 1.0
     dlon = frame.step
     ring_inner, ring_outer = ring_km
     lon_mode = "wrap" if periodic else "constant"
+    empty = {k: np.zeros(0, dtype=int if k == "t" else bool if k == "closed" else float)
+             for k in ("t", "lat", "lon", "depth", "radius", "moisture", "closed")}
 
     def half_widths(km, cos_lat):
         return (max(1, int(round(km / (_KM_PER_DEG * dlat)))),
                 max(1, int(round(km / (_KM_PER_DEG * dlon * cos_lat)))))
 
-    # Only rows within reach of |lat| <= max_lat can hold or shape a centre.
+    # Only rows within reach of |lat| <= max_lat can hold or shape a centre: the search
+    # works on that band of rows alone (every point within ring_km[1] of a centre lies
+    # in it: the band reaches a grid length beyond that distance).
     reach_i = half_widths(ring_outer, 1.0)[0]
     rows = np.nonzero(np.abs(lat) <= max_lat + (reach_i + 1) * dlat)[0]
+    if not rows.size:
+        return empty
+    first_row, end_row = rows[0], rows[-1] + 1
+    band_lat = lat[first_row:end_row]
     # Heights relative to the zonal median of each latitude (missing values skipped):
     # the median ignores the compact low itself, and removing it takes away the
     # meridional slope of the background. The closure test uses the total height.
-    total = z
-    z = z - _zonal_median(z)
-    candidate = np.zeros(z.shape, dtype=bool)
-    if rows.size:
-        # Screening: an approximate depth field, the mean over a square annulus of
-        # half-widths ring_km (box sums over the points that have a value; none
-        # outside the grid, wrapping round a periodic grid) minus the height. Local
-        # maxima of it are compact lows, also on a sloping background or next to a
-        # broad trough where the total height has no closed contour. Depth, closure
-        # and radius are then measured exactly on the great-circle ring.
-        band = z[:, rows[0]:rows[-1] + 1]
-        valid = np.isfinite(band)
-        filled = np.where(valid, band, 0.0)
-        # The filters act on each day alone: with no value missing, every day's
-        # point counts are those of the first day.
-        weight = valid.astype(float) if not valid.all() else np.ones((1,) + band.shape[1:])
-        cos_lat = np.cos(np.radians(np.clip(np.abs(lat[rows]).mean(), 0.0, 80.0)))
-        modes = ("constant", "constant", lon_mode)
-        sums = []
-        for km in (ring_outer, ring_inner):
-            hi, hj = half_widths(km, cos_lat)
-            size = (1, 2 * hi + 1, 2 * hj + 1)
-            n = size[1] * size[2]
-            sums.append((ndimage.uniform_filter(filled, size=size, mode=modes) * n,
-                         ndimage.uniform_filter(weight, size=size, mode=modes) * n))
-        (s_out, n_out), (s_in, n_in) = sums
-        count = n_out - n_in
-        with np.errstate(invalid="ignore", divide="ignore"):
-            screen = np.where(count >= 0.5, (s_out - s_in) / np.maximum(count, 0.5),
-                              np.nan) - band
-        screen = np.where(np.isfinite(screen), screen, -np.inf)
-        hi, hj = half_widths(neighbourhood_km, cos_lat)
-        peak = ndimage.maximum_filter(screen, size=(1, 2 * hi + 1, 2 * hj + 1),
-                                      mode=("nearest", "nearest",
-                                            "wrap" if periodic else "nearest"))
-        candidate[:, rows[0]:rows[-1] + 1] = (np.isfinite(screen) & (screen >= peak)
-                                              & (screen >= 0.5 * min_depth))
-    candidate &= (np.abs(lat) <= max_lat)[None, :, None]
+    total = z[:, first_row:end_row]
+    band = total - _zonal_median(total)
+    # Screening: an approximate depth field, the mean over a square annulus of
+    # half-widths ring_km (box sums over the points that have a value; none outside
+    # the grid, wrapping round a periodic grid) minus the height. Local maxima of it
+    # are compact lows, also on a sloping background or next to a broad trough where
+    # the total height has no closed contour. Depth, closure and radius are then
+    # measured exactly on the great-circle ring.
+    valid = np.isfinite(band)
+    complete = valid.all()
+    filled = band if complete else np.where(valid, band, 0.0)
+    # The filters act on each day alone: with no value missing, every day's point
+    # counts are those of the first day.
+    weight = np.ones((1,) + band.shape[1:]) if complete else valid.astype(float)
+    cos_lat = np.cos(np.radians(np.clip(np.abs(lat[rows]).mean(), 0.0, 80.0)))
+    modes = ("constant", "constant", lon_mode)
+    sums = []
+    for km in (ring_outer, ring_inner):
+        hi, hj = half_widths(km, cos_lat)
+        size = (1, 2 * hi + 1, 2 * hj + 1)
+        n = size[1] * size[2]
+        box_sum = ndimage.uniform_filter(filled, size=size, mode=modes)
+        box_sum *= n
+        box_count = ndimage.uniform_filter(weight, size=size, mode=modes)
+        box_count *= n
+        sums.append((box_sum, box_count))
+    (s_out, n_out), (s_in, n_in) = sums
+    # Centres are kept only at |lat| <= max_lat (and, with ``near``, within km of the
+    # box): the screen, its neighbourhood maximum and the candidates are taken over the
+    # rows and columns that can hold one, the maximum over a window reaching hi, hj
+    # beyond them (where that window is cut short of the band, its edge never reaches
+    # a point that can hold a centre).
+    hi, hj = half_widths(neighbourhood_km, cos_lat)
+    kept_rows = np.abs(band_lat) <= max_lat
+    kept_cols = np.ones(nlon, dtype=bool)
+    if near is not None:
+        within = _distance_to_box_km(band_lat[:, None], wrap_longitude(lon)[None, :],
+                                     near[0]) <= near[1]
+        within &= kept_rows[:, None]
+        kept_rows = within.any(axis=1)
+        if not periodic:
+            kept_cols = within.any(axis=0)
+    if not kept_rows.any() or not kept_cols.any():
+        return empty
+    (r0, r1), (c0, c1) = ((int(np.flatnonzero(kept)[0]), int(np.flatnonzero(kept)[-1]) + 1)
+                          for kept in (kept_rows, kept_cols))
+    e0, e1 = max(r0 - hi, 0), min(r1 + hi, band.shape[1])
+    f0, f1 = max(c0 - hj, 0), min(c1 + hj, nlon)
+    reach = (slice(None), slice(e0, e1), slice(f0, f1))
+    inner = (slice(None), slice(r0 - e0, r1 - e0), slice(c0 - f0, c1 - f0))
+    # In place, the arithmetic of (s_out - s_in) / max(count, 0.5) (NaN where the
+    # annulus has no value) - band, then -inf where that is not finite.
+    screen = s_out[reach]
+    count = (n_out - n_in)[reach]
+    screen -= s_in[reach]
+    with np.errstate(invalid="ignore", divide="ignore"):
+        screen /= np.maximum(count, 0.5)
+    no_value = count < 0.5
+    if no_value.any():
+        np.copyto(screen, np.nan, where=no_value)
+    screen -= band[reach]
+    finite = np.isfinite(screen)
+    if not finite.all():
+        screen[~finite] = -np.inf
+    peak = ndimage.maximum_filter(screen, size=(1, 2 * hi + 1, 2 * hj + 1),
+                                  mode=("nearest", "nearest", "wrap" if periodic else "nearest"))
+    screen = screen[inner]
+    candidate = finite[inner]
+    candidate &= screen >= peak[inner]
+    candidate &= screen >= 0.5 * min_depth
+    candidate &= (np.abs(band_lat[r0:r1]) <= max_lat)[None, :, None]
     t_idx, i_idx, j_idx = np.nonzero(candidate)
+    i_idx, j_idx = i_idx + r0, j_idx + c0
     if near is not None:
         box, km = near
-        kept = _distance_to_box_km(lat[i_idx], wrap_longitude(lon[j_idx]), box) <= km
+        kept = _distance_to_box_km(band_lat[i_idx], wrap_longitude(lon[j_idx]), box) <= km
         t_idx, i_idx, j_idx = t_idx[kept], i_idx[kept], j_idx[kept]
 
     reach_km = max(ring_outer, moisture_radius_km)
@@ -539,8 +583,9 @@ def _closed_lows_np(z, lat, lon, *, moisture=None, max_lat, min_depth, max_radiu
     out = {k: np.full(t_idx.size, np.nan) for k in ("depth", "radius", "moisture", "closed")}
     for i in np.unique(i_idx):
         sel = np.nonzero(i_idx == i)[0]
-        di, dj, dist, octant = _ring_offsets(lat, i, dlat, dlon, reach_km)
-        rows_i = i + di
+        row = first_row + i      # the grid's row
+        di, dj, dist, octant = _ring_offsets(lat, row, dlat, dlon, reach_km)
+        rows_i = row + di
         cols = j_idx[sel, None] + dj[None, :]
         inside = ((rows_i >= 0) & (rows_i < nlat))[None, :]
         if periodic:
@@ -550,8 +595,12 @@ def _closed_lows_np(z, lat, lon, *, moisture=None, max_lat, min_depth, max_radiu
             inside = inside & (cols >= 0) & (cols < nlon)
         rows_c = np.clip(rows_i, 0, nlat - 1)[None, :]
         cols_c = np.clip(cols, 0, nlon - 1)
-        values = np.where(inside, z[t_idx[sel, None], rows_c, cols_c], np.nan)
-        centre = z[t_idx[sel], i, j_idx[sel]]
+        # The heights are read from the band: every point within ring_outer that is
+        # inside the grid lies in it (points farther out, within a larger moisture
+        # radius, are read but never used).
+        band_rows = np.clip(rows_c, first_row, end_row - 1) - first_row
+        values = np.where(inside, band[t_idx[sel, None], band_rows, cols_c], np.nan)
+        centre = band[t_idx[sel], i, j_idx[sel]]
         ring = (dist >= ring_inner) & (dist <= ring_outer)
         disc = (dist > 0) & (dist <= ring_outer)
         total_centre = total[t_idx[sel], i, j_idx[sel]]
@@ -568,10 +617,10 @@ def _closed_lows_np(z, lat, lon, *, moisture=None, max_lat, min_depth, max_radiu
         ok = np.isfinite(ring_values)
         onehot = (octant[ring, None] == np.arange(8)[None, :]).astype(float)
         n_ann = int(np.ceil(ring_outer / bin_km))
-        poleward = disc & (octant == (0 if lat[i] >= 0 else 4))
+        poleward = disc & (octant == (0 if lat[row] >= 0 else 4))
         annulus = np.minimum((dist[poleward] / bin_km).astype(int), n_ann - 1)
         cells = (annulus[:, None] == np.arange(n_ann)[None, :]).astype(float)
-        p_vals = np.where(inside[:, poleward], total[t_idx[sel, None], rows_c[:, poleward],
+        p_vals = np.where(inside[:, poleward], total[t_idx[sel, None], band_rows[:, poleward],
                                                      cols_c[:, poleward]], np.nan)
         p_ok = np.isfinite(p_vals)
         with np.errstate(invalid="ignore", divide="ignore"):
@@ -618,17 +667,18 @@ def _closed_lows_np(z, lat, lon, *, moisture=None, max_lat, min_depth, max_radiu
         out["radius"][sel] = np.where(has, radius, np.nan)
 
         if moisture is not None:
+            # The measure (a dewpoint from q850) of the points within its radius only.
             near = dist <= moisture_radius_km
-            m_vals = np.where(inside[:, near],
-                              moisture[t_idx[sel, None], rows_c[:, near], cols_c[:, near]],
-                              np.nan)
+            m_vals = np.where(inside[:, near], _moisture_measure(np.asarray(
+                moisture[t_idx[sel, None], rows_c[:, near], cols_c[:, near]], dtype=float),
+                moisture_kind), np.nan)
             with warnings.catch_warnings():
                 warnings.simplefilter("ignore", RuntimeWarning)   # all missing: NaN
                 out["moisture"][sel] = np.nanmean(m_vals, axis=1)
 
     with np.errstate(invalid="ignore"):
         keep = (out["depth"] >= min_depth) & (out["radius"] <= max_radius_km)
-    return {"t": t_idx[keep], "lat": lat[i_idx[keep]],
+    return {"t": t_idx[keep], "lat": band_lat[i_idx[keep]],
             "lon": wrap_longitude(lon[j_idx[keep]]),
             "depth": out["depth"][keep], "radius": out["radius"][keep],
             "moisture": out["moisture"][keep], "closed": out["closed"][keep] > 0.5}
@@ -1147,11 +1197,12 @@ def moist_area_fraction(dewpoint: xr.DataArray, region,
 
 
 def _moisture_block(block: xr.Dataset, kind: str | None):
-    """The moisture field of one block of days as stored (float64); None without.
-    :func:`_moisture_measure` turns values of it into the measure the rules read."""
+    """The moisture field of one block of days as stored (its own dtype: converted to
+    float64 where it is used); None without. :func:`_moisture_measure` turns values of
+    it into the measure the rules read."""
     if kind is None:
         return None
-    return np.asarray(block[kind].transpose("time", "lat", "lon").values, dtype=float)
+    return np.asarray(block[kind].transpose("time", "lat", "lon").values)
 
 
 def _moisture_measure(values, kind: str | None):
@@ -1248,9 +1299,8 @@ def _block_columns(z, moisture, *, lat, lon, lat_in, lon_in, weights, band_in,
         columns[name] = np.where(np.isfinite(columns[amp]), columns[name], np.nan)
 
     # Only the lows near the box are measured: the search elsewhere is not needed.
-    lows = _closed_lows_np(z, lat, lon, moisture=_moisture_measure(moisture, moisture_kind)
-                           if moisture is not None else None, near=(region, tc_near_km),
-                           **low_params)
+    lows = _closed_lows_np(z, lat, lon, moisture=moisture, moisture_kind=moisture_kind,
+                           near=(region, tc_near_km), **low_params)
     # The deepest closed low near the box, else the deepest low.
     order = np.lexsort((-lows["depth"], ~lows["closed"], lows["t"]))
     t_near = lows["t"][order]
@@ -1276,7 +1326,8 @@ def _block_columns(z, moisture, *, lat, lon, lat_in, lon_in, weights, band_in,
     columns["moisture_available"] = np.zeros(nt, dtype=bool)
     if moisture is not None:
         # The region's columns, every latitude (the moist line is searched along them).
-        measure = _moisture_measure(moisture[..., lon_in], moisture_kind)
+        measure = _moisture_measure(np.asarray(moisture[..., lon_in], dtype=float),
+                                    moisture_kind)
         part = measure[:, lat_in]
         region_mean = _weighted_mean_np(part, weights)
         columns["moisture_available"] = np.isfinite(region_mean)
@@ -1377,11 +1428,14 @@ def compute_diagnostics(ds: xr.Dataset, region, *, upstream_deg: float = 25.0,
     1000): 1000 days at 1 degree, about 90 at 0.25 degree.
 
     ``block_measures``, optional: a callable ``(block, diagnostics) -> DataFrame`` of
-    more columns (one row a day), called on each block of days while its fields are in
-    memory, with the block's Dataset and its diagnostics; its columns are appended. A
-    measure that needs the fields again (the closed-low structure of
-    :func:`analogs.stages.regimes.cyclone_structure`) so reads an archive chunked in
-    time once, not twice. Its values must not depend on how the days are blocked.
+    more columns (one row a day), called with a Dataset of days and their diagnostics;
+    its columns are appended. For a dask-backed archive it is called on each block of
+    days while its fields are in memory: a measure that needs the fields again (the
+    closed-low structure of :func:`analogs.stages.regimes.cyclone_structure`) so reads
+    an archive chunked in time once, not twice. For an archive in memory it is called
+    once, on every day (the closed-low structure measures the days that share a centre
+    together: fewer, larger groups). Its values must not depend on how the days are
+    blocked.
     """
     if not isinstance(ds, xr.Dataset) or "z500" not in ds:
         raise AnalogsInputError(
@@ -1421,22 +1475,25 @@ def compute_diagnostics(ds: xr.Dataset, region, *, upstream_deg: float = 25.0,
         per_day = _BYTES_PER_POINT_DAY * lat.size * lon.size
         block_days = int(min(1000, max(1, DIAGNOSTICS_MEMORY_BYTES // (threads * per_day))))
     read_days = _read_days(z500, block_days)
+    measure_blocks = block_measures is not None and z500.chunks is not None
+
+    def measured(columns, part):
+        """``columns`` with those of ``block_measures`` on the days of ``part``."""
+        found = pd.DataFrame({name: columns[name] for name in _MEASURES_READ},
+                             index=pd.DatetimeIndex(part["time"].values))
+        more = block_measures(part, found)
+        return {**columns, **{name: more[name].to_numpy() for name in more.columns}}
 
     def one_block(start):
         block = ds.isel(time=slice(start, start + read_days))
-        if read_days > block_days or block_measures is not None:
+        if read_days > block_days or measure_blocks:
             block = block.load()  # a whole time chunk read once, worked block by block
         parts = []
         for first in range(0, block.sizes["time"], block_days):
             part = block.isel(time=slice(first, first + block_days))
             z = np.asarray(part["z500"].transpose("time", "lat", "lon").values, dtype=float)
             columns = _block_columns(z, _moisture_block(part, kind), **setup)
-            if block_measures is not None:
-                found = pd.DataFrame({name: columns[name] for name in _MEASURES_READ},
-                                     index=pd.DatetimeIndex(part["time"].values))
-                more = block_measures(part, found)
-                columns.update({name: more[name].to_numpy() for name in more.columns})
-            parts.append(columns)
+            parts.append(measured(columns, part) if measure_blocks else columns)
         return {name: np.concatenate([p[name] for p in parts]) for name in parts[0]}
 
     starts = range(0, times.size, read_days)
@@ -1448,9 +1505,12 @@ def compute_diagnostics(ds: xr.Dataset, region, *, upstream_deg: float = 25.0,
             from tqdm.auto import tqdm
             results = tqdm(results, total=len(starts), desc="diagnostics", unit="block")
         blocks = list(results)
-    names = list(DIAGNOSTIC_UNITS) + [name for name in blocks[0] if name not in DIAGNOSTIC_UNITS
+    columns = {name: np.concatenate([b[name] for b in blocks]) for name in blocks[0]}
+    if block_measures is not None and not measure_blocks:
+        columns = measured(columns, ds)
+    names = list(DIAGNOSTIC_UNITS) + [name for name in columns if name not in DIAGNOSTIC_UNITS
                                       and name != "_missing_height_day"]
-    columns = {name: np.concatenate([b[name] for b in blocks]) for name in names}
+    columns = {name: columns[name] for name in names}
     frame = pd.DataFrame(columns, index=pd.DatetimeIndex(times, name="time"))
     if kind != "pwat":
         frame = frame.drop(columns="pwat_region")
@@ -1465,5 +1525,5 @@ def compute_diagnostics(ds: xr.Dataset, region, *, upstream_deg: float = 25.0,
             used.update(threshold=float(moist_threshold), source="given by the caller")
         frame.attrs["moisture"] = used
     frame.attrs["missing_height_days"] = int(
-        np.concatenate([b["_missing_height_day"] for b in blocks]).sum())
+        sum(b["_missing_height_day"].sum() for b in blocks))
     return frame

@@ -33,7 +33,10 @@ from __future__ import annotations
 
 import calendar
 import dataclasses
+import functools
+import math
 import numbers
+import warnings
 from dataclasses import dataclass, field, fields
 from os import PathLike
 from pathlib import Path
@@ -279,10 +282,13 @@ HART_RADIUS_KM = 500.0
 LOWER_LEVELS = {"z850": 850.0, "z1000": 1000.0}
 #: Bytes of centre geometries (:class:`_AroundCentre`) :func:`cyclone_structure` keeps
 #: at once; emptied when full. 40 years at 1 degree have 411 centres of a few kB each; at
-#: 0.25 degree a centre's box holds some 4,000 points (about 80 kB).
+#: 0.25 degree a centre's measures read some 6,000 points (about 140 kB).
 _CENTRE_CACHE_BYTES = 64 * 2**20
-#: Days of fields read at once by :func:`cyclone_structure`.
-_STRUCTURE_BLOCK_DAYS = 64
+#: Bytes of one field's float64 values that :func:`cyclone_structure` reads at once
+#: from an in-memory archive (days of a block are measured together, centre by centre:
+#: the larger the block, the fewer the groups; 64 MB: 3,000 days at 1 degree, 200 at
+#: 0.25 degree).
+_STRUCTURE_BLOCK_BYTES = 64 * 2**20
 
 
 #: exp(2i theta) at the centre bearings of the eight octants (22.5, 67.5, ... degrees).
@@ -306,57 +312,120 @@ def _finite_mean(values, weights, points):
     return _weighted_mean(part, weights[points])
 
 
+def _slice_means(part, weights, bounds, totals):
+    """Weighted means of each row of ``part`` (days, points) over each column slice
+    ``bounds`` (start, stop) of it, skipping NaN: (days, slices), each to the last bit
+    :func:`_finite_mean` of one day over those points (the products of a C-ordered
+    array, each row of a slice summed by one reduction: numpy's pairwise sum of a
+    contiguous row, the same as of a 1-D array). ``totals``: each slice's sum of
+    ``weights``, NaN for an empty slice. Days with a missing value are taken one by one."""
+    products = np.multiply(part, weights)
+    means = np.stack([np.add.reduce(products[:, start:stop], axis=1)
+                      for start, stop in bounds], axis=1) / totals
+    for row in np.flatnonzero(~np.isfinite(part).all(axis=1)):
+        means[row] = [_finite_mean(part[row], weights, np.arange(start, stop))
+                      for start, stop in bounds]
+    return means
+
+
 class _AroundCentre:
     """The grid around one closed-low centre, shared by every day centred there: the
-    points of the box that can lie within RING_KM[1] (:func:`_box_around`), flattened
-    in grid order, with their cos-latitude weights and the flat indices of the ring's
-    eight octants (by initial bearing, 45 degrees each from north), of the core disc,
-    of the ring and of Hart's disc."""
+    points of the box that can lie within RING_KM[1] (:func:`_box_around`), with their
+    cos-latitude weights, and, as flat indices into a (lat, lon) field and with the
+    row of each, the points each measure reads: the ring's eight octants one after the
+    other (by initial bearing, 45 degrees each from north; each in grid order), the
+    core disc then the ring (grid order), and Hart's disc."""
 
     def __init__(self, c_lat, c_lon, lat, lon, lat2, lon2, weights):
-        self.near = _box_around(c_lat, c_lon, lat, lon, RING_KM[1])
-        self.rows = self.near[0]
-        points_lat, points_lon = lat2[self.near], lon2[self.near]
+        near = _box_around(c_lat, c_lon, lat, lon, RING_KM[1])
+        points_lat, points_lon = lat2[near], lon2[near]
         distance = great_circle_km(c_lat, c_lon, points_lat, points_lon).ravel()
         bearing = initial_bearing_deg(c_lat, c_lon, points_lat, points_lon).ravel()
-        self.weights = weights[self.near].ravel()
+        box_weights = weights[near].ravel()
+        rows = np.broadcast_to(near[0], points_lat.shape).ravel()
+        flat = np.ravel_multi_index((rows, np.broadcast_to(near[1], points_lat.shape).ravel()),
+                                    lat2.shape)
         ring = (distance >= RING_KM[0]) & (distance <= RING_KM[1])
         octant = (np.floor(bearing / 45.0).astype(int)) % 8
-        self.octants = [np.flatnonzero(ring & (octant == k)) for k in range(8)]
-        self.core = np.flatnonzero(distance <= CORE_RADIUS_KM)
-        self.ring = np.flatnonzero(ring)
-        self.hart = np.flatnonzero(distance <= HART_RADIUS_KM)
-        self.nbytes = sum(a.nbytes for a in (self.weights, self.core, self.ring, self.hart,
-                                             *self.octants))
+        octants = [np.flatnonzero(ring & (octant == k)) for k in range(8)]
+        moist = [np.flatnonzero(distance <= CORE_RADIUS_KM), np.flatnonzero(ring)]
+        self.octant, self.moisture = (
+            _Points(parts, flat, rows, box_weights) for parts in (octants, moist))
+        self.hart = flat[distance <= HART_RADIUS_KM]
+        self.nbytes = self.octant.nbytes + self.moisture.nbytes + self.hart.nbytes
 
-    def values(self, field):
-        """``field`` (lat, lon) at the box's points, flattened in grid order."""
-        return field[self.near].ravel()
+
+class _Points:
+    """Groups of a centre's box points (``parts``: indices into the box), one after the
+    other: their flat grid indices (``flat``), rows (``rows``) and weights, each group's
+    column slice (``bounds``) and sum of weights (``totals``, NaN when empty)."""
+
+    def __init__(self, parts, flat, rows, weights):
+        order = np.concatenate(parts)
+        ends = np.cumsum([part.size for part in parts]).tolist()
+        self.bounds = list(zip([0] + ends[:-1], ends))
+        self.flat, self.rows, self.weights = flat[order], rows[order], weights[order]
+        self.totals = np.array([weights[part].sum() if part.size else np.nan
+                                for part in parts])
+        self.nbytes = self.flat.nbytes + self.rows.nbytes + self.weights.nbytes
+
+    def means(self, values):
+        """Weighted means (days, groups) of ``values`` (days, these points)."""
+        return _slice_means(values, self.weights, self.bounds, self.totals)
+
+
+class _CentreGeometries:
+    """The geometry around each closed-low centre of one grid (:class:`_AroundCentre`),
+    computed once and shared by every block of days (and thread) of an archive; emptied
+    when it holds more than :data:`_CENTRE_CACHE_BYTES`."""
+
+    def __init__(self, lat, lon):
+        self.lat, self.lon = np.asarray(lat, dtype=float), np.asarray(lon, dtype=float)
+        self.lat2, self.lon2 = np.meshgrid(self.lat, self.lon, indexing="ij")
+        self.weights = np.cos(np.radians(self.lat2))
+        self.centres: dict = {}
+        self.nbytes = 0
+
+    def on_grid(self, lat, lon) -> bool:
+        return np.array_equal(self.lat, lat) and np.array_equal(self.lon, lon)
+
+    def around(self, c_lat, c_lon) -> _AroundCentre:
+        key = (c_lat, c_lon)
+        found = self.centres.get(key)
+        if found is None:
+            if self.nbytes > _CENTRE_CACHE_BYTES:
+                self.centres.clear()
+                self.nbytes = 0
+            found = _AroundCentre(c_lat, c_lon, self.lat, self.lon, self.lat2, self.lon2,
+                                  self.weights)
+            self.centres[key] = found
+            self.nbytes += found.nbytes
+        return found
 
 
 def _ring_asymmetry(anomaly, around: _AroundCentre, depth):
-    """Wavenumber-2 amplitude of ``anomaly`` (flat, at ``around``'s points) on the ring,
-    over ``depth``: octant means (each octant needs a grid point with a value; NaN
-    otherwise: the ring leaves the grid)."""
-    means = np.array([_finite_mean(anomaly, around.weights, points)
-                      for points in around.octants])
-    if not np.all(np.isfinite(means)) or not depth > 0:
-        return np.nan
-    amplitude = 2.0 / 8.0 * abs(np.sum(means * _OCTANT_WAVE2))
-    return float(amplitude / depth)
+    """Wavenumber-2 amplitude of ``anomaly`` (days, ``around.octant``'s points) on the
+    ring, over ``depth`` (days): octant means (each octant needs a grid point with a
+    value; NaN otherwise: the ring leaves the grid)."""
+    means = around.octant.means(anomaly)
+    wave = np.add.reduce(means * _OCTANT_WAVE2, axis=1)
+    # The modulus as Python's abs() of a complex takes it (hypot): numpy's complex
+    # absolute value of an array differs from it in the last bit.
+    amplitude = 2.0 / 8.0 * np.hypot(wave.real, wave.imag)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.where(np.isfinite(means).all(axis=1) & (depth > 0), amplitude / depth,
+                        np.nan)
 
 
-def _core_and_ring(values, around: _AroundCentre):
-    """Area means of ``values`` within CORE_RADIUS_KM and on the RING_KM annulus."""
-    return (_finite_mean(values, around.weights, around.core),
-            _finite_mean(values, around.weights, around.ring))
-
-
-def _hart_height_difference(z, around: _AroundCentre):
-    """Zmax - Zmin within HART_RADIUS_KM of the centre (Hart 2003), gpm."""
-    near = z[around.hart]
-    near = near[np.isfinite(near)]
-    return float(near.max() - near.min()) if near.size else np.nan
+def _hart_height_difference(z):
+    """Zmax - Zmin within HART_RADIUS_KM of the centre (Hart 2003), gpm, of each day
+    (``z``: days, the disc's points); missing values skipped."""
+    if z.shape[1] == 0:
+        return np.full(z.shape[0], np.nan)
+    near = np.where(np.isfinite(z), z, np.nan)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)   # a day without a value: NaN
+        return np.nanmax(near, axis=1) - np.nanmin(near, axis=1)
 
 
 def _box_around(centre_lat, centre_lon, lat, lon, radius_km):
@@ -376,20 +445,21 @@ def _box_around(centre_lat, centre_lon, lat, lon, radius_km):
 
 
 def _structure_blocks(rows: np.ndarray, z500) -> list[np.ndarray]:
-    """The closed-low days ``rows`` in blocks read at once: at most
-    ``_STRUCTURE_BLOCK_DAYS`` days of an in-memory archive; of a chunked (dask) one, the
-    days of one time chunk, so that each chunk is read once (64-day blocks of scattered
-    days read each chunk about five times: measured, 40 years at 1 degree in 365-day
-    chunks, 14 s of 16 s)."""
+    """The closed-low days ``rows`` in blocks read at once: of an in-memory archive, as
+    many days as :data:`_STRUCTURE_BLOCK_BYTES` hold; of a chunked (dask) one, the days
+    of one time chunk, so that each chunk is read once (64-day blocks of scattered days
+    read each chunk about five times: measured, 40 years at 1 degree in 365-day chunks,
+    14 s of 16 s)."""
     sizes = (z500.chunksizes or {}).get("time")
     if not sizes:
-        return [rows[start:start + _STRUCTURE_BLOCK_DAYS]
-                for start in range(0, rows.size, _STRUCTURE_BLOCK_DAYS)]
+        days = max(1, _STRUCTURE_BLOCK_BYTES // (8 * z500.sizes["lat"] * z500.sizes["lon"]))
+        return [rows[start:start + days] for start in range(0, rows.size, days)]
     chunk = np.searchsorted(np.cumsum(sizes), rows, side="right")
     return np.split(rows, np.flatnonzero(np.diff(chunk)) + 1)
 
 
-def cyclone_structure(ds: xr.Dataset, diagnostics: pd.DataFrame) -> pd.DataFrame:
+def cyclone_structure(ds: xr.Dataset, diagnostics: pd.DataFrame, *,
+                      centres: _CentreGeometries | None = None) -> pd.DataFrame:
     r"""Structure of the closed low of each day, for the tropical rule.
 
     For every day whose diagnostics have a closed low (``tc_present``, ``tc_lat``,
@@ -425,7 +495,10 @@ def cyclone_structure(ds: xr.Dataset, diagnostics: pd.DataFrame) -> pd.DataFrame
       for a cold core.
 
     Everything is NaN on days without a closed low and for a measure the archive
-    lacks. Area means use cos-latitude weights; missing values are skipped.
+    lacks. Area means use cos-latitude weights; missing values are skipped. The days of
+    a block that share a centre are measured together, each with the arithmetic of a
+    day alone. ``centres``: the geometry around each centre, kept from earlier calls on
+    the same grid (:func:`tag_days` passes one to every block of days).
     """
     from analogs.stages.diagnostics import dewpoint_from_specific_humidity
     names = list(STRUCTURE_UNITS)
@@ -443,55 +516,54 @@ def cyclone_structure(ds: xr.Dataset, diagnostics: pd.DataFrame) -> pd.DataFrame
         ds = ds.expand_dims("time")
     lat = np.asarray(ds["lat"].values, dtype=float)
     lon = np.asarray(ds["lon"].values, dtype=float)
-    lat2, lon2 = np.meshgrid(lat, lon, indexing="ij")
-    weights = np.cos(np.radians(lat2))
+    if centres is None or not centres.on_grid(lat, lon):
+        centres = _CentreGeometries(lat, lon)
     moisture = next((name for name in ("q850", "td2m", "pwat") if name in ds), None)
     lower = next((name for name in LOWER_LEVELS if name in ds), None)
+    level = {"q850": "tc_td850_c", "td2m": "tc_td2m_c", "pwat": "tc_pwat"}.get(moisture)
+    excess = "tc_core_pwat_excess" if moisture == "pwat" else "tc_core_td_excess_k"
 
     def block_values(name, block):
         return np.asarray(ds[name].transpose("time", "lat", "lon").isel(time=block).values,
                           dtype=float)
 
-    centres: dict = {}
-    cached_bytes = 0
     for block in _structure_blocks(rows, ds["z500"]):
         z = block_values("z500", block)
         with np.errstate(invalid="ignore"):
             # the zonal median of each row, for the whole block at once (numpy's
             # median where no value is missing: the same values, far faster)
-            zonal = (np.median if not np.isnan(z).any() else np.nanmedian)(
-                z, axis=-1, keepdims=True)
+            zonal = (np.median if not np.isnan(z).any() else np.nanmedian)(z, axis=-1)
         m = None if moisture is None else block_values(moisture, block)
-        if moisture == "q850":
-            m = dewpoint_from_specific_humidity(m, 850.0) - ZERO_CELSIUS_K
-        elif moisture == "td2m":
-            m = m - ZERO_CELSIUS_K
         low = None if lower is None else block_values(lower, block)
-        for k, row in enumerate(block):
-            # Every measure is taken within RING_KM[1] of the centre: only the grid
-            # points of the box around that disc are looked at (same values, in the
-            # same order, as over the whole grid); centres recur on grid points, so
-            # the geometry around each is computed once.
-            key = (c_lat[row], c_lon[row])
-            around = centres.get(key)
-            if around is None:
-                if cached_bytes > _CENTRE_CACHE_BYTES:
-                    centres.clear()
-                    cached_bytes = 0
-                around = centres[key] = _AroundCentre(*key, lat, lon, lat2, lon2, weights)
-                cached_bytes += around.nbytes
-            anomaly = (z[k][around.near] - zonal[k, :, 0][around.rows]).ravel()
-            out["tc_asymmetry"][row] = _ring_asymmetry(anomaly, around, c_depth[row])
+        z, m, low = (None if f is None else f.reshape(block.size, -1) for f in (z, m, low))
+        # Every measure is taken within RING_KM[1] of the centre: only the grid points
+        # around it are read (same values, in the same order, as over the whole grid);
+        # the days of the block that share a centre are measured together.
+        keys, which = np.unique(np.stack([c_lat[block], c_lon[block]], axis=1), axis=0,
+                                return_inverse=True)
+        by_centre = np.argsort(which.ravel(), kind="stable")
+        starts = np.searchsorted(which.ravel()[by_centre], np.arange(len(keys) + 1))
+        for key, start, stop in zip(keys, starts[:-1], starts[1:]):
+            days = by_centre[start:stop, None]           # the days' places in the block
+            archive_rows = block[days[:, 0]]
+            around = centres.around(*key)
+            octant = around.octant
+            anomaly = z[days, octant.flat] - zonal[days, octant.rows]
+            out["tc_asymmetry"][archive_rows] = _ring_asymmetry(anomaly, around,
+                                                                c_depth[archive_rows])
             if m is not None:
-                core, ring = _core_and_ring(around.values(m[k]), around)
-                level = {"q850": "tc_td850_c", "td2m": "tc_td2m_c", "pwat": "tc_pwat"}[moisture]
-                excess = "tc_core_pwat_excess" if moisture == "pwat" else "tc_core_td_excess_k"
-                out[level][row] = core
-                out[excess][row] = core - ring
+                values = m[days, around.moisture.flat]
+                if moisture == "q850":
+                    values = dewpoint_from_specific_humidity(values, 850.0) - ZERO_CELSIUS_K
+                elif moisture == "td2m":
+                    values = values - ZERO_CELSIUS_K
+                core, ring = around.moisture.means(values).T
+                out[level][archive_rows] = core
+                out[excess][archive_rows] = core - ring
             if low is not None:
-                dz_low = _hart_height_difference(around.values(low[k]), around)
-                dz_500 = _hart_height_difference(around.values(z[k]), around)
-                out["tc_thermal_wind_gpm"][row] = (dz_low - dz_500) / np.log(
+                dz_low = _hart_height_difference(low[days, around.hart])
+                dz_500 = _hart_height_difference(z[days, around.hart])
+                out["tc_thermal_wind_gpm"][archive_rows] = (dz_low - dz_500) / np.log(
                     LOWER_LEVELS[lower] / 500.0)
     return pd.DataFrame(out, index=diagnostics.index)
 
@@ -760,66 +832,69 @@ class RuleClassifier:
         return pd.DataFrame({"regime": regime.astype(str), "confidence": confidence,
                              "reason": reasons}, index=diagnostics.index)
 
-    def _tropical_text(self, k, v, facts, margins, label, r: RegimeRules) -> str:
+    def _tropical_text(self, k, v, facts, failing, label, r: RegimeRules) -> str:
         """The cyclone part of a reason under rules ``r``: what made it tropical, or
-        why it is not."""
+        why it is not (``failing``: the names of the criteria it fails). ``facts``:
+        those of :meth:`_tropical` as lists, with ``month_names``."""
         known = facts["known"][k]
-        month = facts["month"][k]
-        month_name = calendar.month_abbr[int(month)] if np.isfinite(month) else "unknown month"
-        asym = (f"asymmetry {v['tc_asymmetry']:.2f}" if np.isfinite(v["tc_asymmetry"])
-                else "ring off the grid")
-        parts = {
-            "depth": f"depth {v['tc_depth']:.0f} gpm (needs {facts['depth_needed'][k]:.0f})",
-            "latitude": f"centre at {abs(v['tc_lat']):.1f} deg latitude (at most "
-                        f"{facts['max_lat'][k]:.0f})",
-            "radius": f"radius {v['tc_radius_km']:.0f} km (at most "
-                      f"{facts['max_radius'][k]:.0f})",
-            "symmetry": f"{asym} (at most {facts['max_asym'][k]:.2f})",
-            "season": f"{month_name}: " + ("warm season" if facts["in_season"][k]
-                                           else "outside the warm season"),
-        }
-        measure = facts["measure"][k]
-        if known:
-            column, rule, name, units = next(m for m in _TC_MOISTURE if m[0] == measure)
-            parts["moisture"] = (f"{name} {v[column]:.1f} {units} within "
-                                 f"{CORE_RADIUS_KM:.0f} km (needs {getattr(r, rule):g})")
-        elif r.tropical_without_moisture:
-            parts["moisture"] = "moisture missing around the centre"
-        else:
-            parts["moisture"] = ("moisture missing around the centre (height-only archive: "
-                                 "not called tropical, a cold-core upper low looks the same "
-                                 "at 500 hPa)")
-        if np.isfinite(v["tc_thermal_wind_gpm"]):
-            parts["warm_core"] = (f"Hart thermal wind {v['tc_thermal_wind_gpm']:+.0f} gpm ("
-                                  + ("warm" if v["tc_thermal_wind_gpm"] > 0 else "cold")
-                                  + " core)")
-        elif known and np.isfinite(v["tc_core_td_excess_k"]):
-            parts["warm_core"] = (f"core {v['tc_core_td_excess_k']:+.1f} K dewpoint vs its "
-                                  "ring (one-level warm-core proxy)")
-        elif known and np.isfinite(v["tc_core_pwat_excess"]):
-            parts["warm_core"] = (f"core {v['tc_core_pwat_excess']:+.1f} kg/m2 PW vs its ring "
-                                  "(one-level warm-core proxy)")
-        elif known:
-            parts["warm_core"] = "core moisture unknown"
-        else:
-            parts["warm_core"] = "warm core untested (height only)"
+
+        def part(name):
+            if name == "depth":
+                return f"depth {v['tc_depth']:.0f} gpm (needs {facts['depth_needed'][k]:.0f})"
+            if name == "latitude":
+                return (f"centre at {abs(v['tc_lat']):.1f} deg latitude (at most "
+                        f"{facts['max_lat'][k]:.0f})")
+            if name == "radius":
+                return (f"radius {v['tc_radius_km']:.0f} km (at most "
+                        f"{facts['max_radius'][k]:.0f})")
+            if name == "symmetry":
+                asym = (f"asymmetry {v['tc_asymmetry']:.2f}" if math.isfinite(v["tc_asymmetry"])
+                        else "ring off the grid")
+                return f"{asym} (at most {facts['max_asym'][k]:.2f})"
+            if name == "season":
+                month = facts["month"][k]
+                month_name = (facts["month_names"][int(month)] if math.isfinite(month)
+                              else "unknown month")
+                return f"{month_name}: " + ("warm season" if facts["in_season"][k]
+                                            else "outside the warm season")
+            if name == "moisture":
+                if known:
+                    column, rule, label_, units = next(m for m in _TC_MOISTURE
+                                                       if m[0] == facts["measure"][k])
+                    return (f"{label_} {v[column]:.1f} {units} within "
+                            f"{CORE_RADIUS_KM:.0f} km (needs {getattr(r, rule):g})")
+                if r.tropical_without_moisture:
+                    return "moisture missing around the centre"
+                return ("moisture missing around the centre (height-only archive: not "
+                        "called tropical, a cold-core upper low looks the same at 500 hPa)")
+            # the warm core
+            if math.isfinite(v["tc_thermal_wind_gpm"]):
+                return (f"Hart thermal wind {v['tc_thermal_wind_gpm']:+.0f} gpm ("
+                        + ("warm" if v["tc_thermal_wind_gpm"] > 0 else "cold") + " core)")
+            if known and math.isfinite(v["tc_core_td_excess_k"]):
+                return (f"core {v['tc_core_td_excess_k']:+.1f} K dewpoint vs its ring "
+                        "(one-level warm-core proxy)")
+            if known and math.isfinite(v["tc_core_pwat_excess"]):
+                return (f"core {v['tc_core_pwat_excess']:+.1f} kg/m2 PW vs its ring "
+                        "(one-level warm-core proxy)")
+            return "core moisture unknown" if known else "warm core untested (height only)"
+
         lat_text = f"{abs(v['tc_lat']):.1f} {'N' if v['tc_lat'] >= 0 else 'S'}"
         lon = (v["tc_lon"] + 180.0) % 360.0 - 180.0
         lon_text = f"{abs(lon):.1f} {'E' if lon >= 0 else 'W'}"
         low = (f"closed low {v['tc_depth']:.0f} gpm deep, r {v['tc_radius_km']:.0f} km at "
                f"{lat_text} {lon_text}")
         if label == "tropical":
-            text = f"{low}; {parts['moisture']}; {parts['warm_core']}; {parts['season']}"
+            text = f"{low}; {part('moisture')}; {part('warm_core')}; {part('season')}"
             if not known:
                 text += ("; moisture missing: tropical from the height field alone (deep, "
                          "compact, symmetric, warm season)")
             return text
-        failing = [name for name in margins if margins[name][k] < 0]
-        why = "; ".join(parts[name] for name in failing) if failing else ""
+        why = "; ".join(part(name) for name in failing)
         return f"{low}, not tropical: {why}" if why else low
 
     def _reasons(self, d: pd.DataFrame, regime: np.ndarray, tropical_margins=None) -> list[str]:
-        moisture_known = _moisture_known(d)
+        moisture_known = _moisture_known(d).tolist()
         cols = {name: _column(d, name) for name in (
             "flow_direction_deg", "flow_speed_ms", "ridge_amplitude", "trough_amplitude",
             "height_gradient", "cyclonic_advection", "tc_lat", "tc_lon", "tc_depth",
@@ -827,29 +902,32 @@ class RuleClassifier:
             *STRUCTURE_UNITS)}
         if not any(m[0] in d for m in _TC_MOISTURE) and "tc_dewpoint_c" in d:
             cols["tc_td850_c"] = _column(d, "tc_dewpoint_c")  # a table of an older store
-        # Python floats: a day's text reads some twenty values, and numpy scalars cost
-        # a per-value overhead that made the reasons a tenth of tagging (measured).
-        cols = {name: values.tolist() for name, values in cols.items()}
+        # Each day's values as Python floats (numpy scalars cost a per-value overhead that
+        # made the reasons a tenth of tagging, measured); + 0.0 turns a negative zero
+        # into zero, so "-0 gpm" never shows.
+        names = list(cols)
+        days = zip(*((values + 0.0).tolist() for values in cols.values()))
         rules = self._rules()
         line_name = _moist_line_name(d.attrs.get("moisture"))
         td_name = {"q850": "Td850", "td2m": "Td2m"}.get(
             (d.attrs.get("moisture") or {}).get("field"), "Td")
         margins, facts = self._tropical(d)
-        present = facts["present"]
+        facts = {name: np.asarray(values).tolist() for name, values in facts.items()}
+        facts["month_names"] = list(calendar.month_abbr)
+        fails = {name: (values < 0).tolist() for name, values in margins.items()}
         out = []
-        for k, label in enumerate(regime):
-            # + 0.0 turns a negative zero into zero, so "-0 gpm" never shows
-            v = {name: values[k] + 0.0 for name, values in cols.items()}
+        for k, (label, day) in enumerate(zip(regime, days)):
+            v = dict(zip(names, day))
             flow = f"flow {v['flow_direction_deg']:.0f} deg at {v['flow_speed_ms']:.0f} m/s"
             if moisture_known[k]:
-                moist = (f"{td_name} {v['dewpoint_region_c']:.1f} C" if np.isfinite(
+                moist = (f"{td_name} {v['dewpoint_region_c']:.1f} C" if math.isfinite(
                     v["dewpoint_region_c"]) else f"PW {v['pwat_region']:.0f} kg/m2")
-                if np.isfinite(v["moist_line_lat"]):
+                if math.isfinite(v["moist_line_lat"]):
                     moist += f", {line_name} {v['moist_line_lat']:.1f} N"
             else:
                 moist = "moisture missing"
-            low = (self._tropical_text(k, v, facts, margins, label, rules) if present[k]
-                   else "")
+            low = (self._tropical_text(k, v, facts, [name for name in fails if fails[name][k]],
+                                       label, rules) if facts["present"][k] else "")
             if label == "tropical":
                 text = low
             elif label == "strong_trough":
@@ -1041,9 +1119,14 @@ def tag_days(ds: xr.Dataset, region=None, *, rules: RegimeRules | None = None,
                 "diagnostic region; give region=(south, north, west, east) otherwise")
         region = default_diagnostic_box(ds["lat"].values, ds["lon"].values)
     # The closed-low structure is measured block by block as the diagnostics read the
-    # fields (one read of an archive chunked in time; its values are per day).
-    diagnostics = compute_diagnostics(ds, region, progress=progress,
-                                      block_measures=cyclone_structure, **diagnostic_options)
+    # fields (one read of an archive chunked in time; its values are per day), with the
+    # geometry around each centre computed once for all blocks.
+    centres = (_CentreGeometries(ds["lat"].values, ds["lon"].values)
+               if isinstance(ds, xr.Dataset) and {"lat", "lon"} <= set(ds.coords) else None)
+    diagnostics = compute_diagnostics(
+        ds, region, progress=progress,
+        block_measures=functools.partial(cyclone_structure, centres=centres),
+        **diagnostic_options)
     diagnostics.attrs["units"] = {**diagnostics.attrs.get("units", {}), **STRUCTURE_UNITS}
     diagnostics.attrs["region_default"] = bool(default)
     diagnostics.attrs["region_description"] = describe_box(
