@@ -53,7 +53,6 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 import xarray as xr
-from scipy import ndimage
 
 from analogs.constants import (
     BOLTON_A_HPA,
@@ -469,6 +468,9 @@ def _closed_lows_np(z, lat, lon, *, moisture=None, moisture_kind=None, max_lat, 
     points around each centre. ``near`` = (box, km): only centres within ``km`` of the
     box (:func:`_distance_to_box_km`) are measured and returned (each centre is
     measured on its own, so those kept are the same lows)."""
+    # Imported here: the maps' marks and dewpoints import this module, not its filters.
+    from scipy import ndimage
+
     frame = longitude_frame(lon)
     z = frame.to_frame(np.asarray(z, dtype=float))
     if moisture is not None:
