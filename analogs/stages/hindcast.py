@@ -25,8 +25,9 @@ from analogs.errors import AnalogsInputError
 from analogs.parameters import P
 from analogs.stages.index import AnalogIndex
 from analogs.stages.outcomes import analog_weights
-from analogs.stages.scores import (bootstrap_interval, brier_score, brier_skill_score, roc_auc,
-                                   roc_auc_within, verification_summary)
+from analogs.stages.scores import (bootstrap_interval, brier_score, brier_skill_score,
+                                   brier_skill_score_interval, roc_auc, roc_auc_within,
+                                   verification_summary)
 from analogs.stages.selection import (BATCH_MAX_MASK, DEFAULT_EXCLUDE, DEFAULT_SEPARATION,
                                       DEFAULT_TOP, DEFAULT_WINDOW, candidate_ids,
                                       day_numbers, day_of_year, decluster_many,
@@ -504,8 +505,8 @@ def score_hindcast(hindcast: pd.DataFrame, *, threshold=P.threshold.default, n_b
     reference = hindcast["climatology"].to_numpy()
     summary = verification_summary(p, o, reference, threshold=threshold, n_bins=n_bins)
     blocks = hindcast["year"].to_numpy()
-    summary["brier_skill_score_ci"] = list(bootstrap_interval(
-        brier_skill_score, p, o, reference, n_resamples=n_resamples, confidence=confidence,
+    summary["brier_skill_score_ci"] = list(brier_skill_score_interval(
+        p, o, reference, n_resamples=n_resamples, confidence=confidence,
         seed=seed, block=blocks))
     if 0 < o.sum() < o.size:
         summary["roc_auc_ci"] = list(bootstrap_interval(
@@ -618,9 +619,9 @@ def nested_tune(pcs, times, observed, *, tops=P.tops.default, modes=P.scan_modes
 
     def scored(hindcast):
         p, o, r = (hindcast[c].to_numpy() for c in ("forecast", "observed", "climatology"))
-        interval = bootstrap_interval(brier_skill_score, p, o, r, n_resamples=n_resamples,
-                                      confidence=confidence, seed=seed,
-                                      block=hindcast["year"].to_numpy())
+        interval = brier_skill_score_interval(p, o, r, n_resamples=n_resamples,
+                                              confidence=confidence, seed=seed,
+                                              block=hindcast["year"].to_numpy())
         return {"brier_skill_score": skill(hindcast), "brier_skill_score_ci": list(interval)}
 
     best = table.iloc[0]

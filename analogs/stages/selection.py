@@ -127,7 +127,8 @@ def held_out_mask(times, target_rows, exclude_days=DEFAULT_EXCLUDE, *, columns=N
     allowed = years[looked_at] != years[target_rows][:, None]
     if exclude_days is not None:
         days = day_numbers(times)
-        allowed &= np.abs(days[looked_at] - days[target_rows][:, None]) > exclude_days
+        gap = days[looked_at] - days[target_rows][:, None]
+        allowed &= np.abs(gap, out=gap) > exclude_days
     if columns is None or own_columns:
         return allowed
     whole = np.zeros((target_rows.size, len(times)), dtype=bool)
@@ -407,13 +408,16 @@ def rank_windows(vectors, times, targets, windows, allowed, *, top, separation):
     squared = window_distances(vectors, np.asarray(vectors)[targets], windows)
     # One integer key per candidate, ordered as (distance, row): the float32 bits of a
     # non-negative distance order as the distances do, and a window's positions as its
-    # rows (ascending). Unique keys: a partial sort picks exactly the first ``depth``.
+    # rows (ascending). Unique keys: a partial sort picks exactly the first ``depth``,
+    # and each names its own position, so the keys themselves are partitioned (no index
+    # array to gather by).
     last = np.iinfo(np.int64).max
-    keys = (squared.view(np.int32).astype(np.int64) << 32) | np.arange(width, dtype=np.int64)
-    keys[~allowed] = last
+    keys = squared.view(np.int32).astype(np.int64)
+    keys <<= 32
+    keys |= np.arange(width, dtype=np.int64)
+    np.copyto(keys, last, where=~allowed)
     if depth < width:
-        keys = np.take_along_axis(keys, np.argpartition(keys, depth - 1, axis=1)[:, :depth],
-                                  axis=1)
+        keys = np.partition(keys, depth - 1, axis=1)[:, :depth]
     keys.sort(axis=1)
     found = keys != last
     rows = np.take_along_axis(windows, np.where(found, keys & 0xFFFFFFFF, 0), axis=1)
