@@ -31,7 +31,7 @@ from analogs.stages.scores import (bootstrap_interval, brier_score, brier_skill_
 from analogs.stages.selection import (BATCH_MAX_MASK, DEFAULT_EXCLUDE, DEFAULT_SEPARATION,
                                       DEFAULT_TOP, DEFAULT_WINDOW, candidate_ids,
                                       day_numbers, day_of_year, decluster_many,
-                                      held_out_mask, rank_many, rank_windows)
+                                      held_out_days, held_out_mask, rank_many, rank_windows)
 
 HINDCAST_METHODS = ("analogs", "random")
 #: Annual harmonics beside the PCs in the logistic-regression baseline.
@@ -121,31 +121,46 @@ def leave_one_year_out(pcs, times, observed, *, top=DEFAULT_TOP, window=DEFAULT_
         n_events = (held & observed[columns]).sum(axis=1)
         with np.errstate(invalid="ignore", divide="ignore"):
             climatology[queries] = np.where(n_others > 0, n_events / n_others, np.nan)
-        candidates = np.broadcast_to(columns, held.shape)
-        for position, row in enumerate(queries):
-            if n_others[position] == 0:
-                continue
-            distances = None
-            if method == "random":
+        forecast_at = np.flatnonzero(n_others > 0)
+        if method == "random":
+            candidates = np.broadcast_to(columns, held.shape)
+            picked = []
+            for position in forecast_at:
                 others = candidates[position][held[position]]
                 if restrict is not None:
                     others = others[restrict[others]]
-                rows = rng.choice(others, size=min(top, others.size), replace=False)
-            else:
-                rows, distances = chosen[position]
-            if rows.size:
-                # Weights sum to 1 up to round-off: clipped into [0, 1].
-                forecast[row] = (observed[rows].mean() if weights == "equal"
-                                 or distances is None else min(1.0, float(
-                                     analog_weights(distances, scheme=weights)
-                                     @ observed[rows])))
-                n_analogs[row] = rows.size
+                picked.append((rng.choice(others, size=min(top, others.size), replace=False),
+                               None))
+        else:
+            picked = [chosen[position] for position in forecast_at]
+        sizes = np.fromiter((rows.size for rows, _ in picked), dtype=np.int64,
+                            count=len(picked))
+        if weights == "equal" or method == "random":
+            values = _event_fractions(observed, [rows for rows, _ in picked], sizes)
+        else:  # weights sum to 1 up to round-off: clipped into [0, 1]
+            values = np.array([min(1.0, float(analog_weights(distances, scheme=weights)
+                                              @ observed[rows])) if rows.size else np.nan
+                               for rows, distances in picked])
+        answered = queries[forecast_at[sizes > 0]]
+        forecast[answered] = values[sizes > 0]
+        n_analogs[answered] = sizes[sizes > 0]
     done = np.isfinite(forecast) & np.isfinite(climatology)
     return pd.DataFrame({
         "time": times[done], "year": years[done], "forecast": forecast[done],
         "observed": observed[done].astype(int), "climatology": climatology[done],
         "n_analogs": n_analogs[done],
     })
+
+
+def _event_fractions(observed, picked, sizes) -> np.ndarray:
+    """The fraction of event days among each list of rows in ``picked`` (``sizes``
+    rows each): ``observed[rows].mean()`` of each, from one cumulative count (the same
+    integer sums divided by the same counts); NaN for an empty list."""
+    ends = np.cumsum(sizes)
+    counted = np.concatenate([[0], np.cumsum(observed[np.concatenate(picked)])
+                              if picked else []]).astype(np.int64)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return (counted[ends] - counted[ends - sizes]) / sizes
 
 
 def held_out_analogs(pcs, times, *, rows=None, top=DEFAULT_TOP, window=DEFAULT_WINDOW,
@@ -282,6 +297,13 @@ def _weighted_fold_batches(pcs, times, observed, targets, window, exclude, *, to
         windows_by_day[position, :season.size] = season
     window_of = np.zeros(len(times), dtype=np.int64)
     window_of[target_rows] = slot
+    in_window = windows_by_day >= 0
+    columns_by_day = np.maximum(windows_by_day, 0)
+    # The calendar years and day numbers of those days (held_out_days' inputs), gathered
+    # once, in 32 bits: half the bytes to copy per target.
+    days = day_numbers(times)
+    window_years = years.astype(np.int32)[columns_by_day]
+    window_days = days.astype(np.int32)[columns_by_day]
     # Targets ranked at once: their masks over every day stay within the batch budget.
     per_batch = max(1, BATCH_MAX_MASK // len(times))
     if restrict is not None:
@@ -298,10 +320,12 @@ def _weighted_fold_batches(pcs, times, observed, targets, window, exclude, *, to
         rows = np.flatnonzero(targets & ~train)
         for start in range(0, rows.size, per_batch):
             queries = rows[start:start + per_batch]
-            windows = windows_by_day[window_of[queries]]
-            columns = np.maximum(windows, 0)
-            # Each target's own season days of the other years, outside its own episode.
-            held = held_out_mask(times, queries, exclude, columns=columns) & (windows >= 0)
+            own = window_of[queries]
+            windows, columns = windows_by_day[own], columns_by_day[own]
+            # Each target's own season days of the other years, outside its own episode
+            # (held_out_mask's rule).
+            held = held_out_days(window_years[own], window_days[own], years[queries],
+                                 days[queries], exclude) & in_window[own]
             allowed = held if restrict is None else held & restrict[columns]
             chosen = rank_windows(mapped, times, queries, windows, allowed, top=top,
                                   separation=separation)

@@ -123,17 +123,28 @@ def held_out_mask(times, target_rows, exclude_days=DEFAULT_EXCLUDE, *, columns=N
     times = _as_index(times)
     looked_at = slice(None) if columns is None else np.asarray(columns, dtype=np.int64)
     own_columns = columns is not None and looked_at.ndim == 2
-    years = _calendar(times)[2]  # cached per index: the hindcast asks once per batch
-    allowed = years[looked_at] != years[target_rows][:, None]
-    if exclude_days is not None:
-        days = day_numbers(times)
-        gap = days[looked_at] - days[target_rows][:, None]
-        allowed &= np.abs(gap, out=gap) > exclude_days
+    _, days, years = _calendar(times)  # cached per index: the hindcast asks once per batch
+    allowed = held_out_days(years[looked_at], days[looked_at], years[target_rows],
+                            days[target_rows], exclude_days)
     if columns is None or own_columns:
         return allowed
     whole = np.zeros((target_rows.size, len(times)), dtype=bool)
     whole[:, looked_at] = allowed
     return whole
+
+
+def held_out_days(years, days, target_years, target_days, exclude_days=DEFAULT_EXCLUDE):
+    """The rule of :func:`held_out_mask` on calendar years and day numbers
+    (:func:`day_numbers`): ``years`` and ``days`` of the days looked at, (n,) or (m, n),
+    those of the m targets (m,); (m, n) booleans, true where the day is of another
+    year than the target's and more than ``exclude_days`` days from it. The
+    event-weighted hindcast gives the years and days of each calendar day's season
+    window, gathered once."""
+    allowed = years != np.asarray(target_years)[:, None]
+    if exclude_days is not None:
+        gap = days - np.asarray(target_days, dtype=days.dtype)[:, None]
+        allowed &= np.abs(gap, out=gap) > exclude_days
+    return allowed
 
 
 def decluster(times, separation_days, limit=None):
