@@ -434,11 +434,12 @@ def rank_windows(vectors, times, targets, windows, allowed, *, top, separation):
     rows = np.take_along_axis(windows, np.where(found, keys & 0xFFFFFFFF, 0), axis=1)
     kept = decluster_many(day_numbers(times)[rows], found, separation, top)
     distances = np.sqrt((keys >> 32).astype(np.int32).view(np.float32).astype(np.float64))
-    ranked = []
-    for j in range(n_targets):
-        keep = kept[j][kept[j] >= 0]
-        ranked.append((rows[j][keep], distances[j][keep]))
-    return ranked
+    # The kept positions fill each row's first slots: one gather, then a slice per target.
+    safe = np.maximum(kept, 0)
+    kept_rows = np.take_along_axis(rows, safe, axis=1)
+    kept_distances = np.take_along_axis(distances, safe, axis=1)
+    return [(kept_rows[j, :n], kept_distances[j, :n])
+            for j, n in enumerate(np.count_nonzero(kept >= 0, axis=1).tolist())]
 
 
 def _nearest_allowed(index, times, target_vectors, allowed, *, top, separation,
