@@ -380,3 +380,45 @@ def synthetic_pcs_for_ties():
     for t in range(1, len(TIMES)):
         pcs[t] = 0.7 * pcs[t - 1] + rng.normal(size=4) * 2
     return pcs
+
+
+def test_held_out_rule_on_gathered_calendar_days_equals_the_mask():
+    """held_out_days on each window's calendar years and day numbers gathered in 32 bits
+    (the event-weighted hindcast's inputs) equals held_out_mask over the same windows,
+    and both equal pandas' calendar: another year and more than ``exclude`` whole days
+    from the target (common practice, no source: leave-one-year-out with an exclusion
+    window)."""
+    from analogs.stages.selection import day_numbers, held_out_days, held_out_mask
+
+    rows = np.r_[0, 1, 364, 365, 366, 730, np.flatnonzero(TIMES.year == 1996)[::29]]
+    windows = _own_windows(rows, 20)
+    columns = np.maximum(windows, 0)
+    years, days = TIMES.year.to_numpy(), day_numbers(TIMES)
+    for exclude in (None, 0, 10, 40):
+        got = held_out_days(years.astype(np.int32)[columns], days.astype(np.int32)[columns],
+                            years[rows], days[rows], exclude)
+        np.testing.assert_array_equal(got, held_out_mask(TIMES, rows, exclude, columns=columns))
+        for position, row in enumerate(rows):
+            looked_at = TIMES[columns[position]]
+            expected = looked_at.year != TIMES[row].year
+            if exclude is not None:
+                expected &= np.abs((looked_at - TIMES[row]).days) > exclude
+            np.testing.assert_array_equal(got[position], expected)
+
+
+def test_event_fractions_are_the_mean_of_each_list():
+    """_event_fractions (one cumulative count per batch) equals numpy's mean of each
+    list's events to the last bit, empty lists NaN (the fraction of analogs with the
+    event: the forecast of equal weights)."""
+    rng = np.random.default_rng(4)
+    observed = rng.random(500) < 0.3
+    picked = [rng.choice(500, size=size, replace=False) for size in
+              rng.integers(0, 60, size=300)] + [np.zeros(0, dtype=np.int64)]
+    sizes = np.array([rows.size for rows in picked])
+    got = hindcast_stage._event_fractions(observed, picked, sizes)
+    for rows, value in zip(picked, got):
+        if rows.size:
+            assert value == observed[rows].mean()
+        else:
+            assert np.isnan(value)
+    assert hindcast_stage._event_fractions(observed, [], np.zeros(0, dtype=np.int64)).size == 0

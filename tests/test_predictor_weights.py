@@ -16,7 +16,7 @@ from analogs.api import AnalogStore
 from analogs.cli import main
 from analogs.stages.hindcast import leave_one_year_out
 from analogs.stages.predictor_weights import (SCORE_WEIGHT, fit_predictor_weights,
-                                              pc_weights)
+                                              one_blas_thread, pc_weights)
 from analogs.workflows import store as store_io
 from analogs.workflows.find import event_weighted_transform
 
@@ -55,6 +55,29 @@ def test_fitted_weights_recover_the_informative_pcs():
     score = transform[:, -1] * pcs.std(axis=0) / np.sqrt(SCORE_WEIGHT)
     assert np.sign(score[[1, 4]]).tolist() == [1.0, -1.0]
     np.testing.assert_allclose(np.abs(score), per_standard_pc, rtol=1e-12)
+
+
+def test_one_blas_thread_limits_and_restores_as_threadpoolctl():
+    """one_blas_thread (a threadpoolctl controller made once) holds every BLAS library
+    on one thread inside and restores the counts after, as threadpoolctl's
+    threadpool_limits(1, user_api="blas") does (threadpoolctl's own report as the
+    reference), and the fit inside it gives the same coefficients as inside that."""
+    from threadpoolctl import threadpool_info, threadpool_limits
+
+    def blas_threads():
+        return [(info["filepath"], info["num_threads"]) for info in threadpool_info()
+                if info["user_api"] == "blas"]
+
+    pcs, times, observed, _ = _synthetic(n_years=4)
+    before = blas_threads()
+    with one_blas_thread():
+        inside = blas_threads()
+        transform = fit_predictor_weights(pcs, times, observed)
+    assert inside and all(n == 1 for _, n in inside)
+    assert blas_threads() == before
+    with threadpool_limits(1, user_api="blas"):
+        assert blas_threads() == inside
+        np.testing.assert_array_equal(transform, fit_predictor_weights(pcs, times, observed))
 
 
 def test_no_event_gives_the_plain_distance():

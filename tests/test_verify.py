@@ -10,6 +10,7 @@ from analogs.stages.scores import (
     bootstrap_interval,
     brier_score,
     brier_skill_score,
+    brier_skill_score_interval,
     contingency_scores,
     contingency_table,
     murphy_decomposition,
@@ -133,7 +134,12 @@ def test_reliability_table_omits_empty_bins():
 @pytest.mark.parametrize(
     ("p", "o", "match"),
     [([0.2, 1.2], [0, 1], r"The 'p' parameter of brier_score must hold probabilities"),
+     ([0.2, float("nan")], [0, 1], r"must hold probabilities in \[0, 1\]. Got [^ ]*nan[^ ]* instead"),
+     ([-np.inf, 0.2], [0, 1], r"must hold probabilities in \[0, 1\]. Got [^ ]*-inf[^ ]* instead"),
+     ([0.2, np.inf], [0, 1], r"must hold probabilities in \[0, 1\]. Got [^ ]*\(inf[^ ]* instead"),
+     ([-0.1, 0.2], [0, 1], r"must hold probabilities in \[0, 1\]. Got [^ ]*-0.1[^ ]* instead"),
      ([0.2, 0.3], [0, 2], r"The 'o' parameter of brier_score must hold outcomes 0 or 1"),
+     ([0.2, 0.3], [0.5, 1.0], r"must hold outcomes 0 or 1. Got [^ ]*0.5[^ ]* instead"),
      ([0.2], [0, 1], r"non-empty 1-D arrays of equal length")])
 def test_bad_forecasts(p, o, match):
     with pytest.raises(AnalogsInputError, match=match):
@@ -166,6 +172,26 @@ def test_block_bootstrap_widens_for_correlated_blocks():
     blocked = bootstrap_interval(np.mean, x, n_resamples=500, seed=1, block=years)
     assert (blocked[1] - blocked[0]) > 3 * (row[1] - row[0])
     assert bootstrap_interval(np.mean, x, n_resamples=500, seed=1, block=years) == blocked
+
+
+def test_brier_skill_interval_is_the_bootstrap_of_the_skill_score(forecasts):
+    """brier_skill_score_interval (squared errors computed once, resampled) equals
+    bootstrap_interval over brier_skill_score itself to the last bit, rows or year blocks
+    resampled, with an array or a scalar reference; and the skill score is scikit-learn's
+    1 - brier_score_loss / brier_score_loss of the reference (Brier 1950)."""
+    p, o = forecasts
+    rng = np.random.default_rng(5)
+    reference = np.round(rng.uniform(0.1, 0.4, p.size), 3)
+    years = np.repeat(np.arange(40), 50)
+    for ref, resampled in ((reference, reference), (0.2, np.full(p.size, 0.2))):
+        for block in (None, years):
+            settings = dict(n_resamples=200, seed=3, block=block)
+            assert (brier_skill_score_interval(p, o, ref, **settings)
+                    == bootstrap_interval(brier_skill_score, p, o, resampled, **settings))
+    expected = 1 - brier_score_loss(o, p) / brier_score_loss(o, reference)
+    assert brier_skill_score(p, o, reference) == pytest.approx(expected, rel=1e-12)
+    with pytest.raises(AnalogsInputError, match="'p' parameter of brier_skill_score_interval"):
+        brier_skill_score_interval(np.r_[p[:-1], np.nan], o, reference)
 
 
 def test_bootstrap_skips_undefined_resamples():

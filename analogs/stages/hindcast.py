@@ -25,12 +25,13 @@ from analogs.errors import AnalogsInputError
 from analogs.parameters import P
 from analogs.stages.index import AnalogIndex
 from analogs.stages.outcomes import analog_weights
-from analogs.stages.scores import (bootstrap_interval, brier_score, brier_skill_score, roc_auc,
-                                   roc_auc_within, verification_summary)
+from analogs.stages.scores import (bootstrap_interval, brier_score, brier_skill_score,
+                                   brier_skill_score_interval, roc_auc, roc_auc_within,
+                                   verification_summary)
 from analogs.stages.selection import (BATCH_MAX_MASK, DEFAULT_EXCLUDE, DEFAULT_SEPARATION,
                                       DEFAULT_TOP, DEFAULT_WINDOW, candidate_ids,
                                       day_numbers, day_of_year, decluster_many,
-                                      held_out_mask, rank_many, rank_windows)
+                                      held_out_days, held_out_mask, rank_many, rank_windows)
 
 HINDCAST_METHODS = ("analogs", "random")
 #: Annual harmonics beside the PCs in the logistic-regression baseline.
@@ -114,37 +115,52 @@ def leave_one_year_out(pcs, times, observed, *, top=DEFAULT_TOP, window=DEFAULT_
                                 restrict=restrict)
     if restrict is not None:
         restrict = np.asarray(restrict, dtype=bool)
-    for queries, season, other_years, chosen in batches:
+    for queries, columns, held, chosen in batches:
         # Climatology of the days the target may take: their share of event days.
-        in_season = other_years[:, season]
-        n_others = in_season.sum(axis=1)
-        n_events = (in_season & observed[season]).sum(axis=1)
+        n_others = held.sum(axis=1)
+        n_events = (held & observed[columns]).sum(axis=1)
         with np.errstate(invalid="ignore", divide="ignore"):
             climatology[queries] = np.where(n_others > 0, n_events / n_others, np.nan)
-        for position, row in enumerate(queries):
-            if n_others[position] == 0:
-                continue
-            distances = None
-            if method == "random":
-                others = season[in_season[position]]
+        forecast_at = np.flatnonzero(n_others > 0)
+        if method == "random":
+            candidates = np.broadcast_to(columns, held.shape)
+            picked = []
+            for position in forecast_at:
+                others = candidates[position][held[position]]
                 if restrict is not None:
                     others = others[restrict[others]]
-                rows = rng.choice(others, size=min(top, others.size), replace=False)
-            else:
-                rows, distances = chosen[position]
-            if rows.size:
-                # Weights sum to 1 up to round-off: clipped into [0, 1].
-                forecast[row] = (observed[rows].mean() if weights == "equal"
-                                 or distances is None else min(1.0, float(
-                                     analog_weights(distances, scheme=weights)
-                                     @ observed[rows])))
-                n_analogs[row] = rows.size
+                picked.append((rng.choice(others, size=min(top, others.size), replace=False),
+                               None))
+        else:
+            picked = [chosen[position] for position in forecast_at]
+        sizes = np.fromiter((rows.size for rows, _ in picked), dtype=np.int64,
+                            count=len(picked))
+        if weights == "equal" or method == "random":
+            values = _event_fractions(observed, [rows for rows, _ in picked], sizes)
+        else:  # weights sum to 1 up to round-off: clipped into [0, 1]
+            values = np.array([min(1.0, float(analog_weights(distances, scheme=weights)
+                                              @ observed[rows])) if rows.size else np.nan
+                               for rows, distances in picked])
+        answered = queries[forecast_at[sizes > 0]]
+        forecast[answered] = values[sizes > 0]
+        n_analogs[answered] = sizes[sizes > 0]
     done = np.isfinite(forecast) & np.isfinite(climatology)
     return pd.DataFrame({
         "time": times[done], "year": years[done], "forecast": forecast[done],
         "observed": observed[done].astype(int), "climatology": climatology[done],
         "n_analogs": n_analogs[done],
     })
+
+
+def _event_fractions(observed, picked, sizes) -> np.ndarray:
+    """The fraction of event days among each list of rows in ``picked`` (``sizes``
+    rows each): ``observed[rows].mean()`` of each, from one cumulative count (the same
+    integer sums divided by the same counts); NaN for an empty list."""
+    ends = np.cumsum(sizes)
+    counted = np.concatenate([[0], np.cumsum(observed[np.concatenate(picked)])
+                              if picked else []]).astype(np.int64)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return (counted[ends] - counted[ends - sizes]) / sizes
 
 
 def held_out_analogs(pcs, times, *, rows=None, top=DEFAULT_TOP, window=DEFAULT_WINDOW,
@@ -212,35 +228,39 @@ def _checked(pcs, times, top, window, separation, n_modes, owner, exclude=None):
 def _calendar_day_batches(times, targets, window, exclude=DEFAULT_EXCLUDE, *, progress=False):
     """The target days grouped by calendar day, with what their analogs may be.
 
-    Yields ``(queries, season, other_years, None)``: the rows of the targets of one
-    calendar day; the season-window candidates they share (computed once, by the live
-    query's :func:`~analogs.stages.selection.candidate_ids` for the first of them, with no
+    Yields ``(queries, season, held, None)``: the rows of the targets of one calendar
+    day; the season-window candidates they share (computed once, by the live query's
+    :func:`~analogs.stages.selection.candidate_ids` for the first of them, with no
     exclusion window: it differs between the years of one calendar day); and a boolean
-    array (len(queries), n_days), the leave-one-year-out restriction of each target
-    (:func:`~analogs.stages.selection.held_out_mask`: other years, outside its own
-    episode).
+    array (len(queries), len(season)), the leave-one-year-out restriction of each target
+    over those candidates (:func:`~analogs.stages.selection.held_out_mask`: other years,
+    outside its own episode).
     """
     calendar_day = day_of_year(times)
     days = np.unique(calendar_day[targets])
     for day in tqdm(days, desc="hindcast", unit="calendar day", disable=not progress):
         queries = np.flatnonzero(targets & (calendar_day == day))
         season = candidate_ids(times, times[queries[0]], window=window, exclude=None)
-        other_years = held_out_mask(times, queries, exclude)
-        yield queries, season, other_years, None
+        held = held_out_mask(times, queries, exclude,
+                             columns=np.broadcast_to(season, (queries.size, season.size)))
+        yield queries, season, held, None
 
 
 def _with_analogs(batches, pcs, times, *, top, separation, restrict=None):
-    """``batches`` with each target's analogs, ``(rows, distances)`` from
-    :func:`~analogs.stages.selection.rank_many` over an exact (flat) index of ``pcs``.
+    """``batches`` of :func:`_calendar_day_batches` with each target's analogs, ``(rows,
+    distances)`` from :func:`~analogs.stages.selection.rank_many` over an exact (flat)
+    index of ``pcs``, each target's held-out restriction its per-target ``restrict``.
     ``restrict`` (bool per day) narrows the candidates as the live query's does
     (:func:`~analogs.stages.selection.candidate_ids`)."""
     index = AnalogIndex(kind="flat").fit(pcs)
     if restrict is not None:
         restrict = np.asarray(restrict, dtype=bool)
-    for queries, season, other_years, _ in batches:
+    for queries, season, held, _ in batches:
+        other_years = np.zeros((queries.size, len(times)), dtype=bool)
+        other_years[:, season] = held
         chosen = rank_many(index, times, pcs[queries], _restricted(season, restrict), top=top,
                            separation=separation, restrict=other_years)
-        yield queries, season, other_years, chosen
+        yield queries, season, held, chosen
 
 
 def _restricted(season, restrict):
@@ -259,55 +279,57 @@ def _weighted_fold_batches(pcs, times, observed, targets, window, exclude, *, to
     applied to every block. The year's targets are ranked at once, each among its own
     season window's allowed days (:func:`~analogs.stages.selection.rank_windows`); the
     batch's ``season`` is the union of their windows."""
-    from threadpoolctl import threadpool_limits
-
-    from analogs.stages.predictor_weights import block_transform, fit_predictor_weights
+    from analogs.stages.predictor_weights import (block_transform, fit_predictor_weights,
+                                                  one_blas_thread)
     years = times.year.to_numpy()
     n_blocks = 1 + int(sequence)
     n_modes = pcs.shape[1] // n_blocks
     calendar_day = day_of_year(times)
-    seasons = {}  # the season window of a calendar day, the same in every fold
+    # The season window of each target's calendar day, the same in every fold: found
+    # once (candidate_ids), rows ascending, padded with -1.
+    target_rows = np.flatnonzero(targets)
+    _, first, slot = np.unique(calendar_day[target_rows], return_index=True,
+                               return_inverse=True)
+    seasons = [candidate_ids(times, times[row], window=window, exclude=None)
+               for row in target_rows[first]]
+    windows_by_day = np.full((len(seasons), max(map(len, seasons))), -1, dtype=np.int64)
+    for position, season in enumerate(seasons):
+        windows_by_day[position, :season.size] = season
+    window_of = np.zeros(len(times), dtype=np.int64)
+    window_of[target_rows] = slot
+    in_window = windows_by_day >= 0
+    columns_by_day = np.maximum(windows_by_day, 0)
+    # The calendar years and day numbers of those days (held_out_days' inputs), gathered
+    # once, in 32 bits: half the bytes to copy per target.
+    days = day_numbers(times)
+    window_years = years.astype(np.int32)[columns_by_day]
+    window_days = days.astype(np.int32)[columns_by_day]
     # Targets ranked at once: their masks over every day stay within the batch budget.
     per_batch = max(1, BATCH_MAX_MASK // len(times))
-
-    def windows_of(rows):
-        # Each target's season window (candidate_ids), ascending, padded with -1.
-        for row in rows:
-            if calendar_day[row] not in seasons:
-                seasons[calendar_day[row]] = candidate_ids(times, times[row], window=window,
-                                                           exclude=None)
-        own = [seasons[day] for day in calendar_day[rows]]
-        windows = np.full((len(own), max(map(len, own))), -1, dtype=np.int64)
-        for position, season in enumerate(own):
-            windows[position, :season.size] = season
-        return windows
-
     if restrict is not None:
         restrict = np.asarray(restrict, dtype=bool)
     for year in tqdm(np.unique(years[targets]), desc="hindcast", unit="year",
                      disable=not progress):
         train = years != year
-        transform = fit_predictor_weights(pcs[train, :n_modes], times[train],
-                                          observed[train])
         # A (days x ~21) product: on one BLAS thread, as the fit (predictor_weights), the
         # same values without a second thread spinning beside the tagging's.
-        with threadpool_limits(1, user_api="blas"):
+        with one_blas_thread():
+            transform = fit_predictor_weights(pcs[train, :n_modes], times[train],
+                                              observed[train])
             mapped = pcs @ block_transform(transform, n_blocks)
         rows = np.flatnonzero(targets & ~train)
         for start in range(0, rows.size, per_batch):
             queries = rows[start:start + per_batch]
-            windows = windows_of(queries)
-            columns = np.maximum(windows, 0)
-            # Each target's own season days of the other years, outside its own episode.
-            held = held_out_mask(times, queries, exclude, columns=columns) & (windows >= 0)
-            other_years = np.zeros((queries.size, len(times)), dtype=bool)
-            other_years[np.nonzero(held)[0], windows[held]] = True
+            own = window_of[queries]
+            windows, columns = windows_by_day[own], columns_by_day[own]
+            # Each target's own season days of the other years, outside its own episode
+            # (held_out_mask's rule).
+            held = held_out_days(window_years[own], window_days[own], years[queries],
+                                 days[queries], exclude) & in_window[own]
             allowed = held if restrict is None else held & restrict[columns]
             chosen = rank_windows(mapped, times, queries, windows, allowed, top=top,
                                   separation=separation)
-            in_a_window = np.zeros(len(times), dtype=bool)
-            in_a_window[windows[windows >= 0]] = True
-            yield queries, np.flatnonzero(in_a_window), other_years, chosen
+            yield queries, columns, held, chosen
 
 
 class HeldOutNeighbours:
@@ -369,9 +391,8 @@ class HeldOutNeighbours:
         position[self.targets] = np.arange(n_targets)
         batches = _calendar_day_batches(times, targets, window, exclude, progress=progress)
         top_modes = self.modes[-1]
-        for queries, season, other_years, _ in batches:
+        for queries, season, allowed, _ in batches:
             at = position[queries]
-            allowed = other_years[:, season]
             one_hot = np.eye(self.year_values.size)[year_column[season]]
             self.n_allowed[at] = allowed @ one_hot
             self.n_events[at] = (allowed & self.observed[season]) @ one_hot
@@ -508,8 +529,8 @@ def score_hindcast(hindcast: pd.DataFrame, *, threshold=P.threshold.default, n_b
     reference = hindcast["climatology"].to_numpy()
     summary = verification_summary(p, o, reference, threshold=threshold, n_bins=n_bins)
     blocks = hindcast["year"].to_numpy()
-    summary["brier_skill_score_ci"] = list(bootstrap_interval(
-        brier_skill_score, p, o, reference, n_resamples=n_resamples, confidence=confidence,
+    summary["brier_skill_score_ci"] = list(brier_skill_score_interval(
+        p, o, reference, n_resamples=n_resamples, confidence=confidence,
         seed=seed, block=blocks))
     if 0 < o.sum() < o.size:
         summary["roc_auc_ci"] = list(bootstrap_interval(
@@ -622,9 +643,9 @@ def nested_tune(pcs, times, observed, *, tops=P.tops.default, modes=P.scan_modes
 
     def scored(hindcast):
         p, o, r = (hindcast[c].to_numpy() for c in ("forecast", "observed", "climatology"))
-        interval = bootstrap_interval(brier_skill_score, p, o, r, n_resamples=n_resamples,
-                                      confidence=confidence, seed=seed,
-                                      block=hindcast["year"].to_numpy())
+        interval = brier_skill_score_interval(p, o, r, n_resamples=n_resamples,
+                                              confidence=confidence, seed=seed,
+                                              block=hindcast["year"].to_numpy())
         return {"brier_skill_score": skill(hindcast), "brier_skill_score_ci": list(interval)}
 
     best = table.iloc[0]

@@ -26,6 +26,9 @@ benchmark's output and DEVELOPERS.md.
 
 from __future__ import annotations
 
+import contextlib
+import functools
+
 import numpy as np
 import pandas as pd
 
@@ -56,7 +59,6 @@ def fit_predictor_weights(pcs, times, observed, *, score_weight=SCORE_WEIGHT,
     to fit), the identity with a zero last column: the plain distance.
     """
     from sklearn.linear_model import LogisticRegression
-    from threadpoolctl import threadpool_limits
 
     from analogs.stages.hindcast import seasonal_harmonics
     pcs = np.asarray(pcs, dtype=float)
@@ -73,12 +75,32 @@ def fit_predictor_weights(pcs, times, observed, *, score_weight=SCORE_WEIGHT,
     # work to a second thread costs more than it saves (measured, the 41 fits of a
     # 40-year build: 6.8 s wall, 4.6 s CPU on two threads, 1.9 s and 1.9 s on one, load
     # 3.8; the coefficients identical to the last bit).
-    with threadpool_limits(1, user_api="blas"):
+    with one_blas_thread():
         model = LogisticRegression(C=C, max_iter=2000).fit(inputs, observed)
     beta = model.coef_[0, :n_modes]
     transform[:, :n_modes] = np.diag(np.abs(beta) / sd)
     transform[:, n_modes] = np.sqrt(score_weight) * beta / sd
     return transform
+
+
+@functools.cache
+def _blas_controller():
+    """threadpoolctl's view of the loaded BLAS libraries, made once: building it
+    inspects every loaded library (about 15 ms, a quarter of a fold's fit in a 40-year
+    hindcast). Made after scikit-learn's regression is imported, so it holds the BLAS of
+    numpy and scipy that the fit uses."""
+    import sklearn.linear_model  # noqa: F401 (loads the libraries the limit must hold)
+    from threadpoolctl import ThreadpoolController
+    return ThreadpoolController()
+
+
+@contextlib.contextmanager
+def one_blas_thread():
+    """Run the enclosed block with every BLAS library on one thread (threadpoolctl's
+    ``threadpool_limits(1, user_api="blas")`` from a controller made once), then
+    restore the previous counts."""
+    with _blas_controller().limit(limits=1, user_api="blas"):
+        yield
 
 
 def pc_weights(transform) -> np.ndarray:

@@ -123,16 +123,28 @@ def held_out_mask(times, target_rows, exclude_days=DEFAULT_EXCLUDE, *, columns=N
     times = _as_index(times)
     looked_at = slice(None) if columns is None else np.asarray(columns, dtype=np.int64)
     own_columns = columns is not None and looked_at.ndim == 2
-    years = _calendar(times)[2]  # cached per index: the hindcast asks once per batch
-    allowed = years[looked_at] != years[target_rows][:, None]
-    if exclude_days is not None:
-        days = day_numbers(times)
-        allowed &= np.abs(days[looked_at] - days[target_rows][:, None]) > exclude_days
+    _, days, years = _calendar(times)  # cached per index: the hindcast asks once per batch
+    allowed = held_out_days(years[looked_at], days[looked_at], years[target_rows],
+                            days[target_rows], exclude_days)
     if columns is None or own_columns:
         return allowed
     whole = np.zeros((target_rows.size, len(times)), dtype=bool)
     whole[:, looked_at] = allowed
     return whole
+
+
+def held_out_days(years, days, target_years, target_days, exclude_days=DEFAULT_EXCLUDE):
+    """The rule of :func:`held_out_mask` on calendar years and day numbers
+    (:func:`day_numbers`): ``years`` and ``days`` of the days looked at, (n,) or (m, n),
+    those of the m targets (m,); (m, n) booleans, true where the day is of another
+    year than the target's and more than ``exclude_days`` days from it. The
+    event-weighted hindcast gives the years and days of each calendar day's season
+    window, gathered once."""
+    allowed = years != np.asarray(target_years)[:, None]
+    if exclude_days is not None:
+        gap = days - np.asarray(target_days, dtype=days.dtype)[:, None]
+        allowed &= np.abs(gap, out=gap) > exclude_days
+    return allowed
 
 
 def decluster(times, separation_days, limit=None):
@@ -407,23 +419,27 @@ def rank_windows(vectors, times, targets, windows, allowed, *, top, separation):
     squared = window_distances(vectors, np.asarray(vectors)[targets], windows)
     # One integer key per candidate, ordered as (distance, row): the float32 bits of a
     # non-negative distance order as the distances do, and a window's positions as its
-    # rows (ascending). Unique keys: a partial sort picks exactly the first ``depth``.
+    # rows (ascending). Unique keys: a partial sort picks exactly the first ``depth``,
+    # and each names its own position, so the keys themselves are partitioned (no index
+    # array to gather by).
     last = np.iinfo(np.int64).max
-    keys = (squared.view(np.int32).astype(np.int64) << 32) | np.arange(width, dtype=np.int64)
-    keys[~allowed] = last
+    keys = squared.view(np.int32).astype(np.int64)
+    keys <<= 32
+    keys |= np.arange(width, dtype=np.int64)
+    np.copyto(keys, last, where=~allowed)
     if depth < width:
-        keys = np.take_along_axis(keys, np.argpartition(keys, depth - 1, axis=1)[:, :depth],
-                                  axis=1)
+        keys = np.partition(keys, depth - 1, axis=1)[:, :depth]
     keys.sort(axis=1)
     found = keys != last
     rows = np.take_along_axis(windows, np.where(found, keys & 0xFFFFFFFF, 0), axis=1)
     kept = decluster_many(day_numbers(times)[rows], found, separation, top)
     distances = np.sqrt((keys >> 32).astype(np.int32).view(np.float32).astype(np.float64))
-    ranked = []
-    for j in range(n_targets):
-        keep = kept[j][kept[j] >= 0]
-        ranked.append((rows[j][keep], distances[j][keep]))
-    return ranked
+    # The kept positions fill each row's first slots: one gather, then a slice per target.
+    safe = np.maximum(kept, 0)
+    kept_rows = np.take_along_axis(rows, safe, axis=1)
+    kept_distances = np.take_along_axis(distances, safe, axis=1)
+    return [(kept_rows[j, :n], kept_distances[j, :n])
+            for j, n in enumerate(np.count_nonzero(kept >= 0, axis=1).tolist())]
 
 
 def _nearest_allowed(index, times, target_vectors, allowed, *, top, separation,

@@ -278,7 +278,7 @@ def skill_by_month(pcs, times, observed, *, region, top=P.top.default,
     ``exclude`` are the query's.
     """
     from analogs.stages.hindcast import leave_one_year_out, score_hindcast
-    from analogs.stages.scores import bootstrap_interval, brier_score, brier_skill_score
+    from analogs.stages.scores import brier_score, brier_skill_score, brier_skill_score_interval
     hindcast = leave_one_year_out(pcs, times, observed, top=top, window=window,
                                   separation=separation, restrict=restrict,
                                   targets=restrict, weights=weights, exclude=exclude,
@@ -292,8 +292,8 @@ def skill_by_month(pcs, times, observed, *, region, top=P.top.default,
         p, o, reference = (part[c].to_numpy() for c in ("forecast", "observed", "climatology"))
         skill = brier_skill_score(p, o, reference)
         try:  # none when too few resampled years have a defined score (no event)
-            interval = bootstrap_interval(brier_skill_score, p, o, reference,
-                                          n_resamples=200, block=part["year"].to_numpy())
+            interval = brier_skill_score_interval(p, o, reference, n_resamples=200,
+                                                  block=part["year"].to_numpy())
         except AnalogsInputError:
             interval = (np.nan, np.nan)
         by_month[str(month)] = {
