@@ -1897,14 +1897,14 @@ def _missing_stats(ds):
 
 def _missing_stats_in_memory(values):
     """:func:`_missing_stats` of one field held in memory, ``(time, lat, lon)``, with
-    numpy: without a missing value (the usual archive) one finiteness test and plain
-    daily extremes, no masked copy."""
-    missing = ~np.isfinite(values)
-    if not missing.any():
+    numpy: without a missing value (the usual archive) the plain daily extremes alone
+    (a NaN or an infinite value would be one of them), no masked copy."""
+    low, high = values.min(axis=(1, 2)), values.max(axis=(1, 2))
+    if np.isfinite(low).all() and np.isfinite(high).all():
         n_days, n_lat, n_lon = values.shape
         return {"day": np.zeros(n_days, dtype=int), "point": np.zeros((n_lat, n_lon), dtype=int),
-                "inf": np.zeros(n_days, dtype=int),
-                "min": values.min(axis=(1, 2)), "max": values.max(axis=(1, 2))}
+                "inf": np.zeros(n_days, dtype=int), "min": low, "max": high}
+    missing = ~np.isfinite(values)
     finite_only = np.where(missing, np.nan, values).astype(values.dtype, copy=False)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN days: NaN extremes
