@@ -1069,7 +1069,11 @@ def _laid_out_piece(candidate, chunks):
         coords={"time": xr.Variable("time", laid_out.times, dict(_TIME_ATTRS)),
                 "lat": layout.lat, "lon": layout.lon},
         name=candidate.field, attrs=dict(layout.attrs))
-    return piece.chunk({"time": laid_out.time_chunk}) if chunks else piece
+    if not chunks:
+        return piece
+    # Named by the file as it is now (not by pickling the reader, dask's fallback).
+    return piece.chunk({"time": laid_out.time_chunk}, token="-".join(map(str, (
+        candidate.path, _signature(candidate.path), layout.name, laid_out.time_chunk))))
 
 
 def _read_laid_out(path, layout, key):
@@ -1115,10 +1119,6 @@ class _LaidOutArray(BackendArray):
         self.path, self.layout = path, layout
         self.shape = (n_times, layout.lat.size, layout.lon.size)
         self.dtype = layout.dtype
-
-    def __dask_tokenize__(self):
-        return ("analogs-laid-out", self.path, _signature(self.path), self.layout.name,
-                self.shape)
 
     def __getitem__(self, key):
         return indexing.explicit_indexing_adapter(
