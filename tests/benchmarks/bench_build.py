@@ -217,11 +217,8 @@ def main(argv=None):
     parser.add_argument("--chunk-days", type=int, default=CHUNK_DAYS)
     parser.add_argument("--memory-only", action="store_true",
                         help="skip the out-of-core builds (half the run time)")
-    parser.add_argument("--child", choices=sorted(CHILD_TASKS), help=argparse.SUPPRESS)
-    parser.add_argument("--spec", help=argparse.SUPPRESS)
-    args = parser.parse_args(argv)
-    if args.child:
-        print(json.dumps(CHILD_TASKS[args.child](json.loads(args.spec))))
+    args = scale.parsed_or_child(parser, CHILD_TASKS, argv)
+    if args is None:
         return None
     args.out.mkdir(parents=True, exist_ok=True)
     cases = ["large"] if args.large else ([] if args.only_quarter else ["y40_g1"]) + (

@@ -89,6 +89,18 @@ def run_child(task: str, spec: dict, script=__file__) -> dict:
     return json.loads(done.stdout.strip().splitlines()[-1])
 
 
+def parsed_or_child(parser, tasks: dict, argv=None):
+    """The options parsed, or None once the ``--child`` task asked for (a fresh
+    interpreter started by :func:`run_child`) has run and printed its JSON."""
+    parser.add_argument("--child", choices=sorted(tasks), help=argparse.SUPPRESS)
+    parser.add_argument("--spec", help=argparse.SUPPRESS)
+    args = parser.parse_args(argv)
+    if args.child:
+        print(json.dumps(tasks[args.child](json.loads(args.spec))))
+        return None
+    return args
+
+
 def archive_files(size_dir: Path, years=None) -> list[str]:
     files = sorted((size_dir / "archive").glob("*.nc"))
     if years is not None:
@@ -422,11 +434,8 @@ def main(argv=None):
     parser.add_argument("--cli-runs", type=int, default=5)
     parser.add_argument("--build-runs", type=int, default=3,
                         help="builds per path and size, median reported (large: always 1)")
-    parser.add_argument("--child", choices=sorted(CHILD_TASKS), help=argparse.SUPPRESS)
-    parser.add_argument("--spec", help=argparse.SUPPRESS)
-    args = parser.parse_args(argv)
-    if args.child:
-        print(json.dumps(CHILD_TASKS[args.child](json.loads(args.spec))))
+    args = parsed_or_child(parser, CHILD_TASKS, argv)
+    if args is None:
         return None
     sizes = [s.strip() for s in args.sizes.split(",") if s.strip()]
     unknown = sorted(set(sizes) - set(SIZES))

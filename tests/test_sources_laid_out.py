@@ -1,0 +1,283 @@
+"""Files laid out as an earlier one (analogs.stages.sources: the first file of each layout
+opened by xarray, the others looked at by their netCDF4 header and read directly) give
+the archive the full reading gives, bit for bit, in memory, lazily and through the
+out-of-core scratch copy; anything else about a file sends it the full way.
+
+External references: netCDF4's own decoding of each file (``set_auto_maskandscale``:
+scale_factor / add_offset, _FillValue / missing_value masked), placed on the canonical
+grid by hand, and xarray's full reading (the path every file took before)."""
+
+from __future__ import annotations
+
+import shutil
+import warnings
+from pathlib import Path
+
+import netCDF4
+import numpy as np
+import pandas as pd
+import pytest
+import xarray as xr
+
+from _sources_helpers import LAT, LON, daily_times, smooth_height, smooth_humidity, to_360
+from analogs.constants import G0
+from analogs.errors import AnalogsInputError
+from analogs.stages import sources
+from analogs.stages.sources import open_archive
+
+YEARS = (2001, 2002, 2003)
+
+
+def _times(year):
+    return pd.DatetimeIndex(daily_times(f"{year}-03-01", periods=8))
+
+
+def _write(folder, name, variables, coords, encoding, year):
+    path = folder / f"{name}_{year}.nc"
+    xr.Dataset(variables, coords=coords).to_netcdf(path, encoding=encoding)
+    return str(path)
+
+
+def _packed_360(folder):
+    """z500 packed in int16 (scale_factor, add_offset, _FillValue; masked points in the
+    later files), latitude descending, longitudes 0-360; q850 float32 with a
+    missing_value (NaN written as it, and the value itself), chunked in time."""
+    lon360, order = to_360(LON)
+    paths = []
+    for k, year in enumerate(YEARS):
+        times = _times(year)
+        z = smooth_height(times)[:, ::-1][:, :, order]
+        q = smooth_humidity(times)[:, ::-1][:, :, order].astype(np.float32)
+        if k:
+            z[k, 3, 5] = np.nan  # written as _FillValue
+            q[k + 1, 7, 9] = np.nan
+            q[k + 2, 8, 8] = -999.0  # the missing_value
+        coords = {"time": times, "lat": ("lat", LAT[::-1], {"units": "degrees_north"}),
+                  "lon": ("lon", lon360, {"units": "degrees_east"})}
+        paths.append(_write(folder, "zg", {"zg": (("time", "lat", "lon"), z, {
+            "standard_name": "geopotential_height", "units": "m"})},
+            {**coords, "plev": ((), 50000.0, {"units": "Pa"})},
+            {"zg": {"dtype": "int16", "scale_factor": 0.25, "add_offset": 5500.0,
+                    "_FillValue": np.int16(-32767)}}, year))
+        paths.append(_write(folder, "hus", {"hus": (("time", "lat", "lon"), q, {
+            "standard_name": "specific_humidity", "units": "kg kg-1"})},
+            {**coords, "plev": ((), 85000.0, {"units": "Pa"})},
+            {"hus": {"_FillValue": None, "missing_value": np.float32(-999.0),
+                     "chunksizes": (3, 37, 72)}}, year))
+    return paths
+
+
+def _geopotential_levels(folder):
+    """Geopotential in m2 s-2 on three pressure levels (time, level, lon, lat: the
+    level chosen and the dims put in order), longitudes rolled to start at 100 E;
+    dewpoint-free q850 on (time, lat, lon) with an extra dim of length one."""
+    roll = np.r_[56:72, 0:56]
+    paths = []
+    for year in YEARS:
+        times = _times(year)
+        z = smooth_height(times)[:, :, roll] * G0
+        levels = np.stack([z * 0.3, z, z * 1.4], axis=1).transpose(0, 1, 3, 2)
+        q = smooth_humidity(times)[:, None, :, roll]
+        coords = {"time": times, "lat": ("lat", LAT, {"units": "degrees_north"}),
+                  "lon": ("lon", LON[roll], {"units": "degrees_east"})}
+        paths.append(_write(folder, "z", {"z": (("time", "level", "lon", "lat"), levels, {
+            "standard_name": "geopotential", "units": "m2 s-2"})},
+            {**coords, "level": ("level", [850.0, 500.0, 300.0], {"units": "hPa"})},
+            {}, year))
+        paths.append(_write(folder, "q", {"q": (("time", "member", "lat", "lon"), q, {
+            "units": "kg/kg"})}, {**coords, "level": ((), 850.0, {"units": "hPa"})}, {},
+            year))
+    return paths
+
+
+def _unsigned(folder):
+    """z500 as unsigned bytes (_Unsigned, scale_factor, add_offset) with a scalar level
+    named by its ``coordinates`` attribute, NETCDF3 files."""
+    paths = []
+    for year in YEARS:
+        times = _times(year)
+        z = np.round((smooth_height(times) - 5000.0) / 4.0)
+        path = folder / f"hgt_{year}.nc"
+        with netCDF4.Dataset(path, "w", format="NETCDF3_CLASSIC") as out:
+            for name, size in (("time", len(times)), ("lat", LAT.size), ("lon", LON.size)):
+                out.createDimension(name, size)
+            time = out.createVariable("time", "f8", ("time",))
+            time.units, time.calendar = "days since 1990-01-01", "standard"
+            time[:] = (times - pd.Timestamp("1990-01-01")) / pd.Timedelta(days=1)
+            for name, values, units in (("lat", LAT, "degrees_north"),
+                                        ("lon", LON, "degrees_east")):
+                out.createVariable(name, "f4", (name,)).units = units
+                out[name][:] = values
+            out.createVariable("level", "f4", ()).units = "hPa"
+            out["level"].assignValue(500.0)
+            hgt = out.createVariable("hgt", "i1", ("time", "lat", "lon"))
+            hgt.set_auto_maskandscale(False)
+            hgt.setncatts({"units": "gpm", "_Unsigned": "true", "scale_factor": 4.0,
+                           "add_offset": 5000.0, "coordinates": "level"})
+            hgt[:] = z.astype(np.uint8).view(np.int8)
+        paths.append(str(path))
+    return paths
+
+
+def _both_ways(monkeypatch, paths, **options):
+    """(archive read with the layouts, archive read the full way, files xarray opened
+    in the first reading)."""
+    opened = []
+    open_file = sources._open_file
+
+    def counting(path, chunks):
+        opened.append(path)
+        return open_file(path, chunks)
+
+    with monkeypatch.context() as patch:
+        patch.setattr(sources, "_open_file", counting)
+        with warnings.catch_warnings(record=True) as said_fast:
+            warnings.simplefilter("always")
+            fast = open_archive(paths, **options)
+    with monkeypatch.context() as patch:
+        patch.setattr(sources, "_laid_out_candidates", lambda *args: None)
+        with warnings.catch_warnings(record=True) as said_full:
+            warnings.simplefilter("always")
+            full = open_archive(paths, **options)
+    assert [str(w.message) for w in said_fast] == [str(w.message) for w in said_full]
+    return fast, full, opened
+
+
+def _assert_identical(fast, full):
+    assert list(fast.data_vars) == list(full.data_vars)
+    for name in full.data_vars:
+        assert fast[name].dtype == full[name].dtype
+        a, b = fast[name].values, full[name].values
+        assert np.array_equal(a.view(f"u{a.itemsize}"), b.view(f"u{b.itemsize}"))  # bits
+    assert fast.identical(full)
+    assert fast.attrs == full.attrs  # the missing-data report among them
+
+
+def _scratch(shape, dtype):
+    return np.zeros(shape, dtype)
+
+
+@pytest.mark.parametrize("write", [_packed_360, _geopotential_levels, _unsigned])
+def test_laid_out_files_read_as_the_full_reading_in_memory_lazily_and_once(
+        tmp_path, monkeypatch, write):
+    """Packed int16 with a fill value and masked points, float32 with _FillValue and
+    missing_value, latitude descending and 0-360 or rolled longitudes, geopotential on
+    levels with dims out of order, unsigned bytes in NETCDF3 files: read by the first
+    file's layout, every value, time, coordinate and the missing-data report are the
+    full reading's, in memory, lazily and decoded once into scratch; xarray opens only
+    the first file of each layout; the values are netCDF4's own decoding."""
+    paths = write(tmp_path)
+    kinds = len({Path(p).name.split("_")[0] for p in paths})
+    for options in ({}, {"chunks": {"time": 5}},
+                    {"chunks": {"time": 5}, "scratch": _scratch, "region": (-30, 60, 100, -150)}):
+        fast, full, opened = _both_ways(monkeypatch, paths[::-1], **options)
+        assert len(opened) == kinds
+        _assert_identical(fast, full)
+    fast, _, _ = _both_ways(monkeypatch, paths)
+    name = "zg" if write is _packed_360 else "z" if write is _geopotential_levels else "hgt"
+    decoded = []
+    for path in sorted(p for p in paths if Path(p).name.startswith(name + "_")):
+        with netCDF4.Dataset(path) as handle:
+            values = np.ma.filled(handle[name][:].astype(float), np.nan)
+            file_lat, file_lon = handle["lat"][:], handle["lon"][:]
+        if values.ndim == 4:  # (time, level, lon, lat): the 500 hPa level, (lat, lon)
+            values = values[:, 1].transpose(0, 2, 1) / G0
+        decoded.append(values)
+    decoded = np.concatenate(decoded)
+    rows = [int(np.flatnonzero(np.isclose(file_lat, v))[0]) for v in fast["lat"].values]
+    cols = [int(np.flatnonzero(np.isclose(np.mod(file_lon, 360.0), v % 360.0))[0])
+            for v in fast["lon"].values]
+    expected = decoded[:, rows][:, :, cols]
+    read = np.isfinite(expected)  # masked points are filled by the missing-data policy
+    assert (~read).sum() == (2 if write is _packed_360 else 0)
+    np.testing.assert_allclose(fast["z500"].values[read], expected[read], rtol=1e-6)
+
+
+def _layout_breakers(folder):
+    """Yearly z500 files of one layout, and a fourth year that breaks it in one way."""
+    def write(year, *, units="hours since 1900-01-01", calendar="standard", lat=LAT,
+              order=slice(None), extra=None):
+        times = _times(year)[order]
+        path = folder / f"zg_{year}.nc"
+        ds = xr.Dataset({"zg": (("time", "lat", "lon"), smooth_height(times, lat=lat),
+                                {"units": "m", **(extra or {})})},
+                        coords={"time": times, "lat": ("lat", lat), "lon": LON,
+                                "plev": ((), 50000.0, {"units": "Pa"})})
+        ds.to_netcdf(path, encoding={"time": {"units": units, "calendar": calendar}})
+        return str(path)
+    return [write(year) for year in YEARS], write
+
+
+@pytest.mark.parametrize("change, laid_out", [
+    ("time units", True), ("calendar", False), ("attribute", False), ("reversed times", False)])
+def test_a_file_laid_out_otherwise_is_read_the_full_way(tmp_path, monkeypatch, change,
+                                                         laid_out):
+    """A later file with its own time units is read by the layout (its times decoded
+    with its own units); one whose times decode to cftime objects (a noleap calendar),
+    with another attribute, or with its times in reverse order (sorted with the full
+    reading's warning naming it) is opened by xarray; every one is read as the full
+    reading reads it."""
+    paths, write = _layout_breakers(tmp_path)
+    odd = {"time units": lambda: write(2004, units="hours since 2000-01-01"),
+           "calendar": lambda: write(2004, calendar="noleap"),
+           "attribute": lambda: write(2004, extra={"comment": "reprocessed"}),
+           "reversed times": lambda: write(2004, order=slice(None, None, -1))}[change]()
+    fast, full, opened = _both_ways(monkeypatch, paths + [odd])
+    assert opened == ([paths[0]] if laid_out else [paths[0], odd])
+    _assert_identical(fast, full)
+
+
+def test_a_file_on_another_grid_gives_the_same_error(tmp_path, monkeypatch):
+    """A later file on a shifted grid is opened by xarray, and refused with the message
+    the full reading gives."""
+    paths, write = _layout_breakers(tmp_path)
+    odd = write(2004, lat=LAT + 2.5 * (LAT < 90))
+    messages = []
+    for patched in (False, True):
+        with monkeypatch.context() as patch:
+            if patched:
+                patch.setattr(sources, "_laid_out_candidates", lambda *args: None)
+            with pytest.raises(AnalogsInputError, match="different grids") as refused:
+                open_archive(paths + [odd])
+            messages.append(str(refused.value))
+    assert messages[0] == messages[1]
+
+
+EOFS_HGT = Path(pytest.importorskip("eofs").__file__).parent / "examples/example_data/hgt_djf.nc"
+
+
+def test_eofs_hgt_djf_halves_laid_out_and_a_warning_file_read_in_full(tmp_path, monkeypatch):
+    """eofs' hgt_djf.nc (NETCDF3, float64 with missing_value, latitude descending, times
+    in hours since year 1): as shipped it has no units, so its reading warns and every
+    copy is read the full way, each warning naming its file (xarray's warning of its
+    time units' ambiguous year 1-1-1 too); its two halves in time, copied by netCDF4
+    with units added and the year written 0001, are read by the first's layout, as the
+    full reading reads them and as netCDF4 decodes them."""
+    copies = [str(shutil.copy(EOFS_HGT, tmp_path / f"hgt_{k}.nc")) for k in (1, 2)]
+    fast, full, opened = _both_ways(monkeypatch, copies)  # the same days twice: dropped
+    assert opened == copies
+    _assert_identical(fast, full)
+    halves = []
+    with netCDF4.Dataset(EOFS_HGT) as source:
+        n_times = source.dimensions["time"].size
+        for k, part in enumerate((slice(0, n_times // 2), slice(n_times // 2, n_times))):
+            path = tmp_path / f"half_{k}.nc"
+            with netCDF4.Dataset(path, "w", format=source.data_model) as out:
+                for name, dim in source.dimensions.items():
+                    out.createDimension(name, part.stop - part.start if name == "time"
+                                        else dim.size)
+                for name, variable in source.variables.items():
+                    variable.set_auto_maskandscale(False)
+                    copy = out.createVariable(name, variable.dtype, variable.dimensions)
+                    copy.setncatts({a: variable.getncattr(a) for a in variable.ncattrs()})
+                    copy.set_auto_maskandscale(False)
+                    copy[:] = variable[part] if "time" in variable.dimensions else variable[:]
+                out["z"].units = "m"
+                out["time"].units = "hours since 0001-01-01 00:00:00"  # xarray warns of 1-1-1
+            halves.append(str(path))
+    fast, full, opened = _both_ways(monkeypatch, halves)  # seasonal means: warned
+    assert opened == halves[:1]
+    _assert_identical(fast, full)
+    with netCDF4.Dataset(EOFS_HGT) as source:
+        z = np.ma.filled(source["z"][:, 0].astype(float), np.nan)
+    np.testing.assert_allclose(fast["z500"].values, z, rtol=1e-12)
