@@ -42,6 +42,22 @@ def test_archive_fields_are_the_files_values(demo_store, demo_dir, query):
     assert np.array_equal(fields["time"].values, demo_store.times[rows].values)
 
 
+def test_archive_fields_read_by_layout_are_the_full_readings(demo_store, query,
+                                                            monkeypatch):
+    """The drawn days of the demo archive's later files, read at those days by the
+    first file's layout, are bit for bit what open_target reads of every file (the
+    reading with no layout: xarray's own)."""
+    from analogs.stages import sources
+    rows = [demo_store.day_row(query.target["date"]), *query.analogs["row"]]
+    fast, _ = archive_day_fields(demo_store, rows)
+    with monkeypatch.context() as patch:
+        patch.setattr(sources, "_laid_out_candidates", lambda *args: None)
+        full, _ = archive_day_fields(demo_store, rows)
+    xr.testing.assert_identical(fast, full)
+    for name in full.data_vars:
+        assert np.array_equal(fast[name].values.view("u4"), full[name].values.view("u4"))
+
+
 def test_report_says_where_the_fields_come_from(demo_store, query):
     figures = report_figures(demo_store, query)
     (caption, _, alt), grid = figures[0], figures[1]

@@ -139,8 +139,9 @@ def _both_ways(monkeypatch, paths, **options):
         with warnings.catch_warnings(record=True) as said_full:
             warnings.simplefilter("always")
             full = open_archive(paths, **options)
-    assert [str(w.message) for w in said_fast] == [str(w.message) for w in said_full]
-    return fast, full, opened
+    said = [str(w.message) for w in said_fast]
+    assert said == [str(w.message) for w in said_full]
+    return fast, full, opened, said
 
 
 def _assert_identical(fast, full):
@@ -281,3 +282,98 @@ def test_eofs_hgt_djf_halves_laid_out_and_a_warning_file_read_in_full(tmp_path, 
     with netCDF4.Dataset(EOFS_HGT) as source:
         z = np.ma.filled(source["z"][:, 0].astype(float), np.nan)
     np.testing.assert_allclose(fast["z500"].values, z, rtol=1e-12)
+
+
+def _days_both_ways(monkeypatch, paths, days, field):
+    """(each file's ``field`` at the ``days`` it holds by target_days with its layouts,
+    the same by open_target over their span (the report's reading before), files xarray
+    opened in the first, the warnings of the first: the second's); a refusal is the
+    message instead of the values."""
+    opened = []
+    open_file = sources._open_file
+
+    def counting(path, chunks):
+        opened.append(path)
+        return open_file(path, chunks)
+
+    def each(read):
+        out = []
+        for path in paths:
+            with xr.open_dataset(path) as held:
+                inside = days[days.isin(held["time"].values)]
+            try:
+                out.append(read(path, inside))
+            except AnalogsInputError as refused:
+                out.append(str(refused))
+        return out
+
+    def open_target(path, inside):
+        part = sources.open_target(
+            path, time=f"{inside.min().isoformat()}/{inside.max().isoformat()}",
+            fields=[field])[field]
+        return part.sel(time=part["time"].isin(inside.values))
+
+    layouts = []
+    with monkeypatch.context() as patch, warnings.catch_warnings(record=True) as said_fast:
+        warnings.simplefilter("always")
+        patch.setattr(sources, "_open_file", counting)
+        fast = each(lambda path, inside: sources.target_days(path, inside.values, field,
+                                                             layouts))
+    with warnings.catch_warnings(record=True) as said_full:
+        warnings.simplefilter("always")
+        full = each(open_target)
+    said = [str(w.message) for w in said_fast]
+    assert said == [str(w.message) for w in said_full]
+    return fast, full, opened, said
+
+
+@pytest.mark.parametrize("write, field", [
+    (_packed_360, "z500"), (_packed_360, "q850"), (_geopotential_levels, "z500"),
+    (_geopotential_levels, "q850"), (_unsigned, "z500")])
+def test_days_of_laid_out_files_are_open_targets_own(tmp_path, monkeypatch, write, field):
+    """The report's days (the first and last of a file, and days apart) of files packed
+    in int16 with fill values, latitude descending, 0-360 or rolled longitudes,
+    geopotential on levels, unsigned bytes in NETCDF3: read at those days by the first
+    file's layout, bit for bit and attribute for attribute what open_target gives over
+    their span (its refusal word for word where it refuses, as a member dim); xarray
+    opens only the first file of each kind, for open_target and its layout."""
+    paths = [p for p in write(tmp_path)
+             if Path(p).name.startswith(("zg_", "z_", "hgt_")) == (field == "z500")]
+    days = pd.DatetimeIndex([t for year in YEARS for t in _times(year)[[0, 2, 3, 7]]])
+    fast, full, opened, _ = _days_both_ways(monkeypatch, paths, days, field)
+    for a, b in zip(fast, full):
+        if isinstance(b, str):
+            assert a == b
+            continue
+        a_bits, b_bits = a.values, b.values
+        assert a_bits.dtype == b_bits.dtype
+        assert np.array_equal(a_bits.view(f"u{a_bits.itemsize}"),
+                              b_bits.view(f"u{b_bits.itemsize}"))
+        xr.testing.assert_identical(a, b)
+    plain = not any(isinstance(b, str) for b in full)
+    assert opened == ([paths[0]] * 2 if plain else paths)
+
+
+def test_a_laid_out_day_file_failing_a_gate_is_read_as_open_target_reads_it(
+        tmp_path, monkeypatch):
+    """A later file of the layout holding decametres labelled m (open_target converts
+    them, warning of the scale error: the laid-out reading's gate on its first and last
+    days sends it the full way) or an infinite value on a day read (made missing, with
+    open_target's warning): the same values, and the same warnings, as open_target."""
+    paths, write = _layout_breakers(tmp_path)
+    dam = _times(2004)
+    xr.Dataset({"zg": (("time", "lat", "lon"), smooth_height(dam) / 10.0, {"units": "m"})},
+               coords={"time": dam, "lat": LAT, "lon": LON, "plev": ((), 50000.0, {
+                   "units": "Pa"})}).to_netcdf(tmp_path / "zg_2004.nc", encoding={
+                       "time": {"units": "hours since 1900-01-01"}})
+    with netCDF4.Dataset(paths[1], "a") as handle:
+        handle["zg"][4, 2, 3] = np.inf
+    paths.append(str(tmp_path / "zg_2004.nc"))
+    days = pd.DatetimeIndex([t for year in (*YEARS, 2004) for t in _times(year)[[1, 4]]])
+    fast, full, opened, said = _days_both_ways(monkeypatch, paths, days, "z500")
+    assert [("infinite" in text, "decametres" in text) for text in said] == [
+        (True, False), (False, True)]
+    assert opened == [paths[0], paths[0], paths[-1]]
+    for a, b in zip(fast, full):
+        xr.testing.assert_identical(a, b)
+    assert np.isnan(fast[1].values).sum() == 1

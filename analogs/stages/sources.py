@@ -383,6 +383,56 @@ def open_target(path, *, time=None, fields=None, members=False) -> xr.Dataset:
     return ds
 
 
+def target_days(path, days, field, layouts) -> xr.DataArray:
+    """``field`` of one archive file at ``days`` (datetime64 values among the file's
+    times), as ``open_target(path, time="FIRST/LAST", fields=[field])`` gives it at
+    those days: each kind of file is recognised once, by :func:`open_target`, and a
+    later file laid out as it (``layouts``, which this extends; :func:`_header`) is
+    read at those days alone (:func:`_read_laid_out`) and passes open_target's gates:
+    the plausibility of its first and last time steps, then of every value read, with
+    infinite values made missing (:func:`_checked_target_values`). Anything else about
+    a file, or a gate it fails, sends it the full way, which says what is wrong."""
+    days = np.asarray(days, dtype="datetime64[ns]")
+    found = _laid_out_candidates(path, layouts, {})
+    candidate = next((c for c in found or () if c.field == field), None)
+    laid_out = None if candidate is None else _laid_out_days(candidate, days)
+    if laid_out is not None:
+        return laid_out
+    span = f"{pd.Timestamp(days.min()).isoformat()}/{pd.Timestamp(days.max()).isoformat()}"
+    part = open_target(path, time=span, fields=[field])[field]
+    if found is None and _plain_netcdf(path):  # the layout's own candidates, not curvilinear
+        parts, names = _open_parts(path, None)
+        layout = _file_layout(path, _candidates_in(path, parts), names)
+        if layout is not None:
+            layouts.append(layout)
+    return part.sel(time=part["time"].isin(days))
+
+
+def _laid_out_days(candidate, days):
+    """A laid-out candidate's values at ``days``, gated as a target; None when a day is
+    not among its times or a gate or the reading fails (see :func:`target_days`). The
+    days and the first and last time steps are read in one opening of the file, each
+    chunk of it decompressed once."""
+    times = candidate.laid_out.times
+    steps = np.minimum(np.searchsorted(times, days), times.size - 1)
+    if not np.array_equal(times[steps], days):
+        return None
+    read = np.union1d(steps, [0, times.size - 1])
+    piece = _laid_out_piece(candidate, None).isel(time=read)
+    low_ok, high_ok = PLAUSIBLE_RANGE[candidate.field]
+    try:
+        piece = piece.copy(data=_read_laid_out(candidate.path, candidate.laid_out.layout, (
+            read, slice(None), slice(None))))
+        low, high = _sample_range(piece.isel(time=[0, read.size - 1]))
+        if np.isfinite(low) and not (low_ok <= low and high <= high_ok):
+            return None  # open_target converts a scale error or refuses the file
+        return _checked_target_values(
+            xr.Dataset({candidate.field: piece.isel(time=np.searchsorted(read, steps))}),
+            candidate.path, {candidate.field: candidate.name})[candidate.field]
+    except (AnalogsInputError, OSError, RuntimeError, ValueError):
+        return None
+
+
 def regrid_to(ds: xr.Dataset, lat, lon, *, partial=False) -> xr.Dataset:
     """Bilinear interpolation of a canonical field to the grid ``(lat, lon)``.
 
@@ -1077,12 +1127,14 @@ def _laid_out_piece(candidate, chunks):
 
 
 def _read_laid_out(path, layout, key):
-    """The values of ``key`` (ints and slices over time, lat, lon) of a file's variable
+    """The values of ``key`` (ints and slices over time, lat, lon; over time also an
+    array of increasing time steps, read in one opening of the file) of a file's variable
     on the canonical axes: read by netCDF4 under the lock xarray's netCDF4 reader holds
     (HDF5 is not thread-safe), decoded by xarray's CF coders, then converted and put
     in order as the first file of the layout was."""
     import netCDF4
-    rows = key[0] if isinstance(key[0], slice) else slice(key[0], key[0] + 1)
+    one_step = isinstance(key[0], (int, np.integer))
+    rows = slice(key[0], key[0] + 1) if one_step else key[0]
     in_file = list(layout.key)
     in_file[layout.time_axis] = rows
     with NETCDF4_PYTHON_LOCK, netCDF4.Dataset(path) as handle:
@@ -1105,7 +1157,7 @@ def _read_laid_out(path, layout, key):
         values = values[:, layout.rows]
     elif layout.columns is not None:
         values = values[:, :, layout.columns]
-    return values[(slice(None) if isinstance(key[0], slice) else 0,) + tuple(key[1:])]
+    return values[(0 if one_step else slice(None),) + tuple(key[1:])]
 
 
 class _LaidOutArray(BackendArray):

@@ -1239,9 +1239,11 @@ def archive_day_fields(store, rows) -> tuple[xr.Dataset | None, str]:
     is still at its recorded path with its recorded size; else (None, why not).
 
     Only the days asked for are read: each file's times are looked at first (its
-    header), then the files holding some of the days are read over the span of those
-    days, through the archive reader (:func:`analogs.stages.sources.open_target`, one
-    way of recognising variables and units) and put on the store grid
+    header), then the files holding some of the days are read at those days through
+    the archive reader (:func:`analogs.stages.sources.target_days`: the first file of
+    each kind recognised by ``open_target``, one way of recognising variables and
+    units; a later file laid out as it read at those time steps alone) and put on the
+    store grid
     (:func:`on_store_grid`). A store of daily means (``--daily mean``) keeps the
     reconstruction: its days are not single times of the files."""
     import xarray as xr
@@ -1257,27 +1259,25 @@ def archive_day_fields(store, rows) -> tuple[xr.Dataset | None, str]:
         if provenance([path])[0]["bytes"] != entry["bytes"]:
             return None, f"archive file {path} changed size since the build"
     wanted = pd.DatetimeIndex(store.times[rows])
-    found, fields_of = {}, {}  # fields_of: the fields files of the same variables held
+    found, fields_of, layouts = {}, {}, []  # fields_of: the fields files of the same variables held
     try:
-        from analogs.stages.sources import open_target
+        from analogs.stages.sources import target_days
         for entry in inputs:
             held, variables = _times_held(entry["path"])
             if held is None:
                 continue
-            inside = wanted[wanted.isin(held)]
+            inside = wanted[wanted.isin(held)].unique().sort_values()
             if inside.empty:
                 continue
-            span = f"{inside.min().isoformat()}/{inside.max().isoformat()}"
             known = fields_of.get(variables)
             for name in store.fields if known is None else known:
                 try:
-                    part = open_target(entry["path"], time=span, fields=[name])
+                    part = target_days(entry["path"], inside.values, name, layouts)
                 except AnalogsInputError:
                     continue  # the file holds another field
                 if known is None:
                     fields_of.setdefault(variables, []).append(name)
-                found.setdefault(name, []).append(
-                    part[name].sel(time=part["time"].isin(inside.values)))
+                found.setdefault(name, []).append(part)
     except (AnalogsInputError, OSError, ValueError) as error:
         return None, f"the archive could not be read ({' '.join(str(error).split())[:120]})"
     found = {name: xr.concat(parts, dim="time").drop_duplicates("time")
