@@ -284,11 +284,11 @@ def test_eofs_hgt_djf_halves_laid_out_and_a_warning_file_read_in_full(tmp_path, 
     np.testing.assert_allclose(fast["z500"].values, z, rtol=1e-12)
 
 
-def _days_both_ways(monkeypatch, paths, days, field):
-    """(each file's ``field`` at the ``days`` it holds by target_days with its layouts,
-    the same by open_target over their span (the report's reading before), files xarray
-    opened in the first, the warnings of the first: the second's); a refusal is the
-    message instead of the values."""
+def _days_both_ways(monkeypatch, paths, days, *fields):
+    """(each file's ``fields``, one after the other, at the ``days`` it holds by
+    target_days with its layouts, the same by open_target over their span (the report's
+    reading before), files xarray opened in the first, the warnings of the first: the
+    second's); a refusal is the message instead of the values."""
     opened = []
     open_file = sources._open_file
 
@@ -301,24 +301,25 @@ def _days_both_ways(monkeypatch, paths, days, field):
         for path in paths:
             with xr.open_dataset(path) as held:
                 inside = days[days.isin(held["time"].values)]
-            try:
-                out.append(read(path, inside))
-            except AnalogsInputError as refused:
-                out.append(str(refused))
+            for field in fields:
+                try:
+                    out.append(read(path, inside, field))
+                except AnalogsInputError as refused:
+                    out.append(str(refused))
         return out
 
-    def open_target(path, inside):
+    def open_target(path, inside, field):
         part = sources.open_target(
             path, time=f"{inside.min().isoformat()}/{inside.max().isoformat()}",
             fields=[field])[field]
         return part.sel(time=part["time"].isin(inside.values))
 
-    layouts = []
+    layouts = {}
     with monkeypatch.context() as patch, warnings.catch_warnings(record=True) as said_fast:
         warnings.simplefilter("always")
         patch.setattr(sources, "_open_file", counting)
-        fast = each(lambda path, inside: sources.target_days(path, inside.values, field,
-                                                             layouts))
+        fast = each(lambda path, inside, field: sources.target_days(
+            path, inside.values, field, layouts))
     with warnings.catch_warnings(record=True) as said_full:
         warnings.simplefilter("always")
         full = each(open_target)
@@ -377,3 +378,26 @@ def test_a_laid_out_day_file_failing_a_gate_is_read_as_open_target_reads_it(
     for a, b in zip(fast, full):
         xr.testing.assert_identical(a, b)
     assert np.isnan(fast[1].values).sum() == 1
+
+
+def test_files_of_two_fields_read_by_a_layout_per_field(tmp_path, monkeypatch):
+    """Files holding z500 and q850 (one with a member dim of length one): each field's
+    days are read by the layout of the first file open_target read that field from
+    (a layout is kept per field: a field open_target never read in a file is read its
+    way), bit for bit open_target's; xarray opens only the first file."""
+    paths = []
+    for year in YEARS:
+        times = _times(year)
+        coords = {"time": times, "lat": ("lat", LAT, {"units": "degrees_north"}),
+                  "lon": ("lon", LON, {"units": "degrees_east"})}
+        paths.append(_write(tmp_path, "both", {
+            "zg500": (("time", "lat", "lon"), smooth_height(times), {"units": "m"}),
+            "hus850": (("time", "member", "lat", "lon"), smooth_humidity(times)[:, None],
+                       {"units": "kg kg-1"})}, coords, {}, year))
+    days = pd.DatetimeIndex([t for year in YEARS for t in _times(year)[[2, 5]]])
+    fast, full, opened, _ = _days_both_ways(monkeypatch, paths, days, "q850", "z500")
+    assert len(fast) == len(full) == 2 * len(YEARS)
+    for a, b in zip(fast, full):
+        xr.testing.assert_identical(a, b)
+        assert np.array_equal(a.values.view("u8"), b.values.view("u8"))
+    assert opened == [paths[0]] * 4  # open_target and the layout, for each field

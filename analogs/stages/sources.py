@@ -387,13 +387,14 @@ def target_days(path, days, field, layouts) -> xr.DataArray:
     """``field`` of one archive file at ``days`` (datetime64 values among the file's
     times), as ``open_target(path, time="FIRST/LAST", fields=[field])`` gives it at
     those days: each kind of file is recognised once, by :func:`open_target`, and a
-    later file laid out as it (``layouts``, which this extends; :func:`_header`) is
-    read at those days alone (:func:`_read_laid_out`) and passes open_target's gates:
-    the plausibility of its first and last time steps, then of every value read, with
-    infinite values made missing (:func:`_checked_target_values`). Anything else about
-    a file, or a gate it fails, sends it the full way, which says what is wrong."""
+    later file laid out as one it read ``field`` from (``layouts``: a dict of lists by
+    field, which this extends; :func:`_header`) is read at those days alone
+    (:func:`_read_laid_out`) and passes open_target's gates: the plausibility of its
+    first and last time steps, then of every value read, with infinite values made
+    missing (:func:`_checked_target_values`). Anything else about a file, or a gate it
+    fails, sends it the full way, which says what is wrong."""
     days = np.asarray(days, dtype="datetime64[ns]")
-    found = _laid_out_candidates(path, layouts, {})
+    found = _laid_out_candidates(path, layouts.get(field), {})
     candidate = next((c for c in found or () if c.field == field), None)
     laid_out = None if candidate is None else _laid_out_days(candidate, days)
     if laid_out is not None:
@@ -404,7 +405,7 @@ def target_days(path, days, field, layouts) -> xr.DataArray:
         parts, names = _open_parts(path, None)
         layout = _file_layout(path, _candidates_in(path, parts), names)
         if layout is not None:
-            layouts.append(layout)
+            layouts.setdefault(field, []).append(layout)
     return part.sel(time=part["time"].isin(days))
 
 

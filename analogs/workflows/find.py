@@ -1259,7 +1259,8 @@ def archive_day_fields(store, rows) -> tuple[xr.Dataset | None, str]:
         if provenance([path])[0]["bytes"] != entry["bytes"]:
             return None, f"archive file {path} changed size since the build"
     wanted = pd.DatetimeIndex(store.times[rows])
-    found, fields_of, layouts = {}, {}, []  # fields_of: the fields files of the same variables held
+    # fields_of: the fields files of the same variables held; layouts: by field
+    found, fields_of, layouts = {}, {}, {}
     try:
         from analogs.stages.sources import target_days
         for entry in inputs:
