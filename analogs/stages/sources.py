@@ -384,8 +384,8 @@ def open_target(path, *, time=None, fields=None, members=False) -> xr.Dataset:
 
 
 def target_days(path, days, field, layouts) -> xr.DataArray:
-    """``field`` of one archive file at ``days`` (datetime64 values among the file's
-    times), as ``open_target(path, time="FIRST/LAST", fields=[field])`` gives it at
+    """``field`` of one archive file at ``days`` (increasing datetime64 values among
+    the file's times), as ``open_target(path, time="FIRST/LAST", fields=[field])`` gives it at
     those days: each kind of file is recognised once, by :func:`open_target`, and a
     later file laid out as one it read ``field`` from (``layouts``: a dict of lists by
     field, which this extends; :func:`_header`) is read at those days alone
