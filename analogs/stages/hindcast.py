@@ -322,7 +322,7 @@ def _weighted_fold_batches(pcs, times, observed, targets, window, exclude, *, to
         rows = np.flatnonzero(targets & ~train)
         for start in range(0, rows.size, per_batch):
             queries = rows[start:start + per_batch]
-            own = window_of[queries]
+            own = _as_slice(window_of[queries])
             windows, columns = windows_by_day[own], columns_by_day[own]
             # Each target's own season days of the other years, outside its own episode
             # (held_out_mask's rule).
@@ -332,6 +332,16 @@ def _weighted_fold_batches(pcs, times, observed, targets, window, exclude, *, to
             chosen = rank_windows(mapped, times, queries, windows, allowed, top=top,
                                   separation=separation)
             yield queries, columns, held, chosen
+
+
+def _as_slice(positions):
+    """``positions`` (int array, not empty) as a slice when they are consecutive and
+    ascending (a whole year's targets take consecutive calendar days): the arrays of
+    every calendar day are then indexed by views instead of copies, the same values."""
+    first = int(positions[0])
+    if np.array_equal(positions, np.arange(first, first + positions.size)):
+        return slice(first, first + positions.size)
+    return positions
 
 
 class HeldOutNeighbours:
