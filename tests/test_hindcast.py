@@ -422,3 +422,18 @@ def test_event_fractions_are_the_mean_of_each_list():
         else:
             assert np.isnan(value)
     assert hindcast_stage._event_fractions(observed, [], np.zeros(0, dtype=np.int64)).size == 0
+
+
+def test_consecutive_positions_index_as_a_view_of_the_same_values():
+    """_as_slice: consecutive ascending positions (a whole year's calendar days) become a
+    slice, whose view holds exactly what numpy's fancy indexing copies; positions with a
+    gap, out of order or repeated stay an index array (the same fancy indexing)."""
+    table = np.arange(366 * 7).reshape(366, 7)
+    for positions in (np.arange(365), np.arange(3, 4), np.arange(100, 366),
+                      np.r_[0:10, 11:20], np.arange(10)[::-1], np.r_[4, 4, 5]):
+        picked = hindcast_stage._as_slice(positions)
+        assert isinstance(picked, slice) == (
+            bool(np.all(np.diff(positions) == 1)))
+        np.testing.assert_array_equal(table[picked], table[positions])
+        if isinstance(picked, slice):
+            assert np.shares_memory(table[picked], table)

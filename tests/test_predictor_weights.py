@@ -14,7 +14,7 @@ from scipy.spatial.distance import cdist
 import _reliability_helpers as rh
 from analogs.api import AnalogStore
 from analogs.cli import main
-from analogs.stages.hindcast import leave_one_year_out
+from analogs.stages.hindcast import leave_one_year_out, seasonal_harmonics
 from analogs.stages.predictor_weights import (SCORE_WEIGHT, fit_predictor_weights,
                                               one_blas_thread, pc_weights)
 from analogs.workflows import store as store_io
@@ -55,6 +55,25 @@ def test_fitted_weights_recover_the_informative_pcs():
     score = transform[:, -1] * pcs.std(axis=0) / np.sqrt(SCORE_WEIGHT)
     assert np.sign(score[[1, 4]]).tolist() == [1.0, -1.0]
     np.testing.assert_allclose(np.abs(score), per_standard_pc, rtol=1e-12)
+
+
+def test_harmonics_given_fit_the_same_weights():
+    """The hindcast's folds pass the harmonics computed once for every day, sliced to the
+    fold's days: the same inputs as seasonal_harmonics of the fold's times (cos and sin
+    of the day-of-year angle, checked against numpy.cos / numpy.sin of pandas' day of
+    year), so the same logistic fit to the last bit, on a fold of the other years as the
+    leave-one-year-out takes it."""
+    pcs, times, observed, _ = _synthetic()
+    harmonics = seasonal_harmonics(times)
+    angle = 2 * np.pi * times.day_of_year.to_numpy() / 365.2425  # pandas' day of year
+    np.testing.assert_allclose(harmonics[:, [0, 2]], np.column_stack(
+        [np.cos(angle), np.sin(angle)]), atol=1e-12)
+    train = times.year != 2004
+    own = fit_predictor_weights(pcs[train], times[train], observed[train])
+    given = fit_predictor_weights(pcs[train], times[train], observed[train],
+                                  harmonics=harmonics[train])
+    assert np.array_equal(own, given)
+    assert np.array_equal(seasonal_harmonics(times[train]), harmonics[train])
 
 
 def test_one_blas_thread_limits_and_restores_as_threadpoolctl():

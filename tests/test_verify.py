@@ -16,6 +16,7 @@ from analogs.stages.scores import (
     murphy_decomposition,
     reliability_table,
     roc_auc,
+    roc_auc_interval,
     roc_curve_points,
     verification_summary,
 )
@@ -192,6 +193,31 @@ def test_brier_skill_interval_is_the_bootstrap_of_the_skill_score(forecasts):
     assert brier_skill_score(p, o, reference) == pytest.approx(expected, rel=1e-12)
     with pytest.raises(AnalogsInputError, match="'p' parameter of brier_skill_score_interval"):
         brier_skill_score_interval(np.r_[p[:-1], np.nan], o, reference)
+
+
+def test_roc_auc_interval_is_the_bootstrap_of_the_roc_area(forecasts):
+    """roc_auc_interval (distinct forecasts ranked once, each resample counted by rank)
+    equals bootstrap_interval over roc_auc itself to the last bit: rows or year blocks
+    resampled, forecasts with many exact ties (rounded to 0.05) and all distinct, and
+    with few events (resamples of one class skipped alike); each resample's area is
+    scikit-learn's roc_auc_score of the same rows (its trapezoids over the distinct
+    thresholds, ties counted half)."""
+    p, o = forecasts
+    years = np.repeat(np.arange(40), 50)
+    distinct = np.random.default_rng(8).permutation(p.size) / p.size
+    rare = (np.arange(p.size) % 400 == 0).astype(int)  # 5 events: some resamples hold none
+    for p_case, o_case in ((p, o), (distinct, o), (p, rare)):
+        for block in (None, years):
+            settings = dict(n_resamples=200, seed=3, block=block)
+            assert (roc_auc_interval(p_case, o_case, **settings)
+                    == bootstrap_interval(roc_auc, p_case, o_case, **settings))
+    rows = np.random.default_rng(2).integers(0, p.size, p.size)
+    low, high = roc_auc_interval(p, o, n_resamples=200, seed=3)
+    assert low <= roc_auc_score(o, p) <= high
+    assert roc_auc(p[rows], o[rows]) == pytest.approx(roc_auc_score(o[rows], p[rows]),
+                                                      rel=1e-12)
+    with pytest.raises(AnalogsInputError, match="'p' parameter of roc_auc_interval"):
+        roc_auc_interval(np.r_[p[:-1], np.nan], o)
 
 
 def test_bootstrap_skips_undefined_resamples():

@@ -25,9 +25,9 @@ from analogs.errors import AnalogsInputError
 from analogs.parameters import P
 from analogs.stages.index import AnalogIndex
 from analogs.stages.outcomes import analog_weights
-from analogs.stages.scores import (bootstrap_interval, brier_score, brier_skill_score,
-                                   brier_skill_score_interval, roc_auc, roc_auc_within,
-                                   verification_summary)
+from analogs.stages.scores import (brier_score, brier_skill_score,
+                                   brier_skill_score_interval, roc_auc_interval,
+                                   roc_auc_within, verification_summary)
 from analogs.stages.selection import (BATCH_MAX_MASK, DEFAULT_EXCLUDE, DEFAULT_SEPARATION,
                                       DEFAULT_TOP, DEFAULT_WINDOW, candidate_ids,
                                       day_numbers, day_of_year, decluster_many,
@@ -304,6 +304,8 @@ def _weighted_fold_batches(pcs, times, observed, targets, window, exclude, *, to
     days = day_numbers(times)
     window_years = years.astype(np.int32)[columns_by_day]
     window_days = days.astype(np.int32)[columns_by_day]
+    # The regression's seasonal inputs, the same values in every fold: computed once.
+    harmonics = seasonal_harmonics(times)
     # Targets ranked at once: their masks over every day stay within the batch budget.
     per_batch = max(1, BATCH_MAX_MASK // len(times))
     if restrict is not None:
@@ -315,12 +317,12 @@ def _weighted_fold_batches(pcs, times, observed, targets, window, exclude, *, to
         # same values without a second thread spinning beside the tagging's.
         with one_blas_thread():
             transform = fit_predictor_weights(pcs[train, :n_modes], times[train],
-                                              observed[train])
+                                              observed[train], harmonics=harmonics[train])
             mapped = pcs @ block_transform(transform, n_blocks)
         rows = np.flatnonzero(targets & ~train)
         for start in range(0, rows.size, per_batch):
             queries = rows[start:start + per_batch]
-            own = window_of[queries]
+            own = _as_slice(window_of[queries])
             windows, columns = windows_by_day[own], columns_by_day[own]
             # Each target's own season days of the other years, outside its own episode
             # (held_out_mask's rule).
@@ -330,6 +332,16 @@ def _weighted_fold_batches(pcs, times, observed, targets, window, exclude, *, to
             chosen = rank_windows(mapped, times, queries, windows, allowed, top=top,
                                   separation=separation)
             yield queries, columns, held, chosen
+
+
+def _as_slice(positions):
+    """``positions`` (int array, not empty) as a slice when they are consecutive and
+    ascending (a whole year's targets take consecutive calendar days): the arrays of
+    every calendar day are then indexed by views instead of copies, the same values."""
+    first = int(positions[0])
+    if np.array_equal(positions, np.arange(first, first + positions.size)):
+        return slice(first, first + positions.size)
+    return positions
 
 
 class HeldOutNeighbours:
@@ -533,9 +545,8 @@ def score_hindcast(hindcast: pd.DataFrame, *, threshold=P.threshold.default, n_b
         p, o, reference, n_resamples=n_resamples, confidence=confidence,
         seed=seed, block=blocks))
     if 0 < o.sum() < o.size:
-        summary["roc_auc_ci"] = list(bootstrap_interval(
-            roc_auc, p, o, n_resamples=n_resamples, confidence=confidence, seed=seed,
-            block=blocks))
+        summary["roc_auc_ci"] = list(roc_auc_interval(
+            p, o, n_resamples=n_resamples, confidence=confidence, seed=seed, block=blocks))
     summary["roc_auc_within_month"] = roc_auc_within(
         p, o, pd.DatetimeIndex(hindcast["time"]).month.to_numpy())
     summary["reliability_share"] = (summary["murphy"]["reliability"] / summary["brier_score"]

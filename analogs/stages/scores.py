@@ -175,28 +175,56 @@ def roc_curve_points(p, o):
     """
     owner = "roc_curve_points"
     p, o = _forecasts(p, o, owner)
+    order = np.argsort(-p, kind="stable")
+    p_sorted, o_sorted = p[order], o[order]
+    # Last position of each distinct forecast value: ties move together.
+    last = np.flatnonzero(np.r_[np.diff(p_sorted) != 0, True])
+    false_alarm_rate, hit_rate = _roc_rates(np.cumsum(o_sorted)[last], last + 1, o, owner)
+    thresholds = np.r_[np.inf, p_sorted[last]]
+    return false_alarm_rate, hit_rate, thresholds
+
+
+def _roc_rates(hits, n_yes, o, owner):
+    """(false alarm rate, hit rate) of the ROC curve from (0, 0), from the number of
+    hits and of "yes" forecasts at each threshold (highest first) and the outcomes ``o``;
+    an error without both events and non-events."""
     n_events = o.sum()
     n_non = o.size - n_events
     if n_events == 0 or n_non == 0:
         raise AnalogsInputError(
             f"The 'o' parameter of {owner} must contain both events (1) and non-events (0). "
             f"Got only {'non-events' if n_events == 0 else 'events'} instead.")
-    order = np.argsort(-p, kind="stable")
-    p_sorted, o_sorted = p[order], o[order]
-    # Last position of each distinct forecast value: ties move together.
-    last = np.flatnonzero(np.r_[np.diff(p_sorted) != 0, True])
-    hits = np.cumsum(o_sorted)[last]
-    false_alarms = (last + 1) - hits
-    hit_rate = np.r_[0.0, hits / n_events]
-    false_alarm_rate = np.r_[0.0, false_alarms / n_non]
-    thresholds = np.r_[np.inf, p_sorted[last]]
-    return false_alarm_rate, hit_rate, thresholds
+    false_alarms = n_yes - hits
+    return np.r_[0.0, false_alarms / n_non], np.r_[0.0, hits / n_events]
 
 
 def roc_auc(p, o) -> float:
     """Area under the ROC curve by the trapezoid rule (0.5 = no skill, 1 = perfect)."""
     false_alarm_rate, hit_rate, _ = roc_curve_points(p, o)
     return float(np.trapezoid(hit_rate, false_alarm_rate))
+
+
+def roc_auc_interval(p, o, *, n_resamples=1000, confidence=0.9, seed=0, block=None):
+    """``bootstrap_interval(roc_auc, p, o, ...)``, the same two numbers to the last bit
+    for a fraction of the cost: the distinct forecast values are ranked once (highest
+    first), and each resample's hits and "yes" forecasts per threshold are counted from
+    its rows' ranks (:func:`numpy.bincount`) instead of sorting its forecasts: the same
+    integer counts at the same thresholds as :func:`roc_curve_points`, so the same
+    trapezoids. Parameters as :func:`bootstrap_interval`'s."""
+    p, o = _forecasts(p, o, "roc_auc_interval")
+    values, inverse = np.unique(p, return_inverse=True)
+    rank = values.size - 1 - inverse.reshape(-1)
+
+    def ranked_auc(rank, o):
+        n_yes = np.bincount(rank, minlength=values.size)
+        hits = np.bincount(rank, weights=o, minlength=values.size)
+        present = n_yes > 0
+        false_alarm_rate, hit_rate = _roc_rates(np.cumsum(hits[present]),
+                                                np.cumsum(n_yes[present]), o, "roc_auc")
+        return float(np.trapezoid(hit_rate, false_alarm_rate))
+
+    return bootstrap_interval(ranked_auc, rank, o, n_resamples=n_resamples,
+                              confidence=confidence, seed=seed, block=block)
 
 
 def roc_auc_within(p, o, groups) -> float:
