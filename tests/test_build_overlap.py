@@ -63,21 +63,17 @@ def _failing(message):
     return fail
 
 
-@pytest.mark.parametrize("tagging_fails, eof_fails, skill_fails, expected", [
-    (True, False, False, "tagging failed"),
-    (False, False, True, "skill failed"),
-    (False, True, False, "EOF failed"),  # while the tagging thread runs (small archive)
-    (True, False, True, "tagging failed"),  # the sequential order met the tagging's first
-    (True, True, False, "tagging failed"),
+@pytest.mark.parametrize("tagging_fails, skill_fails, expected", [
+    (True, False, "tagging failed"),
+    (False, True, "skill failed"),
+    (True, True, "tagging failed"),  # the sequential order met the tagging's error first
 ])
 def test_an_error_in_either_part_is_raised_and_the_thread_ends(
-        demo_dir, demo_files, monkeypatch, tagging_fails, eof_fails, skill_fails, expected):
+        demo_dir, demo_files, monkeypatch, tagging_fails, skill_fails, expected):
     from analogs.stages import regimes
 
     if tagging_fails:
         monkeypatch.setattr(regimes, "tag_days", _failing("tagging failed"))
-    if eof_fails:
-        monkeypatch.setattr(build.MultivariateEOF, "fit", _failing("EOF failed"))
     if skill_fails:
         monkeypatch.setattr(build, "measured_skill", _failing("skill failed"))
     with pytest.raises(AnalogsInputError, match=expected):
@@ -97,40 +93,4 @@ def test_a_tagging_error_exits_2_from_the_command_line(demo_dir, demo_files, mon
     assert status == 2
     err = capsys.readouterr().err
     assert "error: tagging failed" in err and "Traceback" not in err
-    assert not _build_threads()
-
-
-@pytest.mark.parametrize("limit, expected", [
-    (None, ["tagging", "climatology", "eof"]),  # the demo archive is small: early
-    (0, ["climatology", "eof", "tagging"]),  # larger than the limit: after the EOF fit
-])
-def test_tagging_starts_with_the_climatology_only_for_a_small_archive(
-        demo_store, demo_dir, demo_files, monkeypatch, limit, expected):
-    """Where the tagging thread starts, and the same store either way (the demo store was
-    built with the early start)."""
-    if limit is not None:
-        monkeypatch.setattr(build, "_EARLY_TAGGING_BYTES", limit)
-    order = []
-
-    def noting(name, function):
-        def noted(*args, **kwargs):
-            order.append(name)
-            return function(*args, **kwargs)
-        return noted
-
-    def beside(work, *args, **kwargs):  # the tagging thread, not the import beside it
-        if getattr(work, "__name__", "") == "tag_days":
-            order.append("tagging")
-        return beside_of_build(work, *args, **kwargs)
-
-    beside_of_build = build._beside
-    monkeypatch.setattr(build, "_beside", beside)
-    monkeypatch.setattr(build.HarmonicClimatology, "fit",
-                        noting("climatology", build.HarmonicClimatology.fit))
-    monkeypatch.setattr(build.MultivariateEOF, "fit", noting("eof", build.MultivariateEOF.fit))
-    store = _build(demo_dir, demo_files, f"store_limit_{limit}")
-    assert order == expected
-    pd.testing.assert_frame_equal(store.tags, demo_store.tags)
-    np.testing.assert_array_equal(store.pcs.values, demo_store.pcs.values)
-    assert store.manifest["skill"] == demo_store.manifest["skill"]
     assert not _build_threads()

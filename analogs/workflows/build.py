@@ -261,34 +261,24 @@ def _build(paths, store, *, events, event_dates, events_period, fields, n_modes,
         event_table, n_outside = (None, 0) if events is None else load_events(
             events, archive["lat"].values, archive["lon"].values, dates=event_dates)
 
-        # The tags need only the archive, the climatology, EOFs, index check and skill
-        # hindcast never the tags: the tags are computed in a thread beside them (numpy,
-        # BLAS and faiss release the GIL in their heavy loops), inside the scratch
-        # folder's block, because out of core tagging reads the archive's decoded copy
-        # there. No region: tag_days places the synoptic box at the domain's centre and
-        # says so. The thread starts with the climatology when the archive is in memory
-        # and small (_EARLY_TAGGING_BYTES), else after the EOF fit, the build's memory
-        # peak, so that the diagnostics' working memory never adds to it.
-        with contextlib.ExitStack() as stack:
-            def start_tagging():
-                return stack.enter_context(_beside(
-                    tag_days, archive, None if region.kind == "whole" else
-                    diagnostic_region(region, archive), progress=progress))
-
-            early = chunks is None and archive.nbytes <= _EARLY_TAGGING_BYTES
-            tagging = start_tagging() if early else None
-            climatology = HarmonicClimatology(n_harmonics=n_harmonics).fit(archive)
-            # Anomalies in the archive's float32, made block-wise; the EOF fit scales them
-            # in place into its data matrix (one copy of the archive beside the archive
-            # itself). Out of core, that copy is a scratch file written in one pass.
-            eof = MultivariateEOF(n_modes, variance=variance, solver=solver,
-                                  field_weights=field_weights).fit(
-                climatology.transform(archive), overwrite=True, scratch=make_scratch)
-            pcs = eof.pcs_
-            errors = eof.training_error_.values
-            times = pd.DatetimeIndex(archive["time"].values)
-            if tagging is None:
-                tagging = start_tagging()
+        climatology = HarmonicClimatology(n_harmonics=n_harmonics).fit(archive)
+        # Anomalies in the archive's float32, made block-wise; the EOF fit scales them in
+        # place into its data matrix (one copy of the archive beside the archive itself).
+        # Out of core, that copy is a scratch file written in one pass over the archive.
+        eof = MultivariateEOF(n_modes, variance=variance, solver=solver,
+                              field_weights=field_weights).fit(
+            climatology.transform(archive), overwrite=True, scratch=make_scratch)
+        pcs = eof.pcs_
+        errors = eof.training_error_.values
+        times = pd.DatetimeIndex(archive["time"].values)
+        # The tags need only the archive, the index check and the skill hindcast only the
+        # PCs: the tags are computed in a thread beside them (numpy and faiss release the
+        # GIL in their heavy loops). Started after the EOF fit, the build's memory peak, so
+        # the diagnostics' working memory never adds to it; inside the scratch folder's
+        # block, because out of core tagging reads the archive's decoded copy there. No
+        # region: tag_days places the synoptic box at the domain's centre and says so.
+        with _beside(tag_days, archive, None if region.kind == "whole" else
+                     diagnostic_region(region, archive), progress=progress) as tagging:
             index_info = _index_info(index, pcs.values, times)
             skill, events_entry = None, None
             if event_table is not None:
@@ -365,14 +355,6 @@ def _build(paths, store, *, events, event_dates, events_period, fields, n_modes,
     # The default query's event-weighted map (the store's region, every kind), kept in
     # the manifest so that a default query need not fit it (nor load scikit-learn).
     return with_default_predictor_weights(built)
-
-
-#: An archive in memory of at most this many bytes has its days tagged beside the
-#: climatology and EOF fit, using the core those leave idle; a larger one only after the
-#: fit, its memory peak. Tagging's working memory is about 0.5 GB on large grids (10
-#: years at 0.25 degree, 1.15 GB of fields: peak 3.20 GB started early, 2.66 GB after the
-#: fit) and little on small ones (40 years at 1 degree, 0.3 GB: 1.31 against 1.23 GB).
-_EARLY_TAGGING_BYTES = 2 ** 29
 
 
 @contextlib.contextmanager
