@@ -468,8 +468,7 @@ def _closed_lows_np(z, lat, lon, *, moisture=None, moisture_kind=None, max_lat, 
     points around each centre. ``near`` = (box, km): only centres within ``km`` of the
     box (:func:`_distance_to_box_km`) are measured and returned (each centre is
     measured on its own, so those kept are the same lows)."""
-    # Imported here: the maps' marks and dewpoints import this module, not its filters.
-    from scipy import ndimage
+    from analogs.stages.box_filters import maximum_filter, uniform_filter
 
     frame = longitude_frame(lon)
     z = frame.to_frame(np.asarray(z, dtype=float))
@@ -522,9 +521,9 @@ def _closed_lows_np(z, lat, lon, *, moisture=None, moisture_kind=None, max_lat, 
         hi, hj = half_widths(km, cos_lat)
         size = (1, 2 * hi + 1, 2 * hj + 1)
         n = size[1] * size[2]
-        box_sum = ndimage.uniform_filter(filled, size=size, mode=modes)
+        box_sum = uniform_filter(filled, size, modes)
         box_sum *= n
-        box_count = ndimage.uniform_filter(weight, size=size, mode=modes)
+        box_count = uniform_filter(weight, size, modes)
         box_count *= n
         sums.append((box_sum, box_count))
     (s_out, n_out), (s_in, n_in) = sums
@@ -565,8 +564,8 @@ def _closed_lows_np(z, lat, lon, *, moisture=None, moisture_kind=None, max_lat, 
     finite = np.isfinite(screen)
     if not finite.all():
         screen[~finite] = -np.inf
-    peak = ndimage.maximum_filter(screen, size=(1, 2 * hi + 1, 2 * hj + 1),
-                                  mode=("nearest", "nearest", "wrap" if periodic else "nearest"))
+    peak = maximum_filter(screen, (1, 2 * hi + 1, 2 * hj + 1),
+                          ("nearest", "nearest", "wrap" if periodic else "nearest"))
     screen = screen[inner]
     candidate = finite[inner]
     candidate &= screen >= peak[inner]
@@ -974,10 +973,10 @@ def find_closed_lows(z500: xr.DataArray, moisture: xr.DataArray | None = None, *
     removes the meridional slope of the background and ignores the compact low itself.
     A centre is a grid point with :math:`|\phi| \le` ``max_lat`` where a screening
     depth field, the mean of :math:`Z'` over a square annulus of half-widths
-    ``ring_km`` (box sums over the points that have a value,
-    ``scipy.ndimage.uniform_filter``) minus :math:`Z'`, is the maximum over a
-    neighbourhood of about ``neighbourhood_km`` (``scipy.ndimage.maximum_filter``
-    over (lat, lon) per day) and at least ``min_depth / 2``. This is the local
+    ``ring_km`` (box sums over the points that have a value, the values of
+    ``scipy.ndimage.uniform_filter``: :mod:`analogs.stages.box_filters`) minus
+    :math:`Z'`, is the maximum over a neighbourhood of about ``neighbourhood_km``
+    (``scipy.ndimage.maximum_filter`` over (lat, lon) per day) and at least ``min_depth / 2``. This is the local
     minimum of a closed low in a flat background; unlike a plain minimum of
     :math:`Z` it also finds a compact low on a sloping background or beside a broad
     trough, where the total height has no closed contour. For each centre:

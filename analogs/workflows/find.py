@@ -1323,12 +1323,13 @@ def _times_held(path) -> tuple[pd.DatetimeIndex | None, frozenset]:
             for name in ("time", "valid_time", "t"):
                 if name in dataset.variables and dataset.variables[name].ndim == 1:
                     var = dataset.variables[name]
+                    var.set_auto_mask(False)  # plain values: num2date converts them at once
                     dates = netCDF4.num2date(var[:], var.units,
                                              getattr(var, "calendar", "standard"),
                                              only_use_cftime_datetimes=False,
                                              only_use_python_datetimes=True)
                     return pd.DatetimeIndex(list(dates)), frozenset(dataset.variables)
-    except (OSError, ValueError, AttributeError, TypeError):
+    except (OSError, ValueError, AttributeError, TypeError, OverflowError):
         pass
     return None, frozenset()
 
