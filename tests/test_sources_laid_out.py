@@ -313,7 +313,7 @@ def _days_both_ways(monkeypatch, paths, days, *fields):
             fields=[field])[field]
         return part.sel(time=part["time"].isin(inside.values))
 
-    layouts = {}
+    layouts = sources.DayLayouts()
     with monkeypatch.context() as patch, warnings.catch_warnings(record=True) as said_fast:
         warnings.simplefilter("always")
         patch.setattr(sources, "_open_file", counting)
@@ -336,7 +336,7 @@ def test_days_of_laid_out_files_are_open_targets_own(tmp_path, monkeypatch, writ
     geopotential on levels, unsigned bytes in NETCDF3: read at those days by the first
     file's layout, bit for bit and attribute for attribute what open_target gives over
     their span (its refusal word for word where it refuses, as a member dim); xarray
-    opens only the first file of each kind, for open_target and its layout."""
+    opens only the first file of each kind, once, for its layout, which reads it too."""
     paths = [p for p in write(tmp_path)
              if Path(p).name.startswith(("zg_", "z_", "hgt_")) == (field == "z500")]
     days = pd.DatetimeIndex([t for year in YEARS for t in _times(year)[[0, 2, 3, 7]]])
@@ -351,7 +351,7 @@ def test_days_of_laid_out_files_are_open_targets_own(tmp_path, monkeypatch, writ
                               b_bits.view(f"u{b_bits.itemsize}"))
         xr.testing.assert_identical(a, b)
     plain = not any(isinstance(b, str) for b in full)
-    assert opened == ([paths[0]] * 2 if plain else paths)
+    assert opened == ([paths[0]] if plain else paths)
 
 
 def test_a_laid_out_day_file_failing_a_gate_is_read_as_open_target_reads_it(
@@ -373,7 +373,7 @@ def test_a_laid_out_day_file_failing_a_gate_is_read_as_open_target_reads_it(
     fast, full, opened, said = _days_both_ways(monkeypatch, paths, days, "z500")
     assert [("infinite" in text, "decametres" in text) for text in said] == [
         (True, False), (False, True)]
-    assert opened == [paths[0], paths[0], paths[-1]]
+    assert opened == [paths[0], paths[-1]]
     for a, b in zip(fast, full):
         xr.testing.assert_identical(a, b)
     assert np.isnan(fast[1].values).sum() == 1
@@ -381,9 +381,9 @@ def test_a_laid_out_day_file_failing_a_gate_is_read_as_open_target_reads_it(
 
 def test_files_of_two_fields_read_by_a_layout_per_field(tmp_path, monkeypatch):
     """Files holding z500 and q850 (one with a member dim of length one): each field's
-    days are read by the layout of the first file open_target read that field from
-    (a layout is kept per field: a field open_target never read in a file is read its
-    way), bit for bit open_target's; xarray opens only the first file."""
+    days are read by the layout of the first file that field was read from (a layout
+    is kept per field: a field never read from a kind of file is read the full way),
+    bit for bit open_target's; xarray opens only the first file, once."""
     paths = []
     for year in YEARS:
         times = _times(year)
@@ -399,4 +399,4 @@ def test_files_of_two_fields_read_by_a_layout_per_field(tmp_path, monkeypatch):
     for a, b in zip(fast, full):
         xr.testing.assert_identical(a, b)
         assert np.array_equal(a.values.view("u8"), b.values.view("u8"))
-    assert opened == [paths[0]] * 4  # open_target and the layout, for each field
+    assert opened == [paths[0]]  # for its layout, which gives both fields

@@ -383,30 +383,82 @@ def open_target(path, *, time=None, fields=None, members=False) -> xr.Dataset:
     return ds
 
 
-def target_days(path, days, field, layouts) -> xr.DataArray:
+class DayLayouts:
+    """What :func:`target_days` learns of an archive's files as it reads them, for the
+    next files: the layouts each field was read by (``by_field``, lists by field) and
+    the layout made of each first file of a kind (``of_file``, by path; None where the
+    file has none)."""
+
+    def __init__(self):
+        self.by_field: dict[str, list] = {}
+        self.of_file: dict[str, object] = {}
+
+
+def target_days(path, days, field, layouts: DayLayouts) -> xr.DataArray:
     """``field`` of one archive file at ``days`` (increasing datetime64 values among
     the file's times), as ``open_target(path, time="FIRST/LAST", fields=[field])`` gives it at
-    those days: each kind of file is recognised once, by :func:`open_target`, and a
-    later file laid out as one it read ``field`` from (``layouts``: a dict of lists by
-    field, which this extends; :func:`_header`) is read at those days alone
-    (:func:`_read_laid_out`) and passes open_target's gates: the plausibility of its
-    first and last time steps, then of every value read, with infinite values made
-    missing (:func:`_checked_target_values`). Anything else about a file, or a gate it
-    fails, sends it the full way, which says what is wrong."""
+    those days: each kind of file is recognised once, its layout (:func:`_file_layout`)
+    made from one opening by xarray, and that file and every later file laid out as one
+    ``field`` was read from (``layouts``, which this extends; :func:`_header`) are read
+    at those days alone (:func:`_read_laid_out`) and pass open_target's gates: the
+    plausibility of the first and last time steps, then of every value read, with
+    infinite values made missing (:func:`_checked_target_values`). Anything else about
+    a file (its recognition warns, it is not plain NetCDF, its layout lacks the field),
+    or a gate it fails, sends it the full way (:func:`open_target`), which says what
+    is wrong."""
     days = np.asarray(days, dtype="datetime64[ns]")
-    found = _laid_out_candidates(path, layouts.get(field), {})
-    candidate = next((c for c in found or () if c.field == field), None)
-    laid_out = None if candidate is None else _laid_out_days(candidate, days)
+    known = layouts.by_field.get(field)
+    laid_out = _days_by_layout(path, days, field, known)
+    if laid_out is None and not _fits_a_layout(path, known):
+        # The first file of its kind: its layout, from one opening by xarray, reads it
+        # too when it gives the field, says nothing and passes the gates.
+        if path not in layouts.of_file:
+            layouts.of_file[path] = _first_layout(path)
+        layout = layouts.of_file[path]
+        if layout is not None:
+            laid_out = _days_by_layout(path, days, field, [layout])
+            if laid_out is not None:
+                layouts.by_field.setdefault(field, []).append(layout)
     if laid_out is not None:
         return laid_out
     span = f"{pd.Timestamp(days.min()).isoformat()}/{pd.Timestamp(days.max()).isoformat()}"
     part = open_target(path, time=span, fields=[field])[field]
-    if found is None and _plain_netcdf(path):  # the layout's own candidates, not curvilinear
-        parts, names = _open_parts(path, None)
-        layout = _file_layout(path, _candidates_in(path, parts), names)
-        if layout is not None:
-            layouts.setdefault(field, []).append(layout)
     return part.sel(time=part["time"].isin(days))
+
+
+def _days_by_layout(path, days, field, layouts):
+    """``field`` of a file at ``days`` read by the first of ``layouts`` its header fits,
+    gated as a target (:func:`_laid_out_days`); None when none fits or it fails."""
+    found = _laid_out_candidates(path, layouts, {})
+    candidate = next((c for c in found or () if c.field == field), None)
+    return None if candidate is None else _laid_out_days(candidate, days)
+
+
+def _fits_a_layout(path, layouts):
+    """Whether a plain NetCDF file's header is that of one of ``layouts``."""
+    if not layouts or not _plain_netcdf(path):
+        return False
+    import netCDF4
+    try:
+        with netCDF4.Dataset(path) as handle:
+            return _fitting_layout(handle, layouts) is not None
+    except Exception:  # read the full way, which says what is wrong
+        return False
+
+
+def _first_layout(path):
+    """The layout of a plain NetCDF file (:func:`_file_layout`) whose recognition warns
+    of nothing (a conversion said, a variable skipped: the full way says it); else None."""
+    if not _plain_netcdf(path):  # the layout's own candidates, not curvilinear
+        return None
+    with warnings.catch_warnings(record=True) as said:
+        warnings.simplefilter("always")
+        try:
+            parts, names = _open_parts(path, None)
+            layout = _file_layout(path, _candidates_in(path, parts), names)
+        except Exception:  # read the full way, which says what is wrong
+            return None
+    return None if said else layout
 
 
 def _laid_out_days(candidate, days):

@@ -1259,10 +1259,11 @@ def archive_day_fields(store, rows) -> tuple[xr.Dataset | None, str]:
         if provenance([path])[0]["bytes"] != entry["bytes"]:
             return None, f"archive file {path} changed size since the build"
     wanted = pd.DatetimeIndex(store.times[rows])
-    # fields_of: the fields files of the same variables held; layouts: by field
-    found, fields_of, layouts = {}, {}, {}
+    # fields_of: the fields files of the same variables held
+    found, fields_of = {}, {}
     try:
-        from analogs.stages.sources import target_days
+        from analogs.stages.sources import DayLayouts, target_days
+        layouts = DayLayouts()
         for entry in inputs:
             held, variables = _times_held(entry["path"])
             if held is None:
