@@ -102,12 +102,16 @@ class Frame:
                 (self.lat1 - np.asarray(lat, dtype=float)) * self.y_scale)
 
     def path(self, lines) -> str:
-        """The SVG path data of (n, 2) arrays of (lon, lat)."""
-        parts = []
-        for line in lines:
-            x, y = self.px(line[:, 0], line[:, 1])
-            parts.append("M" + _points(np.c_[x, y]))
-        return "".join(parts)
+        """The SVG path data of (n, 2) arrays of (lon, lat): every point placed and
+        written at once, then cut back into its line."""
+        lines = list(lines)
+        if not lines:
+            return ""
+        joined = np.concatenate(lines).reshape(-1, 2)
+        pairs = _points(np.column_stack(self.px(joined[:, 0], joined[:, 1]))).split(" ")
+        ends = np.cumsum([len(line) for line in lines])
+        return "".join("M" + " ".join(pairs[start:end])
+                       for start, end in zip(np.r_[0, ends[:-1]], ends))
 
 
 def _stroke(d, colour, width, dashes=None, extra="") -> str:
@@ -162,7 +166,7 @@ def _contours(frame, lon, lat, values, levels, *, colour, width, labelled=False,
     """Contour lines of ``values`` at ``levels`` as one path; with ``labelled``, each
     line long enough carries its level at its middle (white halo), labels kept apart."""
     traced = contour_lines(lon, lat, values, levels)
-    d = "".join(frame.path(lines) for _, lines in traced)
+    d = frame.path([line for _, lines in traced for line in lines])
     parts = [_stroke(d, colour, width, extra=f' class="{css}"')]
     if labelled:
         placed = []

@@ -1282,13 +1282,11 @@ def archive_day_fields(store, rows) -> tuple[xr.Dataset | None, str]:
                 found.setdefault(name, []).append(part)
     except (AnalogsInputError, OSError, ValueError) as error:
         return None, f"the archive could not be read ({' '.join(str(error).split())[:120]})"
-    found = {name: xr.concat(parts, dim="time").drop_duplicates("time")
-             for name, parts in found.items()}
-    missing = [name for name in store.fields if name not in found
-               or not wanted.isin(found[name]["time"].values).all()]
+    missing = [name for name in store.fields if name not in found or not wanted.isin(
+        np.concatenate([part["time"].values for part in found[name]])).all()]
     if missing:
         return None, f"the archive files do not hold every day drawn ({', '.join(missing)})"
-    merged = xr.Dataset({name: found[name].sel(time=wanted.values) for name in store.fields})
+    merged = xr.Dataset({name: _at_days(found[name], wanted.values) for name in store.fields})
     lat, lon = store.grid
     rows_at = _positions(merged["lat"].values, lat)
     columns_at = _positions(merged["lon"].values, lon)
@@ -1304,6 +1302,25 @@ def archive_day_fields(store, rows) -> tuple[xr.Dataset | None, str]:
         out[name] = xr.DataArray(fields[name].transpose("time", "lat", "lon").values,
                                  dims=("analog", "lat", "lon"), attrs=dict(fields[name].attrs))
     return out, "archive"
+
+
+def _at_days(parts, days) -> xr.DataArray:
+    """The parts (DataArrays on (time, lat, lon)) joined along time at ``days``, each
+    day's values from the first part holding it: ``xr.concat(parts, "time")
+    .drop_duplicates("time").sel(time=days)``, its values gathered with numpy when the
+    parts share their latitudes and longitudes (no alignment to do)."""
+    import xarray as xr
+    first = parts[0]
+    if any(not (part["lat"].equals(first["lat"]) and part["lon"].equals(first["lon"]))
+           for part in parts[1:]):
+        return xr.concat(parts, dim="time").drop_duplicates("time").sel(time=days)
+    times = np.concatenate([part["time"].values for part in parts])
+    unique, first_at = np.unique(times, return_index=True)
+    at = first_at[np.searchsorted(unique, days)]
+    values = np.concatenate([part.values for part in parts])[at]
+    return xr.DataArray(values, dims=first.dims, coords={
+        "time": xr.Variable("time", times[at], first["time"].attrs),
+        "lat": first["lat"], "lon": first["lon"]}, name=first.name, attrs=first.attrs)
 
 
 def _positions(source, target, tolerance=1e-6) -> np.ndarray | None:
