@@ -2,17 +2,17 @@
 shapely's clip and hand-worked intersections), the archive's coast against the Earth's,
 and coastlines and borders read from cartopy's offline data (known places, from memory).
 
-The tests that read data skip, saying why, when pyshp or the shapefiles are missing
-(``pip install .[maps]`` and Debian's python-cartopy-data give GSHHS coastlines; Natural
-Earth files in ``$CARTOPY_DATA_DIR`` give borders too)."""
-
-import importlib.util
+The tests that read installed data skip, saying why, when the shapefiles are missing
+(Debian's python-cartopy-data gives GSHHS coastlines; Natural Earth files in
+``$CARTOPY_DATA_DIR`` give borders too). The shapefile reader is checked against pyshp,
+cartopy's own reader (the test extra), on files pyshp writes and on the installed ones."""
 
 import numpy as np
 import pytest
 import xarray as xr
 from matplotlib.path import Path as MatplotlibPath
 
+from analogs.errors import AnalogsInputError
 from analogs.geo import MapLines, clip_lines, nearest_index
 from analogs.presentation import svg_maps
 from analogs.presentation.map_layers import LAND_NOTE, PLAIN_AXES_NOTE
@@ -26,8 +26,6 @@ COAST_TOLERANCE_DEG = 0.25
 
 
 def _files():
-    if importlib.util.find_spec("shapefile") is None:
-        pytest.skip("pyshp is not installed (pip install .[maps]): no coastlines to test")
     files = geography.line_files(geography.data_folders())
     if "coastline" not in files:
         pytest.skip("no coastline shapefile in cartopy's data folders (apt-get install "
@@ -290,7 +288,7 @@ def test_a_store_without_a_mask_is_not_said_to_draw_one():
 
 
 def _write_shapefile(path, kind, parts):
-    shapefile = pytest.importorskip("shapefile", reason="pyshp (the maps extra) absent")
+    shapefile = pytest.importorskip("shapefile", reason="pyshp (the test extra) is not installed")
     path.parent.mkdir(parents=True, exist_ok=True)
     with shapefile.Writer(str(path), shapeType=kind) as writer:
         writer.field("name", "C")
@@ -303,7 +301,7 @@ def test_files_in_cartopy_layout_give_each_kind_and_drop_small_lakes(monkeypatch
     """Natural Earth files written in cartopy's layout under $CARTOPY_DATA_DIR are found
     and read: the border, and of two lakes the 2 x 1 degree one (2 square degrees, by
     hand) but not the 0.2 x 0.2 one (0.04, below MIN_LAKE_AREA_DEG2)."""
-    shapefile = pytest.importorskip("shapefile", reason="pyshp (the maps extra) absent")
+    shapefile = pytest.importorskip("shapefile", reason="pyshp (the test extra) is not installed")
     root = tmp_path / "shapefiles" / "natural_earth"
     _write_shapefile(root / "physical" / "ne_50m_coastline.shp", shapefile.POLYLINE,
                      [[[-100.0, 30.0], [-90.0, 30.0]]])
@@ -320,9 +318,74 @@ def test_files_in_cartopy_layout_give_each_kind_and_drop_small_lakes(monkeypatch
     np.testing.assert_allclose(lines.coastline[1], big)
 
 
+def _pyshp_lines(path):
+    """Every part of every shape with two points or more, as pyshp reads them."""
+    import shapefile
+    lines = []
+    with shapefile.Reader(str(path)) as reader:
+        for shape in reader.iterShapes():
+            points = np.asarray(shape.points, dtype=float).reshape(-1, 2)
+            bounds = [*shape.parts, len(points)]
+            lines += [points[a:b] for a, b in zip(bounds[:-1], bounds[1:]) if b - a > 1]
+    return lines
+
+
+def test_shapefile_lines_are_pyshps(tmp_path):
+    """pyshp (cartopy's shapefile reader) writes polylines, polygons of several rings,
+    polylines with Z and M values, points and null shapes; every line and ring read
+    equals pyshp's own reading, point for point, as do those of the installed GSHHS
+    files; a file that is not a shapefile, or is cut short, is refused by name."""
+    shapefile = pytest.importorskip("shapefile", reason="pyshp (the test extra) is not installed")
+    rng = np.random.default_rng(8)
+    path = tmp_path / "mixed.shp"
+    with shapefile.Writer(str(path), shapeType=shapefile.POLYLINE) as writer:
+        writer.field("name", "C")
+        for n in (2, 7, 1, 30):
+            writer.line([rng.uniform(-180, 180, (n, 2)).tolist(),
+                         rng.uniform(-90, 90, (3, 2)).tolist()])
+            writer.record("line")
+        writer.null()
+        writer.record("nothing")
+    rings = tmp_path / "rings.shp"
+    with shapefile.Writer(str(rings), shapeType=shapefile.POLYGON) as writer:
+        writer.field("name", "C")
+        square = [[0.0, 0.0], [0.0, 1.0], [1.0, 1.0], [1.0, 0.0], [0.0, 0.0]]
+        hole = [[0.2, 0.2], [0.4, 0.2], [0.4, 0.4], [0.2, 0.4], [0.2, 0.2]]
+        writer.poly([square, hole])
+        writer.record("lake with an island")
+    with_z = tmp_path / "with_z.shp"
+    with shapefile.Writer(str(with_z), shapeType=shapefile.POLYLINEZ) as writer:
+        writer.field("name", "C")
+        writer.linez([[[-100.0, 30.0, 5.0, 1.0], [-90.0, 35.0, 6.0, 2.0],
+                       [-80.0, 31.0, 7.0, 3.0]]])
+        writer.record("z")
+    points = tmp_path / "points.shp"
+    with shapefile.Writer(str(points), shapeType=shapefile.POINT) as writer:
+        writer.field("name", "C")
+        writer.point(1.0, 2.0)
+        writer.record("a point")
+    installed = [folder / name for folder in geography.data_folders()
+                 for names in geography.GSHHS_FILES.values() for name in names]
+    for file in [path, rings, with_z, points] + [p for p in installed if p.is_file()]:
+        expected = _pyshp_lines(file)
+        found = geography.shapefile_lines.__wrapped__(str(file))
+        assert len(found) == len(expected), file
+        for ours, theirs in zip(found, expected):
+            assert ours.dtype == np.float64 and np.array_equal(ours, theirs)
+    assert len(geography.shapefile_lines.__wrapped__(str(path))) == 7  # 8 parts, one a point
+    assert geography.shapefile_lines.__wrapped__(str(points)) == ()
+    (tmp_path / "text.shp").write_text("not a shapefile, longer than its header would be " * 3)
+    with pytest.raises(AnalogsInputError, match="text.shp is not an ESRI shapefile"):
+        geography.shapefile_lines.__wrapped__(str(tmp_path / "text.shp"))
+    (tmp_path / "cut.shp").write_bytes(path.read_bytes()[:180])
+    with pytest.raises(AnalogsInputError, match="cut.shp: shapefile record at byte 100"):
+        geography.shapefile_lines.__wrapped__(str(tmp_path / "cut.shp"))
+
+
 def test_ring_areas_match_shapely():
     """Areas of random rings (open or closed, either orientation) and of the installed
-    GSHHS lakes (when pyshp, the maps extra, can read them), all in one pass: shapely's Polygon.area (GEOS) is the reference."""
+    GSHHS lakes (when installed), all in one pass: shapely's Polygon.area (GEOS) is the
+    reference."""
     shapely = pytest.importorskip("shapely", reason="shapely (the test extra) is not installed")
     rng = np.random.default_rng(3)
     rings = []
@@ -334,7 +397,7 @@ def test_ring_areas_match_shapely():
         rings.append(np.vstack([ring, ring[:1]]) if rng.random() < 0.5 else ring)
     lakes = [folder / geography.GSHHS_FILES["lake"][0] for folder in geography.data_folders()]
     lake_file = next((path for path in lakes if path.is_file()), None)
-    if lake_file is not None and importlib.util.find_spec("shapefile") is not None:
+    if lake_file is not None:
         rings += [ring for ring in geography.shapefile_lines(str(lake_file)) if len(ring) > 3]
     expected = [shapely.Polygon(ring).area for ring in rings]
     # atol: rounding of the products of coordinates up to 180 x 90 (tiny lakes far from

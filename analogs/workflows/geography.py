@@ -6,22 +6,25 @@ The files are looked for where cartopy keeps its offline data, in cartopy's own 
 ``shapefiles/gshhs/{c,l}/GSHHS_*_L1.shp``): ``$CARTOPY_DATA_DIR`` (cartopy's
 pre-existing data folder), ``$XDG_DATA_HOME/cartopy`` (its download folder), Debian's
 ``/usr/share/cartopy/data`` (package python-cartopy-data: GSHHS coastlines only) and the
-``data`` folder of an installed cartopy. They are read with pyshp, cartopy's own
-shapefile reader, without importing cartopy: that import (pyproj, shapely) would cost
-more than the reading, and its downloader is never reached. Each file is read once per
-process (cached) and only when a map is drawn, never by a query's JSON answer.
+``data`` folder of an installed cartopy. They are read here (:func:`shapefile_lines`,
+the ESRI shapefile layout), without importing cartopy: that import (pyproj, shapely)
+would cost more than the reading, and its downloader is never reached. Each file is
+read once per process (cached) and only when a map is drawn, never by a query's JSON
+answer.
 """
 
 from __future__ import annotations
 
 import importlib.util
 import os
+import struct
 from functools import lru_cache
 from itertools import pairwise
 from pathlib import Path
 
 import numpy as np
 
+from analogs.errors import AnalogsInputError
 from analogs.geo import MapLines, clip_lines
 
 #: Natural Earth scales tried in turn: 50m suits a synoptic map; 110m and 10m when that
@@ -82,18 +85,50 @@ def line_files(folders) -> dict[str, Path]:
     return found
 
 
+#: Shape types of the ESRI shapefile specification (ESRI Shapefile Technical
+#: Description, July 1998) whose records begin with a box, part and point counts, the
+#: parts' starts and the points' (x, y): PolyLine, Polygon and their Z and M variants.
+LINE_SHAPE_TYPES = frozenset({3, 5, 13, 15, 23, 25})
+#: The file code that opens every shapefile (big-endian, bytes 0-3), per the same.
+SHAPEFILE_CODE = 9994
+
+
 @lru_cache(maxsize=8)
 def shapefile_lines(path: str, min_area: float = 0.0) -> tuple[np.ndarray, ...]:
-    """Every part of every shape of the shapefile ``path`` as an (n, 2) array of
-    (lon, lat); polygons give their rings, only those enclosing at least ``min_area``
-    square degrees (shoelace formula) when it is positive."""
-    import shapefile
+    """Every part of every line or polygon shape of the shapefile ``path`` as an (n, 2)
+    array of (lon, lat); polygons give their rings, only those enclosing at least
+    ``min_area`` square degrees (shoelace formula) when it is positive.
+
+    The main file (``.shp``) is read as the ESRI Shapefile Technical Description (July
+    1998) lays it out: a 100-byte header, then records of an 8-byte big-endian header
+    (number, content length in 16-bit words) and a little-endian content whose line
+    and polygon shapes hold a box, the number of parts and of points, each part's
+    first point and the points as (x, y) doubles (Z and M values follow and are not
+    read); other shapes (null, points) are skipped. The points are taken straight from
+    the bytes (pyshp, the reference of tests/test_geography.py, builds a Python list
+    per point; its import alone cost more than this reading)."""
+    data = Path(path).read_bytes()
+    if len(data) < 100 or int.from_bytes(data[:4], "big") != SHAPEFILE_CODE:
+        raise AnalogsInputError(f"{path} is not an ESRI shapefile (its first 4 bytes are "
+                                f"not the file code {SHAPEFILE_CODE}); remove or replace it")
     lines = []
-    with shapefile.Reader(path) as reader:
-        for shape in reader.iterShapes():
-            points = np.asarray(shape.points, dtype=float)
-            bounds = list(shape.parts) + [len(points)]
-            lines.extend(points[a:b] for a, b in pairwise(bounds) if b - a > 1)
+    offset = 100
+    try:
+        while offset + 12 <= len(data):
+            length = 2 * int.from_bytes(data[offset + 4:offset + 8], "big")
+            content = offset + 8
+            if int.from_bytes(data[content:content + 4], "little") in LINE_SHAPE_TYPES:
+                n_parts, n_points = struct.unpack_from("<2i", data, content + 36)
+                starts = np.frombuffer(data, "<i4", n_parts, content + 44)
+                points = np.frombuffer(data, "<f8", 2 * n_points,
+                                       content + 44 + 4 * n_parts).reshape(n_points, 2)
+                points = points.astype(float)  # native order, writeable
+                bounds = [*starts.tolist(), n_points]
+                lines.extend(points[a:b] for a, b in pairwise(bounds) if b - a > 1)
+            offset = content + length
+    except (ValueError, struct.error) as error:  # a record reaching past the end
+        raise AnalogsInputError(f"{path}: shapefile record at byte {offset} is cut short "
+                                f"({error}); remove or replace the file") from None
     if min_area > 0.0:
         lines = [ring for ring, area in zip(lines, ring_areas(lines)) if area >= min_area]
     return tuple(lines)
@@ -116,12 +151,10 @@ def ring_areas(rings) -> np.ndarray:
 
 def map_lines(lat, lon, land=None) -> MapLines | None:
     """The coastlines (with lake shores), borders and state lines inside the extent of
-    the grid ``lat``, ``lon`` (degrees; longitudes in any frame), or None when pyshp or
-    the files are missing. With ``land``, the archive's land fraction on that grid, the lines are
+    the grid ``lat``, ``lon`` (degrees; longitudes in any frame), or None when the files
+    are missing. With ``land``, the archive's land fraction on that grid, the lines are
     withheld (``MapLines.withheld`` says why) when the archive's coast does not follow
     the Earth's (:data:`MIN_COAST_AGREEMENT`): a synthetic archive's continent."""
-    if importlib.util.find_spec("shapefile") is None:
-        return None
     files = line_files(data_folders())
     if not files:
         return None
