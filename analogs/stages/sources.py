@@ -471,17 +471,22 @@ def _laid_out_days(candidate, days):
     if not np.array_equal(times[steps], days):
         return None
     read = np.union1d(steps, [0, times.size - 1])
-    piece = _laid_out_piece(candidate, None).isel(time=read)
+    layout = candidate.laid_out.layout
     low_ok, high_ok = PLAUSIBLE_RANGE[candidate.field]
     try:
-        piece = piece.copy(data=_read_laid_out(candidate.path, candidate.laid_out.layout, (
-            read, slice(None), slice(None))))
-        low, high = _sample_range(piece.isel(time=[0, read.size - 1]))
-        if np.isfinite(low) and not (low_ok <= low and high <= high_ok):
+        values = _read_laid_out(candidate.path, layout, (read, slice(None), slice(None)))
+        ends = np.asarray(values[[0, read.size - 1]], dtype=float)
+        finite = ends[np.isfinite(ends)]  # _sample_range of the first and last steps
+        if finite.size and not (low_ok <= finite.min() and finite.max() <= high_ok):
             return None  # open_target converts a scale error or refuses the file
-        return _checked_target_values(
-            xr.Dataset({candidate.field: piece.isel(time=np.searchsorted(read, steps))}),
-            candidate.path, {candidate.field: candidate.name})[candidate.field]
+        at = np.searchsorted(read, steps)
+        # The piece _laid_out_piece describes, at the days alone.
+        piece = xr.DataArray(values[at], dims=("time", "lat", "lon"), coords={
+            "time": xr.Variable("time", times[read[at]], dict(_TIME_ATTRS)),
+            "lat": layout.lat, "lon": layout.lon}, name=candidate.field,
+            attrs=dict(layout.attrs))
+        return _checked_target_values(xr.Dataset({candidate.field: piece}), candidate.path,
+                                      {candidate.field: candidate.name})[candidate.field]
     except (AnalogsInputError, OSError, RuntimeError, ValueError):
         return None
 
