@@ -33,15 +33,8 @@ def uniform_filter(values, size, mode):
     a float64 array: the mean over a box of ``size`` (one odd or even length per axis)
     centred on each point; ``mode`` per axis, ``"constant"`` (zeros beyond the edge)
     or ``"wrap"`` (periodic)."""
-    values = np.asarray(values, dtype=float)
-    if _use_scipy(values):
-        from scipy import ndimage
-        return ndimage.uniform_filter(values, size=size, mode=mode)
-    out = values
-    for axis, (length, axis_mode) in enumerate(zip(size, mode)):
-        if length > 1:
-            out = _running_mean(out, int(length), axis, axis_mode)
-    return out if out is not values else values.copy()
+    return _separable(np.asarray(values, dtype=float), size, mode, "uniform_filter",
+                      _running_mean)
 
 
 def _running_mean(values, size, axis, mode):
@@ -68,14 +61,20 @@ def maximum_filter(values, size, mode):
     holding no NaN (infinities allowed): the largest value within a box of ``size``
     centred on each point; ``mode`` per axis, ``"nearest"`` (the edge value repeated)
     or ``"wrap"``."""
-    values = np.asarray(values)
+    return _separable(np.asarray(values), size, mode, "maximum_filter", _running_maximum)
+
+
+def _separable(values, size, mode, scipy_name, along_axis):
+    """scipy.ndimage's filter ``scipy_name`` of a large stack, or once scipy.ndimage is
+    imported; else ``along_axis`` along each axis whose box is longer than one point,
+    one axis after the other, as scipy's separable filters go."""
     if _use_scipy(values):
         from scipy import ndimage
-        return ndimage.maximum_filter(values, size=size, mode=mode)
+        return getattr(ndimage, scipy_name)(values, size=size, mode=mode)
     out = values
     for axis, (length, axis_mode) in enumerate(zip(size, mode)):
         if length > 1:
-            out = _running_maximum(out, int(length), axis, axis_mode)
+            out = along_axis(out, int(length), axis, axis_mode)
     return out if out is not values else values.copy()
 
 
