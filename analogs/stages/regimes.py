@@ -500,7 +500,7 @@ def cyclone_structure(ds: xr.Dataset, diagnostics: pd.DataFrame, *,
     day alone. ``centres``: the geometry around each centre, kept from earlier calls on
     the same grid (:func:`tag_days` passes one to every block of days).
     """
-    from analogs.stages.diagnostics import dewpoint_from_specific_humidity
+    from analogs.stages.diagnostics import dewpoint_from_specific_humidity, zonal_median
     names = list(STRUCTURE_UNITS)
     n = len(diagnostics)
     out = {name: np.full(n, np.nan) for name in names}
@@ -524,15 +524,14 @@ def cyclone_structure(ds: xr.Dataset, diagnostics: pd.DataFrame, *,
     excess = "tc_core_pwat_excess" if moisture == "pwat" else "tc_core_td_excess_k"
 
     def block_values(name, block):
-        return np.asarray(ds[name].transpose("time", "lat", "lon").isel(time=block).values,
-                          dtype=float)
+        """The fields of the block's days in their stored dtype: only the points read
+        are converted to float64 (the same values as converting the whole field)."""
+        return np.asarray(ds[name].transpose("time", "lat", "lon").isel(time=block).values)
 
     for block in _structure_blocks(rows, ds["z500"]):
         z = block_values("z500", block)
-        with np.errstate(invalid="ignore"):
-            # the zonal median of each row, for the whole block at once (numpy's
-            # median where no value is missing: the same values, far faster)
-            zonal = (np.median if not np.isnan(z).any() else np.nanmedian)(z, axis=-1)
+        # the zonal median of each row, for the whole block at once
+        zonal = zonal_median(z)[..., 0]
         m = None if moisture is None else block_values(moisture, block)
         low = None if lower is None else block_values(lower, block)
         z, m, low = (None if f is None else f.reshape(block.size, -1) for f in (z, m, low))
@@ -548,11 +547,11 @@ def cyclone_structure(ds: xr.Dataset, diagnostics: pd.DataFrame, *,
             archive_rows = block[days[:, 0]]
             around = centres.around(*key)
             octant = around.octant
-            anomaly = z[days, octant.flat] - zonal[days, octant.rows]
+            anomaly = z[days, octant.flat].astype(float) - zonal[days, octant.rows]
             out["tc_asymmetry"][archive_rows] = _ring_asymmetry(anomaly, around,
                                                                 c_depth[archive_rows])
             if m is not None:
-                values = m[days, around.moisture.flat]
+                values = m[days, around.moisture.flat].astype(float)
                 if moisture == "q850":
                     values = dewpoint_from_specific_humidity(values, 850.0) - ZERO_CELSIUS_K
                 elif moisture == "td2m":
@@ -561,8 +560,8 @@ def cyclone_structure(ds: xr.Dataset, diagnostics: pd.DataFrame, *,
                 out[level][archive_rows] = core
                 out[excess][archive_rows] = core - ring
             if low is not None:
-                dz_low = _hart_height_difference(low[days, around.hart])
-                dz_500 = _hart_height_difference(z[days, around.hart])
+                dz_low = _hart_height_difference(low[days, around.hart].astype(float))
+                dz_500 = _hart_height_difference(z[days, around.hart].astype(float))
                 out["tc_thermal_wind_gpm"][archive_rows] = (dz_low - dz_500) / np.log(
                     LOWER_LEVELS[lower] / 500.0)
     return pd.DataFrame(out, index=diagnostics.index)
