@@ -1286,20 +1286,27 @@ def _block_columns(z, moisture, *, lat, lon, lat_in, lon_in, weights, band_in,
     columns["flow_v_ms"] = v_mean
     columns["flow_direction_deg"] = _direction_np(u_mean, v_mean)
     columns["flow_speed_ms"] = np.hypot(u_mean, v_mean)
-    columns["height_gradient"] = _weighted_mean_np(np.hypot(dz_dx, dz_dy)[near], weights) * 1.0e6
+    columns["height_gradient"] = _weighted_mean_np(np.hypot(dz_dx[near], dz_dy[near]),
+                                                   weights) * 1.0e6
     columns["vorticity"] = _weighted_mean_np(zeta[near], weights)
     columns["vorticity_advection"] = _weighted_mean_np(vort_adv[near], weights)
     columns["cyclonic_advection"] = _weighted_mean_np(np.maximum(vort_adv[near], 0.0), weights)
 
-    # The wave profile needs the band's rows only (each row's own zonal mean).
+    # The wave profile needs the band's rows only (each row's own zonal mean). Where no
+    # value is missing, numpy's mean and sum: the values of nanmean and nansum (the same
+    # sums of the same values), without their copies and masks.
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)   # an all-missing latitude row
         band = z[:, band_in, :]
-        band = band - np.nanmean(band, axis=-1, keepdims=True)
-    band = np.where(np.isfinite(band), band, np.nan)
-    band_w = np.where(np.isfinite(band), band_weights[None, :, None], 0.0)
+        band = band - (np.nanmean if np.isnan(band).any() else np.mean)(band, axis=-1,
+                                                                       keepdims=True)
+    finite = np.isfinite(band)
+    complete = finite.all()
+    if not complete:
+        band = np.where(finite, band, np.nan)
+    band_w = np.where(finite, band_weights[None, :, None], 0.0)
     with np.errstate(invalid="ignore", divide="ignore"):
-        profile = np.nansum(band * band_w, axis=1) / band_w.sum(axis=1)
+        profile = (np.sum if complete else np.nansum)(band * band_w, axis=1) / band_w.sum(axis=1)
     profile = np.where(np.isfinite(profile), profile, np.nan)
     filled_max = np.where(np.isnan(profile), -np.inf, profile)
     filled_min = np.where(np.isnan(profile), np.inf, profile)
