@@ -209,6 +209,27 @@ def test_wave_anomaly_and_ridge_trough_positions():
     assert 50.0 < float(rt["ridge_amplitude"]) < 90.0
 
 
+@pytest.mark.parametrize("n_lon", [1, 2, 70, 71])
+def test_zonal_median_equals_numpy_median_bit_for_bit(n_lon):
+    # Reference: numpy.median / numpy.nanmedian of the float64 values (the closed-low
+    # search's former arithmetic), odd and even counts, float32 and float64 input.
+    rng = np.random.default_rng(3)
+    z = rng.normal(5600.0, 120.0, size=(40, 6, n_lon)).astype(np.float32)
+    z[3, 2, :] = z[3, 2, 0]  # ties
+    for values in (z, z.astype(float)):
+        found = dg.zonal_median(values)
+        assert found.dtype == np.float64 and found.shape == (40, 6, 1)
+        expected = np.median(z.astype(float), axis=-1, keepdims=True)
+        assert np.array_equal(found.view(np.int64), expected.view(np.int64))
+    gappy = z.astype(float)
+    gappy[5, 1, 0] = np.nan
+    gappy[7, 4, :] = np.nan
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        expected = np.nanmedian(gappy, axis=-1, keepdims=True)
+    assert np.array_equal(dg.zonal_median(gappy), expected, equal_nan=True)
+
+
 def test_find_closed_lows_gaussian_vortex():
     # A Gaussian low Z = -D exp(-r^2 / 2 sigma^2): the azimuthal mean recovers half the
     # depth at r = sigma sqrt(2 ln 2) (arithmetic from the formula) = 294 km for 250 km;

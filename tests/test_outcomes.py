@@ -215,6 +215,32 @@ def test_daily_event_counts_by_hand(small_events):
     assert list(only.columns) == ["hail", "total"] and only["total"].tolist() == [1]
 
 
+def test_daily_event_counts_equal_pandas_crosstab():
+    # Reference: pandas.crosstab of the events' convective days and kinds, reindexed on
+    # the days asked for (the former implementation): repeated and unordered days, days
+    # without events, events on days not asked for, every kind or one.
+    rng = np.random.default_rng(5)
+    n = 400
+    times = pd.Timestamp("2020-04-01T12:30") + pd.to_timedelta(rng.integers(0, 40 * 24, n), "h")
+    events = _events([(str(t), float(rng.uniform(28, 42)), float(rng.uniform(-102, -88)),
+                       str(rng.choice(["hail", "tornado", "wind"])))
+                      for t in times])
+    box = Region.box(30, 40, -100, -90)
+    days = pd.DatetimeIndex(rng.choice(pd.date_range("2020-03-25", "2020-05-20").to_numpy(), 90))
+    days = days.append(days[:7])
+    for kinds in (None, ["wind"]):
+        counts = daily_event_counts(events, days, box, kinds=kinds)
+        selected = counts.columns[:-1].tolist()
+        inside = box.contains(events["lat"].to_numpy(), events["lon"].to_numpy())
+        chosen = events[inside & events["kind"].isin(selected).to_numpy()]
+        table = pd.crosstab(convective_day(chosen["time"]).to_numpy(), chosen["kind"].to_numpy())
+        expected = table.reindex(index=days.normalize(), columns=selected,
+                                 fill_value=0).to_numpy(dtype=np.int64)
+        assert counts[selected].to_numpy().tolist() == expected.tolist()
+        assert counts["total"].tolist() == expected.sum(axis=1).tolist()
+        assert counts.index.equals(days.normalize().rename("day"))
+
+
 def test_unknown_kind_lists_known(small_events):
     with pytest.raises(AnalogsInputError,
                        match=r"must be kinds of the events table \('hail', "

@@ -546,7 +546,7 @@ def _event_days(events: pd.DataFrame) -> pd.Series:
 
 
 def _select_kinds(events: pd.DataFrame, kinds, owner: str):
-    known = sorted(set(events["kind"].astype(str)))
+    known = sorted(set(events["kind"].drop_duplicates().astype(str)))
     if kinds is None:
         return known
     if isinstance(kinds, str):
@@ -582,13 +582,19 @@ def daily_event_counts(events: pd.DataFrame, days, region: Region | None = None,
     region = Region.whole() if region is None else region
     inside = region.contains(events["lat"].to_numpy(), events["lon"].to_numpy())
     chosen = inside & events["kind"].isin(selected).to_numpy()
-    subset = pd.DataFrame({"day": _event_days(events)[chosen].to_numpy(),
-                           "kind": events["kind"].to_numpy()[chosen]})
-    table = pd.crosstab(subset["day"], subset["kind"]) if len(subset) else None
-    counts = pd.DataFrame(0, index=index, columns=selected, dtype=np.int64)
-    if table is not None:
-        table = table.reindex(index=index, columns=selected, fill_value=0)
-        counts.loc[:, :] = table.to_numpy(dtype=np.int64)
+    event_days = _event_days(events)[chosen].to_numpy(dtype="datetime64[ns]")
+    kind_codes = pd.Categorical(events["kind"].to_numpy()[chosen], categories=selected).codes
+    # Each event's place among the distinct days asked for, counted by one bincount
+    # (pandas' crosstab took a tenth of a 40-year build's skill step); an event on a day
+    # not asked for, or without a day, is not counted.
+    distinct, row_of = np.unique(index.to_numpy(), return_inverse=True)
+    place = np.searchsorted(distinct, event_days)
+    found = place < distinct.size
+    found[found] = distinct[place[found]] == event_days[found]
+    cells = np.bincount(place[found] * len(selected) + kind_codes[found],
+                        minlength=distinct.size * len(selected))
+    counts = pd.DataFrame(cells.reshape(distinct.size, len(selected))[row_of.ravel()],
+                          index=index, columns=selected, dtype=np.int64)
     counts["total"] = counts[selected].sum(axis=1).astype(np.int64)
     counts.index = index
     return counts

@@ -284,10 +284,10 @@ LOWER_LEVELS = {"z850": 850.0, "z1000": 1000.0}
 #: at once; emptied when full. 40 years at 1 degree have 411 centres of a few kB each; at
 #: 0.25 degree a centre's measures read some 6,000 points (about 140 kB).
 _CENTRE_CACHE_BYTES = 64 * 2**20
-#: Bytes of one field's float64 values that :func:`cyclone_structure` reads at once
+#: Bytes of one field's values as stored that :func:`cyclone_structure` reads at once
 #: from an in-memory archive (days of a block are measured together, centre by centre:
-#: the larger the block, the fewer the groups; 64 MB: 3,000 days at 1 degree, 200 at
-#: 0.25 degree).
+#: the larger the block, the fewer the groups; 64 MB of float32: 6,500 days of 36 x 71
+#: points, 400 at 0.25 degree over 140 x 280).
 _STRUCTURE_BLOCK_BYTES = 64 * 2**20
 
 
@@ -446,13 +446,16 @@ def _box_around(centre_lat, centre_lon, lat, lon, radius_km):
 
 def _structure_blocks(rows: np.ndarray, z500) -> list[np.ndarray]:
     """The closed-low days ``rows`` in blocks read at once: of an in-memory archive, as
-    many days as :data:`_STRUCTURE_BLOCK_BYTES` hold; of a chunked (dask) one, the days
+    many days as :data:`_STRUCTURE_BLOCK_BYTES` hold in the stored dtype (blocks are
+    read as stored; 40 years at 1 degree in float32: one block, each centre's days
+    measured together once); of a chunked (dask) one, the days
     of one time chunk, so that each chunk is read once (64-day blocks of scattered days
     read each chunk about five times: measured, 40 years at 1 degree in 365-day chunks,
     14 s of 16 s)."""
     sizes = (z500.chunksizes or {}).get("time")
     if not sizes:
-        days = max(1, _STRUCTURE_BLOCK_BYTES // (8 * z500.sizes["lat"] * z500.sizes["lon"]))
+        days = max(1, _STRUCTURE_BLOCK_BYTES // (z500.dtype.itemsize * z500.sizes["lat"]
+                                                 * z500.sizes["lon"]))
         return [rows[start:start + days] for start in range(0, rows.size, days)]
     chunk = np.searchsorted(np.cumsum(sizes), rows, side="right")
     return np.split(rows, np.flatnonzero(np.diff(chunk)) + 1)
@@ -500,7 +503,7 @@ def cyclone_structure(ds: xr.Dataset, diagnostics: pd.DataFrame, *,
     day alone. ``centres``: the geometry around each centre, kept from earlier calls on
     the same grid (:func:`tag_days` passes one to every block of days).
     """
-    from analogs.stages.diagnostics import dewpoint_from_specific_humidity
+    from analogs.stages.diagnostics import dewpoint_from_specific_humidity, zonal_median
     names = list(STRUCTURE_UNITS)
     n = len(diagnostics)
     out = {name: np.full(n, np.nan) for name in names}
@@ -524,15 +527,14 @@ def cyclone_structure(ds: xr.Dataset, diagnostics: pd.DataFrame, *,
     excess = "tc_core_pwat_excess" if moisture == "pwat" else "tc_core_td_excess_k"
 
     def block_values(name, block):
-        return np.asarray(ds[name].transpose("time", "lat", "lon").isel(time=block).values,
-                          dtype=float)
+        """The fields of the block's days in their stored dtype: only the points read
+        are converted to float64 (the same values as converting the whole field)."""
+        return np.asarray(ds[name].transpose("time", "lat", "lon").isel(time=block).values)
 
     for block in _structure_blocks(rows, ds["z500"]):
         z = block_values("z500", block)
-        with np.errstate(invalid="ignore"):
-            # the zonal median of each row, for the whole block at once (numpy's
-            # median where no value is missing: the same values, far faster)
-            zonal = (np.median if not np.isnan(z).any() else np.nanmedian)(z, axis=-1)
+        # the zonal median of each row, for the whole block at once
+        zonal = zonal_median(z)[..., 0]
         m = None if moisture is None else block_values(moisture, block)
         low = None if lower is None else block_values(lower, block)
         z, m, low = (None if f is None else f.reshape(block.size, -1) for f in (z, m, low))
@@ -548,11 +550,11 @@ def cyclone_structure(ds: xr.Dataset, diagnostics: pd.DataFrame, *,
             archive_rows = block[days[:, 0]]
             around = centres.around(*key)
             octant = around.octant
-            anomaly = z[days, octant.flat] - zonal[days, octant.rows]
+            anomaly = z[days, octant.flat].astype(float) - zonal[days, octant.rows]
             out["tc_asymmetry"][archive_rows] = _ring_asymmetry(anomaly, around,
                                                                 c_depth[archive_rows])
             if m is not None:
-                values = m[days, around.moisture.flat]
+                values = m[days, around.moisture.flat].astype(float)
                 if moisture == "q850":
                     values = dewpoint_from_specific_humidity(values, 850.0) - ZERO_CELSIUS_K
                 elif moisture == "td2m":
@@ -561,8 +563,8 @@ def cyclone_structure(ds: xr.Dataset, diagnostics: pd.DataFrame, *,
                 out[level][archive_rows] = core
                 out[excess][archive_rows] = core - ring
             if low is not None:
-                dz_low = _hart_height_difference(low[days, around.hart])
-                dz_500 = _hart_height_difference(z[days, around.hart])
+                dz_low = _hart_height_difference(low[days, around.hart].astype(float))
+                dz_500 = _hart_height_difference(z[days, around.hart].astype(float))
                 out["tc_thermal_wind_gpm"][archive_rows] = (dz_low - dz_500) / np.log(
                     LOWER_LEVELS[lower] / 500.0)
     return pd.DataFrame(out, index=diagnostics.index)
