@@ -129,3 +129,20 @@ def test_thin_qr_on_one_thread_is_numpy_qr():
         columns = rng.standard_normal(shape).astype(np.float32)
         np.testing.assert_array_equal(eof_stage._orthonormal(columns),
                                       np.linalg.qr(columns)[0])
+
+
+def test_strided_field_gives_the_anomalies_of_its_contiguous_copy():
+    """A field that is a strided view (every other longitude of a larger array) gets
+    the anomalies of its C-ordered copy, bit for bit."""
+    rng = np.random.default_rng(9)
+    times = pd.date_range("2003-01-01", periods=800)
+    lat, lon = np.linspace(20.0, 50.0, 11), np.linspace(-120.0, -60.0, 40)
+    wide = xr.Dataset({"z500": (("time", "lat", "lon"),
+                                rng.normal(5600.0, 40.0, (800, 11, 40)).astype(np.float32))},
+                      coords={"time": times, "lat": lat, "lon": lon})
+    strided = wide.isel(lon=slice(0, None, 2))
+    assert not strided["z500"].values.flags.c_contiguous
+    contiguous = strided.copy(deep=True)
+    climatology = HarmonicClimatology().fit(contiguous)
+    np.testing.assert_array_equal(climatology.transform(strided)["z500"].values,
+                                  climatology.transform(contiguous)["z500"].values)
