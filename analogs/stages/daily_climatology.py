@@ -31,8 +31,8 @@ import xarray as xr
 
 from analogs.errors import AnalogsInputError, NotFittedError
 from analogs.parameters import P
-from analogs.stages.blockwise import (BLOCK_VALUES, block_length, cache_rows, cache_steps,
-                                      even_ranges, in_threads)
+from analogs.stages.blockwise import (block_length, cache_rows, cache_steps, even_ranges,
+                                      in_threads)
 
 __all__ = ["HarmonicClimatology", "annual_angle", "harmonic_design_matrix"]
 
@@ -204,6 +204,13 @@ def _anomaly_block(values, times, coef_flat, n_harmonics: int, dtype):
     return out.astype(dtype, copy=False).reshape(values.shape)
 
 
+#: Values of the climatology table of one column range (8 MB in float64). Tables of
+#: 32 MB, made in the worker threads, stayed in their malloc arenas after use: 60 MB
+#: more resident memory for the rest of the 0.25-degree build; tables of 2 MB made
+#: ranges so narrow that the 1-degree anomalies took 1.5x the CPU time.
+TABLE_VALUES = 2 ** 20
+
+
 def _anomalies_in_memory(field: np.ndarray, times, coef_flat: np.ndarray, n_harmonics: int,
                          dtype) -> np.ndarray:
     """:func:`_anomaly_block` of a whole in-memory ``field (time, lat, lon)``, with the
@@ -211,7 +218,7 @@ def _anomalies_in_memory(field: np.ndarray, times, coef_flat: np.ndarray, n_harm
     of the design matrix (a day of the year, 731 of them over leap and common years)
     rather than once per time, each cache-sized step of times takes its rows of that
     table, and the grid is split into column ranges worked in threads (ranges narrow
-    enough that their table stays within :data:`BLOCK_VALUES` values)."""
+    enough that their table stays within :data:`TABLE_VALUES` values)."""
     n_times = field.shape[0]
     values = np.empty((n_times, field[0].size), dtype=dtype)
     # Times at one angle have one design row (np.unique of the rows themselves sorts
@@ -232,7 +239,7 @@ def _anomalies_in_memory(field: np.ndarray, times, coef_flat: np.ndarray, n_harm
             np.subtract(rows, climatology, out=climatology)
             values[start:stop, columns] = climatology
 
-    in_threads(anomalies_of, even_ranges(values.shape[1], BLOCK_VALUES // len(days)))
+    in_threads(anomalies_of, even_ranges(values.shape[1], TABLE_VALUES // len(days)))
     return values.reshape(field.shape)
 
 
