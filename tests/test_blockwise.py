@@ -146,3 +146,22 @@ def test_strided_field_gives_the_anomalies_of_its_contiguous_copy():
     climatology = HarmonicClimatology().fit(contiguous)
     np.testing.assert_array_equal(climatology.transform(strided)["z500"].values,
                                   climatology.transform(contiguous)["z500"].values)
+
+
+def test_empty_without_hugepage_advice_restores_numpy_switch():
+    """The array is numpy.empty's (shape, dtype, writeable, C order), and numpy's
+    process-wide huge-page switch is as it was before the call, whichever it was."""
+    from numpy._core.multiarray import _set_madvise_hugepage
+
+    from analogs.stages.blockwise import empty_without_hugepage_advice
+
+    before = _set_madvise_hugepage(True)
+    try:
+        for setting in (True, False):
+            _set_madvise_hugepage(setting)
+            array = empty_without_hugepage_advice((300, 5000), np.float32)
+            assert array.shape == (300, 5000) and array.dtype == np.float32
+            assert array.flags.c_contiguous and array.flags.writeable
+            assert _set_madvise_hugepage(setting) is setting
+    finally:
+        _set_madvise_hugepage(before)

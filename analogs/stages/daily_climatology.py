@@ -31,8 +31,8 @@ import xarray as xr
 
 from analogs.errors import AnalogsInputError, NotFittedError
 from analogs.parameters import P
-from analogs.stages.blockwise import (block_length, cache_rows, cache_steps, even_ranges,
-                                      in_threads)
+from analogs.stages.blockwise import (block_length, cache_rows, cache_steps,
+                                      empty_without_hugepage_advice, even_ranges, in_threads)
 
 __all__ = ["HarmonicClimatology", "annual_angle", "harmonic_design_matrix"]
 
@@ -220,7 +220,7 @@ def _anomalies_in_memory(field: np.ndarray, times, coef_flat: np.ndarray, n_harm
     table, and the grid is split into column ranges worked in threads (ranges narrow
     enough that their table stays within :data:`TABLE_VALUES` values)."""
     n_times = field.shape[0]
-    values = np.empty((n_times, field[0].size), dtype=dtype)
+    values = empty_without_hugepage_advice((n_times, field[0].size), dtype)
     # Times at one angle have one design row (np.unique of the rows themselves sorts
     # 7-value records: 0.1 s for 40 years).
     _, first_time, day_of_time = np.unique(annual_angle(times), return_index=True,
