@@ -2,11 +2,13 @@
 
 The climatology and EOF stages read the archive-sized arrays in blocks of
 :func:`block_length` rows (their float64 temporaries stay small beside the field) and
-work each block in cache-sized steps of rows (:func:`cache_steps`), split by columns
-over the machine's cores (:func:`even_ranges`, :func:`in_threads`; numpy releases the GIL in its loops).
-:class:`ColumnMoments` accumulates the EOF fit's per-column moments in those steps
-with the rounding of whole-block numpy reductions, so the results do not depend on
-the step or the split.
+work them in cache-sized steps of rows (:func:`cache_steps`), the columns or the rows
+split over the machine's cores (:func:`even_ranges`, :func:`in_threads`; numpy
+releases the GIL in its loops). :class:`ColumnMoments` accumulates the EOF fit's
+per-column moments in those steps with the rounding of whole-block numpy reductions,
+so the results do not depend on the step or the split. Also: a new array without
+numpy's huge-page advice, and numpy's BLAS on one thread, for the calls whose bits do
+not depend on the thread count.
 """
 
 from __future__ import annotations
