@@ -31,6 +31,8 @@ import xarray as xr
 
 from analogs.errors import AnalogsInputError, NotFittedError
 from analogs.parameters import P
+from analogs.stages.blockwise import (block_length, cache_rows, cache_steps,
+                                      empty_without_hugepage_advice, even_ranges, in_threads)
 
 __all__ = ["HarmonicClimatology", "annual_angle", "harmonic_design_matrix"]
 
@@ -150,16 +152,6 @@ def _as_time_series(ds: xr.Dataset) -> tuple[xr.Dataset, bool]:
     )
 
 
-#: Values per block of the block-wise passes (about 32 MB in float64): large enough for
-#: BLAS speed, small enough that the float64 temporaries stay small beside the field.
-_BLOCK_VALUES = 2 ** 22
-
-
-def _block_length(values_per_time: int) -> int:
-    """Times per block of :data:`_BLOCK_VALUES` values."""
-    return max(1, _BLOCK_VALUES // max(int(values_per_time), 1))
-
-
 def _flat_time_first(var: xr.DataArray):
     """The in-memory ``(time, points)`` view of ``var``, or ``None`` (dask data)."""
     if var.chunks is not None:
@@ -169,21 +161,28 @@ def _flat_time_first(var: xr.DataArray):
 
 
 def _any_missing(flat: np.ndarray) -> bool:
-    step = _block_length(flat.shape[1])
+    step = block_length(flat.shape[1])
     return any(np.isnan(flat[start:start + step]).any() for start in range(0, flat.shape[0], step))
 
 
 def _fit_complete(var: xr.DataArray, flat: np.ndarray, times, n_harmonics: int,
-                  terms) -> xr.DataArray:
+                  terms) -> xr.DataArray | None:
     """Harmonic coefficients of a gap-free in-memory field: one normal matrix
     ``X^T X`` for every point and ``X^T y`` summed over blocks of times in float64
-    (no float64 copy of the field is made)."""
+    (no float64 copy of the field is made: each block goes through one buffer).
+    ``None`` if the field has gaps (NaN), found from a NaN in ``X^T y`` (BLAS carries
+    NaN through) rather than by a pass of its own."""
     design = harmonic_design_matrix(times, n_harmonics)
-    step = _block_length(flat.shape[1])
+    step = block_length(flat.shape[1])
     rhs = np.zeros((design.shape[1], flat.shape[1]))
+    buffer = np.empty((min(step, flat.shape[0]), flat.shape[1]))
     for start in range(0, flat.shape[0], step):
         rows = slice(start, start + step)
-        rhs += design[rows].T @ flat[rows].astype(np.float64)
+        block = buffer[:flat[rows].shape[0]]
+        np.copyto(block, flat[rows])
+        rhs += design[rows].T @ block
+    if np.isnan(rhs).any() and _any_missing(flat):
+        return None
     normal_matrix = design.T @ design
     if np.linalg.cond(normal_matrix) < 1e10:
         solution = np.linalg.solve(normal_matrix, rhs)
@@ -203,6 +202,45 @@ def _anomaly_block(values, times, coef_flat, n_harmonics: int, dtype):
     climatology = harmonic_design_matrix(times, n_harmonics) @ coef_flat
     out = values.reshape(values.shape[0], -1) - climatology
     return out.astype(dtype, copy=False).reshape(values.shape)
+
+
+#: Values of the climatology table of one column range (8 MB in float64). Tables of
+#: 32 MB, made in the worker threads, stayed in their malloc arenas after use: 60 MB
+#: more resident memory for the rest of the 0.25-degree build; tables of 2 MB made
+#: ranges so narrow that the 1-degree anomalies took 1.5x the CPU time.
+TABLE_VALUES = 2 ** 20
+
+
+def _anomalies_in_memory(field: np.ndarray, times, coef_flat: np.ndarray, n_harmonics: int,
+                         dtype) -> np.ndarray:
+    """:func:`_anomaly_block` of a whole in-memory ``field (time, lat, lon)``, with the
+    same values, made in one pass: the climatology is evaluated once per distinct row
+    of the design matrix (a day of the year, 731 of them over leap and common years)
+    rather than once per time, each cache-sized step of times takes its rows of that
+    table, and the grid is split into column ranges worked in threads (ranges narrow
+    enough that their table stays within :data:`TABLE_VALUES` values)."""
+    n_times = field.shape[0]
+    values = empty_without_hugepage_advice((n_times, field[0].size), dtype)
+    # Times at one angle have one design row (np.unique of the rows themselves sorts
+    # 7-value records: 0.1 s for 40 years).
+    _, first_time, day_of_time = np.unique(annual_angle(times), return_index=True,
+                                           return_inverse=True)
+    days = harmonic_design_matrix(times, n_harmonics)[first_time]
+
+    def anomalies_of(columns: slice) -> None:
+        table = days @ coef_flat[:, columns]
+        width = table.shape[1]
+        buffer = np.empty((cache_rows(width), width))
+        for start, stop, _, _ in cache_steps(n_times, width):
+            climatology = buffer[:stop - start]
+            np.take(table, day_of_time[start:stop], axis=0, out=climatology, mode="clip")
+            # A view of a C-ordered field; a strided one is copied a step at a time.
+            rows = field[start:stop].reshape(stop - start, -1)[:, columns]
+            np.subtract(rows, climatology, out=climatology)
+            values[start:stop, columns] = climatology
+
+    in_threads(anomalies_of, even_ranges(values.shape[1], TABLE_VALUES // len(days)))
+    return values.reshape(field.shape)
 
 
 class HarmonicClimatology:
@@ -263,8 +301,9 @@ class HarmonicClimatology:
     def _fit_harmonics(var: xr.DataArray, times, n_harmonics: int) -> xr.DataArray:
         terms = harmonic_term_names(n_harmonics)
         flat = _flat_time_first(var)
-        if flat is not None and not _any_missing(flat):
-            return _fit_complete(var, flat, times, n_harmonics, terms)
+        complete = None if flat is None else _fit_complete(var, flat, times, n_harmonics, terms)
+        if complete is not None:
+            return complete
         time_chunks = var.chunksizes["time"] if var.chunks is not None else None
         design = _design_array(var["time"], n_harmonics, terms, time_chunks)
         spatial_dims = [d for d in var.dims if d != "time"]
@@ -409,13 +448,7 @@ class HarmonicClimatology:
             values = da.map_blocks(_anomaly_block, data, stamps, coef_flat, n_harmonics,
                                    dtype, dtype=dtype, meta=np.empty((0, 0, 0), dtype))
         else:
-            field = np.asarray(data)
-            values = np.empty(field.shape, dtype=dtype)
-            step = _block_length(field[0].size)
-            for start in range(0, field.shape[0], step):
-                rows = slice(start, start + step)
-                values[rows] = _anomaly_block(field[rows], times[rows], coef_flat,
-                                              n_harmonics, dtype)
+            values = _anomalies_in_memory(np.asarray(data), times, coef_flat, n_harmonics, dtype)
         return xr.DataArray(values, dims=var.dims, coords=var.coords)
 
     def fit_transform(self, ds: xr.Dataset) -> xr.Dataset:

@@ -60,6 +60,8 @@ from analogs import __version__
 from analogs._validation import check_int
 from analogs.parameters import P
 from analogs.errors import AnalogsInputError, NotFittedError
+from analogs.stages.blockwise import (ColumnMoments, block_length, cache_steps, even_ranges,
+                                      in_threads, numpy_blas_on_one_thread)
 from analogs.stages.cf import coordinate_attrs
 
 __all__ = ["MultivariateEOF", "area_weights"]
@@ -226,14 +228,15 @@ class MultivariateEOF:
         return blocks
 
     def _column_blocks(self, ds: xr.Dataset, dtype, *, overwrite: bool, copies=None,
-                       scratch=None) -> list:
+                       scratch=None) -> tuple[list, np.ndarray]:
         """Per field, the in-memory (time, valid space) block of M in ``dtype``, made a
-        block of rows at a time (no full-size temporaries); with ``overwrite``, a
-        field that is a writeable C-ordered array of ``dtype`` with no missing point
-        is scaled in place and its block is a view of the caller's data. ``copies``
-        (field -> array) replace the fields of ``ds``; new blocks come from
-        ``scratch`` when given."""
-        blocks = []
+        cache-sized step of rows at a time (no full-size temporaries), the rows split
+        over threads; with ``overwrite``, a field that is a writeable C-ordered array of
+        ``dtype`` with no missing point is scaled in place and its block is a view of
+        the caller's data. ``copies`` (field -> array) replace the fields of ``ds``; new
+        blocks come from ``scratch`` when given. Also returns the squared norm of each
+        row of M, taken from each step while it is in cache (:func:`_row_energy`)."""
+        blocks, row_energy = [], 0
         for field in self.fields_:
             raw = (copies or {}).get(field)
             raw = self._flat(ds[field]) if raw is None else raw
@@ -245,18 +248,25 @@ class MultivariateEOF:
             shape = (raw.shape[0], int(valid.sum()))
             block = raw if in_place else (np.empty(shape, dtype) if scratch is None
                                           else scratch(shape, dtype))
-            step = max(1, 2 ** 22 // max(raw.shape[1], 1))
-            for start in range(0, raw.shape[0], step):
-                rows = slice(start, start + step)
-                part = raw[rows] if valid.all() else raw[rows][:, valid]
-                if in_place:
-                    part -= mean
-                    part *= factor
-                else:
-                    np.multiply(part.astype(dtype, copy=False) - mean, factor, out=block[rows])
+            energy = np.empty(shape[0])
+
+            def scale(rows: slice) -> None:
+                for start, stop, _, _ in cache_steps(rows.stop - rows.start, raw.shape[1]):
+                    steps = slice(rows.start + start, rows.start + stop)
+                    part = raw[steps] if valid.all() else raw[steps][:, valid]
+                    if in_place:
+                        part -= mean
+                        part *= factor
+                    else:
+                        np.multiply(part.astype(dtype, copy=False) - mean, factor,
+                                    out=block[steps])
+                    energy[steps] = _row_energy(block[steps])
+
+            in_threads(scale, even_ranges(shape[0]))
             _release_pages(block)
             blocks.append(block)
-        return blocks
+            row_energy = row_energy + energy
+        return blocks, row_energy
 
     def _matrix(self, ds: xr.Dataset, dtype=np.float64):
         blocks = self._scaled_blocks(ds, dtype)
@@ -385,12 +395,12 @@ class MultivariateEOF:
                                                         for f in self.fields_)):
             # In memory or in scratch copies: per-field column blocks, made without
             # temporaries (or in place).
-            matrix = self._column_blocks(anomalies, np.float32,
-                                         overwrite=overwrite or bool(copies), copies=copies,
-                                         scratch=scratch)
+            matrix, row_energy = self._column_blocks(
+                anomalies, np.float32, overwrite=overwrite or bool(copies), copies=copies,
+                scratch=scratch)
         else:
             matrix = self._matrix(anomalies, np.float32 if solver == "randomized" else np.float64)
-        row_energy = None
+            row_energy = None
 
         if solver == "randomized":
             k = min(wanted if wanted is not None else DEFAULT_N_MODES, rank)
@@ -402,7 +412,7 @@ class MultivariateEOF:
                               if (overwrite or copies) and isinstance(matrix, list)
                               else self._matrix(anomalies))
                     break
-                u, s, vt, row_energy = self._randomized_svd(matrix, k)
+                u, s, vt, row_energy = self._randomized_svd(matrix, k, row_energy)
                 fractions = s ** 2 / total_ss
                 if wanted is not None or np.cumsum(fractions)[-1] >= self.variance:
                     break
@@ -437,10 +447,11 @@ class MultivariateEOF:
         self.solver_ = solver
         return self
 
-    def _randomized_svd(self, matrix, k: int):
+    def _randomized_svd(self, matrix, k: int, row_energy=None):
         """(U, S, V^T, squared norm of each row of ``matrix``)."""
         return _randomized_svd(matrix, k, n_oversamples=self.n_oversamples,
-                               n_power_iter=self.n_power_iter, seed=self.random_state)
+                               n_power_iter=self.n_power_iter, seed=self.random_state,
+                               row_energy=row_energy)
 
     def _check_fitted(self) -> None:
         if not hasattr(self, "_components"):
@@ -800,7 +811,8 @@ class MultivariateEOF:
         return model
 
 
-def _randomized_svd(matrix, k: int, *, n_oversamples: int, n_power_iter: int, seed: int):
+def _randomized_svd(matrix, k: int, *, n_oversamples: int, n_power_iter: int, seed: int,
+                    row_energy=None):
     """Randomized SVD of a numpy or dask matrix, or of a list of in-memory column
     blocks ``[M_1 | M_2 | ...]`` (products taken block by block, never concatenated);
     with dask, one pass over the data per product.
@@ -814,7 +826,11 @@ def _randomized_svd(matrix, k: int, *, n_oversamples: int, n_power_iter: int, se
     (n, k + p) factors, whatever the archive size. (``dask.array.linalg.svd_compressed``
     builds every pass into one graph, in which the scheduler keeps the data chunks
     alive for the later passes: the whole matrix ends up in memory.) Also returns the
-    squared norm of every row, taken in the first pass.
+    squared norm of every row, taken in the first pass unless given as ``row_energy``.
+
+    The thin QR factorisations run on one BLAS thread (:func:`numpy_blas_on_one_thread`:
+    the same bits, and no waits between threads when the machine is busy); the
+    products with the data matrix keep every thread.
     """
     if isinstance(matrix, list):  # in-memory column blocks [M_1 | M_2 | ...]
         n_time, n_space = matrix[0].shape[0], sum(block.shape[1] for block in matrix)
@@ -837,7 +853,8 @@ def _randomized_svd(matrix, k: int, *, n_oversamples: int, n_power_iter: int, se
             return np.concatenate([_released(block, block.T @ left) for block in matrix])
 
         sample = times_matrix(omega)
-        row_energy = sum(_released(block, _row_energy(block)) for block in matrix)
+        if row_energy is None:
+            row_energy = sum(_released(block, _row_energy(block)) for block in matrix)
     elif _is_dask(matrix):
         import dask
         import dask.array as da
@@ -864,13 +881,19 @@ def _randomized_svd(matrix, k: int, *, n_oversamples: int, n_power_iter: int, se
             return matrix.T @ left.astype(dtype)
 
         sample, row_energy = matrix @ omega, _row_energy(matrix)
-    basis, _ = np.linalg.qr(sample)
+    basis = _orthonormal(sample)
     for _ in range(n_power_iter):
-        basis_space, _ = np.linalg.qr(matrix_transposed_times(basis))
-        basis, _ = np.linalg.qr(times_matrix(basis_space))
+        basis_space = _orthonormal(matrix_transposed_times(basis))
+        basis = _orthonormal(times_matrix(basis_space))
     projected = matrix_transposed_times(basis).T  # (width, n_space) = Q^T M
     u_small, s, vt = np.linalg.svd(projected, full_matrices=False)
     return (basis @ u_small)[:, :k], s[:k], vt[:k], row_energy
+
+
+def _orthonormal(columns: np.ndarray) -> np.ndarray:
+    """Q of the thin QR factorisation of ``columns``, on one BLAS thread."""
+    with numpy_blas_on_one_thread():
+        return np.linalg.qr(columns)[0]
 
 
 def _block_moments(block, origin):
@@ -883,16 +906,24 @@ def _block_moments(block, origin):
 
 def _column_moments(raw, origin):
     """:func:`_block_moments` of a whole (time, space) array, numpy or dask: summed
-    over blocks of rows, each block reduced by one task (dask) or in turn (numpy), so
-    no full-size temporary is made."""
+    over blocks of rows, each block reduced by one task (dask), or (numpy) in
+    cache-sized steps with the same rounding (:class:`ColumnMoments`), the columns
+    split over threads, so no full-size temporary is made."""
     if _is_dask(raw):
         n_blocks = len(raw.chunks[0])
         per_block = raw.map_blocks(_block_moments, origin, chunks=((3,) * n_blocks, raw.chunks[1]),
                                    dtype=np.float64, meta=np.empty((0, 0)))
         return per_block.reshape(n_blocks, 3, raw.shape[1]).sum(axis=0)
-    step = max(1, 2 ** 22 // max(raw.shape[1], 1))
-    return sum(_block_moments(raw[start:start + step], origin)
-               for start in range(0, raw.shape[0], step))
+    block_rows = block_length(raw.shape[1])
+
+    def moments_of(columns: slice) -> np.ndarray:
+        moments = ColumnMoments(origin[columns])
+        for start, stop, starts_block, ends_block in cache_steps(
+                raw.shape[0], columns.stop - columns.start, block_rows):
+            moments.add(raw[start:stop, columns], starts_block, ends_block)
+        return moments.totals
+
+    return np.concatenate(in_threads(moments_of, even_ranges(raw.shape[1])), axis=1)
 
 
 def _store_by_chunks(array, out: np.ndarray) -> None:
@@ -938,7 +969,7 @@ def _released(block, result):
 def _row_energy(matrix: np.ndarray) -> np.ndarray:
     """Sum of squares of each row, accumulated in float64, a block of rows at a time."""
     energy = np.empty(matrix.shape[0])
-    step = max(1, 2 ** 22 // max(matrix.shape[1], 1))
+    step = block_length(matrix.shape[1])
     for start in range(0, matrix.shape[0], step):
         block = matrix[start:start + step].astype(np.float64)
         energy[start:start + step] = np.einsum("ij,ij->i", block, block)
