@@ -22,6 +22,8 @@ the readers look at coordinates and at most a few time steps for unit inference.
 from __future__ import annotations
 
 import contextlib
+import ctypes
+import functools
 import glob
 import json
 import os
@@ -258,20 +260,15 @@ def open_archive(paths, *, fields=None, region=None, hour=P.hour.default,
     requested = _check_fields(fields, "open_archive")
     south_north_west_east = _check_region(region)
     candidates, seen, layouts = [], {}, []
-    # In memory, a file laid out as an earlier one is read as it is looked at.
-    read = None if chunks else _ValuesRead(requested)
     with _small_chunk_cache():
         for path in _progress(files, progress):
-            candidates.extend(_recognised_in(path, chunks, seen, layouts, read))
+            candidates.extend(_recognised_in(path, chunks, seen, layouts))
     chosen = _choose_fields(requested, candidates, files, seen)
-    for candidate in candidates:
-        if read and candidate.field not in chosen:
-            read.pop((candidate.path, candidate.name), None)
     _say_computed(chosen, candidates, _describe(files))
     arrays, duplicates, origins = {}, 0, {}
     for field in chosen:
         joined, origins[field] = _read_field(field, [c for c in candidates if c.field == field],
-                                             chunks, read)
+                                             chunks)
         arrays[field], dropped = _drop_duplicate_times(joined, files)
         duplicates = max(duplicates, dropped)
     ds = _merge_fields(arrays, files)
@@ -613,12 +610,11 @@ def _expand_paths(paths, owner):
     return files
 
 
-def _recognised_in(path, chunks, seen, layouts, read=None):
+def _recognised_in(path, chunks, seen, layouts):
     """The supported variables of one file (a warning when it has none). A file laid out
     as one read before (``layouts``, :func:`_laid_out_candidates`) is looked at by its
-    header alone (its values put in ``read`` when given); a NetCDF file read in full
-    adds its layout when its reading is plain."""
-    found = _laid_out_candidates(path, layouts, seen, read)
+    header alone; a NetCDF file read in full adds its layout when its reading is plain."""
+    found = _laid_out_candidates(path, layouts, seen)
     if found is not None:
         return found
     parts, seen[path] = _open_parts(path, chunks)
@@ -1096,31 +1092,14 @@ def _masked(values, fills):
     return values
 
 
-class _ValuesRead(dict):
-    """The raw values of files laid out as an earlier one, read in memory as they are
-    looked at (one opening of each file): by (path, variable), each taken out when it
-    is placed in the joined array (:func:`_joined_in_memory`); only ``fields`` (None:
-    every field) are read."""
-
-    def __init__(self, fields=None):
-        super().__init__()
-        self.fields = fields
-
-    def wants(self, field):
-        return self.fields is None or field in self.fields
-
-
-def _laid_out_candidates(path, layouts, seen, read=None):
+def _laid_out_candidates(path, layouts, seen):
     """The candidates of a NetCDF file whose header is that of a file read before
     (:func:`_header`), each with its own times (decoded by xarray's CF coders, in
     order) and nothing opened by xarray; None when no layout fits or anything about the
-    file is not plain (a warning, an error): it is then read in full, as any file.
-    With ``read`` (a :class:`_ValuesRead`), the raw values of the fields it wants are
-    read into it in the same opening of the file."""
+    file is not plain (a warning, an error): it is then read in full, as any file."""
     if not layouts or not _plain_netcdf(path):
         return None
     import netCDF4
-    values = {}
     with warnings.catch_warnings(record=True) as said:
         warnings.simplefilter("always")
         try:
@@ -1140,16 +1119,11 @@ def _laid_out_candidates(path, layouts, seen, read=None):
                     return None  # the full reading warns (and sorts) as for any file
                 chunks = {v.name: _time_chunk(handle.variables[v.name], v.time_axis)
                           for _, v in fits.variables}
-                if read is not None:
-                    values = {(path, v.name): _raw_values(handle, v, slice(None))
-                              for c, v in fits.variables if read.wants(c.field)}
         except Exception:  # read the full way, which says what is wrong
             return None
     if said:
         return None  # the full reading warns as it does for any file
     seen[path] = list(fits.names)
-    if read is not None:
-        read.update(values)
     return [replace(c, path=path, dataset=None,
                     laid_out=_LaidOut(v, times[v.time_dim], chunks[v.name]))
             for c, v in fits.variables]
@@ -1213,6 +1187,68 @@ def _read_laid_out(path, layout, key):
     with NETCDF4_PYTHON_LOCK, netCDF4.Dataset(path) as handle:
         raw = _raw_values(handle, layout, rows)
     return _decoded(raw, layout)[(0 if one_step else slice(None),) + tuple(key[1:])]
+
+
+def _read_laid_out_into(path, layout, out):
+    """Every time step of a file's variable, read and decoded as :func:`_read_laid_out`
+    reads them, into ``out``: straight from the file when they are stored as ``out``
+    holds them (:func:`_read_stored_into`; then masked in place), else through
+    netCDF4's array of the raw values."""
+    import netCDF4
+    with NETCDF4_PYTHON_LOCK, netCDF4.Dataset(path) as handle:
+        raw = None if _read_stored_into(handle, layout, out) else _raw_values(
+            handle, layout, slice(None))
+    if raw is None:
+        _masked(out, layout.fills)
+    else:
+        _decoded(raw, layout, out=out)
+
+
+def _read_stored_into(handle, layout, out):
+    """Read a file's variable (``handle``: open in netCDF4), every time step, straight
+    into ``out`` by netCDF-C's ``nc_get_vara``, the call netCDF4 makes into an array of
+    its own, when the values are stored on the canonical axes in ``out``'s dtype and
+    their decoding is a plain mask (:func:`_plain_mask`, which the caller sets); False
+    (nothing read) otherwise, or where netCDF4's library is out of reach."""
+    library = _netcdf_c()
+    variable = handle.variables[layout.name]
+    if (library is None or layout.fills is None or layout.order != (0, 1, 2)
+            or layout.rows is not None or layout.columns is not None
+            or variable.dtype != out.dtype or not out.flags.c_contiguous
+            or not all(isinstance(index, (int, np.integer)) or index == slice(None)
+                       for index in layout.key)):
+        return False
+    start = [int(index) if isinstance(index, (int, np.integer)) else 0
+             for index in layout.key]
+    count = [1 if isinstance(index, (int, np.integer)) else size
+             for index, size in zip(layout.key, variable.shape)]
+    if int(np.prod(count)) != out.size:
+        return False
+    get, message = library
+    sizes = ctypes.c_size_t * len(count)
+    status = get(handle._grpid, variable._varid, sizes(*start), sizes(*count),
+                 out.ctypes.data)
+    if status != 0:  # the error netCDF4 raises for a failed read
+        raise RuntimeError(message(status).decode("ascii"))
+    return True
+
+
+@functools.cache
+def _netcdf_c():
+    """(nc_get_vara, nc_strerror) of the netCDF-C library netCDF4 itself calls (found
+    through netCDF4's extension module, whose dependencies the dynamic loader
+    searches), or None."""
+    import netCDF4
+    try:
+        library = ctypes.CDLL(netCDF4._netCDF4.__file__)
+        get, message = library.nc_get_vara, library.nc_strerror
+    except (OSError, AttributeError):
+        return None
+    sizes = ctypes.POINTER(ctypes.c_size_t)
+    get.argtypes = [ctypes.c_int, ctypes.c_int, sizes, sizes, ctypes.c_void_p]
+    get.restype = ctypes.c_int
+    message.argtypes, message.restype = [ctypes.c_int], ctypes.c_char_p
+    return get, message
 
 
 def _raw_values(handle, layout, rows):
@@ -2378,21 +2414,20 @@ def _missing_calendar_days(times):
 # joining files and fields, time handling
 # ---------------------------------------------------------------------------
 
-def _read_field(field, found, chunks, read):
+def _read_field(field, found, chunks=None):
     """(one field joined over its files, where each time came from: [(path, variable,
     times, units in the file)]). The files' canonical pieces (each holding its decoded
     values once read) are let go on return. A file laid out as an earlier one is read
-    directly: in memory, its candidate stands for its piece and its values (in
-    ``read``, :class:`_ValuesRead`, since it was looked at) are decoded into their
-    place in the joined array (:func:`_joined_in_memory`); with ``chunks`` its piece
-    reads it chunk by chunk (:func:`_laid_out_piece`)."""
+    directly: in memory, its candidate stands for its piece and its values are read
+    into their place in the joined array (:func:`_joined_in_memory`); with ``chunks``
+    its piece reads it chunk by chunk (:func:`_laid_out_piece`)."""
     pieces = [_sorted_in_time(_canonical_array(c), c.path) if c.laid_out is None
               else _laid_out_piece(c, chunks) if chunks else c for c in found]
     origins = [(c.path, c.name, c.laid_out.times, c.laid_out.layout.attrs["units_in_file"])
                if p is c else (c.path, c.name, p["time"].values,
                                p.attrs.pop("units_in_file", None))
                for c, p in zip(found, pieces)]
-    return _join_pieces(field, pieces, read), origins
+    return _join_pieces(field, pieces), origins
 
 
 def _piece_grid(piece):
@@ -2402,7 +2437,7 @@ def _piece_grid(piece):
     return piece["lat"].variable, piece["lon"].variable
 
 
-def _join_pieces(field, pieces, read):
+def _join_pieces(field, pieces):
     """The files' pieces of one field joined along time, sorted by time.
 
     Pieces read in memory are copied one by one into a single preallocated array in
@@ -2431,7 +2466,7 @@ def _join_pieces(field, pieces, read):
         joined = xr.concat(pieces, dim="time", join="override", coords="minimal",
                            compat="override")
     else:
-        joined = _joined_in_memory(field, pieces, read)
+        joined = _joined_in_memory(field, pieces)
     order = np.argsort(joined["time"].values, kind="stable")
     if np.any(np.diff(order) != 1):
         joined = joined.isel(time=order)
@@ -2439,11 +2474,10 @@ def _join_pieces(field, pieces, read):
     return joined
 
 
-def _joined_in_memory(field, pieces, read):
+def _joined_in_memory(field, pieces):
     """Pieces on one grid (checked before) copied into one array along time, labelled
-    with the first piece's grid and every piece's times. A laid-out candidate's values,
-    taken out of ``read`` (:class:`_ValuesRead`), are decoded straight into their place
-    (:func:`_decoded`): the joined array holds their only copy."""
+    with the first piece's grid and every piece's times. A laid-out candidate's values
+    are read into their place (:func:`_read_laid_out_into`)."""
     parts = [(p.laid_out.times, p.laid_out.layout.dtype) if isinstance(p, _Candidate)
              else (p["time"].values, p.dtype) for p in pieces]
     lat, lon = _piece_grid(pieces[0])
@@ -2455,8 +2489,7 @@ def _joined_in_memory(field, pieces, read):
         if not isinstance(piece, _Candidate):
             into[...] = piece.values  # decoded here, one file at a time
         else:
-            layout = piece.laid_out.layout
-            _decoded(read.pop((piece.path, layout.name)), layout, out=into)
+            _read_laid_out_into(piece.path, piece.laid_out.layout, into)
         start += times.size
     times = xr.Variable("time", np.concatenate([times for times, _ in parts]),
                         dict(_TIME_ATTRS))
@@ -2469,11 +2502,8 @@ def _release_freed_memory():
     ``malloc_trim``; nothing elsewhere). The decoded pieces, freed one by one between
     other allocations, left about one field's size of heap held (measured: 150 MB
     resident more after reading 40 years at 1 degree, the build's peak 90 MB higher)."""
-    import ctypes
-    import ctypes.util
-    name = ctypes.util.find_library("c")
-    try:
-        ctypes.CDLL(name).malloc_trim(0)
+    try:  # the process's own symbols: the C library's (no search for its file)
+        ctypes.CDLL(None).malloc_trim(0)
     except (OSError, AttributeError, TypeError):
         pass
 
