@@ -1083,12 +1083,11 @@ def _plain_mask(name, dtype, attrs):
 
 def _masked(values, fills):
     """``values`` with NaN set in place where a value equals one of ``fills``, as
-    xarray's CFMaskCoder sets it in its copy."""
-    if fills:
-        condition = False
-        for value in fills:
-            condition |= values == value
-        values[condition] = np.nan
+    xarray's CFMaskCoder sets it in its copy (nothing written where none does)."""
+    for value in fills:
+        masked = values == value
+        if masked.any():
+            np.copyto(values, np.nan, where=masked)
     return values
 
 
