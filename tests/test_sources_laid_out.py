@@ -5,7 +5,8 @@ out-of-core scratch copy; anything else about a file sends it the full way.
 
 External references: netCDF4's own decoding of each file (``set_auto_maskandscale``:
 scale_factor / add_offset, _FillValue / missing_value masked), placed on the canonical
-grid by hand, and xarray's full reading (the path every file took before)."""
+grid by hand, xarray's full reading (the path every file took before) and xarray's CF
+decoding (``decode_cf_variable``) of the values masked in place."""
 
 from __future__ import annotations
 

@@ -1158,7 +1158,7 @@ def _time_chunk(variable, time_axis):
 
 def _laid_out_piece(candidate, chunks):
     """The canonical piece of a file read by its layout: read when its values are asked
-    for (into their place in the joined array), or chunk by chunk with ``chunks``."""
+    for (a report's days, :func:`_laid_out_days`), or chunk by chunk with ``chunks``."""
     laid_out = candidate.laid_out
     layout = laid_out.layout
     data = indexing.LazilyIndexedArray(_LaidOutArray(candidate.path, layout,
@@ -2442,7 +2442,7 @@ def _join_pieces(field, pieces):
     Pieces read in memory are copied one by one into a single preallocated array in
     their common dtype (float32 from float32 files): xarray's concat would hold every
     decoded piece and the joined copy at once. Lazy (dask) pieces are concatenated
-    lazily. Laid-out candidates (in memory) are decoded into their place there."""
+    lazily. Laid-out candidates (in memory) are read into their place there."""
     first_lat, first_lon = _piece_grid(pieces[0])
     checked = set()
     for piece in pieces[1:]:
