@@ -252,12 +252,6 @@ def _build(paths, store, *, events, event_dates, events_period, fields, n_modes,
         archive = open_archive(paths, fields=fields, region=domain, hour=hour, daily=daily,
                                chunks=chunks, progress=progress,
                                scratch=make_scratch if decode_to_scratch else None)
-        if events is not None:
-            # The skill hindcast's regression needs scikit-learn, about a second to
-            # import: imported in a thread beside the climatology and EOF fit, whose
-            # heavy loops release the GIL. Beside the reading it slowed the reading
-            # down by about the import's time (netCDF4's reads hold the GIL).
-            later.enter_context(_beside(_import_quietly, "sklearn.linear_model"))
         if archive.sizes["time"] < 3:
             raise AnalogsInputError(f"the archive has {archive.sizes['time']} days; at "
                                     "least 3 are needed to build a store")
@@ -267,6 +261,14 @@ def _build(paths, store, *, events, event_dates, events_period, fields, n_modes,
             events, archive["lat"].values, archive["lon"].values, dates=event_dates)
 
         climatology = HarmonicClimatology(n_harmonics=n_harmonics).fit(archive)
+        if events is not None:
+            # The skill hindcast's regression needs scikit-learn, about a second of CPU
+            # to import: imported in a thread beside the anomalies and the EOF fit,
+            # whose BLAS products give the GIL up for long stretches. Beside the reading
+            # or the climatology's fit (many short C calls, each waiting for the GIL
+            # back) it slowed them by about the import's own time
+            # (tests/benchmarks/README.md).
+            later.enter_context(_beside(_import_quietly, "sklearn.linear_model"))
         # Anomalies in the archive's float32, made block-wise; the EOF fit scales them in
         # place into its data matrix (one copy of the archive beside the archive itself).
         # Out of core, that copy is a scratch file written in one pass over the archive.
