@@ -64,6 +64,32 @@ def defer_duck_array_imports() -> bool:
     return any(isinstance(cache.get(name), record) for name in DEFERRED)
 
 
+@contextlib.contextmanager
+def duck_array_imports_deferred():
+    """:func:`defer_duck_array_imports` within the block; on leaving it, xarray's
+    records of :data:`DEFERRED` and its ``is_dask_collection`` are as they were before
+    (a record deferred here is dropped: xarray builds its own when next asked)."""
+    try:
+        from xarray.namedarray import pycompat, utils
+        cache, own_check = pycompat._cached_duck_array_modules, utils.is_dask_collection
+    except (ImportError, AttributeError):
+        yield
+        return
+    before = {name: cache[name] for name in DEFERRED if name in cache} if isinstance(
+        cache, dict) else None
+    defer_duck_array_imports()
+    try:
+        yield
+    finally:
+        utils.is_dask_collection = own_check
+        if before is not None:
+            for name in DEFERRED:
+                if name in before:
+                    cache[name] = before[name]
+                elif isinstance(cache.get(name), _deferred_record_class()):
+                    del cache[name]
+
+
 def _defer_dask_collection_check() -> None:
     """xarray's ``is_dask_collection`` (asked of every array it wraps, through
     ``is_duck_dask_array``) imports ``dask.base``, and with it dask (about 0.3 s CPU),

@@ -188,3 +188,48 @@ def test_store_writes_do_not_import_distributed(tmp_path):
     assert out.stdout.strip() == "False"
     import xarray as xr
     assert xr.open_dataset(tmp_path / "a.nc")["a"].values.tolist() == [0.0, 1.0, 2.0]
+
+
+def test_deferred_within_a_block_then_xarrays_own_again(monkeypatch):
+    """duck_array_imports_deferred: the deferred records and check inside the block; on
+    leaving it xarray's record (none: built again when next asked) and is_dask_collection
+    are as before, an error in the block included."""
+    from xarray.namedarray import pycompat, utils
+
+    from analogs._duck_arrays import _deferred_record_class, duck_array_imports_deferred
+    monkeypatch.setattr(pycompat, "_cached_duck_array_modules",
+                        {"dask": pycompat.DuckArrayModule("dask")})
+    monkeypatch.setattr(utils, "is_dask_collection", utils.is_dask_collection)
+    before, own = dict(pycompat._cached_duck_array_modules), utils.is_dask_collection
+    with pytest.raises(KeyError), duck_array_imports_deferred():
+        cache = pycompat._cached_duck_array_modules
+        assert cache["dask"] is before["dask"]  # xarray's record, built before, kept
+        assert isinstance(cache["pint"], _deferred_record_class())
+        assert getattr(utils.is_dask_collection, "deferred", False)
+        raise KeyError("failed inside")
+    assert pycompat._cached_duck_array_modules == before
+    assert utils.is_dask_collection is own
+
+
+BUILD = """
+import sys
+from xarray.namedarray import pycompat, utils
+from analogs.api import build_store
+own = utils.is_dask_collection
+build_store({files!r}, {store!r}, progress=False)
+print([m for m in ("dask.array", "pint") if m in sys.modules],
+      sorted(set(pycompat._cached_duck_array_modules) & {{"dask", "pint"}}),
+      utils.is_dask_collection is own)
+"""
+
+
+def test_an_in_memory_build_imports_neither_library(demo_files, tmp_path):
+    """build_store in memory (two years of the demo, no events) imports neither
+    dask.array nor pint (about 0.7 s of CPU; xarray's checks deferred within the build),
+    and leaves xarray's own records and check in place afterwards."""
+    files = [str(p) for p in demo_files if p.name.endswith(("2001.nc", "2002.nc"))]
+    assert len(files) == 4
+    out = subprocess.run([sys.executable, "-c", BUILD.format(
+        files=files, store=str(tmp_path / "store"))], capture_output=True, text=True,
+        check=True, env={**os.environ, "PYTHONPATH": str(ROOT)})
+    assert out.stdout.strip().splitlines()[-1] == "[] [] True"

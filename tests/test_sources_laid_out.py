@@ -5,7 +5,8 @@ out-of-core scratch copy; anything else about a file sends it the full way.
 
 External references: netCDF4's own decoding of each file (``set_auto_maskandscale``:
 scale_factor / add_offset, _FillValue / missing_value masked), placed on the canonical
-grid by hand, and xarray's full reading (the path every file took before)."""
+grid by hand, xarray's full reading (the path every file took before) and xarray's CF
+decoding (``decode_cf_variable``) of the values masked in place."""
 
 from __future__ import annotations
 
@@ -400,3 +401,113 @@ def test_files_of_two_fields_read_by_a_layout_per_field(tmp_path, monkeypatch):
         xr.testing.assert_identical(a, b)
         assert np.array_equal(a.values.view("u8"), b.values.view("u8"))
     assert opened == [paths[0]]  # for its layout, which gives both fields
+
+
+def _demo_like(folder, *, damaged=None):
+    """Yearly zg files laid out as the demo's (time, plev, lat, lon), float32 with a
+    _FillValue and a few points written as it (masked), zlib chunks of a year: the
+    layout read straight into the joined array. ``damaged``: the year whose one chunk
+    has bytes inverted (its header reads, its data do not)."""
+    paths = []
+    for k, year in enumerate(YEARS + (2004,)):
+        times = _times(year)
+        z = smooth_height(times).astype(np.float32)[:, None]
+        z[k, 0, 4, 5 + k] = np.nan
+        path = _write(folder, "zg", {"zg": (("time", "plev", "lat", "lon"), z, {
+            "standard_name": "geopotential_height", "units": "m"})},
+            {"time": times, "plev": ("plev", [50000.0], {"units": "Pa"}),
+             "lat": ("lat", LAT, {"units": "degrees_north"}),
+             "lon": ("lon", LON, {"units": "degrees_east"})},
+            {"zg": {"_FillValue": np.float32(1e20), "zlib": True,
+                    "chunksizes": (len(times), 1, LAT.size, LON.size)}}, year)
+        if year == damaged:
+            data = bytearray(Path(path).read_bytes())
+            inside = 3 * len(data) // 4  # in the chunk, written after the header
+            data[inside:inside + 256] = bytes(b ^ 0xFF for b in data[inside:inside + 256])
+            Path(path).write_bytes(bytes(data))
+        paths.append(path)
+    return paths
+
+
+def test_values_read_straight_into_the_joined_array_are_netcdf4s(tmp_path, monkeypatch):
+    """Files stored on the canonical axes with a plain float mask are read by netCDF-C's
+    nc_get_vara into their place in the joined array (the call netCDF4's own reading
+    makes into an array of its own), then masked in place: every value is netCDF4's
+    reading of the file masked at its _FillValue, and the archive is the full
+    reading's bit for bit."""
+    paths = _demo_like(tmp_path)
+    straight = []
+    read_stored_into = sources._read_stored_into
+
+    def counting(handle, layout, out):
+        straight.append(read_stored_into(handle, layout, out))
+        return straight[-1]
+
+    monkeypatch.setattr(sources, "_read_stored_into", counting)
+    fast, full, opened = _both_ways(monkeypatch, paths)
+    assert opened == paths[:1] and straight == [True] * (len(paths) - 1)
+    _assert_identical(fast, full)
+    expected = []
+    for path in paths:
+        with netCDF4.Dataset(path) as handle:
+            expected.append(np.ma.filled(handle["zg"][:, 0], np.nan))
+    expected = np.concatenate(expected)
+    read = np.isfinite(expected)  # the masked points are filled by the missing-data policy
+    assert (~read).sum() == len(paths)
+    assert np.array_equal(fast["z500"].values[read], expected[read])
+    assert np.all(np.abs(fast["z500"].values[~read] - 5500.0) < 400.0)
+
+
+def test_a_damaged_file_read_straight_gives_the_full_readings_error(tmp_path, monkeypatch):
+    """A later file whose one chunk is corrupt: the straight read fails as netCDF4's
+    own read does (RuntimeError, netCDF-C's message, the full reading's word for word),
+    and read_guard names the file as damaged."""
+    paths = _demo_like(tmp_path, damaged=2003)
+    refused = []
+    for patched in (False, True):
+        with monkeypatch.context() as patch:
+            if patched:
+                patch.setattr(sources, "_laid_out_candidates", lambda *args: None)
+            with pytest.raises(RuntimeError) as raised:
+                open_archive(paths)
+            refused.append(str(raised.value))
+            with pytest.raises(AnalogsInputError, match="zg_2003.nc: its data cannot be read"):
+                with sources.read_guard(paths):
+                    open_archive(paths)
+    assert refused[0] == refused[1] and "HDF error" in refused[0]
+
+
+@pytest.mark.parametrize("dtype, attrs, plain", [
+    ("f4", {"_FillValue": np.float32(1e20)}, True),
+    ("f4", {"missing_value": np.float32(-999.0)}, True),
+    ("f8", {"_FillValue": -9999.0, "units": "m"}, True),
+    ("f4", {"_FillValue": np.float64(1e20)}, True),  # compared in float64: never equal
+    ("f4", {"_FillValue": np.float32(np.nan)}, True),  # NaN: nothing to mask
+    ("f4", {}, True),
+    ("f4", {"missing_value": np.array([-999.0, -998.0], "f4")}, False),  # xarray warns
+    ("f4", {"_FillValue": np.float32(1e20), "missing_value": np.float32(-1.0)}, False),
+    ("f4", {"scale_factor": 2.0}, False),
+    ("i2", {"_FillValue": np.int16(-1)}, False),
+    (">f4", {"_FillValue": np.float32(1e20)}, False),
+])
+def test_a_plain_mask_is_xarrays_decoding(dtype, attrs, plain):
+    """_plain_mask says when xarray's CF decoding of a variable is a mask set in place
+    (:func:`sources._masked`), and with which values; on values holding the fill
+    values, neighbours of them, NaN and infinities the mask gives xarray's decoding
+    (decode_cf_variable, the reference) bit for bit."""
+    fills = sources._plain_mask("v", np.dtype(dtype), attrs)
+    assert (fills is not None) == plain
+    if not plain:
+        return
+    with np.errstate(over="ignore"):
+        stated = [np.float32(v) if dtype == "f4" else v for key in ("_FillValue",
+                  "missing_value") if key in attrs for v in np.ravel(attrs[key])]
+        values = np.array([*stated, *np.nextafter(np.array(stated, dtype), np.inf),
+                           0.0, -1.0, 1e20, -999.0, np.inf, -np.inf, np.nan], dtype=dtype)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")  # xarray warns of nothing for a plain mask
+        decoded = xr.conventions.decode_cf_variable(
+            "v", xr.Variable(("x",), values.copy(), dict(attrs)), stack_char_dim=False).values
+    ours = sources._masked(values.copy(), fills)
+    assert ours.dtype == decoded.dtype
+    assert np.array_equal(ours.view(f"u{ours.itemsize}"), decoded.view(f"u{ours.itemsize}"))

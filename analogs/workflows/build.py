@@ -18,6 +18,7 @@ import pandas as pd
 import xarray as xr
 
 from analogs import __version__
+from analogs._duck_arrays import duck_array_imports_deferred
 from analogs.workflows import store as store_io
 from analogs._validation import fail, renamed_errors
 from analogs.stages.daily_climatology import HarmonicClimatology
@@ -171,11 +172,9 @@ def build_store(paths, store, *, events=None, event_dates=P.event_dates.default,
         # read_guard: a damaged chunk or a file changed under the build's reads (the
         # missing-data, climatology, EOF and tagging passes) is named, exit 2.
         guard = read_guard(paths)
-        # The skill hindcast's regression needs scikit-learn, about a second to import:
-        # imported in a thread while the archive is read.
-        preload = (contextlib.nullcontext() if events is None
-                   else _beside(_import_quietly, "sklearn.linear_model"))
-        with _dask_scheduler(scheduler), guard, preload:
+        # xarray's checks for dask and pint arrays made without importing them (about
+        # 0.7 s of CPU an in-memory build holding neither spent importing them).
+        with _dask_scheduler(scheduler), guard, duck_array_imports_deferred():
             return _build(paths, store, events=events, event_dates=event_dates,
                           events_period=events_period, fields=fields, n_modes=n_modes,
                           variance=variance, region=region, domain=domain, hour=hour,
@@ -249,7 +248,7 @@ def _build(paths, store, *, events, event_dates, events_period, fields, n_modes,
     # pass: census, climatology, EOF, tagging; not with a distributed scheduler, whose
     # workers read the files themselves) and the EOF's anomaly matrix.
     with _scratch_files(store, chunked=chunks is not None, progress=progress,
-                        folder=scratch) as make_scratch:
+                        folder=scratch) as make_scratch, contextlib.ExitStack() as later:
         archive = open_archive(paths, fields=fields, region=domain, hour=hour, daily=daily,
                                chunks=chunks, progress=progress,
                                scratch=make_scratch if decode_to_scratch else None)
@@ -262,6 +261,14 @@ def _build(paths, store, *, events, event_dates, events_period, fields, n_modes,
             events, archive["lat"].values, archive["lon"].values, dates=event_dates)
 
         climatology = HarmonicClimatology(n_harmonics=n_harmonics).fit(archive)
+        if events is not None:
+            # The skill hindcast's regression needs scikit-learn, about a second of CPU
+            # to import: imported in a thread beside the anomalies and the EOF fit,
+            # whose BLAS products give the GIL up for long stretches. Beside the reading
+            # or the climatology's fit (many short C calls, each waiting for the GIL
+            # back) it slowed them by about the import's own time
+            # (tests/benchmarks/README.md).
+            later.enter_context(_beside(_import_quietly, "sklearn.linear_model"))
         # Anomalies in the archive's float32, made block-wise; the EOF fit scales them in
         # place into its data matrix (one copy of the archive beside the archive itself).
         # Out of core, that copy is a scratch file written in one pass over the archive.
