@@ -137,15 +137,18 @@ CHILD_TASKS = {"read": child_read, "svd": child_svd, "build": child_build}
 
 # ----------------------------------------------------------------------------- driver
 
-def _summary(runs: list[dict]) -> dict:
+def _summary(runs: list[dict], digits: int = 2) -> dict:
+    """Median and every run's seconds, peak memory, median CPU seconds when reported;
+    the first child's error instead when one failed."""
     errors = [r["error"] for r in runs if "error" in r]
     if errors:
         return {"error": errors[0]}
-    summary = {"median_s": round(statistics.median(r["seconds"] for r in runs), 2),
-               "runs_s": [round(r["seconds"], 2) for r in runs],
+    summary = {"median_s": round(statistics.median(r["seconds"] for r in runs), digits),
+               "runs_s": [round(r["seconds"], digits) for r in runs],
                "peak_rss_mb": round(max(r["peak_rss_mb"] for r in runs), 1)}
     if all("cpu_seconds" in r for r in runs):  # builds: CPU time, steadier under load
-        summary["cpu_median_s"] = round(statistics.median(r["cpu_seconds"] for r in runs), 2)
+        summary["cpu_median_s"] = round(statistics.median(r["cpu_seconds"] for r in runs),
+                                        digits)
     return summary
 
 

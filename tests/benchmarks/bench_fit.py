@@ -78,14 +78,8 @@ def run_child(task: str, spec: dict, pythonpath: str | None = None) -> dict:
 
 
 def _summary(runs: list[dict]) -> dict:
-    errors = [r["error"] for r in runs if "error" in r]
-    if errors:
-        return {"error": errors[0]}
-    summary = {"median_s": round(statistics.median(r["seconds"] for r in runs), 3),
-               "runs_s": [round(r["seconds"], 3) for r in runs],
-               "peak_rss_mb": round(max(r["peak_rss_mb"] for r in runs), 1)}
-    if all("cpu_seconds" in r for r in runs):
-        summary["cpu_median_s"] = round(statistics.median(r["cpu_seconds"] for r in runs), 3)
+    summary = bench_build._summary(runs, digits=3)
+    if "cpu_median_s" in summary:
         summary["parts"] = {part: [round(statistics.median(r["parts"][part][i] for r in runs), 3)
                                    for i in (0, 1)] for part in PARTS}
     return summary
