@@ -1293,10 +1293,13 @@ def _read_stored_into(handle, layout, out):
 def _netcdf_c():
     """(nc_get_vara, nc_strerror) of the netCDF-C library netCDF4 itself calls (found
     through netCDF4's extension module, whose dependencies the dynamic loader
-    searches), or None."""
+    searches), or None. Called holding the GIL (``PyDLL``), as netCDF4's own reads
+    are: HDF5 is not thread-safe, and a call giving the GIL up could run beside
+    another thread's netCDF4 call made outside xarray's lock (a crash seen once in a
+    fresh install's test run)."""
     import netCDF4
     try:
-        library = ctypes.CDLL(netCDF4._netCDF4.__file__)
+        library = ctypes.PyDLL(netCDF4._netCDF4.__file__)
         get, message = library.nc_get_vara, library.nc_strerror
     except (OSError, AttributeError):
         return None
