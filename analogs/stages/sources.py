@@ -409,16 +409,15 @@ def target_days(path, days, field, layouts: DayLayouts) -> xr.DataArray:
     or a gate it fails, sends it the full way (:func:`open_target`), which says what
     is wrong."""
     days = np.asarray(days, dtype="datetime64[ns]")
-    known = layouts.by_field.get(field)
-    laid_out = _days_by_layout(path, days, field, known)
-    if laid_out is None and not _fits_a_layout(path, known):
+    fits, laid_out = _days_by_layout(path, days, field, layouts.by_field.get(field))
+    if not fits:
         # The first file of its kind: its layout, from one opening by xarray, reads it
         # too when it gives the field, says nothing and passes the gates.
         if path not in layouts.of_file:
             layouts.of_file[path] = _first_layout(path)
         layout = layouts.of_file[path]
         if layout is not None:
-            laid_out = _days_by_layout(path, days, field, [layout])
+            _, laid_out = _days_by_layout(path, days, field, [layout])
             if laid_out is not None:
                 layouts.by_field.setdefault(field, []).append(layout)
     if laid_out is not None:
@@ -429,23 +428,13 @@ def target_days(path, days, field, layouts: DayLayouts) -> xr.DataArray:
 
 
 def _days_by_layout(path, days, field, layouts):
-    """``field`` of a file at ``days`` read by the first of ``layouts`` its header fits,
-    gated as a target (:func:`_laid_out_days`); None when none fits or it fails."""
+    """(whether the file is plainly laid out as one of ``layouts``
+    (:func:`_laid_out_candidates`), ``field`` of it at ``days`` read by that layout and
+    gated as a target (:func:`_laid_out_days`), or None when it does not fit, lacks
+    the field or fails a gate)."""
     found = _laid_out_candidates(path, layouts, {})
     candidate = next((c for c in found or () if c.field == field), None)
-    return None if candidate is None else _laid_out_days(candidate, days)
-
-
-def _fits_a_layout(path, layouts):
-    """Whether a plain NetCDF file's header is that of one of ``layouts``."""
-    if not layouts or not _plain_netcdf(path):
-        return False
-    import netCDF4
-    try:
-        with netCDF4.Dataset(path) as handle:
-            return _fitting_layout(handle, layouts) is not None
-    except Exception:  # read the full way, which says what is wrong
-        return False
+    return found is not None, None if candidate is None else _laid_out_days(candidate, days)
 
 
 def _first_layout(path):
@@ -476,19 +465,19 @@ def _laid_out_days(candidate, days):
     layout = candidate.laid_out.layout
     low_ok, high_ok = PLAUSIBLE_RANGE[candidate.field]
     try:
-        values = _read_laid_out(candidate.path, layout, (read, slice(None), slice(None)))
-        ends = np.asarray(values[[0, read.size - 1]], dtype=float)
-        finite = ends[np.isfinite(ends)]  # _sample_range of the first and last steps
-        if finite.size and not (low_ok <= finite.min() and finite.max() <= high_ok):
-            return None  # open_target converts a scale error or refuses the file
-        at = np.searchsorted(read, steps)
-        # The piece _laid_out_piece describes, at the days alone.
-        piece = xr.DataArray(values[at], dims=("time", "lat", "lon"), coords={
-            "time": xr.Variable("time", times[read[at]], dict(_TIME_ATTRS)),
-            "lat": layout.lat, "lon": layout.lon}, name=candidate.field,
+        # The piece _laid_out_piece describes, at the time steps read.
+        piece = xr.DataArray(
+            _read_laid_out(candidate.path, layout, (read, slice(None), slice(None))),
+            dims=("time", "lat", "lon"), coords={
+                "time": xr.Variable("time", times[read], dict(_TIME_ATTRS)),
+                "lat": layout.lat, "lon": layout.lon}, name=candidate.field,
             attrs=dict(layout.attrs))
-        return _checked_target_values(xr.Dataset({candidate.field: piece}), candidate.path,
-                                      {candidate.field: candidate.name})[candidate.field]
+        low, high = _sample_range(piece.isel(time=[0, read.size - 1]))
+        if np.isfinite(low) and not (low_ok <= low and high <= high_ok):
+            return None  # open_target converts a scale error or refuses the file
+        return _checked_target_values(
+            xr.Dataset({candidate.field: piece.isel(time=np.searchsorted(read, steps))}),
+            candidate.path, {candidate.field: candidate.name})[candidate.field]
     except (AnalogsInputError, OSError, RuntimeError, ValueError):
         return None
 
