@@ -403,6 +403,49 @@ def test_files_of_two_fields_read_by_a_layout_per_field(tmp_path, monkeypatch):
     assert opened == [paths[0]]  # for its layout, which gives both fields
 
 
+
+def test_laid_out_days_of_later_files_are_target_days_own(tmp_path, monkeypatch):
+    """A report's reading of an archive of per-field files (z500 packed, q850 with a
+    missing value): the first file of each kind read by target_days (which refuses the
+    field it does not hold with open_target's own words, from its layout, without
+    reading it the full way), every later file by laid_out_days with the layouts so
+    learnt, each field it holds at the days asked for among its times, bit for bit and
+    attribute for attribute what target_days gives; a file of a kind not seen yet, or
+    with no layout learnt, is None (for the caller to read it as any file)."""
+    paths = _packed_360(tmp_path)
+    days = pd.DatetimeIndex([t for year in YEARS for t in _times(year)[[0, 3, 7]]])
+    layouts = sources.DayLayouts()
+    assert sources.laid_out_days(paths[0], days.values, ["z500", "q850"], layouts) is None
+    first_days = days[days.isin(_times(YEARS[0]))].values
+    pairs = ((paths[0], "z500", "q850"), (paths[1], "q850", "z500"))
+    words = []
+    for path, _, other in pairs:
+        with pytest.raises(AnalogsInputError) as full:
+            sources.open_target(path, fields=[other], time="all")
+        words.append(str(full.value))
+    read_in_full = []
+    monkeypatch.setattr(sources, "open_target", lambda *a, **k: read_in_full.append(a))
+    for (path, field, other), said in zip(pairs, words):
+        sources.target_days(path, first_days, field, layouts)
+        with pytest.raises(AnalogsInputError, match="not found") as by_layout:
+            sources.target_days(path, first_days, other, layouts)
+        assert str(by_layout.value) == said
+    assert read_in_full == []
+    monkeypatch.undo()
+    for path in paths[2:]:
+        field = "z500" if Path(path).name.startswith("zg_") else "q850"
+        parts = sources.laid_out_days(path, days.values, ["z500", "q850"], layouts)
+        assert list(parts) == [field]
+        with xr.open_dataset(path) as held:
+            inside = days[days.isin(held["time"].values)]
+        expected = sources.target_days(path, inside.values, field, layouts)
+        xr.testing.assert_identical(parts[field], expected)
+        bits = f"u{expected.values.itemsize}"
+        assert np.array_equal(parts[field].values.view(bits), expected.values.view(bits))
+        elsewhere = days[~days.isin(inside)].values
+        assert sources.laid_out_days(path, elsewhere, [field], layouts) == {}
+    assert sources.laid_out_days(paths[2], days.values, ["z500"], sources.DayLayouts()) is None
+
 def _demo_like(folder, *, damaged=None):
     """Yearly zg files laid out as the demo's (time, plev, lat, lon), float32 with a
     _FillValue and a few points written as it (masked), zlib chunks of a year: the

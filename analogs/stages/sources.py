@@ -417,11 +417,43 @@ def target_days(path, days, field, layouts: DayLayouts) -> xr.DataArray:
             layouts.of_file[path] = _first_layout(path)
         layout = layouts.of_file[path]
         if layout is not None:
+            given = [candidate for candidate, _ in layout.variables]
+            # Every field the file gives is a candidate of its layout: open_target's
+            # refusal, without reading the file again.
+            _choose_fields([field], given, [path], {path: list(layout.names)})
             _, laid_out = _days_by_layout(path, days, field, [layout])
             if laid_out is not None:
                 layouts.by_field.setdefault(field, []).append(layout)
-    if laid_out is not None:
-        return laid_out
+    return laid_out if laid_out is not None else _days_read_in_full(path, days, field)
+
+
+def laid_out_days(path, days, fields, layouts: DayLayouts) -> dict | None:
+    """Each of ``fields`` a file laid out as one :func:`target_days` read before holds
+    (``layouts``; :func:`_laid_out_candidates`), at those of ``days`` (datetime64
+    values) among its times, as target_days reads it at them; a field it holds at none
+    of them is left out. None for a file laid out as none of them (read it by
+    target_days, after a look at its times): a file that fits is looked at once for
+    its times and read once, where the look at its times alone would open it too."""
+    known = {id(layout): layout for field in fields
+             for layout in layouts.by_field.get(field, ())}
+    found = _laid_out_candidates(path, list(known.values()), {})
+    if found is None:
+        return None
+    days = np.asarray(days, dtype="datetime64[ns]")
+    parts = {}
+    for candidate in found:
+        if candidate.field in fields:
+            inside = np.unique(days[np.isin(days, candidate.laid_out.times)])
+            if inside.size:
+                part = _laid_out_days(candidate, inside)
+                parts[candidate.field] = (part if part is not None else
+                                          _days_read_in_full(path, inside, candidate.field))
+    return parts
+
+
+def _days_read_in_full(path, days, field):
+    """``field`` of a file at ``days`` read the full way (:func:`open_target` over their
+    span), which converts, warns or refuses as for any file."""
     span = f"{pd.Timestamp(days.min()).isoformat()}/{pd.Timestamp(days.max()).isoformat()}"
     part = open_target(path, time=span, fields=[field])[field]
     return part.sel(time=part["time"].isin(days))

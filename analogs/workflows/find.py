@@ -1238,13 +1238,13 @@ def archive_day_fields(store, rows) -> tuple[xr.Dataset | None, str]:
     :func:`day_fields`, read from the archive files the manifest lists when every one
     is still at its recorded path with its recorded size; else (None, why not).
 
-    Only the days asked for are read: each file's times are looked at first (its
-    header), then the files holding some of the days are read at those days through
-    the archive reader (:func:`analogs.stages.sources.target_days`: the first file of
-    each kind recognised by ``open_target``, one way of recognising variables and
-    units; a later file laid out as it read at those time steps alone) and put on the
-    store grid
-    (:func:`on_store_grid`). A store of daily means (``--daily mean``) keeps the
+    Only the days asked for are read, through the archive reader: a file laid out as
+    one read before at those of its time steps alone, after one look at its header
+    (:func:`analogs.stages.sources.laid_out_days`); any other file's times looked at
+    first, then the file read at the days it holds
+    (:func:`analogs.stages.sources.target_days`: the first file of each kind recognised
+    by ``open_target``, one way of recognising variables and units); then put on the
+    store grid (:func:`on_store_grid`). A store of daily means (``--daily mean``) keeps the
     reconstruction: its days are not single times of the files."""
     import xarray as xr
     from analogs.workflows.paths import provenance
@@ -1262,9 +1262,14 @@ def archive_day_fields(store, rows) -> tuple[xr.Dataset | None, str]:
     # fields_of: the fields files of the same variables held
     found, fields_of = {}, {}
     try:
-        from analogs.stages.sources import DayLayouts, target_days
+        from analogs.stages.sources import DayLayouts, laid_out_days, target_days
         layouts = DayLayouts()
         for entry in inputs:
+            parts = laid_out_days(entry["path"], wanted.values, store.fields, layouts)
+            if parts is not None:  # laid out as a file read before
+                for name, part in parts.items():
+                    found.setdefault(name, []).append(part)
+                continue
             held, variables = _times_held(entry["path"])
             if held is None:
                 continue
