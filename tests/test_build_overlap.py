@@ -94,3 +94,65 @@ def test_a_tagging_error_exits_2_from_the_command_line(demo_dir, demo_files, mon
     err = capsys.readouterr().err
     assert "error: tagging failed" in err and "Traceback" not in err
     assert not _build_threads()
+
+
+def test_short_switch_interval_is_restored_after_the_last_user():
+    """The switch interval is shortened while any thread's block needs it and restored,
+    to what it was, when the last such block ends (two overlapping blocks in two
+    threads; the design of the build, no outside source)."""
+    import sys
+
+    before = sys.getswitchinterval()
+    first_in, second_out = threading.Event(), threading.Event()
+    seen = {}
+
+    def other():
+        with build._short_switch_interval():
+            first_in.wait()
+        seen["after_other"] = sys.getswitchinterval()
+        second_out.set()
+
+    thread = threading.Thread(target=other)
+    thread.start()
+    with build._short_switch_interval():
+        first_in.set()
+        second_out.wait()
+        seen["inside"] = sys.getswitchinterval()
+    thread.join()
+    # the interpreter keeps the interval in microseconds
+    assert seen["inside"] == seen["after_other"] == pytest.approx(
+        build._SWITCH_INTERVAL_BESIDE_READS, abs=1e-6)
+    assert sys.getswitchinterval() == before
+
+
+def test_in_memory_build_imports_the_regression_while_reading(demo_dir, demo_files,
+                                                              monkeypatch):
+    """In memory, scikit-learn's import runs while open_archive reads the values: the
+    context the build hands it is entered once every file is recognised and left after
+    the last field is read (out of core it runs beside the EOF fit instead)."""
+    from analogs.stages import sources
+
+    order = []
+    recognised, read_field = sources._recognised_in, sources._read_field
+
+    def noting(name, work):
+        def noted(*args, **kwargs):
+            order.append(name)
+            return work(*args, **kwargs)
+        return noted
+
+    @contextlib.contextmanager
+    def imported_beside(module):
+        order.append(f"enter {module}")
+        yield
+        order.append("leave")
+
+    monkeypatch.setattr(sources, "_recognised_in", noting("recognise", recognised))
+    monkeypatch.setattr(sources, "_read_field", noting("read", read_field))
+    monkeypatch.setattr(build, "sklearn_not_imported", lambda: True)
+    monkeypatch.setattr(build, "_imported_beside", imported_beside)
+    _build(demo_dir, demo_files, "store_import_beside")
+    first_read = order.index("read")
+    assert order[first_read - 1] == "enter sklearn.linear_model"
+    assert set(order[:first_read - 1]) == {"recognise"}
+    assert order[first_read:] == ["read", "read", "leave"]

@@ -554,3 +554,17 @@ def test_a_plain_mask_is_xarrays_decoding(dtype, attrs, plain):
     ours = sources._masked(values.copy(), fills)
     assert ours.dtype == decoded.dtype
     assert np.array_equal(ours.view(f"u{ours.itemsize}"), decoded.view(f"u{ours.itemsize}"))
+
+
+def test_every_direct_netcdf4_opening_holds_the_netcdf_lock():
+    """Every netCDF4 file the package opens itself is opened holding netCDF4's lock
+    (analogs._netcdf_lock: xarray's readers hold it, and the direct reads give the GIL
+    up), on the line that opens it: HDF5 is not thread-safe (its documentation's
+    thread-safety notes; common practice, no source)."""
+    package = Path(sources.__file__).resolve().parents[1]
+    openings = [(path.name, line.strip()) for path in package.rglob("*.py")
+                for line in path.read_text().splitlines() if "netCDF4.Dataset(" in line]
+    assert len(openings) >= 8
+    unlocked = [(name, line) for name, line in openings
+                if "NETCDF4_PYTHON_LOCK" not in line and "netcdf_lock()" not in line]
+    assert unlocked == []

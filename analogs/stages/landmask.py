@@ -155,8 +155,10 @@ def _may_hold_mask(path) -> bool:
     import types
 
     import netCDF4
+
+    from analogs._netcdf_lock import netcdf_lock
     try:
-        with netCDF4.Dataset(path) as dataset:
+        with netcdf_lock(), netCDF4.Dataset(path) as dataset:
             header = types.SimpleNamespace(data_vars={
                 name: types.SimpleNamespace(
                     attrs={"standard_name": getattr(variable, "standard_name", "")})

@@ -204,7 +204,7 @@ class _Candidate:
 
 def open_archive(paths, *, fields=None, region=None, hour=P.hour.default,
                  daily=P.daily.default, chunks=None, progress=False, max_missing_fraction=0.1,
-                 max_gap_days=2, scratch=None) -> xr.Dataset:
+                 max_gap_days=2, scratch=None, while_reading=None) -> xr.Dataset:
     """Open one or many NetCDF / Zarr / GRIB files as a canonical daily archive.
 
     Parameters
@@ -242,6 +242,10 @@ def open_archive(paths, *, fields=None, region=None, hour=P.hour.default,
         the files once, in one pass, into an array from ``scratch`` (the out-of-core
         build's memory-mapped scratch file), and the archive returned reads its chunks
         from there (:func:`_decoded_once`).
+    while_reading : context manager, optional
+        Entered once every file is recognised, left when their values are read (in
+        memory; lazily, when nothing is read yet): work it starts in another thread runs
+        while the reads wait on HDF5 without the GIL (a build imports scikit-learn so).
 
     Returns
     -------
@@ -266,11 +270,12 @@ def open_archive(paths, *, fields=None, region=None, hour=P.hour.default,
     chosen = _choose_fields(requested, candidates, files, seen)
     _say_computed(chosen, candidates, _describe(files))
     arrays, duplicates, origins = {}, 0, {}
-    for field in chosen:
-        joined, origins[field] = _read_field(field, [c for c in candidates if c.field == field],
-                                             chunks)
-        arrays[field], dropped = _drop_duplicate_times(joined, files)
-        duplicates = max(duplicates, dropped)
+    with contextlib.nullcontext() if while_reading is None else while_reading:
+        for field in chosen:
+            joined, origins[field] = _read_field(
+                field, [c for c in candidates if c.field == field], chunks)
+            arrays[field], dropped = _drop_duplicate_times(joined, files)
+            duplicates = max(duplicates, dropped)
     ds = _merge_fields(arrays, files)
     ds = _to_daily(ds, hour=hour, how=daily, files=files)
     if south_north_west_east is not None:
@@ -497,19 +502,22 @@ def _laid_out_days(candidate, days):
     layout = candidate.laid_out.layout
     low_ok, high_ok = PLAUSIBLE_RANGE[candidate.field]
     try:
-        # The piece _laid_out_piece describes, at the time steps read.
-        piece = xr.DataArray(
-            _read_laid_out(candidate.path, layout, (read, slice(None), slice(None))),
-            dims=("time", "lat", "lon"), coords={
-                "time": xr.Variable("time", times[read], dict(_TIME_ATTRS)),
-                "lat": layout.lat, "lon": layout.lon}, name=candidate.field,
-            attrs=dict(layout.attrs))
-        low, high = _sample_range(piece.isel(time=[0, read.size - 1]))
+        values = _read_laid_out(candidate.path, layout, (read, slice(None), slice(None)))
+        low, high = _finite_range(values[[0, -1]])  # _sample_range's steps
         if np.isfinite(low) and not (low_ok <= low and high <= high_ok):
             return None  # open_target converts a scale error or refuses the file
-        return _checked_target_values(
-            xr.Dataset({candidate.field: piece.isel(time=np.searchsorted(read, steps))}),
-            candidate.path, {candidate.field: candidate.name})[candidate.field]
+        values = values[np.searchsorted(read, steps)]
+        # The piece _laid_out_piece describes, at the days.
+        piece = xr.DataArray(values, dims=("time", "lat", "lon"), coords={
+            "time": xr.Variable("time", times[steps], dict(_TIME_ATTRS)),
+            "lat": layout.lat, "lon": layout.lon}, name=candidate.field,
+            attrs=dict(layout.attrs))
+        low, high = _finite_range(values)
+        if not np.isinf(values).any() and (np.isnan(low) or low_ok <= low and high <= high_ok):
+            piece.attrs.pop("units_in_file", None)  # all _checked_target_values would do
+            return piece
+        return _checked_target_values(xr.Dataset({candidate.field: piece}), candidate.path,
+                                      {candidate.field: candidate.name})[candidate.field]
     except (AnalogsInputError, OSError, RuntimeError, ValueError):
         return None
 
@@ -910,7 +918,7 @@ def _damaged_data(path):
         return None
     import netCDF4
     try:
-        with netCDF4.Dataset(path) as handle:
+        with NETCDF4_PYTHON_LOCK, netCDF4.Dataset(path) as handle:
             for variable in handle.variables.values():
                 if variable.ndim == 0:
                     variable[...]
@@ -1085,25 +1093,35 @@ def _file_layout(path, found, names):
     with warnings.catch_warnings(record=True) as said:
         warnings.simplefilter("always")
         try:
-            with netCDF4.Dataset(path) as handle:
-                variables = tuple((c, _variable_layout(c, handle)) for c in found)
-                time_dims = frozenset(v.time_dim for _, v in variables if v is not None)
+            axes = [_canonical_axes(c) for c in found]
+            if any(a.time_dim is None for a in axes):
+                return None
+            time_dims = frozenset(a.time_dim for a in axes)
+            # The header under netCDF4's lock; the layouts, which read through xarray
+            # (taking that lock itself), after it.
+            with NETCDF4_PYTHON_LOCK, netCDF4.Dataset(path) as handle:
+                stored = {c.name: _stored_as(handle.variables[c.name]) for c in found}
                 header = _header(handle, time_dims)
+            variables = tuple((c, _variable_layout(c, a, *stored[c.name]))
+                              for c, a in zip(found, axes))
         except Exception:  # read the full way, which says what is wrong
             return None
-    if said or any(v is None for _, v in variables):
+    if said:
         return None
     time_kinds = {dim: found[0].dataset[dim].dtype.kind for dim in time_dims}
     return _FileLayout(header, time_dims, time_kinds, tuple(names), variables)
 
 
-def _variable_layout(candidate, handle):
-    """The :class:`_VariableLayout` of a candidate read in full (``handle``: its file
-    open in netCDF4); None for a scalar time. The grid's order is normalise_grid's own,
+def _stored_as(variable):
+    """(dtype, attributes) of a netCDF4 variable as its file stores it."""
+    return variable.dtype, {k: variable.getncattr(k) for k in variable.ncattrs()}
+
+
+def _variable_layout(candidate, axes, dtype, file_attrs):
+    """The :class:`_VariableLayout` of a candidate read in full with a time dim
+    (``axes``: its :func:`_canonical_axes`; ``dtype``, ``file_attrs``: its variable as
+    the file stores it, :func:`_stored_as`). The grid's order is normalise_grid's own,
     read off a probe holding each point's index."""
-    axes = _canonical_axes(candidate)
-    if axes.time_dim is None:
-        return None
     piece = _canonical_array(candidate)
     dims = tuple(candidate.dataset[candidate.name].dims)
     kept = tuple(d for d in dims if d not in axes.selection)
@@ -1116,8 +1134,6 @@ def _variable_layout(candidate, handle):
         return None
     rows, columns = probe.values[:, 0] // n_lon, probe.values[0] % n_lon
     factor, offset = _conversion_of(piece.attrs["units_in_file"], candidate.field)
-    variable = handle.variables[candidate.name]
-    file_attrs = {k: variable.getncattr(k) for k in variable.ncattrs()}
     return _VariableLayout(
         name=candidate.name, time_dim=axes.time_dim,
         key=tuple(axes.selection.get(d, slice(None)) for d in dims),
@@ -1127,8 +1143,8 @@ def _variable_layout(candidate, handle):
         columns=None if np.array_equal(columns, np.arange(n_lon)) else columns,
         lat=piece["lat"].variable, lon=piece["lon"].variable, attrs=dict(piece.attrs),
         file_attrs=file_attrs, factor=factor, offset=offset, dtype=piece.dtype,
-        fills=_plain_mask(candidate.name, variable.dtype, file_attrs)
-        if (factor, offset) == (1.0, 0.0) and piece.dtype == variable.dtype else None)
+        fills=_plain_mask(candidate.name, dtype, file_attrs)
+        if (factor, offset) == (1.0, 0.0) and piece.dtype == dtype else None)
 
 
 def _plain_mask(name, dtype, attrs):
@@ -1314,13 +1330,13 @@ def _read_stored_into(handle, layout, out):
 def _netcdf_c():
     """(nc_get_vara, nc_strerror) of the netCDF-C library netCDF4 itself calls (found
     through netCDF4's extension module, whose dependencies the dynamic loader
-    searches), or None. Called holding the GIL (``PyDLL``), as netCDF4's own reads
-    are: HDF5 is not thread-safe, and a call giving the GIL up could run beside
-    another thread's netCDF4 call made outside xarray's lock (a crash seen once in a
-    fresh install's test run)."""
+    searches), or None. Called without the GIL, as netCDF4 calls the library: another
+    thread runs Python while HDF5 decompresses (a build imports scikit-learn beside its
+    reads), and holding netCDF4's lock (:mod:`analogs._netcdf_lock`), as every netCDF4
+    call of the package does, keeps any other HDF5 call from running beside it."""
     import netCDF4
     try:
-        library = ctypes.PyDLL(netCDF4._netCDF4.__file__)
+        library = ctypes.CDLL(netCDF4._netCDF4.__file__)
         get, message = library.nc_get_vara, library.nc_strerror
     except (OSError, AttributeError):
         return None
@@ -1980,6 +1996,12 @@ def _sample_range(da, where=None):
         raise AnalogsInputError(f"{where}: its data cannot be read ({_one_line(err)}); the "
                                 "file is damaged (a corrupt or missing chunk) or was cut "
                                 "short") from None
+    return _finite_range(values)
+
+
+def _finite_range(values):
+    """(min, max) of the finite ``values`` as floats; NaN, NaN when there are none."""
+    values = np.asarray(values, dtype=float)
     finite = values[np.isfinite(values)]
     if finite.size == 0:
         return np.nan, np.nan

@@ -38,6 +38,8 @@ TABLE_SUFFIXES = (".csv", ".parquet")
 #: Serialises this process's NetCDF (HDF5) writes here and store reads
 #: (:func:`analogs.workflows.store.read_dataset`): the HDF5 library is not thread-safe,
 #: and a thread opening a store while another loads or writes one can crash the process.
+#: Taken before, never inside, the lock of each netCDF4 call
+#: (:func:`analogs._netcdf_lock.netcdf_lock`, which xarray's reads and writes take).
 NETCDF_LOCK = threading.RLock()
 
 

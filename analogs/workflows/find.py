@@ -1340,9 +1340,11 @@ def _times_held(path) -> tuple[pd.DatetimeIndex | None, frozenset]:
     netCDF4 (a tenth of what opening it with xarray costs); no times when it has no
     time axis that decodes (then the file is not read for the maps)."""
     import netCDF4
+
+    from analogs._netcdf_lock import netcdf_lock
     from analogs.workflows.files import NETCDF_LOCK
     try:
-        with NETCDF_LOCK, netCDF4.Dataset(path) as dataset:
+        with NETCDF_LOCK, netcdf_lock(), netCDF4.Dataset(path) as dataset:
             for name in ("time", "valid_time", "t"):
                 if name in dataset.variables and dataset.variables[name].ndim == 1:
                     var = dataset.variables[name]

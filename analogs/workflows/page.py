@@ -45,15 +45,14 @@ def analog_days(store, result: FindResult, views=()) -> dict:
         markers = marker_styles(sorted(drawn["kind"].astype(str).unique()))
         on_map = drawn[drawn["lat"].between(float(np.min(lat)), float(np.max(lat)))
                        & drawn["lon"].between(float(np.min(lon)), float(np.max(lon)))]
-        by_day = dict(tuple(on_map.groupby(pd.to_datetime(on_map["day"]).dt.normalize())))
+        by_day = _rows_by_day(on_map, region)
     known = (analogs["reports_known"].to_numpy(dtype=bool) if "reports_known" in analogs
              else np.ones(len(analogs), dtype=bool))
     days = {}
     for i, analog in enumerate(analogs.itertuples(index=False)):
         reports = None
         if events is not None and known[i]:
-            day = by_day.get(pd.Timestamp(analog.date).normalize())
-            reports = [] if day is None else _report_rows(day.sort_values("time"), region)
+            reports = by_day.get(pd.Timestamp(analog.date).normalize(), [])
         kinds = sorted({r["kind"] for r in reports or []})
         alt = (f"Map of analog day {analog.date} (rank {analog.rank}, {analog.regime}, "
                f"distance {analog.distance:.2f}) over {extent}: 500 hPa height contours every "
@@ -67,15 +66,27 @@ def analog_days(store, result: FindResult, views=()) -> dict:
     return days
 
 
-def _report_rows(day: pd.DataFrame, region) -> list[dict]:
-    inside = (region.contains(day["lat"].to_numpy(), day["lon"].to_numpy())
-              if region is not None else np.ones(len(day), dtype=bool))
-    magnitudes = day["magnitude"] if "magnitude" in day else [None] * len(day)
-    return [{"time": pd.Timestamp(t).strftime("%m-%d %H:%M"), "kind": str(k),
-             "magnitude": _magnitude(m), "lat": f"{y:.2f}", "lon": f"{x:.2f}",
-             "in_region": bool(flag)}
-            for t, k, m, y, x, flag in zip(day["time"], day["kind"], magnitudes,
-                                           day["lat"], day["lon"], inside)]
+def _rows_by_day(events: pd.DataFrame, region) -> dict[pd.Timestamp, list[dict]]:
+    """The report rows of each convective day of ``events`` (by the day's midnight),
+    in time order: one pass over the table, sorted by day and then by time (stable:
+    reports of the same time keep the table's order)."""
+    day = pd.to_datetime(events["day"]).dt.normalize().to_numpy()
+    time = pd.to_datetime(events["time"]).to_numpy()
+    order = np.lexsort((time, day))
+    events, day, time = events.iloc[order], day[order], time[order]
+    lat, lon = events["lat"].to_numpy(), events["lon"].to_numpy()
+    inside = (region.contains(lat, lon) if region is not None
+              else np.ones(len(events), dtype=bool))
+    magnitudes = (events["magnitude"].tolist() if "magnitude" in events
+                  else [None] * len(events))
+    rows = [{"time": text, "kind": str(k), "magnitude": _magnitude(m), "lat": f"{y:.2f}",
+             "lon": f"{x:.2f}", "in_region": bool(flag)}
+            for text, k, m, y, x, flag in zip(
+                pd.DatetimeIndex(time).strftime("%m-%d %H:%M"), events["kind"].tolist(),
+                magnitudes, lat.tolist(), lon.tolist(), inside.tolist())]
+    starts = np.flatnonzero(np.r_[True, day[1:] != day[:-1]]) if len(day) else []
+    ends = list(starts[1:]) + [len(day)]
+    return {pd.Timestamp(day[a]): rows[a:b] for a, b in zip(starts, ends)}
 
 
 def _magnitude(value) -> str:

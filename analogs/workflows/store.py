@@ -40,6 +40,7 @@ import numpy as np
 import pandas as pd
 
 from analogs import __version__
+from analogs._netcdf_lock import netcdf_lock
 from analogs.errors import StoreError
 from analogs.workflows import files as _files
 from analogs.workflows import paths as _paths
@@ -581,7 +582,7 @@ def read_scores(path) -> dict:
     import netCDF4
     path = Path(path)
     try:
-        with _files.NETCDF_LOCK, netCDF4.Dataset(path) as scores:
+        with _files.NETCDF_LOCK, netcdf_lock(), netCDF4.Dataset(path) as scores:
             if "pcs" not in scores.variables:
                 raise StoreError(f"store {path.parent}: {SCORES} holds no variable 'pcs' (it "
                                  f"holds {', '.join(scores.variables) or 'none'}); rebuild "
@@ -616,7 +617,7 @@ def read_grid(path) -> tuple[np.ndarray, np.ndarray]:
     at ``path`` (without reading the climatology or the EOFs)."""
     import netCDF4
     try:
-        with _files.NETCDF_LOCK, netCDF4.Dataset(path) as basis:
+        with _files.NETCDF_LOCK, netcdf_lock(), netCDF4.Dataset(path) as basis:
             return (np.asarray(basis["lat"][:], dtype=float),
                     np.asarray(basis["lon"][:], dtype=float))
     except (OSError, IndexError, KeyError) as error:
