@@ -15,6 +15,9 @@ import numpy as np
 import pandas as pd
 import pytest
 import xarray as xr
+from hypothesis import given, settings
+from hypothesis import strategies as st
+from hypothesis.extra.numpy import arrays
 from PIL import Image
 
 from analogs.errors import AnalogsInputError
@@ -397,3 +400,18 @@ def test_a_map_across_the_date_line_draws_unbroken_with_degree_labels():
     np.testing.assert_allclose(back_to_degrees(frame, points_of(line.get("d"))[0]),
                                [[170.0, 55.0], [190.0, 60.0]], atol=0.05)
     assert "grey: coastlines (test)" in texts(root) and LAND_NOTE not in texts(root)
+
+
+@settings(max_examples=150, deadline=None)
+@given(arrays(np.float64, st.tuples(st.integers(0, 60), st.just(2)),
+              elements=st.floats(-2e5, 2e5, allow_nan=False) | st.sampled_from(
+                  [0.05, -0.05, 0.15, -0.04, 99999.95, 1e5 + 0.05])))
+def test_path_points_are_printf_g_of_numpy_round(xy):
+    """Path coordinates: each number as ``"%g" % round(v, 1)`` (Python's printf-style
+    formatting of numpy's rounding to a tenth, minus zero written 0), pairs joined by
+    a comma and a space, whichever way svg_maps writes them (a table of the tenths a
+    path spans, or number by number when it spans too many)."""
+    from analogs.presentation.svg_maps import _points
+    expected = " ".join(f"{'%g' % (np.round(x, 1) + 0.0)},{'%g' % (np.round(y, 1) + 0.0)}"
+                        for x, y in xy)
+    assert _points(xy) == expected

@@ -76,10 +76,26 @@ def _e(value) -> str:
     return html.escape(str(value), quote=True)
 
 
+#: Tenths of a pixel spanned by the coordinates of one path beyond which
+#: :func:`_points` formats each number instead of looking it up.
+_MAX_TABLE_TENTHS = 100_000
+
+
 def _points(xy) -> str:
-    """'x,y x,y ...' of an (n, 2) array of pixels, to a tenth of a pixel."""
-    xy = np.round(np.asarray(xy, dtype=float), 1) + 0.0
-    return ("%g,%g " * len(xy) % tuple(xy.ravel())).rstrip()
+    """'x,y x,y ...' of an (n, 2) array of pixels, to a tenth of a pixel: each number
+    ``"%g" % round(v, 1)``, looked up in a table of the tenths the path spans (its
+    thousands of points fall on a few thousand distinct tenths; formatting each one
+    was a third of drawing the analog grid)."""
+    tenths = np.rint(np.asarray(xy, dtype=float) * 10.0).ravel()  # numpy's round(v, 1)
+    if not tenths.size:
+        return ""
+    low, high = tenths.min(), tenths.max()
+    if not (np.isfinite(low) and np.isfinite(high)) or high - low > _MAX_TABLE_TENTHS:
+        return ("%g,%g " * (tenths.size // 2) % tuple(tenths / 10.0 + 0.0)).rstrip()
+    first = int(low)
+    table = ["%g" % (k / 10) for k in range(first, int(high) + 1)]
+    words = [table[k] for k in (tenths.astype(np.int64) - first).tolist()]
+    return " ".join(map(",".join, zip(words[::2], words[1::2])))
 
 
 class Frame:

@@ -34,6 +34,7 @@ from __future__ import annotations
 
 import inspect
 import os
+import time
 import warnings
 import weakref
 from dataclasses import dataclass
@@ -1238,13 +1239,10 @@ def archive_day_fields(store, rows) -> tuple[xr.Dataset | None, str]:
     :func:`day_fields`, read from the archive files the manifest lists when every one
     is still at its recorded path with its recorded size; else (None, why not).
 
-    Only the days asked for are read, through the archive reader: a file laid out as
-    one read before at those of its time steps alone, after one look at its header
-    (:func:`analogs.stages.sources.laid_out_days`); any other file's times looked at
-    first, then the file read at the days it holds
-    (:func:`analogs.stages.sources.target_days`: the first file of each kind recognised
-    by ``open_target``, one way of recognising variables and units); then put on the
-    store grid (:func:`on_store_grid`). A store of daily means (``--daily mean``) keeps the
+    Only the days asked for are read, through the archive reader (:func:`_archive_days`:
+    the first file of each kind recognised by ``open_target``, one way of recognising
+    variables and units; half of the files in a forked child where there are enough),
+    then put on the store grid (:func:`on_store_grid`). A store of daily means (``--daily mean``) keeps the
     reconstruction: its days are not single times of the files."""
     import xarray as xr
     from analogs.workflows.paths import provenance
@@ -1259,32 +1257,8 @@ def archive_day_fields(store, rows) -> tuple[xr.Dataset | None, str]:
         if provenance([path])[0]["bytes"] != entry["bytes"]:
             return None, f"archive file {path} changed size since the build"
     wanted = pd.DatetimeIndex(store.times[rows])
-    # fields_of: the fields files of the same variables held
-    found, fields_of = {}, {}
     try:
-        from analogs.stages.sources import DayLayouts, laid_out_days, target_days
-        layouts = DayLayouts()
-        for entry in inputs:
-            parts = laid_out_days(entry["path"], wanted.values, store.fields, layouts)
-            if parts is not None:  # laid out as a file read before
-                for name, part in parts.items():
-                    found.setdefault(name, []).append(part)
-                continue
-            held, variables = _times_held(entry["path"])
-            if held is None:
-                continue
-            inside = wanted[wanted.isin(held)].unique().sort_values()
-            if inside.empty:
-                continue
-            known = fields_of.get(variables)
-            for name in store.fields if known is None else known:
-                try:
-                    part = target_days(entry["path"], inside.values, name, layouts)
-                except AnalogsInputError:
-                    continue  # the file holds another field
-                if known is None:
-                    fields_of.setdefault(variables, []).append(name)
-                found.setdefault(name, []).append(part)
+        found = _archive_days(inputs, wanted, store.fields)
     except (AnalogsInputError, OSError, ValueError) as error:
         return None, f"the archive could not be read ({' '.join(str(error).split())[:120]})"
     missing = [name for name in store.fields if name not in found or not wanted.isin(
@@ -1307,6 +1281,85 @@ def archive_day_fields(store, rows) -> tuple[xr.Dataset | None, str]:
         out[name] = xr.DataArray(fields[name].transpose("time", "lat", "lon").values,
                                  dims=("analog", "lat", "lon"), attrs=dict(fields[name].attrs))
     return out, "archive"
+
+
+#: Files of the archive from which a report's days are read by two processes: the
+#: second half in a forked child (:mod:`analogs.workflows.forked`), the first here.
+MIN_FILES_FORKED = 4
+
+
+def _archive_days(inputs, wanted, fields) -> dict:
+    """{field: [DataArray of the days a file holds, in the order of ``inputs``]}: the
+    archive files' days among ``wanted`` (:func:`_days_in_files`). With at least
+    :data:`MIN_FILES_FORKED` files, and where a fork can be made, the second half of the
+    files is read in a child process while this one reads the first half; when the
+    child fails or gives no answer in ten times the first half's time (at least 10 s),
+    they are read here (the answer, its errors and warnings are those of one process
+    reading them all)."""
+    from analogs.workflows import forked
+    half = len(inputs) // 2
+    if len(inputs) < MIN_FILES_FORKED or not forked.can_fork():
+        return _days_in_files(inputs, wanted, fields)
+    started = time.perf_counter()
+    with forked.beside(_days_in_files_as_bytes, inputs[half:], wanted, fields) as child:
+        found = _days_in_files(inputs[:half], wanted, fields)
+        answer = child.answer(timeout=max(10.0, 10 * (time.perf_counter() - started)))
+    if answer is None:
+        more = _days_in_files(inputs[half:], wanted, fields)
+    else:
+        arrays, said = forked.arrays_from_bytes(answer)
+        forked.warn_again(said)
+        more = {}
+        for part in arrays:
+            more.setdefault(part.name, []).append(part)
+    for name, parts in more.items():
+        found.setdefault(name, []).extend(parts)
+    return found
+
+
+def _days_in_files_as_bytes(inputs, wanted, fields) -> bytes:
+    """:func:`_days_in_files` in a forked child: its parts and warnings as bytes."""
+    from analogs.workflows import forked
+    with warnings.catch_warnings(record=True) as said:
+        warnings.simplefilter("always")
+        found = _days_in_files(inputs, wanted, fields)
+    return forked.arrays_to_bytes([part for parts in found.values() for part in parts],
+                                  forked.recorded_warnings(said))
+
+
+def _days_in_files(inputs, wanted, fields) -> dict:
+    """{field: [DataArray of the days one file holds]} of the archive files ``inputs``
+    (manifest entries) at the days among ``wanted`` (DatetimeIndex) they hold: a file
+    laid out as one read before at those of its time steps alone, after one look at its
+    header (:func:`analogs.stages.sources.laid_out_days`); any other file's times looked
+    at first, then the file read at the days it holds
+    (:func:`analogs.stages.sources.target_days`)."""
+    from analogs.stages.sources import DayLayouts, laid_out_days, target_days
+    layouts = DayLayouts()
+    # fields_of: the fields files of the same variables held
+    found, fields_of = {}, {}
+    for entry in inputs:
+        parts = laid_out_days(entry["path"], wanted.values, fields, layouts)
+        if parts is not None:  # laid out as a file read before
+            for name, part in parts.items():
+                found.setdefault(name, []).append(part)
+            continue
+        held, variables = _times_held(entry["path"])
+        if held is None:
+            continue
+        inside = wanted[wanted.isin(held)].unique().sort_values()
+        if inside.empty:
+            continue
+        known = fields_of.get(variables)
+        for name in fields if known is None else known:
+            try:
+                part = target_days(entry["path"], inside.values, name, layouts)
+            except AnalogsInputError:
+                continue  # the file holds another field
+            if known is None:
+                fields_of.setdefault(variables, []).append(name)
+            found.setdefault(name, []).append(part)
+    return found
 
 
 def _at_days(parts, days) -> xr.DataArray:

@@ -1,0 +1,155 @@
+"""Work forked beside the caller (analogs.workflows.forked) and the report's archive days
+read by two processes (workflows.find._archive_days): the answer, the warnings and the
+errors are those of one process reading every file (the design of the reader; no
+outside source), the arrays cross bit for bit (xarray's own ``assert_identical``), and
+no child process outlives its work."""
+
+from __future__ import annotations
+
+import os
+import time
+import warnings
+
+import numpy as np
+import pandas as pd
+import pytest
+import xarray as xr
+
+from analogs.workflows import find, forked
+
+pytestmark = pytest.mark.skipif(not forked.can_fork(), reason="work is forked on Linux only")
+
+
+def _no_child_left():
+    with pytest.raises(ChildProcessError):
+        os.waitpid(-1, os.WNOHANG)
+
+
+def test_arrays_cross_as_bytes_bit_for_bit():
+    """Float, integer and boolean values with datetime, float and integer coordinates and
+    text and number attributes come back identical; anything else is refused."""
+    times = pd.date_range("2001-06-01T12:00", periods=3, freq="D")
+    arrays = [
+        xr.DataArray(np.random.default_rng(0).normal(size=(3, 2, 4)).astype("float32"),
+                     dims=("time", "lat", "lon"),
+                     coords={"time": ("time", times.values, {"standard_name": "time"}),
+                             "lat": ("lat", [10.0, 11.5], {"units": "degrees_north"}),
+                             "lon": ("lon", np.arange(4) * 2.5, {})},
+                     name="z500", attrs={"units": "gpm", "scale": 0.5, "count": 3,
+                                         "flag": True}),
+        xr.DataArray(np.array([[1, -2], [3, 4]], dtype="int16"), dims=("a", "b"),
+                     coords={"b": [7, 9]}, name="counts"),
+        xr.DataArray(np.array([True, False]), dims="x", name="mask")]
+    arrays[0][1, 0, 0] = np.nan
+    back, notes = forked.arrays_from_bytes(forked.arrays_to_bytes(arrays, {"said": ["x"]}))
+    assert notes == {"said": ["x"]}
+    for a, b in zip(arrays, back, strict=True):
+        xr.testing.assert_identical(a, b)
+        assert a.dtype == b.dtype
+        assert np.array_equal(a.values.view("u1"), b.values.view("u1"))
+    with pytest.raises(TypeError, match="plain bytes"):
+        forked.arrays_to_bytes([arrays[0].assign_attrs(scale=np.float32(0.5))])
+    with pytest.raises(TypeError, match="plain bytes"):
+        forked.arrays_to_bytes([xr.DataArray(np.array(["a", "b"], dtype=object), name="t")])
+
+
+def _fails():
+    raise ValueError("the child's error")
+
+
+def _sleeps():
+    time.sleep(60)
+    return b"late"
+
+
+def test_a_child_answers_or_leaves_the_work_to_the_caller():
+    """An answer comes back as the child's bytes; a child that fails or answers too late
+    gives None (the caller then does the work) and is reaped, killed if need be."""
+    with forked.beside(lambda: b"x" * 3_000_000) as child:  # beyond a pipe's buffer
+        assert child.answer(timeout=30) == b"x" * 3_000_000
+    with forked.beside(_fails) as child:
+        assert child.answer(timeout=30) is None
+    started = time.monotonic()
+    with forked.beside(_sleeps) as child:
+        assert child.answer(timeout=0.5) is None
+    assert time.monotonic() - started < 10
+    with pytest.raises(KeyError), forked.beside(_sleeps):
+        raise KeyError("the caller's own error")
+    _no_child_left()
+
+
+def _write_year(folder, year, *, infinite=False):
+    times = pd.date_range(f"{year}-06-01T12:00", periods=10, freq="D")
+    lat, lon = np.arange(30.0, 41.0), np.arange(-100.0, -84.0)
+    rng = np.random.default_rng(year)
+    z = 5600 + 40 * rng.normal(size=(times.size, lat.size, lon.size))
+    q = 0.008 + 0.001 * rng.random((times.size, lat.size, lon.size))
+    if infinite:
+        z[4, 2, 2] = np.inf  # 06-05, a day read
+    paths = []
+    for name, values, units in (("zg", z, "m"), ("hus", q, "kg kg-1")):
+        path = folder / f"{name}_{year}.nc"
+        xr.Dataset({name: (("time", "lat", "lon"), values.astype("float32"),
+                           {"units": units})},
+                   coords={"time": times, "lat": ("lat", lat, {"units": "degrees_north"}),
+                           "lon": ("lon", lon, {"units": "degrees_east"}),
+                           "plev": ((), 50000.0 if name == "zg" else 85000.0,
+                                    {"units": "Pa"})}).to_netcdf(path)
+        paths.append(path)
+    return paths
+
+
+@pytest.mark.parametrize("infinite_in", [None, 2003])
+def test_archive_days_read_by_two_processes_are_one_process_reading(
+        tmp_path, monkeypatch, infinite_in):
+    """Four years of per-field files (eight files: the child reads the last four): the
+    days' parts, in file order, and the warnings (an infinite value in a file the child
+    reads, made missing with open_target's warning) are those of one process."""
+    paths = [p for year in (2001, 2002, 2003, 2004)
+             for p in _write_year(tmp_path, year, infinite=year == infinite_in)]
+    inputs = [{"path": str(p)} for p in sorted(paths)]
+    wanted = pd.DatetimeIndex([t for year in (2004, 2001, 2003, 2002) for t in
+                               pd.date_range(f"{year}-06-02T12:00", periods=3, freq="3D")])
+    forks = []
+    beside = forked.beside
+
+    def counted(*args):
+        forks.append(args[1])
+        return beside(*args)
+
+    def read():
+        with warnings.catch_warnings(record=True) as said:
+            warnings.simplefilter("always")
+            found = find._archive_days(inputs, wanted, ["z500", "q850"])
+        return found, [str(w.message) for w in said]
+
+    monkeypatch.setattr(forked, "beside", counted)
+    two, said_two = read()
+    assert forks == [inputs[4:]]
+    monkeypatch.setattr(forked, "can_fork", lambda: False)
+    one, said_one = read()
+    assert len(forks) == 1
+    assert said_two == said_one
+    assert len(said_one) == (1 if infinite_in else 0)
+    assert list(two) == list(one)
+    for name in one:
+        assert len(two[name]) == len(one[name]) == 4
+        for a, b in zip(two[name], one[name], strict=True):
+            xr.testing.assert_identical(a, b)
+    _no_child_left()
+
+
+def test_a_failing_child_leaves_its_files_to_the_caller(tmp_path, monkeypatch):
+    """When the child's reading fails (here: its answer cannot be made), its files are
+    read by the caller: the same parts as one process gives."""
+    paths = [p for year in (2001, 2002) for p in _write_year(tmp_path, year)]
+    inputs = [{"path": str(p)} for p in sorted(paths)]
+    wanted = pd.DatetimeIndex(["2001-06-03T12:00", "2002-06-05T12:00"])
+    monkeypatch.setattr(find, "_days_in_files_as_bytes", lambda *args: _fails())
+    found = find._archive_days(inputs, wanted, ["z500", "q850"])
+    monkeypatch.setattr(forked, "can_fork", lambda: False)
+    expected = find._archive_days(inputs, wanted, ["z500", "q850"])
+    for name in expected:
+        for a, b in zip(found[name], expected[name], strict=True):
+            xr.testing.assert_identical(a, b)
+    _no_child_left()
