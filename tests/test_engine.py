@@ -223,6 +223,7 @@ def test_field_report_opens_and_regrids_its_target_once(demo_store, demo_files, 
     import analogs.stages.sources as sources
     from analogs.stages.daily_climatology import HarmonicClimatology
     from analogs.stages.eof import MultivariateEOF
+    from analogs.workflows import forked
 
     archive = open_archive(demo_files, progress=False)
     field = write_forecast_like_field(archive, demo_store.times[540], tmp_path / "field.nc")
@@ -250,6 +251,9 @@ def test_field_report_opens_and_regrids_its_target_once(demo_store, demo_files, 
         by_xarray[str(path)] += 1
         return original_open_file(path, *args, **kwargs)
     monkeypatch.setattr(sources, "_open_file", counted_open_file)
+    # Every archive file read in this process, where the openings are counted (a report
+    # reads half of them in a forked child otherwise).
+    monkeypatch.setattr(forked, "can_fork", lambda: False)
     counting(sources, "regrid_to")
     # climatology evaluations: predict, and transform (its block-wise subtraction of
     # every field; it calls predict only for the monthly method, not on the demo)
