@@ -153,3 +153,28 @@ def test_a_failing_child_leaves_its_files_to_the_caller(tmp_path, monkeypatch):
         for a, b in zip(found[name], expected[name], strict=True):
             xr.testing.assert_identical(a, b)
     _no_child_left()
+
+
+def test_report_page_is_the_same_drawn_by_one_process(demo_store, monkeypatch):
+    """The find report of a demo day (the archive's days read by two processes, the
+    analog grid drawn in a child) is the page one process draws, byte for byte; when
+    the child drawing the grid fails, the caller draws it: the same page again."""
+    from analogs.workflows.page import report_page
+    result = demo_store.find(date=str(demo_store.days[420].date()))
+    forks = []
+    beside = forked.beside
+
+    def counted(work, *args):
+        forks.append(work.__name__)
+        return beside(work, *args)
+
+    monkeypatch.setattr(forked, "beside", counted)
+    two = report_page(demo_store, result)
+    assert sorted(forks) == ["_days_in_files_as_bytes", "_grid_as_bytes"]
+    monkeypatch.setattr(find, "_grid_as_bytes", lambda work: _fails())
+    assert report_page(demo_store, result) == two
+    monkeypatch.setattr(forked, "can_fork", lambda: False)
+    one = report_page(demo_store, result)
+    assert one == two
+    assert 'id="analog-map-1"' in one and "archive&#x27;s fields" in one
+    _no_child_left()

@@ -153,11 +153,12 @@ def field(seed=3, nan=True):
     return lat, lon, z
 
 
-def test_contour_lines_are_matplotlibs_contour():
+@pytest.mark.parametrize("nan", [False, True])
+def test_contour_lines_are_matplotlibs_contour(nan):
     """contourpy with matplotlib's algorithm gives, level by level, the vertices of
     matplotlib's own contour of the same field (NaN cells left out alike)."""
     from matplotlib.figure import Figure
-    lat, lon, z = field()
+    lat, lon, z = field(nan=nan)
     levels = height_levels(z)
     reference = Figure().add_subplot().contour(lon, lat, z, levels=levels)
     for (level, lines), expected in zip(contour_lines(lon, lat, z, levels),

@@ -110,11 +110,12 @@ def contour_lines(lon, lat, values, levels) -> list[tuple[float, list[np.ndarray
     """(level, lines) for each of ``levels``: the contour lines of ``values`` (lat, lon)
     as (n, 2) arrays of (lon, lat), traced by contourpy with matplotlib's default
     algorithm and corner masking (so the vertices are those of matplotlib's ``contour``
-    on the same arrays), cells with NaN left out."""
+    on the same arrays), cells with NaN left out (contourpy masks the values that are
+    not finite itself)."""
     from contourpy import contour_generator
     generator = contour_generator(np.asarray(lon, dtype=float), np.asarray(lat, dtype=float),
-                                  np.ma.masked_invalid(np.asarray(values, dtype=float)),
-                                  name="mpl2014", corner_mask=True)
+                                  np.asarray(values, dtype=float), name="mpl2014",
+                                  corner_mask=True)
     # mpl2014 gives (points, codes) per line, as matplotlib takes them; the points alone.
     return [(float(level), [line for line in generator.lines(level)[0] if len(line) > 1])
             for level in levels]

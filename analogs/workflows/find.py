@@ -32,7 +32,10 @@ daily counts of the store's own region are kept in the store (``counts.parquet``
 
 from __future__ import annotations
 
+import contextlib
+import functools
 import inspect
+import json
 import os
 import time
 import warnings
@@ -1432,25 +1435,63 @@ def _alt_target(target, when, source) -> str:
     return text + "; the outcome region dashed."
 
 
-def _marks(target, gathered):
+def _marks(heights):
     """Trough and ridge axes and closed lows (:func:`analogs.stages.features.synoptic_marks`)
-    of the target (or None) and of the analog days, found in one pass over the fields
-    the maps draw."""
-    import xarray as xr
-
+    of the 500 hPa heights (``analog``, lat, lon) of the maps, in one pass; ``panel``
+    is the position along ``analog`` (each map's marks are those of its field alone)."""
     from analogs.stages.features import synoptic_marks
-    heights = [f["z500"].drop_vars("time", errors="ignore").expand_dims("analog")
-               for f in ([target] if target is not None else [])]
-    if gathered is not None:
-        heights.append(gathered["z500"].drop_vars(["time", "analog"], errors="ignore"))
-    if not heights:
-        return None, None
-    marks = synoptic_marks(xr.concat(heights, dim="analog", coords="minimal",
-                                     compat="override"), dim="analog")
-    if target is None:
-        return None, marks
-    target_marks = marks[marks["panel"] == 0]
-    return target_marks, marks[marks["panel"] > 0].assign(panel=lambda m: m["panel"] - 1)
+    return synoptic_marks(heights.drop_vars(["time", "analog"], errors="ignore"),
+                          dim="analog")
+
+
+def _analog_grid(gathered, shown, events, *, region, land, geography, days_source,
+                 title) -> tuple[str, str, list]:
+    """(SVG, alt text, each map's (SVG id, width, height)) of the analog grid: every
+    day of ``shown`` (``gathered``'s fields, in the same order) drawn with its marks
+    (:func:`_marks`) and events (:func:`analogs.presentation.svg_maps.analog_panel`)."""
+    from analogs.presentation import svg_maps as draw
+    marks = _marks(gathered["z500"])
+    alt = (f"Grid of {len(shown)} small maps of 500 hPa height ({days_source}), one per "
+           "analog day in "
+           "rank order, with that day's events marked by kind: "
+           + "; ".join(f"#{a.rank} {a.date} {a.regime}, distance {a.distance:.2f}, "
+                       f"{int(a.events_total)} events in region"
+                       for a in shown.itertuples(index=False)) + "."
+           + (" Each day's trough axes (red dashed), ridge axes (blue dotted) and closed "
+              "lows (L) of the 500 hPa height are marked." if len(marks) else "")
+           + _alt_land(land, geography))
+    views = []
+    svg = draw.analog_panel(gathered, shown, events, region=region, land=land,
+                            geography=geography, marks=marks, title=title, alt=alt,
+                            views=views)
+    return svg, alt, views
+
+
+def _beside_if_forked(work):
+    """``forked.beside`` of :func:`_grid_as_bytes` for ``work`` (an :func:`_analog_grid`
+    call) where a fork can be made; else a block with no child (None)."""
+    from analogs.workflows import forked
+    if work is None or not forked.can_fork():
+        return contextlib.nullcontext()
+    return forked.beside(_grid_as_bytes, work)
+
+
+def _grid_as_bytes(work) -> bytes:
+    """An :func:`_analog_grid` drawing in a forked child, with its warnings, as JSON."""
+    from analogs.workflows import forked
+    with warnings.catch_warnings(record=True) as said:
+        warnings.simplefilter("always")
+        svg, alt, views = work()
+    return json.dumps({"svg": svg, "alt": alt, "views": views,
+                       "said": forked.recorded_warnings(said)}).encode()
+
+
+def _grid_from_bytes(answer) -> tuple[str, str, list]:
+    """:func:`_grid_as_bytes`'s drawing, its warnings issued again here."""
+    from analogs.workflows import forked
+    drawn = json.loads(bytes(answer))
+    forked.warn_again(drawn["said"])
+    return drawn["svg"], drawn["alt"], [tuple(view) for view in drawn["views"]]
 
 
 def _alt_marks(marks) -> str:
@@ -1538,40 +1579,31 @@ def report_figures(store, result: FindResult, *, maps=None, n_panel=None,
         target, gathered = gathered.isel(analog=0), gathered.isel(analog=slice(1, None))
     land = land_lines(store.land)  # traced once for every map
     geography = map_lines(*store.grid, store.land)
-    target_marks, analog_marks = _marks(target, gathered)
-    figures = []
-    if target is not None:
-        alt = (_alt_target(target, f"target {when}", source) + _alt_marks(target_marks)
-               + _alt_land(land, geography))
-        figures.append((f"Target {when}: 500 hPa height and moisture ({source})",
-                        draw.target_map(target, region=region, when=f"Target {when}",
-                                        source=source, land=land, marks=target_marks,
-                                        geography=geography, alt=alt), alt))
+    figures, grid = [], None
     if len(analogs):
         gathered = gathered.assign_coords(analog=analogs["rank"].to_numpy())
         shown = analogs if n_panel is None else analogs.head(n_panel)
-        days = pd.to_datetime(shown["date"])
         events = None
         if store.events is not None:
-            events = store.events[store.events["day"].isin(days)]
-        alt = (f"Grid of {len(shown)} small maps of 500 hPa height ({days_source}), one per "
-               "analog day in "
-               "rank order, with that day's events marked by kind: "
-               + "; ".join(f"#{a.rank} {a.date} {a.regime}, distance {a.distance:.2f}, "
-                           f"{int(a.events_total)} events in region"
-                           for a in shown.itertuples(index=False)) + "."
-               + (" Each day's trough axes (red dashed), ridge axes (blue dotted) and closed "
-                  "lows (L) of the 500 hPa height are marked." if len(analog_marks) else "")
-               + _alt_land(land, geography))
-        figures.append(("The closest past days and their events",
-                        draw.analog_panel(gathered.isel(analog=slice(0, len(shown))),
-                                          shown, events, region=region, land=land,
-                                          geography=geography,
-                                          marks=analog_marks[analog_marks["panel"] < len(shown)],
-                                          title=f"Closest past days to {when}: 500 hPa height "
-                                                f"({_short(days_source)})",
-                                          alt=alt, views=views), alt))
+            events = store.events[store.events["day"].isin(pd.to_datetime(shown["date"]))]
+        grid = functools.partial(
+            _analog_grid, gathered.isel(analog=slice(0, len(shown))), shown, events,
+            region=region, land=land, geography=geography, days_source=days_source,
+            title=f"Closest past days to {when}: 500 hPa height ({_short(days_source)})")
+    started = time.perf_counter()
+    # The analog grid (each day's marks and map, the longest figure) drawn in a forked
+    # child while the other figures are drawn here (analogs.workflows.forked).
+    with _beside_if_forked(grid) as child:
         if target is not None:
+            target_marks = _marks(target["z500"].drop_vars("time", errors="ignore")
+                                  .expand_dims("analog"))
+            alt = (_alt_target(target, f"target {when}", source) + _alt_marks(target_marks)
+                   + _alt_land(land, geography))
+            figures.append((f"Target {when}: 500 hPa height and moisture ({source})",
+                            draw.target_map(target, region=region, when=f"Target {when}",
+                                            source=source, land=land, marks=target_marks,
+                                            geography=geography, alt=alt), alt))
+        if len(analogs) and target is not None:
             mean = gathered.mean("analog", keep_attrs=True).drop_vars("time", errors="ignore")
             mean.attrs["n_days"] = int(len(analogs))
             difference = mean["z500"].values - target["z500"].values
@@ -1588,7 +1620,7 @@ def report_figures(store, result: FindResult, *, maps=None, n_panel=None,
                                 title=f"Analog days and target {when} (analogs: "
                                       f"{_short(days_source)}; target: {_short(source)})",
                                 alt=alt), alt))
-        if store.events is not None:
+        if len(analogs) and store.events is not None:
             maps = outcome_maps(store, result) if maps is None else maps
             p = 100.0 * maps["neighbourhood_probability"].values
             lat, lon = maps["lat"].values, maps["lon"].values
@@ -1602,4 +1634,12 @@ def report_figures(store, result: FindResult, *, maps=None, n_panel=None,
             figures.append(("Where the analog days had events nearby",
                             draw.probability_map(maps, region=region, when=when, land=land,
                                                  geography=geography, alt=alt), alt))
+        answer = None if child is None else child.answer(
+            timeout=max(10.0, 10 * (time.perf_counter() - started)))
+    if grid is not None:
+        svg, alt, drawn = _grid_from_bytes(answer) if answer is not None else grid()
+        if views is not None:
+            views.extend(drawn)
+        figures.insert(1 if target is not None else 0,
+                       ("The closest past days and their events", svg, alt))
     return figures
