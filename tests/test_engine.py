@@ -223,7 +223,7 @@ def test_field_report_opens_and_regrids_its_target_once(demo_store, demo_files, 
     import analogs.stages.sources as sources
     from analogs.stages.daily_climatology import HarmonicClimatology
     from analogs.stages.eof import MultivariateEOF
-    from analogs.workflows import forked
+    from analogs import _forked as forked
 
     archive = open_archive(demo_files, progress=False)
     field = write_forecast_like_field(archive, demo_store.times[540], tmp_path / "field.nc")

@@ -1,4 +1,4 @@
-"""Work forked beside the caller (analogs.workflows.forked) and the report's archive days
+"""Work forked beside the caller (analogs._forked) and the report's archive days
 read by two processes (workflows.find._archive_days): the answer, the warnings and the
 errors are those of one process reading every file (the design of the reader; no
 outside source), the arrays cross bit for bit (xarray's own ``assert_identical``), and
@@ -15,7 +15,8 @@ import pandas as pd
 import pytest
 import xarray as xr
 
-from analogs.workflows import find, forked
+from analogs import _forked as forked
+from analogs.workflows import find
 
 pytestmark = pytest.mark.skipif(not forked.can_fork(), reason="work is forked on Linux only")
 
@@ -177,4 +178,35 @@ def test_report_page_is_the_same_drawn_by_one_process(demo_store, monkeypatch):
     one = report_page(demo_store, result)
     assert one == two
     assert 'id="analog-map-1"' in one and "archive&#x27;s fields" in one
+    _no_child_left()
+
+
+def test_archive_read_in_memory_by_two_processes_is_one_process_reading(
+        demo_files, monkeypatch):
+    """open_archive in memory of the demo archive (a file a year and field): the later
+    half of each field's files read by a forked child straight into the joined array
+    (memory shared with it) gives the archive one process reads, bit for bit; a child
+    that fails leaves its files to the caller, with the same archive."""
+    from analogs.stages import sources
+
+    forks = []
+    beside = forked.beside
+
+    def counted(work, *args):
+        forks.append(len(args[0]))
+        return beside(work, *args)
+
+    monkeypatch.setattr(forked, "beside", counted)
+    two = sources.open_archive(demo_files, progress=False)
+    n_files = len(demo_files) // 2
+    assert n_files >= sources.MIN_PIECES_FORKED
+    assert forks == [n_files - n_files // 2] * 2
+    monkeypatch.setattr(sources, "_read_into_in_child", lambda pieces: _fails())
+    failed = sources.open_archive(demo_files, progress=False)
+    monkeypatch.setattr(forked, "can_fork", lambda: False)
+    one = sources.open_archive(demo_files, progress=False)
+    for other in (two, failed):
+        xr.testing.assert_identical(other, one)
+        for name in one.data_vars:
+            assert np.array_equal(other[name].values.view("u4"), one[name].values.view("u4"))
     _no_child_left()

@@ -21,6 +21,7 @@ import pytest
 import xarray as xr
 
 from _sources_helpers import LAT, LON, daily_times, smooth_height, smooth_humidity, to_360
+from analogs import _forked
 from analogs.constants import G0
 from analogs.errors import AnalogsInputError
 from analogs.stages import sources
@@ -487,6 +488,9 @@ def test_values_read_straight_into_the_joined_array_are_netcdf4s(tmp_path, monke
         return straight[-1]
 
     monkeypatch.setattr(sources, "_read_stored_into", counting)
+    # Every file read in this process, where the reads are counted (tests/test_forked.py
+    # checks the reading shared with a forked child).
+    monkeypatch.setattr(_forked, "can_fork", lambda: False)
     fast, full, opened = _both_ways(monkeypatch, paths)
     assert opened == paths[:1] and straight == [True] * (len(paths) - 1)
     _assert_identical(fast, full)

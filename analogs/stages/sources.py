@@ -29,6 +29,7 @@ import json
 import os
 import re
 import stat
+import time
 import warnings
 from dataclasses import dataclass, replace
 from typing import NamedTuple
@@ -2576,27 +2577,63 @@ def _join_pieces(field, pieces):
     return joined
 
 
+#: Pieces of a field from which the later half of its laid-out files is read in a
+#: forked child (:mod:`analogs._forked`) straight into the joined array.
+MIN_PIECES_FORKED = 4
+
+
 def _joined_in_memory(field, pieces):
     """Pieces on one grid (checked before) copied into one array along time, labelled
     with the first piece's grid and every piece's times. A laid-out candidate's values
-    are read into their place (:func:`_read_laid_out_into`)."""
+    are read into their place (:func:`_read_laid_out_into`): with at least
+    :data:`MIN_PIECES_FORKED` pieces whose later half are all laid out, that half in a
+    forked child, into the array in memory shared with it, while this process reads the
+    first half; when the child fails, warns or gives no answer in ten times the first
+    half's time (at least 10 s), its files are read here (values, errors and warnings
+    are then one process's)."""
+    from analogs import _forked
     parts = [(p.laid_out.times, p.laid_out.layout.dtype) if isinstance(p, _Candidate)
              else (p["time"].values, p.dtype) for p in pieces]
     lat, lon = _piece_grid(pieces[0])
-    values = np.empty((sum(times.size for times, _ in parts), lat.size, lon.size),
-                      dtype=np.result_type(*[dtype for _, dtype in parts]))
-    start = 0
-    for piece, (times, _) in zip(pieces, parts):
-        into = values[start:start + times.size]
-        if not isinstance(piece, _Candidate):
-            into[...] = piece.values  # decoded here, one file at a time
-        else:
-            _read_laid_out_into(piece.path, piece.laid_out.layout, into)
-        start += times.size
+    shape = (sum(times.size for times, _ in parts), lat.size, lon.size)
+    dtype = np.result_type(*[dtype for _, dtype in parts])
+    stops = np.cumsum([times.size for times, _ in parts])
+    half = len(pieces) // 2
+    forked = (len(pieces) >= MIN_PIECES_FORKED and _forked.can_fork()
+              and all(isinstance(piece, _Candidate) for piece in pieces[half:]))
+    values = _forked.shared_empty(shape, dtype) if forked else np.empty(shape, dtype)
+    into = [values[stop - times.size:stop] for (times, _), stop in zip(parts, stops)]
+    later = list(zip(pieces[half:], into[half:])) if forked else []
+    started = time.perf_counter()
+    with _forked.beside(_read_into_in_child, later) if later else contextlib.nullcontext() as child:
+        for piece, place in zip(pieces[:half] if later else pieces, into):
+            if isinstance(piece, _Candidate):
+                _read_laid_out_into(piece.path, piece.laid_out.layout, place)
+            else:
+                place[...] = piece.values  # decoded here, one file at a time
+        read = child is not None and child.answer(
+            timeout=max(10.0, 10 * (time.perf_counter() - started))) is not None
+    if later and not read:
+        _read_into(later)
     times = xr.Variable("time", np.concatenate([times for times, _ in parts]),
                         dict(_TIME_ATTRS))
     return xr.DataArray(values, dims=("time", "lat", "lon"), name=field,
                         coords={"time": times, "lat": lat, "lon": lon})
+
+
+def _read_into(pieces):
+    """Read each laid-out (candidate, place) into its place (:func:`_read_laid_out_into`)."""
+    for candidate, place in pieces:
+        _read_laid_out_into(candidate.path, candidate.laid_out.layout, place)
+
+
+def _read_into_in_child(pieces) -> bytes:
+    """:func:`_read_into` in a forked child, where a warning is an error: the child then
+    fails and leaves its files to the caller, which warns itself."""
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        _read_into(pieces)
+    return b""
 
 
 def _release_freed_memory():

@@ -1287,7 +1287,7 @@ def archive_day_fields(store, rows) -> tuple[xr.Dataset | None, str]:
 
 
 #: Files of the archive from which a report's days are read by two processes: the
-#: second half in a forked child (:mod:`analogs.workflows.forked`), the first here.
+#: second half in a forked child (:mod:`analogs._forked`), the first here.
 MIN_FILES_FORKED = 4
 
 
@@ -1299,7 +1299,7 @@ def _archive_days(inputs, wanted, fields) -> dict:
     child fails or gives no answer in ten times the first half's time (at least 10 s),
     they are read here (the answer, its errors and warnings are those of one process
     reading them all)."""
-    from analogs.workflows import forked
+    from analogs import _forked as forked
     half = len(inputs) // 2
     if len(inputs) < MIN_FILES_FORKED or not forked.can_fork():
         return _days_in_files(inputs, wanted, fields)
@@ -1322,7 +1322,7 @@ def _archive_days(inputs, wanted, fields) -> dict:
 
 def _days_in_files_as_bytes(inputs, wanted, fields) -> bytes:
     """:func:`_days_in_files` in a forked child: its parts and warnings as bytes."""
-    from analogs.workflows import forked
+    from analogs import _forked as forked
     with warnings.catch_warnings(record=True) as said:
         warnings.simplefilter("always")
         found = _days_in_files(inputs, wanted, fields)
@@ -1470,7 +1470,7 @@ def _analog_grid(gathered, shown, events, *, region, land, geography, days_sourc
 def _beside_if_forked(work):
     """``forked.beside`` of :func:`_grid_as_bytes` for ``work`` (an :func:`_analog_grid`
     call) where a fork can be made; else a block with no child (None)."""
-    from analogs.workflows import forked
+    from analogs import _forked as forked
     if work is None or not forked.can_fork():
         return contextlib.nullcontext()
     return forked.beside(_grid_as_bytes, work)
@@ -1478,7 +1478,7 @@ def _beside_if_forked(work):
 
 def _grid_as_bytes(work) -> bytes:
     """An :func:`_analog_grid` drawing in a forked child, with its warnings, as JSON."""
-    from analogs.workflows import forked
+    from analogs import _forked as forked
     with warnings.catch_warnings(record=True) as said:
         warnings.simplefilter("always")
         svg, alt, views = work()
@@ -1488,7 +1488,7 @@ def _grid_as_bytes(work) -> bytes:
 
 def _grid_from_bytes(answer) -> tuple[str, str, list]:
     """:func:`_grid_as_bytes`'s drawing, its warnings issued again here."""
-    from analogs.workflows import forked
+    from analogs import _forked as forked
     drawn = json.loads(bytes(answer))
     forked.warn_again(drawn["said"])
     return drawn["svg"], drawn["alt"], [tuple(view) for view in drawn["views"]]
@@ -1592,7 +1592,7 @@ def report_figures(store, result: FindResult, *, maps=None, n_panel=None,
             title=f"Closest past days to {when}: 500 hPa height ({_short(days_source)})")
     started = time.perf_counter()
     # The analog grid (each day's marks and map, the longest figure) drawn in a forked
-    # child while the other figures are drawn here (analogs.workflows.forked).
+    # child while the other figures are drawn here (analogs._forked).
     with _beside_if_forked(grid) as child:
         if target is not None:
             target_marks = _marks(target["z500"].drop_vars("time", errors="ignore")

@@ -1,13 +1,14 @@
 """Work run in a forked child process beside the caller's own, its answer sent back as
-bytes through a pipe (Linux).
+bytes through a pipe, or written into memory shared with the caller (Linux).
 
-A report reads the archive's days: HDF5 decompresses the files one at a time under
-netCDF4's lock, whatever the threads. On a machine of two cores, half of the files read
-in a child while the caller reads the other half take about half the time. The child is
-forked where it is needed: it shares the caller's imports and memory (copied on write)
-and costs no start-up. It must run only code that is safe after a fork of a process
-with other threads (numpy without BLAS, netCDF4, xarray; not faiss's OpenMP): its work
-is handed to it by the caller, and its answer crosses as plain bytes
+HDF5 decompresses the files of an archive one at a time under netCDF4's lock, whatever
+the threads: on a machine of two cores, half of the files read in a child while the
+caller reads the other half take about half the time (a build writes them straight
+into its joined array, :func:`shared_empty`; a report's days come back as bytes). The
+child is forked where it is needed: it shares the caller's imports and memory (copied
+on write) and costs no start-up. It must run only code that is safe after a fork of a
+process with other threads (numpy without BLAS, netCDF4, xarray, contourpy; not faiss's
+OpenMP): its work is handed to it by the caller, and its answer crosses as plain bytes
 (:func:`arrays_to_bytes`: a JSON header and raw buffers, no pickle).
 
 Whatever goes wrong in the child (an error, a crash, no answer in time) leaves the caller
@@ -103,6 +104,17 @@ def beside(work, *args):
         yield child
     finally:
         child.end()
+
+
+def shared_empty(shape, dtype) -> np.ndarray:
+    """An uninitialised array in memory shared with children forked later (an anonymous
+    shared mapping): what a child writes there, the caller sees, with nothing sent."""
+    import mmap
+    dtype = np.dtype(dtype)
+    size = dtype.itemsize * int(np.prod(shape, dtype=np.int64))
+    if not size:
+        return np.empty(shape, dtype)
+    return np.frombuffer(mmap.mmap(-1, size, flags=mmap.MAP_SHARED), dtype).reshape(shape)
 
 
 def arrays_to_bytes(arrays, notes=None) -> bytes:
