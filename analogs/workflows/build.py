@@ -258,16 +258,18 @@ def _build(paths, store, *, events, event_dates, events_period, fields, n_modes,
         # the GIL back) it slowed it by about the import's own time
         # (tests/benchmarks/README.md).
         import_beside = events is not None and sklearn_not_imported()
+        same_header = {}  # files whose NetCDF header is an earlier one's: no second look
         archive = open_archive(paths, fields=fields, region=domain, hour=hour, daily=daily,
                                chunks=chunks, progress=progress,
                                scratch=make_scratch if decode_to_scratch else None,
                                while_reading=_imported_beside("sklearn.linear_model")
-                               if import_beside and chunks is None else None)
+                               if import_beside and chunks is None else None,
+                               same_header=same_header)
         if archive.sizes["time"] < 3:
             raise AnalogsInputError(f"the archive has {archive.sizes['time']} days; at "
                                     "least 3 are needed to build a store")
         region.require_grid_points(archive["lat"].values, archive["lon"].values)
-        land, land_entry = _land_on_store_grid(mask, paths, archive)
+        land, land_entry = _land_on_store_grid(mask, paths, archive, same_header)
         event_table, n_outside = (None, 0) if events is None else load_events(
             events, archive["lat"].values, archive["lon"].values, dates=event_dates)
 
@@ -503,13 +505,14 @@ def _unclaimed_bytes(paths) -> int:
     return unclaimed
 
 
-def _land_on_store_grid(mask, paths, archive):
+def _land_on_store_grid(mask, paths, archive, same_header):
     """(land fraction on the archive's grid, manifest entry) from the ``--land-mask``
     file read before (``mask``: (DataArray, source)), else from a mask variable in the
-    archive files; (None, None) when there is none."""
+    archive files (``same_header``: the files ``open_archive`` found with an earlier
+    file's header, whose screen is the earlier one's); (None, None) when there is none."""
     from analogs.stages.landmask import land_mask_in_archive, land_on_grid
     if mask is None:
-        mask = land_mask_in_archive(paths)
+        mask = land_mask_in_archive(paths, same_header)
         origin = "archive file"
     else:
         origin = "given file (land_mask)"
