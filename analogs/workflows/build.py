@@ -306,8 +306,14 @@ def _build(paths, store, *, events, event_dates, events_period, fields, n_modes,
                 from analogs.workflows.find import stored_daily_counts
                 counts = stored_daily_counts(event_table, times.normalize(), region)
                 observed = counts["total"].to_numpy() > 0
-                skill = measured_skill(pcs.values, times, observed,
-                                       covered_days(times, [period]), region=region)
+                covered = covered_days(times, [period])
+                skill = measured_skill(pcs.values, times, observed, covered, region=region)
+                # The default query's event-weighted map (the store's region, every
+                # kind), fitted as event_weighted_transform fits it on the stored PCs,
+                # while the tagging may still run; kept in the first manifest below.
+                from analogs.stages.predictor_weights import fit_predictor_weights
+                default_map = fit_predictor_weights(pcs.values.astype("float64")[covered],
+                                                    times[covered], observed[covered])
         tags = tagging.result()
     manifest = {
         "config": {
@@ -341,7 +347,6 @@ def _build(paths, store, *, events, event_dates, events_period, fields, n_modes,
         "index": index_info,
     }
     from analogs.workflows.analog_store import AnalogStore
-    from analogs.workflows.find import with_default_predictor_weights
     reads_done()  # an archive file changed during the reads: refused before any write
     # A whole new version, written and loaded back under the writer lock.
     with store_io.transaction(store, new=True) as txn:
@@ -363,12 +368,14 @@ def _build(paths, store, *, events, event_dates, events_period, fields, n_modes,
         if event_table is not None:
             store_io.write_table(event_table, staged / store_io.EVENTS)
             store_io.write_table(counts, staged / store_io.COUNTS)
+            from analogs.workflows.find import default_predictor_weights
+            manifest["predictor_weights"] = default_predictor_weights(
+                default_map, region, int(eof.n_modes_),
+                {name: store_io.file_entry(staged / name)
+                 for name in (store_io.SCORES, store_io.EVENTS)})
         store_io.write_table(tags.reset_index(drop=True), staged / store_io.TAGS)
         txn.commit(manifest)
-        built = AnalogStore._load_version(txn.path, manifest=txn.committed)
-    # The default query's event-weighted map (the store's region, every kind), kept in
-    # the manifest so that a default query need not fit it (nor load scikit-learn).
-    return with_default_predictor_weights(built)
+        return AnalogStore._load_version(txn.path, manifest=txn.committed)
 
 
 @contextlib.contextmanager
