@@ -21,7 +21,9 @@ lock and whether to close files between writes), and the question imports
 ``distributed`` when it is installed (0.3 s of every store write). A client cannot exist
 before ``distributed`` is imported, so while it is not, and no scheduler is configured,
 the answer is xarray's own for that case, "threaded":
-:func:`scheduler_probe_without_distributed`.
+:func:`scheduler_probe_without_distributed`. Nor is dask imported (0.13 s) to read its
+configuration while nothing could have set it: dask not imported, no ``DASK_*``
+environment variable and none of the YAML paths dask reads on import.
 """
 
 from __future__ import annotations
@@ -29,6 +31,7 @@ from __future__ import annotations
 import contextlib
 import functools
 import importlib.util
+import os
 import sys
 
 #: The duck-array libraries deferred: xarray's name of each, and where its array class is.
@@ -141,6 +144,24 @@ def _deferred_record_class():
     return DeferredRecord
 
 
+def _dask_config_paths() -> list[str]:
+    """The folders (or files) of YAML configuration dask reads on import when no
+    ``DASK_*`` variable is set (``dask.config.paths``, from ``dask.config._get_paths``;
+    compared with dask's own in tests/test_duck_arrays.py)."""
+    import site
+    return ["/etc/dask", os.path.join(sys.prefix, "etc", "dask"),
+            *[os.path.join(prefix, "etc", "dask") for prefix in site.PREFIXES],
+            os.path.join(os.path.expanduser("~"), ".config", "dask")]
+
+
+def _dask_configured() -> bool:
+    """Whether dask, once imported, could hold configuration beyond its own defaults
+    (which name no scheduler): a ``DASK_*`` environment variable (``collect_env``) or
+    an existing YAML path (``collect_yaml``)."""
+    return any(name.startswith("DASK_") for name in os.environ) or any(
+        os.path.exists(path) for path in _dask_config_paths())
+
+
 @contextlib.contextmanager
 def scheduler_probe_without_distributed():
     """Within the block, xarray's NetCDF writers check the dask scheduler without
@@ -160,6 +181,8 @@ def scheduler_probe_without_distributed():
     @functools.wraps(original)
     def get_dask_scheduler(get=None, collection=None):
         if get is None and collection is None and "distributed" not in sys.modules:
+            if "dask" not in sys.modules and not _dask_configured():
+                return "threaded"  # as below once dask is imported: no scheduler set
             try:
                 import dask
             except ImportError:

@@ -177,6 +177,66 @@ def test_deferred_scheduler_probe_answers_as_xarray_does():
                          "distributed distributed", "True xarray.backends.locks"]
 
 
+#: The probe's answer with dask not yet imported, whether it imported dask, then xarray's.
+UNIMPORTED_SCRIPT = """
+import sys
+from xarray.backends import locks
+from analogs._duck_arrays import scheduler_probe_without_distributed
+with scheduler_probe_without_distributed():
+    print(locks.get_dask_scheduler(), "dask" in sys.modules)
+print(locks.get_dask_scheduler())
+"""
+
+
+def _without_dask_settings(home, **settings):
+    """The environment with no DASK_* variable but ``settings``, HOME at ``home``."""
+    return {**{k: v for k, v in os.environ.items() if not k.startswith("DASK_")},
+            "HOME": str(home), "PYTHONPATH": str(ROOT), **settings}
+
+
+@pytest.mark.parametrize("setting", [None, "yaml processes", "yaml synchronous",
+                                     "DASK_SCHEDULER=processes", "DASK_SCHEDULER=sync"])
+def test_scheduler_probe_before_dask_is_imported(tmp_path, setting):
+    """With dask not imported, the probe answers as xarray's own check (run after it in
+    the same process, which imports dask and reads its configuration): without any
+    configuration without importing dask, and with a scheduler set in a YAML file of
+    dask's (~/.config/dask) or in its environment variable by importing dask to read it
+    (dask's documented configuration sources: docs.dask.org, "Configuration")."""
+    settings = {}
+    if setting is not None and setting.startswith("yaml"):
+        (tmp_path / ".config" / "dask").mkdir(parents=True)
+        (tmp_path / ".config" / "dask" / "s.yaml").write_text(
+            f"scheduler: {setting.split()[1]}\n")
+    elif setting is not None:
+        settings = dict([setting.split("=")])
+    env = _without_dask_settings(tmp_path, **settings)
+    probe = subprocess.run([sys.executable, "-c", "from analogs._duck_arrays import "
+                            "_dask_configured; print(_dask_configured())"],
+                           capture_output=True, text=True, check=True, env=env)
+    configured = probe.stdout.strip() == "True"
+    if setting is None and configured:
+        pytest.skip("this installation configures dask itself")
+    out = subprocess.run([sys.executable, "-c", UNIMPORTED_SCRIPT], capture_output=True,
+                         text=True, check=True, env=env).stdout.splitlines()
+    ours, imported = out[0].split()
+    assert ours == out[1]
+    assert imported == str(setting is not None)
+    assert configured == (setting is not None)
+    expected = {None: "threaded", "yaml processes": "multiprocessing",
+                "yaml synchronous": "threaded", "DASK_SCHEDULER=processes": "multiprocessing",
+                "DASK_SCHEDULER=sync": "threaded"}
+    assert ours == expected[setting]
+
+
+def test_dask_config_paths_are_dasks(tmp_path):
+    """The YAML paths looked at are those dask reads on import (dask.config.paths)."""
+    code = ("import dask.config; from analogs._duck_arrays import _dask_config_paths; "
+            "print(sorted(dask.config.paths) == sorted(set(_dask_config_paths())))")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                         check=True, env=_without_dask_settings(tmp_path))
+    assert out.stdout.strip() == "True"
+
+
 def test_store_writes_do_not_import_distributed(tmp_path):
     pytest.importorskip("distributed")
     code = ("import sys, numpy as np, xarray as xr; "
@@ -217,7 +277,7 @@ from xarray.namedarray import pycompat, utils
 from analogs.api import build_store
 own = utils.is_dask_collection
 build_store({files!r}, {store!r}, progress=False)
-print([m for m in ("dask.array", "pint") if m in sys.modules],
+print([m for m in ("dask", "dask.array", "pint") if m in sys.modules],
       sorted(set(pycompat._cached_duck_array_modules) & {{"dask", "pint"}}),
       utils.is_dask_collection is own)
 """
@@ -226,10 +286,11 @@ print([m for m in ("dask.array", "pint") if m in sys.modules],
 def test_an_in_memory_build_imports_neither_library(demo_files, tmp_path):
     """build_store in memory (two years of the demo, no events) imports neither
     dask.array nor pint (about 0.7 s of CPU; xarray's checks deferred within the build),
+    nor dask itself (0.13 s; the store writes' scheduler check without dask configured),
     and leaves xarray's own records and check in place afterwards."""
     files = [str(p) for p in demo_files if p.name.endswith(("2001.nc", "2002.nc"))]
     assert len(files) == 4
     out = subprocess.run([sys.executable, "-c", BUILD.format(
         files=files, store=str(tmp_path / "store"))], capture_output=True, text=True,
-        check=True, env={**os.environ, "PYTHONPATH": str(ROOT)})
+        check=True, env=_without_dask_settings(tmp_path))
     assert out.stdout.strip().splitlines()[-1] == "[] [] True"

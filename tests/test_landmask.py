@@ -158,3 +158,47 @@ def test_given_mask_file_is_kept_with_its_source(archives, tmp_path):
     assert store.manifest["land_mask"]["path"] == str(mask.resolve())
     assert store.manifest["land_mask"]["variable"] == "LANDMASK"
     np.testing.assert_array_equal(store.land.values, binary)
+
+
+def _header_by_xarray(path):
+    """A file's variables as xarray reads them undecoded (names, dims, dtypes, attributes;
+    the time coordinate's units and calendar left out, as each year's file has its own)."""
+    with xr.open_dataset(path, decode_cf=False) as ds:
+        return {name: (v.dims, str(v.dtype), {k: str(a) for k, a in v.attrs.items()
+                                              if name != "time" or k not in ("units", "calendar")})
+                for name, v in ds.variables.items()}
+
+
+def test_archive_screen_reuses_an_identical_headers_look(tmp_path, monkeypatch):
+    """Three years in yearly files, a mask in the last year's height file: open_archive
+    names each later file whose header is an earlier one's (checked against xarray's
+    undecoded reading of both), and the archive's mask search given that answers as
+    without it while opening only the other files for its screen."""
+    import analogs.stages.landmask as landmask
+    from analogs.stages.sources import open_archive
+    years = (2001, 2002, 2003)
+    files = [p for year in years for p in write_archive(tmp_path / str(year),
+                                                        times=archive_times(years=(year,)))]
+    binary = (coastline_fraction(LAT, LON) >= 0.5).astype("float32")
+    last_height = xr.load_dataset(files[-2])
+    last_height["lsm"] = (("lat", "lon"), binary, {"standard_name": "land_binary_mask"})
+    last_height.to_netcdf(files[-2])
+    same_header = {}
+    open_archive(files, same_header=same_header)
+    assert set(same_header) == {str(p) for p in files[2:] if p != files[-2]}
+    for later, earlier in same_header.items():
+        assert _header_by_xarray(later) == _header_by_xarray(earlier)
+    assert _header_by_xarray(files[-2]) != _header_by_xarray(files[0])
+
+    screened = []
+    screen = landmask._may_hold_mask
+    monkeypatch.setattr(landmask, "_may_hold_mask",
+                        lambda path: screened.append(path) or screen(path))
+    plain_values, plain_source = landmask.land_mask_in_archive(files)
+    assert screened == [str(p) for p in files[:-1]]
+    screened.clear()
+    values, source = landmask.land_mask_in_archive(files, same_header)
+    assert screened == [str(files[0]), str(files[1]), str(files[-2])]
+    assert source == plain_source and source["path"] == str(files[-2])
+    np.testing.assert_array_equal(values.values, plain_values.values)
+    np.testing.assert_array_equal(values.values, binary)

@@ -184,6 +184,24 @@ def _cli_json(*argv):
     return json.loads(out.getvalue())
 
 
+def test_the_builds_kept_map_is_the_querys_own_fit(store_copy):
+    """The build fits the default map before its store is written and keeps it in the
+    first manifest: the same key, and the same map to the last bit, as a query's fit on
+    the loaded store when nothing is kept (event_weighted_transform; its reference,
+    scikit-learn's logistic regression, is checked above)."""
+    from analogs.workflows.find import _predictor_weights_key
+    store = AnalogStore.load(store_copy)
+    (key, kept), = store.manifest["predictor_weights"].items()
+    assert (key, kept["key"]) == _predictor_weights_key(
+        store.region, None, store.n_query_modes, store.manifest["files"])
+    store_io.edit_manifest(store_copy, lambda manifest, files: {
+        k: v for k, v in manifest.items() if k != "predictor_weights"})
+    bare = AnalogStore.load(store_copy)
+    assert "predictor_weights" not in bare.manifest
+    refitted = event_weighted_transform(bare, bare.region, keep=False)
+    np.testing.assert_array_equal(np.asarray(kept["transform"]), refitted)
+
+
 def test_find_searches_the_weighted_space_fitted_on_the_store(store_copy):
     """find (event_weighted, the default): the map of the store's region is fitted on
     the store's days at build (equal to fit_predictor_weights on them) and kept in the

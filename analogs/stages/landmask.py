@@ -168,14 +168,23 @@ def _may_hold_mask(path) -> bool:
     return find_land_mask(header) is not None
 
 
-def land_mask_in_archive(paths) -> tuple[xr.DataArray | None, dict | None]:
+def land_mask_in_archive(paths, same_header=None) -> tuple[xr.DataArray | None, dict | None]:
     """The first land-sea mask found in the archive files ``paths`` (as
     :func:`read_land_mask`), or (None, None). A variable named like a mask whose values
     are not a land fraction is passed over with a warning: in an archive it may be
-    something else."""
+    something else. ``same_header``: ``{file: earlier file}`` whose NetCDF headers are
+    the same (what ``open_archive(same_header=)`` found): the earlier file's screen
+    (:func:`_may_hold_mask`, which reads names and standard names alone) stands for
+    the later file's, which is not opened for it."""
     from analogs.stages.sources import _expand_paths, _is_grib
+    same_header = same_header or {}
+    screened = {}
     for path in _expand_paths(paths, "build_store"):
-        if _is_grib(path) or not _may_hold_mask(path):
+        if _is_grib(path):
+            continue
+        like = same_header.get(path)
+        screened[path] = screened[like] if like in screened else _may_hold_mask(path)
+        if not screened[path]:
             continue
         try:
             return read_land_mask(path)

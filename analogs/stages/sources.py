@@ -205,7 +205,8 @@ class _Candidate:
 
 def open_archive(paths, *, fields=None, region=None, hour=P.hour.default,
                  daily=P.daily.default, chunks=None, progress=False, max_missing_fraction=0.1,
-                 max_gap_days=2, scratch=None, while_reading=None) -> xr.Dataset:
+                 max_gap_days=2, scratch=None, while_reading=None,
+                 same_header=None) -> xr.Dataset:
     """Open one or many NetCDF / Zarr / GRIB files as a canonical daily archive.
 
     Parameters
@@ -247,6 +248,10 @@ def open_archive(paths, *, fields=None, region=None, hour=P.hour.default,
         Entered once every file is recognised, left when their values are read (in
         memory; lazily, when nothing is read yet): work it starts in another thread runs
         while the reads wait on HDF5 without the GIL (a build imports scikit-learn so).
+    same_header : dict, optional
+        Filled with ``{file: earlier file}`` for each NetCDF file found to have the
+        header of an earlier one (:func:`_header`: every variable's name, dims, dtype
+        and attributes; read by its layout), so a caller can skip a look at its header.
 
     Returns
     -------
@@ -269,6 +274,9 @@ def open_archive(paths, *, fields=None, region=None, hour=P.hour.default,
         for path in _progress(files, progress):
             candidates.extend(_recognised_in(path, chunks, seen, layouts))
     chosen = _choose_fields(requested, candidates, files, seen)
+    if same_header is not None:
+        same_header.update({c.path: c.laid_out.header_of for c in candidates
+                            if c.laid_out is not None})
     _say_computed(chosen, candidates, _describe(files))
     arrays, duplicates, origins = {}, 0, {}
     with contextlib.nullcontext() if while_reading is None else while_reading:
@@ -1024,24 +1032,27 @@ class _VariableLayout:
 class _FileLayout:
     """A NetCDF file read in full: its header (:func:`_header`), the dims its
     variables' times run along with the kind of their decoded values (dates or cftime
-    objects: which the full reading prefers as time), its variable names (for messages)
-    and each candidate with its :class:`_VariableLayout`."""
+    objects: which the full reading prefers as time), its variable names (for messages),
+    each candidate with its :class:`_VariableLayout` and the file's path."""
 
     header: tuple
     time_dims: frozenset
     time_kinds: dict
     names: tuple
     variables: tuple
+    path: str
 
 
 @dataclass(frozen=True)
 class _LaidOut:
     """A file read by the layout of an earlier one: the variable's layout, the file's own
-    times and its time chunk in the file (the dask chunk of a lazy read, as xarray's)."""
+    times, its time chunk in the file (the dask chunk of a lazy read, as xarray's) and
+    the earlier file, whose header this file's is."""
 
     layout: _VariableLayout
     times: np.ndarray
     time_chunk: int
+    header_of: str
 
 
 def _plain_netcdf(path):
@@ -1110,7 +1121,7 @@ def _file_layout(path, found, names):
     if said:
         return None
     time_kinds = {dim: found[0].dataset[dim].dtype.kind for dim in time_dims}
-    return _FileLayout(header, time_dims, time_kinds, tuple(names), variables)
+    return _FileLayout(header, time_dims, time_kinds, tuple(names), variables, path)
 
 
 def _stored_as(variable):
@@ -1219,7 +1230,7 @@ def _laid_out_candidates(path, layouts, seen):
         return None  # the full reading warns as it does for any file
     seen[path] = list(fits.names)
     return [replace(c, path=path, dataset=None,
-                    laid_out=_LaidOut(v, times[v.time_dim], chunks[v.name]))
+                    laid_out=_LaidOut(v, times[v.time_dim], chunks[v.name], fits.path))
             for c, v in fits.variables]
 
 

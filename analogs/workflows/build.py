@@ -258,16 +258,18 @@ def _build(paths, store, *, events, event_dates, events_period, fields, n_modes,
         # the GIL back) it slowed it by about the import's own time
         # (tests/benchmarks/README.md).
         import_beside = events is not None and sklearn_not_imported()
+        same_header = {}  # files whose NetCDF header is an earlier one's: no second look
         archive = open_archive(paths, fields=fields, region=domain, hour=hour, daily=daily,
                                chunks=chunks, progress=progress,
                                scratch=make_scratch if decode_to_scratch else None,
                                while_reading=_imported_beside("sklearn.linear_model")
-                               if import_beside and chunks is None else None)
+                               if import_beside and chunks is None else None,
+                               same_header=same_header)
         if archive.sizes["time"] < 3:
             raise AnalogsInputError(f"the archive has {archive.sizes['time']} days; at "
                                     "least 3 are needed to build a store")
         region.require_grid_points(archive["lat"].values, archive["lon"].values)
-        land, land_entry = _land_on_store_grid(mask, paths, archive)
+        land, land_entry = _land_on_store_grid(mask, paths, archive, same_header)
         event_table, n_outside = (None, 0) if events is None else load_events(
             events, archive["lat"].values, archive["lon"].values, dates=event_dates)
 
@@ -304,8 +306,14 @@ def _build(paths, store, *, events, event_dates, events_period, fields, n_modes,
                 from analogs.workflows.find import stored_daily_counts
                 counts = stored_daily_counts(event_table, times.normalize(), region)
                 observed = counts["total"].to_numpy() > 0
-                skill = measured_skill(pcs.values, times, observed,
-                                       covered_days(times, [period]), region=region)
+                covered = covered_days(times, [period])
+                skill = measured_skill(pcs.values, times, observed, covered, region=region)
+                # The default query's event-weighted map (the store's region, every
+                # kind), fitted as event_weighted_transform fits it on the stored PCs,
+                # while the tagging may still run; kept in the first manifest below.
+                from analogs.stages.predictor_weights import fit_predictor_weights
+                default_map = fit_predictor_weights(pcs.values.astype("float64")[covered],
+                                                    times[covered], observed[covered])
         tags = tagging.result()
     manifest = {
         "config": {
@@ -339,7 +347,6 @@ def _build(paths, store, *, events, event_dates, events_period, fields, n_modes,
         "index": index_info,
     }
     from analogs.workflows.analog_store import AnalogStore
-    from analogs.workflows.find import with_default_predictor_weights
     reads_done()  # an archive file changed during the reads: refused before any write
     # A whole new version, written and loaded back under the writer lock.
     with store_io.transaction(store, new=True) as txn:
@@ -361,12 +368,14 @@ def _build(paths, store, *, events, event_dates, events_period, fields, n_modes,
         if event_table is not None:
             store_io.write_table(event_table, staged / store_io.EVENTS)
             store_io.write_table(counts, staged / store_io.COUNTS)
+            from analogs.workflows.find import default_predictor_weights
+            manifest["predictor_weights"] = default_predictor_weights(
+                default_map, region, int(eof.n_modes_),
+                {name: store_io.file_entry(staged / name)
+                 for name in (store_io.SCORES, store_io.EVENTS)})
         store_io.write_table(tags.reset_index(drop=True), staged / store_io.TAGS)
         txn.commit(manifest)
-        built = AnalogStore._load_version(txn.path, manifest=txn.committed)
-    # The default query's event-weighted map (the store's region, every kind), kept in
-    # the manifest so that a default query need not fit it (nor load scikit-learn).
-    return with_default_predictor_weights(built)
+        return AnalogStore._load_version(txn.path, manifest=txn.committed)
 
 
 @contextlib.contextmanager
@@ -503,13 +512,14 @@ def _unclaimed_bytes(paths) -> int:
     return unclaimed
 
 
-def _land_on_store_grid(mask, paths, archive):
+def _land_on_store_grid(mask, paths, archive, same_header):
     """(land fraction on the archive's grid, manifest entry) from the ``--land-mask``
     file read before (``mask``: (DataArray, source)), else from a mask variable in the
-    archive files; (None, None) when there is none."""
+    archive files (``same_header``: the files ``open_archive`` found with an earlier
+    file's header, whose screen is the earlier one's); (None, None) when there is none."""
     from analogs.stages.landmask import land_mask_in_archive, land_on_grid
     if mask is None:
-        mask = land_mask_in_archive(paths)
+        mask = land_mask_in_archive(paths, same_header)
         origin = "archive file"
     else:
         origin = "given file (land_mask)"

@@ -955,19 +955,31 @@ PREDICTOR_WEIGHTS_METHOD = ("logistic regression (C={C:g}) on standardised PCs +
                             "weighted {w:g}")
 
 
-def _predictor_weights_key(store, region, kinds) -> tuple[str, dict]:
+def _predictor_weights_key(region, kinds, n_modes, files) -> tuple[str, dict]:
     """The cache key of a fitted metric: a short hash and what it hashes (region, kinds,
-    modes, method, and the checksums of the store's PCs and reports)."""
+    modes, method, and the checksums of the store's PCs and reports, from its
+    manifest's ``files``)."""
     import hashlib
     import json
     from analogs.stages.predictor_weights import REGRESSION_C, SCORE_WEIGHT
     fields = {"region": region.to_dict(), "kinds": sorted(kinds) if kinds else None,
-              "n_modes": store.n_query_modes,
+              "n_modes": n_modes,
               "method": PREDICTOR_WEIGHTS_METHOD.format(C=REGRESSION_C, w=SCORE_WEIGHT),
-              "data": {name: store.manifest["files"].get(name)
-                       for name in ("scores.nc", "events.parquet")}}
+              "data": {name: files.get(name) for name in ("scores.nc", "events.parquet")}}
     text = json.dumps(fields, sort_keys=True)
     return hashlib.sha256(text.encode()).hexdigest()[:16], fields
+
+
+def default_predictor_weights(transform, region, n_modes, files) -> dict:
+    """The manifest's ``predictor_weights`` section of a new store holding ``transform``,
+    the map of its own region (every kind) fitted as :func:`event_weighted_transform`
+    fits it (``n_modes``: the store's query modes; ``files``: the manifest entries of
+    its ``scores.nc`` and ``events.parquet``, which key it). The build writes it with
+    the store's first manifest: a default query neither fits it nor imports
+    scikit-learn, and the build neither edits the manifest again nor loads the store
+    twice."""
+    key, fields = _predictor_weights_key(region, None, n_modes, files)
+    return {key: {"key": fields, "transform": np.asarray(transform).tolist()}}
 
 
 def event_weighted_transform(store, region, kinds=None, keep=True) -> np.ndarray:
@@ -985,7 +997,8 @@ def event_weighted_transform(store, region, kinds=None, keep=True) -> np.ndarray
     from analogs.stages.predictor_weights import fit_predictor_weights
     from analogs.workflows import store as store_io
     from analogs.workflows.skill import SKILL_CACHE_LOCK_SECONDS, observed
-    key, fields = _predictor_weights_key(store, region, kinds)
+    key, fields = _predictor_weights_key(region, kinds, store.n_query_modes,
+                                         store.manifest["files"])
     memory = _derived(store).setdefault("predictor_weights", {})
     if key in memory:
         return memory[key]

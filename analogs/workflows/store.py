@@ -68,6 +68,11 @@ LOCK_TIMEOUT = 600.0
 LOCK_TIMEOUT_ENV = "ANALOGS_LOCK_TIMEOUT"
 
 
+def file_entry(path) -> dict:
+    """A file's entry in the manifest's ``files``: its sha256 and size."""
+    return {"sha256": sha256_file(path), "bytes": Path(path).stat().st_size}
+
+
 def sha256_file(path) -> str:
     digest = hashlib.sha256()
     with open(path, "rb") as handle:
@@ -459,7 +464,7 @@ def _finish_manifest(staged: Path, manifest: dict) -> dict:
         if item.name == MANIFEST:
             continue
         _files.fsync_path(item)
-        listed[item.name] = {"sha256": sha256_file(item), "bytes": item.stat().st_size}
+        listed[item.name] = file_entry(item)
     full = {
         "format": "analogs-store",
         "format_version": FORMAT_VERSION,
