@@ -76,21 +76,17 @@ def _e(value) -> str:
     return html.escape(str(value), quote=True)
 
 
-#: Tenths of a pixel spanned by the coordinates of one path beyond which
-#: :func:`_points` formats each number instead of looking it up.
-_MAX_TABLE_TENTHS = 100_000
-
-
 def _points(xy) -> str:
     """'x,y x,y ...' of an (n, 2) array of pixels, to a tenth of a pixel: each number
-    ``"%g" % round(v, 1)``, looked up in a table of the tenths the path spans (its
-    thousands of points fall on a few thousand distinct tenths; formatting each one
-    was a third of drawing the analog grid)."""
+    ``"%g" % round(v, 1)``. A path of more numbers than the tenths it spans (the
+    analog grid's contours: thousands of points on a few thousand tenths) looks them up
+    in a table of those tenths, each formatted once (formatting every number was a
+    third of drawing the grid); a shorter one formats each number."""
     tenths = np.rint(np.asarray(xy, dtype=float) * 10.0).ravel()  # numpy's round(v, 1)
     if not tenths.size:
         return ""
     low, high = tenths.min(), tenths.max()
-    if not (np.isfinite(low) and np.isfinite(high)) or high - low > _MAX_TABLE_TENTHS:
+    if not (np.isfinite(low) and np.isfinite(high)) or high - low >= tenths.size:
         return ("%g,%g " * (tenths.size // 2) % tuple(tenths / 10.0 + 0.0)).rstrip()
     first = int(low)
     table = ["%g" % (k / 10) for k in range(first, int(high) + 1)]
