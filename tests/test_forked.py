@@ -171,8 +171,8 @@ def test_report_page_is_the_same_drawn_by_one_process(demo_store, monkeypatch):
 
     monkeypatch.setattr(forked, "beside", counted)
     two = report_page(demo_store, result)
-    assert sorted(forks) == ["_days_in_files_as_bytes", "_grid_as_bytes"]
-    monkeypatch.setattr(find, "_grid_as_bytes", lambda work: _fails())
+    assert sorted(forks) == ["_days_in_files_as_bytes", "_grid_cells_as_bytes"]
+    monkeypatch.setattr(find, "_grid_cells_as_bytes", lambda *args: _fails())
     assert report_page(demo_store, result) == two
     monkeypatch.setattr(forked, "can_fork", lambda: False)
     one = report_page(demo_store, result)

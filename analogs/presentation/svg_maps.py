@@ -485,89 +485,134 @@ def analog_panel(analog_fields, analogs: pd.DataFrame, events=None, *, region=No
     ``day``) or None; ``marks``: as for :func:`target_map` with a ``panel`` column
     (position in ``analogs``). Each map is ``<svg id="analog-map-RANK">``; ``views``, a
     list, receives (map id, width, height) of each in rank order for :func:`map_view`.
+    Drawn by :class:`AnalogGrid`, whose cells may also be drawn a few at a time.
     """
-    if len(analogs) == 0:
-        raise AnalogsInputError("analog_panel needs at least one analog row")
-    if "z500" not in analog_fields or "analog" not in analog_fields["z500"].dims:
-        raise AnalogsInputError("analog_panel needs a 'z500' field (500 hPa height, gpm) "
-                                "on (analog, lat, lon)")
-    if analog_fields.sizes["analog"] != len(analogs):
-        raise AnalogsInputError(
-            f"analog_panel got {analog_fields.sizes['analog']} analog fields for "
-            f"{len(analogs)} analog rows; pass the fields of the rows drawn")
-    kinds = sorted(events["kind"].astype(str).unique()) if events is not None else []
-    styles = marker_styles(kinds)
-    columns = min(columns, len(analogs))
-    rows = int(np.ceil(len(analogs) / columns))
-    lat, lon = analog_fields["lat"].values, analog_fields["lon"].values
-    frame = Frame(lat, lon, SMALL_MAP_WIDTH)
-    z = analog_fields["z500"].transpose("analog", "lat", "lon").values
-    levels = height_levels(z)
-    xs, ys = nice_ticks(frame.lon0, frame.lon1, 4), nice_ticks(frame.lat0, frame.lat1, 3)
-    gx, gy = frame.px(np.asarray(xs), frame.lat0)[0], frame.px(frame.lon0, np.asarray(ys))[1]
-    graticule = _stroke("".join(f"M{x:.1f},0V{frame.height:.1f}" for x in np.atleast_1d(gx))
-                        + "".join(f"M0,{y:.1f}H{frame.width:.1f}" for y in np.atleast_1d(gy)),
-                        "#d1d1d1", 0.5)
-    # Shared by every map: the land-sea boundary, the Earth's lines and the region.
-    fixed = (_earth(frame, geography, small=True) + _land(frame, land_lines(land), small=True)
-             + _region(frame, region, small=True))
-    by_day = {}
-    if events is not None and len(events):
-        inside = (events["lon"].between(frame.lon0, frame.lon1)
-                  & events["lat"].between(frame.lat0, frame.lat1))
-        on_map = events[inside]
-        by_day = dict(tuple(on_map.groupby(pd.to_datetime(on_map["day"]).dt.normalize())))
-    panel_marks = {}
-    if marks is not None and len(marks):
-        panel = marks["panel"].to_numpy()
-        order = np.argsort(panel, kind="stable")
-        cuts = np.flatnonzero(np.diff(panel[order])) + 1
-        columns_of = _mark_arrays(marks)
-        for rows_of in np.split(order, cuts):
-            panel_marks[int(panel[rows_of[0]])] = {name: values[rows_of]
-                                                   for name, values in columns_of.items()}
-    cell_w, head = frame.width + 22.0, 30.0
-    cell_h = head + frame.height + 14.0
-    left, top = 44.0, 34.0
-    width = max(left + cell_w * columns + 10, 640.0)
-    foot = 84.0
-    height = top + cell_h * rows + foot
-    body = [f"<defs>{_MARKER_DEFS}</defs>"]
-    if title:
-        body.append(_text(width / 2, 20, title, 13, anchor="middle"))
-    for i, analog in enumerate(analogs.itertuples(index=False)):
-        row, column = divmod(i, columns)
-        x0, y0 = left + column * cell_w, top + row * cell_h + head
-        count = int(analog.events_total)
-        body.append(_lines_of_text(x0, y0 - 18, [
-            f"#{analog.rank} {analog.date} {analog.regime}",
-            f"d {analog.distance:.2f}, {count} event{'s' * (count != 1)} in region"],
-            9, extra=f' class="analog-title" data-rank="{analog.rank}"'))
-        content = [graticule, fixed,
-                   _contours(frame, lon, lat, z[i], levels, colour="#404040",
-                             width=0.6 * PX_PER_PT),
-                   _marks(frame, panel_marks.get(i), small=True)]
-        day = by_day.get(pd.Timestamp(analog.date).normalize())
-        if day is not None:
-            x, y = frame.px(day["lon"].to_numpy(), day["lat"].to_numpy())
-            content += [_marker(float(px), float(py), *styles[str(kind)], 6, kind)
-                        for px, py, kind in zip(x, y, day["kind"].astype(str))]
-        map_id = f"analog-map-{analog.rank}"
-        body.append(_map(frame, x0, y0, "".join(content), map_id=map_id))
-        if views is not None:
-            views.append((map_id, frame.width, frame.height))
-        if row == rows - 1 or i + columns >= len(analogs):
-            body.append(_axes_ticks(frame, x0, y0, size=8, nx=4, left=False))
-        if column == 0:
-            body.append(_axes_ticks(frame, x0, y0, size=8, ny=3, bottom=False))
-    body.append(_grid_legend(width, height - foot + 22, styles, marks))
-    body.append(_notes(width, height, geography, land))
-    return _svg(width, height, alt or title or "analog days", "".join(body))
+    grid = AnalogGrid(analog_fields, analogs, events, region=region, title=title,
+                      columns=columns, land=land, geography=geography)
+    return grid.svg(grid.cells(range(len(analogs)), marks, views), mark_kinds(marks), alt)
 
 
-def _grid_legend(width, y, styles, marks) -> str:
-    """One line of keys (event kinds, then marks) centred at ``y``, its title above."""
-    present = set(marks["kind"]) if marks is not None and len(marks) else set()
+def mark_kinds(marks) -> list[str]:
+    """The kinds of synoptic marks in ``marks`` (None or a table with ``kind``), sorted."""
+    return sorted(set(marks["kind"])) if marks is not None and len(marks) else []
+
+
+class AnalogGrid:
+    """The analog grid of :func:`analog_panel`: its layout and what every cell shares
+    (frame, contour levels of all the days, marker styles of all their events, the
+    graticule and the fixed layers), made once; then the cells of any analogs
+    (:meth:`cells`, in any number of calls: the report draws some in a forked child)
+    and the whole figure around them (:meth:`svg`)."""
+
+    def __init__(self, analog_fields, analogs: pd.DataFrame, events=None, *, region=None,
+                 title=None, columns=GRID_COLUMNS, land=None, geography=None):
+        if len(analogs) == 0:
+            raise AnalogsInputError("analog_panel needs at least one analog row")
+        if "z500" not in analog_fields or "analog" not in analog_fields["z500"].dims:
+            raise AnalogsInputError("analog_panel needs a 'z500' field (500 hPa height, "
+                                    "gpm) on (analog, lat, lon)")
+        if analog_fields.sizes["analog"] != len(analogs):
+            raise AnalogsInputError(
+                f"analog_panel got {analog_fields.sizes['analog']} analog fields for "
+                f"{len(analogs)} analog rows; pass the fields of the rows drawn")
+        self.days = list(analogs.itertuples(index=False))
+        self.title, self.land, self.geography = title, land, geography
+        kinds = sorted(events["kind"].astype(str).unique()) if events is not None else []
+        self.styles = marker_styles(kinds)
+        self.columns = min(columns, len(analogs))
+        self.rows = int(np.ceil(len(analogs) / self.columns))
+        self.lat, self.lon = analog_fields["lat"].values, analog_fields["lon"].values
+        frame = self.frame = Frame(self.lat, self.lon, SMALL_MAP_WIDTH)
+        self.z = analog_fields["z500"].transpose("analog", "lat", "lon").values
+        self.levels = height_levels(self.z)
+        xs, ys = nice_ticks(frame.lon0, frame.lon1, 4), nice_ticks(frame.lat0, frame.lat1, 3)
+        gx = frame.px(np.asarray(xs), frame.lat0)[0]
+        gy = frame.px(frame.lon0, np.asarray(ys))[1]
+        self.graticule = _stroke(
+            "".join(f"M{x:.1f},0V{frame.height:.1f}" for x in np.atleast_1d(gx))
+            + "".join(f"M0,{y:.1f}H{frame.width:.1f}" for y in np.atleast_1d(gy)),
+            "#d1d1d1", 0.5)
+        # Shared by every map: the land-sea boundary, the Earth's lines and the region.
+        self.fixed = (_earth(frame, geography, small=True)
+                      + _land(frame, land_lines(land), small=True)
+                      + _region(frame, region, small=True))
+        self.by_day = {}
+        if events is not None and len(events):
+            inside = (events["lon"].between(frame.lon0, frame.lon1)
+                      & events["lat"].between(frame.lat0, frame.lat1))
+            on_map = events[inside]
+            self.by_day = dict(tuple(on_map.groupby(
+                pd.to_datetime(on_map["day"]).dt.normalize())))
+        self.cell_w, self.head = frame.width + 22.0, 30.0
+        self.cell_h = self.head + frame.height + 14.0
+        self.left, self.top = 44.0, 34.0
+        self.width = max(self.left + self.cell_w * self.columns + 10, 640.0)
+        self.foot = 84.0
+        self.height = self.top + self.cell_h * self.rows + self.foot
+
+    def cells(self, positions, marks=None, views=None) -> list[str]:
+        """The SVG of the cells of the analogs at ``positions`` (increasing), in order:
+        title lines, map (``<svg id="analog-map-RANK">``) and the axis labels of the
+        grid's edge cells; ``marks`` (``panel``: position among all the analogs) those
+        of these days; ``views`` receives each map's (id, width, height)."""
+        frame, lat, lon = self.frame, self.lat, self.lon
+        panel_marks = {}
+        if marks is not None and len(marks):
+            panel = marks["panel"].to_numpy()
+            order = np.argsort(panel, kind="stable")
+            cuts = np.flatnonzero(np.diff(panel[order])) + 1
+            columns_of = _mark_arrays(marks)
+            for rows_of in np.split(order, cuts):
+                panel_marks[int(panel[rows_of[0]])] = {
+                    name: values[rows_of] for name, values in columns_of.items()}
+        body = []
+        for i in positions:
+            analog = self.days[i]
+            row, column = divmod(i, self.columns)
+            x0 = self.left + column * self.cell_w
+            y0 = self.top + row * self.cell_h + self.head
+            count = int(analog.events_total)
+            body.append(_lines_of_text(x0, y0 - 18, [
+                f"#{analog.rank} {analog.date} {analog.regime}",
+                f"d {analog.distance:.2f}, {count} event{'s' * (count != 1)} in region"],
+                9, extra=f' class="analog-title" data-rank="{analog.rank}"'))
+            content = [self.graticule, self.fixed,
+                       _contours(frame, lon, lat, self.z[i], self.levels, colour="#404040",
+                                 width=0.6 * PX_PER_PT),
+                       _marks(frame, panel_marks.get(i), small=True)]
+            day = self.by_day.get(pd.Timestamp(analog.date).normalize())
+            if day is not None:
+                x, y = frame.px(day["lon"].to_numpy(), day["lat"].to_numpy())
+                content += [_marker(float(px), float(py), *self.styles[str(kind)], 6, kind)
+                            for px, py, kind in zip(x, y, day["kind"].astype(str))]
+            map_id = f"analog-map-{analog.rank}"
+            body.append(_map(frame, x0, y0, "".join(content), map_id=map_id))
+            if views is not None:
+                views.append((map_id, frame.width, frame.height))
+            if row == self.rows - 1 or i + self.columns >= len(self.days):
+                body.append(_axes_ticks(frame, x0, y0, size=8, nx=4, left=False))
+            if column == 0:
+                body.append(_axes_ticks(frame, x0, y0, size=8, ny=3, bottom=False))
+        return body
+
+    def svg(self, cells, kinds, alt="") -> str:
+        """The grid figure around ``cells`` (every cell's :meth:`cells` parts, in order):
+        title, legend (event kinds, then the synoptic mark ``kinds`` drawn) and notes."""
+        body = [f"<defs>{_MARKER_DEFS}</defs>"]
+        if self.title:
+            body.append(_text(self.width / 2, 20, self.title, 13, anchor="middle"))
+        body += cells
+        body.append(_grid_legend(self.width, self.height - self.foot + 22, self.styles,
+                                 kinds))
+        body.append(_notes(self.width, self.height, self.geography, self.land))
+        return _svg(self.width, self.height, alt or self.title or "analog days",
+                    "".join(body))
+
+
+def _grid_legend(width, y, styles, kinds) -> str:
+    """One line of keys (event kinds, then the mark ``kinds`` drawn) centred at ``y``,
+    its title above."""
+    present = set(kinds)
     title = ("events of the day, anywhere on the map (convective day)"
              + ("; axes and lows of the 500 hPa height drawn" if present else "")
              + f"; contours every {HEIGHT_INTERVAL_GPM:.0f} gpm")

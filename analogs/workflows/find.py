@@ -33,7 +33,6 @@ daily counts of the store's own region are kept in the store (``counts.parquet``
 from __future__ import annotations
 
 import contextlib
-import functools
 import inspect
 import json
 import os
@@ -49,6 +48,7 @@ import numpy as np
 import pandas as pd
 
 from analogs._validation import choice_expected, fail, renamed_errors
+from analogs import _forked
 from analogs.errors import AnalogsInputError
 from analogs.geo import nearest_index
 from analogs.parameters import P
@@ -1312,19 +1312,18 @@ def _archive_days(inputs, wanted, fields) -> dict:
     child fails or gives no answer in ten times the first half's time (at least 10 s),
     they are read here (the answer, its errors and warnings are those of one process
     reading them all)."""
-    from analogs import _forked as forked
     half = len(inputs) // 2
-    if len(inputs) < MIN_FILES_FORKED or not forked.can_fork():
+    if len(inputs) < MIN_FILES_FORKED or not _forked.can_fork():
         return _days_in_files(inputs, wanted, fields)
     started = time.perf_counter()
-    with forked.beside(_days_in_files_as_bytes, inputs[half:], wanted, fields) as child:
+    with _forked.beside(_days_in_files_as_bytes, inputs[half:], wanted, fields) as child:
         found = _days_in_files(inputs[:half], wanted, fields)
         answer = child.answer(timeout=max(10.0, 10 * (time.perf_counter() - started)))
     if answer is None:
         more = _days_in_files(inputs[half:], wanted, fields)
     else:
-        arrays, said = forked.arrays_from_bytes(answer)
-        forked.warn_again(said)
+        arrays, said = _forked.arrays_from_bytes(answer)
+        _forked.warn_again(said)
         more = {}
         for part in arrays:
             more.setdefault(part.name, []).append(part)
@@ -1335,12 +1334,11 @@ def _archive_days(inputs, wanted, fields) -> dict:
 
 def _days_in_files_as_bytes(inputs, wanted, fields) -> bytes:
     """:func:`_days_in_files` in a forked child: its parts and warnings as bytes."""
-    from analogs import _forked as forked
     with warnings.catch_warnings(record=True) as said:
         warnings.simplefilter("always")
         found = _days_in_files(inputs, wanted, fields)
-    return forked.arrays_to_bytes([part for parts in found.values() for part in parts],
-                                  forked.recorded_warnings(said))
+    return _forked.arrays_to_bytes([part for parts in found.values() for part in parts],
+                                  _forked.recorded_warnings(said))
 
 
 def _days_in_files(inputs, wanted, fields) -> dict:
@@ -1457,54 +1455,52 @@ def _marks(heights):
                           dim="analog")
 
 
-def _analog_grid(gathered, shown, events, *, region, land, geography, days_source,
-                 title) -> tuple[str, str, list]:
-    """(SVG, alt text, each map's (SVG id, width, height)) of the analog grid: every
-    day of ``shown`` (``gathered``'s fields, in the same order) drawn with its marks
-    (:func:`_marks`) and events (:func:`analogs.presentation.svg_maps.analog_panel`)."""
-    from analogs.presentation import svg_maps as draw
-    marks = _marks(gathered["z500"])
-    alt = (f"Grid of {len(shown)} small maps of 500 hPa height ({days_source}), one per "
-           "analog day in "
-           "rank order, with that day's events marked by kind: "
-           + "; ".join(f"#{a.rank} {a.date} {a.regime}, distance {a.distance:.2f}, "
-                       f"{int(a.events_total)} events in region"
-                       for a in shown.itertuples(index=False)) + "."
-           + (" Each day's trough axes (red dashed), ridge axes (blue dotted) and closed "
-              "lows (L) of the 500 hPa height are marked." if len(marks) else "")
-           + _alt_land(land, geography))
+#: The share of the analog grid's cells a report draws itself while a forked child
+#: draws the others (and it draws the other figures): about even work on two cores.
+GRID_SHARE_DRAWN_HERE = 0.4
+
+
+def _grid_cells(grid, heights, start, stop) -> tuple[list, list, list]:
+    """(SVG parts, each map's (id, width, height), the synoptic mark kinds drawn) of
+    the analog grid's cells ``start:stop`` (``grid``: an
+    :class:`analogs.presentation.svg_maps.AnalogGrid`; ``heights``: the 500 hPa height
+    of every day of the grid), each day's marks found on its own field (:func:`_marks`)."""
+    from analogs.presentation.svg_maps import mark_kinds
+    if start >= stop:
+        return [], [], []
+    marks = _marks(heights.isel(analog=slice(start, stop)))
+    marks["panel"] += start
     views = []
-    svg = draw.analog_panel(gathered, shown, events, region=region, land=land,
-                            geography=geography, marks=marks, title=title, alt=alt,
-                            views=views)
-    return svg, alt, views
+    return grid.cells(range(start, stop), marks, views), views, mark_kinds(marks)
 
 
-def _beside_if_forked(work):
-    """``forked.beside`` of :func:`_grid_as_bytes` for ``work`` (an :func:`_analog_grid`
-    call) where a fork can be made; else a block with no child (None)."""
-    from analogs import _forked as forked
-    if work is None or not forked.can_fork():
-        return contextlib.nullcontext()
-    return forked.beside(_grid_as_bytes, work)
-
-
-def _grid_as_bytes(work) -> bytes:
-    """An :func:`_analog_grid` drawing in a forked child, with its warnings, as JSON."""
-    from analogs import _forked as forked
+def _grid_cells_as_bytes(grid, heights, start) -> bytes:
+    """The grid's cells from ``start`` on (:func:`_grid_cells`) drawn in a forked child,
+    with its warnings, as JSON."""
     with warnings.catch_warnings(record=True) as said:
         warnings.simplefilter("always")
-        svg, alt, views = work()
-    return json.dumps({"svg": svg, "alt": alt, "views": views,
-                       "said": forked.recorded_warnings(said)}).encode()
+        cells, views, kinds = _grid_cells(grid, heights, start, len(grid.days))
+    return json.dumps({"cells": cells, "views": views, "kinds": kinds,
+                       "said": _forked.recorded_warnings(said)}).encode()
 
 
-def _grid_from_bytes(answer) -> tuple[str, str, list]:
-    """:func:`_grid_as_bytes`'s drawing, its warnings issued again here."""
-    from analogs import _forked as forked
+def _grid_cells_from_bytes(answer) -> tuple[list, list, list]:
+    """:func:`_grid_cells_as_bytes`'s cells, their warnings issued again here."""
     drawn = json.loads(bytes(answer))
-    forked.warn_again(drawn["said"])
-    return drawn["svg"], drawn["alt"], [tuple(view) for view in drawn["views"]]
+    _forked.warn_again(drawn["said"])
+    return drawn["cells"], [tuple(view) for view in drawn["views"]], drawn["kinds"]
+
+
+def _alt_grid(shown, days_source, marked) -> str:
+    """Alt text of the analog grid (``marked``: some day has synoptic marks)."""
+    return (f"Grid of {len(shown)} small maps of 500 hPa height ({days_source}), one per "
+            "analog day in "
+            "rank order, with that day's events marked by kind: "
+            + "; ".join(f"#{a.rank} {a.date} {a.regime}, distance {a.distance:.2f}, "
+                        f"{int(a.events_total)} events in region"
+                        for a in shown.itertuples(index=False)) + "."
+            + (" Each day's trough axes (red dashed), ridge axes (blue dotted) and closed "
+               "lows (L) of the 500 hPa height are marked." if marked else ""))
 
 
 def _alt_marks(marks) -> str:
@@ -1599,14 +1595,18 @@ def report_figures(store, result: FindResult, *, maps=None, n_panel=None,
         events = None
         if store.events is not None:
             events = store.events[store.events["day"].isin(pd.to_datetime(shown["date"]))]
-        grid = functools.partial(
-            _analog_grid, gathered.isel(analog=slice(0, len(shown))), shown, events,
-            region=region, land=land, geography=geography, days_source=days_source,
+        heights = gathered["z500"].isel(analog=slice(0, len(shown)))
+        grid = draw.AnalogGrid(
+            gathered.isel(analog=slice(0, len(shown))), shown, events, region=region,
+            land=land, geography=geography,
             title=f"Closest past days to {when}: 500 hPa height ({_short(days_source)})")
     started = time.perf_counter()
-    # The analog grid (each day's marks and map, the longest figure) drawn in a forked
-    # child while the other figures are drawn here (analogs._forked).
-    with _beside_if_forked(grid) as child:
+    # The analog grid's later cells (each day's marks and map) drawn in a forked child
+    # (analogs._forked) while the other figures and the first cells are drawn here.
+    first = len(shown) if grid is None or not _forked.can_fork() else round(
+        GRID_SHARE_DRAWN_HERE * len(shown))
+    with (_forked.beside(_grid_cells_as_bytes, grid, heights, first) if first < len(shown)
+          else contextlib.nullcontext()) as child:
         if target is not None:
             target_marks = _marks(target["z500"].drop_vars("time", errors="ignore")
                                   .expand_dims("analog"))
@@ -1647,12 +1647,19 @@ def report_figures(store, result: FindResult, *, maps=None, n_panel=None,
             figures.append(("Where the analog days had events nearby",
                             draw.probability_map(maps, region=region, when=when, land=land,
                                                  geography=geography, alt=alt), alt))
-        answer = None if child is None else child.answer(
-            timeout=max(10.0, 10 * (time.perf_counter() - started)))
+        if grid is not None:
+            cells, drawn, kinds = _grid_cells(grid, heights, 0, first)
+            answer = None if child is None else child.answer(
+                timeout=max(10.0, 10 * (time.perf_counter() - started)))
     if grid is not None:
-        svg, alt, drawn = _grid_from_bytes(answer) if answer is not None else grid()
+        if first < len(shown):
+            more = (_grid_cells_from_bytes(answer) if answer is not None
+                    else _grid_cells(grid, heights, first, len(shown)))
+            cells, drawn, kinds = cells + more[0], drawn + more[1], sorted({*kinds, *more[2]})
+        alt = _alt_grid(shown, days_source, bool(kinds)) + _alt_land(land, geography)
         if views is not None:
             views.extend(drawn)
         figures.insert(1 if target is not None else 0,
-                       ("The closest past days and their events", svg, alt))
+                       ("The closest past days and their events",
+                        grid.svg(cells, kinds, alt), alt))
     return figures
