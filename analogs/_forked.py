@@ -31,6 +31,8 @@ import warnings
 
 import numpy as np
 
+from analogs._netcdf_lock import netcdf_lock
+
 #: The value kinds that cross as raw buffers: booleans, integers, floats, complex
 #: numbers and datetimes.
 _PLAIN_KINDS = "biufcM"
@@ -54,7 +56,11 @@ class Child:
         # each page so written while the child lives is copied (a copy of most of the
         # heap: the child's work took twice as long).
         gc.freeze()
-        self.pid = os.fork()
+        # netCDF4's lock held across the fork: no other thread is inside HDF5 at that
+        # moment, and both processes leave the block with the lock free (one held by
+        # another thread would stay held in the child for ever).
+        with netcdf_lock():
+            self.pid = os.fork()
         if self.pid == 0:  # the child: never returns
             code = 1
             try:

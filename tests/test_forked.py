@@ -210,3 +210,38 @@ def test_archive_read_in_memory_by_two_processes_is_one_process_reading(
         for name in one.data_vars:
             assert np.array_equal(other[name].values.view("u4"), one[name].values.view("u4"))
     _no_child_left()
+
+
+def test_a_child_starts_with_the_netcdf_lock_free_and_no_hdf5_call_under_way():
+    """A fork waits for netCDF4's lock (another thread in an HDF5 call holds it), and
+    the child can take that lock itself: a lock held by another thread at the fork
+    would stay held in the child for ever (the design of the fork; POSIX fork keeps
+    only the calling thread)."""
+    import threading
+
+    from analogs._netcdf_lock import netcdf_lock
+
+    lock = netcdf_lock()
+    holding, release = threading.Event(), threading.Event()
+
+    def hold():
+        with lock:
+            holding.set()
+            release.wait()
+
+    def takes_the_lock():
+        if not lock.acquire(blocking=False):
+            raise RuntimeError("the lock stayed held")
+        lock.release()
+        return b"free"
+
+    thread = threading.Thread(target=hold)
+    thread.start()
+    holding.wait()
+    threading.Timer(0.3, release.set).start()
+    started = time.monotonic()
+    with forked.beside(takes_the_lock) as child:
+        assert time.monotonic() - started >= 0.25  # the fork waited for the lock
+        assert child.answer(timeout=30) == b"free"
+    thread.join()
+    _no_child_left()
