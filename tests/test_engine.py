@@ -237,20 +237,18 @@ def test_field_report_opens_and_regrids_its_target_once(demo_store, demo_files, 
             return original(*args, **kwargs)
         monkeypatch.setattr(owner, name, counted)
 
-    opened = Counter()
-    original_open = sources.open_target
+    def counting_paths(name):
+        """The paths each call of sources' ``name`` is handed, counted."""
+        paths, original = Counter(), getattr(sources, name)
 
-    def counted_open(path, *args, **kwargs):
-        opened[str(path)] += 1
-        return original_open(path, *args, **kwargs)
-    monkeypatch.setattr(sources, "open_target", counted_open)
-    by_xarray = Counter()
-    original_open_file = sources._open_file
+        def counted(path, *args, **kwargs):
+            paths[str(path)] += 1
+            return original(path, *args, **kwargs)
+        monkeypatch.setattr(sources, name, counted)
+        return paths
 
-    def counted_open_file(path, *args, **kwargs):
-        by_xarray[str(path)] += 1
-        return original_open_file(path, *args, **kwargs)
-    monkeypatch.setattr(sources, "_open_file", counted_open_file)
+    opened = counting_paths("open_target")
+    by_xarray = counting_paths("_open_file")
     # Every archive file read in this process, where the openings are counted (a report
     # reads half of them in a forked child otherwise).
     monkeypatch.setattr(forked, "can_fork", lambda: False)
