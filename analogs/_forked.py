@@ -59,8 +59,15 @@ class Child:
         # netCDF4's lock held across the fork: no other thread is inside HDF5 at that
         # moment, and both processes leave the block with the lock free (one held by
         # another thread would stay held in the child for ever).
-        with netcdf_lock():
-            self.pid = os.fork()
+        try:
+            with netcdf_lock():
+                self.pid = os.fork()
+        except OSError:  # no room for a process (memory, process limits): no child
+            self.pid, self._ended = None, True
+            for end in (self._read, write):
+                os.close(end)
+            gc.unfreeze()
+            return
         if self.pid == 0:  # the child: never returns
             code = 1
             try:
@@ -76,20 +83,21 @@ class Child:
         self._ended = False
 
     def answer(self, timeout: float) -> bytearray | None:
-        """The child's bytes, or None when it failed or gave no answer within ``timeout``
-        seconds (it is then killed)."""
+        """The child's bytes, or None when there is no child (the fork failed), it failed
+        or it gave no answer within ``timeout`` seconds (it is then killed)."""
+        if self.pid is None:
+            return None
         received, deadline = bytearray(), time.monotonic() + timeout
-        try:
-            while True:
-                left = deadline - time.monotonic()
-                if left <= 0 or not select.select([self._read], [], [], left)[0]:
-                    return None
-                chunk = os.read(self._read, 1 << 20)
-                if not chunk:
-                    break
-                received += chunk
-        finally:
-            os.close(self._read)
+        while True:
+            left = deadline - time.monotonic()
+            if left <= 0 or not select.select([self._read], [], [], left)[0]:
+                self.end()
+                return None
+            chunk = os.read(self._read, 1 << 20)
+            if not chunk:
+                break
+            received += chunk
+        os.close(self._read)
         _, status = os.waitpid(self.pid, 0)
         self._ended = True
         gc.unfreeze()

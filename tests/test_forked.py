@@ -245,3 +245,19 @@ def test_a_child_starts_with_the_netcdf_lock_free_and_no_hdf5_call_under_way():
         assert child.answer(timeout=30) == b"free"
     thread.join()
     _no_child_left()
+
+
+def test_a_fork_that_fails_leaves_the_work_to_the_caller(monkeypatch):
+    """When no process can be made (os.fork raises, as it does without memory or under
+    a process limit), the child gives no answer and nothing is left open or frozen out
+    of garbage collection."""
+    import gc
+
+    def no_room():
+        raise OSError(12, "Cannot allocate memory")
+
+    monkeypatch.setattr(os, "fork", no_room)
+    frozen = gc.get_freeze_count()
+    with forked.beside(lambda: b"never") as child:
+        assert child.answer(timeout=1) is None
+    assert gc.get_freeze_count() == frozen
