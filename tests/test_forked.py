@@ -261,3 +261,25 @@ def test_a_fork_that_fails_leaves_the_work_to_the_caller(monkeypatch):
     with forked.beside(lambda: b"never") as child:
         assert child.answer(timeout=1) is None
     assert gc.get_freeze_count() == frozen
+
+
+@pytest.mark.parametrize("fork", [True, False])
+def test_report_figures_without_analogs_and_with_fewer_panels(demo_store, monkeypatch,
+                                                              fork):
+    """A query left with no analog draws the target's map alone; a grid limited to its
+    first panels draws those maps alone (with the forked child or without)."""
+    import dataclasses
+
+    if not fork:
+        monkeypatch.setattr(forked, "can_fork", lambda: False)
+    result = demo_store.find(date=str(demo_store.days[420].date()))
+    none_left = dataclasses.replace(result, analogs=result.analogs.head(0))
+    figures = find.report_figures(demo_store, none_left)
+    assert [caption.split(":")[0] for caption, _, _ in figures] == [
+        f"Target {result.target['date']}"]
+    views = []
+    figures = find.report_figures(demo_store, result, n_panel=7, views=views)
+    assert [view[0] for view in views] == [f"analog-map-{rank}" for rank in range(1, 8)]
+    grid = next(svg for caption, svg, _ in figures if caption.startswith("The closest"))
+    assert grid.count('id="analog-map-') == 7
+    _no_child_left()

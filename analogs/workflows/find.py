@@ -1603,9 +1603,10 @@ def report_figures(store, result: FindResult, *, maps=None, n_panel=None,
     started = time.perf_counter()
     # The analog grid's later cells (each day's marks and map) drawn in a forked child
     # (analogs._forked) while the other figures and the first cells are drawn here.
-    first = len(shown) if grid is None or not _forked.can_fork() else round(
-        GRID_SHARE_DRAWN_HERE * len(shown))
-    with (_forked.beside(_grid_cells_as_bytes, grid, heights, first) if first < len(shown)
+    forking = grid is not None and _forked.can_fork()
+    first = 0 if grid is None else (round(GRID_SHARE_DRAWN_HERE * len(shown)) if forking
+                                    else len(shown))
+    with (_forked.beside(_grid_cells_as_bytes, grid, heights, first) if forking
           else contextlib.nullcontext()) as child:
         if target is not None:
             target_marks = _marks(target["z500"].drop_vars("time", errors="ignore")
@@ -1652,7 +1653,7 @@ def report_figures(store, result: FindResult, *, maps=None, n_panel=None,
             answer = None if child is None else child.answer(
                 timeout=max(10.0, 10 * (time.perf_counter() - started)))
     if grid is not None:
-        if first < len(shown):
+        if forking:
             more = (_grid_cells_from_bytes(answer) if answer is not None
                     else _grid_cells(grid, heights, first, len(shown)))
             cells, drawn, kinds = cells + more[0], drawn + more[1], sorted({*kinds, *more[2]})
