@@ -88,9 +88,11 @@ class Child:
         if self.pid is None:
             return None
         received, deadline = bytearray(), time.monotonic() + timeout
+        ready = select.poll()  # unlike select(), any descriptor number
+        ready.register(self._read, select.POLLIN)
         while True:
             left = deadline - time.monotonic()
-            if left <= 0 or not select.select([self._read], [], [], left)[0]:
+            if left <= 0 or not ready.poll(left * 1000.0):
                 self.end()
                 return None
             chunk = os.read(self._read, 1 << 20)
