@@ -572,3 +572,25 @@ def test_every_direct_netcdf4_opening_holds_the_netcdf_lock():
     unlocked = [(name, line) for name, line in openings
                 if "NETCDF4_PYTHON_LOCK" not in line and "netcdf_lock()" not in line]
     assert unlocked == []
+
+
+def test_times_referenced_to_year_one_are_decoded_as_xarray_decodes_them(tmp_path):
+    """eofs' hgt_djf.nc (NCEP-style times, "hours since 1-1-1" in the standard, mixed
+    Julian-Gregorian calendar): netCDF4's conversion to Python dates refuses that
+    reference date, xarray's CF coders decode it (as the build did). A report's look at
+    a file's times (sources.held_times) gives xarray's dates, so such an archive's own
+    fields are drawn (the file was skipped before, and every map fell back to the EOF
+    reconstruction)."""
+    path = str(shutil.copy(EOFS_HGT, tmp_path / "hgt.nc"))
+    held, names = sources.held_times(path)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        with xr.open_dataset(path) as dataset:
+            expected = dataset["time"].values
+    assert held is not None and np.array_equal(held.values, expected)
+    assert {"time", "z"} <= names
+    with netCDF4.Dataset(path) as handle, pytest.raises(ValueError, match="calendar"):
+        time = handle["time"]
+        netCDF4.num2date(time[:], time.units, time.calendar,
+                         only_use_cftime_datetimes=False, only_use_python_datetimes=True)
+    assert sources.held_times(str(tmp_path / "missing.nc")) == (None, frozenset())

@@ -1348,7 +1348,7 @@ def _days_in_files(inputs, wanted, fields) -> dict:
     header (:func:`analogs.stages.sources.laid_out_days`); any other file's times looked
     at first, then the file read at the days it holds
     (:func:`analogs.stages.sources.target_days`)."""
-    from analogs.stages.sources import DayLayouts, laid_out_days, target_days
+    from analogs.stages.sources import DayLayouts, held_times, laid_out_days, target_days
     layouts = DayLayouts()
     # fields_of: the fields files of the same variables held
     found, fields_of = {}, {}
@@ -1358,7 +1358,7 @@ def _days_in_files(inputs, wanted, fields) -> dict:
             for name, part in parts.items():
                 found.setdefault(name, []).append(part)
             continue
-        held, variables = _times_held(entry["path"])
+        held, variables = held_times(entry["path"])
         if held is None:
             continue
         inside = wanted[wanted.isin(held)].unique().sort_values()
@@ -1400,30 +1400,6 @@ def _positions(source, target, tolerance=1e-6) -> np.ndarray | None:
     None when some value of ``target`` is not a point of ``source`` (degrees)."""
     at = nearest_index(source, target)
     return at if np.all(np.abs(source[at] - target) <= tolerance) else None
-
-
-def _times_held(path) -> tuple[pd.DatetimeIndex | None, frozenset]:
-    """The times and variable names of an archive file, read from its header with
-    netCDF4 (a tenth of what opening it with xarray costs); no times when it has no
-    time axis that decodes (then the file is not read for the maps)."""
-    import netCDF4
-
-    from analogs._netcdf_lock import netcdf_lock
-    from analogs.workflows.files import NETCDF_LOCK
-    try:
-        with NETCDF_LOCK, netcdf_lock(), netCDF4.Dataset(path) as dataset:
-            for name in ("time", "valid_time", "t"):
-                if name in dataset.variables and dataset.variables[name].ndim == 1:
-                    var = dataset.variables[name]
-                    var.set_auto_mask(False)  # plain values: num2date converts them at once
-                    dates = netCDF4.num2date(var[:], var.units,
-                                             getattr(var, "calendar", "standard"),
-                                             only_use_cftime_datetimes=False,
-                                             only_use_python_datetimes=True)
-                    return pd.DatetimeIndex(list(dates)), frozenset(dataset.variables)
-    except (OSError, ValueError, AttributeError, TypeError, OverflowError):
-        pass
-    return None, frozenset()
 
 
 def _place(values, lat, lon) -> str:
