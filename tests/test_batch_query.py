@@ -67,6 +67,36 @@ def test_the_times_of_scores_nc_in_other_units_equal_xarrays_decoding(tmp_path, 
     assert read.equals(times) and read.dtype == np.dtype("datetime64[ns]")
 
 
+@pytest.mark.parametrize("units, calendar", [
+    ("days since 1900-01-01", "standard"), ("hours since 1800-1-1 06:00:00", "gregorian"),
+    ("minutes since 2000-02-29 12:30", "proleptic_gregorian"),
+    ("seconds since 1970-01-01T00:00", "standard"),
+    ("days since 1700-01-01", "standard"), ("days since 1680-01-01", "proleptic_gregorian")])
+def test_the_times_computed_in_whole_seconds_are_num2dates(units, calendar):
+    """The query's fast decoding of the stored times (store._gregorian_times, whole
+    seconds added to the reference date) against netCDF4's num2date (cftime), the
+    reference (CF conventions 4.4.1); values that are no whole number of seconds,
+    dates of the Julian calendar, other calendars, time zones and missing values are
+    left to num2date (None)."""
+    import netCDF4
+    step = 1.0 if units.startswith("seconds") else 0.5       # whole seconds
+    values = np.concatenate([np.arange(0.0, 3000.0, step),
+                             np.random.default_rng(3).integers(0, 60_000, 500).astype(float)])
+    fast = store_io._gregorian_times(values, units, calendar)
+    expected = netCDF4.num2date(values, units, calendar, only_use_cftime_datetimes=False,
+                                only_use_python_datetimes=True)
+    assert fast is not None and fast.dtype == np.dtype("datetime64[ns]")
+    assert fast.equals(pd.DatetimeIndex(expected).as_unit("ns"))
+    assert store_io._gregorian_times(np.array([0.1, 0.25]), "seconds since 2000-01-01",
+                                     calendar) is None           # fractions of a second
+    assert store_io._gregorian_times(np.ma.masked_array([0.0, 1.0], [False, True]), units,
+                                     calendar) is None           # a missing time
+    assert store_io._gregorian_times(values, units, "noleap") is None
+    assert store_io._gregorian_times(values, f"{units} UTC", calendar) is None
+    # NCEP-style: the reference date in the Julian calendar (mixed calendar).
+    assert store_io._gregorian_times(values, "hours since 1-1-1 00:00:0.0", "standard") is None
+
+
 def test_a_date_query_reads_neither_climatology_nor_eofs(demo_store):
     store = AnalogStore.load(demo_store.path)
     store.find(date=_dates(store)[2])

@@ -243,7 +243,6 @@ def _build(paths, store, *, events, event_dates, events_period, fields, n_modes,
            region, domain, hour, daily,
            n_harmonics, solver, field_weights, chunks, index, progress,
            reads_done=lambda: None, mask=None, scratch=None, decode_to_scratch=True):
-    from analogs.stages.regimes import tag_days
     from analogs.stages.sources import open_archive
     # Out of core, the scratch folder holds the archive decoded once (read back by every
     # pass: census, climatology, EOF, tagging; not with a distributed scheduler, whose
@@ -285,26 +284,34 @@ def _build(paths, store, *, events, event_dates, events_period, fields, n_modes,
         pcs = eof.pcs_
         errors = eof.training_error_.values
         times = pd.DatetimeIndex(archive["time"].values)
+        tables, events_entry = {}, None
+        if event_table is not None:
+            # Report coverage (analogs.workflows.reports): every archive day, or
+            # --events-period.
+            period = coverage_period(event_table, events_period,
+                                     default=(times[0], times[-1]), owner="build_store")
+            events_entry = events_block(events, event_table, [period], times.normalize(),
+                                        n_outside=n_outside)
+            # The store's daily counts give the days with an event.
+            from analogs.workflows.find import stored_daily_counts
+            counts = stored_daily_counts(event_table, times.normalize(), region)
+            tables = {store_io.EVENTS: event_table, store_io.COUNTS: counts}
+        # A whole new version, staged under the writer lock from here on and loaded back
+        # under it; an error before the commit leaves the store as it was.
+        txn = later.enter_context(store_io.transaction(store, new=True))
         # The tags need only the archive, the index check and the skill hindcast only the
         # PCs: the tags are computed in a thread beside them (numpy and faiss release the
-        # GIL in their heavy loops). Started after the EOF fit, the build's memory peak, so
+        # GIL in their heavy loops), which then writes the files that need no skill (the
+        # hindcast ends last). Started after the EOF fit, the build's memory peak, so
         # the diagnostics' working memory never adds to it; inside the scratch folder's
         # block, because out of core tagging reads the archive's decoded copy there. No
         # region: tag_days places the synoptic box at the domain's centre and says so.
-        with _beside(tag_days, archive, None if region.kind == "whole" else
-                     diagnostic_region(region, archive), progress=progress) as tagging:
+        box = None if region.kind == "whole" else diagnostic_region(region, archive)
+        with _beside(_tagged_and_staged, txn.staging, archive, box, progress=progress,
+                     fitted=(climatology, eof, land), pcs=pcs, tables=tables) as tagging:
             index_info = _index_info(index, pcs.values, times)
-            skill, events_entry = None, None
+            skill = None
             if event_table is not None:
-                # Report coverage (analogs.workflows.reports): every archive day, or
-                # --events-period.
-                period = coverage_period(event_table, events_period,
-                                         default=(times[0], times[-1]), owner="build_store")
-                events_entry = events_block(events, event_table, [period], times.normalize(),
-                                            n_outside=n_outside)
-                # The store's daily counts (written below) give the days with an event.
-                from analogs.workflows.find import stored_daily_counts
-                counts = stored_daily_counts(event_table, times.normalize(), region)
                 observed = counts["total"].to_numpy() > 0
                 covered = covered_days(times, [period])
                 skill = measured_skill(pcs.values, times, observed, covered, region=region)
@@ -314,68 +321,76 @@ def _build(paths, store, *, events, event_dates, events_period, fields, n_modes,
                 from analogs.stages.predictor_weights import fit_predictor_weights
                 default_map = fit_predictor_weights(pcs.values.astype("float64")[covered],
                                                     times[covered], observed[covered])
-        tags = tagging.result()
-    manifest = {
-        "config": {
-            "fields": list(archive.data_vars),
-            "n_modes_requested": n_modes,
-            "variance_requested": variance,
-            "n_modes": int(eof.n_modes_),
-            "solver": eof.solver_,
-            "n_harmonics": n_harmonics,
-            "climatology_method": climatology.method_,
-            "hour": hour,
-            "daily": daily,
-            "domain": list(domain) if domain is not None else list(grid_box(archive)),
-            "region": region.to_dict(),
-            "diagnostic_region": diagnostic_region_info(region, archive),
-            "field_weights": field_weights,
-        },
-        "archive": {
-            "n_days": int(len(times)),
-            "time_start": times[0].isoformat(),
-            "time_end": times[-1].isoformat(),
-            "n_lat": int(archive.sizes["lat"]),
-            "n_lon": int(archive.sizes["lon"]),
-            "inputs": provenance(paths),
-            "missing_data": json.loads(archive.attrs.get("missing_data", "{}")),
-            "reconstruction_error": error_summary(errors),
-        },
-        "events": events_entry,
-        "land_mask": land_entry,
-        "skill": skill,
-        "index": index_info,
-    }
-    from analogs.workflows.analog_store import AnalogStore
-    reads_done()  # an archive file changed during the reads: refused before any write
-    # A whole new version, written and loaded back under the writer lock.
-    with store_io.transaction(store, new=True) as txn:
-        staged = txn.staging
-        basis = xr.Dataset(coords={"lat": archive["lat"], "lon": archive["lon"]},
-                           attrs={"title": "analogs store basis", "Conventions": "CF-1.8",
-                                  "analogs_version": __version__})
-        store_io.write_dataset(basis, staged / store_io.BASIS)
-        store_io.write_dataset(climatology.to_dataset(), staged / store_io.BASIS,
-                               group="climatology", mode="a")
-        store_io.write_dataset(eof.to_dataset(), staged / store_io.BASIS, group="eof", mode="a")
-        if land is not None:
-            store_io.write_dataset(land.to_dataset(name="land"), staged / store_io.BASIS,
-                                   group=store_io.LAND_GROUP, mode="a")
-        scores = xr.Dataset({"pcs": pcs.astype("float64")},
-                            attrs={"title": "analogs store principal components",
-                                   "Conventions": "CF-1.8"})
-        store_io.write_dataset(scores, staged / store_io.SCORES)
+        tagging.result()
+        manifest = {
+            "config": {
+                "fields": list(archive.data_vars),
+                "n_modes_requested": n_modes,
+                "variance_requested": variance,
+                "n_modes": int(eof.n_modes_),
+                "solver": eof.solver_,
+                "n_harmonics": n_harmonics,
+                "climatology_method": climatology.method_,
+                "hour": hour,
+                "daily": daily,
+                "domain": list(domain) if domain is not None else list(grid_box(archive)),
+                "region": region.to_dict(),
+                "diagnostic_region": diagnostic_region_info(region, archive),
+                "field_weights": field_weights,
+            },
+            "archive": {
+                "n_days": int(len(times)),
+                "time_start": times[0].isoformat(),
+                "time_end": times[-1].isoformat(),
+                "n_lat": int(archive.sizes["lat"]),
+                "n_lon": int(archive.sizes["lon"]),
+                "inputs": provenance(paths),
+                "missing_data": json.loads(archive.attrs.get("missing_data", "{}")),
+                "reconstruction_error": error_summary(errors),
+            },
+            "events": events_entry,
+            "land_mask": land_entry,
+            "skill": skill,
+            "index": index_info,
+        }
         if event_table is not None:
-            store_io.write_table(event_table, staged / store_io.EVENTS)
-            store_io.write_table(counts, staged / store_io.COUNTS)
             from analogs.workflows.find import default_predictor_weights
             manifest["predictor_weights"] = default_predictor_weights(
                 default_map, region, int(eof.n_modes_),
-                {name: store_io.file_entry(staged / name)
+                {name: store_io.file_entry(txn.staging / name)
                  for name in (store_io.SCORES, store_io.EVENTS)})
-        store_io.write_table(tags.reset_index(drop=True), staged / store_io.TAGS)
+        reads_done()  # an archive file changed during the reads: refused before the commit
         txn.commit(manifest)
+        from analogs.workflows.analog_store import AnalogStore
         return AnalogStore._load_version(txn.path, manifest=txn.committed)
+
+
+def _tagged_and_staged(staging, archive, box, *, progress, fitted, pcs, tables):
+    """The tags of every archive day (:func:`~analogs.stages.regimes.tag_days` over
+    ``box``), then the store files that need no skill written into ``staging``:
+    ``basis.nc`` (the grid, then the groups of ``fitted``: the climatology, the EOFs and
+    the land fraction when there is one), the ``pcs``, the ``tables`` (name -> frame)
+    and the tags."""
+    from analogs.stages.regimes import tag_days
+    tags = tag_days(archive, box, progress=progress)
+    climatology, eof, land = fitted
+    basis = staging / store_io.BASIS
+    store_io.write_dataset(xr.Dataset(coords={"lat": archive["lat"], "lon": archive["lon"]},
+                                      attrs={"title": "analogs store basis",
+                                             "Conventions": "CF-1.8",
+                                             "analogs_version": __version__}), basis)
+    store_io.write_dataset(climatology.to_dataset(), basis, group="climatology", mode="a")
+    store_io.write_dataset(eof.to_dataset(), basis, group="eof", mode="a")
+    if land is not None:
+        store_io.write_dataset(land.to_dataset(name="land"), basis,
+                               group=store_io.LAND_GROUP, mode="a")
+    store_io.write_dataset(xr.Dataset({"pcs": pcs.astype("float64")},
+                                      attrs={"title": "analogs store principal components",
+                                             "Conventions": "CF-1.8"}),
+                           staging / store_io.SCORES)
+    for name, table in tables.items():
+        store_io.write_table(table, staging / name)
+    store_io.write_table(tags.reset_index(drop=True), staging / store_io.TAGS)
 
 
 @contextlib.contextmanager
