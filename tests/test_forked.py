@@ -212,6 +212,64 @@ def test_archive_read_in_memory_by_two_processes_is_one_process_reading(
     _no_child_left()
 
 
+def test_files_looked_at_in_a_child_are_one_process_looking(tmp_path, monkeypatch):
+    """open_archive with work beside its reads (a build imports scikit-learn so): the
+    files recognised in a forked child while that work starts give the archive, the
+    files found with an earlier one's header and the warnings of one process looking at
+    every file; the caller recognises only the first file, the files read in full and
+    the one that warns (a file without a supported variable, in the middle); a child
+    that fails leaves every file to the caller. The work beside is entered once, after
+    the fork."""
+    from analogs.stages import sources
+
+    paths = sorted(p for year in range(2001, 2006) for p in _write_year(tmp_path, year))
+    stray = tmp_path / "notes_2003.nc"
+    xr.Dataset({"notes": ("n", np.arange(3.0))}).to_netcdf(stray)
+    paths = paths[:5] + [stray] + paths[5:]
+    assert len(paths) >= sources.MIN_FILES_LOOKED_IN_CHILD
+    entered, looked_here = [], []
+    recognised_in = sources._recognised_in
+
+    class Beside:
+        def __enter__(self):
+            entered.append(os.getpid())
+
+        def __exit__(self, *exc):
+            return False
+
+    def counted(path, *args):
+        looked_here.append(os.path.basename(path))
+        return recognised_in(path, *args)
+
+    def opened(**kwargs):
+        same_header = {}
+        with warnings.catch_warnings(record=True) as said:
+            warnings.simplefilter("always")
+            archive = sources.open_archive([str(p) for p in paths], progress=False,
+                                           same_header=same_header, **kwargs)
+        return archive, same_header, sorted(str(w.message) for w in said)
+
+    monkeypatch.setattr(sources, "_recognised_in", counted)
+    two = opened(while_reading=Beside())
+    assert entered == [os.getpid()]
+    assert looked_here == ["hus_2001.nc", "notes_2003.nc", "zg_2001.nc"]
+    monkeypatch.setattr(sources, "_looks_in_child", lambda *args: _fails())
+    failed = opened(while_reading=Beside())
+    monkeypatch.setattr(forked, "can_fork", lambda: False)
+    looked_here.clear()
+    one = opened()
+    assert len(looked_here) == len(paths)
+    assert any("notes_2003.nc: no supported variable" in text for text in one[2])
+    for other in (two, failed):
+        xr.testing.assert_identical(other[0], one[0])
+        for name in one[0].data_vars:
+            assert np.array_equal(other[0][name].values.view("u4"),
+                                  one[0][name].values.view("u4"))
+        assert other[1:] == one[1:]
+    assert len(one[1]) == len(paths) - 3
+    _no_child_left()
+
+
 def test_a_child_starts_with_the_netcdf_lock_free_and_no_hdf5_call_under_way():
     """A fork waits for netCDF4's lock (another thread in an HDF5 call holds it), and
     the child can take that lock itself: a lock held by another thread at the fork
