@@ -250,7 +250,9 @@ def open_archive(paths, *, fields=None, region=None, hour=P.hour.default,
         while the reads wait on HDF5 without the GIL (a build imports scikit-learn so).
         With at least :data:`MIN_FILES_LOOKED_IN_CHILD` files (on Linux) it is entered
         once the first file is recognised instead: a forked child recognises the others
-        meanwhile (:func:`_looks_in_child`), with the same answers.
+        meanwhile (:func:`_looks_in_child`), with the same answers. The work must issue
+        no warning: one issued while a file is recognised here would be taken for that
+        file's, which is then read the full way (slower, the same values).
     same_header : dict, optional
         Filled with ``{file: earlier file}`` for each NetCDF file found to have the
         header of an earlier one (:func:`_header`: every variable's name, dims, dtype
