@@ -342,3 +342,26 @@ def test_find_with_a_sequence_searches_the_mapped_sequence(store_copy):
     expected = cdist(mapped(target)[None], np.array([mapped(r) for r in rows]))[0]
     np.testing.assert_allclose([a["distance"] for a in found["analogs"]], expected, rtol=1e-5)
     assert np.all(np.diff(expected) >= -1e-9)  # ranked by that distance
+
+
+def test_weighted_hindcast_is_the_same_on_one_or_two_fold_threads(monkeypatch):
+    """The event-weighted folds worked on two threads (hindcast.FOLD_THREADS), on one, and
+    with a slot held by the caller (the build holds one while it tags) give the same
+    hindcast to the last bit, in the same order (the design of the threading: folds
+    independent, one BLAS thread; no outside source)."""
+    import threading
+
+    from analogs.stages import hindcast as hindcast_stage
+
+    pcs, times, observed, _ = _synthetic(n_years=5, n_modes=5, seed=7)
+    two = leave_one_year_out(pcs, times, observed, metric="event_weighted", top=15)
+    slots = threading.BoundedSemaphore(hindcast_stage.FOLD_THREADS)
+    slots.acquire()
+    held = leave_one_year_out(pcs, times, observed, metric="event_weighted", top=15,
+                              fold_slots=slots)
+    slots.release()
+    monkeypatch.setattr(hindcast_stage, "FOLD_THREADS", 1)
+    one = leave_one_year_out(pcs, times, observed, metric="event_weighted", top=15)
+    assert hindcast_stage.FOLD_THREADS == 1 and len(one) == len(times)
+    pd.testing.assert_frame_equal(two, one, check_exact=True)
+    pd.testing.assert_frame_equal(held, one, check_exact=True)

@@ -16,6 +16,9 @@ drawn from the same candidates (same N, same window).
 
 from __future__ import annotations
 
+import threading
+from concurrent.futures import ThreadPoolExecutor
+
 import numpy as np
 import pandas as pd
 from tqdm.auto import tqdm
@@ -34,6 +37,8 @@ from analogs.stages.selection import (BATCH_MAX_MASK, DEFAULT_EXCLUDE, DEFAULT_S
                                       held_out_days, held_out_mask, rank_many, rank_windows)
 
 HINDCAST_METHODS = ("analogs", "random")
+#: Folds of the event-weighted hindcast worked at once (threads; see ``fold_slots``).
+FOLD_THREADS = 2
 #: Annual harmonics beside the PCs in the logistic-regression baseline.
 N_HARMONICS = 2
 
@@ -42,7 +47,7 @@ def leave_one_year_out(pcs, times, observed, *, top=DEFAULT_TOP, window=DEFAULT_
                        separation=DEFAULT_SEPARATION, n_modes=None, method="analogs",
                        months=None, seed=0, exclude=DEFAULT_EXCLUDE, restrict=None,
                        targets=None, weights=P.weights.default, metric=P.metric.default,
-                       sequence=0, progress=False):
+                       sequence=0, fold_slots=None, progress=False):
     """Forecast every day from analogs in the other years.
 
     The analogs of a day are those the live query would choose
@@ -80,6 +85,10 @@ def leave_one_year_out(pcs, times, observed, *, top=DEFAULT_TOP, window=DEFAULT_
         the event-weighted map is fitted on the first block, the day's own PCs, and
         maps each block alike
         (:func:`~analogs.stages.predictor_weights.block_transform`).
+    fold_slots : semaphore, optional: with ``metric="event_weighted"`` the folds (one
+        year each) run on :data:`FOLD_THREADS` threads, each fold holding one of these
+        slots (default: a semaphore of FOLD_THREADS slots); a caller running other work
+        beside holds some meanwhile. The same answers whatever the threads.
 
     Returns
     -------
@@ -106,7 +115,7 @@ def leave_one_year_out(pcs, times, observed, *, top=DEFAULT_TOP, window=DEFAULT_
     if method == "analogs" and metric == "event_weighted":
         batches = _weighted_fold_batches(pcs, times, observed, targets, window, exclude,
                                          top=top, separation=separation, restrict=restrict,
-                                         sequence=sequence,
+                                         sequence=sequence, fold_slots=fold_slots,
                                          progress=progress)
     else:
         batches = _calendar_day_batches(times, targets, window, exclude, progress=progress)
@@ -270,7 +279,8 @@ def _restricted(season, restrict):
 
 
 def _weighted_fold_batches(pcs, times, observed, targets, window, exclude, *, top,
-                           separation, restrict=None, sequence=0, progress=False):
+                           separation, restrict=None, sequence=0, fold_slots=None,
+                           progress=False):
     """The batches of :func:`_with_analogs`, year by year: the targets of year Y ranked
     in the event-weighted space fitted on the days of the other years only
     (:func:`~analogs.stages.predictor_weights.fit_predictor_weights`; nested, so no day
@@ -310,28 +320,45 @@ def _weighted_fold_batches(pcs, times, observed, targets, window, exclude, *, to
     per_batch = max(1, BATCH_MAX_MASK // len(times))
     if restrict is not None:
         restrict = np.asarray(restrict, dtype=bool)
-    for year in tqdm(np.unique(years[targets]), desc="hindcast", unit="year",
-                     disable=not progress):
-        train = years != year
-        # A (days x ~21) product: on one BLAS thread, as the fit (predictor_weights), the
-        # same values without a second thread spinning beside the tagging's.
-        with one_blas_thread():
+    slots = fold_slots if fold_slots is not None else threading.BoundedSemaphore(FOLD_THREADS)
+
+    def fold(year):
+        """The batches of the targets of ``year``, ranked in the map fitted without it."""
+        with slots:
+            train = years != year
             transform = fit_predictor_weights(pcs[train, :n_modes], times[train],
                                               observed[train], harmonics=harmonics[train])
             mapped = pcs @ block_transform(transform, n_blocks)
-        rows = np.flatnonzero(targets & ~train)
-        for start in range(0, rows.size, per_batch):
-            queries = rows[start:start + per_batch]
-            own = _as_slice(window_of[queries])
-            windows, columns = windows_by_day[own], columns_by_day[own]
-            # Each target's own season days of the other years, outside its own episode
-            # (held_out_mask's rule).
-            held = held_out_days(window_years[own], window_days[own], years[queries],
-                                 days[queries], exclude) & in_window[own]
-            allowed = held if restrict is None else held & restrict[columns]
-            chosen = rank_windows(mapped, times, queries, windows, allowed, top=top,
-                                  separation=separation)
-            yield queries, columns, held, chosen
+            rows = np.flatnonzero(targets & ~train)
+            batches = []
+            for start in range(0, rows.size, per_batch):
+                queries = rows[start:start + per_batch]
+                own = _as_slice(window_of[queries])
+                windows, columns = windows_by_day[own], columns_by_day[own]
+                # Each target's own season days of the other years, outside its own
+                # episode (held_out_mask's rule).
+                held = held_out_days(window_years[own], window_days[own], years[queries],
+                                     days[queries], exclude) & in_window[own]
+                allowed = held if restrict is None else held & restrict[columns]
+                chosen = rank_windows(mapped, times, queries, windows, allowed, top=top,
+                                      separation=separation)
+                batches.append((queries, columns, held, chosen))
+            return batches
+
+    # The folds are independent: worked on FOLD_THREADS threads (the fit's solver and the
+    # ranking's kernels give the GIL up), given back in the years' order. The (days x
+    # ~21) products run on one BLAS thread throughout, as the fit (predictor_weights):
+    # the same values, and no BLAS thread spinning beside the fold threads; one limit
+    # held over every fold (limits set and restored by each thread would cross).
+    fold_years = np.unique(years[targets])
+    with one_blas_thread(), ThreadPoolExecutor(FOLD_THREADS) as pool:
+        folds = pool.map(fold, fold_years)
+        try:
+            for batches in tqdm(folds, total=fold_years.size, desc="hindcast", unit="year",
+                                disable=not progress):
+                yield from batches
+        finally:
+            pool.shutdown(cancel_futures=True)
 
 
 def _as_slice(positions):

@@ -307,14 +307,22 @@ def _build(paths, store, *, events, event_dates, events_period, fields, n_modes,
         # block, because out of core tagging reads the archive's decoded copy there. No
         # region: tag_days places the synoptic box at the domain's centre and says so.
         box = None if region.kind == "whole" else diagnostic_region(region, archive)
+        # The hindcast's folds run on two threads, one of them only once the tags are
+        # made: beside the tagging's own two threads they would slow its serial last
+        # steps (Python that needs the GIL), after which one core would be left idle.
+        from analogs.stages.hindcast import FOLD_THREADS
+        fold_slots = threading.BoundedSemaphore(FOLD_THREADS)
+        fold_slots.acquire()
         with _beside(_tagged_and_staged, txn.staging, archive, box, progress=progress,
-                     fitted=(climatology, eof, land), pcs=pcs, tables=tables) as tagging:
+                     fitted=(climatology, eof, land), pcs=pcs, tables=tables,
+                     tagged=fold_slots.release) as tagging:
             index_info = _index_info(index, pcs.values, times)
             skill = None
             if event_table is not None:
                 observed = counts["total"].to_numpy() > 0
                 covered = covered_days(times, [period])
-                skill = measured_skill(pcs.values, times, observed, covered, region=region)
+                skill = measured_skill(pcs.values, times, observed, covered, region=region,
+                                       fold_slots=fold_slots)
                 # The default query's event-weighted map (the store's region, every
                 # kind), fitted as event_weighted_transform fits it on the stored PCs,
                 # while the tagging may still run; kept in the first manifest below.
@@ -365,14 +373,17 @@ def _build(paths, store, *, events, event_dates, events_period, fields, n_modes,
         return AnalogStore._load_version(txn.path, manifest=txn.committed)
 
 
-def _tagged_and_staged(staging, archive, box, *, progress, fitted, pcs, tables):
+def _tagged_and_staged(staging, archive, box, *, progress, fitted, pcs, tables, tagged):
     """The tags of every archive day (:func:`~analogs.stages.regimes.tag_days` over
-    ``box``), then the store files that need no skill written into ``staging``:
-    ``basis.nc`` (the grid, then the groups of ``fitted``: the climatology, the EOFs and
-    the land fraction when there is one), the ``pcs``, the ``tables`` (name -> frame)
-    and the tags."""
+    ``box``; ``tagged()`` is called when they are made, or have failed), then the store
+    files that need no skill written into ``staging``: ``basis.nc`` (the grid, then the
+    groups of ``fitted``: the climatology, the EOFs and the land fraction when there is
+    one), the ``pcs``, the ``tables`` (name -> frame) and the tags."""
     from analogs.stages.regimes import tag_days
-    tags = tag_days(archive, box, progress=progress)
+    try:
+        tags = tag_days(archive, box, progress=progress)
+    finally:
+        tagged()
     climatology, eof, land = fitted
     basis = staging / store_io.BASIS
     store_io.write_dataset(xr.Dataset(coords={"lat": archive["lat"], "lon": archive["lon"]},

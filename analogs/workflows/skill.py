@@ -88,12 +88,13 @@ def measured_skill(pcs, times, observed, covered, *, region, top=P.top.default,
                    window=P.window.default, separation=P.separation.default,
                    restrict=None, weights=P.weights.default,
                    exclude=P.exclude.default, metric=P.metric.default,
-                   sequence=P.sequence.default) -> dict | None:
+                   sequence=P.sequence.default, fold_slots=None) -> dict | None:
     """:func:`skill_by_month` over the days with report coverage (``covered``); None when
     it cannot be measured: fewer than two years covered, or no day (or every day) with
     an event there. ``restrict`` (bool per day, :func:`query_vectors`): the days allowed
     as analogs, which are also the days forecast; ``sequence``: ``pcs`` are the sequence
-    vectors of that many preceding days (for the event-weighted map)."""
+    vectors of that many preceding days (for the event-weighted map); ``fold_slots``:
+    :func:`~analogs.stages.hindcast.leave_one_year_out`'s."""
     covered = np.asarray(covered, dtype=bool)
     times = pd.DatetimeIndex(times)
     targets = covered if restrict is None else covered & np.asarray(restrict, dtype=bool)
@@ -105,7 +106,7 @@ def measured_skill(pcs, times, observed, covered, *, region, top=P.top.default,
                           np.asarray(observed, dtype=bool)[covered], region=region,
                           top=top, window=window, separation=separation,
                           restrict=restrict, weights=weights, exclude=exclude, metric=metric,
-                          sequence=sequence)
+                          sequence=sequence, fold_slots=fold_slots)
 
 
 def verify(store, *, top=P.top.api_default, window=P.window.default,
@@ -265,7 +266,7 @@ def skill_by_month(pcs, times, observed, *, region, top=P.top.default,
                    window=P.window.default, separation=P.separation.default,
                    restrict=None, weights=P.weights.default,
                    exclude=P.exclude.default, metric=P.metric.default,
-                   sequence=P.sequence.default) -> dict:
+                   sequence=P.sequence.default, fold_slots=None) -> dict:
     """Cross-validated skill of the default query settings, overall and by month.
 
     A leave-one-year-out hindcast (:func:`analogs.stages.hindcast.leave_one_year_out`) of "at
@@ -275,14 +276,14 @@ def skill_by_month(pcs, times, observed, *, region, top=P.top.default,
     reference forecasts are perfect has ``brier_skill_score`` null (the manifest is JSON).
     ``restrict`` (bool per day, :func:`query_vectors`) narrows the analogs and the days
     forecast as a ``--regime`` or ``--sequence`` query does; ``weights`` and
-    ``exclude`` are the query's.
+    ``exclude`` are the query's; ``fold_slots``: :func:`leave_one_year_out`'s.
     """
     from analogs.stages.hindcast import leave_one_year_out, score_hindcast
     from analogs.stages.scores import brier_score, brier_skill_score, brier_skill_score_interval
     hindcast = leave_one_year_out(pcs, times, observed, top=top, window=window,
                                   separation=separation, restrict=restrict,
                                   targets=restrict, weights=weights, exclude=exclude,
-                                  metric=metric, sequence=sequence)
+                                  metric=metric, sequence=sequence, fold_slots=fold_slots)
     months = pd.DatetimeIndex(hindcast["time"]).month
     by_month = {}
     for month in range(1, 13):
