@@ -16,6 +16,7 @@ drawn from the same candidates (same N, same window).
 
 from __future__ import annotations
 
+import collections
 import threading
 from concurrent.futures import ThreadPoolExecutor
 
@@ -86,9 +87,10 @@ def leave_one_year_out(pcs, times, observed, *, top=DEFAULT_TOP, window=DEFAULT_
         maps each block alike
         (:func:`~analogs.stages.predictor_weights.block_transform`).
     fold_slots : semaphore, optional: with ``metric="event_weighted"`` the folds (one
-        year each) run on :data:`FOLD_THREADS` threads, each fold holding one of these
-        slots (default: a semaphore of FOLD_THREADS slots); a caller running other work
-        beside holds some meanwhile. The same answers whatever the threads.
+        year each) run on up to :data:`FOLD_THREADS` threads, each started once it has
+        taken one of these slots and giving it back when it ends (default: a semaphore
+        of FOLD_THREADS slots); a caller running other work beside holds some
+        meanwhile. The same answers whatever the threads.
 
     Returns
     -------
@@ -323,8 +325,9 @@ def _weighted_fold_batches(pcs, times, observed, targets, window, exclude, *, to
     slots = fold_slots if fold_slots is not None else threading.BoundedSemaphore(FOLD_THREADS)
 
     def fold(year):
-        """The batches of the targets of ``year``, ranked in the map fitted without it."""
-        with slots:
+        """The batches of the targets of ``year``, ranked in the map fitted without it;
+        the slot its start took is given back when it ends."""
+        try:
             train = years != year
             transform = fit_predictor_weights(pcs[train, :n_modes], times[train],
                                               observed[train], harmonics=harmonics[train])
@@ -344,21 +347,34 @@ def _weighted_fold_batches(pcs, times, observed, targets, window, exclude, *, to
                                       separation=separation)
                 batches.append((queries, columns, held, chosen))
             return batches
-
-    # The folds are independent: worked on FOLD_THREADS threads (the fit's solver and the
-    # ranking's kernels give the GIL up), given back in the years' order. The (days x
-    # ~21) products run on one BLAS thread throughout, as the fit (predictor_weights):
-    # the same values, and no BLAS thread spinning beside the fold threads; one limit
-    # held over every fold (limits set and restored by each thread would cross).
-    fold_years = np.unique(years[targets])
-    with one_blas_thread(), ThreadPoolExecutor(FOLD_THREADS) as pool:
-        folds = pool.map(fold, fold_years)
-        try:
-            for batches in tqdm(folds, total=fold_years.size, desc="hindcast", unit="year",
-                                disable=not progress):
-                yield from batches
         finally:
-            pool.shutdown(cancel_futures=True)
+            slots.release()
+
+    # The folds are independent: worked on up to FOLD_THREADS threads (the fit's solver
+    # and the ranking's kernels give the GIL up), each started once a slot is free (so a
+    # slot a caller holds delays no particular year), given back in the years' order.
+    # The (days x ~21) products run on one BLAS thread throughout, as the fit
+    # (predictor_weights): the same values, and no BLAS thread spinning beside the fold
+    # threads; one limit held over every fold (limits set and restored by each thread
+    # would cross).
+    fold_years = np.unique(years[targets])
+    running = collections.deque()
+    with one_blas_thread(), ThreadPoolExecutor(FOLD_THREADS) as pool, tqdm(
+            total=fold_years.size, desc="hindcast", unit="year", disable=not progress) as bar:
+        try:
+            for year in fold_years:
+                slots.acquire()
+                running.append(pool.submit(fold, year))
+                while running and running[0].done():
+                    yield from running.popleft().result()
+                    bar.update()
+            while running:
+                yield from running.popleft().result()
+                bar.update()
+        finally:
+            for future in running:  # an error, or the batches no longer wanted
+                if future.cancel():
+                    slots.release()
 
 
 def _as_slice(positions):
