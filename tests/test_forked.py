@@ -270,6 +270,58 @@ def test_files_looked_at_in_a_child_are_one_process_looking(tmp_path, monkeypatc
     _no_child_left()
 
 
+def test_a_child_leaves_files_not_laid_out_alike_to_the_caller(tmp_path, monkeypatch):
+    """Files whose headers all differ (a variable attribute of its own in each): the
+    child's looks stop after MAX_LEFT_BY_CHILD + 1 files read in full and send nothing
+    back, so the caller recognises every file itself, without waiting for a whole pass;
+    the archive and the warnings are one process's."""
+    from analogs.stages import sources
+
+    paths = []
+    for year in range(2001, 2011):
+        written = _write_year(tmp_path, year)
+        for path in written:
+            with xr.open_dataset(path) as ds:
+                ds = ds.load()
+            name = next(iter(ds.data_vars))
+            ds[name].attrs["comment"] = f"processed for {year}"
+            ds.to_netcdf(path)
+        paths.extend(written)
+    paths = [str(p) for p in sorted(paths)]
+    recognised = []
+    recognised_in = sources._recognised_in
+
+    def counted(path, *args):
+        recognised.append(path)
+        return recognised_in(path, *args)
+
+    monkeypatch.setattr(sources, "_recognised_in", counted)
+    assert sources._looks_from(sources._looks_in_child(paths, None)) == {}
+    assert len(recognised) == sources.MAX_LEFT_BY_CHILD + 1 < len(paths)
+
+    class Beside:
+        def __enter__(self):
+            pass
+
+        def __exit__(self, *exc):
+            return False
+
+    def opened(**kwargs):
+        with warnings.catch_warnings(record=True) as said:
+            warnings.simplefilter("always")
+            archive = sources.open_archive(paths, progress=False, **kwargs)
+        return archive, sorted(str(w.message) for w in said)
+
+    recognised.clear()
+    two = opened(while_reading=Beside())
+    assert recognised == paths            # the caller's own looks: every file
+    monkeypatch.setattr(forked, "can_fork", lambda: False)
+    one = opened()
+    xr.testing.assert_identical(two[0], one[0])
+    assert two[1] == one[1]
+    _no_child_left()
+
+
 def test_a_child_starts_with_the_netcdf_lock_free_and_no_hdf5_call_under_way():
     """A fork waits for netCDF4's lock (another thread in an HDF5 call holds it), and
     the child can take that lock itself: a lock held by another thread at the fork

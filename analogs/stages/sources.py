@@ -777,6 +777,10 @@ def _recognised_in(path, chunks, seen, layouts):
 #: Files from which, when work is to run beside the reads (``while_reading``), they are
 #: recognised in a forked child while that work starts (:func:`_looks_in_child`).
 MIN_FILES_LOOKED_IN_CHILD = 8
+#: NetCDF files the child leaves to the caller (read in full: each field's first file)
+#: after which it answers at once: an archive whose files are not laid out alike would
+#: otherwise be read in full twice, the caller waiting for the child's pass.
+MAX_LEFT_BY_CHILD = 4
 
 
 def _recognition_forked(files) -> bool:
@@ -789,11 +793,15 @@ def _looks_in_child(files, chunks) -> bytes:
     own layouts: the same decisions), in a forked child; for each file laid out as an
     earlier one, send back the earlier file's path, each candidate's times and time
     chunk (:func:`_looks_from` reads them). A file read in full, one that warns, one
-    whose times are not dates, and every file from an error on are left to the caller,
-    which then meets the warning or the error itself."""
+    whose times are not dates, and every file from an error on, or from the
+    :data:`MAX_LEFT_BY_CHILD` + 1st so left, are left to the caller, which then meets
+    the warning or the error itself. Files other than NetCDF (GRIB, Zarr) are skipped:
+    never laid out, they add no layout."""
     from analogs import _forked
-    seen, layouts, notes, times = {}, [], {}, []
+    seen, layouts, notes, times, left = {}, [], {}, [], 0
     for index, path in enumerate(files):
+        if not _plain_netcdf(path):
+            continue
         with warnings.catch_warnings(record=True) as said:
             warnings.simplefilter("always")
             try:
@@ -803,6 +811,9 @@ def _looks_in_child(files, chunks) -> bytes:
         laid_out = [candidate.laid_out for candidate in found]
         if said or not found or any(part is None or part.times.dtype.kind != "M"
                                     for part in laid_out):
+            left += 1
+            if left > MAX_LEFT_BY_CHILD:
+                break
             continue
         notes[str(index)] = {"header_of": laid_out[0].header_of,
                              "chunks": [part.time_chunk for part in laid_out]}
@@ -832,10 +843,7 @@ def _as_looked(looked, path, seen, layouts):
     fits = next((layout for layout in layouts if layout.path == header_of), None)
     if fits is None or len(fits.variables) != len(parts):
         return None
-    seen[path] = list(fits.names)
-    return [replace(candidate, path=path, dataset=None,
-                    laid_out=_LaidOut(variable, times, chunk, fits.path))
-            for (candidate, variable), (times, chunk) in zip(fits.variables, parts)]
+    return _as_laid_out(fits, path, parts, seen)
 
 
 #: HDF5 chunk cache per open file while an archive is opened, bytes. The default (64 MB)
@@ -1341,10 +1349,18 @@ def _laid_out_candidates(path, layouts, seen):
             return None
     if said:
         return None  # the full reading warns as it does for any file
+    return _as_laid_out(fits, path, [(times[v.time_dim], chunks[v.name])
+                                     for _, v in fits.variables], seen)
+
+
+def _as_laid_out(fits, path, parts, seen):
+    """The candidates of ``path``, a file with the header of ``fits``' file: each of its
+    variables with its own (times, time chunk) of ``parts``, in ``fits.variables``'
+    order, and nothing opened by xarray."""
     seen[path] = list(fits.names)
-    return [replace(c, path=path, dataset=None,
-                    laid_out=_LaidOut(v, times[v.time_dim], chunks[v.name], fits.path))
-            for c, v in fits.variables]
+    return [replace(candidate, path=path, dataset=None,
+                    laid_out=_LaidOut(variable, times, chunk, fits.path))
+            for (candidate, variable), (times, chunk) in zip(fits.variables, parts)]
 
 
 def _fitting_layout(handle, layouts):
