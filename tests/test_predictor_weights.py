@@ -15,8 +15,10 @@ import _reliability_helpers as rh
 from analogs.api import AnalogStore
 from analogs.cli import main
 from analogs.stages.hindcast import leave_one_year_out, seasonal_harmonics
+from analogs.errors import AnalogsInputError
 from analogs.stages.predictor_weights import (SCORE_WEIGHT, fit_predictor_weights,
-                                              one_blas_thread, pc_weights)
+                                              logistic_regression, one_blas_thread,
+                                              pc_weights)
 from analogs.workflows import store as store_io
 from analogs.workflows.find import event_weighted_transform
 
@@ -35,6 +37,59 @@ def _synthetic(n_years=10, n_modes=8, seed=0):
     logit = -1.5 + 1.6 * pcs[:, 1] / spread[1] - 1.2 * pcs[:, 4] / spread[4] + 0.8 * season
     observed = rng.random(times.size) < 1 / (1 + np.exp(-logit))
     return pcs, times, observed, spread
+
+
+@pytest.mark.parametrize("C", [0.01, 1.0, 100.0])
+def test_logistic_regression_is_scikit_learns_minimum(C):
+    """The regression's coefficients and intercept are those of scikit-learn's
+    LogisticRegression (L2 penalty, intercept not penalised) solved by its own Newton
+    solver to a tight tolerance, on the Wisconsin breast-cancer data shipped with
+    scikit-learn (569 cases, 30 standardised inputs; nearly separable at C = 100): the
+    one minimum of the objective, to round-off."""
+    from sklearn.datasets import load_breast_cancer
+    from sklearn.linear_model import LogisticRegression
+    from sklearn.preprocessing import StandardScaler
+
+    inputs, outcome = load_breast_cancer(return_X_y=True)
+    inputs = StandardScaler().fit_transform(inputs)
+    coefficients, intercept = logistic_regression(inputs, outcome.astype(bool), C=C)
+    reference = LogisticRegression(C=C, solver="newton-cholesky", tol=1e-14,
+                                   max_iter=1000).fit(inputs, outcome)
+    scale = max(1.0, np.abs(reference.coef_).max())
+    np.testing.assert_allclose(coefficients, reference.coef_[0], rtol=0, atol=1e-9 * scale)
+    assert intercept == pytest.approx(reference.intercept_[0], abs=1e-9 * scale)
+
+
+def test_logistic_regression_is_the_minimum_of_scikit_learns_default_fit():
+    """On the days of a synthetic archive, scikit-learn's default fit (L-BFGS, tolerance
+    1e-4) stops short of the minimum: its objective is no lower than the Newton fit's,
+    whose gradient vanishes (C sum(p - y) x + w = 0, the intercept's row without w) to
+    round-off."""
+    from sklearn.linear_model import LogisticRegression
+
+    pcs, times, observed, _ = _synthetic()
+    inputs = np.column_stack([pcs / pcs.std(axis=0), seasonal_harmonics(times)])
+    coefficients, intercept = logistic_regression(inputs, observed)
+
+    def objective(w, b):
+        eta = inputs @ w + b
+        return np.sum(np.logaddexp(0.0, eta) - observed * eta) + 0.5 * w @ w
+
+    default = LogisticRegression(max_iter=2000).fit(inputs, observed)
+    assert objective(coefficients, intercept) <= objective(default.coef_[0],
+                                                           default.intercept_[0])
+    probability = 1.0 / (1.0 + np.exp(-(inputs @ coefficients + intercept)))
+    gradient = np.append(inputs.T @ (probability - observed) + coefficients,
+                         np.sum(probability - observed))
+    assert np.abs(gradient).max() < 1e-8 * len(times)
+
+
+def test_logistic_regression_needs_both_outcomes():
+    """Every day with the event (or none): no finite minimum (the intercept runs off),
+    said with the counts."""
+    inputs = np.random.default_rng(0).standard_normal((20, 3))
+    with pytest.raises(AnalogsInputError, match="with and without the event; got 20 of 20"):
+        logistic_regression(inputs, np.ones(20, dtype=bool))
 
 
 def test_fitted_weights_recover_the_informative_pcs():

@@ -5,7 +5,8 @@ the event forecast (reports in a region). The analog ensemble's habit is to weig
 predictor by how much it matters for the quantity forecast (Delle Monache, Eckel, Rife,
 Nagarajan & Searight 2013, Mon. Wea. Rev. 141, 3498-3516, "Probabilistic weather
 prediction with an analog ensemble", where the weights are found by a search). Here the
-weights come from one fit: a logistic regression (scikit-learn) of "at least one event"
+weights come from one fit: a logistic regression (:func:`logistic_regression`, solved to
+round-off by Newton's method) of "at least one event"
 on the standardised PCs plus annual harmonics (the season is there so that the PC
 coefficients are those within the season; the harmonics themselves are not part of the
 distance, the season window already keeps analogs in season). PC j is scaled by
@@ -28,15 +29,113 @@ from __future__ import annotations
 
 import contextlib
 import functools
+import warnings
 
 import numpy as np
 import pandas as pd
+
+from analogs.errors import AnalogsInputError
 
 #: Weight of the regression's PC score as one more coordinate of the analog space
 #: (measured: 1 and 10 score alike on the demo's box, 0 less well).
 SCORE_WEIGHT = 10.0
 #: Inverse regularisation strength of the regression (scikit-learn's C; its default).
 REGRESSION_C = 1.0
+
+
+#: Newton steps of :func:`logistic_regression` at most (it takes about 8 from its start).
+MAX_NEWTON_STEPS = 100
+#: The last Newton step of :func:`logistic_regression`: one no larger than this (relative
+#: to the largest coefficient, at least 1) is taken and ends the fit; Newton's quadratic
+#: convergence leaves an error of about its square.
+NEWTON_LAST_STEP = 1e-6
+
+
+def logistic_regression(inputs, observed, *, C=REGRESSION_C) -> tuple[np.ndarray, float]:
+    r"""L2-penalised logistic regression of ``observed`` on ``inputs``, solved to
+    round-off by Newton's method.
+
+    Minimises scikit-learn's objective for ``LogisticRegression(penalty="l2", C=C)``
+    (its user guide, "Logistic regression", mathematical formulation), the intercept
+    :math:`b` not penalised:
+
+    .. math:: C \sum_i \left[\log\left(1 + e^{\eta_i}\right) - y_i \eta_i\right]
+              + \tfrac{1}{2} \lVert w \rVert^2, \qquad \eta_i = x_i \cdot w + b
+
+    by Newton's method (iteratively reweighted least squares: Hastie, Tibshirani &
+    Friedman 2009, The Elements of Statistical Learning, 2nd ed., section 4.4.1) with a
+    backtracking line search on the objective (Armijo's rule; Boyd & Vandenberghe 2004,
+    Convex Optimization, section 9.5; both from memory), from every coefficient zero and
+    the intercept at the log-odds of the event's frequency. The objective is strictly
+    convex, so the answer is its one minimum whatever the path: a property of the data
+    and ``C``, not of a solver's tolerance or version. The gradient is taken in float64;
+    the Hessian, which only steers the steps, in float32 (half the cost; the same
+    minimum, tests/test_predictor_weights.py against scikit-learn's own Newton solver).
+
+    Parameters
+    ----------
+    inputs : array (n, p) of predictors.
+    observed : bool array (n,), the event; both outcomes must occur.
+    C : inverse regularisation strength (> 0).
+
+    Returns
+    -------
+    (coefficients (p,), intercept).
+    """
+    inputs = np.asarray(inputs, dtype=float)
+    outcome = np.asarray(observed, dtype=float)
+    n_days, n_inputs = inputs.shape
+    frequency = outcome.mean() if n_days else 0.0
+    if not 0.0 < frequency < 1.0:
+        raise AnalogsInputError(
+            "logistic_regression needs days with and without the event; got "
+            f"{int(outcome.sum())} of {n_days} days with it")
+    # The inputs and a column of ones (the intercept), one row per coefficient.
+    design = np.empty((n_inputs + 1, n_days))
+    design[:n_inputs] = inputs.T
+    design[n_inputs] = 1.0
+    design32 = design.astype(np.float32)
+    penalised = np.ones(n_inputs + 1)
+    penalised[n_inputs] = 0.0
+    theta = np.zeros(n_inputs + 1)
+    theta[n_inputs] = np.log(frequency / (1.0 - frequency))
+
+    def objective(theta):
+        """The objective at ``theta`` and each day's event probability there."""
+        eta = theta @ design
+        # log(1 + e^eta) = log1p(e^-|eta|) + max(eta, 0), without overflow
+        small = np.exp(-np.abs(eta))
+        loss = np.log1p(small)
+        loss += np.maximum(eta, 0.0)
+        loss -= outcome * eta
+        probability = 1.0 / (1.0 + small)
+        np.copyto(probability, small * probability, where=eta < 0)
+        return C * loss.sum() + 0.5 * np.sum(penalised * theta * theta), probability
+
+    value, probability = objective(theta)
+    for _ in range(MAX_NEWTON_STEPS):
+        gradient = C * (design @ (probability - outcome)) + penalised * theta
+        scaled = design32 * np.sqrt(C * probability * (1.0 - probability)).astype(np.float32)
+        hessian = (scaled @ scaled.T).astype(float)
+        hessian[np.diag_indices(n_inputs + 1)] += penalised
+        step = np.linalg.solve(hessian, gradient)
+        if np.max(np.abs(step)) <= NEWTON_LAST_STEP * max(1.0, np.max(np.abs(theta))):
+            theta = theta - step
+            break
+        decrease = gradient @ step  # the Newton decrement squared: > 0 (convex)
+        length = 1.0
+        while True:
+            trial = theta - length * step
+            trial_value, trial_probability = objective(trial)
+            if trial_value <= value - 1e-4 * length * decrease or length < 1e-10:
+                break
+            length *= 0.5
+        theta, value, probability = trial, trial_value, trial_probability
+    else:
+        warnings.warn(f"logistic_regression took {MAX_NEWTON_STEPS} Newton steps without "
+                      "settling; its coefficients may be off the minimum", RuntimeWarning,
+                      stacklevel=2)
+    return theta[:n_inputs], float(theta[n_inputs])
 
 
 def fit_predictor_weights(pcs, times, observed, *, score_weight=SCORE_WEIGHT,
@@ -60,8 +159,6 @@ def fit_predictor_weights(pcs, times, observed, *, score_weight=SCORE_WEIGHT,
     ``sqrt(score_weight) * beta_j / sd_j``. With no event, or an event every day (nothing
     to fit), the identity with a zero last column: the plain distance.
     """
-    from sklearn.linear_model import LogisticRegression
-
     from analogs.stages.hindcast import seasonal_harmonics
     pcs = np.asarray(pcs, dtype=float)
     observed = np.asarray(observed, dtype=bool)
@@ -76,12 +173,11 @@ def fit_predictor_weights(pcs, times, observed, *, score_weight=SCORE_WEIGHT,
         harmonics = seasonal_harmonics(pd.DatetimeIndex(times))
     inputs = np.column_stack([pcs / sd, harmonics])
     # One BLAS thread: the solver's products are of a (days x ~25) matrix, where handing
-    # work to a second thread costs more than it saves (measured, the 41 fits of a
-    # 40-year build: 6.8 s wall, 4.6 s CPU on two threads, 1.9 s and 1.9 s on one, load
-    # 3.8; the coefficients identical to the last bit).
+    # work to a second thread costs more than it saves (measured with the 41 fits of a
+    # 40-year build, whose folds already run on two threads).
     with one_blas_thread():
-        model = LogisticRegression(C=C, max_iter=2000).fit(inputs, observed)
-    beta = model.coef_[0, :n_modes]
+        coefficients, _ = logistic_regression(inputs, observed, C=C)
+    beta = coefficients[:n_modes]
     transform[:, :n_modes] = np.diag(np.abs(beta) / sd)
     transform[:, n_modes] = np.sqrt(score_weight) * beta / sd
     return transform
@@ -91,9 +187,8 @@ def fit_predictor_weights(pcs, times, observed, *, score_weight=SCORE_WEIGHT,
 def _blas_controller():
     """threadpoolctl's view of the loaded BLAS libraries, made once: building it
     inspects every loaded library (about 15 ms, a quarter of a fold's fit in a 40-year
-    hindcast). Made after scikit-learn's regression is imported, so it holds the BLAS of
-    numpy and scipy that the fit uses."""
-    import sklearn.linear_model  # noqa: F401 (loads the libraries the limit must hold)
+    hindcast). numpy's BLAS, the one the fits and the folds' products use, is loaded by
+    then."""
     from threadpoolctl import ThreadpoolController
     return ThreadpoolController()
 

@@ -205,8 +205,7 @@ class _Candidate:
 
 def open_archive(paths, *, fields=None, region=None, hour=P.hour.default,
                  daily=P.daily.default, chunks=None, progress=False, max_missing_fraction=0.1,
-                 max_gap_days=2, scratch=None, while_reading=None,
-                 same_header=None) -> xr.Dataset:
+                 max_gap_days=2, scratch=None, same_header=None) -> xr.Dataset:
     """Open one or many NetCDF / Zarr / GRIB files as a canonical daily archive.
 
     Parameters
@@ -244,15 +243,6 @@ def open_archive(paths, *, fields=None, region=None, hour=P.hour.default,
         the files once, in one pass, into an array from ``scratch`` (the out-of-core
         build's memory-mapped scratch file), and the archive returned reads its chunks
         from there (:func:`_decoded_once`).
-    while_reading : context manager, optional
-        Entered once every file is recognised, left when their values are read (in
-        memory; lazily, when nothing is read yet): work it starts in another thread runs
-        while the reads wait on HDF5 without the GIL (a build imports scikit-learn so).
-        With at least :data:`MIN_FILES_LOOKED_IN_CHILD` files (on Linux) it is entered
-        once the first file is recognised instead: a forked child recognises the others
-        meanwhile (:func:`_looks_in_child`), with the same answers. The work must issue
-        no warning: one issued while a file is recognised here would be taken for that
-        file's, which is then read the full way (slower, the same values).
     same_header : dict, optional
         Filled with ``{file: earlier file}`` for each NetCDF file found to have the
         header of an earlier one (:func:`_header`: every variable's name, dims, dtype
@@ -275,39 +265,20 @@ def open_archive(paths, *, fields=None, region=None, hour=P.hour.default,
     requested = _check_fields(fields, "open_archive")
     south_north_west_east = _check_region(region)
     candidates, seen, layouts = [], {}, []
-    with contextlib.ExitStack() as reading:
-        with _small_chunk_cache():
-            looked, first = {}, 0
-            looked_in_child = while_reading is not None and _recognition_forked(files)
-            if looked_in_child:
-                # A child looks at the files while the work beside the reads starts (the
-                # caller's own looks, GIL-bound, had to end first: 0.3 s for 80 files);
-                # the caller reads the first file in full meanwhile (what that loads the
-                # first time it needs anyway), then takes the child's answers and
-                # recognises the files they leave to it.
-                from analogs import _forked
-                child = reading.enter_context(_forked.beside(_looks_in_child, files, chunks))
-                candidates.extend(_recognised_in(files[0], chunks, seen, layouts))
-                reading.enter_context(while_reading)
-                looked, first = _looks_from(child.answer(timeout=10.0 + 0.5 * len(files))), 1
-            for index, path in enumerate(_progress(files[first:], progress), first):
-                found = (None if index not in looked
-                         else _as_looked(looked[index], path, seen, layouts))
-                candidates.extend(_recognised_in(path, chunks, seen, layouts)
-                                  if found is None else found)
-        chosen = _choose_fields(requested, candidates, files, seen)
-        if same_header is not None:
-            same_header.update({c.path: c.laid_out.header_of for c in candidates
-                                if c.laid_out is not None})
-        _say_computed(chosen, candidates, _describe(files))
-        arrays, duplicates, origins = {}, 0, {}
-        if while_reading is not None and not looked_in_child:
-            reading.enter_context(while_reading)
-        for field in chosen:
-            joined, origins[field] = _read_field(
-                field, [c for c in candidates if c.field == field], chunks)
-            arrays[field], dropped = _drop_duplicate_times(joined, files)
-            duplicates = max(duplicates, dropped)
+    with _small_chunk_cache():
+        for path in _progress(files, progress):
+            candidates.extend(_recognised_in(path, chunks, seen, layouts))
+    chosen = _choose_fields(requested, candidates, files, seen)
+    if same_header is not None:
+        same_header.update({c.path: c.laid_out.header_of for c in candidates
+                            if c.laid_out is not None})
+    _say_computed(chosen, candidates, _describe(files))
+    arrays, duplicates, origins = {}, 0, {}
+    for field in chosen:
+        joined, origins[field] = _read_field(
+            field, [c for c in candidates if c.field == field], chunks)
+        arrays[field], dropped = _drop_duplicate_times(joined, files)
+        duplicates = max(duplicates, dropped)
     ds = _merge_fields(arrays, files)
     ds = _to_daily(ds, hour=hour, how=daily, files=files)
     if south_north_west_east is not None:
@@ -772,78 +743,6 @@ def _recognised_in(path, chunks, seen, layouts):
         if layout is not None:
             layouts.append(layout)
     return found
-
-
-#: Files from which, when work is to run beside the reads (``while_reading``), they are
-#: recognised in a forked child while that work starts (:func:`_looks_in_child`).
-MIN_FILES_LOOKED_IN_CHILD = 8
-#: NetCDF files the child leaves to the caller (read in full: each field's first file)
-#: after which it answers at once: an archive whose files are not laid out alike would
-#: otherwise be read in full twice, the caller waiting for the child's pass.
-MAX_LEFT_BY_CHILD = 4
-
-
-def _recognition_forked(files) -> bool:
-    from analogs import _forked
-    return len(files) >= MIN_FILES_LOOKED_IN_CHILD and _forked.can_fork()
-
-
-def _looks_in_child(files, chunks) -> bytes:
-    """Recognise ``files`` in order as the caller would (:func:`_recognised_in`, with its
-    own layouts: the same decisions), in a forked child; for each file laid out as an
-    earlier one, send back the earlier file's path, each candidate's times and time
-    chunk (:func:`_looks_from` reads them). A file read in full, one that warns, one
-    whose times are not dates, and every file from an error on, or from the
-    :data:`MAX_LEFT_BY_CHILD` + 1st so left, are left to the caller, which then meets
-    the warning or the error itself. Files other than NetCDF (GRIB, Zarr) are skipped:
-    never laid out, they add no layout."""
-    from analogs import _forked
-    seen, layouts, notes, times, left = {}, [], {}, [], 0
-    for index, path in enumerate(files):
-        if not _plain_netcdf(path):
-            continue
-        with warnings.catch_warnings(record=True) as said:
-            warnings.simplefilter("always")
-            try:
-                found = _recognised_in(path, chunks, seen, layouts)
-            except Exception:
-                break
-        laid_out = [candidate.laid_out for candidate in found]
-        if said or not found or any(part is None or part.times.dtype.kind != "M"
-                                    for part in laid_out):
-            left += 1
-            if left > MAX_LEFT_BY_CHILD:
-                break
-            continue
-        notes[str(index)] = {"header_of": laid_out[0].header_of,
-                             "chunks": [part.time_chunk for part in laid_out]}
-        times.extend(xr.DataArray(part.times, dims="time", name=f"{index}/{k}")
-                     for k, part in enumerate(laid_out))
-    return _forked.arrays_to_bytes(times, notes)
-
-
-def _looks_from(payload) -> dict:
-    """{file index: (the earlier file's path, [(times, time chunk) of each candidate])}
-    from :func:`_looks_in_child`'s bytes; empty without an answer."""
-    if payload is None:
-        return {}
-    from analogs import _forked
-    arrays, notes = _forked.arrays_from_bytes(payload)
-    times = {array.name: array.values for array in arrays}
-    return {int(index): (note["header_of"],
-                         [(times[f"{index}/{k}"], chunk) for k, chunk in enumerate(note["chunks"])])
-            for index, note in notes.items()}
-
-
-def _as_looked(looked, path, seen, layouts):
-    """The candidates of ``path`` that the child found laid out as an earlier file
-    (``looked``, of :func:`_looks_from`), made with this process's layout of that file
-    as :func:`_laid_out_candidates` makes them; None when it has no such layout."""
-    header_of, parts = looked
-    fits = next((layout for layout in layouts if layout.path == header_of), None)
-    if fits is None or len(fits.variables) != len(parts):
-        return None
-    return _as_laid_out(fits, path, parts, seen)
 
 
 #: HDF5 chunk cache per open file while an archive is opened, bytes. The default (64 MB)

@@ -4,7 +4,6 @@ from __future__ import annotations
 
 import contextlib
 import contextvars
-import importlib
 import json
 import re
 import shutil
@@ -249,20 +248,10 @@ def _build(paths, store, *, events, event_dates, events_period, fields, n_modes,
     # workers read the files themselves) and the EOF's anomaly matrix.
     with _scratch_files(store, chunked=chunks is not None, progress=progress,
                         folder=scratch) as make_scratch, contextlib.ExitStack() as later:
-        # The skill hindcast's regression needs scikit-learn, about a second of CPU to
-        # import: imported in a thread while the archive is read in memory (the reads
-        # wait on HDF5 without the GIL); out of core, where nothing is read there, beside
-        # the anomalies and the EOF fit, whose BLAS products give the GIL up for long
-        # stretches. Beside the climatology's fit (many short C calls, each waiting for
-        # the GIL back) it slowed it by about the import's own time
-        # (tests/benchmarks/README.md).
-        import_beside = events is not None and sklearn_not_imported()
         same_header = {}  # files whose NetCDF header is an earlier one's: no second look
         archive = open_archive(paths, fields=fields, region=domain, hour=hour, daily=daily,
                                chunks=chunks, progress=progress,
                                scratch=make_scratch if decode_to_scratch else None,
-                               while_reading=_imported_beside("sklearn.linear_model")
-                               if import_beside and chunks is None else None,
                                same_header=same_header)
         if archive.sizes["time"] < 3:
             raise AnalogsInputError(f"the archive has {archive.sizes['time']} days; at "
@@ -273,8 +262,6 @@ def _build(paths, store, *, events, event_dates, events_period, fields, n_modes,
             events, archive["lat"].values, archive["lon"].values, dates=event_dates)
 
         climatology = HarmonicClimatology(n_harmonics=n_harmonics).fit(archive)
-        if import_beside and chunks is not None:
-            later.enter_context(_beside(_import_quietly, "sklearn.linear_model"))
         # Anomalies in the archive's float32, made block-wise; the EOF fit scales them in
         # place into its data matrix (one copy of the archive beside the archive itself).
         # Out of core, that copy is a scratch file written in one pass over the archive.
@@ -422,56 +409,6 @@ def _beside(work, *args, **kwargs):
             if future.exception() is not None:  # waits for the thread
                 raise future.exception() from None
             raise
-
-
-def _import_quietly(module: str) -> None:
-    """Import ``module`` ahead of its use; a failure is left to the import that uses it,
-    where it is reported."""
-    with contextlib.suppress(Exception):
-        importlib.import_module(module)
-
-
-def sklearn_not_imported() -> bool:
-    """Whether scikit-learn's regression is still to be imported in this process."""
-    return "sklearn.linear_model" not in sys.modules
-
-
-#: The interpreter's switch interval while a module is imported beside reads (s).
-_SWITCH_INTERVAL_BESIDE_READS = 2e-4
-_switch_interval_users = {"count": 0, "saved": None}
-_switch_interval_lock = threading.Lock()
-
-
-@contextlib.contextmanager
-def _short_switch_interval():
-    """Run the enclosed block with the switch interval at most
-    :data:`_SWITCH_INTERVAL_BESIDE_READS`, then restore it (when no other thread's
-    block still needs it). A thread back from a C call that gave the GIL up waits for
-    the thread running Python to be made to give it up, up to the interval (5 ms by
-    default): the 80 reads of a 40-year archive beside scikit-learn's import took 0.4 s
-    longer at 5 ms than at 0.2 ms (measured, tests/benchmarks/README.md)."""
-    with _switch_interval_lock:
-        if not _switch_interval_users["count"]:
-            _switch_interval_users["saved"] = sys.getswitchinterval()
-            sys.setswitchinterval(min(_switch_interval_users["saved"],
-                                      _SWITCH_INTERVAL_BESIDE_READS))
-        _switch_interval_users["count"] += 1
-    try:
-        yield
-    finally:
-        with _switch_interval_lock:
-            _switch_interval_users["count"] -= 1
-            if not _switch_interval_users["count"]:
-                sys.setswitchinterval(_switch_interval_users["saved"])
-
-
-@contextlib.contextmanager
-def _imported_beside(module: str):
-    """Import ``module`` in a thread while the enclosed block runs (reads that give the
-    GIL up), with a short switch interval (:func:`_short_switch_interval`); the import
-    has ended when the block is left."""
-    with _short_switch_interval(), _beside(_import_quietly, module):
-        yield
 
 
 #: Free space kept beyond the scratch files' size (the store is written beside them).
