@@ -193,14 +193,15 @@ def test_archive_read_in_memory_by_two_processes_is_one_process_reading(
     beside = forked.beside
 
     def counted(work, *args):
-        forks.append(len(args[0]))
+        forks.append((work.__name__, len(args[0])))
         return beside(work, *args)
 
     monkeypatch.setattr(forked, "beside", counted)
     two = sources.open_archive(demo_files, progress=False)
     n_files = len(demo_files) // 2
     assert n_files >= sources.MIN_PIECES_FORKED
-    assert forks == [n_files - n_files // 2] * 2
+    assert forks == [("_looks_in_child", len(demo_files) - len(demo_files) // 2)] + [
+        ("_read_into_in_child", n_files - n_files // 2)] * 2
     monkeypatch.setattr(sources, "_read_into_in_child", lambda pieces: _fails())
     failed = sources.open_archive(demo_files, progress=False)
     monkeypatch.setattr(forked, "can_fork", lambda: False)
@@ -209,6 +210,107 @@ def test_archive_read_in_memory_by_two_processes_is_one_process_reading(
         xr.testing.assert_identical(other, one)
         for name in one.data_vars:
             assert np.array_equal(other[name].values.view("u4"), one[name].values.view("u4"))
+    _no_child_left()
+
+
+def _opened_with_warnings(paths):
+    """open_archive's archive, its same-header map and the warnings it issued."""
+    from analogs.stages import sources
+
+    same_header = {}
+    with warnings.catch_warnings(record=True) as said:
+        warnings.simplefilter("always")
+        archive = sources.open_archive([str(p) for p in paths], progress=False,
+                                       same_header=same_header)
+    return archive, same_header, sorted(str(w.message) for w in said)
+
+
+def _assert_one_process(other, one):
+    xr.testing.assert_identical(other[0], one[0])
+    for name in one[0].data_vars:
+        assert np.array_equal(other[0][name].values.view("u4"), one[0][name].values.view("u4"))
+    assert other[1:] == one[1:]
+
+
+@pytest.mark.parametrize("order", ["by_field", "by_year"])
+def test_files_recognised_in_two_processes_are_one_process_recognising(
+        tmp_path, monkeypatch, order):
+    """open_archive with the later half of the files recognised in a forked child: the
+    archive, the files found with an earlier one's header and the warnings are those of
+    one process looking at every file in order. This process recognises its half and
+    only the child's files that it leaves (read in full: the first of a field in its
+    half; the one that warns: a file without a supported variable). Ordered by year,
+    the child's first file of a field is laid out by this process as the first half's
+    file of that field, and the child's later files, laid out by the child as that
+    file, take its layout. A child that fails leaves every file to this process."""
+    from analogs.stages import sources
+
+    years = [_write_year(tmp_path, year) for year in range(2001, 2007)]
+    paths = (sorted(p for pair in years for p in pair) if order == "by_field"
+             else [p for pair in years for p in pair])
+    stray = tmp_path / "notes_2003.nc"
+    xr.Dataset({"notes": ("n", np.arange(3.0))}).to_netcdf(stray)
+    paths = paths[:6] + [stray] + paths[6:]
+    half = len(paths) // 2
+    assert len(paths) >= sources.MIN_FILES_LOOKED_IN_CHILD and paths[half] == stray
+    looked_here = []
+    recognised_in = sources._recognised_in
+
+    def counted(path, *args):
+        looked_here.append(os.path.basename(path))
+        return recognised_in(path, *args)
+
+    monkeypatch.setattr(sources, "_recognised_in", counted)
+    two = _opened_with_warnings(paths)
+    first_of_field = {"by_field": ["zg_2001.nc"], "by_year": ["zg_2004.nc", "hus_2004.nc"]}
+    assert looked_here == [p.name for p in paths[:half]] + ["notes_2003.nc"] + first_of_field[
+        order]
+    monkeypatch.setattr(sources, "_looks_in_child", lambda *args: _fails())
+    failed = _opened_with_warnings(paths)
+    monkeypatch.setattr(forked, "can_fork", lambda: False)
+    looked_here.clear()
+    one = _opened_with_warnings(paths)
+    assert len(looked_here) == len(paths)
+    assert any("notes_2003.nc: no supported variable" in text for text in one[2])
+    assert len(one[1]) == len(paths) - 3
+    for other in (two, failed):
+        _assert_one_process(other, one)
+    _no_child_left()
+
+
+def test_a_child_leaves_files_not_laid_out_alike_to_the_caller(tmp_path, monkeypatch):
+    """Files whose headers all differ (a variable attribute of its own in each): the
+    child's looks stop after MAX_LEFT_BY_CHILD + 1 files read in full and send nothing
+    back, so the caller recognises every file itself, without waiting for a whole pass;
+    the archive and the warnings are one process's."""
+    from analogs.stages import sources
+
+    paths = []
+    for year in range(2001, 2011):
+        written = _write_year(tmp_path, year)
+        for path in written:
+            with xr.open_dataset(path) as ds:
+                ds = ds.load()
+            name = next(iter(ds.data_vars))
+            ds[name].attrs["comment"] = f"processed for {year}"
+            ds.to_netcdf(path)
+        paths.extend(written)
+    paths = sorted(paths)
+    recognised = []
+    recognised_in = sources._recognised_in
+
+    def counted(path, *args):
+        recognised.append(path)
+        return recognised_in(path, *args)
+
+    monkeypatch.setattr(sources, "_recognised_in", counted)
+    assert sources._looks_from(sources._looks_in_child([str(p) for p in paths], None), 0) == {}
+    assert len(recognised) == sources.MAX_LEFT_BY_CHILD + 1 < len(paths)
+    recognised.clear()
+    two = _opened_with_warnings(paths)
+    assert recognised == [str(p) for p in paths]   # the caller's own looks: every file
+    monkeypatch.setattr(forked, "can_fork", lambda: False)
+    _assert_one_process(two, _opened_with_warnings(paths))
     _no_child_left()
 
 
