@@ -84,12 +84,16 @@ def test_logistic_regression_is_the_minimum_of_scikit_learns_default_fit():
     assert np.abs(gradient).max() < 1e-8 * len(times)
 
 
-def test_logistic_regression_needs_both_outcomes():
+def test_logistic_regression_needs_both_outcomes_and_finite_inputs():
     """Every day with the event (or none): no finite minimum (the intercept runs off),
-    said with the counts."""
+    said with the counts; a missing input is said too (a NaN would spread through
+    every step)."""
     inputs = np.random.default_rng(0).standard_normal((20, 3))
     with pytest.raises(AnalogsInputError, match="with and without the event; got 20 of 20"):
         logistic_regression(inputs, np.ones(20, dtype=bool))
+    inputs[3, 1] = np.nan
+    with pytest.raises(AnalogsInputError, match="finite inputs; got 1 missing or infinite"):
+        logistic_regression(inputs, np.arange(20) % 2 == 0)
 
 
 def test_fitted_weights_recover_the_informative_pcs():

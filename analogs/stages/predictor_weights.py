@@ -49,6 +49,10 @@ MAX_NEWTON_STEPS = 100
 #: to the largest coefficient, at least 1) is taken and ends the fit; Newton's quadratic
 #: convergence leaves an error of about its square.
 NEWTON_LAST_STEP = 1e-6
+#: Armijo's fraction: a step is taken once it lowers the objective by at least this
+#: share of the decrease its slope promises (Boyd & Vandenberghe's alpha; common
+#: practice, no source for the value).
+ARMIJO_FRACTION = 1e-4
 
 
 def logistic_regression(inputs, observed, *, C=REGRESSION_C) -> tuple[np.ndarray, float]:
@@ -85,6 +89,9 @@ def logistic_regression(inputs, observed, *, C=REGRESSION_C) -> tuple[np.ndarray
     inputs = np.asarray(inputs, dtype=float)
     outcome = np.asarray(observed, dtype=float)
     n_days, n_inputs = inputs.shape
+    if not np.isfinite(inputs).all():
+        raise AnalogsInputError("logistic_regression needs finite inputs; got "
+                                f"{int((~np.isfinite(inputs)).sum())} missing or infinite")
     frequency = outcome.mean() if n_days else 0.0
     if not 0.0 < frequency < 1.0:
         raise AnalogsInputError(
@@ -127,7 +134,7 @@ def logistic_regression(inputs, observed, *, C=REGRESSION_C) -> tuple[np.ndarray
         while True:
             trial = theta - length * step
             trial_value, trial_probability = objective(trial)
-            if trial_value <= value - 1e-4 * length * decrease or length < 1e-10:
+            if trial_value <= value - ARMIJO_FRACTION * length * decrease or length < 1e-10:
                 break
             length *= 0.5
         theta, value, probability = trial, trial_value, trial_probability
