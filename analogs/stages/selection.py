@@ -428,7 +428,8 @@ def rank_windows(vectors, times, targets, windows, allowed, *, top, separation):
     keys |= np.arange(width, dtype=np.int64)
     np.copyto(keys, last, where=~allowed)
     if depth < width:
-        keys = np.partition(keys, depth - 1, axis=1)[:, :depth]
+        keys.partition(depth - 1, axis=1)  # in place: the keys are this function's own
+        keys = keys[:, :depth]
     keys.sort(axis=1)
     found = keys != last
     rows = np.take_along_axis(windows, np.where(found, keys & 0xFFFFFFFF, 0), axis=1)
