@@ -975,9 +975,8 @@ def default_predictor_weights(transform, region, n_modes, files) -> dict:
     the map of its own region (every kind) fitted as :func:`event_weighted_transform`
     fits it (``n_modes``: the store's query modes; ``files``: the manifest entries of
     its ``scores.nc`` and ``events.parquet``, which key it). The build writes it with
-    the store's first manifest: a default query neither fits it nor imports
-    scikit-learn, and the build neither edits the manifest again nor loads the store
-    twice."""
+    the store's first manifest: a default query does not fit it, and the build neither
+    edits the manifest again nor loads the store twice."""
     key, fields = _predictor_weights_key(region, None, n_modes, files)
     return {key: {"key": fields, "transform": np.asarray(transform).tolist()}}
 
@@ -1022,7 +1021,7 @@ def event_weighted_transform(store, region, kinds=None, keep=True) -> np.ndarray
 def with_default_predictor_weights(store):
     """``store`` with the event-weighted map of its own region (every kind) kept in its
     manifest (:func:`event_weighted_transform`), as the build and ``update`` leave it so
-    that a default query neither fits it nor imports scikit-learn: the store loaded
+    that a default query does not fit it: the store loaded
     again when the map was written (the version's manifest changed)."""
     from analogs.workflows import store as store_io
     from analogs.workflows.analog_store import AnalogStore
