@@ -1469,8 +1469,9 @@ def _netcdf_c():
     through netCDF4's extension module, whose dependencies the dynamic loader
     searches), or None. Called without the GIL, as netCDF4 calls the library: another
     thread runs Python while HDF5 decompresses (dask's threaded scheduler reads an
-    out-of-core archive's chunks so), and holding netCDF4's lock (:mod:`analogs._netcdf_lock`), as every netCDF4
-    call of the package does, keeps any other HDF5 call from running beside it."""
+    out-of-core archive's chunks so), and holding netCDF4's lock
+    (:mod:`analogs._netcdf_lock`), as every netCDF4 call of the package does, keeps any
+    other HDF5 call from running beside it."""
     import netCDF4
     try:
         library = ctypes.CDLL(netCDF4._netCDF4.__file__)
