@@ -137,15 +137,21 @@ def test_harmonics_given_fit_the_same_weights():
 
 def test_one_blas_thread_limits_and_restores_as_threadpoolctl():
     """one_blas_thread (a threadpoolctl controller made once) holds every BLAS library
-    on one thread inside and restores the counts after, as threadpoolctl's
-    threadpool_limits(1, user_api="blas") does (threadpoolctl's own report as the
-    reference), and the fit inside it gives the same coefficients as inside that."""
+    loaded when the controller is made on one thread inside and restores the counts
+    after, as threadpoolctl's threadpool_limits(1, user_api="blas") does
+    (threadpoolctl's own report as the reference), and the fit inside it gives the same
+    coefficients as inside that."""
     from threadpoolctl import threadpool_info, threadpool_limits
+
+    from analogs.stages import predictor_weights
 
     def blas_threads():
         return [(info["filepath"], info["num_threads"]) for info in threadpool_info()
                 if info["user_api"] == "blas"]
 
+    # The controller holds the libraries loaded when it is made: made anew here, after
+    # this module's imports (scipy's BLAS among them), whatever ran before.
+    predictor_weights._blas_controller.cache_clear()
     pcs, times, observed, _ = _synthetic(n_years=4)
     before = blas_threads()
     with one_blas_thread():

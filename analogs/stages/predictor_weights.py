@@ -192,19 +192,20 @@ def fit_predictor_weights(pcs, times, observed, *, score_weight=SCORE_WEIGHT,
 
 @functools.cache
 def _blas_controller():
-    """threadpoolctl's view of the loaded BLAS libraries, made once: building it
-    inspects every loaded library (about 15 ms, a quarter of a fold's fit in a 40-year
-    hindcast). numpy's BLAS, the one the fits and the folds' products use, is loaded by
-    then."""
+    """threadpoolctl's view of the BLAS libraries loaded when it is first asked for,
+    made once: building it inspects every loaded library (about 15 ms, more than a
+    fold's fit in a 40-year hindcast). numpy's BLAS, the only one the fits and the
+    folds' products use, is always among them (scipy's, loaded later by another stage,
+    may not be: nothing here calls it)."""
     from threadpoolctl import ThreadpoolController
     return ThreadpoolController()
 
 
 @contextlib.contextmanager
 def one_blas_thread():
-    """Run the enclosed block with every BLAS library on one thread (threadpoolctl's
-    ``threadpool_limits(1, user_api="blas")`` from a controller made once), then
-    restore the previous counts."""
+    """Run the enclosed block with the BLAS libraries of :func:`_blas_controller` (numpy's
+    always) on one thread, as threadpoolctl's ``threadpool_limits(1, user_api="blas")``
+    does, then restore the previous counts."""
     with _blas_controller().limit(limits=1, user_api="blas"):
         yield
 
