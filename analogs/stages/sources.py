@@ -764,16 +764,19 @@ def _recognised_files(files, chunks, seen, layouts, progress) -> list:
     the child gives it a second core."""
     from analogs import _forked
     half = len(files) // 2 if len(files) >= MIN_FILES_LOOKED_IN_CHILD else len(files)
-    candidates, looked = [], {}
+    candidates, looked, laid_out_as = [], {}, {}
     with (_forked.beside(_looks_in_child, files[half:], chunks)
           if half < len(files) and _forked.can_fork() else contextlib.nullcontext()) as child:
         for index, path in enumerate(_progress(files, progress)):
             if index == half and child is not None:
                 looked = _looks_from(child.answer(timeout=10.0 + 0.5 * len(files)), half)
             found = None if index not in looked else _as_looked(
-                looked[index], path, seen, layouts, candidates)
-            candidates.extend(_recognised_in(path, chunks, seen, layouts)
-                              if found is None else found)
+                looked[index], path, seen, layouts, laid_out_as)
+            if found is None:
+                found = _recognised_in(path, chunks, seen, layouts)
+            candidates.extend(found)
+            laid_out_as.update((c.path, c.laid_out.header_of) for c in found
+                               if c.laid_out is not None)
     return candidates
 
 
@@ -825,17 +828,16 @@ def _looks_from(payload, first) -> dict:
             for index, note in notes.items()}
 
 
-def _as_looked(looked, path, seen, layouts, candidates):
+def _as_looked(looked, path, seen, layouts, laid_out_as):
     """The candidates of ``path`` that the child found laid out as an earlier file
     (``looked``, of :func:`_looks_from`), made with this process's layout of that
     header as :func:`_laid_out_candidates` makes them; None when it has none. The
     child's earlier file may be one of its own half that this process found laid out
-    as another (``candidates`` so far): the same header, so that file's layout."""
+    as another (``laid_out_as``: file -> the file whose layout it took): the same
+    header, so that file's layout."""
     header_of, parts = looked
-    paths = {layout.path for layout in layouts}
-    if header_of not in paths:
-        header_of = next((c.laid_out.header_of for c in candidates
-                          if c.path == header_of and c.laid_out is not None), None)
+    if not any(layout.path == header_of for layout in layouts):
+        header_of = laid_out_as.get(header_of)
     fits = next((layout for layout in layouts if layout.path == header_of), None)
     if fits is None or len(fits.variables) != len(parts):
         return None
